@@ -1,0 +1,387 @@
+package onnxlite
+
+import (
+	"fmt"
+	"slices"
+	"strings"
+)
+
+// Static is a model specialised to concrete input shapes.
+type Static struct {
+	Model   *Model
+	Nodes   []*Node               // nodes left after folding, topologically sorted
+	Values  map[string]ValueShape // every value: graph inputs, initializers, node outputs
+	Consts  map[string]*Tensor    // initializers and folded values, by name
+	Inputs  []string              // runtime graph inputs (not backed by an initializer), in graph order
+	Outputs []string              // graph outputs in order
+}
+
+// ValueShape is the element type and concrete shape of one value.
+type ValueShape struct {
+	DType DataType
+	Shape []int
+}
+
+// String formats v as e.g. "FLOAT[1 3 224 224]".
+func (v ValueShape) String() string { return fmt.Sprintf("%v%v", v.DType, v.Shape) }
+
+// NumElements is the product of the dims (1 for a scalar).
+func (v ValueShape) NumElements() int64 { return prodInt64(v.Shape) }
+
+// Infer validates m (see Validate), gives every value a concrete shape and
+// element type, and folds the constant subgraphs that exporters emit for shape
+// arithmetic.
+//
+// inputs maps runtime graph inputs (those not backed by an initializer) to
+// concrete shapes. An input absent from the map uses its declared shape, which
+// must then be fully fixed; a given shape must have the declared rank and agree
+// with every declared fixed dim. Naming a value that is not a runtime input is
+// an error.
+//
+// The shape rules follow the ONNX operator specifications (onnx/defs, opsets 1
+// to 17) for every supported operator, with numpy broadcasting for the
+// elementwise operators. A node whose inputs are all constant and whose operator
+// is Shape, Gather, Slice, Squeeze, Unsqueeze, Concat, Cast, Constant,
+// ConstantOfShape, Range, Reshape, Identity, Flatten, integer Add/Sub/Mul/Div,
+// or float Add/Sub/Mul/Div/Neg of at most 4096 elements, is evaluated: its
+// outputs go to Consts and the node leaves Nodes. Shape always folds, to the
+// inferred shape of its input. A fold-only operator (see FoldOnly) that cannot
+// be folded is an error naming the node.
+//
+// A value with more than DefaultLimits.MaxTensorElements elements or a rank
+// above DefaultLimits.MaxRank is a *LimitError.
+func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
+	defer func() {
+		if r := recover(); r != nil {
+			st, err = nil, fmt.Errorf("onnxlite: shape inference failed on malformed input (%v): %w", r, ErrInvalid)
+		}
+	}()
+	if err := m.Validate(); err != nil {
+		return nil, err
+	}
+	g := m.Graph
+	s := &Static{
+		Model:  m,
+		Values: map[string]ValueShape{},
+		Consts: map[string]*Tensor{},
+	}
+	for _, t := range g.Initializers {
+		if err := checkTensor(t); err != nil {
+			return nil, fmt.Errorf("onnxlite: initializer %q: %v: %w", t.Name, err, ErrInvalid)
+		}
+		vs := ValueShape{DType: t.DType, Shape: t.Shape()}
+		if err := checkValueLimits(t.Name, vs); err != nil {
+			return nil, err
+		}
+		s.Values[t.Name] = vs
+		s.Consts[t.Name] = t
+	}
+	runtime := map[string]bool{}
+	params := map[string]symbolicDim{}
+	for _, in := range g.Inputs {
+		if _, ok := s.Consts[in.Name]; ok {
+			continue
+		}
+		vs, err := inputShape(in, inputs)
+		if err != nil {
+			return nil, err
+		}
+		if err := checkValueLimits(in.Name, vs); err != nil {
+			return nil, err
+		}
+		if err := bindParams(in, vs.Shape, params); err != nil {
+			return nil, err
+		}
+		s.Values[in.Name] = vs
+		s.Inputs = append(s.Inputs, in.Name)
+		runtime[in.Name] = true
+	}
+	for name := range inputs {
+		if !runtime[name] {
+			return nil, invalidf("input shape given for %q: expected one of the runtime graph inputs %v", name, s.Inputs)
+		}
+	}
+	opset := m.OpsetVersion("")
+	for i, n := range g.Nodes {
+		if err := s.inferNode(n, i, opset); err != nil {
+			return nil, err
+		}
+	}
+	for _, o := range g.Outputs {
+		if _, ok := s.Values[o.Name]; !ok {
+			return nil, invalidf("graph output %q has no inferred value", o.Name)
+		}
+		s.Outputs = append(s.Outputs, o.Name)
+	}
+	return s, nil
+}
+
+// inputShape resolves the concrete shape of a runtime graph input.
+func inputShape(in *ValueInfo, given map[string][]int) (ValueShape, error) {
+	if in.Type == nil || in.Type.Kind != KindTensor {
+		return ValueShape{}, invalidf("graph input %q: expected a tensor type, got %s", in.Name, describeType(in.Type))
+	}
+	vs := ValueShape{DType: in.Type.Elem}
+	shape, ok := given[in.Name]
+	if ok {
+		for i, d := range shape {
+			if d < 0 {
+				return vs, invalidf("graph input %q: given shape %v: expected non-negative dims, got %d at axis %d", in.Name, shape, d, i)
+			}
+		}
+		if in.Type.HasShape {
+			if len(shape) != len(in.Type.Shape) {
+				return vs, invalidf("graph input %q: expected rank %d (declared %s), got shape %v of rank %d",
+					in.Name, len(in.Type.Shape), describeDims(in.Type.Shape), shape, len(shape))
+			}
+			for i, d := range in.Type.Shape {
+				if d.HasValue && d.Value != int64(shape[i]) {
+					return vs, invalidf("graph input %q: axis %d: expected %d (declared %s), got %d",
+						in.Name, i, d.Value, describeDims(in.Type.Shape), shape[i])
+				}
+			}
+		}
+		vs.Shape = slices.Clone(shape)
+		return vs, nil
+	}
+	if !in.Type.HasShape {
+		return vs, invalidf("graph input %q: declared with unknown rank: expected a concrete shape for it", in.Name)
+	}
+	vs.Shape = make([]int, len(in.Type.Shape))
+	for i, d := range in.Type.Shape {
+		switch {
+		case d.HasValue && d.Value >= 0:
+			vs.Shape[i] = int(d.Value)
+		case d.Param != "":
+			return vs, invalidf("graph input %q: axis %d is the symbolic dim %q: expected a concrete shape for the input", in.Name, i, d.Param)
+		default:
+			return vs, invalidf("graph input %q: axis %d has no fixed size (declared %s): expected a concrete shape for the input", in.Name, i, describeDims(in.Type.Shape))
+		}
+	}
+	return vs, nil
+}
+
+// symbolicDim records where a dim_param was first bound to a size.
+type symbolicDim struct {
+	size  int
+	input string
+	axis  int
+}
+
+// bindParams checks that a symbolic dim shared by several inputs gets one size.
+func bindParams(in *ValueInfo, shape []int, params map[string]symbolicDim) error {
+	for i, d := range in.Type.Shape {
+		if d.HasValue || d.Param == "" || i >= len(shape) {
+			continue
+		}
+		if p, ok := params[d.Param]; ok && p.size != shape[i] {
+			return invalidf("graph input %q: axis %d is the symbolic dim %q, bound to %d by input %q axis %d: expected %d, got %d",
+				in.Name, i, d.Param, p.size, p.input, p.axis, p.size, shape[i])
+		} else if !ok {
+			params[d.Param] = symbolicDim{shape[i], in.Name, i}
+		}
+	}
+	return nil
+}
+
+func describeType(t *Type) string {
+	if t == nil {
+		return "no type"
+	}
+	switch t.Kind {
+	case KindTensor:
+		return "tensor"
+	case KindSequence:
+		return "sequence"
+	case KindMap:
+		return "map"
+	case KindOptional:
+		return "optional"
+	case KindSparseTensor:
+		return "sparse tensor"
+	}
+	return "unknown type"
+}
+
+func describeDims(ds []Dim) string {
+	parts := make([]string, len(ds))
+	for i, d := range ds {
+		switch {
+		case d.HasValue:
+			parts[i] = fmt.Sprint(d.Value)
+		case d.Param != "":
+			parts[i] = d.Param
+		default:
+			parts[i] = "?"
+		}
+	}
+	return "[" + strings.Join(parts, " ") + "]"
+}
+
+// checkValueLimits refuses values beyond DefaultLimits.MaxTensorElements or DefaultLimits.MaxRank.
+func checkValueLimits(name string, vs ValueShape) error {
+	if len(vs.Shape) > DefaultLimits.MaxRank {
+		return fmt.Errorf("onnxlite: value %q: shape %v: %w", name, vs.Shape,
+			&LimitError{Limit: "MaxRank", Value: int64(len(vs.Shape)), Max: int64(DefaultLimits.MaxRank)})
+	}
+	dims := make([]int64, len(vs.Shape))
+	for i, d := range vs.Shape {
+		dims[i] = int64(d)
+	}
+	if _, err := elementCount(dims, DefaultLimits.MaxTensorElements); err != nil {
+		return fmt.Errorf("onnxlite: value %q: shape %v: %w", name, vs.Shape, err)
+	}
+	return nil
+}
+
+// nodeCtx is one node during inference: its inputs' shapes and constants.
+type nodeCtx struct {
+	n      *Node
+	idx    int
+	opset  int64
+	in     []*ValueShape // nil for an omitted optional input
+	consts []*Tensor     // nil unless the input is constant
+}
+
+// errorf wraps ErrInvalid with the node's name and operator.
+func (c *nodeCtx) errorf(format string, args ...any) error {
+	return fmt.Errorf("onnxlite: node %q (%s): "+format+": %w", append([]any{nodeName(c.n, c.idx), c.n.OpType}, append(args, ErrInvalid)...)...)
+}
+
+// wrap prefixes err with the node's name and operator.
+func (c *nodeCtx) wrap(err error) error {
+	return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(c.n, c.idx), c.n.OpType, err)
+}
+
+// input returns input i, or nil when it is omitted.
+func (c *nodeCtx) input(i int) *ValueShape {
+	if i < len(c.in) {
+		return c.in[i]
+	}
+	return nil
+}
+
+// need returns input i or an error when it is omitted.
+func (c *nodeCtx) need(i int) (*ValueShape, error) {
+	if v := c.input(i); v != nil {
+		return v, nil
+	}
+	return nil, c.errorf("expected input %d, got none (the node has %d inputs)", i, len(c.n.Inputs))
+}
+
+// constInts returns the integer elements of constant input i; ok is false when
+// the input is omitted.
+func (c *nodeCtx) constInts(i int, what string) (vals []int64, ok bool, err error) {
+	if c.input(i) == nil {
+		return nil, false, nil
+	}
+	t := c.consts[i]
+	if t == nil {
+		return nil, true, c.errorf("%s (input %d, %q) must be a constant (an initializer or folded value), got a run-time value",
+			what, i, c.n.Inputs[i])
+	}
+	v, err := t.Int64s()
+	if err != nil {
+		return nil, true, c.errorf("%s (input %d): expected an integer tensor, got %v", what, i, t.DType)
+	}
+	return v, true, nil
+}
+
+func (c *nodeCtx) allConst() bool {
+	for i, v := range c.in {
+		if v != nil && c.consts[i] == nil {
+			return false
+		}
+	}
+	return true
+}
+
+func (s *Static) inferNode(n *Node, idx int, opset int64) error {
+	c := &nodeCtx{n: n, idx: idx, opset: opset,
+		in: make([]*ValueShape, len(n.Inputs)), consts: make([]*Tensor, len(n.Inputs))}
+	for i, name := range n.Inputs {
+		if name == "" {
+			continue
+		}
+		v := s.Values[name]
+		c.in[i] = &v
+		c.consts[i] = s.Consts[name]
+	}
+	var outs []*Tensor
+	var err error
+	switch {
+	case n.OpType == "Shape":
+		outs, err = foldShape(c)
+	case c.allConst() && canFold(c):
+		outs, err = fold(c)
+	case FoldOnly(n.OpType):
+		return fmt.Errorf("onnxlite: node %q (%s): expected constant inputs to fold it, got run-time value(s) %s: %s is not supported at run time: %w",
+			nodeName(n, idx), n.OpType, runtimeInputs(c), n.OpType, ErrUnsupported)
+	}
+	if err != nil {
+		return err
+	}
+	if outs != nil {
+		for i, t := range outs {
+			if i >= len(n.Outputs) || n.Outputs[i] == "" || t == nil {
+				continue
+			}
+			t.Name = n.Outputs[i]
+			vs := ValueShape{DType: t.DType, Shape: t.Shape()}
+			if err := checkValueLimits(t.Name, vs); err != nil {
+				return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(n, idx), n.OpType, err)
+			}
+			s.Values[t.Name] = vs
+			s.Consts[t.Name] = t
+		}
+		return nil
+	}
+	rule := shapeRules[n.OpType]
+	if rule == nil {
+		return c.errorf("no shape rule")
+	}
+	shapes, err := rule(c)
+	if err != nil {
+		return err
+	}
+	for i, o := range n.Outputs {
+		if o == "" {
+			continue
+		}
+		if i >= len(shapes) {
+			return c.errorf("output %d (%q): expected at most %d outputs, got %d", i, o, len(shapes), len(n.Outputs))
+		}
+		if err := checkValueLimits(o, shapes[i]); err != nil {
+			return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(n, idx), n.OpType, err)
+		}
+		s.Values[o] = shapes[i]
+	}
+	s.Nodes = append(s.Nodes, n)
+	return nil
+}
+
+func runtimeInputs(c *nodeCtx) string {
+	var names []string
+	for i, v := range c.in {
+		if v != nil && c.consts[i] == nil {
+			names = append(names, fmt.Sprintf("%q", c.n.Inputs[i]))
+		}
+	}
+	return strings.Join(names, ", ")
+}
+
+func prodInt64(s []int) int64 {
+	p := int64(1)
+	for _, d := range s {
+		p *= int64(d)
+	}
+	return p
+}
+
+func prod(s []int) int {
+	p := 1
+	for _, d := range s {
+		p *= d
+	}
+	return p
+}
