@@ -1,0 +1,231 @@
+package gradattr
+
+import (
+	"context"
+	"fmt"
+	"math"
+)
+
+// Integrated-gradients defaults.
+const (
+	// DefaultTolerance is the relative completeness gap automatic
+	// integrated gradients refines to (0.5%).
+	DefaultTolerance = 0.005
+	// DefaultMaxPoints caps the points of automatic integrated gradients.
+	DefaultMaxPoints = 1024
+)
+
+// autoStart is the point count of the first pass of automatic refinement.
+const autoStart = 4
+
+// IGOptions configures IntegratedGradients. The zero value means: one zero
+// baseline, the trapezoid rule, automatic point count refined until the
+// relative completeness gap is at most 0.005 or 1024 points, batches of 64.
+type IGOptions struct {
+	// Rule is the quadrature rule; the zero value is RuleTrapezoid.
+	Rule Rule
+	// Points fixes the number of integration points per baseline (≥ 2 for
+	// the trapezoid rule, ≥ 1 otherwise); 0 chooses it automatically.
+	Points int
+	// MaxPoints caps automatic refinement; 0 means DefaultMaxPoints.
+	MaxPoints int
+	// Tolerance is the relative completeness gap to meet (and to judge a
+	// fixed point count by); 0 means DefaultTolerance.
+	Tolerance float64
+	// Baselines are the reference points x′; nil means one zero baseline.
+	// With several, the attributions against each are averaged.
+	Baselines []Baseline
+	// BatchSize is the number of points per model call; 0 means
+	// DefaultBatchSize.
+	BatchSize int
+}
+
+// IntegratedGradients attributes output target of m at x along the straight
+// path from each baseline x′ to x (Sundararajan, Taly & Yan 2017, eq. 1):
+//
+//	IG_i(x) = (x_i − x′_i) · ∫₀¹ ∂F(x′ + α(x − x′))/∂x_i dα
+//	        ≈ (x_i − x′_i) · Σ_j w_j ∂F(x′ + α_j(x − x′))/∂x_i
+//
+// with the nodes α_j and weights w_j of opt.Rule (see Rule.Nodes). By the
+// fundamental theorem of calculus for path integrals the exact attributions
+// sum to F(x) − F(x′) (completeness, §3), so the quadrature error shows in
+// Result.Completeness.
+//
+// With Points = 0 the point count is chosen per baseline: starting from 4
+// points (5 for the trapezoid rule) the rule is refined (see Rule for how
+// and what is reused) until
+//
+//	|Σ_i IG_i − (F(x) − F(x′))| ≤ tolerance · max(|F(x) − F(x′)|, ε)
+//
+// (ε = CompletenessFloor) or the next refinement would exceed MaxPoints.
+// Every pass sends its points to the model in batches of BatchSize, in node
+// order. Completeness.OK reports whether the tolerance was met.
+//
+// With several baselines the attributions are the mean of those against
+// each baseline, and completeness is checked against the mean baseline
+// output (1/B) Σ_b F(x′_b), for which the mean attributions are complete.
+// Settings.Points is then the largest per-baseline count.
+func IntegratedGradients(ctx context.Context, m Model, x []float64, target int, opt IGOptions) (*Result, error) {
+	if !opt.Rule.valid() {
+		return nil, fmt.Errorf("%w: unknown quadrature rule %d", ErrOptions, int(opt.Rule))
+	}
+	if opt.Points < 0 || opt.Points > MaxPointsLimit || (opt.Points > 0 && opt.Points < opt.Rule.minPoints()) {
+		return nil, fmt.Errorf("%w: %v rule with %d points, want 0 (automatic) or %d..%d", ErrOptions, opt.Rule, opt.Points, opt.Rule.minPoints(), MaxPointsLimit)
+	}
+	maxPoints := opt.MaxPoints
+	switch {
+	case maxPoints == 0:
+		maxPoints = DefaultMaxPoints
+	case maxPoints < opt.Rule.minPoints() || maxPoints > MaxPointsLimit:
+		return nil, fmt.Errorf("%w: max points %d, want 0 (default %d) or %d..%d", ErrOptions, maxPoints, DefaultMaxPoints, opt.Rule.minPoints(), MaxPointsLimit)
+	}
+	tol, err := tolerance(opt.Tolerance)
+	if err != nil {
+		return nil, err
+	}
+	e, err := newEngine(ctx, m, x, target, opt.BatchSize)
+	if err != nil {
+		return nil, err
+	}
+	specs := opt.Baselines
+	if len(specs) == 0 {
+		specs = []Baseline{{}}
+	}
+	if opt.Points > 0 && len(specs) > MaxEvaluations/(opt.Points*e.size) {
+		return nil, fmt.Errorf("%w: %d baselines × %d points × %d features exceeds %d gradient values", ErrOptions, len(specs), opt.Points, e.size, MaxEvaluations)
+	}
+	bases := make([][]float64, len(specs))
+	for b, spec := range specs {
+		if bases[b], err = spec.Build(x, e.shape); err != nil {
+			return nil, fmt.Errorf("baseline %d: %w", b, err)
+		}
+	}
+
+	s := Settings{Method: MethodIntegratedGradients, Rule: opt.Rule.String(), Tolerance: tol,
+		BatchSize: e.batch, Baselines: describe(specs)}
+	if opt.Points == 0 {
+		s.Auto, s.MaxPoints = true, maxPoints
+	}
+	total := make([]float64, e.size)
+	meanBase := 0.0
+	ig := newIntegrator(e, x)
+	for b, xb := range bases {
+		out, err := e.forwardOne(xb)
+		if err != nil {
+			return nil, err
+		}
+		fb := out[e.target]
+		meanBase += fb
+		var sched *schedule
+		if opt.Points > 0 {
+			sched = startSchedule(opt.Rule, opt.Points)
+		} else {
+			sched = startSchedule(opt.Rule, min(maxPoints, max(autoStart+boolInt(opt.Rule == RuleTrapezoid), opt.Rule.minPoints())))
+		}
+		attr, err := ig.run(xb, sched, func(attr []float64) bool {
+			if opt.Points > 0 || sched.nextPoints() > maxPoints {
+				return true
+			}
+			return completeness(attr, e.outputs[e.target], fb, tol, true).OK
+		})
+		if err != nil {
+			return nil, fmt.Errorf("baseline %d: %w", b, err)
+		}
+		s.Points = max(s.Points, sched.points())
+		for i, a := range attr {
+			total[i] += a
+		}
+	}
+	nb := float64(len(bases))
+	for i := range total {
+		total[i] /= nb
+	}
+	meanBase /= nb
+	r := e.result(total, s)
+	r.BaselineOutput = meanBase
+	r.Completeness = completeness(total, r.Output, meanBase, tol, true)
+	return r, nil
+}
+
+func boolInt(b bool) int {
+	if b {
+		return 1
+	}
+	return 0
+}
+
+// tolerance applies the default and checks the range.
+func tolerance(t float64) (float64, error) {
+	if t == 0 {
+		return DefaultTolerance, nil
+	}
+	if !(t > 0) || math.IsInf(t, 0) {
+		return 0, fmt.Errorf("%w: tolerance %v, want a finite value > 0 (0 means %v)", ErrOptions, t, DefaultTolerance)
+	}
+	return t, nil
+}
+
+// integrator holds the per-feature running sums of one path integral.
+type integrator struct {
+	e             *engine
+	x             []float64
+	sumEnd, sumIn []float64
+	attr, diff    []float64
+	nodes         []node
+	xb            []float64
+}
+
+func newIntegrator(e *engine, x []float64) *integrator {
+	return &integrator{e: e, x: x,
+		sumEnd: make([]float64, e.size), sumIn: make([]float64, e.size),
+		diff: make([]float64, e.size)}
+}
+
+func (g *integrator) fill(j int, dst []float64) {
+	a := g.nodes[j].alpha
+	for i, d := range g.diff {
+		dst[i] = g.xb[i] + a*d
+	}
+}
+
+func (g *integrator) use(j int, _, grad []float64) {
+	n := g.nodes[j]
+	sum := g.sumIn
+	if n.end {
+		sum = g.sumEnd
+	}
+	for i, v := range grad {
+		sum[i] += n.weight * v
+	}
+}
+
+// run integrates from xb to x along sched, refining while done(attr) is
+// false, and returns a fresh attribution slice.
+func (g *integrator) run(xb []float64, sched *schedule, done func(attr []float64) bool) ([]float64, error) {
+	g.xb = xb
+	for i := range g.diff {
+		g.diff[i] = g.x[i] - xb[i]
+	}
+	clear(g.sumEnd)
+	clear(g.sumIn)
+	attr := make([]float64, g.e.size)
+	g.nodes = sched.initial()
+	for {
+		if err := g.e.gradients(len(g.nodes), g.fill, g.use); err != nil {
+			return nil, err
+		}
+		cEnd, cIn := sched.coefficients()
+		for i, d := range g.diff {
+			attr[i] = d * (cEnd*g.sumEnd[i] + cIn*g.sumIn[i])
+		}
+		if done(attr) {
+			return attr, nil
+		}
+		var fresh bool
+		g.nodes, fresh = sched.refineNodes()
+		if fresh {
+			clear(g.sumEnd)
+			clear(g.sumIn)
+		}
+	}
+}
