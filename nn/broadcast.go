@@ -1,0 +1,456 @@
+package nn
+
+import (
+	"fmt"
+	"hash"
+	"hash/fnv"
+	"math"
+
+	"github.com/chewxy/hm"
+	G "gorgonia.org/gorgonia"
+	"gorgonia.org/tensor"
+)
+
+// This file holds the binary elementwise kernels (Add, Sub, Mul, Div, PRelu)
+// with numpy broadcasting, and the value and index helpers that every
+// kernel in elementwise.go, softmax.go and reduce.go shares.
+
+// elemFloat is the element type of every kernel: ONNX float and double.
+type elemFloat interface{ ~float32 | ~float64 }
+
+// elemBinaryKinds lists the binary ops broadcastBinary accepts.
+var elemBinaryKinds = map[string]bool{"Add": true, "Sub": true, "Mul": true, "Div": true, "Pow": true, "PRelu": true}
+
+// broadcastBinary applies Add, Sub, Mul, Div or PRelu (x<0 ? slope*x : x,
+// slope broadcast to x) with numpy broadcasting; gradients reduce over
+// broadcast axes. It also takes Pow with a tensor exponent, y = a^b, whose
+// gradients are ∂y/∂a = b·a^(b-1) and ∂y/∂b = a^b·ln a (0 where a = 0, NaN
+// where a < 0, as ln is); unary covers the common constant exponent.
+//
+// Shapes are aligned on their last axis and every pair of sizes must be
+// equal or contain a 1 (ONNX Broadcasting.md, multidirectional). For PRelu
+// the broadcast is unidirectional: the slope b must broadcast to the shape
+// of x, and the output has the shape of x.
+func broadcastBinary(a, b *G.Node, op string) (out *G.Node, err error) {
+	if a == nil || b == nil {
+		return nil, fmt.Errorf("nn: %s: nil operand", op)
+	}
+	if !elemBinaryKinds[op] {
+		return nil, fmt.Errorf("nn: binary op %q: %w", op, errElemUnknownOp)
+	}
+	dt, err := elemDtype(op, a)
+	if err != nil {
+		return nil, err
+	}
+	if dtb, err := elemDtype(op, b); err != nil {
+		return nil, err
+	} else if dtb != dt {
+		return nil, fmt.Errorf("nn: %s: operands have element types %v and %v, want the same", op, dt, dtb)
+	}
+	as, bs := []int(a.Shape()), []int(b.Shape())
+	os, err := elemBroadcastShape(as, bs)
+	if err != nil {
+		return nil, fmt.Errorf("nn: %s: %w", op, err)
+	}
+	if op == "PRelu" && !elemSameShape(os, as) {
+		return nil, fmt.Errorf("nn: PRelu: slope shape %v does not broadcast to input shape %v", bs, as)
+	}
+	defer elemRecover(op, &err)
+	bop := &elemBinaryOp{kind: op, dt: dt, aShape: as, bShape: bs, outShape: os,
+		aType: a.Type(), bType: b.Type(), outType: elemNodeType(dt, len(os))}
+	return G.ApplyOp(bop, a, b)
+}
+
+// elemBroadcastShape returns the numpy broadcast of two shapes.
+func elemBroadcastShape(a, b []int) ([]int, error) {
+	n := max(len(a), len(b))
+	out := make([]int, n)
+	for i := 1; i <= n; i++ {
+		da, db := 1, 1
+		if i <= len(a) {
+			da = a[len(a)-i]
+		}
+		if i <= len(b) {
+			db = b[len(b)-i]
+		}
+		switch {
+		case da == db, db == 1:
+			out[n-i] = da
+		case da == 1:
+			out[n-i] = db
+		default:
+			return nil, fmt.Errorf("%w: shapes %v and %v differ at axis %d from the end (%d vs %d)", errElemShape, a, b, i, da, db)
+		}
+	}
+	return out, nil
+}
+
+// elemBroadcastStrides returns, for each axis of out, the element stride of
+// a row-major array of shape in (aligned on the last axis), or 0 where in is
+// broadcast along that axis.
+func elemBroadcastStrides(in, out []int) []int {
+	st := make([]int, len(out))
+	s := 1
+	for i := 1; i <= len(out); i++ {
+		if i > len(in) {
+			break
+		}
+		d := in[len(in)-i]
+		if d != 1 || out[len(out)-i] == 1 {
+			st[len(out)-i] = s
+		}
+		s *= d
+	}
+	return st
+}
+
+// elemRows walks shape row by row in row-major order. For every row (all
+// axes but the last) it calls fn with the offset of the row in the output
+// and the matching offsets in two broadcast operands with strides sa and
+// sb. A rank-0 shape is a single row of length 1.
+func elemRows(shape, sa, sb []int, fn func(o, ia, ib int)) {
+	r := len(shape)
+	if r == 0 {
+		fn(0, 0, 0)
+		return
+	}
+	for _, d := range shape {
+		if d == 0 {
+			return
+		}
+	}
+	n := shape[r-1]
+	idx := make([]int, r-1)
+	o, ia, ib := 0, 0, 0
+	for {
+		fn(o, ia, ib)
+		o += n
+		k := r - 2
+		for ; k >= 0; k-- {
+			idx[k]++
+			ia += sa[k]
+			ib += sb[k]
+			if idx[k] < shape[k] {
+				break
+			}
+			ia -= sa[k] * shape[k]
+			ib -= sb[k] * shape[k]
+			idx[k] = 0
+		}
+		if k < 0 {
+			return
+		}
+	}
+}
+
+// elemBinaryFunc returns y = f(a, b) for a binary op.
+func elemBinaryFunc[T elemFloat](kind string) func(a, b T) T {
+	switch kind {
+	case "Add":
+		return func(a, b T) T { return a + b }
+	case "Sub":
+		return func(a, b T) T { return a - b }
+	case "Mul":
+		return func(a, b T) T { return a * b }
+	case "Div":
+		return func(a, b T) T { return a / b }
+	case "Pow":
+		return func(a, b T) T { return T(math.Pow(float64(a), float64(b))) }
+	default: // PRelu
+		return func(x, s T) T {
+			if x < 0 {
+				return s * x
+			}
+			return x
+		}
+	}
+}
+
+// elemBinaryGrad returns g·∂f/∂a (which == 0) or g·∂f/∂b (which == 1).
+func elemBinaryGrad[T elemFloat](kind string, which int) func(a, b, g T) T {
+	switch kind + fmt.Sprint(which) {
+	case "Add0", "Add1", "Sub0":
+		return func(a, b, g T) T { return g }
+	case "Sub1":
+		return func(a, b, g T) T { return -g }
+	case "Mul0":
+		return func(a, b, g T) T { return g * b }
+	case "Mul1":
+		return func(a, b, g T) T { return g * a }
+	case "Div0":
+		return func(a, b, g T) T { return g / b }
+	case "Div1": // ∂(a/b)/∂b = -a/b²
+		return func(a, b, g T) T { return -g * a / (b * b) }
+	case "Pow0":
+		return func(a, b, g T) T {
+			if b == 0 {
+				return 0
+			}
+			return g * b * T(math.Pow(float64(a), float64(b-1)))
+		}
+	case "Pow1":
+		return func(a, b, g T) T {
+			if a == 0 {
+				return 0
+			}
+			return g * T(math.Pow(float64(a), float64(b))*math.Log(float64(a)))
+		}
+	case "PRelu0":
+		return func(x, s, g T) T {
+			if x < 0 {
+				return g * s
+			}
+			return g
+		}
+	default: // PRelu1
+		return func(x, s, g T) T {
+			if x < 0 {
+				return g * x
+			}
+			return 0
+		}
+	}
+}
+
+// elemBinaryOp is the forward op of broadcastBinary.
+type elemBinaryOp struct {
+	kind                     string
+	dt                       tensor.Dtype
+	aShape, bShape, outShape []int
+	aType, bType, outType    hm.Type
+}
+
+func (op *elemBinaryOp) Arity() int        { return 2 }
+func (op *elemBinaryOp) Type() hm.Type     { return hm.NewFnType(op.aType, op.bType, op.outType) }
+func (op *elemBinaryOp) ReturnsPtr() bool  { return op.OverwritesInput() >= 0 }
+func (op *elemBinaryOp) CallsExtern() bool { return false }
+
+// OverwritesInput names an operand that has the output's shape: output
+// element k reads element k of it, so the kernel may write over it.
+func (op *elemBinaryOp) OverwritesInput() int {
+	switch {
+	case elemSameShape(op.aShape, op.outShape):
+		return 0
+	case elemSameShape(op.bShape, op.outShape):
+		return 1
+	}
+	return -1
+}
+func (op *elemBinaryOp) String() string { return op.kind }
+func (op *elemBinaryOp) WriteHash(h hash.Hash) {
+	fmt.Fprintf(h, "elem.%s%v%v%v", op.kind, op.dt, op.aShape, op.bShape)
+}
+func (op *elemBinaryOp) Hashcode() uint32 { return elemHash(op) }
+func (op *elemBinaryOp) InferShape(...G.DimSizer) (tensor.Shape, error) {
+	return tensor.Shape(op.outShape).Clone(), nil
+}
+func (op *elemBinaryOp) DiffWRT(int) []bool { return []bool{true, true} }
+
+func (op *elemBinaryOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error) {
+	if len(inputs) != 2 {
+		return nil, fmt.Errorf("nn: %s gradient: got %d inputs, want 2", op.kind, len(inputs))
+	}
+	out := make(G.Nodes, 2)
+	for w := 0; w < 2; w++ {
+		d := &elemBinaryDiffOp{elemBinaryOp: op, which: w}
+		n, err := G.ApplyOp(d, inputs[0], inputs[1], grad)
+		if err != nil {
+			return nil, fmt.Errorf("nn: %s gradient: %w", op.kind, err)
+		}
+		out[w] = n
+	}
+	return out, nil
+}
+
+func (op *elemBinaryOp) Do(vs ...G.Value) (G.Value, error) { return op.UsePreallocDo(nil, vs...) }
+
+func (op *elemBinaryOp) UsePreallocDo(p G.Value, vs ...G.Value) (G.Value, error) {
+	if len(vs) != 2 {
+		return nil, fmt.Errorf("nn: %s: got %d inputs, want 2", op.kind, len(vs))
+	}
+	if op.dt == tensor.Float32 {
+		return elemBinaryRun[float32](op, p, vs)
+	}
+	return elemBinaryRun[float64](op, p, vs)
+}
+
+func elemBinaryRun[T elemFloat](op *elemBinaryOp, p G.Value, vs []G.Value) (G.Value, error) {
+	a, err := elemData[T](op.kind, vs[0], op.aShape)
+	if err != nil {
+		return nil, err
+	}
+	b, err := elemData[T](op.kind, vs[1], op.bShape)
+	if err != nil {
+		return nil, err
+	}
+	// Output element k reads element k of an operand of the output's shape,
+	// so y may be such an operand, never a broadcast one.
+	v, y := elemAlloc[T](p, op.dt, op.outShape)
+	f := elemBinaryFunc[T](op.kind)
+	if len(a) == len(y) && len(b) == len(y) {
+		for i := range y {
+			y[i] = f(a[i], b[i])
+		}
+		return elemWrap(v, y), nil
+	}
+	if (elemAliases(y, a) && len(a) != len(y)) || (elemAliases(y, b) && len(b) != len(y)) {
+		v, y = elemAlloc[T](nil, op.dt, op.outShape)
+	}
+	sa := elemBroadcastStrides(op.aShape, op.outShape)
+	sb := elemBroadcastStrides(op.bShape, op.outShape)
+	n, la, lb := 1, 0, 0
+	if r := len(op.outShape); r > 0 {
+		n, la, lb = op.outShape[r-1], sa[r-1], sb[r-1]
+	}
+	elemRows(op.outShape, sa, sb, func(o, ia, ib int) {
+		row := y[o : o+n]
+		for j := range row {
+			row[j] = f(a[ia+j*la], b[ib+j*lb])
+		}
+	})
+	return elemWrap(v, y), nil
+}
+
+// elemBinaryDiffOp computes the gradient of a broadcast binary op with
+// respect to input which, summed over the axes along which that input was
+// broadcast: inputs (a, b, g), output shaped like input which.
+type elemBinaryDiffOp struct {
+	*elemBinaryOp
+	which int
+}
+
+func (op *elemBinaryDiffOp) Arity() int { return 3 }
+
+// OverwritesInput is the incoming gradient when input which was not
+// broadcast: then each element of the result reads only its own element of g.
+func (op *elemBinaryDiffOp) OverwritesInput() int {
+	if elemSameShape(op.wrtShape(), op.outShape) {
+		return 2
+	}
+	return -1
+}
+func (op *elemBinaryDiffOp) ReturnsPtr() bool { return op.OverwritesInput() >= 0 }
+func (op *elemBinaryDiffOp) wrtShape() []int {
+	if op.which == 1 {
+		return op.bShape
+	}
+	return op.aShape
+}
+func (op *elemBinaryDiffOp) Type() hm.Type {
+	t := op.aType
+	if op.which == 1 {
+		t = op.bType
+	}
+	return hm.NewFnType(op.aType, op.bType, op.outType, t)
+}
+func (op *elemBinaryDiffOp) String() string { return fmt.Sprintf("∂%s/∂x%d", op.kind, op.which) }
+func (op *elemBinaryDiffOp) WriteHash(h hash.Hash) {
+	fmt.Fprintf(h, "elem.d%s.%d%v%v%v", op.kind, op.which, op.dt, op.aShape, op.bShape)
+}
+func (op *elemBinaryDiffOp) Hashcode() uint32 { return elemHash(op) }
+func (op *elemBinaryDiffOp) InferShape(...G.DimSizer) (tensor.Shape, error) {
+	if op.which == 1 {
+		return tensor.Shape(op.bShape).Clone(), nil
+	}
+	return tensor.Shape(op.aShape).Clone(), nil
+}
+func (op *elemBinaryDiffOp) Do(vs ...G.Value) (G.Value, error) { return op.UsePreallocDo(nil, vs...) }
+
+func (op *elemBinaryDiffOp) UsePreallocDo(p G.Value, vs ...G.Value) (G.Value, error) {
+	if len(vs) != 3 {
+		return nil, fmt.Errorf("nn: %s: got %d inputs, want 3", op, len(vs))
+	}
+	if op.dt == tensor.Float32 {
+		return elemBinaryDiffRun[float32](op, p, vs)
+	}
+	return elemBinaryDiffRun[float64](op, p, vs)
+}
+
+func elemBinaryDiffRun[T elemFloat](op *elemBinaryDiffOp, p G.Value, vs []G.Value) (G.Value, error) {
+	a, err := elemData[T](op.kind, vs[0], op.aShape)
+	if err != nil {
+		return nil, err
+	}
+	b, err := elemData[T](op.kind, vs[1], op.bShape)
+	if err != nil {
+		return nil, err
+	}
+	g, err := elemData[T](op.kind, vs[2], op.outShape)
+	if err != nil {
+		return nil, err
+	}
+	shape := op.wrtShape()
+	df := elemBinaryGrad[T](op.kind, op.which)
+	v, d := elemAlloc[T](p, op.dt, shape)
+	if len(a) == len(g) && len(b) == len(g) {
+		for i := range d {
+			d[i] = df(a[i], b[i], g[i])
+		}
+		return elemWrap(v, d), nil
+	}
+	sa := elemBroadcastStrides(op.aShape, op.outShape)
+	sb := elemBroadcastStrides(op.bShape, op.outShape)
+	n, la, lb := 1, 0, 0
+	if r := len(op.outShape); r > 0 {
+		n, la, lb = op.outShape[r-1], sa[r-1], sb[r-1]
+	}
+	if len(d) == len(g) {
+		// Input which was not broadcast: one term per element, and d may be g.
+		if (elemAliases(d, a) && len(a) != len(d)) || (elemAliases(d, b) && len(b) != len(d)) {
+			v, d = elemAlloc[T](nil, op.dt, shape)
+		}
+		elemRows(op.outShape, sa, sb, func(o, ia, ib int) {
+			for j := range n {
+				d[o+j] = df(a[ia+j*la], b[ib+j*lb], g[o+j])
+			}
+		})
+		return elemWrap(v, d), nil
+	}
+	// Summing over broadcast axes needs a buffer that no input shares.
+	if elemAliases(d, a) || elemAliases(d, b) || elemAliases(d, g) {
+		v, d = elemAlloc[T](nil, op.dt, shape)
+	}
+	clear(d)
+	elemRows(op.outShape, sa, sb, func(o, ia, ib int) {
+		row := g[o : o+n]
+		if op.which == 0 {
+			for j, gj := range row {
+				d[ia+j*la] += df(a[ia+j*la], b[ib+j*lb], gj)
+			}
+			return
+		}
+		for j, gj := range row {
+			d[ib+j*lb] += df(a[ia+j*la], b[ib+j*lb], gj)
+		}
+	})
+	return elemWrap(v, d), nil
+}
+
+// elemHash hashes an op by its WriteHash text.
+func elemHash(op interface{ WriteHash(hash.Hash) }) uint32 {
+	h := fnv.New32a()
+	op.WriteHash(h)
+	return h.Sum32()
+}
+
+// elemSameShape reports whether two shapes are equal.
+func elemSameShape(a, b []int) bool {
+	if len(a) != len(b) {
+		return false
+	}
+	for i := range a {
+		if a[i] != b[i] {
+			return false
+		}
+	}
+	return true
+}
+
+// elemShapeSize returns the number of elements of a shape (1 for rank 0).
+func elemShapeSize(s []int) int {
+	n := 1
+	for _, d := range s {
+		n *= d
+	}
+	return n
+}

@@ -1,0 +1,555 @@
+package nn
+
+import (
+	"fmt"
+	"hash"
+	"hash/fnv"
+	"strings"
+
+	"github.com/chewxy/hm"
+	G "gorgonia.org/gorgonia"
+	"gorgonia.org/tensor"
+)
+
+// convSpec holds the attributes of an ONNX Conv node. Pads are in ONNX
+// order [x1_begin, x2_begin, ..., x1_end, x2_end]; Strides and Dilations
+// have one entry per spatial axis; Group ≥ 1 splits the input channels into
+// Group independent convolutions (depthwise when Group equals the number of
+// input channels). Nil Pads mean no padding, nil Strides and Dilations mean
+// ones, and a zero Group means 1.
+type convSpec struct {
+	Pads, Strides, Dilations []int
+	Group                    int
+}
+
+// conv applies an ONNX Conv to x (N, C, spatial...) with weights w
+// (M, C/group, k...) and optional bias b (M) or nil, for one (NCW) or two
+// (NCHW) spatial axes:
+//
+//	y[n, m, o] = b[m] + Σ_{c, k} w[m, c, k] · x[n, g·C/group + c, o·s − p_begin + k·d]
+//
+// where g = m / (M/group) and positions in the padding read 0. The output
+// spatial size per axis is ⌊(in + p_begin + p_end − ((k−1)·d + 1)) / s⌋ + 1
+// (ONNX Conv operator, opset 11). The forward pass lowers each group to one
+// matrix product by im2col; gradients with respect to x (col2im of Wᵀ·dy),
+// w (dy·colᵀ) and b (Σ dy) are exact.
+func conv(x, w, b *G.Node, s convSpec) (y *G.Node, err error) {
+	defer convRecover("Conv", &err)
+	if x == nil || w == nil {
+		return nil, fmt.Errorf("nn: Conv: %w: input and weights are required", ErrConvShape)
+	}
+	rank := x.Dims() - 2
+	if rank != 1 && rank != 2 {
+		return nil, fmt.Errorf("nn: Conv: %w: expected input of rank 3 (NCW) or 4 (NCHW), got shape %v", ErrConvShape, x.Shape())
+	}
+	if w.Dims() != x.Dims() {
+		return nil, fmt.Errorf("nn: Conv: %w: expected weights of rank %d, got shape %v", ErrConvShape, x.Dims(), w.Shape())
+	}
+	if err := convCheckDtype("Conv", x, w, b); err != nil {
+		return nil, err
+	}
+	op := &convOp{rank: rank, bias: b != nil}
+	if op.pads, op.strides, op.dils, err = convNormalize(rank, s.Pads, s.Strides, s.Dilations); err != nil {
+		return nil, fmt.Errorf("nn: Conv: %w", err)
+	}
+	op.group = s.Group
+	if op.group == 0 {
+		op.group = 1
+	}
+	if op.group < 0 {
+		return nil, fmt.Errorf("nn: Conv: %w: expected group ≥ 1, got %d", ErrConvShape, s.Group)
+	}
+	op.constX, op.constW = convIsConst(x), convIsConst(w)
+	children := G.Nodes{x, w}
+	if b != nil {
+		op.constB = convIsConst(b)
+		children = append(children, b)
+	}
+	shapes := make([]tensor.Shape, len(children))
+	for i, c := range children {
+		shapes[i] = c.Shape()
+	}
+	if _, _, err := op.geometry(shapes...); err != nil {
+		return nil, err
+	}
+	return G.ApplyOp(op, children...)
+}
+
+// convCheckDtype checks that all nodes share a float32 or float64 dtype.
+func convCheckDtype(what string, nodes ...*G.Node) error {
+	var dt tensor.Dtype
+	for _, n := range nodes {
+		if n == nil {
+			continue
+		}
+		d := n.Dtype()
+		if d != tensor.Float32 && d != tensor.Float64 {
+			return fmt.Errorf("nn: %s: %w: expected float32 or float64, got %v", what, ErrConvShape, d)
+		}
+		if dt != (tensor.Dtype{}) && d != dt {
+			return fmt.Errorf("nn: %s: %w: mixed dtypes %v and %v", what, ErrConvShape, dt, d)
+		}
+		dt = d
+	}
+	return nil
+}
+
+// convIsConst reports whether n is a graph constant, whose gradient is
+// never needed: the ops below then skip building that gradient.
+func convIsConst(n *G.Node) bool {
+	if n == nil || n.Op() == nil {
+		return false
+	}
+	// gorgonia's constant ops (unexported) are the only ops that carry
+	// their value and print as "const ...".
+	_, ok := n.Op().(interface{ Value() G.Value })
+	return ok && strings.HasPrefix(n.Op().String(), "const ")
+}
+
+// convNormalize fills in the defaults of pads, strides and dilations for
+// rank spatial axes and checks them.
+func convNormalize(rank int, pads, strides, dils []int) (p, s, d []int, err error) {
+	p = make([]int, 2*rank)
+	if pads != nil {
+		if len(pads) != 2*rank {
+			return nil, nil, nil, fmt.Errorf("%w: expected %d pads, got %v", ErrConvShape, 2*rank, pads)
+		}
+		for i, v := range pads {
+			if v < 0 {
+				return nil, nil, nil, fmt.Errorf("%w: expected non-negative pads, got %v", ErrConvShape, pads)
+			}
+			p[i] = v
+		}
+	}
+	ones := func(in []int, name string) ([]int, error) {
+		out := make([]int, rank)
+		for i := range out {
+			out[i] = 1
+		}
+		if in == nil {
+			return out, nil
+		}
+		if len(in) != rank {
+			return nil, fmt.Errorf("%w: expected %d %s, got %v", ErrConvShape, rank, name, in)
+		}
+		for i, v := range in {
+			if v < 1 {
+				return nil, fmt.Errorf("%w: expected %s ≥ 1, got %v", ErrConvShape, name, in)
+			}
+			out[i] = v
+		}
+		return out, nil
+	}
+	if s, err = ones(strides, "strides"); err != nil {
+		return nil, nil, nil, err
+	}
+	if d, err = ones(dils, "dilations"); err != nil {
+		return nil, nil, nil, err
+	}
+	return p, s, d, nil
+}
+
+// resolvePads turns an ONNX auto_pad attribute into explicit pads in ONNX
+// order [x1_begin, ..., x1_end, ...] for spatial input sizes in. NOTSET (or
+// "") returns pads (zeros when nil); VALID returns zeros; SAME_UPPER and
+// SAME_LOWER pad so that out = ⌈in / stride⌉, with a total pad per axis of
+// max(0, (out−1)·stride + (k−1)·d + 1 − in), split evenly and the odd
+// element at the end (SAME_UPPER) or the beginning (SAME_LOWER) (ONNX Conv
+// and pooling operators, auto_pad attribute).
+func resolvePads(autoPad string, in, kernel, strides, dilations, pads []int) ([]int, error) {
+	rank := len(in)
+	if len(kernel) != rank {
+		return nil, fmt.Errorf("nn: auto_pad: %w: expected %d kernel sizes, got %v", ErrConvShape, rank, kernel)
+	}
+	_, s, d, err := convNormalize(rank, nil, strides, dilations)
+	if err != nil {
+		return nil, fmt.Errorf("nn: auto_pad: %w", err)
+	}
+	out := make([]int, 2*rank)
+	switch autoPad {
+	case "", "NOTSET":
+		if pads == nil {
+			return out, nil
+		}
+		if len(pads) != 2*rank {
+			return nil, fmt.Errorf("nn: auto_pad: %w: expected %d pads, got %v", ErrConvShape, 2*rank, pads)
+		}
+		copy(out, pads)
+		return out, nil
+	case "VALID":
+		return out, nil
+	case "SAME_UPPER", "SAME_LOWER":
+		for i := 0; i < rank; i++ {
+			if kernel[i] < 1 || in[i] < 1 {
+				return nil, fmt.Errorf("nn: auto_pad: %w: expected positive sizes, got input %v kernel %v", ErrConvShape, in, kernel)
+			}
+			o := (in[i] + s[i] - 1) / s[i]
+			total := (o-1)*s[i] + (kernel[i]-1)*d[i] + 1 - in[i]
+			if total < 0 {
+				total = 0
+			}
+			small := total / 2
+			if autoPad == "SAME_UPPER" {
+				out[i], out[i+rank] = small, total-small
+			} else {
+				out[i], out[i+rank] = total-small, small
+			}
+		}
+		return out, nil
+	}
+	return nil, fmt.Errorf("nn: auto_pad: %w: expected NOTSET, SAME_UPPER, SAME_LOWER or VALID, got %q", ErrConvShape, autoPad)
+}
+
+// convOp is the forward Conv op: inputs x, w and (when bias) b.
+type convOp struct {
+	rank                   int
+	pads, strides, dils    []int
+	group                  int
+	bias                   bool
+	constX, constW, constB bool
+}
+
+// geometry checks the input shapes and returns the output shape and the
+// per-group 2-D geometry.
+func (op *convOp) geometry(shapes ...tensor.Shape) (tensor.Shape, convGeom, error) {
+	xs, ws := shapes[0], shapes[1]
+	r := op.rank
+	if len(xs) != r+2 || len(ws) != r+2 {
+		return nil, convGeom{}, fmt.Errorf("nn: Conv: %w: expected input and weights of rank %d, got %v and %v", ErrConvShape, r+2, xs, ws)
+	}
+	n, c, m := xs[0], xs[1], ws[0]
+	if c%op.group != 0 || m%op.group != 0 || ws[1]*op.group != c {
+		return nil, convGeom{}, fmt.Errorf("nn: Conv: %w: with group %d expected input channels %d = weights axis 1 (%d) × group and filters %d divisible by group",
+			ErrConvShape, op.group, c, ws[1], m)
+	}
+	if op.bias {
+		if len(shapes) != 3 || len(shapes[2]) != 1 || shapes[2][0] != m {
+			var got tensor.Shape
+			if len(shapes) == 3 {
+				got = shapes[2]
+			}
+			return nil, convGeom{}, fmt.Errorf("nn: Conv: %w: expected bias of shape (%d), got %v", ErrConvShape, m, got)
+		}
+	}
+	out := make([]int, r)
+	for i := 0; i < r; i++ {
+		in, k := xs[2+i], ws[2+i]
+		span := (k-1)*op.dils[i] + 1
+		num := in + op.pads[i] + op.pads[i+r] - span
+		if k < 1 || num < 0 {
+			return nil, convGeom{}, fmt.Errorf("nn: Conv: %w: kernel %v (dilations %v) does not fit padded input %v (pads %v)",
+				ErrConvShape, []int(ws[2:]), op.dils, []int(xs[2:]), op.pads)
+		}
+		out[i] = num/op.strides[i] + 1
+	}
+	total := n * m
+	for _, o := range out {
+		if total > convMaxElems/o {
+			return nil, convGeom{}, fmt.Errorf("nn: Conv: %w: output (%d, %d, %v) exceeds %d elements", ErrConvTooLarge, n, m, out, convMaxElems)
+		}
+		total *= o
+	}
+	g := convGeomOf(r, xs[2:], ws[2:], op.pads, op.strides, op.dils, out)
+	if k := ws[1] * g.kh * g.kw; k > convMaxElems/(g.oh*g.ow) {
+		return nil, convGeom{}, fmt.Errorf("nn: Conv: %w: im2col buffer of %d×%d exceeds %d elements", ErrConvTooLarge, k, g.oh*g.ow, convMaxElems)
+	}
+	return append(tensor.Shape{n, m}, out...), g, nil
+}
+
+func (op *convOp) Arity() int {
+	if op.bias {
+		return 3
+	}
+	return 2
+}
+
+func (op *convOp) Type() hm.Type {
+	a := hm.TypeVariable('a')
+	t := &G.TensorType{Dims: op.rank + 2, Of: a}
+	if op.bias {
+		return hm.NewFnType(t, t, &G.TensorType{Dims: 1, Of: a}, t)
+	}
+	return hm.NewFnType(t, t, t)
+}
+
+func (op *convOp) InferShape(ds ...G.DimSizer) (tensor.Shape, error) {
+	shapes, err := convShapes(op.Arity(), ds)
+	if err != nil {
+		return nil, err
+	}
+	s, _, err := op.geometry(shapes...)
+	return s, err
+}
+
+// convShapes converts the DimSizers gorgonia passes to InferShape.
+func convShapes(arity int, ds []G.DimSizer) ([]tensor.Shape, error) {
+	if len(ds) != arity {
+		return nil, fmt.Errorf("%w: expected %d inputs, got %d", ErrConvShape, arity, len(ds))
+	}
+	return G.DimSizersToShapes(ds)
+}
+
+func (op *convOp) Do(vals ...G.Value) (ret G.Value, err error) {
+	defer convRecover("Conv", &err)
+	if len(vals) != op.Arity() {
+		return nil, fmt.Errorf("nn: Conv: expected %d inputs, got %d", op.Arity(), len(vals))
+	}
+	ts := make([]*tensor.Dense, len(vals))
+	shapes := make([]tensor.Shape, len(vals))
+	for i, v := range vals {
+		if ts[i], err = convDense(v, "Conv"); err != nil {
+			return nil, err
+		}
+		shapes[i] = ts[i].Shape()
+	}
+	oshp, g, err := op.geometry(shapes...)
+	if err != nil {
+		return nil, err
+	}
+	out, err := convNewDense(ts[0].Dtype(), oshp)
+	if err != nil {
+		return nil, fmt.Errorf("nn: Conv: %w", err)
+	}
+	switch x := ts[0].Data().(type) {
+	case []float64:
+		var b []float64
+		if op.bias {
+			b = ts[2].Data().([]float64)
+		}
+		convForward(&g, shapes[0][0], shapes[0][1], shapes[1][0], op.group, x, ts[1].Data().([]float64), b, out.Data().([]float64))
+	case []float32:
+		var b []float32
+		if op.bias {
+			b = ts[2].Data().([]float32)
+		}
+		convForward(&g, shapes[0][0], shapes[0][1], shapes[1][0], op.group, x, ts[1].Data().([]float32), b, out.Data().([]float32))
+	}
+	return out, nil
+}
+
+// convDirect reports whether the im2col matrix of g equals the input itself
+// (1×1 kernel, unit stride, no padding), so the copy can be skipped.
+func convDirect(g *convGeom) bool {
+	return g.kh == 1 && g.kw == 1 && g.sh == 1 && g.sw == 1 && g.pt == 0 && g.pl == 0 && g.pb == 0 && g.pr == 0
+}
+
+// convForward computes y = conv(x, w) + b for n images of c channels into m
+// output channels, group by group: Y_g = W_g · im2col(X_g).
+func convForward[T convFloat](g *convGeom, n, c, m, group int, x, w, b, y []T) {
+	cg, mg := c/group, m/group
+	hw, p := g.h*g.w, g.oh*g.ow
+	k := cg * g.kh * g.kw
+	direct := convDirect(g)
+	var buf *[]T
+	if !direct {
+		buf = convGetBuf[T](k * p)
+		defer convPutBuf(buf)
+	}
+	for ni := 0; ni < n; ni++ {
+		for gi := 0; gi < group; gi++ {
+			xs := x[(ni*c+gi*cg)*hw : (ni*c+(gi+1)*cg)*hw]
+			col := xs
+			if !direct {
+				col = *buf
+				convIm2col(g, cg, xs, col)
+			}
+			ys := y[(ni*m+gi*mg)*p : (ni*m+(gi+1)*mg)*p]
+			convGemm(false, false, mg, p, k, w[gi*mg*k:(gi+1)*mg*k], k, col, p, 0, ys, p)
+			if b != nil {
+				for j := 0; j < mg; j++ {
+					bv := b[gi*mg+j]
+					row := ys[j*p : (j+1)*p]
+					for i := range row {
+						row[i] += bv
+					}
+				}
+			}
+		}
+	}
+}
+
+func (op *convOp) ReturnsPtr() bool      { return false }
+func (op *convOp) CallsExtern() bool     { return false }
+func (op *convOp) OverwritesInput() int  { return -1 }
+func (op *convOp) WriteHash(h hash.Hash) { fmt.Fprint(h, op.String()) }
+func (op *convOp) Hashcode() uint32 {
+	h := fnv.New32a()
+	op.WriteHash(h)
+	return h.Sum32()
+}
+func (op *convOp) String() string {
+	return fmt.Sprintf("Conv%dD{pads:%v strides:%v dilations:%v group:%d bias:%t const:%t%t%t}",
+		op.rank, op.pads, op.strides, op.dils, op.group, op.bias, op.constX, op.constW, op.constB)
+}
+
+func (op *convOp) DiffWRT(inputs int) []bool {
+	d := []bool{!op.constX, !op.constW, !op.constB}
+	return d[:inputs]
+}
+
+func (op *convOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error) {
+	if len(inputs) != op.Arity() {
+		return nil, fmt.Errorf("nn: Conv: expected %d inputs, got %d", op.Arity(), len(inputs))
+	}
+	diff := op.DiffWRT(len(inputs))
+	ret := make(G.Nodes, len(inputs))
+	for i := range inputs {
+		if !diff[i] {
+			continue
+		}
+		back := &convBackOp{convOp: *op, wrt: i}
+		n, err := G.ApplyOp(back, inputs[0], inputs[1], grad)
+		if err != nil {
+			return nil, fmt.Errorf("nn: Conv gradient: %w", err)
+		}
+		ret[i] = n
+	}
+	return ret, nil
+}
+
+// convBackOp computes one gradient of Conv from (x, w, dy): with respect to
+// x (wrt 0), w (wrt 1) or b (wrt 2).
+type convBackOp struct {
+	convOp
+	wrt int
+}
+
+func (op *convBackOp) Arity() int { return 3 }
+
+func (op *convBackOp) Type() hm.Type {
+	a := hm.TypeVariable('a')
+	t := &G.TensorType{Dims: op.rank + 2, Of: a}
+	if op.wrt == 2 {
+		return hm.NewFnType(t, t, t, &G.TensorType{Dims: 1, Of: a})
+	}
+	return hm.NewFnType(t, t, t, t)
+}
+
+func (op *convBackOp) InferShape(ds ...G.DimSizer) (tensor.Shape, error) {
+	shapes, err := convShapes(3, ds)
+	if err != nil {
+		return nil, err
+	}
+	switch op.wrt {
+	case 0:
+		return shapes[0].Clone(), nil
+	case 1:
+		return shapes[1].Clone(), nil
+	}
+	return tensor.Shape{shapes[1][0]}, nil
+}
+
+func (op *convBackOp) Do(vals ...G.Value) (ret G.Value, err error) {
+	defer convRecover("Conv gradient", &err)
+	if len(vals) != 3 {
+		return nil, fmt.Errorf("nn: Conv gradient: expected 3 inputs, got %d", len(vals))
+	}
+	var ts [3]*tensor.Dense
+	for i, v := range vals {
+		if ts[i], err = convDense(v, "Conv gradient"); err != nil {
+			return nil, err
+		}
+	}
+	fwd := op.convOp
+	fwd.bias = false
+	oshp, g, err := fwd.geometry(ts[0].Shape(), ts[1].Shape())
+	if err != nil {
+		return nil, err
+	}
+	if !ts[2].Shape().Eq(oshp) {
+		return nil, fmt.Errorf("nn: Conv gradient: %w: expected output gradient of shape %v, got %v", ErrConvShape, oshp, ts[2].Shape())
+	}
+	var rshp tensor.Shape
+	switch op.wrt {
+	case 0:
+		rshp = ts[0].Shape()
+	case 1:
+		rshp = ts[1].Shape()
+	default:
+		rshp = tensor.Shape{oshp[1]}
+	}
+	out, err := convNewDense(ts[0].Dtype(), rshp)
+	if err != nil {
+		return nil, fmt.Errorf("nn: Conv gradient: %w", err)
+	}
+	n, c, m := oshp[0], ts[0].Shape()[1], oshp[1]
+	switch x := ts[0].Data().(type) {
+	case []float64:
+		convBackward(&g, op.wrt, n, c, m, op.group, x, ts[1].Data().([]float64), ts[2].Data().([]float64), out.Data().([]float64))
+	case []float32:
+		convBackward(&g, op.wrt, n, c, m, op.group, x, ts[1].Data().([]float32), ts[2].Data().([]float32), out.Data().([]float32))
+	}
+	return out, nil
+}
+
+// convBackward writes into the zeroed r the gradient of Σ dy·conv(x, w)
+// with respect to x (wrt 0: col2im(W_gᵀ·dY_g)), w (wrt 1: Σ_n dY_g·im2col(X_g)ᵀ)
+// or b (wrt 2: Σ_{n, spatial} dY).
+func convBackward[T convFloat](g *convGeom, wrt, n, c, m, group int, x, w, dy, r []T) {
+	cg, mg := c/group, m/group
+	hw, p := g.h*g.w, g.oh*g.ow
+	k := cg * g.kh * g.kw
+	if wrt == 2 {
+		for ni := 0; ni < n; ni++ {
+			for mi := 0; mi < m; mi++ {
+				var s T
+				for _, v := range dy[(ni*m+mi)*p : (ni*m+mi+1)*p] {
+					s += v
+				}
+				r[mi] += s
+			}
+		}
+		return
+	}
+	direct := convDirect(g)
+	var buf *[]T
+	if !direct {
+		buf = convGetBuf[T](k * p)
+		defer convPutBuf(buf)
+	}
+	for ni := 0; ni < n; ni++ {
+		for gi := 0; gi < group; gi++ {
+			dys := dy[(ni*m+gi*mg)*p : (ni*m+(gi+1)*mg)*p]
+			wg := w[gi*mg*k : (gi+1)*mg*k]
+			if wrt == 0 {
+				dxs := r[(ni*c+gi*cg)*hw : (ni*c+(gi+1)*cg)*hw]
+				if direct {
+					convGemm(true, false, k, p, mg, wg, k, dys, p, 0, dxs, p)
+					continue
+				}
+				col := *buf
+				convGemm(true, false, k, p, mg, wg, k, dys, p, 0, col, p)
+				convCol2im(g, cg, col, dxs)
+				continue
+			}
+			xs := x[(ni*c+gi*cg)*hw : (ni*c+(gi+1)*cg)*hw]
+			col := xs
+			if !direct {
+				col = *buf
+				convIm2col(g, cg, xs, col)
+			}
+			convGemm(false, true, mg, k, p, dys, p, col, p, 1, r[gi*mg*k:(gi+1)*mg*k], k)
+		}
+	}
+}
+
+func (op *convBackOp) WriteHash(h hash.Hash) { fmt.Fprint(h, op.String()) }
+func (op *convBackOp) Hashcode() uint32 {
+	h := fnv.New32a()
+	op.WriteHash(h)
+	return h.Sum32()
+}
+func (op *convBackOp) String() string {
+	return fmt.Sprintf("%sGrad%d", op.convOp.String(), op.wrt)
+}
+
+// DiffWRT reports the gradient ops as not differentiable: apportion needs
+// first derivatives only.
+func (op *convBackOp) DiffWRT(inputs int) []bool { return make([]bool, inputs) }
+
+// SymDiff refuses second derivatives with ErrConvSecondOrder.
+func (op *convBackOp) SymDiff(G.Nodes, *G.Node, *G.Node) (G.Nodes, error) {
+	return nil, fmt.Errorf("nn: %v: %w", op, ErrConvSecondOrder)
+}
+
+var _ G.SDOp = (*convOp)(nil)

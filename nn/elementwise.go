@@ -1,0 +1,550 @@
+package nn
+
+import (
+	"errors"
+	"fmt"
+	"hash"
+	"math"
+	"unsafe"
+
+	"github.com/chewxy/hm"
+	G "gorgonia.org/gorgonia"
+	"gorgonia.org/tensor"
+)
+
+// The kernels in this file, broadcast.go, softmax.go and reduce.go are
+// gorgonia ops with exact symbolic gradients (gorgonia's Op and SDOp).
+//
+// Buffers: an op whose output has the shape of one of its inputs and whose
+// kernel reads element k of that input before it writes element k says so
+// with ReturnsPtr true and OverwritesInput ≥ 0, as gorgonia's own
+// elementwise ops do. The compiler then lets the op write over that input's
+// register when nothing reads the input later (never over a graph input),
+// and the tape machine hands that buffer to UsePreallocDo. Ops that change
+// the shape (reductions, broadcast gradients) allocate their output.
+
+var (
+	errElemUnknownOp = errors.New("unknown elementwise op")
+	errElemShape     = errors.New("incompatible shapes")
+	errElemDtype     = errors.New("unsupported element type")
+)
+
+// elemUnaryFn is one entry of the unary table: y = f(x) and dy/dx from
+// (x, y), with the op's two parameters.
+type elemUnaryFn struct {
+	f  func(x, alpha, beta float64) float64
+	df func(x, y, alpha, beta float64) float64
+}
+
+// elemSeluAlpha and elemSeluGamma are the ONNX Selu defaults (operator
+// schema Selu-6), the constants of Klambauer et al. 2017, eq. 14.
+const (
+	elemSeluAlpha = 1.67326319217681884765625
+	elemSeluGamma = 1.05070102214813232421875
+)
+
+// elemUnaryTable holds the formulas of every unary op; alpha and beta are the
+// ONNX attributes named in the comments (ONNX operator schemas, opset 13-18).
+var elemUnaryTable = map[string]elemUnaryFn{
+	// Relu: y = max(0, x).
+	"Relu": {
+		f: func(x, _, _ float64) float64 { return math.Max(0, x) },
+		df: func(x, _, _, _ float64) float64 {
+			if x > 0 {
+				return 1
+			}
+			return 0
+		},
+	},
+	// LeakyRelu(alpha): y = alpha·x for x < 0, x otherwise.
+	"LeakyRelu": {
+		f: func(x, a, _ float64) float64 {
+			if x < 0 {
+				return a * x
+			}
+			return x
+		},
+		df: func(x, _, a, _ float64) float64 {
+			if x < 0 {
+				return a
+			}
+			return 1
+		},
+	},
+	// Elu(alpha): y = alpha·(eˣ - 1) for x < 0, x otherwise (Clevert et al. 2016, eq. 1);
+	// dy/dx = y + alpha for x < 0.
+	"Elu": {
+		f: func(x, a, _ float64) float64 {
+			if x < 0 {
+				return a * math.Expm1(x)
+			}
+			return x
+		},
+		df: func(x, y, a, _ float64) float64 {
+			if x < 0 {
+				return y + a
+			}
+			return 1
+		},
+	},
+	// Selu(alpha, gamma=beta): y = gamma·(alpha·eˣ - alpha) for x ≤ 0, gamma·x
+	// otherwise (Klambauer et al. 2017, eq. 2).
+	"Selu": {
+		f: func(x, a, g float64) float64 {
+			if x <= 0 {
+				return g * a * math.Expm1(x)
+			}
+			return g * x
+		},
+		df: func(x, _, a, g float64) float64 {
+			if x <= 0 {
+				return g * a * math.Exp(x)
+			}
+			return g
+		},
+	},
+	// Celu(alpha): y = max(0, x) + min(0, alpha·(exp(x/alpha) - 1)) (Barron 2017, eq. 1).
+	"Celu": {
+		f: func(x, a, _ float64) float64 {
+			if x < 0 {
+				return a * math.Expm1(x/a)
+			}
+			return x
+		},
+		df: func(x, _, a, _ float64) float64 {
+			if x < 0 {
+				return math.Exp(x / a)
+			}
+			return 1
+		},
+	},
+	// Sigmoid: y = 1/(1 + e⁻ˣ); dy/dx = y(1 - y).
+	"Sigmoid": {
+		f:  func(x, _, _ float64) float64 { return elemSigmoid(x) },
+		df: func(_, y, _, _ float64) float64 { return y * (1 - y) },
+	},
+	// HardSigmoid(alpha, beta): y = max(0, min(1, alpha·x + beta)).
+	"HardSigmoid": {
+		f: func(x, a, b float64) float64 { return math.Max(0, math.Min(1, a*x+b)) },
+		df: func(x, _, a, b float64) float64 {
+			if t := a*x + b; t > 0 && t < 1 {
+				return a
+			}
+			return 0
+		},
+	},
+	// HardSwish: y = x·max(0, min(1, x/6 + 1/2)) (Howard et al. 2019, eq. 2 as ONNX
+	// HardSwish-14 writes it); dy/dx = x/3 + 1/2 on -3 < x < 3.
+	"HardSwish": {
+		f: func(x, _, _ float64) float64 { return x * math.Max(0, math.Min(1, x/6+0.5)) },
+		df: func(x, _, _, _ float64) float64 {
+			switch {
+			case x <= -3:
+				return 0
+			case x >= 3:
+				return 1
+			}
+			return x/3 + 0.5
+		},
+	},
+	// Tanh: dy/dx = 1 - y².
+	"Tanh": {
+		f:  func(x, _, _ float64) float64 { return math.Tanh(x) },
+		df: func(_, y, _, _ float64) float64 { return 1 - y*y },
+	},
+	// Softplus: y = log(eˣ + 1) = max(x, 0) + log1p(e^-|x|), which neither
+	// overflows nor loses the small tail; dy/dx = sigmoid(x).
+	"Softplus": {
+		f:  func(x, _, _ float64) float64 { return math.Max(x, 0) + math.Log1p(math.Exp(-math.Abs(x))) },
+		df: func(x, _, _, _ float64) float64 { return elemSigmoid(x) },
+	},
+	// Softsign: y = x/(1 + |x|); dy/dx = 1/(1 + |x|)².
+	"Softsign": {
+		f: func(x, _, _ float64) float64 { return x / (1 + math.Abs(x)) },
+		df: func(x, _, _, _ float64) float64 {
+			d := 1 + math.Abs(x)
+			return 1 / (d * d)
+		},
+	},
+	// Erf: dy/dx = 2/√π · e^(-x²).
+	"Erf": {
+		f:  func(x, _, _ float64) float64 { return math.Erf(x) },
+		df: func(x, _, _, _ float64) float64 { return 2 / math.SqrtPi * math.Exp(-x*x) },
+	},
+	// Abs: dy/dx = sign(x), 0 at 0.
+	"Abs": {
+		f: func(x, _, _ float64) float64 { return math.Abs(x) },
+		df: func(x, _, _, _ float64) float64 {
+			switch {
+			case x > 0:
+				return 1
+			case x < 0:
+				return -1
+			}
+			return 0
+		},
+	},
+	// Sqrt: dy/dx = 1/(2y).
+	"Sqrt": {
+		f:  func(x, _, _ float64) float64 { return math.Sqrt(x) },
+		df: func(_, y, _, _ float64) float64 { return 0.5 / y },
+	},
+	"Exp": {
+		f:  func(x, _, _ float64) float64 { return math.Exp(x) },
+		df: func(_, y, _, _ float64) float64 { return y },
+	},
+	"Log": {
+		f:  func(x, _, _ float64) float64 { return math.Log(x) },
+		df: func(x, _, _, _ float64) float64 { return 1 / x },
+	},
+	"Neg": {
+		f:  func(x, _, _ float64) float64 { return -x },
+		df: func(_, _, _, _ float64) float64 { return -1 },
+	},
+	// Pow with a constant exponent alpha: y = x^alpha; dy/dx = alpha·x^(alpha-1).
+	"Pow": {
+		f: func(x, a, _ float64) float64 { return math.Pow(x, a) },
+		df: func(x, _, a, _ float64) float64 {
+			if a == 0 {
+				return 0
+			}
+			return a * math.Pow(x, a-1)
+		},
+	},
+	"Identity": {
+		f:  func(x, _, _ float64) float64 { return x },
+		df: func(_, _, _, _ float64) float64 { return 1 },
+	},
+	// Clip(lo=alpha, hi=beta): y = min(max(x, lo), hi). The gradient passes
+	// where lo ≤ x ≤ hi, both kinks included (common practice).
+	"Clip": {
+		f: func(x, lo, hi float64) float64 { return math.Min(math.Max(x, lo), hi) },
+		df: func(x, _, lo, hi float64) float64 {
+			if x >= lo && x <= hi {
+				return 1
+			}
+			return 0
+		},
+	},
+}
+
+// elemSigmoid is 1/(1 + e⁻ˣ), evaluated without overflow for large |x|.
+func elemSigmoid(x float64) float64 {
+	if x >= 0 {
+		return 1 / (1 + math.Exp(-x))
+	}
+	e := math.Exp(x)
+	return e / (1 + e)
+}
+
+// unary applies the ONNX elementwise op named op: Relu, LeakyRelu(alpha),
+// Elu(alpha), Selu(alpha, gamma=beta), Celu(alpha), Sigmoid,
+// HardSigmoid(alpha, beta), HardSwish, Tanh, Softplus, Softsign, Erf, Abs,
+// Sqrt, Exp, Log, Neg, Pow (constant exponent alpha), Identity.
+//
+// The caller passes the ONNX defaults for absent attributes (LeakyRelu 0.01,
+// Elu 1, Celu 1, Selu 1.67326319217681884765625 and 1.05070102214813232421875,
+// HardSigmoid 0.2 and 0.5); parameters that an op does not use are ignored.
+func unary(x *G.Node, op string, alpha, beta float64) (*G.Node, error) {
+	if op == "Clip" {
+		return nil, fmt.Errorf("nn: unary op %q: use clip: %w", op, errElemUnknownOp)
+	}
+	return elemApplyUnary(x, op, alpha, beta)
+}
+
+// clip applies ONNX Clip: y = min(max(x, lo), hi), with -Inf/+Inf when a
+// bound is absent. The gradient is 1 where lo ≤ x ≤ hi and 0 elsewhere.
+func clip(x *G.Node, lo, hi float64) (*G.Node, error) {
+	if math.IsNaN(lo) || math.IsNaN(hi) {
+		return nil, fmt.Errorf("nn: Clip: bounds [%v, %v]: want numbers, got NaN", lo, hi)
+	}
+	return elemApplyUnary(x, "Clip", lo, hi)
+}
+
+func elemApplyUnary(x *G.Node, op string, alpha, beta float64) (out *G.Node, err error) {
+	if x == nil {
+		return nil, fmt.Errorf("nn: %s: nil operand", op)
+	}
+	if _, ok := elemUnaryTable[op]; !ok {
+		return nil, fmt.Errorf("nn: unary op %q: %w", op, errElemUnknownOp)
+	}
+	if math.IsNaN(alpha) || math.IsNaN(beta) {
+		return nil, fmt.Errorf("nn: %s: parameters (%v, %v): want numbers, got NaN", op, alpha, beta)
+	}
+	if op == "Celu" && alpha == 0 {
+		return nil, fmt.Errorf("nn: Celu: alpha must be non-zero, got 0")
+	}
+	dt, err := elemDtype(op, x)
+	if err != nil {
+		return nil, err
+	}
+	defer elemRecover(op, &err)
+	u := &elemUnaryOp{kind: op, alpha: alpha, beta: beta, dt: dt, shape: x.Shape(), t: x.Type()}
+	return G.ApplyOp(u, x)
+}
+
+// elemUnaryOp is the forward op of unary and clip.
+type elemUnaryOp struct {
+	kind        string
+	alpha, beta float64
+	dt          tensor.Dtype
+	shape       tensor.Shape
+	t           hm.Type
+}
+
+func (op *elemUnaryOp) Arity() int           { return 1 }
+func (op *elemUnaryOp) Type() hm.Type        { return hm.NewFnType(op.t, op.t) }
+func (op *elemUnaryOp) ReturnsPtr() bool     { return true }
+func (op *elemUnaryOp) CallsExtern() bool    { return false }
+func (op *elemUnaryOp) OverwritesInput() int { return 0 }
+func (op *elemUnaryOp) String() string {
+	return fmt.Sprintf("%s(%g,%g)", op.kind, op.alpha, op.beta)
+}
+func (op *elemUnaryOp) WriteHash(h hash.Hash) {
+	fmt.Fprintf(h, "elem.%s(%v,%v)%v%v", op.kind, op.alpha, op.beta, op.dt, op.shape)
+}
+func (op *elemUnaryOp) Hashcode() uint32 { return elemHash(op) }
+func (op *elemUnaryOp) InferShape(...G.DimSizer) (tensor.Shape, error) {
+	return op.shape.Clone(), nil
+}
+func (op *elemUnaryOp) DiffWRT(int) []bool { return []bool{true} }
+
+func (op *elemUnaryOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error) {
+	if len(inputs) != 1 {
+		return nil, fmt.Errorf("nn: %s gradient: got %d inputs, want 1", op.kind, len(inputs))
+	}
+	d, err := G.ApplyOp(&elemUnaryDiffOp{op}, inputs[0], output, grad)
+	if err != nil {
+		return nil, fmt.Errorf("nn: %s gradient: %w", op.kind, err)
+	}
+	return G.Nodes{d}, nil
+}
+
+func (op *elemUnaryOp) Do(vs ...G.Value) (G.Value, error) { return op.UsePreallocDo(nil, vs...) }
+
+// UnsafeDo writes over the input.
+func (op *elemUnaryOp) UnsafeDo(vs ...G.Value) (G.Value, error) {
+	if len(vs) != 1 {
+		return nil, fmt.Errorf("nn: %s: got %d inputs, want 1", op.kind, len(vs))
+	}
+	return op.UsePreallocDo(vs[0], vs...)
+}
+
+func (op *elemUnaryOp) UsePreallocDo(p G.Value, vs ...G.Value) (G.Value, error) {
+	if len(vs) != 1 {
+		return nil, fmt.Errorf("nn: %s: got %d inputs, want 1", op.kind, len(vs))
+	}
+	if op.dt == tensor.Float32 {
+		return elemUnaryRun[float32](op, p, vs[0])
+	}
+	return elemUnaryRun[float64](op, p, vs[0])
+}
+
+func elemUnaryRun[T elemFloat](op *elemUnaryOp, p, xv G.Value) (G.Value, error) {
+	x, err := elemData[T](op.kind, xv, op.shape)
+	if err != nil {
+		return nil, err
+	}
+	v, y := elemAlloc[T](p, op.dt, op.shape)
+	a, b := op.alpha, op.beta
+	switch op.kind {
+	case "Relu": // the hot one: no float64 round trip
+		for i, xi := range x {
+			y[i] = max(xi, 0)
+		}
+	case "Identity":
+		copy(y, x)
+	default:
+		f := elemUnaryTable[op.kind].f
+		for i, xi := range x {
+			y[i] = T(f(float64(xi), a, b))
+		}
+	}
+	return elemWrap(v, y), nil
+}
+
+// elemUnaryDiffOp computes dL/dx = dL/dy · f'(x) from (x, y, dL/dy).
+type elemUnaryDiffOp struct{ *elemUnaryOp }
+
+func (op *elemUnaryDiffOp) Arity() int           { return 3 }
+func (op *elemUnaryDiffOp) OverwritesInput() int { return 2 }
+func (op *elemUnaryDiffOp) Type() hm.Type        { return hm.NewFnType(op.t, op.t, op.t, op.t) }
+func (op *elemUnaryDiffOp) String() string       { return "∂" + op.elemUnaryOp.String() }
+func (op *elemUnaryDiffOp) WriteHash(h hash.Hash) {
+	fmt.Fprintf(h, "elem.d%s(%v,%v)%v%v", op.kind, op.alpha, op.beta, op.dt, op.shape)
+}
+func (op *elemUnaryDiffOp) Hashcode() uint32 { return elemHash(op) }
+func (op *elemUnaryDiffOp) Do(vs ...G.Value) (G.Value, error) {
+	return op.UsePreallocDo(nil, vs...)
+}
+
+func (op *elemUnaryDiffOp) UsePreallocDo(p G.Value, vs ...G.Value) (G.Value, error) {
+	if len(vs) != 3 {
+		return nil, fmt.Errorf("nn: %s: got %d inputs, want 3", op, len(vs))
+	}
+	if op.dt == tensor.Float32 {
+		return elemUnaryDiffRun[float32](op, p, vs)
+	}
+	return elemUnaryDiffRun[float64](op, p, vs)
+}
+
+func elemUnaryDiffRun[T elemFloat](op *elemUnaryDiffOp, p G.Value, vs []G.Value) (G.Value, error) {
+	var in [3][]T
+	for i, v := range vs {
+		d, err := elemData[T](op.kind, v, op.shape)
+		if err != nil {
+			return nil, err
+		}
+		in[i] = d
+	}
+	x, y, g := in[0], in[1], in[2]
+	// Element i reads only x[i], y[i] and g[i] before writing d[i], so the
+	// output may share a buffer with any input.
+	v, d := elemAlloc[T](p, op.dt, op.shape)
+	a, b := op.alpha, op.beta
+	switch op.kind {
+	case "Relu":
+		for i, xi := range x {
+			if xi > 0 {
+				d[i] = g[i]
+			} else {
+				d[i] = 0
+			}
+		}
+	case "Identity":
+		copy(d, g)
+	default:
+		df := elemUnaryTable[op.kind].df
+		for i, xi := range x {
+			d[i] = g[i] * T(df(float64(xi), float64(y[i]), a, b))
+		}
+	}
+	return elemWrap(v, d), nil
+}
+
+// elemDtype returns the element type of n, or an error unless it is float32
+// or float64.
+func elemDtype(op string, n *G.Node) (tensor.Dtype, error) {
+	var dt tensor.Dtype
+	var err error
+	func() {
+		defer func() {
+			if r := recover(); r != nil {
+				err = fmt.Errorf("nn: %s: operand %v has no element type: %v", op, n, r)
+			}
+		}()
+		dt = n.Dtype()
+	}()
+	if err != nil {
+		return dt, err
+	}
+	if dt != tensor.Float32 && dt != tensor.Float64 {
+		return dt, fmt.Errorf("nn: %s: element type %v: %w (want float32 or float64)", op, dt, errElemDtype)
+	}
+	return dt, nil
+}
+
+// elemRecover turns a panic inside gorgonia's graph construction into an
+// error; it is deferred by every function that builds nodes.
+func elemRecover(op string, err *error) {
+	if r := recover(); r != nil {
+		*err = fmt.Errorf("nn: %s: building the graph: %v", op, r)
+	}
+}
+
+// elemNodeType is the gorgonia type of a value of the given rank.
+func elemNodeType(dt tensor.Dtype, rank int) hm.Type {
+	if rank == 0 {
+		return dt
+	}
+	return G.TensorType{Dims: rank, Of: dt}
+}
+
+// elemData returns the elements of v, a *tensor.Dense or a scalar, after
+// checking its element type and size against shape.
+func elemData[T elemFloat](op string, v G.Value, shape []int) ([]T, error) {
+	var z T
+	var out []T
+	switch t := v.(type) {
+	case *tensor.Dense:
+		if t.RequiresIterator() {
+			m, ok := t.Materialize().(*tensor.Dense)
+			if !ok {
+				return nil, fmt.Errorf("nn: %s: cannot read a %T view", op, t)
+			}
+			t = m
+		}
+		d, ok := t.Data().([]T)
+		if !ok {
+			if s, ok := t.Data().(T); ok { // a one-element tensor may hold a bare value
+				d = []T{s}
+			} else {
+				return nil, fmt.Errorf("nn: %s: operand holds %v, want %T", op, t.Dtype(), z)
+			}
+		}
+		out = d
+	case *G.F64:
+		s, ok := any(float64(*t)).(T)
+		if !ok {
+			return nil, fmt.Errorf("nn: %s: operand is float64, want %T", op, z)
+		}
+		out = []T{s}
+	case *G.F32:
+		s, ok := any(float32(*t)).(T)
+		if !ok {
+			return nil, fmt.Errorf("nn: %s: operand is float32, want %T", op, z)
+		}
+		out = []T{s}
+	case nil:
+		return nil, fmt.Errorf("nn: %s: operand has no value", op)
+	default:
+		return nil, fmt.Errorf("nn: %s: operand is a %T, want a float tensor", op, v)
+	}
+	if n := elemShapeSize(shape); len(out) != n {
+		return nil, fmt.Errorf("nn: %s: operand has %d elements, want %d for shape %v", op, len(out), n, shape)
+	}
+	return out, nil
+}
+
+// elemAlloc returns an output value of the given shape and its elements,
+// reusing p when it is a contiguous tensor of that type and shape. A rank-0
+// shape gives a nil value and a one-element buffer that elemWrap turns into
+// a scalar.
+func elemAlloc[T elemFloat](p G.Value, dt tensor.Dtype, shape []int) (G.Value, []T) {
+	if len(shape) == 0 {
+		return nil, make([]T, 1)
+	}
+	if t, ok := p.(*tensor.Dense); ok && t.Dtype() == dt && !t.RequiresIterator() && elemSameShape(t.Shape(), shape) {
+		if d, ok := t.Data().([]T); ok && len(d) == elemShapeSize(shape) {
+			return t, d
+		}
+	}
+	t := tensor.New(tensor.Of(dt), tensor.WithShape(append([]int(nil), shape...)...))
+	return t, t.Data().([]T)
+}
+
+// elemWrap returns v, or the scalar in buf[0] when v is nil.
+func elemWrap[T elemFloat](v G.Value, buf []T) G.Value {
+	if v != nil {
+		return v
+	}
+	switch s := any(buf[0]).(type) {
+	case float32:
+		return G.NewF32(s)
+	case float64:
+		return G.NewF64(s)
+	}
+	return G.NewF64(float64(buf[0]))
+}
+
+// elemAliases reports whether two slices share memory.
+func elemAliases[T elemFloat](a, b []T) bool {
+	if len(a) == 0 || len(b) == 0 {
+		return false
+	}
+	var z T
+	sz := unsafe.Sizeof(z)
+	a0 := uintptr(unsafe.Pointer(unsafe.SliceData(a)))
+	b0 := uintptr(unsafe.Pointer(unsafe.SliceData(b)))
+	return a0 < b0+uintptr(len(b))*sz && b0 < a0+uintptr(len(a))*sz
+}

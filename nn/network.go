@@ -1,0 +1,279 @@
+// Package nn compiles ONNX graphs decoded by onnxlite into gorgonia programs
+// and runs them: batched forward passes and gradients of one selected output
+// element with respect to the input, for every sample of a batch in one
+// forward and one backward pass.
+//
+// A Network compiles lazily: one program per set of input shapes (and, for
+// gradients, per selected output), each run on a bounded pool of gorgonia
+// tape machines, so one Network can be shared by many goroutines. The first
+// input dimension is the batch; models exported with a fixed batch of one are
+// run at any batch size when their graph allows it, and sample by sample
+// otherwise.
+package nn
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"math"
+	"runtime"
+	"sync"
+
+	"github.com/apportion/apportion/onnxlite"
+)
+
+// DType is the element type a Network computes in.
+type DType int
+
+// The engine element types. Float32 is the zero value and the default.
+const (
+	Float32 DType = iota
+	Float64
+)
+
+// String returns "float32" or "float64".
+func (d DType) String() string {
+	switch d {
+	case Float32:
+		return "float32"
+	case Float64:
+		return "float64"
+	}
+	return fmt.Sprintf("DType(%d)", int(d))
+}
+
+// DefaultMaxBatch is the largest batch run as one program when
+// Options.MaxBatch is zero.
+const DefaultMaxBatch = 64
+
+// Options configures Compile. The zero value means: float32 arithmetic,
+// declared input shapes, batches of at most DefaultMaxBatch samples per
+// program run, and runtime.GOMAXPROCS(0) machines per program.
+type Options struct {
+	// DType is the element type of the computation (default Float32).
+	DType DType
+	// InputShapes gives per-sample shapes (without the batch dimension) for
+	// inputs whose non-batch dimensions are symbolic or unknown in the model.
+	InputShapes map[string][]int
+	// MaxBatch is the largest batch run as one program (default 64); larger
+	// requests are split into chunks of at most MaxBatch samples.
+	MaxBatch int
+	// Machines is the number of compiled machines per program, that is the
+	// number of concurrent runs of one program (default runtime.GOMAXPROCS(0)).
+	Machines int
+}
+
+// Sentinel errors. Errors returned by this package that stem from one of these
+// conditions wrap the matching sentinel, so callers can test with errors.Is.
+var (
+	// ErrShape marks an input whose shape or length is not the expected one.
+	ErrShape = errors.New("shape mismatch")
+	// ErrNonFinite marks an input holding NaN or ±Inf where finite values are required.
+	ErrNonFinite = errors.New("non-finite input")
+	// ErrBadRequest marks an argument outside its valid range: a batch size,
+	// a target index, an unknown output name.
+	ErrBadRequest = errors.New("bad request")
+	// ErrEngine marks a failure inside the gorgonia engine (including a
+	// recovered panic) while building or running a program.
+	ErrEngine = errors.New("engine failure")
+)
+
+// Port describes one runtime input or output of a Network.
+type Port struct {
+	// Name is the ONNX value name.
+	Name string
+	// Shape is the shape of one sample, without the batch dimension; -1
+	// marks a dimension that is not known until run time.
+	Shape []int
+	// DType is the ONNX element type declared by the model.
+	DType onnxlite.DataType
+}
+
+// Network is a compiled ONNX model. It is safe for concurrent use.
+type Network struct {
+	model   *onnxlite.Model
+	relaxed *onnxlite.Model // Reshape shapes with a leading 1 rewritten to 0
+	opts    Options
+	inputs  []Port
+	outputs []Port
+	// declared holds the full declared shape of each runtime input (-1 for
+	// symbolic dims), and declaredBatch its first dimension (-1 symbolic, 0 no batch axis).
+	declared [][]int
+
+	mu    sync.Mutex
+	progs map[string]*program
+}
+
+// Compile validates m and prepares it for running. Programs are compiled
+// lazily on first use for each set of input shapes. Operators that the
+// package cannot run are reported together in one error wrapping
+// onnxlite.ErrUnsupported.
+func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
+	defer coreRecover("nn: compile", &err)
+	if m == nil || m.Graph == nil {
+		return nil, fmt.Errorf("nn: compile: %w: nil model or graph", ErrBadRequest)
+	}
+	if opts.DType != Float32 && opts.DType != Float64 {
+		return nil, fmt.Errorf("nn: compile: %w: unknown DType %d (want Float32 or Float64)", ErrBadRequest, int(opts.DType))
+	}
+	if opts.MaxBatch < 0 || opts.Machines < 0 {
+		return nil, fmt.Errorf("nn: compile: %w: negative MaxBatch %d or Machines %d", ErrBadRequest, opts.MaxBatch, opts.Machines)
+	}
+	if opts.MaxBatch == 0 {
+		opts.MaxBatch = DefaultMaxBatch
+	}
+	if opts.Machines == 0 {
+		opts.Machines = runtime.GOMAXPROCS(0)
+	}
+	if err := m.Validate(); err != nil {
+		return nil, fmt.Errorf("nn: compile: %w", err)
+	}
+	nw = &Network{model: m, opts: opts, progs: map[string]*program{}}
+	nw.relaxed = coreRelaxModel(m)
+	if err := nw.describe(); err != nil {
+		return nil, fmt.Errorf("nn: compile: %w", err)
+	}
+	return nw, nil
+}
+
+// Inputs returns the runtime inputs (graph inputs not backed by an
+// initializer) in graph order: the order Forward binds its arguments in.
+func (nw *Network) Inputs() []Port { return clonePorts(nw.inputs) }
+
+// Outputs returns the graph outputs in graph order.
+func (nw *Network) Outputs() []Port { return clonePorts(nw.outputs) }
+
+// DType returns the element type the Network computes in.
+func (nw *Network) DType() DType { return nw.opts.DType }
+
+func clonePorts(ps []Port) []Port {
+	out := make([]Port, len(ps))
+	for i, p := range ps {
+		p.Shape = append([]int(nil), p.Shape...)
+		out[i] = p
+	}
+	return out
+}
+
+// Forward runs the model on inputs, bound to Inputs() in order, each with its
+// full shape including the batch dimension, and returns every graph output
+// with its full shape. Outputs are Float tensors on the Float32 engine and
+// Double tensors on the Float64 engine. A batch larger than Options.MaxBatch
+// is run in chunks along the first dimension.
+func (nw *Network) Forward(ctx context.Context, inputs []*onnxlite.Tensor) (outs []*onnxlite.Tensor, err error) {
+	defer coreRecover("nn: forward", &err)
+	if len(inputs) != len(nw.inputs) {
+		return nil, fmt.Errorf("nn: forward: %w: expected %d inputs (%s), got %d", ErrBadRequest, len(nw.inputs), portNames(nw.inputs), len(inputs))
+	}
+	shapes := make([][]int, len(inputs))
+	data := make([][]float64, len(inputs))
+	for i, t := range inputs {
+		p := nw.inputs[i]
+		if t == nil {
+			return nil, fmt.Errorf("nn: forward: input %q: %w: nil tensor", p.Name, ErrBadRequest)
+		}
+		vals, err := coreTensorFloats(t)
+		if err != nil {
+			return nil, fmt.Errorf("nn: forward: input %q: %w", p.Name, err)
+		}
+		shape := make([]int, len(t.Dims))
+		for j, d := range t.Dims {
+			shape[j] = int(d)
+		}
+		if err := nw.checkInputShape(i, shape, len(vals)); err != nil {
+			return nil, fmt.Errorf("nn: forward: %w", err)
+		}
+		shapes[i], data[i] = shape, vals
+	}
+	res, outShapes, err := nw.runChunked(ctx, shapes, data, nil)
+	if err != nil {
+		return nil, fmt.Errorf("nn: forward: %w", err)
+	}
+	outs = make([]*onnxlite.Tensor, len(res))
+	for i, r := range res {
+		outs[i] = coreMakeTensor(nw.outputs[i].Name, nw.opts.DType, outShapes[i], r)
+	}
+	return outs, nil
+}
+
+func portNames(ps []Port) string {
+	s := ""
+	for i, p := range ps {
+		if i > 0 {
+			s += ", "
+		}
+		s += fmt.Sprintf("%q", p.Name)
+	}
+	return s
+}
+
+// checkInputShape compares a full input shape with the declared one.
+func (nw *Network) checkInputShape(i int, shape []int, n int) error {
+	p := nw.inputs[i]
+	decl := nw.declared[i]
+	if decl != nil {
+		want := coreShapeString(decl, true)
+		if len(shape) != len(decl) {
+			return fmt.Errorf("input %q: %w: expected shape %s (rank %d), got %v", p.Name, ErrShape, want, len(decl), shape)
+		}
+		for j := range shape {
+			if shape[j] < 0 {
+				return fmt.Errorf("input %q: %w: negative dimension in %v", p.Name, ErrShape, shape)
+			}
+			if j == 0 {
+				continue // the batch: any size
+			}
+			if decl[j] >= 0 && decl[j] != shape[j] {
+				return fmt.Errorf("input %q: %w: expected shape %s, got %v", p.Name, ErrShape, want, shape)
+			}
+		}
+	}
+	if prod(shape) != n {
+		return fmt.Errorf("input %q: %w: shape %v holds %d values, got %d", p.Name, ErrShape, shape, prod(shape), n)
+	}
+	return nil
+}
+
+func coreShapeString(decl []int, batch bool) string {
+	s := "["
+	for j, d := range decl {
+		if j > 0 {
+			s += " "
+		}
+		switch {
+		case j == 0 && batch:
+			s += "N"
+		case d < 0:
+			s += "?"
+		default:
+			s += fmt.Sprint(d)
+		}
+	}
+	return s + "]"
+}
+
+func prod(s []int) int {
+	p := 1
+	for _, d := range s {
+		p *= d
+	}
+	return p
+}
+
+// coreRecover turns a panic (gorgonia panics on some malformed graphs) into
+// an error wrapping ErrEngine.
+func coreRecover(where string, err *error) {
+	if r := recover(); r != nil {
+		*err = fmt.Errorf("%s: %w: recovered panic: %v", where, ErrEngine, r)
+	}
+}
+
+// coreCheckNonFinite refuses NaN and ±Inf in x, naming the first position.
+func coreCheckNonFinite(x []float64, sample int) error {
+	for i, v := range x {
+		if math.IsNaN(v) || math.IsInf(v, 0) {
+			return fmt.Errorf("%w: x[%d] (sample %d, element %d) is %v", ErrNonFinite, i, i/sample, i%sample, v)
+		}
+	}
+	return nil
+}
