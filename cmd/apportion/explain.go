@@ -1,0 +1,447 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"crypto/sha256"
+	"encoding/hex"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"math"
+	"os"
+	"strconv"
+	"strings"
+
+	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/onnxlite"
+)
+
+// demoModel, when set, supplies a model and a sample to explain when -model
+// is not given. name is the sample's file name; its extension (.csv, .json,
+// .npy or .pb) selects the reader, and the model is reported as "demo:"+name.
+var demoModel func() (model []byte, sample []byte, name string)
+
+// The -method values.
+const (
+	methodGrad      = "grad"
+	methodGradInput = "grad-input"
+	methodSmooth    = "smoothgrad"
+	methodIG        = "ig"
+	methodExpected  = "expected-grad"
+)
+
+var methodNames = []string{methodGrad, methodGradInput, methodSmooth, methodIG, methodExpected}
+
+// explainConfig holds explain's flags, validated.
+type explainConfig struct {
+	modelPath  string
+	inputPath  string
+	output     string
+	method     string
+	target     int // gradattr.TargetTop for "top"
+	targetText string
+	logits     bool
+	baseline   string
+	reference  string
+	steps      int // 0: automatic
+	stepsText  string
+	rule       gradattr.Rule
+	ruleText   string
+	tolerance  float64
+	samples    int
+	noise      float64
+	seed       uint64
+	groups     string
+	format     string
+	out        string
+
+	toleranceSet bool            // -tolerance was given
+	set          map[string]bool // the flags given
+}
+
+// methodFlags lists the flags that only some methods read.
+var methodFlags = map[string][]string{
+	"baseline":  {methodIG},
+	"steps":     {methodIG},
+	"rule":      {methodIG},
+	"tolerance": {methodIG, methodExpected},
+	"samples":   {methodSmooth, methodExpected},
+	"noise":     {methodSmooth},
+	"seed":      {methodSmooth, methodExpected},
+	"reference": {methodIG, methodExpected},
+}
+
+func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
+	fs := newFlagSet("explain", "-model PATH -input PATH [flags]",
+		"apportion explain -model model.onnx -input samples.csv -method ig -target top",
+		"Attributes one output of the model, for each sample of -input, to the\n"+
+			"sample's features. Integrated gradients (ig) and expected gradients\n"+
+			"(expected-grad) report completeness: the attributions should sum to the\n"+
+			"output minus the output at the baseline, within -tolerance.\n\n"+caution, stderr)
+	var c explainConfig
+	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (required)")
+	fs.StringVar(&c.inputPath, "input", "", "samples to explain: a .csv, .json, .npy or .pb `file` (required)")
+	fs.StringVar(&c.output, "output", "", "`name` of the model output to explain (default the first)")
+	fs.StringVar(&c.method, "method", methodIG, "attribution method: "+strings.Join(methodNames, ", "))
+	fs.StringVar(&c.targetText, "target", "top", "output element to explain: an index `N`, or top for the largest")
+	fs.BoolVar(&c.logits, "logits", false, "explain the input of the Softmax, LogSoftmax or Sigmoid that produces the output (the logits)")
+	fs.StringVar(&c.baseline, "baseline", "zero", "baseline `kind` for ig: zero, mean (of -reference, else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), or the path of a file of baseline samples (results averaged over them)")
+	fs.StringVar(&c.reference, "reference", "", "reference samples `file` for expected-grad and -baseline mean")
+	fs.StringVar(&c.stepsText, "steps", "auto", "integration points for ig: a number `N`, or auto to refine until -tolerance")
+	fs.StringVar(&c.ruleText, "rule", "", "quadrature `rule` for ig: trapezoid, left, right, midpoint or gauss-legendre (default trapezoid)")
+	fs.Float64Var(&c.tolerance, "tolerance", 0.005, "relative completeness gap `R` to meet; expected-grad, complete only in expectation, uses 0.05 unless given")
+	fs.IntVar(&c.samples, "samples", 50, "noisy copies (smoothgrad) or baseline draws (expected-grad) `N`")
+	fs.Float64Var(&c.noise, "noise", 0.15, "smoothgrad noise level `R`: σ / (max x − min x)")
+	fs.Uint64Var(&c.seed, "seed", 1, "seed of the random methods")
+	fs.StringVar(&c.groups, "groups", "", "JSON `file` naming groups of features to report together")
+	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv or npy")
+	fs.StringVar(&c.out, "out", "", "write the result to `file` instead of standard output")
+	if code, done := parseFlags(fs, args, stdout); done {
+		return code
+	}
+	c.set = map[string]bool{}
+	fs.Visit(func(f *flag.Flag) { c.set[f.Name] = true })
+	c.toleranceSet = c.set["tolerance"]
+	if msg := c.validate(); msg != "" {
+		return usageError(stderr, "explain", "%s", msg)
+	}
+
+	src, err := c.load()
+	if err != nil {
+		if errors.Is(err, errUsage) {
+			return usageError(stderr, "explain", "%v", err)
+		}
+		return failure(stderr, "explain", err)
+	}
+	rep, err := explainAll(context.Background(), &c, src, progress(stderr))
+	if err != nil {
+		if errors.Is(err, errUsage) {
+			return usageError(stderr, "explain", "%v", err)
+		}
+		return failure(stderr, "explain", err)
+	}
+
+	w := stdout
+	var buf bytes.Buffer
+	if c.out != "" {
+		w = &buf
+	}
+	if err := renderExplanation(w, &c, rep); err != nil {
+		return failure(stderr, "explain", err)
+	}
+	if c.out != "" {
+		if err := os.WriteFile(c.out, buf.Bytes(), 0o644); err != nil {
+			return failure(stderr, "explain", err)
+		}
+	}
+	failed := 0
+	for _, e := range rep.Explanations {
+		if e.err != nil {
+			failed++
+			fmt.Fprintf(stderr, "apportion explain: sample %d: %v\n", e.Index, e.err)
+		}
+	}
+	if failed > 0 {
+		fmt.Fprintf(stderr, "apportion explain: %d of %d samples failed\n", failed, len(rep.Explanations))
+		return exitFail
+	}
+	return exitOK
+}
+
+// errUsage marks a flag combination that is wrong, detected after parsing.
+var errUsage = errors.New("usage")
+
+type usageErr struct{ msg string }
+
+func (e *usageErr) Error() string        { return e.msg }
+func (e *usageErr) Is(target error) bool { return target == errUsage }
+
+// validate checks the flag values that need no file; it returns a message
+// for a usage error, or "".
+func (c *explainConfig) validate() string {
+	known := false
+	for _, m := range methodNames {
+		known = known || c.method == m
+	}
+	if !known {
+		return fmt.Sprintf("-method must be one of %s, got %q", strings.Join(methodNames, ", "), c.method)
+	}
+	switch c.format {
+	case "table", "json", "csv", "npy":
+	default:
+		return fmt.Sprintf("-format must be table, json, csv or npy, got %q", c.format)
+	}
+	if c.targetText == "top" {
+		c.target = gradattr.TargetTop
+	} else {
+		n, err := strconv.Atoi(c.targetText)
+		if err != nil || n < 0 {
+			return fmt.Sprintf("-target must be a non-negative index or top, got %q", c.targetText)
+		}
+		c.target = n
+	}
+	if c.stepsText == "auto" {
+		c.steps = 0
+	} else {
+		n, err := strconv.Atoi(c.stepsText)
+		if err != nil || n < 1 || n > gradattr.MaxPointsLimit {
+			return fmt.Sprintf("-steps must be auto or a number from 1 to %d, got %q", gradattr.MaxPointsLimit, c.stepsText)
+		}
+		c.steps = n
+	}
+	if c.ruleText != "" {
+		r, err := gradattr.ParseRule(c.ruleText)
+		if err != nil {
+			return fmt.Sprintf("-rule: %v", err)
+		}
+		c.rule = r
+	}
+	if math.IsNaN(c.tolerance) || c.tolerance <= 0 || c.tolerance >= 1 {
+		return fmt.Sprintf("-tolerance must be in (0, 1), got %v", c.tolerance)
+	}
+	if c.samples < 1 || c.samples > gradattr.MaxSamplesLimit {
+		return fmt.Sprintf("-samples must be from 1 to %d, got %d", gradattr.MaxSamplesLimit, c.samples)
+	}
+	if math.IsNaN(c.noise) || math.IsInf(c.noise, 0) || c.noise <= 0 {
+		return fmt.Sprintf("-noise must be a positive number, got %v", c.noise)
+	}
+	for name, methods := range methodFlags {
+		if !c.set[name] {
+			continue
+		}
+		ok := false
+		for _, m := range methods {
+			ok = ok || m == c.method
+		}
+		if !ok {
+			return fmt.Sprintf("-%s applies to -method %s only, not %s", name, strings.Join(methods, " and "), c.method)
+		}
+	}
+	if c.reference != "" && c.method == methodIG && c.baseline != "mean" {
+		return "-reference with -method ig is the set -baseline mean averages; give -baseline mean too"
+	}
+	if c.method == methodExpected && c.reference == "" {
+		return "-method expected-grad needs -reference, a file of reference samples"
+	}
+	if c.modelPath == "" && demoModel == nil {
+		return "-model is required"
+	}
+	if c.inputPath == "" && (c.modelPath != "" || demoModel == nil) {
+		return "-input is required"
+	}
+	return ""
+}
+
+// source is the model and the samples explain works on.
+type source struct {
+	modelName string // path, or "demo:"+name
+	sha256    string
+	model     *onnxlite.Model
+	net       *network
+	spec      inputSpec
+	head      gradattr.Model
+	output    string
+	samples   *batch
+	reference *batch // nil without -reference
+	features  []string
+	units     []string
+	classes   []string
+}
+
+func (c *explainConfig) load() (*source, error) {
+	src := &source{}
+	var raw, demoSample []byte
+	var demoName string
+	var err error
+	if c.modelPath == "" {
+		raw, demoSample, demoName = demoModel()
+		src.modelName = "demo:" + demoName
+		src.model, err = decodeModelBytes(raw, src.modelName, "")
+	} else {
+		src.modelName = c.modelPath
+		raw, src.model, err = readModelFile(c.modelPath)
+	}
+	if err != nil {
+		return nil, err
+	}
+	sum := sha256.Sum256(raw)
+	src.sha256 = hex.EncodeToString(sum[:])
+	if err := src.prepare(c); err != nil {
+		return nil, err
+	}
+	if c.inputPath == "" {
+		src.samples, err = readInputBytes(demoName, demoSample, src.spec, true)
+	} else {
+		src.samples, err = readInputOpt(c.inputPath, src.spec, true)
+	}
+	if err != nil {
+		return nil, err
+	}
+	return src, src.finish(c)
+}
+
+// prepare selects the input and the output, and reads the names the model's
+// metadata gives to features and classes.
+func (src *source) prepare(c *explainConfig) error {
+	feeds := feedInputs(src.model.Graph)
+	if len(feeds) != 1 {
+		names := make([]string, len(feeds))
+		for i, f := range feeds {
+			names[i] = f.Name
+		}
+		return fmt.Errorf("explain needs a model with one runtime input, this one has %d (%s)", len(feeds), strings.Join(names, ", "))
+	}
+	src.spec = specOf(feeds[0])
+	src.output = c.output
+	if src.output == "" {
+		if len(src.model.Graph.Outputs) == 0 {
+			return fmt.Errorf("the model has no outputs")
+		}
+		src.output = src.model.Graph.Outputs[0].Name
+	} else {
+		found := false
+		var names []string
+		for _, o := range src.model.Graph.Outputs {
+			found = found || o.Name == src.output
+			names = append(names, o.Name)
+		}
+		if !found {
+			return &usageErr{fmt.Sprintf("-output %q is not an output of the model (outputs: %s)", src.output, strings.Join(names, ", "))}
+		}
+	}
+	md := src.model.Metadata
+	src.features = metadataList(md, "feature_names")
+	src.units = metadataList(md, "feature_units")
+	src.classes = metadataList(md, "class_names", "classes")
+	return nil
+}
+
+// finish compiles the model for the samples read, selects the explained
+// output and reads the reference set.
+func (src *source) finish(c *explainConfig) error {
+	if src.features == nil {
+		src.features = src.samples.Features
+	}
+	var err error
+	src.net, err = compileModel(src.model, openShapes(src.spec, src.samples))
+	if err != nil {
+		return err
+	}
+	src.head, err = src.net.head(src.output, c.logits)
+	if err != nil {
+		return err
+	}
+	if got, want := src.samples.SampleSize(), product(src.head.InputShape()); got != want {
+		return fmt.Errorf("input %s: expected samples of shape %s (%d values), got %s (%d values)",
+			src.samples.Path, shapeString(src.head.InputShape()), want, shapeString(src.samples.SampleShape()), got)
+	}
+	if c.reference != "" {
+		var err error
+		src.reference, err = readInput(c.reference, src.spec)
+		if err != nil {
+			return fmt.Errorf("-reference: %w", err)
+		}
+	}
+	return nil
+}
+
+// explanation is the result for one sample.
+type explanation struct {
+	Index     int
+	Value     []float64 // the sample
+	Result    *gradattr.Result
+	Baselines []float64 // model outputs at the baseline, when there is one
+	Grouped   *gradattr.GroupedResult
+	err       error
+}
+
+// explainReport is what renderers print.
+type explainReport struct {
+	src          *source
+	groups       []gradattr.Group
+	Explanations []explanation
+}
+
+func explainAll(ctx context.Context, c *explainConfig, src *source, tick func(done, total int)) (*explainReport, error) {
+	rep := &explainReport{src: src}
+	plan, err := c.plan(src)
+	if err != nil {
+		return nil, err
+	}
+	rep.groups = plan.groups
+	for i := 0; i < src.samples.Samples; i++ {
+		x := src.samples.Sample(i)
+		e := explanation{Index: i, Value: x}
+		if err := finiteSample(x); err != nil {
+			e.err = err
+		} else if e.Result, e.err = c.attribute(ctx, src, x, plan); e.err == nil {
+			if len(plan.baselines) == 1 {
+				e.Baselines = baselineOutputs(ctx, src, x, plan.baselines[0])
+			}
+			if plan.groups != nil {
+				e.Grouped, e.err = e.Result.Grouped(plan.groups)
+			}
+		}
+		rep.Explanations = append(rep.Explanations, e)
+		tick(i+1, src.samples.Samples)
+	}
+	return rep, nil
+}
+
+// baselineOutputs evaluates the model at the baseline of sample x; nil when
+// that fails (the attribution itself has succeeded, so the sample is kept).
+func baselineOutputs(ctx context.Context, src *source, x []float64, b gradattr.Baseline) []float64 {
+	var out []float64
+	_ = safeCall(func() error {
+		xb, err := b.Build(x, src.samples.SampleShape())
+		if err != nil {
+			return err
+		}
+		out, err = src.head.Forward(ctx, xb, 1)
+		return err
+	})
+	return out
+}
+
+func finiteSample(x []float64) error {
+	for j, v := range x {
+		if math.IsNaN(v) || math.IsInf(v, 0) {
+			return fmt.Errorf("index %d: %v %w", j, v, errNonFinite)
+		}
+	}
+	return nil
+}
+
+// attribute runs the selected method on one sample.
+func (c *explainConfig) attribute(ctx context.Context, src *source, x []float64, plan *methodPlan) (res *gradattr.Result, err error) {
+	err = safeCall(func() error {
+		var e error
+		res, e = c.callMethod(ctx, src, x, plan)
+		return e
+	})
+	return res, err
+}
+
+// progress reports finished samples of a long batch on w when w is a
+// terminal, and does nothing otherwise (a file or a pipe gets no noise).
+func progress(w io.Writer) func(done, total int) {
+	f, ok := w.(*os.File)
+	if !ok {
+		return func(int, int) {}
+	}
+	st, err := f.Stat()
+	if err != nil || st.Mode()&os.ModeCharDevice == 0 {
+		return func(int, int) {}
+	}
+	return func(done, total int) {
+		if total < 2 {
+			return
+		}
+		fmt.Fprintf(w, "\rexplained %d of %d samples", done, total)
+		if done == total {
+			fmt.Fprint(w, "\r\033[K")
+		}
+	}
+}

@@ -1,0 +1,178 @@
+package main
+
+import (
+	"encoding/json"
+	"strconv"
+	"strings"
+
+	"github.com/apportion/apportion/onnxlite"
+)
+
+// typeNames are the element type names the CLI prints (Go and NumPy style).
+var typeNames = map[onnxlite.DataType]string{
+	onnxlite.Undefined:  "undefined",
+	onnxlite.Float:      "float32",
+	onnxlite.Uint8:      "uint8",
+	onnxlite.Int8:       "int8",
+	onnxlite.Uint16:     "uint16",
+	onnxlite.Int16:      "int16",
+	onnxlite.Int32:      "int32",
+	onnxlite.Int64:      "int64",
+	onnxlite.String:     "string",
+	onnxlite.Bool:       "bool",
+	onnxlite.Float16:    "float16",
+	onnxlite.Double:     "float64",
+	onnxlite.Uint32:     "uint32",
+	onnxlite.Uint64:     "uint64",
+	onnxlite.Complex64:  "complex64",
+	onnxlite.Complex128: "complex128",
+	onnxlite.BFloat16:   "bfloat16",
+}
+
+func typeName(t onnxlite.DataType) string {
+	if n, ok := typeNames[t]; ok {
+		return n
+	}
+	return "type" + strconv.Itoa(int(t))
+}
+
+func jsonString(v any) string {
+	b, _ := json.Marshal(v)
+	return string(b)
+}
+
+// valueTypeName names the type of a graph value: the element type of a
+// tensor, or the kind of a non-tensor value.
+func valueTypeName(t *onnxlite.Type) string {
+	if t == nil {
+		return "unknown"
+	}
+	switch t.Kind {
+	case onnxlite.KindTensor:
+		return typeName(t.Elem)
+	case onnxlite.KindSparseTensor:
+		return "sparse " + typeName(t.Elem)
+	case onnxlite.KindSequence:
+		return "sequence of " + valueTypeName(t.Inner)
+	case onnxlite.KindMap:
+		return "map from " + typeName(t.Key) + " to " + valueTypeName(t.Inner)
+	case onnxlite.KindOptional:
+		return "optional " + valueTypeName(t.Inner)
+	}
+	return "unknown"
+}
+
+// initializerNames is the set of graph inputs backed by an initializer.
+func initializerNames(g *onnxlite.Graph) map[string]bool {
+	set := make(map[string]bool, len(g.Initializers))
+	for _, t := range g.Initializers {
+		set[t.Name] = true
+	}
+	return set
+}
+
+// feedInputs are the graph inputs a caller must bind, in graph order.
+func feedInputs(g *onnxlite.Graph) []*onnxlite.ValueInfo {
+	inits := initializerNames(g)
+	var out []*onnxlite.ValueInfo
+	for _, vi := range g.Inputs {
+		if !inits[vi.Name] {
+			out = append(out, vi)
+		}
+	}
+	return out
+}
+
+func specOf(vi *onnxlite.ValueInfo) inputSpec {
+	s := inputSpec{Name: vi.Name}
+	if vi.Type == nil {
+		return s
+	}
+	s.Elem = vi.Type.Elem
+	if vi.Type.HasShape {
+		s.HasShape = true
+		s.Shape = make([]int, len(vi.Type.Shape))
+		for i, d := range vi.Type.Shape {
+			if d.HasValue {
+				s.Shape[i] = int(d.Value)
+			} else {
+				s.Shape[i] = -1
+			}
+		}
+	}
+	return s
+}
+
+// shapeJSON is a declared shape for JSON: numbers for fixed dimensions,
+// strings for symbolic ones ("?" when a dimension has neither), nil when the
+// rank is unknown.
+func shapeJSON(t *onnxlite.Type) []any {
+	if t == nil || !t.HasShape {
+		return nil
+	}
+	out := make([]any, len(t.Shape))
+	for i, d := range t.Shape {
+		switch {
+		case d.HasValue:
+			out[i] = d.Value
+		case d.Param != "":
+			out[i] = d.Param
+		default:
+			out[i] = "?"
+		}
+	}
+	return out
+}
+
+// metadataList reads a list-valued metadata entry: a JSON array of strings
+// or a comma-separated list. The first of keys that is present wins.
+func metadataList(md map[string]string, keys ...string) []string {
+	for _, k := range keys {
+		v, ok := md[k]
+		if !ok {
+			continue
+		}
+		v = strings.TrimSpace(v)
+		if strings.HasPrefix(v, "[") {
+			var list []any
+			if err := json.Unmarshal([]byte(v), &list); err == nil {
+				out := make([]string, len(list))
+				for i, e := range list {
+					if s, ok := e.(string); ok {
+						out[i] = s
+					} else {
+						out[i] = strings.Trim(jsonString(e), `"`)
+					}
+				}
+				return out
+			}
+		}
+		if v == "" {
+			return nil
+		}
+		parts := strings.Split(v, ",")
+		for i := range parts {
+			parts[i] = strings.TrimSpace(parts[i])
+		}
+		return parts
+	}
+	return nil
+}
+
+func isFloatType(t onnxlite.DataType) bool {
+	switch t {
+	case onnxlite.Float, onnxlite.Double, onnxlite.Float16, onnxlite.BFloat16:
+		return true
+	}
+	return false
+}
+
+// openShapes gives the per-sample shape of b for the compiler when the
+// declared shape of spec leaves a non-batch dimension open; nil otherwise.
+func openShapes(spec inputSpec, b *batch) map[string][]int {
+	ps, ok := spec.perSample()
+	if ok && fullyKnown(ps) {
+		return nil
+	}
+	return map[string][]int{spec.Name: append([]int(nil), b.SampleShape()...)}
+}

@@ -1,0 +1,274 @@
+package main
+
+import (
+	"encoding/json"
+	"os"
+	"path/filepath"
+	"reflect"
+	"strconv"
+	"strings"
+	"testing"
+
+	"codeberg.org/sbinet/npyio/npy"
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+)
+
+// The writers below re-encode backend input tensors (float32 values) in the
+// other input formats. Each float32 is written as the shortest decimal that
+// reads back to the same float32, so no value changes.
+
+func f32(v float64) string { return strconv.FormatFloat(v, 'g', -1, 32) }
+
+// writeCSV writes one row per sample (first axis), with an optional header.
+func writeCSV(t *testing.T, path string, shape []int, data []float64, header []string) {
+	t.Helper()
+	var b strings.Builder
+	if header != nil {
+		b.WriteString(strings.Join(header, ",") + "\n")
+	}
+	per := len(data) / shape[0]
+	for i := 0; i < shape[0]; i++ {
+		row := make([]string, per)
+		for j := range row {
+			row[j] = f32(data[i*per+j])
+		}
+		b.WriteString(strings.Join(row, ",") + "\n")
+	}
+	require.NoError(t, os.WriteFile(path, []byte(b.String()), 0o644))
+}
+
+// writeJSON writes data as nested arrays of the given shape.
+func writeJSON(t *testing.T, path string, shape []int, data []float64) {
+	t.Helper()
+	var b strings.Builder
+	var rec func(d []float64, s []int)
+	rec = func(d []float64, s []int) {
+		if len(s) == 0 {
+			b.WriteString(f32(d[0]))
+			return
+		}
+		b.WriteByte('[')
+		step := len(d) / s[0]
+		for i := 0; i < s[0]; i++ {
+			if i > 0 {
+				b.WriteByte(',')
+			}
+			rec(d[i*step:(i+1)*step], s[1:])
+		}
+		b.WriteByte(']')
+	}
+	rec(data, shape)
+	require.NoError(t, os.WriteFile(path, []byte(b.String()), 0o644))
+}
+
+// writeNPY writes data as a float32 .npy array of the given shape.
+func writeNPY(t *testing.T, path string, shape []int, data []float64) {
+	t.Helper()
+	var build func(d []float64, s []int) reflect.Value
+	build = func(d []float64, s []int) reflect.Value {
+		if len(s) == 1 {
+			v := make([]float32, s[0])
+			for i := range v {
+				v[i] = float32(d[i])
+			}
+			return reflect.ValueOf(v)
+		}
+		step := len(d) / s[0]
+		first := build(d[:step], s[1:])
+		out := reflect.MakeSlice(reflect.SliceOf(first.Type()), s[0], s[0])
+		out.Index(0).Set(first)
+		for i := 1; i < s[0]; i++ {
+			out.Index(i).Set(build(d[i*step:(i+1)*step], s[1:]))
+		}
+		return out
+	}
+	f, err := os.Create(path)
+	require.NoError(t, err)
+	defer f.Close()
+	require.NoError(t, npy.Write(f, build(data, shape).Interface()))
+}
+
+// formats writes the backend input in each format and returns the paths.
+func formats(t *testing.T, pb, stem string) map[string]string {
+	t.Helper()
+	shape, data := readPBTensor(t, pb)
+	tmp := t.TempDir()
+	paths := map[string]string{".pb": pb}
+	for _, ext := range []string{".json", ".csv", ".npy"} {
+		p := filepath.Join(tmp, stem+ext)
+		switch ext {
+		case ".json":
+			writeJSON(t, p, shape, data)
+		case ".csv":
+			writeCSV(t, p, shape, data, nil)
+		case ".npy":
+			writeNPY(t, p, shape, data)
+		}
+		paths[ext] = p
+	}
+	return paths
+}
+
+type predictDoc struct {
+	Outputs []struct {
+		Name  string     `json:"name"`
+		Shape []int      `json:"shape"`
+		Data  []*float64 `json:"data"`
+	} `json:"outputs"`
+}
+
+func predictJSON(t *testing.T, args ...string) predictDoc {
+	t.Helper()
+	code, out, errs := cli(t, append([]string{"predict", "-format", "json"}, args...)...)
+	require.Equal(t, exitOK, code, errs)
+	var doc predictDoc
+	require.NoError(t, json.Unmarshal([]byte(out), &doc), out)
+	return doc
+}
+
+func values(p []*float64) []float64 {
+	out := make([]float64, len(p))
+	for i, v := range p {
+		out[i] = *v
+	}
+	return out
+}
+
+func TestPredictRelu(t *testing.T) {
+	dir := caseDir(t, "node/test_relu")
+	in, outs := setFiles(t, dir)
+	wantShape, want := readPBTensor(t, outs[0]) // ONNX backend test data 1.12.0
+	for ext, p := range formats(t, in[0], "x") {
+		doc := predictJSON(t, "-model", filepath.Join(dir, "model.onnx"), "-input", p)
+		require.Len(t, doc.Outputs, 1, ext)
+		assert.Equal(t, "y", doc.Outputs[0].Name, ext) // graph output name (python3-onnx 1.12.0)
+		assert.Equal(t, wantShape, doc.Outputs[0].Shape, ext)
+		assertClose(t, want, values(doc.Outputs[0].Data), "relu via "+ext)
+	}
+}
+
+func TestPredictGemm(t *testing.T) {
+	// Three runtime inputs a [2,7], b [7,4], c [1,4] bound in graph order.
+	dir := caseDir(t, "node/test_gemm_default_vector_bias")
+	in, outs := setFiles(t, dir)
+	require.Len(t, in, 3)
+	wantShape, want := readPBTensor(t, outs[0]) // ONNX backend test data 1.12.0
+	a := formats(t, in[0], "a")
+	b := formats(t, in[1], "b")
+	c := formats(t, in[2], "c")
+	for _, ext := range []string{".pb", ".json", ".csv", ".npy"} {
+		doc := predictJSON(t, "-model", filepath.Join(dir, "model.onnx"), "-input", a[ext], "-input", b[ext], "-input", c[ext])
+		require.Len(t, doc.Outputs, 1, ext)
+		assert.Equal(t, wantShape, doc.Outputs[0].Shape, ext)
+		assertClose(t, want, values(doc.Outputs[0].Data), "gemm via "+ext)
+	}
+	// Mixed formats bind the same way.
+	doc := predictJSON(t, "-model", filepath.Join(dir, "model.onnx"), "-input", a[".csv"], "-input", b[".npy"], "-input", c[".pb"])
+	assertClose(t, want, values(doc.Outputs[0].Data), "gemm via mixed formats")
+
+	// The table prints one block per sample of the first axis (2 samples).
+	code, out, errs := cli(t, "predict", "-format", "table", "-model", filepath.Join(dir, "model.onnx"), "-input", a[".pb"], "-input", b[".pb"], "-input", c[".pb"])
+	require.Equal(t, exitOK, code, errs)
+	assert.Contains(t, out, "sample 0\n")
+	assert.Contains(t, out, "sample 1\n")
+	assert.Contains(t, out, strconv.FormatFloat(want[0], 'g', 6, 32))
+	assert.Contains(t, out, strconv.FormatFloat(want[7], 'g', 6, 32))
+
+	// One -input per runtime input: a usage error naming the count.
+	code, _, errs = cli(t, "predict", "-model", filepath.Join(dir, "model.onnx"), "-input", a[".pb"])
+	assert.Equal(t, exitUsage, code)
+	assert.Contains(t, errs, "3 inputs (a, b, c), got 1")
+}
+
+func TestPredictBadInputs(t *testing.T) {
+	// Shapes from the model (python3-onnx 1.12.0): x is [3,4,5], so a sample
+	// is [4,5], 20 values.
+	dir := caseDir(t, "node/test_relu")
+	model := filepath.Join(dir, "model.onnx")
+	in, _ := setFiles(t, dir)
+	shape, data := readPBTensor(t, in[0])
+	require.Equal(t, []int{3, 4, 5}, shape)
+	tmp := t.TempDir()
+
+	check := func(name, content, want string) {
+		t.Helper()
+		p := filepath.Join(tmp, name)
+		require.NoError(t, os.WriteFile(p, []byte(content), 0o644))
+		code, out, errs := cli(t, "predict", "-model", model, "-input", p)
+		assert.Equal(t, exitFail, code, name)
+		assert.Empty(t, out, name)
+		assert.Contains(t, errs, want, name)
+	}
+
+	// A CSV row one value short: both counts are named.
+	rows := make([]string, 3)
+	for i := range rows {
+		vals := make([]string, 20)
+		for j := range vals {
+			vals[j] = f32(data[i*20+j])
+		}
+		if i == 1 {
+			vals = vals[:19]
+		}
+		rows[i] = strings.Join(vals, ",")
+	}
+	check("short.csv", strings.Join(rows, "\n")+"\n", "line 2 (sample 1): expected 20 values, got 19")
+
+	// NaN and Inf are refused with their position (IEEE 754: not finite).
+	rows[1] = strings.Repeat("1,", 3) + "NaN" + strings.Repeat(",1", 16)
+	check("nan.csv", strings.Join(rows, "\n")+"\n", "sample 1, index 3: NaN")
+	rows[1] = strings.Repeat("1,", 19) + "-Inf"
+	check("inf.csv", strings.Join(rows, "\n")+"\n", "sample 1, index 19: -Inf")
+
+	// A ragged nested array is reported with its path.
+	check("ragged.json", "[[[1,2,3,4,5],[1,2,3,4,5],[1,2,3,4],[1,2,3,4,5]]]", "ragged array at [0][2]: expected 5 elements, got 4")
+	check("mixed.json", "[[1,2],[3,[4]]]", "ragged array at [1][1]")
+	// A sample of the wrong shape names both.
+	check("wrong.json", "[[1,2,3],[4,5,6]]", "expected samples of shape [4 5] (20 values each), got an array of shape [2 3]")
+	check("text.json", `[["a"]]`, "expected a number or an array")
+	check("x.txt", "1,2", `unknown file type ".txt"`)
+
+	// A .pb of the wrong shape: the Gemm's b input [7,4] given for x [3,4,5].
+	gemm := caseDir(t, "node/test_gemm_default_vector_bias")
+	gin, _ := setFiles(t, gemm)
+	code, _, errs := cli(t, "predict", "-model", model, "-input", gin[1])
+	assert.Equal(t, exitFail, code)
+	assert.Contains(t, errs, "expected a tensor of rank 3 (shape [3 4 5]), got rank 2 (shape [7 4])")
+
+	// A truncated .pb tensor.
+	raw, err := os.ReadFile(in[0])
+	require.NoError(t, err)
+	p := filepath.Join(tmp, "cut.pb")
+	require.NoError(t, os.WriteFile(p, raw[:len(raw)/2], 0o644))
+	code, _, errs = cli(t, "predict", "-model", model, "-input", p)
+	assert.Equal(t, exitFail, code)
+	assert.Contains(t, errs, "cut.pb")
+}
+
+func TestPredictExplainRefuseModels(t *testing.T) {
+	// node/test_dft holds one unnamed DFT node (python3-onnx 1.12.0), an
+	// operator apportion does not run (onnxlite.SupportedOps).
+	dir := caseDir(t, "node/test_dft")
+	in, _ := setFiles(t, dir)
+	for _, cmd := range []string{"predict", "explain"} {
+		code, out, errs := cli(t, cmd, "-model", filepath.Join(dir, "model.onnx"), "-input", in[0])
+		assert.Equal(t, exitFail, code, cmd)
+		assert.Empty(t, out, cmd)
+		assert.Contains(t, errs, `DFT (node "#0")`, cmd)
+	}
+
+	// A truncated model: exit 1 with the reason, for every command.
+	relu := caseDir(t, "node/test_relu")
+	rin, _ := setFiles(t, relu)
+	raw, err := os.ReadFile(filepath.Join(relu, "model.onnx"))
+	require.NoError(t, err)
+	p := filepath.Join(t.TempDir(), "cut.onnx")
+	require.NoError(t, os.WriteFile(p, raw[:len(raw)-3], 0o644))
+	for _, cmd := range []string{"predict", "explain"} {
+		code, out, errs := cli(t, cmd, "-model", p, "-input", rin[0])
+		assert.Equal(t, exitFail, code, cmd)
+		assert.Empty(t, out, cmd)
+		assert.Contains(t, errs, "cut.onnx", cmd)
+	}
+}
