@@ -11,8 +11,11 @@ const (
 	// DefaultTolerance is the relative completeness gap automatic
 	// integrated gradients refines to (0.5%).
 	DefaultTolerance = 0.005
-	// DefaultMaxPoints caps the points of automatic integrated gradients.
-	DefaultMaxPoints = 1024
+	// DefaultMaxPoints caps the points of automatic integrated gradients:
+	// 2^12 + 1 admits the trapezoid rule's 4097-point pass and 4096-point
+	// left and right sums. Paths that cross many ReLU kinks have an
+	// integrand with jumps, where every rule converges only as O(1/m).
+	DefaultMaxPoints = 4097
 )
 
 // autoStart is the point count of the first pass of automatic refinement.
