@@ -374,7 +374,9 @@ func explainAll(ctx context.Context, c *explainConfig, src *source, tick func(do
 	for i := 0; i < src.samples.Samples; i++ {
 		x := src.samples.Sample(i)
 		e := explanation{Index: i, Value: x}
-		if err := finiteSample(x); err != nil {
+		if err := src.samples.Bad[i]; err != nil {
+			e.err = err
+		} else if err := finiteSample(x); err != nil {
 			e.err = err
 		} else if e.Result, e.err = c.attribute(ctx, src, x, plan); e.err == nil {
 			if len(plan.baselines) == 1 {

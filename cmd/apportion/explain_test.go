@@ -6,6 +6,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"strconv"
 	"strings"
 	"testing"
 
@@ -302,4 +303,55 @@ func TestExplainDemoHook(t *testing.T) {
 	assert.Equal(t, "demo:softmax.csv", doc.Model.Path)
 	require.Len(t, doc.Explanations, 1)
 	assertClose(t, y, doc.Explanations[0].Outputs, "outputs vs output_0.pb (ONNX backend test data 1.12.0)")
+}
+
+func TestExplainMalformedSamplesKeepTheRest(t *testing.T) {
+	// A row that cannot be read (wrong length, a field that is not a number)
+	// costs only itself: the good samples are explained as they would be
+	// alone, and their outputs match output_0.pb (ONNX backend test data
+	// 1.12.0, node/test_softmax_example).
+	model, x, y, _ := softmaxCase(t)
+	dir := t.TempDir()
+	num := func(v float64) string { return strconv.FormatFloat(v, 'g', -1, 64) }
+	good := num(x[0]) + "," + num(x[1]) + "," + num(x[2])
+	csvPath := filepath.Join(dir, "rows.csv")
+	require.NoError(t, os.WriteFile(csvPath, []byte("a,b,c\n"+good+"\n1,oops,3\n1,2\n"+good+"\n"), 0o644))
+	jsonPath := filepath.Join(dir, "rows.json")
+	require.NoError(t, os.WriteFile(jsonPath, []byte("[["+good+"],[1,2],["+good+"],[[1],[2],[3]]]"), 0o644))
+	alone := filepath.Join(dir, "alone.json")
+	require.NoError(t, os.WriteFile(alone, []byte("["+good+"]"), 0o644))
+
+	ref, _ := explainJSONRun(t, exitOK, "-model", model, "-input", alone)
+	require.Len(t, ref.Explanations, 1)
+	want := ref.Explanations[0].Attributions
+
+	for _, tc := range []struct {
+		path      string
+		good, bad []int
+		msgs      []string
+	}{
+		{csvPath, []int{0, 3}, []int{1, 2}, []string{`line 3 (sample 1), field 1: "oops" is not a number`, "line 4 (sample 2): expected 3 values, got 2"}},
+		{jsonPath, []int{0, 2}, []int{1, 3}, []string{"expected 3 values (shape [3]), got 2", "expected a sample of shape [3] or 3 flat values, got shape [3 1]"}},
+	} {
+		doc, errs := explainJSONRun(t, exitFail, "-model", model, "-input", tc.path)
+		require.Len(t, doc.Explanations, 4, tc.path)
+		for _, i := range tc.good {
+			e := doc.Explanations[i]
+			require.Nil(t, e.Error, "%s sample %d", tc.path, i)
+			assertClose(t, y, e.Outputs, "outputs vs output_0.pb")
+			assert.Equal(t, want, e.Attributions, "%s sample %d explained as if alone", tc.path, i)
+		}
+		for k, i := range tc.bad {
+			e := doc.Explanations[i]
+			require.NotNil(t, e.Error, "%s sample %d", tc.path, i)
+			assert.Contains(t, *e.Error, tc.msgs[k])
+			assert.Nil(t, e.Attributions)
+		}
+		assert.Contains(t, errs, "2 of 4 samples failed")
+	}
+
+	// predict needs every sample: it refuses the file and names the first bad row.
+	code, _, errs := cli(t, "predict", "-model", model, "-input", csvPath)
+	assert.Equal(t, exitFail, code)
+	assert.Contains(t, errs, "line 3 (sample 1)")
 }

@@ -54,6 +54,33 @@ type batch struct {
 	Features []string
 	// Tensor is the decoded .pb tensor, nil for other formats.
 	Tensor *onnxlite.Tensor
+	// Bad holds, by sample index, the samples that could not be read (a CSV
+	// row of the wrong length or with a field that is not a number, a JSON
+	// sample of the wrong shape). Their values are NaN. A caller that
+	// explains samples one by one reports these and goes on with the rest.
+	Bad map[int]error
+}
+
+// markBad records that sample i could not be read.
+func (b *batch) markBad(i int, err error) {
+	if b.Bad == nil {
+		b.Bad = map[int]error{}
+	}
+	b.Bad[i] = err
+}
+
+// firstBad returns the error of the lowest-numbered bad sample, or nil.
+func (b *batch) firstBad() error {
+	first := -1
+	for i := range b.Bad {
+		if first < 0 || i < first {
+			first = i
+		}
+	}
+	if first < 0 {
+		return nil
+	}
+	return b.Bad[first]
 }
 
 // SampleSize is the number of values in one sample.
@@ -133,7 +160,9 @@ func checkExt(name string) error {
 func readInputBytes(name string, raw []byte, spec inputSpec, keepNonFinite bool) (*batch, error) {
 	b, err := parseInput(name, raw, spec)
 	if err == nil && !keepNonFinite {
-		err = checkFinite(b)
+		if err = b.firstBad(); err == nil {
+			err = checkFinite(b)
+		}
 	}
 	if err != nil {
 		return nil, fmt.Errorf("input %s (for %q): %w", name, spec.Name, err)
@@ -413,10 +442,52 @@ func readJSON(raw []byte, spec inputSpec) (*batch, error) {
 	}
 	var shape []int
 	var data []float64
-	if err := flattenJSON(v, "", 0, &shape, &data); err != nil {
-		return nil, err
+	err := flattenJSON(v, "", 0, &shape, &data)
+	if err == nil {
+		return newBatch(shape, data, spec)
 	}
-	return newBatch(shape, data, spec)
+	if b := readJSONSamples(v, spec); b != nil {
+		return b, nil
+	}
+	return nil, err
+}
+
+// readJSONSamples reads a top-level array as a list of samples one by one,
+// so that one malformed sample does not cost the others. It returns nil
+// unless the per-sample shape is fully known and at least one element is a
+// well-formed sample.
+func readJSONSamples(v any, spec inputSpec) *batch {
+	list, isList := v.([]any)
+	ps, ok := spec.perSample()
+	if !isList || len(list) == 0 || !ok || !fullyKnown(ps) {
+		return nil
+	}
+	p := product(ps)
+	b := &batch{Shape: append([]int{len(list)}, ps...), Samples: len(list), Data: make([]float64, 0, p*len(list))}
+	good := 0
+	for i, e := range list {
+		var shape []int
+		var data []float64
+		err := flattenJSON(e, "["+strconv.Itoa(i)+"]", 0, &shape, &data)
+		if err == nil && len(data) == p && !sameShape(shape, ps) && !sameShape(shape, []int{p}) {
+			err = fmt.Errorf("expected a sample of shape %s or %d flat values, got shape %s", shapeString(ps), p, shapeString(shape))
+		} else if err == nil && len(data) != p {
+			err = fmt.Errorf("expected %d values (shape %s), got %d (shape %s)", p, shapeString(ps), len(data), shapeString(shape))
+		}
+		if err != nil {
+			b.markBad(i, err)
+			for j := 0; j < p; j++ {
+				b.Data = append(b.Data, math.NaN())
+			}
+			continue
+		}
+		good++
+		b.Data = append(b.Data, data...)
+	}
+	if good == 0 {
+		return nil
+	}
+	return b
 }
 
 // flattenJSON appends the numbers of v to data, fixing shape on the first
@@ -498,17 +569,22 @@ func readCSV(raw []byte, spec inputSpec) (*batch, error) {
 	if header != nil {
 		line = 2
 	}
+	var bad map[int]error
 	for i, row := range rows {
-		if len(row) != width {
-			return nil, fmt.Errorf("line %d (sample %d): expected %d values, got %d", line+i, i, width, len(row))
-		}
-		for j, f := range row {
-			v, err := strconv.ParseFloat(strings.TrimSpace(f), 64)
-			if err != nil {
-				return nil, fmt.Errorf("line %d (sample %d), field %d: %q is not a number", line+i, i, j, f)
+		err := parseCSVRow(row, width, line+i, i, &data)
+		if err != nil {
+			if bad == nil {
+				bad = map[int]error{}
 			}
-			data = append(data, v)
+			bad[i] = err
+			data = data[:i*width]
+			for j := 0; j < width; j++ {
+				data = append(data, math.NaN())
+			}
 		}
+	}
+	if len(bad) == len(rows) {
+		return nil, bad[0]
 	}
 	sample := ps
 	if !ok || !fullyKnown(ps) {
@@ -517,7 +593,7 @@ func readCSV(raw []byte, spec inputSpec) (*batch, error) {
 			return nil, fmt.Errorf("expected samples of shape %s, which a CSV row of %d values cannot fill", shapeString(ps), width)
 		}
 	}
-	b := &batch{Shape: append([]int{len(rows)}, sample...), Data: data, Samples: len(rows)}
+	b := &batch{Shape: append([]int{len(rows)}, sample...), Data: data, Samples: len(rows), Bad: bad}
 	if header != nil {
 		b.Features = make([]string, len(header))
 		for i, h := range header {
@@ -525,6 +601,34 @@ func readCSV(raw []byte, spec inputSpec) (*batch, error) {
 		}
 	}
 	return b, nil
+}
+
+func sameShape(a, b []int) bool {
+	if len(a) != len(b) {
+		return false
+	}
+	for i := range a {
+		if a[i] != b[i] {
+			return false
+		}
+	}
+	return true
+}
+
+// parseCSVRow appends the width values of one CSV row to data. A row that
+// is not width numbers is an error naming its line and sample.
+func parseCSVRow(row []string, width, line, sample int, data *[]float64) error {
+	if len(row) != width {
+		return fmt.Errorf("line %d (sample %d): expected %d values, got %d", line, sample, width, len(row))
+	}
+	for j, f := range row {
+		v, err := strconv.ParseFloat(strings.TrimSpace(f), 64)
+		if err != nil {
+			return fmt.Errorf("line %d (sample %d), field %d: %q is not a number", line, sample, j, f)
+		}
+		*data = append(*data, v)
+	}
+	return nil
 }
 
 // toTensor turns a batch into a tensor of the spec's element type.
