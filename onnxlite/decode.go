@@ -37,70 +37,67 @@ const maxTypeDepth = 32
 // type-valued attributes wrap ErrUnsupportedEncoding; a limit hit is a
 // *LimitError. Model functions and training info are skipped; a node that
 // calls a model function decodes as an ordinary node of its domain.
-func Decode(r io.Reader, opts DecodeOptions) (m *Model, err error) {
-	d := newDecoder(opts)
-	buf, err := d.readAll(r)
-	if err != nil {
-		return nil, fmt.Errorf("onnxlite: decode model: %w", err)
-	}
-	defer recoverTo(&err, "decode model")
-	m, err = d.model(buf)
-	if err != nil {
-		return nil, fmt.Errorf("onnxlite: decode model: %w", err)
-	}
-	return m, nil
+func Decode(r io.Reader, opts DecodeOptions) (*Model, error) {
+	return decodeFrom(r, opts, "decode model", func(d *decoder, buf []byte) (*Model, error) {
+		return d.model(buf)
+	})
 }
 
 // DecodeFile decodes the model file at path. External data is read from the
 // model's directory unless opts.BaseDir names another one.
 func DecodeFile(path string, opts DecodeOptions) (*Model, error) {
-	f, err := os.Open(path)
-	if err != nil {
-		return nil, fmt.Errorf("onnxlite: %w", err)
-	}
-	defer f.Close()
-	if opts.BaseDir == "" {
-		opts.BaseDir = filepath.Dir(path)
-	}
-	m, err := Decode(f, opts)
-	if err != nil {
-		return nil, fmt.Errorf("%w (file %s)", err, path)
-	}
-	return m, nil
+	return decodeFileWith(path, opts, Decode)
 }
 
 // DecodeTensor reads a bare serialized TensorProto from r, such as the
 // input_*.pb and output_*.pb files of the ONNX backend test data.
-func DecodeTensor(r io.Reader, opts DecodeOptions) (t *Tensor, err error) {
-	d := newDecoder(opts)
-	buf, err := d.readAll(r)
-	if err != nil {
-		return nil, fmt.Errorf("onnxlite: decode tensor: %w", err)
-	}
-	defer recoverTo(&err, "decode tensor")
-	t, err = d.tensor("tensor", buf)
-	if err != nil {
-		return nil, fmt.Errorf("onnxlite: decode tensor: %w", err)
-	}
-	return t, nil
+func DecodeTensor(r io.Reader, opts DecodeOptions) (*Tensor, error) {
+	return decodeFrom(r, opts, "decode tensor", func(d *decoder, buf []byte) (*Tensor, error) {
+		return d.tensor("tensor", buf)
+	})
 }
 
 // DecodeTensorFile decodes the TensorProto file at path. External data is
 // read from the file's directory unless opts.BaseDir names another one.
 func DecodeTensorFile(path string, opts DecodeOptions) (*Tensor, error) {
+	return decodeFileWith(path, opts, DecodeTensor)
+}
+
+// decodeFrom reads all of r within opts.Limits and decodes the bytes with
+// message, prefixing errors with what and turning a panic into an error.
+func decodeFrom[T any](r io.Reader, opts DecodeOptions, what string, message func(*decoder, []byte) (T, error)) (v T, err error) {
+	var zero T
+	d := newDecoder(opts)
+	buf, err := d.readAll(r)
+	if err != nil {
+		return zero, fmt.Errorf("onnxlite: %s: %w", what, err)
+	}
+	defer recoverTo(&err, what)
+	v, err = message(d, buf)
+	if err != nil {
+		return zero, fmt.Errorf("onnxlite: %s: %w", what, err)
+	}
+	return v, nil
+}
+
+// decodeFileWith opens path and decodes it with decode, reading external
+// data from the file's directory unless opts.BaseDir is set; errors name the
+// file.
+func decodeFileWith[T any](path string, opts DecodeOptions, decode func(io.Reader, DecodeOptions) (T, error)) (T, error) {
+	var zero T
 	f, err := os.Open(path)
 	if err != nil {
-		return nil, fmt.Errorf("onnxlite: %w", err)
+		return zero, fmt.Errorf("onnxlite: %w", err)
 	}
 	defer f.Close()
 	if opts.BaseDir == "" {
 		opts.BaseDir = filepath.Dir(path)
 	}
-	t, err := DecodeTensor(f, opts)
+	v, err := decode(f, opts)
 	if err != nil {
-		return nil, fmt.Errorf("%w (file %s)", err, path)
+		return zero, fmt.Errorf("%w (file %s)", err, path)
 	}
-	return t, nil
+	return v, nil
 }
 
 // recoverTo turns a panic into an error. The decoder is written not to
@@ -621,12 +618,7 @@ func (d *decoder) attribute(path string, buf []byte) (*Attribute, error) {
 			return nil, fmt.Errorf("%s: floats: %w", path, &LimitError{Limit: "MaxTensorElements", Value: int64(n), Max: d.lim.MaxTensorElements})
 		}
 		if n > 0 {
-			a.Floats = make([]float32, 0, n)
-			for _, c := range floats {
-				for i := 0; i+4 <= len(c); i += 4 {
-					a.Floats = append(a.Floats, math.Float32frombits(uint32(c[i])|uint32(c[i+1])<<8|uint32(c[i+2])<<16|uint32(c[i+3])<<24))
-				}
-			}
+			a.Floats = fixed32Floats(floats, int64(n))
 		}
 	case AttrInts:
 		n := varintCount(ints)
@@ -634,17 +626,11 @@ func (d *decoder) attribute(path string, buf []byte) (*Attribute, error) {
 			return nil, fmt.Errorf("%s: ints: %w", path, &LimitError{Limit: "MaxTensorElements", Value: n, Max: d.lim.MaxTensorElements})
 		}
 		if n > 0 {
-			a.Ints = make([]int64, 0, n)
-			for _, c := range ints {
-				for len(c) > 0 {
-					v, m := protowire.ConsumeVarint(c)
-					if m < 0 {
-						return nil, wireErr(path+".ints", m)
-					}
-					a.Ints = append(a.Ints, int64(v))
-					c = c[m:]
-				}
+			vals, err := varints(path+".ints", ints, n)
+			if err != nil {
+				return nil, err
 			}
+			a.Ints = convert(vals, func(v uint64) int64 { return int64(v) })
 		}
 	case AttrStrings:
 		a.Strings = strs

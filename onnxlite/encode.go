@@ -21,13 +21,7 @@ func Encode(w io.Writer, m *Model) (err error) {
 		return errors.New("onnxlite: encode: nil model")
 	}
 	b, err := appendModel(nil, m)
-	if err != nil {
-		return fmt.Errorf("onnxlite: encode: %w", err)
-	}
-	if _, err := w.Write(b); err != nil {
-		return fmt.Errorf("onnxlite: encode: %w", err)
-	}
-	return nil
+	return writeEncoded(w, "encode", b, err)
 }
 
 // EncodeTensor writes t to w as a serialized TensorProto, in the form of
@@ -35,11 +29,17 @@ func Encode(w io.Writer, m *Model) (err error) {
 func EncodeTensor(w io.Writer, t *Tensor) (err error) {
 	defer recoverEncode(&err)
 	b, err := appendTensor(nil, t)
-	if err != nil {
-		return fmt.Errorf("onnxlite: encode tensor: %w", err)
+	return writeEncoded(w, "encode tensor", b, err)
+}
+
+// writeEncoded writes the message b to w, unless encoding it failed with
+// err; what prefixes either error.
+func writeEncoded(w io.Writer, what string, b []byte, err error) error {
+	if err == nil {
+		_, err = w.Write(b)
 	}
-	if _, err := w.Write(b); err != nil {
-		return fmt.Errorf("onnxlite: encode tensor: %w", err)
+	if err != nil {
+		return fmt.Errorf("onnxlite: %s: %w", what, err)
 	}
 	return nil
 }

@@ -128,16 +128,7 @@ func TestExternalDataRefused(t *testing.T) {
 // TestExternalDataFromONNX reads a model that python3-onnx 1.12.0 saved with
 // save_as_external_data, and compares with the values onnx itself reads back.
 func TestExternalDataFromONNX(t *testing.T) {
-	python := ""
-	for _, p := range []string{"/usr/bin/python3", "python3"} {
-		if exec.Command(p, "-c", "import onnx").Run() == nil {
-			python = p
-			break
-		}
-	}
-	if python == "" {
-		t.Skip("python3-onnx not installed (apt-get install python3-onnx)")
-	}
+	python := onnxPython(t)
 	dir := t.TempDir()
 	script := `
 import json, sys, numpy as np, onnx

@@ -138,7 +138,7 @@ func fold(c *nodeCtx) ([]*Tensor, error) {
 		return c.tensors(NewTensor("", x.DType, slices.Clone(x.Dims), x.Data))
 	case "Reshape", "Flatten", "Squeeze", "Unsqueeze":
 		// The shape rule validates the target shape; the data is shared as it is.
-		vs, err := shapeRules[c.n.OpType](c)
+		vs, err := c.outShapes()
 		if err != nil {
 			return nil, err
 		}
@@ -203,12 +203,9 @@ func foldConstant(c *nodeCtx) ([]*Tensor, error) {
 // foldConstantOfShape fills the shape given by input 0 with the one-element
 // value attribute (float32 zero by default).
 func foldConstantOfShape(c *nodeCtx) ([]*Tensor, error) {
-	dims, ok, err := c.constInts(0, "shape")
+	dims, err := c.requiredInts(0, "shape")
 	if err != nil {
 		return nil, err
-	}
-	if !ok {
-		return nil, c.errorf("expected the shape input, got none")
 	}
 	shape := make([]int, len(dims))
 	for i, d := range dims {
@@ -403,7 +400,7 @@ func foldArith(c *nodeCtx) ([]*Tensor, error) {
 		v, _ := a.Float64s()
 		return c.tensors(NewTensor("", a.DType, slices.Clone(a.Dims), floatsAs(a.DType, convert(v, func(x float64) float64 { return -x }))))
 	}
-	vs, err := ruleBinary(c)
+	vs, err := c.outShapes()
 	if err != nil {
 		return nil, err
 	}
@@ -417,7 +414,6 @@ func foldArith(c *nodeCtx) ([]*Tensor, error) {
 	if c.opset < 7 {
 		ib = legacyIndex(c, b.Shape(), out)
 	}
-	n := len(ia)
 	if isIntType(a.DType) {
 		av, err := a.Int64s()
 		if err != nil {
@@ -427,31 +423,29 @@ func foldArith(c *nodeCtx) ([]*Tensor, error) {
 		if err != nil {
 			return nil, c.errorf("%v", err)
 		}
-		r := make([]int64, n)
-		for i := range r {
-			x, y := av[ia[i]], bv[ib[i]]
-			switch c.n.OpType {
-			case "Add":
-				r[i] = x + y
-			case "Sub":
-				r[i] = x - y
-			case "Mul":
-				r[i] = x * y
-			case "Div":
-				if y == 0 {
-					return nil, c.errorf("integer division by zero at element %d", i)
-				}
-				r[i] = x / y
-			}
+		r, err := arith(c.n.OpType, av, bv, ia, ib)
+		if err != nil {
+			return nil, c.errorf("%v", err)
 		}
 		return c.tensors(newTensor(a.DType, out, intsAs(a.DType, r)))
 	}
 	av, _ := a.Float64s()
 	bv, _ := b.Float64s()
-	r := make([]float64, n)
+	r, err := arith(c.n.OpType, av, bv, ia, ib)
+	if err != nil {
+		return nil, c.errorf("%v", err)
+	}
+	return c.tensors(newTensor(a.DType, out, floatsAs(a.DType, r)))
+}
+
+// arith computes r[i] = av[ia[i]] op bv[ib[i]] for op Add, Sub, Mul or Div.
+// An integer division by zero is an error; a float one follows IEEE 754.
+func arith[T int64 | float64](op string, av, bv []T, ia, ib []int) ([]T, error) {
+	r := make([]T, len(ia))
+	_, integer := any(r).([]int64)
 	for i := range r {
 		x, y := av[ia[i]], bv[ib[i]]
-		switch c.n.OpType {
+		switch op {
 		case "Add":
 			r[i] = x + y
 		case "Sub":
@@ -459,10 +453,13 @@ func foldArith(c *nodeCtx) ([]*Tensor, error) {
 		case "Mul":
 			r[i] = x * y
 		case "Div":
+			if integer && y == 0 {
+				return nil, fmt.Errorf("integer division by zero at element %d", i)
+			}
 			r[i] = x / y
 		}
 	}
-	return c.tensors(newTensor(a.DType, out, floatsAs(a.DType, r)))
+	return r, nil
 }
 
 // broadcastIndex maps each row-major position of out to the position of the
@@ -505,7 +502,7 @@ func legacyIndex(c *nodeCtx, s, out []int) []int {
 
 // foldConcat joins constant inputs along axis.
 func foldConcat(c *nodeCtx) ([]*Tensor, error) {
-	vs, err := ruleConcat(c)
+	vs, err := c.outShapes()
 	if err != nil {
 		return nil, err
 	}
@@ -583,12 +580,11 @@ func foldSlice(c *nodeCtx) ([]*Tensor, error) {
 		}
 	} else {
 		var err error
-		var ok bool
-		if starts, ok, err = c.constInts(1, "starts"); err != nil || !ok {
-			return nil, orMissing(c, err, "starts")
+		if starts, err = c.requiredInts(1, "starts"); err != nil {
+			return nil, err
 		}
-		if ends, ok, err = c.constInts(2, "ends"); err != nil || !ok {
-			return nil, orMissing(c, err, "ends")
+		if ends, err = c.requiredInts(2, "ends"); err != nil {
+			return nil, err
 		}
 		if axes, _, err = c.constInts(3, "axes"); err != nil {
 			return nil, err
@@ -670,11 +666,4 @@ func foldSlice(c *nodeCtx) ([]*Tensor, error) {
 		data.Index(p).Set(src.Index(off))
 	}
 	return c.tensors(newTensor(x.DType, out, data.Interface()))
-}
-
-func orMissing(c *nodeCtx, err error, what string) error {
-	if err != nil {
-		return err
-	}
-	return c.errorf("expected the %s input, got none", what)
 }

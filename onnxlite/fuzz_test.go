@@ -2,6 +2,7 @@ package onnxlite
 
 import (
 	"bytes"
+	"io"
 	"os"
 	"path/filepath"
 	"testing"
@@ -38,31 +39,28 @@ func FuzzDecode(f *testing.F) {
 
 	opts := DecodeOptions{Limits: fuzzLimits}
 	f.Fuzz(func(t *testing.T, data []byte) {
-		if m, err := Decode(bytes.NewReader(data), opts); err == nil {
-			var out bytes.Buffer
-			if err := Encode(&out, m); err != nil {
-				t.Fatalf("decoded model does not encode: %v", err)
-			}
-			m2, err := Decode(&out, opts)
-			if err != nil {
-				t.Fatalf("encoded model does not decode: %v", err)
-			}
-			if d := irDiff(m, m2); d != "" {
-				t.Fatalf("model round trip differs at %s", d)
-			}
-		}
-		if tn, err := DecodeTensor(bytes.NewReader(data), opts); err == nil {
-			var out bytes.Buffer
-			if err := EncodeTensor(&out, tn); err != nil {
-				t.Fatalf("decoded tensor does not encode: %v", err)
-			}
-			tn2, err := DecodeTensor(&out, opts)
-			if err != nil {
-				t.Fatalf("encoded tensor does not decode: %v", err)
-			}
-			if d := irDiff(tn, tn2); d != "" {
-				t.Fatalf("tensor round trip differs at %s", d)
-			}
-		}
+		fuzzRoundTrip(t, "model", data, opts, Decode, Encode)
+		fuzzRoundTrip(t, "tensor", data, opts, DecodeTensor, EncodeTensor)
 	})
+}
+
+// fuzzRoundTrip decodes data as a what; when that succeeds, the result must
+// encode, and the encoding must decode to the same IR.
+func fuzzRoundTrip[T any](t *testing.T, what string, data []byte, opts DecodeOptions,
+	decode func(io.Reader, DecodeOptions) (T, error), encode func(io.Writer, T) error) {
+	v, err := decode(bytes.NewReader(data), opts)
+	if err != nil {
+		return
+	}
+	var out bytes.Buffer
+	if err := encode(&out, v); err != nil {
+		t.Fatalf("decoded %s does not encode: %v", what, err)
+	}
+	v2, err := decode(&out, opts)
+	if err != nil {
+		t.Fatalf("encoded %s does not decode: %v", what, err)
+	}
+	if d := irDiff(v, v2); d != "" {
+		t.Fatalf("%s round trip differs at %s", what, d)
+	}
 }

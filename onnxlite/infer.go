@@ -46,7 +46,8 @@ func (v ValueShape) NumElements() int64 { return prodInt64(v.Shape) }
 // or float Add/Sub/Mul/Div/Neg of at most 4096 elements, is evaluated: its
 // outputs go to Consts and the node leaves Nodes. Shape always folds, to the
 // inferred shape of its input. A fold-only operator (see FoldOnly) that cannot
-// be folded is an error naming the node.
+// be folded is an error naming the node that wraps ErrFoldOnly and
+// ErrUnsupported.
 //
 // A value with more than DefaultLimits.MaxTensorElements elements or a rank
 // above DefaultLimits.MaxRank is a *LimitError.
@@ -287,6 +288,15 @@ func (c *nodeCtx) constInts(i int, what string) (vals []int64, ok bool, err erro
 	return v, true, nil
 }
 
+// requiredInts is constInts for an input the node cannot do without.
+func (c *nodeCtx) requiredInts(i int, what string) ([]int64, error) {
+	vals, ok, err := c.constInts(i, what)
+	if err == nil && !ok {
+		err = c.errorf("expected the %s input, got none", what)
+	}
+	return vals, err
+}
+
 func (c *nodeCtx) allConst() bool {
 	for i, v := range c.in {
 		if v != nil && c.consts[i] == nil {
@@ -315,8 +325,8 @@ func (s *Static) inferNode(n *Node, idx int, opset int64) error {
 	case c.allConst() && canFold(c):
 		outs, err = fold(c)
 	case FoldOnly(n.OpType):
-		return fmt.Errorf("onnxlite: node %q (%s): expected constant inputs to fold it, got run-time value(s) %s: %s is not supported at run time: %w",
-			nodeName(n, idx), n.OpType, runtimeInputs(c), n.OpType, ErrUnsupported)
+		return fmt.Errorf("onnxlite: node %q (%s): expected constant inputs to fold it, got run-time value(s) %s: %s is not supported at run time: %w (%w)",
+			nodeName(n, idx), n.OpType, runtimeInputs(c), n.OpType, ErrFoldOnly, ErrUnsupported)
 	}
 	if err != nil {
 		return err
@@ -336,11 +346,7 @@ func (s *Static) inferNode(n *Node, idx int, opset int64) error {
 		}
 		return nil
 	}
-	rule := shapeRules[n.OpType]
-	if rule == nil {
-		return c.errorf("no shape rule")
-	}
-	shapes, err := rule(c)
+	shapes, err := c.outShapes()
 	if err != nil {
 		return err
 	}

@@ -86,17 +86,54 @@ func TestInferConcreteShapes(t *testing.T) {
 	assert.Contains(t, err.Error(), `"zero"`)
 }
 
+// TestInferFoldOnlyRefused gives each fold-only operator (FoldOnly) a
+// run-time input. The node forms follow the ONNX operator specs (opset 13):
+// Gather(data, indices), Slice(data, starts, ends), ConstantOfShape(input)
+// and Range(start, limit, delta).
 func TestInferFoldOnlyRefused(t *testing.T) {
-	g := &onnxlite.Graph{
-		Inputs:       []*onnxlite.ValueInfo{tensorInput("x", onnxlite.Float, 4, 3)},
-		Outputs:      []*onnxlite.ValueInfo{output("y")},
-		Initializers: []*onnxlite.Tensor{int64Tensor(t, "idx", []int64{2}, 0, 2)},
-		Nodes:        []*onnxlite.Node{node("pick", "Gather", []string{"x", "idx"}, []string{"y"})},
+	cases := []struct {
+		op     string
+		inputs []*onnxlite.ValueInfo
+		inits  []*onnxlite.Tensor
+		ins    []string
+	}{
+		{"Gather", []*onnxlite.ValueInfo{tensorInput("x", onnxlite.Float, 4, 3)},
+			[]*onnxlite.Tensor{int64Tensor(t, "idx", []int64{2}, 0, 2)}, []string{"x", "idx"}},
+		{"Slice", []*onnxlite.ValueInfo{tensorInput("x", onnxlite.Float, 4, 3)},
+			[]*onnxlite.Tensor{int64Tensor(t, "starts", []int64{1}, 0), int64Tensor(t, "ends", []int64{1}, 2)}, []string{"x", "starts", "ends"}},
+		{"ConstantOfShape", []*onnxlite.ValueInfo{tensorInput("x", onnxlite.Int64, 2)}, nil, []string{"x"}},
+		{"Range", []*onnxlite.ValueInfo{tensorInput("x", onnxlite.Int64)},
+			[]*onnxlite.Tensor{int64Tensor(t, "limit", []int64{}, 5), int64Tensor(t, "delta", []int64{}, 1)}, []string{"x", "limit", "delta"}},
 	}
-	_, err := onnxlite.Infer(model(13, g), nil)
-	require.ErrorIs(t, err, onnxlite.ErrUnsupported)
-	assert.Contains(t, err.Error(), `node "pick" (Gather)`)
-	assert.Contains(t, err.Error(), `"x"`)
+	for _, c := range cases {
+		require.True(t, onnxlite.FoldOnly(c.op), c.op)
+		g := &onnxlite.Graph{
+			Inputs:       c.inputs,
+			Outputs:      []*onnxlite.ValueInfo{output("y")},
+			Initializers: c.inits,
+			Nodes:        []*onnxlite.Node{node("pick", c.op, c.ins, []string{"y"})},
+		}
+		_, err := onnxlite.Infer(model(13, g), nil)
+		require.ErrorIs(t, err, onnxlite.ErrFoldOnly, c.op)
+		require.ErrorIs(t, err, onnxlite.ErrUnsupported, c.op)
+		assert.NotErrorIs(t, err, onnxlite.ErrInvalid, c.op)
+		assert.Contains(t, err.Error(), `node "pick" (`+c.op+`)`)
+		assert.Contains(t, err.Error(), `"x"`, c.op)
+	}
+
+	// The same Gather on constant data folds (ONNX Gather, axis 0: rows 0
+	// and 2 of [[1 2 3] [4 5 6] [7 8 9] [10 11 12]]).
+	g := &onnxlite.Graph{
+		Outputs: []*onnxlite.ValueInfo{output("y")},
+		Initializers: []*onnxlite.Tensor{
+			int64Tensor(t, "x", []int64{4, 3}, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12),
+			int64Tensor(t, "idx", []int64{2}, 0, 2),
+		},
+		Nodes: []*onnxlite.Node{node("pick", "Gather", []string{"x", "idx"}, []string{"y"})},
+	}
+	st, err := onnxlite.Infer(model(13, g), nil)
+	require.NoError(t, err)
+	assert.Equal(t, []int64{1, 2, 3, 7, 8, 9}, st.Consts["y"].Data)
 }
 
 func TestInferBroadcastMismatch(t *testing.T) {
@@ -269,93 +306,30 @@ func strAttr(name, v string) *onnxlite.Attribute {
 	return &onnxlite.Attribute{Name: name, Type: onnxlite.AttrString, S: v}
 }
 
-func TestInferShapeRules(t *testing.T) {
-	cases := []struct {
-		name   string
-		opset  int64
-		op     string
-		shapes [][]int64
-		consts map[int][]int64
-		attrs  []*onnxlite.Attribute
-		want   []int
-	}{
-		// numpy.matmul documentation: a 1-D first operand gets a 1 prepended, a
-		// 1-D second one a 1 appended, both removed afterwards; batch dims broadcast.
-		{"matmul vector·matrix", 13, "MatMul", [][]int64{{3}, {2, 3, 4}}, nil, nil, []int{2, 4}},
-		{"matmul matrix·vector", 13, "MatMul", [][]int64{{2, 5, 3}, {3}}, nil, nil, []int{2, 5}},
-		{"matmul vector·vector", 13, "MatMul", [][]int64{{3}, {3}}, nil, nil, []int{}},
-		{"matmul batch broadcast", 13, "MatMul", [][]int64{{4, 1, 2, 3}, {5, 3, 6}}, nil, nil, []int{4, 5, 2, 6}},
-		// ONNX Gemm: A' is M×K, B' is K×N, C broadcasts to M×N.
-		{"gemm transposed", 13, "Gemm", [][]int64{{3, 2}, {4, 3}, {4}}, nil,
-			[]*onnxlite.Attribute{intAttr("transA", 1), intAttr("transB", 1)}, []int{2, 4}},
-		{"gemm no C", 13, "Gemm", [][]int64{{2, 3}, {3, 4}}, nil, nil, []int{2, 4}},
-		// ONNX Conv/pool output size ⌊(in + pads − ((k−1)·d + 1))/s⌋ + 1, channels M.
-		{"conv 1-D grouped dilated", 13, "Conv", [][]int64{{1, 4, 10}, {6, 2, 3}}, nil,
-			[]*onnxlite.Attribute{intAttr("group", 2), intsAttr("dilations", 2), intsAttr("strides", 2), intsAttr("pads", 1, 0)}, []int{1, 6, (10+1-((3-1)*2+1))/2 + 1}},
-		{"conv SAME_LOWER", 13, "Conv", [][]int64{{1, 1, 7, 8}, {2, 1, 3, 3}}, nil,
-			[]*onnxlite.Attribute{strAttr("auto_pad", "SAME_LOWER"), intsAttr("strides", 2, 3)}, []int{1, 2, (7 + 1) / 2, (8 + 2) / 3}}, // ⌈in/s⌉
-		{"maxpool 1-D ceil", 12, "MaxPool", [][]int64{{1, 3, 10}}, nil,
-			[]*onnxlite.Attribute{intsAttr("kernel_shape", 3), intsAttr("strides", 2), intAttr("ceil_mode", 1)}, []int{1, 3, (10-3+1)/2 + 1}}, // ⌈(10−3)/2⌉ + 1
-		{"avgpool VALID", 11, "AveragePool", [][]int64{{1, 3, 10, 9}}, nil,
-			[]*onnxlite.Attribute{intsAttr("kernel_shape", 3, 2), intsAttr("strides", 2, 2), strAttr("auto_pad", "VALID")}, []int{1, 3, (10 - 3 + 1 + 1) / 2, (9 - 2 + 1 + 1) / 2}}, // ⌈(in−k+1)/s⌉
-		{"global pool 1-D", 13, "GlobalAveragePool", [][]int64{{2, 3, 10}}, nil, nil, []int{2, 3, 1}},
-		// ONNX Flatten: (d0·…·d_{axis−1}, d_axis·…), negative axis from opset 11.
-		{"flatten negative axis", 13, "Flatten", [][]int64{{2, 3, 4, 5}}, nil, []*onnxlite.Attribute{intAttr("axis", -1)}, []int{24, 5}},
-		{"flatten axis 0", 13, "Flatten", [][]int64{{2, 3}}, nil, []*onnxlite.Attribute{intAttr("axis", 0)}, []int{1, 6}},
-		// ONNX Reshape: 0 copies the input dim; with allowzero=1 it is a 0.
-		{"reshape zero copies", 13, "Reshape", [][]int64{{2, 3, 4}}, map[int][]int64{1: {0, -1}}, nil, []int{2, 12}},
-		{"reshape allowzero", 14, "Reshape", [][]int64{{0, 3}}, map[int][]int64{1: {3, 0}},
-			[]*onnxlite.Attribute{intAttr("allowzero", 1)}, []int{3, 0}},
-		// ONNX Squeeze/Unsqueeze: attribute axes before opset 13, input from it.
-		{"squeeze all ones", 13, "Squeeze", [][]int64{{1, 3, 1, 2}}, nil, nil, []int{3, 2}},
-		{"squeeze attr", 11, "Squeeze", [][]int64{{1, 3, 1}}, nil, []*onnxlite.Attribute{intsAttr("axes", -1)}, []int{1, 3}},
-		{"unsqueeze input", 13, "Unsqueeze", [][]int64{{3, 4}}, map[int][]int64{1: {-1, 0}}, nil, []int{1, 3, 4, 1}},
-		// ONNX Transpose: the default perm reverses the axes.
-		{"transpose default", 13, "Transpose", [][]int64{{2, 3, 4}}, nil, nil, []int{4, 3, 2}},
-		// ONNX Pad: pads are begins then ends; negative pads crop.
-		{"pad attr opset 2", 2, "Pad", [][]int64{{2, 3}}, nil, []*onnxlite.Attribute{intsAttr("pads", 1, -1, 0, 2)}, []int{3, 4}},
-		{"pad input", 13, "Pad", [][]int64{{2, 3}}, map[int][]int64{1: {0, 1, 2, 1}}, nil, []int{4, 5}},
-		// ONNX ReduceSum 13: axes input; empty axes with noop_with_empty_axes=1 is the identity.
-		{"reducesum noop", 13, "ReduceSum", [][]int64{{2, 3}}, nil, []*onnxlite.Attribute{intAttr("noop_with_empty_axes", 1)}, []int{2, 3}},
-		{"reducesum all", 13, "ReduceSum", [][]int64{{2, 3}}, nil, []*onnxlite.Attribute{intAttr("keepdims", 0)}, []int{}},
-		{"reducemean attr", 13, "ReduceMean", [][]int64{{2, 3, 4}}, nil, []*onnxlite.Attribute{intsAttr("axes", 1)}, []int{2, 1, 4}},
-		// ONNX Add before opset 7: with broadcast=1, B matches A's dims from axis.
-		{"legacy broadcast", 6, "Add", [][]int64{{2, 3, 4, 5}, {3, 4}}, nil,
-			[]*onnxlite.Attribute{intAttr("broadcast", 1), intAttr("axis", 1)}, []int{2, 3, 4, 5}},
-		{"numpy broadcast", 13, "Mul", [][]int64{{2, 1, 4}, {3, 1}}, nil, nil, []int{2, 3, 4}},
-	}
-	for _, c := range cases {
-		got, err := inferOne(t, c.opset, c.op, c.shapes, c.consts, c.attrs...)
-		if assert.NoError(t, err, c.name) {
-			assert.Equal(t, c.want, got.Shape, c.name)
-		}
-	}
+// shapeRuleCase is one node run through inferOne. With says nil the
+// inferred output shape must be want; otherwise Infer must fail with an
+// ErrInvalid that names the node and contains each of says.
+type shapeRuleCase struct {
+	name   string
+	opset  int64
+	op     string
+	shapes [][]int64
+	consts map[int][]int64
+	attrs  []*onnxlite.Attribute
+	want   []int
+	says   []string
 }
 
-func TestInferShapeRuleErrors(t *testing.T) {
-	cases := []struct {
-		name   string
-		opset  int64
-		op     string
-		shapes [][]int64
-		consts map[int][]int64
-		attrs  []*onnxlite.Attribute
-		says   []string
-	}{
-		{"matmul inner", 13, "MatMul", [][]int64{{2, 3}, {4, 5}}, nil, nil, []string{"[2 3]", "[4 5]"}},
-		{"gemm inner", 13, "Gemm", [][]int64{{2, 3}, {4, 5}}, nil, nil, []string{"2×3", "4×5"}},
-		{"conv channels", 13, "Conv", [][]int64{{1, 3, 5, 5}, {2, 2, 3, 3}}, nil, nil, []string{"X has 3", "2"}},
-		{"conv kernel larger", 13, "Conv", [][]int64{{1, 1, 2, 2}, {1, 1, 3, 3}}, nil, nil, []string{"smaller than the effective kernel 3"}},
-		{"legacy without broadcast", 6, "Add", [][]int64{{2, 3}, {3}}, nil, nil, []string{"broadcast=1", "[2 3]", "[3]"}},
-		{"squeeze non-one", 13, "Squeeze", [][]int64{{2, 3}}, map[int][]int64{1: {0}}, nil, []string{"size 2", "expected 1"}},
-		{"concat mismatch", 13, "Concat", [][]int64{{2, 3}, {2, 4}}, nil, []*onnxlite.Attribute{intAttr("axis", 0)}, []string{"[2 4]", "axis 1"}},
-		{"axis out of range", 13, "Softmax", [][]int64{{2, 3}}, nil, []*onnxlite.Attribute{intAttr("axis", 2)}, []string{"axis 2", "-2 to 1"}},
-		{"transpose perm", 13, "Transpose", [][]int64{{2, 3}}, nil, []*onnxlite.Attribute{intsAttr("perm", 0, 0)}, []string{"perm [0 0]"}},
-		{"auto_pad", 13, "MaxPool", [][]int64{{1, 1, 4}}, nil, []*onnxlite.Attribute{intsAttr("kernel_shape", 2), strAttr("auto_pad", "FULL")}, []string{`"FULL"`}},
-		{"reshape two -1", 13, "Reshape", [][]int64{{2, 3}}, map[int][]int64{1: {-1, -1}}, nil, []string{"two"}},
-	}
+func checkShapeRules(t *testing.T, cases []shapeRuleCase) {
+	t.Helper()
 	for _, c := range cases {
-		_, err := inferOne(t, c.opset, c.op, c.shapes, c.consts, c.attrs...)
+		got, err := inferOne(t, c.opset, c.op, c.shapes, c.consts, c.attrs...)
+		if c.says == nil {
+			if assert.NoError(t, err, c.name) {
+				assert.Equal(t, c.want, got.Shape, c.name)
+			}
+			continue
+		}
 		if assert.ErrorIs(t, err, onnxlite.ErrInvalid, c.name) {
 			assert.Contains(t, err.Error(), `node "n"`, c.name)
 			for _, s := range c.says {
@@ -363,6 +337,74 @@ func TestInferShapeRuleErrors(t *testing.T) {
 			}
 		}
 	}
+}
+
+func TestInferShapeRules(t *testing.T) {
+	checkShapeRules(t, []shapeRuleCase{
+		// numpy.matmul documentation: a 1-D first operand gets a 1 prepended, a
+		// 1-D second one a 1 appended, both removed afterwards; batch dims broadcast.
+		{"matmul vector·matrix", 13, "MatMul", [][]int64{{3}, {2, 3, 4}}, nil, nil, []int{2, 4}, nil},
+		{"matmul matrix·vector", 13, "MatMul", [][]int64{{2, 5, 3}, {3}}, nil, nil, []int{2, 5}, nil},
+		{"matmul vector·vector", 13, "MatMul", [][]int64{{3}, {3}}, nil, nil, []int{}, nil},
+		{"matmul batch broadcast", 13, "MatMul", [][]int64{{4, 1, 2, 3}, {5, 3, 6}}, nil, nil, []int{4, 5, 2, 6}, nil},
+		// ONNX Gemm: A' is M×K, B' is K×N, C broadcasts to M×N.
+		{"gemm transposed", 13, "Gemm", [][]int64{{3, 2}, {4, 3}, {4}}, nil,
+			[]*onnxlite.Attribute{intAttr("transA", 1), intAttr("transB", 1)}, []int{2, 4}, nil},
+		{"gemm no C", 13, "Gemm", [][]int64{{2, 3}, {3, 4}}, nil, nil, []int{2, 4}, nil},
+		// ONNX Conv/pool output size ⌊(in + pads − ((k−1)·d + 1))/s⌋ + 1, channels M.
+		{"conv 1-D grouped dilated", 13, "Conv", [][]int64{{1, 4, 10}, {6, 2, 3}}, nil,
+			[]*onnxlite.Attribute{intAttr("group", 2), intsAttr("dilations", 2), intsAttr("strides", 2), intsAttr("pads", 1, 0)}, []int{1, 6, (10+1-((3-1)*2+1))/2 + 1}, nil},
+		{"conv SAME_LOWER", 13, "Conv", [][]int64{{1, 1, 7, 8}, {2, 1, 3, 3}}, nil,
+			[]*onnxlite.Attribute{strAttr("auto_pad", "SAME_LOWER"), intsAttr("strides", 2, 3)}, []int{1, 2, (7 + 1) / 2, (8 + 2) / 3}, nil}, // ⌈in/s⌉
+		{"maxpool 1-D ceil", 12, "MaxPool", [][]int64{{1, 3, 10}}, nil,
+			[]*onnxlite.Attribute{intsAttr("kernel_shape", 3), intsAttr("strides", 2), intAttr("ceil_mode", 1)}, []int{1, 3, (10-3+1)/2 + 1}, nil}, // ⌈(10−3)/2⌉ + 1
+		{"avgpool VALID", 11, "AveragePool", [][]int64{{1, 3, 10, 9}}, nil,
+			[]*onnxlite.Attribute{intsAttr("kernel_shape", 3, 2), intsAttr("strides", 2, 2), strAttr("auto_pad", "VALID")}, []int{1, 3, (10 - 3 + 1 + 1) / 2, (9 - 2 + 1 + 1) / 2}, nil}, // ⌈(in−k+1)/s⌉
+		{"global pool 1-D", 13, "GlobalAveragePool", [][]int64{{2, 3, 10}}, nil, nil, []int{2, 3, 1}, nil},
+		// ONNX Flatten: (d0·…·d_{axis−1}, d_axis·…), negative axis from opset 11.
+		{"flatten negative axis", 13, "Flatten", [][]int64{{2, 3, 4, 5}}, nil, []*onnxlite.Attribute{intAttr("axis", -1)}, []int{24, 5}, nil},
+		{"flatten axis 0", 13, "Flatten", [][]int64{{2, 3}}, nil, []*onnxlite.Attribute{intAttr("axis", 0)}, []int{1, 6}, nil},
+		// ONNX Reshape: 0 copies the input dim; with allowzero=1 it is a 0.
+		{"reshape zero copies", 13, "Reshape", [][]int64{{2, 3, 4}}, map[int][]int64{1: {0, -1}}, nil, []int{2, 12}, nil},
+		{"reshape allowzero", 14, "Reshape", [][]int64{{0, 3}}, map[int][]int64{1: {3, 0}},
+			[]*onnxlite.Attribute{intAttr("allowzero", 1)}, []int{3, 0}, nil},
+		// ONNX Squeeze/Unsqueeze: attribute axes before opset 13, input from it.
+		{"squeeze all ones", 13, "Squeeze", [][]int64{{1, 3, 1, 2}}, nil, nil, []int{3, 2}, nil},
+		{"squeeze attr", 11, "Squeeze", [][]int64{{1, 3, 1}}, nil, []*onnxlite.Attribute{intsAttr("axes", -1)}, []int{1, 3}, nil},
+		{"unsqueeze input", 13, "Unsqueeze", [][]int64{{3, 4}}, map[int][]int64{1: {-1, 0}}, nil, []int{1, 3, 4, 1}, nil},
+		// ONNX Transpose: the default perm reverses the axes.
+		{"transpose default", 13, "Transpose", [][]int64{{2, 3, 4}}, nil, nil, []int{4, 3, 2}, nil},
+		// ONNX Pad: pads are begins then ends; negative pads crop.
+		{"pad attr opset 2", 2, "Pad", [][]int64{{2, 3}}, nil, []*onnxlite.Attribute{intsAttr("pads", 1, -1, 0, 2)}, []int{3, 4}, nil},
+		{"pad input", 13, "Pad", [][]int64{{2, 3}}, map[int][]int64{1: {0, 1, 2, 1}}, nil, []int{4, 5}, nil},
+		// ONNX ReduceSum 13: axes input; empty axes with noop_with_empty_axes=1 is the identity.
+		{"reducesum noop", 13, "ReduceSum", [][]int64{{2, 3}}, nil, []*onnxlite.Attribute{intAttr("noop_with_empty_axes", 1)}, []int{2, 3}, nil},
+		{"reducesum all", 13, "ReduceSum", [][]int64{{2, 3}}, nil, []*onnxlite.Attribute{intAttr("keepdims", 0)}, []int{}, nil},
+		{"reducemean attr", 13, "ReduceMean", [][]int64{{2, 3, 4}}, nil, []*onnxlite.Attribute{intsAttr("axes", 1)}, []int{2, 1, 4}, nil},
+		// ONNX Add before opset 7: with broadcast=1, B matches A's dims from axis.
+		{"legacy broadcast", 6, "Add", [][]int64{{2, 3, 4, 5}, {3, 4}}, nil,
+			[]*onnxlite.Attribute{intAttr("broadcast", 1), intAttr("axis", 1)}, []int{2, 3, 4, 5}, nil},
+		{"numpy broadcast", 13, "Mul", [][]int64{{2, 1, 4}, {3, 1}}, nil, nil, []int{2, 3, 4}, nil},
+	})
+}
+
+func TestInferShapeRuleErrors(t *testing.T) {
+	checkShapeRules(t, []shapeRuleCase{
+		{"matmul inner", 13, "MatMul", [][]int64{{2, 3}, {4, 5}}, nil, nil, nil, []string{"[2 3]", "[4 5]"}},
+		{"gemm inner", 13, "Gemm", [][]int64{{2, 3}, {4, 5}}, nil, nil, nil, []string{"2×3", "4×5"}},
+		{"conv channels", 13, "Conv", [][]int64{{1, 3, 5, 5}, {2, 2, 3, 3}}, nil, nil, nil, []string{"X has 3", "2"}},
+		{"conv kernel larger", 13, "Conv", [][]int64{{1, 1, 2, 2}, {1, 1, 3, 3}}, nil, nil, nil, []string{"smaller than the effective kernel 3"}},
+		{"legacy without broadcast", 6, "Add", [][]int64{{2, 3}, {3}}, nil, nil, nil, []string{"broadcast=1", "[2 3]", "[3]"}},
+		{"squeeze non-one", 13, "Squeeze", [][]int64{{2, 3}}, map[int][]int64{1: {0}}, nil, nil, []string{"size 2", "expected 1"}},
+		{"concat mismatch", 13, "Concat", [][]int64{{2, 3}, {2, 4}}, nil, []*onnxlite.Attribute{intAttr("axis", 0)}, nil, []string{"[2 4]", "axis 1"}},
+		{"axis out of range", 13, "Softmax", [][]int64{{2, 3}}, nil, []*onnxlite.Attribute{intAttr("axis", 2)}, nil, []string{"axis 2", "-2 to 1"}},
+		{"transpose perm", 13, "Transpose", [][]int64{{2, 3}}, nil, []*onnxlite.Attribute{intsAttr("perm", 0, 0)}, nil, []string{"perm [0 0]"}},
+		{"auto_pad", 13, "MaxPool", [][]int64{{1, 1, 4}}, nil, []*onnxlite.Attribute{intsAttr("kernel_shape", 2), strAttr("auto_pad", "FULL")}, nil, []string{`"FULL"`}},
+		{"reshape two -1", 13, "Reshape", [][]int64{{2, 3}}, map[int][]int64{1: {-1, -1}}, nil, nil, []string{"two"}},
+		// ONNX MatMul and Conv specs: inputs A, B and X, W are required.
+		{"matmul without B", 13, "MatMul", [][]int64{{2, 3}}, nil, nil, nil, []string{"expected input 1, got none"}},
+		{"conv without W", 13, "Conv", [][]int64{{1, 1, 4, 4}}, nil, nil, nil, []string{"expected input 1, got none"}},
+	})
 }
 
 func TestInferFoldBroadcastLimit(t *testing.T) {

@@ -1,6 +1,9 @@
 package onnxlite
 
-import "sort"
+import (
+	"errors"
+	"sort"
+)
 
 // The default-domain operator set versions the shape rules cover. Models that
 // import an older default opset (1–6, as the early PyTorch exporters wrote)
@@ -64,10 +67,17 @@ func IsSupported(domain, op string) bool {
 // FoldOnly reports whether the default-domain operator op is supported only
 // when constant folding removes it: Shape, Gather, Slice, ConstantOfShape and
 // Range. Infer refuses such a node when one of its inputs is a run-time value
-// (Shape excepted: it folds to the inferred shape of any value).
+// (Shape excepted: it folds to the inferred shape of any value), with an
+// error wrapping ErrFoldOnly.
 func FoldOnly(op string) bool {
 	return supportedOps[op] == foldOnlyOp
 }
+
+// ErrFoldOnly is wrapped when Infer meets a fold-only operator (see FoldOnly)
+// with a run-time input, which no constant folding can remove. The error
+// wraps ErrUnsupported too, so errors.Is(err, ErrFoldOnly) picks out this
+// case and errors.Is(err, ErrUnsupported) still holds for it.
+var ErrFoldOnly = errors.New("fold-only operator on run-time data")
 
 func isDefaultDomain(domain string) bool {
 	return domain == "" || domain == "ai.onnx"

@@ -6,29 +6,51 @@ import (
 )
 
 // shapeRule computes the output shapes of a node that is not folded.
-type shapeRule func(c *nodeCtx) ([]ValueShape, error)
+type shapeRule struct {
+	// inputs is how many leading inputs the operator's spec requires.
+	// outShapes checks that they are present, so fn reads c.in[0] to
+	// c.in[inputs-1] without a nil check. Rules whose later inputs are
+	// required only at some opsets or after other checks (Reshape, Pad,
+	// BatchNormalization, Concat) check those themselves.
+	inputs int
+	fn     func(c *nodeCtx) ([]ValueShape, error)
+}
 
 var shapeRules map[string]shapeRule
 
 func init() {
 	shapeRules = map[string]shapeRule{
-		"Add": ruleBinary, "Sub": ruleBinary, "Mul": ruleBinary, "Div": ruleBinary, "Pow": ruleBinary,
-		"PRelu": rulePRelu,
-		"Gemm":  ruleGemm, "MatMul": ruleMatMul,
-		"Conv": ruleConv, "MaxPool": rulePool, "AveragePool": rulePool,
-		"GlobalAveragePool": ruleGlobalPool, "GlobalMaxPool": ruleGlobalPool,
-		"BatchNormalization": ruleBatchNorm,
-		"Flatten":            ruleFlatten, "Reshape": ruleReshape, "Transpose": ruleTranspose,
-		"Squeeze": ruleSqueeze, "Unsqueeze": ruleUnsqueeze, "Concat": ruleConcat, "Pad": rulePad,
-		"ReduceMean": ruleReduce, "ReduceSum": ruleReduce,
-		"Softmax": ruleSoftmax, "LogSoftmax": ruleSoftmax,
-		"Dropout": ruleDropout, "Cast": ruleCast, "Clip": ruleClip,
+		"Add": {2, ruleBinary}, "Sub": {2, ruleBinary}, "Mul": {2, ruleBinary}, "Div": {2, ruleBinary}, "Pow": {2, ruleBinary},
+		"PRelu": {2, rulePRelu},
+		"Gemm":  {2, ruleGemm}, "MatMul": {2, ruleMatMul},
+		"Conv": {2, ruleConv}, "MaxPool": {1, rulePool}, "AveragePool": {1, rulePool},
+		"GlobalAveragePool": {1, ruleGlobalPool}, "GlobalMaxPool": {1, ruleGlobalPool},
+		"BatchNormalization": {1, ruleBatchNorm},
+		"Flatten":            {1, ruleFlatten}, "Reshape": {1, ruleReshape}, "Transpose": {1, ruleTranspose},
+		"Squeeze": {1, ruleSqueeze}, "Unsqueeze": {1, ruleUnsqueeze}, "Concat": {0, ruleConcat}, "Pad": {1, rulePad},
+		"ReduceMean": {1, ruleReduce}, "ReduceSum": {1, ruleReduce},
+		"Softmax": {1, ruleSoftmax}, "LogSoftmax": {1, ruleSoftmax},
+		"Dropout": {1, ruleDropout}, "Cast": {1, ruleCast}, "Clip": {1, ruleClip},
 	}
 	for _, op := range []string{"Neg", "Abs", "Sqrt", "Exp", "Log", "Relu", "LeakyRelu", "Elu",
 		"Selu", "Celu", "Sigmoid", "HardSigmoid", "HardSwish", "Tanh", "Softplus", "Softsign",
 		"Erf", "Identity"} {
-		shapeRules[op] = ruleUnary
+		shapeRules[op] = shapeRule{1, ruleUnary}
 	}
+}
+
+// outShapes checks the node's required inputs and applies its shape rule.
+func (c *nodeCtx) outShapes() ([]ValueShape, error) {
+	r, ok := shapeRules[c.n.OpType]
+	if !ok {
+		return nil, c.errorf("no shape rule")
+	}
+	for i := 0; i < r.inputs; i++ {
+		if _, err := c.need(i); err != nil {
+			return nil, err
+		}
+	}
+	return r.fn(c)
 }
 
 // Broadcast returns the numpy broadcast of shapes a and b (ONNX
@@ -84,24 +106,14 @@ func normAxis(axis int64, rank int) (int, error) {
 }
 
 func ruleUnary(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	return []ValueShape{{x.DType, slices.Clone(x.Shape)}}, nil
 }
 
 // ruleBinary covers the elementwise Add, Sub, Mul, Div and Pow: numpy
 // broadcasting from opset 7, the legacy broadcast/axis attributes before it.
 func ruleBinary(c *nodeCtx) ([]ValueShape, error) {
-	a, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
-	b, err := c.need(1)
-	if err != nil {
-		return nil, err
-	}
+	a, b := c.in[0], c.in[1]
 	if c.n.OpType != "Pow" && a.DType != b.DType {
 		return nil, c.errorf("expected both inputs of one element type, got %v and %v", a.DType, b.DType)
 	}
@@ -152,14 +164,7 @@ func legacyBroadcast(c *nodeCtx, a, b []int) ([]int, error) {
 }
 
 func rulePRelu(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
-	slope, err := c.need(1)
-	if err != nil {
-		return nil, err
-	}
+	x, slope := c.in[0], c.in[1]
 	if c.opset >= 7 {
 		if err := unidirectional(x.Shape, slope.Shape); err != nil {
 			return nil, c.errorf("slope: %v", err)
@@ -176,14 +181,7 @@ func rulePRelu(c *nodeCtx) ([]ValueShape, error) {
 // ruleGemm: Y = alpha·A'·B' + beta·C with A' = transA ? Aᵀ : A (M×K) and
 // B' = transB ? Bᵀ : B (K×N); C broadcasts to M×N (optional from opset 11).
 func ruleGemm(c *nodeCtx) ([]ValueShape, error) {
-	a, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
-	b, err := c.need(1)
-	if err != nil {
-		return nil, err
-	}
+	a, b := c.in[0], c.in[1]
 	if len(a.Shape) != 2 || len(b.Shape) != 2 {
 		return nil, c.errorf("expected 2-D A and B, got %v and %v", a.Shape, b.Shape)
 	}
@@ -216,14 +214,7 @@ func ruleGemm(c *nodeCtx) ([]ValueShape, error) {
 // ruleMatMul follows numpy.matmul: 1-D operands are promoted (a 1 prepended
 // to A, appended to B) and removed again; leading dims broadcast.
 func ruleMatMul(c *nodeCtx) ([]ValueShape, error) {
-	a, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
-	b, err := c.need(1)
-	if err != nil {
-		return nil, err
-	}
+	a, b := c.in[0], c.in[1]
 	as, bs := slices.Clone(a.Shape), slices.Clone(b.Shape)
 	if len(as) == 0 || len(bs) == 0 {
 		return nil, c.errorf("expected operands of rank ≥ 1, got %v and %v", a.Shape, b.Shape)
@@ -328,14 +319,7 @@ func spatialOut(c *nodeCtx, in []int, kernel []int64, ceil bool) ([]int, error) 
 
 // ruleConv: X is (N, C, D1…), W is (M, C/group, k1…), B is (M); Y is (N, M, out…).
 func ruleConv(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
-	w, err := c.need(1)
-	if err != nil {
-		return nil, err
-	}
+	x, w := c.in[0], c.in[1]
 	if len(x.Shape) < 3 {
 		return nil, c.errorf("expected X of rank ≥ 3 (N, C, spatial…), got %v", x.Shape)
 	}
@@ -375,10 +359,7 @@ func ruleConv(c *nodeCtx) ([]ValueShape, error) {
 
 // rulePool covers MaxPool (Y and the optional int64 Indices) and AveragePool.
 func rulePool(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	if len(x.Shape) < 3 {
 		return nil, c.errorf("expected X of rank ≥ 3 (N, C, spatial…), got %v", x.Shape)
 	}
@@ -395,10 +376,7 @@ func rulePool(c *nodeCtx) ([]ValueShape, error) {
 }
 
 func ruleGlobalPool(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	if len(x.Shape) < 3 {
 		return nil, c.errorf("expected X of rank ≥ 3 (N, C, spatial…), got %v", x.Shape)
 	}
@@ -412,10 +390,7 @@ func ruleGlobalPool(c *nodeCtx) ([]ValueShape, error) {
 // ruleBatchNorm: Y has X's shape; scale, B, mean and var have one value per
 // channel. The training outputs (running and saved mean and variance) are (C).
 func ruleBatchNorm(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	if len(x.Shape) < 2 {
 		return nil, c.errorf("expected X of rank ≥ 2 (N, C, …), got %v", x.Shape)
 	}
@@ -439,10 +414,7 @@ func ruleBatchNorm(c *nodeCtx) ([]ValueShape, error) {
 // ruleFlatten: (d0…d_{axis−1}, d_axis…) → (d0·…·d_{axis−1}, d_axis·…); axis
 // may be negative from opset 11 and equal to the rank.
 func ruleFlatten(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	out, err := flattenShape(x.Shape, c.n.AttrInt("axis", 1))
 	if err != nil {
 		return nil, c.errorf("%v", err)
@@ -464,21 +436,14 @@ func flattenShape(s []int, axis int64) ([]int, error) {
 // ruleReshape: 0 copies the input dim (unless allowzero=1, opset 14), one −1
 // is inferred from the element count.
 func ruleReshape(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	var target []int64
 	if c.opset < 5 {
 		target = c.n.AttrInts("shape", nil)
 	} else {
-		var ok bool
-		target, ok, err = c.constInts(1, "shape")
-		if err != nil {
+		var err error
+		if target, err = c.requiredInts(1, "shape"); err != nil {
 			return nil, err
-		}
-		if !ok {
-			return nil, c.errorf("expected the shape input, got none")
 		}
 	}
 	out, err := reshapeShape(x.Shape, target, c.n.AttrInt("allowzero", 0) != 0)
@@ -532,10 +497,7 @@ func reshapeShape(in []int, target []int64, allowZero bool) ([]int, error) {
 
 // ruleTranspose: out[i] = in[perm[i]]; the default perm reverses the axes.
 func ruleTranspose(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	perm, err := transposePerm(x.Shape, c.n.AttrInts("perm", nil))
 	if err != nil {
 		return nil, c.errorf("%v", err)
@@ -614,10 +576,7 @@ func squeezeShape(s []int, axes []int64, present bool) ([]int, error) {
 }
 
 func ruleSqueeze(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	axes, present, err := axesOf(c, 13)
 	if err != nil {
 		return nil, err
@@ -657,10 +616,7 @@ func unsqueezeShape(s []int, axes []int64) ([]int, error) {
 }
 
 func ruleUnsqueeze(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	axes, present, err := axesOf(c, 13)
 	if err != nil {
 		return nil, err
@@ -733,21 +689,14 @@ func ruleConcat(c *nodeCtx) ([]ValueShape, error) {
 // rulePad: out[i] = in[i] + pad_begin[i] + pad_end[i]; pads are an attribute
 // before opset 11 ("paddings" in opset 1) and input 1 from it.
 func rulePad(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	var pads []int64
 	if c.opset < 11 {
 		pads = c.n.AttrInts("pads", c.n.AttrInts("paddings", nil))
 	} else {
-		var ok bool
-		pads, ok, err = c.constInts(1, "pads")
-		if err != nil {
+		var err error
+		if pads, err = c.requiredInts(1, "pads"); err != nil {
 			return nil, err
-		}
-		if !ok {
-			return nil, c.errorf("expected the pads input, got none")
 		}
 		if v := c.input(2); v != nil && prod(v.Shape) != 1 {
 			return nil, c.errorf("constant_value: expected one element, got shape %v", v.Shape)
@@ -776,10 +725,7 @@ func rulePad(c *nodeCtx) ([]ValueShape, error) {
 // for ReduceSum from opset 13 (ReduceMean only at 18, past MaxOpset); no axes
 // reduce all axes unless noop_with_empty_axes=1.
 func ruleReduce(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	since := int64(18)
 	if c.n.OpType == "ReduceSum" {
 		since = 13
@@ -821,10 +767,7 @@ func ruleReduce(c *nodeCtx) ([]ValueShape, error) {
 // ruleSoftmax: the output has the input's shape. The axis (default 1 before
 // opset 13, −1 from it) must lie in [−r, r).
 func ruleSoftmax(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	def := int64(-1)
 	if c.opset < 13 {
 		def = 1
@@ -843,10 +786,7 @@ func ruleSoftmax(c *nodeCtx) ([]ValueShape, error) {
 // ruleDropout: output has the input's shape, the optional mask too (BOOL from
 // opset 10, the input's type before).
 func ruleDropout(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	mask := Bool
 	if c.opset < 10 {
 		mask = x.DType
@@ -855,10 +795,7 @@ func ruleDropout(c *nodeCtx) ([]ValueShape, error) {
 }
 
 func ruleCast(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	to, err := castTarget(c)
 	if err != nil {
 		return nil, err
@@ -890,10 +827,7 @@ func castTarget(c *nodeCtx) (DataType, error) {
 // ruleClip: the output has the input's shape; min and max are attributes
 // before opset 11 and optional scalar inputs from it.
 func ruleClip(c *nodeCtx) ([]ValueShape, error) {
-	x, err := c.need(0)
-	if err != nil {
-		return nil, err
-	}
+	x := c.in[0]
 	for i := 1; i <= 2; i++ {
 		if v := c.input(i); v != nil && len(v.Shape) != 0 && prod(v.Shape) != 1 {
 			return nil, c.errorf("input %d (%s): expected a scalar, got shape %v", i, []string{"", "min", "max"}[i], v.Shape)

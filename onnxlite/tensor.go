@@ -654,12 +654,7 @@ func (d *decoder) tensorData(path string, dt DataType, n int64, tf *tensorFields
 	}
 	switch want {
 	case "float_data":
-		vals := make([]float32, 0, n*per)
-		for _, c := range tf.floatD {
-			for i := 0; i+4 <= len(c); i += 4 {
-				vals = append(vals, math.Float32frombits(binary.LittleEndian.Uint32(c[i:])))
-			}
-		}
+		vals := fixed32Floats(tf.floatD, n*per)
 		if dt == Float {
 			return vals, nil
 		}
@@ -747,6 +742,18 @@ func (d *decoder) tensorData(path string, dt DataType, n int64, tf *tensorFields
 		return convert(vals, func(v uint64) BFloat16Bits { return BFloat16Bits(v) }), nil
 	}
 	return convert(vals, func(v uint64) bool { return v != 0 }), nil
+}
+
+// fixed32Floats decodes the n little-endian float32 values of packed fixed32
+// chunks, whose lengths packedChunk has checked to be multiples of 4.
+func fixed32Floats(chunks [][]byte, n int64) []float32 {
+	out := make([]float32, 0, n)
+	for _, c := range chunks {
+		for i := 0; i+4 <= len(c); i += 4 {
+			out = append(out, math.Float32frombits(binary.LittleEndian.Uint32(c[i:])))
+		}
+	}
+	return out
 }
 
 // varints decodes n varints from packed chunks whose varint count the caller
