@@ -62,10 +62,12 @@ func TestIGLinearExact(t *testing.T) {
 			assert.InDelta(t, eval(f, x, 0)-eval(f, base, 0), r.Completeness.Expected, 1e-12)
 		}
 	}
-	// Automatic refinement stops at the first pass: the gap is rounding only.
+	// Automatic refinement stops at the second pass: the gap is rounding
+	// only, and the first refinement leaves the attributions where they were
+	// (the integrand is constant).
 	r, err := IntegratedGradients(context.Background(), f, x, 0, IGOptions{})
 	require.NoError(t, err)
-	assert.Equal(t, 5, r.Settings.Points) // first trapezoid pass, 4 intervals (see IGOptions)
+	assert.Equal(t, 9, r.Settings.Points) // trapezoid 5 → 9 points (see IGOptions)
 }
 
 func TestGradientTimesInputLinear(t *testing.T) {
@@ -407,4 +409,30 @@ func TestIGSeveralBaselines(t *testing.T) {
 	assert.InDelta(t, 0, r.Completeness.Gap, 1e-10)
 	assert.Len(t, r.Settings.Baselines, 3)
 	assert.Equal(t, BaselineZero, r.Settings.Baselines[0].Kind)
+}
+
+func TestIGAutoDoesNotStopOnCancellingErrors(t *testing.T) {
+	// f(x) = x₀³ − x₁³ at x = (1, 1) from the zero baseline: the exact
+	// attributions are (∫₀¹ 3α² dα, −∫₀¹ 3α² dα) = (1, −1) (closed form,
+	// Sundararajan et al. 2017 eq. 1), summing to f(x) − f(0) = 0. The
+	// quadrature errors of the two features are equal and opposite, so the
+	// completeness gap is zero at every point count: the gap alone would
+	// stop at the first pass, where the trapezoid rule with 4 intervals is
+	// off by h²/12·(f′(1) − f′(0)) = 1/32 per feature (Euler–Maclaurin).
+	f := &Func{
+		Shape: []int{2}, Outputs: 1,
+		F:    func(out, x []float64) { out[0] = x[0]*x[0]*x[0] - x[1]*x[1]*x[1] },
+		Grad: func(g, x []float64, _ int) { g[0], g[1] = 3*x[0]*x[0], -3*x[1]*x[1] },
+	}
+	x := []float64{1, 1}
+	coarse, err := IntegratedGradients(context.Background(), f, x, 0, IGOptions{Points: 5})
+	require.NoError(t, err)
+	assert.InDelta(t, 1+1.0/32, coarse.Attributions[0], 1e-12) // trapezoid error, closed form above
+	assert.True(t, coarse.Completeness.OK)                     // the gap cannot see it
+
+	r, err := IntegratedGradients(context.Background(), f, x, 0, IGOptions{})
+	require.NoError(t, err)
+	relL1 := (math.Abs(r.Attributions[0]-1) + math.Abs(r.Attributions[1]+1)) / 2
+	assert.LessOrEqual(t, relL1, DefaultTolerance, "points %d", r.Settings.Points)
+	assert.Greater(t, r.Settings.Points, 5)
 }
