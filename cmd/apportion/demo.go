@@ -3,11 +3,14 @@ package main
 import "github.com/apportion/apportion/internal/demo"
 
 func init() {
-	demoModel = func() (model, sample []byte, name string) {
-		s, err := demo.Get(demo.Default)
+	demoScenario = func(name string) (*demoFiles, error) {
+		s, err := demo.Get(name)
 		if err != nil {
-			return nil, nil, ""
+			return nil, err
 		}
-		return s.Model, s.Sample, s.SampleFile
+		return &demoFiles{
+			model: s.Model, sample: s.Sample, sampleFile: s.SampleFile,
+			reference: s.Reference, referenceFile: s.ReferenceFile,
+		}, nil
 	}
 }

@@ -18,10 +18,25 @@ import (
 	"github.com/apportion/apportion/onnxlite"
 )
 
-// demoModel, when set, supplies a model and a sample to explain when -model
-// is not given. name is the sample's file name; its extension (.csv, .json,
-// .npy or .pb) selects the reader, and the model is reported as "demo:"+name.
+// demoModel, when set, supplies a model and a sample to explain when neither
+// -model nor -demo is given, in place of the default demo scenario. name is
+// the sample's file name; its extension (.csv, .json, .npy or .pb) selects
+// the reader, and the model is reported as "demo:"+name.
 var demoModel func() (model []byte, sample []byte, name string)
+
+// demoFiles is an embedded demo scenario's model, sample and reference set.
+// The file names' extensions select the readers.
+type demoFiles struct {
+	model         []byte
+	sample        []byte
+	sampleFile    string
+	reference     []byte // nil when the scenario has none
+	referenceFile string
+}
+
+// demoScenario, when set, returns the embedded demo scenario called name;
+// the empty name is the default scenario.
+var demoScenario func(name string) (*demoFiles, error)
 
 // The -method values.
 const (
@@ -56,6 +71,7 @@ type explainConfig struct {
 	groups     string
 	format     string
 	out        string
+	demo       string
 
 	toleranceSet bool            // -tolerance was given
 	set          map[string]bool // the flags given
@@ -74,21 +90,28 @@ var methodFlags = map[string][]string{
 }
 
 func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
-	fs := newFlagSet("explain", "-model PATH -input PATH [flags]",
-		"apportion explain -model model.onnx -input samples.csv -method ig -target top",
+	fs := newFlagSet("explain", "[-model PATH -input PATH | -demo NAME] [flags]",
+		"apportion explain -model model.onnx -input samples.csv -method ig -target top\n"+
+			"\tapportion explain -demo welds -format png -out welds.png",
 		"Attributes one output of the model, for each sample of -input, to the\n"+
 			"sample's features. Integrated gradients (ig) and expected gradients\n"+
 			"(expected-grad) report completeness: the attributions should sum to the\n"+
-			"output minus the output at the baseline, within -tolerance.\n\n"+caution, stderr)
+			"output minus the output at the baseline, within -tolerance.\n\n"+
+			"Without -model, explain runs an embedded, invented demo (-demo pumps or\n"+
+			"welds). -format png draws a heatmap for image-shaped samples ((H,W),\n"+
+			"(1,H,W), or (C,H,W) with C ≤ 3: attributions summed over channels) and a\n"+
+			"signed bar chart otherwise; it needs -out, and with several samples\n"+
+			"writes one file per sample, the index before the extension\n"+
+			"(-out a.png: a_0.png, a_1.png, ...).\n\n"+caution, stderr)
 	var c explainConfig
-	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (required)")
-	fs.StringVar(&c.inputPath, "input", "", "samples to explain: a .csv, .json, .npy or .pb `file` (required)")
+	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded demo model chosen by -demo)")
+	fs.StringVar(&c.inputPath, "input", "", "samples to explain: a .csv, .json, .npy or .pb `file` (required with -model; default: the demo's own sample)")
 	fs.StringVar(&c.output, "output", "", "`name` of the model output to explain (default the first)")
 	fs.StringVar(&c.method, "method", methodIG, "attribution method: "+strings.Join(methodNames, ", "))
 	fs.StringVar(&c.targetText, "target", "top", "output element to explain: an index `N`, or top for the largest")
 	fs.BoolVar(&c.logits, "logits", false, "explain the input of the Softmax, LogSoftmax or Sigmoid that produces the output (the logits)")
-	fs.StringVar(&c.baseline, "baseline", "zero", "baseline `kind` for ig: zero, mean (of -reference, else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), or the path of a file of baseline samples (results averaged over them)")
-	fs.StringVar(&c.reference, "reference", "", "reference samples `file` for expected-grad and -baseline mean")
+	fs.StringVar(&c.baseline, "baseline", "zero", "baseline `kind` for ig: zero, mean (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), or the path of a file of baseline samples (results averaged over them)")
+	fs.StringVar(&c.reference, "reference", "", "reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
 	fs.StringVar(&c.stepsText, "steps", "auto", "integration points for ig: a number `N`, or auto to refine until -tolerance")
 	fs.StringVar(&c.ruleText, "rule", "", "quadrature `rule` for ig: trapezoid, left, right, midpoint or gauss-legendre (default trapezoid)")
 	fs.Float64Var(&c.tolerance, "tolerance", 0.005, "relative completeness gap `R` to meet; expected-grad, complete only in expectation, uses 0.05 unless given")
@@ -96,8 +119,9 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs.Float64Var(&c.noise, "noise", 0.15, "smoothgrad noise level `R`: σ / (max x − min x)")
 	fs.Uint64Var(&c.seed, "seed", 1, "seed of the random methods")
 	fs.StringVar(&c.groups, "groups", "", "JSON `file` naming groups of features to report together")
-	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv or npy")
-	fs.StringVar(&c.out, "out", "", "write the result to `file` instead of standard output")
+	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv, npy or png (png needs -out)")
+	fs.StringVar(&c.out, "out", "", "write the result to `file` instead of standard output (png: file_0.png, file_1.png, ... for several samples)")
+	fs.StringVar(&c.demo, "demo", "", "embedded invented demo `scenario` to explain without -model: pumps (the default) or welds")
 	if code, done := parseFlags(fs, args, stdout); done {
 		return code
 	}
@@ -123,6 +147,12 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		return failure(stderr, "explain", err)
 	}
 
+	if c.format == "png" {
+		if _, err := writeExplainPNG(&c, rep); err != nil {
+			return failure(stderr, "explain", err)
+		}
+		return reportFailed(stderr, rep)
+	}
 	w := stdout
 	var buf bytes.Buffer
 	if c.out != "" {
@@ -136,6 +166,12 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			return failure(stderr, "explain", err)
 		}
 	}
+	return reportFailed(stderr, rep)
+}
+
+// reportFailed prints the samples that could not be explained and returns
+// the exit status.
+func reportFailed(stderr io.Writer, rep *explainReport) int {
 	failed := 0
 	for _, e := range rep.Explanations {
 		if e.err != nil {
@@ -170,8 +206,12 @@ func (c *explainConfig) validate() string {
 	}
 	switch c.format {
 	case "table", "json", "csv", "npy":
+	case "png":
+		if c.out == "" {
+			return "-format png needs -out, the file to write the image to (PNG is binary, not for a terminal)"
+		}
 	default:
-		return fmt.Sprintf("-format must be table, json, csv or npy, got %q", c.format)
+		return fmt.Sprintf("-format must be table, json, csv, npy or png, got %q", c.format)
 	}
 	if c.targetText == "top" {
 		c.target = gradattr.TargetTop
@@ -222,13 +262,19 @@ func (c *explainConfig) validate() string {
 	if c.reference != "" && c.method == methodIG && c.baseline != "mean" {
 		return "-reference with -method ig is the set -baseline mean averages; give -baseline mean too"
 	}
-	if c.method == methodExpected && c.reference == "" {
+	// An embedded demo scenario supplies its own reference set.
+	demoReference := c.modelPath == "" && demoScenario != nil && (c.demo != "" || demoModel == nil)
+	if c.method == methodExpected && c.reference == "" && !demoReference {
 		return "-method expected-grad needs -reference, a file of reference samples"
 	}
-	if c.modelPath == "" && demoModel == nil {
+	if c.demo != "" && c.modelPath != "" {
+		return "-demo selects an embedded model and sample; it cannot be combined with -model"
+	}
+	haveDemo := demoModel != nil || demoScenario != nil
+	if c.modelPath == "" && !haveDemo {
 		return "-model is required"
 	}
-	if c.inputPath == "" && (c.modelPath != "" || demoModel == nil) {
+	if c.inputPath == "" && (c.modelPath != "" || !haveDemo) {
 		return "-input is required"
 	}
 	return ""
@@ -254,9 +300,21 @@ func (c *explainConfig) load() (*source, error) {
 	src := &source{}
 	var raw, demoSample []byte
 	var demoName string
+	var dm *demoFiles
 	var err error
 	if c.modelPath == "" {
-		raw, demoSample, demoName = demoModel()
+		switch {
+		case c.demo == "" && demoModel != nil:
+			dm = &demoFiles{}
+			dm.model, dm.sample, dm.sampleFile = demoModel()
+		case demoScenario == nil:
+			return nil, &usageErr{"-demo: this build has no embedded demo"}
+		default:
+			if dm, err = demoScenario(c.demo); err != nil {
+				return nil, &usageErr{err.Error()}
+			}
+		}
+		raw, demoSample, demoName = dm.model, dm.sample, dm.sampleFile
 		src.modelName = "demo:" + demoName
 		src.model, err = decodeModelBytes(raw, src.modelName, "")
 	} else {
@@ -279,7 +337,21 @@ func (c *explainConfig) load() (*source, error) {
 	if err != nil {
 		return nil, err
 	}
-	return src, src.finish(c)
+	if err := src.finish(c); err != nil {
+		return nil, err
+	}
+	if c.reference == "" && (c.method == methodExpected || (c.method == methodIG && c.baseline == "mean")) && dm != nil {
+		if dm.reference == nil {
+			if c.method == methodExpected {
+				return nil, &usageErr{"-method expected-grad needs -reference, a file of reference samples"}
+			}
+		} else if src.reference, err = readInputBytes(dm.referenceFile, dm.reference, src.spec, false); err != nil {
+			return nil, fmt.Errorf("demo reference set: %w", err)
+		} else {
+			c.reference = "demo:" + dm.referenceFile // recorded in the JSON settings
+		}
+	}
+	return src, nil
 }
 
 // prepare selects the input and the output, and reads the names the model's

@@ -10,6 +10,8 @@
 //	explain   attribute one output of a model to its input features
 //	predict   run a model on input files and print its outputs
 //	inspect   describe a model's inputs, outputs, operators and parameters
+//	summarize summarise the attributions of many rows, overall and per group
+//	serve     answer predict and explain requests over HTTP
 //	help      show help for a command
 //
 // Results go to standard output and diagnostics to standard error. The exit
@@ -55,6 +57,8 @@ func commands() []command {
 		{"explain", "attribute one output of a model to its input features", runExplain},
 		{"predict", "run a model on input files and print its outputs", runPredict},
 		{"inspect", "describe a model's inputs, outputs, operators and parameters", runInspect},
+		{"summarize", "summarise the attributions of many rows, overall and per group", runSummarize},
+		{"serve", "answer predict and explain requests over HTTP", runServe},
 	}
 }
 

@@ -123,11 +123,28 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if err != nil {
 		return failure(stderr, "predict", err)
 	}
+	res, err := predictOutputs(m, outs)
+	if err != nil {
+		return failure(stderr, "predict", err)
+	}
+	if *format == "json" {
+		if err := writePredictJSON(stdout, res); err != nil {
+			return failure(stderr, "predict", err)
+		}
+		return exitOK
+	}
+	writePredictTable(stdout, res, samples, metadataList(m.Metadata, "class_names", "classes"))
+	return exitOK
+}
+
+// predictOutputs names the output tensors of m's network as its graph
+// outputs, with their values at the precision they were computed in.
+func predictOutputs(m *onnxlite.Model, outs []*onnxlite.Tensor) ([]predictOutput, error) {
 	res := make([]predictOutput, len(outs))
 	for i, t := range outs {
 		vals, err := t.Float64s()
 		if err != nil {
-			return failure(stderr, "predict", fmt.Errorf("output %q: %w", t.Name, err))
+			return nil, fmt.Errorf("output %q: %w", t.Name, err)
 		}
 		bits := 64
 		if t.DType == onnxlite.Float || t.DType == onnxlite.Float16 || t.DType == onnxlite.BFloat16 {
@@ -142,17 +159,14 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			res[i].Shape = []int{}
 		}
 	}
-	if *format == "json" {
-		enc := json.NewEncoder(stdout)
-		if err := enc.Encode(struct {
-			Outputs []predictOutput `json:"outputs"`
-		}{res}); err != nil {
-			return failure(stderr, "predict", err)
-		}
-		return exitOK
-	}
-	writePredictTable(stdout, res, samples, metadataList(m.Metadata, "class_names", "classes"))
-	return exitOK
+	return res, nil
+}
+
+// writePredictJSON writes predict's JSON document, {"outputs": [...]}.
+func writePredictJSON(w io.Writer, res []predictOutput) error {
+	return json.NewEncoder(w).Encode(struct {
+		Outputs []predictOutput `json:"outputs"`
+	}{res})
 }
 
 // writePredictTable prints, sample by sample, each output's values; an output

@@ -1,0 +1,111 @@
+package main
+
+import (
+	"context"
+	"net/http"
+	"sync/atomic"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/collectors"
+	"github.com/prometheus/client_golang/prometheus/promhttp"
+
+	"github.com/apportion/apportion/gradattr"
+)
+
+// serveMetrics are the server's Prometheus metrics, in a registry of its
+// own (so that several servers, in tests, do not share counters).
+type serveMetrics struct {
+	reg            *prometheus.Registry
+	requests       *prometheus.CounterVec
+	latency        *prometheus.HistogramVec
+	explainLatency *prometheus.HistogramVec
+	incomplete     *prometheus.CounterVec
+	queueDepth     prometheus.Gauge
+	inFlight       prometheus.Gauge
+	passes         *prometheus.CounterVec
+	points         *prometheus.CounterVec
+	stacked        prometheus.Histogram
+
+	passCount atomic.Int64 // every pass, for tests and Passes
+}
+
+// latencyBuckets span 0.5 ms to about 33 s in powers of two.
+var latencyBuckets = prometheus.ExponentialBuckets(0.0005, 2, 17)
+
+func newServeMetrics() *serveMetrics {
+	m := &serveMetrics{reg: prometheus.NewRegistry()}
+	m.requests = prometheus.NewCounterVec(prometheus.CounterOpts{
+		Name: "apportion_http_requests_total",
+		Help: "HTTP requests answered, by route and status code (canceled: the client left first).",
+	}, []string{"route", "code"})
+	m.latency = prometheus.NewHistogramVec(prometheus.HistogramOpts{
+		Name:    "apportion_http_request_duration_seconds",
+		Help:    "Time from receiving a request to answering it, by route.",
+		Buckets: latencyBuckets,
+	}, []string{"route"})
+	m.explainLatency = prometheus.NewHistogramVec(prometheus.HistogramOpts{
+		Name:    "apportion_explain_duration_seconds",
+		Help:    "Time to answer a successful /v1/explain request, by attribution method.",
+		Buckets: latencyBuckets,
+	}, []string{"method"})
+	m.incomplete = prometheus.NewCounterVec(prometheus.CounterOpts{
+		Name: "apportion_completeness_failures_total",
+		Help: "Explained samples whose attributions missed the completeness tolerance, by method.",
+	}, []string{"method"})
+	m.queueDepth = prometheus.NewGauge(prometheus.GaugeOpts{
+		Name: "apportion_queue_depth",
+		Help: "Requests waiting for a worker.",
+	})
+	m.inFlight = prometheus.NewGauge(prometheus.GaugeOpts{
+		Name: "apportion_requests_in_flight",
+		Help: "Requests being computed by a worker.",
+	})
+	m.passes = prometheus.NewCounterVec(prometheus.CounterOpts{
+		Name: "apportion_model_passes_total",
+		Help: "Calls into the network, by kind (forward, gradient: one forward and one backward pass).",
+	}, []string{"kind"})
+	m.points = prometheus.NewCounterVec(prometheus.CounterOpts{
+		Name: "apportion_model_points_total",
+		Help: "Samples sent through the network, by kind.",
+	}, []string{"kind"})
+	m.stacked = prometheus.NewHistogram(prometheus.HistogramOpts{
+		Name:    "apportion_stacked_calls",
+		Help:    "Model calls of concurrent requests stacked into one pass (with -coalesce).",
+		Buckets: []float64{1, 2, 3, 4, 6, 8, 12, 16, 32, 64},
+	})
+	m.reg.MustRegister(m.requests, m.latency, m.explainLatency, m.incomplete, m.queueDepth,
+		m.inFlight, m.passes, m.points, m.stacked,
+		collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	return m
+}
+
+func (m *serveMetrics) countPass(kind string, n int) {
+	m.passCount.Add(1)
+	m.passes.WithLabelValues(kind).Inc()
+	m.points.WithLabelValues(kind).Add(float64(n))
+}
+
+// handler serves the registry in the Prometheus text format.
+func (m *serveMetrics) handler() handlerFunc {
+	h := promhttp.HandlerFor(m.reg, promhttp.HandlerOpts{})
+	return func(w http.ResponseWriter, r *http.Request, _ *requestLog) { h.ServeHTTP(w, r) }
+}
+
+// countingModel counts the passes that reach the network.
+type countingModel struct {
+	m       gradattr.Model
+	metrics *serveMetrics
+}
+
+func (c *countingModel) InputShape() []int { return c.m.InputShape() }
+func (c *countingModel) OutputSize() int   { return c.m.OutputSize() }
+
+func (c *countingModel) Forward(ctx context.Context, x []float64, n int) ([]float64, error) {
+	c.metrics.countPass("forward", n)
+	return c.m.Forward(ctx, x, n)
+}
+
+func (c *countingModel) Gradient(ctx context.Context, x []float64, n int, target []int) ([]float64, []float64, error) {
+	c.metrics.countPass("gradient", n)
+	return c.m.Gradient(ctx, x, n, target)
+}

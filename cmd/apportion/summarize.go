@@ -1,0 +1,880 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"crypto/sha256"
+	"encoding/csv"
+	"encoding/hex"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"math"
+	"os"
+	"path/filepath"
+	"runtime"
+	"sort"
+	"strconv"
+	"strings"
+	"sync"
+	"time"
+	"unicode/utf8"
+
+	"github.com/schollz/progressbar/v3"
+	"golang.org/x/term"
+
+	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/internal/demo"
+)
+
+// byPredicted is the -by value that groups rows by the predicted class.
+const byPredicted = "predicted"
+
+// demoSummaryFile and demoSummaryBy are what summarize reads without -model
+// and -input: the pumps demo's held-out set, grouped by production line.
+const (
+	demoSummaryFile = "pumps_test.csv"
+	demoSummaryBy   = "pump_line"
+)
+
+// maxFirstRow bounds -first-row, so that row keys cannot wrap around.
+const maxFirstRow = 1 << 62
+
+// summarizeConfig holds summarize's flags; the method flags are explain's.
+type summarizeConfig struct {
+	ex        explainConfig
+	by        string
+	format    string
+	out       string
+	bootstrap int
+	firstRow  uint64
+	merge     bool
+	files     []string // the summaries to merge
+
+	// sampleShape is the per-sample shape of a .npy, .json or .pb input;
+	// nil for CSV rows.
+	sampleShape []int
+}
+
+// registerMethodFlags defines the flags that choose and tune the
+// attribution method, with explain's names and defaults; baselineHelp and
+// referenceHelp describe -baseline and -reference, whose defaults differ
+// between commands.
+func registerMethodFlags(fs *flag.FlagSet, c *explainConfig, baselineHelp, referenceHelp string) {
+	fs.StringVar(&c.output, "output", "", "`name` of the model output to explain (default the first)")
+	fs.StringVar(&c.method, "method", methodIG, "attribution method: "+strings.Join(methodNames, ", "))
+	fs.StringVar(&c.targetText, "target", "top", "output element to explain: an index `N`, or top for the largest")
+	fs.BoolVar(&c.logits, "logits", false, "explain the input of the Softmax, LogSoftmax or Sigmoid that produces the output (the logits)")
+	fs.StringVar(&c.baseline, "baseline", "zero", baselineHelp)
+	fs.StringVar(&c.reference, "reference", "", referenceHelp)
+	fs.StringVar(&c.stepsText, "steps", "auto", "integration points for ig: a number `N`, or auto to refine until -tolerance")
+	fs.StringVar(&c.ruleText, "rule", "", "quadrature `rule` for ig: trapezoid, left, right, midpoint or gauss-legendre (default trapezoid)")
+	fs.Float64Var(&c.tolerance, "tolerance", 0.005, "relative completeness gap `R` to meet; expected-grad, complete only in expectation, uses 0.05 unless given")
+	fs.IntVar(&c.samples, "samples", 50, "noisy copies (smoothgrad) or baseline draws (expected-grad) `N`")
+	fs.Float64Var(&c.noise, "noise", 0.15, "smoothgrad noise level `R`: σ / (max x − min x)")
+}
+
+// summarizeMergeFlags are the flags that make sense with -merge.
+var summarizeMergeFlags = map[string]bool{"merge": true, "format": true, "out": true}
+
+func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
+	fs := newFlagSet("summarize", "[-model PATH -input DATA.csv] [-by COLUMN|predicted] [flags]\n       apportion summarize -merge [-format F] [-out FILE] a.json b.json ...",
+		"apportion summarize -model model.onnx -input data.csv -by region -format json -out all.json\n"+
+			"\tapportion summarize -input part2.csv -first-row 250 -format json -out part2.json\n"+
+			"\tapportion summarize -merge part1.json part2.json",
+		"Explains every row of -input and summarises the attributions per feature:\n"+
+			"mean |attribution| and mean signed attribution, each with a 95% interval\n"+
+			"from a Poisson bootstrap (every row gets -bootstrap weights drawn from\n"+
+			"-seed and its row key), over all rows and per subgroup of -by: a column of\n"+
+			"the CSV the model does not see, or predicted for the predicted class.\n"+
+			"Features are ranked by mean |attribution|.\n\n"+
+			"The model's features are the CSV columns named in its feature_names\n"+
+			"metadata, else the first numeric columns. A bad row (wrong length, NaN,\n"+
+			"not a number) is reported with its line and skipped; the status is then 1,\n"+
+			"but the summary is written. Rows are keyed -first-row, -first-row+1, ...:\n"+
+			"summaries of parts of one data set (-format json) merge exactly with\n"+
+			"-merge, into the summary of the whole. Without -model and -input,\n"+
+			"summarize runs the embedded, invented pumps demo on its held-out set, by\n"+
+			"pump_line, against the mean of its reference set.\n\n"+caution, stderr)
+	var sc summarizeConfig
+	c := &sc.ex
+	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded pumps demo)")
+	fs.StringVar(&c.inputPath, "input", "", "rows to explain: a .csv `file` with a header (or .npy, .json, .pb); required with -model")
+	registerMethodFlags(fs, c,
+		"baseline `kind` for ig: zero, mean (of -reference), or the path of a file of baseline samples (results averaged over them); default without -model: mean of the demo's reference set",
+		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
+	fs.Uint64Var(&c.seed, "seed", 1, "seed of the bootstrap weights (and of smoothgrad and expected-grad)")
+	fs.StringVar(&sc.by, "by", "", "group rows by this CSV `column`, or by the predicted class with predicted (default for the demo: pump_line)")
+	fs.StringVar(&sc.format, "format", "table", "output format: table, json (mergeable), csv or png (needs -out)")
+	fs.StringVar(&sc.out, "out", "", "write the summary to `file` instead of standard output")
+	fs.IntVar(&sc.bootstrap, "bootstrap", gradattr.DefaultBootstrap, "number `B` of bootstrap replicates")
+	fs.Uint64Var(&sc.firstRow, "first-row", 0, "row key `K` of the first data row, for a part of a larger data set")
+	fs.BoolVar(&sc.merge, "merge", false, "merge the summary JSON files given as arguments instead of explaining rows")
+
+	flagArgs, files := splitFileArgs(fs, args)
+	if code, done := parseFlags(fs, flagArgs, stdout); done {
+		return code
+	}
+	sc.files = files
+	c.set = map[string]bool{}
+	fs.Visit(func(f *flag.Flag) { c.set[f.Name] = true })
+	if msg := sc.validate(); msg != "" {
+		return usageError(stderr, "summarize", "%s", msg)
+	}
+	if sc.merge {
+		return sc.runMerge(stdout, stderr)
+	}
+
+	s, skipped, name, err := sc.summarize(context.Background(), stderr)
+	if err != nil {
+		if errors.Is(err, errUsage) {
+			return usageError(stderr, "summarize", "%v", err)
+		}
+		return failure(stderr, "summarize", err)
+	}
+	if err := sc.write(stdout, s, name); err != nil {
+		return failure(stderr, "summarize", err)
+	}
+	for _, msg := range skipped {
+		fmt.Fprintf(stderr, "apportion summarize: %s\n", msg)
+	}
+	if len(skipped) > 0 {
+		fmt.Fprintf(stderr, "apportion summarize: %d of %d rows skipped\n", len(skipped), s.Rows()+s.SkippedRows())
+		return exitFail
+	}
+	return exitOK
+}
+
+// splitFileArgs separates positional arguments (the files of -merge) from
+// flags and their values, so that flags may follow the files.
+func splitFileArgs(fs *flag.FlagSet, args []string) (flagArgs, files []string) {
+	for i := 0; i < len(args); i++ {
+		a := args[i]
+		if a == "--" {
+			return flagArgs, append(files, args[i+1:]...)
+		}
+		if !strings.HasPrefix(a, "-") || a == "-" {
+			files = append(files, a)
+			continue
+		}
+		flagArgs = append(flagArgs, a)
+		name := strings.TrimLeft(a, "-")
+		if strings.Contains(name, "=") {
+			continue
+		}
+		f := fs.Lookup(name)
+		if f == nil {
+			continue
+		}
+		if b, ok := f.Value.(interface{ IsBoolFlag() bool }); ok && b.IsBoolFlag() {
+			continue
+		}
+		if i+1 < len(args) {
+			flagArgs = append(flagArgs, args[i+1])
+			i++
+		}
+	}
+	return flagArgs, files
+}
+
+// validate checks the flags; it returns a usage message or "".
+func (sc *summarizeConfig) validate() string {
+	c := &sc.ex
+	switch sc.format {
+	case "table", "json", "csv":
+	case "png":
+		if sc.out == "" {
+			return "-format png needs -out, the file to write the image to"
+		}
+	default:
+		return fmt.Sprintf("-format must be table, json, csv or png, got %q", sc.format)
+	}
+	if sc.merge {
+		var extra []string
+		for name := range c.set {
+			if !summarizeMergeFlags[name] {
+				extra = append(extra, "-"+name)
+			}
+		}
+		sort.Strings(extra)
+		if len(extra) > 0 {
+			return fmt.Sprintf("-merge combines summaries already made; %s cannot be given with it", strings.Join(extra, ", "))
+		}
+		if len(sc.files) == 0 {
+			return "-merge needs the summary JSON files to merge as arguments"
+		}
+		return ""
+	}
+	if len(sc.files) > 0 {
+		return fmt.Sprintf("unexpected arguments: %s (files are read with -input, or merged with -merge)", strings.Join(sc.files, " "))
+	}
+	if sc.bootstrap < 1 || sc.bootstrap > gradattr.MaxBootstrap {
+		return fmt.Sprintf("-bootstrap must be from 1 to %d, got %d", gradattr.MaxBootstrap, sc.bootstrap)
+	}
+	if sc.firstRow > maxFirstRow {
+		return fmt.Sprintf("-first-row must be at most %d, got %d", uint64(maxFirstRow), sc.firstRow)
+	}
+	if c.modelPath != "" && c.inputPath == "" {
+		return "-input is required with -model"
+	}
+	if c.modelPath == "" && c.inputPath == "" && sc.by == "" {
+		sc.by = demoSummaryBy
+	}
+	if c.modelPath == "" && c.reference == "" && c.method == methodIG && !c.set["baseline"] {
+		// The demo's zero point (0 °C, 0 h since service, ...) is far
+		// from any pump; its healthy reference pumps make a baseline that
+		// answers "why not normal?".
+		c.baseline = "mean"
+	}
+	if c.baseline == "mean" && c.reference == "" && c.modelPath != "" {
+		return "-baseline mean needs -reference here: the mean of the rows themselves would differ between parts of a data set, whose summaries could then not be merged"
+	}
+	// explain's checks of the method flags. -seed also seeds the bootstrap,
+	// so it applies to every method here.
+	delete(c.set, "seed")
+	c.format, c.out = "table", ""
+	inputPath := c.inputPath
+	if c.modelPath == "" && c.inputPath == "" {
+		c.inputPath = demoSummaryFile // for explain's check only
+	}
+	msg := c.validate()
+	c.inputPath = inputPath
+	if msg != "" {
+		return msg
+	}
+	return ""
+}
+
+// summaryRow is one data row: its key offset, where it came from, its
+// values and its group, or why it could not be read.
+type summaryRow struct {
+	where string // "line 7" or "sample 3"
+	x     []float64
+	group string
+	err   error
+}
+
+// summarize explains every row and returns the summary, the messages of
+// the skipped rows in row order, and the model's name.
+func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gradattr.Summary, []string, string, error) {
+	c := &sc.ex
+	src, dm, err := sc.loadModel()
+	if err != nil {
+		return nil, nil, "", err
+	}
+	rows, names, err := sc.readRows(src)
+	if err != nil {
+		return nil, nil, "", err
+	}
+	var first []float64
+	for _, r := range rows {
+		if r.err == nil {
+			first = r.x
+			break
+		}
+	}
+	if first == nil {
+		return nil, nil, "", fmt.Errorf("input %s: no row could be read (first problem: %s: %v)", sc.inputName(), rows[0].where, rows[0].err)
+	}
+	shape := []int{1, len(first)}
+	if sc.sampleShape != nil {
+		shape = append([]int{1}, sc.sampleShape...)
+	}
+	src.samples = &batch{Path: sc.inputName(), Shape: shape, Data: first, Samples: 1, Features: names}
+	if src.features == nil {
+		src.features = names
+	}
+	if err := src.finish(c); err != nil {
+		return nil, nil, "", err
+	}
+	if src.reference == nil && dm != nil && c.reference == "" && (c.method == methodExpected || c.baseline == "mean") {
+		if src.reference, err = readInputBytes(dm.ReferenceFile, dm.Reference, src.spec, false); err != nil {
+			return nil, nil, "", fmt.Errorf("demo reference set: %w", err)
+		}
+	}
+	plan, err := c.plan(src)
+	if err != nil {
+		return nil, nil, "", err
+	}
+	settings, err := sc.settings(src, dm)
+	if err != nil {
+		return nil, nil, "", err
+	}
+	features := src.features
+	if len(features) != len(first) {
+		features = names
+	}
+	if len(features) != len(first) {
+		features = featureLabels(src) // indices, or multi-indices for images
+	}
+	s, err := gradattr.NewSummary(gradattr.SummaryOptions{
+		Features: features, Model: src.sha256, Method: c.method, Settings: settings,
+		GroupBy: sc.by, Bootstrap: sc.bootstrap, Seed: c.seed,
+	})
+	if err != nil {
+		return nil, nil, "", err
+	}
+
+	msgs := make([]string, len(rows))
+	fail := func(i int, group string, err error) {
+		msgs[i] = fmt.Sprintf("%s: %v", rows[i].where, err)
+		// A key is taken once; the rows are distinct, so Skip cannot fail.
+		_ = s.Skip(sc.firstRow+uint64(i), group, err)
+	}
+	todo := 0
+	for i, r := range rows {
+		if r.err != nil {
+			fail(i, r.group, r.err)
+		} else {
+			todo++
+		}
+	}
+	tick, done := summaryProgress(stderr, todo)
+	take := func(i int, res *gradattr.Result, err error) {
+		tick()
+		group := rows[i].group
+		if err == nil && sc.by == byPredicted {
+			group = className(src.classes, gradattr.Top(res.Outputs))
+		}
+		if err == nil {
+			err = s.Add(sc.firstRow+uint64(i), group, res.Attributions)
+		}
+		if err != nil {
+			fail(i, group, err)
+		}
+	}
+	// The first row is explained alone: the first gradient program is then
+	// built before any other, so lazily initialised state in gorgonia is
+	// set before goroutines share it.
+	var rest []int
+	for i, r := range rows {
+		if r.err == nil {
+			rest = append(rest, i)
+		}
+	}
+	if len(rest) > 0 {
+		i := rest[0]
+		res, err := c.attribute(ctx, src, rows[i].x, plan)
+		take(i, res, err)
+		rest = rest[1:]
+	}
+	type outcome struct {
+		i   int
+		res *gradattr.Result
+		err error
+	}
+	jobs := make(chan int)
+	results := make(chan outcome)
+	var wg sync.WaitGroup
+	for w := 0; w < max(1, min(runtime.GOMAXPROCS(0), len(rest))); w++ {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for i := range jobs {
+				res, err := c.attribute(ctx, src, rows[i].x, plan)
+				results <- outcome{i, res, err}
+			}
+		}()
+	}
+	go func() {
+		for _, i := range rest {
+			jobs <- i
+		}
+		close(jobs)
+		wg.Wait()
+		close(results)
+	}()
+	for o := range results {
+		take(o.i, o.res, o.err)
+	}
+	done()
+	var skipped []string
+	for _, m := range msgs {
+		if m != "" {
+			skipped = append(skipped, m)
+		}
+	}
+	return s, skipped, src.modelName, nil
+}
+
+// className names output k by the model's class names, else by its index.
+func className(classes []string, k int) string {
+	if k >= 0 && k < len(classes) && classes[k] != "" {
+		return classes[k]
+	}
+	return strconv.Itoa(k)
+}
+
+// summaryProgress shows a progress bar on stderr when it is a terminal.
+func summaryProgress(stderr io.Writer, total int) (tick, done func()) {
+	f, ok := stderr.(*os.File)
+	if !ok || total < 2 || !term.IsTerminal(int(f.Fd())) {
+		return func() {}, func() {}
+	}
+	bar := progressbar.NewOptions(total,
+		progressbar.OptionSetWriter(f),
+		progressbar.OptionSetDescription("explaining rows"),
+		progressbar.OptionShowCount(),
+		progressbar.OptionThrottle(100*time.Millisecond),
+		progressbar.OptionClearOnFinish())
+	return func() { _ = bar.Add(1) }, func() { _ = bar.Finish() }
+}
+
+func (sc *summarizeConfig) inputName() string {
+	if sc.ex.inputPath == "" {
+		return "demo:" + demoSummaryFile
+	}
+	return sc.ex.inputPath
+}
+
+// loadModel reads the model (or the embedded pumps demo's), selects the
+// input and output, and reads the metadata names.
+func (sc *summarizeConfig) loadModel() (*source, *demo.Scenario, error) {
+	c := &sc.ex
+	src := &source{}
+	var raw []byte
+	var dm *demo.Scenario
+	var err error
+	if c.modelPath == "" {
+		if dm, err = demo.Get(demo.Default); err != nil {
+			return nil, nil, err
+		}
+		raw = dm.Model
+		src.modelName = "demo:" + dm.ModelFile
+		src.model, err = decodeModelBytes(raw, src.modelName, "")
+	} else {
+		src.modelName = c.modelPath
+		raw, src.model, err = readModelFile(c.modelPath)
+	}
+	if err != nil {
+		return nil, nil, err
+	}
+	sum := sha256.Sum256(raw)
+	src.sha256 = hex.EncodeToString(sum[:])
+	if err := src.prepare(c); err != nil {
+		return nil, nil, err
+	}
+	return src, dm, nil
+}
+
+// settings are the request's method settings, recorded in the summary and
+// compared when summaries merge. Files are identified by their SHA-256,
+// not their path, so parts summarised in different directories merge.
+func (sc *summarizeConfig) settings(src *source, dm *demo.Scenario) (map[string]any, error) {
+	c := &sc.ex
+	s := settingsJSON(c, &explainReport{src: src})
+	s["output"] = src.output
+	hashFile := func(path string) (string, error) {
+		raw, err := os.ReadFile(path)
+		if err != nil {
+			return "", err
+		}
+		sum := sha256.Sum256(raw)
+		return "sha256:" + hex.EncodeToString(sum[:]), nil
+	}
+	if c.reference != "" {
+		h, err := hashFile(c.reference)
+		if err != nil {
+			return nil, fmt.Errorf("-reference: %w", err)
+		}
+		s["reference"] = h
+	} else if dm != nil && src.reference != nil {
+		sum := sha256.Sum256(dm.Reference)
+		s["reference"] = "sha256:" + hex.EncodeToString(sum[:])
+	}
+	if c.method == methodIG {
+		switch b := c.baseline; {
+		case b == "zero" || b == "mean":
+		default:
+			h, err := hashFile(b)
+			if err != nil {
+				return nil, fmt.Errorf("-baseline: %w", err)
+			}
+			s["baseline"] = h
+		}
+	}
+	return s, nil
+}
+
+// readRows reads the rows to explain and names the model's features.
+func (sc *summarizeConfig) readRows(src *source) ([]summaryRow, []string, error) {
+	c := &sc.ex
+	name := sc.inputName()
+	var raw []byte
+	var err error
+	if c.inputPath == "" {
+		raw, err = demo.File(demoSummaryFile)
+	} else {
+		raw, err = readLimited(c.inputPath)
+	}
+	if err != nil {
+		return nil, nil, err
+	}
+	k := 0
+	if ps, ok := src.spec.perSample(); ok && fullyKnown(ps) {
+		k = product(ps)
+	}
+	if strings.ToLower(filepath.Ext(name)) != ".csv" {
+		if sc.by != "" && sc.by != byPredicted {
+			return nil, nil, &usageErr{fmt.Sprintf("-by %s names a column, and %s is not a CSV file; use -by predicted", sc.by, name)}
+		}
+		b, err := readInputBytes(name, raw, src.spec, true)
+		if err != nil {
+			return nil, nil, err
+		}
+		sc.sampleShape = b.SampleShape()
+		rows := make([]summaryRow, b.Samples)
+		for i := range rows {
+			rows[i] = summaryRow{where: "sample " + strconv.Itoa(i), x: b.Sample(i)}
+			if err := finiteSample(rows[i].x); err != nil {
+				rows[i].err = err
+			}
+		}
+		return rows, nil, nil
+	}
+	return readFeatureCSV(name, raw, src.features, k, sc.by)
+}
+
+// readLimited reads a file of at most maxInputBytes.
+func readLimited(path string) ([]byte, error) {
+	st, err := os.Stat(path)
+	if err != nil {
+		return nil, fmt.Errorf("input: %w", err)
+	}
+	if st.Size() > maxInputBytes {
+		return nil, fmt.Errorf("input %s: file is %d bytes, more than the %d bytes an input may have", path, st.Size(), maxInputBytes)
+	}
+	raw, err := os.ReadFile(path)
+	if err != nil {
+		return nil, fmt.Errorf("input: %w", err)
+	}
+	return raw, nil
+}
+
+// readFeatureCSV reads a CSV file with a header whose columns include the
+// model's k features (named by features when it has k names, else the first
+// k numeric columns; k = 0 when the model leaves it open: every numeric
+// column) and, unless by is "" or "predicted", the grouping column. Rows
+// that cannot be read are returned with their error.
+func readFeatureCSV(name string, raw []byte, features []string, k int, by string) ([]summaryRow, []string, error) {
+	r := csv.NewReader(bytes.NewReader(raw))
+	r.FieldsPerRecord = -1
+	r.TrimLeadingSpace = true
+	header, err := r.Read()
+	if err != nil {
+		return nil, nil, fmt.Errorf("input %s: reading the header: %w", name, err)
+	}
+	for i := range header {
+		header[i] = strings.TrimSpace(header[i])
+	}
+	numeric := true
+	for _, h := range header {
+		if _, err := strconv.ParseFloat(h, 64); err != nil {
+			numeric = false
+		}
+	}
+	if numeric {
+		return nil, nil, fmt.Errorf("input %s: expected a header row naming the columns, got a row of numbers", name)
+	}
+	var records [][]string
+	var lines []int
+	for {
+		rec, err := r.Read()
+		if err == io.EOF {
+			break
+		}
+		var pe *csv.ParseError
+		if err != nil && !(errors.As(err, &pe) && errors.Is(err, csv.ErrFieldCount)) {
+			return nil, nil, fmt.Errorf("input %s: %w", name, err)
+		}
+		line, _ := r.FieldPos(0)
+		records = append(records, rec)
+		lines = append(lines, line)
+	}
+	if len(records) == 0 {
+		return nil, nil, fmt.Errorf("input %s: expected at least one data row after the header, got none", name)
+	}
+	index := map[string]int{}
+	for i, h := range header {
+		if _, dup := index[h]; !dup {
+			index[h] = i
+		}
+	}
+	groupCol := -1
+	if by != "" && by != byPredicted {
+		var ok bool
+		if groupCol, ok = index[by]; !ok {
+			return nil, nil, &usageErr{fmt.Sprintf("-by %s: no such column in %s (columns: %s)", by, name, strings.Join(header, ", "))}
+		}
+	}
+	var cols []int
+	if k > 0 && len(features) == k {
+		for _, f := range features {
+			j, ok := index[f]
+			if !ok {
+				return nil, nil, fmt.Errorf("input %s: the model's feature %q (metadata feature_names) is not a column (columns: %s)", name, f, strings.Join(header, ", "))
+			}
+			cols = append(cols, j)
+		}
+	} else {
+		for j := range header {
+			if j != groupCol && numericColumn(records, j) {
+				cols = append(cols, j)
+			}
+		}
+		if k > 0 {
+			if len(cols) < k {
+				return nil, nil, fmt.Errorf("input %s: the model takes %d features, the file has %d numeric columns (%s)", name, k, len(cols), strings.Join(pick(header, cols), ", "))
+			}
+			cols = cols[:k]
+		}
+	}
+	names := pick(header, cols)
+	rows := make([]summaryRow, len(records))
+	for i, rec := range records {
+		row := summaryRow{where: "line " + strconv.Itoa(lines[i])}
+		if len(rec) != len(header) {
+			row.err = fmt.Errorf("expected %d fields, as in the header, got %d", len(header), len(rec))
+			rows[i] = row
+			continue
+		}
+		if groupCol >= 0 {
+			row.group = strings.TrimSpace(rec[groupCol])
+			if row.group == "" {
+				row.group = "(empty)"
+			}
+		}
+		x := make([]float64, len(cols))
+		for n, j := range cols {
+			f := strings.TrimSpace(rec[j])
+			v, err := strconv.ParseFloat(f, 64)
+			switch {
+			case err != nil:
+				row.err = fmt.Errorf("column %s: %q is not a number", header[j], f)
+			case math.IsNaN(v) || math.IsInf(v, 0):
+				row.err = fmt.Errorf("column %s: %s %w", header[j], f, errNonFinite)
+			}
+			if row.err != nil {
+				break
+			}
+			x[n] = v
+		}
+		if row.err == nil {
+			row.x = x
+		}
+		rows[i] = row
+	}
+	return rows, names, nil
+}
+
+// numericColumn reports whether most of the first rows hold a number in
+// column j.
+func numericColumn(records [][]string, j int) bool {
+	n, yes := 0, 0
+	for _, rec := range records[:min(len(records), 20)] {
+		if j >= len(rec) {
+			continue
+		}
+		n++
+		if _, err := strconv.ParseFloat(strings.TrimSpace(rec[j]), 64); err == nil {
+			yes++
+		}
+	}
+	return n > 0 && 2*yes > n
+}
+
+func pick(s []string, idx []int) []string {
+	out := make([]string, len(idx))
+	for i, j := range idx {
+		out[i] = s[j]
+	}
+	return out
+}
+
+// runMerge merges the summary files and writes the result.
+func (sc *summarizeConfig) runMerge(stdout, stderr io.Writer) int {
+	var all *gradattr.Summary
+	for _, path := range sc.files {
+		f, err := os.Open(path)
+		if err != nil {
+			return failure(stderr, "summarize", err)
+		}
+		s, err := gradattr.DecodeSummary(io.LimitReader(f, maxInputBytes))
+		f.Close()
+		if err != nil {
+			return failure(stderr, "summarize", fmt.Errorf("-merge %s: %w", path, err))
+		}
+		if all == nil {
+			all = s
+			continue
+		}
+		if err := all.Merge(s); err != nil {
+			return failure(stderr, "summarize", fmt.Errorf("-merge %s into %s: %w", path, sc.files[0], err))
+		}
+	}
+	if err := sc.write(stdout, all, ""); err != nil {
+		return failure(stderr, "summarize", err)
+	}
+	return exitOK
+}
+
+// write renders the summary in the chosen format to stdout or -out.
+func (sc *summarizeConfig) write(stdout io.Writer, s *gradattr.Summary, modelName string) error {
+	var buf bytes.Buffer
+	var err error
+	switch sc.format {
+	case "json":
+		var raw []byte
+		if raw, err = s.MarshalJSON(); err == nil {
+			buf.Write(raw)
+			buf.WriteByte('\n')
+		}
+	case "csv":
+		err = writeSummaryCSV(&buf, s)
+	case "png":
+		err = writeSummaryPNG(&buf, s)
+	default:
+		writeSummaryTable(&buf, s, modelName)
+	}
+	if err != nil {
+		return err
+	}
+	if sc.out != "" {
+		return os.WriteFile(sc.out, buf.Bytes(), 0o644)
+	}
+	_, err = stdout.Write(buf.Bytes())
+	return err
+}
+
+// writeSummaryTable prints the overall statistics and then each group's,
+// features ranked by mean |attribution|, with a bar of mean |a|.
+func writeSummaryTable(w io.Writer, s *gradattr.Summary, modelName string) {
+	o := s.Options()
+	model := "sha256 " + o.Model
+	if len(o.Model) > 12 {
+		model = "sha256 " + o.Model[:12] + "…"
+	}
+	if modelName != "" {
+		model = modelName + " (" + model + ")"
+	}
+	fmt.Fprintf(w, "model %s  method %s\n", model, o.Method)
+	fmt.Fprintf(w, "%d rows summarised, %d skipped; 95%% intervals from %d Poisson bootstrap replicates (seed %d)\n",
+		s.Rows(), s.SkippedRows(), o.Bootstrap, o.Seed)
+	writeGroupStats(w, "all rows", s.Overall())
+	for _, g := range s.Groups() {
+		writeGroupStats(w, o.GroupBy+" = "+g.Name, g)
+	}
+}
+
+func writeGroupStats(w io.Writer, title string, g gradattr.GroupStats) {
+	fmt.Fprintf(w, "\n%s (%d rows)\n", title, g.Rows)
+	if g.Rows == 0 {
+		return
+	}
+	ranked := g.Ranked()
+	hidden := 0
+	if len(ranked) > maxTableFeatures {
+		hidden = len(ranked) - maxTableFeatures
+		ranked = ranked[:maxTableFeatures]
+	}
+	defer func() {
+		if hidden > 0 {
+			fmt.Fprintf(w, "  (%d features with smaller mean |a| not shown; -format json or csv lists all)\n", hidden)
+		}
+	}()
+	scale := 0.0
+	for _, f := range ranked {
+		scale = math.Max(scale, f.MeanAbs)
+	}
+	num := func(v float64) string { return strconv.FormatFloat(v, 'g', 4, 64) }
+	signed := func(v float64) string {
+		if v >= 0 {
+			return "+" + num(v)
+		}
+		return num(v)
+	}
+	// Columns: feature, mean |a|, lo, hi, mean a, lo, hi.
+	cells := [][7]string{}
+	for _, f := range ranked {
+		cells = append(cells, [7]string{f.Feature, num(f.MeanAbs), num(f.MeanAbsLo), num(f.MeanAbsHi),
+			signed(f.Mean), signed(f.MeanLo), signed(f.MeanHi)})
+	}
+	var width [7]int
+	for _, r := range append(cells, [7]string{"feature", "mean |a|", "", "", "mean a"}) {
+		for k, cell := range r {
+			width[k] = max(width[k], utf8.RuneCountInString(cell))
+		}
+	}
+	pad := func(s string, n int) string { return strings.Repeat(" ", max(0, n-utf8.RuneCountInString(s))) }
+	interval := func(lo, hi string, wl, wh int) string { return "[" + pad(lo, wl) + lo + ", " + pad(hi, wh) + hi + "]" }
+	iw1 := width[2] + width[3] + 4
+	iw2 := width[5] + width[6] + 4
+	fmt.Fprintf(w, "  %s%s  %s%s  %s%s  %s%s  %s\n", "feature", pad("feature", width[0]),
+		pad("mean |a|", width[1]), "mean |a|", "95% interval", pad("95% interval", iw1),
+		pad("mean a", width[4]), "mean a", "95% interval")
+	for n, r := range cells {
+		// The right half of explain's signed bar: mean |a| ≥ 0.
+		_, right, _ := strings.Cut(bar(ranked[n].MeanAbs, scale), "│")
+		line := fmt.Sprintf("  %s%s  %s%s  %s%s  %s%s  %s%s  %s", r[0], pad(r[0], width[0]),
+			pad(r[1], width[1]), r[1], interval(r[2], r[3], width[2], width[3]), pad("", max(0, 12-iw1)),
+			pad(r[4], width[4]), r[4], interval(r[5], r[6], width[5], width[6]), pad("", max(0, 12-iw2)),
+			strings.TrimRight(right, " "))
+		fmt.Fprintln(w, strings.TrimRight(line, " "))
+	}
+}
+
+// writeSummaryCSV writes one record per group and feature, ranked within
+// each group; the first group is all rows (scope "all").
+func writeSummaryCSV(w io.Writer, s *gradattr.Summary) error {
+	cw := csv.NewWriter(w)
+	if err := cw.Write([]string{"scope", "group", "rows", "rank", "feature", "mean_abs", "mean_abs_lo", "mean_abs_hi", "mean", "mean_lo", "mean_hi", "sd"}); err != nil {
+		return err
+	}
+	g := func(v float64) string { return strconv.FormatFloat(v, 'g', -1, 64) }
+	emit := func(scope string, gs gradattr.GroupStats) error {
+		for rank, f := range gs.Ranked() {
+			rec := []string{scope, gs.Name, strconv.Itoa(gs.Rows), strconv.Itoa(rank + 1), f.Feature,
+				g(f.MeanAbs), g(f.MeanAbsLo), g(f.MeanAbsHi), g(f.Mean), g(f.MeanLo), g(f.MeanHi), g(f.SD)}
+			if err := cw.Write(rec); err != nil {
+				return err
+			}
+		}
+		return nil
+	}
+	if err := emit("all", s.Overall()); err != nil {
+		return err
+	}
+	for _, gs := range s.Groups() {
+		if err := emit(s.Options().GroupBy, gs); err != nil {
+			return err
+		}
+	}
+	cw.Flush()
+	return cw.Error()
+}
+
+// maxSummaryBars is the number of features the PNG chart shows at most.
+const maxSummaryBars = 64
+
+// writeSummaryPNG draws mean |attribution| over all rows, ranked, with the
+// bootstrap intervals as whiskers.
+func writeSummaryPNG(w io.Writer, s *gradattr.Summary) error {
+	ranked := s.Overall().Ranked()
+	if len(ranked) == 0 {
+		return fmt.Errorf("no rows were summarised: nothing to draw")
+	}
+	title := fmt.Sprintf("mean |attribution| (%s) over %d rows, 95%% bootstrap intervals", s.Options().Method, s.Rows())
+	if len(ranked) > maxSummaryBars {
+		title += fmt.Sprintf("; the %d largest of %d features", maxSummaryBars, len(ranked))
+		ranked = ranked[:maxSummaryBars]
+	}
+	labels := make([]string, len(ranked))
+	vals := make([]float64, len(ranked))
+	lo := make([]float64, len(ranked))
+	hi := make([]float64, len(ranked))
+	for i, f := range ranked {
+		labels[i], vals[i], lo[i], hi[i] = f.Feature, f.MeanAbs, f.MeanAbsLo, f.MeanAbsHi
+	}
+	return pngBars(w, title, labels, vals, lo, hi)
+}
