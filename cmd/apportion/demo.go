@@ -9,7 +9,7 @@ func init() {
 			return nil, err
 		}
 		return &demoFiles{
-			model: s.Model, sample: s.Sample, sampleFile: s.SampleFile,
+			model: s.Model, modelFile: s.ModelFile, sample: s.Sample, sampleFile: s.SampleFile,
 			reference: s.Reference, referenceFile: s.ReferenceFile,
 		}, nil
 	}

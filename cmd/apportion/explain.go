@@ -28,6 +28,7 @@ var demoModel func() (model []byte, sample []byte, name string)
 // The file names' extensions select the readers.
 type demoFiles struct {
 	model         []byte
+	modelFile     string // reported as "demo:"+modelFile
 	sample        []byte
 	sampleFile    string
 	reference     []byte // nil when the scenario has none
@@ -106,17 +107,9 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	var c explainConfig
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded demo model chosen by -demo)")
 	fs.StringVar(&c.inputPath, "input", "", "samples to explain: a .csv, .json, .npy or .pb `file` (required with -model; default: the demo's own sample)")
-	fs.StringVar(&c.output, "output", "", "`name` of the model output to explain (default the first)")
-	fs.StringVar(&c.method, "method", methodIG, "attribution method: "+strings.Join(methodNames, ", "))
-	fs.StringVar(&c.targetText, "target", "top", "output element to explain: an index `N`, or top for the largest")
-	fs.BoolVar(&c.logits, "logits", false, "explain the input of the Softmax, LogSoftmax or Sigmoid that produces the output (the logits)")
-	fs.StringVar(&c.baseline, "baseline", "zero", "baseline `kind` for ig: zero, mean (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), or the path of a file of baseline samples (results averaged over them)")
-	fs.StringVar(&c.reference, "reference", "", "reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
-	fs.StringVar(&c.stepsText, "steps", "auto", "integration points for ig: a number `N`, or auto to refine until -tolerance")
-	fs.StringVar(&c.ruleText, "rule", "", "quadrature `rule` for ig: trapezoid, left, right, midpoint or gauss-legendre (default trapezoid)")
-	fs.Float64Var(&c.tolerance, "tolerance", 0.005, "relative completeness gap `R` to meet; expected-grad, complete only in expectation, uses 0.05 unless given")
-	fs.IntVar(&c.samples, "samples", 50, "noisy copies (smoothgrad) or baseline draws (expected-grad) `N`")
-	fs.Float64Var(&c.noise, "noise", 0.15, "smoothgrad noise level `R`: σ / (max x − min x)")
+	registerMethodFlags(fs, &c,
+		"baseline `kind` for ig: zero, mean (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), or the path of a file of baseline samples (results averaged over them)",
+		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
 	fs.Uint64Var(&c.seed, "seed", 1, "seed of the random methods")
 	fs.StringVar(&c.groups, "groups", "", "JSON `file` naming groups of features to report together")
 	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv, npy or png (png needs -out)")
@@ -315,7 +308,10 @@ func (c *explainConfig) load() (*source, error) {
 			}
 		}
 		raw, demoSample, demoName = dm.model, dm.sample, dm.sampleFile
-		src.modelName = "demo:" + demoName
+		src.modelName = "demo:" + dm.modelFile
+		if dm.modelFile == "" {
+			src.modelName = "demo:" + demoName
+		}
 		src.model, err = decodeModelBytes(raw, src.modelName, "")
 	} else {
 		src.modelName = c.modelPath

@@ -533,7 +533,7 @@ func TestExplainDemoFlag(t *testing.T) {
 		require.NoError(t, err)
 		digest := sha256.Sum256(s.Model) // FIPS 180-4
 		doc, _ := explainJSONRun(t, exitOK, "-demo", name, "-method", "grad")
-		assert.Equal(t, "demo:"+s.SampleFile, doc.Model.Path)
+		assert.Equal(t, "demo:"+s.ModelFile, doc.Model.Path)
 		assert.Equal(t, hex.EncodeToString(digest[:]), doc.Model.SHA256, "-demo %s runs the embedded %s", name, s.ModelFile)
 	}
 	// -baseline mean without -model averages the demo's reference set; the

@@ -51,7 +51,10 @@ func newServer(cfg serveConfig, log *slog.Logger) (*server, error) {
 			return nil, err
 		}
 		raw, s.demo = dm.model, dm
-		src.modelName = "demo:" + dm.sampleFile
+		src.modelName = "demo:" + dm.modelFile
+		if dm.modelFile == "" {
+			src.modelName = "demo:" + dm.sampleFile
+		}
 		src.model, err = decodeModelBytes(raw, src.modelName, "")
 		if err != nil {
 			return nil, err

@@ -1,0 +1,124 @@
+package gradattr_test
+
+import (
+	"bytes"
+	"context"
+	"fmt"
+	"testing"
+
+	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/internal/demo"
+	"github.com/apportion/apportion/nn"
+	"github.com/apportion/apportion/onnxlite"
+)
+
+// Benchmarks of the attribution methods on compiled ONNX models, one sample
+// per operation, on the float32 engine (nn's default):
+//
+//	go test ./gradattr -run '^$' -bench ONNX -benchmem
+//
+// The demo heads are the models' graph outputs (class probabilities).
+
+// benchDemo compiles a demo scenario's model on the float32 engine and
+// returns its output head and sample.
+func benchDemo(b *testing.B, scenario string) (*nn.Head, []float64) {
+	b.Helper()
+	s, err := demo.Get(scenario)
+	if err != nil {
+		b.Fatal(err)
+	}
+	m, err := onnxlite.Decode(bytes.NewReader(s.Model), onnxlite.DecodeOptions{})
+	if err != nil {
+		b.Fatal(err)
+	}
+	nw, err := nn.Compile(m, nn.Options{})
+	if err != nil {
+		b.Fatal(err)
+	}
+	h, err := nw.Head(nn.Selection{})
+	if err != nil {
+		b.Fatal(err)
+	}
+	x, err := flattenJSON(s.Sample)
+	if err != nil {
+		b.Fatal(err)
+	}
+	return h, x
+}
+
+// mlp30 is an MLP 30 → 64 → 64 → 2 (Gemm, Relu, Gemm, Relu, Gemm) with
+// seeded weights, float32, built as ONNX IR.
+func mlp30(b *testing.B) (*nn.Head, []float64) {
+	b.Helper()
+	ir := newIR(b, "mlp30", onnxlite.Float, "x", []int64{30}, "y", []int64{2})
+	h := "x"
+	for l, width := range [][2]int{{30, 64}, {64, 64}, {64, 2}} {
+		d := newDense(uint64(100+10*l), width[0], width[1])
+		out := fmt.Sprintf("dense%d", l)
+		if l == 2 {
+			out = "y"
+		}
+		h = ir.node("Gemm", out, []string{h,
+			ir.init(fmt.Sprintf("W%d", l), []int64{int64(d.out), int64(d.in)}, d.w),
+			ir.init(fmt.Sprintf("b%d", l), []int64{int64(d.out)}, d.b)}, attrInt("transB", 1))
+		if l < 2 {
+			h = ir.node("Relu", fmt.Sprintf("relu%d", l), []string{h})
+		}
+	}
+	return ir.head(nn.Float32), uniformRows(1, 1, 30, -1, 1)[0]
+}
+
+// benchIG64 times integrated gradients with 64 Gauss–Legendre points from
+// the zero baseline, after one warm-up call that compiles the programs.
+func benchIG64(b *testing.B, h *nn.Head, x []float64) {
+	ctx := context.Background()
+	opt := gradattr.IGOptions{Points: 64, Rule: gradattr.RuleGaussLegendre}
+	if _, err := gradattr.IntegratedGradients(ctx, h, x, gradattr.TargetTop, opt); err != nil {
+		b.Fatal(err)
+	}
+	b.ReportAllocs()
+	for b.Loop() {
+		if _, err := gradattr.IntegratedGradients(ctx, h, x, gradattr.TargetTop, opt); err != nil {
+			b.Fatal(err)
+		}
+	}
+}
+
+// benchSmoothGrad50 times SmoothGrad with 50 noisy copies, after a
+// warm-up call.
+func benchSmoothGrad50(b *testing.B, h *nn.Head, x []float64) {
+	ctx := context.Background()
+	opt := gradattr.SmoothGradOptions{Samples: 50}
+	if _, err := gradattr.SmoothGrad(ctx, h, x, gradattr.TargetTop, opt); err != nil {
+		b.Fatal(err)
+	}
+	b.ReportAllocs()
+	for b.Loop() {
+		if _, err := gradattr.SmoothGrad(ctx, h, x, gradattr.TargetTop, opt); err != nil {
+			b.Fatal(err)
+		}
+	}
+}
+
+func BenchmarkONNXIG64(b *testing.B) {
+	for _, scenario := range []string{"pumps", "welds"} {
+		b.Run(scenario, func(b *testing.B) {
+			h, x := benchDemo(b, scenario)
+			benchIG64(b, h, x)
+		})
+	}
+}
+
+func BenchmarkONNXSmoothGrad50(b *testing.B) {
+	for _, scenario := range []string{"pumps", "welds"} {
+		b.Run(scenario, func(b *testing.B) {
+			h, x := benchDemo(b, scenario)
+			benchSmoothGrad50(b, h, x)
+		})
+	}
+}
+
+func BenchmarkONNXIG64_MLP30(b *testing.B) {
+	h, x := mlp30(b)
+	benchIG64(b, h, x)
+}
