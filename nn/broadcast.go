@@ -57,7 +57,8 @@ func broadcastBinary(a, b *G.Node, op string) (out *G.Node, err error) {
 	}
 	defer elemRecover(op, &err)
 	bop := &elemBinaryOp{kind: op, dt: dt, aShape: as, bShape: bs, outShape: os,
-		aType: a.Type(), bType: b.Type(), outType: elemNodeType(dt, len(os))}
+		aType: a.Type(), bType: b.Type(), outType: elemNodeType(dt, len(os)),
+		fixed: [2]bool{coreFixed(a), coreFixed(b)}}
 	return G.ApplyOp(bop, a, b)
 }
 
@@ -218,6 +219,9 @@ type elemBinaryOp struct {
 	dt                       tensor.Dtype
 	aShape, bShape, outShape []int
 	aType, bType, outType    hm.Type
+	// fixed marks operands no runtime input reaches (see coreFixed):
+	// their gradients are never built.
+	fixed [2]bool
 }
 
 func (op *elemBinaryOp) Arity() int        { return 2 }
@@ -238,13 +242,13 @@ func (op *elemBinaryOp) OverwritesInput() int {
 }
 func (op *elemBinaryOp) String() string { return op.kind }
 func (op *elemBinaryOp) WriteHash(h hash.Hash) {
-	fmt.Fprintf(h, "elem.%s%v%v%v", op.kind, op.dt, op.aShape, op.bShape)
+	fmt.Fprintf(h, "elem.%s%v%v%v%v", op.kind, op.dt, op.aShape, op.bShape, op.fixed)
 }
 func (op *elemBinaryOp) Hashcode() uint32 { return elemHash(op) }
 func (op *elemBinaryOp) InferShape(...G.DimSizer) (tensor.Shape, error) {
 	return tensor.Shape(op.outShape).Clone(), nil
 }
-func (op *elemBinaryOp) DiffWRT(int) []bool { return []bool{true, true} }
+func (op *elemBinaryOp) DiffWRT(int) []bool { return []bool{!op.fixed[0], !op.fixed[1]} }
 
 func (op *elemBinaryOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error) {
 	if len(inputs) != 2 {
@@ -252,6 +256,9 @@ func (op *elemBinaryOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, 
 	}
 	out := make(G.Nodes, 2)
 	for w := 0; w < 2; w++ {
+		if op.fixed[w] {
+			continue
+		}
 		d := &elemBinaryDiffOp{elemBinaryOp: op, which: w}
 		n, err := G.ApplyOp(d, inputs[0], inputs[1], grad)
 		if err != nil {

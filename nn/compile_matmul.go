@@ -26,6 +26,9 @@ import (
 type coreMatMulOp struct {
 	transA, transB bool
 	rank           int
+	// fixedA and fixedB mark operands no runtime input reaches (see
+	// coreFixed): their gradients are never built.
+	fixedA, fixedB bool
 }
 
 func coreMatMul(a, b *G.Node, transA, transB bool) (*G.Node, error) {
@@ -35,7 +38,7 @@ func coreMatMul(a, b *G.Node, transA, transB bool) (*G.Node, error) {
 	if a.Dtype() != b.Dtype() {
 		return nil, fmt.Errorf("matmul: operand types differ: %v and %v", a.Dtype(), b.Dtype())
 	}
-	return G.ApplyOp(coreMatMulOp{transA: transA, transB: transB, rank: a.Dims()}, a, b)
+	return G.ApplyOp(coreMatMulOp{transA: transA, transB: transB, rank: a.Dims(), fixedA: coreFixed(a), fixedB: coreFixed(b)}, a, b)
 }
 
 func (op coreMatMulOp) Arity() int { return 2 }
@@ -206,7 +209,7 @@ func (op coreMatMulOp) ReturnsPtr() bool     { return false }
 func (op coreMatMulOp) CallsExtern() bool    { return false }
 func (op coreMatMulOp) OverwritesInput() int { return -1 }
 func (op coreMatMulOp) WriteHash(h hash.Hash) {
-	fmt.Fprintf(h, "coreMatMul{%v,%v,%d}", op.transA, op.transB, op.rank)
+	fmt.Fprintf(h, "coreMatMul{%v,%v,%d,%v,%v}", op.transA, op.transB, op.rank, op.fixedA, op.fixedB)
 }
 func (op coreMatMulOp) Hashcode() uint32 {
 	h := fnv.New32a()
@@ -217,7 +220,7 @@ func (op coreMatMulOp) String() string {
 	return fmt.Sprintf("coreMatMul{transA=%v, transB=%v}", op.transA, op.transB)
 }
 
-func (op coreMatMulOp) DiffWRT(inputs int) []bool { return []bool{true, true} }
+func (op coreMatMulOp) DiffWRT(inputs int) []bool { return []bool{!op.fixedA, !op.fixedB} }
 
 func (op coreMatMulOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error) {
 	if len(inputs) != 2 {
@@ -226,27 +229,34 @@ func (op coreMatMulOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, e
 	a, b := inputs[0], inputs[1]
 	var da, db *G.Node
 	var err error
+	// mul builds one gradient product unless its operand is fixed.
+	mul := func(fixed bool, x, y *G.Node, tx, ty bool) (*G.Node, error) {
+		if fixed {
+			return nil, nil
+		}
+		return coreMatMul(x, y, tx, ty)
+	}
 	switch {
 	case !op.transA && !op.transB: // C = A·B
-		if da, err = coreMatMul(grad, b, false, true); err != nil {
+		if da, err = mul(op.fixedA, grad, b, false, true); err != nil {
 			return nil, err
 		}
-		db, err = coreMatMul(a, grad, true, false)
+		db, err = mul(op.fixedB, a, grad, true, false)
 	case op.transA && !op.transB: // C = Aᵀ·B
-		if da, err = coreMatMul(b, grad, false, true); err != nil {
+		if da, err = mul(op.fixedA, b, grad, false, true); err != nil {
 			return nil, err
 		}
-		db, err = coreMatMul(a, grad, false, false)
+		db, err = mul(op.fixedB, a, grad, false, false)
 	case !op.transA && op.transB: // C = A·Bᵀ
-		if da, err = coreMatMul(grad, b, false, false); err != nil {
+		if da, err = mul(op.fixedA, grad, b, false, false); err != nil {
 			return nil, err
 		}
-		db, err = coreMatMul(grad, a, true, false)
+		db, err = mul(op.fixedB, grad, a, true, false)
 	default: // C = Aᵀ·Bᵀ
-		if da, err = coreMatMul(b, grad, true, true); err != nil {
+		if da, err = mul(op.fixedA, b, grad, true, true); err != nil {
 			return nil, err
 		}
-		db, err = coreMatMul(grad, a, true, true)
+		db, err = mul(op.fixedB, grad, a, true, true)
 	}
 	if err != nil {
 		return nil, err

@@ -59,10 +59,10 @@ func conv(x, w, b *G.Node, s convSpec) (y *G.Node, err error) {
 	if op.group < 0 {
 		return nil, fmt.Errorf("nn: Conv: %w: expected group ≥ 1, got %d", ErrConvShape, s.Group)
 	}
-	op.constX, op.constW = convIsConst(x), convIsConst(w)
+	op.constX, op.constW = coreFixed(x), coreFixed(w)
 	children := G.Nodes{x, w}
 	if b != nil {
-		op.constB = convIsConst(b)
+		op.constB = coreFixed(b)
 		children = append(children, b)
 	}
 	shapes := make([]tensor.Shape, len(children))
@@ -104,6 +104,49 @@ func convIsConst(n *G.Node) bool {
 	// their value and print as "const ...".
 	_, ok := n.Op().(interface{ Value() G.Value })
 	return ok && strings.HasPrefix(n.Op().String(), "const ")
+}
+
+// coreFixed reports whether n is the same on every run of a program: a graph
+// constant, a model constant (a valued input node that the builder names
+// with coreConstPrefix: the weights), or a node computed from such nodes
+// alone. Ops skip building gradients for fixed operands: gorgonia compiles
+// every node of the graph, so an unused weight gradient would still run on
+// every backward pass. Nodes built outside a program (other names) are never
+// fixed, so their gradients are always built.
+func coreFixed(n *G.Node) bool {
+	if n == nil {
+		return true
+	}
+	seen := map[*G.Node]bool{}
+	stack := []*G.Node{n}
+	for len(stack) > 0 {
+		c := stack[len(stack)-1]
+		stack = stack[:len(stack)-1]
+		if seen[c] {
+			continue
+		}
+		seen[c] = true
+		if convIsConst(c) {
+			continue
+		}
+		if c.Op() == nil {
+			if !strings.HasPrefix(c.Name(), coreConstPrefix) {
+				return false
+			}
+			continue
+		}
+		if c.Graph() == nil {
+			return false
+		}
+		for it := c.Graph().From(c.ID()); it.Next(); {
+			k, ok := it.Node().(*G.Node)
+			if !ok {
+				return false
+			}
+			stack = append(stack, k)
+		}
+	}
+	return true
 }
 
 // convNormalize fills in the defaults of pads, strides and dilations for

@@ -83,18 +83,39 @@ func convIm2col[T convFloat](g *convGeom, c int, x, col []T) {
 					}
 					xr := xc[iy*g.w : (iy+1)*g.w]
 					ix := j*g.dw - g.pl
-					for xo := range d {
-						if ix >= 0 && ix < g.w {
-							d[xo] = xr[ix]
-						} else {
-							d[xo] = 0
-						}
-						ix += g.sw
+					lo, hi := convSpan(ix, g.sw, g.w, g.ow)
+					clear(d[:lo])
+					clear(d[hi:])
+					if lo == hi {
+						continue
+					}
+					if g.sw == 1 {
+						copy(d[lo:hi], xr[ix+lo:ix+hi])
+						continue
+					}
+					for xo := lo; xo < hi; xo++ {
+						d[xo] = xr[ix+xo*g.sw]
 					}
 				}
 			}
 		}
 	}
+}
+
+// convSpan returns the range [lo, hi) of output columns xo in [0, ow) whose
+// input column ix + xo·sw lies inside [0, w); the others read padding. The
+// range is empty (lo == hi) when no column does.
+func convSpan(ix, sw, w, ow int) (lo, hi int) {
+	if ix < 0 {
+		lo = (-ix + sw - 1) / sw
+	}
+	if rest := w - ix; rest > 0 {
+		hi = min(ow, (rest+sw-1)/sw)
+	}
+	if lo > hi {
+		lo = hi
+	}
+	return lo, hi
 }
 
 // convCol2im is the adjoint of convIm2col: it adds every entry of col back
@@ -118,11 +139,19 @@ func convCol2im[T convFloat](g *convGeom, c int, col, dx []T) {
 					s := src[y*g.ow : (y+1)*g.ow]
 					xr := xc[iy*g.w : (iy+1)*g.w]
 					ix := j*g.dw - g.pl
-					for xo := range s {
-						if ix >= 0 && ix < g.w {
-							xr[ix] += s[xo]
+					lo, hi := convSpan(ix, g.sw, g.w, g.ow)
+					if lo == hi {
+						continue
+					}
+					if g.sw == 1 {
+						dst := xr[ix+lo : ix+hi]
+						for k, v := range s[lo:hi] {
+							dst[k] += v
 						}
-						ix += g.sw
+						continue
+					}
+					for xo := lo; xo < hi; xo++ {
+						xr[ix+xo*g.sw] += s[xo]
 					}
 				}
 			}

@@ -4,8 +4,8 @@
 // forward and one backward pass.
 //
 // A Network compiles lazily: one program per set of input shapes (and, for
-// gradients, per selected output), each run on a bounded pool of gorgonia
-// tape machines, so one Network can be shared by many goroutines. The first
+// gradients, per selected output), each run on a bounded pool of compiled
+// gorgonia graphs, so one Network can be shared by many goroutines. The first
 // input dimension is the batch; models exported with a fixed batch of one are
 // run at any batch size when their graph allows it, and sample by sample
 // otherwise.

@@ -51,7 +51,7 @@ func (b *coreBuilder) value(name string) (*G.Node, error) {
 func (b *coreBuilder) constant(shape []int, vals []float64, name string) *G.Node {
 	b.consts++
 	gs := coreGShape(shape)
-	return G.NewTensor(b.g, b.dt, len(gs), G.WithShape(gs...), G.WithValue(coreDense(b.dt, gs, vals)), G.WithName(fmt.Sprintf("const%d:%s", b.consts, name)))
+	return G.NewTensor(b.g, b.dt, len(gs), G.WithShape(gs...), G.WithValue(coreDense(b.dt, gs, vals)), G.WithName(fmt.Sprintf("%s%d:%s", coreConstPrefix, b.consts, name)))
 }
 
 // scalar is a one-element constant that broadcasts against any tensor.

@@ -39,7 +39,7 @@ func padOp(x *G.Node, pads []int, mode string, value float64) (y *G.Node, err er
 	default:
 		return nil, fmt.Errorf("nn: Pad: %w: expected mode constant, reflect or edge, got %q", ErrConvShape, mode)
 	}
-	op := &padOpT{rank: x.Dims(), pads: append([]int(nil), pads...), mode: mode, value: value, constX: convIsConst(x)}
+	op := &padOpT{rank: x.Dims(), pads: append([]int(nil), pads...), mode: mode, value: value, constX: coreFixed(x)}
 	if op.rank < 1 {
 		return nil, fmt.Errorf("nn: Pad: %w: expected a tensor of rank ≥ 1, got a scalar", ErrConvShape)
 	}

@@ -3,10 +3,6 @@ package nn
 import (
 	"context"
 	"fmt"
-	"hash"
-	"hash/fnv"
-
-	"github.com/chewxy/hm"
 
 	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
@@ -57,19 +53,26 @@ func (mp *machinePool) acquire(ctx context.Context) (*machine, error) {
 // run that used it failed.
 func (mp *machinePool) release(m *machine, ok bool) {
 	if !ok {
-		if m != nil && m.vm != nil {
-			m.vm.Close()
-		}
 		<-mp.slots
 		return
 	}
 	mp.idle <- m
 }
 
-// machine is one gorgonia graph of a program with its tape machine.
+// coreInputPrefix starts the name of every runtime input node, and
+// coreConstPrefix that of every model constant (coreFixed reads it).
+const (
+	coreInputPrefix = "input:"
+	coreConstPrefix = "nn-const:"
+)
+
+// machine is one gorgonia graph of a program with its execution plan.
 type machine struct {
 	g       *G.ExprGraph
-	vm      G.VM
+	plan    []coreStep
+	slot    map[*G.Node]int // node → index in plan and vals
+	vals    []G.Value
+	args    []G.Value
 	dt      tensor.Dtype
 	inputs  []*G.Node
 	outputs []*G.Node
@@ -92,7 +95,7 @@ func (p *program) build() (m *machine, err error) {
 			shape = v.Shape
 		}
 		gs := coreGShape(shape)
-		n := G.NewTensor(b.g, dt, len(gs), G.WithShape(gs...), G.WithName("input:"+name))
+		n := G.NewTensor(b.g, dt, len(gs), G.WithShape(gs...), G.WithName(coreInputPrefix+name))
 		b.vals[name] = n
 		m.inputs = append(m.inputs, n)
 	}
@@ -138,17 +141,16 @@ func (p *program) build() (m *machine, err error) {
 	if m.grad != nil {
 		keep = append(keep, m.grad)
 	}
-	if _, err := G.ApplyOp(newKeepAlive(keep), keep...); err != nil {
-		return nil, fmt.Errorf("pinning outputs: %w", err)
+	if err := m.compile(keep); err != nil {
+		return nil, err
 	}
-	m.vm = G.NewTapeMachine(b.g)
 	return m, nil
 }
 
 // run binds data, runs the tape once and copies the results out. The machine
 // is reset first, so no state leaks from one run to the next.
 func (m *machine) run(p *program, data [][]float64, mask []float64) (outs [][]float64, grad []float64, err error) {
-	m.vm.Reset()
+	defer clear(m.vals) // keep no pass's values alive between runs
 	for i, n := range m.inputs {
 		if err := G.Let(n, coreDense(m.dt, n.Shape(), data[i])); err != nil {
 			return nil, nil, fmt.Errorf("%w: binding input %q: %v", ErrEngine, p.static.Inputs[i], err)
@@ -159,12 +161,12 @@ func (m *machine) run(p *program, data [][]float64, mask []float64) (outs [][]fl
 			return nil, nil, fmt.Errorf("%w: binding the selection mask: %v", ErrEngine, err)
 		}
 	}
-	if err := m.vm.RunAll(); err != nil {
+	if err := m.exec(); err != nil {
 		return nil, nil, fmt.Errorf("%w: %v", ErrEngine, err)
 	}
 	outs = make([][]float64, len(m.outputs))
 	for i, n := range m.outputs {
-		if outs[i], err = coreValueFloats(n.Value()); err != nil {
+		if outs[i], err = coreValueFloats(m.vals[m.slot[n]]); err != nil {
 			return nil, nil, fmt.Errorf("%w: output %q: %v", ErrEngine, p.outNames[i], err)
 		}
 		if want := prod(p.outShapes[i]); len(outs[i]) != want {
@@ -172,7 +174,7 @@ func (m *machine) run(p *program, data [][]float64, mask []float64) (outs [][]fl
 		}
 	}
 	if m.grad != nil {
-		if grad, err = coreValueFloats(m.grad.Value()); err != nil {
+		if grad, err = coreValueFloats(m.vals[m.slot[m.grad]]); err != nil {
 			return nil, nil, fmt.Errorf("%w: gradient: %v", ErrEngine, err)
 		}
 		if len(grad) != len(data[0]) {
@@ -180,6 +182,97 @@ func (m *machine) run(p *program, data [][]float64, mask []float64) (outs [][]fl
 		}
 	}
 	return outs, grad, nil
+}
+
+// coreStep is one node of a machine's plan: an input or weight node (op
+// nil), whose value is the one bound to it, or an op applied to the values
+// of earlier steps.
+type coreStep struct {
+	node *G.Node
+	op   G.Op
+	args []int
+}
+
+// compile orders the nodes that the values keep depend on, children first,
+// into m.plan. Nodes nothing requested depends on (the gradients of weights
+// and biases that differentiation builds alongside the input gradient) are
+// left out, so they never run.
+//
+// The plan runs each op's Do on the values of its children, on the calling
+// goroutine. gorgonia's tape machine would run the same ops, but every
+// RunAll locks an OS thread and hands the work to a new goroutine, a
+// cross-thread handoff that costs tens of microseconds per pass, most of the
+// time of a small model's pass at GOMAXPROCS=1.
+func (m *machine) compile(keep G.Nodes) error {
+	live := map[*G.Node]bool{}
+	stack := append(G.Nodes(nil), keep...)
+	for len(stack) > 0 {
+		n := stack[len(stack)-1]
+		stack = stack[:len(stack)-1]
+		if live[n] {
+			continue
+		}
+		live[n] = true
+		for it := m.g.From(n.ID()); it.Next(); {
+			c, ok := it.Node().(*G.Node)
+			if !ok {
+				return fmt.Errorf("%w: node %v has a child of type %T", ErrEngine, n, it.Node())
+			}
+			stack = append(stack, c)
+		}
+	}
+	sorted, err := G.Sort(m.g)
+	if err != nil {
+		return fmt.Errorf("%w: ordering the graph: %v", ErrEngine, err)
+	}
+	m.slot = map[*G.Node]int{}
+	for i := len(sorted) - 1; i >= 0; i-- { // G.Sort puts parents first
+		n := sorted[i]
+		if !live[n] {
+			continue
+		}
+		st := coreStep{node: n, op: n.Op()}
+		if st.op != nil {
+			for it := m.g.From(n.ID()); it.Next(); {
+				j, ok := m.slot[it.Node().(*G.Node)]
+				if !ok {
+					return fmt.Errorf("%w: node %v runs before its child %v", ErrEngine, n, it.Node())
+				}
+				st.args = append(st.args, j)
+			}
+			if len(st.args) > cap(m.args) {
+				m.args = make([]G.Value, 0, len(st.args))
+			}
+		}
+		m.slot[n] = len(m.plan)
+		m.plan = append(m.plan, st)
+	}
+	m.vals = make([]G.Value, len(m.plan))
+	return nil
+}
+
+// exec runs the plan once on the values bound to the input nodes.
+func (m *machine) exec() error {
+	for i, st := range m.plan {
+		if st.op == nil {
+			v := st.node.Value()
+			if v == nil {
+				return fmt.Errorf("node %v has no value bound", st.node)
+			}
+			m.vals[i] = v
+			continue
+		}
+		args := m.args[:0]
+		for _, j := range st.args {
+			args = append(args, m.vals[j])
+		}
+		v, err := st.op.Do(args...)
+		if err != nil {
+			return fmt.Errorf("node %v (%v): %w", st.node, st.op, err)
+		}
+		m.vals[i] = v
+	}
+	return nil
 }
 
 // coreGShape is the gorgonia shape of an ONNX shape: rank-0 values are held
@@ -234,46 +327,6 @@ func coreValueFloats(v G.Value) ([]float64, error) {
 	}
 	return nil, fmt.Errorf("unexpected value %T", v)
 }
-
-// coreKeepAliveOp reads every value a run returns and does nothing else.
-// gorgonia lets an op declared as overwriting its input reuse that input's
-// memory once no later instruction reads it; a requested value that is also
-// fed to such an op (logits into an in-place softmax, say) would otherwise be
-// overwritten before it is copied out. The tape runs this op last.
-type coreKeepAliveOp struct{ types []hm.Type }
-
-func newKeepAlive(ns G.Nodes) coreKeepAliveOp {
-	op := coreKeepAliveOp{}
-	for _, n := range ns {
-		op.types = append(op.types, n.Type())
-	}
-	return op
-}
-
-func (op coreKeepAliveOp) Arity() int { return len(op.types) }
-func (op coreKeepAliveOp) Type() hm.Type {
-	return hm.NewFnType(append(append([]hm.Type(nil), op.types...), op.types[0])...)
-}
-func (op coreKeepAliveOp) InferShape(in ...G.DimSizer) (tensor.Shape, error) {
-	s, ok := in[0].(tensor.Shape)
-	if !ok {
-		return nil, fmt.Errorf("keep-alive: input has no shape")
-	}
-	return s.Clone(), nil
-}
-
-// Do returns its first input unchanged (the result is never read).
-func (op coreKeepAliveOp) Do(vs ...G.Value) (G.Value, error) { return vs[0], nil }
-func (op coreKeepAliveOp) ReturnsPtr() bool                  { return false }
-func (op coreKeepAliveOp) CallsExtern() bool                 { return false }
-func (op coreKeepAliveOp) OverwritesInput() int              { return -1 }
-func (op coreKeepAliveOp) WriteHash(h hash.Hash)             { fmt.Fprintf(h, "coreKeepAlive{%d}", len(op.types)) }
-func (op coreKeepAliveOp) Hashcode() uint32 {
-	h := fnv.New32a()
-	op.WriteHash(h)
-	return h.Sum32()
-}
-func (op coreKeepAliveOp) String() string { return fmt.Sprintf("coreKeepAlive{%d}", len(op.types)) }
 
 // coreNeeded returns the nodes, in order, that the values outs depend on.
 func coreNeeded(nodes []*onnxlite.Node, outs []string) []*onnxlite.Node {
