@@ -1,0 +1,71 @@
+package bench
+
+import (
+	"context"
+	"fmt"
+	"testing"
+
+	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/nn"
+)
+
+func zooHead(tb testing.TB, s Spec) *nn.Head {
+	tb.Helper()
+	m, err := Build(s)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	nw, err := nn.Compile(m, nn.Options{})
+	if err != nil {
+		tb.Fatal(err)
+	}
+	h, err := nw.Head(nn.Selection{})
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return h
+}
+
+// BenchmarkZoo times the rows of bench/compare on the Go side alone:
+// go test ./bench -run '^$' -bench Zoo -benchmem
+func BenchmarkZoo(b *testing.B) {
+	ctx := context.Background()
+	for _, s := range Zoo {
+		h := zooHead(b, s)
+		x := Input(s, 1)
+		out, err := h.Forward(ctx, x, 1)
+		if err != nil {
+			b.Fatal(err)
+		}
+		t := gradattr.Top(out)
+		calls := []struct {
+			name string
+			f    func() error
+		}{
+			{"predict", func() error { _, err := h.Forward(ctx, x, 1); return err }},
+			{"gradient", func() error { _, err := gradattr.Gradient(ctx, h, x, t, gradattr.GradientOptions{}); return err }},
+			{"ig64", func() error {
+				_, err := gradattr.IntegratedGradients(ctx, h, x, t, gradattr.IGOptions{Points: 64})
+				return err
+			}},
+			{"smoothgrad50", func() error {
+				_, err := gradattr.SmoothGrad(ctx, h, x, t, gradattr.SmoothGradOptions{Samples: 50})
+				return err
+			}},
+		}
+		for _, c := range calls {
+			b.Run(fmt.Sprintf("%s/%s", s.Name, c.name), func(b *testing.B) {
+				if err := c.f(); err != nil {
+					b.Fatal(err)
+				}
+				b.ReportAllocs()
+				b.ResetTimer()
+				for i := 0; i < b.N; i++ {
+					if err := c.f(); err != nil {
+						b.Fatal(err)
+					}
+				}
+			})
+		}
+	}
+}

@@ -1,0 +1,538 @@
+// Command compare times apportion against PyTorch on the benchmark zoo, side
+// by side, in one run:
+//
+//	go run ./bench/compare [-quick] [-reps 5] [-out bench/RESULTS.md]
+//
+// For each zoo model (bench/models, written by `go run ./bench/zoo`) it times
+// five tasks: predict (one sample), gradient (one sample), integrated
+// gradients with 64 trapezoid points (one sample, one batched pass), SmoothGrad
+// with 50 noisy copies (one sample, one batched pass), and integrated
+// gradients with 64 points over many samples (throughput). Each side runs as
+// a child process pinned to a thread count: the Go side with GOMAXPROCS set,
+// the PyTorch side (bench/torch_side.py under /usr/bin/python3) with
+// torch.set_num_threads. Before timing, both sides compute outputs, input
+// gradients and integrated gradients of the same input and must agree to
+// 1e-5 (relative to the largest magnitude). Repetitions alternate between the
+// sides and the median is reported.
+//
+// FLOPs are counted from the graph: 2 per multiply-accumulate of Gemm and
+// Conv; a forward and backward pass counts 3 forward passes (common
+// practice: the backward pass of a linear layer costs two matrix products).
+// The peak is the best rate of the float32 GEMM kernel nn calls (gonum's
+// pure-Go Sgemm, 256×256×256 and 64×1024×256), measured in the same run at
+// the same thread count.
+package main
+
+import (
+	"bufio"
+	"bytes"
+	"encoding/json"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"math"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"runtime"
+	"sort"
+	"strings"
+	"time"
+
+	"github.com/apportion/apportion/bench"
+	"github.com/apportion/apportion/onnxlite"
+)
+
+func main() {
+	child := flag.Bool("child", false, "serve the Go side of the protocol on stdin/stdout (used by compare itself)")
+	quick := flag.Bool("quick", false, "shorter timings and 4 samples for the throughput row (finishes in a few minutes)")
+	reps := flag.Int("reps", 5, "repetitions per measurement (median reported)")
+	dir := flag.String("models", filepath.Join("bench", "models"), "directory of the zoo models (written when missing)")
+	out := flag.String("out", filepath.Join("bench", "RESULTS.md"), "results file (empty: none)")
+	python := flag.String("python", "/usr/bin/python3", "Python interpreter with torch and onnx")
+	script := flag.String("torch-side", filepath.Join("bench", "torch_side.py"), "PyTorch side script")
+	models := flag.String("only", "", "comma-separated zoo models to run (default all)")
+	flag.Usage = func() {
+		fmt.Fprintf(os.Stderr, "usage: go run ./bench/compare [-quick] [-reps N] [-out FILE]\n\nexample:\n  go run ./bench/compare -quick\n\n")
+		flag.PrintDefaults()
+	}
+	flag.Parse()
+	if *child {
+		if err := runChild(*dir, os.Stdin, os.Stdout); err != nil {
+			fmt.Fprintln(os.Stderr, "compare child:", err)
+			os.Exit(1)
+		}
+		return
+	}
+	if *reps < 1 {
+		fmt.Fprintln(os.Stderr, "compare: -reps must be at least 1")
+		os.Exit(2)
+	}
+	cfg := config{quick: *quick, reps: *reps, dir: *dir, out: *out, python: *python, script: *script}
+	if *models != "" {
+		cfg.only = strings.Split(*models, ",")
+	}
+	if err := run(cfg); err != nil {
+		fmt.Fprintln(os.Stderr, "compare:", err)
+		os.Exit(1)
+	}
+}
+
+type config struct {
+	quick          bool
+	reps           int
+	dir, out       string
+	python, script string
+	only           []string
+}
+
+// task is one timed row.
+type task struct {
+	name    string
+	label   string
+	samples int
+	// passes is the number of forward-equivalents per call: 1 per forward
+	// sample, 3 per forward+backward sample.
+	passes float64
+}
+
+func tasks(quick bool) []task {
+	n := 64
+	if quick {
+		n = 4
+	}
+	return []task{
+		{"predict", "predict (1)", 1, 1},
+		{"gradient", "gradient (1)", 1, 3},
+		{"ig64", "IG-64 (1)", 1, 3 * 64},
+		{"smoothgrad50", "SmoothGrad-50 (1)", 1, 3 * 50},
+		{"ig64x", fmt.Sprintf("IG-64 ×%d samples", n), n, 3 * 64 * float64(n)},
+	}
+}
+
+// peer is a child process speaking the JSON-lines protocol.
+type peer struct {
+	cmd    *exec.Cmd
+	in     io.WriteCloser
+	out    *bufio.Scanner
+	stderr *bytes.Buffer
+}
+
+func startPeer(name string, args []string, env []string) (*peer, error) {
+	c := exec.Command(name, args...)
+	c.Env = env
+	var errBuf bytes.Buffer
+	c.Stderr = &errBuf
+	in, err := c.StdinPipe()
+	if err != nil {
+		return nil, err
+	}
+	outp, err := c.StdoutPipe()
+	if err != nil {
+		return nil, err
+	}
+	if err := c.Start(); err != nil {
+		return nil, err
+	}
+	sc := bufio.NewScanner(outp)
+	sc.Buffer(make([]byte, 64<<20), 64<<20)
+	return &peer{cmd: c, in: in, out: sc, stderr: &errBuf}, nil
+}
+
+func (p *peer) call(req request) (response, error) {
+	b, _ := json.Marshal(req)
+	if _, err := p.in.Write(append(b, '\n')); err != nil {
+		return response{}, fmt.Errorf("%s: %w (stderr: %s)", p.cmd.Path, err, p.stderr.String())
+	}
+	if !p.out.Scan() {
+		return response{}, fmt.Errorf("%s: no answer (stderr: %s)", p.cmd.Path, p.stderr.String())
+	}
+	var r response
+	if err := json.Unmarshal(p.out.Bytes(), &r); err != nil {
+		return response{}, err
+	}
+	if r.Error != "" {
+		return r, errors.New(r.Error)
+	}
+	return r, nil
+}
+
+func (p *peer) close() {
+	p.in.Close()
+	p.cmd.Wait()
+}
+
+// row is one measured line of the table.
+type row struct {
+	model, task string
+	threads     int
+	goSec       float64
+	torchSec    float64 // 0 when torch is not available
+	gflops      float64
+	peakShare   float64
+	allocs      float64
+	bytes       float64
+}
+
+func (r row) ratio() float64 {
+	if r.torchSec == 0 {
+		return math.NaN()
+	}
+	return r.goSec / r.torchSec
+}
+
+func run(cfg config) error {
+	if err := ensureModels(cfg.dir); err != nil {
+		return err
+	}
+	torchVersion, torchErr := probeTorch(cfg.python)
+	if torchErr != nil {
+		fmt.Fprintf(os.Stderr, "compare: PyTorch not usable with %s (%v)\n  install it with: apt-get install python3-torch python3-onnx\n  running the Go side only\n", cfg.python, torchErr)
+	}
+	self, err := os.Executable()
+	if err != nil {
+		return err
+	}
+	loadStart := loadavg()
+	started := time.Now()
+	target := 0.3
+	if cfg.quick {
+		target = 0.08
+	}
+	specs := bench.Zoo
+	if cfg.only != nil {
+		specs = nil
+		for _, n := range cfg.only {
+			s, err := bench.Lookup(n)
+			if err != nil {
+				return err
+			}
+			specs = append(specs, s)
+		}
+	}
+	flops := map[string]float64{}
+	for _, s := range specs {
+		m, err := onnxlite.DecodeFile(filepath.Join(cfg.dir, s.Name+".onnx"), onnxlite.DecodeOptions{})
+		if err != nil {
+			return err
+		}
+		f, err := bench.FLOPs(m, s.Input)
+		if err != nil {
+			return err
+		}
+		flops[s.Name] = float64(f)
+	}
+	var rows []row
+	var checks []string
+	peaks := map[int]float64{}
+	goVersion := runtime.Version()
+	for _, threads := range []int{1, 2} {
+		env := append(os.Environ(), fmt.Sprintf("GOMAXPROCS=%d", threads))
+		gp, err := startPeer(self, []string{"-child", "-models", cfg.dir}, env)
+		if err != nil {
+			return err
+		}
+		var tp *peer
+		if torchErr == nil {
+			tenv := append(os.Environ(), fmt.Sprintf("OMP_NUM_THREADS=%d", threads), fmt.Sprintf("MKL_NUM_THREADS=%d", threads))
+			if tp, err = startPeer(cfg.python, []string{cfg.script, "--threads", fmt.Sprint(threads), "--models", cfg.dir}, tenv); err != nil {
+				gp.close()
+				return err
+			}
+		}
+		pk, err := gp.call(request{Cmd: "peak"})
+		if err != nil {
+			return err
+		}
+		peaks[threads] = pk.GFLOPS
+		fmt.Fprintf(os.Stderr, "threads=%d: Go GEMM peak (gonum Sgemm, best of 256³ and 64×1024×256) %.2f GFLOP/s\n", threads, pk.GFLOPS)
+		for _, s := range specs {
+			if threads == 1 && tp != nil {
+				msg, err := agree(gp, tp, s.Name)
+				if err != nil {
+					gp.close()
+					tp.close()
+					return fmt.Errorf("%s: the two sides disagree, not timing: %w", s.Name, err)
+				}
+				checks = append(checks, msg)
+				fmt.Fprintln(os.Stderr, msg)
+			}
+			for _, tk := range tasks(cfg.quick) {
+				r, err := measure(gp, tp, s.Name, tk, cfg.reps, target)
+				if err != nil {
+					return fmt.Errorf("%s %s: %w", s.Name, tk.name, err)
+				}
+				r.threads = threads
+				r.gflops = flops[s.Name] * tk.passes / r.goSec / 1e9
+				r.peakShare = r.gflops / peaks[threads]
+				rows = append(rows, r)
+				fmt.Fprintln(os.Stderr, formatRow(r))
+			}
+		}
+		gp.close()
+		if tp != nil {
+			tp.close()
+		}
+	}
+	loadEnd := loadavg()
+	table := renderTable(rows)
+	fmt.Print(table)
+	if cfg.out != "" {
+		md := renderMarkdown(cfg, rows, checks, peaks, goVersion, torchVersion, loadStart, loadEnd, time.Since(started))
+		if err := os.WriteFile(cfg.out, []byte(md), 0o644); err != nil {
+			return err
+		}
+		fmt.Fprintf(os.Stderr, "wrote %s\n", cfg.out)
+	}
+	return nil
+}
+
+// ensureModels writes the zoo into dir when a model file is missing.
+func ensureModels(dir string) error {
+	for _, s := range bench.Zoo {
+		path := filepath.Join(dir, s.Name+".onnx")
+		if _, err := os.Stat(path); err == nil {
+			continue
+		}
+		if err := os.MkdirAll(dir, 0o755); err != nil {
+			return err
+		}
+		m, err := bench.Build(s)
+		if err != nil {
+			return err
+		}
+		var buf bytes.Buffer
+		if err := onnxlite.Encode(&buf, m); err != nil {
+			return err
+		}
+		if err := os.WriteFile(path, buf.Bytes(), 0o644); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+func probeTorch(python string) (string, error) {
+	out, err := exec.Command(python, "-c", "import torch, onnx; print(torch.__version__)").CombinedOutput()
+	if err != nil {
+		return "", fmt.Errorf("%v: %s", err, strings.TrimSpace(string(out)))
+	}
+	return strings.TrimSpace(string(out)), nil
+}
+
+// agree compares outputs, input gradients and IG attributions of both sides
+// on the same batch of two inputs.
+func agree(gp, tp *peer, model string) (string, error) {
+	g, err := gp.call(request{Cmd: "check", Model: model, N: 2})
+	if err != nil {
+		return "", fmt.Errorf("go side: %w", err)
+	}
+	t, err := tp.call(request{Cmd: "check", Model: model, N: 2})
+	if err != nil {
+		return "", fmt.Errorf("torch side: %w", err)
+	}
+	if g.Target != t.Target {
+		return "", fmt.Errorf("top class %d (Go) vs %d (torch)", g.Target, t.Target)
+	}
+	const tol = 1e-5
+	var parts []string
+	for _, c := range []struct {
+		name string
+		a, b []float64
+	}{{"outputs", g.Out, t.Out}, {"gradients", g.Grad, t.Grad}, {"IG-64", g.IG, t.IG}} {
+		d, scale, err := maxDiff(c.a, c.b)
+		if err != nil {
+			return "", fmt.Errorf("%s: %w", c.name, err)
+		}
+		if d > tol*math.Max(scale, 1) {
+			return "", fmt.Errorf("%s differ by %.3g (scale %.3g, tolerance %.0e relative)", c.name, d, scale, tol)
+		}
+		parts = append(parts, fmt.Sprintf("%s max |Δ| %.2g (scale %.2g)", c.name, d, scale))
+	}
+	return fmt.Sprintf("%s: sides agree within 1e-5: %s", model, strings.Join(parts, ", ")), nil
+}
+
+func maxDiff(a, b []float64) (d, scale float64, err error) {
+	if len(a) != len(b) || len(a) == 0 {
+		return 0, 0, fmt.Errorf("lengths %d and %d", len(a), len(b))
+	}
+	for i := range a {
+		d = math.Max(d, math.Abs(a[i]-b[i]))
+		scale = math.Max(scale, math.Abs(b[i]))
+	}
+	return d, scale, nil
+}
+
+// measure times tk on both sides: a calibration call sets the iteration
+// count so that one measurement lasts about target seconds, then reps
+// measurements alternate between the sides.
+func measure(gp, tp *peer, model string, tk task, reps int, target float64) (row, error) {
+	iters := func(p *peer) (int, error) {
+		r, err := p.call(request{Cmd: "time", Model: model, Task: tk.name, Iters: 1, Samples: tk.samples})
+		if err != nil {
+			return 0, err
+		}
+		return max(1, int(math.Ceil(target/math.Max(r.Seconds, 1e-7)))), nil
+	}
+	gi, err := iters(gp)
+	if err != nil {
+		return row{}, fmt.Errorf("go side: %w", err)
+	}
+	ti := 0
+	if tp != nil {
+		if ti, err = iters(tp); err != nil {
+			return row{}, fmt.Errorf("torch side: %w", err)
+		}
+	}
+	var gs, ts, allocs, byts []float64
+	for i := 0; i < reps; i++ {
+		r, err := gp.call(request{Cmd: "time", Model: model, Task: tk.name, Iters: gi, Samples: tk.samples})
+		if err != nil {
+			return row{}, fmt.Errorf("go side: %w", err)
+		}
+		gs = append(gs, r.Seconds/float64(gi))
+		allocs = append(allocs, r.Allocs)
+		byts = append(byts, r.Bytes)
+		if tp != nil {
+			r, err := tp.call(request{Cmd: "time", Model: model, Task: tk.name, Iters: ti, Samples: tk.samples})
+			if err != nil {
+				return row{}, fmt.Errorf("torch side: %w", err)
+			}
+			ts = append(ts, r.Seconds/float64(ti))
+		}
+	}
+	out := row{model: model, task: tk.label, goSec: median(gs), allocs: median(allocs), bytes: median(byts)}
+	if tp != nil {
+		out.torchSec = median(ts)
+	}
+	return out, nil
+}
+
+func median(v []float64) float64 {
+	s := append([]float64(nil), v...)
+	sort.Float64s(s)
+	n := len(s)
+	if n%2 == 1 {
+		return s[n/2]
+	}
+	return (s[n/2-1] + s[n/2]) / 2
+}
+
+func loadavg() string {
+	b, err := os.ReadFile("/proc/loadavg")
+	if err != nil {
+		return "unknown"
+	}
+	f := strings.Fields(string(b))
+	if len(f) < 3 {
+		return "unknown"
+	}
+	return strings.Join(f[:3], " ")
+}
+
+func cpuModel() string {
+	b, err := os.ReadFile("/proc/cpuinfo")
+	if err != nil {
+		return "unknown"
+	}
+	for _, line := range strings.Split(string(b), "\n") {
+		if k, v, ok := strings.Cut(line, ":"); ok && strings.TrimSpace(k) == "model name" {
+			return strings.TrimSpace(v)
+		}
+	}
+	return "unknown"
+}
+
+func human(sec float64) string {
+	switch {
+	case sec == 0:
+		return "-"
+	case sec < 1e-3:
+		return fmt.Sprintf("%.1f µs", sec*1e6)
+	case sec < 1:
+		return fmt.Sprintf("%.2f ms", sec*1e3)
+	}
+	return fmt.Sprintf("%.2f s", sec)
+}
+
+func ratioString(r row) string {
+	if math.IsNaN(r.ratio()) {
+		return "-"
+	}
+	return fmt.Sprintf("%.2f", r.ratio())
+}
+
+func formatRow(r row) string {
+	return fmt.Sprintf("%-6s %-20s %d  %12s %12s %7s %8.2f %6.1f%% %10.0f %12.1f",
+		r.model, r.task, r.threads, human(r.goSec), human(r.torchSec), ratioString(r), r.gflops, 100*r.peakShare, r.allocs, r.bytes/1024)
+}
+
+func worst(rows []row, threads int) (row, bool) {
+	var w row
+	found := false
+	for _, r := range rows {
+		if (threads == 0 || r.threads == threads) && !math.IsNaN(r.ratio()) && (!found || r.ratio() > w.ratio()) {
+			w, found = r, true
+		}
+	}
+	return w, found
+}
+
+func renderTable(rows []row) string {
+	var b strings.Builder
+	fmt.Fprintf(&b, "%-6s %-20s %s  %12s %12s %7s %8s %7s %10s %12s\n", "model", "task", "T", "apportion", "torch", "ratio", "GFLOP/s", "peak", "allocs", "KiB/call")
+	for _, r := range rows {
+		b.WriteString(formatRow(r) + "\n")
+	}
+	if w, ok := worst(rows, 1); ok {
+		fmt.Fprintf(&b, "worst ratio at 1 thread: %.2f (%s %s)\n", w.ratio(), w.model, w.task)
+	}
+	if w, ok := worst(rows, 0); ok {
+		fmt.Fprintf(&b, "worst ratio apportion/torch: %.2f (%s %s, %d threads)\n", w.ratio(), w.model, w.task, w.threads)
+	} else {
+		fmt.Fprintf(&b, "worst ratio apportion/torch: - (PyTorch not available: apt-get install python3-torch)\n")
+	}
+	return b.String()
+}
+
+func renderMarkdown(cfg config, rows []row, checks []string, peaks map[int]float64, goVersion, torchVersion, loadStart, loadEnd string, took time.Duration) string {
+	var b strings.Builder
+	b.WriteString("# apportion vs PyTorch: benchmark results\n\n")
+	b.WriteString("Written by `go run ./bench/compare")
+	if cfg.quick {
+		b.WriteString(" -quick")
+	}
+	b.WriteString("`; see bench/compare/main.go for the method.\n\n")
+	b.WriteString("## Machine\n\n")
+	fmt.Fprintf(&b, "- CPU: %s, %d cores visible (`nproc`)\n", cpuModel(), runtime.NumCPU())
+	fmt.Fprintf(&b, "- Go: %s, GOARCH %s\n", goVersion, runtime.GOARCH)
+	if torchVersion == "" {
+		torchVersion = "not available (apt-get install python3-torch)"
+	}
+	fmt.Fprintf(&b, "- PyTorch: %s (Debian python3-torch, %s)\n", torchVersion, cfg.python)
+	fmt.Fprintf(&b, "- Load average (1, 5, 15 min): %s at the start, %s at the end; the machine is shared, so timings are noisy\n", loadStart, loadEnd)
+	fmt.Fprintf(&b, "- Go peak (the float32 GEMM kernel nn calls, gonum Sgemm, best of ten trials on 256×256×256 and 64×1024×256, measured in this run): %.2f GFLOP/s at 1 thread, %.2f at 2\n", peaks[1], peaks[2])
+	fmt.Fprintf(&b, "- Run: %d repetitions per row, alternating sides, median; took %s; finished %s\n\n", cfg.reps, took.Round(time.Second), time.Now().UTC().Format("2006-01-02 15:04 MST"))
+	if len(checks) > 0 {
+		b.WriteString("## Agreement before timing\n\n")
+		for _, c := range checks {
+			fmt.Fprintf(&b, "- %s\n", c)
+		}
+		b.WriteString("\n")
+	}
+	b.WriteString("## Results\n\n")
+	b.WriteString("T is the thread count (GOMAXPROCS for apportion, torch.set_num_threads for PyTorch). GFLOP/s counts 2·MACs of Gemm and Conv from the graph, ×3 for a forward and backward pass (common practice); peak is that rate over the Go GEMM peak above. Allocations and KiB are per call on the Go side.\n\n")
+	b.WriteString("| model | task | T | apportion | torch | ratio | GFLOP/s | peak | allocs/call | KiB/call |\n|---|---|---|---|---|---|---|---|---|---|\n")
+	for _, r := range rows {
+		fmt.Fprintf(&b, "| %s | %s | %d | %s | %s | %s | %.2f | %.1f%% | %.0f | %.1f |\n", r.model, r.task, r.threads, human(r.goSec), human(r.torchSec), ratioString(r), r.gflops, 100*r.peakShare, r.allocs, r.bytes/1024)
+	}
+	b.WriteString("\n")
+	if w, ok := worst(rows, 1); ok {
+		fmt.Fprintf(&b, "Worst ratio at 1 thread: %.2f (%s %s).\n\n", w.ratio(), w.model, w.task)
+	}
+	if w, ok := worst(rows, 0); ok {
+		fmt.Fprintf(&b, "worst ratio apportion/torch: %.2f (%s %s, %d threads)\n", w.ratio(), w.model, w.task, w.threads)
+	}
+	return b.String()
+}
