@@ -5,6 +5,7 @@ import (
 	"hash"
 	"hash/fnv"
 	"math"
+	"slices"
 
 	"github.com/chewxy/hm"
 	G "gorgonia.org/gorgonia"
@@ -52,7 +53,7 @@ func broadcastBinary(a, b *G.Node, op string) (out *G.Node, err error) {
 	if err != nil {
 		return nil, fmt.Errorf("nn: %s: %w", op, err)
 	}
-	if op == "PRelu" && !elemSameShape(os, as) {
+	if op == "PRelu" && !slices.Equal(os, as) {
 		return nil, fmt.Errorf("nn: PRelu: slope shape %v does not broadcast to input shape %v", bs, as)
 	}
 	defer elemRecover(op, &err)
@@ -233,9 +234,9 @@ func (op *elemBinaryOp) CallsExtern() bool { return false }
 // element k reads element k of it, so the kernel may write over it.
 func (op *elemBinaryOp) OverwritesInput() int {
 	switch {
-	case elemSameShape(op.aShape, op.outShape):
+	case slices.Equal(op.aShape, op.outShape):
 		return 0
-	case elemSameShape(op.bShape, op.outShape):
+	case slices.Equal(op.bShape, op.outShape):
 		return 1
 	}
 	return -1
@@ -331,7 +332,7 @@ func (op *elemBinaryDiffOp) Arity() int { return 3 }
 // OverwritesInput is the incoming gradient when input which was not
 // broadcast: then each element of the result reads only its own element of g.
 func (op *elemBinaryDiffOp) OverwritesInput() int {
-	if elemSameShape(op.wrtShape(), op.outShape) {
+	if slices.Equal(op.wrtShape(), op.outShape) {
 		return 2
 	}
 	return -1
@@ -438,19 +439,6 @@ func elemHash(op interface{ WriteHash(hash.Hash) }) uint32 {
 	h := fnv.New32a()
 	op.WriteHash(h)
 	return h.Sum32()
-}
-
-// elemSameShape reports whether two shapes are equal.
-func elemSameShape(a, b []int) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if a[i] != b[i] {
-			return false
-		}
-	}
-	return true
 }
 
 // elemShapeSize returns the number of elements of a shape (1 for rank 0).

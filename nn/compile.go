@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"slices"
 
 	"github.com/apportion/apportion/onnxlite"
 )
@@ -217,10 +218,10 @@ func (nw *Network) inferRelaxed(shapes [][]int) (*onnxlite.Static, error) {
 		if !ok {
 			return nil, fmt.Errorf("%w: value %q exists at batch %d only", errBatchInconsistent, name, n)
 		}
-		if coreEqualInts(v1.Shape, vn.Shape) {
+		if slices.Equal(v1.Shape, vn.Shape) {
 			continue
 		}
-		if len(v1.Shape) != len(vn.Shape) || len(v1.Shape) == 0 || v1.Shape[0] != 1 || vn.Shape[0] != n || !coreEqualInts(v1.Shape[1:], vn.Shape[1:]) {
+		if len(v1.Shape) != len(vn.Shape) || len(v1.Shape) == 0 || v1.Shape[0] != 1 || vn.Shape[0] != n || !slices.Equal(v1.Shape[1:], vn.Shape[1:]) {
 			return nil, fmt.Errorf("%w: value %q has shape %v at batch 1 and %v at batch %d", errBatchInconsistent, name, v1.Shape, vn.Shape, n)
 		}
 	}
@@ -234,18 +235,6 @@ func (nw *Network) inferRelaxed(shapes [][]int) (*onnxlite.Static, error) {
 }
 
 var errBatchInconsistent = errors.New("graph is not batch-consistent")
-
-func coreEqualInts(a, b []int) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if a[i] != b[i] {
-			return false
-		}
-	}
-	return true
-}
 
 // coreRelaxModel returns a copy of m in which every Reshape whose shape is a
 // constant (initializer or Constant node) with a leading entry of 1 uses 0

@@ -3,6 +3,7 @@ package nn
 import (
 	"context"
 	"fmt"
+	"slices"
 
 	"github.com/apportion/apportion/onnxlite"
 )
@@ -191,7 +192,7 @@ func (nw *Network) Gradient(ctx context.Context, x *onnxlite.Tensor, sel Selecti
 		return nil, nil, fmt.Errorf("nn: gradient: input %q: %w", nw.inputs[0].Name, err)
 	}
 	shape := x.Shape()
-	if len(shape) != len(h.inShape)+1 || !coreEqualInts(shape[1:], h.inShape) {
+	if len(shape) != len(h.inShape)+1 || !slices.Equal(shape[1:], h.inShape) {
 		return nil, nil, fmt.Errorf("nn: gradient: input %q: %w: expected shape [N %v], got %v", nw.inputs[0].Name, ErrShape, h.inShape, shape)
 	}
 	o, g, err := h.Gradient(ctx, vals, shape[0], target)

@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"slices"
 	"sort"
 	"strings"
 	"testing"
@@ -135,7 +136,7 @@ func runConformance(c conformanceCase, dt DType) (string, error) {
 		}
 		for oi, want := range set[1] {
 			g := got[oi]
-			if !coreEqualInts(g.Shape(), want.Shape()) {
+			if !slices.Equal(g.Shape(), want.Shape()) {
 				return fmt.Sprintf("set %d output %d: shape %v, want %v", si, oi, g.Shape(), want.Shape()), nil
 			}
 			gv, _ := g.Float64s()

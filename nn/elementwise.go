@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"hash"
 	"math"
+	"slices"
 	"unsafe"
 
 	"github.com/chewxy/hm"
@@ -514,7 +515,7 @@ func elemAlloc[T elemFloat](p G.Value, dt tensor.Dtype, shape []int) (G.Value, [
 	if len(shape) == 0 {
 		return nil, make([]T, 1)
 	}
-	if t, ok := p.(*tensor.Dense); ok && t.Dtype() == dt && !t.RequiresIterator() && elemSameShape(t.Shape(), shape) {
+	if t, ok := p.(*tensor.Dense); ok && t.Dtype() == dt && !t.RequiresIterator() && slices.Equal(t.Shape(), shape) {
 		if d, ok := t.Data().([]T); ok && len(d) == elemShapeSize(shape) {
 			return t, d
 		}

@@ -3,6 +3,7 @@ package nn
 import (
 	"fmt"
 	"math"
+	"slices"
 
 	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
@@ -411,7 +412,7 @@ func (b *coreBuilder) matmul(n *onnxlite.Node, out string) error {
 			return err
 		}
 		return b.set(out, y)
-	case coreEqualInts(sa[:ra-2], sb[:rb-2]):
+	case slices.Equal(sa[:ra-2], sb[:rb-2]):
 		batch := prod(sa[:ra-2])
 		if a, err = reshape(a, []int{batch, sa[ra-2], k}); err != nil {
 			return err

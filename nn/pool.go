@@ -3,6 +3,7 @@ package nn
 import (
 	"context"
 	"fmt"
+	"slices"
 
 	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
@@ -117,7 +118,7 @@ func (p *program) build() (m *machine, err error) {
 		rows := shape[0]
 		cols := prod(shape[1:])
 		flat := out
-		if !coreEqualInts(out.Shape(), []int{rows, cols}) {
+		if !slices.Equal([]int(out.Shape()), []int{rows, cols}) {
 			if flat, err = G.Reshape(out, tensor.Shape{rows, cols}); err != nil {
 				return nil, fmt.Errorf("flattening output %q: %w", p.outNames[0], err)
 			}

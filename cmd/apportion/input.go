@@ -10,6 +10,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"slices"
 	"strconv"
 	"strings"
 
@@ -469,7 +470,7 @@ func readJSONSamples(v any, spec inputSpec) *batch {
 		var shape []int
 		var data []float64
 		err := flattenJSON(e, "["+strconv.Itoa(i)+"]", 0, &shape, &data)
-		if err == nil && len(data) == p && !sameShape(shape, ps) && !sameShape(shape, []int{p}) {
+		if err == nil && len(data) == p && !slices.Equal(shape, ps) && !slices.Equal(shape, []int{p}) {
 			err = fmt.Errorf("expected a sample of shape %s or %d flat values, got shape %s", shapeString(ps), p, shapeString(shape))
 		} else if err == nil && len(data) != p {
 			err = fmt.Errorf("expected %d values (shape %s), got %d (shape %s)", p, shapeString(ps), len(data), shapeString(shape))
@@ -601,18 +602,6 @@ func readCSV(raw []byte, spec inputSpec) (*batch, error) {
 		}
 	}
 	return b, nil
-}
-
-func sameShape(a, b []int) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if a[i] != b[i] {
-			return false
-		}
-	}
-	return true
 }
 
 // parseCSVRow appends the width values of one CSV row to data. A row that
