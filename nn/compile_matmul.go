@@ -10,7 +10,6 @@ import (
 	"gorgonia.org/tensor"
 
 	"gonum.org/v1/gonum/blas"
-	"gonum.org/v1/gonum/blas/blas32"
 	"gonum.org/v1/gonum/blas/blas64"
 )
 
@@ -162,11 +161,8 @@ func (op coreMatMulOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (G.Value
 			out = make([]float32, batch*m*n)
 		}
 		for i := 0; i < batch; i++ {
-			am := blas32.General{Rows: len(ad) / batch / colsA, Cols: colsA, Stride: colsA, Data: ad[i*m*k : (i+1)*m*k]}
-			bm := blas32.General{Rows: len(bd) / batch / colsB, Cols: colsB, Stride: colsB, Data: bd[i*k*n : (i+1)*k*n]}
-			cm := blas32.General{Rows: m, Cols: n, Stride: n, Data: out[i*m*n : (i+1)*m*n]}
 			if m > 0 && n > 0 && k > 0 {
-				blas32.Gemm(ta, tb, 1, am, bm, 0, cm)
+				sgemm(op.transA, op.transB, m, n, k, 1, ad[i*m*k:(i+1)*m*k], colsA, bd[i*k*n:(i+1)*k*n], colsB, 0, out[i*m*n:(i+1)*m*n], n)
 			}
 		}
 		return coreResult(reuse, shape, out), nil

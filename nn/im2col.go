@@ -9,7 +9,6 @@ import (
 	"gorgonia.org/tensor"
 
 	"gonum.org/v1/gonum/blas"
-	"gonum.org/v1/gonum/blas/blas32"
 	"gonum.org/v1/gonum/blas/blas64"
 )
 
@@ -160,7 +159,8 @@ func convCol2im[T convFloat](g *convGeom, c int, col, dx []T) {
 }
 
 // convGemm computes c = alpha·op(a)·op(b) + beta·c for row-major matrices,
-// op(a) m×k and op(b) k×n, with gonum's pure-Go BLAS.
+// op(a) m×k and op(b) k×n: float64 with gonum's pure-Go BLAS, float32 with
+// sgemm (the AVX2/FMA kernel where the CPU has one).
 func convGemm[T convFloat](ta, tb bool, m, n, k int, a []T, lda int, b []T, ldb int, beta T, c []T, ldc int) {
 	tA, tB := blas.NoTrans, blas.NoTrans
 	if ta {
@@ -173,7 +173,7 @@ func convGemm[T convFloat](ta, tb bool, m, n, k int, a []T, lda int, b []T, ldb 
 	case []float64:
 		blas64.Implementation().Dgemm(tA, tB, m, n, k, 1, a, lda, any(b).([]float64), ldb, float64(beta), any(c).([]float64), ldc)
 	case []float32:
-		blas32.Implementation().Sgemm(tA, tB, m, n, k, 1, a, lda, any(b).([]float32), ldb, float32(beta), any(c).([]float32), ldc)
+		sgemm(ta, tb, m, n, k, 1, a, lda, any(b).([]float32), ldb, float32(beta), any(c).([]float32), ldc)
 	}
 }
 
