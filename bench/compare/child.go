@@ -10,9 +10,6 @@ import (
 	"runtime"
 	"time"
 
-	"gonum.org/v1/gonum/blas"
-	"gonum.org/v1/gonum/blas/blas32"
-
 	"github.com/apportion/apportion/bench"
 	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/nn"
@@ -111,7 +108,11 @@ func (s *goSide) serve(req request) (response, error) {
 	case "info":
 		return response{Go: runtime.Version(), Threads: runtime.GOMAXPROCS(0)}, nil
 	case "peak":
-		return response{GFLOPS: peakGFLOPS(500 * time.Millisecond)}, nil
+		g, err := peakGFLOPS(500 * time.Millisecond)
+		if err != nil {
+			return response{}, err
+		}
+		return response{GFLOPS: g}, nil
 	case "check":
 		h, spec, err := s.head(req.Model)
 		if err != nil {
@@ -222,36 +223,71 @@ func goTask(ctx context.Context, h *nn.Head, spec bench.Spec, task string, sampl
 	return nil, fmt.Errorf("unknown task %q", task)
 }
 
-// peakGFLOPS measures the float32 matrix-multiply rate this machine gives the
-// GEMM kernel that nn's MatMul, Gemm and Conv ops call (gonum's pure-Go
-// Sgemm, which runs its blocks on up to GOMAXPROCS goroutines), on two
-// shapes: a square 256×256×256 product and a convolution-like 64×1024×256
-// one (long rows). It keeps the best of ten trials of d/10 each, so that a
-// busy machine lowers it less; 2·m·n·k FLOPs per product. It is the ceiling
-// the Go side's GFLOP/s can be compared with; PyTorch's AVX2 kernels reach
-// several times more.
-func peakGFLOPS(d time.Duration) float64 {
-	impl := blas32.Implementation()
+// peakGFLOPS measures the float32 matrix-multiply rate nn gives a model on
+// this machine: a one-node ONNX graph x·W (MatMul with a constant W) run
+// with nn's Head.Forward, so the product goes through the same GEMM kernel,
+// packing and dispatch as the zoo models' Gemm and Conv layers. Two shapes:
+// a square 256×256×256 product (batch 256) and a convolution-like
+// 64×1024×256 one (batch 64, long rows). It keeps the best of ten trials of
+// d/10 each, so that a busy machine lowers it less; 2·m·n·k FLOPs per call.
+// Forward also converts the batch from and to float64, about 1% of a call
+// at these sizes, which the rate includes.
+func peakGFLOPS(d time.Duration) (float64, error) {
 	best := 0.0
+	ctx := context.Background()
 	for _, sh := range [][3]int{{256, 256, 256}, {64, 1024, 256}} {
 		m, n, k := sh[0], sh[1], sh[2]
-		a, b, c := make([]float32, m*k), make([]float32, k*n), make([]float32, m*n)
-		for i := range a {
-			a[i] = float32(i%7) * 0.25
+		nw, err := nn.Compile(peakModel(k, n), nn.Options{MaxBatch: m})
+		if err != nil {
+			return 0, fmt.Errorf("peak model %d×%d: %w", k, n, err)
 		}
-		for i := range b {
-			b[i] = float32(i%5) * 0.5
+		h, err := nw.Head(nn.Selection{})
+		if err != nil {
+			return 0, fmt.Errorf("peak model %d×%d: %w", k, n, err)
 		}
-		impl.Sgemm(blas.NoTrans, blas.NoTrans, m, n, k, 1, a, k, b, n, 0, c, n) // warm up
+		x := make([]float64, m*k)
+		for i := range x {
+			x[i] = float64(i%7) * 0.25
+		}
+		if _, err := h.Forward(ctx, x, m); err != nil { // compile and warm up
+			return 0, fmt.Errorf("peak model %d×%d: %w", k, n, err)
+		}
 		for trial := 0; trial < 10; trial++ {
 			calls := 0
 			start := time.Now()
 			for time.Since(start) < d/10 {
-				impl.Sgemm(blas.NoTrans, blas.NoTrans, m, n, k, 1, a, k, b, n, 0, c, n)
+				if _, err := h.Forward(ctx, x, m); err != nil {
+					return 0, err
+				}
 				calls++
 			}
 			best = max(best, float64(calls)*2*float64(m*n*k)/time.Since(start).Seconds()/1e9)
 		}
 	}
-	return best
+	return best, nil
+}
+
+// peakModel is the graph y = x·W with x of shape [N, k] and a constant W of
+// shape [k, n].
+func peakModel(k, n int) *onnxlite.Model {
+	w := make([]float32, k*n)
+	for i := range w {
+		w[i] = float32(i%5) * 0.5
+	}
+	tensorType := func(dims ...onnxlite.Dim) *onnxlite.Type {
+		return &onnxlite.Type{Kind: onnxlite.KindTensor, Elem: onnxlite.Float, HasShape: true, Shape: dims}
+	}
+	batch := onnxlite.Dim{Param: "N"}
+	fixed := func(v int) onnxlite.Dim { return onnxlite.Dim{Value: int64(v), HasValue: true} }
+	return &onnxlite.Model{
+		IRVersion: 8,
+		Opsets:    []onnxlite.OpsetImport{{Version: 13}},
+		Graph: &onnxlite.Graph{
+			Name:         "peak",
+			Inputs:       []*onnxlite.ValueInfo{{Name: "x", Type: tensorType(batch, fixed(k))}},
+			Outputs:      []*onnxlite.ValueInfo{{Name: "y", Type: tensorType(batch, fixed(n))}},
+			Initializers: []*onnxlite.Tensor{{Name: "w", DType: onnxlite.Float, Dims: []int64{int64(k), int64(n)}, Data: w}},
+			Nodes:        []*onnxlite.Node{{Name: "matmul", OpType: "MatMul", Inputs: []string{"x", "w"}, Outputs: []string{"y"}}},
+		},
+	}
 }

@@ -16,11 +16,13 @@
 // sides and the median is reported.
 //
 // FLOPs are counted from the graph: 2 per multiply-accumulate of Gemm and
-// Conv; a forward and backward pass counts 3 forward passes (common
-// practice: the backward pass of a linear layer costs two matrix products).
-// The peak is the best rate of the float32 GEMM kernel nn calls (gonum's
-// pure-Go Sgemm, 256×256×256 and 64×1024×256), measured in the same run at
-// the same thread count.
+// Conv; a forward and backward pass counts 2 forward passes, because both
+// sides compute gradients with respect to the input only (no weight
+// gradients), and the input gradient of a linear layer costs one matrix
+// product the size of its forward one. The peak is the best rate of nn's
+// float32 matrix product on a one-MatMul model (256×256×256 and
+// 64×1024×256) run through Head.Forward, measured in the same run at the
+// same thread count.
 package main
 
 import (
@@ -93,7 +95,7 @@ type task struct {
 	label   string
 	samples int
 	// passes is the number of forward-equivalents per call: 1 per forward
-	// sample, 3 per forward+backward sample.
+	// sample, 2 per forward+backward sample (input gradients only).
 	passes float64
 }
 
@@ -104,10 +106,10 @@ func tasks(quick bool) []task {
 	}
 	return []task{
 		{"predict", "predict (1)", 1, 1},
-		{"gradient", "gradient (1)", 1, 3},
-		{"ig64", "IG-64 (1)", 1, 3 * 64},
-		{"smoothgrad50", "SmoothGrad-50 (1)", 1, 3 * 50},
-		{"ig64x", fmt.Sprintf("IG-64 ×%d samples", n), n, 3 * 64 * float64(n)},
+		{"gradient", "gradient (1)", 1, 2},
+		{"ig64", "IG-64 (1)", 1, 2 * 64},
+		{"smoothgrad50", "SmoothGrad-50 (1)", 1, 2 * 50},
+		{"ig64x", fmt.Sprintf("IG-64 ×%d samples", n), n, 2 * 64 * float64(n)},
 	}
 }
 
@@ -246,7 +248,7 @@ func run(cfg config) error {
 			return err
 		}
 		peaks[threads] = pk.GFLOPS
-		fmt.Fprintf(os.Stderr, "threads=%d: Go GEMM peak (gonum Sgemm, best of 256³ and 64×1024×256) %.2f GFLOP/s\n", threads, pk.GFLOPS)
+		fmt.Fprintf(os.Stderr, "threads=%d: Go GEMM peak (nn MatMul through Head.Forward, best of 256³ and 64×1024×256) %.2f GFLOP/s\n", threads, pk.GFLOPS)
 		for _, s := range specs {
 			if threads == 1 && tp != nil {
 				msg, err := agree(gp, tp, s.Name)
@@ -512,7 +514,7 @@ func renderMarkdown(cfg config, rows []row, checks []string, peaks map[int]float
 	}
 	fmt.Fprintf(&b, "- PyTorch: %s (Debian python3-torch, %s)\n", torchVersion, cfg.python)
 	fmt.Fprintf(&b, "- Load average (1, 5, 15 min): %s at the start, %s at the end; the machine is shared, so timings are noisy\n", loadStart, loadEnd)
-	fmt.Fprintf(&b, "- Go peak (the float32 GEMM kernel nn calls, gonum Sgemm, best of ten trials on 256×256×256 and 64×1024×256, measured in this run): %.2f GFLOP/s at 1 thread, %.2f at 2\n", peaks[1], peaks[2])
+	fmt.Fprintf(&b, "- Go peak (nn's float32 matrix product: a one-MatMul model through Head.Forward, best of ten trials on 256×256×256 and 64×1024×256, measured in this run): %.2f GFLOP/s at 1 thread, %.2f at 2\n", peaks[1], peaks[2])
 	fmt.Fprintf(&b, "- Run: %d repetitions per row, alternating sides, median; took %s; finished %s\n\n", cfg.reps, took.Round(time.Second), time.Now().UTC().Format("2006-01-02 15:04 MST"))
 	if len(checks) > 0 {
 		b.WriteString("## Agreement before timing\n\n")
@@ -522,7 +524,7 @@ func renderMarkdown(cfg config, rows []row, checks []string, peaks map[int]float
 		b.WriteString("\n")
 	}
 	b.WriteString("## Results\n\n")
-	b.WriteString("T is the thread count (GOMAXPROCS for apportion, torch.set_num_threads for PyTorch). GFLOP/s counts 2·MACs of Gemm and Conv from the graph, ×3 for a forward and backward pass (common practice); peak is that rate over the Go GEMM peak above. Allocations and KiB are per call on the Go side.\n\n")
+	b.WriteString("T is the thread count (GOMAXPROCS for apportion, torch.set_num_threads for PyTorch). GFLOP/s counts 2·MACs of Gemm and Conv from the graph, ×2 for a forward and backward pass (both sides compute input gradients only; the input gradient of a Gemm or Conv costs the MACs of its forward); peak is that rate over the Go GEMM peak above. Allocations and KiB are per call on the Go side.\n\n")
 	b.WriteString("| model | task | T | apportion | torch | ratio | GFLOP/s | peak | allocs/call | KiB/call |\n|---|---|---|---|---|---|---|---|---|---|\n")
 	for _, r := range rows {
 		fmt.Fprintf(&b, "| %s | %s | %d | %s | %s | %s | %.2f | %.1f%% | %.0f | %.1f |\n", r.model, r.task, r.threads, human(r.goSec), human(r.torchSec), ratioString(r), r.gflops, 100*r.peakShare, r.allocs, r.bytes/1024)
