@@ -12,6 +12,8 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/apportion/apportion/internal/debpython"
+
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
@@ -79,20 +81,11 @@ func TestZooFilesUpToDate(t *testing.T) {
 	}
 }
 
-const debianPython = "/usr/bin/python3"
-
-func pythonWith(t *testing.T, modules string) {
-	t.Helper()
-	if err := exec.Command(debianPython, "-c", "import "+modules).Run(); err != nil {
-		t.Skipf("%s cannot import %s (Debian packages python3-onnx, python3-torch): %v", debianPython, modules, err)
-	}
-}
-
 // TestZooPassesONNXChecker runs the reference ONNX checker (python3-onnx
 // 1.12, onnx.checker.check_model with full_check, which also runs ONNX's
 // own shape inference) on every zoo model.
 func TestZooPassesONNXChecker(t *testing.T) {
-	pythonWith(t, "onnx")
+	python := debpython.Require(t, "onnx")
 	args := []string{"-c", "import onnx, sys\n" +
 		"for p in sys.argv[1:]:\n" +
 		"    m = onnx.load(p); onnx.checker.check_model(m, full_check=True)\n" +
@@ -102,7 +95,7 @@ func TestZooPassesONNXChecker(t *testing.T) {
 		require.NoError(t, err)
 		args = append(args, path)
 	}
-	out, err := exec.Command(debianPython, args...).CombinedOutput()
+	out, err := exec.Command(python, args...).CombinedOutput()
 	require.NoError(t, err, "%s", out)
 	widths := strings.Fields(string(out))
 	require.Len(t, widths, len(Zoo), "%s", out)
@@ -121,7 +114,7 @@ func itoa(n int) string {
 // 64-point integrated gradients with PyTorch's (torch.nn modules rebuilt from
 // the same ONNX file by torch_side.py, gradients by torch.autograd) to 1e-5.
 func TestAgreesWithTorch(t *testing.T) {
-	pythonWith(t, "onnx, torch")
+	python := debpython.Require(t, "onnx", "torch")
 	if testing.Short() {
 		t.Skip("starts PyTorch")
 	}
@@ -129,7 +122,7 @@ func TestAgreesWithTorch(t *testing.T) {
 	for _, s := range Zoo {
 		json.NewEncoder(&in).Encode(map[string]any{"cmd": "check", "model": s.Name, "n": 2})
 	}
-	cmd := exec.Command(debianPython, "torch_side.py", "--threads", "1")
+	cmd := exec.Command(python, "torch_side.py", "--threads", "1")
 	cmd.Stdin = &in
 	var stderr bytes.Buffer
 	cmd.Stderr = &stderr

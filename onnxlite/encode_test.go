@@ -10,6 +10,8 @@ import (
 	"path/filepath"
 	"testing"
 
+	"github.com/apportion/apportion/internal/debpython"
+
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 	"github.com/x448/float16"
@@ -22,21 +24,6 @@ func mustTensor(t testing.TB, name string, dt DataType, dims []int64, data any) 
 	tn, err := NewTensor(name, dt, dims, data)
 	require.NoError(t, err)
 	return tn
-}
-
-// onnxPython returns a python3 that imports onnx (the reference
-// implementation, python3-onnx 1.12.0), or skips the test. Debian's
-// python3-onnx installs for /usr/bin/python3, which may not be the first
-// python3 on PATH.
-func onnxPython(t *testing.T) string {
-	t.Helper()
-	for _, p := range []string{"/usr/bin/python3", "python3"} {
-		if exec.Command(p, "-c", "import onnx").Run() == nil {
-			return p
-		}
-	}
-	t.Skip("python3-onnx not installed (apt-get install python3-onnx)")
-	return ""
 }
 
 // everyKindModel builds a model that uses every element type, attribute
@@ -158,7 +145,7 @@ func TestEncodeRefusesBadIR(t *testing.T) {
 // 1.12.0, load a model written by Encode, run its checker and report the
 // fields back.
 func TestEncodeReadByONNX(t *testing.T) {
-	python := onnxPython(t)
+	python := debpython.Require(t, "onnx")
 	dir := onnxtestdata.Dir(t)
 	m, err := DecodeFile(filepath.Join(dir, "node/test_conv_with_strides_padding/model.onnx"), DecodeOptions{})
 	require.NoError(t, err)

@@ -10,6 +10,8 @@ import (
 	"path/filepath"
 	"testing"
 
+	"github.com/apportion/apportion/internal/debpython"
+
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 )
@@ -128,7 +130,7 @@ func TestExternalDataRefused(t *testing.T) {
 // TestExternalDataFromONNX reads a model that python3-onnx 1.12.0 saved with
 // save_as_external_data, and compares with the values onnx itself reads back.
 func TestExternalDataFromONNX(t *testing.T) {
-	python := onnxPython(t)
+	python := debpython.Require(t, "onnx")
 	dir := t.TempDir()
 	script := `
 import json, sys, numpy as np, onnx

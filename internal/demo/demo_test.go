@@ -13,6 +13,8 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/apportion/apportion/internal/debpython"
+
 	"codeberg.org/sbinet/npyio/npy"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
@@ -565,17 +567,11 @@ func accuracy(pred, labels []int) float64 {
 	return float64(ok) / float64(len(pred))
 }
 
-// onnxPython is Debian's python3 with python3-onnx (1.12), the ONNX
-// project's own checker.
-const onnxPython = "/usr/bin/python3"
-
 // TestONNXChecker runs the ONNX project's checker (onnx.checker.check_model
 // with full_check, which includes strict shape inference) on both models,
 // and has numpy read the .npy files, when Debian's python3-onnx is present.
 func TestONNXChecker(t *testing.T) {
-	if err := exec.Command(onnxPython, "-c", "import onnx, numpy").Run(); err != nil {
-		t.Skipf("python3-onnx (Debian) not importable from %s: %v", onnxPython, err)
-	}
+	onnxPython := debpython.Require(t, "onnx", "numpy")
 	dir := t.TempDir()
 	for _, f := range Files() {
 		b, err := File(f)
