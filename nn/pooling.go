@@ -4,7 +4,6 @@ import (
 	"fmt"
 	"hash"
 	"hash/fnv"
-	"math"
 
 	"github.com/chewxy/hm"
 	G "gorgonia.org/gorgonia"
@@ -143,12 +142,23 @@ func poolBuild(what string, x *G.Node, s poolSpec, max bool) (y *G.Node, err err
 }
 
 // poolOp is the forward MaxPool / AveragePool / global pool op.
+//
+// It remembers the geometry of the last input shape it ran on (in, out,
+// geom, win), so that a warm call with the same shape computes and
+// allocates nothing but the pool. Like every op of a compiled machine it is only ever run by one
+// goroutine at a time (each machine builds its own graph), which is what
+// makes this cache safe; the cache is replaced, never modified in place,
+// so the copy a poolBackOp starts from shares nothing mutable.
 type poolOp struct {
 	rank                        int
 	max, global                 bool
 	kernel, pads, strides, dils []int
 	ceil, includePad            bool
 	constX                      bool
+
+	in, out tensor.Shape // last input shape and its output shape
+	geom    convGeom     // geometry of in
+	win     poolWindows  // window clipping of geom (windowed pools only)
 }
 
 func (op *poolOp) name() string {
@@ -214,7 +224,27 @@ func (op *poolOp) InferShape(ds ...G.DimSizer) (tensor.Shape, error) {
 	return s, err
 }
 
-func (op *poolOp) Do(vals ...G.Value) (ret G.Value, err error) {
+func (op *poolOp) Do(vals ...G.Value) (G.Value, error) { return op.UsePreallocDo(nil, vals...) }
+
+// cachedGeometry is geometry with the result of the last shape kept.
+func (op *poolOp) cachedGeometry(xs tensor.Shape) (tensor.Shape, convGeom, error) {
+	if op.in != nil && op.in.Eq(xs) {
+		return op.out, op.geom, nil
+	}
+	oshp, g, err := op.geometry(xs)
+	if err != nil {
+		return nil, convGeom{}, err
+	}
+	op.in, op.out, op.geom, op.win = xs.Clone(), oshp, g, poolWindows{}
+	if !op.global && !poolTiled(&g) {
+		op.win = poolWindowsOf(&g)
+	}
+	return oshp, g, nil
+}
+
+// UsePreallocDo pools into prealloc when it is a dense tensor of the input's
+// element type and the output's shape, and into a new tensor otherwise.
+func (op *poolOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, err error) {
 	defer convRecover(op.name(), &err)
 	if len(vals) != 1 {
 		return nil, fmt.Errorf("nn: %s: expected 1 input, got %d", op.name(), len(vals))
@@ -223,102 +253,52 @@ func (op *poolOp) Do(vals ...G.Value) (ret G.Value, err error) {
 	if err != nil {
 		return nil, err
 	}
-	oshp, g, err := op.geometry(x.Shape())
+	oshp, g, err := op.cachedGeometry(x.Shape())
 	if err != nil {
 		return nil, err
 	}
-	out, err := convNewDense(x.Dtype(), oshp)
+	out, err := poolResult(prealloc, x.Dtype(), oshp, x)
 	if err != nil {
 		return nil, fmt.Errorf("nn: %s: %w", op.name(), err)
 	}
 	planes := oshp[0] * oshp[1]
-	switch xd := x.Data().(type) {
-	case []float64:
-		poolForward(&g, planes, op.max, op.includePad, xd, out.Data().([]float64))
-	case []float32:
-		poolForward(&g, planes, op.max, op.includePad, xd, out.Data().([]float32))
+	tiled := !op.global && poolTiled(&g)
+	if op.global {
+		if x.Dtype() == tensor.Float64 {
+			poolGlobalForward(g.w, planes, op.max, x.Float64s(), out.Float64s())
+		} else {
+			poolGlobalForward(g.w, planes, op.max, x.Float32s(), out.Float32s())
+		}
+		return out, nil
+	}
+	if x.Dtype() == tensor.Float64 {
+		if tiled {
+			poolTiledForward(&g, planes, op.max, x.Float64s(), out.Float64s())
+		} else {
+			poolWindowForward(&g, &op.win, planes, op.max, op.includePad, x.Float64s(), out.Float64s())
+		}
+	} else if tiled {
+		poolTiledForward(&g, planes, op.max, x.Float32s(), out.Float32s())
+	} else {
+		poolWindowForward(&g, &op.win, planes, op.max, op.includePad, x.Float32s(), out.Float32s())
 	}
 	return out, nil
 }
 
-// poolDivisor is the AveragePool divisor D of the window at (y0, x0), the
-// top-left input position (possibly in the padding).
-func poolDivisor(g *convGeom, y0, x0 int, includePad bool) int {
-	if includePad {
-		iLo, iHi := poolRange(y0+g.pt, g.kh, g.dh, g.h+g.pt+g.pb)
-		jLo, jHi := poolRange(x0+g.pl, g.kw, g.dw, g.w+g.pl+g.pr)
-		return (iHi - iLo) * (jHi - jLo)
-	}
-	iLo, iHi := poolRange(y0, g.kh, g.dh, g.h)
-	jLo, jHi := poolRange(x0, g.kw, g.dw, g.w)
-	return (iHi - iLo) * (jHi - jLo)
-}
-
-// poolForward computes max or average pooling over planes (n·c) planes.
-// A window with no input element yields −Inf (max) or 0 (average).
-func poolForward[T convFloat](g *convGeom, planes int, max, includePad bool, x, y []T) {
-	hw, p := g.h*g.w, g.oh*g.ow
-	for pl := 0; pl < planes; pl++ {
-		xp := x[pl*hw : (pl+1)*hw]
-		yp := y[pl*p : (pl+1)*p]
-		for oy := 0; oy < g.oh; oy++ {
-			y0 := oy*g.sh - g.pt
-			for ox := 0; ox < g.ow; ox++ {
-				x0 := ox*g.sw - g.pl
-				if max {
-					idx := poolArgmax(g, xp, y0, x0)
-					if idx < 0 {
-						yp[oy*g.ow+ox] = T(math.Inf(-1))
-					} else {
-						yp[oy*g.ow+ox] = xp[idx]
-					}
-					continue
-				}
-				var s T
-				iLo, iHi := poolRange(y0, g.kh, g.dh, g.h)
-				jLo, jHi := poolRange(x0, g.kw, g.dw, g.w)
-				for i := iLo; i < iHi; i++ {
-					row := (y0 + i*g.dh) * g.w
-					for j := jLo; j < jHi; j++ {
-						s += xp[row+x0+j*g.dw]
-					}
-				}
-				if d := poolDivisor(g, y0, x0, includePad); d > 0 {
-					s /= T(d)
-				}
-				yp[oy*g.ow+ox] = s
-			}
+// poolResult returns prealloc when it is a dense tensor of dt with shape
+// shp whose buffer starts apart from those of the inputs, and a new zeroed
+// tensor otherwise. The kernels that write into it overwrite every element.
+func poolResult(prealloc G.Value, dt tensor.Dtype, shp tensor.Shape, inputs ...*tensor.Dense) (*tensor.Dense, error) {
+	if p, ok := prealloc.(*tensor.Dense); ok && p.Dtype() == dt && !p.RequiresIterator() && p.Shape().Eq(shp) && p.DataSize() == shp.TotalSize() && !p.IsScalar() {
+		shared := false
+		for _, in := range inputs {
+			shared = shared || in.Uintptr() == p.Uintptr()
+		}
+		if !shared {
+			return p, nil
 		}
 	}
-}
-
-// poolArgmax returns the plane index of the first maximum of the window at
-// (y0, x0), or −1 when the window holds no input element. A NaN in the
-// window wins, so that NaN inputs stay visible in the output.
-func poolArgmax[T convFloat](g *convGeom, xp []T, y0, x0 int) int {
-	iLo, iHi := poolRange(y0, g.kh, g.dh, g.h)
-	jLo, jHi := poolRange(x0, g.kw, g.dw, g.w)
-	if iLo >= iHi || jLo >= jHi {
-		return -1
-	}
-	best := (y0+iLo*g.dh)*g.w + x0 + jLo*g.dw
-	bv := xp[best]
-	if bv != bv {
-		return best
-	}
-	for i := iLo; i < iHi; i++ {
-		row := (y0 + i*g.dh) * g.w
-		for j := jLo; j < jHi; j++ {
-			k := row + x0 + j*g.dw
-			v := xp[k]
-			if v > bv {
-				best, bv = k, v
-			} else if v != v {
-				return k // NaN propagates
-			}
-		}
-	}
-	return best
+	return convNewDense(dt, shp)
 }
 
 // poolRange returns the window taps [lo, hi) whose positions
@@ -371,9 +351,29 @@ func (op *poolOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error)
 }
 
 // poolBackOp computes the input gradient of a pool from (x, dy).
+//
+// A max pool's gradient finds each window's argmax again in x instead of
+// reading one recorded by the forward op: a record would only be right if
+// x still held, at the same address, the values the forward op saw, which
+// the op cannot check without reading x, and the search costs no more than
+// that read (the 2×2 kernels run at memory speed).
 type poolBackOp struct{ poolOp }
 
 func (op *poolBackOp) Arity() int { return 2 }
+
+// gradName is the op's name in errors (a constant, so that a warm call
+// allocates nothing).
+func (op *poolBackOp) gradName() string {
+	switch {
+	case op.global && op.max:
+		return "GlobalMaxPool gradient"
+	case op.global:
+		return "GlobalAveragePool gradient"
+	case op.max:
+		return "MaxPool gradient"
+	}
+	return "AveragePool gradient"
+}
 
 func (op *poolBackOp) Type() hm.Type {
 	t := &G.TensorType{Dims: op.rank + 2, Of: hm.TypeVariable('a')}
@@ -388,8 +388,13 @@ func (op *poolBackOp) InferShape(ds ...G.DimSizer) (tensor.Shape, error) {
 	return shapes[0].Clone(), nil
 }
 
-func (op *poolBackOp) Do(vals ...G.Value) (ret G.Value, err error) {
-	what := op.name() + " gradient"
+func (op *poolBackOp) Do(vals ...G.Value) (G.Value, error) { return op.UsePreallocDo(nil, vals...) }
+
+// UsePreallocDo writes the input gradient into prealloc when it is a dense
+// tensor of x's element type and shape that shares no buffer with x or dy,
+// and into a new tensor otherwise.
+func (op *poolBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, err error) {
+	what := op.gradName()
 	defer convRecover(what, &err)
 	if len(vals) != 2 {
 		return nil, fmt.Errorf("nn: %s: expected 2 inputs, got %d", what, len(vals))
@@ -402,63 +407,46 @@ func (op *poolBackOp) Do(vals ...G.Value) (ret G.Value, err error) {
 	if err != nil {
 		return nil, err
 	}
-	oshp, g, err := op.geometry(x.Shape())
+	oshp, g, err := op.cachedGeometry(x.Shape())
 	if err != nil {
 		return nil, err
 	}
 	if !dy.Shape().Eq(oshp) {
 		return nil, fmt.Errorf("nn: %s: %w: expected output gradient of shape %v, got %v", what, ErrConvShape, oshp, dy.Shape())
 	}
-	out, err := convNewDense(x.Dtype(), x.Shape())
+	if dy.Dtype() != x.Dtype() {
+		return nil, fmt.Errorf("nn: %s: %w: expected output gradient of type %v, got %v", what, ErrConvShape, x.Dtype(), dy.Dtype())
+	}
+	out, err := poolResult(prealloc, x.Dtype(), x.Shape(), x, dy)
 	if err != nil {
 		return nil, fmt.Errorf("nn: %s: %w", what, err)
 	}
 	planes := oshp[0] * oshp[1]
-	switch xd := x.Data().(type) {
-	case []float64:
-		poolBackward(&g, planes, op.max, op.includePad, xd, dy.Data().([]float64), out.Data().([]float64))
-	case []float32:
-		poolBackward(&g, planes, op.max, op.includePad, xd, dy.Data().([]float32), out.Data().([]float32))
+	fresh := out != prealloc
+	if x.Dtype() == tensor.Float64 {
+		poolBackwardInto(&g, &op.win, planes, op.max, op.includePad, op.global, fresh, x.Float64s(), dy.Float64s(), out.Float64s())
+	} else {
+		poolBackwardInto(&g, &op.win, planes, op.max, op.includePad, op.global, fresh, x.Float32s(), dy.Float32s(), out.Float32s())
 	}
 	return out, nil
 }
 
-// poolBackward adds into the zeroed dx the pooling gradient: dy to each
-// window's argmax (max), or dy/D to each input element of the window
-// (average).
-func poolBackward[T convFloat](g *convGeom, planes int, max, includePad bool, x, dy, dx []T) {
-	hw, p := g.h*g.w, g.oh*g.ow
-	for pl := 0; pl < planes; pl++ {
-		xp := x[pl*hw : (pl+1)*hw]
-		dxp := dx[pl*hw : (pl+1)*hw]
-		dyp := dy[pl*p : (pl+1)*p]
-		for oy := 0; oy < g.oh; oy++ {
-			y0 := oy*g.sh - g.pt
-			for ox := 0; ox < g.ow; ox++ {
-				x0 := ox*g.sw - g.pl
-				d := dyp[oy*g.ow+ox]
-				if max {
-					if idx := poolArgmax(g, xp, y0, x0); idx >= 0 {
-						dxp[idx] += d
-					}
-					continue
-				}
-				div := poolDivisor(g, y0, x0, includePad)
-				if div == 0 {
-					continue
-				}
-				d /= T(div)
-				iLo, iHi := poolRange(y0, g.kh, g.dh, g.h)
-				jLo, jHi := poolRange(x0, g.kw, g.dw, g.w)
-				for i := iLo; i < iHi; i++ {
-					row := (y0 + i*g.dh) * g.w
-					for j := jLo; j < jHi; j++ {
-						dxp[row+x0+j*g.dw] += d
-					}
-				}
-			}
-		}
+// poolBackwardInto writes the pooling gradient into dx with the global,
+// tiled or generic kernel; dx is zeroed when fresh and holds anything
+// otherwise.
+func poolBackwardInto[T convFloat](g *convGeom, win *poolWindows, planes int, max, includePad, global, fresh bool, x, dy, dx []T) {
+	if global {
+		poolGlobalBackward(g.w, planes, max, x, dy, dx)
+		return
 	}
+	if poolTiled(g) {
+		poolTiledBackward(g, planes, max, x, dy, dx)
+		return
+	}
+	if !fresh {
+		clear(dx)
+	}
+	poolWindowBackward(g, win, planes, max, includePad, x, dy, dx)
 }
 
 func (op *poolBackOp) WriteHash(h hash.Hash) { fmt.Fprint(h, op.String()) }
@@ -477,4 +465,8 @@ func (op *poolBackOp) SymDiff(G.Nodes, *G.Node, *G.Node) (G.Nodes, error) {
 	return nil, fmt.Errorf("nn: %v: %w", op, ErrConvSecondOrder)
 }
 
-var _ G.SDOp = (*poolOp)(nil)
+var (
+	_ G.SDOp            = (*poolOp)(nil)
+	_ G.UsePreallocDoer = (*poolOp)(nil)
+	_ G.UsePreallocDoer = (*poolBackOp)(nil)
+)

@@ -124,6 +124,17 @@ var poolCases = []poolCase{
 	{name: "avg_2d_ceil_exclude", x: []int{1, 2, 7, 6}, spec: poolSpec{Kernel: []int{3, 3}, Strides: []int{2, 2}, CeilMode: true}},
 	{name: "avg_2d_dilations", x: []int{1, 1, 8, 8}, spec: poolSpec{Kernel: []int{2, 2}, Dilations: []int{3, 2}, Pads: []int{1, 0, 0, 1}, CountIncludePad: true}},
 	{name: "avg_1d", x: []int{2, 2, 9}, spec: poolSpec{Kernel: []int{4}, Strides: []int{3}, Pads: []int{2, 1}, CeilMode: true}},
+	// Tiled pools (stride = kernel, no pads): the kernels of
+	// pooling_tiled.go, AVX2 for 2×2 float32 rows of ≥ 4 outputs (8 with an
+	// overlapping last step, and 6 with two 4-wide steps); odd sizes leave
+	// an uncovered border whose gradient is zero.
+	{name: "max_2d_tiled", x: []int{2, 3, 9, 19}, max: true, spec: poolSpec{Kernel: []int{2, 2}, Strides: []int{2, 2}}},
+	{name: "max_2d_tiled_short_rows", x: []int{1, 2, 7, 13}, max: true, spec: poolSpec{Kernel: []int{2, 2}, Strides: []int{2, 2}}},
+	{name: "max_2d_tiled_3x2", x: []int{1, 2, 7, 8}, max: true, spec: poolSpec{Kernel: []int{3, 2}, Strides: []int{3, 2}}},
+	{name: "max_2d_tiled_end_pads", x: []int{1, 2, 6, 9}, max: true, spec: poolSpec{Kernel: []int{2, 2}, Strides: []int{2, 2}, Pads: []int{0, 0, 1, 0}}},
+	{name: "max_1d_tiled", x: []int{2, 3, 9}, max: true, spec: poolSpec{Kernel: []int{2}, Strides: []int{2}}},
+	{name: "avg_2d_tiled", x: []int{2, 2, 7, 9}, spec: poolSpec{Kernel: []int{2, 2}, Strides: []int{2, 2}}},
+	{name: "avg_2d_tiled_3x3", x: []int{1, 2, 7, 8}, spec: poolSpec{Kernel: []int{3, 3}, Strides: []int{3, 3}, CountIncludePad: true}},
 	{name: "global_max_2d", x: []int{2, 3, 4, 5}, max: true, global: true},
 	{name: "global_avg_2d", x: []int{2, 3, 4, 5}, global: true},
 	{name: "global_max_1d", x: []int{2, 3, 7}, max: true, global: true},
