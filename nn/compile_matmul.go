@@ -1,13 +1,17 @@
 package nn
 
 import (
+	"encoding/binary"
 	"fmt"
 	"hash"
 	"hash/fnv"
+	"math"
 
 	"github.com/chewxy/hm"
 	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
+
+	"github.com/apportion/apportion/onnxlite"
 
 	"gonum.org/v1/gonum/blas"
 	"gonum.org/v1/gonum/blas/blas64"
@@ -19,6 +23,9 @@ import (
 // (1, k) as vectors and changes the result's rank, so the network uses this
 // op for every ONNX MatMul and Gemm.
 //
+// For Gemm it computes Y = alpha·op(A)·op(B) + bias (coreGemm): the bias row
+// is constant, so it has no gradient, and the gradients carry the same alpha.
+//
 // Gradients (matrix calculus, e.g. Petersen & Pedersen, The Matrix Cookbook,
 // 2012, eq. 69–70): for C = A·B, ∂L/∂A = ∂L/∂C·Bᵀ and ∂L/∂B = Aᵀ·∂L/∂C; the
 // transposed variants follow by transposing both sides.
@@ -28,16 +35,75 @@ type coreMatMulOp struct {
 	// fixedA and fixedB mark operands no runtime input reaches (see
 	// coreFixed): their gradients are never built.
 	fixedA, fixedB bool
+	// alpha scales the product: the op computes alpha·op(A)·op(B) (+ bias).
+	alpha float64
+	// bias, when not nil, is a constant row added to every output row
+	// (ONNX Gemm's beta·C for a C that broadcasts along the rows): the
+	// output starts as bias and the product accumulates onto it, so no
+	// separate Add runs forward or backward.
+	bias *coreBias
+	// pack caches op(B) packed for the float32 GEMM when B is fixed (a
+	// weight): packed on the first run, reused on every later one. Each
+	// machine builds its own graph, so one op instance, and its cache, is
+	// never used by two goroutines at once.
+	pack *coreMatMulPack
+}
+
+// coreBias is the row beta·C of a fused Gemm in both element types, with a
+// hash of its bits so that ops with different biases never compare equal.
+type coreBias struct {
+	f64  []float64
+	f32  []float32
+	hash uint64
+}
+
+// coreMatMulPack is the packed fixed B of one coreMatMulOp instance and the
+// tensor data it was packed from.
+type coreMatMulPack struct {
+	src *float32
+	pb  *sgemmPrepacked
 }
 
 func coreMatMul(a, b *G.Node, transA, transB bool) (*G.Node, error) {
+	return coreGemm(a, b, transA, transB, 1, nil)
+}
+
+// coreGemm applies alpha·op(A)·op(B) + bias, bias a row of the output's
+// width (nil for none) added to every row; it needs rank-2 operands.
+func coreGemm(a, b *G.Node, transA, transB bool, alpha float64, bias []float64) (*G.Node, error) {
 	if a.Dims() != b.Dims() || (a.Dims() != 2 && a.Dims() != 3) {
 		return nil, fmt.Errorf("matmul: operands must both be rank 2 or rank 3, got %v and %v", a.Shape(), b.Shape())
 	}
 	if a.Dtype() != b.Dtype() {
 		return nil, fmt.Errorf("matmul: operand types differ: %v and %v", a.Dtype(), b.Dtype())
 	}
-	return G.ApplyOp(coreMatMulOp{transA: transA, transB: transB, rank: a.Dims(), fixedA: coreFixed(a), fixedB: coreFixed(b)}, a, b)
+	op := coreMatMulOp{transA: transA, transB: transB, rank: a.Dims(), fixedA: coreFixed(a), fixedB: coreFixed(b), alpha: alpha}
+	if bias != nil {
+		if op.rank != 2 {
+			return nil, fmt.Errorf("matmul: a bias row needs rank-2 operands, got %v and %v", a.Shape(), b.Shape())
+		}
+		n := b.Shape()[1]
+		if transB {
+			n = b.Shape()[0]
+		}
+		if len(bias) != n {
+			return nil, fmt.Errorf("matmul: bias has %d values, the product %d columns", len(bias), n)
+		}
+		cb := &coreBias{f64: append([]float64(nil), bias...), f32: make([]float32, n)}
+		h := fnv.New64a()
+		var w [8]byte
+		for i, v := range bias {
+			cb.f32[i] = float32(v)
+			binary.LittleEndian.PutUint64(w[:], math.Float64bits(v))
+			h.Write(w[:])
+		}
+		cb.hash = h.Sum64()
+		op.bias = cb
+	}
+	if op.fixedB && op.rank == 2 {
+		op.pack = &coreMatMulPack{}
+	}
+	return G.ApplyOp(op, a, b)
 }
 
 func (op coreMatMulOp) Arity() int { return 2 }
@@ -96,8 +162,9 @@ func (op coreMatMulOp) InferShape(in ...G.DimSizer) (tensor.Shape, error) {
 func (op coreMatMulOp) Do(vals ...G.Value) (G.Value, error) { return op.UsePreallocDo(nil, vals...) }
 
 // UsePreallocDo writes the product into prealloc when it is a dense tensor
-// of the right type and size (the tape machine reuses it across runs), and
-// into a new tensor otherwise.
+// of the right type and shape (or size: it is then reshaped), and into a new
+// tensor otherwise; with a fitting prealloc and a warm cache it allocates
+// nothing. The inputs are only read.
 func (op coreMatMulOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (G.Value, error) {
 	if len(vals) != 2 {
 		return nil, fmt.Errorf("matmul: expected 2 inputs, got %d", len(vals))
@@ -107,20 +174,15 @@ func (op coreMatMulOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (G.Value
 	if !ok1 || !ok2 {
 		return nil, fmt.Errorf("matmul: inputs must be dense tensors, got %T and %T", vals[0], vals[1])
 	}
+	if a.Dtype() != b.Dtype() {
+		return nil, fmt.Errorf("matmul: operand types differ: %v and %v", a.Dtype(), b.Dtype())
+	}
 	batch, m, k, n, err := op.dims(a.Shape(), b.Shape())
 	if err != nil {
 		return nil, err
 	}
-	shape := []int{m, n}
-	if op.rank == 3 {
-		shape = []int{batch, m, n}
-	}
-	ta, tb := blas.NoTrans, blas.NoTrans
-	if op.transA {
-		ta = blas.Trans
-	}
-	if op.transB {
-		tb = blas.Trans
+	if op.bias != nil && (batch != 1 || len(op.bias.f64) != n) {
+		return nil, fmt.Errorf("matmul: bias of %d values for a product of %d columns", len(op.bias.f64), n)
 	}
 	// Stored (row-major) column counts of one batch slice of A and B.
 	colsA, colsB := k, n
@@ -130,10 +192,7 @@ func (op coreMatMulOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (G.Value
 	if op.transB {
 		colsB = k
 	}
-	reuse, _ := prealloc.(*tensor.Dense)
-	if reuse != nil && (reuse.Dtype() != a.Dtype() || reuse.Size() != batch*m*n || reuse.RequiresIterator()) {
-		reuse = nil
-	}
+	reuse := op.fit(prealloc, a.Dtype(), batch, m, n)
 	switch a.Dtype() {
 	case tensor.Float64:
 		ad, bd := coreContiguous64(a), coreContiguous64(b)
@@ -143,15 +202,31 @@ func (op coreMatMulOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (G.Value
 		} else {
 			out = make([]float64, batch*m*n)
 		}
+		ta, tb := blas.NoTrans, blas.NoTrans
+		if op.transA {
+			ta = blas.Trans
+		}
+		if op.transB {
+			tb = blas.Trans
+		}
+		beta := 0.0
+		if op.bias != nil {
+			for i := 0; i < m; i++ {
+				copy(out[i*n:(i+1)*n], op.bias.f64)
+			}
+			beta = 1
+		} else if k == 0 {
+			clear(out)
+		}
 		for i := 0; i < batch; i++ {
 			am := blas64.General{Rows: len(ad) / batch / colsA, Cols: colsA, Stride: colsA, Data: ad[i*m*k : (i+1)*m*k]}
 			bm := blas64.General{Rows: len(bd) / batch / colsB, Cols: colsB, Stride: colsB, Data: bd[i*k*n : (i+1)*k*n]}
 			cm := blas64.General{Rows: m, Cols: n, Stride: n, Data: out[i*m*n : (i+1)*m*n]}
 			if m > 0 && n > 0 && k > 0 {
-				blas64.Gemm(ta, tb, 1, am, bm, 0, cm)
+				blas64.Gemm(ta, tb, op.scale(), am, bm, beta, cm)
 			}
 		}
-		return coreResult(reuse, shape, out), nil
+		return coreMatMulResult(op, reuse, batch, m, n, out), nil
 	case tensor.Float32:
 		ad, bd := coreContiguous32(a), coreContiguous32(b)
 		var out []float32
@@ -160,14 +235,80 @@ func (op coreMatMulOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (G.Value
 		} else {
 			out = make([]float32, batch*m*n)
 		}
-		for i := 0; i < batch; i++ {
-			if m > 0 && n > 0 && k > 0 {
-				sgemm(op.transA, op.transB, m, n, k, 1, ad[i*m*k:(i+1)*m*k], colsA, bd[i*k*n:(i+1)*k*n], colsB, 0, out[i*m*n:(i+1)*m*n], n)
+		var beta float32
+		if op.bias != nil {
+			for i := 0; i < m; i++ {
+				copy(out[i*n:(i+1)*n], op.bias.f32)
 			}
+			beta = 1
+		} else if k == 0 {
+			clear(out)
 		}
-		return coreResult(reuse, shape, out), nil
+		alpha := float32(op.scale())
+		if m == 0 || n == 0 || k == 0 {
+			return coreMatMulResult(op, reuse, batch, m, n, out), nil
+		}
+		if pb := op.packed(bd, n, k); pb != nil {
+			sgemmPre(op.transA, m, n, k, alpha, ad, colsA, pb, bd, colsB, beta, out, n)
+			return coreMatMulResult(op, reuse, batch, m, n, out), nil
+		}
+		for i := 0; i < batch; i++ {
+			sgemm(op.transA, op.transB, m, n, k, alpha, ad[i*m*k:(i+1)*m*k], colsA, bd[i*k*n:(i+1)*k*n], colsB, beta, out[i*m*n:(i+1)*m*n], n)
+		}
+		return coreMatMulResult(op, reuse, batch, m, n, out), nil
 	}
 	return nil, fmt.Errorf("matmul: unsupported element type %v", a.Dtype())
+}
+
+// scale is alpha, 1 for ops built without one.
+func (op coreMatMulOp) scale() float64 {
+	if op.alpha == 0 {
+		return 1
+	}
+	return op.alpha
+}
+
+// packed returns the prepacked op(B) for sgemmPre when B is fixed, nil when
+// it is not or the CPU has no packed kernel. The layouts are made from the
+// first run's B; a fixed node's values never change, but B arriving in a
+// new backing array (a rebound constant) starts a new cache.
+func (op coreMatMulOp) packed(bd []float32, n, k int) *sgemmPrepacked {
+	c := op.pack
+	if c == nil || len(bd) == 0 {
+		return nil
+	}
+	if c.pb == nil || c.src != &bd[0] || c.pb.n != n || c.pb.k != k {
+		c.pb = newSgemmPrepacked(op.transB, n, k)
+		c.src = &bd[0]
+	}
+	return c.pb
+}
+
+// fit returns prealloc as a dense tensor when the output fits in it.
+func (op coreMatMulOp) fit(prealloc G.Value, dt tensor.Dtype, batch, m, n int) *tensor.Dense {
+	reuse, _ := prealloc.(*tensor.Dense)
+	if reuse == nil || reuse.Dtype() != dt || reuse.Size() != batch*m*n || reuse.RequiresIterator() {
+		return nil
+	}
+	return reuse
+}
+
+// coreMatMulResult returns reuse when it has the output's shape, and
+// otherwise reuse reshaped or a new tensor backed by data: the conversion of
+// data to an interface, which allocates, happens only then.
+func coreMatMulResult[T float32 | float64](op coreMatMulOp, reuse *tensor.Dense, batch, m, n int, data []T) *tensor.Dense {
+	if reuse != nil {
+		s := reuse.Shape()
+		if op.rank == 3 && len(s) == 3 && s[0] == batch && s[1] == m && s[2] == n ||
+			op.rank == 2 && len(s) == 2 && s[0] == m && s[1] == n {
+			return reuse
+		}
+	}
+	shape := []int{m, n}
+	if op.rank == 3 {
+		shape = []int{batch, m, n}
+	}
+	return coreResult(reuse, shape, data)
 }
 
 // coreResult returns reuse reshaped to shape, or a new tensor backed by data.
@@ -205,7 +346,11 @@ func (op coreMatMulOp) ReturnsPtr() bool     { return false }
 func (op coreMatMulOp) CallsExtern() bool    { return false }
 func (op coreMatMulOp) OverwritesInput() int { return -1 }
 func (op coreMatMulOp) WriteHash(h hash.Hash) {
-	fmt.Fprintf(h, "coreMatMul{%v,%v,%d,%v,%v}", op.transA, op.transB, op.rank, op.fixedA, op.fixedB)
+	fmt.Fprintf(h, "coreMatMul{%v,%v,%d,%v,%v,%v", op.transA, op.transB, op.rank, op.fixedA, op.fixedB, op.scale())
+	if op.bias != nil {
+		fmt.Fprintf(h, ",bias %d %x", len(op.bias.f64), op.bias.hash)
+	}
+	fmt.Fprint(h, "}")
 }
 func (op coreMatMulOp) Hashcode() uint32 {
 	h := fnv.New32a()
@@ -213,6 +358,9 @@ func (op coreMatMulOp) Hashcode() uint32 {
 	return h.Sum32()
 }
 func (op coreMatMulOp) String() string {
+	if op.bias != nil || op.scale() != 1 {
+		return fmt.Sprintf("coreMatMul{transA=%v, transB=%v, alpha=%v, bias=%v}", op.transA, op.transB, op.scale(), op.bias != nil)
+	}
 	return fmt.Sprintf("coreMatMul{transA=%v, transB=%v}", op.transA, op.transB)
 }
 
@@ -230,7 +378,7 @@ func (op coreMatMulOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, e
 		if fixed {
 			return nil, nil
 		}
-		return coreMatMul(x, y, tx, ty)
+		return coreGemm(x, y, tx, ty, op.scale(), nil)
 	}
 	switch {
 	case !op.transA && !op.transB: // C = A·B
@@ -258,4 +406,44 @@ func (op coreMatMulOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, e
 		return nil, err
 	}
 	return G.Nodes{da, db}, nil
+}
+
+// gemmBias returns the row beta·C of Gemm node n, cols wide, when its C
+// input is a model constant that broadcasts along the rows (shape [], [1],
+// [N], [1, 1] or [1, N] for N = cols): fused reports whether it did. For
+// float32 programs the row is rounded as the Mul and Add it replaces
+// would: float32(C)·float32(beta) in float32.
+func (b *coreBuilder) gemmBias(n *onnxlite.Node, beta float64, cols int) (bias []float64, fused bool, err error) {
+	if !b.has(n, 2) || beta == 0 {
+		return nil, false, nil
+	}
+	t, ok := b.st.Consts[n.Inputs[2]]
+	if !ok || !coreIsFloat(t.DType) {
+		return nil, false, nil
+	}
+	s := t.Shape()
+	size := prod(s)
+	switch {
+	case len(s) > 2 || len(s) == 2 && s[0] != 1:
+		return nil, false, nil
+	case size != 1 && size != cols:
+		return nil, false, nil
+	}
+	vals, err := t.Float64s()
+	if err != nil {
+		return nil, false, fmt.Errorf("Gemm C %q: %w", n.Inputs[2], err)
+	}
+	bias = make([]float64, cols)
+	for j := range bias {
+		v := vals[0]
+		if size != 1 {
+			v = vals[j]
+		}
+		if b.dt == tensor.Float32 {
+			bias[j] = float64(float32(v) * float32(beta))
+		} else {
+			bias[j] = v * beta
+		}
+	}
+	return bias, true, nil
 }

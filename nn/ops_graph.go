@@ -302,7 +302,10 @@ func (b *coreBuilder) concat(n *onnxlite.Node, out string) error {
 	return b.set(out, y)
 }
 
-// gemm computes Y = alpha·op(A)·op(B) + beta·C (ONNX Gemm).
+// gemm computes Y = alpha·op(A)·op(B) + beta·C (ONNX Gemm). alpha goes
+// into the product, and a constant C that broadcasts along the rows (the
+// usual bias) into it as a row beta·C that the product accumulates onto
+// (gemmBias): one op forward, one backward. Other C go through an Add.
 func (b *coreBuilder) gemm(n *onnxlite.Node, out string) error {
 	a, err := b.input(n, 0)
 	if err != nil {
@@ -316,29 +319,39 @@ func (b *coreBuilder) gemm(n *onnxlite.Node, out string) error {
 	if len(sa) != 2 || len(sb) != 2 {
 		return fmt.Errorf("Gemm: expected rank-2 A and B, got %v and %v", sa, sb)
 	}
-	y, err := coreMatMul(a, bb, n.AttrInt("transA", 0) != 0, n.AttrInt("transB", 0) != 0)
+	tA, tB := n.AttrInt("transA", 0) != 0, n.AttrInt("transB", 0) != 0
+	cols := sb[1]
+	if tB {
+		cols = sb[0]
+	}
+	alpha := float64(n.AttrFloat("alpha", 1))
+	beta := float64(n.AttrFloat("beta", 1))
+	bias, fused, err := b.gemmBias(n, beta, cols)
 	if err != nil {
 		return err
 	}
-	if alpha := float64(n.AttrFloat("alpha", 1)); alpha != 1 {
-		if y, err = broadcastBinary(y, b.scalar(alpha), "Mul"); err != nil {
-			return err
-		}
-	}
-	beta := float64(n.AttrFloat("beta", 1))
-	if b.has(n, 2) && beta != 0 {
-		c, err := b.input(n, 2)
+	if fused || !b.has(n, 2) || beta == 0 {
+		y, err := coreGemm(a, bb, tA, tB, alpha, bias)
 		if err != nil {
 			return err
 		}
-		if beta != 1 {
-			if c, err = broadcastBinary(c, b.scalar(beta), "Mul"); err != nil {
-				return err
-			}
-		}
-		if y, err = broadcastBinary(y, c, "Add"); err != nil {
+		return b.set(out, y)
+	}
+	y, err := coreGemm(a, bb, tA, tB, alpha, nil)
+	if err != nil {
+		return err
+	}
+	c, err := b.input(n, 2)
+	if err != nil {
+		return err
+	}
+	if beta != 1 {
+		if c, err = broadcastBinary(c, b.scalar(beta), "Mul"); err != nil {
 			return err
 		}
+	}
+	if y, err = broadcastBinary(y, c, "Add"); err != nil {
+		return err
 	}
 	return b.set(out, y)
 }

@@ -12,7 +12,11 @@ import (
 // Geijn 2008, "Anatomy of high-performance matrix multiplication", §4): a
 // sgemmMR×sgemmNR tile of C lives in 12 YMM registers while the kernel
 // streams a sgemmKC-deep sliver of packed A and B; a sgemmMC×sgemmKC block
-// of A stays in L2 and a sgemmKC×sgemmNC panel of B in L3.
+// of A stays in L2 and a sgemmKC×sgemmNC panel of B in L3. On the AMD EPYC
+// this is tuned on (32 KiB L1d, 512 KiB L2 per core) a 6×256 strip of A
+// (6 KiB) and a 256×16 strip of B (16 KiB) share L1. sgemmKC also sets
+// where each element's chain of fused multiply-adds restarts, so changing it
+// changes the bits of products with k > sgemmKC.
 const (
 	sgemmMR = 6
 	sgemmNR = 16
@@ -20,13 +24,15 @@ const (
 	sgemmMC = 96  // multiple of sgemmMR
 	sgemmNC = 512 // multiple of sgemmNR
 
-	// Products with op(B) = B and fewer rows than sgemmMR, or fewer than
-	// sgemmRowsBelow rows and at least sgemmRowsMinK terms per element,
-	// skip packing (sgemmRows); measured with BenchmarkSgemm: 6×256×256
-	// runs at 23 GFLOP/s unpacked and 13 packed, 8×784×9 at 3.8 unpacked
-	// and 5.4 packed.
-	sgemmRowsBelow = 12
-	sgemmRowsMinK  = 64
+	// Products with op(B) = B and fewer rows than sgemmRowsBelow skip
+	// packing (sgemmRows); with a prepacked B (sgemmPre), products with
+	// fewer than sgemmPreRowsBelow rows. Measured by thread CPU time
+	// (BenchmarkSgemm, n = 256, k = 256, AMD EPYC with AVX2/FMA): the row
+	// kernel runs at 24 GFLOP/s whatever m; packing per call reaches 20 at
+	// m = 4, 39 at m = 6; on prepacked panels 11 at m = 1, 19 at m = 2, 30
+	// at m = 3, 67 at m = 6.
+	sgemmRowsBelow    = sgemmMR
+	sgemmPreRowsBelow = 3
 )
 
 // sgemmBufs pools the packing buffers, so a call allocates
@@ -54,7 +60,11 @@ type sgemmScratch struct {
 // product is bit-identical to the same row computed alone (requests
 // coalesced into one batch rely on this). That is why small products are
 // not routed to gonum, whose sums round differently (and, with both
-// operands transposed, differently for different m).
+// operands transposed, differently for different m). Every path keeps the
+// chain: kern6x16 on packed strips of A, kern6x16s on A in place, the row
+// kernel kern1x32, and sgemmPre on a prepacked B. Each chain starts at zero
+// for every sgemmKC-deep block of k; a block ends with alpha·T (exact and
+// skipped when alpha == 1) added to beta·C (beta = 1 after the first block).
 func sgemm(tA, tB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
 	if sgemmKernel == nil {
 		sgemmGonum(tA, tB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
@@ -111,14 +121,12 @@ func sgemmPacked(tA, tB bool, m, n, k int, alpha float32, a []float32, lda int, 
 		sgemmScale(m, n, beta, c, ldc)
 		return
 	}
-	if !tB && n >= 32 && sgemmRowKernel != nil && (m < sgemmMR || m < sgemmRowsBelow && k >= sgemmRowsMinK) {
+	if !tB && n >= 32 && sgemmRowKernel != nil && m < sgemmRowsBelow {
 		sgemmRows(tA, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
 		return
 	}
-	kern := sgemmKernel
 	scratch := sgemmBufs.Get().(*sgemmScratch)
 	defer sgemmBufs.Put(scratch)
-	bufA, bufB, tile := scratch.a, scratch.b, &scratch.tile
 	for jc := 0; jc < n; jc += sgemmNC {
 		nc := min(sgemmNC, n-jc)
 		for pc := 0; pc < k; pc += sgemmKC {
@@ -128,37 +136,10 @@ func sgemmPacked(tA, tB bool, m, n, k int, alpha float32, a []float32, lda int, 
 			if pc > 0 {
 				bet = 1
 			}
-			sgemmPackPanelB(tB, b, ldb, pc, kc, jc, nc, bufB)
+			sgemmPackPanelB(tB, b, ldb, pc, kc, jc, nc, scratch.b)
 			for ic := 0; ic < m; ic += sgemmMC {
 				mc := min(sgemmMC, m-ic)
-				sgemmPackBlockA(tA, a, lda, ic, mc, pc, kc, bufA)
-				for jr := 0; jr < nc; jr += sgemmNR {
-					nr := min(sgemmNR, nc-jr)
-					bp := &bufB[jr*kc]
-					for ir := 0; ir < mc; ir += sgemmMR {
-						mr := min(sgemmMR, mc-ir)
-						ap := &bufA[ir*kc]
-						ci := (ic+ir)*ldc + jc + jr
-						if mr == sgemmMR && nr == sgemmNR {
-							kern(kc, ap, bp, &c[ci], ldc, alpha, bet)
-							continue
-						}
-						// Edge tile: the kernel updates a full tile loaded
-						// with the part of C inside it (the zero-padded
-						// panels fill the rest), so edge elements round
-						// exactly like interior ones.
-						clear(tile[:])
-						if bet != 0 {
-							for i := 0; i < mr; i++ {
-								copy(tile[i*sgemmNR:i*sgemmNR+nr], c[ci+i*ldc:ci+i*ldc+nr])
-							}
-						}
-						kern(kc, ap, bp, &tile[0], sgemmNR, alpha, bet)
-						for i := 0; i < mr; i++ {
-							copy(c[ci+i*ldc:ci+i*ldc+nr], tile[i*sgemmNR:i*sgemmNR+nr])
-						}
-					}
-				}
+				sgemmBlock(tA, a, lda, ic, mc, pc, kc, nc, 0, alpha, bet, scratch.a, scratch.b, &scratch.tile, c[ic*ldc+jc:], ldc)
 			}
 		}
 	}
@@ -169,25 +150,8 @@ func sgemmPacked(tA, tB bool, m, n, k int, alpha float32, a []float32, lda int, 
 // past the last multiple of 32 go through the packed path. The k blocks are
 // those of the packed path, so every element rounds the same either way.
 func sgemmRows(tA bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
-	kern := sgemmRowKernel
 	n32 := n &^ 31
-	for i := 0; i < m; i++ {
-		// Row i of op(A): A[i][p] = a[i·lda+p], or Aᵀ[i][p] = a[p·lda+i].
-		off, inc := i*lda, 1
-		if tA {
-			off, inc = i, lda
-		}
-		for pc := 0; pc < k; pc += sgemmKC {
-			kc := min(sgemmKC, k-pc)
-			bet := beta
-			if pc > 0 {
-				bet = 1
-			}
-			for j := 0; j < n32; j += 32 {
-				kern(kc, &a[off+pc*inc], inc, &b[pc*ldb+j], ldb, &c[i*ldc+j], alpha, bet)
-			}
-		}
-	}
+	sgemmRowsLoop(tA, m, n32, k, alpha, a, lda, b, ldb, beta, c, ldc)
 	if n32 < n {
 		sgemmPacked(tA, false, m, n-n32, k, alpha, a, lda, b[n32:], ldb, beta, c[n32:], ldc)
 	}
@@ -225,9 +189,22 @@ func sgemmPackBlockA(tA bool, a []float32, lda, ic, mc, pc, kc int, dst []float3
 			}
 			continue
 		}
-		if mr < sgemmMR {
-			clear(d)
+		if mr == sgemmMR {
+			// Six rows read side by side, d written in order.
+			o := i0*lda + pc
+			r0 := a[o : o+kc]
+			r1 := a[o+lda : o+lda+kc][:len(r0)]
+			r2 := a[o+2*lda : o+2*lda+kc][:len(r0)]
+			r3 := a[o+3*lda : o+3*lda+kc][:len(r0)]
+			r4 := a[o+4*lda : o+4*lda+kc][:len(r0)]
+			r5 := a[o+5*lda : o+5*lda+kc][:len(r0)]
+			for p := range r0 {
+				q := d[p*sgemmMR : p*sgemmMR+sgemmMR : p*sgemmMR+sgemmMR]
+				q[0], q[1], q[2], q[3], q[4], q[5] = r0[p], r1[p], r2[p], r3[p], r4[p], r5[p]
+			}
+			continue
 		}
+		clear(d)
 		for r := 0; r < mr; r++ {
 			src := a[(i0+r)*lda+pc : (i0+r)*lda+pc+kc]
 			for p, v := range src {
@@ -247,6 +224,22 @@ func sgemmPackPanelB(tB bool, b []float32, ldb, pc, kc, jc, nc int, dst []float3
 		d := dst[jr*kc : jr*kc+kc*sgemmNR]
 		j0 := jc + jr
 		if !tB {
+			if cp := sgemmCopy16; cp != nil && nr == sgemmNR && kc > 0 {
+				// Bounds checked here for the whole strip, copied in assembly.
+				last := (pc+kc-1)*ldb + j0
+				_ = b[last+sgemmNR-1]
+				_ = d[kc*sgemmNR-1]
+				cp(&b[pc*ldb+j0], ldb, &d[0], kc)
+				continue
+			}
+			if nr == sgemmNR {
+				// Whole strips: one 64-byte array copy per row, no memmove call.
+				for p := 0; p < kc; p++ {
+					o := (pc+p)*ldb + j0
+					*(*[sgemmNR]float32)(d[p*sgemmNR:]) = *(*[sgemmNR]float32)(b[o : o+sgemmNR])
+				}
+				continue
+			}
 			for p := 0; p < kc; p++ {
 				src := b[(pc+p)*ldb+j0 : (pc+p)*ldb+j0+nr]
 				dp := d[p*sgemmNR : p*sgemmNR+sgemmNR]

@@ -50,3 +50,57 @@ var sgemmTranspose8 = func() func(src *float32, lds int, dst *float32, ldd int) 
 	}
 	return nil
 }()
+
+// fmaPeak runs n iterations of 12 independent 8-wide fused multiply-adds
+// on registers (sgemm_amd64.s): BenchmarkFMAPeak measures the core's float32
+// FMA ceiling with it.
+//
+//go:noescape
+func fmaPeak(n int)
+
+// kern6x16s is kern6x16 reading the 6×kc strip of A in place, element
+// (r, p) at a[r·rs + p·ps] (sgemm_amd64.s); it stores the same bits as
+// kern6x16 on the packed strip. All six rows must lie inside A.
+//
+//go:noescape
+func kern6x16s(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32)
+
+// sgemmStridedKernel is kern6x16s when sgemmKernel is kern6x16, nil
+// otherwise.
+var sgemmStridedKernel = func() func(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32) {
+	if sgemmKernel != nil {
+		return kern6x16s
+	}
+	return nil
+}()
+
+// copyRows16 copies rows (≥ 1) runs of 16 floats from src[r·lds] to
+// dst[16r] (sgemm_amd64.s); every run must lie inside its slice.
+//
+//go:noescape
+func copyRows16(src *float32, lds int, dst *float32, rows int)
+
+// sgemmCopy16 is copyRows16 when the CPU has AVX (with sgemmKernel), nil
+// otherwise.
+var sgemmCopy16 = func() func(src *float32, lds int, dst *float32, rows int) {
+	if sgemmKernel != nil {
+		return copyRows16
+	}
+	return nil
+}()
+
+// kern6x16e is the bottom-edge kernel in sgemm_amd64.s: kern6x16s's chains
+// (a packed strip is rs = 1, ps = sgemmMR), reading and storing only rows
+// r < mr (1 ≤ mr ≤ 6) of c, all 16 columns, with the bits a full tile would
+// get. It reads all six rows of A.
+//
+//go:noescape
+func kern6x16e(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32, mr int)
+
+// sgemmEdgeKernel is kern6x16e when sgemmKernel is kern6x16, nil otherwise.
+var sgemmEdgeKernel = func() func(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32, mr int) {
+	if sgemmKernel != nil {
+		return kern6x16e
+	}
+	return nil
+}()
