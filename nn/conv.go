@@ -31,8 +31,13 @@ type convSpec struct {
 // where g = m / (M/group) and positions in the padding read 0. The output
 // spatial size per axis is ⌊(in + p_begin + p_end − ((k−1)·d + 1)) / s⌋ + 1
 // (ONNX Conv operator, opset 11). The forward pass lowers each group to one
-// matrix product by im2col; gradients with respect to x (col2im of Wᵀ·dy),
-// w (dy·colᵀ) and b (Σ dy) are exact.
+// matrix product W·im2col(x); gradients with respect to x, w (dy·colᵀ) and
+// b (Σ dy) are exact. With the float32 kernel (sgemm_conv.go) the im2col
+// matrix is never stored: it is packed strip by strip from the padded
+// image, and the input gradient of a unit-stride convolution runs as the
+// same forward correlation of dy with the flipped weights (inputGrad32);
+// float64, other strides and CPUs without the kernel use im2col, GEMM and,
+// for the input gradient, col2im of Wᵀ·dy.
 func conv(x, w, b *G.Node, s convSpec) (y *G.Node, err error) {
 	defer convRecover("Conv", &err)
 	if x == nil || w == nil {
@@ -48,7 +53,7 @@ func conv(x, w, b *G.Node, s convSpec) (y *G.Node, err error) {
 	if err := convCheckDtype("Conv", x, w, b); err != nil {
 		return nil, err
 	}
-	op := &convOp{rank: rank, bias: b != nil}
+	op := &convOp{rank: rank, bias: b != nil, slot: new(convSlot)}
 	if op.pads, op.strides, op.dils, err = convNormalize(rank, s.Pads, s.Strides, s.Dilations); err != nil {
 		return nil, fmt.Errorf("nn: Conv: %w", err)
 	}
@@ -250,6 +255,10 @@ type convOp struct {
 	group                  int
 	bias                   bool
 	constX, constW, constB bool
+
+	// slot keeps the scratch (geometry, packed weights, buffers) between
+	// runs; see convSlot. Ops built without one allocate scratch per call.
+	slot *convSlot
 }
 
 // geometry checks the input shapes and returns the output shape and the
@@ -265,7 +274,9 @@ func (op *convOp) geometry(shapes ...tensor.Shape) (tensor.Shape, convGeom, erro
 		return nil, convGeom{}, fmt.Errorf("nn: Conv: %w: with group %d expected input channels %d = weights axis 1 (%d) × group and filters %d divisible by group",
 			ErrConvShape, op.group, c, ws[1], m)
 	}
-	if op.bias {
+	// The gradient ops pass (x, w) only: the bias does not change the
+	// geometry. Do and InferShape check the number of inputs first.
+	if op.bias && len(shapes) > 2 {
 		if len(shapes) != 3 || len(shapes[2]) != 1 || shapes[2][0] != m {
 			var got tensor.Shape
 			if len(shapes) == 3 {
@@ -332,41 +343,64 @@ func convShapes(arity int, ds []G.DimSizer) ([]tensor.Shape, error) {
 	return G.DimSizersToShapes(ds)
 }
 
-func (op *convOp) Do(vals ...G.Value) (ret G.Value, err error) {
+// Do runs the forward convolution into a new tensor.
+func (op *convOp) Do(vals ...G.Value) (G.Value, error) { return op.UsePreallocDo(nil, vals...) }
+
+// UsePreallocDo runs the forward convolution into prealloc when it is a
+// dense tensor of the output's dtype and shape that shares no memory with
+// the inputs, and into a new tensor otherwise. Every element of the output
+// is written. float32 runs on the packed driver of sgemm_conv.go where the
+// CPU has the kernel; float64 (and float32 elsewhere) on im2col + GEMM.
+func (op *convOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, err error) {
 	defer convRecover("Conv", &err)
 	if len(vals) != op.Arity() {
 		return nil, fmt.Errorf("nn: Conv: expected %d inputs, got %d", op.Arity(), len(vals))
 	}
-	ts := make([]*tensor.Dense, len(vals))
-	shapes := make([]tensor.Shape, len(vals))
+	var ts [3]*tensor.Dense
+	var shapes [3]tensor.Shape
 	for i, v := range vals {
 		if ts[i], err = convDense(v, "Conv"); err != nil {
 			return nil, err
 		}
 		shapes[i] = ts[i].Shape()
 	}
-	oshp, g, err := op.geometry(shapes...)
+	s := op.scratch()
+	defer op.release(s)
+	oshp, g, err := op.cachedGeometry(s, shapes[:len(vals)]...)
 	if err != nil {
 		return nil, err
 	}
-	out, err := convNewDense(ts[0].Dtype(), oshp)
-	if err != nil {
-		return nil, fmt.Errorf("nn: Conv: %w", err)
+	dt := ts[0].Dtype()
+	for _, t := range ts[1:len(vals)] {
+		if t.Dtype() != dt {
+			return nil, fmt.Errorf("nn: Conv: %w: mixed dtypes %v and %v", ErrConvShape, dt, t.Dtype())
+		}
 	}
-	switch x := ts[0].Data().(type) {
-	case []float64:
+	out := convPrealloc(prealloc, dt, oshp, ts[:len(vals)])
+	if out == nil {
+		if out, err = convNewDense(dt, oshp.Clone()); err != nil {
+			return nil, fmt.Errorf("nn: Conv: %w", err)
+		}
+	}
+	n, c, m := shapes[0][0], shapes[0][1], shapes[1][0]
+	if dt == tensor.Float64 {
 		var b []float64
 		if op.bias {
-			b = ts[2].Data().([]float64)
+			b = ts[2].Float64s()
 		}
-		convForward(&g, shapes[0][0], shapes[0][1], shapes[1][0], op.group, x, ts[1].Data().([]float64), b, out.Data().([]float64))
-	case []float32:
-		var b []float32
-		if op.bias {
-			b = ts[2].Data().([]float32)
-		}
-		convForward(&g, shapes[0][0], shapes[0][1], shapes[1][0], op.group, x, ts[1].Data().([]float32), b, out.Data().([]float32))
+		convForward(&g, n, c, m, op.group, ts[0].Float64s(), ts[1].Float64s(), b, out.Float64s())
+		return out, nil
 	}
+	var b []float32
+	if op.bias {
+		b = ts[2].Float32s()
+	}
+	x, w, y := ts[0].Float32s(), ts[1].Float32s(), out.Float32s()
+	if convFast(c / op.group * g.kh * g.kw) {
+		op.forward32(s, &g, n, c, m, x, w, b, y)
+		return out, nil
+	}
+	convForward(&g, n, c, m, op.group, x, w, b, y)
 	return out, nil
 }
 
@@ -441,6 +475,7 @@ func (op *convOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error)
 			continue
 		}
 		back := &convBackOp{convOp: *op, wrt: i}
+		back.slot = new(convSlot)
 		n, err := G.ApplyOp(back, inputs[0], inputs[1], grad)
 		if err != nil {
 			return nil, fmt.Errorf("nn: Conv gradient: %w", err)
@@ -482,7 +517,15 @@ func (op *convBackOp) InferShape(ds ...G.DimSizer) (tensor.Shape, error) {
 	return tensor.Shape{shapes[1][0]}, nil
 }
 
-func (op *convBackOp) Do(vals ...G.Value) (ret G.Value, err error) {
+// Do runs the gradient into a new tensor.
+func (op *convBackOp) Do(vals ...G.Value) (G.Value, error) { return op.UsePreallocDo(nil, vals...) }
+
+// UsePreallocDo runs the gradient into prealloc when it is a dense tensor of
+// the result's dtype and shape that shares no memory with the inputs, and
+// into a new tensor otherwise; every element is written. The float32 input
+// gradient with unit strides runs as a forward correlation on the packed
+// driver (inputGrad32); the other cases use im2col/col2im and GEMM.
+func (op *convBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, err error) {
 	defer convRecover("Conv gradient", &err)
 	if len(vals) != 3 {
 		return nil, fmt.Errorf("nn: Conv gradient: expected 3 inputs, got %d", len(vals))
@@ -493,9 +536,15 @@ func (op *convBackOp) Do(vals ...G.Value) (ret G.Value, err error) {
 			return nil, err
 		}
 	}
-	fwd := op.convOp
-	fwd.bias = false
-	oshp, g, err := fwd.geometry(ts[0].Shape(), ts[1].Shape())
+	dt := ts[0].Dtype()
+	for _, t := range ts[1:] {
+		if t.Dtype() != dt {
+			return nil, fmt.Errorf("nn: Conv gradient: %w: mixed dtypes %v and %v", ErrConvShape, dt, t.Dtype())
+		}
+	}
+	s := op.scratch()
+	defer op.release(s)
+	oshp, g, err := op.convOp.cachedGeometry(s, ts[0].Shape(), ts[1].Shape())
 	if err != nil {
 		return nil, err
 	}
@@ -509,19 +558,28 @@ func (op *convBackOp) Do(vals ...G.Value) (ret G.Value, err error) {
 	case 1:
 		rshp = ts[1].Shape()
 	default:
-		rshp = tensor.Shape{oshp[1]}
+		rshp = oshp[1:2]
 	}
-	out, err := convNewDense(ts[0].Dtype(), rshp)
-	if err != nil {
-		return nil, fmt.Errorf("nn: Conv gradient: %w", err)
+	out := convPrealloc(prealloc, dt, rshp, ts[:])
+	if out == nil {
+		if out, err = convNewDense(dt, rshp.Clone()); err != nil {
+			return nil, fmt.Errorf("nn: Conv gradient: %w", err)
+		}
 	}
 	n, c, m := oshp[0], ts[0].Shape()[1], oshp[1]
-	switch x := ts[0].Data().(type) {
-	case []float64:
-		convBackward(&g, op.wrt, n, c, m, op.group, x, ts[1].Data().([]float64), ts[2].Data().([]float64), out.Data().([]float64))
-	case []float32:
-		convBackward(&g, op.wrt, n, c, m, op.group, x, ts[1].Data().([]float32), ts[2].Data().([]float32), out.Data().([]float32))
+	if dt == tensor.Float32 && op.wrt == 0 && convBackwardDirect(&g) && convFast(m/op.group*g.kh*g.kw) {
+		op.inputGrad32(s, &g, n, c, m, ts[1].Float32s(), ts[2].Float32s(), out.Float32s())
+		return out, nil
 	}
+	if dt == tensor.Float64 {
+		r := out.Float64s()
+		clear(r)
+		convBackward(&g, op.wrt, n, c, m, op.group, ts[0].Float64s(), ts[1].Float64s(), ts[2].Float64s(), r)
+		return out, nil
+	}
+	r := out.Float32s()
+	clear(r)
+	convBackward(&g, op.wrt, n, c, m, op.group, ts[0].Float32s(), ts[1].Float32s(), ts[2].Float32s(), r)
 	return out, nil
 }
 

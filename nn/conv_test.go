@@ -337,9 +337,10 @@ func TestConvConstantWeights(t *testing.T) {
 }
 
 func TestConvConcurrentDo(t *testing.T) {
-	// The op keeps no state between runs and its scratch buffers are pooled
-	// per call: concurrent runs give the serial result bit for bit (common
-	// practice; run with -race).
+	// The op's scratch is taken out of its slot for a run, and a run that
+	// finds the slot empty works on fresh scratch: concurrent runs of one
+	// instance give the serial result bit for bit (common practice; run
+	// with -race). TestConvConcurrentDo32 checks the float32 routes.
 	rng := rand.New(rand.NewSource(32))
 	c := convCases[2]
 	ins := c.inputs(rng)
