@@ -295,9 +295,12 @@ func elemBinaryRun[T elemFloat](op *elemBinaryOp, p G.Value, vs []G.Value) (G.Va
 	// so y may be such an operand, never a broadcast one.
 	v, y := elemAlloc[T](p, op.dt, op.outShape)
 	f := elemBinaryFunc[T](op.kind)
+	code := elemArithCode(op.kind)
 	if len(a) == len(y) && len(b) == len(y) {
-		for i := range y {
-			y[i] = f(a[i], b[i])
+		if !elemArithRow(code, y, a, b, 1, 1) {
+			for i := range y {
+				y[i] = f(a[i], b[i])
+			}
 		}
 		return elemWrap(v, y), nil
 	}
@@ -312,6 +315,9 @@ func elemBinaryRun[T elemFloat](op *elemBinaryOp, p G.Value, vs []G.Value) (G.Va
 	}
 	elemRows(op.outShape, sa, sb, func(o, ia, ib int) {
 		row := y[o : o+n]
+		if elemArithRow(code, row, a[ia:], b[ib:], la, lb) {
+			return
+		}
 		for j := range row {
 			row[j] = f(a[ia+j*la], b[ib+j*lb])
 		}
@@ -390,9 +396,31 @@ func elemBinaryDiffRun[T elemFloat](op *elemBinaryDiffOp, p G.Value, vs []G.Valu
 	shape := op.wrtShape()
 	df := elemBinaryGrad[T](op.kind, op.which)
 	v, d := elemAlloc[T](p, op.dt, shape)
+	// g·∂f/∂x for Add, Sub and Mul as one row operation on g: dg (which
+	// operand g meets), its stride, and the op; pass is set when the
+	// gradient is g itself.
+	pass := false
+	dcode, dwith := -1, 0 // elemArithMul with b (0) or a (1)
+	switch op.kind + fmt.Sprint(op.which) {
+	case "Add0", "Add1", "Sub0":
+		pass = true
+	case "Mul0":
+		dcode, dwith = elemArithMul, 0
+	case "Mul1":
+		dcode, dwith = elemArithMul, 1
+	}
 	if len(a) == len(g) && len(b) == len(g) {
-		for i := range d {
-			d[i] = df(a[i], b[i], g[i])
+		switch {
+		case pass:
+			copy(d, g)
+		case dcode >= 0 && dwith == 0:
+			elemArithRow(dcode, d, g, b, 1, 1)
+		case dcode >= 0:
+			elemArithRow(dcode, d, g, a, 1, 1)
+		default:
+			for i := range d {
+				d[i] = df(a[i], b[i], g[i])
+			}
 		}
 		return elemWrap(v, d), nil
 	}
@@ -407,7 +435,17 @@ func elemBinaryDiffRun[T elemFloat](op *elemBinaryDiffOp, p G.Value, vs []G.Valu
 		if (elemAliases(d, a) && len(a) != len(d)) || (elemAliases(d, b) && len(b) != len(d)) {
 			v, d = elemAlloc[T](nil, op.dt, shape)
 		}
+		if pass {
+			copy(d, g)
+			return elemWrap(v, d), nil
+		}
 		elemRows(op.outShape, sa, sb, func(o, ia, ib int) {
+			switch {
+			case dcode >= 0 && dwith == 0 && elemArithRow(dcode, d[o:o+n], g[o:], b[ib:], 1, lb):
+				return
+			case dcode >= 0 && dwith == 1 && elemArithRow(dcode, d[o:o+n], g[o:], a[ia:], 1, la):
+				return
+			}
 			for j := range n {
 				d[o+j] = df(a[ia+j*la], b[ib+j*lb], g[o+j])
 			}
@@ -432,6 +470,103 @@ func elemBinaryDiffRun[T elemFloat](op *elemBinaryDiffOp, p G.Value, vs []G.Valu
 		}
 	})
 	return elemWrap(v, d), nil
+}
+
+// The arithmetic ops that elemArithRow runs without a function call per element.
+const (
+	elemArithAdd = iota
+	elemArithSub
+	elemArithMul
+	elemArithDiv
+)
+
+// elemArithCode returns the elemArith code of a binary op kind, or -1.
+func elemArithCode(kind string) int {
+	switch kind {
+	case "Add":
+		return elemArithAdd
+	case "Sub":
+		return elemArithSub
+	case "Mul":
+		return elemArithMul
+	case "Div":
+		return elemArithDiv
+	}
+	return -1
+}
+
+// elemArithRow stores y[j] = a[j·la] ∘ b[j·lb] for j < len(y), where ∘ is the
+// op of code and each stride is 0 (a broadcast scalar, the bias case) or 1.
+// It reports false, writing nothing, for other codes or strides. Every
+// element is the one IEEE operation elemBinaryFunc performs.
+func elemArithRow[T elemFloat](code int, y, a, b []T, la, lb int) bool {
+	n := len(y)
+	if code < 0 || n == 0 || la < 0 || la > 1 || lb < 0 || lb > 1 || (la == 0 && lb == 0) {
+		return false
+	}
+	switch {
+	case la == 1 && lb == 1:
+		a, b = a[:n], b[:n]
+		switch code {
+		case elemArithAdd:
+			for i := range y {
+				y[i] = a[i] + b[i]
+			}
+		case elemArithSub:
+			for i := range y {
+				y[i] = a[i] - b[i]
+			}
+		case elemArithMul:
+			for i := range y {
+				y[i] = a[i] * b[i]
+			}
+		default:
+			for i := range y {
+				y[i] = a[i] / b[i]
+			}
+		}
+	case la == 1:
+		a, s := a[:n], b[0]
+		switch code {
+		case elemArithAdd:
+			for i := range y {
+				y[i] = a[i] + s
+			}
+		case elemArithSub:
+			for i := range y {
+				y[i] = a[i] - s
+			}
+		case elemArithMul:
+			for i := range y {
+				y[i] = a[i] * s
+			}
+		default:
+			for i := range y {
+				y[i] = a[i] / s
+			}
+		}
+	default:
+		s, b := a[0], b[:n]
+		switch code {
+		case elemArithAdd:
+			for i := range y {
+				y[i] = s + b[i]
+			}
+		case elemArithSub:
+			for i := range y {
+				y[i] = s - b[i]
+			}
+		case elemArithMul:
+			for i := range y {
+				y[i] = s * b[i]
+			}
+		default:
+			for i := range y {
+				y[i] = s / b[i]
+			}
+		}
+	}
+	return true
 }
 
 // elemHash hashes an op by its WriteHash text.

@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"slices"
+	"strconv"
 
 	"github.com/apportion/apportion/onnxlite"
 )
@@ -17,8 +18,12 @@ type request struct {
 	grad    bool
 }
 
-func (r request) key() string {
-	return fmt.Sprintf("%q/%v", r.outputs, r.grad)
+// appendKey appends a text that tells requests apart to b.
+func (r request) appendKey(b []byte) []byte {
+	for _, o := range r.outputs {
+		b = strconv.AppendQuote(b, o)
+	}
+	return strconv.AppendBool(append(b, '/'), r.grad)
 }
 
 // program is one compiled configuration: exact input shapes and a request.
@@ -318,13 +323,25 @@ func coreRelaxModel(m *onnxlite.Model) *onnxlite.Model {
 // program returns the cached program for shapes and req, compiling it on
 // first use.
 func (nw *Network) program(shapes [][]int, req request) (*program, error) {
-	key := fmt.Sprint(shapes) + req.key()
+	// The key is built without fmt and looked up without a string copy:
+	// this runs on every call.
+	var buf [128]byte
+	kb := buf[:0]
+	for _, s := range shapes {
+		kb = append(kb, '[')
+		for _, d := range s {
+			kb = append(strconv.AppendInt(kb, int64(d), 10), ' ')
+		}
+		kb = append(kb, ']')
+	}
+	kb = req.appendKey(kb)
 	nw.mu.Lock()
-	p, ok := nw.progs[key]
+	p, ok := nw.progs[string(kb)]
 	nw.mu.Unlock()
 	if ok {
 		return p, nil
 	}
+	key := string(kb)
 	p, err := nw.newProgram(shapes, req)
 	if err != nil {
 		return nil, err

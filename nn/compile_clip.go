@@ -56,7 +56,12 @@ func (op coreClipBoundsOp) InferShape(in ...G.DimSizer) (tensor.Shape, error) {
 	return s.Clone(), nil
 }
 
-func (op coreClipBoundsOp) Do(vs ...G.Value) (G.Value, error) {
+func (op coreClipBoundsOp) Do(vs ...G.Value) (G.Value, error) { return op.UsePreallocDo(nil, vs...) }
+
+// UsePreallocDo stores the result in prealloc when it is a dense tensor of
+// the input's element type and shape (see exec_buffers.go). The bounds are
+// applied in float64 and rounded to the element type once, as Do does.
+func (op coreClipBoundsOp) UsePreallocDo(prealloc G.Value, vs ...G.Value) (G.Value, error) {
 	if len(vs) != op.Arity() {
 		return nil, fmt.Errorf("Clip: expected %d inputs, got %d", op.Arity(), len(vs))
 	}
@@ -84,6 +89,11 @@ func (op coreClipBoundsOp) Do(vs ...G.Value) (G.Value, error) {
 		}
 	}
 	dt := vs[0].Dtype()
+	if t, ok := prealloc.(*tensor.Dense); ok && t.Dtype() == dt && !t.RequiresIterator() && t.Shape().Eq(vs[0].Shape()) && t.Shape().TotalSize() == len(out) {
+		if err := coreFill(t, out); err == nil {
+			return t, nil
+		}
+	}
 	return coreDense(dt, vs[0].Shape(), out), nil
 }
 

@@ -23,8 +23,9 @@ type Selection struct {
 // methods use. It is safe for concurrent use.
 type Head struct {
 	nw       *Network
-	value    string // the ONNX value it reads
-	inShape  []int  // per sample
+	value    string   // the ONNX value it reads
+	outputs  []string // {value}, the outputs of its requests
+	inShape  []int    // per sample
 	inSize   int
 	outShape []int // per sample
 	outSize  int
@@ -97,7 +98,7 @@ func (nw *Network) Head(sel Selection) (h *Head, err error) {
 	if !coreIsFloat(vs.DType) {
 		return nil, fmt.Errorf("nn: head: value %q: %w: element type %v", value, ErrBadRequest, vs.DType)
 	}
-	h = &Head{nw: nw, value: value, inShape: shapes[0][1:], outShape: vs.Shape[1:]}
+	h = &Head{nw: nw, value: value, outputs: []string{value}, inShape: shapes[0][1:], outShape: vs.Shape[1:]}
 	h.inSize, h.outSize = prod(h.inShape), prod(h.outShape)
 	return h, nil
 }
@@ -140,7 +141,7 @@ func (h *Head) Forward(ctx context.Context, x []float64, n int) (out []float64, 
 	if err := h.check(x, n); err != nil {
 		return nil, fmt.Errorf("nn: head forward: %w", err)
 	}
-	outs, _, _, err := h.nw.runReq(ctx, h.shapes(n), [][]float64{x}, request{outputs: []string{h.value}}, nil)
+	outs, _, _, err := h.nw.runReq(ctx, h.shapes(n), [][]float64{x}, request{outputs: h.outputs}, nil)
 	if err != nil {
 		return nil, fmt.Errorf("nn: head forward: %w", err)
 	}
@@ -168,7 +169,7 @@ func (h *Head) Gradient(ctx context.Context, x []float64, n int, target []int) (
 		}
 		mask[i*h.outSize+t] = 1
 	}
-	outs, _, grad, err := h.nw.runReq(ctx, h.shapes(n), [][]float64{x}, request{outputs: []string{h.value}, grad: true}, mask)
+	outs, _, grad, err := h.nw.runReq(ctx, h.shapes(n), [][]float64{x}, request{outputs: h.outputs, grad: true}, mask)
 	if err != nil {
 		return nil, nil, fmt.Errorf("nn: head gradient: %w", err)
 	}

@@ -16,13 +16,13 @@ import (
 // The kernels in this file, broadcast.go, softmax.go and reduce.go are
 // gorgonia ops with exact symbolic gradients (gorgonia's Op and SDOp).
 //
-// Buffers: an op whose output has the shape of one of its inputs and whose
-// kernel reads element k of that input before it writes element k says so
-// with ReturnsPtr true and OverwritesInput ≥ 0, as gorgonia's own
-// elementwise ops do. The compiler then lets the op write over that input's
-// register when nothing reads the input later (never over a graph input),
-// and the tape machine hands that buffer to UsePreallocDo. Ops that change
-// the shape (reductions, broadcast gradients) allocate their output.
+// Buffers: every op implements UsePreallocDo and writes its whole output
+// into a preallocated tensor of its element type and shape, allocating only
+// when none fits; the machine keeps one such tensor per step across runs
+// (exec_buffers.go). An op whose output has the shape of one of its inputs
+// and whose kernel reads element k of that input before it writes element k
+// also says so with ReturnsPtr true and OverwritesInput ≥ 0, as gorgonia's
+// own elementwise ops do, for gorgonia's tape machine.
 
 var (
 	errElemUnknownOp = errors.New("unknown elementwise op")
@@ -314,6 +314,16 @@ func (op *elemUnaryOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, e
 	if len(inputs) != 1 {
 		return nil, fmt.Errorf("nn: %s gradient: got %d inputs, want 1", op.kind, len(inputs))
 	}
+	if op.kind == "Relu" {
+		// y > 0 exactly where x > 0 (y = max(0, x) is x there, and +0 or
+		// NaN elsewhere), so the backward needs y only and x's buffer is
+		// free once y is computed.
+		d, err := G.ApplyOp(&elemReluDiffOp{op}, output, grad)
+		if err != nil {
+			return nil, fmt.Errorf("nn: %s gradient: %w", op.kind, err)
+		}
+		return G.Nodes{d}, nil
+	}
 	d, err := G.ApplyOp(&elemUnaryDiffOp{op}, inputs[0], output, grad)
 	if err != nil {
 		return nil, fmt.Errorf("nn: %s gradient: %w", op.kind, err)
@@ -350,8 +360,10 @@ func elemUnaryRun[T elemFloat](op *elemUnaryOp, p, xv G.Value) (G.Value, error) 
 	a, b := op.alpha, op.beta
 	switch op.kind {
 	case "Relu": // the hot one: no float64 round trip
-		for i, xi := range x {
-			y[i] = max(xi, 0)
+		if y32, ok := any(y).([]float32); ok {
+			execReluF32(y32, any(x).([]float32))
+		} else {
+			execReluGo(y, x)
 		}
 	case "Identity":
 		copy(y, x)
@@ -405,12 +417,10 @@ func elemUnaryDiffRun[T elemFloat](op *elemUnaryDiffOp, p G.Value, vs []G.Value)
 	a, b := op.alpha, op.beta
 	switch op.kind {
 	case "Relu":
-		for i, xi := range x {
-			if xi > 0 {
-				d[i] = g[i]
-			} else {
-				d[i] = 0
-			}
+		if d32, ok := any(d).([]float32); ok {
+			execReluDiffF32(d32, any(x).([]float32), any(g).([]float32))
+		} else {
+			execReluDiffGo(d, x, g)
 		}
 	case "Identity":
 		copy(d, g)
@@ -419,6 +429,51 @@ func elemUnaryDiffRun[T elemFloat](op *elemUnaryDiffOp, p G.Value, vs []G.Value)
 		for i, xi := range x {
 			d[i] = g[i] * T(df(float64(xi), float64(y[i]), a, b))
 		}
+	}
+	return elemWrap(v, d), nil
+}
+
+// elemReluDiffOp computes dL/dx = dL/dy where y > 0 and 0 elsewhere from
+// (y, dL/dy), y = Relu(x); the same values as elemUnaryDiffOp's from x.
+type elemReluDiffOp struct{ *elemUnaryOp }
+
+func (op *elemReluDiffOp) Arity() int           { return 2 }
+func (op *elemReluDiffOp) OverwritesInput() int { return 1 }
+func (op *elemReluDiffOp) Type() hm.Type        { return hm.NewFnType(op.t, op.t, op.t) }
+func (op *elemReluDiffOp) String() string       { return "∂Relu(y)" }
+func (op *elemReluDiffOp) WriteHash(h hash.Hash) {
+	fmt.Fprintf(h, "elem.dReluY%v%v", op.dt, op.shape)
+}
+func (op *elemReluDiffOp) Hashcode() uint32 { return elemHash(op) }
+func (op *elemReluDiffOp) Do(vs ...G.Value) (G.Value, error) {
+	return op.UsePreallocDo(nil, vs...)
+}
+
+// UsePreallocDo writes into p when it fits (see exec_buffers.go).
+func (op *elemReluDiffOp) UsePreallocDo(p G.Value, vs ...G.Value) (G.Value, error) {
+	if len(vs) != 2 {
+		return nil, fmt.Errorf("nn: %s: got %d inputs, want 2", op, len(vs))
+	}
+	if op.dt == tensor.Float32 {
+		return elemReluDiffRun[float32](op, p, vs)
+	}
+	return elemReluDiffRun[float64](op, p, vs)
+}
+
+func elemReluDiffRun[T elemFloat](op *elemReluDiffOp, p G.Value, vs []G.Value) (G.Value, error) {
+	y, err := elemData[T]("Relu gradient", vs[0], op.shape)
+	if err != nil {
+		return nil, err
+	}
+	g, err := elemData[T]("Relu gradient", vs[1], op.shape)
+	if err != nil {
+		return nil, err
+	}
+	v, d := elemAlloc[T](p, op.dt, op.shape)
+	if d32, ok := any(d).([]float32); ok {
+		execReluDiffF32(d32, any(y).([]float32), any(g).([]float32))
+	} else {
+		execReluDiffGo(d, y, g)
 	}
 	return elemWrap(v, d), nil
 }
@@ -475,13 +530,9 @@ func elemData[T elemFloat](op string, v G.Value, shape []int) ([]T, error) {
 			}
 			t = m
 		}
-		d, ok := t.Data().([]T)
+		d, ok := elemDense[T](t)
 		if !ok {
-			if s, ok := t.Data().(T); ok { // a one-element tensor may hold a bare value
-				d = []T{s}
-			} else {
-				return nil, fmt.Errorf("nn: %s: operand holds %v, want %T", op, t.Dtype(), z)
-			}
+			return nil, fmt.Errorf("nn: %s: operand holds %v, want %T", op, t.Dtype(), z)
 		}
 		out = d
 	case *G.F64:
@@ -516,12 +567,29 @@ func elemAlloc[T elemFloat](p G.Value, dt tensor.Dtype, shape []int) (G.Value, [
 		return nil, make([]T, 1)
 	}
 	if t, ok := p.(*tensor.Dense); ok && t.Dtype() == dt && !t.RequiresIterator() && slices.Equal(t.Shape(), shape) {
-		if d, ok := t.Data().([]T); ok && len(d) == elemShapeSize(shape) {
+		if d, ok := elemDense[T](t); ok && len(d) == elemShapeSize(shape) {
 			return t, d
 		}
 	}
 	t := tensor.New(tensor.Of(dt), tensor.WithShape(append([]int(nil), shape...)...))
-	return t, t.Data().([]T)
+	d, _ := elemDense[T](t)
+	return t, d
+}
+
+// elemDense returns the backing array of t when it holds elements of type
+// T, without the allocations of (*tensor.Dense).Data, which builds the
+// slice through reflection on every call.
+func elemDense[T elemFloat](t *tensor.Dense) ([]T, bool) {
+	var z T
+	switch {
+	case unsafe.Sizeof(z) == 4 && t.Dtype() == tensor.Float32:
+		f := t.Float32s()
+		return unsafe.Slice((*T)(unsafe.Pointer(unsafe.SliceData(f))), len(f)), true
+	case unsafe.Sizeof(z) == 8 && t.Dtype() == tensor.Float64:
+		f := t.Float64s()
+		return unsafe.Slice((*T)(unsafe.Pointer(unsafe.SliceData(f))), len(f)), true
+	}
+	return nil, false
 }
 
 // elemWrap returns v, or the scalar in buf[0] when v is nil.

@@ -185,7 +185,12 @@ func (op *padOpT) InferShape(ds ...G.DimSizer) (tensor.Shape, error) {
 	return s, err
 }
 
-func (op *padOpT) Do(vals ...G.Value) (ret G.Value, err error) {
+func (op *padOpT) Do(vals ...G.Value) (G.Value, error) { return op.UsePreallocDo(nil, vals...) }
+
+// UsePreallocDo writes the padded tensor into prealloc when it is a dense
+// tensor of the output's element type and shape (see exec_buffers.go), and
+// allocates otherwise.
+func (op *padOpT) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, err error) {
 	defer convRecover("Pad", &err)
 	if len(vals) != 1 {
 		return nil, fmt.Errorf("nn: Pad: expected 1 input, got %d", len(vals))
@@ -198,7 +203,7 @@ func (op *padOpT) Do(vals ...G.Value) (ret G.Value, err error) {
 	if err != nil {
 		return nil, err
 	}
-	out, err := convNewDense(x.Dtype(), oshp)
+	out, err := padOutput(prealloc, x.Dtype(), oshp, x)
 	if err != nil {
 		return nil, fmt.Errorf("nn: Pad: %w", err)
 	}
@@ -258,7 +263,11 @@ func (op *padBackOp) InferShape(ds ...G.DimSizer) (tensor.Shape, error) {
 	return shapes[0].Clone(), nil
 }
 
-func (op *padBackOp) Do(vals ...G.Value) (ret G.Value, err error) {
+func (op *padBackOp) Do(vals ...G.Value) (G.Value, error) { return op.UsePreallocDo(nil, vals...) }
+
+// UsePreallocDo writes the input gradient into prealloc when it fits, as
+// padOpT's does; the gradient accumulates, so the buffer is cleared first.
+func (op *padBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, err error) {
 	defer convRecover("Pad gradient", &err)
 	if len(vals) != 2 {
 		return nil, fmt.Errorf("nn: Pad gradient: expected 2 inputs, got %d", len(vals))
@@ -278,15 +287,19 @@ func (op *padBackOp) Do(vals ...G.Value) (ret G.Value, err error) {
 	if !dy.Shape().Eq(oshp) {
 		return nil, fmt.Errorf("nn: Pad gradient: %w: expected output gradient of shape %v, got %v", ErrConvShape, oshp, dy.Shape())
 	}
-	out, err := convNewDense(x.Dtype(), x.Shape())
+	out, err := padOutput(prealloc, x.Dtype(), x.Shape(), x, dy)
 	if err != nil {
 		return nil, fmt.Errorf("nn: Pad gradient: %w", err)
 	}
 	switch xd := dy.Data().(type) {
 	case []float64:
-		padBackward(x.Shape(), oshp, m, xd, out.Data().([]float64))
+		o := out.Float64s()
+		clear(o)
+		padBackward(x.Shape(), oshp, m, xd, o)
 	case []float32:
-		padBackward(x.Shape(), oshp, m, xd, out.Data().([]float32))
+		o := out.Float32s()
+		clear(o)
+		padBackward(x.Shape(), oshp, m, xd, o)
 	}
 	return out, nil
 }
@@ -308,3 +321,19 @@ func (op *padBackOp) SymDiff(G.Nodes, *G.Node, *G.Node) (G.Nodes, error) {
 }
 
 var _ G.SDOp = (*padOpT)(nil)
+
+// padOutput returns prealloc when it is a contiguous dense tensor of element
+// type dt and shape shp that shares no memory with the inputs, and a new
+// tensor otherwise.
+func padOutput(prealloc G.Value, dt tensor.Dtype, shp tensor.Shape, inputs ...*tensor.Dense) (*tensor.Dense, error) {
+	if t, ok := prealloc.(*tensor.Dense); ok && t.Dtype() == dt && !t.RequiresIterator() && t.Shape().Eq(shp) {
+		shared := false
+		for _, in := range inputs {
+			shared = shared || t.Uintptr() == in.Uintptr()
+		}
+		if !shared {
+			return t, nil
+		}
+	}
+	return convNewDense(dt, shp)
+}

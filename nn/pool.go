@@ -3,7 +3,6 @@ package nn
 import (
 	"context"
 	"fmt"
-	"slices"
 
 	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
@@ -67,7 +66,8 @@ const (
 	coreConstPrefix = "nn-const:"
 )
 
-// machine is one gorgonia graph of a program with its execution plan.
+// machine is one gorgonia graph of a program with its execution plan and
+// the buffers it keeps from one pass to the next (see exec_buffers.go).
 type machine struct {
 	g       *G.ExprGraph
 	plan    []coreStep
@@ -79,6 +79,11 @@ type machine struct {
 	outputs []*G.Node
 	mask    *G.Node
 	grad    *G.Node
+
+	pre   []G.Value           // per step: the kept output buffer, or nil
+	pd    []G.UsePreallocDoer // per step: the op that writes into pre
+	bound []*tensor.Dense     // the tensors bound to inputs, then the mask
+	kept  int                 // bytes of the output buffers
 }
 
 // build translates the program's graph into a fresh gorgonia graph.
@@ -114,23 +119,10 @@ func (p *program) build() (m *machine, err error) {
 	}
 	if p.req.grad {
 		out := m.outputs[0]
-		shape := p.outShapes[0]
-		rows := shape[0]
-		cols := prod(shape[1:])
-		flat := out
-		if !slices.Equal([]int(out.Shape()), []int{rows, cols}) {
-			if flat, err = G.Reshape(out, tensor.Shape{rows, cols}); err != nil {
-				return nil, fmt.Errorf("flattening output %q: %w", p.outNames[0], err)
-			}
-		}
-		m.mask = G.NewTensor(b.g, dt, 2, G.WithShape(rows, cols), G.WithName("selection-mask"))
-		sel, err := G.HadamardProd(flat, m.mask)
+		m.mask = G.NewTensor(b.g, dt, out.Shape().Dims(), G.WithShape(out.Shape().Clone()...), G.WithName("selection-mask"))
+		loss, err := execSeed(out, m.mask)
 		if err != nil {
-			return nil, fmt.Errorf("masking output: %w", err)
-		}
-		loss, err := G.Sum(sel)
-		if err != nil {
-			return nil, fmt.Errorf("summing selected outputs: %w", err)
+			return nil, fmt.Errorf("selecting from output %q: %w", p.outNames[0], err)
 		}
 		grads, err := G.Grad(loss, m.inputs[0])
 		if err != nil {
@@ -148,17 +140,19 @@ func (p *program) build() (m *machine, err error) {
 	return m, nil
 }
 
-// run binds data, runs the tape once and copies the results out. The machine
-// is reset first, so no state leaks from one run to the next.
+// run writes data into the machine's input tensors, runs the plan once and
+// copies the results out. The buffers the machine keeps are overwritten
+// whole by the step that owns them in each run, so nothing leaks from one
+// run into the next, and the results returned share no memory with them.
 func (m *machine) run(p *program, data [][]float64, mask []float64) (outs [][]float64, grad []float64, err error) {
 	defer clear(m.vals) // keep no pass's values alive between runs
-	for i, n := range m.inputs {
-		if err := G.Let(n, coreDense(m.dt, n.Shape(), data[i])); err != nil {
+	for i := range m.inputs {
+		if err := coreFill(m.bound[i], data[i]); err != nil {
 			return nil, nil, fmt.Errorf("%w: binding input %q: %v", ErrEngine, p.static.Inputs[i], err)
 		}
 	}
 	if m.mask != nil {
-		if err := G.Let(m.mask, coreDense(m.dt, m.mask.Shape(), mask)); err != nil {
+		if err := coreFill(m.bound[len(m.inputs)], mask); err != nil {
 			return nil, nil, fmt.Errorf("%w: binding the selection mask: %v", ErrEngine, err)
 		}
 	}
@@ -249,6 +243,20 @@ func (m *machine) compile(keep G.Nodes) error {
 		m.plan = append(m.plan, st)
 	}
 	m.vals = make([]G.Value, len(m.plan))
+	if err := m.execBuffers(keep); err != nil {
+		return err
+	}
+	bind := append(G.Nodes(nil), m.inputs...)
+	if m.mask != nil {
+		bind = append(bind, m.mask)
+	}
+	for _, n := range bind {
+		t := coreDense(m.dt, n.Shape(), make([]float64, n.Shape().TotalSize()))
+		if err := G.Let(n, t); err != nil {
+			return fmt.Errorf("%w: binding %v: %v", ErrEngine, n, err)
+		}
+		m.bound = append(m.bound, t)
+	}
 	return nil
 }
 
@@ -267,7 +275,13 @@ func (m *machine) exec() error {
 		for _, j := range st.args {
 			args = append(args, m.vals[j])
 		}
-		v, err := st.op.Do(args...)
+		var v G.Value
+		var err error
+		if pd := m.pd[i]; pd != nil {
+			v, err = pd.UsePreallocDo(m.pre[i], args...)
+		} else {
+			v, err = st.op.Do(args...)
+		}
 		if err != nil {
 			return fmt.Errorf("node %v (%v): %w", st.node, st.op, err)
 		}
@@ -297,6 +311,30 @@ func coreDense(dt tensor.Dtype, shape tensor.Shape, vals []float64) *tensor.Dens
 	return tensor.New(tensor.WithShape(shape.Clone()...), tensor.WithBacking(f))
 }
 
+// coreFill converts vals into the backing array of t, which holds as many
+// elements.
+func coreFill(t *tensor.Dense, vals []float64) error {
+	switch t.Dtype() {
+	case tensor.Float64:
+		d := t.Float64s()
+		if len(d) != len(vals) {
+			return fmt.Errorf("expected %d values, got %d", len(d), len(vals))
+		}
+		copy(d, vals)
+	case tensor.Float32:
+		d := t.Float32s()
+		if len(d) != len(vals) {
+			return fmt.Errorf("expected %d values, got %d", len(d), len(vals))
+		}
+		for i, v := range vals {
+			d[i] = float32(v)
+		}
+	default:
+		return fmt.Errorf("unexpected element type %v", t.Dtype())
+	}
+	return nil
+}
+
 // coreValueFloats copies a gorgonia value into a new row-major float64 slice.
 func coreValueFloats(v G.Value) ([]float64, error) {
 	switch t := v.(type) {
@@ -306,19 +344,16 @@ func coreValueFloats(v G.Value) ([]float64, error) {
 		if t.RequiresIterator() {
 			t = t.Materialize().(*tensor.Dense)
 		}
-		switch d := t.Data().(type) {
-		case []float64:
-			return append([]float64(nil), d...), nil
-		case []float32:
+		switch t.Dtype() { // not t.Data(), which allocates through reflection
+		case tensor.Float64:
+			return append([]float64(nil), t.Float64s()...), nil
+		case tensor.Float32:
+			d := t.Float32s()
 			out := make([]float64, len(d))
 			for i, x := range d {
 				out[i] = float64(x)
 			}
 			return out, nil
-		case float64:
-			return []float64{d}, nil
-		case float32:
-			return []float64{float64(d)}, nil
 		}
 		return nil, fmt.Errorf("unexpected data %T", t.Data())
 	case *G.F64:

@@ -1,0 +1,49 @@
+package nn
+
+import (
+	"fmt"
+
+	G "gorgonia.org/gorgonia"
+)
+
+// The Relu kernels: y = max(0, x) (Go's max: NaN stays NaN, -0 gives +0)
+// and ∂L/∂x = ∂L/∂y where x > 0, 0 elsewhere. execReluF32 and
+// execReluDiffF32 (exec_elem_amd64.go, exec_elem_other.go) run them with
+// AVX2 where the CPU has it; the loops below are the reference and the tail.
+
+// execReluGo stores y[i] = max(0, x[i]) for i < len(x).
+func execReluGo[T elemFloat](y, x []T) {
+	y = y[:len(x)]
+	for i, xi := range x {
+		y[i] = max(xi, 0)
+	}
+}
+
+// execReluDiffGo stores d[i] = g[i] where x[i] > 0 and 0 elsewhere.
+func execReluDiffGo[T elemFloat](d, x, g []T) {
+	d, g = d[:len(x)], g[:len(x)]
+	for i, xi := range x {
+		if xi > 0 {
+			d[i] = g[i]
+		} else {
+			d[i] = 0
+		}
+	}
+}
+
+// reluGrad returns the node ∂L/∂x = ∂L/∂y where y > 0, 0 elsewhere, for
+// y = Relu(x): the backward of a Relu from its output alone, for ops that
+// apply Relu to their own output (a fused epilogue) and differentiate it
+// first in their SymDiff.
+func reluGrad(y, dy *G.Node) (n *G.Node, err error) {
+	defer elemRecover("Relu gradient", &err)
+	dt, err := elemDtype("Relu gradient", y)
+	if err != nil {
+		return nil, err
+	}
+	if !y.Shape().Eq(dy.Shape()) {
+		return nil, fmt.Errorf("nn: Relu gradient: %w: output shape %v, gradient shape %v", errElemShape, y.Shape(), dy.Shape())
+	}
+	op := &elemUnaryOp{kind: "Relu", dt: dt, shape: y.Shape().Clone(), t: y.Type()}
+	return G.ApplyOp(&elemReluDiffOp{op}, y, dy)
+}

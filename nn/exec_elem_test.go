@@ -1,0 +1,223 @@
+package nn
+
+import (
+	"fmt"
+	"math"
+	"math/rand"
+	"testing"
+
+	"github.com/stretchr/testify/require"
+	G "gorgonia.org/gorgonia"
+	"gorgonia.org/tensor"
+)
+
+// execSpecials32 are IEEE 754 binary32 bit patterns at the edges of Relu:
+// ±0, the smallest and largest subnormals, the smallest normal, ±1, the
+// largest finite, ±Inf and a quiet NaN (IEEE 754-2019, 3.4).
+var execSpecials32 = []uint32{
+	0x00000000, 0x80000000, // +0, -0
+	0x00000001, 0x80000001, // ±smallest subnormal
+	0x007fffff, 0x807fffff, // ±largest subnormal
+	0x00800000, 0x80800000, // ±smallest normal
+	0x3f800000, 0xbf800000, // ±1
+	0x7f7fffff, 0xff7fffff, // ±largest finite
+	0x7f800000, 0xff800000, // ±Inf
+	0x7fc00000, // quiet NaN
+}
+
+// TestExecReluF32MatchesGoMax checks the vector Relu against Go's max,
+// which the Go specification defines for floats: max(x, 0) is NaN for NaN
+// and +0 for -0 ("negative zero is smaller than positive zero"; The Go
+// Programming Language Specification, Min and max). The derivative is g
+// where x > 0 and +0 elsewhere, NaN included (an ordered comparison with
+// NaN is false, IEEE 754-2019, 5.11). Every length up to 70 exercises the
+// 32-, 8- and 1-element paths.
+func TestExecReluF32MatchesGoMax(t *testing.T) {
+	rng := rand.New(rand.NewSource(5))
+	for n := 0; n <= 70; n++ {
+		x := make([]float32, n)
+		g := make([]float32, n)
+		for i := range x {
+			if rng.Intn(3) == 0 {
+				x[i] = math.Float32frombits(execSpecials32[rng.Intn(len(execSpecials32))])
+			} else {
+				x[i] = float32(rng.NormFloat64())
+			}
+			g[i] = float32(rng.NormFloat64())
+		}
+		y := make([]float32, n)
+		d := make([]float32, n)
+		execReluF32(y, x)
+		execReluDiffF32(d, x, g)
+		for i, xi := range x {
+			want := max(xi, 0) // Go spec semantics
+			require.Equal(t, math.Float32bits(want), math.Float32bits(y[i]), "n=%d relu(%#x)", n, math.Float32bits(xi))
+			var wd float32
+			if xi > 0 {
+				wd = g[i]
+			}
+			require.Equal(t, math.Float32bits(wd), math.Float32bits(d[i]), "n=%d ∂relu(%#x)", n, math.Float32bits(xi))
+		}
+		// The backward reads y = Relu(x) instead of x: the same mask.
+		dy := make([]float32, n)
+		execReluDiffF32(dy, y, g)
+		for i := range d {
+			require.Equal(t, math.Float32bits(d[i]), math.Float32bits(dy[i]), "n=%d ∂relu from y at x=%#x", n, math.Float32bits(x[i]))
+		}
+	}
+	// The specials themselves, in a block the vector path takes whole.
+	x := make([]float32, 32)
+	for i := range x {
+		x[i] = math.Float32frombits(execSpecials32[i%len(execSpecials32)])
+	}
+	y := make([]float32, 32)
+	execReluF32(y, x)
+	require.Equal(t, uint32(0x00000000), math.Float32bits(y[1]), "relu(-0) = +0 (Go spec, max)")
+	require.True(t, math.IsNaN(float64(y[14])), "relu(NaN) = NaN (Go spec, max)")
+	require.Equal(t, uint32(0x7f800000), math.Float32bits(y[12]), "relu(+Inf) = +Inf")
+	require.Equal(t, uint32(0x00000000), math.Float32bits(y[13]), "relu(-Inf) = +0")
+	// In place, as UnsafeDo runs it.
+	want := append([]float32(nil), y...)
+	execReluF32(x, x)
+	for i := range x {
+		require.Equal(t, math.Float32bits(want[i]), math.Float32bits(x[i]))
+	}
+}
+
+// TestElemArithRowMatchesIEEE checks the row kernels of Add, Sub, Mul and
+// Div against the one-operation closures of elemBinaryFunc for every
+// stride pair: IEEE 754 (2019, 4.3) rounds each basic operation exactly, so
+// two evaluations of the same operation on the same operands agree bit for
+// bit.
+func TestElemArithRowMatchesIEEE(t *testing.T) {
+	rng := rand.New(rand.NewSource(9))
+	for _, kind := range []string{"Add", "Sub", "Mul", "Div"} {
+		f32 := elemBinaryFunc[float32](kind)
+		f64 := elemBinaryFunc[float64](kind)
+		for _, st := range [][2]int{{1, 1}, {1, 0}, {0, 1}} {
+			t.Run(fmt.Sprintf("%s/%d%d", kind, st[0], st[1]), func(t *testing.T) {
+				n := 37
+				a64, b64 := randomInput(rng, n), randomInput(rng, n)
+				a32, b32 := make([]float32, n), make([]float32, n)
+				for i := range a64 {
+					a32[i], b32[i] = float32(a64[i]), float32(b64[i])
+				}
+				y32, y64 := make([]float32, n), make([]float64, n)
+				require.True(t, elemArithRow(elemArithCode(kind), y32, a32, b32, st[0], st[1]))
+				require.True(t, elemArithRow(elemArithCode(kind), y64, a64, b64, st[0], st[1]))
+				for j := 0; j < n; j++ {
+					require.Equal(t, math.Float32bits(f32(a32[j*st[0]], b32[j*st[1]])), math.Float32bits(y32[j]))
+					require.Equal(t, math.Float64bits(f64(a64[j*st[0]], b64[j*st[1]])), math.Float64bits(y64[j]))
+				}
+			})
+		}
+	}
+	// Other kinds and strides are left to the general loop.
+	y := make([]float32, 4)
+	require.False(t, elemArithRow(elemArithCode("Pow"), y, y, y, 1, 1))
+	require.False(t, elemArithRow(elemArithCode("Add"), y, y, y, 2, 1))
+	require.False(t, elemArithRow(elemArithCode("Add"), y, y, y, 0, 0))
+}
+
+func BenchmarkExecRelu(b *testing.B) {
+	const n = 64 * 16 * 32 * 32 // cnn-m's first Relu at batch 64
+	x := make([]float32, n)
+	for i := range x {
+		x[i] = float32(i%7) - 3
+	}
+	y := make([]float32, n)
+	b.Run("vector", func(b *testing.B) {
+		b.SetBytes(8 * n)
+		for i := 0; i < b.N; i++ {
+			execReluF32(y, x)
+		}
+	})
+	b.Run("go", func(b *testing.B) {
+		b.SetBytes(8 * n)
+		for i := 0; i < b.N; i++ {
+			execReluGo(y, x)
+		}
+	})
+}
+
+func BenchmarkExecReluDiff(b *testing.B) {
+	const n = 64 * 16 * 32 * 32
+	x := make([]float32, n)
+	g := make([]float32, n)
+	for i := range x {
+		x[i] = float32(i%7) - 3
+		g[i] = float32(i % 5)
+	}
+	d := make([]float32, n)
+	b.Run("vector", func(b *testing.B) {
+		b.SetBytes(12 * n)
+		for i := 0; i < b.N; i++ {
+			execReluDiffF32(d, x, g)
+		}
+	})
+	b.Run("go", func(b *testing.B) {
+		b.SetBytes(12 * n)
+		for i := 0; i < b.N; i++ {
+			execReluDiffGo(d, x, g)
+		}
+	})
+}
+
+func BenchmarkElemArithRow(b *testing.B) {
+	const rows, cols = 64, 256 // mlp-m's hidden layer at batch 64
+	a := make([]float32, rows*cols)
+	bias := make([]float32, cols)
+	y := make([]float32, rows*cols)
+	b.Run("bias-add", func(b *testing.B) {
+		b.SetBytes(8 * rows * cols)
+		for i := 0; i < b.N; i++ {
+			for r := 0; r < rows; r++ {
+				elemArithRow(elemArithAdd, y[r*cols:(r+1)*cols], a[r*cols:], bias, 1, 1)
+			}
+		}
+	})
+	b.Run("closure", func(b *testing.B) {
+		f := elemBinaryFunc[float32]("Add")
+		b.SetBytes(8 * rows * cols)
+		for i := 0; i < b.N; i++ {
+			for r := 0; r < rows; r++ {
+				row := y[r*cols : (r+1)*cols]
+				for j := range row {
+					row[j] = f(a[r*cols+j], bias[j])
+				}
+			}
+		}
+	})
+}
+
+// TestReluGradNode checks the node reluGrad builds on float32 and float64:
+// ∂L/∂x = ∂L/∂y · 1[x > 0] (Relu's derivative, with the subgradient 0 at
+// 0, common practice), computed from y = max(0, x) alone.
+func TestReluGradNode(t *testing.T) {
+	for _, dt := range []tensor.Dtype{tensor.Float32, tensor.Float64} {
+		g := G.NewGraph()
+		x := []float64{-2, -0.5, 0, 0.25, 3, math.Copysign(0, -1), 1e-30, -1e-30, 7}
+		dy := []float64{1, 2, 3, 4, 5, 6, 7, 8, 9}
+		yv := make([]float64, len(x))
+		for i, v := range x {
+			yv[i] = max(v, 0)
+		}
+		yn := G.NewTensor(g, dt, 1, G.WithShape(len(x)), G.WithName("y"))
+		dn := G.NewTensor(g, dt, 1, G.WithShape(len(x)), G.WithName("dy"))
+		n, err := reluGrad(yn, dn)
+		require.NoError(t, err)
+		out, err := n.Op().Do(coreDense(dt, yn.Shape(), yv), coreDense(dt, dn.Shape(), dy))
+		require.NoError(t, err)
+		got, err := coreValueFloats(out)
+		require.NoError(t, err)
+		for i, v := range x {
+			want := 0.0
+			if v > 0 {
+				want = dy[i]
+			}
+			require.Equal(t, want, got[i], "%v x=%v", dt, v)
+		}
+		_, err = reluGrad(yn, G.NewTensor(g, dt, 1, G.WithShape(3), G.WithName("bad")))
+		require.ErrorIs(t, err, errElemShape)
+	}
+}
