@@ -60,6 +60,14 @@ type Options struct {
 	MaxBatch int
 	// Machines is the number of compiled machines per program, that is the
 	// number of concurrent runs of one program (default runtime.GOMAXPROCS(0)).
+	// A machine is built on first use and kept. Besides its graph it keeps
+	// its input tensors and its steps' output buffers between runs, steps
+	// whose values are not live at the same time sharing one array: about
+	// one pass's live activations, for the 3×32×32 four-conv bench model at
+	// batch 64 in float32 8 MiB for a forward program and 17.5 MiB for a
+	// gradient program, plus 0.75 MiB of inputs. A Network keeps up to
+	// Machines machines for each program it has run (one per input shape
+	// and, for gradients, per selected output).
 	Machines int
 }
 

@@ -51,13 +51,6 @@ var sgemmTranspose8 = func() func(src *float32, lds int, dst *float32, ldd int) 
 	return nil
 }()
 
-// fmaPeak runs n iterations of 12 independent 8-wide fused multiply-adds
-// on registers (sgemm_amd64.s): BenchmarkFMAPeak measures the core's float32
-// FMA ceiling with it.
-//
-//go:noescape
-func fmaPeak(n int)
-
 // kern6x16s is kern6x16 reading the 6×kc strip of A in place, element
 // (r, p) at a[r·rs + p·ps] (sgemm_amd64.s); it stores the same bits as
 // kern6x16 on the packed strip. All six rows must lie inside A.

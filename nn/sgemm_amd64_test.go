@@ -7,16 +7,18 @@ import (
 	"math"
 	"math/rand/v2"
 	"testing"
+
+	"github.com/apportion/apportion/internal/cpupeak"
 )
 
 // BenchmarkFMAPeak reports the float32 fused multiply-add throughput of one
 // core with no memory traffic: the ceiling for every GEMM benchmark here.
 func BenchmarkFMAPeak(b *testing.B) {
-	if sgemmKernel == nil {
+	if !cpupeak.Available() {
 		b.Skip("no AVX2/FMA on this CPU")
 	}
 	const iters = 1 << 16
-	cpuLoop(b, 192*iters, func() { fmaPeak(iters) })
+	cpuLoop(b, cpupeak.FlopsPerIteration*iters, func() { cpupeak.Loop(iters) })
 }
 
 // BenchmarkKern6x16 times the micro-kernel alone on packed panels that stay

@@ -8,10 +8,12 @@ import (
 	"io"
 	"path/filepath"
 	"runtime"
+	"sync"
 	"time"
 
 	"github.com/apportion/apportion/bench"
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/internal/cpupeak"
 	"github.com/apportion/apportion/nn"
 	"github.com/apportion/apportion/onnxlite"
 )
@@ -44,8 +46,9 @@ type response struct {
 	Seconds float64 `json:"seconds"`
 	Allocs  float64 `json:"allocs"` // per call
 	Bytes   float64 `json:"bytes"`  // per call
-	// peak
+	// peak: the FMA ceiling of GOMAXPROCS cores and nn's matrix-product rate
 	GFLOPS float64 `json:"gflops,omitempty"`
+	GEMM   float64 `json:"gemm,omitempty"`
 }
 
 // goSide serves the protocol on the Go side: it runs under the GOMAXPROCS
@@ -112,7 +115,7 @@ func (s *goSide) serve(req request) (response, error) {
 		if err != nil {
 			return response{}, err
 		}
-		return response{GFLOPS: g}, nil
+		return response{GFLOPS: fmaGFLOPS(500 * time.Millisecond), GEMM: g}, nil
 	case "check":
 		h, spec, err := s.head(req.Model)
 		if err != nil {
@@ -221,6 +224,24 @@ func goTask(ctx context.Context, h *nn.Head, spec bench.Spec, task string, sampl
 		}, nil
 	}
 	return nil, fmt.Errorf("unknown task %q", task)
+}
+
+// fmaGFLOPS is the float32 fused multiply-add ceiling of the cores this
+// process may use: cpupeak's register-only loop run on GOMAXPROCS goroutines
+// at once, their rates summed.
+func fmaGFLOPS(d time.Duration) float64 {
+	n := runtime.GOMAXPROCS(0)
+	rates := make([]float64, n)
+	var wg sync.WaitGroup
+	for i := range rates {
+		wg.Go(func() { rates[i] = cpupeak.GFLOPS(d) })
+	}
+	wg.Wait()
+	total := 0.0
+	for _, r := range rates {
+		total += r
+	}
+	return total
 }
 
 // peakGFLOPS measures the float32 matrix-multiply rate nn gives a model on

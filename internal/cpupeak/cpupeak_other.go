@@ -1,0 +1,7 @@
+//go:build !amd64 || purego
+
+package cpupeak
+
+const available = false
+
+func fmaLoop(int) {}
