@@ -69,3 +69,65 @@ func BenchmarkZoo(b *testing.B) {
 		}
 	}
 }
+
+// BenchmarkZooParallel times the batched rows of bench/compare (integrated
+// gradients with 64 points, SmoothGrad with 50 copies: one batch of 64 or 50
+// samples per call) with nn.Options.Parallel 1 and 2, on the two larger zoo
+// models:
+// go test ./bench -run '^$' -bench ZooParallel -cpu 2
+func BenchmarkZooParallel(b *testing.B) {
+	ctx := context.Background()
+	for _, name := range []string{"mlp-m", "cnn-m"} {
+		s, err := Lookup(name)
+		if err != nil {
+			b.Fatal(err)
+		}
+		m, err := Build(s)
+		if err != nil {
+			b.Fatal(err)
+		}
+		for _, par := range []int{1, 2} {
+			nw, err := nn.Compile(m, nn.Options{Parallel: par})
+			if err != nil {
+				b.Fatal(err)
+			}
+			h, err := nw.Head(nn.Selection{})
+			if err != nil {
+				b.Fatal(err)
+			}
+			x := Input(s, 1)
+			out, err := h.Forward(ctx, x, 1)
+			if err != nil {
+				b.Fatal(err)
+			}
+			t := gradattr.Top(out)
+			calls := []struct {
+				name string
+				f    func() error
+			}{
+				{"ig64", func() error {
+					_, err := gradattr.IntegratedGradients(ctx, h, x, t, gradattr.IGOptions{Points: 64})
+					return err
+				}},
+				{"smoothgrad50", func() error {
+					_, err := gradattr.SmoothGrad(ctx, h, x, t, gradattr.SmoothGradOptions{Samples: 50})
+					return err
+				}},
+			}
+			for _, c := range calls {
+				b.Run(fmt.Sprintf("%s/%s/parallel%d", name, c.name, par), func(b *testing.B) {
+					if err := c.f(); err != nil {
+						b.Fatal(err)
+					}
+					b.ReportAllocs()
+					b.ResetTimer()
+					for i := 0; i < b.N; i++ {
+						if err := c.f(); err != nil {
+							b.Fatal(err)
+						}
+					}
+				})
+			}
+		}
+	}
+}

@@ -493,7 +493,9 @@ func (p *program) outputShapes() [][]int {
 
 // runChunked runs shapes/data through the programs for req, splitting the
 // batch (first dimension of every input) into chunks of at most
-// Options.MaxBatch samples. mask, when given, is split with the outputs.
+// Options.MaxBatch samples, and into Options.Parallel concurrent parts when
+// the batch is large enough (see runSplit). mask, when given, is split with
+// the outputs.
 func (nw *Network) runChunked(ctx context.Context, shapes [][]int, data [][]float64, mask []float64) ([][]float64, [][]int, error) {
 	outs, shp, _, err := nw.runReq(ctx, shapes, data, request{}, mask)
 	return outs, shp, err
@@ -516,6 +518,16 @@ func (nw *Network) runReq(ctx context.Context, shapes [][]int, data [][]float64,
 			break
 		}
 	}
+	if parts := nw.splitParts(n); parts > 1 && len(shapes) > 0 {
+		return nw.runSplit(ctx, shapes, data, req, mask, n, parts)
+	}
+	return nw.runReqSeq(ctx, shapes, data, req, mask, n)
+}
+
+// runReqSeq runs the batch of n samples (-1 when the inputs do not share a
+// first dimension) on the caller's goroutine, in chunks of at most
+// Options.MaxBatch samples.
+func (nw *Network) runReqSeq(ctx context.Context, shapes [][]int, data [][]float64, req request, mask []float64, n int) ([][]float64, [][]int, []float64, error) {
 	max := nw.opts.MaxBatch
 	if n <= max || len(shapes) == 0 {
 		p, err := nw.program(shapes, req)
@@ -529,6 +541,9 @@ func (nw *Network) runReq(ctx context.Context, shapes [][]int, data [][]float64,
 	var outShapes [][]int
 	var grad []float64
 	for start := 0; start < n; start += max {
+		if err := ctx.Err(); err != nil {
+			return nil, nil, nil, err
+		}
 		end := start + max
 		if end > n {
 			end = n

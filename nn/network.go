@@ -5,10 +5,11 @@
 //
 // A Network compiles lazily: one program per set of input shapes (and, for
 // gradients, per selected output), each run on a bounded pool of compiled
-// gorgonia graphs, so one Network can be shared by many goroutines. The first
-// input dimension is the batch; models exported with a fixed batch of one are
-// run at any batch size when their graph allows it, and sample by sample
-// otherwise.
+// gorgonia graphs, so one Network can be shared by many goroutines; with
+// Options.Parallel one call may also split a large batch across goroutines,
+// with the same results bit for bit. The first input dimension is the batch;
+// models exported with a fixed batch of one are run at any batch size when
+// their graph allows it, and sample by sample otherwise.
 package nn
 
 import (
@@ -48,7 +49,8 @@ const DefaultMaxBatch = 64
 
 // Options configures Compile. The zero value means: float32 arithmetic,
 // declared input shapes, batches of at most DefaultMaxBatch samples per
-// program run, and runtime.GOMAXPROCS(0) machines per program.
+// program run, each call run on its caller's goroutine, and the larger of
+// runtime.GOMAXPROCS(0) and Parallel machines per program.
 type Options struct {
 	// DType is the element type of the computation (default Float32).
 	DType DType
@@ -59,7 +61,8 @@ type Options struct {
 	// requests are split into chunks of at most MaxBatch samples.
 	MaxBatch int
 	// Machines is the number of compiled machines per program, that is the
-	// number of concurrent runs of one program (default runtime.GOMAXPROCS(0)).
+	// number of concurrent runs of one program (default the larger of
+	// runtime.GOMAXPROCS(0) and Parallel).
 	// A machine is built on first use and kept. Besides its graph it keeps
 	// its input tensors and its steps' output buffers between runs, steps
 	// whose values are not live at the same time sharing one array: about
@@ -69,6 +72,27 @@ type Options struct {
 	// Machines machines for each program it has run (one per input shape
 	// and, for gradients, per selected output).
 	Machines int
+	// Parallel is the number of goroutines one call (Forward, Head.Forward,
+	// Head.Gradient) may split its batch across (default 1: the whole batch
+	// runs on the caller's goroutine, which suits a server whose
+	// concurrency comes from its requests). With Parallel p > 1 a batch of
+	// n samples is cut into k = min(p, n, ⌊W/SplitMinPartFLOPs⌋) contiguous
+	// parts of ⌈n/k⌉ or ⌊n/k⌋ samples, W being the batch's forward work in
+	// FLOPs (small passes are not split: a goroutine hand-off costs more than
+	// they do), run concurrently on the programs of those batch sizes
+	// (chunked by MaxBatch when larger), and the results are put back in
+	// sample order. The results are bit for bit those of
+	// Parallel 1, since a sample's results do not depend on its batch.
+	// Memory: a split call runs on the programs of its part sizes instead
+	// of the batch-n one (at most two per batch size and selection, plus,
+	// when the work estimate cuts fewer parts than min(p, n), the program
+	// of a min(p, n)-way part, which is shape-inferred but never gets a
+	// machine), each with up to Machines machines of about 1/k the memory
+	// of a batch-n machine; the parts' results are copied once into the
+	// call's output. Parts take machines from the same pools as other
+	// callers, so they run concurrently only while Machines ≥ Parallel
+	// leaves machines free.
+	Parallel int
 }
 
 // Sentinel errors. Errors returned by this package that stem from one of these
@@ -108,6 +132,10 @@ type Network struct {
 	// symbolic dims), and declaredBatch its first dimension (-1 symbolic, 0 no batch axis).
 	declared [][]int
 
+	// splitMinFLOPs is the least forward work per part of a split call
+	// (SplitMinPartFLOPs; tests lower it to split every batch).
+	splitMinFLOPs float64
+
 	mu    sync.Mutex
 	progs map[string]*program
 }
@@ -124,19 +152,23 @@ func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
 	if opts.DType != Float32 && opts.DType != Float64 {
 		return nil, fmt.Errorf("nn: compile: %w: unknown DType %d (want Float32 or Float64)", ErrBadRequest, int(opts.DType))
 	}
-	if opts.MaxBatch < 0 || opts.Machines < 0 {
-		return nil, fmt.Errorf("nn: compile: %w: negative MaxBatch %d or Machines %d", ErrBadRequest, opts.MaxBatch, opts.Machines)
+	if opts.MaxBatch < 0 || opts.Machines < 0 || opts.Parallel < 0 {
+		return nil, fmt.Errorf("nn: compile: %w: negative MaxBatch %d, Machines %d or Parallel %d", ErrBadRequest, opts.MaxBatch, opts.Machines, opts.Parallel)
 	}
 	if opts.MaxBatch == 0 {
 		opts.MaxBatch = DefaultMaxBatch
 	}
+	if opts.Parallel == 0 {
+		opts.Parallel = 1
+	}
 	if opts.Machines == 0 {
-		opts.Machines = runtime.GOMAXPROCS(0)
+		opts.Machines = max(runtime.GOMAXPROCS(0), opts.Parallel)
 	}
 	if err := m.Validate(); err != nil {
 		return nil, fmt.Errorf("nn: compile: %w", err)
 	}
-	nw = &Network{model: m, opts: opts, progs: map[string]*program{}}
+	nw = &Network{model: m, opts: opts, progs: map[string]*program{},
+		splitMinFLOPs: SplitMinPartFLOPs}
 	nw.relaxed = coreRelaxModel(m)
 	if err := nw.describe(); err != nil {
 		return nil, fmt.Errorf("nn: compile: %w", err)

@@ -93,7 +93,9 @@ func (s *goSide) head(name string) (*nn.Head, bench.Spec, error) {
 	if err != nil {
 		return nil, spec, err
 	}
-	nw, err := nn.Compile(m, nn.Options{})
+	// One call may split its batch over every thread the child is given,
+	// as torch.set_num_threads lets one PyTorch call use them.
+	nw, err := nn.Compile(m, nn.Options{Parallel: runtime.GOMAXPROCS(0)})
 	if err != nil {
 		return nil, spec, err
 	}

@@ -10,7 +10,10 @@
 // gradients with 64 points over many samples (throughput). Each side runs as
 // a child process pinned to a thread count: the Go side with GOMAXPROCS set,
 // the PyTorch side (bench/torch_side.py under /usr/bin/python3) with
-// torch.set_num_threads. Before timing, both sides compute outputs, input
+// torch.set_num_threads; the Go side compiles the zoo models with
+// nn.Options.Parallel = GOMAXPROCS, so that one call may split its batch
+// over as many threads as one PyTorch call uses (at one thread nothing
+// changes). Before timing, both sides compute outputs, input
 // gradients and integrated gradients of the same input and must agree to
 // 1e-5 (relative to the largest magnitude). Repetitions alternate between the
 // sides and the median is reported.
