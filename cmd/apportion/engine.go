@@ -91,10 +91,13 @@ type network struct {
 }
 
 // compileModel compiles m; shapes gives per-sample input shapes for inputs
-// whose declared shape leaves non-batch dimensions open (nil for none).
-func compileModel(m *onnxlite.Model, shapes map[string][]int) (net *network, err error) {
+// whose declared shape leaves non-batch dimensions open (nil for none), and
+// parallel how many goroutines one call may split a large batch across
+// (nn.Options.Parallel): the one-shot commands use every core, the server 1,
+// since its concurrency comes from requests.
+func compileModel(m *onnxlite.Model, shapes map[string][]int, parallel int) (net *network, err error) {
 	err = safeCall(func() error {
-		nw, e := nn.Compile(m, nn.Options{InputShapes: shapes})
+		nw, e := nn.Compile(m, nn.Options{InputShapes: shapes, Parallel: parallel})
 		if e != nil {
 			return e
 		}

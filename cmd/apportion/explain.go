@@ -11,6 +11,7 @@ import (
 	"io"
 	"math"
 	"os"
+	"runtime"
 	"strconv"
 	"strings"
 
@@ -393,7 +394,7 @@ func (src *source) finish(c *explainConfig) error {
 		src.features = src.samples.Features
 	}
 	var err error
-	src.net, err = compileModel(src.model, openShapes(src.spec, src.samples))
+	src.net, err = compileModel(src.model, openShapes(src.spec, src.samples), runtime.GOMAXPROCS(0))
 	if err != nil {
 		return err
 	}

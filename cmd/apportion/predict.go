@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"io"
 	"math"
+	"runtime"
 	"strconv"
 	"strings"
 	"text/tabwriter"
@@ -115,7 +116,7 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			samples = b.Samples
 		}
 	}
-	net, err := compileModel(m, open)
+	net, err := compileModel(m, open, runtime.GOMAXPROCS(0))
 	if err != nil {
 		return failure(stderr, "predict", err)
 	}

@@ -75,7 +75,7 @@ func newServer(cfg serveConfig, log *slog.Logger) (*server, error) {
 	if !ok || !fullyKnown(ps) {
 		return nil, fmt.Errorf("serving needs a model whose input %q has a fixed shape per sample, got %s", src.spec.Name, shapeString(src.spec.Shape))
 	}
-	if src.net, err = compileModel(src.model, nil); err != nil {
+	if src.net, err = compileModel(src.model, nil, 1); err != nil {
 		return nil, err
 	}
 	s.base = src
