@@ -26,57 +26,71 @@ func zooHead(tb testing.TB, s Spec) *nn.Head {
 	return h
 }
 
-// BenchmarkZoo times the rows of bench/compare on the Go side alone:
-// go test ./bench -run '^$' -bench Zoo -benchmem
-func BenchmarkZoo(b *testing.B) {
+// zooCall is one row of bench/compare on the Go side.
+type zooCall struct {
+	name string
+	f    func() error
+}
+
+// zooCalls returns the rows of bench/compare for head h on sample x: the
+// single-sample calls and the batched ones (integrated gradients with 64
+// points, SmoothGrad with 50 copies: one batch of 64 or 50 samples per call).
+func zooCalls(b *testing.B, h *nn.Head, x []float64) (single, batched []zooCall) {
 	ctx := context.Background()
-	for _, s := range Zoo {
-		h := zooHead(b, s)
-		x := Input(s, 1)
-		out, err := h.Forward(ctx, x, 1)
-		if err != nil {
-			b.Fatal(err)
-		}
-		t := gradattr.Top(out)
-		calls := []struct {
-			name string
-			f    func() error
-		}{
-			{"predict", func() error { _, err := h.Forward(ctx, x, 1); return err }},
-			{"gradient", func() error { _, err := gradattr.Gradient(ctx, h, x, t, gradattr.GradientOptions{}); return err }},
-			{"ig64", func() error {
-				_, err := gradattr.IntegratedGradients(ctx, h, x, t, gradattr.IGOptions{Points: 64})
-				return err
-			}},
-			{"smoothgrad50", func() error {
-				_, err := gradattr.SmoothGrad(ctx, h, x, t, gradattr.SmoothGradOptions{Samples: 50})
-				return err
-			}},
-		}
-		for _, c := range calls {
-			b.Run(fmt.Sprintf("%s/%s", s.Name, c.name), func(b *testing.B) {
+	out, err := h.Forward(ctx, x, 1)
+	if err != nil {
+		b.Fatal(err)
+	}
+	t := gradattr.Top(out)
+	single = []zooCall{
+		{"predict", func() error { _, err := h.Forward(ctx, x, 1); return err }},
+		{"gradient", func() error { _, err := gradattr.Gradient(ctx, h, x, t, gradattr.GradientOptions{}); return err }},
+	}
+	batched = []zooCall{
+		{"ig64", func() error {
+			_, err := gradattr.IntegratedGradients(ctx, h, x, t, gradattr.IGOptions{Points: 64})
+			return err
+		}},
+		{"smoothgrad50", func() error {
+			_, err := gradattr.SmoothGrad(ctx, h, x, t, gradattr.SmoothGradOptions{Samples: 50})
+			return err
+		}},
+	}
+	return single, batched
+}
+
+// runZooCalls times each call as a sub-benchmark named prefix/name, after one
+// untimed call that compiles and warms the programs.
+func runZooCalls(b *testing.B, prefix string, calls []zooCall) {
+	for _, c := range calls {
+		b.Run(prefix+"/"+c.name, func(b *testing.B) {
+			if err := c.f(); err != nil {
+				b.Fatal(err)
+			}
+			b.ReportAllocs()
+			b.ResetTimer()
+			for i := 0; i < b.N; i++ {
 				if err := c.f(); err != nil {
 					b.Fatal(err)
 				}
-				b.ReportAllocs()
-				b.ResetTimer()
-				for i := 0; i < b.N; i++ {
-					if err := c.f(); err != nil {
-						b.Fatal(err)
-					}
-				}
-			})
-		}
+			}
+		})
 	}
 }
 
-// BenchmarkZooParallel times the batched rows of bench/compare (integrated
-// gradients with 64 points, SmoothGrad with 50 copies: one batch of 64 or 50
-// samples per call) with nn.Options.Parallel 1 and 2, on the two larger zoo
-// models:
+// BenchmarkZoo times the rows of bench/compare on the Go side alone:
+// go test ./bench -run '^$' -bench Zoo -benchmem
+func BenchmarkZoo(b *testing.B) {
+	for _, s := range Zoo {
+		single, batched := zooCalls(b, zooHead(b, s), Input(s, 1))
+		runZooCalls(b, s.Name, append(single, batched...))
+	}
+}
+
+// BenchmarkZooParallel times the batched rows of bench/compare with
+// nn.Options.Parallel 1 and 2, on the two larger zoo models:
 // go test ./bench -run '^$' -bench ZooParallel -cpu 2
 func BenchmarkZooParallel(b *testing.B) {
-	ctx := context.Background()
 	for _, name := range []string{"mlp-m", "cnn-m"} {
 		s, err := Lookup(name)
 		if err != nil {
@@ -95,39 +109,11 @@ func BenchmarkZooParallel(b *testing.B) {
 			if err != nil {
 				b.Fatal(err)
 			}
-			x := Input(s, 1)
-			out, err := h.Forward(ctx, x, 1)
-			if err != nil {
-				b.Fatal(err)
+			_, batched := zooCalls(b, h, Input(s, 1))
+			for i := range batched {
+				batched[i].name = fmt.Sprintf("%s/parallel%d", batched[i].name, par)
 			}
-			t := gradattr.Top(out)
-			calls := []struct {
-				name string
-				f    func() error
-			}{
-				{"ig64", func() error {
-					_, err := gradattr.IntegratedGradients(ctx, h, x, t, gradattr.IGOptions{Points: 64})
-					return err
-				}},
-				{"smoothgrad50", func() error {
-					_, err := gradattr.SmoothGrad(ctx, h, x, t, gradattr.SmoothGradOptions{Samples: 50})
-					return err
-				}},
-			}
-			for _, c := range calls {
-				b.Run(fmt.Sprintf("%s/%s/parallel%d", name, c.name, par), func(b *testing.B) {
-					if err := c.f(); err != nil {
-						b.Fatal(err)
-					}
-					b.ReportAllocs()
-					b.ResetTimer()
-					for i := 0; i < b.N; i++ {
-						if err := c.f(); err != nil {
-							b.Fatal(err)
-						}
-					}
-				})
-			}
+			runZooCalls(b, name, batched)
 		}
 	}
 }
