@@ -47,6 +47,9 @@ type coreMatMulOp struct {
 	// machine builds its own graph, so one op instance, and its cache, is
 	// never used by two goroutines at once.
 	pack *coreMatMulPack
+	// relu applies max(v, 0) to every output value after the bias, and
+	// masks the incoming gradient with the output (fuse_relu.go).
+	relu bool
 }
 
 // coreBias is the row beta·C of a fused Gemm in both element types, with a
@@ -71,13 +74,19 @@ func coreMatMul(a, b *G.Node, transA, transB bool) (*G.Node, error) {
 // coreGemm applies alpha·op(A)·op(B) + bias, bias a row of the output's
 // width (nil for none) added to every row; it needs rank-2 operands.
 func coreGemm(a, b *G.Node, transA, transB bool, alpha float64, bias []float64) (*G.Node, error) {
+	return coreGemmRelu(a, b, transA, transB, alpha, bias, false)
+}
+
+// coreGemmRelu is coreGemm followed, when relu is set, by max(v, 0) on every
+// output value in the same op.
+func coreGemmRelu(a, b *G.Node, transA, transB bool, alpha float64, bias []float64, relu bool) (*G.Node, error) {
 	if a.Dims() != b.Dims() || (a.Dims() != 2 && a.Dims() != 3) {
 		return nil, fmt.Errorf("matmul: operands must both be rank 2 or rank 3, got %v and %v", a.Shape(), b.Shape())
 	}
 	if a.Dtype() != b.Dtype() {
 		return nil, fmt.Errorf("matmul: operand types differ: %v and %v", a.Dtype(), b.Dtype())
 	}
-	op := coreMatMulOp{transA: transA, transB: transB, rank: a.Dims(), fixedA: coreFixed(a), fixedB: coreFixed(b), alpha: alpha}
+	op := coreMatMulOp{transA: transA, transB: transB, rank: a.Dims(), fixedA: coreFixed(a), fixedB: coreFixed(b), alpha: alpha, relu: relu}
 	if bias != nil {
 		if op.rank != 2 {
 			return nil, fmt.Errorf("matmul: a bias row needs rank-2 operands, got %v and %v", a.Shape(), b.Shape())
@@ -297,6 +306,14 @@ func (op coreMatMulOp) fit(prealloc G.Value, dt tensor.Dtype, batch, m, n int) *
 // otherwise reuse reshaped or a new tensor backed by data: the conversion of
 // data to an interface, which allocates, happens only then.
 func coreMatMulResult[T float32 | float64](op coreMatMulOp, reuse *tensor.Dense, batch, m, n int, data []T) *tensor.Dense {
+	if op.relu {
+		switch d := any(data).(type) {
+		case []float32:
+			execReluF32(d, d)
+		case []float64:
+			execReluGo(d, d)
+		}
+	}
 	if reuse != nil {
 		s := reuse.Shape()
 		if op.rank == 3 && len(s) == 3 && s[0] == batch && s[1] == m && s[2] == n ||
@@ -358,6 +375,9 @@ func (op coreMatMulOp) Hashcode() uint32 {
 	return h.Sum32()
 }
 func (op coreMatMulOp) String() string {
+	if op.relu {
+		return fmt.Sprintf("coreMatMul{transA=%v, transB=%v, alpha=%v, bias=%v, relu}", op.transA, op.transB, op.scale(), op.bias != nil)
+	}
 	if op.bias != nil || op.scale() != 1 {
 		return fmt.Sprintf("coreMatMul{transA=%v, transB=%v, alpha=%v, bias=%v}", op.transA, op.transB, op.scale(), op.bias != nil)
 	}
@@ -373,6 +393,12 @@ func (op coreMatMulOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, e
 	a, b := inputs[0], inputs[1]
 	var da, db *G.Node
 	var err error
+	if op.relu {
+		// ∂L/∂v = ∂L/∂y where y > 0: the mask of the Relu this op applies.
+		if grad, err = reluGrad(output, grad); err != nil {
+			return nil, fmt.Errorf("matmul gradient: %w", err)
+		}
+	}
 	// mul builds one gradient product unless its operand is fixed.
 	mul := func(fixed bool, x, y *G.Node, tx, ty bool) (*G.Node, error) {
 		if fixed {

@@ -20,6 +20,9 @@ import (
 type convSpec struct {
 	Pads, Strides, Dilations []int
 	Group                    int
+	// Relu applies max(v, 0) to every output value v after the bias add
+	// (fuse_relu.go); the gradient masks dy with the output first.
+	Relu bool
 }
 
 // conv applies an ONNX Conv to x (N, C, spatial...) with weights w
@@ -53,7 +56,7 @@ func conv(x, w, b *G.Node, s convSpec) (y *G.Node, err error) {
 	if err := convCheckDtype("Conv", x, w, b); err != nil {
 		return nil, err
 	}
-	op := &convOp{rank: rank, bias: b != nil, slot: new(convSlot)}
+	op := &convOp{rank: rank, bias: b != nil, relu: s.Relu, slot: new(convSlot)}
 	if op.pads, op.strides, op.dils, err = convNormalize(rank, s.Pads, s.Strides, s.Dilations); err != nil {
 		return nil, fmt.Errorf("nn: Conv: %w", err)
 	}
@@ -255,6 +258,8 @@ type convOp struct {
 	group                  int
 	bias                   bool
 	constX, constW, constB bool
+	// relu applies max(v, 0) to the output after the bias (convSpec.Relu).
+	relu bool
 
 	// slot keeps the scratch (geometry, packed weights, buffers) between
 	// runs; see convSlot. Ops built without one allocate scratch per call.
@@ -388,7 +393,11 @@ func (op *convOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value,
 		if op.bias {
 			b = ts[2].Float64s()
 		}
-		convForward(&g, n, c, m, op.group, ts[0].Float64s(), ts[1].Float64s(), b, out.Float64s())
+		y := out.Float64s()
+		convForward(&g, n, c, m, op.group, ts[0].Float64s(), ts[1].Float64s(), b, y)
+		if op.relu {
+			execReluGo(y, y)
+		}
 		return out, nil
 	}
 	var b []float32
@@ -398,9 +407,12 @@ func (op *convOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value,
 	x, w, y := ts[0].Float32s(), ts[1].Float32s(), out.Float32s()
 	if convFast(c / op.group * g.kh * g.kw) {
 		op.forward32(s, &g, n, c, m, x, w, b, y)
-		return out, nil
+	} else {
+		convForward(&g, n, c, m, op.group, x, w, b, y)
 	}
-	convForward(&g, n, c, m, op.group, x, w, b, y)
+	if op.relu {
+		execReluF32(y, y)
+	}
 	return out, nil
 }
 
@@ -455,8 +467,12 @@ func (op *convOp) Hashcode() uint32 {
 	return h.Sum32()
 }
 func (op *convOp) String() string {
-	return fmt.Sprintf("Conv%dD{pads:%v strides:%v dilations:%v group:%d bias:%t const:%t%t%t}",
-		op.rank, op.pads, op.strides, op.dils, op.group, op.bias, op.constX, op.constW, op.constB)
+	relu := ""
+	if op.relu {
+		relu = " relu"
+	}
+	return fmt.Sprintf("Conv%dD{pads:%v strides:%v dilations:%v group:%d bias:%t const:%t%t%t%s}",
+		op.rank, op.pads, op.strides, op.dils, op.group, op.bias, op.constX, op.constW, op.constB, relu)
 }
 
 func (op *convOp) DiffWRT(inputs int) []bool {
@@ -470,11 +486,20 @@ func (op *convOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error)
 	}
 	diff := op.DiffWRT(len(inputs))
 	ret := make(G.Nodes, len(inputs))
+	if op.relu {
+		// ∂L/∂v = ∂L/∂y where y > 0: the mask of the Relu this op applies.
+		g, err := reluGrad(output, grad)
+		if err != nil {
+			return nil, fmt.Errorf("nn: Conv gradient: %w", err)
+		}
+		grad = g
+	}
 	for i := range inputs {
 		if !diff[i] {
 			continue
 		}
 		back := &convBackOp{convOp: *op, wrt: i}
+		back.relu = false
 		back.slot = new(convSlot)
 		n, err := G.ApplyOp(back, inputs[0], inputs[1], grad)
 		if err != nil {

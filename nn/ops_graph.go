@@ -22,6 +22,9 @@ type coreBuilder struct {
 	opset  int64
 	vals   map[string]*G.Node
 	consts int
+	// fused holds the Relu nodes already applied by the Conv or Gemm
+	// before them (fuse_relu.go).
+	fused map[*onnxlite.Node]bool
 }
 
 func newCoreBuilder(st *onnxlite.Static, dt tensor.Dtype, m *onnxlite.Model) *coreBuilder {
@@ -166,6 +169,9 @@ func (b *coreBuilder) node(n *onnxlite.Node) error {
 		if o != "" && !coreIsFloat(b.st.Values[o].DType) && !(n.OpType == "Dropout" || n.OpType == "MaxPool") {
 			return fmt.Errorf("%w: run-time value %q of element type %v (only floating-point values are computed at run time)", onnxlite.ErrUnsupported, o, b.st.Values[o].DType)
 		}
+	}
+	if b.fused[n] {
+		return nil
 	}
 	switch n.OpType {
 	case "Identity", "Dropout", "Constant":
@@ -331,9 +337,13 @@ func (b *coreBuilder) gemm(n *onnxlite.Node, out string) error {
 		return err
 	}
 	if fused || !b.has(n, 2) || beta == 0 {
-		y, err := coreGemm(a, bb, tA, tB, alpha, bias)
+		relu := b.fusedRelu(n)
+		y, err := coreGemmRelu(a, bb, tA, tB, alpha, bias, relu != nil)
 		if err != nil {
 			return err
+		}
+		if relu != nil {
+			return b.setFused(relu, y)
 		}
 		return b.set(out, y)
 	}
@@ -823,9 +833,13 @@ func (b *coreBuilder) conv(n *onnxlite.Node, out string) error {
 	if err != nil {
 		return err
 	}
-	y, err := conv(x, w, bias, convSpec{Pads: pads, Strides: strides, Dilations: dil, Group: int(n.AttrInt("group", 1))})
+	relu := b.fusedRelu(n)
+	y, err := conv(x, w, bias, convSpec{Pads: pads, Strides: strides, Dilations: dil, Group: int(n.AttrInt("group", 1)), Relu: relu != nil})
 	if err != nil {
 		return err
+	}
+	if relu != nil {
+		return b.setFused(relu, y)
 	}
 	return b.set(out, y)
 }
