@@ -55,6 +55,9 @@ type Baseline struct {
 	Reference [][]float64 `json:"-"`
 	// Values is the tensor of BaselineValues.
 	Values []float64 `json:"-"`
+	// Source names where Reference or Values came from (a file name, a
+	// hash), for the record; the methods do not read it.
+	Source string `json:"source,omitempty"`
 }
 
 // Build returns the baseline for sample x of the given shape, as a fresh
@@ -192,7 +195,7 @@ func Blur(x []float64, shape []int, sigma float64) ([]float64, error) {
 			for col := 0; col < w; col++ {
 				s := 0.0
 				for j := -r; j <= r; j++ {
-					s += k[j+r] * src[row*w+reflect(col+j, w)]
+					s += k[j+r] * src[row*w+mirror(col+j, w)]
 				}
 				mid[row*w+col] = s
 			}
@@ -201,7 +204,7 @@ func Blur(x []float64, shape []int, sigma float64) ([]float64, error) {
 			for col := 0; col < w; col++ {
 				s := 0.0
 				for j := -r; j <= r; j++ {
-					s += k[j+r] * mid[reflect(row+j, h)*w+col]
+					s += k[j+r] * mid[mirror(row+j, h)*w+col]
 				}
 				dst[row*w+col] = s
 			}
@@ -210,8 +213,8 @@ func Blur(x []float64, shape []int, sigma float64) ([]float64, error) {
 	return out, nil
 }
 
-// reflect folds index i into [0, n) by half-sample symmetric reflection.
-func reflect(i, n int) int {
+// mirror folds index i into [0, n) by half-sample symmetric reflection.
+func mirror(i, n int) int {
 	period := 2 * n
 	i %= period
 	if i < 0 {

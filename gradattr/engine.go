@@ -189,7 +189,7 @@ func (e *engine) call(what string, f func() error) (err error) {
 		return err
 	}
 	func() {
-		defer recoverModel(&err, "model "+what)
+		defer recovered(&err, ErrModel, "model "+what, "")
 		err = f()
 	}()
 	if err != nil {
@@ -217,7 +217,7 @@ func (e *engine) result(attr []float64, s Settings) *Result {
 
 // callSafe runs f, turning a panic into an ErrModel error.
 func callSafe(what string, f func()) (err error) {
-	defer recoverModel(&err, "model "+what)
+	defer recovered(&err, ErrModel, "model "+what, "")
 	f()
 	return nil
 }

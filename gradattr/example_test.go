@@ -69,3 +69,47 @@ func ExampleGridGroups() {
 	// patch 1,0 42
 	// patch 1,1 50
 }
+
+// ExampleSummary summarises gradient×input of f(x) = 2x₀ − x₁ (a = (2x₀,
+// −x₁), by hand) over four rows in two groups. Overall, mean |a₀| =
+// (2+4+6+4)/4 = 4 and mean a₀ = (2+4+6−4)/4 = 2; mean |a₁| = (1+1+2+4)/4 = 2
+// and mean a₁ = (−1+1−2−4)/4 = −1.5.
+func ExampleSummary() {
+	f := &gradattr.Func{
+		Shape:   []int{2},
+		Outputs: 1,
+		F:       func(out, x []float64) { out[0] = 2*x[0] - x[1] },
+		Grad:    func(g, _ []float64, _ int) { g[0], g[1] = 2, -1 },
+	}
+	s, err := gradattr.NewSummary(gradattr.SummaryOptions{Features: []string{"x0", "x1"}, Method: gradattr.MethodGradientTimesInput, GroupBy: "size"})
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+	for i, x := range [][]float64{{1, 1}, {2, -1}, {3, 2}, {-2, 4}} {
+		r, err := gradattr.GradientTimesInput(context.Background(), f, x, 0)
+		if err != nil {
+			fmt.Println(err)
+			return
+		}
+		group := "small"
+		if x[0] > 1 {
+			group = "large"
+		}
+		if err := s.Add(uint64(i), group, r.Attributions); err != nil {
+			fmt.Println(err)
+			return
+		}
+	}
+	for _, g := range append([]gradattr.GroupStats{s.Overall()}, s.Groups()...) {
+		fmt.Printf("%q (%d rows):", g.Name, g.Rows)
+		for _, fs := range g.Ranked() {
+			fmt.Printf("  %s mean |a| %.2f, mean a %+.2f", fs.Feature, fs.MeanAbs, fs.Mean)
+		}
+		fmt.Println()
+	}
+	// Output:
+	// "" (4 rows):  x0 mean |a| 4.00, mean a +2.00  x1 mean |a| 2.00, mean a -1.50
+	// "large" (2 rows):  x0 mean |a| 5.00, mean a +5.00  x1 mean |a| 1.50, mean a -0.50
+	// "small" (2 rows):  x0 mean |a| 3.00, mean a -1.00  x1 mean |a| 2.50, mean a -2.50
+}

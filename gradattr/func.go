@@ -53,7 +53,7 @@ func (f *Func) Forward(ctx context.Context, x []float64, n int) (out []float64, 
 	if err != nil {
 		return nil, err
 	}
-	defer recoverModel(&err, "Func.F")
+	defer recovered(&err, ErrModel, "Func.F", "")
 	out = make([]float64, n*f.Outputs)
 	for i := 0; i < n; i++ {
 		if err := ctx.Err(); err != nil {
@@ -76,7 +76,7 @@ func (f *Func) Gradient(ctx context.Context, x []float64, n int, target []int) (
 	if len(target) != n {
 		return nil, nil, fmt.Errorf("%w: Func got %d targets for %d samples", ErrInput, len(target), n)
 	}
-	defer recoverModel(&err, "Func")
+	defer recovered(&err, ErrModel, "Func", "")
 	out = make([]float64, n*f.Outputs)
 	grad = make([]float64, n*size)
 	for i := 0; i < n; i++ {
@@ -93,10 +93,16 @@ func (f *Func) Gradient(ctx context.Context, x []float64, n int, target []int) (
 	return out, grad, nil
 }
 
-// recoverModel turns a panic in model code into an error wrapping ErrModel.
-func recoverModel(err *error, who string) {
+// recovered is the package's one recovery point: deferred at every call
+// into code the caller supplied (a Model, Func's functions, a NoiseFunc),
+// it turns a panic there into an error wrapping kind that names who
+// panicked and, when where is not empty, on what.
+func recovered(err *error, kind error, who, where string) {
 	if r := recover(); r != nil {
-		*err = fmt.Errorf("%w: %s panicked: %v", ErrModel, who, r)
+		if where != "" {
+			where = " " + where
+		}
+		*err = fmt.Errorf("%w: %s panicked%s: %v", kind, who, where, r)
 	}
 }
 

@@ -2,15 +2,6 @@ package gradattr
 
 import "time"
 
-// Method names recorded in Settings.Method and in the JSON output.
-const (
-	MethodGradient            = "gradient"
-	MethodGradientTimesInput  = "gradient-times-input"
-	MethodSmoothGrad          = "smoothgrad"
-	MethodIntegratedGradients = "integrated-gradients"
-	MethodExpectedGradients   = "expected-gradients"
-)
-
 // CompletenessFloor is ε in the relative completeness gap
 //
 //	relative_gap = |Σ_i a_i − (f(x) − f(x′))| / max(|f(x) − f(x′)|, ε)
@@ -95,8 +86,8 @@ type Cost struct {
 // in, so that the same call can be made again. Fields that do not apply to
 // the method are zero and omitted from JSON.
 type Settings struct {
-	// Method is one of the Method* constants.
-	Method string `json:"method"`
+	// Method is the method run, by its canonical name.
+	Method Method `json:"method"`
 	// Absolute is set when the gradient's absolute value was taken.
 	Absolute bool `json:"absolute,omitempty"`
 	// Rule is the quadrature rule of integrated gradients.

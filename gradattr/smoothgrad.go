@@ -249,11 +249,7 @@ func SmoothGrad(ctx context.Context, m Model, x []float64, target int, opt Smoot
 // callNoise runs the caller's noise function, turning a panic into an
 // ErrInput error.
 func callNoise(f func(int, []float64), k int, eps []float64) (err error) {
-	defer func() {
-		if r := recover(); r != nil {
-			err = fmt.Errorf("%w: NoiseFunc panicked on copy %d: %v", ErrInput, k, r)
-		}
-	}()
+	defer recovered(&err, ErrInput, "NoiseFunc", fmt.Sprintf("on copy %d", k))
 	f(k, eps)
 	return nil
 }

@@ -63,8 +63,8 @@ type SummaryOptions struct {
 	Features []string
 	// Model identifies the model, e.g. the hex SHA-256 of its file.
 	Model string
-	// Method names the attribution method.
-	Method string
+	// Method is the attribution method.
+	Method Method
 	// Settings are the method settings the attributions were computed
 	// with; they must marshal to a JSON object (or be nil).
 	Settings map[string]any
@@ -716,7 +716,7 @@ type summaryJSON struct {
 	Format      string          `json:"format"`
 	Version     int             `json:"version"`
 	Model       string          `json:"model_sha256"`
-	Method      string          `json:"method"`
+	Method      Method          `json:"method"`
 	Settings    json.RawMessage `json:"settings"`
 	Features    []string        `json:"features"`
 	GroupBy     string          `json:"group_by"`

@@ -40,24 +40,22 @@ type demoFiles struct {
 // the empty name is the default scenario.
 var demoScenario func(name string) (*demoFiles, error)
 
-// The -method values.
+// The defaults of the settings that are not a method's parameters.
 const (
-	methodGrad      = "grad"
-	methodGradInput = "grad-input"
-	methodSmooth    = "smoothgrad"
-	methodIG        = "ig"
-	methodExpected  = "expected-grad"
+	defaultMethod   = gradattr.MethodIntegratedGradients
+	defaultTarget   = "top"
+	defaultBaseline = "zero"
+	defaultSteps    = "auto"
 )
-
-var methodNames = []string{methodGrad, methodGradInput, methodSmooth, methodIG, methodExpected}
 
 // explainConfig holds explain's flags, validated.
 type explainConfig struct {
 	modelPath  string
 	inputPath  string
 	output     string
-	method     string
-	target     int // gradattr.TargetTop for "top"
+	methodText string
+	method     gradattr.Method // parsed from methodText
+	target     int             // gradattr.TargetTop for "top"
 	targetText string
 	logits     bool
 	baseline   string
@@ -77,18 +75,6 @@ type explainConfig struct {
 
 	toleranceSet bool            // -tolerance was given
 	set          map[string]bool // the flags given
-}
-
-// methodFlags lists the flags that only some methods read.
-var methodFlags = map[string][]string{
-	"baseline":  {methodIG},
-	"steps":     {methodIG},
-	"rule":      {methodIG},
-	"tolerance": {methodIG, methodExpected},
-	"samples":   {methodSmooth, methodExpected},
-	"noise":     {methodSmooth},
-	"seed":      {methodSmooth, methodExpected},
-	"reference": {methodIG, methodExpected},
 }
 
 func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
@@ -111,7 +97,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	registerMethodFlags(fs, &c,
 		"baseline `kind` for ig: zero, mean (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), or the path of a file of baseline samples (results averaged over them)",
 		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
-	fs.Uint64Var(&c.seed, "seed", 1, "seed of the random methods")
+	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the random methods")
 	fs.StringVar(&c.groups, "groups", "", "JSON `file` naming groups of features to report together")
 	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv, npy or png (png needs -out)")
 	fs.StringVar(&c.out, "out", "", "write the result to `file` instead of standard output (png: file_0.png, file_1.png, ... for several samples)")
@@ -191,13 +177,11 @@ func (e *usageErr) Is(target error) bool { return target == errUsage }
 // validate checks the flag values that need no file; it returns a message
 // for a usage error, or "".
 func (c *explainConfig) validate() string {
-	known := false
-	for _, m := range methodNames {
-		known = known || c.method == m
+	m, err := gradattr.ParseMethod(c.methodText)
+	if err != nil {
+		return fmt.Sprintf("-method must be one of %s, got %q", gradattr.MethodNames(), c.methodText)
 	}
-	if !known {
-		return fmt.Sprintf("-method must be one of %s, got %q", strings.Join(methodNames, ", "), c.method)
-	}
+	c.method = m
 	switch c.format {
 	case "table", "json", "csv", "npy":
 	case "png":
@@ -241,25 +225,16 @@ func (c *explainConfig) validate() string {
 	if math.IsNaN(c.noise) || math.IsInf(c.noise, 0) || c.noise <= 0 {
 		return fmt.Sprintf("-noise must be a positive number, got %v", c.noise)
 	}
-	for name, methods := range methodFlags {
-		if !c.set[name] {
-			continue
-		}
-		ok := false
-		for _, m := range methods {
-			ok = ok || m == c.method
-		}
-		if !ok {
-			return fmt.Sprintf("-%s applies to -method %s only, not %s", name, strings.Join(methods, " and "), c.method)
-		}
+	if msg := c.checkParams(); msg != "" {
+		return msg
 	}
-	if c.reference != "" && c.method == methodIG && c.baseline != "mean" {
-		return "-reference with -method ig is the set -baseline mean averages; give -baseline mean too"
+	if c.reference != "" && c.method == gradattr.MethodIntegratedGradients && c.baseline != "mean" {
+		return "-reference with -method integrated-gradients is the set -baseline mean averages; give -baseline mean too"
 	}
 	// An embedded demo scenario supplies its own reference set.
 	demoReference := c.modelPath == "" && demoScenario != nil && (c.demo != "" || demoModel == nil)
-	if c.method == methodExpected && c.reference == "" && !demoReference {
-		return "-method expected-grad needs -reference, a file of reference samples"
+	if c.method == gradattr.MethodExpectedGradients && c.reference == "" && !demoReference {
+		return "-method expected-gradients needs -reference, a file of reference samples"
 	}
 	if c.demo != "" && c.modelPath != "" {
 		return "-demo selects an embedded model and sample; it cannot be combined with -model"
@@ -337,10 +312,10 @@ func (c *explainConfig) load() (*source, error) {
 	if err := src.finish(c); err != nil {
 		return nil, err
 	}
-	if c.reference == "" && (c.method == methodExpected || (c.method == methodIG && c.baseline == "mean")) && dm != nil {
+	if c.reference == "" && c.needsReference() && dm != nil {
 		if dm.reference == nil {
-			if c.method == methodExpected {
-				return nil, &usageErr{"-method expected-grad needs -reference, a file of reference samples"}
+			if c.method == gradattr.MethodExpectedGradients {
+				return nil, &usageErr{"-method expected-gradients needs -reference, a file of reference samples"}
 			}
 		} else if src.reference, err = readInputBytes(dm.referenceFile, dm.reference, src.spec, false); err != nil {
 			return nil, fmt.Errorf("demo reference set: %w", err)
@@ -429,6 +404,7 @@ type explanation struct {
 // explainReport is what renderers print.
 type explainReport struct {
 	src          *source
+	options      gradattr.Options
 	groups       []gradattr.Group
 	Explanations []explanation
 }
@@ -439,7 +415,7 @@ func explainAll(ctx context.Context, c *explainConfig, src *source, tick func(do
 	if err != nil {
 		return nil, err
 	}
-	rep.groups = plan.groups
+	rep.groups, rep.options = plan.groups, plan.options
 	for i := 0; i < src.samples.Samples; i++ {
 		x := src.samples.Sample(i)
 		e := explanation{Index: i, Value: x}
@@ -448,8 +424,8 @@ func explainAll(ctx context.Context, c *explainConfig, src *source, tick func(do
 		} else if err := finiteSample(x); err != nil {
 			e.err = err
 		} else if e.Result, e.err = c.attribute(ctx, src, x, plan); e.err == nil {
-			if len(plan.baselines) == 1 {
-				e.Baselines = baselineOutputs(ctx, src, x, plan.baselines[0])
+			if b := plan.options.Baselines; len(b) == 1 {
+				e.Baselines = baselineOutputs(ctx, src, x, b[0])
 			}
 			if plan.groups != nil {
 				e.Grouped, e.err = e.Result.Grouped(plan.groups)
@@ -489,7 +465,7 @@ func finiteSample(x []float64) error {
 func (c *explainConfig) attribute(ctx context.Context, src *source, x []float64, plan *methodPlan) (res *gradattr.Result, err error) {
 	err = safeCall(func() error {
 		var e error
-		res, e = c.callMethod(ctx, src, x, plan)
+		res, e = gradattr.Attribute(ctx, src.head, x, c.target, plan.options)
 		return e
 	})
 	return res, err

@@ -89,8 +89,8 @@ func TestExplainIGSoftmax(t *testing.T) {
 	assert.NotContains(t, string(raw), doc.Model.SHA256)
 	assert.Equal(t, "x", doc.Model.Input)  // graph input (python3-onnx 1.12.0)
 	assert.Equal(t, "y", doc.Model.Output) // graph output (python3-onnx 1.12.0)
-	assert.Equal(t, "ig", doc.Method)
-	assert.Equal(t, "zero", doc.Settings["baseline"])
+	assert.Equal(t, "integrated-gradients", doc.Method)
+	assert.Equal(t, []any{map[string]any{"kind": "zero"}}, doc.Settings["baselines"])
 	assert.Equal(t, 0.005, doc.Settings["tolerance"])
 
 	require.Len(t, doc.Explanations, 1)

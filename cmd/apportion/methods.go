@@ -1,7 +1,6 @@
 package main
 
 import (
-	"context"
 	"encoding/json"
 	"fmt"
 	"os"
@@ -12,19 +11,54 @@ import (
 	"github.com/apportion/apportion/gradattr"
 )
 
+// checkParams refuses a method parameter given for a method that does not
+// read it; it returns a usage message or "".
+func (c *explainConfig) checkParams() string {
+	for _, p := range []gradattr.Param{gradattr.ParamBaseline, gradattr.ParamReference, gradattr.ParamSteps,
+		gradattr.ParamRule, gradattr.ParamTolerance, gradattr.ParamSamples, gradattr.ParamNoise, gradattr.ParamSeed} {
+		if !c.set[string(p)] || c.method.Reads(p) {
+			continue
+		}
+		var readers []string
+		for _, m := range gradattr.Methods() {
+			if m.Reads(p) {
+				readers = append(readers, m.String())
+			}
+		}
+		return fmt.Sprintf("-%s applies to -method %s only, not %s", p, strings.Join(readers, " and "), c.method)
+	}
+	return ""
+}
+
+// isMethod reports whether name names method m.
+func isMethod(name string, m gradattr.Method) bool {
+	got, err := gradattr.ParseMethod(name)
+	return err == nil && got == m
+}
+
+// needsReference reports whether the method reads a reference set: expected
+// gradients, and integrated gradients against the mean baseline.
+func (c *explainConfig) needsReference() bool {
+	return c.method == gradattr.MethodExpectedGradients ||
+		(c.method == gradattr.MethodIntegratedGradients && c.baseline == "mean")
+}
+
 // defaultBlurSigma is the Gaussian σ, in pixels, of -baseline blur.
 const defaultBlurSigma = 2.0
 
-// baselineSpec resolves -baseline for integrated gradients.
+// baselineSpec resolves -baseline for integrated gradients: the mean
+// baseline averages the reference set when there is one, else the samples
+// themselves.
 func (c *explainConfig) baselineSpec(src *source) ([]gradattr.Baseline, error) {
 	switch {
 	case c.baseline == "zero":
 		return []gradattr.Baseline{{Kind: gradattr.BaselineZero}}, nil
 	case c.baseline == "mean":
-		set := src.reference
-		if set == nil {
-			set = src.samples
+		if src.reference != nil {
+			rows, err := referenceRows(src)
+			return []gradattr.Baseline{{Kind: gradattr.BaselineMean, Reference: rows}}, err
 		}
+		set := src.samples
 		rows := make([][]float64, set.Samples)
 		for i := range rows {
 			rows[i] = set.Sample(i)
@@ -32,7 +66,7 @@ func (c *explainConfig) baselineSpec(src *source) ([]gradattr.Baseline, error) {
 				return nil, fmt.Errorf("-baseline mean: sample %d of %s: %w", i, set.Path, err)
 			}
 		}
-		return []gradattr.Baseline{{Kind: gradattr.BaselineMean, Reference: rows}}, nil
+		return []gradattr.Baseline{{Kind: gradattr.BaselineMean, Reference: rows, Source: set.Path}}, nil
 	case c.baseline == "blur" || strings.HasPrefix(c.baseline, "blur:"):
 		sigma := defaultBlurSigma
 		if s, ok := strings.CutPrefix(c.baseline, "blur:"); ok {
@@ -56,7 +90,7 @@ func (c *explainConfig) baselineSpec(src *source) ([]gradattr.Baseline, error) {
 	}
 	out := make([]gradattr.Baseline, b.Samples)
 	for i := range out {
-		out[i] = gradattr.Baseline{Kind: gradattr.BaselineValues, Values: b.Sample(i)}
+		out[i] = gradattr.Baseline{Kind: gradattr.BaselineValues, Values: b.Sample(i), Source: c.baseline}
 	}
 	return out, nil
 }
@@ -77,52 +111,31 @@ func referenceRows(src *source) ([][]float64, error) {
 	return rows, nil
 }
 
-// callMethod runs the selected method on sample x.
-func (c *explainConfig) callMethod(ctx context.Context, src *source, x []float64, plan *methodPlan) (*gradattr.Result, error) {
-	m := src.head
-	switch c.method {
-	case methodGrad:
-		return gradattr.Gradient(ctx, m, x, c.target, gradattr.GradientOptions{})
-	case methodGradInput:
-		return gradattr.GradientTimesInput(ctx, m, x, c.target)
-	case methodSmooth:
-		return gradattr.SmoothGrad(ctx, m, x, c.target, gradattr.SmoothGradOptions{
-			Samples: c.samples, Noise: c.noise, Seed: c.seed,
-		})
-	case methodIG:
-		return gradattr.IntegratedGradients(ctx, m, x, c.target, gradattr.IGOptions{
-			Rule: c.rule, Points: c.steps, Tolerance: c.tolerance, Baselines: plan.baselines,
-		})
-	case methodExpected:
-		tol := c.tolerance
-		if !c.toleranceSet {
-			tol = 0 // the library's default for a method exact only in expectation
-		}
-		return gradattr.ExpectedGradients(ctx, m, x, c.target, gradattr.ExpectedGradientsOptions{
-			Reference: plan.reference, Samples: c.samples, Seed: c.seed, Tolerance: tol,
-		})
-	}
-	return nil, fmt.Errorf("unknown method %q", c.method)
-}
-
 // methodPlan is what the methods need beyond the sample, resolved once.
 type methodPlan struct {
-	baselines []gradattr.Baseline
-	reference [][]float64
-	groups    []gradattr.Group
+	options gradattr.Options
+	groups  []gradattr.Group
 }
 
 func (c *explainConfig) plan(src *source) (*methodPlan, error) {
-	p := &methodPlan{}
+	o := c.method.Defaults()
+	// The flags' defaults are the methods' defaults, except -tolerance,
+	// whose default is integrated gradients' alone.
+	o.Points, o.Rule = c.steps, c.rule
+	if c.set["tolerance"] {
+		o.Tolerance = c.tolerance
+	}
+	o.Samples, o.Noise, o.Seed = c.samples, c.noise, c.seed
 	var err error
-	if c.method == methodIG {
-		if p.baselines, err = c.baselineSpec(src); err != nil {
+	if c.method.Reads(gradattr.ParamBaseline) {
+		if o.Baselines, err = c.baselineSpec(src); err != nil {
 			return nil, err
 		}
 	}
-	if p.reference, err = referenceRows(src); err != nil {
+	if o.Reference, err = referenceRows(src); err != nil {
 		return nil, err
 	}
+	p := &methodPlan{options: o}
 	if c.groups != "" {
 		if p.groups, err = readGroups(c.groups); err != nil {
 			return nil, err

@@ -21,6 +21,8 @@ import (
 	"golang.org/x/image/font/gofont/goregular"
 	"golang.org/x/image/font/opentype"
 	"golang.org/x/image/math/fixed"
+
+	"github.com/apportion/apportion/gradattr"
 )
 
 // PNG output: heatmaps for image-shaped samples, signed bar charts for the
@@ -452,8 +454,8 @@ func renderPNG(w io.Writer, c *explainConfig, rep *explainReport, e explanation)
 	if r.Target >= 0 && r.Target < len(src.classes) {
 		target += " (" + src.classes[r.Target] + ")"
 	}
-	method := methodTitle(c.method)
-	if c.method == methodIG {
+	method := c.method.Title()
+	if c.method.Reads(gradattr.ParamBaseline) {
 		base := filepath.Base(c.baseline)
 		if c.baseline == "mean" {
 			base = "mean of the input"
@@ -519,21 +521,4 @@ func renderPNG(w io.Writer, c *explainConfig, rep *explainReport, e explanation)
 		vals[k] = r.Attributions[i]
 	}
 	return pngBarsNotes(w, title, notes, names, vals, nil, nil)
-}
-
-// methodTitle names a -method value in a figure title.
-func methodTitle(m string) string {
-	switch m {
-	case methodGrad:
-		return "gradient"
-	case methodGradInput:
-		return "gradient × input"
-	case methodSmooth:
-		return "SmoothGrad"
-	case methodIG:
-		return "integrated gradients"
-	case methodExpected:
-		return "expected gradients"
-	}
-	return m
 }

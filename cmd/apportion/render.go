@@ -234,51 +234,28 @@ type explanationJSON struct {
 // explainJSON is explain's JSON document.
 type explainJSON struct {
 	Model        explainModelJSON  `json:"model"`
-	Method       string            `json:"method"`
+	Method       gradattr.Method   `json:"method"`
 	Settings     map[string]any    `json:"settings"`
 	Explanations []explanationJSON `json:"explanations"`
 }
 
-// settingsJSON lists the request: the flags that apply to the method, then
-// the library's settings of the first explained sample (defaults filled in).
-func settingsJSON(c *explainConfig, rep *explainReport) map[string]any {
-	s := map[string]any{"target": c.targetText, "logits": c.logits}
+// settingsJSON is the request's settings in one representation: the
+// library's record of the method's options (gradattr.Options.Settings,
+// defaults filled in), then what selects the explained value (target,
+// logits, output) and the name of the reference set. reference names it,
+// "" without one.
+func settingsJSON(c *explainConfig, src *source, o gradattr.Options, reference string) map[string]any {
+	s := map[string]any{}
+	if raw, err := json.Marshal(o.Settings()); err == nil {
+		_ = json.Unmarshal(raw, &s)
+	}
+	delete(s, "method") // a key of the document itself
+	s["target"], s["logits"], s["output"] = c.targetText, c.logits, src.output
 	if c.target >= 0 {
 		s["target"] = c.target
 	}
-	switch c.method {
-	case methodIG:
-		s["baseline"] = c.baseline
-		s["steps"] = c.stepsText
-		s["tolerance"] = c.tolerance
-		if c.ruleText != "" {
-			s["rule"] = c.ruleText
-		}
-	case methodSmooth:
-		s["samples"], s["noise"], s["seed"] = c.samples, c.noise, c.seed
-	case methodExpected:
-		s["samples"], s["seed"], s["tolerance"] = c.samples, c.seed, c.tolerance
-		s["reference"] = c.reference
-	}
-	if c.reference != "" {
-		s["reference"] = c.reference
-	}
-	for _, e := range rep.Explanations {
-		if e.Result == nil {
-			continue
-		}
-		raw, err := json.Marshal(e.Result.Settings)
-		if err != nil {
-			break
-		}
-		var lib map[string]any
-		if json.Unmarshal(raw, &lib) == nil {
-			delete(lib, "method")
-			for k, v := range lib {
-				s[k] = v
-			}
-		}
-		break
+	if reference != "" {
+		s["reference"] = reference
 	}
 	return s
 }
@@ -288,7 +265,7 @@ func writeExplainJSON(w io.Writer, c *explainConfig, rep *explainReport) error {
 	doc := explainJSON{
 		Model:        explainModelJSON{Path: src.modelName, SHA256: src.sha256, Input: src.spec.Name, Output: src.output},
 		Method:       c.method,
-		Settings:     settingsJSON(c, rep),
+		Settings:     settingsJSON(c, src, rep.options, c.reference),
 		Explanations: []explanationJSON{},
 	}
 	shape := src.samples.SampleShape()

@@ -523,27 +523,16 @@ type explainRequest struct {
 	Logits    *bool           `json:"logits"`
 }
 
-// The explain command's flag defaults, which absent request fields take.
-const (
-	explainDefaultMethod    = methodIG
-	explainDefaultTarget    = "top"
-	explainDefaultBaseline  = "zero"
-	explainDefaultSteps     = "auto"
-	explainDefaultTolerance = 0.005
-	explainDefaultSamples   = 50
-	explainDefaultNoise     = 0.15
-	explainDefaultSeed      = 1
-)
-
 // config turns the request into the explain command's configuration and
 // validates it with the command's own checks.
 func (s *server) config(req *explainRequest) (*explainConfig, *httpError) {
 	c := &explainConfig{
 		modelPath: s.base.modelName, inputPath: "request", format: "json",
-		method: explainDefaultMethod, targetText: explainDefaultTarget, baseline: explainDefaultBaseline,
-		stepsText: explainDefaultSteps, tolerance: explainDefaultTolerance,
-		samples: explainDefaultSamples, noise: explainDefaultNoise, seed: explainDefaultSeed,
-		set: map[string]bool{},
+		methodText: defaultMethod.String(), targetText: defaultTarget, baseline: defaultBaseline,
+		stepsText: defaultSteps, tolerance: defaultMethod.Defaults().Tolerance,
+		samples: gradattr.MethodSmoothGrad.Defaults().Samples, noise: gradattr.MethodSmoothGrad.Defaults().Noise,
+		seed: gradattr.DefaultSeed,
+		set:  map[string]bool{},
 	}
 	given := func(name string, ok bool) {
 		if ok {
@@ -551,13 +540,13 @@ func (s *server) config(req *explainRequest) (*explainConfig, *httpError) {
 		}
 	}
 	if req.Method != nil {
-		c.method = *req.Method
+		c.methodText = *req.Method
 	}
 	var herr *httpError
-	if c.targetText, herr = intOrWord("target", req.Target, explainDefaultTarget, "top"); herr != nil {
+	if c.targetText, herr = intOrWord("target", req.Target, defaultTarget, "top"); herr != nil {
 		return nil, herr
 	}
-	if c.stepsText, herr = intOrWord("steps", req.Steps, explainDefaultSteps, "auto"); herr != nil {
+	if c.stepsText, herr = intOrWord("steps", req.Steps, defaultSteps, "auto"); herr != nil {
 		return nil, herr
 	}
 	given("steps", req.Steps != nil)
@@ -596,11 +585,14 @@ func (s *server) config(req *explainRequest) (*explainConfig, *httpError) {
 	}
 	// The reference set is the server's: expected gradients draw from it
 	// and the mean baseline averages it.
-	if c.method == methodExpected || (c.method == methodIG && c.baseline == "mean") {
-		c.reference = s.refName
-	}
-	if c.method == methodExpected && c.reference == "" {
-		return nil, badRequest(`"method" expected-grad needs a reference set; this server has none (start it with -reference FILE)`)
+	if m, err := gradattr.ParseMethod(c.methodText); err == nil {
+		c.method = m
+		if c.needsReference() {
+			c.reference = s.refName
+		}
+		if c.method == gradattr.MethodExpectedGradients && c.reference == "" {
+			return nil, badRequest(`"method" expected-gradients needs a reference set; this server has none (start it with -reference FILE)`)
+		}
 	}
 	if msg := c.validate(); msg != "" {
 		return nil, badRequest("%s", requestWording(msg))
@@ -649,7 +641,7 @@ func (s *server) explain(w http.ResponseWriter, r *http.Request, rl *requestLog)
 		s.finish(w, herr)
 		return
 	}
-	rl.method = c.method
+	rl.method = c.method.String()
 	b, herr := s.samplesOf(req.Inputs)
 	if herr != nil {
 		s.finish(w, herr)
@@ -705,7 +697,7 @@ func (s *server) explain(w http.ResponseWriter, r *http.Request, rl *requestLog)
 // document is answered, failed samples carrying their "error".
 func (s *server) judge(ctx context.Context, c *explainConfig, rep *explainReport, rl *requestLog) *httpError {
 	var bad error
-	failedBad, judged, failed, none := 0, 0, 0, 0
+	failedBad, judged, failed, unjudged := 0, 0, 0, 0
 	for _, e := range rep.Explanations {
 		if e.err != nil {
 			if ctx.Err() != nil {
@@ -721,14 +713,15 @@ func (s *server) judge(ctx context.Context, c *explainConfig, rep *explainReport
 		}
 		rl.points += e.Result.Cost.GradientEvals
 		switch cp := e.Result.Completeness; {
-		case cp == nil || !cp.Judged:
-			none++
+		case cp == nil:
+		case !cp.Judged:
+			unjudged++
 		case cp.OK:
 			judged++
 		default:
 			judged++
 			failed++
-			s.metrics.incomplete.WithLabelValues(c.method).Inc()
+			s.metrics.incomplete.WithLabelValues(c.method.String()).Inc()
 		}
 	}
 	if failedBad > 0 && failedBad == len(rep.Explanations) {
@@ -739,7 +732,7 @@ func (s *server) judge(ctx context.Context, c *explainConfig, rep *explainReport
 		rl.completeness = "failed"
 	case judged > 0:
 		rl.completeness = "ok"
-	case none > 0 && (c.method == methodGradInput):
+	case unjudged > 0:
 		rl.completeness = "not judged"
 	}
 	return nil

@@ -142,7 +142,7 @@ func TestServeExplainIsTheCLIDocument(t *testing.T) {
 			require.Len(t, doc.Explanations, 1)
 			e := doc.Explanations[0]
 			require.Nil(t, e.Error)
-			if cp := e.Completeness; cp != nil && doc.Method == "ig" {
+			if cp := e.Completeness; cp != nil && doc.Method == "integrated-gradients" {
 				// Completeness (Sundararajan et al. 2017, Proposition 1) is
 				// judged against F(x) − F(x′) read off the document's own
 				// outputs at the sample and at the baseline.
@@ -253,12 +253,12 @@ func TestServeStatuses(t *testing.T) {
 		// 1e999 overflows float64 (IEEE 754 binary64: largest finite ≈ 1.8e308).
 		{"overflow", "/v1/explain", `{"inputs": [[1, 2, 3, 1e999, 5, 6, 7, 8]]}`, http.StatusBadRequest, []string{"1e999 is out of the float64 range"}},
 		{"unknown method", "/v1/explain", `{"inputs": [` + sample + `], "method": "lime"}`, http.StatusBadRequest,
-			[]string{`"method" must be one of grad, grad-input, smoothgrad, ig, expected-grad, got "lime"`}},
+			[]string{`"method" must be one of gradient (grad), gradient-times-input (grad-input), smoothgrad, integrated-gradients (ig), expected-gradients (expected-grad), got "lime"`}},
 		{"no inputs", "/v1/explain", `{"method": "grad"}`, http.StatusBadRequest, []string{`"inputs" is required`}},
 		{"target out of range", "/v1/explain", `{"inputs": [` + sample + `], "method": "grad", "target": 3}`, http.StatusBadRequest, []string{"target 3", "0..2"}},
 		{"file baseline", "/v1/explain", `{"inputs": [` + sample + `], "baseline": "/etc/passwd"}`, http.StatusBadRequest, []string{`"baseline" must be zero, mean, blur or blur:S`}},
 		{"steps too large", "/v1/explain", `{"inputs": [` + sample + `], "steps": 100000}`, http.StatusBadRequest, []string{`"steps" must be auto or a number from 1 to 65536, got "100000"`}},
-		{"flag of another method", "/v1/explain", `{"inputs": [` + sample + `], "noise": 0.2}`, http.StatusBadRequest, []string{`"noise" applies to "method" smoothgrad only, not ig`}},
+		{"flag of another method", "/v1/explain", `{"inputs": [` + sample + `], "noise": 0.2}`, http.StatusBadRequest, []string{`"noise" applies to "method" smoothgrad only, not integrated-gradients`}},
 		{"over the limit", "/v1/explain", `{"inputs": [` + strings.Repeat(sample+",", 200) + sample + `]}`, http.StatusRequestEntityTooLarge, []string{"over the limit of 1024 bytes (1KiB)"}},
 	}
 	for _, tc := range cases {
@@ -473,13 +473,13 @@ func TestServeMetricsAndLogs(t *testing.T) {
 	require.NotNil(t, req)
 	assert.Equal(t, 4.0, labelled(req, map[string]string{"route": "/v1/explain", "code": "200"}).GetCounter().GetValue())
 	assert.Equal(t, 1.0, labelled(req, map[string]string{"route": "/v1/explain", "code": "400"}).GetCounter().GetValue())
-	lat := labelled(mfs["apportion_explain_duration_seconds"], map[string]string{"method": "ig"})
+	lat := labelled(mfs["apportion_explain_duration_seconds"], map[string]string{"method": "integrated-gradients"})
 	require.NotNil(t, lat)
 	assert.EqualValues(t, 3, lat.GetHistogram().GetSampleCount())
-	lat = labelled(mfs["apportion_explain_duration_seconds"], map[string]string{"method": "grad"})
+	lat = labelled(mfs["apportion_explain_duration_seconds"], map[string]string{"method": "gradient"})
 	require.NotNil(t, lat)
 	assert.EqualValues(t, 1, lat.GetHistogram().GetSampleCount())
-	inc := labelled(mfs["apportion_completeness_failures_total"], map[string]string{"method": "ig"})
+	inc := labelled(mfs["apportion_completeness_failures_total"], map[string]string{"method": "integrated-gradients"})
 	require.NotNil(t, inc)
 	assert.Equal(t, 3.0, inc.GetCounter().GetValue())
 	require.NotNil(t, mfs["apportion_queue_depth"])
@@ -502,7 +502,7 @@ func TestServeMetricsAndLogs(t *testing.T) {
 	first := lines[0]
 	assert.Equal(t, "/v1/explain", first["route"])
 	assert.Equal(t, "200", first["status"])
-	assert.Equal(t, "ig", first["method"])
+	assert.Equal(t, "integrated-gradients", first["method"])
 	assert.EqualValues(t, 2, first["points"])
 	assert.Equal(t, "failed", first["completeness"])
 	assert.Contains(t, first, "duration_ms")

@@ -14,6 +14,7 @@ import (
 	"os"
 	"path/filepath"
 	"runtime"
+	"slices"
 	"sort"
 	"strconv"
 	"strings"
@@ -63,16 +64,21 @@ type summarizeConfig struct {
 // between commands.
 func registerMethodFlags(fs *flag.FlagSet, c *explainConfig, baselineHelp, referenceHelp string) {
 	fs.StringVar(&c.output, "output", "", "`name` of the model output to explain (default the first)")
-	fs.StringVar(&c.method, "method", methodIG, "attribution method: "+strings.Join(methodNames, ", "))
-	fs.StringVar(&c.targetText, "target", "top", "output element to explain: an index `N`, or top for the largest")
+	var aliases []string
+	for _, m := range gradattr.Methods() {
+		aliases = append(aliases, m.Alias())
+	}
+	ig, eg, sg := gradattr.MethodIntegratedGradients.Defaults(), gradattr.MethodExpectedGradients.Defaults(), gradattr.MethodSmoothGrad.Defaults()
+	fs.StringVar(&c.methodText, "method", defaultMethod.Alias(), "attribution method: "+strings.Join(aliases, ", ")+" (or the canonical names "+gradattr.MethodNames()+")")
+	fs.StringVar(&c.targetText, "target", defaultTarget, "output element to explain: an index `N`, or top for the largest")
 	fs.BoolVar(&c.logits, "logits", false, "explain the input of the Softmax, LogSoftmax or Sigmoid that produces the output (the logits)")
-	fs.StringVar(&c.baseline, "baseline", "zero", baselineHelp)
+	fs.StringVar(&c.baseline, "baseline", defaultBaseline, baselineHelp)
 	fs.StringVar(&c.reference, "reference", "", referenceHelp)
-	fs.StringVar(&c.stepsText, "steps", "auto", "integration points for ig: a number `N`, or auto to refine until -tolerance")
+	fs.StringVar(&c.stepsText, "steps", defaultSteps, "integration points for ig: a number `N`, or auto to refine until -tolerance")
 	fs.StringVar(&c.ruleText, "rule", "", "quadrature `rule` for ig: trapezoid, left, right, midpoint or gauss-legendre (default trapezoid)")
-	fs.Float64Var(&c.tolerance, "tolerance", 0.005, "relative completeness gap `R` to meet; expected-grad, complete only in expectation, uses 0.05 unless given")
-	fs.IntVar(&c.samples, "samples", 50, "noisy copies (smoothgrad) or baseline draws (expected-grad) `N`")
-	fs.Float64Var(&c.noise, "noise", 0.15, "smoothgrad noise level `R`: σ / (max x − min x)")
+	fs.Float64Var(&c.tolerance, "tolerance", ig.Tolerance, fmt.Sprintf("relative completeness gap `R` to meet; expected-grad, complete only in expectation, uses %v unless given", eg.Tolerance))
+	fs.IntVar(&c.samples, "samples", sg.Samples, "noisy copies (smoothgrad) or baseline draws (expected-grad) `N`")
+	fs.Float64Var(&c.noise, "noise", sg.Noise, "smoothgrad noise level `R`: σ / (max x − min x)")
 }
 
 // summarizeMergeFlags are the flags that make sense with -merge.
@@ -104,7 +110,7 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 	registerMethodFlags(fs, c,
 		"baseline `kind` for ig: zero, mean (of -reference), or the path of a file of baseline samples (results averaged over them); default without -model: mean of the demo's reference set",
 		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
-	fs.Uint64Var(&c.seed, "seed", 1, "seed of the bootstrap weights (and of smoothgrad and expected-grad)")
+	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the bootstrap weights (and of smoothgrad and expected-grad)")
 	fs.StringVar(&sc.by, "by", "", "group rows by this CSV `column`, or by the predicted class with predicted (default for the demo: pump_line)")
 	fs.StringVar(&sc.format, "format", "table", "output format: table, json (mergeable), csv or png (needs -out)")
 	fs.StringVar(&sc.out, "out", "", "write the summary to `file` instead of standard output")
@@ -221,7 +227,7 @@ func (sc *summarizeConfig) validate() string {
 	if c.modelPath == "" && c.inputPath == "" && sc.by == "" {
 		sc.by = demoSummaryBy
 	}
-	if c.modelPath == "" && c.reference == "" && c.method == methodIG && !c.set["baseline"] {
+	if c.modelPath == "" && c.reference == "" && isMethod(c.methodText, gradattr.MethodIntegratedGradients) && !c.set["baseline"] {
 		// The demo's zero point (0 °C, 0 h since service, ...) is far
 		// from any pump; its healthy reference pumps make a baseline that
 		// answers "why not normal?".
@@ -288,7 +294,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 	if err := src.finish(c); err != nil {
 		return nil, nil, "", err
 	}
-	if src.reference == nil && dm != nil && c.reference == "" && (c.method == methodExpected || c.baseline == "mean") {
+	if src.reference == nil && dm != nil && c.reference == "" && c.needsReference() {
 		if src.reference, err = readInputBytes(dm.ReferenceFile, dm.Reference, src.spec, false); err != nil {
 			return nil, nil, "", fmt.Errorf("demo reference set: %w", err)
 		}
@@ -297,7 +303,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 	if err != nil {
 		return nil, nil, "", err
 	}
-	settings, err := sc.settings(src, dm)
+	settings, err := sc.settings(src, dm, plan.options)
 	if err != nil {
 		return nil, nil, "", err
 	}
@@ -461,40 +467,34 @@ func (sc *summarizeConfig) loadModel() (*source, *demo.Scenario, error) {
 // settings are the request's method settings, recorded in the summary and
 // compared when summaries merge. Files are identified by their SHA-256,
 // not their path, so parts summarised in different directories merge.
-func (sc *summarizeConfig) settings(src *source, dm *demo.Scenario) (map[string]any, error) {
+func (sc *summarizeConfig) settings(src *source, dm *demo.Scenario, o gradattr.Options) (map[string]any, error) {
 	c := &sc.ex
-	s := settingsJSON(c, &explainReport{src: src})
-	s["output"] = src.output
-	hashFile := func(path string) (string, error) {
-		raw, err := os.ReadFile(path)
-		if err != nil {
-			return "", err
-		}
+	digest := func(raw []byte) string {
 		sum := sha256.Sum256(raw)
-		return "sha256:" + hex.EncodeToString(sum[:]), nil
+		return "sha256:" + hex.EncodeToString(sum[:])
 	}
+	reference := ""
 	if c.reference != "" {
-		h, err := hashFile(c.reference)
+		raw, err := os.ReadFile(c.reference)
 		if err != nil {
 			return nil, fmt.Errorf("-reference: %w", err)
 		}
-		s["reference"] = h
+		reference = digest(raw)
 	} else if dm != nil && src.reference != nil {
-		sum := sha256.Sum256(dm.Reference)
-		s["reference"] = "sha256:" + hex.EncodeToString(sum[:])
+		reference = digest(dm.Reference)
 	}
-	if c.method == methodIG {
-		switch b := c.baseline; {
-		case b == "zero" || b == "mean":
-		default:
-			h, err := hashFile(b)
-			if err != nil {
-				return nil, fmt.Errorf("-baseline: %w", err)
-			}
-			s["baseline"] = h
+	o.Baselines = slices.Clone(o.Baselines)
+	for i, b := range o.Baselines {
+		if b.Kind != gradattr.BaselineValues {
+			continue
 		}
+		raw, err := os.ReadFile(c.baseline)
+		if err != nil {
+			return nil, fmt.Errorf("-baseline: %w", err)
+		}
+		o.Baselines[i].Source = digest(raw)
 	}
-	return s, nil
+	return settingsJSON(c, src, o, reference), nil
 }
 
 // readRows reads the rows to explain and names the model's features.

@@ -99,7 +99,7 @@ func TestSummarizeDemoJSON(t *testing.T) {
 		assert.Equal(t, header[i], f)
 	}
 	settings := doc["settings"].(map[string]any)
-	assert.Equal(t, "mean", settings["baseline"])
+	assert.Equal(t, []any{map[string]any{"kind": "mean"}}, settings["baselines"])
 	assert.True(t, strings.HasPrefix(settings["reference"].(string), "sha256:"))
 }
 
@@ -224,7 +224,7 @@ func TestSummarizeMergeEqualsWhole(t *testing.T) {
 	require.Equal(t, exitOK, code, errOut)
 	code, _, errOut = cli(t, "summarize", "-merge", outs["a"], other)
 	assert.Equal(t, exitFail, code)
-	assert.Contains(t, errOut, "summaries do not match: method ig vs grad-input")
+	assert.Contains(t, errOut, "summaries do not match: method integrated-gradients vs gradient-times-input")
 
 	// A file that is not a summary.
 	code, _, errOut = cli(t, "summarize", "-merge", outs["a"], whole)
