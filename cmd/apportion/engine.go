@@ -12,9 +12,6 @@ import (
 	"github.com/apportion/apportion/onnxlite"
 )
 
-// This file holds every call into onnxlite and nn, each behind a recover so
-// that a panic in a dependency becomes an error message, not a crash.
-
 // decodeModel reads an ONNX model file.
 func decodeModel(path string) (*onnxlite.Model, error) {
 	_, m, err := readModelFile(path)
@@ -40,12 +37,8 @@ func readModelFile(path string) ([]byte, *onnxlite.Model, error) {
 
 // decodeModelBytes decodes the model bytes raw; name is used in messages,
 // and external tensor data is read from baseDir (refused when empty).
-func decodeModelBytes(raw []byte, name, baseDir string) (m *onnxlite.Model, err error) {
-	err = safeCall(func() error {
-		var e error
-		m, e = onnxlite.Decode(bytes.NewReader(raw), onnxlite.DecodeOptions{BaseDir: baseDir})
-		return e
-	})
+func decodeModelBytes(raw []byte, name, baseDir string) (*onnxlite.Model, error) {
+	m, err := onnxlite.Decode(bytes.NewReader(raw), onnxlite.DecodeOptions{BaseDir: baseDir})
 	if err != nil {
 		return nil, fmt.Errorf("reading model %s: %w", name, err)
 	}
@@ -55,19 +48,6 @@ func decodeModelBytes(raw []byte, name, baseDir string) (m *onnxlite.Model, err 
 	return m, nil
 }
 
-// decodeTensor decodes a serialized ONNX TensorProto.
-func decodeTensor(raw []byte) (t *onnxlite.Tensor, err error) {
-	err = safeCall(func() error {
-		var e error
-		t, e = onnxlite.DecodeTensor(bytes.NewReader(raw), onnxlite.DecodeOptions{})
-		return e
-	})
-	if err != nil {
-		return nil, fmt.Errorf("reading ONNX tensor: %w", err)
-	}
-	return t, nil
-}
-
 // unsupportedOp is an operator node the compiler cannot run.
 type unsupportedOp struct {
 	Op     string `json:"op"`
@@ -75,14 +55,12 @@ type unsupportedOp struct {
 	Domain string `json:"-"`
 }
 
-func unsupportedOps(m *onnxlite.Model) (ops []unsupportedOp, err error) {
-	err = safeCall(func() error {
-		for _, u := range onnxlite.Unsupported(m) {
-			ops = append(ops, unsupportedOp{Op: u.Op, Node: u.Node, Domain: u.Domain})
-		}
-		return nil
-	})
-	return ops, err
+func unsupportedOps(m *onnxlite.Model) []unsupportedOp {
+	var ops []unsupportedOp
+	for _, u := range onnxlite.Unsupported(m) {
+		ops = append(ops, unsupportedOp{Op: u.Op, Node: u.Node, Domain: u.Domain})
+	}
+	return ops
 }
 
 // network is a compiled model.
@@ -95,27 +73,16 @@ type network struct {
 // parallel how many goroutines one call may split a large batch across
 // (nn.Options.Parallel): the one-shot commands use every core, the server 1,
 // since its concurrency comes from requests.
-func compileModel(m *onnxlite.Model, shapes map[string][]int, parallel int) (net *network, err error) {
-	err = safeCall(func() error {
-		nw, e := nn.Compile(m, nn.Options{InputShapes: shapes, Parallel: parallel})
-		if e != nil {
-			return e
-		}
-		net = &network{nw: nw}
-		return nil
-	})
+func compileModel(m *onnxlite.Model, shapes map[string][]int, parallel int) (*network, error) {
+	nw, err := nn.Compile(m, nn.Options{InputShapes: shapes, Parallel: parallel})
 	if err != nil {
 		return nil, fmt.Errorf("compiling model: %w", err)
 	}
-	return net, nil
+	return &network{nw: nw}, nil
 }
 
-func (n *network) forward(ctx context.Context, in []*onnxlite.Tensor) (out []*onnxlite.Tensor, err error) {
-	err = safeCall(func() error {
-		var e error
-		out, e = n.nw.Forward(ctx, in)
-		return e
-	})
+func (n *network) forward(ctx context.Context, in []*onnxlite.Tensor) ([]*onnxlite.Tensor, error) {
+	out, err := n.nw.Forward(ctx, in)
 	if err != nil {
 		return nil, fmt.Errorf("running model: %w", err)
 	}
@@ -124,17 +91,10 @@ func (n *network) forward(ctx context.Context, in []*onnxlite.Tensor) (out []*on
 
 // head is output as a function of the network's single runtime input, or
 // of the logits before its final Softmax with logits set.
-func (n *network) head(output string, logits bool) (m gradattr.Model, err error) {
-	err = safeCall(func() error {
-		h, e := n.nw.Head(nn.Selection{Output: output, Logits: logits})
-		if e != nil {
-			return e
-		}
-		m = h
-		return nil
-	})
+func (n *network) head(output string, logits bool) (gradattr.Model, error) {
+	h, err := n.nw.Head(nn.Selection{Output: output, Logits: logits})
 	if err != nil {
 		return nil, fmt.Errorf("selecting output %q: %w", output, err)
 	}
-	return m, nil
+	return h, nil
 }

@@ -17,6 +17,7 @@ import (
 
 	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/onnxlite"
+	"github.com/apportion/apportion/samples"
 )
 
 // demoModel, when set, supplies a model and a sample to explain when neither
@@ -255,14 +256,17 @@ type source struct {
 	sha256    string
 	model     *onnxlite.Model
 	net       *network
-	spec      inputSpec
+	spec      samples.Spec
 	head      gradattr.Model
 	output    string
-	samples   *batch
-	reference *batch // nil without -reference
-	features  []string
+	samples   *samples.Batch
+	reference *samples.Batch // nil without -reference
+	features  []string       // labels: the model's feature names, else the input's CSV header
 	units     []string
-	classes   []string
+	// modelFeatures are the model's feature names, which CSV files are
+	// read by.
+	modelFeatures []string
+	classes       []string
 }
 
 func (c *explainConfig) load() (*source, error) {
@@ -302,9 +306,9 @@ func (c *explainConfig) load() (*source, error) {
 		return nil, err
 	}
 	if c.inputPath == "" {
-		src.samples, err = readInputBytes(demoName, demoSample, src.spec, true)
+		src.samples, err = samples.Read(bytes.NewReader(demoSample), demoName, src.spec, src.readOptions(true))
 	} else {
-		src.samples, err = readInputOpt(c.inputPath, src.spec, true)
+		src.samples, err = samples.ReadFile(c.inputPath, src.spec, src.readOptions(true))
 	}
 	if err != nil {
 		return nil, err
@@ -317,13 +321,19 @@ func (c *explainConfig) load() (*source, error) {
 			if c.method == gradattr.MethodExpectedGradients {
 				return nil, &usageErr{"-method expected-gradients needs -reference, a file of reference samples"}
 			}
-		} else if src.reference, err = readInputBytes(dm.referenceFile, dm.reference, src.spec, false); err != nil {
+		} else if src.reference, err = samples.Read(bytes.NewReader(dm.reference), dm.referenceFile, src.spec, src.readOptions(false)); err != nil {
 			return nil, fmt.Errorf("demo reference set: %w", err)
 		} else {
 			c.reference = "demo:" + dm.referenceFile // recorded in the JSON settings
 		}
 	}
 	return src, nil
+}
+
+// readOptions are the options samples are read with: by the model's
+// feature names, keeping bad samples for the caller with keepBad.
+func (src *source) readOptions(keepBad bool) samples.Options {
+	return samples.Options{KeepBad: keepBad, Features: src.modelFeatures}
 }
 
 // prepare selects the input and the output, and reads the names the model's
@@ -337,7 +347,7 @@ func (src *source) prepare(c *explainConfig) error {
 		}
 		return fmt.Errorf("explain needs a model with one runtime input, this one has %d (%s)", len(feeds), strings.Join(names, ", "))
 	}
-	src.spec = specOf(feeds[0])
+	src.spec = samples.SpecOf(feeds[0])
 	src.output = c.output
 	if src.output == "" {
 		if len(src.model.Graph.Outputs) == 0 {
@@ -357,6 +367,7 @@ func (src *source) prepare(c *explainConfig) error {
 	}
 	md := src.model.Metadata
 	src.features = metadataList(md, "feature_names")
+	src.modelFeatures = src.features
 	src.units = metadataList(md, "feature_units")
 	src.classes = metadataList(md, "class_names", "classes")
 	return nil
@@ -377,13 +388,13 @@ func (src *source) finish(c *explainConfig) error {
 	if err != nil {
 		return err
 	}
-	if got, want := src.samples.SampleSize(), product(src.head.InputShape()); got != want {
+	if got, want := src.samples.SampleSize(), samples.Product(src.head.InputShape()); got != want {
 		return fmt.Errorf("input %s: expected samples of shape %s (%d values), got %s (%d values)",
-			src.samples.Path, shapeString(src.head.InputShape()), want, shapeString(src.samples.SampleShape()), got)
+			src.samples.Name, samples.ShapeString(src.head.InputShape()), want, samples.ShapeString(src.samples.SampleShape()), got)
 	}
 	if c.reference != "" {
 		var err error
-		src.reference, err = readInput(c.reference, src.spec)
+		src.reference, err = samples.ReadFile(c.reference, src.spec, src.readOptions(false))
 		if err != nil {
 			return fmt.Errorf("-reference: %w", err)
 		}
@@ -421,7 +432,7 @@ func explainAll(ctx context.Context, c *explainConfig, src *source, tick func(do
 		e := explanation{Index: i, Value: x}
 		if err := src.samples.Bad[i]; err != nil {
 			e.err = err
-		} else if err := finiteSample(x); err != nil {
+		} else if err := samples.CheckFinite(x); err != nil {
 			e.err = err
 		} else if e.Result, e.err = c.attribute(ctx, src, x, plan); e.err == nil {
 			if b := plan.options.Baselines; len(b) == 1 {
@@ -440,35 +451,20 @@ func explainAll(ctx context.Context, c *explainConfig, src *source, tick func(do
 // baselineOutputs evaluates the model at the baseline of sample x; nil when
 // that fails (the attribution itself has succeeded, so the sample is kept).
 func baselineOutputs(ctx context.Context, src *source, x []float64, b gradattr.Baseline) []float64 {
-	var out []float64
-	_ = safeCall(func() error {
-		xb, err := b.Build(x, src.samples.SampleShape())
-		if err != nil {
-			return err
-		}
-		out, err = src.head.Forward(ctx, xb, 1)
-		return err
-	})
+	xb, err := b.Build(x, src.samples.SampleShape())
+	if err != nil {
+		return nil
+	}
+	out, err := src.head.Forward(ctx, xb, 1)
+	if err != nil {
+		return nil
+	}
 	return out
 }
 
-func finiteSample(x []float64) error {
-	for j, v := range x {
-		if math.IsNaN(v) || math.IsInf(v, 0) {
-			return fmt.Errorf("index %d: %v %w", j, v, errNonFinite)
-		}
-	}
-	return nil
-}
-
 // attribute runs the selected method on one sample.
-func (c *explainConfig) attribute(ctx context.Context, src *source, x []float64, plan *methodPlan) (res *gradattr.Result, err error) {
-	err = safeCall(func() error {
-		var e error
-		res, e = gradattr.Attribute(ctx, src.head, x, c.target, plan.options)
-		return e
-	})
-	return res, err
+func (c *explainConfig) attribute(ctx context.Context, src *source, x []float64, plan *methodPlan) (*gradattr.Result, error) {
+	return gradattr.Attribute(ctx, src.head, x, c.target, plan.options)
 }
 
 // progress reports finished samples of a long batch on w when w is a

@@ -104,11 +104,7 @@ func inspectModel(m *onnxlite.Model) (*inspectReport, error) {
 	for k, v := range m.Metadata {
 		rep.Metadata[k] = v
 	}
-	uns, err := unsupportedOps(m)
-	if err != nil {
-		return nil, err
-	}
-	if uns != nil {
+	if uns := unsupportedOps(m); uns != nil {
 		rep.Unsupported = uns
 	}
 	return rep, nil

@@ -12,7 +12,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"github.com/apportion/apportion/internal/onnxtestdata"
-	"github.com/apportion/apportion/onnxlite"
+	"github.com/apportion/apportion/internal/testfiles"
 )
 
 // cli runs the program in-process.
@@ -42,16 +42,7 @@ func setFiles(t *testing.T, dir string) (inputs, outputs []string) {
 }
 
 // readPBTensor reads a TensorProto of the backend data as float64.
-func readPBTensor(t *testing.T, path string) (shape []int, data []float64) {
-	t.Helper()
-	raw, err := os.ReadFile(path)
-	require.NoError(t, err)
-	tt, err := onnxlite.DecodeTensor(bytes.NewReader(raw), onnxlite.DecodeOptions{})
-	require.NoError(t, err)
-	data, err = tt.Float64s()
-	require.NoError(t, err)
-	return tt.Shape(), data
-}
+var readPBTensor = testfiles.ReadPB
 
 // assertClose checks got against want with the tolerances the ONNX backend
 // node tests use (rtol 1e-3, atol 1e-7: onnx/backend/test/case/node/__init__.py

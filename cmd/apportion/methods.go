@@ -9,6 +9,7 @@ import (
 	"strings"
 
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/samples"
 )
 
 // checkParams refuses a method parameter given for a method that does not
@@ -62,11 +63,11 @@ func (c *explainConfig) baselineSpec(src *source) ([]gradattr.Baseline, error) {
 		rows := make([][]float64, set.Samples)
 		for i := range rows {
 			rows[i] = set.Sample(i)
-			if err := finiteSample(rows[i]); err != nil {
-				return nil, fmt.Errorf("-baseline mean: sample %d of %s: %w", i, set.Path, err)
+			if err := samples.CheckFinite(rows[i]); err != nil {
+				return nil, fmt.Errorf("-baseline mean: sample %d of %s: %w", i, set.Name, err)
 			}
 		}
-		return []gradattr.Baseline{{Kind: gradattr.BaselineMean, Reference: rows, Source: set.Path}}, nil
+		return []gradattr.Baseline{{Kind: gradattr.BaselineMean, Reference: rows, Source: set.Name}}, nil
 	case c.baseline == "blur" || strings.HasPrefix(c.baseline, "blur:"):
 		sigma := defaultBlurSigma
 		if s, ok := strings.CutPrefix(c.baseline, "blur:"); ok {
@@ -77,11 +78,11 @@ func (c *explainConfig) baselineSpec(src *source) ([]gradattr.Baseline, error) {
 			sigma = v
 		}
 		if len(src.samples.SampleShape()) < 2 {
-			return nil, &usageErr{fmt.Sprintf("-baseline blur needs samples with at least two axes (height, width), got shape %s", shapeString(src.samples.SampleShape()))}
+			return nil, &usageErr{fmt.Sprintf("-baseline blur needs samples with at least two axes (height, width), got shape %s", samples.ShapeString(src.samples.SampleShape()))}
 		}
 		return []gradattr.Baseline{{Kind: gradattr.BaselineBlur, Sigma: sigma}}, nil
 	}
-	b, err := readInput(c.baseline, src.spec)
+	b, err := samples.ReadFile(c.baseline, src.spec, src.readOptions(false))
 	if err != nil {
 		return nil, fmt.Errorf("-baseline: %w", err)
 	}
@@ -102,7 +103,7 @@ func referenceRows(src *source) ([][]float64, error) {
 		return nil, nil
 	}
 	if set.SampleSize() != src.samples.SampleSize() {
-		return nil, fmt.Errorf("-reference %s: expected samples of %d values, got %d", set.Path, src.samples.SampleSize(), set.SampleSize())
+		return nil, fmt.Errorf("-reference %s: expected samples of %d values, got %d", set.Name, src.samples.SampleSize(), set.SampleSize())
 	}
 	rows := make([][]float64, set.Samples)
 	for i := range rows {

@@ -2,39 +2,11 @@ package main
 
 import (
 	"encoding/json"
-	"strconv"
 	"strings"
 
 	"github.com/apportion/apportion/onnxlite"
+	"github.com/apportion/apportion/samples"
 )
-
-// typeNames are the element type names the CLI prints (Go and NumPy style).
-var typeNames = map[onnxlite.DataType]string{
-	onnxlite.Undefined:  "undefined",
-	onnxlite.Float:      "float32",
-	onnxlite.Uint8:      "uint8",
-	onnxlite.Int8:       "int8",
-	onnxlite.Uint16:     "uint16",
-	onnxlite.Int16:      "int16",
-	onnxlite.Int32:      "int32",
-	onnxlite.Int64:      "int64",
-	onnxlite.String:     "string",
-	onnxlite.Bool:       "bool",
-	onnxlite.Float16:    "float16",
-	onnxlite.Double:     "float64",
-	onnxlite.Uint32:     "uint32",
-	onnxlite.Uint64:     "uint64",
-	onnxlite.Complex64:  "complex64",
-	onnxlite.Complex128: "complex128",
-	onnxlite.BFloat16:   "bfloat16",
-}
-
-func typeName(t onnxlite.DataType) string {
-	if n, ok := typeNames[t]; ok {
-		return n
-	}
-	return "type" + strconv.Itoa(int(t))
-}
 
 func jsonString(v any) string {
 	b, _ := json.Marshal(v)
@@ -49,13 +21,13 @@ func valueTypeName(t *onnxlite.Type) string {
 	}
 	switch t.Kind {
 	case onnxlite.KindTensor:
-		return typeName(t.Elem)
+		return samples.TypeName(t.Elem)
 	case onnxlite.KindSparseTensor:
-		return "sparse " + typeName(t.Elem)
+		return "sparse " + samples.TypeName(t.Elem)
 	case onnxlite.KindSequence:
 		return "sequence of " + valueTypeName(t.Inner)
 	case onnxlite.KindMap:
-		return "map from " + typeName(t.Key) + " to " + valueTypeName(t.Inner)
+		return "map from " + samples.TypeName(t.Key) + " to " + valueTypeName(t.Inner)
 	case onnxlite.KindOptional:
 		return "optional " + valueTypeName(t.Inner)
 	}
@@ -81,26 +53,6 @@ func feedInputs(g *onnxlite.Graph) []*onnxlite.ValueInfo {
 		}
 	}
 	return out
-}
-
-func specOf(vi *onnxlite.ValueInfo) inputSpec {
-	s := inputSpec{Name: vi.Name}
-	if vi.Type == nil {
-		return s
-	}
-	s.Elem = vi.Type.Elem
-	if vi.Type.HasShape {
-		s.HasShape = true
-		s.Shape = make([]int, len(vi.Type.Shape))
-		for i, d := range vi.Type.Shape {
-			if d.HasValue {
-				s.Shape[i] = int(d.Value)
-			} else {
-				s.Shape[i] = -1
-			}
-		}
-	}
-	return s
 }
 
 // shapeJSON is a declared shape for JSON: numbers for fixed dimensions,
@@ -169,9 +121,8 @@ func isFloatType(t onnxlite.DataType) bool {
 
 // openShapes gives the per-sample shape of b for the compiler when the
 // declared shape of spec leaves a non-batch dimension open; nil otherwise.
-func openShapes(spec inputSpec, b *batch) map[string][]int {
-	ps, ok := spec.perSample()
-	if ok && fullyKnown(ps) {
+func openShapes(spec samples.Spec, b *samples.Batch) map[string][]int {
+	if _, ok := spec.FixedSample(); ok {
 		return nil
 	}
 	return map[string][]int{spec.Name: append([]int(nil), b.SampleShape()...)}

@@ -460,7 +460,7 @@ func renderPNG(w io.Writer, c *explainConfig, rep *explainReport, e explanation)
 		if c.baseline == "mean" {
 			base = "mean of the input"
 			if src.reference != nil {
-				base = "mean of " + filepath.Base(src.reference.Path)
+				base = "mean of " + filepath.Base(src.reference.Name)
 			}
 		}
 		method += " (baseline " + base + ")"

@@ -12,6 +12,7 @@ import (
 	"text/tabwriter"
 
 	"github.com/apportion/apportion/onnxlite"
+	"github.com/apportion/apportion/samples"
 )
 
 // multiFlag collects a repeated string flag.
@@ -97,14 +98,18 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	}
 	tensors := make([]*onnxlite.Tensor, len(feeds))
 	open := map[string][]int{}
-	samples := 0
+	count := 0
+	var opt samples.Options
+	if len(feeds) == 1 {
+		opt.Features = metadataList(m.Metadata, "feature_names")
+	}
 	for i, vi := range feeds {
-		spec := specOf(vi)
-		b, err := readInput(inputs[i], spec)
+		spec := samples.SpecOf(vi)
+		b, err := samples.ReadFile(inputs[i], spec, opt)
 		if err != nil {
 			return failure(stderr, "predict", err)
 		}
-		t, err := b.toTensor(spec)
+		t, err := b.ToTensor(spec)
 		if err != nil {
 			return failure(stderr, "predict", err)
 		}
@@ -113,7 +118,7 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			open[name] = shape
 		}
 		if i == 0 {
-			samples = b.Samples
+			count = b.Samples
 		}
 	}
 	net, err := compileModel(m, open, runtime.GOMAXPROCS(0))
@@ -134,7 +139,7 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		}
 		return exitOK
 	}
-	writePredictTable(stdout, res, samples, metadataList(m.Metadata, "class_names", "classes"))
+	writePredictTable(stdout, res, count, metadataList(m.Metadata, "class_names", "classes"))
 	return exitOK
 }
 

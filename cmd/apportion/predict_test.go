@@ -4,90 +4,24 @@ import (
 	"encoding/json"
 	"os"
 	"path/filepath"
-	"reflect"
 	"strconv"
 	"strings"
 	"testing"
 
-	"codeberg.org/sbinet/npyio/npy"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+
+	"github.com/apportion/apportion/internal/testfiles"
 )
 
-// The writers below re-encode backend input tensors (float32 values) in the
-// other input formats. Each float32 is written as the shortest decimal that
-// reads back to the same float32, so no value changes.
-
-func f32(v float64) string { return strconv.FormatFloat(v, 'g', -1, 32) }
-
-// writeCSV writes one row per sample (first axis), with an optional header.
-func writeCSV(t *testing.T, path string, shape []int, data []float64, header []string) {
-	t.Helper()
-	var b strings.Builder
-	if header != nil {
-		b.WriteString(strings.Join(header, ",") + "\n")
-	}
-	per := len(data) / shape[0]
-	for i := 0; i < shape[0]; i++ {
-		row := make([]string, per)
-		for j := range row {
-			row[j] = f32(data[i*per+j])
-		}
-		b.WriteString(strings.Join(row, ",") + "\n")
-	}
-	require.NoError(t, os.WriteFile(path, []byte(b.String()), 0o644))
-}
-
-// writeJSON writes data as nested arrays of the given shape.
-func writeJSON(t *testing.T, path string, shape []int, data []float64) {
-	t.Helper()
-	var b strings.Builder
-	var rec func(d []float64, s []int)
-	rec = func(d []float64, s []int) {
-		if len(s) == 0 {
-			b.WriteString(f32(d[0]))
-			return
-		}
-		b.WriteByte('[')
-		step := len(d) / s[0]
-		for i := 0; i < s[0]; i++ {
-			if i > 0 {
-				b.WriteByte(',')
-			}
-			rec(d[i*step:(i+1)*step], s[1:])
-		}
-		b.WriteByte(']')
-	}
-	rec(data, shape)
-	require.NoError(t, os.WriteFile(path, []byte(b.String()), 0o644))
-}
-
-// writeNPY writes data as a float32 .npy array of the given shape.
-func writeNPY(t *testing.T, path string, shape []int, data []float64) {
-	t.Helper()
-	var build func(d []float64, s []int) reflect.Value
-	build = func(d []float64, s []int) reflect.Value {
-		if len(s) == 1 {
-			v := make([]float32, s[0])
-			for i := range v {
-				v[i] = float32(d[i])
-			}
-			return reflect.ValueOf(v)
-		}
-		step := len(d) / s[0]
-		first := build(d[:step], s[1:])
-		out := reflect.MakeSlice(reflect.SliceOf(first.Type()), s[0], s[0])
-		out.Index(0).Set(first)
-		for i := 1; i < s[0]; i++ {
-			out.Index(i).Set(build(d[i*step:(i+1)*step], s[1:]))
-		}
-		return out
-	}
-	f, err := os.Create(path)
-	require.NoError(t, err)
-	defer f.Close()
-	require.NoError(t, npy.Write(f, build(data, shape).Interface()))
-}
+// The writers re-encode backend input tensors (float32 values) in the
+// other input formats without changing a value (internal/testfiles).
+var (
+	f32       = testfiles.F32
+	writeCSV  = testfiles.WriteCSV
+	writeJSON = testfiles.WriteJSON
+	writeNPY  = testfiles.WriteNPY
+)
 
 // formats writes the backend input in each format and returns the paths.
 func formats(t *testing.T, pb, stem string) map[string]string {
@@ -271,4 +205,18 @@ func TestPredictExplainRefuseModels(t *testing.T) {
 		assert.Empty(t, out, cmd)
 		assert.Contains(t, errs, "cut.onnx", cmd)
 	}
+}
+
+func TestPredictFlatJSON(t *testing.T) {
+	// Three flat samples of 20 values bind as x [3,4,5]; the outputs match
+	// output_0.pb of the ONNX backend test data 1.12.0.
+	dir := caseDir(t, "node/test_relu")
+	in, outs := setFiles(t, dir)
+	_, data := readPBTensor(t, in[0])
+	_, want := readPBTensor(t, outs[0])
+	p := filepath.Join(t.TempDir(), "rows.json")
+	writeJSON(t, p, []int{3, 20}, data)
+	doc := predictJSON(t, "-model", filepath.Join(dir, "model.onnx"), "-input", p)
+	assert.Equal(t, []int{3, 4, 5}, doc.Outputs[0].Shape)
+	assertClose(t, want, values(doc.Outputs[0].Data), "relu via flat JSON rows")
 }

@@ -15,6 +15,7 @@ import (
 	"codeberg.org/sbinet/npyio/npy"
 
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/samples"
 )
 
 // maxTableFeatures is the number of features the table shows per sample; a
@@ -371,7 +372,7 @@ func nested(data []float64, shape []int) any {
 		t = reflect.SliceOf(t)
 	}
 	s := reflect.MakeSlice(reflect.SliceOf(t), shape[0], shape[0])
-	step := product(shape[1:])
+	step := samples.Product(shape[1:])
 	for i := 0; i < shape[0]; i++ {
 		s.Index(i).Set(reflect.ValueOf(nested(data[i*step:(i+1)*step], shape[1:])))
 	}

@@ -9,6 +9,7 @@ import (
 
 	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/nn"
+	"github.com/apportion/apportion/samples"
 )
 
 // defaultCoalesce is the default of serve -coalesce. Measured on the pumps
@@ -75,7 +76,7 @@ type stackedCall struct {
 
 func newBatcher(m gradattr.Model, runners, maxPoints int, window time.Duration, busy func() int, metrics *serveMetrics) *batcher {
 	b := &batcher{
-		m: m, size: product(m.InputShape()), nout: m.OutputSize(), max: maxPoints,
+		m: m, size: samples.Product(m.InputShape()), nout: m.OutputSize(), max: maxPoints,
 		calls: make(chan *stackedCall, 1024), quit: make(chan struct{}), metrics: metrics,
 		window: window, busy: busy, runners: runners,
 	}

@@ -20,6 +20,7 @@ import (
 
 	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/onnxlite"
+	"github.com/apportion/apportion/samples"
 )
 
 // server is the state shared by the HTTP handlers: one decoded and compiled
@@ -71,9 +72,8 @@ func newServer(cfg serveConfig, log *slog.Logger) (*server, error) {
 	if err := src.prepare(&explainConfig{}); err != nil {
 		return nil, err
 	}
-	ps, ok := src.spec.perSample()
-	if !ok || !fullyKnown(ps) {
-		return nil, fmt.Errorf("serving needs a model whose input %q has a fixed shape per sample, got %s", src.spec.Name, shapeString(src.spec.Shape))
+	if _, ok := src.spec.FixedSample(); !ok {
+		return nil, fmt.Errorf("serving needs a model whose input %q has a fixed shape per sample, got %s", src.spec.Name, samples.ShapeString(src.spec.Shape))
 	}
 	if src.net, err = compileModel(src.model, nil, 1); err != nil {
 		return nil, err
@@ -114,7 +114,7 @@ func (s *server) loadReference() error {
 	var raw []byte
 	switch {
 	case s.cfg.reference != "":
-		b, err := readInput(s.cfg.reference, s.base.spec)
+		b, err := samples.ReadFile(s.cfg.reference, s.base.spec, s.base.readOptions(false))
 		if err != nil {
 			return fmt.Errorf("-reference: %w", err)
 		}
@@ -128,7 +128,7 @@ func (s *server) loadReference() error {
 	if raw == nil {
 		return nil
 	}
-	b, err := readInputBytes(name, raw, s.base.spec, false)
+	b, err := samples.Read(bytes.NewReader(raw), name, s.base.spec, s.base.readOptions(false))
 	if err != nil {
 		return fmt.Errorf("demo reference: %w", err)
 	}
@@ -137,7 +137,7 @@ func (s *server) loadReference() error {
 }
 
 func (s *server) checkReference() error {
-	want := product(s.headShape())
+	want := samples.Product(s.headShape())
 	if got := s.base.reference.SampleSize(); got != want {
 		return fmt.Errorf("reference %s: expected samples of %d values, got %d", s.refName, want, got)
 	}
@@ -145,7 +145,7 @@ func (s *server) checkReference() error {
 }
 
 func (s *server) headShape() []int {
-	ps, _ := s.base.spec.perSample()
+	ps, _ := s.base.spec.PerSample()
 	return ps
 }
 
@@ -385,22 +385,22 @@ func decodeRequest(raw []byte, v any) *httpError {
 
 // samplesOf reads the "inputs" field: one sample or an array of samples of
 // the model's input shape, finite numbers only.
-func (s *server) samplesOf(inputs json.RawMessage) (*batch, *httpError) {
+func (s *server) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError) {
 	if len(bytes.TrimSpace(inputs)) == 0 || string(bytes.TrimSpace(inputs)) == "null" {
-		return nil, badRequest(`"inputs" is required: an array of samples of shape %s`, shapeString(s.headShape()))
+		return nil, badRequest(`"inputs" is required: an array of samples of shape %s`, samples.ShapeString(s.headShape()))
 	}
-	b, err := readJSON(inputs, s.base.spec)
+	b, err := samples.ReadJSON(bytes.NewReader(inputs), s.base.spec)
 	if err == nil {
-		err = checkFinite(b)
+		err = b.CheckFinite()
 	}
 	if err != nil {
 		return nil, badRequest(`"inputs" (for %q): %v`, s.base.spec.Name, err)
 	}
-	if got, want := b.SampleSize(), product(s.headShape()); got != want {
+	if got, want := b.SampleSize(), samples.Product(s.headShape()); got != want {
 		return nil, badRequest(`"inputs" (for %q): expected samples of shape %s (%d values), got %s (%d values)`,
-			s.base.spec.Name, shapeString(s.headShape()), want, shapeString(b.SampleShape()), got)
+			s.base.spec.Name, samples.ShapeString(s.headShape()), want, samples.ShapeString(b.SampleShape()), got)
 	}
-	b.Path = "request"
+	b.Name = "request"
 	return b, nil
 }
 
@@ -473,7 +473,7 @@ func (s *server) predict(w http.ResponseWriter, r *http.Request, rl *requestLog)
 		s.finish(w, herr)
 		return
 	}
-	t, err := b.toTensor(s.base.spec)
+	t, err := b.ToTensor(s.base.spec)
 	if err != nil {
 		s.finish(w, badRequest("%v", err))
 		return
@@ -703,7 +703,7 @@ func (s *server) judge(ctx context.Context, c *explainConfig, rep *explainReport
 			if ctx.Err() != nil {
 				return s.ctxError(ctx)
 			}
-			if errors.Is(e.err, gradattr.ErrInput) || errors.Is(e.err, gradattr.ErrOptions) || errors.Is(e.err, errNonFinite) {
+			if errors.Is(e.err, gradattr.ErrInput) || errors.Is(e.err, gradattr.ErrOptions) || errors.Is(e.err, samples.ErrNonFinite) {
 				failedBad++
 				if bad == nil {
 					bad = fmt.Errorf("sample %d: %w", e.Index, e.err)

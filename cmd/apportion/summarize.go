@@ -12,7 +12,6 @@ import (
 	"io"
 	"math"
 	"os"
-	"path/filepath"
 	"runtime"
 	"slices"
 	"sort"
@@ -27,6 +26,7 @@ import (
 
 	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/internal/demo"
+	"github.com/apportion/apportion/samples"
 )
 
 // byPredicted is the -by value that groups rows by the predicted class.
@@ -53,9 +53,6 @@ type summarizeConfig struct {
 	merge     bool
 	files     []string // the summaries to merge
 
-	// sampleShape is the per-sample shape of a .npy, .json or .pb input;
-	// nil for CSV rows.
-	sampleShape []int
 }
 
 // registerMethodFlags defines the flags that choose and tune the
@@ -252,15 +249,6 @@ func (sc *summarizeConfig) validate() string {
 	return ""
 }
 
-// summaryRow is one data row: its key offset, where it came from, its
-// values and its group, or why it could not be read.
-type summaryRow struct {
-	where string // "line 7" or "sample 3"
-	x     []float64
-	group string
-	err   error
-}
-
 // summarize explains every row and returns the summary, the messages of
 // the skipped rows in row order, and the model's name.
 func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gradattr.Summary, []string, string, error) {
@@ -269,25 +257,26 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 	if err != nil {
 		return nil, nil, "", err
 	}
-	rows, names, err := sc.readRows(src)
+	table, err := sc.readRows(src)
 	if err != nil {
 		return nil, nil, "", err
 	}
+	rows, names := table.Rows, table.Columns
 	var first []float64
 	for _, r := range rows {
-		if r.err == nil {
-			first = r.x
+		if r.Err == nil {
+			first = r.Values
 			break
 		}
 	}
 	if first == nil {
-		return nil, nil, "", fmt.Errorf("input %s: no row could be read (first problem: %s: %v)", sc.inputName(), rows[0].where, rows[0].err)
+		return nil, nil, "", fmt.Errorf("input %s: no row could be read (first problem: %s: %v)", sc.inputName(), rows[0].Where, rows[0].Err)
 	}
 	shape := []int{1, len(first)}
-	if sc.sampleShape != nil {
-		shape = append([]int{1}, sc.sampleShape...)
+	if table.SampleShape != nil {
+		shape = append([]int{1}, table.SampleShape...)
 	}
-	src.samples = &batch{Path: sc.inputName(), Shape: shape, Data: first, Samples: 1, Features: names}
+	src.samples = &samples.Batch{Name: sc.inputName(), Shape: shape, Data: first, Samples: 1, Features: names}
 	if src.features == nil {
 		src.features = names
 	}
@@ -295,7 +284,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 		return nil, nil, "", err
 	}
 	if src.reference == nil && dm != nil && c.reference == "" && c.needsReference() {
-		if src.reference, err = readInputBytes(dm.ReferenceFile, dm.Reference, src.spec, false); err != nil {
+		if src.reference, err = samples.Read(bytes.NewReader(dm.Reference), dm.ReferenceFile, src.spec, src.readOptions(false)); err != nil {
 			return nil, nil, "", fmt.Errorf("demo reference set: %w", err)
 		}
 	}
@@ -324,14 +313,14 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 
 	msgs := make([]string, len(rows))
 	fail := func(i int, group string, err error) {
-		msgs[i] = fmt.Sprintf("%s: %v", rows[i].where, err)
+		msgs[i] = fmt.Sprintf("%s: %v", rows[i].Where, err)
 		// A key is taken once; the rows are distinct, so Skip cannot fail.
 		_ = s.Skip(sc.firstRow+uint64(i), group, err)
 	}
 	todo := 0
 	for i, r := range rows {
-		if r.err != nil {
-			fail(i, r.group, r.err)
+		if r.Err != nil {
+			fail(i, r.Group, r.Err)
 		} else {
 			todo++
 		}
@@ -339,7 +328,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 	tick, done := summaryProgress(stderr, todo)
 	take := func(i int, res *gradattr.Result, err error) {
 		tick()
-		group := rows[i].group
+		group := rows[i].Group
 		if err == nil && sc.by == byPredicted {
 			group = className(src.classes, gradattr.Top(res.Outputs))
 		}
@@ -355,13 +344,13 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 	// set before goroutines share it.
 	var rest []int
 	for i, r := range rows {
-		if r.err == nil {
+		if r.Err == nil {
 			rest = append(rest, i)
 		}
 	}
 	if len(rest) > 0 {
 		i := rest[0]
-		res, err := c.attribute(ctx, src, rows[i].x, plan)
+		res, err := c.attribute(ctx, src, rows[i].Values, plan)
 		take(i, res, err)
 		rest = rest[1:]
 	}
@@ -378,7 +367,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 		go func() {
 			defer wg.Done()
 			for i := range jobs {
-				res, err := c.attribute(ctx, src, rows[i].x, plan)
+				res, err := c.attribute(ctx, src, rows[i].Values, plan)
 				results <- outcome{i, res, err}
 			}
 		}()
@@ -498,198 +487,35 @@ func (sc *summarizeConfig) settings(src *source, dm *demo.Scenario, o gradattr.O
 }
 
 // readRows reads the rows to explain and names the model's features.
-func (sc *summarizeConfig) readRows(src *source) ([]summaryRow, []string, error) {
+func (sc *summarizeConfig) readRows(src *source) (*samples.Table, error) {
 	c := &sc.ex
 	name := sc.inputName()
 	var raw []byte
 	var err error
 	if c.inputPath == "" {
 		raw, err = demo.File(demoSummaryFile)
-	} else {
-		raw, err = readLimited(c.inputPath)
+	} else if raw, err = samples.ReadLimited(c.inputPath); err != nil {
+		err = fmt.Errorf("input %s: %w", c.inputPath, err)
 	}
 	if err != nil {
-		return nil, nil, err
+		return nil, err
 	}
-	k := 0
-	if ps, ok := src.spec.perSample(); ok && fullyKnown(ps) {
-		k = product(ps)
+	opt := samples.TableOptions{Features: src.modelFeatures}
+	if ps, ok := src.spec.FixedSample(); ok {
+		opt.Size = samples.Product(ps)
 	}
-	if strings.ToLower(filepath.Ext(name)) != ".csv" {
-		if sc.by != "" && sc.by != byPredicted {
-			return nil, nil, &usageErr{fmt.Sprintf("-by %s names a column, and %s is not a CSV file; use -by predicted", sc.by, name)}
-		}
-		b, err := readInputBytes(name, raw, src.spec, true)
-		if err != nil {
-			return nil, nil, err
-		}
-		sc.sampleShape = b.SampleShape()
-		rows := make([]summaryRow, b.Samples)
-		for i := range rows {
-			rows[i] = summaryRow{where: "sample " + strconv.Itoa(i), x: b.Sample(i)}
-			if err := finiteSample(rows[i].x); err != nil {
-				rows[i].err = err
-			}
-		}
-		return rows, nil, nil
+	if sc.by != byPredicted {
+		opt.Group = sc.by
 	}
-	return readFeatureCSV(name, raw, src.features, k, sc.by)
-}
-
-// readLimited reads a file of at most maxInputBytes.
-func readLimited(path string) ([]byte, error) {
-	st, err := os.Stat(path)
-	if err != nil {
-		return nil, fmt.Errorf("input: %w", err)
+	if f, _ := samples.FormatOf(name); f != samples.CSV && opt.Group != "" {
+		return nil, &usageErr{fmt.Sprintf("-by %s names a column, and %s is not a CSV file; use -by predicted", sc.by, name)}
 	}
-	if st.Size() > maxInputBytes {
-		return nil, fmt.Errorf("input %s: file is %d bytes, more than the %d bytes an input may have", path, st.Size(), maxInputBytes)
+	t, err := samples.ReadTable(bytes.NewReader(raw), name, src.spec, opt)
+	var ce *samples.ColumnError
+	if errors.As(err, &ce) && ce.Column == sc.by {
+		return nil, &usageErr{fmt.Sprintf("-by %s: no such column in %s (columns: %s)", sc.by, name, strings.Join(ce.Columns, ", "))}
 	}
-	raw, err := os.ReadFile(path)
-	if err != nil {
-		return nil, fmt.Errorf("input: %w", err)
-	}
-	return raw, nil
-}
-
-// readFeatureCSV reads a CSV file with a header whose columns include the
-// model's k features (named by features when it has k names, else the first
-// k numeric columns; k = 0 when the model leaves it open: every numeric
-// column) and, unless by is "" or "predicted", the grouping column. Rows
-// that cannot be read are returned with their error.
-func readFeatureCSV(name string, raw []byte, features []string, k int, by string) ([]summaryRow, []string, error) {
-	r := csv.NewReader(bytes.NewReader(raw))
-	r.FieldsPerRecord = -1
-	r.TrimLeadingSpace = true
-	header, err := r.Read()
-	if err != nil {
-		return nil, nil, fmt.Errorf("input %s: reading the header: %w", name, err)
-	}
-	for i := range header {
-		header[i] = strings.TrimSpace(header[i])
-	}
-	numeric := true
-	for _, h := range header {
-		if _, err := strconv.ParseFloat(h, 64); err != nil {
-			numeric = false
-		}
-	}
-	if numeric {
-		return nil, nil, fmt.Errorf("input %s: expected a header row naming the columns, got a row of numbers", name)
-	}
-	var records [][]string
-	var lines []int
-	for {
-		rec, err := r.Read()
-		if err == io.EOF {
-			break
-		}
-		var pe *csv.ParseError
-		if err != nil && !(errors.As(err, &pe) && errors.Is(err, csv.ErrFieldCount)) {
-			return nil, nil, fmt.Errorf("input %s: %w", name, err)
-		}
-		line, _ := r.FieldPos(0)
-		records = append(records, rec)
-		lines = append(lines, line)
-	}
-	if len(records) == 0 {
-		return nil, nil, fmt.Errorf("input %s: expected at least one data row after the header, got none", name)
-	}
-	index := map[string]int{}
-	for i, h := range header {
-		if _, dup := index[h]; !dup {
-			index[h] = i
-		}
-	}
-	groupCol := -1
-	if by != "" && by != byPredicted {
-		var ok bool
-		if groupCol, ok = index[by]; !ok {
-			return nil, nil, &usageErr{fmt.Sprintf("-by %s: no such column in %s (columns: %s)", by, name, strings.Join(header, ", "))}
-		}
-	}
-	var cols []int
-	if k > 0 && len(features) == k {
-		for _, f := range features {
-			j, ok := index[f]
-			if !ok {
-				return nil, nil, fmt.Errorf("input %s: the model's feature %q (metadata feature_names) is not a column (columns: %s)", name, f, strings.Join(header, ", "))
-			}
-			cols = append(cols, j)
-		}
-	} else {
-		for j := range header {
-			if j != groupCol && numericColumn(records, j) {
-				cols = append(cols, j)
-			}
-		}
-		if k > 0 {
-			if len(cols) < k {
-				return nil, nil, fmt.Errorf("input %s: the model takes %d features, the file has %d numeric columns (%s)", name, k, len(cols), strings.Join(pick(header, cols), ", "))
-			}
-			cols = cols[:k]
-		}
-	}
-	names := pick(header, cols)
-	rows := make([]summaryRow, len(records))
-	for i, rec := range records {
-		row := summaryRow{where: "line " + strconv.Itoa(lines[i])}
-		if len(rec) != len(header) {
-			row.err = fmt.Errorf("expected %d fields, as in the header, got %d", len(header), len(rec))
-			rows[i] = row
-			continue
-		}
-		if groupCol >= 0 {
-			row.group = strings.TrimSpace(rec[groupCol])
-			if row.group == "" {
-				row.group = "(empty)"
-			}
-		}
-		x := make([]float64, len(cols))
-		for n, j := range cols {
-			f := strings.TrimSpace(rec[j])
-			v, err := strconv.ParseFloat(f, 64)
-			switch {
-			case err != nil:
-				row.err = fmt.Errorf("column %s: %q is not a number", header[j], f)
-			case math.IsNaN(v) || math.IsInf(v, 0):
-				row.err = fmt.Errorf("column %s: %s %w", header[j], f, errNonFinite)
-			}
-			if row.err != nil {
-				break
-			}
-			x[n] = v
-		}
-		if row.err == nil {
-			row.x = x
-		}
-		rows[i] = row
-	}
-	return rows, names, nil
-}
-
-// numericColumn reports whether most of the first rows hold a number in
-// column j.
-func numericColumn(records [][]string, j int) bool {
-	n, yes := 0, 0
-	for _, rec := range records[:min(len(records), 20)] {
-		if j >= len(rec) {
-			continue
-		}
-		n++
-		if _, err := strconv.ParseFloat(strings.TrimSpace(rec[j]), 64); err == nil {
-			yes++
-		}
-	}
-	return n > 0 && 2*yes > n
-}
-
-func pick(s []string, idx []int) []string {
-	out := make([]string, len(idx))
-	for i, j := range idx {
-		out[i] = s[j]
-	}
-	return out
+	return t, err
 }
 
 // runMerge merges the summary files and writes the result.
@@ -700,7 +526,7 @@ func (sc *summarizeConfig) runMerge(stdout, stderr io.Writer) int {
 		if err != nil {
 			return failure(stderr, "summarize", err)
 		}
-		s, err := gradattr.DecodeSummary(io.LimitReader(f, maxInputBytes))
+		s, err := gradattr.DecodeSummary(io.LimitReader(f, samples.MaxBytes))
 		f.Close()
 		if err != nil {
 			return failure(stderr, "summarize", fmt.Errorf("-merge %s: %w", path, err))

@@ -1,0 +1,103 @@
+// Package testfiles writes and reads the sample files the tests feed the
+// readers and the command line: backend tensors re-encoded as CSV, JSON and
+// .npy, for tests only. Each float32 value is written as the shortest
+// decimal that reads back to the same float32, so no value changes.
+package testfiles
+
+import (
+	"bytes"
+	"os"
+	"reflect"
+	"strconv"
+	"strings"
+	"testing"
+
+	"codeberg.org/sbinet/npyio/npy"
+	"github.com/stretchr/testify/require"
+
+	"github.com/apportion/apportion/onnxlite"
+)
+
+// F32 is v as the shortest decimal of its float32 rounding.
+func F32(v float64) string { return strconv.FormatFloat(v, 'g', -1, 32) }
+
+// WriteCSV writes one row per sample (first axis), with an optional header.
+func WriteCSV(t testing.TB, path string, shape []int, data []float64, header []string) {
+	t.Helper()
+	var b strings.Builder
+	if header != nil {
+		b.WriteString(strings.Join(header, ",") + "\n")
+	}
+	per := len(data) / shape[0]
+	for i := 0; i < shape[0]; i++ {
+		row := make([]string, per)
+		for j := range row {
+			row[j] = F32(data[i*per+j])
+		}
+		b.WriteString(strings.Join(row, ",") + "\n")
+	}
+	require.NoError(t, os.WriteFile(path, []byte(b.String()), 0o644))
+}
+
+// WriteJSON writes data as nested arrays of the given shape.
+func WriteJSON(t testing.TB, path string, shape []int, data []float64) {
+	t.Helper()
+	var b strings.Builder
+	var rec func(d []float64, s []int)
+	rec = func(d []float64, s []int) {
+		if len(s) == 0 {
+			b.WriteString(F32(d[0]))
+			return
+		}
+		b.WriteByte('[')
+		step := len(d) / s[0]
+		for i := 0; i < s[0]; i++ {
+			if i > 0 {
+				b.WriteByte(',')
+			}
+			rec(d[i*step:(i+1)*step], s[1:])
+		}
+		b.WriteByte(']')
+	}
+	rec(data, shape)
+	require.NoError(t, os.WriteFile(path, []byte(b.String()), 0o644))
+}
+
+// WriteNPY writes data as a float32 .npy array of the given shape.
+func WriteNPY(t testing.TB, path string, shape []int, data []float64) {
+	t.Helper()
+	var build func(d []float64, s []int) reflect.Value
+	build = func(d []float64, s []int) reflect.Value {
+		if len(s) == 1 {
+			v := make([]float32, s[0])
+			for i := range v {
+				v[i] = float32(d[i])
+			}
+			return reflect.ValueOf(v)
+		}
+		step := len(d) / s[0]
+		first := build(d[:step], s[1:])
+		out := reflect.MakeSlice(reflect.SliceOf(first.Type()), s[0], s[0])
+		out.Index(0).Set(first)
+		for i := 1; i < s[0]; i++ {
+			out.Index(i).Set(build(d[i*step:(i+1)*step], s[1:]))
+		}
+		return out
+	}
+	f, err := os.Create(path)
+	require.NoError(t, err)
+	defer f.Close()
+	require.NoError(t, npy.Write(f, build(data, shape).Interface()))
+}
+
+// ReadPB reads a TensorProto file (of the backend data) as float64.
+func ReadPB(t testing.TB, path string) (shape []int, data []float64) {
+	t.Helper()
+	raw, err := os.ReadFile(path)
+	require.NoError(t, err)
+	tt, err := onnxlite.DecodeTensor(bytes.NewReader(raw), onnxlite.DecodeOptions{})
+	require.NoError(t, err)
+	data, err = tt.Float64s()
+	require.NoError(t, err)
+	return tt.Shape(), data
+}
