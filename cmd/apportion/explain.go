@@ -16,6 +16,7 @@ import (
 	"strings"
 
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/modelmeta"
 	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
@@ -261,12 +262,10 @@ type source struct {
 	output    string
 	samples   *samples.Batch
 	reference *samples.Batch // nil without -reference
-	features  []string       // labels: the model's feature names, else the input's CSV header
-	units     []string
-	// modelFeatures are the model's feature names, which CSV files are
-	// read by.
-	modelFeatures []string
-	classes       []string
+	// meta holds the model's names; features, the feature names labels
+	// use: the model's, else the input's CSV header.
+	meta     modelmeta.Meta
+	features []string
 }
 
 func (c *explainConfig) load() (*source, error) {
@@ -330,10 +329,17 @@ func (c *explainConfig) load() (*source, error) {
 	return src, nil
 }
 
+// labels names the features of one sample (see modelmeta.Meta.Labels).
+func (src *source) labels() []string {
+	m := src.meta
+	m.Features = src.features
+	return m.Labels(src.samples.SampleShape())
+}
+
 // readOptions are the options samples are read with: by the model's
 // feature names, keeping bad samples for the caller with keepBad.
 func (src *source) readOptions(keepBad bool) samples.Options {
-	return samples.Options{KeepBad: keepBad, Features: src.modelFeatures}
+	return samples.Options{KeepBad: keepBad, Features: src.meta.Features}
 }
 
 // prepare selects the input and the output, and reads the names the model's
@@ -365,11 +371,8 @@ func (src *source) prepare(c *explainConfig) error {
 			return &usageErr{fmt.Sprintf("-output %q is not an output of the model (outputs: %s)", src.output, strings.Join(names, ", "))}
 		}
 	}
-	md := src.model.Metadata
-	src.features = metadataList(md, "feature_names")
-	src.modelFeatures = src.features
-	src.units = metadataList(md, "feature_units")
-	src.classes = metadataList(md, "class_names", "classes")
+	src.meta = modelmeta.Read(src.model)
+	src.features = src.meta.Features
 	return nil
 }
 

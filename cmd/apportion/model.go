@@ -2,7 +2,6 @@ package main
 
 import (
 	"encoding/json"
-	"strings"
 
 	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
@@ -74,41 +73,6 @@ func shapeJSON(t *onnxlite.Type) []any {
 		}
 	}
 	return out
-}
-
-// metadataList reads a list-valued metadata entry: a JSON array of strings
-// or a comma-separated list. The first of keys that is present wins.
-func metadataList(md map[string]string, keys ...string) []string {
-	for _, k := range keys {
-		v, ok := md[k]
-		if !ok {
-			continue
-		}
-		v = strings.TrimSpace(v)
-		if strings.HasPrefix(v, "[") {
-			var list []any
-			if err := json.Unmarshal([]byte(v), &list); err == nil {
-				out := make([]string, len(list))
-				for i, e := range list {
-					if s, ok := e.(string); ok {
-						out[i] = s
-					} else {
-						out[i] = strings.Trim(jsonString(e), `"`)
-					}
-				}
-				return out
-			}
-		}
-		if v == "" {
-			return nil
-		}
-		parts := strings.Split(v, ",")
-		for i := range parts {
-			parts[i] = strings.TrimSpace(parts[i])
-		}
-		return parts
-	}
-	return nil
 }
 
 func isFloatType(t onnxlite.DataType) bool {

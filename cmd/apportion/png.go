@@ -451,8 +451,8 @@ func renderPNG(w io.Writer, c *explainConfig, rep *explainReport, e explanation)
 	src := rep.src
 	r := e.Result
 	target := strconv.Itoa(r.Target)
-	if r.Target >= 0 && r.Target < len(src.classes) {
-		target += " (" + src.classes[r.Target] + ")"
+	if r.Target >= 0 && r.Target < len(src.meta.Classes) {
+		target += " (" + src.meta.Classes[r.Target] + ")"
 	}
 	method := c.method.Title()
 	if c.method.Reads(gradattr.ParamBaseline) {
@@ -496,7 +496,7 @@ func renderPNG(w io.Writer, c *explainConfig, rep *explainReport, e explanation)
 		}
 		return pngHeatmap(w, title, img, h, wd, attr, notes...)
 	}
-	labels := featureLabels(src)
+	labels := src.labels()
 	order := make([]int, len(r.Attributions))
 	for i := range order {
 		order[i] = i

@@ -11,6 +11,7 @@ import (
 	"strings"
 	"text/tabwriter"
 
+	"github.com/apportion/apportion/modelmeta"
 	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
@@ -99,9 +100,10 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	tensors := make([]*onnxlite.Tensor, len(feeds))
 	open := map[string][]int{}
 	count := 0
+	meta := modelmeta.Read(m)
 	var opt samples.Options
 	if len(feeds) == 1 {
-		opt.Features = metadataList(m.Metadata, "feature_names")
+		opt.Features = meta.Features
 	}
 	for i, vi := range feeds {
 		spec := samples.SpecOf(vi)
@@ -139,7 +141,7 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		}
 		return exitOK
 	}
-	writePredictTable(stdout, res, count, metadataList(m.Metadata, "class_names", "classes"))
+	writePredictTable(stdout, res, count, meta.Classes)
 	return exitOK
 }
 

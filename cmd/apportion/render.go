@@ -38,44 +38,6 @@ func renderExplanation(w io.Writer, c *explainConfig, rep *explainReport) error 
 	}
 }
 
-// featureLabels names the features of one sample: the model's
-// "feature_names" metadata (with "feature_units"), else the CSV header, else
-// the index (a multi-index for samples of rank 2 or more).
-func featureLabels(src *source) []string {
-	shape := src.samples.SampleShape()
-	n := src.samples.SampleSize()
-	labels := make([]string, n)
-	if len(src.features) == n {
-		for i, f := range src.features {
-			labels[i] = f
-			if len(src.units) == n && src.units[i] != "" {
-				labels[i] += " (" + src.units[i] + ")"
-			}
-		}
-		return labels
-	}
-	idx := make([]int, len(shape))
-	for i := range labels {
-		if len(shape) <= 1 {
-			labels[i] = strconv.Itoa(i)
-		} else {
-			parts := make([]string, len(idx))
-			for d, v := range idx {
-				parts[d] = strconv.Itoa(v)
-			}
-			labels[i] = "[" + strings.Join(parts, ",") + "]"
-			for d := len(shape) - 1; d >= 0; d-- {
-				idx[d]++
-				if idx[d] < shape[d] {
-					break
-				}
-				idx[d] = 0
-			}
-		}
-	}
-	return labels
-}
-
 // bar draws v/scale as a signed bar: a left half that fills leftwards for
 // negative values and a right half that fills rightwards for positive ones,
 // in eighths of a cell on the right and halves on the left (Unicode has
@@ -106,7 +68,7 @@ func bar(v, scale float64) string {
 
 func writeExplainTable(w io.Writer, c *explainConfig, rep *explainReport) error {
 	src := rep.src
-	labels := featureLabels(src)
+	labels := src.labels()
 	fmt.Fprintf(w, "model %s  output %s  method %s\n", src.modelName, src.output, c.method)
 	for _, e := range rep.Explanations {
 		fmt.Fprintln(w)
@@ -116,8 +78,8 @@ func writeExplainTable(w io.Writer, c *explainConfig, rep *explainReport) error 
 		}
 		r := e.Result
 		target := strconv.Itoa(r.Target)
-		if r.Target >= 0 && r.Target < len(src.classes) {
-			target += " (" + src.classes[r.Target] + ")"
+		if r.Target >= 0 && r.Target < len(src.meta.Classes) {
+			target += " (" + src.meta.Classes[r.Target] + ")"
 		}
 		fmt.Fprintf(w, "sample %d: target %s  output %s", e.Index, target, fmtNum(r.Output))
 		if r.Completeness != nil {
@@ -309,7 +271,7 @@ func nonNil(v []float64) []float64 {
 }
 
 func writeExplainCSV(w io.Writer, rep *explainReport) error {
-	labels := featureLabels(rep.src)
+	labels := rep.src.labels()
 	cw := csv.NewWriter(w)
 	if err := cw.Write([]string{"sample", "feature", "value", "attribution"}); err != nil {
 		return err

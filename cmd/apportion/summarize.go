@@ -301,7 +301,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 		features = names
 	}
 	if len(features) != len(first) {
-		features = featureLabels(src) // indices, or multi-indices for images
+		features = src.meta.Labels(src.samples.SampleShape()) // indices, or multi-indices for images
 	}
 	s, err := gradattr.NewSummary(gradattr.SummaryOptions{
 		Features: features, Model: src.sha256, Method: c.method, Settings: settings,
@@ -330,7 +330,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 		tick()
 		group := rows[i].Group
 		if err == nil && sc.by == byPredicted {
-			group = className(src.classes, gradattr.Top(res.Outputs))
+			group = src.meta.Class(gradattr.Top(res.Outputs))
 		}
 		if err == nil {
 			err = s.Add(sc.firstRow+uint64(i), group, res.Attributions)
@@ -391,14 +391,6 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 		}
 	}
 	return s, skipped, src.modelName, nil
-}
-
-// className names output k by the model's class names, else by its index.
-func className(classes []string, k int) string {
-	if k >= 0 && k < len(classes) && classes[k] != "" {
-		return classes[k]
-	}
-	return strconv.Itoa(k)
 }
 
 // summaryProgress shows a progress bar on stderr when it is a terminal.
@@ -500,7 +492,7 @@ func (sc *summarizeConfig) readRows(src *source) (*samples.Table, error) {
 	if err != nil {
 		return nil, err
 	}
-	opt := samples.TableOptions{Features: src.modelFeatures}
+	opt := samples.TableOptions{Features: src.meta.Features}
 	if ps, ok := src.spec.FixedSample(); ok {
 		opt.Size = samples.Product(ps)
 	}

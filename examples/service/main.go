@@ -41,6 +41,7 @@ import (
 
 	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/internal/demo"
+	"github.com/apportion/apportion/modelmeta"
 	"github.com/apportion/apportion/nn"
 	"github.com/apportion/apportion/onnxlite"
 )
@@ -134,9 +135,10 @@ func newService(model, reference []byte) (*service, error) {
 	for _, d := range head.InputShape() {
 		size *= d
 	}
-	s.features = metadataList(m.Metadata["feature_names"], size)
-	s.units = metadataList(m.Metadata["feature_units"], size)
-	s.classes = metadataList(m.Metadata["class_names"], head.OutputSize())
+	meta := modelmeta.Read(m)
+	s.features = fit(meta.Features, size)
+	s.units = fit(meta.Units, size)
+	s.classes = fit(meta.Classes, head.OutputSize())
 	for i := range s.features {
 		if s.features[i] == "" {
 			s.features[i] = "x[" + strconv.Itoa(i) + "]"
@@ -152,11 +154,10 @@ func newService(model, reference []byte) (*service, error) {
 	return s, nil
 }
 
-// metadataList reads a JSON array of n strings; missing entries are "".
-func metadataList(v string, n int) []string {
+// fit returns n names: list when it has n, else n empty names.
+func fit(list []string, n int) []string {
 	out := make([]string, n)
-	var list []string
-	if json.Unmarshal([]byte(v), &list) == nil && len(list) == n {
+	if len(list) == n {
 		copy(out, list)
 	}
 	return out

@@ -2,9 +2,9 @@ package main
 
 import (
 	"bytes"
-	"encoding/json"
 	"fmt"
 
+	"github.com/apportion/apportion/modelmeta"
 	"github.com/apportion/apportion/onnxlite"
 )
 
@@ -75,12 +75,6 @@ func batchTensor(name string, dims ...int64) *onnxlite.ValueInfo {
 	}}
 }
 
-// jsonList renders names as a JSON list.
-func jsonList(names []string) string {
-	b, _ := json.Marshal(names) // a []string always marshals
-	return string(b)
-}
-
 // newModel wraps a graph with the demo models' header fields.
 func newModel(g *onnxlite.Graph, meta map[string]string, doc string) *onnxlite.Model {
 	return &onnxlite.Model{
@@ -121,13 +115,11 @@ func pumpsModel(m *mlp) (*onnxlite.Model, error) {
 	for i, f := range pumpFeatures {
 		names[i], units[i] = f.Name, f.Unit
 	}
-	return newModel(b.g, map[string]string{
-		"feature_names": jsonList(names),
-		"feature_units": jsonList(units),
-		"class_names":   jsonList(pumpClasses),
-		"scenario":      "pumps",
-		"description":   pumpsDescription,
-	}, pumpsDescription), nil
+	model := newModel(b.g, map[string]string{"scenario": "pumps", "description": pumpsDescription}, pumpsDescription)
+	if err := modelmeta.Write(model, modelmeta.Meta{Features: names, Units: units, Classes: pumpClasses}); err != nil {
+		return nil, fmt.Errorf("pumps model: %w", err)
+	}
+	return model, nil
 }
 
 // weldsModel is the ONNX graph of m: patch → Conv → Relu → MaxPool → Conv →
@@ -163,11 +155,11 @@ func weldsModel(m *cnn) (*onnxlite.Model, error) {
 	if b.err != nil {
 		return nil, fmt.Errorf("welds model: %w", b.err)
 	}
-	return newModel(b.g, map[string]string{
-		"class_names": jsonList(weldClasses),
-		"scenario":    "welds",
-		"description": weldsDescription,
-	}, weldsDescription), nil
+	model := newModel(b.g, map[string]string{"scenario": "welds", "description": weldsDescription}, weldsDescription)
+	if err := modelmeta.Write(model, modelmeta.Meta{Classes: weldClasses}); err != nil {
+		return nil, fmt.Errorf("welds model: %w", err)
+	}
+	return model, nil
 }
 
 // encodeModel writes m as ONNX bytes and checks that they decode and
