@@ -3,21 +3,16 @@ package main
 import (
 	"bytes"
 	"context"
-	"crypto/sha256"
-	"encoding/hex"
 	"errors"
 	"flag"
 	"fmt"
 	"io"
-	"math"
 	"os"
 	"runtime"
-	"strconv"
 	"strings"
 
+	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
-	"github.com/apportion/apportion/modelmeta"
-	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
 
@@ -42,41 +37,73 @@ type demoFiles struct {
 // the empty name is the default scenario.
 var demoScenario func(name string) (*demoFiles, error)
 
-// The defaults of the settings that are not a method's parameters.
-const (
-	defaultMethod   = gradattr.MethodIntegratedGradients
-	defaultTarget   = "top"
-	defaultBaseline = "zero"
-	defaultSteps    = "auto"
-)
+// methodFlagNames are the flags that set explain.Settings, in the order
+// they are applied.
+var methodFlagNames = []explain.Field{
+	explain.FieldMethod, explain.FieldTarget, explain.FieldOutput, explain.FieldLogits, explain.FieldBaseline,
+	explain.FieldReference, explain.FieldSteps, explain.FieldRule, explain.FieldTolerance, explain.FieldSamples,
+	explain.FieldNoise, explain.FieldSeed,
+}
 
-// explainConfig holds explain's flags, validated.
+// explainConfig holds explain's flags; settings are the method flags read
+// by the library.
 type explainConfig struct {
-	modelPath  string
-	inputPath  string
-	output     string
-	methodText string
-	method     gradattr.Method // parsed from methodText
-	target     int             // gradattr.TargetTop for "top"
-	targetText string
-	logits     bool
-	baseline   string
-	reference  string
-	steps      int // 0: automatic
-	stepsText  string
-	rule       gradattr.Rule
-	ruleText   string
-	tolerance  float64
-	samples    int
-	noise      float64
-	seed       uint64
-	groups     string
-	format     string
-	out        string
-	demo       string
+	modelPath string
+	inputPath string
+	groups    string
+	format    string
+	out       string
+	demo      string
+	seed      uint64 // -seed, which summarize also uses for the bootstrap
 
-	toleranceSet bool            // -tolerance was given
-	set          map[string]bool // the flags given
+	settings explain.Settings
+	set      map[string]bool // the flags given
+}
+
+// registerMethodFlags defines the flags that choose and tune the
+// attribution method, with the library's defaults; baselineHelp and
+// referenceHelp describe -baseline and -reference, whose defaults differ
+// between commands. The values are read back through the flag set (see
+// readSettings).
+func registerMethodFlags(fs *flag.FlagSet, baselineHelp, referenceHelp string) {
+	var aliases []string
+	for _, m := range gradattr.Methods() {
+		aliases = append(aliases, m.Alias())
+	}
+	ig, eg, sg := gradattr.MethodIntegratedGradients.Defaults(), gradattr.MethodExpectedGradients.Defaults(), gradattr.MethodSmoothGrad.Defaults()
+	fs.String("output", "", "`name` of the model output to explain (default the first)")
+	fs.String("method", explain.DefaultMethod.Alias(), "attribution method: "+strings.Join(aliases, ", ")+" (or the canonical names "+gradattr.MethodNames()+")")
+	fs.String("target", explain.DefaultTargetText, "output element to explain: an index `N`, or top for the largest")
+	fs.Bool("logits", false, "explain the input of the Softmax, LogSoftmax or Sigmoid that produces the output (the logits)")
+	fs.String("baseline", explain.DefaultBaselineText, baselineHelp)
+	fs.String("reference", "", referenceHelp)
+	fs.String("steps", explain.DefaultStepsText, "integration points for ig: a number `N`, or auto to refine until -tolerance")
+	fs.String("rule", "", "quadrature `rule` for ig: trapezoid, left, right, midpoint or gauss-legendre (default trapezoid)")
+	fs.Float64("tolerance", ig.Tolerance, fmt.Sprintf("relative completeness gap `R` to meet; expected-grad, complete only in expectation, uses %v unless given", eg.Tolerance))
+	fs.Int("samples", sg.Samples, "noisy copies (smoothgrad) or baseline draws (expected-grad) `N`")
+	fs.Float64("noise", sg.Noise, "smoothgrad noise level `R`: σ / (max x − min x)")
+}
+
+// readSettings sets the library's settings from the method flags given
+// (the others keep the library's defaults) and checks them together. The
+// seed is set by the caller.
+func (c *explainConfig) readSettings(fs *flag.FlagSet) error {
+	c.set = map[string]bool{}
+	fs.Visit(func(f *flag.Flag) { c.set[f.Name] = true })
+	c.settings = explain.Defaults()
+	for _, f := range methodFlagNames {
+		if f == explain.FieldSeed || !c.set[string(f)] {
+			continue
+		}
+		v := fs.Lookup(string(f)).Value.String()
+		if f == explain.FieldRule && v == "" {
+			continue
+		}
+		if err := c.settings.Set(f, v); err != nil {
+			return err
+		}
+	}
+	return nil
 }
 
 func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
@@ -96,7 +123,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	var c explainConfig
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded demo model chosen by -demo)")
 	fs.StringVar(&c.inputPath, "input", "", "samples to explain: a .csv, .json, .npy or .pb `file` (required with -model; default: the demo's own sample)")
-	registerMethodFlags(fs, &c,
+	registerMethodFlags(fs,
 		"baseline `kind` for ig: zero, mean (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), or the path of a file of baseline samples (results averaged over them)",
 		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the random methods")
@@ -107,30 +134,32 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if code, done := parseFlags(fs, args, stdout); done {
 		return code
 	}
-	c.set = map[string]bool{}
-	fs.Visit(func(f *flag.Flag) { c.set[f.Name] = true })
-	c.toleranceSet = c.set["tolerance"]
+	if err := c.readSettings(fs); err != nil {
+		return fail(stderr, "explain", err)
+	}
+	if c.set["seed"] {
+		if err := c.settings.Set(explain.FieldSeed, fs.Lookup("seed").Value.String()); err != nil {
+			return fail(stderr, "explain", err)
+		}
+	}
 	if msg := c.validate(); msg != "" {
 		return usageError(stderr, "explain", "%s", msg)
 	}
-
-	src, err := c.load()
-	if err != nil {
-		if errors.Is(err, errUsage) {
-			return usageError(stderr, "explain", "%v", err)
-		}
-		return failure(stderr, "explain", err)
+	if err := c.settings.Check(); err != nil {
+		return fail(stderr, "explain", err)
 	}
-	rep, err := explainAll(context.Background(), &c, src, progress(stderr))
+
+	ex, batch, err := c.load(runtime.GOMAXPROCS(0))
 	if err != nil {
-		if errors.Is(err, errUsage) {
-			return usageError(stderr, "explain", "%v", err)
-		}
-		return failure(stderr, "explain", err)
+		return fail(stderr, "explain", err)
+	}
+	rep, err := ex.Explain(context.Background(), batch, progress(stderr))
+	if err != nil {
+		return fail(stderr, "explain", err)
 	}
 
 	if c.format == "png" {
-		if _, err := writeExplainPNG(&c, rep); err != nil {
+		if _, err := writeExplainPNG(c.out, rep); err != nil {
 			return failure(stderr, "explain", err)
 		}
 		return reportFailed(stderr, rep)
@@ -140,7 +169,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if c.out != "" {
 		w = &buf
 	}
-	if err := renderExplanation(w, &c, rep); err != nil {
+	if err := renderExplanation(w, c.format, rep); err != nil {
 		return failure(stderr, "explain", err)
 	}
 	if c.out != "" {
@@ -153,16 +182,14 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 
 // reportFailed prints the samples that could not be explained and returns
 // the exit status.
-func reportFailed(stderr io.Writer, rep *explainReport) int {
-	failed := 0
+func reportFailed(stderr io.Writer, rep *explain.Report) int {
 	for _, e := range rep.Explanations {
-		if e.err != nil {
-			failed++
-			fmt.Fprintf(stderr, "apportion explain: sample %d: %v\n", e.Index, e.err)
+		if e.Err != nil {
+			fmt.Fprintf(stderr, "apportion explain: sample %d: %v\n", e.Index, e.Err)
 		}
 	}
-	if failed > 0 {
-		fmt.Fprintf(stderr, "apportion explain: %d of %d samples failed\n", failed, len(rep.Explanations))
+	if n := rep.Failed(); n > 0 {
+		fmt.Fprintf(stderr, "apportion explain: %d of %d samples failed\n", n, len(rep.Explanations))
 		return exitFail
 	}
 	return exitOK
@@ -176,14 +203,28 @@ type usageErr struct{ msg string }
 func (e *usageErr) Error() string        { return e.msg }
 func (e *usageErr) Is(target error) bool { return target == errUsage }
 
-// validate checks the flag values that need no file; it returns a message
-// for a usage error, or "".
-func (c *explainConfig) validate() string {
-	m, err := gradattr.ParseMethod(c.methodText)
-	if err != nil {
-		return fmt.Sprintf("-method must be one of %s, got %q", gradattr.MethodNames(), c.methodText)
+// flagName names a setting as a flag: -steps.
+func flagName(f explain.Field) string { return "-" + string(f) }
+
+// fail reports err: a usage error (a flag given wrong) with status 2, any
+// other failure with status 1. Settings errors name the flags.
+func fail(stderr io.Writer, cmd string, err error) int {
+	var fe *explain.FieldError
+	if errors.As(err, &fe) {
+		if fe.Input {
+			return failure(stderr, cmd, errors.New(fe.Wording(flagName)))
+		}
+		return usageError(stderr, cmd, "%s", fe.Wording(flagName))
 	}
-	c.method = m
+	if errors.Is(err, errUsage) {
+		return usageError(stderr, cmd, "%v", err)
+	}
+	return failure(stderr, cmd, err)
+}
+
+// validate checks the flags that need no file; it returns a message for a
+// usage error, or "".
+func (c *explainConfig) validate() string {
 	switch c.format {
 	case "table", "json", "csv", "npy":
 	case "png":
@@ -193,50 +234,11 @@ func (c *explainConfig) validate() string {
 	default:
 		return fmt.Sprintf("-format must be table, json, csv, npy or png, got %q", c.format)
 	}
-	if c.targetText == "top" {
-		c.target = gradattr.TargetTop
-	} else {
-		n, err := strconv.Atoi(c.targetText)
-		if err != nil || n < 0 {
-			return fmt.Sprintf("-target must be a non-negative index or top, got %q", c.targetText)
-		}
-		c.target = n
-	}
-	if c.stepsText == "auto" {
-		c.steps = 0
-	} else {
-		n, err := strconv.Atoi(c.stepsText)
-		if err != nil || n < 1 || n > gradattr.MaxPointsLimit {
-			return fmt.Sprintf("-steps must be auto or a number from 1 to %d, got %q", gradattr.MaxPointsLimit, c.stepsText)
-		}
-		c.steps = n
-	}
-	if c.ruleText != "" {
-		r, err := gradattr.ParseRule(c.ruleText)
-		if err != nil {
-			return fmt.Sprintf("-rule: %v", err)
-		}
-		c.rule = r
-	}
-	if math.IsNaN(c.tolerance) || c.tolerance <= 0 || c.tolerance >= 1 {
-		return fmt.Sprintf("-tolerance must be in (0, 1), got %v", c.tolerance)
-	}
-	if c.samples < 1 || c.samples > gradattr.MaxSamplesLimit {
-		return fmt.Sprintf("-samples must be from 1 to %d, got %d", gradattr.MaxSamplesLimit, c.samples)
-	}
-	if math.IsNaN(c.noise) || math.IsInf(c.noise, 0) || c.noise <= 0 {
-		return fmt.Sprintf("-noise must be a positive number, got %v", c.noise)
-	}
-	if msg := c.checkParams(); msg != "" {
-		return msg
-	}
-	if c.reference != "" && c.method == gradattr.MethodIntegratedGradients && c.baseline != "mean" {
-		return "-reference with -method integrated-gradients is the set -baseline mean averages; give -baseline mean too"
-	}
 	// An embedded demo scenario supplies its own reference set.
 	demoReference := c.modelPath == "" && demoScenario != nil && (c.demo != "" || demoModel == nil)
-	if c.method == gradattr.MethodExpectedGradients && c.reference == "" && !demoReference {
-		return "-method expected-gradients needs -reference, a file of reference samples"
+	s := &c.settings
+	if s.NeedsReference() && !s.Method.Reads(gradattr.ParamBaseline) && s.Reference == nil && !demoReference {
+		return fmt.Sprintf("-method %s needs -reference, a file of reference samples", s.Method)
 	}
 	if c.demo != "" && c.modelPath != "" {
 		return "-demo selects an embedded model and sample; it cannot be combined with -model"
@@ -251,223 +253,117 @@ func (c *explainConfig) validate() string {
 	return ""
 }
 
-// source is the model and the samples explain works on.
-type source struct {
-	modelName string // path, or "demo:"+name
-	sha256    string
-	model     *onnxlite.Model
-	net       *network
-	spec      samples.Spec
-	head      gradattr.Model
-	output    string
-	samples   *samples.Batch
-	reference *samples.Batch // nil without -reference
-	// meta holds the model's names; features, the feature names labels
-	// use: the model's, else the input's CSV header.
-	meta     modelmeta.Meta
-	features []string
+// loadedModel is a model read from -model or an embedded demo, with the
+// demo's files when it is one.
+type loadedModel struct {
+	model *explain.Model
+	demo  *demoFiles // nil for -model
 }
 
-func (c *explainConfig) load() (*source, error) {
-	src := &source{}
-	var raw, demoSample []byte
-	var demoName string
+// loadModel reads -model, or the embedded demo scenario called demoName.
+func loadModel(modelPath, demoName string) (*loadedModel, error) {
+	if modelPath != "" {
+		m, err := explain.ReadModel(modelPath)
+		return &loadedModel{model: m}, err
+	}
 	var dm *demoFiles
-	var err error
-	if c.modelPath == "" {
-		switch {
-		case c.demo == "" && demoModel != nil:
-			dm = &demoFiles{}
-			dm.model, dm.sample, dm.sampleFile = demoModel()
-		case demoScenario == nil:
-			return nil, &usageErr{"-demo: this build has no embedded demo"}
-		default:
-			if dm, err = demoScenario(c.demo); err != nil {
-				return nil, &usageErr{err.Error()}
-			}
-		}
-		raw, demoSample, demoName = dm.model, dm.sample, dm.sampleFile
-		src.modelName = "demo:" + dm.modelFile
-		if dm.modelFile == "" {
-			src.modelName = "demo:" + demoName
-		}
-		src.model, err = decodeModelBytes(raw, src.modelName, "")
-	} else {
-		src.modelName = c.modelPath
-		raw, src.model, err = readModelFile(c.modelPath)
-	}
-	if err != nil {
-		return nil, err
-	}
-	sum := sha256.Sum256(raw)
-	src.sha256 = hex.EncodeToString(sum[:])
-	if err := src.prepare(c); err != nil {
-		return nil, err
-	}
-	if c.inputPath == "" {
-		src.samples, err = samples.Read(bytes.NewReader(demoSample), demoName, src.spec, src.readOptions(true))
-	} else {
-		src.samples, err = samples.ReadFile(c.inputPath, src.spec, src.readOptions(true))
-	}
-	if err != nil {
-		return nil, err
-	}
-	if err := src.finish(c); err != nil {
-		return nil, err
-	}
-	if c.reference == "" && c.needsReference() && dm != nil {
-		if dm.reference == nil {
-			if c.method == gradattr.MethodExpectedGradients {
-				return nil, &usageErr{"-method expected-gradients needs -reference, a file of reference samples"}
-			}
-		} else if src.reference, err = samples.Read(bytes.NewReader(dm.reference), dm.referenceFile, src.spec, src.readOptions(false)); err != nil {
-			return nil, fmt.Errorf("demo reference set: %w", err)
-		} else {
-			c.reference = "demo:" + dm.referenceFile // recorded in the JSON settings
-		}
-	}
-	return src, nil
-}
-
-// labels names the features of one sample (see modelmeta.Meta.Labels).
-func (src *source) labels() []string {
-	m := src.meta
-	m.Features = src.features
-	return m.Labels(src.samples.SampleShape())
-}
-
-// readOptions are the options samples are read with: by the model's
-// feature names, keeping bad samples for the caller with keepBad.
-func (src *source) readOptions(keepBad bool) samples.Options {
-	return samples.Options{KeepBad: keepBad, Features: src.meta.Features}
-}
-
-// prepare selects the input and the output, and reads the names the model's
-// metadata gives to features and classes.
-func (src *source) prepare(c *explainConfig) error {
-	feeds := feedInputs(src.model.Graph)
-	if len(feeds) != 1 {
-		names := make([]string, len(feeds))
-		for i, f := range feeds {
-			names[i] = f.Name
-		}
-		return fmt.Errorf("explain needs a model with one runtime input, this one has %d (%s)", len(feeds), strings.Join(names, ", "))
-	}
-	src.spec = samples.SpecOf(feeds[0])
-	src.output = c.output
-	if src.output == "" {
-		if len(src.model.Graph.Outputs) == 0 {
-			return fmt.Errorf("the model has no outputs")
-		}
-		src.output = src.model.Graph.Outputs[0].Name
-	} else {
-		found := false
-		var names []string
-		for _, o := range src.model.Graph.Outputs {
-			found = found || o.Name == src.output
-			names = append(names, o.Name)
-		}
-		if !found {
-			return &usageErr{fmt.Sprintf("-output %q is not an output of the model (outputs: %s)", src.output, strings.Join(names, ", "))}
-		}
-	}
-	src.meta = modelmeta.Read(src.model)
-	src.features = src.meta.Features
-	return nil
-}
-
-// finish compiles the model for the samples read, selects the explained
-// output and reads the reference set.
-func (src *source) finish(c *explainConfig) error {
-	if src.features == nil {
-		src.features = src.samples.Features
-	}
-	var err error
-	src.net, err = compileModel(src.model, openShapes(src.spec, src.samples), runtime.GOMAXPROCS(0))
-	if err != nil {
-		return err
-	}
-	src.head, err = src.net.head(src.output, c.logits)
-	if err != nil {
-		return err
-	}
-	if got, want := src.samples.SampleSize(), samples.Product(src.head.InputShape()); got != want {
-		return fmt.Errorf("input %s: expected samples of shape %s (%d values), got %s (%d values)",
-			src.samples.Name, samples.ShapeString(src.head.InputShape()), want, samples.ShapeString(src.samples.SampleShape()), got)
-	}
-	if c.reference != "" {
+	switch {
+	case demoName == "" && demoModel != nil:
+		dm = &demoFiles{}
+		dm.model, dm.sample, dm.sampleFile = demoModel()
+		dm.modelFile = dm.sampleFile
+	case demoScenario == nil:
+		return nil, &usageErr{"-demo: this build has no embedded demo"}
+	default:
 		var err error
-		src.reference, err = samples.ReadFile(c.reference, src.spec, src.readOptions(false))
-		if err != nil {
-			return fmt.Errorf("-reference: %w", err)
+		if dm, err = demoScenario(demoName); err != nil {
+			return nil, &usageErr{err.Error()}
 		}
+	}
+	m, err := explain.Decode(dm.model, "demo:"+dm.modelFile, explain.DecodeOptions{})
+	return &loadedModel{model: m, demo: dm}, err
+}
+
+// readDatasets reads the files the settings name (-reference, -baseline
+// FILE) as samples of spec, and the demo's reference set when the settings
+// need one and name none.
+func (l *loadedModel) readDatasets(s *explain.Settings, spec samples.Spec) error {
+	for _, d := range s.Datasets() {
+		flag := explain.FieldReference
+		if d != s.Reference {
+			flag = explain.FieldBaseline
+		}
+		raw, err := samples.ReadLimited(d.Name)
+		if err != nil {
+			return fmt.Errorf("%s: input %s (for %q): %w", flagName(flag), d.Name, spec.Name, err)
+		}
+		b, err := samples.Read(bytes.NewReader(raw), d.Name, spec, l.model.ReadOptions(false))
+		if err != nil {
+			return fmt.Errorf("%s: %w", flagName(flag), err)
+		}
+		*d = *explain.NewDataset(d.Name, raw, b)
+	}
+	if s.Reference == nil && s.NeedsReference() && l.demo != nil && l.demo.reference != nil {
+		name := l.demo.referenceFile
+		b, err := samples.Read(bytes.NewReader(l.demo.reference), name, spec, l.model.ReadOptions(false))
+		if err != nil {
+			return fmt.Errorf("demo reference set: %w", err)
+		}
+		s.Reference = explain.NewDataset("demo:"+name, l.demo.reference, b)
 	}
 	return nil
 }
 
-// explanation is the result for one sample.
-type explanation struct {
-	Index     int
-	Value     []float64 // the sample
-	Result    *gradattr.Result
-	Baselines []float64 // model outputs at the baseline, when there is one
-	Grouped   *gradattr.GroupedResult
-	err       error
-}
-
-// explainReport is what renderers print.
-type explainReport struct {
-	src          *source
-	options      gradattr.Options
-	groups       []gradattr.Group
-	Explanations []explanation
-}
-
-func explainAll(ctx context.Context, c *explainConfig, src *source, tick func(done, total int)) (*explainReport, error) {
-	rep := &explainReport{src: src}
-	plan, err := c.plan(src)
+// load reads the model and the samples, compiles the model with parallel
+// goroutines per call, and returns the explainer and the samples.
+func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, error) {
+	l, err := loadModel(c.modelPath, c.demo)
 	if err != nil {
-		return nil, err
+		return nil, nil, err
 	}
-	rep.groups, rep.options = plan.groups, plan.options
-	for i := 0; i < src.samples.Samples; i++ {
-		x := src.samples.Sample(i)
-		e := explanation{Index: i, Value: x}
-		if err := src.samples.Bad[i]; err != nil {
-			e.err = err
-		} else if err := samples.CheckFinite(x); err != nil {
-			e.err = err
-		} else if e.Result, e.err = c.attribute(ctx, src, x, plan); e.err == nil {
-			if b := plan.options.Baselines; len(b) == 1 {
-				e.Baselines = baselineOutputs(ctx, src, x, b[0])
-			}
-			if plan.groups != nil {
-				e.Grouped, e.err = e.Result.Grouped(plan.groups)
-			}
+	m := l.model
+	spec, err := m.Input()
+	if err != nil {
+		return nil, nil, err
+	}
+	if _, err := m.Output(c.settings.Output); err != nil {
+		return nil, nil, err
+	}
+	var batch *samples.Batch
+	if c.inputPath == "" {
+		batch, err = samples.Read(bytes.NewReader(l.demo.sample), l.demo.sampleFile, spec, m.ReadOptions(true))
+	} else {
+		batch, err = samples.ReadFile(c.inputPath, spec, m.ReadOptions(true))
+	}
+	if err != nil {
+		return nil, nil, err
+	}
+	if err := m.Compile(explain.CompileOptions{InputShapes: explain.OpenShapes(spec, batch), Parallel: parallel}); err != nil {
+		return nil, nil, err
+	}
+	if err := l.readDatasets(&c.settings, spec); err != nil {
+		return nil, nil, err
+	}
+	if c.settings.Method == gradattr.MethodExpectedGradients && c.settings.Reference == nil {
+		return nil, nil, &usageErr{fmt.Sprintf("-method %s needs -reference, a file of reference samples", c.settings.Method)}
+	}
+	if c.groups != "" {
+		f, err := os.Open(c.groups)
+		if err != nil {
+			return nil, nil, fmt.Errorf("-groups: %w", err)
 		}
-		rep.Explanations = append(rep.Explanations, e)
-		tick(i+1, src.samples.Samples)
+		c.settings.Groups, err = explain.ReadGroups(f)
+		f.Close()
+		if err != nil {
+			return nil, nil, fmt.Errorf("-groups %s: %w", c.groups, err)
+		}
 	}
-	return rep, nil
-}
-
-// baselineOutputs evaluates the model at the baseline of sample x; nil when
-// that fails (the attribution itself has succeeded, so the sample is kept).
-func baselineOutputs(ctx context.Context, src *source, x []float64, b gradattr.Baseline) []float64 {
-	xb, err := b.Build(x, src.samples.SampleShape())
+	head, err := m.Head(c.settings.Output, c.settings.Logits)
 	if err != nil {
-		return nil
+		return nil, nil, err
 	}
-	out, err := src.head.Forward(ctx, xb, 1)
-	if err != nil {
-		return nil
-	}
-	return out
-}
-
-// attribute runs the selected method on one sample.
-func (c *explainConfig) attribute(ctx context.Context, src *source, x []float64, plan *methodPlan) (*gradattr.Result, error) {
-	return gradattr.Attribute(ctx, src.head, x, c.target, plan.options)
+	ex, err := explain.New(m, head, c.settings)
+	return ex, batch, err
 }
 
 // progress reports finished samples of a long batch on w when w is a
@@ -475,11 +371,11 @@ func (c *explainConfig) attribute(ctx context.Context, src *source, x []float64,
 func progress(w io.Writer) func(done, total int) {
 	f, ok := w.(*os.File)
 	if !ok {
-		return func(int, int) {}
+		return nil
 	}
 	st, err := f.Stat()
 	if err != nil || st.Mode()&os.ModeCharDevice == 0 {
-		return func(int, int) {}
+		return nil
 	}
 	return func(done, total int) {
 		if total < 2 {

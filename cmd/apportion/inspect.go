@@ -7,27 +7,8 @@ import (
 	"sort"
 	"text/tabwriter"
 
-	"github.com/apportion/apportion/onnxlite"
+	"github.com/apportion/apportion/explain"
 )
-
-// inspectValue is one graph input or output in inspect's JSON.
-type inspectValue struct {
-	Name  string `json:"name"`
-	Type  string `json:"type"`
-	Shape []any  `json:"shape"`
-}
-
-// inspectReport is inspect's JSON document.
-type inspectReport struct {
-	Inputs      []inspectValue    `json:"inputs"`
-	Outputs     []inspectValue    `json:"outputs"`
-	Opset       int64             `json:"opset"`
-	Producer    string            `json:"producer"`
-	Ops         map[string]int    `json:"ops"`
-	Parameters  int64             `json:"parameters"`
-	Metadata    map[string]string `json:"metadata"`
-	Unsupported []unsupportedOp   `json:"unsupported"`
-}
 
 func runInspect(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs := newFlagSet("inspect", "-model PATH [-format table|json]",
@@ -47,14 +28,11 @@ func runInspect(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if *format != "table" && *format != "json" {
 		return usageError(stderr, "inspect", "-format must be table or json, got %q", *format)
 	}
-	m, err := decodeModel(*modelPath)
+	m, err := explain.ReadModel(*modelPath)
 	if err != nil {
 		return failure(stderr, "inspect", err)
 	}
-	rep, err := inspectModel(m)
-	if err != nil {
-		return failure(stderr, "inspect", err)
-	}
+	rep := m.Describe()
 	if *format == "json" {
 		enc := json.NewEncoder(stdout)
 		enc.SetIndent("", "  ")
@@ -67,57 +45,14 @@ func runInspect(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	return exitOK
 }
 
-func inspectModel(m *onnxlite.Model) (*inspectReport, error) {
-	g := m.Graph
-	rep := &inspectReport{
-		Inputs:      []inspectValue{},
-		Outputs:     []inspectValue{},
-		Opset:       m.OpsetVersion(""),
-		Producer:    m.ProducerName,
-		Ops:         map[string]int{},
-		Metadata:    map[string]string{},
-		Unsupported: []unsupportedOp{},
-	}
-	for _, vi := range feedInputs(g) {
-		rep.Inputs = append(rep.Inputs, inspectValue{vi.Name, valueTypeName(vi.Type), shapeJSON(vi.Type)})
-	}
-	for _, vi := range g.Outputs {
-		rep.Outputs = append(rep.Outputs, inspectValue{vi.Name, valueTypeName(vi.Type), shapeJSON(vi.Type)})
-	}
-	for _, n := range g.Nodes {
-		op := n.OpType
-		if n.Domain != "" && n.Domain != "ai.onnx" {
-			op = n.Domain + "." + op
-		}
-		rep.Ops[op]++
-	}
-	for _, t := range g.Initializers {
-		if !isFloatType(t.DType) {
-			continue
-		}
-		n := int64(1)
-		for _, d := range t.Dims {
-			n *= d
-		}
-		rep.Parameters += n
-	}
-	for k, v := range m.Metadata {
-		rep.Metadata[k] = v
-	}
-	if uns := unsupportedOps(m); uns != nil {
-		rep.Unsupported = uns
-	}
-	return rep, nil
-}
-
-func writeInspectTable(w io.Writer, path string, rep *inspectReport) {
+func writeInspectTable(w io.Writer, path string, rep *explain.Description) {
 	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
 	fmt.Fprintf(tw, "model\t%s\n", path)
 	fmt.Fprintf(tw, "producer\t%s\n", rep.Producer)
 	fmt.Fprintf(tw, "opset\t%d\n", rep.Opset)
 	fmt.Fprintf(tw, "parameters\t%d\n", rep.Parameters)
 	tw.Flush()
-	section := func(title string, vals []inspectValue) {
+	section := func(title string, vals []explain.Value) {
 		fmt.Fprintf(w, "\n%s\n", title)
 		tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
 		for _, v := range vals {

@@ -9,6 +9,7 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/onnxlite"
 )
 
@@ -17,11 +18,11 @@ import (
 func withMetadata(t *testing.T, md map[string]string) string {
 	t.Helper()
 	model, _, _, _ := softmaxCase(t)
-	m, err := decodeModel(model)
+	m, err := explain.ReadModel(model)
 	require.NoError(t, err)
-	m.Metadata = md
+	m.Graph.Metadata = md
 	var buf bytes.Buffer
-	require.NoError(t, onnxlite.Encode(&buf, m))
+	require.NoError(t, onnxlite.Encode(&buf, m.Graph))
 	p := filepath.Join(t.TempDir(), "softmax_md.onnx")
 	require.NoError(t, os.WriteFile(p, buf.Bytes(), 0o644))
 	return p

@@ -22,6 +22,7 @@ import (
 	"golang.org/x/image/font/opentype"
 	"golang.org/x/image/math/fixed"
 
+	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
 )
 
@@ -426,17 +427,17 @@ func pngPath(out string, i, n int) string {
 
 // writeExplainPNG writes one PNG per explained sample (see pngPath) and
 // returns the paths written. Samples that failed get no file.
-func writeExplainPNG(c *explainConfig, rep *explainReport) ([]string, error) {
+func writeExplainPNG(out string, rep *explain.Report) ([]string, error) {
 	var paths []string
 	for _, e := range rep.Explanations {
-		if e.err != nil {
+		if e.Err != nil {
 			continue
 		}
 		var buf bytes.Buffer
-		if err := renderPNG(&buf, c, rep, e); err != nil {
+		if err := renderPNG(&buf, rep, e); err != nil {
 			return paths, fmt.Errorf("sample %d: %w", e.Index, err)
 		}
-		p := pngPath(c.out, e.Index, len(rep.Explanations))
+		p := pngPath(out, e.Index, len(rep.Explanations))
 		if err := os.WriteFile(p, buf.Bytes(), 0o644); err != nil {
 			return paths, err
 		}
@@ -447,25 +448,18 @@ func writeExplainPNG(c *explainConfig, rep *explainReport) ([]string, error) {
 
 // renderPNG draws one explanation: a heatmap for an image-shaped sample, a
 // bar chart otherwise, and a bar chart of the group sums with -groups.
-func renderPNG(w io.Writer, c *explainConfig, rep *explainReport, e explanation) error {
-	src := rep.src
+func renderPNG(w io.Writer, rep *explain.Report, e explain.Explanation) error {
 	r := e.Result
 	target := strconv.Itoa(r.Target)
-	if r.Target >= 0 && r.Target < len(src.meta.Classes) {
-		target += " (" + src.meta.Classes[r.Target] + ")"
+	if classes := rep.Model.Meta.Classes; r.Target >= 0 && r.Target < len(classes) {
+		target += " (" + classes[r.Target] + ")"
 	}
-	method := c.method.Title()
-	if c.method.Reads(gradattr.ParamBaseline) {
-		base := filepath.Base(c.baseline)
-		if c.baseline == "mean" {
-			base = "mean of the input"
-			if src.reference != nil {
-				base = "mean of " + filepath.Base(src.reference.Name)
-			}
-		}
-		method += " (baseline " + base + ")"
+	m := rep.Settings.Method
+	method := m.Title()
+	if m.Reads(gradattr.ParamBaseline) {
+		method += " (baseline " + baselineTitle(rep) + ")"
 	}
-	title := fmt.Sprintf("%s, sample %d: %s of output %s[%s]", src.modelName, e.Index, method, src.output, target)
+	title := fmt.Sprintf("%s, sample %d: %s of output %s[%s]", rep.Model.Name, e.Index, method, rep.Output, target)
 	notes := []string{"output " + fmtNum(r.Output)}
 	if cp := r.Completeness; cp != nil {
 		notes[0] += ", baseline output " + fmtNum(r.BaselineOutput)
@@ -482,12 +476,12 @@ func renderPNG(w io.Writer, c *explainConfig, rep *explainReport, e explanation)
 	if g := e.Grouped; g != nil {
 		return pngBarsNotes(w, title, notes, g.Names, g.Attributions, nil, nil)
 	}
-	if ch, h, wd, ok := imageShape(src.samples.SampleShape()); ok && len(r.Attributions) == ch*h*wd {
+	if ch, h, wd, ok := imageShape(rep.Batch.SampleShape()); ok && len(r.Attributions) == ch*h*wd {
 		img := make([]float64, h*wd)
 		attr := make([]float64, h*wd)
 		for k := 0; k < ch; k++ {
 			for i := range img {
-				img[i] += e.Value[k*h*wd+i] / float64(ch)
+				img[i] += e.Values[k*h*wd+i] / float64(ch)
 				attr[i] += r.Attributions[k*h*wd+i]
 			}
 		}
@@ -496,7 +490,7 @@ func renderPNG(w io.Writer, c *explainConfig, rep *explainReport, e explanation)
 		}
 		return pngHeatmap(w, title, img, h, wd, attr, notes...)
 	}
-	labels := src.labels()
+	labels := rep.Labels()
 	order := make([]int, len(r.Attributions))
 	for i := range order {
 		order[i] = i
@@ -515,10 +509,31 @@ func renderPNG(w io.Writer, c *explainConfig, rep *explainReport, e explanation)
 		if i < len(labels) {
 			names[k] = labels[i]
 		}
-		if i < len(e.Value) {
-			names[k] += " = " + fmtNum(e.Value[i])
+		if i < len(e.Values) {
+			names[k] += " = " + fmtNum(e.Values[i])
 		}
 		vals[k] = r.Attributions[i]
 	}
 	return pngBarsNotes(w, title, notes, names, vals, nil, nil)
+}
+
+// baselineTitle names the baseline in a figure title: zero, blur (blur:S
+// for another σ), the mean of the reference set or of the input, or the
+// file of baseline samples.
+func baselineTitle(rep *explain.Report) string {
+	switch b := rep.Settings.Baseline; b.Kind {
+	case gradattr.BaselineMean:
+		if ref := rep.Settings.Reference; ref != nil {
+			return "mean of " + filepath.Base(ref.Name)
+		}
+		return "mean of the input"
+	case gradattr.BaselineBlur:
+		if b.Sigma != explain.DefaultBlurSigma {
+			return "blur:" + strconv.FormatFloat(b.Sigma, 'g', -1, 64)
+		}
+		return "blur"
+	case gradattr.BaselineValues:
+		return filepath.Base(b.Samples.Name)
+	}
+	return string(gradattr.BaselineZero)
 }

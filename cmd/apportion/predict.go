@@ -11,7 +11,7 @@ import (
 	"strings"
 	"text/tabwriter"
 
-	"github.com/apportion/apportion/modelmeta"
+	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
@@ -24,41 +24,6 @@ func (m *multiFlag) String() string { return strings.Join(*m, ",") }
 func (m *multiFlag) Set(v string) error {
 	*m = append(*m, v)
 	return nil
-}
-
-// numbers is a JSON array of floats written with the shortest decimal that
-// reads back to the same value at the given precision (32 or 64 bits);
-// NaN and ±Inf, which JSON cannot hold, are written as null, and so is a
-// nil slice.
-type numbers struct {
-	vals []float64
-	bits int
-}
-
-func (n numbers) MarshalJSON() ([]byte, error) {
-	if n.vals == nil {
-		return []byte("null"), nil
-	}
-	b := make([]byte, 0, 2+len(n.vals)*12)
-	b = append(b, '[')
-	for i, v := range n.vals {
-		if i > 0 {
-			b = append(b, ',')
-		}
-		if math.IsNaN(v) || math.IsInf(v, 0) {
-			b = append(b, "null"...)
-			continue
-		}
-		b = strconv.AppendFloat(b, v, 'g', -1, n.bits)
-	}
-	return append(b, ']'), nil
-}
-
-// predictOutput is one output tensor in predict's JSON.
-type predictOutput struct {
-	Name  string  `json:"name"`
-	Shape []int   `json:"shape"`
-	Data  numbers `json:"data"`
 }
 
 func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
@@ -85,11 +50,11 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if *format != "table" && *format != "json" {
 		return usageError(stderr, "predict", "-format must be json or table, got %q", *format)
 	}
-	m, err := decodeModel(*modelPath)
+	m, err := explain.ReadModel(*modelPath)
 	if err != nil {
 		return failure(stderr, "predict", err)
 	}
-	feeds := feedInputs(m.Graph)
+	feeds := m.Inputs()
 	if len(inputs) != len(feeds) {
 		names := make([]string, len(feeds))
 		for i, f := range feeds {
@@ -100,10 +65,9 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	tensors := make([]*onnxlite.Tensor, len(feeds))
 	open := map[string][]int{}
 	count := 0
-	meta := modelmeta.Read(m)
 	var opt samples.Options
 	if len(feeds) == 1 {
-		opt.Features = meta.Features
+		opt = m.ReadOptions(false)
 	}
 	for i, vi := range feeds {
 		spec := samples.SpecOf(vi)
@@ -116,71 +80,34 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			return failure(stderr, "predict", err)
 		}
 		tensors[i] = t
-		for name, shape := range openShapes(spec, b) {
+		for name, shape := range explain.OpenShapes(spec, b) {
 			open[name] = shape
 		}
 		if i == 0 {
 			count = b.Samples
 		}
 	}
-	net, err := compileModel(m, open, runtime.GOMAXPROCS(0))
-	if err != nil {
+	if err := m.Compile(explain.CompileOptions{InputShapes: open, Parallel: runtime.GOMAXPROCS(0)}); err != nil {
 		return failure(stderr, "predict", err)
 	}
-	outs, err := net.forward(context.Background(), tensors)
-	if err != nil {
-		return failure(stderr, "predict", err)
-	}
-	res, err := predictOutputs(m, outs)
+	res, err := m.Predict(context.Background(), tensors)
 	if err != nil {
 		return failure(stderr, "predict", err)
 	}
 	if *format == "json" {
-		if err := writePredictJSON(stdout, res); err != nil {
+		if err := json.NewEncoder(stdout).Encode(res); err != nil {
 			return failure(stderr, "predict", err)
 		}
 		return exitOK
 	}
-	writePredictTable(stdout, res, count, meta.Classes)
+	writePredictTable(stdout, res.Outputs, count, m.Meta.Classes)
 	return exitOK
-}
-
-// predictOutputs names the output tensors of m's network as its graph
-// outputs, with their values at the precision they were computed in.
-func predictOutputs(m *onnxlite.Model, outs []*onnxlite.Tensor) ([]predictOutput, error) {
-	res := make([]predictOutput, len(outs))
-	for i, t := range outs {
-		vals, err := t.Float64s()
-		if err != nil {
-			return nil, fmt.Errorf("output %q: %w", t.Name, err)
-		}
-		bits := 64
-		if t.DType == onnxlite.Float || t.DType == onnxlite.Float16 || t.DType == onnxlite.BFloat16 {
-			bits = 32
-		}
-		name := t.Name
-		if i < len(m.Graph.Outputs) {
-			name = m.Graph.Outputs[i].Name
-		}
-		res[i] = predictOutput{Name: name, Shape: t.Shape(), Data: numbers{vals, bits}}
-		if res[i].Shape == nil {
-			res[i].Shape = []int{}
-		}
-	}
-	return res, nil
-}
-
-// writePredictJSON writes predict's JSON document, {"outputs": [...]}.
-func writePredictJSON(w io.Writer, res []predictOutput) error {
-	return json.NewEncoder(w).Encode(struct {
-		Outputs []predictOutput `json:"outputs"`
-	}{res})
 }
 
 // writePredictTable prints, sample by sample, each output's values; an output
 // with one value per class name is printed as a class table with the largest
 // value marked.
-func writePredictTable(w io.Writer, outs []predictOutput, samples int, classes []string) {
+func writePredictTable(w io.Writer, outs []explain.Output, samples int, classes []string) {
 	if samples < 1 {
 		samples = 1
 	}
@@ -190,7 +117,7 @@ func writePredictTable(w io.Writer, outs []predictOutput, samples int, classes [
 		}
 		fmt.Fprintf(w, "sample %d\n", s)
 		for _, o := range outs {
-			vals := o.Data.vals
+			vals := o.Data.Values
 			per := len(vals)
 			lo := 0
 			if len(o.Shape) > 0 && o.Shape[0] == samples {
@@ -209,14 +136,14 @@ func writePredictTable(w io.Writer, outs []predictOutput, samples int, classes [
 					if j == top {
 						mark = "  <- top"
 					}
-					fmt.Fprintf(tw, "    %s\t%s%s\n", classes[j], formatValue(v, o.Data.bits), mark)
+					fmt.Fprintf(tw, "    %s\t%s%s\n", classes[j], formatValue(v, o.Data.Bits), mark)
 				}
 				tw.Flush()
 				continue
 			}
 			parts := make([]string, len(row))
 			for j, v := range row {
-				parts[j] = formatValue(v, o.Data.bits)
+				parts[j] = formatValue(v, o.Data.Bits)
 			}
 			fmt.Fprintf(w, "  %s  [%s]\n", o.Name, strings.Join(parts, " "))
 		}

@@ -2,7 +2,6 @@ package main
 
 import (
 	"encoding/csv"
-	"encoding/json"
 	"fmt"
 	"io"
 	"math"
@@ -14,6 +13,7 @@ import (
 
 	"codeberg.org/sbinet/npyio/npy"
 
+	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/samples"
 )
@@ -25,16 +25,16 @@ const maxTableFeatures = 64
 // barWidth is the number of character cells of each half of a bar.
 const barWidth = 12
 
-func renderExplanation(w io.Writer, c *explainConfig, rep *explainReport) error {
-	switch c.format {
+func renderExplanation(w io.Writer, format string, rep *explain.Report) error {
+	switch format {
 	case "json":
-		return writeExplainJSON(w, c, rep)
+		return rep.WriteJSON(w)
 	case "csv":
 		return writeExplainCSV(w, rep)
 	case "npy":
 		return writeExplainNPY(w, rep)
 	default:
-		return writeExplainTable(w, c, rep)
+		return writeExplainTable(w, rep)
 	}
 }
 
@@ -66,20 +66,20 @@ func bar(v, scale float64) string {
 	return left + "│" + right
 }
 
-func writeExplainTable(w io.Writer, c *explainConfig, rep *explainReport) error {
-	src := rep.src
-	labels := src.labels()
-	fmt.Fprintf(w, "model %s  output %s  method %s\n", src.modelName, src.output, c.method)
+func writeExplainTable(w io.Writer, rep *explain.Report) error {
+	labels := rep.Labels()
+	classes := rep.Model.Meta.Classes
+	fmt.Fprintf(w, "model %s  output %s  method %s\n", rep.Model.Name, rep.Output, rep.Settings.Method)
 	for _, e := range rep.Explanations {
 		fmt.Fprintln(w)
-		if e.err != nil {
-			fmt.Fprintf(w, "sample %d: error: %v\n", e.Index, e.err)
+		if e.Err != nil {
+			fmt.Fprintf(w, "sample %d: error: %v\n", e.Index, e.Err)
 			continue
 		}
 		r := e.Result
 		target := strconv.Itoa(r.Target)
-		if r.Target >= 0 && r.Target < len(src.meta.Classes) {
-			target += " (" + src.meta.Classes[r.Target] + ")"
+		if r.Target >= 0 && r.Target < len(classes) {
+			target += " (" + classes[r.Target] + ")"
 		}
 		fmt.Fprintf(w, "sample %d: target %s  output %s", e.Index, target, fmtNum(r.Output))
 		if r.Completeness != nil {
@@ -110,8 +110,8 @@ func writeExplainTable(w io.Writer, c *explainConfig, rep *explainReport) error 
 				label = labels[i]
 			}
 			value := ""
-			if i < len(e.Value) {
-				value = fmtNum(e.Value[i])
+			if i < len(e.Values) {
+				value = fmtNum(e.Values[i])
 			}
 			rows = append(rows, [3]string{label, value, fmtSigned(r.Attributions[i])})
 		}
@@ -171,113 +171,14 @@ func fmtSigned(v float64) string {
 	return s
 }
 
-// explainModelJSON identifies the model and the values explained.
-type explainModelJSON struct {
-	Path   string `json:"path"`
-	SHA256 string `json:"sha256"`
-	Input  string `json:"input"`
-	Output string `json:"output"`
-}
-
-// explanationJSON is one sample's record.
-type explanationJSON struct {
-	Index           int                    `json:"index"`
-	Target          *int                   `json:"target"`
-	Outputs         numbers                `json:"outputs"`
-	Attributions    numbers                `json:"attributions"`
-	Shape           []int                  `json:"shape"`
-	BaselineOutputs numbers                `json:"baseline_outputs"`
-	Completeness    *gradattr.Completeness `json:"completeness"`
-	Points          int                    `json:"points"`
-	Error           *string                `json:"error"`
-	// Groups is present with -groups: the attributions summed per group.
-	Groups *gradattr.GroupedResult `json:"groups,omitempty"`
-}
-
-// explainJSON is explain's JSON document.
-type explainJSON struct {
-	Model        explainModelJSON  `json:"model"`
-	Method       gradattr.Method   `json:"method"`
-	Settings     map[string]any    `json:"settings"`
-	Explanations []explanationJSON `json:"explanations"`
-}
-
-// settingsJSON is the request's settings in one representation: the
-// library's record of the method's options (gradattr.Options.Settings,
-// defaults filled in), then what selects the explained value (target,
-// logits, output) and the name of the reference set. reference names it,
-// "" without one.
-func settingsJSON(c *explainConfig, src *source, o gradattr.Options, reference string) map[string]any {
-	s := map[string]any{}
-	if raw, err := json.Marshal(o.Settings()); err == nil {
-		_ = json.Unmarshal(raw, &s)
-	}
-	delete(s, "method") // a key of the document itself
-	s["target"], s["logits"], s["output"] = c.targetText, c.logits, src.output
-	if c.target >= 0 {
-		s["target"] = c.target
-	}
-	if reference != "" {
-		s["reference"] = reference
-	}
-	return s
-}
-
-func writeExplainJSON(w io.Writer, c *explainConfig, rep *explainReport) error {
-	src := rep.src
-	doc := explainJSON{
-		Model:        explainModelJSON{Path: src.modelName, SHA256: src.sha256, Input: src.spec.Name, Output: src.output},
-		Method:       c.method,
-		Settings:     settingsJSON(c, src, rep.options, c.reference),
-		Explanations: []explanationJSON{},
-	}
-	shape := src.samples.SampleShape()
-	if shape == nil {
-		shape = []int{}
-	}
-	for _, e := range rep.Explanations {
-		j := explanationJSON{Index: e.Index, Shape: shape}
-		if e.err != nil {
-			msg := e.err.Error()
-			j.Error = &msg
-		} else {
-			r := e.Result
-			t := r.Target
-			j.Target = &t
-			j.Outputs = numbers{vals: nonNil(r.Outputs), bits: 64}
-			j.Attributions = numbers{vals: nonNil(r.Attributions), bits: 64}
-			if len(r.Shape) > 0 {
-				j.Shape = r.Shape
-			}
-			if e.Baselines != nil {
-				j.BaselineOutputs = numbers{vals: e.Baselines, bits: 64}
-			}
-			j.Completeness = r.Completeness
-			j.Points = r.Cost.GradientEvals
-			j.Groups = e.Grouped
-		}
-		doc.Explanations = append(doc.Explanations, j)
-	}
-	enc := json.NewEncoder(w)
-	enc.SetIndent("", "  ")
-	return enc.Encode(doc)
-}
-
-func nonNil(v []float64) []float64 {
-	if v == nil {
-		return []float64{}
-	}
-	return v
-}
-
-func writeExplainCSV(w io.Writer, rep *explainReport) error {
-	labels := rep.src.labels()
+func writeExplainCSV(w io.Writer, rep *explain.Report) error {
+	labels := rep.Labels()
 	cw := csv.NewWriter(w)
 	if err := cw.Write([]string{"sample", "feature", "value", "attribution"}); err != nil {
 		return err
 	}
 	for _, e := range rep.Explanations {
-		if e.err != nil {
+		if e.Err != nil {
 			continue
 		}
 		for i, a := range e.Result.Attributions {
@@ -286,8 +187,8 @@ func writeExplainCSV(w io.Writer, rep *explainReport) error {
 				label = labels[i]
 			}
 			value := ""
-			if i < len(e.Value) {
-				value = strconv.FormatFloat(e.Value[i], 'g', -1, 64)
+			if i < len(e.Values) {
+				value = strconv.FormatFloat(e.Values[i], 'g', -1, 64)
 			}
 			rec := []string{strconv.Itoa(e.Index), label, value, strconv.FormatFloat(a, 'g', -1, 64)}
 			if err := cw.Write(rec); err != nil {
@@ -301,12 +202,12 @@ func writeExplainCSV(w io.Writer, rep *explainReport) error {
 
 // writeExplainNPY writes the attributions as one float64 array of shape
 // (samples, ...sample shape); a failed sample's row is NaN.
-func writeExplainNPY(w io.Writer, rep *explainReport) error {
-	shape := append([]int{len(rep.Explanations)}, rep.src.samples.SampleShape()...)
-	per := rep.src.samples.SampleSize()
+func writeExplainNPY(w io.Writer, rep *explain.Report) error {
+	shape := append([]int{len(rep.Explanations)}, rep.Batch.SampleShape()...)
+	per := rep.Batch.SampleSize()
 	data := make([]float64, 0, len(rep.Explanations)*per)
 	for _, e := range rep.Explanations {
-		if e.err != nil || len(e.Result.Attributions) != per {
+		if e.Err != nil || len(e.Result.Attributions) != per {
 			for i := 0; i < per; i++ {
 				data = append(data, math.NaN())
 			}

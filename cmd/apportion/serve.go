@@ -91,7 +91,7 @@ func runServe(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if err != nil {
 		return failure(stderr, "serve", err)
 	}
-	srv.log.Info("listening", "addr", ln.Addr().String(), "model", srv.base.modelName,
+	srv.log.Info("listening", "addr", ln.Addr().String(), "model", srv.model.Name,
 		"workers", c.workers, "queue", c.queue, "coalesce", c.coalesce)
 	if err := srv.Serve(ctx, ln); err != nil {
 		return failure(stderr, "serve", err)

@@ -3,8 +3,6 @@ package main
 import (
 	"bytes"
 	"context"
-	"crypto/sha256"
-	"encoding/hex"
 	"encoding/json"
 	"errors"
 	"fmt"
@@ -12,12 +10,11 @@ import (
 	"log/slog"
 	"math"
 	"net/http"
-	"regexp"
 	"strconv"
-	"strings"
 	"sync"
 	"time"
 
+	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
@@ -26,14 +23,14 @@ import (
 // server is the state shared by the HTTP handlers: one decoded and compiled
 // model, its reference set, the worker pool and the metrics.
 type server struct {
-	cfg     serveConfig
-	log     *slog.Logger
-	base    *source    // model, network, input and output; no samples
-	refName string     // name of the reference set, "" without one
-	demo    *demoFiles // the embedded demo served without -model
-	inspect []byte     // the /v1/model document
-	pool    *workPool
-	metrics *serveMetrics
+	cfg       serveConfig
+	log       *slog.Logger
+	model     *explain.Model
+	spec      samples.Spec     // the model's runtime input
+	reference *explain.Dataset // nil without one
+	inspect   []byte           // the /v1/model document
+	pool      *workPool
+	metrics   *serveMetrics
 
 	mu       sync.Mutex
 	heads    map[bool]gradattr.Model // by Selection.Logits
@@ -43,42 +40,21 @@ type server struct {
 // newServer loads and compiles the model of cfg and starts the workers.
 func newServer(cfg serveConfig, log *slog.Logger) (*server, error) {
 	s := &server{cfg: cfg, log: log, heads: map[bool]gradattr.Model{}, metrics: newServeMetrics()}
-	src := &source{}
-	var raw []byte
-	var err error
-	if cfg.modelPath == "" {
-		dm, err := serveDemo()
-		if err != nil {
-			return nil, err
-		}
-		raw, s.demo = dm.model, dm
-		src.modelName = "demo:" + dm.modelFile
-		if dm.modelFile == "" {
-			src.modelName = "demo:" + dm.sampleFile
-		}
-		src.model, err = decodeModelBytes(raw, src.modelName, "")
-		if err != nil {
-			return nil, err
-		}
-	} else {
-		src.modelName = cfg.modelPath
-		raw, src.model, err = readModelFile(cfg.modelPath)
-	}
+	l, err := loadModel(cfg.modelPath, "")
 	if err != nil {
 		return nil, err
 	}
-	sum := sha256.Sum256(raw)
-	src.sha256 = hex.EncodeToString(sum[:])
-	if err := src.prepare(&explainConfig{}); err != nil {
+	m := l.model
+	if s.spec, err = m.Input(); err != nil {
 		return nil, err
 	}
-	if _, ok := src.spec.FixedSample(); !ok {
-		return nil, fmt.Errorf("serving needs a model whose input %q has a fixed shape per sample, got %s", src.spec.Name, samples.ShapeString(src.spec.Shape))
+	if _, ok := s.spec.FixedSample(); !ok {
+		return nil, fmt.Errorf("serving needs a model whose input %q has a fixed shape per sample, got %s", s.spec.Name, samples.ShapeString(s.spec.Shape))
 	}
-	if src.net, err = compileModel(src.model, nil, 1); err != nil {
+	if err := m.Compile(explain.CompileOptions{Parallel: 1}); err != nil {
 		return nil, err
 	}
-	s.base = src
+	s.model = m
 	s.pool = newWorkPool(cfg.workers, cfg.queue, s.metrics)
 	started := false
 	defer func() {
@@ -89,17 +65,13 @@ func newServer(cfg serveConfig, log *slog.Logger) (*server, error) {
 	if _, err := s.head(false); err != nil {
 		return nil, err
 	}
-	if err := s.loadReference(); err != nil {
-		return nil, err
-	}
-	rep, err := inspectModel(src.model)
-	if err != nil {
+	if err := s.loadReference(l.demo); err != nil {
 		return nil, err
 	}
 	var buf bytes.Buffer
 	enc := json.NewEncoder(&buf)
 	enc.SetIndent("", "  ") // as inspect -format json
-	if err := enc.Encode(rep); err != nil {
+	if err := enc.Encode(m.Describe()); err != nil {
 		return nil, err
 	}
 	s.inspect = buf.Bytes()
@@ -109,57 +81,39 @@ func newServer(cfg serveConfig, log *slog.Logger) (*server, error) {
 
 // loadReference reads -reference, or the demo's reference set when serving
 // the demo model.
-func (s *server) loadReference() error {
-	var name string
-	var raw []byte
+func (s *server) loadReference(dm *demoFiles) error {
+	name, raw := s.cfg.reference, []byte(nil)
+	var err error
 	switch {
-	case s.cfg.reference != "":
-		b, err := samples.ReadFile(s.cfg.reference, s.base.spec, s.base.readOptions(false))
-		if err != nil {
-			return fmt.Errorf("-reference: %w", err)
+	case name != "":
+		if raw, err = samples.ReadLimited(name); err != nil {
+			return fmt.Errorf("-reference: input %s (for %q): %w", name, s.spec.Name, err)
 		}
-		s.base.reference, s.refName = b, s.cfg.reference
-		return s.checkReference()
-	case s.demo != nil:
-		raw, name = s.demo.reference, s.demo.referenceFile
+	case dm != nil && dm.reference != nil:
+		name, raw = dm.referenceFile, dm.reference
 	default:
 		return nil
 	}
-	if raw == nil {
-		return nil
-	}
-	b, err := samples.Read(bytes.NewReader(raw), name, s.base.spec, s.base.readOptions(false))
+	b, err := samples.Read(bytes.NewReader(raw), name, s.spec, s.model.ReadOptions(false))
 	if err != nil {
+		if s.cfg.reference != "" {
+			return fmt.Errorf("-reference: %w", err)
+		}
 		return fmt.Errorf("demo reference: %w", err)
 	}
-	s.base.reference, s.refName = b, "demo:"+name
-	return s.checkReference()
-}
-
-func (s *server) checkReference() error {
-	want := samples.Product(s.headShape())
-	if got := s.base.reference.SampleSize(); got != want {
-		return fmt.Errorf("reference %s: expected samples of %d values, got %d", s.refName, want, got)
+	if s.cfg.reference == "" {
+		name = "demo:" + name
 	}
+	if got, want := b.SampleSize(), samples.Product(s.sampleShape()); got != want {
+		return fmt.Errorf("reference %s: expected samples of %d values, got %d", name, want, got)
+	}
+	s.reference = explain.NewDataset(name, raw, b)
 	return nil
 }
 
-func (s *server) headShape() []int {
-	ps, _ := s.base.spec.PerSample()
+func (s *server) sampleShape() []int {
+	ps, _ := s.spec.FixedSample()
 	return ps
-}
-
-// serveDemo returns the embedded default demo scenario.
-func serveDemo() (*demoFiles, error) {
-	switch {
-	case demoModel != nil:
-		dm := &demoFiles{}
-		dm.model, dm.sample, dm.sampleFile = demoModel()
-		return dm, nil
-	case demoScenario != nil:
-		return demoScenario("")
-	}
-	return nil, errors.New("this build has no embedded demo; give -model")
 }
 
 // head returns the explained output of the model (the logits before its
@@ -170,7 +124,7 @@ func (s *server) head(logits bool) (gradattr.Model, error) {
 	if h, ok := s.heads[logits]; ok {
 		return h, nil
 	}
-	h, err := s.base.net.head(s.base.output, logits)
+	h, err := s.model.Head("", logits)
 	if err != nil {
 		return nil, err
 	}
@@ -205,7 +159,7 @@ func (s *server) Passes() int64 { return s.metrics.passCount.Load() }
 func (s *server) Handler() http.Handler {
 	mux := http.NewServeMux()
 	mux.Handle("/healthz", s.route("/healthz", http.MethodGet, s.healthz))
-	mux.Handle("/v1/model", s.route("/v1/model", http.MethodGet, s.model))
+	mux.Handle("/v1/model", s.route("/v1/model", http.MethodGet, s.describe))
 	mux.Handle("/v1/predict", s.route("/v1/predict", http.MethodPost, s.predict))
 	mux.Handle("/v1/explain", s.route("/v1/explain", http.MethodPost, s.explain))
 	mux.Handle("/metrics", s.route("/metrics", http.MethodGet, s.metrics.handler()))
@@ -327,10 +281,10 @@ func (s *server) route(name, method string, h handlerFunc) http.Handler {
 }
 
 func (s *server) healthz(w http.ResponseWriter, r *http.Request, _ *requestLog) {
-	writeJSONBody(w, http.StatusOK, map[string]string{"status": "ok", "model": s.base.modelName})
+	writeJSONBody(w, http.StatusOK, map[string]string{"status": "ok", "model": s.model.Name})
 }
 
-func (s *server) model(w http.ResponseWriter, r *http.Request, _ *requestLog) {
+func (s *server) describe(w http.ResponseWriter, r *http.Request, _ *requestLog) {
 	writeRaw(w, http.StatusOK, s.inspect)
 }
 
@@ -387,18 +341,18 @@ func decodeRequest(raw []byte, v any) *httpError {
 // the model's input shape, finite numbers only.
 func (s *server) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError) {
 	if len(bytes.TrimSpace(inputs)) == 0 || string(bytes.TrimSpace(inputs)) == "null" {
-		return nil, badRequest(`"inputs" is required: an array of samples of shape %s`, samples.ShapeString(s.headShape()))
+		return nil, badRequest(`"inputs" is required: an array of samples of shape %s`, samples.ShapeString(s.sampleShape()))
 	}
-	b, err := samples.ReadJSON(bytes.NewReader(inputs), s.base.spec)
+	b, err := samples.ReadJSON(bytes.NewReader(inputs), s.spec)
 	if err == nil {
 		err = b.CheckFinite()
 	}
 	if err != nil {
-		return nil, badRequest(`"inputs" (for %q): %v`, s.base.spec.Name, err)
+		return nil, badRequest(`"inputs" (for %q): %v`, s.spec.Name, err)
 	}
-	if got, want := b.SampleSize(), samples.Product(s.headShape()); got != want {
+	if got, want := b.SampleSize(), samples.Product(s.sampleShape()); got != want {
 		return nil, badRequest(`"inputs" (for %q): expected samples of shape %s (%d values), got %s (%d values)`,
-			s.base.spec.Name, samples.ShapeString(s.headShape()), want, samples.ShapeString(b.SampleShape()), got)
+			s.spec.Name, samples.ShapeString(s.sampleShape()), want, samples.ShapeString(b.SampleShape()), got)
 	}
 	b.Name = "request"
 	return b, nil
@@ -473,7 +427,7 @@ func (s *server) predict(w http.ResponseWriter, r *http.Request, rl *requestLog)
 		s.finish(w, herr)
 		return
 	}
-	t, err := b.ToTensor(s.base.spec)
+	t, err := b.ToTensor(s.spec)
 	if err != nil {
 		s.finish(w, badRequest("%v", err))
 		return
@@ -481,19 +435,15 @@ func (s *server) predict(w http.ResponseWriter, r *http.Request, rl *requestLog)
 	var body []byte
 	herr, _ = s.run(r, func(ctx context.Context) *httpError {
 		s.metrics.countPass("forward", b.Samples)
-		outs, err := s.base.net.forward(ctx, []*onnxlite.Tensor{t})
+		res, err := s.model.Predict(ctx, []*onnxlite.Tensor{t})
 		if err != nil {
 			if ctx.Err() != nil {
 				return s.ctxError(ctx)
 			}
 			return &httpError{http.StatusInternalServerError, err.Error()}
 		}
-		res, err := predictOutputs(s.base.model, outs)
-		if err != nil {
-			return &httpError{http.StatusInternalServerError, err.Error()}
-		}
 		var buf bytes.Buffer
-		if err := writePredictJSON(&buf, res); err != nil {
+		if err := json.NewEncoder(&buf).Encode(res); err != nil {
 			return &httpError{http.StatusInternalServerError, err.Error()}
 		}
 		body = buf.Bytes()
@@ -523,81 +473,71 @@ type explainRequest struct {
 	Logits    *bool           `json:"logits"`
 }
 
-// config turns the request into the explain command's configuration and
-// validates it with the command's own checks.
-func (s *server) config(req *explainRequest) (*explainConfig, *httpError) {
-	c := &explainConfig{
-		modelPath: s.base.modelName, inputPath: "request", format: "json",
-		methodText: defaultMethod.String(), targetText: defaultTarget, baseline: defaultBaseline,
-		stepsText: defaultSteps, tolerance: defaultMethod.Defaults().Tolerance,
-		samples: gradattr.MethodSmoothGrad.Defaults().Samples, noise: gradattr.MethodSmoothGrad.Defaults().Noise,
-		seed: gradattr.DefaultSeed,
-		set:  map[string]bool{},
+// fieldName names a setting as a request field: "steps".
+func fieldName(f explain.Field) string { return strconv.Quote(string(f)) }
+
+// settingsError answers a settings error as a bad request, naming the
+// request's fields.
+func settingsError(err error) *httpError {
+	var fe *explain.FieldError
+	if errors.As(err, &fe) {
+		return badRequest("%s", fe.Wording(fieldName))
 	}
-	given := func(name string, ok bool) {
-		if ok {
-			c.set[name] = true
+	return badRequest("%v", err)
+}
+
+// settings reads the request's settings: absent fields take the library's
+// defaults, as the explain command's flags do. The reference set is the
+// server's: expected gradients draw from it and the mean baseline averages
+// it (without one, the mean baseline averages "inputs").
+func (s *server) settings(req *explainRequest) (explain.Settings, *httpError) {
+	st := explain.Defaults()
+	target, herr := intOrWord("target", req.Target, explain.DefaultTargetText, "top")
+	if herr != nil {
+		return st, herr
+	}
+	steps, herr := intOrWord("steps", req.Steps, explain.DefaultStepsText, "auto")
+	if herr != nil {
+		return st, herr
+	}
+	float := func(v float64) string { return strconv.FormatFloat(v, 'g', -1, 64) }
+	fields := []struct {
+		f     explain.Field
+		given bool
+		text  func() string
+	}{
+		{explain.FieldMethod, req.Method != nil, func() string { return *req.Method }},
+		{explain.FieldTarget, req.Target != nil, func() string { return target }},
+		{explain.FieldLogits, req.Logits != nil, func() string { return strconv.FormatBool(*req.Logits) }},
+		{explain.FieldBaseline, req.Baseline != nil, func() string { return *req.Baseline }},
+		{explain.FieldSteps, req.Steps != nil, func() string { return steps }},
+		{explain.FieldRule, req.Rule != nil, func() string { return *req.Rule }},
+		{explain.FieldTolerance, req.Tolerance != nil, func() string { return float(*req.Tolerance) }},
+		{explain.FieldSamples, req.Samples != nil, func() string { return strconv.Itoa(*req.Samples) }},
+		{explain.FieldNoise, req.Noise != nil, func() string { return float(*req.Noise) }},
+		{explain.FieldSeed, req.Seed != nil, func() string { return strconv.FormatUint(*req.Seed, 10) }},
+	}
+	for _, fl := range fields {
+		if !fl.given {
+			continue
+		}
+		if err := st.Set(fl.f, fl.text()); err != nil {
+			return st, settingsError(err)
 		}
 	}
-	if req.Method != nil {
-		c.methodText = *req.Method
+	if st.Baseline.Kind == gradattr.BaselineValues {
+		return st, badRequest(`"baseline" must be zero, mean, blur or blur:S, got %q`, *req.Baseline)
 	}
-	var herr *httpError
-	if c.targetText, herr = intOrWord("target", req.Target, defaultTarget, "top"); herr != nil {
-		return nil, herr
-	}
-	if c.stepsText, herr = intOrWord("steps", req.Steps, defaultSteps, "auto"); herr != nil {
-		return nil, herr
-	}
-	given("steps", req.Steps != nil)
-	if req.Rule != nil {
-		c.ruleText = *req.Rule
-	}
-	given("rule", req.Rule != nil)
-	if req.Tolerance != nil {
-		c.tolerance = *req.Tolerance
-	}
-	given("tolerance", req.Tolerance != nil)
-	c.toleranceSet = req.Tolerance != nil
-	if req.Baseline != nil {
-		c.baseline = *req.Baseline
-		switch {
-		case c.baseline == "zero", c.baseline == "mean", c.baseline == "blur", strings.HasPrefix(c.baseline, "blur:"):
-		default:
-			return nil, badRequest(`"baseline" must be zero, mean, blur or blur:S, got %q`, c.baseline)
+	if st.NeedsReference() {
+		st.Reference = s.reference
+		if st.Reference == nil && !st.Method.Reads(gradattr.ParamBaseline) {
+			return st, badRequest(`"method" %s needs a reference set; this server has none (start it with -reference FILE)`, st.Method)
 		}
 	}
-	given("baseline", req.Baseline != nil)
-	if req.Samples != nil {
-		c.samples = *req.Samples
+	if err := st.Check(); err != nil {
+		return st, settingsError(err)
 	}
-	given("samples", req.Samples != nil)
-	if req.Noise != nil {
-		c.noise = *req.Noise
-	}
-	given("noise", req.Noise != nil)
-	if req.Seed != nil {
-		c.seed = *req.Seed
-	}
-	given("seed", req.Seed != nil)
-	if req.Logits != nil {
-		c.logits = *req.Logits
-	}
-	// The reference set is the server's: expected gradients draw from it
-	// and the mean baseline averages it.
-	if m, err := gradattr.ParseMethod(c.methodText); err == nil {
-		c.method = m
-		if c.needsReference() {
-			c.reference = s.refName
-		}
-		if c.method == gradattr.MethodExpectedGradients && c.reference == "" {
-			return nil, badRequest(`"method" expected-gradients needs a reference set; this server has none (start it with -reference FILE)`)
-		}
-	}
-	if msg := c.validate(); msg != "" {
-		return nil, badRequest("%s", requestWording(msg))
-	}
-	return c, nil
+	return st, nil
 }
 
 // intOrWord reads a field that holds a non-negative integer or one word.
@@ -616,15 +556,6 @@ func intOrWord(name string, raw json.RawMessage, def, word string) (string, *htt
 	return "", badRequest("%q must be a number or %q, got %s", name, word, raw)
 }
 
-// flagName matches the flags of the explain command in its messages.
-var flagName = regexp.MustCompile(`(^|[\s(])-(method|target|steps|rule|tolerance|baseline|samples|noise|seed|logits|reference)\b`)
-
-// requestWording turns the explain command's messages about flags into
-// messages about request fields: -steps becomes "steps".
-func requestWording(msg string) string {
-	return flagName.ReplaceAllString(msg, `$1"$2"`)
-}
-
 func (s *server) explain(w http.ResponseWriter, r *http.Request, rl *requestLog) {
 	raw, herr := s.readBody(w, r)
 	if herr != nil {
@@ -636,46 +567,44 @@ func (s *server) explain(w http.ResponseWriter, r *http.Request, rl *requestLog)
 		s.finish(w, herr)
 		return
 	}
-	c, herr := s.config(&req)
+	st, herr := s.settings(&req)
 	if herr != nil {
 		s.finish(w, herr)
 		return
 	}
-	rl.method = c.method.String()
+	rl.method = st.Method.String()
 	b, herr := s.samplesOf(req.Inputs)
 	if herr != nil {
 		s.finish(w, herr)
 		return
 	}
 	rl.samples = b.Samples
-	head, err := s.head(c.logits)
+	head, err := s.head(st.Logits)
 	if err != nil {
 		s.finish(w, badRequest(`"logits": %v`, err))
 		return
 	}
-	src := *s.base
-	src.samples, src.head = b, head
-	if c.reference == "" {
-		src.reference = nil
-	}
-	if src.features == nil {
-		src.features = b.Features
+	ex, err := explain.New(s.model, head, st)
+	if err != nil {
+		s.finish(w, settingsError(err))
+		return
 	}
 	var body []byte
 	var got requestLog // written by the worker, read once it has finished
 	herr, finished := s.run(r, func(ctx context.Context) *httpError {
-		rep, err := explainAll(ctx, c, &src, func(int, int) {})
+		rep, err := ex.Explain(ctx, b, nil)
 		if err != nil {
-			if errors.Is(err, errUsage) {
-				return badRequest("%s", requestWording(err.Error()))
+			var fe *explain.FieldError
+			if errors.As(err, &fe) {
+				return settingsError(err)
 			}
 			return &httpError{http.StatusInternalServerError, err.Error()}
 		}
-		if herr := s.judge(ctx, c, rep, &got); herr != nil {
+		if herr := s.judge(ctx, rep, &got); herr != nil {
 			return herr
 		}
 		var buf bytes.Buffer
-		if err := writeExplainJSON(&buf, c, rep); err != nil {
+		if err := rep.WriteJSON(&buf); err != nil {
 			return &httpError{http.StatusInternalServerError, err.Error()}
 		}
 		body = buf.Bytes()
@@ -695,18 +624,18 @@ func (s *server) explain(w http.ResponseWriter, r *http.Request, rl *requestLog)
 // returns 504 when the time limit cut the work, and 400 when every sample
 // failed on a bad request (a target out of range, say); otherwise the
 // document is answered, failed samples carrying their "error".
-func (s *server) judge(ctx context.Context, c *explainConfig, rep *explainReport, rl *requestLog) *httpError {
+func (s *server) judge(ctx context.Context, rep *explain.Report, rl *requestLog) *httpError {
 	var bad error
 	failedBad, judged, failed, unjudged := 0, 0, 0, 0
 	for _, e := range rep.Explanations {
-		if e.err != nil {
+		if e.Err != nil {
 			if ctx.Err() != nil {
 				return s.ctxError(ctx)
 			}
-			if errors.Is(e.err, gradattr.ErrInput) || errors.Is(e.err, gradattr.ErrOptions) || errors.Is(e.err, samples.ErrNonFinite) {
+			if errors.Is(e.Err, gradattr.ErrInput) || errors.Is(e.Err, gradattr.ErrOptions) || errors.Is(e.Err, samples.ErrNonFinite) {
 				failedBad++
 				if bad == nil {
-					bad = fmt.Errorf("sample %d: %w", e.Index, e.err)
+					bad = fmt.Errorf("sample %d: %w", e.Index, e.Err)
 				}
 			}
 			continue
@@ -721,7 +650,7 @@ func (s *server) judge(ctx context.Context, c *explainConfig, rep *explainReport
 		default:
 			judged++
 			failed++
-			s.metrics.incomplete.WithLabelValues(c.method.String()).Inc()
+			s.metrics.incomplete.WithLabelValues(rep.Settings.Method.String()).Inc()
 		}
 	}
 	if failedBad > 0 && failedBad == len(rep.Explanations) {

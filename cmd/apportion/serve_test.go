@@ -100,11 +100,11 @@ func errorOf(t *testing.T, body string) string {
 // demoSampleJSON is the demo's own sample, as the CLI explains it by default.
 func demoSampleJSON(t *testing.T) string {
 	t.Helper()
-	dm, err := serveDemo()
+	l, err := loadModel("", "")
 	require.NoError(t, err)
 	var v []float64
-	require.NoError(t, json.Unmarshal(dm.sample, &v))
-	return string(dm.sample)
+	require.NoError(t, json.Unmarshal(l.demo.sample, &v))
+	return string(l.demo.sample)
 }
 
 func TestServeExplainIsTheCLIDocument(t *testing.T) {

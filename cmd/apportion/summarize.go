@@ -3,9 +3,7 @@ package main
 import (
 	"bytes"
 	"context"
-	"crypto/sha256"
 	"encoding/csv"
-	"encoding/hex"
 	"errors"
 	"flag"
 	"fmt"
@@ -13,17 +11,16 @@ import (
 	"math"
 	"os"
 	"runtime"
-	"slices"
 	"sort"
 	"strconv"
 	"strings"
-	"sync"
 	"time"
 	"unicode/utf8"
 
 	"github.com/schollz/progressbar/v3"
 	"golang.org/x/term"
 
+	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/internal/demo"
 	"github.com/apportion/apportion/samples"
@@ -52,30 +49,6 @@ type summarizeConfig struct {
 	firstRow  uint64
 	merge     bool
 	files     []string // the summaries to merge
-
-}
-
-// registerMethodFlags defines the flags that choose and tune the
-// attribution method, with explain's names and defaults; baselineHelp and
-// referenceHelp describe -baseline and -reference, whose defaults differ
-// between commands.
-func registerMethodFlags(fs *flag.FlagSet, c *explainConfig, baselineHelp, referenceHelp string) {
-	fs.StringVar(&c.output, "output", "", "`name` of the model output to explain (default the first)")
-	var aliases []string
-	for _, m := range gradattr.Methods() {
-		aliases = append(aliases, m.Alias())
-	}
-	ig, eg, sg := gradattr.MethodIntegratedGradients.Defaults(), gradattr.MethodExpectedGradients.Defaults(), gradattr.MethodSmoothGrad.Defaults()
-	fs.StringVar(&c.methodText, "method", defaultMethod.Alias(), "attribution method: "+strings.Join(aliases, ", ")+" (or the canonical names "+gradattr.MethodNames()+")")
-	fs.StringVar(&c.targetText, "target", defaultTarget, "output element to explain: an index `N`, or top for the largest")
-	fs.BoolVar(&c.logits, "logits", false, "explain the input of the Softmax, LogSoftmax or Sigmoid that produces the output (the logits)")
-	fs.StringVar(&c.baseline, "baseline", defaultBaseline, baselineHelp)
-	fs.StringVar(&c.reference, "reference", "", referenceHelp)
-	fs.StringVar(&c.stepsText, "steps", defaultSteps, "integration points for ig: a number `N`, or auto to refine until -tolerance")
-	fs.StringVar(&c.ruleText, "rule", "", "quadrature `rule` for ig: trapezoid, left, right, midpoint or gauss-legendre (default trapezoid)")
-	fs.Float64Var(&c.tolerance, "tolerance", ig.Tolerance, fmt.Sprintf("relative completeness gap `R` to meet; expected-grad, complete only in expectation, uses %v unless given", eg.Tolerance))
-	fs.IntVar(&c.samples, "samples", sg.Samples, "noisy copies (smoothgrad) or baseline draws (expected-grad) `N`")
-	fs.Float64Var(&c.noise, "noise", sg.Noise, "smoothgrad noise level `R`: σ / (max x − min x)")
 }
 
 // summarizeMergeFlags are the flags that make sense with -merge.
@@ -104,7 +77,7 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 	c := &sc.ex
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded pumps demo)")
 	fs.StringVar(&c.inputPath, "input", "", "rows to explain: a .csv `file` with a header (or .npy, .json, .pb); required with -model")
-	registerMethodFlags(fs, c,
+	registerMethodFlags(fs,
 		"baseline `kind` for ig: zero, mean (of -reference), or the path of a file of baseline samples (results averaged over them); default without -model: mean of the demo's reference set",
 		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the bootstrap weights (and of smoothgrad and expected-grad)")
@@ -120,27 +93,30 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 		return code
 	}
 	sc.files = files
-	c.set = map[string]bool{}
-	fs.Visit(func(f *flag.Flag) { c.set[f.Name] = true })
+	if err := c.readSettings(fs); err != nil {
+		return fail(stderr, "summarize", err)
+	}
+	// -seed seeds the bootstrap, and the method when it is a random one.
+	c.settings.Seed = c.seed
 	if msg := sc.validate(); msg != "" {
 		return usageError(stderr, "summarize", "%s", msg)
 	}
 	if sc.merge {
 		return sc.runMerge(stdout, stderr)
 	}
+	if err := c.settings.Check(); err != nil {
+		return fail(stderr, "summarize", err)
+	}
 
 	s, skipped, name, err := sc.summarize(context.Background(), stderr)
 	if err != nil {
-		if errors.Is(err, errUsage) {
-			return usageError(stderr, "summarize", "%v", err)
-		}
-		return failure(stderr, "summarize", err)
+		return fail(stderr, "summarize", err)
 	}
 	if err := sc.write(stdout, s, name); err != nil {
 		return failure(stderr, "summarize", err)
 	}
-	for _, msg := range skipped {
-		fmt.Fprintf(stderr, "apportion summarize: %s\n", msg)
+	for _, r := range skipped {
+		fmt.Fprintf(stderr, "apportion summarize: %s: %v\n", r.Where, r.Err)
 	}
 	if len(skipped) > 0 {
 		fmt.Fprintf(stderr, "apportion summarize: %d of %d rows skipped\n", len(skipped), s.Rows()+s.SkippedRows())
@@ -221,52 +197,54 @@ func (sc *summarizeConfig) validate() string {
 	if c.modelPath != "" && c.inputPath == "" {
 		return "-input is required with -model"
 	}
+	s := &c.settings
 	if c.modelPath == "" && c.inputPath == "" && sc.by == "" {
 		sc.by = demoSummaryBy
 	}
-	if c.modelPath == "" && c.reference == "" && isMethod(c.methodText, gradattr.MethodIntegratedGradients) && !c.set["baseline"] {
+	if c.modelPath == "" && s.Reference == nil && s.Method == explain.DefaultMethod && !s.Given(explain.FieldBaseline) {
 		// The demo's zero point (0 °C, 0 h since service, ...) is far
 		// from any pump; its healthy reference pumps make a baseline that
 		// answers "why not normal?".
-		c.baseline = "mean"
+		s.Baseline = explain.Baseline{Kind: gradattr.BaselineMean}
 	}
-	if c.baseline == "mean" && c.reference == "" && c.modelPath != "" {
+	if s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.Kind == gradattr.BaselineMean && s.Reference == nil && c.modelPath != "" {
 		return "-baseline mean needs -reference here: the mean of the rows themselves would differ between parts of a data set, whose summaries could then not be merged"
 	}
-	// explain's checks of the method flags. -seed also seeds the bootstrap,
-	// so it applies to every method here.
-	delete(c.set, "seed")
-	c.format, c.out = "table", ""
-	inputPath := c.inputPath
-	if c.modelPath == "" && c.inputPath == "" {
-		c.inputPath = demoSummaryFile // for explain's check only
-	}
-	msg := c.validate()
-	c.inputPath = inputPath
-	if msg != "" {
-		return msg
+	if s.NeedsReference() && !s.Method.Reads(gradattr.ParamBaseline) && s.Reference == nil && c.modelPath != "" {
+		return fmt.Sprintf("-method %s needs -reference, a file of reference samples", s.Method)
 	}
 	return ""
 }
 
-// summarize explains every row and returns the summary, the messages of
-// the skipped rows in row order, and the model's name.
-func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gradattr.Summary, []string, string, error) {
+// summarize explains every row and returns the summary, the skipped rows
+// in row order, and the model's name.
+func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gradattr.Summary, []explain.Skipped, string, error) {
 	c := &sc.ex
-	src, dm, err := sc.loadModel()
+	l, err := loadModel(c.modelPath, demo.Default)
 	if err != nil {
 		return nil, nil, "", err
 	}
-	table, err := sc.readRows(src)
+	m := l.model
+	spec, err := m.Input()
 	if err != nil {
 		return nil, nil, "", err
 	}
-	rows, names := table.Rows, table.Columns
+	if _, err := m.Output(c.settings.Output); err != nil {
+		return nil, nil, "", err
+	}
+	table, err := sc.readRows(m, spec)
+	if err != nil {
+		return nil, nil, "", err
+	}
+	rows := table.Rows
 	var first []float64
+	todo := 0
 	for _, r := range rows {
 		if r.Err == nil {
-			first = r.Values
-			break
+			if first == nil {
+				first = r.Values
+			}
+			todo++
 		}
 	}
 	if first == nil {
@@ -276,121 +254,38 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 	if table.SampleShape != nil {
 		shape = append([]int{1}, table.SampleShape...)
 	}
-	src.samples = &samples.Batch{Name: sc.inputName(), Shape: shape, Data: first, Samples: 1, Features: names}
-	if src.features == nil {
-		src.features = names
-	}
-	if err := src.finish(c); err != nil {
+	one := &samples.Batch{Name: sc.inputName(), Shape: shape, Data: first, Samples: 1}
+	if err := m.Compile(explain.CompileOptions{InputShapes: explain.OpenShapes(spec, one), Parallel: runtime.GOMAXPROCS(0)}); err != nil {
 		return nil, nil, "", err
 	}
-	if src.reference == nil && dm != nil && c.reference == "" && c.needsReference() {
-		if src.reference, err = samples.Read(bytes.NewReader(dm.Reference), dm.ReferenceFile, src.spec, src.readOptions(false)); err != nil {
-			return nil, nil, "", fmt.Errorf("demo reference set: %w", err)
-		}
+	if err := l.readDatasets(&c.settings, spec); err != nil {
+		return nil, nil, "", err
 	}
-	plan, err := c.plan(src)
+	head, err := m.Head(c.settings.Output, c.settings.Logits)
 	if err != nil {
 		return nil, nil, "", err
 	}
-	settings, err := sc.settings(src, dm, plan.options)
+	ex, err := explain.New(m, head, c.settings)
 	if err != nil {
 		return nil, nil, "", err
 	}
-	features := src.features
-	if len(features) != len(first) {
-		features = names
-	}
-	if len(features) != len(first) {
-		features = src.meta.Labels(src.samples.SampleShape()) // indices, or multi-indices for images
-	}
-	s, err := gradattr.NewSummary(gradattr.SummaryOptions{
-		Features: features, Model: src.sha256, Method: c.method, Settings: settings,
-		GroupBy: sc.by, Bootstrap: sc.bootstrap, Seed: c.seed,
-	})
+	opt, err := ex.SummaryOptions(ex.Features(table.Columns), sc.by, sc.bootstrap, c.seed)
 	if err != nil {
 		return nil, nil, "", err
 	}
-
-	msgs := make([]string, len(rows))
-	fail := func(i int, group string, err error) {
-		msgs[i] = fmt.Sprintf("%s: %v", rows[i].Where, err)
-		// A key is taken once; the rows are distinct, so Skip cannot fail.
-		_ = s.Skip(sc.firstRow+uint64(i), group, err)
-	}
-	todo := 0
-	for i, r := range rows {
-		if r.Err != nil {
-			fail(i, r.Group, r.Err)
-		} else {
-			todo++
-		}
+	s, err := gradattr.NewSummary(opt)
+	if err != nil {
+		return nil, nil, "", err
 	}
 	tick, done := summaryProgress(stderr, todo)
-	take := func(i int, res *gradattr.Result, err error) {
-		tick()
-		group := rows[i].Group
-		if err == nil && sc.by == byPredicted {
-			group = src.meta.Class(gradattr.Top(res.Outputs))
-		}
-		if err == nil {
-			err = s.Add(sc.firstRow+uint64(i), group, res.Attributions)
-		}
-		if err != nil {
-			fail(i, group, err)
-		}
-	}
-	// The first row is explained alone: the first gradient program is then
-	// built before any other, so lazily initialised state in gorgonia is
-	// set before goroutines share it.
-	var rest []int
-	for i, r := range rows {
-		if r.Err == nil {
-			rest = append(rest, i)
-		}
-	}
-	if len(rest) > 0 {
-		i := rest[0]
-		res, err := c.attribute(ctx, src, rows[i].Values, plan)
-		take(i, res, err)
-		rest = rest[1:]
-	}
-	type outcome struct {
-		i   int
-		res *gradattr.Result
-		err error
-	}
-	jobs := make(chan int)
-	results := make(chan outcome)
-	var wg sync.WaitGroup
-	for w := 0; w < max(1, min(runtime.GOMAXPROCS(0), len(rest))); w++ {
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			for i := range jobs {
-				res, err := c.attribute(ctx, src, rows[i].Values, plan)
-				results <- outcome{i, res, err}
-			}
-		}()
-	}
-	go func() {
-		for _, i := range rest {
-			jobs <- i
-		}
-		close(jobs)
-		wg.Wait()
-		close(results)
-	}()
-	for o := range results {
-		take(o.i, o.res, o.err)
-	}
+	skipped, err := ex.Summarize(ctx, rows, s, explain.SummarizeOptions{
+		FirstKey: sc.firstRow, ByPredicted: sc.by == byPredicted, Progress: tick,
+	})
 	done()
-	var skipped []string
-	for _, m := range msgs {
-		if m != "" {
-			skipped = append(skipped, m)
-		}
+	if err != nil {
+		return nil, nil, "", err
 	}
-	return s, skipped, src.modelName, nil
+	return s, skipped, m.Name, nil
 }
 
 // summaryProgress shows a progress bar on stderr when it is a terminal.
@@ -415,71 +310,8 @@ func (sc *summarizeConfig) inputName() string {
 	return sc.ex.inputPath
 }
 
-// loadModel reads the model (or the embedded pumps demo's), selects the
-// input and output, and reads the metadata names.
-func (sc *summarizeConfig) loadModel() (*source, *demo.Scenario, error) {
-	c := &sc.ex
-	src := &source{}
-	var raw []byte
-	var dm *demo.Scenario
-	var err error
-	if c.modelPath == "" {
-		if dm, err = demo.Get(demo.Default); err != nil {
-			return nil, nil, err
-		}
-		raw = dm.Model
-		src.modelName = "demo:" + dm.ModelFile
-		src.model, err = decodeModelBytes(raw, src.modelName, "")
-	} else {
-		src.modelName = c.modelPath
-		raw, src.model, err = readModelFile(c.modelPath)
-	}
-	if err != nil {
-		return nil, nil, err
-	}
-	sum := sha256.Sum256(raw)
-	src.sha256 = hex.EncodeToString(sum[:])
-	if err := src.prepare(c); err != nil {
-		return nil, nil, err
-	}
-	return src, dm, nil
-}
-
-// settings are the request's method settings, recorded in the summary and
-// compared when summaries merge. Files are identified by their SHA-256,
-// not their path, so parts summarised in different directories merge.
-func (sc *summarizeConfig) settings(src *source, dm *demo.Scenario, o gradattr.Options) (map[string]any, error) {
-	c := &sc.ex
-	digest := func(raw []byte) string {
-		sum := sha256.Sum256(raw)
-		return "sha256:" + hex.EncodeToString(sum[:])
-	}
-	reference := ""
-	if c.reference != "" {
-		raw, err := os.ReadFile(c.reference)
-		if err != nil {
-			return nil, fmt.Errorf("-reference: %w", err)
-		}
-		reference = digest(raw)
-	} else if dm != nil && src.reference != nil {
-		reference = digest(dm.Reference)
-	}
-	o.Baselines = slices.Clone(o.Baselines)
-	for i, b := range o.Baselines {
-		if b.Kind != gradattr.BaselineValues {
-			continue
-		}
-		raw, err := os.ReadFile(c.baseline)
-		if err != nil {
-			return nil, fmt.Errorf("-baseline: %w", err)
-		}
-		o.Baselines[i].Source = digest(raw)
-	}
-	return settingsJSON(c, src, o, reference), nil
-}
-
-// readRows reads the rows to explain and names the model's features.
-func (sc *summarizeConfig) readRows(src *source) (*samples.Table, error) {
+// readRows reads the rows to explain and the names of their columns.
+func (sc *summarizeConfig) readRows(m *explain.Model, spec samples.Spec) (*samples.Table, error) {
 	c := &sc.ex
 	name := sc.inputName()
 	var raw []byte
@@ -492,8 +324,8 @@ func (sc *summarizeConfig) readRows(src *source) (*samples.Table, error) {
 	if err != nil {
 		return nil, err
 	}
-	opt := samples.TableOptions{Features: src.meta.Features}
-	if ps, ok := src.spec.FixedSample(); ok {
+	opt := samples.TableOptions{Features: m.Meta.Features}
+	if ps, ok := spec.FixedSample(); ok {
 		opt.Size = samples.Product(ps)
 	}
 	if sc.by != byPredicted {
@@ -502,7 +334,7 @@ func (sc *summarizeConfig) readRows(src *source) (*samples.Table, error) {
 	if f, _ := samples.FormatOf(name); f != samples.CSV && opt.Group != "" {
 		return nil, &usageErr{fmt.Sprintf("-by %s names a column, and %s is not a CSV file; use -by predicted", sc.by, name)}
 	}
-	t, err := samples.ReadTable(bytes.NewReader(raw), name, src.spec, opt)
+	t, err := samples.ReadTable(bytes.NewReader(raw), name, spec, opt)
 	var ce *samples.ColumnError
 	if errors.As(err, &ce) && ce.Column == sc.by {
 		return nil, &usageErr{fmt.Sprintf("-by %s: no such column in %s (columns: %s)", sc.by, name, strings.Join(ce.Columns, ", "))}

@@ -2,6 +2,7 @@ package main
 
 import (
 	"bytes"
+	"context"
 	"crypto/sha256"
 	"encoding/csv"
 	"encoding/hex"
@@ -18,7 +19,10 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"github.com/apportion/apportion/explain"
+	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/internal/demo"
+	"github.com/apportion/apportion/samples"
 )
 
 // The counts below come from internal/demo/data/README.md (the documented
@@ -433,4 +437,62 @@ func TestSummarizeCSVWithoutFeatureNames(t *testing.T) {
 			assert.InDelta(t, w, f["mean"], 1e-7+1e-3*math.Abs(w), "group %q feature %d", name, k)
 		}
 	}
+}
+
+// TestSummarizeMergesWithLibrary summarises the first 37 rows of the demo's
+// held-out set with the command line and the next 53 through the library
+// (explain, samples, gradattr), with the same settings: the two summaries
+// record the same method and settings, and merged they are, bit for bit,
+// the command line's summary of all 90 rows.
+func TestSummarizeMergesWithLibrary(t *testing.T) {
+	dir := t.TempDir()
+	args := []string{"summarize", "-steps", "16", "-by", "pump_line", "-bootstrap", "64", "-format", "json"}
+	outs := map[string]string{}
+	for name, rows := range map[string][2]int{"whole": {0, 90}, "a": {0, 37}} {
+		in := writeTemp(t, name+".csv", pumpsCSV(t, rows[0], rows[1]))
+		p := filepath.Join(dir, name+".json")
+		code, _, errOut := cli(t, append(args, "-input", in, "-out", p)...)
+		require.Equal(t, exitOK, code, errOut)
+		outs[name] = p
+	}
+
+	s, err := demo.Get("pumps")
+	require.NoError(t, err)
+	m, err := explain.Decode(s.Model, "pumps.onnx", explain.DecodeOptions{})
+	require.NoError(t, err)
+	spec, err := m.Input()
+	require.NoError(t, err)
+	require.NoError(t, m.Compile(explain.CompileOptions{}))
+	tbl, err := samples.ReadTable(strings.NewReader(pumpsCSV(t, 37, 90)), "b.csv", spec,
+		samples.TableOptions{Features: m.Meta.Features, Size: 8, Group: "pump_line"})
+	require.NoError(t, err)
+	ref, err := samples.Read(bytes.NewReader(s.Reference), s.ReferenceFile, spec, m.ReadOptions(false))
+	require.NoError(t, err)
+	settings := explain.Defaults()
+	settings.Steps = 16
+	settings.Baseline = explain.Baseline{Kind: gradattr.BaselineMean}
+	settings.Reference = explain.NewDataset(s.ReferenceFile, s.Reference, ref)
+	head, err := m.Head("", false)
+	require.NoError(t, err)
+	ex, err := explain.New(m, head, settings)
+	require.NoError(t, err)
+	opt, err := ex.SummaryOptions(ex.Features(tbl.Columns), "pump_line", 64, gradattr.DefaultSeed)
+	require.NoError(t, err)
+	lib, err := gradattr.NewSummary(opt)
+	require.NoError(t, err)
+	skipped, err := ex.Summarize(context.Background(), tbl.Rows, lib, explain.SummarizeOptions{FirstKey: 37})
+	require.NoError(t, err)
+	require.Empty(t, skipped)
+
+	raw, err := os.ReadFile(outs["a"])
+	require.NoError(t, err)
+	merged, err := gradattr.DecodeSummary(bytes.NewReader(raw))
+	require.NoError(t, err)
+	assert.Equal(t, gradattr.MethodIntegratedGradients, merged.Options().Method)
+	require.NoError(t, merged.Merge(lib))
+	got, err := merged.MarshalJSON()
+	require.NoError(t, err)
+	want, err := os.ReadFile(outs["whole"])
+	require.NoError(t, err)
+	assert.Equal(t, strings.TrimSpace(string(want)), string(got))
 }

@@ -1,0 +1,121 @@
+package explain
+
+import (
+	"github.com/apportion/apportion/onnxlite"
+	"github.com/apportion/apportion/samples"
+)
+
+// Description is what a model is: the inspect document (and GET /v1/model).
+// Shapes hold numbers for fixed dimensions, strings for symbolic ones ("?"
+// when a dimension has neither), and are null when the rank is unknown.
+type Description struct {
+	Inputs      []Value           `json:"inputs"`
+	Outputs     []Value           `json:"outputs"`
+	Opset       int64             `json:"opset"`
+	Producer    string            `json:"producer"`
+	Ops         map[string]int    `json:"ops"`
+	Parameters  int64             `json:"parameters"`
+	Metadata    map[string]string `json:"metadata"`
+	Unsupported []Unsupported     `json:"unsupported"`
+}
+
+// Value is one graph input or output of a Description.
+type Value struct {
+	Name  string `json:"name"`
+	Type  string `json:"type"`
+	Shape []any  `json:"shape"`
+}
+
+// Unsupported is an operator node the engine cannot run.
+type Unsupported struct {
+	Op     string `json:"op"`
+	Node   string `json:"node"`
+	Domain string `json:"-"`
+}
+
+// Describe describes m: the inputs a caller binds (initializer-backed
+// inputs are parameters), the outputs, the default-domain opset, the
+// producer, the node count per operator (domain-qualified outside the
+// default domain), the number of float parameters, the metadata and the
+// operators the engine cannot run.
+func (m *Model) Describe() *Description {
+	g := m.Graph.Graph
+	d := &Description{
+		Inputs:      []Value{},
+		Outputs:     []Value{},
+		Opset:       m.Graph.OpsetVersion(""),
+		Producer:    m.Graph.ProducerName,
+		Ops:         map[string]int{},
+		Metadata:    map[string]string{},
+		Unsupported: []Unsupported{},
+	}
+	for _, vi := range m.Inputs() {
+		d.Inputs = append(d.Inputs, Value{vi.Name, typeName(vi.Type), shapeJSON(vi.Type)})
+	}
+	for _, vi := range g.Outputs {
+		d.Outputs = append(d.Outputs, Value{vi.Name, typeName(vi.Type), shapeJSON(vi.Type)})
+	}
+	for _, n := range g.Nodes {
+		op := n.OpType
+		if n.Domain != "" && n.Domain != "ai.onnx" {
+			op = n.Domain + "." + op
+		}
+		d.Ops[op]++
+	}
+	for _, t := range g.Initializers {
+		switch t.DType {
+		case onnxlite.Float, onnxlite.Double, onnxlite.Float16, onnxlite.BFloat16:
+			n := int64(1)
+			for _, dim := range t.Dims {
+				n *= dim
+			}
+			d.Parameters += n
+		}
+	}
+	for k, v := range m.Graph.Metadata {
+		d.Metadata[k] = v
+	}
+	for _, u := range onnxlite.Unsupported(m.Graph) {
+		d.Unsupported = append(d.Unsupported, Unsupported{Op: u.Op, Node: u.Node, Domain: u.Domain})
+	}
+	return d
+}
+
+// typeName names the type of a graph value: the element type of a tensor,
+// or the kind of a non-tensor value.
+func typeName(t *onnxlite.Type) string {
+	if t == nil {
+		return "unknown"
+	}
+	switch t.Kind {
+	case onnxlite.KindTensor:
+		return samples.TypeName(t.Elem)
+	case onnxlite.KindSparseTensor:
+		return "sparse " + samples.TypeName(t.Elem)
+	case onnxlite.KindSequence:
+		return "sequence of " + typeName(t.Inner)
+	case onnxlite.KindMap:
+		return "map from " + samples.TypeName(t.Key) + " to " + typeName(t.Inner)
+	case onnxlite.KindOptional:
+		return "optional " + typeName(t.Inner)
+	}
+	return "unknown"
+}
+
+func shapeJSON(t *onnxlite.Type) []any {
+	if t == nil || !t.HasShape {
+		return nil
+	}
+	out := make([]any, len(t.Shape))
+	for i, d := range t.Shape {
+		switch {
+		case d.HasValue:
+			out[i] = d.Value
+		case d.Param != "":
+			out[i] = d.Param
+		default:
+			out[i] = "?"
+		}
+	}
+	return out
+}

@@ -1,0 +1,84 @@
+package explain_test
+
+import (
+	"bytes"
+	"context"
+	"fmt"
+
+	"github.com/apportion/apportion/explain"
+	"github.com/apportion/apportion/internal/demo"
+	"github.com/apportion/apportion/samples"
+)
+
+// Explaining the embedded pumps demo (an invented classifier of pump
+// condition from eight sensor readings) the way the command line does:
+// integrated gradients of the predicted class against the mean of the
+// demo's normal pumps, in the stable document's vocabulary.
+func Example() {
+	s, err := demo.Get("pumps")
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+	m, err := explain.Decode(s.Model, "demo:"+s.ModelFile, explain.DecodeOptions{})
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+	if err := m.Compile(explain.CompileOptions{}); err != nil {
+		fmt.Println(err)
+		return
+	}
+	spec, err := m.Input()
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+	sample, err := samples.Read(bytes.NewReader(s.Sample), s.SampleFile, spec, m.ReadOptions(true))
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+	normal, err := samples.Read(bytes.NewReader(s.Reference), s.ReferenceFile, spec, m.ReadOptions(false))
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+
+	settings := explain.Defaults() // integrated gradients of the largest output
+	if err := settings.Set(explain.FieldBaseline, "mean"); err != nil {
+		fmt.Println(err)
+		return
+	}
+	settings.Reference = explain.NewDataset(s.ReferenceFile, s.Reference, normal)
+	head, err := m.Head(settings.Output, settings.Logits)
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+	ex, err := explain.New(m, head, settings)
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+	rep, err := ex.Explain(context.Background(), sample, nil)
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+	e := rep.Explanations[0]
+	labels := rep.Labels()
+	fmt.Printf("%s: %s of %s\n", rep.Settings.Method, m.Meta.Class(e.Result.Target), rep.Output)
+	for i, a := range e.Result.Attributions {
+		if a > 0.1 {
+			fmt.Printf("%-24s %+.2f\n", labels[i], a)
+		}
+	}
+	fmt.Println("complete:", e.Result.Completeness.OK)
+	// Output:
+	// integrated-gradients: failing of condition
+	// bearing_temp (°C)        +0.26
+	// vibration_rms (mm/s)     +0.48
+	// hours_since_service (h)  +0.25
+	// complete: true
+}

@@ -1,0 +1,179 @@
+package explain
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"io"
+	"runtime"
+	"sort"
+	"sync"
+
+	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/samples"
+)
+
+// SummaryOptions returns the options of a summary of rows explained by e:
+// the model's SHA-256, the method and the settings record, in which files
+// are named by their digest so that summaries of parts of a data set made
+// in different places merge; features, grouping, replicates and seed as
+// given (see gradattr.SummaryOptions).
+func (e *Explainer) SummaryOptions(features []string, groupBy string, bootstrap int, seed uint64) (gradattr.SummaryOptions, error) {
+	o, err := e.options(nil, byDigest)
+	if err != nil {
+		return gradattr.SummaryOptions{}, err
+	}
+	return gradattr.SummaryOptions{
+		Features: features, Model: e.model.SHA256, Method: e.settings.Method,
+		Settings: e.record(o, byDigest),
+		GroupBy:  groupBy, Bootstrap: bootstrap, Seed: seed,
+	}, nil
+}
+
+// Features names the features of a summary: the model's names, else the
+// columns the rows were read from (samples.Table.Columns), else by index
+// (see modelmeta.Meta.Labels).
+func (e *Explainer) Features(columns []string) []string {
+	switch {
+	case len(e.model.Meta.Features) == e.size:
+		return append([]string(nil), e.model.Meta.Features...)
+	case len(columns) == e.size:
+		return append([]string(nil), columns...)
+	}
+	meta := e.model.Meta
+	meta.Features = nil
+	return meta.Labels(e.shape)
+}
+
+// SummarizeOptions tune Summarize.
+type SummarizeOptions struct {
+	// FirstKey is the row key of the first row; row i has key FirstKey+i.
+	FirstKey uint64
+	// ByPredicted groups rows by their predicted class (the model's class
+	// name of the largest output) instead of Row.Group.
+	ByPredicted bool
+	// Workers is the number of rows explained at once; 0 means GOMAXPROCS.
+	Workers int
+	// Progress, when set, is called after each row explained.
+	Progress func()
+}
+
+// Skipped is a row left out of a summary, and why.
+type Skipped struct {
+	// Row is the row's index in the rows given.
+	Row int
+	// Where says where the row is (samples.Row.Where).
+	Where string
+	Err   error
+}
+
+// Summarize explains every row that was read (Row.Err nil), concurrently,
+// and adds its attributions to s under its key; a row that was not read
+// or whose explanation fails is skipped in s. It returns the skipped
+// rows in row order. The error is one that stops every row: settings that
+// cannot explain single rows.
+func (e *Explainer) Summarize(ctx context.Context, rows []samples.Row, s *gradattr.Summary, opt SummarizeOptions) ([]Skipped, error) {
+	o, err := e.options(nil, byName)
+	if err != nil {
+		return nil, err
+	}
+	failed := make([]error, len(rows))
+	fail := func(i int, group string, err error) {
+		failed[i] = err
+		// Each row key is taken once, so Skip cannot fail.
+		_ = s.Skip(opt.FirstKey+uint64(i), group, err)
+	}
+	var todo []int
+	for i, r := range rows {
+		if r.Err != nil {
+			fail(i, r.Group, r.Err)
+		} else {
+			todo = append(todo, i)
+		}
+	}
+	type outcome struct {
+		i   int
+		res *gradattr.Result
+		err error
+	}
+	jobs := make(chan int)
+	results := make(chan outcome)
+	workers := opt.Workers
+	if workers <= 0 {
+		workers = runtime.GOMAXPROCS(0)
+	}
+	var wg sync.WaitGroup
+	for range max(1, min(workers, len(todo))) {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for i := range jobs {
+				res, err := gradattr.Attribute(ctx, e.head, rows[i].Values, e.settings.Target, o)
+				results <- outcome{i, res, err}
+			}
+		}()
+	}
+	go func() {
+		for _, i := range todo {
+			jobs <- i
+		}
+		close(jobs)
+		wg.Wait()
+		close(results)
+	}()
+	for r := range results {
+		if opt.Progress != nil {
+			opt.Progress()
+		}
+		group := rows[r.i].Group
+		err := r.err
+		if err == nil && opt.ByPredicted {
+			group = e.model.Meta.Class(gradattr.Top(r.res.Outputs))
+		}
+		if err == nil {
+			err = s.Add(opt.FirstKey+uint64(r.i), group, r.res.Attributions)
+		}
+		if err != nil {
+			fail(r.i, group, err)
+		}
+	}
+	var skipped []Skipped
+	for i, err := range failed {
+		if err != nil {
+			skipped = append(skipped, Skipped{Row: i, Where: rows[i].Where, Err: err})
+		}
+	}
+	return skipped, nil
+}
+
+// ReadGroups reads feature groups: a JSON array of {"name": "...",
+// "indices": [...]} objects, or an object mapping each group name to its
+// indices (groups then come in name order).
+func ReadGroups(r io.Reader) ([]gradattr.Group, error) {
+	raw, err := io.ReadAll(io.LimitReader(r, samples.MaxBytes))
+	if err != nil {
+		return nil, err
+	}
+	var list []gradattr.Group
+	if err := json.Unmarshal(raw, &list); err == nil {
+		for i, g := range list {
+			if g.Name == "" {
+				return nil, fmt.Errorf("group %d has no name", i)
+			}
+		}
+		return list, nil
+	}
+	var byName map[string][]int
+	if err := json.Unmarshal(raw, &byName); err != nil {
+		return nil, fmt.Errorf("expected a JSON array of {\"name\", \"indices\"} objects or an object of name: [indices], got: %w", err)
+	}
+	names := make([]string, 0, len(byName))
+	for n := range byName {
+		names = append(names, n)
+	}
+	sort.Strings(names)
+	for _, n := range names {
+		list = append(list, gradattr.Group{Name: n, Indices: byName[n]})
+	}
+	return list, nil
+}
