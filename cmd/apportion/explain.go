@@ -13,6 +13,7 @@ import (
 
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/render"
 	"github.com/apportion/apportion/samples"
 )
 
@@ -159,7 +160,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	}
 
 	if c.format == "png" {
-		if _, err := writeExplainPNG(c.out, rep); err != nil {
+		if err := writePNGs(c.out, rep); err != nil {
 			return failure(stderr, "explain", err)
 		}
 		return reportFailed(stderr, rep)
@@ -169,7 +170,17 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if c.out != "" {
 		w = &buf
 	}
-	if err := renderExplanation(w, c.format, rep); err != nil {
+	switch c.format {
+	case "json":
+		err = rep.WriteJSON(w)
+	case "csv":
+		err = render.CSV(w, rep)
+	case "npy":
+		err = render.NPY(w, rep)
+	default:
+		err = render.Table(w, rep)
+	}
+	if err != nil {
 		return failure(stderr, "explain", err)
 	}
 	if c.out != "" {
@@ -178,6 +189,24 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		}
 	}
 	return reportFailed(stderr, rep)
+}
+
+// writePNGs writes one PNG per explained sample to render.PNGPath(out, ...);
+// samples that failed get no file.
+func writePNGs(out string, rep *explain.Report) error {
+	for _, e := range rep.Explanations {
+		if e.Err != nil {
+			continue
+		}
+		var buf bytes.Buffer
+		if err := render.PNG(&buf, rep, e); err != nil {
+			return fmt.Errorf("sample %d: %w", e.Index, err)
+		}
+		if err := os.WriteFile(render.PNGPath(out, e.Index, len(rep.Explanations)), buf.Bytes(), 0o644); err != nil {
+			return err
+		}
+	}
+	return nil
 }
 
 // reportFailed prints the samples that could not be explained and returns

@@ -2,12 +2,10 @@ package main
 
 import (
 	"encoding/json"
-	"fmt"
 	"io"
-	"sort"
-	"text/tabwriter"
 
 	"github.com/apportion/apportion/explain"
+	"github.com/apportion/apportion/render"
 )
 
 func runInspect(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
@@ -41,86 +39,6 @@ func runInspect(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		}
 		return exitOK
 	}
-	writeInspectTable(stdout, *modelPath, rep)
+	render.DescriptionTable(stdout, *modelPath, rep)
 	return exitOK
-}
-
-func writeInspectTable(w io.Writer, path string, rep *explain.Description) {
-	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
-	fmt.Fprintf(tw, "model\t%s\n", path)
-	fmt.Fprintf(tw, "producer\t%s\n", rep.Producer)
-	fmt.Fprintf(tw, "opset\t%d\n", rep.Opset)
-	fmt.Fprintf(tw, "parameters\t%d\n", rep.Parameters)
-	tw.Flush()
-	section := func(title string, vals []explain.Value) {
-		fmt.Fprintf(w, "\n%s\n", title)
-		tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
-		for _, v := range vals {
-			fmt.Fprintf(tw, "  %s\t%s\t%s\n", v.Name, v.Type, shapeTextAny(v.Shape))
-		}
-		tw.Flush()
-	}
-	section("inputs", rep.Inputs)
-	section("outputs", rep.Outputs)
-
-	total := 0
-	names := make([]string, 0, len(rep.Ops))
-	for op, n := range rep.Ops {
-		names = append(names, op)
-		total += n
-	}
-	sort.Strings(names)
-	fmt.Fprintf(w, "\noperators (%d nodes)\n", total)
-	tw = tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
-	for _, op := range names {
-		fmt.Fprintf(tw, "  %s\t%d\n", op, rep.Ops[op])
-	}
-	tw.Flush()
-
-	if len(rep.Metadata) > 0 {
-		keys := make([]string, 0, len(rep.Metadata))
-		for k := range rep.Metadata {
-			keys = append(keys, k)
-		}
-		sort.Strings(keys)
-		fmt.Fprintf(w, "\nmetadata\n")
-		tw = tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
-		for _, k := range keys {
-			fmt.Fprintf(tw, "  %s\t%s\n", k, rep.Metadata[k])
-		}
-		tw.Flush()
-	}
-
-	if len(rep.Unsupported) == 0 {
-		fmt.Fprintf(w, "\nunsupported operators: none\n")
-		return
-	}
-	fmt.Fprintf(w, "\nunsupported operators (%d nodes)\n", len(rep.Unsupported))
-	tw = tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
-	for _, u := range rep.Unsupported {
-		op := u.Op
-		if u.Domain != "" && u.Domain != "ai.onnx" {
-			op = u.Domain + "." + op
-		}
-		node := u.Node
-		if node == "" {
-			node = "(unnamed)"
-		}
-		fmt.Fprintf(tw, "  %s\tnode %s\n", op, node)
-	}
-	tw.Flush()
-}
-
-func shapeTextAny(s []any) string {
-	if s == nil {
-		return "unknown"
-	}
-	out := "["
-	for i, d := range s {
-		if i > 0 {
-			out += " "
-		}
-		out += fmt.Sprint(d)
-	}
-	return out + "]"
 }

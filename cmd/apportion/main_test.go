@@ -11,6 +11,7 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/internal/onnxtestdata"
 	"github.com/apportion/apportion/internal/testfiles"
 )
@@ -43,6 +44,9 @@ func setFiles(t *testing.T, dir string) (inputs, outputs []string) {
 
 // readPBTensor reads a TensorProto of the backend data as float64.
 var readPBTensor = testfiles.ReadPB
+
+// argmax is the index of the largest value, the first on ties.
+var argmax = gradattr.Top
 
 // assertClose checks got against want with the tolerances the ONNX backend
 // node tests use (rtol 1e-3, atol 1e-7: onnx/backend/test/case/node/__init__.py

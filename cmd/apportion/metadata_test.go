@@ -11,6 +11,7 @@ import (
 
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/onnxlite"
+	"github.com/apportion/apportion/render"
 )
 
 // withMetadata re-encodes the softmax backend model with metadata_props
@@ -69,7 +70,7 @@ func TestMetadataNames(t *testing.T) {
 }
 
 func regexpNum(v float64) string {
-	s := fmtNum(v)
+	s := render.Number(v)
 	out := ""
 	for _, r := range s {
 		if r == '.' || r == '+' || r == '-' {

@@ -3,16 +3,13 @@ package main
 import (
 	"context"
 	"encoding/json"
-	"fmt"
 	"io"
-	"math"
 	"runtime"
-	"strconv"
 	"strings"
-	"text/tabwriter"
 
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/onnxlite"
+	"github.com/apportion/apportion/render"
 	"github.com/apportion/apportion/samples"
 )
 
@@ -100,70 +97,6 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		}
 		return exitOK
 	}
-	writePredictTable(stdout, res.Outputs, count, m.Meta.Classes)
+	render.PredictionTable(stdout, res.Outputs, count, m.Meta.Classes)
 	return exitOK
-}
-
-// writePredictTable prints, sample by sample, each output's values; an output
-// with one value per class name is printed as a class table with the largest
-// value marked.
-func writePredictTable(w io.Writer, outs []explain.Output, samples int, classes []string) {
-	if samples < 1 {
-		samples = 1
-	}
-	for s := 0; s < samples; s++ {
-		if s > 0 {
-			fmt.Fprintln(w)
-		}
-		fmt.Fprintf(w, "sample %d\n", s)
-		for _, o := range outs {
-			vals := o.Data.Values
-			per := len(vals)
-			lo := 0
-			if len(o.Shape) > 0 && o.Shape[0] == samples {
-				per = len(vals) / samples
-				lo = s * per
-			} else if s > 0 {
-				continue // not batched: printed with sample 0
-			}
-			row := vals[lo : lo+per]
-			if len(classes) == per && per > 0 {
-				fmt.Fprintf(w, "  %s\n", o.Name)
-				tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
-				top := argmax(row)
-				for j, v := range row {
-					mark := ""
-					if j == top {
-						mark = "  <- top"
-					}
-					fmt.Fprintf(tw, "    %s\t%s%s\n", classes[j], formatValue(v, o.Data.Bits), mark)
-				}
-				tw.Flush()
-				continue
-			}
-			parts := make([]string, len(row))
-			for j, v := range row {
-				parts[j] = formatValue(v, o.Data.Bits)
-			}
-			fmt.Fprintf(w, "  %s  [%s]\n", o.Name, strings.Join(parts, " "))
-		}
-	}
-}
-
-func formatValue(v float64, bits int) string {
-	return strconv.FormatFloat(v, 'g', 6, bits)
-}
-
-// argmax is the index of the largest non-NaN value, -1 if there is none.
-func argmax(v []float64) int {
-	best := -1
-	for i, x := range v {
-		if math.IsNaN(x) {
-			continue
-		}
-		if best < 0 || x > v[best] {
-			best = i
-		}
-	}
-	return best
 }

@@ -3,19 +3,15 @@ package main
 import (
 	"bytes"
 	"context"
-	"encoding/csv"
 	"errors"
 	"flag"
 	"fmt"
 	"io"
-	"math"
 	"os"
 	"runtime"
 	"sort"
-	"strconv"
 	"strings"
 	"time"
-	"unicode/utf8"
 
 	"github.com/schollz/progressbar/v3"
 	"golang.org/x/term"
@@ -23,6 +19,7 @@ import (
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/internal/demo"
+	"github.com/apportion/apportion/render"
 	"github.com/apportion/apportion/samples"
 )
 
@@ -381,11 +378,11 @@ func (sc *summarizeConfig) write(stdout io.Writer, s *gradattr.Summary, modelNam
 			buf.WriteByte('\n')
 		}
 	case "csv":
-		err = writeSummaryCSV(&buf, s)
+		err = render.SummaryCSV(&buf, s)
 	case "png":
-		err = writeSummaryPNG(&buf, s)
+		err = render.SummaryPNG(&buf, s)
 	default:
-		writeSummaryTable(&buf, s, modelName)
+		render.SummaryTable(&buf, s, modelName)
 	}
 	if err != nil {
 		return err
@@ -395,136 +392,4 @@ func (sc *summarizeConfig) write(stdout io.Writer, s *gradattr.Summary, modelNam
 	}
 	_, err = stdout.Write(buf.Bytes())
 	return err
-}
-
-// writeSummaryTable prints the overall statistics and then each group's,
-// features ranked by mean |attribution|, with a bar of mean |a|.
-func writeSummaryTable(w io.Writer, s *gradattr.Summary, modelName string) {
-	o := s.Options()
-	model := "sha256 " + o.Model
-	if len(o.Model) > 12 {
-		model = "sha256 " + o.Model[:12] + "…"
-	}
-	if modelName != "" {
-		model = modelName + " (" + model + ")"
-	}
-	fmt.Fprintf(w, "model %s  method %s\n", model, o.Method)
-	fmt.Fprintf(w, "%d rows summarised, %d skipped; 95%% intervals from %d Poisson bootstrap replicates (seed %d)\n",
-		s.Rows(), s.SkippedRows(), o.Bootstrap, o.Seed)
-	writeGroupStats(w, "all rows", s.Overall())
-	for _, g := range s.Groups() {
-		writeGroupStats(w, o.GroupBy+" = "+g.Name, g)
-	}
-}
-
-func writeGroupStats(w io.Writer, title string, g gradattr.GroupStats) {
-	fmt.Fprintf(w, "\n%s (%d rows)\n", title, g.Rows)
-	if g.Rows == 0 {
-		return
-	}
-	ranked := g.Ranked()
-	hidden := 0
-	if len(ranked) > maxTableFeatures {
-		hidden = len(ranked) - maxTableFeatures
-		ranked = ranked[:maxTableFeatures]
-	}
-	defer func() {
-		if hidden > 0 {
-			fmt.Fprintf(w, "  (%d features with smaller mean |a| not shown; -format json or csv lists all)\n", hidden)
-		}
-	}()
-	scale := 0.0
-	for _, f := range ranked {
-		scale = math.Max(scale, f.MeanAbs)
-	}
-	num := func(v float64) string { return strconv.FormatFloat(v, 'g', 4, 64) }
-	signed := func(v float64) string {
-		if v >= 0 {
-			return "+" + num(v)
-		}
-		return num(v)
-	}
-	// Columns: feature, mean |a|, lo, hi, mean a, lo, hi.
-	cells := [][7]string{}
-	for _, f := range ranked {
-		cells = append(cells, [7]string{f.Feature, num(f.MeanAbs), num(f.MeanAbsLo), num(f.MeanAbsHi),
-			signed(f.Mean), signed(f.MeanLo), signed(f.MeanHi)})
-	}
-	var width [7]int
-	for _, r := range append(cells, [7]string{"feature", "mean |a|", "", "", "mean a"}) {
-		for k, cell := range r {
-			width[k] = max(width[k], utf8.RuneCountInString(cell))
-		}
-	}
-	pad := func(s string, n int) string { return strings.Repeat(" ", max(0, n-utf8.RuneCountInString(s))) }
-	interval := func(lo, hi string, wl, wh int) string { return "[" + pad(lo, wl) + lo + ", " + pad(hi, wh) + hi + "]" }
-	iw1 := width[2] + width[3] + 4
-	iw2 := width[5] + width[6] + 4
-	fmt.Fprintf(w, "  %s%s  %s%s  %s%s  %s%s  %s\n", "feature", pad("feature", width[0]),
-		pad("mean |a|", width[1]), "mean |a|", "95% interval", pad("95% interval", iw1),
-		pad("mean a", width[4]), "mean a", "95% interval")
-	for n, r := range cells {
-		// The right half of explain's signed bar: mean |a| ≥ 0.
-		_, right, _ := strings.Cut(bar(ranked[n].MeanAbs, scale), "│")
-		line := fmt.Sprintf("  %s%s  %s%s  %s%s  %s%s  %s%s  %s", r[0], pad(r[0], width[0]),
-			pad(r[1], width[1]), r[1], interval(r[2], r[3], width[2], width[3]), pad("", max(0, 12-iw1)),
-			pad(r[4], width[4]), r[4], interval(r[5], r[6], width[5], width[6]), pad("", max(0, 12-iw2)),
-			strings.TrimRight(right, " "))
-		fmt.Fprintln(w, strings.TrimRight(line, " "))
-	}
-}
-
-// writeSummaryCSV writes one record per group and feature, ranked within
-// each group; the first group is all rows (scope "all").
-func writeSummaryCSV(w io.Writer, s *gradattr.Summary) error {
-	cw := csv.NewWriter(w)
-	if err := cw.Write([]string{"scope", "group", "rows", "rank", "feature", "mean_abs", "mean_abs_lo", "mean_abs_hi", "mean", "mean_lo", "mean_hi", "sd"}); err != nil {
-		return err
-	}
-	g := func(v float64) string { return strconv.FormatFloat(v, 'g', -1, 64) }
-	emit := func(scope string, gs gradattr.GroupStats) error {
-		for rank, f := range gs.Ranked() {
-			rec := []string{scope, gs.Name, strconv.Itoa(gs.Rows), strconv.Itoa(rank + 1), f.Feature,
-				g(f.MeanAbs), g(f.MeanAbsLo), g(f.MeanAbsHi), g(f.Mean), g(f.MeanLo), g(f.MeanHi), g(f.SD)}
-			if err := cw.Write(rec); err != nil {
-				return err
-			}
-		}
-		return nil
-	}
-	if err := emit("all", s.Overall()); err != nil {
-		return err
-	}
-	for _, gs := range s.Groups() {
-		if err := emit(s.Options().GroupBy, gs); err != nil {
-			return err
-		}
-	}
-	cw.Flush()
-	return cw.Error()
-}
-
-// maxSummaryBars is the number of features the PNG chart shows at most.
-const maxSummaryBars = 64
-
-// writeSummaryPNG draws mean |attribution| over all rows, ranked, with the
-// bootstrap intervals as whiskers.
-func writeSummaryPNG(w io.Writer, s *gradattr.Summary) error {
-	ranked := s.Overall().Ranked()
-	if len(ranked) == 0 {
-		return fmt.Errorf("no rows were summarised: nothing to draw")
-	}
-	title := fmt.Sprintf("mean |attribution| (%s) over %d rows, 95%% bootstrap intervals", s.Options().Method, s.Rows())
-	if len(ranked) > maxSummaryBars {
-		title += fmt.Sprintf("; the %d largest of %d features", maxSummaryBars, len(ranked))
-		ranked = ranked[:maxSummaryBars]
-	}
-	labels := make([]string, len(ranked))
-	vals := make([]float64, len(ranked))
-	lo := make([]float64, len(ranked))
-	hi := make([]float64, len(ranked))
-	for i, f := range ranked {
-		labels[i], vals[i], lo[i], hi[i] = f.Feature, f.MeanAbs, f.MeanAbsLo, f.MeanAbsHi
-	}
-	return pngBars(w, title, labels, vals, lo, hi)
 }

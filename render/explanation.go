@@ -1,4 +1,4 @@
-package main
+package render
 
 import (
 	"encoding/csv"
@@ -24,19 +24,6 @@ const maxTableFeatures = 64
 
 // barWidth is the number of character cells of each half of a bar.
 const barWidth = 12
-
-func renderExplanation(w io.Writer, format string, rep *explain.Report) error {
-	switch format {
-	case "json":
-		return rep.WriteJSON(w)
-	case "csv":
-		return writeExplainCSV(w, rep)
-	case "npy":
-		return writeExplainNPY(w, rep)
-	default:
-		return writeExplainTable(w, rep)
-	}
-}
 
 // bar draws v/scale as a signed bar: a left half that fills leftwards for
 // negative values and a right half that fills rightwards for positive ones,
@@ -66,7 +53,11 @@ func bar(v, scale float64) string {
 	return left + "│" + right
 }
 
-func writeExplainTable(w io.Writer, rep *explain.Report) error {
+// Table prints the explanations for people: per sample the target and its
+// output, one row per feature (its label, value and attribution, with a
+// signed bar; the 64 largest |attribution| when there are more), the
+// group sums, the completeness check and the cost.
+func Table(w io.Writer, rep *explain.Report) error {
 	labels := rep.Labels()
 	classes := rep.Model.Meta.Classes
 	fmt.Fprintf(w, "model %s  output %s  method %s\n", rep.Model.Name, rep.Output, rep.Settings.Method)
@@ -81,9 +72,9 @@ func writeExplainTable(w io.Writer, rep *explain.Report) error {
 		if r.Target >= 0 && r.Target < len(classes) {
 			target += " (" + classes[r.Target] + ")"
 		}
-		fmt.Fprintf(w, "sample %d: target %s  output %s", e.Index, target, fmtNum(r.Output))
+		fmt.Fprintf(w, "sample %d: target %s  output %s", e.Index, target, Number(r.Output))
 		if r.Completeness != nil {
-			fmt.Fprintf(w, "  baseline output %s", fmtNum(r.BaselineOutput))
+			fmt.Fprintf(w, "  baseline output %s", Number(r.BaselineOutput))
 		}
 		fmt.Fprintln(w)
 
@@ -111,9 +102,9 @@ func writeExplainTable(w io.Writer, rep *explain.Report) error {
 			}
 			value := ""
 			if i < len(e.Values) {
-				value = fmtNum(e.Values[i])
+				value = Number(e.Values[i])
 			}
-			rows = append(rows, [3]string{label, value, fmtSigned(r.Attributions[i])})
+			rows = append(rows, [3]string{label, value, signed(r.Attributions[i])})
 		}
 		var width [3]int
 		for _, row := range rows {
@@ -145,12 +136,12 @@ func writeExplainTable(w io.Writer, rep *explain.Report) error {
 			case !cp.OK:
 				verdict = "NOT ok"
 			}
-			tol := "  tolerance " + fmtNum(cp.Tolerance)
+			tol := "  tolerance " + Number(cp.Tolerance)
 			if !cp.Judged {
 				tol = ""
 			}
 			fmt.Fprintf(w, "completeness: sum %s  expected %s  gap %s  relative gap %s%s  %s\n",
-				fmtNum(cp.Sum), fmtNum(cp.Expected), fmtSigned(cp.Gap), fmtNum(cp.RelativeGap), tol, verdict)
+				Number(cp.Sum), Number(cp.Expected), signed(cp.Gap), Number(cp.RelativeGap), tol, verdict)
 		}
 		fmt.Fprintf(w, "cost: %d gradient evaluations, %d forward passes, %s\n",
 			r.Cost.GradientEvals, r.Cost.ForwardPasses, r.Cost.Elapsed.Round(10_000))
@@ -158,20 +149,25 @@ func writeExplainTable(w io.Writer, rep *explain.Report) error {
 	return nil
 }
 
-func fmtNum(v float64) string { return strconv.FormatFloat(v, 'g', 5, 64) }
+// Number formats v for people, with five significant digits.
+func Number(v float64) string { return strconv.FormatFloat(v, 'g', 5, 64) }
 
-func fmtSigned(v float64) string {
+// signed is Number with a sign: +0.5, -0.5, 0.
+func signed(v float64) string {
 	if v == 0 {
 		return "0"
 	}
-	s := fmtNum(v)
+	s := Number(v)
 	if v >= 0 && !strings.HasPrefix(s, "+") {
 		s = "+" + s
 	}
 	return s
 }
 
-func writeExplainCSV(w io.Writer, rep *explain.Report) error {
+// CSV writes one record per feature of each explained sample: sample,
+// feature, value, attribution (shortest decimals). Failed samples have no
+// records.
+func CSV(w io.Writer, rep *explain.Report) error {
 	labels := rep.Labels()
 	cw := csv.NewWriter(w)
 	if err := cw.Write([]string{"sample", "feature", "value", "attribution"}); err != nil {
@@ -200,9 +196,9 @@ func writeExplainCSV(w io.Writer, rep *explain.Report) error {
 	return cw.Error()
 }
 
-// writeExplainNPY writes the attributions as one float64 array of shape
+// NPY writes the attributions as one float64 .npy array of shape
 // (samples, ...sample shape); a failed sample's row is NaN.
-func writeExplainNPY(w io.Writer, rep *explain.Report) error {
+func NPY(w io.Writer, rep *explain.Report) error {
 	shape := append([]int{len(rep.Explanations)}, rep.Batch.SampleShape()...)
 	per := rep.Batch.SampleSize()
 	data := make([]float64, 0, len(rep.Explanations)*per)
@@ -255,7 +251,7 @@ func writeGroupTable(w io.Writer, g *gradattr.GroupedResult) {
 	vals := make([]string, len(g.Attributions))
 	vw := utf8.RuneCountInString("attribution")
 	for i, a := range g.Attributions {
-		vals[i] = fmtSigned(a)
+		vals[i] = signed(a)
 		vw = max(vw, utf8.RuneCountInString(vals[i]))
 	}
 	pad := func(s string, n int) string { return strings.Repeat(" ", n-utf8.RuneCountInString(s)) }

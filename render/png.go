@@ -1,7 +1,6 @@
-package main
+package render
 
 import (
-	"bytes"
 	"fmt"
 	"image"
 	"image/color"
@@ -9,7 +8,6 @@ import (
 	"image/png"
 	"io"
 	"math"
-	"os"
 	"path/filepath"
 	"sort"
 	"strconv"
@@ -154,7 +152,7 @@ func colorBarT(y, h int) float64 {
 	return 1 - 2*float64(y)/float64(h-1)
 }
 
-// pngHeatmap writes a PNG of an image-shaped sample and its attributions:
+// Heatmap writes a PNG of an image-shaped sample and its attributions:
 // on the left the input img (height×width values, row-major) in grey, on the
 // right the attributions attr (same layout) blended over the same grey with
 // the diverging colour map (see overlay, divergingT and heatScale: t =
@@ -163,7 +161,7 @@ func colorBarT(y, h int) float64 {
 // Both panels are upscaled by the same whole factor, nearest neighbour, so
 // that the longer side is at least 256 pixels. The title and each note are
 // drawn as lines of text above the panels.
-func pngHeatmap(w io.Writer, title string, img []float64, height, width int, attr []float64, notes ...string) error {
+func Heatmap(w io.Writer, title string, img []float64, height, width int, attr []float64, notes ...string) error {
 	if height < 1 || width < 1 || height > maxHeatSide || width > maxHeatSide || height*width > maxHeatPixels {
 		return fmt.Errorf("png: heatmap of %d×%d pixels: expected 1 to %d pixels a side and at most %d in all", height, width, maxHeatSide, maxHeatPixels)
 	}
@@ -184,7 +182,7 @@ func pngHeatmap(w io.Writer, title string, img []float64, height, width int, att
 	defer face.Close()
 
 	s := heatScale(attr)
-	top, mid, bottom := "+"+fmtNum(s), "0", "−"+fmtNum(s)
+	top, mid, bottom := "+"+Number(s), "0", "−"+Number(s)
 	labelW := max(textWidth(face, top), textWidth(face, bottom))
 	lines := append([]string{title}, notes...)
 	l := layoutHeatmap(height, width, len(lines), labelW)
@@ -251,9 +249,9 @@ func layoutBars(face font.Face, lines, labels []string, values, lo, hi []float64
 	for i := range values {
 		cut[i] = cutLabel(labels[i])
 		l.labelW = max(l.labelW, textWidth(face, cut[i]))
-		texts[i] = fmtSigned(values[i])
+		texts[i] = signed(values[i])
 		if lo != nil && !math.IsNaN(lo[i]) && !math.IsNaN(hi[i]) {
-			texts[i] += "  [" + fmtNum(lo[i]) + ", " + fmtNum(hi[i]) + "]"
+			texts[i] += "  [" + Number(lo[i]) + ", " + Number(hi[i]) + "]"
 		}
 		valueW = max(valueW, textWidth(face, texts[i]))
 	}
@@ -310,21 +308,17 @@ func barScale(values, lo, hi []float64) float64 {
 	return m
 }
 
-// pngBars writes a horizontal signed bar chart: one row per label, a bar
+// Bars writes a horizontal signed bar chart: one row per label, a bar
 // from the zero axis to values[i], to the right in red for a positive value
 // and to the left in blue for a negative one (the ends of the heatmap's
 // colour map), the label on the left and the value printed on the right.
 // All bars share one linear scale whose half-width is the largest |value|
 // (or interval end); without negative values or interval ends the axis
-// shows its positive half only. lo and hi, when not nil, hold an interval per bar drawn
-// as a whisker with end caps, and printed after the value; an interval with a
-// NaN end is not drawn. Titles and notes are drawn above the chart.
-func pngBars(w io.Writer, title string, labels []string, values, lo, hi []float64) error {
-	return pngBarsNotes(w, title, nil, labels, values, lo, hi)
-}
-
-// pngBarsNotes is pngBars with lines of notes under the title.
-func pngBarsNotes(w io.Writer, title string, notes, labels []string, values, lo, hi []float64) error {
+// shows its positive half only. lo and hi, when not nil, hold an interval
+// per bar drawn as a whisker with end caps, and printed after the value; an
+// interval with a NaN end is not drawn. The title and the notes are drawn
+// above the chart.
+func Bars(w io.Writer, title string, notes, labels []string, values, lo, hi []float64) error {
 	n := len(values)
 	if n == 0 || n > maxBars {
 		return fmt.Errorf("png: bar chart of %d values: expected 1 to %d", n, maxBars)
@@ -394,10 +388,10 @@ func pngBarsNotes(w io.Writer, title string, notes, labels []string, values, lo,
 	}
 	ty := bottom + 9 + pngLine - 4
 	if l.left {
-		c.text("−"+fmtNum(l.scale), l.zeroX-barHalfW, ty, 0.5, colorInk)
+		c.text("−"+Number(l.scale), l.zeroX-barHalfW, ty, 0.5, colorInk)
 	}
 	c.text("0", l.zeroX, ty, 0.5, colorInk)
-	c.text("+"+fmtNum(l.scale), l.zeroX+barHalfW, ty, 0.5, colorInk)
+	c.text("+"+Number(l.scale), l.zeroX+barHalfW, ty, 0.5, colorInk)
 	return c.encode(w)
 }
 
@@ -415,9 +409,9 @@ func imageShape(shape []int) (channels, height, width int, ok bool) {
 	return channels, height, width, channels >= 1 && channels <= 3 && height >= 2 && width >= 2
 }
 
-// pngPath is the file the PNG of sample i of n goes to: out itself for one
+// PNGPath is the file the PNG of sample i of n goes to: out itself for one
 // sample, otherwise out with _i before its extension (heat.png → heat_0.png).
-func pngPath(out string, i, n int) string {
+func PNGPath(out string, i, n int) string {
 	if n == 1 {
 		return out
 	}
@@ -425,30 +419,11 @@ func pngPath(out string, i, n int) string {
 	return strings.TrimSuffix(out, ext) + "_" + strconv.Itoa(i) + ext
 }
 
-// writeExplainPNG writes one PNG per explained sample (see pngPath) and
-// returns the paths written. Samples that failed get no file.
-func writeExplainPNG(out string, rep *explain.Report) ([]string, error) {
-	var paths []string
-	for _, e := range rep.Explanations {
-		if e.Err != nil {
-			continue
-		}
-		var buf bytes.Buffer
-		if err := renderPNG(&buf, rep, e); err != nil {
-			return paths, fmt.Errorf("sample %d: %w", e.Index, err)
-		}
-		p := pngPath(out, e.Index, len(rep.Explanations))
-		if err := os.WriteFile(p, buf.Bytes(), 0o644); err != nil {
-			return paths, err
-		}
-		paths = append(paths, p)
-	}
-	return paths, nil
-}
-
-// renderPNG draws one explanation: a heatmap for an image-shaped sample, a
-// bar chart otherwise, and a bar chart of the group sums with -groups.
-func renderPNG(w io.Writer, rep *explain.Report, e explain.Explanation) error {
+// PNG draws one explained sample: a heatmap for an image-shaped sample
+// ((H,W), (1,H,W), or (C,H,W) with C ≤ 3, attributions summed over
+// channels), a bar chart of the 64 largest |attribution| otherwise, and a
+// bar chart of the group sums when the settings have groups.
+func PNG(w io.Writer, rep *explain.Report, e explain.Explanation) error {
 	r := e.Result
 	target := strconv.Itoa(r.Target)
 	if classes := rep.Model.Meta.Classes; r.Target >= 0 && r.Target < len(classes) {
@@ -460,21 +435,21 @@ func renderPNG(w io.Writer, rep *explain.Report, e explain.Explanation) error {
 		method += " (baseline " + baselineTitle(rep) + ")"
 	}
 	title := fmt.Sprintf("%s, sample %d: %s of output %s[%s]", rep.Model.Name, e.Index, method, rep.Output, target)
-	notes := []string{"output " + fmtNum(r.Output)}
+	notes := []string{"output " + Number(r.Output)}
 	if cp := r.Completeness; cp != nil {
-		notes[0] += ", baseline output " + fmtNum(r.BaselineOutput)
+		notes[0] += ", baseline output " + Number(r.BaselineOutput)
 		verdict := ""
 		if cp.Judged {
 			verdict = " (ok)"
 			if !cp.OK {
-				verdict = " (NOT ok: above the tolerance " + fmtNum(cp.Tolerance) + ")"
+				verdict = " (NOT ok: above the tolerance " + Number(cp.Tolerance) + ")"
 			}
 		}
 		notes = append(notes, fmt.Sprintf("completeness: sum %s, expected %s, relative gap %s%s",
-			fmtNum(cp.Sum), fmtNum(cp.Expected), fmtNum(cp.RelativeGap), verdict))
+			Number(cp.Sum), Number(cp.Expected), Number(cp.RelativeGap), verdict))
 	}
 	if g := e.Grouped; g != nil {
-		return pngBarsNotes(w, title, notes, g.Names, g.Attributions, nil, nil)
+		return Bars(w, title, notes, g.Names, g.Attributions, nil, nil)
 	}
 	if ch, h, wd, ok := imageShape(rep.Batch.SampleShape()); ok && len(r.Attributions) == ch*h*wd {
 		img := make([]float64, h*wd)
@@ -488,7 +463,7 @@ func renderPNG(w io.Writer, rep *explain.Report, e explain.Explanation) error {
 		if ch > 1 {
 			notes = append(notes, fmt.Sprintf("%d channels: the input's mean in grey, the attributions summed over channels", ch))
 		}
-		return pngHeatmap(w, title, img, h, wd, attr, notes...)
+		return Heatmap(w, title, img, h, wd, attr, notes...)
 	}
 	labels := rep.Labels()
 	order := make([]int, len(r.Attributions))
@@ -510,11 +485,11 @@ func renderPNG(w io.Writer, rep *explain.Report, e explain.Explanation) error {
 			names[k] = labels[i]
 		}
 		if i < len(e.Values) {
-			names[k] += " = " + fmtNum(e.Values[i])
+			names[k] += " = " + Number(e.Values[i])
 		}
 		vals[k] = r.Attributions[i]
 	}
-	return pngBarsNotes(w, title, notes, names, vals, nil, nil)
+	return Bars(w, title, notes, names, vals, nil, nil)
 }
 
 // baselineTitle names the baseline in a figure title: zero, blur (blur:S
@@ -524,7 +499,11 @@ func baselineTitle(rep *explain.Report) string {
 	switch b := rep.Settings.Baseline; b.Kind {
 	case gradattr.BaselineMean:
 		if ref := rep.Settings.Reference; ref != nil {
-			return "mean of " + filepath.Base(ref.Name)
+			name := ref.Name
+			if ref.Batch != nil {
+				name = ref.Batch.Name // the file's own name, without a "demo:" label
+			}
+			return "mean of " + filepath.Base(name)
 		}
 		return "mean of the input"
 	case gradattr.BaselineBlur:

@@ -1,0 +1,146 @@
+package render
+
+import (
+	"fmt"
+	"io"
+	"sort"
+	"strconv"
+	"strings"
+	"text/tabwriter"
+
+	"github.com/apportion/apportion/explain"
+	"github.com/apportion/apportion/gradattr"
+)
+
+// PredictionTable prints, sample by sample, each output's values; an output
+// with one value per class name is printed as a class table with the largest
+// value marked.
+func PredictionTable(w io.Writer, outs []explain.Output, samples int, classes []string) {
+	if samples < 1 {
+		samples = 1
+	}
+	for s := 0; s < samples; s++ {
+		if s > 0 {
+			fmt.Fprintln(w)
+		}
+		fmt.Fprintf(w, "sample %d\n", s)
+		for _, o := range outs {
+			vals := o.Data.Values
+			per := len(vals)
+			lo := 0
+			if len(o.Shape) > 0 && o.Shape[0] == samples {
+				per = len(vals) / samples
+				lo = s * per
+			} else if s > 0 {
+				continue // not batched: printed with sample 0
+			}
+			row := vals[lo : lo+per]
+			if len(classes) == per && per > 0 {
+				fmt.Fprintf(w, "  %s\n", o.Name)
+				tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+				top := gradattr.Top(row)
+				for j, v := range row {
+					mark := ""
+					if j == top {
+						mark = "  <- top"
+					}
+					fmt.Fprintf(tw, "    %s\t%s%s\n", classes[j], formatValue(v, o.Data.Bits), mark)
+				}
+				tw.Flush()
+				continue
+			}
+			parts := make([]string, len(row))
+			for j, v := range row {
+				parts[j] = formatValue(v, o.Data.Bits)
+			}
+			fmt.Fprintf(w, "  %s  [%s]\n", o.Name, strings.Join(parts, " "))
+		}
+	}
+}
+
+func formatValue(v float64, bits int) string {
+	return strconv.FormatFloat(v, 'g', 6, bits)
+}
+
+// DescriptionTable prints a model's description (explain.Model.Describe)
+// for people: the facts, then the inputs, outputs, operators, metadata and
+// the operators the engine cannot run. path names the model.
+func DescriptionTable(w io.Writer, path string, rep *explain.Description) {
+	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+	fmt.Fprintf(tw, "model\t%s\n", path)
+	fmt.Fprintf(tw, "producer\t%s\n", rep.Producer)
+	fmt.Fprintf(tw, "opset\t%d\n", rep.Opset)
+	fmt.Fprintf(tw, "parameters\t%d\n", rep.Parameters)
+	tw.Flush()
+	section := func(title string, vals []explain.Value) {
+		fmt.Fprintf(w, "\n%s\n", title)
+		tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+		for _, v := range vals {
+			fmt.Fprintf(tw, "  %s\t%s\t%s\n", v.Name, v.Type, shapeTextAny(v.Shape))
+		}
+		tw.Flush()
+	}
+	section("inputs", rep.Inputs)
+	section("outputs", rep.Outputs)
+
+	total := 0
+	names := make([]string, 0, len(rep.Ops))
+	for op, n := range rep.Ops {
+		names = append(names, op)
+		total += n
+	}
+	sort.Strings(names)
+	fmt.Fprintf(w, "\noperators (%d nodes)\n", total)
+	tw = tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+	for _, op := range names {
+		fmt.Fprintf(tw, "  %s\t%d\n", op, rep.Ops[op])
+	}
+	tw.Flush()
+
+	if len(rep.Metadata) > 0 {
+		keys := make([]string, 0, len(rep.Metadata))
+		for k := range rep.Metadata {
+			keys = append(keys, k)
+		}
+		sort.Strings(keys)
+		fmt.Fprintf(w, "\nmetadata\n")
+		tw = tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+		for _, k := range keys {
+			fmt.Fprintf(tw, "  %s\t%s\n", k, rep.Metadata[k])
+		}
+		tw.Flush()
+	}
+
+	if len(rep.Unsupported) == 0 {
+		fmt.Fprintf(w, "\nunsupported operators: none\n")
+		return
+	}
+	fmt.Fprintf(w, "\nunsupported operators (%d nodes)\n", len(rep.Unsupported))
+	tw = tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+	for _, u := range rep.Unsupported {
+		op := u.Op
+		if u.Domain != "" && u.Domain != "ai.onnx" {
+			op = u.Domain + "." + op
+		}
+		node := u.Node
+		if node == "" {
+			node = "(unnamed)"
+		}
+		fmt.Fprintf(tw, "  %s\tnode %s\n", op, node)
+	}
+	tw.Flush()
+}
+
+func shapeTextAny(s []any) string {
+	if s == nil {
+		return "unknown"
+	}
+	out := "["
+	for i, d := range s {
+		if i > 0 {
+			out += " "
+		}
+		out += fmt.Sprint(d)
+	}
+	return out + "]"
+}
