@@ -314,33 +314,62 @@ func loadModel(modelPath, demoName string) (*loadedModel, error) {
 }
 
 // readDatasets reads the files the settings name (-reference, -baseline
-// FILE) as samples of spec, and the demo's reference set when the settings
-// need one and name none.
-func (l *loadedModel) readDatasets(s *explain.Settings, spec samples.Spec) error {
-	for _, d := range s.Datasets() {
-		flag := explain.FieldReference
-		if d != s.Reference {
-			flag = explain.FieldBaseline
-		}
-		raw, err := samples.ReadLimited(d.Name)
-		if err != nil {
-			return fmt.Errorf("%s: input %s (for %q): %w", flagName(flag), d.Name, spec.Name, err)
-		}
-		b, err := samples.Read(bytes.NewReader(raw), d.Name, spec, l.model.ReadOptions(false))
-		if err != nil {
-			return fmt.Errorf("%s: %w", flagName(flag), err)
-		}
-		*d = *explain.NewDataset(d.Name, raw, b)
+// FILE), and the demo's reference set when the settings need one and name
+// none.
+func (l *loadedModel) readDatasets(s *explain.Settings) error {
+	var err error
+	switch {
+	case s.Reference != nil && s.Reference.Batch == nil:
+		s.Reference, err = l.reference(s.Reference.Name)
+	case s.Reference == nil && s.NeedsReference():
+		s.Reference, err = l.reference("")
 	}
-	if s.Reference == nil && s.NeedsReference() && l.demo != nil && l.demo.reference != nil {
-		name := l.demo.referenceFile
-		b, err := samples.Read(bytes.NewReader(l.demo.reference), name, spec, l.model.ReadOptions(false))
-		if err != nil {
-			return fmt.Errorf("demo reference set: %w", err)
-		}
-		s.Reference = explain.NewDataset("demo:"+name, l.demo.reference, b)
+	if err != nil {
+		return err
 	}
-	return nil
+	if b := &s.Baseline; b.Kind == gradattr.BaselineValues && b.Samples.Batch == nil {
+		b.Samples, err = l.readSet(b.Samples.Name, explain.FieldBaseline)
+	}
+	return err
+}
+
+// reference reads the reference set at path, or the demo's when path is ""
+// and the model is the demo's; nil when there is neither.
+func (l *loadedModel) reference(path string) (*explain.Dataset, error) {
+	if path != "" {
+		return l.readSet(path, explain.FieldReference)
+	}
+	if l.demo == nil || l.demo.reference == nil {
+		return nil, nil
+	}
+	name, raw := l.demo.referenceFile, l.demo.reference
+	spec, err := l.model.Input()
+	if err != nil {
+		return nil, err
+	}
+	b, err := samples.Read(bytes.NewReader(raw), name, spec, l.model.ReadOptions(false))
+	if err != nil {
+		return nil, fmt.Errorf("demo reference set: %w", err)
+	}
+	return explain.NewDataset("demo:"+name, raw, b), nil
+}
+
+// readSet reads the file at path as samples for the model; flag names the
+// flag that gave it, in errors.
+func (l *loadedModel) readSet(path string, flag explain.Field) (*explain.Dataset, error) {
+	spec, err := l.model.Input()
+	if err != nil {
+		return nil, err
+	}
+	raw, err := samples.ReadLimited(path)
+	if err != nil {
+		return nil, fmt.Errorf("%s: input %s (for %q): %w", flagName(flag), path, spec.Name, err)
+	}
+	b, err := samples.Read(bytes.NewReader(raw), path, spec, l.model.ReadOptions(false))
+	if err != nil {
+		return nil, fmt.Errorf("%s: %w", flagName(flag), err)
+	}
+	return explain.NewDataset(path, raw, b), nil
 }
 
 // load reads the model and the samples, compiles the model with parallel
@@ -370,7 +399,7 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 	if err := m.Compile(explain.CompileOptions{InputShapes: explain.OpenShapes(spec, batch), Parallel: parallel}); err != nil {
 		return nil, nil, err
 	}
-	if err := l.readDatasets(&c.settings, spec); err != nil {
+	if err := l.readDatasets(&c.settings); err != nil {
 		return nil, nil, err
 	}
 	if c.settings.Method == gradattr.MethodExpectedGradients && c.settings.Reference == nil {

@@ -255,7 +255,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 	if err := m.Compile(explain.CompileOptions{InputShapes: explain.OpenShapes(spec, one), Parallel: runtime.GOMAXPROCS(0)}); err != nil {
 		return nil, nil, "", err
 	}
-	if err := l.readDatasets(&c.settings, spec); err != nil {
+	if err := l.readDatasets(&c.settings); err != nil {
 		return nil, nil, "", err
 	}
 	head, err := m.Head(c.settings.Output, c.settings.Logits)

@@ -1,9 +1,8 @@
-package main
+package httpapi
 
 import (
 	"context"
 	"net/http"
-	"sync/atomic"
 
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
@@ -12,9 +11,9 @@ import (
 	"github.com/apportion/apportion/gradattr"
 )
 
-// serveMetrics are the server's Prometheus metrics, in a registry of its
+// metrics are the server's Prometheus metrics, in a registry of its
 // own (so that several servers, in tests, do not share counters).
-type serveMetrics struct {
+type metrics struct {
 	reg            *prometheus.Registry
 	requests       *prometheus.CounterVec
 	latency        *prometheus.HistogramVec
@@ -25,15 +24,13 @@ type serveMetrics struct {
 	passes         *prometheus.CounterVec
 	points         *prometheus.CounterVec
 	stacked        prometheus.Histogram
-
-	passCount atomic.Int64 // every pass, for tests and Passes
 }
 
 // latencyBuckets span 0.5 ms to about 33 s in powers of two.
 var latencyBuckets = prometheus.ExponentialBuckets(0.0005, 2, 17)
 
-func newServeMetrics() *serveMetrics {
-	m := &serveMetrics{reg: prometheus.NewRegistry()}
+func newMetrics() *metrics {
+	m := &metrics{reg: prometheus.NewRegistry()}
 	m.requests = prometheus.NewCounterVec(prometheus.CounterOpts{
 		Name: "apportion_http_requests_total",
 		Help: "HTTP requests answered, by route and status code (canceled: the client left first).",
@@ -70,7 +67,7 @@ func newServeMetrics() *serveMetrics {
 	}, []string{"kind"})
 	m.stacked = prometheus.NewHistogram(prometheus.HistogramOpts{
 		Name:    "apportion_stacked_calls",
-		Help:    "Model calls of concurrent requests stacked into one pass (with -coalesce).",
+		Help:    "Model calls of concurrent requests stacked into one pass (when coalescing).",
 		Buckets: []float64{1, 2, 3, 4, 6, 8, 12, 16, 32, 64},
 	})
 	m.reg.MustRegister(m.requests, m.latency, m.explainLatency, m.incomplete, m.queueDepth,
@@ -79,14 +76,13 @@ func newServeMetrics() *serveMetrics {
 	return m
 }
 
-func (m *serveMetrics) countPass(kind string, n int) {
-	m.passCount.Add(1)
+func (m *metrics) countPass(kind string, n int) {
 	m.passes.WithLabelValues(kind).Inc()
 	m.points.WithLabelValues(kind).Add(float64(n))
 }
 
 // handler serves the registry in the Prometheus text format.
-func (m *serveMetrics) handler() handlerFunc {
+func (m *metrics) handler() handlerFunc {
 	h := promhttp.HandlerFor(m.reg, promhttp.HandlerOpts{})
 	return func(w http.ResponseWriter, r *http.Request, _ *requestLog) { h.ServeHTTP(w, r) }
 }
@@ -94,7 +90,7 @@ func (m *serveMetrics) handler() handlerFunc {
 // countingModel counts the passes that reach the network.
 type countingModel struct {
 	m       gradattr.Model
-	metrics *serveMetrics
+	metrics *metrics
 }
 
 func (c *countingModel) InputShape() []int { return c.m.InputShape() }

@@ -1,4 +1,20 @@
-package main
+// Package httpapi serves one model over HTTP: an http.Handler for the /v1
+// API, to mount in one's own mux or serve as it is.
+//
+//	GET  /healthz      liveness: {"status": "ok", "model": name}
+//	GET  /v1/model     the model's description (explain.Description)
+//	POST /v1/predict   {"inputs": [sample, ...]}: the predict document
+//	POST /v1/explain   {"inputs", "method", "target", "steps", "rule",
+//	                   "tolerance", "baseline", "samples", "noise", "seed",
+//	                   "logits"}: the explain document; absent fields take
+//	                   explain.Defaults
+//	GET  /metrics      Prometheus text format
+//
+// Errors are {"error": "..."}: 400 for a bad request, 413 for a body over
+// the limit, 503 with Retry-After when the queue is full, 504 past the time
+// limit. A bounded pool of workers computes requests; with coalescing, the
+// model passes of concurrent requests are stacked into shared batches.
+package httpapi
 
 import (
 	"bytes"
@@ -9,7 +25,9 @@ import (
 	"io"
 	"log/slog"
 	"math"
+	"net"
 	"net/http"
+	"runtime"
 	"strconv"
 	"sync"
 	"time"
@@ -20,52 +38,129 @@ import (
 	"github.com/apportion/apportion/samples"
 )
 
-// server is the state shared by the HTTP handlers: one decoded and compiled
-// model, its reference set, the worker pool and the metrics.
-type server struct {
-	cfg       serveConfig
-	log       *slog.Logger
-	model     *explain.Model
-	spec      samples.Spec     // the model's runtime input
-	reference *explain.Dataset // nil without one
-	inspect   []byte           // the /v1/model document
-	pool      *workPool
-	metrics   *serveMetrics
+// Defaults of Options, and the serve command's.
+const (
+	// DefaultMaxBody is the largest request body, in bytes.
+	DefaultMaxBody = 8 << 20
+	// DefaultTimeout bounds one request, queueing included.
+	DefaultTimeout = 30 * time.Second
+	// DefaultQueue is the serve command's queue length.
+	DefaultQueue = 64
+	// DefaultCoalesce is whether the serve command stacks the passes of
+	// concurrent requests (DEVELOPERS.md has the measurements behind it).
+	DefaultCoalesce = true
+	// DefaultDrain is how long Serve waits for requests in flight when it
+	// stops.
+	DefaultDrain = 10 * time.Second
+	// retryAfter is the Retry-After of a 503, in seconds.
+	retryAfter = 1
+	// coalesceFanIn is the number of requests computed at once per pass
+	// runner when coalescing: their model calls wait for a runner together,
+	// so that a runner can stack them into one pass.
+	coalesceFanIn = 4
+)
 
-	mu       sync.Mutex
-	heads    map[bool]gradattr.Model // by Selection.Logits
-	batchers []*batcher
+// Options configure a Handler. The zero value means: bodies up to
+// DefaultMaxBody, DefaultTimeout per request, GOMAXPROCS workers, no queue
+// (a request that finds every worker busy gets 503), no coalescing, no
+// reference set, no request log.
+type Options struct {
+	// MaxBody is the largest request body, in bytes; 0 means
+	// DefaultMaxBody. It is decided from Content-Length when the client
+	// sends it.
+	MaxBody int64
+	// Timeout bounds one request, queueing included; 0 means
+	// DefaultTimeout. A request past it gets 504 and stops at its next
+	// model pass.
+	Timeout time.Duration
+	// Workers is the number of requests computed at once; 0 means
+	// GOMAXPROCS, times 4 with Coalesce (so that passes meet).
+	Workers int
+	// Queue is the number of requests that may wait for a worker.
+	Queue int
+	// Coalesce stacks the model passes of concurrent requests into shared
+	// batches, run by GOMAXPROCS (at most Workers) pass runners. A
+	// sample's results do not depend on its batch, so answers are the
+	// same.
+	Coalesce bool
+	// Reference is the reference set: expected gradients draw from it and
+	// the mean baseline averages it (without one, the mean baseline
+	// averages the request's inputs).
+	Reference *explain.Dataset
+	// Logger gets one line per request; nil logs nothing.
+	Logger *slog.Logger
 }
 
-// newServer loads and compiles the model of cfg and starts the workers.
-func newServer(cfg serveConfig, log *slog.Logger) (*server, error) {
-	s := &server{cfg: cfg, log: log, heads: map[bool]gradattr.Model{}, metrics: newServeMetrics()}
-	l, err := loadModel(cfg.modelPath, "")
-	if err != nil {
+// Handler serves the /v1 API for one model. It is safe for concurrent use;
+// Close stops its workers.
+type Handler struct {
+	opt       Options
+	runners   int // passes run at once (coalescing only)
+	log       *slog.Logger
+	model     *explain.Model
+	spec      samples.Spec // the model's runtime input
+	inspect   []byte       // the /v1/model document
+	pool      *workPool
+	metrics   *metrics
+	mux       *http.ServeMux
+	mu        sync.Mutex
+	heads     map[bool]gradattr.Model // by Selection.Logits
+	batchers  []*batcher
+	closeOnce sync.Once
+}
+
+// New compiles m for serving (one goroutine per call: the concurrency
+// comes from requests) and starts the workers. The model must have one
+// runtime input of a fixed shape per sample.
+func New(m *explain.Model, opt Options) (*Handler, error) {
+	procs := runtime.GOMAXPROCS(0)
+	switch {
+	case opt.MaxBody < 0 || opt.Timeout < 0 || opt.Workers < 0 || opt.Queue < 0:
+		return nil, fmt.Errorf("httpapi: negative limits: max body %d, timeout %v, workers %d, queue %d", opt.MaxBody, opt.Timeout, opt.Workers, opt.Queue)
+	}
+	if opt.MaxBody == 0 {
+		opt.MaxBody = DefaultMaxBody
+	}
+	if opt.Timeout == 0 {
+		opt.Timeout = DefaultTimeout
+	}
+	if opt.Workers == 0 {
+		opt.Workers = procs
+		if opt.Coalesce {
+			opt.Workers = procs * coalesceFanIn
+		}
+	}
+	h := &Handler{opt: opt, runners: min(procs, opt.Workers), model: m, log: opt.Logger,
+		heads: map[bool]gradattr.Model{}, metrics: newMetrics()}
+	if h.log == nil {
+		h.log = slog.New(slog.DiscardHandler)
+	}
+	var err error
+	if h.spec, err = m.Input(); err != nil {
 		return nil, err
 	}
-	m := l.model
-	if s.spec, err = m.Input(); err != nil {
-		return nil, err
+	if _, ok := h.spec.FixedSample(); !ok {
+		return nil, fmt.Errorf("serving needs a model whose input %q has a fixed shape per sample, got %s", h.spec.Name, samples.ShapeString(h.spec.Shape))
 	}
-	if _, ok := s.spec.FixedSample(); !ok {
-		return nil, fmt.Errorf("serving needs a model whose input %q has a fixed shape per sample, got %s", s.spec.Name, samples.ShapeString(s.spec.Shape))
+	if ref := opt.Reference; ref != nil {
+		if ref.Batch == nil {
+			return nil, fmt.Errorf("reference %s: the samples are not read", ref.Name)
+		}
+		if got, want := ref.Batch.SampleSize(), samples.Product(h.sampleShape()); got != want {
+			return nil, fmt.Errorf("reference %s: expected samples of %d values, got %d", ref.Name, want, got)
+		}
 	}
 	if err := m.Compile(explain.CompileOptions{Parallel: 1}); err != nil {
 		return nil, err
 	}
-	s.model = m
-	s.pool = newWorkPool(cfg.workers, cfg.queue, s.metrics)
+	h.pool = newWorkPool(opt.Workers, opt.Queue, h.metrics)
 	started := false
 	defer func() {
 		if !started {
-			s.Close()
+			h.Close()
 		}
 	}()
-	if _, err := s.head(false); err != nil {
-		return nil, err
-	}
-	if err := s.loadReference(l.demo); err != nil {
+	if _, err := h.head(false); err != nil {
 		return nil, err
 	}
 	var buf bytes.Buffer
@@ -74,99 +169,106 @@ func newServer(cfg serveConfig, log *slog.Logger) (*server, error) {
 	if err := enc.Encode(m.Describe()); err != nil {
 		return nil, err
 	}
-	s.inspect = buf.Bytes()
+	h.inspect = buf.Bytes()
+	h.routes()
 	started = true
-	return s, nil
+	return h, nil
 }
 
-// loadReference reads -reference, or the demo's reference set when serving
-// the demo model.
-func (s *server) loadReference(dm *demoFiles) error {
-	name, raw := s.cfg.reference, []byte(nil)
-	var err error
-	switch {
-	case name != "":
-		if raw, err = samples.ReadLimited(name); err != nil {
-			return fmt.Errorf("-reference: input %s (for %q): %w", name, s.spec.Name, err)
-		}
-	case dm != nil && dm.reference != nil:
-		name, raw = dm.referenceFile, dm.reference
-	default:
-		return nil
-	}
-	b, err := samples.Read(bytes.NewReader(raw), name, s.spec, s.model.ReadOptions(false))
-	if err != nil {
-		if s.cfg.reference != "" {
-			return fmt.Errorf("-reference: %w", err)
-		}
-		return fmt.Errorf("demo reference: %w", err)
-	}
-	if s.cfg.reference == "" {
-		name = "demo:" + name
-	}
-	if got, want := b.SampleSize(), samples.Product(s.sampleShape()); got != want {
-		return fmt.Errorf("reference %s: expected samples of %d values, got %d", name, want, got)
-	}
-	s.reference = explain.NewDataset(name, raw, b)
-	return nil
-}
-
-func (s *server) sampleShape() []int {
-	ps, _ := s.spec.FixedSample()
+func (h *Handler) sampleShape() []int {
+	ps, _ := h.spec.FixedSample()
 	return ps
 }
 
 // head returns the explained output of the model (the logits before its
-// final Softmax with logits set), counted and, with -coalesce, stacked.
-func (s *server) head(logits bool) (gradattr.Model, error) {
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	if h, ok := s.heads[logits]; ok {
-		return h, nil
+// final Softmax with logits set), counted and, with coalescing, stacked.
+func (h *Handler) head(logits bool) (gradattr.Model, error) {
+	h.mu.Lock()
+	defer h.mu.Unlock()
+	if m, ok := h.heads[logits]; ok {
+		return m, nil
 	}
-	h, err := s.model.Head("", logits)
+	hd, err := h.model.Head("", logits)
 	if err != nil {
 		return nil, err
 	}
-	var m gradattr.Model = &countingModel{m: h, metrics: s.metrics}
-	if s.cfg.coalesce {
-		b := newBatcher(m, s.cfg.runners, coalesceMaxPoints, coalesceWindow, s.pool.Active, s.metrics)
-		s.batchers = append(s.batchers, b)
+	var m gradattr.Model = &countingModel{m: hd, metrics: h.metrics}
+	if h.opt.Coalesce {
+		b := newBatcher(m, h.runners, coalesceMaxPoints, coalesceWindow, h.pool.Active, h.metrics)
+		h.batchers = append(h.batchers, b)
 		m = b
 	}
-	s.heads[logits] = m
+	h.heads[logits] = m
 	return m, nil
 }
 
-// Close stops the workers and the pass runners. Call it after Serve has
-// returned.
-func (s *server) Close() {
-	s.pool.Close()
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	for _, b := range s.batchers {
-		b.Close()
-	}
-	s.batchers = nil
-	s.heads = map[bool]gradattr.Model{}
+// Close stops the workers and the pass runners, after the requests
+// queued. Call it once no more requests come (after Serve has returned).
+func (h *Handler) Close() {
+	h.closeOnce.Do(func() {
+		h.pool.Close()
+		h.mu.Lock()
+		defer h.mu.Unlock()
+		for _, b := range h.batchers {
+			b.Close()
+		}
+		h.batchers = nil
+		h.heads = map[bool]gradattr.Model{}
+	})
 }
 
-// Passes is the number of model passes (Forward and Gradient calls that
-// reached the network) since the server started.
-func (s *server) Passes() int64 { return s.metrics.passCount.Load() }
+// ServeHTTP answers one request.
+func (h *Handler) ServeHTTP(w http.ResponseWriter, r *http.Request) { h.mux.ServeHTTP(w, r) }
 
-// Handler returns the server's routes.
-func (s *server) Handler() http.Handler {
+func (h *Handler) routes() {
 	mux := http.NewServeMux()
-	mux.Handle("/healthz", s.route("/healthz", http.MethodGet, s.healthz))
-	mux.Handle("/v1/model", s.route("/v1/model", http.MethodGet, s.describe))
-	mux.Handle("/v1/predict", s.route("/v1/predict", http.MethodPost, s.predict))
-	mux.Handle("/v1/explain", s.route("/v1/explain", http.MethodPost, s.explain))
-	mux.Handle("/metrics", s.route("/metrics", http.MethodGet, s.metrics.handler()))
-	mux.Handle("/", s.route("other", "", func(w http.ResponseWriter, r *http.Request, _ *requestLog) {
+	mux.Handle("/healthz", h.route("/healthz", http.MethodGet, h.healthz))
+	mux.Handle("/v1/model", h.route("/v1/model", http.MethodGet, h.describe))
+	mux.Handle("/v1/predict", h.route("/v1/predict", http.MethodPost, h.predict))
+	mux.Handle("/v1/explain", h.route("/v1/explain", http.MethodPost, h.explain))
+	mux.Handle("/metrics", h.route("/metrics", http.MethodGet, h.metrics.handler()))
+	mux.Handle("/", h.route("other", "", func(w http.ResponseWriter, r *http.Request, _ *requestLog) {
 		writeError(w, &httpError{http.StatusNotFound, fmt.Sprintf("no route %s; the routes are /healthz, /v1/model, /v1/predict, /v1/explain and /metrics", r.URL.Path)})
 	}))
-	return mux
+	h.mux = mux
+}
+
+// Serve answers requests on ln with h until ctx ends, then shuts down
+// gracefully: it stops accepting connections and waits up to drain for the
+// requests in flight (http.Server.Shutdown), after which it closes the
+// remaining connections. Errors of the server, not of requests, go to
+// log.
+func Serve(ctx context.Context, ln net.Listener, h http.Handler, drain time.Duration, log *slog.Logger) error {
+	if log == nil {
+		log = slog.New(slog.DiscardHandler)
+	}
+	hs := &http.Server{
+		Handler:           h,
+		ReadHeaderTimeout: 10 * time.Second,
+		ErrorLog:          slog.NewLogLogger(log.Handler(), slog.LevelWarn),
+	}
+	errc := make(chan error, 1)
+	go func() { errc <- hs.Serve(ln) }()
+	select {
+	case err := <-errc:
+		return err
+	case <-ctx.Done():
+	}
+	log.Info("shutting down", "drain", drain.String())
+	sctx, cancel := context.WithTimeout(context.Background(), drain)
+	defer cancel()
+	err := hs.Shutdown(sctx)
+	if err != nil {
+		log.Warn("drain time over; closing the remaining connections", "error", err.Error())
+		hs.Close()
+	}
+	if serr := <-errc; serr != nil && !errors.Is(serr, http.ErrServerClosed) {
+		return serr
+	}
+	if errors.Is(err, context.DeadlineExceeded) {
+		return nil // reported above; the remaining requests were cut
+	}
+	return err
 }
 
 // httpError is a failed request: its status and message.
@@ -191,7 +293,7 @@ func writeError(w http.ResponseWriter, e *httpError) {
 		sw.errMsg = e.msg
 	}
 	if e.code == http.StatusServiceUnavailable {
-		w.Header().Set("Retry-After", strconv.Itoa(defaultRetryAfter))
+		w.Header().Set("Retry-After", strconv.Itoa(retryAfter))
 	}
 	writeJSONBody(w, e.code, errorJSON{e.msg})
 }
@@ -244,7 +346,7 @@ func (w *statusWriter) Write(b []byte) (int, error) {
 type handlerFunc func(w http.ResponseWriter, r *http.Request, rl *requestLog)
 
 // route wraps h with the method check, the metrics and the request log.
-func (s *server) route(name, method string, h handlerFunc) http.Handler {
+func (h *Handler) route(name, method string, fn handlerFunc) http.Handler {
 	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
 		start := time.Now()
 		sw := &statusWriter{ResponseWriter: w}
@@ -253,17 +355,17 @@ func (s *server) route(name, method string, h handlerFunc) http.Handler {
 			sw.Header().Set("Allow", method)
 			writeError(sw, &httpError{http.StatusMethodNotAllowed, fmt.Sprintf("%s takes %s, got %s", name, method, r.Method)})
 		} else {
-			h(sw, r, rl)
+			fn(sw, r, rl)
 		}
 		d := time.Since(start)
 		code := strconv.Itoa(sw.code)
 		if sw.code == 0 {
 			code = "canceled" // the client went away before an answer
 		}
-		s.metrics.requests.WithLabelValues(name, code).Inc()
-		s.metrics.latency.WithLabelValues(name).Observe(d.Seconds())
+		h.metrics.requests.WithLabelValues(name, code).Inc()
+		h.metrics.latency.WithLabelValues(name).Observe(d.Seconds())
 		if rl.method != "" && sw.code == http.StatusOK {
-			s.metrics.explainLatency.WithLabelValues(rl.method).Observe(d.Seconds())
+			h.metrics.explainLatency.WithLabelValues(rl.method).Observe(d.Seconds())
 		}
 		attrs := []slog.Attr{
 			slog.String("route", name), slog.String("http_method", r.Method), slog.String("status", code),
@@ -276,37 +378,47 @@ func (s *server) route(name, method string, h handlerFunc) http.Handler {
 		if sw.errMsg != "" {
 			attrs = append(attrs, slog.String("error", sw.errMsg))
 		}
-		s.log.LogAttrs(context.Background(), slog.LevelInfo, "request", attrs...)
+		h.log.LogAttrs(context.Background(), slog.LevelInfo, "request", attrs...)
 	})
 }
 
-func (s *server) healthz(w http.ResponseWriter, r *http.Request, _ *requestLog) {
-	writeJSONBody(w, http.StatusOK, map[string]string{"status": "ok", "model": s.model.Name})
+func (h *Handler) healthz(w http.ResponseWriter, r *http.Request, _ *requestLog) {
+	writeJSONBody(w, http.StatusOK, map[string]string{"status": "ok", "model": h.model.Name})
 }
 
-func (s *server) describe(w http.ResponseWriter, r *http.Request, _ *requestLog) {
-	writeRaw(w, http.StatusOK, s.inspect)
+func (h *Handler) describe(w http.ResponseWriter, r *http.Request, _ *requestLog) {
+	writeRaw(w, http.StatusOK, h.inspect)
 }
 
-// readBody reads the request body, refusing one over -max-body: from
+// readBody reads the request body, refusing one over Options.MaxBody: from
 // Content-Length when the client sent it, before reading anything, and
 // otherwise once the limit is crossed.
-func (s *server) readBody(w http.ResponseWriter, r *http.Request) ([]byte, *httpError) {
-	limit := s.cfg.maxBody
+func (h *Handler) readBody(w http.ResponseWriter, r *http.Request) ([]byte, *httpError) {
+	limit := h.opt.MaxBody
 	if r.ContentLength > limit {
 		return nil, &httpError{http.StatusRequestEntityTooLarge,
-			fmt.Sprintf("request body of %d bytes is over the limit of %d bytes (%s)", r.ContentLength, limit, formatBytes(limit))}
+			fmt.Sprintf("request body of %d bytes is over the limit of %d bytes (%s)", r.ContentLength, limit, FormatBytes(limit))}
 	}
 	raw, err := io.ReadAll(http.MaxBytesReader(w, r.Body, limit))
 	if err != nil {
 		var mb *http.MaxBytesError
 		if errors.As(err, &mb) {
 			return nil, &httpError{http.StatusRequestEntityTooLarge,
-				fmt.Sprintf("request body is over the limit of %d bytes (%s)", limit, formatBytes(limit))}
+				fmt.Sprintf("request body is over the limit of %d bytes (%s)", limit, FormatBytes(limit))}
 		}
 		return nil, badRequest("reading the request body: %v", err)
 	}
 	return raw, nil
+}
+
+// readRequest reads the request body (see readBody) and decodes it into v
+// (see decodeRequest).
+func (h *Handler) readRequest(w http.ResponseWriter, r *http.Request, v any) *httpError {
+	raw, herr := h.readBody(w, r)
+	if herr != nil {
+		return herr
+	}
+	return decodeRequest(raw, v)
 }
 
 // decodeRequest decodes raw into v, refusing unknown fields and data after
@@ -339,20 +451,20 @@ func decodeRequest(raw []byte, v any) *httpError {
 
 // samplesOf reads the "inputs" field: one sample or an array of samples of
 // the model's input shape, finite numbers only.
-func (s *server) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError) {
+func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError) {
 	if len(bytes.TrimSpace(inputs)) == 0 || string(bytes.TrimSpace(inputs)) == "null" {
-		return nil, badRequest(`"inputs" is required: an array of samples of shape %s`, samples.ShapeString(s.sampleShape()))
+		return nil, badRequest(`"inputs" is required: an array of samples of shape %s`, samples.ShapeString(h.sampleShape()))
 	}
-	b, err := samples.ReadJSON(bytes.NewReader(inputs), s.spec)
+	b, err := samples.ReadJSON(bytes.NewReader(inputs), h.spec)
 	if err == nil {
 		err = b.CheckFinite()
 	}
 	if err != nil {
-		return nil, badRequest(`"inputs" (for %q): %v`, s.spec.Name, err)
+		return nil, badRequest(`"inputs" (for %q): %v`, h.spec.Name, err)
 	}
-	if got, want := b.SampleSize(), samples.Product(s.sampleShape()); got != want {
+	if got, want := b.SampleSize(), samples.Product(h.sampleShape()); got != want {
 		return nil, badRequest(`"inputs" (for %q): expected samples of shape %s (%d values), got %s (%d values)`,
-			s.spec.Name, samples.ShapeString(s.sampleShape()), want, samples.ShapeString(b.SampleShape()), got)
+			h.spec.Name, samples.ShapeString(h.sampleShape()), want, samples.ShapeString(b.SampleShape()), got)
 	}
 	b.Name = "request"
 	return b, nil
@@ -362,8 +474,8 @@ func (s *server) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError) 
 // 503 when the queue is full and 504 past the limit; f's own error is
 // returned as it is. finished reports that f has returned (or will never
 // run), so that what it wrote may be read.
-func (s *server) run(r *http.Request, f func(ctx context.Context) *httpError) (herr *httpError, finished bool) {
-	ctx, cancel := context.WithTimeout(r.Context(), s.cfg.timeout)
+func (h *Handler) run(r *http.Request, f func(ctx context.Context) *httpError) (herr *httpError, finished bool) {
+	ctx, cancel := context.WithTimeout(r.Context(), h.opt.Timeout)
 	defer cancel() // stops the work of a request that is given up
 	var ferr *httpError
 	j := &job{ctx: ctx, done: make(chan struct{})}
@@ -375,32 +487,32 @@ func (s *server) run(r *http.Request, f func(ctx context.Context) *httpError) (h
 		}()
 		ferr = f(ctx)
 	}
-	if err := s.pool.submit(j); err != nil {
+	if err := h.pool.submit(j); err != nil {
 		return &httpError{http.StatusServiceUnavailable,
-			fmt.Sprintf("the server is busy: %d requests are waiting for %d workers; retry after %d s", s.cfg.queue, s.cfg.workers, defaultRetryAfter)}, true
+			fmt.Sprintf("the server is busy: %d requests are waiting for %d workers; retry after %d s", h.opt.Queue, h.opt.Workers, retryAfter)}, true
 	}
 	select {
 	case <-j.done:
 		if j.skipped {
-			return s.ctxError(ctx), true
+			return h.ctxError(ctx), true
 		}
 		return ferr, true
 	case <-ctx.Done():
-		return s.ctxError(ctx), false
+		return h.ctxError(ctx), false
 	}
 }
 
 // errGone marks a request whose client went away; nothing is written.
 var errGone = &httpError{0, "the client closed the request"}
 
-func (s *server) ctxError(ctx context.Context) *httpError {
+func (h *Handler) ctxError(ctx context.Context) *httpError {
 	if errors.Is(ctx.Err(), context.DeadlineExceeded) {
-		return &httpError{http.StatusGatewayTimeout, fmt.Sprintf("the request did not finish within the server's time limit of %v", s.cfg.timeout)}
+		return &httpError{http.StatusGatewayTimeout, fmt.Sprintf("the request did not finish within the server's time limit of %v", h.opt.Timeout)}
 	}
 	return errGone
 }
 
-func (s *server) finish(w http.ResponseWriter, herr *httpError) {
+func (h *Handler) finish(w http.ResponseWriter, herr *httpError) {
 	if herr != nil && herr != errGone {
 		writeError(w, herr)
 	}
@@ -411,34 +523,29 @@ type predictRequest struct {
 	Inputs json.RawMessage `json:"inputs"`
 }
 
-func (s *server) predict(w http.ResponseWriter, r *http.Request, rl *requestLog) {
-	raw, herr := s.readBody(w, r)
-	if herr != nil {
-		s.finish(w, herr)
-		return
-	}
+func (h *Handler) predict(w http.ResponseWriter, r *http.Request, rl *requestLog) {
 	var req predictRequest
-	if herr := decodeRequest(raw, &req); herr != nil {
-		s.finish(w, herr)
+	if herr := h.readRequest(w, r, &req); herr != nil {
+		h.finish(w, herr)
 		return
 	}
-	b, herr := s.samplesOf(req.Inputs)
+	b, herr := h.samplesOf(req.Inputs)
 	if herr != nil {
-		s.finish(w, herr)
+		h.finish(w, herr)
 		return
 	}
-	t, err := b.ToTensor(s.spec)
+	t, err := b.ToTensor(h.spec)
 	if err != nil {
-		s.finish(w, badRequest("%v", err))
+		h.finish(w, badRequest("%v", err))
 		return
 	}
 	var body []byte
-	herr, _ = s.run(r, func(ctx context.Context) *httpError {
-		s.metrics.countPass("forward", b.Samples)
-		res, err := s.model.Predict(ctx, []*onnxlite.Tensor{t})
+	herr, _ = h.run(r, func(ctx context.Context) *httpError {
+		h.metrics.countPass("forward", b.Samples)
+		res, err := h.model.Predict(ctx, []*onnxlite.Tensor{t})
 		if err != nil {
 			if ctx.Err() != nil {
-				return s.ctxError(ctx)
+				return h.ctxError(ctx)
 			}
 			return &httpError{http.StatusInternalServerError, err.Error()}
 		}
@@ -450,15 +557,16 @@ func (s *server) predict(w http.ResponseWriter, r *http.Request, rl *requestLog)
 		return nil
 	})
 	if herr != nil {
-		s.finish(w, herr)
+		h.finish(w, herr)
 		return
 	}
 	writeRaw(w, http.StatusOK, body)
 }
 
-// explainRequest is the body of POST /v1/explain. Absent fields take the
-// defaults of the explain command's flags; "baseline" takes zero, mean (of
-// the server's reference set, else of "inputs"), blur or blur:S.
+// explainRequest is the body of POST /v1/explain. Absent fields take
+// explain.Defaults, the explain command's defaults too; "baseline" takes
+// zero, mean (of the server's reference set, else of "inputs"), blur or
+// blur:S.
 type explainRequest struct {
 	Inputs    json.RawMessage `json:"inputs"`
 	Method    *string         `json:"method"`
@@ -487,10 +595,10 @@ func settingsError(err error) *httpError {
 }
 
 // settings reads the request's settings: absent fields take the library's
-// defaults, as the explain command's flags do. The reference set is the
+// defaults (explain.Defaults). The reference set is the
 // server's: expected gradients draw from it and the mean baseline averages
 // it (without one, the mean baseline averages "inputs").
-func (s *server) settings(req *explainRequest) (explain.Settings, *httpError) {
+func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 	st := explain.Defaults()
 	target, herr := intOrWord("target", req.Target, explain.DefaultTargetText, "top")
 	if herr != nil {
@@ -529,9 +637,9 @@ func (s *server) settings(req *explainRequest) (explain.Settings, *httpError) {
 		return st, badRequest(`"baseline" must be zero, mean, blur or blur:S, got %q`, *req.Baseline)
 	}
 	if st.NeedsReference() {
-		st.Reference = s.reference
+		st.Reference = h.opt.Reference
 		if st.Reference == nil && !st.Method.Reads(gradattr.ParamBaseline) {
-			return st, badRequest(`"method" %s needs a reference set; this server has none (start it with -reference FILE)`, st.Method)
+			return st, badRequest(`"method" %s needs a reference set; this server has none`, st.Method)
 		}
 	}
 	if err := st.Check(); err != nil {
@@ -556,42 +664,37 @@ func intOrWord(name string, raw json.RawMessage, def, word string) (string, *htt
 	return "", badRequest("%q must be a number or %q, got %s", name, word, raw)
 }
 
-func (s *server) explain(w http.ResponseWriter, r *http.Request, rl *requestLog) {
-	raw, herr := s.readBody(w, r)
-	if herr != nil {
-		s.finish(w, herr)
-		return
-	}
+func (h *Handler) explain(w http.ResponseWriter, r *http.Request, rl *requestLog) {
 	var req explainRequest
-	if herr := decodeRequest(raw, &req); herr != nil {
-		s.finish(w, herr)
+	if herr := h.readRequest(w, r, &req); herr != nil {
+		h.finish(w, herr)
 		return
 	}
-	st, herr := s.settings(&req)
+	st, herr := h.settings(&req)
 	if herr != nil {
-		s.finish(w, herr)
+		h.finish(w, herr)
 		return
 	}
 	rl.method = st.Method.String()
-	b, herr := s.samplesOf(req.Inputs)
+	b, herr := h.samplesOf(req.Inputs)
 	if herr != nil {
-		s.finish(w, herr)
+		h.finish(w, herr)
 		return
 	}
 	rl.samples = b.Samples
-	head, err := s.head(st.Logits)
+	head, err := h.head(st.Logits)
 	if err != nil {
-		s.finish(w, badRequest(`"logits": %v`, err))
+		h.finish(w, badRequest(`"logits": %v`, err))
 		return
 	}
-	ex, err := explain.New(s.model, head, st)
+	ex, err := explain.New(h.model, head, st)
 	if err != nil {
-		s.finish(w, settingsError(err))
+		h.finish(w, settingsError(err))
 		return
 	}
 	var body []byte
 	var got requestLog // written by the worker, read once it has finished
-	herr, finished := s.run(r, func(ctx context.Context) *httpError {
+	herr, finished := h.run(r, func(ctx context.Context) *httpError {
 		rep, err := ex.Explain(ctx, b, nil)
 		if err != nil {
 			var fe *explain.FieldError
@@ -600,7 +703,7 @@ func (s *server) explain(w http.ResponseWriter, r *http.Request, rl *requestLog)
 			}
 			return &httpError{http.StatusInternalServerError, err.Error()}
 		}
-		if herr := s.judge(ctx, rep, &got); herr != nil {
+		if herr := h.judge(ctx, rep, &got); herr != nil {
 			return herr
 		}
 		var buf bytes.Buffer
@@ -614,7 +717,7 @@ func (s *server) explain(w http.ResponseWriter, r *http.Request, rl *requestLog)
 		rl.points, rl.completeness = got.points, got.completeness
 	}
 	if herr != nil {
-		s.finish(w, herr)
+		h.finish(w, herr)
 		return
 	}
 	writeRaw(w, http.StatusOK, body)
@@ -624,13 +727,13 @@ func (s *server) explain(w http.ResponseWriter, r *http.Request, rl *requestLog)
 // returns 504 when the time limit cut the work, and 400 when every sample
 // failed on a bad request (a target out of range, say); otherwise the
 // document is answered, failed samples carrying their "error".
-func (s *server) judge(ctx context.Context, rep *explain.Report, rl *requestLog) *httpError {
+func (h *Handler) judge(ctx context.Context, rep *explain.Report, rl *requestLog) *httpError {
 	var bad error
 	failedBad, judged, failed, unjudged := 0, 0, 0, 0
 	for _, e := range rep.Explanations {
 		if e.Err != nil {
 			if ctx.Err() != nil {
-				return s.ctxError(ctx)
+				return h.ctxError(ctx)
 			}
 			if errors.Is(e.Err, gradattr.ErrInput) || errors.Is(e.Err, gradattr.ErrOptions) || errors.Is(e.Err, samples.ErrNonFinite) {
 				failedBad++
@@ -650,7 +753,7 @@ func (s *server) judge(ctx context.Context, rep *explain.Report, rl *requestLog)
 		default:
 			judged++
 			failed++
-			s.metrics.incomplete.WithLabelValues(rep.Settings.Method.String()).Inc()
+			h.metrics.incomplete.WithLabelValues(rep.Settings.Method.String()).Inc()
 		}
 	}
 	if failedBad > 0 && failedBad == len(rep.Explanations) {

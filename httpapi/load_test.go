@@ -1,11 +1,10 @@
-package main
+package httpapi
 
 import (
 	"context"
 	"encoding/json"
 	"fmt"
 	"io"
-	"log/slog"
 	"math"
 	"net"
 	"net/http"
@@ -52,9 +51,8 @@ func cpuTime() time.Duration {
 // and checks every answer.
 func loadRun(t *testing.T, coalesce bool, n, conc int) loadResult {
 	t.Helper()
-	c := serveConfig{maxBody: defaultMaxBody, timeout: defaultTimeout, queue: defaultQueue, drain: 10 * time.Second, coalesce: coalesce}
-	require.Empty(t, c.validate())
-	s, err := newServer(c, slog.New(slog.NewJSONHandler(io.Discard, nil)))
+	m, ref := demoModel(t)
+	s, err := New(m, Options{Queue: DefaultQueue, Coalesce: coalesce, Reference: ref})
 	require.NoError(t, err)
 	defer s.Close()
 	ln, err := net.Listen("tcp", "127.0.0.1:0")
@@ -62,7 +60,7 @@ func loadRun(t *testing.T, coalesce bool, n, conc int) loadResult {
 	url := "http://" + ln.Addr().String() + "/v1/explain"
 	ctx, stop := context.WithCancel(context.Background())
 	served := make(chan error, 1)
-	go func() { served <- s.Serve(ctx, ln) }()
+	go func() { served <- Serve(ctx, ln, s, 10*time.Second, nil) }()
 	tr := &http.Transport{MaxIdleConnsPerHost: conc}
 	client := &http.Client{Transport: tr, Timeout: 60 * time.Second}
 	defer tr.CloseIdleConnections()

@@ -1,4 +1,4 @@
-package main
+package httpapi
 
 import (
 	"context"
@@ -12,18 +12,11 @@ import (
 	"github.com/apportion/apportion/samples"
 )
 
-// defaultCoalesce is the default of serve -coalesce. Measured on the pumps
-// demo over loopback (IG with 16 points, 2 cores shared with other work,
-// load average 10–18): with 16 concurrent clients stacking brings about 1.9
-// calls per pass and saves 5–21% of the CPU time per request (20% in the
-// three quietest runs), with a lower p50; with 2 or 4 clients it is within
-// the noise. So it is on.
-const defaultCoalesce = true
-
 // coalesceWindow is how long a pass runner waits for more calls to stack
-// when more requests are in flight than there are runners. With no wait
-// calls rarely meet (1.01 per pass at 16 clients), since most of a
-// request's time is spent outside the model: HTTP, JSON and the document.
+// when more requests are in flight than there are runners: most of a
+// request's time is spent outside the model (HTTP, JSON, the document), so
+// without a wait the calls of concurrent requests seldom meet
+// (DEVELOPERS.md has the measurements).
 const coalesceWindow = 200 * time.Microsecond
 
 // coalesceMaxPoints is the largest stacked pass: the network's largest
@@ -53,7 +46,7 @@ type batcher struct {
 	calls   chan *stackedCall
 	quit    chan struct{}
 	wg      sync.WaitGroup
-	metrics *serveMetrics
+	metrics *metrics
 	once    sync.Once
 	// window is how long a runner waits for more calls to stack while
 	// busy reports more than one request in flight.
@@ -74,7 +67,7 @@ type stackedCall struct {
 	done   chan struct{}
 }
 
-func newBatcher(m gradattr.Model, runners, maxPoints int, window time.Duration, busy func() int, metrics *serveMetrics) *batcher {
+func newBatcher(m gradattr.Model, runners, maxPoints int, window time.Duration, busy func() int, metrics *metrics) *batcher {
 	b := &batcher{
 		m: m, size: samples.Product(m.InputShape()), nout: m.OutputSize(), max: maxPoints,
 		calls: make(chan *stackedCall, 1024), quit: make(chan struct{}), metrics: metrics,

@@ -1,4 +1,4 @@
-package main
+package httpapi
 
 import (
 	"context"
@@ -25,7 +25,7 @@ type job struct {
 // front of them: a request either finds room or is refused at once.
 type workPool struct {
 	jobs    chan *job
-	metrics *serveMetrics
+	metrics *metrics
 	wg      sync.WaitGroup
 	active  atomic.Int64 // jobs being run
 
@@ -33,7 +33,7 @@ type workPool struct {
 	closed bool
 }
 
-func newWorkPool(workers, queue int, m *serveMetrics) *workPool {
+func newWorkPool(workers, queue int, m *metrics) *workPool {
 	p := &workPool{jobs: make(chan *job, queue), metrics: m}
 	p.wg.Add(workers)
 	for range workers {

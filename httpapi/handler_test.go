@@ -1,0 +1,632 @@
+package httpapi
+
+import (
+	"bufio"
+	"bytes"
+	"context"
+	"encoding/json"
+	"fmt"
+	"io"
+	"log/slog"
+	"net"
+	"net/http"
+	"net/http/httptest"
+	"strconv"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+
+	dto "github.com/prometheus/client_model/go"
+	"github.com/prometheus/common/expfmt"
+	"github.com/prometheus/common/model"
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
+	"github.com/apportion/apportion/explain"
+	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/internal/demo"
+	"github.com/apportion/apportion/internal/testhttp"
+	"github.com/apportion/apportion/samples"
+)
+
+// syncBuffer is a bytes.Buffer safe for the server's concurrent log writes.
+type syncBuffer struct {
+	mu sync.Mutex
+	b  bytes.Buffer
+}
+
+func (s *syncBuffer) Write(p []byte) (int, error) {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	return s.b.Write(p)
+}
+
+func (s *syncBuffer) String() string {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	return s.b.String()
+}
+
+// demoModel returns the embedded pumps demo model and its reference set.
+func demoModel(t *testing.T) (*explain.Model, *explain.Dataset) {
+	t.Helper()
+	s, err := demo.Get("pumps")
+	require.NoError(t, err)
+	m, err := explain.Decode(s.Model, "demo:"+s.ModelFile, explain.DecodeOptions{})
+	require.NoError(t, err)
+	spec, err := m.Input()
+	require.NoError(t, err)
+	b, err := samples.Read(bytes.NewReader(s.Reference), s.ReferenceFile, spec, m.ReadOptions(false))
+	require.NoError(t, err)
+	return m, explain.NewDataset("demo:"+s.ReferenceFile, s.Reference, b)
+}
+
+// testServer serves the pumps demo, with its reference set, on an
+// httptest listener (127.0.0.1), with the serve command's defaults; edit
+// changes the options.
+func testServer(t *testing.T, edit func(o *Options)) (*Handler, *httptest.Server, *syncBuffer) {
+	t.Helper()
+	m, ref := demoModel(t)
+	logs := &syncBuffer{}
+	o := Options{Queue: DefaultQueue, Reference: ref, Logger: slog.New(slog.NewJSONHandler(logs, nil))}
+	if edit != nil {
+		edit(&o)
+	}
+	h, err := New(m, o)
+	require.NoError(t, err)
+	ts := httptest.NewServer(h)
+	t.Cleanup(func() {
+		ts.Close()
+		h.Close()
+	})
+	return h, ts, logs
+}
+
+var (
+	post = testhttp.Post
+	get  = testhttp.Get
+)
+
+// errorOf decodes an error body; every error is {"error": "..."}.
+func errorOf(t *testing.T, body string) string {
+	t.Helper()
+	var e map[string]string
+	require.NoError(t, json.Unmarshal([]byte(body), &e), body)
+	require.Len(t, e, 1, body)
+	return e["error"]
+}
+
+// demoSampleJSON is the demo's own sample.
+func demoSampleJSON(t *testing.T) string {
+	t.Helper()
+	s, err := demo.Get("pumps")
+	require.NoError(t, err)
+	var v []float64
+	require.NoError(t, json.Unmarshal(s.Sample, &v))
+	return string(s.Sample)
+}
+
+func floatsJSON(v []float64) string {
+	b, _ := json.Marshal(v)
+	return string(b)
+}
+
+// explainDoc is the part of the explain document these tests read.
+type explainDoc struct {
+	Method       string `json:"method"`
+	Explanations []struct {
+		Target          *int      `json:"target"`
+		Outputs         []float64 `json:"outputs"`
+		Attributions    []float64 `json:"attributions"`
+		BaselineOutputs []float64 `json:"baseline_outputs"`
+		Completeness    *struct {
+			Sum         float64 `json:"sum"`
+			Expected    float64 `json:"expected"`
+			RelativeGap float64 `json:"relative_gap"`
+			Tolerance   float64 `json:"tolerance"`
+			OK          bool    `json:"ok"`
+		} `json:"completeness"`
+		Points int     `json:"points"`
+		Error  *string `json:"error"`
+	} `json:"explanations"`
+}
+
+func sum(v []float64) float64 {
+	s := 0.0
+	for _, x := range v {
+		s += x
+	}
+	return s
+}
+
+func TestServeStatuses(t *testing.T) {
+	_, ts, _ := testServer(t, func(o *Options) { o.MaxBody = 1 << 10 })
+	sample := strings.TrimSpace(demoSampleJSON(t))
+
+	code, body := get(t, ts.URL+"/healthz")
+	assert.Equal(t, http.StatusOK, code, body)
+
+	cases := []struct {
+		name, route, body string
+		code              int
+		says              []string
+	}{
+		{"malformed JSON", "/v1/explain", `{"inputs": [` + sample, http.StatusBadRequest, []string{"malformed JSON"}},
+		{"not an object", "/v1/predict", `[1, 2]`, http.StatusBadRequest, []string{"malformed JSON"}},
+		{"unknown field", "/v1/explain", `{"inputs": [` + sample + `], "step": 4}`, http.StatusBadRequest, []string{`unknown field "step"`}},
+		{"wrong length", "/v1/explain", `{"inputs": [[1, 2, 3]]}`, http.StatusBadRequest,
+			[]string{"expected samples of shape [8] (8 values each)", "got an array of shape [1 3] (3 values per row)"}},
+		{"wrong length predict", "/v1/predict", `{"inputs": [[1, 2, 3, 4, 5, 6, 7, 8, 9]]}`, http.StatusBadRequest,
+			[]string{"expected samples of shape [8]", "9 values per row"}},
+		{"NaN token", "/v1/explain", `{"inputs": [[1, 2, 3, NaN, 5, 6, 7, 8]]}`, http.StatusBadRequest, []string{"NaN", "expected finite numbers"}},
+		{"Infinity token", "/v1/predict", `{"inputs": [[1, 2, 3, -Infinity, 5, 6, 7, 8]]}`, http.StatusBadRequest, []string{"Infinity", "expected finite numbers"}},
+		// 1e999 overflows float64 (IEEE 754 binary64: largest finite ≈ 1.8e308).
+		{"overflow", "/v1/explain", `{"inputs": [[1, 2, 3, 1e999, 5, 6, 7, 8]]}`, http.StatusBadRequest, []string{"1e999 is out of the float64 range"}},
+		{"unknown method", "/v1/explain", `{"inputs": [` + sample + `], "method": "lime"}`, http.StatusBadRequest,
+			[]string{`"method" must be one of gradient (grad), gradient-times-input (grad-input), smoothgrad, integrated-gradients (ig), expected-gradients (expected-grad), got "lime"`}},
+		{"no inputs", "/v1/explain", `{"method": "grad"}`, http.StatusBadRequest, []string{`"inputs" is required`}},
+		{"target out of range", "/v1/explain", `{"inputs": [` + sample + `], "method": "grad", "target": 3}`, http.StatusBadRequest, []string{"target 3", "0..2"}},
+		{"file baseline", "/v1/explain", `{"inputs": [` + sample + `], "baseline": "/etc/passwd"}`, http.StatusBadRequest, []string{`"baseline" must be zero, mean, blur or blur:S`}},
+		{"steps too large", "/v1/explain", `{"inputs": [` + sample + `], "steps": 100000}`, http.StatusBadRequest, []string{`"steps" must be auto or a number from 1 to 65536, got "100000"`}},
+		{"flag of another method", "/v1/explain", `{"inputs": [` + sample + `], "noise": 0.2}`, http.StatusBadRequest, []string{`"noise" applies to "method" smoothgrad only, not integrated-gradients`}},
+		{"over the limit", "/v1/explain", `{"inputs": [` + strings.Repeat(sample+",", 200) + sample + `]}`, http.StatusRequestEntityTooLarge, []string{"over the limit of 1024 bytes (1KiB)"}},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			code, hdr, body := post(t, ts.URL+tc.route, tc.body)
+			// Status codes: RFC 9110 §15.5.1 (400), §15.5.14 (413).
+			assert.Equal(t, tc.code, code, body)
+			assert.Equal(t, "application/json", hdr.Get("Content-Type"))
+			msg := errorOf(t, body)
+			for _, s := range tc.says {
+				assert.Contains(t, msg, s)
+			}
+		})
+	}
+
+	// 405 with Allow (RFC 9110 §15.5.6) and 404.
+	code, body = get(t, ts.URL+"/v1/explain")
+	assert.Equal(t, http.StatusMethodNotAllowed, code)
+	assert.Contains(t, errorOf(t, body), "/v1/explain takes POST, got GET")
+	code, body = get(t, ts.URL+"/v2/explain")
+	assert.Equal(t, http.StatusNotFound, code)
+	assert.Contains(t, errorOf(t, body), "no route /v2/explain")
+}
+
+// TestServeTooLargeFromContentLength sends only the header of a request
+// that announces 1 GB: the server must answer 413 without waiting for the
+// body, which never comes.
+func TestServeTooLargeFromContentLength(t *testing.T) {
+	_, ts, _ := testServer(t, nil)
+	conn, err := net.Dial("tcp", ts.Listener.Addr().String())
+	require.NoError(t, err)
+	defer conn.Close()
+	require.NoError(t, conn.SetDeadline(time.Now().Add(10*time.Second)))
+	_, err = fmt.Fprintf(conn, "POST /v1/explain HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\nContent-Length: 1000000000\r\n\r\n{")
+	require.NoError(t, err)
+	resp, err := http.ReadResponse(bufio.NewReader(conn), nil)
+	require.NoError(t, err, "no answer before the body: the server waited for it")
+	defer resp.Body.Close()
+	body, _ := io.ReadAll(resp.Body)
+	assert.Equal(t, http.StatusRequestEntityTooLarge, resp.StatusCode)
+	assert.Contains(t, errorOf(t, string(body)), "request body of 1000000000 bytes is over the limit of 8388608 bytes (8MiB)")
+}
+
+// TestServeTooLargeChunked sends a body without Content-Length (chunked
+// transfer coding, RFC 9112 §7.1): the limit is found while reading.
+func TestServeTooLargeChunked(t *testing.T) {
+	_, ts, _ := testServer(t, func(o *Options) { o.MaxBody = 4 << 10 })
+	pr, pw := io.Pipe()
+	go func() {
+		chunk := []byte(`{"inputs": [` + strings.Repeat(" ", 1000))
+		for i := 0; i < 64; i++ {
+			if _, err := pw.Write(chunk); err != nil {
+				return
+			}
+		}
+		pw.Close()
+	}()
+	req, err := http.NewRequest(http.MethodPost, ts.URL+"/v1/predict", pr)
+	require.NoError(t, err)
+	req.ContentLength = -1 // unknown: sent chunked
+	resp, err := http.DefaultClient.Do(req)
+	require.NoError(t, err)
+	defer resp.Body.Close()
+	pr.Close()
+	body, _ := io.ReadAll(resp.Body)
+	assert.Equal(t, http.StatusRequestEntityTooLarge, resp.StatusCode)
+	assert.Contains(t, errorOf(t, string(body)), "request body is over the limit of 4096 bytes (4KiB)")
+}
+
+// slowExplain is a request that takes about a second on one core: the
+// trapezoid rule at 65536 points on four samples, 4096 gradient batches.
+func slowExplain(t *testing.T) string {
+	sample := strings.TrimSpace(demoSampleJSON(t))
+	return `{"inputs":[` + strings.Repeat(sample+",", 3) + sample + `],"steps":65536}`
+}
+
+// gauge reads one unlabelled gauge of the server's registry.
+func gauge(t *testing.T, s *Handler, name string) float64 {
+	t.Helper()
+	mfs, err := s.metrics.reg.Gather()
+	require.NoError(t, err)
+	for _, mf := range mfs {
+		if mf.GetName() == name {
+			return mf.GetMetric()[0].GetGauge().GetValue()
+		}
+	}
+	t.Fatalf("no metric %s", name)
+	return 0
+}
+
+// passes is the number of model passes (Forward and Gradient calls that
+// reached the network) since the handler started, from its registry.
+func passes(t *testing.T, s *Handler) int64 {
+	t.Helper()
+	mfs, err := s.metrics.reg.Gather()
+	require.NoError(t, err)
+	n := 0.0
+	for _, mf := range mfs {
+		if mf.GetName() == "apportion_model_passes_total" {
+			for _, m := range mf.GetMetric() {
+				n += m.GetCounter().GetValue()
+			}
+		}
+	}
+	return int64(n)
+}
+
+// waitFor polls cond every 5 ms for up to 10 s.
+func waitFor(t *testing.T, what string, cond func() bool) {
+	t.Helper()
+	deadline := time.Now().Add(10 * time.Second)
+	for !cond() {
+		if time.Now().After(deadline) {
+			t.Fatalf("timed out waiting for %s", what)
+		}
+		time.Sleep(5 * time.Millisecond)
+	}
+}
+
+func TestServeQueueFull(t *testing.T) {
+	s, ts, _ := testServer(t, func(o *Options) { o.Workers, o.Queue = 1, 1 })
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	var wg sync.WaitGroup
+	send := func() {
+		defer wg.Done()
+		req, _ := http.NewRequestWithContext(ctx, http.MethodPost, ts.URL+"/v1/explain", strings.NewReader(slowExplain(t)))
+		if resp, err := http.DefaultClient.Do(req); err == nil {
+			resp.Body.Close()
+		}
+	}
+	wg.Add(1)
+	go send()
+	waitFor(t, "the worker to take the first request", func() bool { return gauge(t, s, "apportion_requests_in_flight") == 1 })
+	wg.Add(1)
+	go send()
+	waitFor(t, "the second request to wait in the queue", func() bool { return gauge(t, s, "apportion_queue_depth") == 1 })
+
+	code, hdr, body := post(t, ts.URL+"/v1/explain", slowExplain(t))
+	// 503 with Retry-After in delay-seconds (RFC 9110 §15.6.4, §10.2.3).
+	assert.Equal(t, http.StatusServiceUnavailable, code)
+	assert.Equal(t, strconv.Itoa(retryAfter), hdr.Get("Retry-After"))
+	assert.Contains(t, errorOf(t, body), "the server is busy: 1 requests are waiting for 1 workers")
+	cancel()
+	wg.Wait()
+	waitFor(t, "the worker to drop the canceled requests", func() bool {
+		return gauge(t, s, "apportion_requests_in_flight") == 0 && gauge(t, s, "apportion_queue_depth") == 0
+	})
+}
+
+func TestServeDeadlineStopsWork(t *testing.T) {
+	for _, coalesce := range []bool{false, true} {
+		t.Run("coalesce="+strconv.FormatBool(coalesce), func(t *testing.T) {
+			s, ts, _ := testServer(t, func(o *Options) { o.Timeout, o.Coalesce = 50*time.Millisecond, coalesce })
+			start := time.Now()
+			code, _, body := post(t, ts.URL+"/v1/explain", slowExplain(t))
+			elapsed := time.Since(start)
+			// 504 (RFC 9110 §15.6.5) soon after the limit, not after the work.
+			assert.Equal(t, http.StatusGatewayTimeout, code)
+			assert.Contains(t, errorOf(t, body), "did not finish within the server's time limit of 50ms")
+			assert.Less(t, elapsed, 2*time.Second)
+
+			// The passes stop: at most the pass under way when the limit
+			// struck may finish after the answer.
+			time.Sleep(20 * time.Millisecond)
+			p1 := passes(t, s)
+			time.Sleep(300 * time.Millisecond)
+			p2 := passes(t, s)
+			assert.Equal(t, p1, p2, "passes kept growing after the 504")
+			// The whole request needs 4 samples × (65536/64 gradient batches
+			// + 3 forward passes).
+			assert.Less(t, p2, int64(4*(65536/64+3)))
+			assert.Greater(t, p2, int64(0))
+			waitFor(t, "the worker to stop", func() bool { return gauge(t, s, "apportion_requests_in_flight") == 0 })
+		})
+	}
+}
+
+// parseMetrics reads /metrics with the Prometheus text parser.
+func parseMetrics(t *testing.T, url string) map[string]*dto.MetricFamily {
+	t.Helper()
+	code, body := get(t, url+"/metrics")
+	require.Equal(t, http.StatusOK, code)
+	p := expfmt.NewTextParser(model.UTF8Validation)
+	mfs, err := p.TextToMetricFamilies(strings.NewReader(body))
+	require.NoError(t, err, "the Prometheus text format (exposition format 0.0.4)")
+	return mfs
+}
+
+func labelled(mf *dto.MetricFamily, labels map[string]string) *dto.Metric {
+	if mf == nil {
+		return nil
+	}
+next:
+	for _, m := range mf.GetMetric() {
+		have := map[string]string{}
+		for _, l := range m.GetLabel() {
+			have[l.GetName()] = l.GetValue()
+		}
+		for k, v := range labels {
+			if have[k] != v {
+				continue next
+			}
+		}
+		return m
+	}
+	return nil
+}
+
+func TestServeMetricsAndLogs(t *testing.T) {
+	_, ts, logs := testServer(t, nil)
+	sample := strings.TrimSpace(demoSampleJSON(t))
+	// Two points of the trapezoid rule (the end points) on the saturated
+	// demo sample cannot meet a 1e-6 tolerance: a completeness failure.
+	for i := 0; i < 3; i++ {
+		code, _, body := post(t, ts.URL+"/v1/explain", `{"inputs":[`+sample+`],"steps":2,"tolerance":1e-6}`)
+		require.Equal(t, http.StatusOK, code, body)
+		var doc explainDoc
+		require.NoError(t, json.Unmarshal([]byte(body), &doc))
+		require.False(t, doc.Explanations[0].Completeness.OK, "relative gap %v", doc.Explanations[0].Completeness.RelativeGap)
+	}
+	code, _, _ := post(t, ts.URL+"/v1/explain", `{"inputs":[`+sample+`],"method":"grad"}`)
+	require.Equal(t, http.StatusOK, code)
+	code, _, _ = post(t, ts.URL+"/v1/explain", `{"inputs":[1]}`)
+	require.Equal(t, http.StatusBadRequest, code)
+
+	mfs := parseMetrics(t, ts.URL)
+	req := mfs["apportion_http_requests_total"]
+	require.NotNil(t, req)
+	assert.Equal(t, 4.0, labelled(req, map[string]string{"route": "/v1/explain", "code": "200"}).GetCounter().GetValue())
+	assert.Equal(t, 1.0, labelled(req, map[string]string{"route": "/v1/explain", "code": "400"}).GetCounter().GetValue())
+	lat := labelled(mfs["apportion_explain_duration_seconds"], map[string]string{"method": "integrated-gradients"})
+	require.NotNil(t, lat)
+	assert.EqualValues(t, 3, lat.GetHistogram().GetSampleCount())
+	lat = labelled(mfs["apportion_explain_duration_seconds"], map[string]string{"method": "gradient"})
+	require.NotNil(t, lat)
+	assert.EqualValues(t, 1, lat.GetHistogram().GetSampleCount())
+	inc := labelled(mfs["apportion_completeness_failures_total"], map[string]string{"method": "integrated-gradients"})
+	require.NotNil(t, inc)
+	assert.Equal(t, 3.0, inc.GetCounter().GetValue())
+	require.NotNil(t, mfs["apportion_queue_depth"])
+	assert.Equal(t, 0.0, mfs["apportion_queue_depth"].GetMetric()[0].GetGauge().GetValue())
+	// Each IG request: f(x), f(x′) and the baseline outputs of the
+	// document are forward passes of one sample; one gradient batch of 2.
+	grad := labelled(mfs["apportion_model_points_total"], map[string]string{"kind": "gradient"})
+	assert.Equal(t, 3*2.0+1, grad.GetCounter().GetValue())
+
+	// One JSON line per request (log/slog's JSON handler).
+	var lines []map[string]any
+	for _, l := range strings.Split(strings.TrimSpace(logs.String()), "\n") {
+		var m map[string]any
+		require.NoError(t, json.Unmarshal([]byte(l), &m), l)
+		if m["msg"] == "request" {
+			lines = append(lines, m)
+		}
+	}
+	require.Len(t, lines, 6) // five requests and the /metrics read
+	first := lines[0]
+	assert.Equal(t, "/v1/explain", first["route"])
+	assert.Equal(t, "200", first["status"])
+	assert.Equal(t, "integrated-gradients", first["method"])
+	assert.EqualValues(t, 2, first["points"])
+	assert.Equal(t, "failed", first["completeness"])
+	assert.Contains(t, first, "duration_ms")
+	assert.Equal(t, "400", lines[4]["status"])
+	assert.Contains(t, lines[4]["error"], "expected samples of shape [8]")
+}
+
+func TestServeShutdownDrains(t *testing.T) {
+	m, ref := demoModel(t)
+	s, err := New(m, Options{Queue: DefaultQueue, Reference: ref})
+	require.NoError(t, err)
+	defer s.Close()
+	ln, err := net.Listen("tcp", "127.0.0.1:0")
+	require.NoError(t, err)
+	url := "http://" + ln.Addr().String()
+	ctx, stop := context.WithCancel(context.Background())
+	served := make(chan error, 1)
+	go func() { served <- Serve(ctx, ln, s, 30*time.Second, nil) }()
+
+	sample := strings.TrimSpace(demoSampleJSON(t))
+	answered := make(chan int, 1)
+	go func() {
+		resp, err := http.Post(url+"/v1/explain", "application/json", strings.NewReader(`{"inputs":[`+sample+`],"steps":65536}`))
+		if err != nil {
+			answered <- -1
+			return
+		}
+		resp.Body.Close()
+		answered <- resp.StatusCode
+	}()
+	waitFor(t, "the request to be computed", func() bool { return gauge(t, s, "apportion_requests_in_flight") == 1 })
+	stop() // as SIGTERM does
+	select {
+	case err := <-served:
+		t.Fatalf("Serve returned %v with a request in flight", err)
+	case <-time.After(20 * time.Millisecond):
+	}
+	assert.Equal(t, http.StatusOK, <-answered, "the request in flight is finished, not cut")
+	require.NoError(t, <-served)
+	_, err = http.Get(url + "/healthz")
+	assert.Error(t, err, "no new connections after shutdown")
+}
+
+func TestServeCoalescedMatchesAlone(t *testing.T) {
+	// Samples do not interact in a batch (nn.Head.Gradient), so a request
+	// stacked with others gets the document it gets alone. The reference
+	// is the uncoalesced server; the documents of 16 concurrent requests
+	// on 16 different samples must match it value for value.
+	_, alone, _ := testServer(t, nil)
+	_, stacked, _ := testServer(t, func(o *Options) { o.Coalesce = true })
+	var x []float64
+	require.NoError(t, json.Unmarshal([]byte(demoSampleJSON(t)), &x))
+	bodies := make([]string, 16)
+	for i := range bodies {
+		xi := append([]float64(nil), x...)
+		xi[i%8] *= 1 + 0.05*float64(i)
+		bodies[i] = fmt.Sprintf(`{"inputs":[%s],"steps":16,"target":%d}`, floatsJSON(xi), i%3)
+	}
+	want := make([]string, len(bodies))
+	for i, b := range bodies {
+		code, _, body := post(t, alone.URL+"/v1/explain", b)
+		require.Equal(t, http.StatusOK, code, body)
+		want[i] = body
+	}
+	got := make([]string, len(bodies))
+	var wg sync.WaitGroup
+	for i, b := range bodies {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			resp, err := http.Post(stacked.URL+"/v1/explain", "application/json", strings.NewReader(b))
+			if err != nil {
+				return
+			}
+			defer resp.Body.Close()
+			raw, _ := io.ReadAll(resp.Body)
+			got[i] = string(raw)
+		}()
+	}
+	wg.Wait()
+	for i := range bodies {
+		assert.JSONEq(t, want[i], got[i], "request %d", i)
+	}
+}
+
+// gatedModel passes calls to m, holding the first one until open is closed,
+// and records the batch size of every call.
+type gatedModel struct {
+	m     gradattr.Model
+	open  chan struct{}
+	once  sync.Once
+	first chan struct{} // closed when the first call has arrived
+	mu    sync.Mutex
+	sizes []int
+}
+
+func (g *gatedModel) InputShape() []int { return g.m.InputShape() }
+func (g *gatedModel) OutputSize() int   { return g.m.OutputSize() }
+
+func (g *gatedModel) hold(n int) {
+	g.mu.Lock()
+	g.sizes = append(g.sizes, n)
+	g.mu.Unlock()
+	g.once.Do(func() {
+		close(g.first)
+		<-g.open
+	})
+}
+
+func (g *gatedModel) Forward(ctx context.Context, x []float64, n int) ([]float64, error) {
+	g.hold(n)
+	return g.m.Forward(ctx, x, n)
+}
+
+func (g *gatedModel) Gradient(ctx context.Context, x []float64, n int, target []int) ([]float64, []float64, error) {
+	g.hold(n)
+	return g.m.Gradient(ctx, x, n, target)
+}
+
+func TestBatcherStacksCalls(t *testing.T) {
+	// Closed form: F_k(x) = (k+1) Σ_i x_i², so ∂F_k/∂x_i = 2 (k+1) x_i.
+	f := &gradattr.Func{
+		Shape: []int{3}, Outputs: 2,
+		F: func(out, x []float64) {
+			s := 0.0
+			for _, v := range x {
+				s += v * v
+			}
+			out[0], out[1] = s, 2*s
+		},
+		Grad: func(grad, x []float64, k int) {
+			for i, v := range x {
+				grad[i] = 2 * float64(k+1) * v
+			}
+		},
+	}
+	g := &gatedModel{m: f, open: make(chan struct{}), first: make(chan struct{})}
+	m := newMetrics()
+	b := newBatcher(g, 1, 64, 0, func() int { return 0 }, m)
+	defer b.Close()
+
+	// The first call occupies the runner; the next five wait and are
+	// stacked into one pass of 3+1+1+1+1 = 7 points, padded to 8.
+	point := func(i int) []float64 { return []float64{float64(i), -0.5 * float64(i), 1} }
+	type result struct {
+		out, grad []float64
+		err       error
+	}
+	results := make([]result, 6)
+	var wg sync.WaitGroup
+	call := func(i int, x []float64, n int, target []int) {
+		defer wg.Done()
+		out, grad, err := b.Gradient(context.Background(), x, n, target)
+		results[i] = result{out, grad, err}
+	}
+	wg.Add(1)
+	go call(0, point(0), 1, []int{0})
+	<-g.first
+	canceled, cancel := context.WithCancel(context.Background())
+	wg.Add(1)
+	go func() {
+		defer wg.Done()
+		_, _, err := b.Gradient(canceled, point(9), 1, []int{0})
+		results[5].err = err
+	}()
+	x3 := append(append(point(1), point(2)...), point(3)...)
+	wg.Add(4)
+	go call(1, x3, 3, []int{1, 0, 1})
+	go call(2, point(4), 1, []int{1})
+	go call(3, point(5), 1, []int{0})
+	go call(4, point(6), 1, []int{1})
+	waitFor(t, "the calls to queue", func() bool { return len(b.calls) == 5 })
+	cancel() // given up while waiting: no pass may include it
+	time.Sleep(10 * time.Millisecond)
+	close(g.open)
+	wg.Wait()
+
+	assert.ErrorIs(t, results[5].err, context.Canceled)
+	g.mu.Lock()
+	assert.Equal(t, []int{1, 8}, g.sizes, "one pass alone, then the four live calls stacked and padded")
+	g.mu.Unlock()
+	check := func(r result, xs [][]float64, targets []int) {
+		require.NoError(t, r.err)
+		require.Len(t, r.out, 2*len(xs))
+		require.Len(t, r.grad, 3*len(xs))
+		for j, x := range xs {
+			s := x[0]*x[0] + x[1]*x[1] + x[2]*x[2]
+			assert.Equal(t, []float64{s, 2 * s}, r.out[2*j:2*j+2])
+			for i := range x {
+				assert.Equal(t, 2*float64(targets[j]+1)*x[i], r.grad[3*j+i])
+			}
+		}
+	}
+	check(results[0], [][]float64{point(0)}, []int{0})
+	check(results[1], [][]float64{point(1), point(2), point(3)}, []int{1, 0, 1})
+	check(results[2], [][]float64{point(4)}, []int{1})
+	check(results[3], [][]float64{point(5)}, []int{0})
+	check(results[4], [][]float64{point(6)}, []int{1})
+}
