@@ -6,8 +6,8 @@ import (
 	"fmt"
 	"testing"
 
+	"github.com/apportion/apportion/demo"
 	"github.com/apportion/apportion/gradattr"
-	"github.com/apportion/apportion/internal/demo"
 	"github.com/apportion/apportion/nn"
 	"github.com/apportion/apportion/onnxlite"
 )

@@ -9,8 +9,8 @@ import (
 	"sort"
 	"strconv"
 
+	"github.com/apportion/apportion/demo"
 	"github.com/apportion/apportion/gradattr"
-	"github.com/apportion/apportion/internal/demo"
 	"github.com/apportion/apportion/nn"
 	"github.com/apportion/apportion/onnxlite"
 )

@@ -11,8 +11,8 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"github.com/apportion/apportion/demo"
 	"github.com/apportion/apportion/gradattr"
-	"github.com/apportion/apportion/internal/demo"
 	"github.com/apportion/apportion/nn"
 	"github.com/apportion/apportion/onnxlite"
 )
@@ -62,7 +62,7 @@ func pumpsHead(t *testing.T) *nn.Head {
 // |attribution|.
 //
 // Source: the documented labelling rule of the invented data
-// (internal/demo/data/README.md: s = 0.5·(vibration_rms − 3) +
+// (demo/data/README.md: s = 0.5·(vibration_rms − 3) +
 // 0.08·(bearing_temp − 65) + 0.0004·(hours_since_service − 3000); no
 // other feature enters the label).
 func TestPumpsSummaryRanksRuleFeatures(t *testing.T) {
@@ -116,7 +116,7 @@ func TestPumpsSummaryRanksRuleFeatures(t *testing.T) {
 	for _, f := range ranked[:3] {
 		top[f.Feature] = true
 	}
-	// The generating rule (internal/demo/data/README.md) uses exactly these.
+	// The generating rule (demo/data/README.md) uses exactly these.
 	assert.Equal(t, map[string]bool{"vibration_rms": true, "bearing_temp": true, "hours_since_service": true}, top)
 	// And the separation is beyond the bootstrap noise: the lowest interval
 	// end of a rule feature lies above the highest of every other feature.

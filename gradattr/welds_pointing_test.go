@@ -12,8 +12,8 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"github.com/apportion/apportion/demo"
 	"github.com/apportion/apportion/gradattr"
-	"github.com/apportion/apportion/internal/demo"
 	"github.com/apportion/apportion/nn"
 	"github.com/apportion/apportion/onnxlite"
 )
@@ -96,7 +96,7 @@ func TestWeldsPointingGame(t *testing.T) {
 	masks, mshape := readNPY[uint8](t, "welds_test_masks.npy")
 	labels, lshape := readNPY[int64](t, "welds_test_labels.npy")
 	ref, rshape := readNPY[float32](t, "welds_reference.npy")
-	// Shapes as documented in internal/demo/data/README.md.
+	// Shapes as documented in demo/data/README.md.
 	require.Equal(t, []int{200, 1, 32, 32}, pshape)
 	require.Equal(t, []int{200, 32, 32}, mshape)
 	require.Equal(t, []int{200, 2}, lshape)
@@ -116,7 +116,7 @@ func TestWeldsPointingGame(t *testing.T) {
 			defective = append(defective, i)
 		}
 	}
-	// 38 crack + 44 porosity patches (internal/demo/data/README.md).
+	// 38 crack + 44 porosity patches (demo/data/README.md).
 	require.Len(t, defective, 82)
 
 	probs := weldsHead(t)

@@ -7,9 +7,9 @@ import (
 	"net/http/httptest"
 	"strings"
 
+	"github.com/apportion/apportion/demo"
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/httpapi"
-	"github.com/apportion/apportion/internal/demo"
 )
 
 // Mounting the /v1 API of the embedded pumps demo under a prefix of one's

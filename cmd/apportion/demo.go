@@ -1,6 +1,6 @@
 package main
 
-import "github.com/apportion/apportion/internal/demo"
+import "github.com/apportion/apportion/demo"
 
 func init() {
 	demoScenario = func(name string) (*demoFiles, error) {

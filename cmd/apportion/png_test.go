@@ -14,7 +14,7 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
-	"github.com/apportion/apportion/internal/demo"
+	"github.com/apportion/apportion/demo"
 )
 
 func TestExplainPNGSeveralSamples(t *testing.T) {

@@ -16,9 +16,9 @@ import (
 	"github.com/schollz/progressbar/v3"
 	"golang.org/x/term"
 
+	"github.com/apportion/apportion/demo"
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
-	"github.com/apportion/apportion/internal/demo"
 	"github.com/apportion/apportion/render"
 	"github.com/apportion/apportion/samples"
 )

@@ -19,20 +19,20 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"github.com/apportion/apportion/demo"
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
-	"github.com/apportion/apportion/internal/demo"
 	"github.com/apportion/apportion/samples"
 )
 
-// The counts below come from internal/demo/data/README.md (the documented
+// The counts below come from demo/data/README.md (the documented
 // invented data): the held-out set has 500 rows, by line A 94/19/31,
 // B 102/47/29, C 91/46/41 (normal/degraded/failing), 287 normal,
 // 112 degraded, 101 failing, and the model's held-out accuracy is 497/500.
 var pumpLineRows = map[string]float64{"A": 94 + 19 + 31, "B": 102 + 47 + 29, "C": 91 + 46 + 41}
 
 // ruleFeatures are the features of the documented labelling rule
-// (internal/demo/data/README.md).
+// (demo/data/README.md).
 var ruleFeatures = map[string]bool{"vibration_rms": true, "bearing_temp": true, "hours_since_service": true}
 
 // pumpsCSV returns the header and the first n data lines of the embedded

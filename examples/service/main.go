@@ -11,20 +11,24 @@
 // monitoring of centrifugal pumps), and explains each score against the mean
 // of the demo's normal pumps: a reason says how far one reading moved the
 // probability of the predicted class away from a typical healthy pump. With
-// -model, a model whose metadata carries "feature_names", "feature_units" and
-// "class_names" (JSON arrays) gets its names used; the baseline is then zero,
-// or the mean of -reference (a CSV file with one sample per row).
+// -model, a model that names its features, their units and its classes in
+// its metadata (see package modelmeta) gets its names used; the baseline is
+// then zero, or the mean of -reference (a CSV file with one sample per row,
+// its columns matched by the model's feature names when its header has
+// them).
 //
-// The pieces, in order: onnxlite.Decode reads the model, nn.Compile builds a
-// network that is safe for concurrent use, Network.Head picks the output to
-// explain, and gradattr.IntegratedGradients attributes it. Everything a
-// request needs is in the service value; handlers keep no other state.
+// The pieces, in order: onnxlite.Decode reads the model, modelmeta.Read its
+// names, nn.Compile builds a network that is safe for concurrent use,
+// Network.Head picks the output to explain, samples.Read reads the
+// reference set and gradattr.IntegratedGradients attributes. Everything a
+// request needs is in the service value; handlers keep no other state. The
+// program imports only apportion's public packages, so a copy of it builds
+// outside the repository.
 package main
 
 import (
 	"bytes"
 	"context"
-	"encoding/csv"
 	"encoding/json"
 	"errors"
 	"flag"
@@ -39,11 +43,12 @@ import (
 	"syscall"
 	"time"
 
+	"github.com/apportion/apportion/demo"
 	"github.com/apportion/apportion/gradattr"
-	"github.com/apportion/apportion/internal/demo"
 	"github.com/apportion/apportion/modelmeta"
 	"github.com/apportion/apportion/nn"
 	"github.com/apportion/apportion/onnxlite"
+	"github.com/apportion/apportion/samples"
 )
 
 func main() {
@@ -145,11 +150,14 @@ func newService(model, reference []byte) (*service, error) {
 		}
 	}
 	if reference != nil {
-		rows, err := readCSV(reference, size)
+		// Columns by the model's feature names when the file's header has
+		// them, else in order.
+		spec := samples.Spec{Name: "reference", Shape: []int{-1, size}, HasShape: true}
+		b, err := samples.Read(bytes.NewReader(reference), "reference.csv", spec, samples.Options{Features: meta.Features})
 		if err != nil {
-			return nil, fmt.Errorf("reference: %w", err)
+			return nil, err
 		}
-		s.baseline = gradattr.Baseline{Kind: gradattr.BaselineMean, Reference: rows}
+		s.baseline = gradattr.Baseline{Kind: gradattr.BaselineMean, Reference: b.Rows()}
 	}
 	return s, nil
 }
@@ -161,44 +169,6 @@ func fit(list []string, n int) []string {
 		copy(out, list)
 	}
 	return out
-}
-
-// readCSV reads rows of size numbers, skipping a header row.
-func readCSV(raw []byte, size int) ([][]float64, error) {
-	recs, err := csv.NewReader(bytes.NewReader(raw)).ReadAll()
-	if err != nil {
-		return nil, err
-	}
-	var rows [][]float64
-	for i, rec := range recs {
-		row, err := parseRow(rec, size)
-		if err != nil {
-			if i == 0 {
-				continue // the header
-			}
-			return nil, fmt.Errorf("line %d: %w", i+1, err)
-		}
-		rows = append(rows, row)
-	}
-	if len(rows) == 0 {
-		return nil, errors.New("no rows of numbers")
-	}
-	return rows, nil
-}
-
-func parseRow(rec []string, size int) ([]float64, error) {
-	if len(rec) != size {
-		return nil, fmt.Errorf("expected %d values, got %d", size, len(rec))
-	}
-	row := make([]float64, size)
-	for j, f := range rec {
-		v, err := strconv.ParseFloat(f, 64)
-		if err != nil {
-			return nil, err
-		}
-		row[j] = v
-	}
-	return row, nil
 }
 
 // scoreRequest is the body of POST /score.

@@ -8,6 +8,7 @@ import (
 	"net/http"
 	"net/http/httptest"
 	"os"
+	"os/exec"
 	"path/filepath"
 	"strings"
 	"sync"
@@ -143,4 +144,37 @@ func TestScoreDemoConcurrent(t *testing.T) {
 		require.NoError(t, json.Unmarshal(raw, &e))
 		assert.Contains(t, e["error"], says)
 	}
+}
+
+// TestBuildsOutsideTheRepository copies the service into a module of its
+// own that requires apportion through a replace directive pointing at this
+// repository, as a user who copies it does, and builds it: the go command
+// refuses a package of another module that imports an internal package.
+func TestBuildsOutsideTheRepository(t *testing.T) {
+	goBin, err := exec.LookPath("go")
+	require.NoError(t, err)
+	repo, err := filepath.Abs("../..")
+	require.NoError(t, err)
+	dir := t.TempDir()
+	src, err := os.ReadFile("main.go")
+	require.NoError(t, err)
+	require.NoError(t, os.WriteFile(filepath.Join(dir, "main.go"), src, 0o644))
+	goMod := "module example.com/pumpscore\n\ngo 1.26\n\n" +
+		"require github.com/apportion/apportion v0.0.0\n\n" +
+		"replace github.com/apportion/apportion => " + repo + "\n"
+	require.NoError(t, os.WriteFile(filepath.Join(dir, "go.mod"), []byte(goMod), 0o644))
+	// The repository's checksums cover every module it needs, so that the
+	// build resolves them from the module cache.
+	sums, err := os.ReadFile(filepath.Join(repo, "go.sum"))
+	require.NoError(t, err)
+	require.NoError(t, os.WriteFile(filepath.Join(dir, "go.sum"), sums, 0o644))
+
+	cmd := exec.Command(goBin, "build", "-o", filepath.Join(dir, "pumpscore"), ".")
+	cmd.Dir = dir
+	cmd.Env = append(os.Environ(), "GOFLAGS=-mod=mod", "GOWORK=off")
+	out, err := cmd.CombinedOutput()
+	require.NoError(t, err, "%s", out)
+	st, err := os.Stat(filepath.Join(dir, "pumpscore"))
+	require.NoError(t, err)
+	assert.True(t, st.Mode().IsRegular())
 }

@@ -3,7 +3,7 @@
 // exports them as ONNX with onnxlite and writes every file the demo package
 // embeds.
 //
-//	go run ./examples/train -out internal/demo/data
+//	go run ./examples/train -out demo/data
 //
 // The scenarios are invented, and so are all their numbers:
 //

@@ -12,7 +12,7 @@ import (
 	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
 
-	"github.com/apportion/apportion/internal/demo"
+	"github.com/apportion/apportion/demo"
 	"github.com/apportion/apportion/onnxlite"
 )
 

@@ -1,7 +1,7 @@
 // Package demo embeds apportion's two invented demo scenarios: the models,
 // one sample each to explain, reference sets for baselines and held-out test
 // sets. All of it is made up; data/README.md says how each file was made and
-// `go run ./examples/train -out internal/demo/data` regenerates it.
+// `go run ./examples/train -out demo/data` regenerates it.
 //
 // The scenarios are:
 //
