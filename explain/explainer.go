@@ -74,18 +74,6 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 	return e, nil
 }
 
-// Settings returns the settings.
-func (e *Explainer) Settings() Settings { return e.settings }
-
-// Model returns the model.
-func (e *Explainer) Model() *Model { return e.model }
-
-// Output returns the name of the output explained.
-func (e *Explainer) Output() string { return e.output }
-
-// SampleShape returns the shape of one sample.
-func (e *Explainer) SampleShape() []int { return append([]int(nil), e.shape...) }
-
 // options are the method's options for explaining samples of batch (nil
 // for single rows): the mean baseline without a reference set averages
 // the batch. Baselines name their source by name(dataset).

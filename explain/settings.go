@@ -342,16 +342,3 @@ func (s *Settings) NeedsReference() bool {
 	return (s.Method.Reads(gradattr.ParamReference) && !s.Method.Reads(gradattr.ParamBaseline)) ||
 		(s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.Kind == gradattr.BaselineMean)
 }
-
-// Datasets returns the sets the settings name whose samples are not read
-// yet (Batch nil): the reference set, the baseline samples.
-func (s *Settings) Datasets() []*Dataset {
-	var out []*Dataset
-	if s.Reference != nil && s.Reference.Batch == nil {
-		out = append(out, s.Reference)
-	}
-	if b := s.Baseline.Samples; s.Baseline.Kind == gradattr.BaselineValues && b != nil && b.Batch == nil {
-		out = append(out, b)
-	}
-	return out
-}

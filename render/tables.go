@@ -12,14 +12,15 @@ import (
 	"github.com/apportion/apportion/gradattr"
 )
 
-// PredictionTable prints, sample by sample, each output's values; an output
-// with one value per class name is printed as a class table with the largest
-// value marked.
-func PredictionTable(w io.Writer, outs []explain.Output, samples int, classes []string) {
-	if samples < 1 {
-		samples = 1
+// PredictionTable prints, sample by sample (count of them, the first axis
+// of the batched outputs), each output's values; an output with one value
+// per class name is printed as a class table with the largest value
+// marked.
+func PredictionTable(w io.Writer, outs []explain.Output, count int, classes []string) {
+	if count < 1 {
+		count = 1
 	}
-	for s := 0; s < samples; s++ {
+	for s := 0; s < count; s++ {
 		if s > 0 {
 			fmt.Fprintln(w)
 		}
@@ -28,8 +29,8 @@ func PredictionTable(w io.Writer, outs []explain.Output, samples int, classes []
 			vals := o.Data.Values
 			per := len(vals)
 			lo := 0
-			if len(o.Shape) > 0 && o.Shape[0] == samples {
-				per = len(vals) / samples
+			if len(o.Shape) > 0 && o.Shape[0] == count {
+				per = len(vals) / count
 				lo = s * per
 			} else if s > 0 {
 				continue // not batched: printed with sample 0

@@ -11,32 +11,28 @@ import (
 	"runtime"
 	"strings"
 
+	"github.com/apportion/apportion/demo"
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/render"
 	"github.com/apportion/apportion/samples"
 )
 
-// demoModel, when set, supplies a model and a sample to explain when neither
-// -model nor -demo is given, in place of the default demo scenario. name is
-// the sample's file name; its extension (.csv, .json, .npy or .pb) selects
-// the reader, and the model is reported as "demo:"+name.
+// demoModel, when set, supplies a model and a sample to explain in place
+// of the default demo scenario (when neither -model nor -demo is given).
+// name is the sample's file name; its extension (.csv, .json, .npy or .pb)
+// selects the reader, and the model is reported as "demo:"+name.
 var demoModel func() (model []byte, sample []byte, name string)
 
-// demoFiles is an embedded demo scenario's model, sample and reference set.
-// The file names' extensions select the readers.
-type demoFiles struct {
-	model         []byte
-	modelFile     string // reported as "demo:"+modelFile
-	sample        []byte
-	sampleFile    string
-	reference     []byte // nil when the scenario has none
-	referenceFile string
+// demoScenario returns the embedded demo scenario called name, the default
+// one for "" (demoModel's, when set).
+func demoScenario(name string) (*demo.Scenario, error) {
+	if name == "" && demoModel != nil {
+		model, sample, file := demoModel()
+		return &demo.Scenario{Model: model, ModelFile: file, Sample: sample, SampleFile: file}, nil
+	}
+	return demo.Get(name)
 }
-
-// demoScenario, when set, returns the embedded demo scenario called name;
-// the empty name is the default scenario.
-var demoScenario func(name string) (*demoFiles, error)
 
 // methodFlagNames are the flags that set explain.Settings, in the order
 // they are applied.
@@ -264,7 +260,7 @@ func (c *explainConfig) validate() string {
 		return fmt.Sprintf("-format must be table, json, csv, npy or png, got %q", c.format)
 	}
 	// An embedded demo scenario supplies its own reference set.
-	demoReference := c.modelPath == "" && demoScenario != nil && (c.demo != "" || demoModel == nil)
+	demoReference := c.modelPath == "" && (c.demo != "" || demoModel == nil)
 	s := &c.settings
 	if s.NeedsReference() && !s.Method.Reads(gradattr.ParamBaseline) && s.Reference == nil && !demoReference {
 		return fmt.Sprintf("-method %s needs -reference, a file of reference samples", s.Method)
@@ -272,11 +268,7 @@ func (c *explainConfig) validate() string {
 	if c.demo != "" && c.modelPath != "" {
 		return "-demo selects an embedded model and sample; it cannot be combined with -model"
 	}
-	haveDemo := demoModel != nil || demoScenario != nil
-	if c.modelPath == "" && !haveDemo {
-		return "-model is required"
-	}
-	if c.inputPath == "" && (c.modelPath != "" || !haveDemo) {
+	if c.inputPath == "" && c.modelPath != "" {
 		return "-input is required"
 	}
 	return ""
@@ -286,7 +278,7 @@ func (c *explainConfig) validate() string {
 // demo's files when it is one.
 type loadedModel struct {
 	model *explain.Model
-	demo  *demoFiles // nil for -model
+	demo  *demo.Scenario // nil for -model
 }
 
 // loadModel reads -model, or the embedded demo scenario called demoName.
@@ -295,21 +287,11 @@ func loadModel(modelPath, demoName string) (*loadedModel, error) {
 		m, err := explain.ReadModel(modelPath)
 		return &loadedModel{model: m}, err
 	}
-	var dm *demoFiles
-	switch {
-	case demoName == "" && demoModel != nil:
-		dm = &demoFiles{}
-		dm.model, dm.sample, dm.sampleFile = demoModel()
-		dm.modelFile = dm.sampleFile
-	case demoScenario == nil:
-		return nil, &usageErr{"-demo: this build has no embedded demo"}
-	default:
-		var err error
-		if dm, err = demoScenario(demoName); err != nil {
-			return nil, &usageErr{err.Error()}
-		}
+	dm, err := demoScenario(demoName)
+	if err != nil {
+		return nil, &usageErr{err.Error()}
 	}
-	m, err := explain.Decode(dm.model, "demo:"+dm.modelFile, explain.DecodeOptions{})
+	m, err := explain.Decode(dm.Model, "demo:"+dm.ModelFile, explain.DecodeOptions{})
 	return &loadedModel{model: m, demo: dm}, err
 }
 
@@ -339,10 +321,10 @@ func (l *loadedModel) reference(path string) (*explain.Dataset, error) {
 	if path != "" {
 		return l.readSet(path, explain.FieldReference)
 	}
-	if l.demo == nil || l.demo.reference == nil {
+	if l.demo == nil || l.demo.Reference == nil {
 		return nil, nil
 	}
-	name, raw := l.demo.referenceFile, l.demo.reference
+	name, raw := l.demo.ReferenceFile, l.demo.Reference
 	spec, err := l.model.Input()
 	if err != nil {
 		return nil, err
@@ -354,20 +336,20 @@ func (l *loadedModel) reference(path string) (*explain.Dataset, error) {
 	return explain.NewDataset("demo:"+name, raw, b), nil
 }
 
-// readSet reads the file at path as samples for the model; flag names the
+// readSet reads the file at path as samples for the model; field names the
 // flag that gave it, in errors.
-func (l *loadedModel) readSet(path string, flag explain.Field) (*explain.Dataset, error) {
+func (l *loadedModel) readSet(path string, field explain.Field) (*explain.Dataset, error) {
 	spec, err := l.model.Input()
 	if err != nil {
 		return nil, err
 	}
 	raw, err := samples.ReadLimited(path)
 	if err != nil {
-		return nil, fmt.Errorf("%s: input %s (for %q): %w", flagName(flag), path, spec.Name, err)
+		return nil, fmt.Errorf("%s: input %s (for %q): %w", flagName(field), path, spec.Name, err)
 	}
 	b, err := samples.Read(bytes.NewReader(raw), path, spec, l.model.ReadOptions(false))
 	if err != nil {
-		return nil, fmt.Errorf("%s: %w", flagName(flag), err)
+		return nil, fmt.Errorf("%s: %w", flagName(field), err)
 	}
 	return explain.NewDataset(path, raw, b), nil
 }
@@ -389,7 +371,7 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 	}
 	var batch *samples.Batch
 	if c.inputPath == "" {
-		batch, err = samples.Read(bytes.NewReader(l.demo.sample), l.demo.sampleFile, spec, m.ReadOptions(true))
+		batch, err = samples.Read(bytes.NewReader(l.demo.Sample), l.demo.SampleFile, spec, m.ReadOptions(true))
 	} else {
 		batch, err = samples.ReadFile(c.inputPath, spec, m.ReadOptions(true))
 	}

@@ -102,9 +102,6 @@ func (c *serveConfig) validate() string {
 	if c.drain < 0 {
 		return fmt.Sprintf("-drain must be 0 or more, got %v", c.drain)
 	}
-	if c.modelPath == "" && demoModel == nil && demoScenario == nil {
-		return "-model is required"
-	}
 	return ""
 }
 

@@ -54,8 +54,8 @@ func demoSampleJSON(t *testing.T) string {
 	l, err := loadModel("", "")
 	require.NoError(t, err)
 	var v []float64
-	require.NoError(t, json.Unmarshal(l.demo.sample, &v))
-	return string(l.demo.sample)
+	require.NoError(t, json.Unmarshal(l.demo.Sample, &v))
+	return string(l.demo.Sample)
 }
 
 func TestServeExplainIsTheCLIDocument(t *testing.T) {
