@@ -10,14 +10,17 @@ Debian's python3-onnx and python3-numpy:
 
 The half-precision cases are skipped. It prints every output that deviates
 by more than the tolerance and the largest deviations.
+
+With --reference it evaluates instead every ONNX file of the torch.autograd
+fixtures in float64 and compares with the torch outputs stored beside them:
+
+    /usr/bin/python3 testdata/ort/spec_check.py --reference testdata/reference
 """
 import json, math, os, sys
 import numpy as np
 import onnx, onnx.numpy_helper as nh
 from onnx import helper
 
-root = sys.argv[1] if len(sys.argv) > 1 else os.path.join('testdata', 'ort')
-man = json.load(open(os.path.join(root, 'manifest.json')))
 
 def load(p):
     t = onnx.TensorProto(); t.ParseFromString(open(p, 'rb').read()); return nh.to_array(t)
@@ -149,6 +152,8 @@ def conv(x, w, b, a):
     return y
 
 def reduce(op, x, axes, a):
+    if axes is None and 'axes' in a:  # an attribute before opset 18 (13 for ReduceSum)
+        axes = a['axes']
     kd = a.get('keepdims', 1); noop = a.get('noop_with_empty_axes', 0)
     if axes is None or len(axes) == 0:
         if noop: return x
@@ -173,8 +178,11 @@ def pad(x, pads, mode, cval, axes):
 def erf(v): return np.vectorize(math.erf)(v)
 
 def run(model, feeds):
-    env = dict(feeds)
-    for init in model.graph.initializer: env[init.name] = nh.to_array(init)
+    # Every float32 value (inputs, initializers, results) is widened to
+    # float64 on the way in, so each operator computes in float64.
+    wide = lambda v: v.astype(np.float64) if isinstance(v, np.ndarray) and v.dtype == np.float32 else v
+    env = {k: wide(v) for k, v in feeds.items()}
+    for init in model.graph.initializer: env[init.name] = wide(nh.to_array(init))
     env[''] = None
     for n in model.graph.node:
         a = attrs(n); I = [env[i] if i else None for i in n.input]; op = n.op_type
@@ -239,7 +247,7 @@ def run(model, feeds):
             mu = x.mean(ax, keepdims=True); var = x.var(ax, keepdims=True); inv = 1 / np.sqrt(var + eps)
             y = (x - mu) * inv * I[1] + (I[2] if len(I) > 2 and I[2] is not None else 0)
             outs = [y, mu, inv]
-            for o, v in zip(n.output, outs): env[o] = v
+            for o, v in zip(n.output, outs): env[o] = wide(v)
             continue
         elif op == 'GroupNormalization':
             G = a['num_groups']; eps = a.get('epsilon', 1e-5); N, C = x.shape[:2]
@@ -258,7 +266,7 @@ def run(model, feeds):
             else:
                 ch = -(-d // no); parts = [min(ch, d - i * ch) for i in range(no)]
             ys = np.split(x, np.cumsum(parts)[:-1], axis=ax)
-            for o, v in zip(n.output, ys): env[o] = v
+            for o, v in zip(n.output, ys): env[o] = wide(v)
             continue
         elif op.startswith('Reduce'): y = reduce(op, x, I[1] if len(I) > 1 else None, a)
         elif op == 'Pad':
@@ -295,29 +303,53 @@ def run(model, feeds):
                 y = resize(x, a, I[1] if len(I) > 1 else None, I[2] if len(I) > 2 else None, I[3] if len(I) > 3 else None)
         else:
             raise NotImplementedError(op)
-        env[n.output[0]] = y
+        env[n.output[0]] = wide(np.asarray(y))
     return [env[o.name] for o in model.graph.output]
 
-worst = []
-for c in man['cases']:
-    d = os.path.join(root, c['dir'])
-    m = onnx.load(os.path.join(d, 'model.onnx'))
-    if c['name'].startswith(('bfloat16', 'float16')): continue
-    feeds = {i['name']: load(os.path.join(d, 'test_data_set_0', f'input_{k}.pb')) for k, i in enumerate(c['inputs'])}
-    try:
-        got = run(m, feeds)
-    except NotImplementedError as e:
-        print(c['name'], 'not implemented here:', e); continue
-    for k, (o, g) in enumerate(zip(c['outputs'], got)):
-        want = load(os.path.join(d, 'test_data_set_0', f'output_{k}.pb'))
-        g = np.asarray(g)
-        if g.shape != want.shape:
-            print(f"{c['name']} output {k}: shape numpy {g.shape} ORT {want.shape}"); continue
-        if want.dtype.kind in 'iub':
-            ok = np.array_equal(g.astype(want.dtype), want); r = 0 if ok else np.inf
+def check_ort(root):
+    man = json.load(open(os.path.join(root, 'manifest.json')))
+    worst = []
+    for c in man['cases']:
+        d = os.path.join(root, c['dir'])
+        m = onnx.load(os.path.join(d, 'model.onnx'))
+        if c['name'].startswith(('bfloat16', 'float16')): continue
+        feeds = {i['name']: load(os.path.join(d, 'test_data_set_0', f'input_{k}.pb')) for k, i in enumerate(c['inputs'])}
+        try:
+            got = run(m, feeds)
+        except NotImplementedError as e:
+            print(c['name'], 'not implemented here:', e); continue
+        for k, (o, g) in enumerate(zip(c['outputs'], got)):
+            want = load(os.path.join(d, 'test_data_set_0', f'output_{k}.pb'))
+            g = np.asarray(g)
+            if g.shape != want.shape:
+                print(f"{c['name']} output {k}: shape numpy {g.shape} ORT {want.shape}"); continue
+            if want.dtype.kind in 'iub':
+                ok = np.array_equal(g.astype(want.dtype), want); r = 0 if ok else np.inf
+            else:
+                r = float(np.max(np.abs(g - want.astype(np.float64)) / (1e-5 + 1e-4 * np.abs(want.astype(np.float64))), initial=0))
+            worst.append((r, c['name'], k))
+            if r > 1: print(f"{c['name']} output {k}: deviation {r:.3g} (in units of the tolerance)")
+    worst.sort(reverse=True)
+    print('checked', len(worst), 'outputs; largest deviations:', worst[:8])
+
+
+def check_reference(root):
+    man = json.load(open(os.path.join(root, 'manifest.json')))
+    for e in man['models'] + man.get('new_models', []):
+        m = onnx.load(os.path.join(root, e['onnx']))
+        z = np.load(os.path.join(root, e['fixture']))
+        x = z['ids'] if 'ids' in z.files else z['x']
+        x = x.reshape([len(x)] + e['input_shape'])
+        inp = m.graph.input[0].name
+        if e['dynamic_batch']:
+            out = run(m, {inp: x})[0]
         else:
-            r = float(np.max(np.abs(g - want.astype(np.float64)) / (1e-5 + 1e-4 * np.abs(want.astype(np.float64))), initial=0))
-        worst.append((r, c['name'], k))
-        if r > 1: print(f"{c['name']} output {k}: deviation {r:.3g} (in units of the tolerance)")
-worst.sort(reverse=True)
-print('checked', len(worst), 'outputs; largest deviations:', worst[:8])
+            out = np.concatenate([run(m, {inp: x[r:r + 1]})[0] for r in range(len(x))])
+        r = float(np.abs(out - z['out']).max() / np.abs(z['out']).max())
+        print(f"{e['onnx']}: numpy float64 evaluation against torch float64 outputs, max relative difference {r:.3g}")
+
+
+if len(sys.argv) > 2 and sys.argv[1] == '--reference':
+    check_reference(sys.argv[2])
+else:
+    check_ort(sys.argv[1] if len(sys.argv) > 1 else os.path.join('testdata', 'ort'))
