@@ -1,0 +1,1 @@
+BxJ`½F®Bþ­B*ºÃB-Ø¯Bèî£BüðºB¡©Bx¼B¼ŸÄBE¤ºB6$ªBz§B©>©BRUªBk#¥B~D¦BNûÅBuÀ¨Bé´Bøg·BŸd¸B;fºB¡#´B’Á¤B
