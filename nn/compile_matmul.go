@@ -1,6 +1,8 @@
 package nn
 
 import (
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+
 	"encoding/binary"
 	"fmt"
 	"hash"
@@ -309,7 +311,7 @@ func coreMatMulResult[T float32 | float64](op coreMatMulOp, reuse *tensor.Dense,
 	if op.relu {
 		switch d := any(data).(type) {
 		case []float32:
-			execReluF32(d, d)
+			f32.Relu(d, d)
 		case []float64:
 			execReluGo(d, d)
 		}

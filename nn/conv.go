@@ -1,6 +1,8 @@
 package nn
 
 import (
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+
 	"fmt"
 	"hash"
 	"hash/fnv"
@@ -411,7 +413,7 @@ func (op *convOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value,
 		convForward(&g, n, c, m, op.group, x, w, b, y)
 	}
 	if op.relu {
-		execReluF32(y, y)
+		f32.Relu(y, y)
 	}
 	return out, nil
 }

@@ -1,6 +1,8 @@
 package nn
 
 import (
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+
 	"fmt"
 	"math/rand"
 	"testing"
@@ -113,11 +115,11 @@ func BenchmarkConvPad(b *testing.B) {
 
 // BenchmarkConvStripKernel times one sample of cnn-m's 16→16 convolution at
 // 32×32 (64 strips × 3 channel tiles, K = 144) with the strip read in place
-// by sconvKern6x16 ("inplace") and packed by sconvPackStrip for kern6x16
+// by f32.Conv6x16 ("inplace") and packed by sconvPackStrip for f32.Gemm6x16
 // ("packed").
 func BenchmarkConvStripKernel(b *testing.B) {
-	if sgemmKernel == nil {
-		b.Skip("the packed kernel needs AVX2 and FMA")
+	if !f32.Asm() {
+		b.Skip("the kernels run in assembly only with AVX2 and FMA")
 	}
 	rng := rand.New(rand.NewSource(5))
 	var pl sconvPlan
@@ -149,9 +151,9 @@ func BenchmarkConvStripKernel(b *testing.B) {
 							c, ldc = &tile[0], sgemmNR
 						}
 						if inplace {
-							sconvKern6x16(k, &wp[ir*k], xb, &pl.off[0], c, ldc, nil)
+							f32.Conv6x16(k, &wp[ir*k], xb, &pl.off[0], c, ldc, nil)
 						} else {
-							sgemmKernel(k, &wp[ir*k], &strip[0], c, ldc, 1, 0)
+							f32.Gemm6x16(k, &wp[ir*k], &strip[0], c, ldc, 1, 0)
 						}
 					}
 				}

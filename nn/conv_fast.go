@@ -1,6 +1,8 @@
 package nn
 
 import (
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+
 	"sync/atomic"
 	"unsafe"
 
@@ -90,10 +92,10 @@ func convGrow(buf []float32, n int) []float32 {
 	return buf[:n]
 }
 
-// convFast reports whether float32 convolutions run on the packed kernel
-// driver of sgemm_conv.go: where the CPU has the kernel, and when the
+// convFast reports whether float32 convolutions run on the packed driver of
+// sgemm_conv.go: where its kernels run in assembly (f32.Asm), and when the
 // product has a non-empty inner dimension.
-func convFast(k int) bool { return sgemmKernel != nil && k > 0 }
+func convFast(k int) bool { return f32.Asm() && k > 0 }
 
 // weightsFresh reports whether s.packed was built from the weights w and
 // may be reused: only for constant weights, which never change between
@@ -183,10 +185,10 @@ func (s *convScratch) padInput(src []float32, c, h, w, pt, pb, pl, pr int) []flo
 	}
 	hp, wp := h+pt+pb, w+pl+pr
 	for ci := 0; ci < c; ci++ {
-		// The slicing checks the bounds sconvCopyRows relies on.
+		// The slicing checks the bounds f32.CopyRows relies on.
 		d := s.pad[ci*hp*wp+pt*wp+pl : ci*hp*wp+pt*wp+pl+(h-1)*wp+w]
 		sc := src[ci*h*w : (ci+1)*h*w]
-		sconvCopyRows(&d[0], wp, &sc[0], w, h, w)
+		f32.CopyRows(&d[0], wp, &sc[0], w, h, w)
 	}
 	return s.pad
 }

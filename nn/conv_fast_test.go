@@ -1,6 +1,8 @@
 package nn
 
 import (
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+
 	"fmt"
 	"math"
 	"math/rand"
@@ -381,7 +383,7 @@ func TestConvPreallocNoAllocs(t *testing.T) {
 			require.NotSame(t, x, same)
 
 			vals, bvals := []G.Value{x, w, b}, []G.Value{x, w, dy}
-			if dt == tensor.Float64 || sgemmKernel == nil {
+			if dt == tensor.Float64 || !f32.Asm() {
 				// float64 (and float32 without the AVX2/FMA kernel) keeps
 				// im2col + gonum's GEMM, which allocates (and may start
 				// goroutines) per call.
@@ -513,16 +515,13 @@ func TestConvVariableWeightsRepacked(t *testing.T) {
 }
 
 func TestConvKernInPlace(t *testing.T) {
-	// sconvKern6x16 reading the strip in place equals kern6x16 on the same
+	// f32.Conv6x16 reading the strip in place equals f32.Gemm6x16 on the same
 	// strip packed by sconvPackStrip bit for bit (both are one chain of
-	// fused multiply-adds in the order of p, as documented on kern6x16; the
-	// bias is added with one rounding like kern6x16's beta = 1 store onto
+	// fused multiply-adds in the order of p, as documented on f32.Gemm6x16; the
+	// bias is added with one rounding like f32.Gemm6x16's beta = 1 store onto
 	// a bias-filled tile), and is within the float32 dot-product bound of
 	// the float64 sum (Higham 2002, eq. 3.5; from memory). The old contents
 	// of c are not read (NaN there, IEEE 754, would propagate).
-	if sgemmKernel == nil {
-		t.Skip("the packed kernel needs AVX2 and FMA")
-	}
 	rng := rand.New(rand.NewSource(48))
 	var pl sconvPlan
 	pl.init(sconvGeom{c: 5, hp: 9, wp: 40, kh: 3, kw: 5, dh: 2, dw: 1, sh: 1, sw: 1, oh: 5, ow: 32})
@@ -553,8 +552,8 @@ func TestConvKernInPlace(t *testing.T) {
 					}
 				}
 			}
-			sconvKern6x16(k, &a[0], &xp[oy*pl.g.wp+ox], &pl.off[0], &got[0], ldc, bp)
-			sgemmKernel(k, &a[0], &strip[0], &want[0], ldc, 1, beta)
+			f32.Conv6x16(k, &a[0], &xp[oy*pl.g.wp+ox], &pl.off[0], &got[0], ldc, bp)
+			f32.Gemm6x16(k, &a[0], &strip[0], &want[0], ldc, 1, beta)
 			for r := 0; r < 6; r++ {
 				require.Equal(t, want[r*ldc:r*ldc+16], got[r*ldc:r*ldc+16], "q0 %d bias %t row %d", q0, withBias, r)
 				for j := 16; j < ldc; j++ {
@@ -611,26 +610,5 @@ func convFastNaN(t *testing.T, rng *rand.Rand, W int) {
 		iy, ix := i/W%6, i%W
 		near := iy >= 3 && iy <= 5 && ix >= W-2
 		require.Equal(t, near, math.IsNaN(float64(v)), "input gradient %d", i)
-	}
-}
-
-func TestConvCopyRows(t *testing.T) {
-	// sconvCopyRows equals a row-by-row copy (the Go builtin) for widths
-	// around the 8-float vector width, and writes nothing outside the rows
-	// (common practice).
-	rng := rand.New(rand.NewSource(50))
-	for w := 1; w <= 41; w++ {
-		rows, lds, ldd := 3, w+rng.Intn(3), w+2+rng.Intn(3)
-		src := convTo32(convRandF64(rng, (rows-1)*lds+w))
-		got := make([]float32, rows*ldd+1)
-		want := make([]float32, rows*ldd+1)
-		for i := range got {
-			got[i], want[i] = -7, -7
-		}
-		sconvCopyRows(&got[1], ldd, &src[0], lds, rows, w)
-		for r := 0; r < rows; r++ {
-			copy(want[1+r*ldd:1+r*ldd+w], src[r*lds:r*lds+w])
-		}
-		require.Equal(t, want, got, "width %d", w)
 	}
 }

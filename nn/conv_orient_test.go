@@ -1,6 +1,8 @@
 package nn
 
 import (
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+
 	"math/rand"
 	"testing"
 
@@ -32,7 +34,7 @@ func convTransposedSample(pl *sconvPlan, xp, bp []float32, m int, b, y, a, cs []
 			d[0], d[1], d[2], d[3], d[4], d[5] = s[0], s[1], s[2], s[3], s[4], s[5]
 		}
 		for jn := 0; jn < mpad; jn += sgemmNR {
-			sgemmKernel(k, &a[0], &bp[jn*k], &cs[q0*mpad+jn], mpad, 1, 0)
+			f32.Gemm6x16(k, &a[0], &bp[jn*k], &cs[q0*mpad+jn], mpad, 1, 0)
 		}
 	}
 	p := g.oh * g.ow
@@ -100,9 +102,6 @@ func TestConvTransposedOrientation(t *testing.T) {
 	// orientations against the ONNX Conv definition evaluated by loops
 	// (common practice), within the float32 dot-product bound (Higham 2002,
 	// eq. 3.5; from memory).
-	if sgemmKernel == nil {
-		t.Skip("the packed kernel needs AVX2 and FMA")
-	}
 	rng := rand.New(rand.NewSource(45))
 	s := newConvOrientSetup(rng, 5, 20, 11)
 	sconvSample(&s.pl, s.xp, s.wp, s.m, s.b, s.y1, s.strip, s.cs, &s.tile)
@@ -118,8 +117,8 @@ func TestConvTransposedOrientation(t *testing.T) {
 // one (M = positions, "positions") on the cnn-m shapes, both over the
 // padded width, and reports GFLOP/s = 2·MACs / time.
 func BenchmarkConvOrientation(b *testing.B) {
-	if sgemmKernel == nil {
-		b.Skip("the packed kernel needs AVX2 and FMA")
+	if !f32.Asm() {
+		b.Skip("the kernels run in assembly only with AVX2 and FMA")
 	}
 	rng := rand.New(rand.NewSource(4))
 	for _, sh := range convBenchShapes {

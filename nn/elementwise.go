@@ -1,6 +1,8 @@
 package nn
 
 import (
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+
 	"errors"
 	"fmt"
 	"hash"
@@ -361,7 +363,7 @@ func elemUnaryRun[T elemFloat](op *elemUnaryOp, p, xv G.Value) (G.Value, error) 
 	switch op.kind {
 	case "Relu": // the hot one: no float64 round trip
 		if y32, ok := any(y).([]float32); ok {
-			execReluF32(y32, any(x).([]float32))
+			f32.Relu(y32, any(x).([]float32))
 		} else {
 			execReluGo(y, x)
 		}
@@ -418,7 +420,7 @@ func elemUnaryDiffRun[T elemFloat](op *elemUnaryDiffOp, p G.Value, vs []G.Value)
 	switch op.kind {
 	case "Relu":
 		if d32, ok := any(d).([]float32); ok {
-			execReluDiffF32(d32, any(x).([]float32), any(g).([]float32))
+			f32.ReluGrad(d32, any(x).([]float32), any(g).([]float32))
 		} else {
 			execReluDiffGo(d, x, g)
 		}
@@ -471,7 +473,7 @@ func elemReluDiffRun[T elemFloat](op *elemReluDiffOp, p G.Value, vs []G.Value) (
 	}
 	v, d := elemAlloc[T](p, op.dt, op.shape)
 	if d32, ok := any(d).([]float32); ok {
-		execReluDiffF32(d32, any(y).([]float32), any(g).([]float32))
+		f32.ReluGrad(d32, any(y).([]float32), any(g).([]float32))
 	} else {
 		execReluDiffGo(d, y, g)
 	}

@@ -7,9 +7,8 @@ import (
 )
 
 // The Relu kernels: y = max(0, x) (Go's max: NaN stays NaN, -0 gives +0)
-// and ∂L/∂x = ∂L/∂y where x > 0, 0 elsewhere. execReluF32 and
-// execReluDiffF32 (exec_elem_amd64.go, exec_elem_other.go) run them with
-// AVX2 where the CPU has it; the loops below are the reference and the tail.
+// and ∂L/∂x = ∂L/∂y where x > 0, 0 elsewhere, for float64; float32 runs
+// f32.Relu and f32.ReluGrad, which compute the same.
 
 // execReluGo stores y[i] = max(0, x[i]) for i < len(x).
 func execReluGo[T elemFloat](y, x []T) {

@@ -11,79 +11,6 @@ import (
 	"gorgonia.org/tensor"
 )
 
-// execSpecials32 are IEEE 754 binary32 bit patterns at the edges of Relu:
-// ±0, the smallest and largest subnormals, the smallest normal, ±1, the
-// largest finite, ±Inf and a quiet NaN (IEEE 754-2019, 3.4).
-var execSpecials32 = []uint32{
-	0x00000000, 0x80000000, // +0, -0
-	0x00000001, 0x80000001, // ±smallest subnormal
-	0x007fffff, 0x807fffff, // ±largest subnormal
-	0x00800000, 0x80800000, // ±smallest normal
-	0x3f800000, 0xbf800000, // ±1
-	0x7f7fffff, 0xff7fffff, // ±largest finite
-	0x7f800000, 0xff800000, // ±Inf
-	0x7fc00000, // quiet NaN
-}
-
-// TestExecReluF32MatchesGoMax checks the vector Relu against Go's max,
-// which the Go specification defines for floats: max(x, 0) is NaN for NaN
-// and +0 for -0 ("negative zero is smaller than positive zero"; The Go
-// Programming Language Specification, Min and max). The derivative is g
-// where x > 0 and +0 elsewhere, NaN included (an ordered comparison with
-// NaN is false, IEEE 754-2019, 5.11). Every length up to 70 exercises the
-// 32-, 8- and 1-element paths.
-func TestExecReluF32MatchesGoMax(t *testing.T) {
-	rng := rand.New(rand.NewSource(5))
-	for n := 0; n <= 70; n++ {
-		x := make([]float32, n)
-		g := make([]float32, n)
-		for i := range x {
-			if rng.Intn(3) == 0 {
-				x[i] = math.Float32frombits(execSpecials32[rng.Intn(len(execSpecials32))])
-			} else {
-				x[i] = float32(rng.NormFloat64())
-			}
-			g[i] = float32(rng.NormFloat64())
-		}
-		y := make([]float32, n)
-		d := make([]float32, n)
-		execReluF32(y, x)
-		execReluDiffF32(d, x, g)
-		for i, xi := range x {
-			want := max(xi, 0) // Go spec semantics
-			require.Equal(t, math.Float32bits(want), math.Float32bits(y[i]), "n=%d relu(%#x)", n, math.Float32bits(xi))
-			var wd float32
-			if xi > 0 {
-				wd = g[i]
-			}
-			require.Equal(t, math.Float32bits(wd), math.Float32bits(d[i]), "n=%d ∂relu(%#x)", n, math.Float32bits(xi))
-		}
-		// The backward reads y = Relu(x) instead of x: the same mask.
-		dy := make([]float32, n)
-		execReluDiffF32(dy, y, g)
-		for i := range d {
-			require.Equal(t, math.Float32bits(d[i]), math.Float32bits(dy[i]), "n=%d ∂relu from y at x=%#x", n, math.Float32bits(x[i]))
-		}
-	}
-	// The specials themselves, in a block the vector path takes whole.
-	x := make([]float32, 32)
-	for i := range x {
-		x[i] = math.Float32frombits(execSpecials32[i%len(execSpecials32)])
-	}
-	y := make([]float32, 32)
-	execReluF32(y, x)
-	require.Equal(t, uint32(0x00000000), math.Float32bits(y[1]), "relu(-0) = +0 (Go spec, max)")
-	require.True(t, math.IsNaN(float64(y[14])), "relu(NaN) = NaN (Go spec, max)")
-	require.Equal(t, uint32(0x7f800000), math.Float32bits(y[12]), "relu(+Inf) = +Inf")
-	require.Equal(t, uint32(0x00000000), math.Float32bits(y[13]), "relu(-Inf) = +0")
-	// In place, as UnsafeDo runs it.
-	want := append([]float32(nil), y...)
-	execReluF32(x, x)
-	for i := range x {
-		require.Equal(t, math.Float32bits(want[i]), math.Float32bits(x[i]))
-	}
-}
-
 // TestElemArithRowMatchesIEEE checks the row kernels of Add, Sub, Mul and
 // Div against the one-operation closures of elemBinaryFunc for every
 // stride pair: IEEE 754 (2019, 4.3) rounds each basic operation exactly, so
@@ -117,50 +44,6 @@ func TestElemArithRowMatchesIEEE(t *testing.T) {
 	require.False(t, elemArithRow(elemArithCode("Pow"), y, y, y, 1, 1))
 	require.False(t, elemArithRow(elemArithCode("Add"), y, y, y, 2, 1))
 	require.False(t, elemArithRow(elemArithCode("Add"), y, y, y, 0, 0))
-}
-
-func BenchmarkExecRelu(b *testing.B) {
-	const n = 64 * 16 * 32 * 32 // cnn-m's first Relu at batch 64
-	x := make([]float32, n)
-	for i := range x {
-		x[i] = float32(i%7) - 3
-	}
-	y := make([]float32, n)
-	b.Run("vector", func(b *testing.B) {
-		b.SetBytes(8 * n)
-		for i := 0; i < b.N; i++ {
-			execReluF32(y, x)
-		}
-	})
-	b.Run("go", func(b *testing.B) {
-		b.SetBytes(8 * n)
-		for i := 0; i < b.N; i++ {
-			execReluGo(y, x)
-		}
-	})
-}
-
-func BenchmarkExecReluDiff(b *testing.B) {
-	const n = 64 * 16 * 32 * 32
-	x := make([]float32, n)
-	g := make([]float32, n)
-	for i := range x {
-		x[i] = float32(i%7) - 3
-		g[i] = float32(i % 5)
-	}
-	d := make([]float32, n)
-	b.Run("vector", func(b *testing.B) {
-		b.SetBytes(12 * n)
-		for i := 0; i < b.N; i++ {
-			execReluDiffF32(d, x, g)
-		}
-	})
-	b.Run("go", func(b *testing.B) {
-		b.SetBytes(12 * n)
-		for i := 0; i < b.N; i++ {
-			execReluDiffGo(d, x, g)
-		}
-	})
 }
 
 func BenchmarkElemArithRow(b *testing.B) {

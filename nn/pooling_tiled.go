@@ -1,5 +1,7 @@
 package nn
 
+import "github.com/apportion/apportion/nn/internal/asm/f32"
+
 // Tiled pools: a kh×kw window with strides (kh, kw), no begin pads and no
 // dilation, whose windows all lie inside the input, cuts each plane into
 // disjoint tiles (the 2×2 stride-2 max pool of most convolutional networks
@@ -26,28 +28,13 @@ func poolTiled(g *convGeom) bool {
 		g.pt == 0 && g.pl == 0 && g.oh*g.kh <= g.h && g.ow*g.kw <= g.w
 }
 
-// poolMax2x2F32 is the AVX2 forward kernel of the 2×2 tiled max pool over
-// float32 planes with ow ≥ 4 (pooling_amd64.s), nil when unavailable. It
-// reports whether the input holds a NaN, in which case y is incomplete and
-// the caller recomputes it with the portable kernel.
-var poolMax2x2F32 func(x, y []float32, planes, h, w, oh, ow int) (nan bool)
-
-// poolMax2x2BackF32 is the AVX2 backward kernel matching poolMax2x2F32. It
-// writes the covered part of dx (rows < 2·oh, columns < 2·ow) only.
-var poolMax2x2BackF32 func(x, dy, dx []float32, planes, h, w, oh, ow int) (nan bool)
-
 // poolTiledForward is the forward pool of a tiled geometry.
 func poolTiledForward[T convFloat](g *convGeom, planes int, max bool, x, y []T) {
-	if max && g.kh == 2 && g.kw == 2 {
-		if x32, ok := any(x).([]float32); ok && poolMax2x2F32 != nil && g.ow >= 4 {
-			if !poolMax2x2F32(x32, any(y).([]float32), planes, g.h, g.w, g.oh, g.ow) {
-				return
-			}
-		}
-		poolMax2x2Forward(g, planes, x, y)
+	if x32, ok := any(x).([]float32); ok && max && g.kh == 2 && g.kw == 2 {
+		f32.MaxPool2x2(x32, any(y).([]float32), planes, g.h, g.w, g.oh, g.ow)
 		return
 	}
-	if g.kh == 2 && g.kw == 2 {
+	if !max && g.kh == 2 && g.kw == 2 {
 		poolAvg2x2Forward(g, planes, x, y)
 		return
 	}
@@ -80,18 +67,12 @@ func poolTiledForward[T convFloat](g *convGeom, planes int, max bool, x, y []T) 
 // poolTiledBackward is the pool gradient of a tiled geometry; it overwrites
 // all of dx.
 func poolTiledBackward[T convFloat](g *convGeom, planes int, max bool, x, dy, dx []T) {
-	if max && g.kh == 2 && g.kw == 2 {
-		done := false
-		if x32, ok := any(x).([]float32); ok && poolMax2x2BackF32 != nil && g.ow >= 4 {
-			done = !poolMax2x2BackF32(x32, any(dy).([]float32), any(dx).([]float32), planes, g.h, g.w, g.oh, g.ow)
-		}
-		if !done {
-			poolMax2x2Backward(g, planes, x, dy, dx)
-		}
+	if x32, ok := any(x).([]float32); ok && max && g.kh == 2 && g.kw == 2 {
+		f32.MaxPool2x2Grad(x32, any(dy).([]float32), any(dx).([]float32), planes, g.h, g.w, g.oh, g.ow)
 		poolClearBorder(g, planes, dx)
 		return
 	}
-	if g.kh == 2 && g.kw == 2 {
+	if !max && g.kh == 2 && g.kw == 2 {
 		poolAvg2x2Backward(g, planes, dy, dx)
 		poolClearBorder(g, planes, dx)
 		return
@@ -152,88 +133,6 @@ func poolTileArgmax[T convFloat](tile []T, x0, w, kh, kw int) int {
 		}
 	}
 	return best
-}
-
-// poolFirstMax4 returns which of the 2×2 window a b / c d poolArgmax
-// picks (0 to 3, row-major): the first NaN, else the first maximum.
-func poolFirstMax4[T convFloat](a, b, c, d T) int {
-	if a != a {
-		return 0
-	}
-	k, m := 0, a
-	if b > m {
-		k, m = 1, b
-	} else if b != b {
-		return 1
-	}
-	if c > m {
-		k, m = 2, c
-	} else if c != c {
-		return 2
-	}
-	if d > m {
-		k = 3
-	} else if d != d {
-		return 3
-	}
-	return k
-}
-
-// poolMax2x2Forward is the portable 2×2 tiled max pool.
-func poolMax2x2Forward[T convFloat](g *convGeom, planes int, x, y []T) {
-	hw, p, ow := g.h*g.w, g.oh*g.ow, g.ow
-	for pl := 0; pl < planes; pl++ {
-		xp := x[pl*hw : (pl+1)*hw]
-		yp := y[pl*p : (pl+1)*p]
-		for oy := 0; oy < g.oh; oy++ {
-			r0 := xp[2*oy*g.w : 2*oy*g.w+2*ow]
-			r1 := xp[(2*oy+1)*g.w : (2*oy+1)*g.w+2*ow]
-			yr := yp[oy*ow : (oy+1)*ow]
-			for ox := range yr {
-				a, b, c, d := r0[2*ox], r0[2*ox+1], r1[2*ox], r1[2*ox+1]
-				switch poolFirstMax4(a, b, c, d) {
-				case 0:
-					yr[ox] = a
-				case 1:
-					yr[ox] = b
-				case 2:
-					yr[ox] = c
-				default:
-					yr[ox] = d
-				}
-			}
-		}
-	}
-}
-
-// poolMax2x2Backward is the portable 2×2 tiled max pool gradient; it
-// writes the covered part of dx only.
-func poolMax2x2Backward[T convFloat](g *convGeom, planes int, x, dy, dx []T) {
-	hw, p, ow := g.h*g.w, g.oh*g.ow, g.ow
-	for pl := 0; pl < planes; pl++ {
-		xp := x[pl*hw : (pl+1)*hw]
-		dxp := dx[pl*hw : (pl+1)*hw]
-		dyp := dy[pl*p : (pl+1)*p]
-		for oy := 0; oy < g.oh; oy++ {
-			o0, o1 := 2*oy*g.w, (2*oy+1)*g.w
-			r0, r1 := xp[o0:o0+2*ow], xp[o1:o1+2*ow]
-			d0, d1 := dxp[o0:o0+2*ow], dxp[o1:o1+2*ow]
-			for ox, d := range dyp[oy*ow : (oy+1)*ow] {
-				k := poolFirstMax4(r0[2*ox], r0[2*ox+1], r1[2*ox], r1[2*ox+1])
-				d0[2*ox], d0[2*ox+1], d1[2*ox], d1[2*ox+1] = 0, 0, 0, 0
-				switch k {
-				case 0:
-					d0[2*ox] = 0 + d
-				case 1:
-					d0[2*ox+1] = 0 + d
-				case 2:
-					d1[2*ox] = 0 + d
-				default:
-					d1[2*ox+1] = 0 + d
-				}
-			}
-		}
-	}
 }
 
 // poolAvg2x2Forward is the 2×2 tiled average pool: (0 + a + b + c + d)/4,

@@ -1,6 +1,8 @@
 package nn
 
 import (
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+
 	"fmt"
 	"math"
 	"math/rand"
@@ -105,7 +107,7 @@ func TestPoolTiledMatchesGeneric(t *testing.T) {
 	// against the reference (generic windowed) kernels on inputs full of ties, signed zeros,
 	// NaNs and infinities; odd sizes leave an uncovered border. The output
 	// gradients include −0 and NaN, which 0 + dy maps as IEEE 754 says.
-	t.Logf("AVX2 kernels: %t", poolMax2x2F32 != nil)
+	t.Logf("assembly kernels: %t", f32.Asm())
 	rng := rand.New(rand.NewSource(21))
 	kernels := [][]int{{2, 2}, {3, 3}, {2, 3}, {1, 2}}
 	sizes := []int{5, 7, 8, 9, 13, 16, 28, 31}
@@ -130,39 +132,6 @@ func TestPoolTiledMatchesGeneric(t *testing.T) {
 						}
 					}
 				}
-			}
-		}
-	}
-}
-
-func TestPoolMax2x2KernelNaN(t *testing.T) {
-	// The AVX2 kernels report a NaN (IEEE 754 quiet or signalling bit
-	// pattern) wherever it sits, including in the steps that overlap at
-	// the end of a row, and report none on finite inputs.
-	if poolMax2x2F32 == nil {
-		t.Skip("no AVX2 kernels on this machine or build")
-	}
-	for _, ow := range []int{4, 6, 8, 11, 16} {
-		h, w, oh := 5, 2*ow+1, 2
-		x := make([]float32, 2*h*w)
-		for i := range x {
-			x[i] = float32(i % 7)
-		}
-		y := make([]float32, 2*oh*ow)
-		dy := make([]float32, len(y))
-		dx := make([]float32, len(x))
-		require.False(t, poolMax2x2F32(x, y, 2, h, w, oh, ow))
-		require.False(t, poolMax2x2BackF32(x, dy, dx, 2, h, w, oh, ow))
-		for _, bits := range []uint32{0x7fc00000, 0xffc00001, 0x7f800001} {
-			for p := range x {
-				if row, col := (p%(h*w))/w, p%w; row >= 2*oh || col >= 2*ow {
-					continue // outside every window: never read
-				}
-				old := x[p]
-				x[p] = math.Float32frombits(bits)
-				require.True(t, poolMax2x2F32(x, y, 2, h, w, oh, ow), "ow %d NaN at %d", ow, p)
-				require.True(t, poolMax2x2BackF32(x, dy, dx, 2, h, w, oh, ow), "ow %d NaN at %d", ow, p)
-				x[p] = old
 			}
 		}
 	}

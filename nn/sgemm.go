@@ -1,6 +1,8 @@
 package nn
 
 import (
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+
 	"fmt"
 	"sync"
 
@@ -66,7 +68,7 @@ type sgemmScratch struct {
 // for every sgemmKC-deep block of k; a block ends with alpha·T (exact and
 // skipped when alpha == 1) added to beta·C (beta = 1 after the first block).
 func sgemm(tA, tB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
-	if sgemmKernel == nil {
+	if !f32.Asm() {
 		sgemmGonum(tA, tB, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
 		return
 	}
@@ -110,8 +112,7 @@ func sgemmCheck(tA, tB bool, m, n, k int, a []float32, lda int, b []float32, ldb
 	need("C", m, n, ldc, len(c))
 }
 
-// sgemmPacked is sgemm through the packed AVX2/FMA kernel; sgemmKernel must
-// not be nil.
+// sgemmPacked is sgemm through the packed kernels of package f32.
 func sgemmPacked(tA, tB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
 	sgemmCheck(tA, tB, m, n, k, a, lda, b, ldb, c, ldc)
 	if m == 0 || n == 0 {
@@ -121,7 +122,7 @@ func sgemmPacked(tA, tB bool, m, n, k int, alpha float32, a []float32, lda int, 
 		sgemmScale(m, n, beta, c, ldc)
 		return
 	}
-	if !tB && n >= 32 && sgemmRowKernel != nil && m < sgemmRowsBelow {
+	if !tB && n >= 32 && m < sgemmRowsBelow {
 		sgemmRows(tA, m, n, k, alpha, a, lda, b, ldb, beta, c, ldc)
 		return
 	}
@@ -224,20 +225,12 @@ func sgemmPackPanelB(tB bool, b []float32, ldb, pc, kc, jc, nc int, dst []float3
 		d := dst[jr*kc : jr*kc+kc*sgemmNR]
 		j0 := jc + jr
 		if !tB {
-			if cp := sgemmCopy16; cp != nil && nr == sgemmNR && kc > 0 {
-				// Bounds checked here for the whole strip, copied in assembly.
+			if nr == sgemmNR && kc > 0 {
+				// Bounds checked here for the whole strip, copied by the kernel.
 				last := (pc+kc-1)*ldb + j0
 				_ = b[last+sgemmNR-1]
 				_ = d[kc*sgemmNR-1]
-				cp(&b[pc*ldb+j0], ldb, &d[0], kc)
-				continue
-			}
-			if nr == sgemmNR {
-				// Whole strips: one 64-byte array copy per row, no memmove call.
-				for p := 0; p < kc; p++ {
-					o := (pc+p)*ldb + j0
-					*(*[sgemmNR]float32)(d[p*sgemmNR:]) = *(*[sgemmNR]float32)(b[o : o+sgemmNR])
-				}
+				f32.CopyRows16(&b[pc*ldb+j0], ldb, &d[0], kc)
 				continue
 			}
 			for p := 0; p < kc; p++ {
@@ -252,13 +245,13 @@ func sgemmPackPanelB(tB bool, b []float32, ldb, pc, kc, jc, nc int, dst []float3
 		if nr < sgemmNR {
 			clear(d)
 		}
-		if tr := sgemmTranspose8; tr != nil && nr == sgemmNR {
+		if nr == sgemmNR {
 			// 8×8 blocks transposed in registers, the k tail by hand.
 			k8 := kc &^ 7
 			for jb := 0; jb < sgemmNR; jb += 8 {
 				for p := 0; p < k8; p += 8 {
 					src := b[(j0+jb)*ldb+pc+p : (j0+jb+7)*ldb+pc+p+8]
-					tr(&src[0], ldb, &d[p*sgemmNR+jb], sgemmNR)
+					f32.Transpose8x8(&src[0], ldb, &d[p*sgemmNR+jb], sgemmNR)
 				}
 			}
 			for j := 0; j < nr; j++ {

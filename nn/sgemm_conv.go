@@ -1,12 +1,14 @@
 package nn
 
-// A float32 convolution driver on the packed GEMM kernel of sgemm.go that
+import "github.com/apportion/apportion/nn/internal/asm/f32"
+
+// A float32 convolution driver on the packed GEMM of sgemm.go that
 // never materialises the im2col matrix: for one sample and one group it
 // computes Y = W·im2col(X) (M = output channels, N = output positions,
 // K = input channels × kernel) strip by strip, sgemmNR output positions at
 // a time. With a unit column stride, row p = (ci, i, j) of a strip is 16
 // contiguous values of the padded image at a fixed offset, so
-// sconvKern6x16 reads the strip in place through a table of offsets;
+// f32.Conv6x16 reads the strip in place through a table of offsets;
 // other strides pack it (sconvPackStrip, the sgemmPackPanelB layout). Every
 // sgemmMR-row strip of the packed weights runs against a strip while it is
 // in L1. The weights are packed once per op instance (they are model
@@ -155,7 +157,7 @@ type sconvPlan struct {
 }
 
 // sconvPlanFits reports whether the offsets of g fit in int32
-// (sconvKern6x16 reads them as such).
+// (f32.Conv6x16 reads them as such).
 func sconvPlanFits(g *sconvGeom) bool {
 	return int64(g.c)*int64(g.hp)*int64(g.wp)+int64(g.wp)+2*sgemmNR < 1<<31
 }
@@ -257,10 +259,10 @@ func sconvRowsSample(pl *sconvPlan, xp, wp []float32, m int, b, y []float32, til
 				bp = &b[ir]
 			}
 			if ir+sgemmMR <= m {
-				sconvKern6x16(k, &wp[ir*k], xb, &pl.off[0], &y[ir*p+q0], p, bp)
+				f32.Conv6x16(k, &wp[ir*k], xb, &pl.off[0], &y[ir*p+q0], p, bp)
 				continue
 			}
-			sconvKern6x16(k, &wp[ir*k], xb, &pl.off[0], &tile[0], sgemmNR, bp)
+			f32.Conv6x16(k, &wp[ir*k], xb, &pl.off[0], &tile[0], sgemmNR, bp)
 			for r := 0; r < m-ir; r++ {
 				copy(y[(ir+r)*p+q0:(ir+r)*p+q0+sgemmNR], tile[r*sgemmNR:(r+1)*sgemmNR])
 			}
@@ -269,12 +271,11 @@ func sconvRowsSample(pl *sconvPlan, xp, wp []float32, m int, b, y []float32, til
 }
 
 // sconvStridedSample is sconvSample for sconvStrided: each strip is packed
-// by sconvPackStrip and multiplied by kern6x16, with the bias loaded into
+// by sconvPackStrip and multiplied by f32.Gemm6x16, with the bias loaded into
 // the tile and added by the beta = 1 store (the rounding of
-// sconvKern6x16's bias).
+// f32.Conv6x16's bias).
 func sconvStridedSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip []float32, tile *[sgemmMR * sgemmNR]float32) {
 	g := &pl.g
-	kern := sgemmKernel
 	k := g.k()
 	p := g.oh * g.ow
 	var beta float32
@@ -295,7 +296,7 @@ func sconvStridedSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip []fl
 					}
 				}
 			}
-			kern(k, &wp[ir*k], &strip[0], &tile[0], sgemmNR, 1, beta)
+			f32.Gemm6x16(k, &wp[ir*k], &strip[0], &tile[0], sgemmNR, 1, beta)
 			for r := 0; r < mr; r++ {
 				copy(y[(ir+r)*p+q0:(ir+r)*p+q0+nr], tile[r*sgemmNR:r*sgemmNR+nr])
 			}
@@ -317,7 +318,7 @@ func sconvGridSample(pl *sconvPlan, xp, wp []float32, m int, b, y, cs []float32)
 			if b != nil {
 				bp = &b[ir]
 			}
-			sconvKern6x16(k, &wp[ir*k], &xp[q0], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+			f32.Conv6x16(k, &wp[ir*k], &xp[q0], &pl.off[0], &cs[ir*pq+q0], pq, bp)
 		}
 	}
 	p := g.oh * g.ow

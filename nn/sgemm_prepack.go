@@ -1,6 +1,10 @@
 package nn
 
-import "fmt"
+import (
+	"fmt"
+
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+)
 
 // sgemmPrepacked holds a B operand that never changes between products (a
 // model weight) in the layouts the float32 GEMM reads, each made on the
@@ -31,7 +35,7 @@ type sgemmPrepacked struct {
 // newSgemmPrepacked returns an empty prepacked op(B), k×n, transposed when
 // tB; nil when the CPU has no packed kernel (callers then use sgemm).
 func newSgemmPrepacked(tB bool, n, k int) *sgemmPrepacked {
-	if sgemmKernel == nil || n <= 0 || k <= 0 {
+	if !f32.Asm() || n <= 0 || k <= 0 {
 		return nil
 	}
 	return &sgemmPrepacked{tB: tB, k: k, n: n}
@@ -99,7 +103,7 @@ func sgemmPre(tA bool, m, n, k int, alpha float32, a []float32, lda int, pb *sge
 		sgemmScale(m, n, beta, c, ldc)
 		return
 	}
-	if n >= 32 && sgemmRowKernel != nil && m < sgemmPreRowsBelow {
+	if n >= 32 && m < sgemmPreRowsBelow {
 		n32 := n &^ 31
 		rows, ld := pb.rowsOf(b, ldb)
 		sgemmRowsLoop(tA, m, n32, k, alpha, a, lda, rows, ld, beta, c, ldc)
@@ -146,7 +150,6 @@ func sgemmPrePanels(tA bool, m, j0 int, alpha float32, a []float32, lda int, pan
 // a packed kc×nc panel of B into C (c[0] is the block's top-left element),
 // as C = alpha·A·B + bet·C per register tile.
 func sgemmMacro(mc, nc, kc, jr0 int, alpha, bet float32, bufA, bufB []float32, tile *[sgemmMR * sgemmNR]float32, c []float32, ldc int) {
-	kern := sgemmKernel
 	for jr := jr0; jr < nc; jr += sgemmNR {
 		nr := min(sgemmNR, nc-jr)
 		bp := &bufB[jr*kc]
@@ -155,12 +158,12 @@ func sgemmMacro(mc, nc, kc, jr0 int, alpha, bet float32, bufA, bufB []float32, t
 			ap := &bufA[ir*kc]
 			ci := ir*ldc + jr
 			if mr == sgemmMR && nr == sgemmNR {
-				kern(kc, ap, bp, &c[ci], ldc, alpha, bet)
+				f32.Gemm6x16(kc, ap, bp, &c[ci], ldc, alpha, bet)
 				continue
 			}
-			if edge := sgemmEdgeKernel; edge != nil && nr == sgemmNR {
+			if nr == sgemmNR {
 				// Bottom edge, whole columns: only mr rows of C are touched.
-				edge(kc, ap, 1, sgemmMR, bp, &c[ci], ldc, alpha, bet, mr)
+				f32.Gemm6x16Edge(kc, ap, 1, sgemmMR, bp, &c[ci], ldc, alpha, bet, mr)
 				continue
 			}
 			// Edge tile: the kernel updates a full tile loaded with the
@@ -172,7 +175,7 @@ func sgemmMacro(mc, nc, kc, jr0 int, alpha, bet float32, bufA, bufB []float32, t
 					copy(tile[i*sgemmNR:i*sgemmNR+nr], c[ci+i*ldc:ci+i*ldc+nr])
 				}
 			}
-			kern(kc, ap, bp, &tile[0], sgemmNR, alpha, bet)
+			f32.Gemm6x16(kc, ap, bp, &tile[0], sgemmNR, alpha, bet)
 			for i := 0; i < mr; i++ {
 				copy(c[ci+i*ldc:ci+i*ldc+nr], tile[i*sgemmNR:i*sgemmNR+nr])
 			}
@@ -184,7 +187,6 @@ func sgemmMacro(mc, nc, kc, jr0 int, alpha, bet float32, bufA, bufB []float32, t
 // multiple of 32) for each of the m rows, reading op(B) = B in place; the k
 // blocks are those of the packed driver.
 func sgemmRowsLoop(tA bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
-	kern := sgemmRowKernel
 	for i := 0; i < m; i++ {
 		// Row i of op(A): A[i][p] = a[i·lda+p], or Aᵀ[i][p] = a[p·lda+i].
 		off, inc := i*lda, 1
@@ -198,7 +200,7 @@ func sgemmRowsLoop(tA bool, m, n, k int, alpha float32, a []float32, lda int, b 
 				bet = 1
 			}
 			for j := 0; j < n; j += 32 {
-				kern(kc, &a[off+pc*inc], inc, &b[pc*ldb+j], ldb, &c[i*ldc+j], alpha, bet)
+				f32.Gemm1x32(kc, &a[off+pc*inc], inc, &b[pc*ldb+j], ldb, &c[i*ldc+j], alpha, bet)
 			}
 		}
 	}
@@ -212,8 +214,7 @@ func sgemmRowsLoop(tA bool, m, n, k int, alpha float32, a []float32, lda int, b 
 // bufA. Either way every element gets the same chain of fused
 // multiply-adds.
 func sgemmBlock(tA bool, a []float32, lda, ic, mc, pc, kc, nc, jr0 int, alpha, bet float32, bufA, bufB []float32, tile *[sgemmMR * sgemmNR]float32, c []float32, ldc int) {
-	kernS := sgemmStridedKernel
-	if tA || kernS == nil {
+	if tA {
 		sgemmPackBlockA(tA, a, lda, ic, mc, pc, kc, bufA)
 		sgemmMacro(mc, nc, kc, jr0, alpha, bet, bufA, bufB, tile, c, ldc)
 		return
@@ -231,7 +232,7 @@ func sgemmBlock(tA bool, a []float32, lda, ic, mc, pc, kc, nc, jr0 int, alpha, b
 			ap := &a[(ic+ir)*lda+pc]
 			ci := ir*ldc + jr
 			if nr == sgemmNR {
-				kernS(kc, ap, lda, 1, bp, &c[ci], ldc, alpha, bet)
+				f32.Gemm6x16Strided(kc, ap, lda, 1, bp, &c[ci], ldc, alpha, bet)
 				continue
 			}
 			// Edge tile, as in sgemmMacro.
@@ -241,7 +242,7 @@ func sgemmBlock(tA bool, a []float32, lda, ic, mc, pc, kc, nc, jr0 int, alpha, b
 					copy(tile[i*sgemmNR:i*sgemmNR+nr], c[ci+i*ldc:ci+i*ldc+nr])
 				}
 			}
-			kernS(kc, ap, lda, 1, bp, &tile[0], sgemmNR, alpha, bet)
+			f32.Gemm6x16Strided(kc, ap, lda, 1, bp, &tile[0], sgemmNR, alpha, bet)
 			for i := 0; i < sgemmMR; i++ {
 				copy(c[ci+i*ldc:ci+i*ldc+nr], tile[i*sgemmNR:i*sgemmNR+nr])
 			}

@@ -1,6 +1,10 @@
 package nn
 
 import (
+	"github.com/apportion/apportion/internal/cpupeak"
+
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -14,7 +18,7 @@ import (
 var sgemmEdgeDims = []int{1, 5, 6, 7, 15, 16, 17, 255, 257}
 
 func TestSgemmPrepackedMatchesUnpackedAndGonum(t *testing.T) {
-	if sgemmKernel == nil {
+	if !f32.Asm() {
 		t.Skip("no AVX2/FMA kernel on this CPU; nothing is prepacked")
 	}
 	rng := rand.New(rand.NewPCG(21, 22))
@@ -82,7 +86,7 @@ func TestSgemmPrepackedMatchesUnpackedAndGonum(t *testing.T) {
 // rounded fused multiply-adds (IEEE 754-2008 §5.4.1) in the order of k, so
 // the bits cannot depend on the path if the chains agree.
 func TestSgemmRowBitsEveryPath(t *testing.T) {
-	if sgemmKernel == nil {
+	if !f32.Asm() {
 		t.Skip("no AVX2/FMA kernel on this CPU; gonum's Sgemm does not promise batch-invariant bits")
 	}
 	rng := rand.New(rand.NewPCG(23, 24))
@@ -132,7 +136,7 @@ func TestSgemmRowBitsEveryPath(t *testing.T) {
 }
 
 func TestSgemmPrepackedRefusesBadShapes(t *testing.T) {
-	if sgemmKernel == nil {
+	if !f32.Asm() {
 		t.Skip("no AVX2/FMA kernel on this CPU; nothing is prepacked")
 	}
 	// The kernel writes through pointers: a product of another shape than
@@ -155,7 +159,7 @@ func TestSgemmPrepackedNoAllocs(t *testing.T) {
 	if execRace {
 		t.Skip("the race detector makes sync.Pool drop items, which changes allocation counts")
 	}
-	if sgemmKernel == nil {
+	if !f32.Asm() {
 		t.Skip("no AVX2/FMA kernel on this CPU; nothing is prepacked")
 	}
 	// Zero allocations per warm call (the buffer contract of the ops, common
@@ -175,7 +179,7 @@ func TestSgemmPrepackedNoAllocs(t *testing.T) {
 // against sgemm packing it on every call: mlp-m's layers forward (Wᵀ,
 // transB) and backward (W) at batch 1, 8 and 64.
 func BenchmarkSgemmPrepacked(b *testing.B) {
-	if sgemmKernel == nil {
+	if !f32.Asm() {
 		b.Skip("no AVX2/FMA kernel on this CPU")
 	}
 	shapes := []struct {
@@ -203,11 +207,11 @@ func BenchmarkSgemmPrepacked(b *testing.B) {
 		flops := 2 * float64(s.m*s.n*s.k)
 		b.Run(s.name+"/packed-per-call", func(b *testing.B) {
 			b.ReportAllocs()
-			cpuLoop(b, flops, func() { sgemm(false, s.tB, s.m, s.n, s.k, 1, a, lda, bb, ldb, 0, c, ldc) })
+			cpupeak.Bench(b, flops, func() { sgemm(false, s.tB, s.m, s.n, s.k, 1, a, lda, bb, ldb, 0, c, ldc) })
 		})
 		b.Run(s.name+"/prepacked", func(b *testing.B) {
 			b.ReportAllocs()
-			cpuLoop(b, flops, func() { sgemmPre(false, s.m, s.n, s.k, 1, a, lda, pb, bb, ldb, 0, c, ldc) })
+			cpupeak.Bench(b, flops, func() { sgemmPre(false, s.m, s.n, s.k, 1, a, lda, pb, bb, ldb, 0, c, ldc) })
 		})
 	}
 }

@@ -1,10 +1,13 @@
 package nn
 
 import (
+	"github.com/apportion/apportion/internal/cpupeak"
+
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+
 	"fmt"
 	"math"
 	"math/rand/v2"
-	"runtime"
 	"strings"
 	"testing"
 
@@ -92,7 +95,7 @@ func sgemmClose(t *testing.T, name string, want []float64, got []float32, m, n, 
 }
 
 func TestSgemmClosedForm(t *testing.T) {
-	if sgemmKernel == nil {
+	if !f32.Asm() {
 		t.Skip("no AVX2/FMA kernel on this CPU; sgemm is gonum's Sgemm")
 	}
 	dims := []int{1, 2, 3, 5, 7, 8, 15, 16, 17, 31, 64, 100, 257}
@@ -126,7 +129,7 @@ func TestSgemmClosedForm(t *testing.T) {
 }
 
 func TestSgemmTransposeScalars(t *testing.T) {
-	if sgemmKernel == nil {
+	if !f32.Asm() {
 		t.Skip("no AVX2/FMA kernel on this CPU; sgemm is gonum's Sgemm")
 	}
 	// All four transpose pairs × all alpha, beta on shapes that cross the
@@ -180,7 +183,7 @@ func TestSgemmDegenerate(t *testing.T) {
 	// BLAS semantics (Dongarra et al. 1990): k == 0 or alpha == 0 leaves
 	// C = beta·C, and beta == 0 writes exact zeros over NaN.
 	for _, f := range []func(bool, bool, int, int, int, float32, []float32, int, []float32, int, float32, []float32, int){sgemmPacked, sgemmGonum} {
-		if sgemmKernel == nil {
+		if !f32.Asm() {
 			break
 		}
 		c := []float32{float32(math.NaN()), float32(math.NaN()), 3, 4}
@@ -236,7 +239,7 @@ func BenchmarkSgemm(b *testing.B) {
 				tA, tB := strings.Contains(s.name, "tA"), strings.Contains(s.name, "tB")
 				a, lda, bb, ldb, c, ldc := sgemmOperands(rng, tA, tB, s.m, s.n, s.k, 0, 0)
 				b.ReportAllocs()
-				cpuLoop(b, 2*float64(s.m*s.n*s.k), func() { im.f(tA, tB, s.m, s.n, s.k, 1, a, lda, bb, ldb, 0, c, ldc) })
+				cpupeak.Bench(b, 2*float64(s.m*s.n*s.k), func() { im.f(tA, tB, s.m, s.n, s.k, 1, a, lda, bb, ldb, 0, c, ldc) })
 			})
 		}
 	}
@@ -247,7 +250,7 @@ func TestSgemmRowsMatchBatch(t *testing.T) {
 	// that row inside a batched product: every element is one chain of
 	// correctly rounded fused multiply-adds (IEEE 754-2008 §5.4.1), so the
 	// bits depend only on the order of the chain, which sgemm fixes by k.
-	if sgemmKernel == nil {
+	if !f32.Asm() {
 		// gonum's Sgemm orders its sums by shape (with tA and tB a row
 		// alone differs from the batched row in the last bits).
 		t.Skip("no AVX2/FMA kernel on this CPU; gonum's Sgemm does not promise batch-invariant bits")
@@ -279,23 +282,5 @@ func TestSgemmRowsMatchBatch(t *testing.T) {
 				}
 			}
 		}
-	}
-}
-
-// cpuLoop runs f b.N times on one locked OS thread and reports flops per
-// second of wall-clock time ("GFLOP/s") and of that thread's CPU time
-// ("GFLOP/s-cpu"): on a shared machine the thread's CPU time leaves out the
-// time other processes hold the core, so A/B comparisons stay readable.
-func cpuLoop(b *testing.B, flops float64, f func()) {
-	runtime.LockOSThread()
-	defer runtime.UnlockOSThread()
-	t0 := threadCPU()
-	for b.Loop() {
-		f()
-	}
-	cpu := threadCPU() - t0
-	b.ReportMetric(flops*float64(b.N)/b.Elapsed().Seconds()/1e9, "GFLOP/s")
-	if cpu > 0 {
-		b.ReportMetric(flops*float64(b.N)/cpu/1e9, "GFLOP/s-cpu")
 	}
 }

@@ -1,19 +1,19 @@
 //go:build amd64 && !purego
 
 #include "textflag.h"
-#include "sgemm_amd64.h"
+#include "gemm_amd64.h"
 
-// func sconvKern6x16(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *float32)
+// func conv6x16Asm(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *float32)
 //
-// kern6x16 (sgemm_amd64.s) with the B panel read in place: row p of the
+// gemm6x16Asm (gemm_amd64.s) with the B panel read in place: row p of the
 // 16-column strip is the 16 floats at b[off[p]] instead of a packed row, so
 // the im2col strip of a convolution is read straight from the padded image.
-// The multiply-adds and their order are those of kern6x16 (the k loop
+// The multiply-adds and their order are those of gemm6x16Asm (the k loop
 // unrolled four times, the remainder one p at a time). It stores
-// c[r·ldc+j] = T[r][j] + bias[r] (one rounding, like kern6x16's beta = 1
+// c[r·ldc+j] = T[r][j] + bias[r] (one rounding, like gemm6x16Asm's beta = 1
 // store onto a bias-filled tile), or T[r][j] when bias is nil; c is never
 // read.
-TEXT ·sconvKern6x16(SB), NOSPLIT, $0-56
+TEXT ·conv6x16Asm(SB), NOSPLIT, $0-56
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
@@ -92,11 +92,11 @@ knobias:
 	VZEROUPPER
 	RET
 
-// func sconvCopyRows(dst *float32, ldd int, src *float32, lds int, rows, w int)
+// func copyRowsAsm(dst *float32, ldd int, src *float32, lds int, rows, w int)
 //
 // Copies rows rows of w floats from src (row stride lds) to dst (row
 // stride ldd): eight floats per YMM move, the rest one at a time.
-TEXT ·sconvCopyRows(SB), NOSPLIT, $0-48
+TEXT ·copyRowsAsm(SB), NOSPLIT, $0-48
 	MOVQ dst+0(FP), DI
 	MOVQ ldd+8(FP), R8
 	SHLQ $2, R8

@@ -9,7 +9,7 @@
 // VPERMPD $0xd8 maps between that order and the natural one (it is its own
 // inverse). The window maximum is m = max(max(max(a, b), c), d) with
 // VMAXPS src2 > src3 ? src2 : src3, which keeps the earlier element on
-// ties and is exactly "if v > m { m = v }" of the portable code when no
+// ties and is exactly "if v > m { m = v }" of the loop in maxPool2x2 when no
 // input is NaN. NaNs are only detected (VCMPPS UNORD, OR-ed into Y13/Y14):
 // the functions return true and the caller redoes the pass portably.
 // A row whose length is not a multiple of the step ends with one step that
@@ -53,11 +53,11 @@
 	VMAXPS X4, X6, X4 \
 	VMAXPS X4, X7, X4
 
-// func poolMax2x2F32AVX2(x, y *float32, planes, h, w, oh, ow int) bool
+// func maxPool2x2Asm(x, y *float32, planes, h, w, oh, ow int) bool
 //
 // y[p, i, j] = first max of x[p, 2i..2i+1, 2j..2j+1] for p < planes,
 // i < oh, j < ow; 4 ≤ ow, 2·ow ≤ w, 2·oh ≤ h; y is dense (planes·oh·ow).
-TEXT ·poolMax2x2F32AVX2(SB), NOSPLIT, $0-57
+TEXT ·maxPool2x2Asm(SB), NOSPLIT, $0-57
 	MOVQ x+0(FP), SI
 	MOVQ y+8(FP), DI
 	MOVQ planes+16(FP), AX
@@ -218,12 +218,12 @@ fsmall: // 4 ≤ ow < 8: outputs 0-3, then ow-4 to ow-1
 	VMOVUPS X2, (r1)(off*1) \
 	VMOVUPS X3, 16(r1)(off*1)
 
-// func poolMax2x2BackF32AVX2(x, dy, dx *float32, planes, h, w, oh, ow int) bool
+// func maxPool2x2GradAsm(x, dy, dx *float32, planes, h, w, oh, ow int) bool
 //
 // Writes dx[p, 2i+u, 2j+v] for u, v < 2, i < oh, j < ow: 0 + dy[p, i, j]
 // at the first maximum of the window, +0 elsewhere. Same conditions as
-// poolMax2x2F32AVX2; dx has the layout of x.
-TEXT ·poolMax2x2BackF32AVX2(SB), NOSPLIT, $0-65
+// maxPool2x2Asm; dx has the layout of x.
+TEXT ·maxPool2x2GradAsm(SB), NOSPLIT, $0-65
 	MOVQ x+0(FP), SI
 	MOVQ dy+8(FP), DI
 	MOVQ dx+16(FP), AX

@@ -1,4 +1,4 @@
-// Register blocks shared by the 6×16 float32 kernels (sgemm_amd64.s,
+// Register blocks shared by the 6×16 float32 kernels (gemm_amd64.s,
 // conv_amd64.s): the tile of C lives in Y0..Y11 (row r in Y(2r), Y(2r+1)),
 // Y12/Y13 hold a row of B, Y14/Y15 broadcast elements of A.
 

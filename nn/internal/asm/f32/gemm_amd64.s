@@ -1,9 +1,9 @@
 //go:build amd64 && !purego
 
 #include "textflag.h"
-#include "sgemm_amd64.h"
+#include "gemm_amd64.h"
 
-// func kern6x16(kc int, a, b, c *float32, ldc int, alpha, beta float32)
+// func gemm6x16Asm(kc int, a, b, c *float32, ldc int, alpha, beta float32)
 //
 // Computes the 6×16 tile T = Σ_p a[6p+r]·b[16p+j] over p < kc (kc ≥ 1) from
 // packed panels, then stores c[r·ldc+j] = alpha·T[r][j] + beta·c[r·ldc+j];
@@ -11,7 +11,7 @@
 // element is one chain of fused multiply-adds in the order of p; the k loop
 // is unrolled four times (the remainder runs one p at a time), and the
 // multiplication by alpha is skipped when alpha == 1, where it is exact.
-TEXT ·kern6x16(SB), NOSPLIT, $0-48
+TEXT ·gemm6x16Asm(SB), NOSPLIT, $0-48
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ b+16(FP), DI
@@ -88,14 +88,14 @@ accumulate:
 	VZEROUPPER
 	RET
 
-// func kern6x16s(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32)
+// func gemm6x16StridedAsm(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32)
 //
-// kern6x16 with A read in place: element (r, p) of the 6×kc strip is
+// gemm6x16Asm with A read in place: element (r, p) of the 6×kc strip is
 // a[r·rs + p·ps] (rs = lda, ps = 1 for op(A) = A; rs = 1, ps = lda for
 // op(A) = Aᵀ), so full strips need no packing. The chain of fused
-// multiply-adds per element and the epilogue are those of kern6x16, so both
+// multiply-adds per element and the epilogue are those of gemm6x16Asm, so both
 // store the same bits.
-TEXT ·kern6x16s(SB), NOSPLIT, $0-64
+TEXT ·gemm6x16StridedAsm(SB), NOSPLIT, $0-64
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ rs+16(FP), R9
@@ -181,15 +181,15 @@ saccumulate:
 	VZEROUPPER
 	RET
 
-// func kern6x16e(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32, mr int)
+// func gemm6x16EdgeAsm(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32, mr int)
 //
-// The bottom edge tile of kern6x16s: the same chains (A at a[r·rs + p·ps],
+// The bottom edge tile of gemm6x16StridedAsm: the same chains (A at a[r·rs + p·ps],
 // so rs = 1, ps = 6 reads a packed strip), but only rows r < mr (1..6) of c
 // are read and written, so no row below the tile is touched and the stored
 // bits are those of a full tile. (Masked stores for partial columns measured
-// slower on this AMD core than the copy through a tile, so columns stay
+// slower than the copy through a tile, so columns stay
 // whole.)
-TEXT ·kern6x16e(SB), NOSPLIT, $0-72
+TEXT ·gemm6x16EdgeAsm(SB), NOSPLIT, $0-72
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ rs+16(FP), R9
@@ -298,13 +298,13 @@ mretacc:
 	VZEROUPPER
 	RET
 
-// func kern1x32(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alpha, beta float32)
+// func gemm1x32Asm(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alpha, beta float32)
 //
 // Computes the 1×32 row T[j] = Σ_p a[p·inca]·b[p·ldb+j] over p < kc (kc ≥ 1)
 // straight from unpacked A and B, with the same fused multiply-add chain per
-// element as kern6x16, then stores c[j] = alpha·T[j] + beta·c[j]; when
+// element as gemm6x16Asm, then stores c[j] = alpha·T[j] + beta·c[j]; when
 // beta == 0 the old contents of c are not read.
-TEXT ·kern1x32(SB), NOSPLIT, $0-56
+TEXT ·gemm1x32Asm(SB), NOSPLIT, $0-56
 	MOVQ kc+0(FP), CX
 	MOVQ a+8(FP), SI
 	MOVQ inca+16(FP), R9
@@ -367,10 +367,10 @@ rowaccumulate:
 	VZEROUPPER
 	RET
 
-// func transpose8x8(src *float32, lds int, dst *float32, ldd int)
+// func transpose8x8Asm(src *float32, lds int, dst *float32, ldd int)
 //
 // Stores the transpose of the 8×8 block src[r·lds+c] at dst[c·ldd+r].
-TEXT ·transpose8x8(SB), NOSPLIT, $0-32
+TEXT ·transpose8x8Asm(SB), NOSPLIT, $0-32
 	MOVQ src+0(FP), SI
 	MOVQ lds+8(FP), R8
 	SHLQ $2, R8
@@ -434,11 +434,11 @@ TEXT ·transpose8x8(SB), NOSPLIT, $0-32
 	VZEROUPPER
 	RET
 
-// func copyRows16(src *float32, lds int, dst *float32, rows int)
+// func copyRows16Asm(src *float32, lds int, dst *float32, rows int)
 //
 // Copies rows (≥ 1) runs of 16 floats from src[r·lds] to dst[16r]: one
 // strip of a packed B panel.
-TEXT ·copyRows16(SB), NOSPLIT, $0-32
+TEXT ·copyRows16Asm(SB), NOSPLIT, $0-32
 	MOVQ src+0(FP), SI
 	MOVQ lds+8(FP), R8
 	SHLQ $2, R8

@@ -1,6 +1,6 @@
 //go:build linux
 
-package nn
+package cpupeak
 
 import "golang.org/x/sys/unix"
 

@@ -2,13 +2,13 @@
 
 #include "textflag.h"
 
-// func execReluAVX2(y, x *float32, n int)
+// func reluAsm(y, x *float32, n int)
 //
 // y[i] = max(0, x[i]) for i < n, n a multiple of 8, with Go's max semantics:
 // VMAXPS returns its second source when the first is not greater, so
 // MAX(0, x) is x for NaN and for ±0, and adding +0 turns -0 into +0 while
 // leaving every other value (NaN included) unchanged.
-TEXT ·execReluAVX2(SB), NOSPLIT, $0-24
+TEXT ·reluAsm(SB), NOSPLIT, $0-24
 	MOVQ y+0(FP), DI
 	MOVQ x+8(FP), SI
 	MOVQ n+16(FP), CX
@@ -54,11 +54,11 @@ reludone:
 	VZEROUPPER
 	RET
 
-// func execReluDiffAVX2(d, x, dy *float32, n int)
+// func reluGradAsm(d, x, dy *float32, n int)
 //
 // d[i] = dy[i] where 0 < x[i] and +0 elsewhere (NaN included: the ordered
 // compare LT_OQ is false), for i < n, n a multiple of 8.
-TEXT ·execReluDiffAVX2(SB), NOSPLIT, $0-32
+TEXT ·reluGradAsm(SB), NOSPLIT, $0-32
 	MOVQ d+0(FP), DI
 	MOVQ x+8(FP), SI
 	MOVQ dy+16(FP), DX
