@@ -21,7 +21,7 @@ var fuseReluOff bool
 // or nil when that output has other readers, is a graph output, or fusion
 // is off. Readers are counted over every node left after folding, so a
 // reader that a request does not need still blocks the fusion.
-func (b *coreBuilder) fusedRelu(n *onnxlite.Node) *onnxlite.Node {
+func (b *builder) fusedRelu(n *onnxlite.Node) *onnxlite.Node {
 	if fuseReluOff || len(n.Outputs) == 0 || n.Outputs[0] == "" {
 		return nil
 	}
@@ -47,7 +47,7 @@ func (b *coreBuilder) fusedRelu(n *onnxlite.Node) *onnxlite.Node {
 }
 
 // setFused makes y the value of relu's output and marks relu as translated.
-func (b *coreBuilder) setFused(relu *onnxlite.Node, y *G.Node) error {
+func (b *builder) setFused(relu *onnxlite.Node, y *G.Node) error {
 	if b.fused == nil {
 		b.fused = map[*onnxlite.Node]bool{}
 	}

@@ -13,6 +13,8 @@
 package nn
 
 import (
+	"github.com/apportion/apportion/nn/internal/ops"
+
 	"context"
 	"errors"
 	"fmt"
@@ -98,8 +100,9 @@ type Options struct {
 // Sentinel errors. Errors returned by this package that stem from one of these
 // conditions wrap the matching sentinel, so callers can test with errors.Is.
 var (
-	// ErrShape marks an input whose shape or length is not the expected one.
-	ErrShape = errors.New("shape mismatch")
+	// ErrShape marks an input whose shape or length is not the expected one,
+	// and operands of an operator that do not fit it or each other.
+	ErrShape = ops.ErrShape
 	// ErrNonFinite marks an input holding NaN or ±Inf where finite values are required.
 	ErrNonFinite = errors.New("non-finite input")
 	// ErrBadRequest marks an argument outside its valid range: a batch size,
@@ -145,7 +148,7 @@ type Network struct {
 // package cannot run are reported together in one error wrapping
 // onnxlite.ErrUnsupported.
 func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
-	defer coreRecover("nn: compile", &err)
+	defer recoverEngine("nn: compile", &err)
 	if m == nil || m.Graph == nil {
 		return nil, fmt.Errorf("nn: compile: %w: nil model or graph", ErrBadRequest)
 	}
@@ -169,7 +172,7 @@ func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
 	}
 	nw = &Network{model: m, opts: opts, progs: map[string]*program{},
 		splitMinFLOPs: SplitMinPartFLOPs}
-	nw.relaxed = coreRelaxModel(m)
+	nw.relaxed = relaxModel(m)
 	if err := nw.describe(); err != nil {
 		return nil, fmt.Errorf("nn: compile: %w", err)
 	}
@@ -201,7 +204,7 @@ func clonePorts(ps []Port) []Port {
 // Double tensors on the Float64 engine. A batch larger than Options.MaxBatch
 // is run in chunks along the first dimension.
 func (nw *Network) Forward(ctx context.Context, inputs []*onnxlite.Tensor) (outs []*onnxlite.Tensor, err error) {
-	defer coreRecover("nn: forward", &err)
+	defer recoverEngine("nn: forward", &err)
 	if len(inputs) != len(nw.inputs) {
 		return nil, fmt.Errorf("nn: forward: %w: expected %d inputs (%s), got %d", ErrBadRequest, len(nw.inputs), portNames(nw.inputs), len(inputs))
 	}
@@ -212,7 +215,7 @@ func (nw *Network) Forward(ctx context.Context, inputs []*onnxlite.Tensor) (outs
 		if t == nil {
 			return nil, fmt.Errorf("nn: forward: input %q: %w: nil tensor", p.Name, ErrBadRequest)
 		}
-		vals, err := coreTensorFloats(t)
+		vals, err := tensorFloats(t)
 		if err != nil {
 			return nil, fmt.Errorf("nn: forward: input %q: %w", p.Name, err)
 		}
@@ -231,7 +234,7 @@ func (nw *Network) Forward(ctx context.Context, inputs []*onnxlite.Tensor) (outs
 	}
 	outs = make([]*onnxlite.Tensor, len(res))
 	for i, r := range res {
-		outs[i] = coreMakeTensor(nw.outputs[i].Name, nw.opts.DType, outShapes[i], r)
+		outs[i] = makeTensor(nw.outputs[i].Name, nw.opts.DType, outShapes[i], r)
 	}
 	return outs, nil
 }
@@ -252,7 +255,7 @@ func (nw *Network) checkInputShape(i int, shape []int, n int) error {
 	p := nw.inputs[i]
 	decl := nw.declared[i]
 	if decl != nil {
-		want := coreShapeString(decl, true)
+		want := shapeString(decl, true)
 		if len(shape) != len(decl) {
 			return fmt.Errorf("input %q: %w: expected shape %s (rank %d), got %v", p.Name, ErrShape, want, len(decl), shape)
 		}
@@ -274,7 +277,7 @@ func (nw *Network) checkInputShape(i int, shape []int, n int) error {
 	return nil
 }
 
-func coreShapeString(decl []int, batch bool) string {
+func shapeString(decl []int, batch bool) string {
 	s := "["
 	for j, d := range decl {
 		if j > 0 {
@@ -300,16 +303,16 @@ func prod(s []int) int {
 	return p
 }
 
-// coreRecover turns a panic (gorgonia panics on some malformed graphs) into
+// recoverEngine turns a panic (gorgonia panics on some malformed graphs) into
 // an error wrapping ErrEngine.
-func coreRecover(where string, err *error) {
+func recoverEngine(where string, err *error) {
 	if r := recover(); r != nil {
 		*err = fmt.Errorf("%s: %w: recovered panic: %v", where, ErrEngine, r)
 	}
 }
 
-// coreCheckNonFinite refuses NaN and ±Inf in x, naming the first position.
-func coreCheckNonFinite(x []float64, sample int) error {
+// checkFinite refuses NaN and ±Inf in x, naming the first position.
+func checkFinite(x []float64, sample int) error {
 	for i, v := range x {
 		if math.IsNaN(v) || math.IsInf(v, 0) {
 			return fmt.Errorf("%w: x[%d] (sample %d, element %d) is %v", ErrNonFinite, i, i/sample, i%sample, v)

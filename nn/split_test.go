@@ -66,7 +66,7 @@ func TestSplitBitIdentical(t *testing.T) {
 		for _, dt := range []DType{Float32, Float64} {
 			ref := splitHead(t, name, Options{DType: dt, Parallel: 1})
 			for _, n := range batches {
-				if execRace && n == 64 && strings.HasPrefix(name, "cnn") {
+				if raceEnabled && n == 64 && strings.HasPrefix(name, "cnn") {
 					continue // minutes under the race detector; covered without it
 				}
 				x := splitInput(ref, n)
@@ -97,9 +97,9 @@ func TestSplitBitIdentical(t *testing.T) {
 						require.Len(t, net, len(wantNet))
 						for i := range net {
 							assert.Equal(t, wantNet[i].Dims, net[i].Dims)
-							a, err := coreTensorFloats(wantNet[i])
+							a, err := tensorFloats(wantNet[i])
 							require.NoError(t, err)
-							b, err := coreTensorFloats(net[i])
+							b, err := tensorFloats(net[i])
 							require.NoError(t, err)
 							assert.Equal(t, splitBits(a), splitBits(b), "network forward %d", i)
 						}
@@ -280,7 +280,7 @@ func TestSplitFixedBatch(t *testing.T) {
 	x := []float64{-1, 2, -3, 4, -5, 6, 0.5, -0.25, 7, -8, 9, -0.125}
 	outs, err := nw.Forward(ctx, []*onnxlite.Tensor{tensor64("x", []int64{4, 3}, x)})
 	require.NoError(t, err)
-	got, err := coreTensorFloats(outs[0])
+	got, err := tensorFloats(outs[0])
 	require.NoError(t, err)
 	for i, v := range x {
 		assert.Equal(t, math.Max(v, 0), got[i], "y[%d]", i) // closed form: Relu(x) = max(x, 0)
