@@ -11,13 +11,11 @@ import (
 
 // Output buffers kept across runs.
 //
-// Every op of this package implements gorgonia's UsePreallocDoer with one
-// contract: given a *tensor.Dense of the right element type and shape, the op
-// writes its whole output into it and returns it; given anything else it
-// allocates as Do does. It never returns, keeps or writes to one of its
-// inputs, and never keeps the buffer after returning. A machine therefore
-// gives each such step a tensor that lives as long as the machine, and a
-// pass allocates (almost) nothing.
+// Every op of nn/internal/ops writes its whole output into the buffer it
+// is given when ops decides it may (the buffer contract in the ops package
+// doc), and never keeps it. A machine therefore gives each such step a
+// tensor that lives as long as the machine, and a pass allocates (almost)
+// nothing.
 //
 // Steps share backing arrays by liveness. A step's buffer is busy from the
 // step that writes it to the last step that reads it, directly or through a
@@ -30,13 +28,8 @@ import (
 // (the largest free one); all sizes are known when the machine is built, so
 // arrays are allocated once, at their final size. An elementwise step that
 // is the last reader of an operand of its own shape writes over that
-// operand's array (see ops.InPlace): the one exception to "never writes to
-// an input", for kernels that read element k before writing element k.
-//
-// Scratch space that ops keep on their instances (im2col panels, argmax
-// tables, packed weights) is reused the same way: every machine builds its
-// own graph and a machine runs one pass at a time, so an op instance is
-// never used by two goroutines at once.
+// operand's array (ops.InPlace names the operand): the one exception to
+// "an op never writes an input", which ops allows for exactly such operands.
 
 // assignBuffers assigns the kept buffers of m's plan: m.pre[i] is the
 // preallocated output of step i (nil when the step gets none) and m.kept the

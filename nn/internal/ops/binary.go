@@ -290,7 +290,8 @@ func binaryRun[T float](op *binaryOp, p G.Value, vs []G.Value) (G.Value, error) 
 	}
 	// Output element k reads element k of an operand of the output's shape,
 	// so y may be such an operand, never a broadcast one.
-	v, y := allocOutput[T](p, op.dt, op.outShape)
+	same, other := sortOperands(shapeSize(op.outShape), a, b)
+	v, y := allocOutput[T](p, op.dt, op.outShape, same[:], other[:]...)
 	f := binaryFunc[T](op.kind)
 	code := arithCode(op.kind)
 	if len(a) == len(y) && len(b) == len(y) {
@@ -300,9 +301,6 @@ func binaryRun[T float](op *binaryOp, p G.Value, vs []G.Value) (G.Value, error) 
 			}
 		}
 		return wrap(v, y), nil
-	}
-	if (aliases(y, a) && len(a) != len(y)) || (aliases(y, b) && len(b) != len(y)) {
-		v, y = allocOutput[T](nil, op.dt, op.outShape)
 	}
 	sa := broadcastStrides(op.aShape, op.outShape)
 	sb := broadcastStrides(op.bShape, op.outShape)
@@ -392,7 +390,17 @@ func binaryDiffRun[T float](op *binaryDiffOp, p G.Value, vs []G.Value) (G.Value,
 	}
 	shape := op.wrtShape()
 	df := binaryGrad[T](op.kind, op.which)
-	v, d := allocOutput[T](p, op.dt, shape)
+	var v G.Value
+	var d []T
+	if size := shapeSize(shape); size == len(g) {
+		// One term per element of d: d may be g, or the operand it
+		// differentiates for, but no broadcast operand.
+		same, other := sortOperands(size, a, b, g)
+		v, d = allocOutput[T](p, op.dt, shape, same[:], other[:]...)
+	} else {
+		// Summing over broadcast axes needs a buffer that no input shares.
+		v, d = allocOutput[T](p, op.dt, shape, nil, spanOf(a), spanOf(b), spanOf(g))
+	}
 	// g·∂f/∂x for Add, Sub and Mul as one row operation on g: dg (which
 	// operand g meets), its stride, and the op; pass is set when the
 	// gradient is g itself.
@@ -428,10 +436,7 @@ func binaryDiffRun[T float](op *binaryDiffOp, p G.Value, vs []G.Value) (G.Value,
 		n, la, lb = op.outShape[r-1], sa[r-1], sb[r-1]
 	}
 	if len(d) == len(g) {
-		// Input which was not broadcast: one term per element, and d may be g.
-		if (aliases(d, a) && len(a) != len(d)) || (aliases(d, b) && len(b) != len(d)) {
-			v, d = allocOutput[T](nil, op.dt, shape)
-		}
+		// Input which was not broadcast: one term per element.
 		if pass {
 			copy(d, g)
 			return wrap(v, d), nil
@@ -448,10 +453,6 @@ func binaryDiffRun[T float](op *binaryDiffOp, p G.Value, vs []G.Value) (G.Value,
 			}
 		})
 		return wrap(v, d), nil
-	}
-	// Summing over broadcast axes needs a buffer that no input shares.
-	if aliases(d, a) || aliases(d, b) || aliases(d, g) {
-		v, d = allocOutput[T](nil, op.dt, shape)
 	}
 	clear(d)
 	eachRow(op.outShape, sa, sb, func(o, ia, ib int) {

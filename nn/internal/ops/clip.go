@@ -58,8 +58,7 @@ func (op clipBoundsOp) InferShape(in ...G.DimSizer) (tensor.Shape, error) {
 
 func (op clipBoundsOp) Do(vs ...G.Value) (G.Value, error) { return op.UsePreallocDo(nil, vs...) }
 
-// UsePreallocDo stores the result in prealloc when it is a dense tensor of
-// the input's element type and shape (see the package doc). The bounds are
+// UsePreallocDo stores the result in prealloc when writable allows it. The bounds are
 // applied in float64 and rounded to the element type once, as Do does.
 func (op clipBoundsOp) UsePreallocDo(prealloc G.Value, vs ...G.Value) (G.Value, error) {
 	if len(vs) != op.Arity() {
@@ -89,7 +88,13 @@ func (op clipBoundsOp) UsePreallocDo(prealloc G.Value, vs ...G.Value) (G.Value, 
 		}
 	}
 	dt := vs[0].Dtype()
-	if t, ok := prealloc.(*tensor.Dense); ok && t.Dtype() == dt && !t.RequiresIterator() && t.Shape().Eq(vs[0].Shape()) && t.Shape().TotalSize() == len(out) {
+	var ins [4]span
+	for i, v := range vs {
+		if t, ok := v.(*tensor.Dense); ok {
+			ins[i] = denseSpan(t)
+		}
+	}
+	if t := writable(prealloc, dt, vs[0].Shape(), nil, ins[:len(vs)]...); t != nil {
 		if err := Fill(t, out); err == nil {
 			return t, nil
 		}

@@ -383,11 +383,9 @@ func (op *convOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value,
 			return nil, fmt.Errorf("nn: Conv: %w: mixed dtypes %v and %v", ErrShape, dt, t.Dtype())
 		}
 	}
-	out := convPrealloc(prealloc, dt, oshp, ts[:len(vals)])
-	if out == nil {
-		if out, err = convNewDense(dt, oshp.Clone()); err != nil {
-			return nil, fmt.Errorf("nn: Conv: %w", err)
-		}
+	out, err := denseOutput(prealloc, dt, oshp, ts[:len(vals)]...)
+	if err != nil {
+		return nil, fmt.Errorf("nn: Conv: %w", err)
 	}
 	n, c, m := shapes[0][0], shapes[0][1], shapes[1][0]
 	if dt == tensor.Float64 {
@@ -587,11 +585,9 @@ func (op *convBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Va
 	default:
 		rshp = oshp[1:2]
 	}
-	out := convPrealloc(prealloc, dt, rshp, ts[:])
-	if out == nil {
-		if out, err = convNewDense(dt, rshp.Clone()); err != nil {
-			return nil, fmt.Errorf("nn: Conv gradient: %w", err)
-		}
+	out, err := denseOutput(prealloc, dt, rshp, ts[:]...)
+	if err != nil {
+		return nil, fmt.Errorf("nn: Conv gradient: %w", err)
 	}
 	n, c, m := oshp[0], ts[0].Shape()[1], oshp[1]
 	if dt == tensor.Float32 && op.wrt == 0 && convBackwardDirect(&g) && convFast(m/op.group*g.kh*g.kw) {

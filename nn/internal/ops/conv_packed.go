@@ -254,20 +254,3 @@ func (op *convBackOp) inputGrad32(s *convScratch, g *convGeom, n, c, m int, w, d
 		}
 	}
 }
-
-// convPrealloc returns prealloc as the output tensor when it is a dense
-// tensor of dtype dt and shape shp that shares no memory with the inputs,
-// and nil otherwise.
-func convPrealloc(prealloc any, dt tensor.Dtype, shp tensor.Shape, inputs []*tensor.Dense) *tensor.Dense {
-	d, ok := prealloc.(*tensor.Dense)
-	if !ok || d == nil || d.Dtype() != dt || !d.Shape().Eq(shp) || d.RequiresIterator() || d.DataSize() != shp.TotalSize() {
-		return nil
-	}
-	lo, hi := d.Uintptr(), d.Uintptr()+d.MemSize()
-	for _, in := range inputs {
-		if in != nil && in.Uintptr() < hi && lo < in.Uintptr()+in.MemSize() {
-			return nil
-		}
-	}
-	return d
-}

@@ -210,8 +210,8 @@ func convDense(v G.Value, what string) (*tensor.Dense, error) {
 	return d, nil
 }
 
-// convNewDense allocates a zeroed tensor of dt with shape shp.
-func convNewDense(dt tensor.Dtype, shp []int) (*tensor.Dense, error) {
+// newDense allocates a zeroed tensor of dt with shape shp.
+func newDense(dt tensor.Dtype, shp []int) (*tensor.Dense, error) {
 	n := 1
 	for _, s := range shp {
 		if s <= 0 {

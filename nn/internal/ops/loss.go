@@ -130,10 +130,7 @@ func lossGrad[T float](op *lossDiffOp, p G.Value, vs []G.Value) (G.Value, error)
 	if err != nil {
 		return nil, err
 	}
-	v, d := allocOutput[T](p, op.dt, op.shape)
-	if aliases(d, mask) {
-		v, d = allocOutput[T](nil, op.dt, op.shape)
-	}
+	v, d := allocOutput[T](p, op.dt, op.shape, nil, spanOf(mask), spanOf(g))
 	for i, mi := range mask {
 		d[i] = g[0] * mi
 	}

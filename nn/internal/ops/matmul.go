@@ -167,10 +167,9 @@ func (op matMulOp) InferShape(in ...G.DimSizer) (tensor.Shape, error) {
 
 func (op matMulOp) Do(vals ...G.Value) (G.Value, error) { return op.UsePreallocDo(nil, vals...) }
 
-// UsePreallocDo writes the product into prealloc when it is a dense tensor
-// of the right type and shape (or size: it is then reshaped), and into a new
-// tensor otherwise; with a fitting prealloc and a warm cache it allocates
-// nothing. The inputs are only read.
+// UsePreallocDo writes the product into prealloc when writable allows it,
+// and into a new tensor otherwise; with a fitting prealloc and a warm cache
+// it allocates nothing. The inputs are only read.
 func (op matMulOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (G.Value, error) {
 	if len(vals) != 2 {
 		return nil, fmt.Errorf("matmul: expected 2 inputs, got %d", len(vals))
@@ -198,7 +197,13 @@ func (op matMulOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (G.Value, er
 	if op.transB {
 		colsB = k
 	}
-	reuse := op.fit(prealloc, a.Dtype(), batch, m, n)
+	shp := [3]int{m, n}
+	shape := shp[:2]
+	if op.rank == 3 {
+		shp = [3]int{batch, m, n}
+		shape = shp[:3]
+	}
+	reuse := writable(prealloc, a.Dtype(), shape, nil, denseSpan(a), denseSpan(b))
 	switch a.Dtype() {
 	case tensor.Float64:
 		ad, bd := contiguous64(a), contiguous64(b)
@@ -290,18 +295,9 @@ func (op matMulOp) packed(bd []float32, n, k int) *sgemmPrepacked {
 	return c.pb
 }
 
-// fit returns prealloc as a dense tensor when the output fits in it.
-func (op matMulOp) fit(prealloc G.Value, dt tensor.Dtype, batch, m, n int) *tensor.Dense {
-	reuse, _ := prealloc.(*tensor.Dense)
-	if reuse == nil || reuse.Dtype() != dt || reuse.Size() != batch*m*n || reuse.RequiresIterator() {
-		return nil
-	}
-	return reuse
-}
-
-// matMulResult returns reuse when it has the output's shape, and
-// otherwise reuse reshaped or a new tensor backed by data: the conversion of
-// data to an interface, which allocates, happens only then.
+// matMulResult applies the fused Relu, when the op has one, to data, and
+// returns reuse, or a new tensor backed by data when reuse is nil: the
+// conversion of data to an interface, which allocates, happens only then.
 func matMulResult[T float32 | float64](op matMulOp, reuse *tensor.Dense, batch, m, n int, data []T) *tensor.Dense {
 	if op.relu {
 		switch d := any(data).(type) {
@@ -312,29 +308,11 @@ func matMulResult[T float32 | float64](op matMulOp, reuse *tensor.Dense, batch, 
 		}
 	}
 	if reuse != nil {
-		s := reuse.Shape()
-		if op.rank == 3 && len(s) == 3 && s[0] == batch && s[1] == m && s[2] == n ||
-			op.rank == 2 && len(s) == 2 && s[0] == m && s[1] == n {
-			return reuse
-		}
+		return reuse
 	}
 	shape := []int{m, n}
 	if op.rank == 3 {
 		shape = []int{batch, m, n}
-	}
-	return reshapedResult(reuse, shape, data)
-}
-
-// reshapedResult returns reuse reshaped to shape, or a new tensor backed by data.
-func reshapedResult(reuse *tensor.Dense, shape []int, data any) *tensor.Dense {
-	if reuse != nil {
-		if !reuse.Shape().Eq(tensor.Shape(shape)) {
-			if err := reuse.Reshape(shape...); err == nil {
-				return reuse
-			}
-		} else {
-			return reuse
-		}
 	}
 	return tensor.New(tensor.WithShape(shape...), tensor.WithBacking(data))
 }

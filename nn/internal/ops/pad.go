@@ -203,7 +203,7 @@ func (op *padOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, 
 	if err != nil {
 		return nil, err
 	}
-	out, err := padOutput(prealloc, x.Dtype(), oshp, x)
+	out, err := denseOutput(prealloc, x.Dtype(), oshp, x)
 	if err != nil {
 		return nil, fmt.Errorf("nn: Pad: %w", err)
 	}
@@ -287,7 +287,7 @@ func (op *padBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Val
 	if !dy.Shape().Eq(oshp) {
 		return nil, fmt.Errorf("nn: Pad gradient: %w: expected output gradient of shape %v, got %v", ErrShape, oshp, dy.Shape())
 	}
-	out, err := padOutput(prealloc, x.Dtype(), x.Shape(), x, dy)
+	out, err := denseOutput(prealloc, x.Dtype(), x.Shape(), x, dy)
 	if err != nil {
 		return nil, fmt.Errorf("nn: Pad gradient: %w", err)
 	}
@@ -321,19 +321,3 @@ func (op *padBackOp) SymDiff(G.Nodes, *G.Node, *G.Node) (G.Nodes, error) {
 }
 
 var _ G.SDOp = (*padOp)(nil)
-
-// padOutput returns prealloc when it is a contiguous dense tensor of element
-// type dt and shape shp that shares no memory with the inputs, and a new
-// tensor otherwise.
-func padOutput(prealloc G.Value, dt tensor.Dtype, shp tensor.Shape, inputs ...*tensor.Dense) (*tensor.Dense, error) {
-	if t, ok := prealloc.(*tensor.Dense); ok && t.Dtype() == dt && !t.RequiresIterator() && t.Shape().Eq(shp) {
-		shared := false
-		for _, in := range inputs {
-			shared = shared || t.Uintptr() == in.Uintptr()
-		}
-		if !shared {
-			return t, nil
-		}
-	}
-	return convNewDense(dt, shp)
-}

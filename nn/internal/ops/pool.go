@@ -257,7 +257,7 @@ func (op *poolOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value,
 	if err != nil {
 		return nil, err
 	}
-	out, err := poolResult(prealloc, x.Dtype(), oshp, x)
+	out, err := denseOutput(prealloc, x.Dtype(), oshp, x)
 	if err != nil {
 		return nil, fmt.Errorf("nn: %s: %w", op.name(), err)
 	}
@@ -283,22 +283,6 @@ func (op *poolOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value,
 		poolWindowForward(&g, &op.win, planes, op.max, op.includePad, x.Float32s(), out.Float32s())
 	}
 	return out, nil
-}
-
-// poolResult returns prealloc when it is a dense tensor of dt with shape
-// shp whose buffer starts apart from those of the inputs, and a new zeroed
-// tensor otherwise. The kernels that write into it overwrite every element.
-func poolResult(prealloc G.Value, dt tensor.Dtype, shp tensor.Shape, inputs ...*tensor.Dense) (*tensor.Dense, error) {
-	if p, ok := prealloc.(*tensor.Dense); ok && p.Dtype() == dt && !p.RequiresIterator() && p.Shape().Eq(shp) && p.DataSize() == shp.TotalSize() && !p.IsScalar() {
-		shared := false
-		for _, in := range inputs {
-			shared = shared || in.Uintptr() == p.Uintptr()
-		}
-		if !shared {
-			return p, nil
-		}
-	}
-	return convNewDense(dt, shp)
 }
 
 // poolRange returns the window taps [lo, hi) whose positions
@@ -417,7 +401,7 @@ func (op *poolBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Va
 	if dy.Dtype() != x.Dtype() {
 		return nil, fmt.Errorf("nn: %s: %w: expected output gradient of type %v, got %v", what, ErrShape, x.Dtype(), dy.Dtype())
 	}
-	out, err := poolResult(prealloc, x.Dtype(), x.Shape(), x, dy)
+	out, err := denseOutput(prealloc, x.Dtype(), x.Shape(), x, dy)
 	if err != nil {
 		return nil, fmt.Errorf("nn: %s: %w", what, err)
 	}

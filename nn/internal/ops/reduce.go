@@ -134,10 +134,7 @@ func reduceRun[T float](op *reduceOp, p, xv G.Value) (G.Value, error) {
 	if err != nil {
 		return nil, err
 	}
-	v, y := allocOutput[T](p, op.dt, op.outShape)
-	if aliases(x, y) {
-		v, y = allocOutput[T](nil, op.dt, op.outShape)
-	}
+	v, y := allocOutput[T](p, op.dt, op.outShape, nil, spanOf(x))
 	// Sums run in float64 so float32 reductions over many elements keep
 	// their precision.
 	acc := make([]float64, len(y))
@@ -190,10 +187,7 @@ func reduceDiffRun[T float](op *reduceDiffOp, p, gv G.Value) (G.Value, error) {
 	if err != nil {
 		return nil, err
 	}
-	v, d := allocOutput[T](p, op.dt, op.inShape)
-	if aliases(g, d) {
-		v, d = allocOutput[T](nil, op.dt, op.inShape)
-	}
+	v, d := allocOutput[T](p, op.dt, op.inShape, nil, spanOf(g))
 	s := T(op.scale())
 	sx := broadcastStrides(op.inShape, op.inShape)
 	sg := broadcastStrides(op.kept, op.inShape)

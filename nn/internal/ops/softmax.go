@@ -114,7 +114,7 @@ func softmaxRun[T float](op *softmaxOp, p, xv G.Value) (G.Value, error) {
 	}
 	// A lane's max and sum are taken before any of it is written, and
 	// element k is read before it is written, so y may be x.
-	v, y := allocOutput[T](p, op.dt, op.shape)
+	v, y := allocOutput[T](p, op.dt, op.shape, []span{spanOf(x)})
 	outer, n, inner := op.lanes()
 	for o := 0; o < outer; o++ {
 		for in := 0; in < inner; in++ {
@@ -178,7 +178,7 @@ func softmaxDiffRun[T float](op *softmaxDiffOp, p G.Value, vs []G.Value) (G.Valu
 	}
 	// Each lane is summed before it is written, and lanes are disjoint, so
 	// the output may share a buffer with y or g.
-	v, d := allocOutput[T](p, op.dt, op.shape)
+	v, d := allocOutput[T](p, op.dt, op.shape, []span{spanOf(y), spanOf(g)})
 	outer, n, inner := op.lanes()
 	for o := 0; o < outer; o++ {
 		for in := 0; in < inner; in++ {

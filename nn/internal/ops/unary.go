@@ -6,7 +6,6 @@ import (
 	"fmt"
 	"hash"
 	"math"
-	"slices"
 	"unsafe"
 
 	"github.com/chewxy/hm"
@@ -340,7 +339,7 @@ func unaryRun[T float](op *unaryOp, p, xv G.Value) (G.Value, error) {
 	if err != nil {
 		return nil, err
 	}
-	v, y := allocOutput[T](p, op.dt, op.shape)
+	v, y := allocOutput[T](p, op.dt, op.shape, []span{spanOf(x)})
 	a, b := op.alpha, op.beta
 	switch op.kind {
 	case "Relu": // the hot one: no float64 round trip
@@ -396,8 +395,8 @@ func unaryDiffRun[T float](op *unaryDiffOp, p G.Value, vs []G.Value) (G.Value, e
 	}
 	x, y, g := in[0], in[1], in[2]
 	// Element i reads only x[i], y[i] and g[i] before writing d[i], so the
-	// output may share a buffer with any input.
-	v, d := allocOutput[T](p, op.dt, op.shape)
+	// output may be any of the inputs.
+	v, d := allocOutput[T](p, op.dt, op.shape, []span{spanOf(x), spanOf(y), spanOf(g)})
 	a, b := op.alpha, op.beta
 	switch op.kind {
 	case "Relu":
@@ -453,7 +452,7 @@ func reluDiffRun[T float](op *reluDiffOp, p G.Value, vs []G.Value) (G.Value, err
 	if err != nil {
 		return nil, err
 	}
-	v, d := allocOutput[T](p, op.dt, op.shape)
+	v, d := allocOutput[T](p, op.dt, op.shape, []span{spanOf(y), spanOf(g)})
 	if d32, ok := any(d).([]float32); ok {
 		f32.ReluGrad(d32, any(y).([]float32), any(g).([]float32))
 	} else {
@@ -542,22 +541,37 @@ func valuesOf[T float](op string, v G.Value, shape []int) ([]T, error) {
 	return out, nil
 }
 
-// allocOutput returns an output value of the given shape and its elements,
-// reusing p when it is a contiguous tensor of that type and shape. A rank-0
-// shape gives a nil value and a one-element buffer that wrap turns into
-// a scalar.
-func allocOutput[T float](p G.Value, dt tensor.Dtype, shape []int) (G.Value, []T) {
+// allocOutput returns an output value of the given shape and its elements:
+// p when writable allows it (inPlace and ins as for mayWrite), a new
+// tensor otherwise. A rank-0 shape gives a nil value and a one-element
+// buffer that wrap turns into a scalar.
+func allocOutput[T float](p G.Value, dt tensor.Dtype, shape []int, inPlace []span, ins ...span) (G.Value, []T) {
 	if len(shape) == 0 {
 		return nil, make([]T, 1)
 	}
-	if t, ok := p.(*tensor.Dense); ok && t.Dtype() == dt && !t.RequiresIterator() && slices.Equal(t.Shape(), shape) {
-		if d, ok := denseData[T](t); ok && len(d) == shapeSize(shape) {
+	if t := writable(p, dt, shape, inPlace, ins...); t != nil {
+		if d, ok := denseData[T](t); ok {
 			return t, d
 		}
 	}
 	t := tensor.New(tensor.Of(dt), tensor.WithShape(append([]int(nil), shape...)...))
 	d, _ := denseData[T](t)
 	return t, d
+}
+
+// sortOperands sorts up to three operands of an elementwise op for
+// mayWrite: those of n elements, the output's size, which it reads element
+// by element in step with its writes, into same; the broadcast ones into
+// other. Unused entries are zero spans.
+func sortOperands[T float](n int, xs ...[]T) (same, other [3]span) {
+	for i, x := range xs {
+		if len(x) == n {
+			same[i] = spanOf(x)
+		} else {
+			other[i] = spanOf(x)
+		}
+	}
+	return same, other
 }
 
 // denseData returns the backing array of t when it holds elements of type
@@ -588,16 +602,4 @@ func wrap[T float](v G.Value, buf []T) G.Value {
 		return G.NewF64(s)
 	}
 	return G.NewF64(float64(buf[0]))
-}
-
-// aliases reports whether two slices share memory.
-func aliases[T float](a, b []T) bool {
-	if len(a) == 0 || len(b) == 0 {
-		return false
-	}
-	var z T
-	sz := unsafe.Sizeof(z)
-	a0 := uintptr(unsafe.Pointer(unsafe.SliceData(a)))
-	b0 := uintptr(unsafe.Pointer(unsafe.SliceData(b)))
-	return a0 < b0+uintptr(len(b))*sz && b0 < a0+uintptr(len(a))*sz
 }
