@@ -147,11 +147,7 @@ func (m *machine) assignBuffers(keep G.Nodes) error {
 }
 
 // nodeDtype reports whether node n holds values of element type dt.
-func nodeDtype(n *G.Node, dt tensor.Dtype) (ok bool) {
-	defer func() {
-		if recover() != nil {
-			ok = false
-		}
-	}()
-	return n.Dtype() == dt
+func nodeDtype(n *G.Node, dt tensor.Dtype) bool {
+	d, ok := ops.ElemType(n)
+	return ok && d == dt
 }

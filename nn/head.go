@@ -181,6 +181,7 @@ func (h *Head) Gradient(ctx context.Context, x []float64, n int, target []int) (
 // shape) and, per sample i, ∂out[i, target[i]]/∂x[i] with x's shape, both as
 // Double tensors.
 func (nw *Network) Gradient(ctx context.Context, x *onnxlite.Tensor, sel Selection, target []int) (out, grad *onnxlite.Tensor, err error) {
+	defer recoverEngine("nn: gradient", &err)
 	h, err := nw.Head(sel)
 	if err != nil {
 		return nil, nil, err

@@ -40,11 +40,17 @@ func (mp *machinePool) acquire(ctx context.Context) (*machine, error) {
 	case m := <-mp.idle:
 		return m, nil
 	case mp.slots <- struct{}{}:
+		built := false
+		defer func() {
+			if !built { // an error, or a panic on its way to the caller
+				<-mp.slots
+			}
+		}()
 		m, err := mp.build()
 		if err != nil {
-			<-mp.slots
 			return nil, err
 		}
+		built = true
 		return m, nil
 	case <-ctx.Done():
 		return nil, ctx.Err()
@@ -87,7 +93,6 @@ type machine struct {
 
 // build translates the program's graph into a fresh gorgonia graph.
 func (p *program) build() (m *machine, err error) {
-	defer recoverEngine("building program", &err)
 	dt := tensor.Float32
 	if p.nw.opts.DType == Float64 {
 		dt = tensor.Float64
@@ -123,7 +128,18 @@ func (p *program) build() (m *machine, err error) {
 		if err != nil {
 			return nil, fmt.Errorf("selecting from output %q: %w", p.outNames[0], err)
 		}
-		grads, err := G.Grad(loss, m.inputs[0])
+		// The seed ∂loss/∂loss = 1 is a constant of this graph. G.Grad
+		// would seed with a constant node gorgonia keeps at package level,
+		// and adding that node to the graph caches its hash in it without
+		// synchronisation: a data race between machines built on several
+		// goroutines at once. With a seed of its own, building a machine
+		// touches no state outside its graph.
+		var one any = float32(1)
+		if dt == tensor.Float64 {
+			one = float64(1)
+		}
+		seed := b.g.AddNode(G.NewConstant(one))
+		grads, err := G.Backpropagate(G.Nodes{loss}, G.Nodes{seed}, G.Nodes{m.inputs[0]})
 		if err != nil {
 			return nil, fmt.Errorf("differentiating output %q w.r.t. input %q: %w", p.outNames[0], p.static.Inputs[0], err)
 		}

@@ -303,8 +303,11 @@ func prod(s []int) int {
 	return p
 }
 
-// recoverEngine turns a panic (gorgonia panics on some malformed graphs) into
-// an error wrapping ErrEngine.
+// recoverEngine turns a panic into an error wrapping ErrEngine. It is the
+// package's one recovery boundary: every exported function and method that
+// runs the engine defers it (and so does each goroutine a split call starts,
+// another edge), so that a panic below them (gorgonia panics on some
+// malformed graphs) reaches the caller as an error.
 func recoverEngine(where string, err *error) {
 	if r := recover(); r != nil {
 		*err = fmt.Errorf("%s: %w: recovered panic: %v", where, ErrEngine, r)

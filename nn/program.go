@@ -424,19 +424,15 @@ func (p *program) run(ctx context.Context, data [][]float64, mask []float64) (ou
 	if err != nil {
 		return nil, nil, err
 	}
+	// A run that fails, or panics on its way to the caller's recovery,
+	// may leave the machine half-way: it is dropped, not released.
 	ok := false
-	defer func() {
-		if r := recover(); r != nil {
-			err = fmt.Errorf("%w: recovered panic while running: %v", ErrEngine, r)
-		}
-		p.pool.release(m, ok)
-	}()
+	defer func() { p.pool.release(m, ok) }()
 	outs, grad, err = m.run(p, data, mask)
-	ok = err == nil
 	if err != nil {
-		// A failed run may leave the machine half-way; drop it.
 		return nil, nil, err
 	}
+	ok = true
 	return outs, grad, nil
 }
 

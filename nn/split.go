@@ -181,9 +181,6 @@ func (nw *Network) runParts(ctx context.Context, req request, res []splitPart, n
 	runPart := func(k int) {
 		r := &res[k]
 		defer func() {
-			if v := recover(); v != nil {
-				r.err = fmt.Errorf("%w: recovered panic in part %d of %d: %v", ErrEngine, k+1, len(res), v)
-			}
 			if r.err != nil {
 				mu.Lock()
 				if firstErr == nil {
@@ -193,6 +190,9 @@ func (nw *Network) runParts(ctx context.Context, req request, res []splitPart, n
 				cancel()
 			}
 		}()
+		// A part on its own goroutine is an edge of the package: a panic
+		// there would end the process, so it is recovered there too.
+		defer recoverEngine("part of a split call", &r.err)
 		r.outs, r.outShapes, r.grad, r.err = nw.runReqSeq(ctx, r.shapes, r.data, req, r.mask, r.n)
 	}
 	var wg sync.WaitGroup

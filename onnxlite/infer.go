@@ -52,11 +52,7 @@ func (v ValueShape) NumElements() int64 { return prodInt64(v.Shape) }
 // A value with more than DefaultLimits.MaxTensorElements elements or a rank
 // above DefaultLimits.MaxRank is a *LimitError.
 func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
-	defer func() {
-		if r := recover(); r != nil {
-			st, err = nil, fmt.Errorf("onnxlite: shape inference failed on malformed input (%v): %w", r, ErrInvalid)
-		}
-	}()
+	defer recoverTo(&err, "infer", ErrInvalid)
 	if err := m.Validate(); err != nil {
 		return nil, err
 	}

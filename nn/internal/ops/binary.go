@@ -53,7 +53,6 @@ func Binary(a, b *G.Node, op string) (out *G.Node, err error) {
 	if op == "PRelu" && !slices.Equal(os, as) {
 		return nil, fmt.Errorf("nn: PRelu: slope shape %v does not broadcast to input shape %v", bs, as)
 	}
-	defer buildRecover(op, &err)
 	bop := &binaryOp{kind: op, dt: dt, aShape: as, bShape: bs, outShape: os,
 		aType: a.Type(), bType: b.Type(), outType: nodeType(dt, len(os)),
 		fixed: [2]bool{fixed(a), fixed(b)}}

@@ -44,7 +44,6 @@ type ConvSpec struct {
 // float64, other strides and CPUs without the kernel use im2col, GEMM and,
 // for the input gradient, col2im of Wᵀ·dy.
 func Conv(x, w, b *G.Node, s ConvSpec) (y *G.Node, err error) {
-	defer convRecover("Conv", &err)
 	if x == nil || w == nil {
 		return nil, fmt.Errorf("nn: Conv: %w: input and weights are required", ErrShape)
 	}
@@ -92,8 +91,8 @@ func convCheckDtype(what string, nodes ...*G.Node) error {
 		if n == nil {
 			continue
 		}
-		d := n.Dtype()
-		if d != tensor.Float32 && d != tensor.Float64 {
+		d, ok := ElemType(n)
+		if !ok || d != tensor.Float32 && d != tensor.Float64 {
 			return fmt.Errorf("nn: %s: %w: expected float32 or float64, got %v", what, ErrShape, d)
 		}
 		if dt != (tensor.Dtype{}) && d != dt {
@@ -359,7 +358,6 @@ func (op *convOp) Do(vals ...G.Value) (G.Value, error) { return op.UsePreallocDo
 // is written. float32 runs on the packed driver of conv_strips.go where the
 // CPU has the kernel; float64 (and float32 elsewhere) on im2col + GEMM.
 func (op *convOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, err error) {
-	defer convRecover("Conv", &err)
 	if len(vals) != op.Arity() {
 		return nil, fmt.Errorf("nn: Conv: expected %d inputs, got %d", op.Arity(), len(vals))
 	}
@@ -551,7 +549,6 @@ func (op *convBackOp) Do(vals ...G.Value) (G.Value, error) { return op.UsePreall
 // gradient with unit strides runs as a forward correlation on the packed
 // driver (inputGrad32); the other cases use im2col/col2im and GEMM.
 func (op *convBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, err error) {
-	defer convRecover("Conv gradient", &err)
 	if len(vals) != 3 {
 		return nil, fmt.Errorf("nn: Conv gradient: expected 3 inputs, got %d", len(vals))
 	}

@@ -224,11 +224,3 @@ func newDense(dt tensor.Dtype, shp []int) (*tensor.Dense, error) {
 	}
 	return tensor.New(tensor.Of(dt), tensor.WithShape(shp...)), nil
 }
-
-// convRecover turns a panic raised below an op entry point (by gorgonia,
-// tensor or gonum) into an error.
-func convRecover(what string, err *error) {
-	if r := recover(); r != nil {
-		*err = fmt.Errorf("nn: %s: internal failure: %v", what, r)
-	}
-}

@@ -23,7 +23,6 @@ type lossOp struct {
 
 // SelectionLoss returns the node L = Σ out ⊙ mask; out and mask have one shape.
 func SelectionLoss(out, mask *G.Node) (n *G.Node, err error) {
-	defer buildRecover("selection loss", &err)
 	if !out.Shape().Eq(mask.Shape()) {
 		return nil, fmt.Errorf("nn: selection loss: %w: output shape %v, mask shape %v", ErrShape, out.Shape(), mask.Shape())
 	}

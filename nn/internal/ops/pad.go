@@ -25,7 +25,6 @@ import (
 // from, so reflect and edge gradients accumulate on the mirrored and edge
 // elements; constant elements get none.
 func Pad(x *G.Node, pads []int, mode string, value float64) (y *G.Node, err error) {
-	defer convRecover("Pad", &err)
 	if x == nil {
 		return nil, fmt.Errorf("nn: Pad: %w: input is required", ErrShape)
 	}
@@ -191,7 +190,6 @@ func (op *padOp) Do(vals ...G.Value) (G.Value, error) { return op.UsePreallocDo(
 // tensor of the output's element type and shape (see the package doc), and
 // allocates otherwise.
 func (op *padOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, err error) {
-	defer convRecover("Pad", &err)
 	if len(vals) != 1 {
 		return nil, fmt.Errorf("nn: Pad: expected 1 input, got %d", len(vals))
 	}
@@ -268,7 +266,6 @@ func (op *padBackOp) Do(vals ...G.Value) (G.Value, error) { return op.UsePreallo
 // UsePreallocDo writes the input gradient into prealloc when it fits, as
 // padOp's does; the gradient accumulates, so the buffer is cleared first.
 func (op *padBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, err error) {
-	defer convRecover("Pad gradient", &err)
 	if len(vals) != 2 {
 		return nil, fmt.Errorf("nn: Pad gradient: expected 2 inputs, got %d", len(vals))
 	}

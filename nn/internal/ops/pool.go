@@ -93,7 +93,6 @@ func AvgPool(x *G.Node, s PoolSpec) (*G.Node, error) {
 // (N, C, spatial...) of any spatial rank ≥ 1: one max or mean over all
 // spatial positions per channel, output (N, C, 1, ...).
 func GlobalPool(x *G.Node, max bool) (y *G.Node, err error) {
-	defer convRecover("GlobalPool", &err)
 	what := "GlobalAveragePool"
 	if max {
 		what = "GlobalMaxPool"
@@ -116,7 +115,6 @@ func GlobalPool(x *G.Node, max bool) (y *G.Node, err error) {
 }
 
 func poolBuild(what string, x *G.Node, s PoolSpec, max bool) (y *G.Node, err error) {
-	defer convRecover(what, &err)
 	if x == nil {
 		return nil, fmt.Errorf("nn: %s: %w: input is required", what, ErrShape)
 	}
@@ -245,7 +243,6 @@ func (op *poolOp) cachedGeometry(xs tensor.Shape) (tensor.Shape, convGeom, error
 // UsePreallocDo pools into prealloc when it is a dense tensor of the input's
 // element type and the output's shape, and into a new tensor otherwise.
 func (op *poolOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, err error) {
-	defer convRecover(op.name(), &err)
 	if len(vals) != 1 {
 		return nil, fmt.Errorf("nn: %s: expected 1 input, got %d", op.name(), len(vals))
 	}
@@ -379,7 +376,6 @@ func (op *poolBackOp) Do(vals ...G.Value) (G.Value, error) { return op.UsePreall
 // and into a new tensor otherwise.
 func (op *poolBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, err error) {
 	what := op.gradName()
-	defer convRecover(what, &err)
 	if len(vals) != 2 {
 		return nil, fmt.Errorf("nn: %s: expected 2 inputs, got %d", what, len(vals))
 	}

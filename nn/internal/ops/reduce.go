@@ -66,7 +66,6 @@ func Reduce(x *G.Node, axes []int, keepdims bool, mean bool) (out *G.Node, err e
 	if outShape == nil {
 		outShape = []int{}
 	}
-	defer buildRecover(name, &err)
 	op := &reduceOp{name: name, mean: mean, dt: dt, inShape: in, kept: kept, outShape: outShape,
 		count: n, inType: x.Type(), outType: nodeType(dt, len(outShape)), axes: slices.Clone(axes)}
 	return G.ApplyOp(op, x)

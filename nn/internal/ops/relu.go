@@ -35,7 +35,6 @@ func reluDiff[T float](d, x, g []T) {
 // apply Relu to their own output (a fused epilogue) and differentiate it
 // first in their SymDiff.
 func reluGrad(y, dy *G.Node) (n *G.Node, err error) {
-	defer buildRecover("Relu gradient", &err)
 	dt, err := dtypeOf("Relu gradient", y)
 	if err != nil {
 		return nil, err

@@ -39,7 +39,6 @@ func Softmax(x *G.Node, axis int, log bool) (out *G.Node, err error) {
 	if axis < 0 {
 		axis += r
 	}
-	defer buildRecover(name, &err)
 	op := &softmaxOp{name: name, axis: axis, log: log, dt: dt, shape: x.Shape(), t: x.Type()}
 	return G.ApplyOp(op, x)
 }

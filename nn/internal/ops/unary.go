@@ -262,7 +262,6 @@ func applyUnary(x *G.Node, op string, alpha, beta float64) (out *G.Node, err err
 	if err != nil {
 		return nil, err
 	}
-	defer buildRecover(op, &err)
 	u := &unaryOp{kind: op, alpha: alpha, beta: beta, dt: dt, shape: x.Shape(), t: x.Type()}
 	return G.ApplyOp(u, x)
 }
@@ -464,18 +463,9 @@ func reluDiffRun[T float](op *reluDiffOp, p G.Value, vs []G.Value) (G.Value, err
 // dtypeOf returns the element type of n, or an error unless it is float32
 // or float64.
 func dtypeOf(op string, n *G.Node) (tensor.Dtype, error) {
-	var dt tensor.Dtype
-	var err error
-	func() {
-		defer func() {
-			if r := recover(); r != nil {
-				err = fmt.Errorf("nn: %s: operand %v has no element type: %v", op, n, r)
-			}
-		}()
-		dt = n.Dtype()
-	}()
-	if err != nil {
-		return dt, err
+	dt, ok := ElemType(n)
+	if !ok {
+		return dt, fmt.Errorf("nn: %s: operand %v has no element type", op, n)
 	}
 	if dt != tensor.Float32 && dt != tensor.Float64 {
 		return dt, fmt.Errorf("nn: %s: element type %v: %w (want float32 or float64)", op, dt, errDtype)
@@ -483,11 +473,21 @@ func dtypeOf(op string, n *G.Node) (tensor.Dtype, error) {
 	return dt, nil
 }
 
-// buildRecover turns a panic inside gorgonia's graph construction into an
-// error; it is deferred by every function that builds nodes.
-func buildRecover(op string, err *error) {
-	if r := recover(); r != nil {
-		*err = fmt.Errorf("nn: %s: building the graph: %v", op, r)
+// ElemType returns the element type of n's values, and false when its
+// type has none (a type variable), where gorgonia's Node.Dtype panics.
+func ElemType(n *G.Node) (tensor.Dtype, bool) {
+	t := n.Type()
+	for {
+		switch p := t.(type) {
+		case tensor.Dtype:
+			return p, true
+		case G.TensorType:
+			t = p.Of
+		case *G.TensorType:
+			t = p.Of
+		default:
+			return tensor.Dtype{}, false
+		}
 	}
 }
 
