@@ -37,7 +37,7 @@ func (b *builder) fusedRelu(n *onnxlite.Node) *onnxlite.Node {
 			if in != out {
 				continue
 			}
-			if relu != nil || m.OpType != "Relu" || !onnxlite.IsSupported(m.Domain, m.OpType) || len(m.Outputs) == 0 || m.Outputs[0] == "" {
+			if relu != nil || m.OpType != "Relu" || !defaultDomain(m.Domain) || len(m.Outputs) == 0 || m.Outputs[0] == "" {
 				return nil
 			}
 			relu = m

@@ -144,9 +144,9 @@ type Network struct {
 }
 
 // Compile validates m and prepares it for running. Programs are compiled
-// lazily on first use for each set of input shapes. Operators that the
-// package cannot run are reported together in one error wrapping
-// onnxlite.ErrUnsupported.
+// lazily on first use for each set of input shapes. The nodes whose operator
+// the package does not run (see Unsupported) are reported together in one
+// *onnxlite.UnsupportedError, which wraps onnxlite.ErrUnsupported.
 func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
 	defer recoverEngine("nn: compile", &err)
 	if m == nil || m.Graph == nil {
@@ -167,8 +167,14 @@ func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
 	if opts.Machines == 0 {
 		opts.Machines = max(runtime.GOMAXPROCS(0), opts.Parallel)
 	}
-	if err := m.Validate(); err != nil {
+	// onnxlite's verdict on the operators gives way to nn's, which lists
+	// every node nn does not run (those onnxlite does not support among them).
+	var ue *onnxlite.UnsupportedError
+	if err := m.Validate(); err != nil && !errors.As(err, &ue) {
 		return nil, fmt.Errorf("nn: compile: %w", err)
+	}
+	if u := Unsupported(m); len(u) > 0 {
+		return nil, fmt.Errorf("nn: compile: %w", &onnxlite.UnsupportedError{Ops: u})
 	}
 	nw = &Network{model: m, opts: opts, progs: map[string]*program{},
 		splitMinFLOPs: SplitMinPartFLOPs}

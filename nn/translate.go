@@ -158,10 +158,78 @@ func ones(n int) []int {
 	return s
 }
 
+// translations maps every operator nn computes at run time to the builder
+// method that translates its nodes. With the operators onnxlite folds away
+// (onnxlite.FoldOnly) it is the set of operators nn runs (Unsupported).
+var translations = map[string]func(b *builder, n *onnxlite.Node, out string) error{
+	"Identity": (*builder).identity, "Dropout": (*builder).identity, "Constant": (*builder).constantNode,
+	"Cast":    (*builder).cast,
+	"Reshape": (*builder).alias, "Flatten": (*builder).alias, "Squeeze": (*builder).alias, "Unsqueeze": (*builder).alias,
+	"Transpose": (*builder).transpose, "Concat": (*builder).concat,
+	"Gemm": (*builder).gemm, "MatMul": (*builder).matmul,
+	"BatchNormalization": (*builder).batchNorm,
+	"Softmax":            (*builder).softmax, "LogSoftmax": (*builder).softmax,
+	"Relu": (*builder).unary, "Sigmoid": (*builder).unary, "Tanh": (*builder).unary, "Softsign": (*builder).unary,
+	"Erf": (*builder).unary, "Abs": (*builder).unary, "Sqrt": (*builder).unary, "Exp": (*builder).unary,
+	"Log": (*builder).unary, "Neg": (*builder).unary, "HardSwish": (*builder).unary, "Softplus": (*builder).unary,
+	"LeakyRelu": (*builder).unary, "Elu": (*builder).unary, "Celu": (*builder).unary, "Selu": (*builder).unary,
+	"HardSigmoid": (*builder).unary,
+	"Pow":         (*builder).pow, "Clip": (*builder).clip,
+	"Add": (*builder).binary, "Sub": (*builder).binary, "Mul": (*builder).binary, "Div": (*builder).binary,
+	"PRelu":     (*builder).binary,
+	"ReduceSum": (*builder).reduce, "ReduceMean": (*builder).reduce,
+	"Conv":    (*builder).conv,
+	"MaxPool": (*builder).pool, "AveragePool": (*builder).pool,
+	"GlobalAveragePool": (*builder).globalPool, "GlobalMaxPool": (*builder).globalPool,
+	"Pad": (*builder).pad,
+}
+
+// Unsupported lists the nodes of m whose operator nn does not run, in graph
+// order, without failing: operators onnxlite does not support
+// (onnxlite.Unsupported), and those onnxlite supports but nn neither
+// translates nor has onnxlite fold away. Compile refuses a model with such
+// nodes, reporting all of them in one *onnxlite.UnsupportedError. A node of
+// a supported operator may still be refused when its inputs or attributes
+// ask for something nn does not compute (a fold-only operator on run-time
+// data, Dropout in training mode). It returns nil for a nil model or graph.
+func Unsupported(m *onnxlite.Model) []onnxlite.UnsupportedOp {
+	if m == nil || m.Graph == nil {
+		return nil
+	}
+	var out []onnxlite.UnsupportedOp
+	for i, n := range m.Graph.Nodes {
+		if n == nil || runs(n) {
+			continue
+		}
+		u := onnxlite.UnsupportedOp{Op: n.OpType, Domain: n.Domain, Node: n.Name}
+		if defaultDomain(n.Domain) {
+			u.Domain = ""
+		}
+		if u.Node == "" {
+			u.Node = fmt.Sprintf("#%d", i)
+		}
+		out = append(out, u)
+	}
+	return out
+}
+
+// runs reports whether nn runs n's operator: onnxlite supports it, and nn
+// translates it or onnxlite folds it away.
+func runs(n *onnxlite.Node) bool {
+	return onnxlite.IsSupported(n.Domain, n.OpType) && (translations[n.OpType] != nil || onnxlite.FoldOnly(n.OpType))
+}
+
+// defaultDomain reports whether domain names the default ONNX operator set.
+func defaultDomain(domain string) bool { return domain == "" || domain == "ai.onnx" }
+
 // node translates one ONNX node.
 func (b *builder) node(n *onnxlite.Node) error {
-	if !onnxlite.IsSupported(n.Domain, n.OpType) {
+	translate := translations[n.OpType]
+	switch {
+	case !defaultDomain(n.Domain) || !onnxlite.IsSupported(n.Domain, n.OpType):
 		return fmt.Errorf("%w: operator %s", onnxlite.ErrUnsupported, n.OpType)
+	case translate == nil:
+		return fmt.Errorf("%w: operator %s has no run-time translation (it must be folded into a constant)", onnxlite.ErrUnsupported, n.OpType)
 	}
 	out := ""
 	if len(n.Outputs) > 0 {
@@ -175,80 +243,55 @@ func (b *builder) node(n *onnxlite.Node) error {
 	if b.fused[n] {
 		return nil
 	}
-	switch n.OpType {
-	case "Identity", "Dropout", "Constant":
-		if n.OpType == "Constant" {
-			_, err := b.value(out)
-			return err
-		}
-		if n.OpType == "Dropout" && n.AttrInt("is_test", 1) == 0 && b.opset < 7 {
-			return fmt.Errorf("%w: Dropout in training mode", onnxlite.ErrUnsupported)
-		}
-		x, err := b.input(n, 0)
-		if err != nil {
-			return err
-		}
-		return b.set(out, x)
-	case "Cast":
-		to := onnxlite.DataType(n.AttrInt("to", 0))
-		if !isFloat(to) {
-			return fmt.Errorf("%w: Cast of a run-time value to %v", onnxlite.ErrUnsupported, to)
-		}
-		x, err := b.input(n, 0)
-		if err != nil {
-			return err
-		}
-		return b.set(out, x)
-	case "Reshape", "Flatten", "Squeeze", "Unsqueeze":
-		x, err := b.input(n, 0)
-		if err != nil {
-			return err
-		}
-		return b.set(out, x)
-	case "Transpose":
-		return b.transpose(n, out)
-	case "Concat":
-		return b.concat(n, out)
-	case "Gemm":
-		return b.gemm(n, out)
-	case "MatMul":
-		return b.matmul(n, out)
-	case "BatchNormalization":
-		return b.batchNorm(n, out)
-	case "Softmax", "LogSoftmax":
-		return b.softmax(n, out)
-	case "Relu", "Sigmoid", "Tanh", "Softsign", "Erf", "Abs", "Sqrt", "Exp", "Log", "Neg", "HardSwish", "Softplus",
-		"LeakyRelu", "Elu", "Celu", "Selu", "HardSigmoid":
-		return b.unary(n, out)
-	case "Pow":
-		return b.pow(n, out)
-	case "Clip":
-		return b.clip(n, out)
-	case "Add", "Sub", "Mul", "Div", "PRelu":
-		return b.binary(n, out)
-	case "ReduceSum", "ReduceMean":
-		return b.reduce(n, out)
-	case "Conv":
-		return b.conv(n, out)
-	case "MaxPool", "AveragePool":
-		return b.pool(n, out)
-	case "GlobalAveragePool", "GlobalMaxPool":
-		x, err := b.input(n, 0)
-		if err != nil {
-			return err
-		}
-		if r := len(b.shape(n.Inputs[0])); r < 3 || r > 4 {
-			return fmt.Errorf("%w: %s on rank-%d input (1-D and 2-D spatial data only)", onnxlite.ErrUnsupported, n.OpType, r)
-		}
-		y, err := ops.GlobalPool(x, n.OpType == "GlobalMaxPool")
-		if err != nil {
-			return err
-		}
-		return b.set(out, y)
-	case "Pad":
-		return b.pad(n, out)
+	return translate(b, n, out)
+}
+
+// identity translates Identity and Dropout (inference: the identity).
+func (b *builder) identity(n *onnxlite.Node, out string) error {
+	if n.OpType == "Dropout" && n.AttrInt("is_test", 1) == 0 && b.opset < 7 {
+		return fmt.Errorf("%w: Dropout in training mode", onnxlite.ErrUnsupported)
 	}
-	return fmt.Errorf("%w: operator %s has no run-time translation (it must be folded into a constant)", onnxlite.ErrUnsupported, n.OpType)
+	return b.alias(n, out)
+}
+
+// constantNode makes the node of a Constant's value.
+func (b *builder) constantNode(_ *onnxlite.Node, out string) error {
+	_, err := b.value(out)
+	return err
+}
+
+// cast translates a Cast between floating-point types: the engine computes
+// in one element type, so the value passes unchanged.
+func (b *builder) cast(n *onnxlite.Node, out string) error {
+	if to := onnxlite.DataType(n.AttrInt("to", 0)); !isFloat(to) {
+		return fmt.Errorf("%w: Cast of a run-time value to %v", onnxlite.ErrUnsupported, to)
+	}
+	return b.alias(n, out)
+}
+
+// alias makes out the node of n's first input (reshaped to out's inferred
+// shape by set): Reshape, Flatten, Squeeze, Unsqueeze.
+func (b *builder) alias(n *onnxlite.Node, out string) error {
+	x, err := b.input(n, 0)
+	if err != nil {
+		return err
+	}
+	return b.set(out, x)
+}
+
+func (b *builder) globalPool(n *onnxlite.Node, out string) error {
+	x, err := b.input(n, 0)
+	if err != nil {
+		return err
+	}
+	if r := len(b.shape(n.Inputs[0])); r < 3 || r > 4 {
+		return fmt.Errorf("%w: %s on rank-%d input (1-D and 2-D spatial data only)", onnxlite.ErrUnsupported, n.OpType, r)
+	}
+	y, err := ops.GlobalPool(x, n.OpType == "GlobalMaxPool")
+	if err != nil {
+		return err
+	}
+	return b.set(out, y)
 }
 
 func (b *builder) transpose(n *onnxlite.Node, out string) error {

@@ -53,7 +53,8 @@ func (v ValueShape) NumElements() int64 { return prodInt64(v.Shape) }
 // above DefaultLimits.MaxRank is a *LimitError.
 func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 	defer recoverTo(&err, "infer", ErrInvalid)
-	if err := m.Validate(); err != nil {
+	order, err := m.validate()
+	if err != nil {
 		return nil, err
 	}
 	g := m.Graph
@@ -99,8 +100,8 @@ func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 		}
 	}
 	opset := m.OpsetVersion("")
-	for i, n := range g.Nodes {
-		if err := s.inferNode(n, i, opset); err != nil {
+	for _, i := range order {
+		if err := s.inferNode(g.Nodes[i], i, opset); err != nil {
 			return nil, err
 		}
 	}

@@ -77,7 +77,7 @@ type unsupportedOp struct {
 
 func unsupportedOps(m *onnxlite.Model) (ops []unsupportedOp, err error) {
 	err = safeCall(func() error {
-		for _, u := range onnxlite.Unsupported(m) {
+		for _, u := range nn.Unsupported(m) {
 			ops = append(ops, unsupportedOp{Op: u.Op, Node: u.Node, Domain: u.Domain})
 		}
 		return nil
