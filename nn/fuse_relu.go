@@ -9,7 +9,7 @@ import (
 // A Conv or Gemm whose output only a Relu reads is translated, with that
 // Relu, into one op that applies max(v, 0) to its final value (after the
 // bias) before it returns, and whose gradient masks ∂L/∂y with its own
-// output (reluGrad: y > 0 ⇔ v > 0) before the usual backward. The values are
+// output (y > 0 ⇔ v > 0) before the usual backward. The values are
 // those of the two ops run one after the other, bit for bit: the same bias
 // add, then the same max(v, 0) (Go's max: NaN stays NaN, −0 becomes +0).
 

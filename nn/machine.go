@@ -21,11 +21,11 @@ type machinePool struct {
 	slots chan struct{} // one token per machine in existence
 }
 
-func newMachinePool(max int, build func() (*machine, error)) *machinePool {
-	if max < 1 {
-		max = 1
+func newMachinePool(size int, build func() (*machine, error)) *machinePool {
+	if size < 1 {
+		size = 1
 	}
-	return &machinePool{build: build, idle: make(chan *machine, max), slots: make(chan struct{}, max)}
+	return &machinePool{build: build, idle: make(chan *machine, size), slots: make(chan struct{}, size)}
 }
 
 // acquire returns an idle machine, builds one while fewer than max exist, or

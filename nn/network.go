@@ -64,36 +64,24 @@ type Options struct {
 	MaxBatch int
 	// Machines is the number of compiled machines per program, that is the
 	// number of concurrent runs of one program (default the larger of
-	// runtime.GOMAXPROCS(0) and Parallel).
-	// A machine is built on first use and kept. Besides its graph it keeps
-	// its input tensors and its steps' output buffers between runs, steps
-	// whose values are not live at the same time sharing one array: about
-	// one pass's live activations, for the 3×32×32 four-conv bench model at
-	// batch 64 in float32 8 MiB for a forward program and 17.5 MiB for a
-	// gradient program, plus 0.75 MiB of inputs. A Network keeps up to
-	// Machines machines for each program it has run (one per input shape
-	// and, for gradients, per selected output).
+	// runtime.GOMAXPROCS(0) and Parallel). A machine is built on first use
+	// and kept; besides its graph it keeps its input tensors and its steps'
+	// output buffers between runs, steps whose values are not live at the
+	// same time sharing one array: about one pass's live activations. A
+	// Network keeps up to Machines machines for each program it has run (one
+	// per input shape and, for gradients, per selected output).
 	Machines int
 	// Parallel is the number of goroutines one call (Forward, Head.Forward,
 	// Head.Gradient) may split its batch across (default 1: the whole batch
 	// runs on the caller's goroutine, which suits a server whose
 	// concurrency comes from its requests). With Parallel p > 1 a batch of
-	// n samples is cut into k = min(p, n, ⌊W/SplitMinPartFLOPs⌋) contiguous
-	// parts of ⌈n/k⌉ or ⌊n/k⌋ samples, W being the batch's forward work in
-	// FLOPs (small passes are not split: a goroutine hand-off costs more than
-	// they do), run concurrently on the programs of those batch sizes
-	// (chunked by MaxBatch when larger), and the results are put back in
-	// sample order. The results are bit for bit those of
-	// Parallel 1, since a sample's results do not depend on its batch.
-	// Memory: a split call runs on the programs of its part sizes instead
-	// of the batch-n one (at most two per batch size and selection, plus,
-	// when the work estimate cuts fewer parts than min(p, n), the program
-	// of a min(p, n)-way part, which is shape-inferred but never gets a
-	// machine), each with up to Machines machines of about 1/k the memory
-	// of a batch-n machine; the parts' results are copied once into the
-	// call's output. Parts take machines from the same pools as other
-	// callers, so they run concurrently only while Machines ≥ Parallel
-	// leaves machines free.
+	// n samples is cut into at most p contiguous parts of near-equal size,
+	// each carrying at least 8·10⁶ FLOPs of forward work (2 per multiply-add
+	// of Conv, Gemm and MatMul), so a small pass stays whole; the parts run
+	// concurrently on the programs of their sizes, taking machines from the
+	// same pools as other callers, and their results are put back in sample
+	// order, bit for bit those of Parallel 1: a sample's results do not
+	// depend on its batch.
 	Parallel int
 }
 
@@ -136,7 +124,7 @@ type Network struct {
 	declared [][]int
 
 	// splitMinFLOPs is the least forward work per part of a split call
-	// (SplitMinPartFLOPs; tests lower it to split every batch).
+	// (splitMinPartFLOPs; tests lower it to split every batch).
 	splitMinFLOPs float64
 
 	mu    sync.Mutex
@@ -177,7 +165,7 @@ func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
 		return nil, fmt.Errorf("nn: compile: %w", &onnxlite.UnsupportedError{Ops: u})
 	}
 	nw = &Network{model: m, opts: opts, progs: map[string]*program{},
-		splitMinFLOPs: SplitMinPartFLOPs}
+		splitMinFLOPs: splitMinPartFLOPs}
 	nw.relaxed = relaxModel(m)
 	if err := nw.describe(); err != nil {
 		return nil, fmt.Errorf("nn: compile: %w", err)

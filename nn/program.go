@@ -524,8 +524,8 @@ func (nw *Network) runReq(ctx context.Context, shapes [][]int, data [][]float64,
 // first dimension) on the caller's goroutine, in chunks of at most
 // Options.MaxBatch samples.
 func (nw *Network) runReqSeq(ctx context.Context, shapes [][]int, data [][]float64, req request, mask []float64, n int) ([][]float64, [][]int, []float64, error) {
-	max := nw.opts.MaxBatch
-	if n <= max || len(shapes) == 0 {
+	chunk := nw.opts.MaxBatch
+	if n <= chunk || len(shapes) == 0 {
 		p, err := nw.program(shapes, req)
 		if err != nil {
 			return nil, nil, nil, err
@@ -536,11 +536,11 @@ func (nw *Network) runReqSeq(ctx context.Context, shapes [][]int, data [][]float
 	var outs [][]float64
 	var outShapes [][]int
 	var grad []float64
-	for start := 0; start < n; start += max {
+	for start := 0; start < n; start += chunk {
 		if err := ctx.Err(); err != nil {
 			return nil, nil, nil, err
 		}
-		end := start + max
+		end := start + chunk
 		if end > n {
 			end = n
 		}
@@ -570,7 +570,7 @@ func (nw *Network) runReqSeq(ctx context.Context, shapes [][]int, data [][]float
 			outShapes = make([][]int, len(o))
 			for i, s := range shp {
 				if len(s) == 0 || s[0] != end-start {
-					return nil, nil, nil, fmt.Errorf("%w: output %q has shape %v for a chunk of %d samples; run it with at most Options.MaxBatch = %d samples", ErrShape, p.outNames[i], s, end-start, max)
+					return nil, nil, nil, fmt.Errorf("%w: output %q has shape %v for a chunk of %d samples; run it with at most Options.MaxBatch = %d samples", ErrShape, p.outNames[i], s, end-start, chunk)
 				}
 				outShapes[i] = append([]int{n}, s[1:]...)
 			}

@@ -15,15 +15,12 @@ import (
 // alone, in the same order), so the parts of a split batch, run on programs
 // compiled for the part sizes, give the bits the whole batch gives.
 
-// SplitMinPartFLOPs is the least forward-pass work, in floating-point
+// splitMinPartFLOPs is the least forward-pass work, in floating-point
 // operations, that a part of a split call must carry (2 per multiply-add of
-// Conv, Gemm and MatMul, the count bench/compare uses). Measured with
-// BenchmarkSplitGradient on the bench/models networks at GOMAXPROCS=2
-// (medians of 3, one gradient pass, two parts against one): mlp-m at batch
-// 64 (12 MFLOP forward) 0.91×, cnn-s at batch 16 (9 MFLOP) 0.97×, cnn-s at
-// batch 32 (19 MFLOP) 1.16×, cnn-s at batch 64 1.30×, cnn-m at batch 2
-// (25 MFLOP) 1.05× and at batch 64 1.64×; mlp-s gained at no batch size.
-const SplitMinPartFLOPs = 8_000_000
+// Conv, Gemm and MatMul, the count bench/compare uses): below it a
+// goroutine hand-off costs more than the part gains. DEVELOPERS.md gives
+// the measurements behind the value (BenchmarkSplitGradient).
+const splitMinPartFLOPs = 8_000_000
 
 // splitParts returns an upper bound on the number of parts a batch of n
 // samples may be run in; runSplit refines it by the work per sample.

@@ -136,7 +136,7 @@ func TestSplitWork(t *testing.T) {
 	require.NoError(t, err)
 	// closed form: 2·(30·64 + 64·64 + 64·2) = 12288 FLOPs per sample.
 	assert.Equal(t, 12288.0, p.flopsPerSample())
-	// 64·12288 FLOPs < 2·SplitMinPartFLOPs: one part, on the batch-64 program.
+	// 64·12288 FLOPs < 2·splitMinPartFLOPs: one part, on the batch-64 program.
 	assert.Positive(t, splitMachines(h.nw)[64])
 	assert.Zero(t, splitMachines(h.nw)[32])
 
@@ -145,10 +145,10 @@ func TestSplitWork(t *testing.T) {
 	require.NoError(t, err)
 	q, err := c.nw.program(c.shapes(1), request{outputs: c.outputs, grad: true})
 	require.NoError(t, err)
-	// cnn-m carries more than SplitMinPartFLOPs per sample (12 722 176 by
+	// cnn-m carries more than splitMinPartFLOPs per sample (12 722 176 by
 	// bench.FLOPs, the count bench/compare reports): a batch of 2 runs as
 	// two parts of 1.
-	require.Greater(t, q.flopsPerSample(), float64(SplitMinPartFLOPs))
+	require.Greater(t, q.flopsPerSample(), float64(splitMinPartFLOPs))
 	assert.Zero(t, splitMachines(c.nw)[2])
 	assert.Positive(t, splitMachines(c.nw)[1])
 }

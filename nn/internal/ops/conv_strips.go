@@ -21,11 +21,8 @@ import "github.com/apportion/apportion/nn/internal/asm/f32"
 // rows for 16 channels, but the kernel writes straight into NCHW rows and
 // one strip of 16 positions serves every channel tile while it is in L1.
 // The transposed orientation (M = positions, N = channels, a transposed
-// write-back) was measured with BenchmarkConvOrientation
-// (conv_orient_test.go, one sample over the padded width, GOMAXPROCS=1,
-// load ≈8 on 2 cores, medians of 5): 16→16 at 32×32 222 µs here against
-// 508 µs transposed, 32→32 at 16×16 193 against 334 µs, 3→16 at 32×32 107
-// against 198 µs.
+// write-back) measured slower on every cnn shape (BenchmarkConvOrientation;
+// the figures are in DEVELOPERS.md).
 
 // sconvGeom is the geometry of the driver: an input of c channels of
 // hp×wp already padded (the pads of the convolution have been applied, so
@@ -223,9 +220,7 @@ func (pl *sconvPlan) scratchLen(m int) int {
 // with zeros to a multiple of sgemmMR). xp holds pl.padLen() elements for
 // sconvGrid and the padded image otherwise; strip is scratch of k·sgemmNR
 // elements (used by sconvStrided), cs of pl.scratchLen(m), and tile one
-// edge tile (kept by the caller: the kernel is called through a function
-// value, so a tile on the stack would escape to the heap on every call).
-// sgemmKernel must not be nil.
+// edge tile, kept by the caller from call to call.
 func sconvSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip, cs []float32, tile *[sgemmMR * sgemmNR]float32) {
 	g := &pl.g
 	k := g.k()

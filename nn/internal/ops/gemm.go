@@ -14,11 +14,11 @@ import (
 // Geijn 2008, "Anatomy of high-performance matrix multiplication", §4): a
 // sgemmMR×sgemmNR tile of C lives in 12 YMM registers while the kernel
 // streams a sgemmKC-deep sliver of packed A and B; a sgemmMC×sgemmKC block
-// of A stays in L2 and a sgemmKC×sgemmNC panel of B in L3. On the AMD EPYC
-// this is tuned on (32 KiB L1d, 512 KiB L2 per core) a 6×256 strip of A
-// (6 KiB) and a 256×16 strip of B (16 KiB) share L1. sgemmKC also sets
-// where each element's chain of fused multiply-adds restarts, so changing it
-// changes the bits of products with k > sgemmKC.
+// of A stays in L2 and a sgemmKC×sgemmNC panel of B in L3: a 6×256 strip of
+// A (6 KiB) and a 256×16 strip of B (16 KiB) fit a 32 KiB L1d together.
+// sgemmKC also sets where each element's chain of fused multiply-adds
+// restarts, so changing it changes the bits of products with k > sgemmKC.
+// DEVELOPERS.md gives the measurements behind the block sizes.
 const (
 	sgemmMR = 6
 	sgemmNR = 16
@@ -28,11 +28,8 @@ const (
 
 	// Products with op(B) = B and fewer rows than sgemmRowsBelow skip
 	// packing (sgemmRows); with a prepacked B (sgemmPre), products with
-	// fewer than sgemmPreRowsBelow rows. Measured by thread CPU time
-	// (BenchmarkSgemm, n = 256, k = 256, AMD EPYC with AVX2/FMA): the row
-	// kernel runs at 24 GFLOP/s whatever m; packing per call reaches 20 at
-	// m = 4, 39 at m = 6; on prepacked panels 11 at m = 1, 19 at m = 2, 30
-	// at m = 3, 67 at m = 6.
+	// fewer than sgemmPreRowsBelow rows: there the row kernel beats packing
+	// (BenchmarkSgemm; the figures are in DEVELOPERS.md).
 	sgemmRowsBelow    = sgemmMR
 	sgemmPreRowsBelow = 3
 )
@@ -53,18 +50,19 @@ type sgemmScratch struct {
 // the semantics of gonum's blas32 Sgemm: op(X) is X or Xᵀ as tA, tB say,
 // op(A) is m×k, op(B) is k×n, C is m×n, and lda, ldb, ldc are the row
 // strides of the stored matrices. When beta == 0 the old contents of C are
-// not read, so NaN there is overwritten. It uses the AVX2/FMA kernel when
-// the CPU has one and gonum otherwise. Bad dimensions panic like gonum's;
-// callers validate shapes first.
+// not read, so NaN there is overwritten. It runs the packed kernels of
+// package f32 where they run in assembly (f32.Asm) and gonum's BLAS
+// otherwise. Bad dimensions panic like gonum's; callers validate shapes
+// first.
 //
-// With the kernel, each element of C is the same chain of fused
+// With the kernels, each element of C is the same chain of fused
 // multiply-adds whatever m, n and its position in C, so a row of a batched
 // product is bit-identical to the same row computed alone (requests
 // coalesced into one batch rely on this). That is why small products are
 // not routed to gonum, whose sums round differently (and, with both
 // operands transposed, differently for different m). Every path keeps the
-// chain: kern6x16 on packed strips of A, kern6x16s on A in place, the row
-// kernel kern1x32, and sgemmPre on a prepacked B. Each chain starts at zero
+// chain: f32.Gemm6x16 on packed strips of A, f32.Gemm6x16Strided on A in
+// place, the row kernel f32.Gemm1x32, and sgemmPre on a prepacked B. Each chain starts at zero
 // for every sgemmKC-deep block of k; a block ends with alpha·T (exact and
 // skipped when alpha == 1) added to beta·C (beta = 1 after the first block).
 func sgemm(tA, tB bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {

@@ -138,7 +138,7 @@ func convCol2im[T float](g *convGeom, c int, col, dx []T) {
 
 // convGemm computes c = alpha·op(a)·op(b) + beta·c for row-major matrices,
 // op(a) m×k and op(b) k×n: float64 with gonum's pure-Go BLAS, float32 with
-// sgemm (the AVX2/FMA kernel where the CPU has one).
+// sgemm.
 func convGemm[T float](ta, tb bool, m, n, k int, a []T, lda int, b []T, ldb int, beta T, c []T, ldc int) {
 	tA, tB := blas.NoTrans, blas.NoTrans
 	if ta {

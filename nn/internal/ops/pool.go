@@ -92,9 +92,9 @@ func AvgPool(x *G.Node, s PoolSpec) (*G.Node, error) {
 // GlobalPool applies ONNX GlobalMaxPool (max) or GlobalAveragePool to x
 // (N, C, spatial...) of any spatial rank ≥ 1: one max or mean over all
 // spatial positions per channel, output (N, C, 1, ...).
-func GlobalPool(x *G.Node, max bool) (y *G.Node, err error) {
+func GlobalPool(x *G.Node, takeMax bool) (y *G.Node, err error) {
 	what := "GlobalAveragePool"
-	if max {
+	if takeMax {
 		what = "GlobalMaxPool"
 	}
 	if x == nil || x.Dims() < 3 {
@@ -107,14 +107,14 @@ func GlobalPool(x *G.Node, max bool) (y *G.Node, err error) {
 	if err := convCheckDtype(what, x); err != nil {
 		return nil, err
 	}
-	op := &poolOp{rank: x.Dims() - 2, max: max, global: true, constX: isConst(x)}
+	op := &poolOp{rank: x.Dims() - 2, max: takeMax, global: true, constX: isConst(x)}
 	if _, _, err := op.geometry(x.Shape()); err != nil {
 		return nil, err
 	}
 	return G.ApplyOp(op, x)
 }
 
-func poolBuild(what string, x *G.Node, s PoolSpec, max bool) (y *G.Node, err error) {
+func poolBuild(what string, x *G.Node, s PoolSpec, takeMax bool) (y *G.Node, err error) {
 	if x == nil {
 		return nil, fmt.Errorf("nn: %s: %w: input is required", what, ErrShape)
 	}
@@ -128,8 +128,8 @@ func poolBuild(what string, x *G.Node, s PoolSpec, max bool) (y *G.Node, err err
 	if len(s.Kernel) != rank {
 		return nil, fmt.Errorf("nn: %s: %w: expected %d kernel sizes, got %v", what, ErrShape, rank, s.Kernel)
 	}
-	op := &poolOp{rank: rank, max: max, kernel: append([]int(nil), s.Kernel...),
-		ceil: s.CeilMode, includePad: s.CountIncludePad && !max, constX: isConst(x)}
+	op := &poolOp{rank: rank, max: takeMax, kernel: append([]int(nil), s.Kernel...),
+		ceil: s.CeilMode, includePad: s.CountIncludePad && !takeMax, constX: isConst(x)}
 	if op.pads, op.strides, op.dils, err = convNormalize(rank, s.Pads, s.Strides, s.Dilations); err != nil {
 		return nil, fmt.Errorf("nn: %s: %w", what, err)
 	}
@@ -414,19 +414,19 @@ func (op *poolBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Va
 // poolBackwardInto writes the pooling gradient into dx with the global,
 // tiled or generic kernel; dx is zeroed when fresh and holds anything
 // otherwise.
-func poolBackwardInto[T float](g *convGeom, win *poolWindows, planes int, max, includePad, global, fresh bool, x, dy, dx []T) {
+func poolBackwardInto[T float](g *convGeom, win *poolWindows, planes int, takeMax, includePad, global, fresh bool, x, dy, dx []T) {
 	if global {
-		poolGlobalBackward(g.w, planes, max, x, dy, dx)
+		poolGlobalBackward(g.w, planes, takeMax, x, dy, dx)
 		return
 	}
 	if poolTiled(g) {
-		poolTiledBackward(g, planes, max, x, dy, dx)
+		poolTiledBackward(g, planes, takeMax, x, dy, dx)
 		return
 	}
 	if !fresh {
 		clear(dx)
 	}
-	poolWindowBackward(g, win, planes, max, includePad, x, dy, dx)
+	poolWindowBackward(g, win, planes, takeMax, includePad, x, dy, dx)
 }
 
 func (op *poolBackOp) WriteHash(h hash.Hash) { fmt.Fprint(h, op.String()) }

@@ -146,14 +146,14 @@ func BenchmarkPoolAverage(b *testing.B) {
 }
 
 // BenchmarkPoolWindowed times the windowed (not tiled) 3×3 stride-2 pad-1
-// pools, float32, against the reference kernels of pooling_ref_test.go on
+// pools, float32, against the reference kernels of pool_ref_test.go on
 // the same data (variant "reference"; "op" is UsePreallocDo into a reused
 // buffer). Bytes as in BenchmarkPoolZoo.
 func BenchmarkPoolWindowed(b *testing.B) {
 	shp := []int{8, 16, 32, 32}
 	x := poolBenchInput(rand.New(rand.NewSource(1)), shp)
-	for _, max := range []bool{true, false} {
-		op := &poolOp{rank: 2, max: max, kernel: []int{3, 3}, pads: []int{1, 1, 1, 1}, strides: []int{2, 2}, dils: []int{1, 1}, includePad: !max}
+	for _, takeMax := range []bool{true, false} {
+		op := &poolOp{rank: 2, max: takeMax, kernel: []int{3, 3}, pads: []int{1, 1, 1, 1}, strides: []int{2, 2}, dils: []int{1, 1}, includePad: !takeMax}
 		oshp, g, err := op.geometry(x.Shape())
 		if err != nil {
 			b.Fatal(err)
@@ -162,14 +162,14 @@ func BenchmarkPoolWindowed(b *testing.B) {
 		nx, ny := int64(x.Size()), int64(dy.Size())
 		planes := shp[0] * shp[1]
 		name := "avg"
-		if max {
+		if takeMax {
 			name = "max"
 		}
 		b.Run(name+"/fwd/reference", func(b *testing.B) {
 			b.SetBytes(4 * (nx + ny))
 			y := make([]float32, ny)
 			for i := 0; i < b.N; i++ {
-				poolForward(&g, planes, max, !max, x.Float32s(), y)
+				poolForward(&g, planes, takeMax, !takeMax, x.Float32s(), y)
 			}
 		})
 		b.Run(name+"/fwd/op", func(b *testing.B) {
@@ -181,7 +181,7 @@ func BenchmarkPoolWindowed(b *testing.B) {
 			dx := make([]float32, nx)
 			for i := 0; i < b.N; i++ {
 				clear(dx)
-				poolBackward(&g, planes, max, !max, x.Float32s(), dy.Float32s(), dx)
+				poolBackward(&g, planes, takeMax, !takeMax, x.Float32s(), dy.Float32s(), dx)
 			}
 		})
 		b.Run(name+"/bwd/op", func(b *testing.B) {

@@ -9,8 +9,8 @@ package ops
 
 // poolGlobalForward is the forward global pool over planes planes of n
 // elements.
-func poolGlobalForward[T float](n, planes int, max bool, x, y []T) {
-	if max {
+func poolGlobalForward[T float](n, planes int, takeMax bool, x, y []T) {
+	if takeMax {
 		for pl := range y[:planes] {
 			xp := x[pl*n : (pl+1)*n]
 			y[pl] = xp[poolTileArgmax(xp, 0, n, 1, n)]
@@ -46,12 +46,12 @@ func poolGlobalForward[T float](n, planes int, max bool, x, y []T) {
 
 // poolGlobalBackward is the global pool gradient; it overwrites all
 // of dx.
-func poolGlobalBackward[T float](n, planes int, max bool, x, dy, dx []T) {
+func poolGlobalBackward[T float](n, planes int, takeMax bool, x, dy, dx []T) {
 	div := T(n)
 	for pl, d := range dy[:planes] {
 		xp := x[pl*n : (pl+1)*n]
 		dxp := dx[pl*n : (pl+1)*n]
-		if max {
+		if takeMax {
 			clear(dxp)
 			dxp[poolTileArgmax(xp, 0, n, 1, n)] = 0 + d
 			continue

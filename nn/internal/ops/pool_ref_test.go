@@ -4,8 +4,8 @@ import "math"
 
 // The reference pooling kernels: the straightforward windowed loops, which
 // clip every window to the input as they go. The op runs the table-driven
-// (pooling_window.go), tiled (pooling_tiled.go) and global
-// (pooling_global.go) kernels instead; TestPoolMatchesReference,
+// (pool_window.go), tiled (pool_tiled.go) and global
+// (pool_global.go) kernels instead; TestPoolMatchesReference,
 // TestPoolTiledMatchesGeneric and TestPoolGlobalMatchesGeneric check them
 // bit for bit against these, on top of the checks of the op against the
 // ONNX backend test data (TestPoolONNX) and central finite differences
@@ -26,7 +26,7 @@ func poolDivisor(g *convGeom, y0, x0 int, includePad bool) int {
 
 // poolForward computes max or average pooling over planes (n·c) planes.
 // A window with no input element yields −Inf (max) or 0 (average).
-func poolForward[T float](g *convGeom, planes int, max, includePad bool, x, y []T) {
+func poolForward[T float](g *convGeom, planes int, takeMax, includePad bool, x, y []T) {
 	hw, p := g.h*g.w, g.oh*g.ow
 	for pl := 0; pl < planes; pl++ {
 		xp := x[pl*hw : (pl+1)*hw]
@@ -35,7 +35,7 @@ func poolForward[T float](g *convGeom, planes int, max, includePad bool, x, y []
 			y0 := oy*g.sh - g.pt
 			for ox := 0; ox < g.ow; ox++ {
 				x0 := ox*g.sw - g.pl
-				if max {
+				if takeMax {
 					idx := poolArgmax(g, xp, y0, x0)
 					if idx < 0 {
 						yp[oy*g.ow+ox] = T(math.Inf(-1))
@@ -94,7 +94,7 @@ func poolArgmax[T float](g *convGeom, xp []T, y0, x0 int) int {
 // poolBackward adds into the zeroed dx the pooling gradient: dy to each
 // window's argmax (max), or dy/D to each input element of the window
 // (average).
-func poolBackward[T float](g *convGeom, planes int, max, includePad bool, x, dy, dx []T) {
+func poolBackward[T float](g *convGeom, planes int, takeMax, includePad bool, x, dy, dx []T) {
 	hw, p := g.h*g.w, g.oh*g.ow
 	for pl := 0; pl < planes; pl++ {
 		xp := x[pl*hw : (pl+1)*hw]
@@ -105,7 +105,7 @@ func poolBackward[T float](g *convGeom, planes int, max, includePad bool, x, dy,
 			for ox := 0; ox < g.ow; ox++ {
 				x0 := ox*g.sw - g.pl
 				d := dyp[oy*g.ow+ox]
-				if max {
+				if takeMax {
 					if idx := poolArgmax(g, xp, y0, x0); idx >= 0 {
 						dxp[idx] += d
 					}

@@ -125,7 +125,7 @@ var poolCases = []poolCase{
 	{name: "avg_2d_dilations", x: []int{1, 1, 8, 8}, spec: PoolSpec{Kernel: []int{2, 2}, Dilations: []int{3, 2}, Pads: []int{1, 0, 0, 1}, CountIncludePad: true}},
 	{name: "avg_1d", x: []int{2, 2, 9}, spec: PoolSpec{Kernel: []int{4}, Strides: []int{3}, Pads: []int{2, 1}, CeilMode: true}},
 	// Tiled pools (stride = kernel, no pads): the kernels of
-	// pooling_tiled.go, AVX2 for 2×2 float32 rows of ≥ 4 outputs (8 with an
+	// pool_tiled.go, AVX2 for 2×2 float32 rows of ≥ 4 outputs (8 with an
 	// overlapping last step, and 6 with two 4-wide steps); odd sizes leave
 	// an uncovered border whose gradient is zero.
 	{name: "max_2d_tiled", x: []int{2, 3, 9, 19}, max: true, spec: PoolSpec{Kernel: []int{2, 2}, Strides: []int{2, 2}}},
@@ -241,16 +241,16 @@ func TestPoolNaN(t *testing.T) {
 	// IEEE 754 quiet NaN in a window propagates to that window's max and
 	// mean (max: common practice, as PyTorch's max_pool does).
 	x := convArr{shape: []int{1, 1, 4}, data: []float64{1, math.NaN(), 2, 5}}
-	for _, max := range []bool{true, false} {
+	for _, takeMax := range []bool{true, false} {
 		y, _, _ := convGraph(t, tensor.Float64, func(in []*G.Node) (*G.Node, error) {
-			if max {
+			if takeMax {
 				return MaxPool(in[0], PoolSpec{Kernel: []int{2}, Strides: []int{2}})
 			}
 			return AvgPool(in[0], PoolSpec{Kernel: []int{2}, Strides: []int{2}})
 		}, []convArr{x}, nil)
 		got := convFloats64(t, y.Value())
 		require.True(t, math.IsNaN(got[0]))
-		if max {
+		if takeMax {
 			require.Equal(t, 5.0, got[1]) // max(2, 5), closed form
 		} else {
 			require.Equal(t, 3.5, got[1]) // (2 + 5)/2, closed form

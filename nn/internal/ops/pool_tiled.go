@@ -29,12 +29,12 @@ func poolTiled(g *convGeom) bool {
 }
 
 // poolTiledForward is the forward pool of a tiled geometry.
-func poolTiledForward[T float](g *convGeom, planes int, max bool, x, y []T) {
-	if x32, ok := any(x).([]float32); ok && max && g.kh == 2 && g.kw == 2 {
+func poolTiledForward[T float](g *convGeom, planes int, takeMax bool, x, y []T) {
+	if x32, ok := any(x).([]float32); ok && takeMax && g.kh == 2 && g.kw == 2 {
 		f32.MaxPool2x2(x32, any(y).([]float32), planes, g.h, g.w, g.oh, g.ow)
 		return
 	}
-	if !max && g.kh == 2 && g.kw == 2 {
+	if !takeMax && g.kh == 2 && g.kw == 2 {
 		poolAvg2x2Forward(g, planes, x, y)
 		return
 	}
@@ -48,7 +48,7 @@ func poolTiledForward[T float](g *convGeom, planes int, max bool, x, y []T) {
 			yr := yp[oy*g.ow : (oy+1)*g.ow]
 			for ox := range yr {
 				x0 := ox * g.kw
-				if max {
+				if takeMax {
 					yr[ox] = tile[poolTileArgmax(tile, x0, g.w, g.kh, g.kw)]
 					continue
 				}
@@ -66,13 +66,13 @@ func poolTiledForward[T float](g *convGeom, planes int, max bool, x, y []T) {
 
 // poolTiledBackward is the pool gradient of a tiled geometry; it overwrites
 // all of dx.
-func poolTiledBackward[T float](g *convGeom, planes int, max bool, x, dy, dx []T) {
-	if x32, ok := any(x).([]float32); ok && max && g.kh == 2 && g.kw == 2 {
+func poolTiledBackward[T float](g *convGeom, planes int, takeMax bool, x, dy, dx []T) {
+	if x32, ok := any(x).([]float32); ok && takeMax && g.kh == 2 && g.kw == 2 {
 		f32.MaxPool2x2Grad(x32, any(dy).([]float32), any(dx).([]float32), planes, g.h, g.w, g.oh, g.ow)
 		poolClearBorder(g, planes, dx)
 		return
 	}
-	if !max && g.kh == 2 && g.kw == 2 {
+	if !takeMax && g.kh == 2 && g.kw == 2 {
 		poolAvg2x2Backward(g, planes, dy, dx)
 		poolClearBorder(g, planes, dx)
 		return
@@ -89,7 +89,7 @@ func poolTiledBackward[T float](g *convGeom, planes int, max bool, x, dy, dx []T
 			dyr := dyp[oy*g.ow : (oy+1)*g.ow]
 			for ox, d := range dyr {
 				x0 := ox * g.kw
-				if max {
+				if takeMax {
 					k := poolTileArgmax(tile, x0, g.w, g.kh, g.kw)
 					for i := 0; i < g.kh; i++ {
 						clear(dtile[i*g.w+x0 : i*g.w+x0+g.kw])

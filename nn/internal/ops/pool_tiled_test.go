@@ -93,9 +93,9 @@ func poolTyped[T float](v []float64) []T {
 // poolCompareTiled checks the tiled kernels reached through the ops'
 // UsePreallocDo (into garbage-filled buffers) bit for bit against the
 // reference kernels.
-func poolCompareTiled[T float](t *testing.T, dt tensor.Dtype, shp, kernel []int, max bool, xv, dyv []float64) {
+func poolCompareTiled[T float](t *testing.T, dt tensor.Dtype, shp, kernel []int, takeMax bool, xv, dyv []float64) {
 	t.Helper()
-	op := &poolOp{rank: 2, max: max, kernel: kernel, pads: []int{0, 0, 0, 0}, strides: kernel, dils: []int{1, 1}}
+	op := &poolOp{rank: 2, max: takeMax, kernel: kernel, pads: []int{0, 0, 0, 0}, strides: kernel, dils: []int{1, 1}}
 	oshp, g, err := op.geometry(shp)
 	require.NoError(t, err)
 	require.True(t, poolTiled(&g), "geometry %+v", g)
@@ -121,13 +121,13 @@ func TestPoolTiledMatchesGeneric(t *testing.T) {
 						xv := poolTieInput(rng, size, special)
 						dyv := convRandArr(rng, size).data
 						dyv[0], dyv[len(dyv)/2] = math.Copysign(0, -1), math.NaN()
-						for _, max := range []bool{true, false} {
-							name := fmt.Sprintf("k%v/%v/special=%t/max=%t", k, shp, special, max)
+						for _, takeMax := range []bool{true, false} {
+							name := fmt.Sprintf("k%v/%v/special=%t/max=%t", k, shp, special, takeMax)
 							t.Run(name+"/float64", func(t *testing.T) {
-								poolCompareTiled[float64](t, tensor.Float64, shp, k, max, xv, dyv)
+								poolCompareTiled[float64](t, tensor.Float64, shp, k, takeMax, xv, dyv)
 							})
 							t.Run(name+"/float32", func(t *testing.T) {
-								poolCompareTiled[float32](t, tensor.Float32, shp, k, max, xv, dyv)
+								poolCompareTiled[float32](t, tensor.Float32, shp, k, takeMax, xv, dyv)
 							})
 						}
 					}
@@ -251,9 +251,9 @@ func TestPoolGlobalMatchesGeneric(t *testing.T) {
 	rng := rand.New(rand.NewSource(24))
 	for _, shp := range [][]int{{1, 1, 1, 1}, {1, 3, 5}, {2, 3, 4, 4}, {3, 3, 2, 7}, {1, 2, 3, 2, 4}} {
 		for _, special := range []bool{false, true} {
-			for _, max := range []bool{true, false} {
-				t.Run(fmt.Sprintf("%v/special=%t/max=%t", shp, special, max), func(t *testing.T) {
-					op := &poolOp{rank: len(shp) - 2, max: max, global: true}
+			for _, takeMax := range []bool{true, false} {
+				t.Run(fmt.Sprintf("%v/special=%t/max=%t", shp, special, takeMax), func(t *testing.T) {
+					op := &poolOp{rank: len(shp) - 2, max: takeMax, global: true}
 					oshp, g, err := op.geometry(shp)
 					require.NoError(t, err)
 					size := tensor.Shape(shp).TotalSize()
@@ -271,7 +271,7 @@ func TestPoolGlobalMatchesGeneric(t *testing.T) {
 func TestPoolMatchesReference(t *testing.T) {
 	// IEEE 754 bit patterns of the op (table-driven windows, or the tiled
 	// kernels where the geometry allows) against the reference kernels of
-	// pooling_ref_test.go on random geometries: kernels, strides,
+	// pool_ref_test.go on random geometries: kernels, strides,
 	// dilations, asymmetric pads, ceil mode and count_include_pad, over
 	// inputs with ties, signed zeros, NaNs and infinities.
 	rng := rand.New(rand.NewSource(25))
@@ -282,8 +282,8 @@ func TestPoolMatchesReference(t *testing.T) {
 		dils := []int{1 + rng.Intn(2), 1 + rng.Intn(2)}
 		pads := []int{rng.Intn(3), rng.Intn(3), rng.Intn(3), rng.Intn(3)}
 		shp := []int{1 + 2*rng.Intn(2), 2, 1 + rng.Intn(9), 1 + rng.Intn(12)}
-		max, ceil := rng.Intn(2) == 0, rng.Intn(2) == 0
-		op := &poolOp{rank: 2, max: max, kernel: kernel, pads: pads, strides: strides, dils: dils, ceil: ceil, includePad: !max && rng.Intn(2) == 0}
+		takeMax, ceil := rng.Intn(2) == 0, rng.Intn(2) == 0
+		op := &poolOp{rank: 2, max: takeMax, kernel: kernel, pads: pads, strides: strides, dils: dils, ceil: ceil, includePad: !takeMax && rng.Intn(2) == 0}
 		oshp, g, err := op.geometry(shp)
 		if err != nil {
 			continue // window larger than the padded input

@@ -81,12 +81,12 @@ func poolWindowArgmax[T float](g *convGeom, xp []T, r, c *poolSpan) int {
 //	max: y = the first maximum (or first NaN) of the window, −Inf for a
 //	     window with no input element;
 //	avg: y = (0 + Σ window, in row-major order) / D, 0 for D = 0.
-func poolWindowForward[T float](g *convGeom, win *poolWindows, planes int, max, includePad bool, x, y []T) {
+func poolWindowForward[T float](g *convGeom, win *poolWindows, planes int, takeMax, includePad bool, x, y []T) {
 	hw, p := g.h*g.w, g.oh*g.ow
 	for pl := 0; pl < planes; pl++ {
 		xp := x[pl*hw : (pl+1)*hw]
 		yp := y[pl*p : (pl+1)*p]
-		if max {
+		if takeMax {
 			poolWindowMaxPlane(g, win, xp, yp)
 		} else {
 			poolWindowAvgPlane(g, win, includePad, xp, yp)
@@ -149,7 +149,7 @@ func poolWindowAvgPlane[T float](g *convGeom, win *poolWindows, includePad bool,
 // poolWindowBackward adds into the zeroed dx the pooling gradient, window
 // by window in output order: dy to each window's argmax (max), or dy/D to
 // each input element of the window (average).
-func poolWindowBackward[T float](g *convGeom, win *poolWindows, planes int, max, includePad bool, x, dy, dx []T) {
+func poolWindowBackward[T float](g *convGeom, win *poolWindows, planes int, takeMax, includePad bool, x, dy, dx []T) {
 	hw, p := g.h*g.w, g.oh*g.ow
 	for pl := 0; pl < planes; pl++ {
 		xp := x[pl*hw : (pl+1)*hw]
@@ -159,7 +159,7 @@ func poolWindowBackward[T float](g *convGeom, win *poolWindows, planes int, max,
 			r := &win.rows[oy]
 			for ox, d := range dyp[oy*g.ow : (oy+1)*g.ow] {
 				c := &win.cols[ox]
-				if max {
+				if takeMax {
 					if k := poolWindowArgmax(g, xp, r, c); k >= 0 {
 						dxp[k] += d
 					}

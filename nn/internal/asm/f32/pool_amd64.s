@@ -11,7 +11,7 @@
 // VMAXPS src2 > src3 ? src2 : src3, which keeps the earlier element on
 // ties and is exactly "if v > m { m = v }" of the loop in maxPool2x2 when no
 // input is NaN. NaNs are only detected (VCMPPS UNORD, OR-ed into Y13/Y14):
-// the functions return true and the caller redoes the pass portably.
+// the functions return true and MaxPool2x2 redoes the pass with its loop.
 // A row whose length is not a multiple of the step ends with one step that
 // overlaps the previous one, recomputing identical values.
 
