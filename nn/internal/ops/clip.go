@@ -3,7 +3,6 @@ package ops
 import (
 	"fmt"
 	"hash"
-	"hash/fnv"
 	"math"
 
 	"github.com/chewxy/hm"
@@ -108,12 +107,8 @@ func (op clipBoundsOp) OverwritesInput() int { return -1 }
 func (op clipBoundsOp) WriteHash(h hash.Hash) {
 	fmt.Fprintf(h, "ClipBounds{%v}", op.grad)
 }
-func (op clipBoundsOp) Hashcode() uint32 {
-	h := fnv.New32a()
-	op.WriteHash(h)
-	return h.Sum32()
-}
-func (op clipBoundsOp) String() string { return fmt.Sprintf("ClipBounds{grad=%v}", op.grad) }
+func (op clipBoundsOp) Hashcode() uint32 { return hashOp(op) }
+func (op clipBoundsOp) String() string   { return fmt.Sprintf("ClipBounds{grad=%v}", op.grad) }
 
 // DiffWRT: only x is differentiated; run-time bounds belong to models with
 // more than one run-time input, whose gradients Head does not take.

@@ -5,7 +5,6 @@ import (
 
 	"fmt"
 	"hash"
-	"hash/fnv"
 	"strings"
 
 	"github.com/chewxy/hm"
@@ -459,11 +458,7 @@ func (op *convOp) ReturnsPtr() bool      { return false }
 func (op *convOp) CallsExtern() bool     { return false }
 func (op *convOp) OverwritesInput() int  { return -1 }
 func (op *convOp) WriteHash(h hash.Hash) { fmt.Fprint(h, op.String()) }
-func (op *convOp) Hashcode() uint32 {
-	h := fnv.New32a()
-	op.WriteHash(h)
-	return h.Sum32()
-}
+func (op *convOp) Hashcode() uint32      { return hashOp(op) }
 func (op *convOp) String() string {
 	relu := ""
 	if op.relu {
@@ -655,11 +650,7 @@ func convBackward[T float](g *convGeom, wrt, n, c, m, group int, x, w, dy, r []T
 }
 
 func (op *convBackOp) WriteHash(h hash.Hash) { fmt.Fprint(h, op.String()) }
-func (op *convBackOp) Hashcode() uint32 {
-	h := fnv.New32a()
-	op.WriteHash(h)
-	return h.Sum32()
-}
+func (op *convBackOp) Hashcode() uint32      { return hashOp(op) }
 func (op *convBackOp) String() string {
 	return fmt.Sprintf("%sGrad%d", op.convOp.String(), op.wrt)
 }

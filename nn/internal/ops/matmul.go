@@ -344,11 +344,7 @@ func (op matMulOp) WriteHash(h hash.Hash) {
 	}
 	fmt.Fprint(h, "}")
 }
-func (op matMulOp) Hashcode() uint32 {
-	h := fnv.New32a()
-	op.WriteHash(h)
-	return h.Sum32()
-}
+func (op matMulOp) Hashcode() uint32 { return hashOp(op) }
 func (op matMulOp) String() string {
 	if op.relu {
 		return fmt.Sprintf("MatMul{transA=%v, transB=%v, alpha=%v, bias=%v, relu}", op.transA, op.transB, op.scale(), op.bias != nil)

@@ -3,7 +3,6 @@ package ops
 import (
 	"fmt"
 	"hash"
-	"hash/fnv"
 
 	"github.com/chewxy/hm"
 	G "gorgonia.org/gorgonia"
@@ -218,11 +217,7 @@ func (op *padOp) ReturnsPtr() bool      { return false }
 func (op *padOp) CallsExtern() bool     { return false }
 func (op *padOp) OverwritesInput() int  { return -1 }
 func (op *padOp) WriteHash(h hash.Hash) { fmt.Fprint(h, op.String()) }
-func (op *padOp) Hashcode() uint32 {
-	h := fnv.New32a()
-	op.WriteHash(h)
-	return h.Sum32()
-}
+func (op *padOp) Hashcode() uint32      { return hashOp(op) }
 func (op *padOp) String() string {
 	return fmt.Sprintf("Pad{pads:%v mode:%s value:%v const:%t}", op.pads, op.mode, op.value, op.constX)
 }
@@ -302,12 +297,8 @@ func (op *padBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Val
 }
 
 func (op *padBackOp) WriteHash(h hash.Hash) { fmt.Fprint(h, op.String()) }
-func (op *padBackOp) Hashcode() uint32 {
-	h := fnv.New32a()
-	op.WriteHash(h)
-	return h.Sum32()
-}
-func (op *padBackOp) String() string { return op.padOp.String() + "Grad" }
+func (op *padBackOp) Hashcode() uint32      { return hashOp(op) }
+func (op *padBackOp) String() string        { return op.padOp.String() + "Grad" }
 
 // DiffWRT reports the gradient op as not differentiable.
 func (op *padBackOp) DiffWRT(inputs int) []bool { return make([]bool, inputs) }

@@ -3,7 +3,6 @@ package ops
 import (
 	"fmt"
 	"hash"
-	"hash/fnv"
 
 	"github.com/chewxy/hm"
 	G "gorgonia.org/gorgonia"
@@ -305,11 +304,7 @@ func (op *poolOp) ReturnsPtr() bool      { return false }
 func (op *poolOp) CallsExtern() bool     { return false }
 func (op *poolOp) OverwritesInput() int  { return -1 }
 func (op *poolOp) WriteHash(h hash.Hash) { fmt.Fprint(h, op.String()) }
-func (op *poolOp) Hashcode() uint32 {
-	h := fnv.New32a()
-	op.WriteHash(h)
-	return h.Sum32()
-}
+func (op *poolOp) Hashcode() uint32      { return hashOp(op) }
 func (op *poolOp) String() string {
 	return fmt.Sprintf("%s%dD{kernel:%v pads:%v strides:%v dilations:%v ceil:%t includePad:%t const:%t}",
 		op.name(), op.rank, op.kernel, op.pads, op.strides, op.dils, op.ceil, op.includePad, op.constX)
@@ -430,12 +425,8 @@ func poolBackwardInto[T float](g *convGeom, win *poolWindows, planes int, takeMa
 }
 
 func (op *poolBackOp) WriteHash(h hash.Hash) { fmt.Fprint(h, op.String()) }
-func (op *poolBackOp) Hashcode() uint32 {
-	h := fnv.New32a()
-	op.WriteHash(h)
-	return h.Sum32()
-}
-func (op *poolBackOp) String() string { return op.poolOp.String() + "Grad" }
+func (op *poolBackOp) Hashcode() uint32      { return hashOp(op) }
+func (op *poolBackOp) String() string        { return op.poolOp.String() + "Grad" }
 
 // DiffWRT reports the gradient op as not differentiable.
 func (op *poolBackOp) DiffWRT(inputs int) []bool { return make([]bool, inputs) }
