@@ -1,6 +1,7 @@
 package explain
 
 import (
+	"github.com/apportion/apportion/nn"
 	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
@@ -75,7 +76,7 @@ func (m *Model) Describe() *Description {
 	for k, v := range m.Graph.Metadata {
 		d.Metadata[k] = v
 	}
-	for _, u := range onnxlite.Unsupported(m.Graph) {
+	for _, u := range nn.Unsupported(m.Graph) {
 		d.Unsupported = append(d.Unsupported, Unsupported{Op: u.Op, Node: u.Node, Domain: u.Domain})
 	}
 	return d

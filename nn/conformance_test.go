@@ -50,13 +50,13 @@ func loadConformance(t *testing.T) ([]conformanceCase, map[string][]string) {
 		id := c.Suite + "/" + c.Name
 		m, err := onnxlite.DecodeFile(c.Model, onnxlite.DecodeOptions{})
 		if err != nil {
-			skipped["decode: "+coreFirstLine(err)] = append(skipped["decode: "+coreFirstLine(err)], id)
+			skipped["decode: "+firstLine(err)] = append(skipped["decode: "+firstLine(err)], id)
 			continue
 		}
 		if err := m.Validate(); err != nil {
 			reason := "unsupported"
 			if !errors.Is(err, onnxlite.ErrUnsupported) {
-				reason = "invalid: " + coreFirstLine(err)
+				reason = "invalid: " + firstLine(err)
 			}
 			skipped[reason] = append(skipped[reason], id)
 			continue
@@ -73,7 +73,7 @@ func loadConformance(t *testing.T) ([]conformanceCase, map[string][]string) {
 						float = false
 						continue
 					}
-					if !coreIsFloat(tt.DType) {
+					if !isFloat(tt.DType) {
 						float = false
 					}
 					pair[k] = append(pair[k], tt)
@@ -90,7 +90,7 @@ func loadConformance(t *testing.T) ([]conformanceCase, map[string][]string) {
 	return out, skipped
 }
 
-func coreFirstLine(err error) string {
+func firstLine(err error) string {
 	s := err.Error()
 	if i := strings.IndexAny(s, ":\n"); i > 0 && i < 60 {
 		return s[:i]

@@ -9,7 +9,7 @@ import (
 // A Conv or Gemm whose output only a Relu reads is translated, with that
 // Relu, into one op that applies max(v, 0) to its final value (after the
 // bias) before it returns, and whose gradient masks ∂L/∂y with its own
-// output (reluGrad: y > 0 ⇔ v > 0) before the usual backward. The values are
+// output (y > 0 ⇔ v > 0) before the usual backward. The values are
 // those of the two ops run one after the other, bit for bit: the same bias
 // add, then the same max(v, 0) (Go's max: NaN stays NaN, −0 becomes +0).
 
@@ -21,7 +21,7 @@ var fuseReluOff bool
 // or nil when that output has other readers, is a graph output, or fusion
 // is off. Readers are counted over every node left after folding, so a
 // reader that a request does not need still blocks the fusion.
-func (b *coreBuilder) fusedRelu(n *onnxlite.Node) *onnxlite.Node {
+func (b *builder) fusedRelu(n *onnxlite.Node) *onnxlite.Node {
 	if fuseReluOff || len(n.Outputs) == 0 || n.Outputs[0] == "" {
 		return nil
 	}
@@ -37,7 +37,7 @@ func (b *coreBuilder) fusedRelu(n *onnxlite.Node) *onnxlite.Node {
 			if in != out {
 				continue
 			}
-			if relu != nil || m.OpType != "Relu" || !onnxlite.IsSupported(m.Domain, m.OpType) || len(m.Outputs) == 0 || m.Outputs[0] == "" {
+			if relu != nil || m.OpType != "Relu" || !defaultDomain(m.Domain) || len(m.Outputs) == 0 || m.Outputs[0] == "" {
 				return nil
 			}
 			relu = m
@@ -47,7 +47,7 @@ func (b *coreBuilder) fusedRelu(n *onnxlite.Node) *onnxlite.Node {
 }
 
 // setFused makes y the value of relu's output and marks relu as translated.
-func (b *coreBuilder) setFused(relu *onnxlite.Node, y *G.Node) error {
+func (b *builder) setFused(relu *onnxlite.Node, y *G.Node) error {
 	if b.fused == nil {
 		b.fused = map[*onnxlite.Node]bool{}
 	}

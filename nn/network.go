@@ -13,6 +13,8 @@
 package nn
 
 import (
+	"github.com/apportion/apportion/nn/internal/ops"
+
 	"context"
 	"errors"
 	"fmt"
@@ -62,44 +64,33 @@ type Options struct {
 	MaxBatch int
 	// Machines is the number of compiled machines per program, that is the
 	// number of concurrent runs of one program (default the larger of
-	// runtime.GOMAXPROCS(0) and Parallel).
-	// A machine is built on first use and kept. Besides its graph it keeps
-	// its input tensors and its steps' output buffers between runs, steps
-	// whose values are not live at the same time sharing one array: about
-	// one pass's live activations, for the 3×32×32 four-conv bench model at
-	// batch 64 in float32 8 MiB for a forward program and 17.5 MiB for a
-	// gradient program, plus 0.75 MiB of inputs. A Network keeps up to
-	// Machines machines for each program it has run (one per input shape
-	// and, for gradients, per selected output).
+	// runtime.GOMAXPROCS(0) and Parallel). A machine is built on first use
+	// and kept; besides its graph it keeps its input tensors and its steps'
+	// output buffers between runs, steps whose values are not live at the
+	// same time sharing one array: about one pass's live activations. A
+	// Network keeps up to Machines machines for each program it has run (one
+	// per input shape and, for gradients, per selected output).
 	Machines int
 	// Parallel is the number of goroutines one call (Forward, Head.Forward,
 	// Head.Gradient) may split its batch across (default 1: the whole batch
 	// runs on the caller's goroutine, which suits a server whose
 	// concurrency comes from its requests). With Parallel p > 1 a batch of
-	// n samples is cut into k = min(p, n, ⌊W/SplitMinPartFLOPs⌋) contiguous
-	// parts of ⌈n/k⌉ or ⌊n/k⌋ samples, W being the batch's forward work in
-	// FLOPs (small passes are not split: a goroutine hand-off costs more than
-	// they do), run concurrently on the programs of those batch sizes
-	// (chunked by MaxBatch when larger), and the results are put back in
-	// sample order. The results are bit for bit those of
-	// Parallel 1, since a sample's results do not depend on its batch.
-	// Memory: a split call runs on the programs of its part sizes instead
-	// of the batch-n one (at most two per batch size and selection, plus,
-	// when the work estimate cuts fewer parts than min(p, n), the program
-	// of a min(p, n)-way part, which is shape-inferred but never gets a
-	// machine), each with up to Machines machines of about 1/k the memory
-	// of a batch-n machine; the parts' results are copied once into the
-	// call's output. Parts take machines from the same pools as other
-	// callers, so they run concurrently only while Machines ≥ Parallel
-	// leaves machines free.
+	// n samples is cut into at most p contiguous parts of near-equal size,
+	// each carrying at least 8·10⁶ FLOPs of forward work (2 per multiply-add
+	// of Conv, Gemm and MatMul), so a small pass stays whole; the parts run
+	// concurrently on the programs of their sizes, taking machines from the
+	// same pools as other callers, and their results are put back in sample
+	// order, bit for bit those of Parallel 1: a sample's results do not
+	// depend on its batch.
 	Parallel int
 }
 
 // Sentinel errors. Errors returned by this package that stem from one of these
 // conditions wrap the matching sentinel, so callers can test with errors.Is.
 var (
-	// ErrShape marks an input whose shape or length is not the expected one.
-	ErrShape = errors.New("shape mismatch")
+	// ErrShape marks an input whose shape or length is not the expected one,
+	// and operands of an operator that do not fit it or each other.
+	ErrShape = ops.ErrShape
 	// ErrNonFinite marks an input holding NaN or ±Inf where finite values are required.
 	ErrNonFinite = errors.New("non-finite input")
 	// ErrBadRequest marks an argument outside its valid range: a batch size,
@@ -133,7 +124,7 @@ type Network struct {
 	declared [][]int
 
 	// splitMinFLOPs is the least forward work per part of a split call
-	// (SplitMinPartFLOPs; tests lower it to split every batch).
+	// (splitMinPartFLOPs; tests lower it to split every batch).
 	splitMinFLOPs float64
 
 	mu    sync.Mutex
@@ -141,11 +132,11 @@ type Network struct {
 }
 
 // Compile validates m and prepares it for running. Programs are compiled
-// lazily on first use for each set of input shapes. Operators that the
-// package cannot run are reported together in one error wrapping
-// onnxlite.ErrUnsupported.
+// lazily on first use for each set of input shapes. The nodes whose operator
+// the package does not run (see Unsupported) are reported together in one
+// *onnxlite.UnsupportedError, which wraps onnxlite.ErrUnsupported.
 func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
-	defer coreRecover("nn: compile", &err)
+	defer recoverEngine("nn: compile", &err)
 	if m == nil || m.Graph == nil {
 		return nil, fmt.Errorf("nn: compile: %w: nil model or graph", ErrBadRequest)
 	}
@@ -164,12 +155,18 @@ func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
 	if opts.Machines == 0 {
 		opts.Machines = max(runtime.GOMAXPROCS(0), opts.Parallel)
 	}
-	if err := m.Validate(); err != nil {
+	// onnxlite's verdict on the operators gives way to nn's, which lists
+	// every node nn does not run (those onnxlite does not support among them).
+	var ue *onnxlite.UnsupportedError
+	if err := m.Validate(); err != nil && !errors.As(err, &ue) {
 		return nil, fmt.Errorf("nn: compile: %w", err)
 	}
+	if u := Unsupported(m); len(u) > 0 {
+		return nil, fmt.Errorf("nn: compile: %w", &onnxlite.UnsupportedError{Ops: u})
+	}
 	nw = &Network{model: m, opts: opts, progs: map[string]*program{},
-		splitMinFLOPs: SplitMinPartFLOPs}
-	nw.relaxed = coreRelaxModel(m)
+		splitMinFLOPs: splitMinPartFLOPs}
+	nw.relaxed = relaxModel(m)
 	if err := nw.describe(); err != nil {
 		return nil, fmt.Errorf("nn: compile: %w", err)
 	}
@@ -201,7 +198,7 @@ func clonePorts(ps []Port) []Port {
 // Double tensors on the Float64 engine. A batch larger than Options.MaxBatch
 // is run in chunks along the first dimension.
 func (nw *Network) Forward(ctx context.Context, inputs []*onnxlite.Tensor) (outs []*onnxlite.Tensor, err error) {
-	defer coreRecover("nn: forward", &err)
+	defer recoverEngine("nn: forward", &err)
 	if len(inputs) != len(nw.inputs) {
 		return nil, fmt.Errorf("nn: forward: %w: expected %d inputs (%s), got %d", ErrBadRequest, len(nw.inputs), portNames(nw.inputs), len(inputs))
 	}
@@ -212,7 +209,7 @@ func (nw *Network) Forward(ctx context.Context, inputs []*onnxlite.Tensor) (outs
 		if t == nil {
 			return nil, fmt.Errorf("nn: forward: input %q: %w: nil tensor", p.Name, ErrBadRequest)
 		}
-		vals, err := coreTensorFloats(t)
+		vals, err := tensorFloats(t)
 		if err != nil {
 			return nil, fmt.Errorf("nn: forward: input %q: %w", p.Name, err)
 		}
@@ -231,7 +228,7 @@ func (nw *Network) Forward(ctx context.Context, inputs []*onnxlite.Tensor) (outs
 	}
 	outs = make([]*onnxlite.Tensor, len(res))
 	for i, r := range res {
-		outs[i] = coreMakeTensor(nw.outputs[i].Name, nw.opts.DType, outShapes[i], r)
+		outs[i] = makeTensor(nw.outputs[i].Name, nw.opts.DType, outShapes[i], r)
 	}
 	return outs, nil
 }
@@ -252,7 +249,7 @@ func (nw *Network) checkInputShape(i int, shape []int, n int) error {
 	p := nw.inputs[i]
 	decl := nw.declared[i]
 	if decl != nil {
-		want := coreShapeString(decl, true)
+		want := shapeString(decl, true)
 		if len(shape) != len(decl) {
 			return fmt.Errorf("input %q: %w: expected shape %s (rank %d), got %v", p.Name, ErrShape, want, len(decl), shape)
 		}
@@ -274,7 +271,7 @@ func (nw *Network) checkInputShape(i int, shape []int, n int) error {
 	return nil
 }
 
-func coreShapeString(decl []int, batch bool) string {
+func shapeString(decl []int, batch bool) string {
 	s := "["
 	for j, d := range decl {
 		if j > 0 {
@@ -300,16 +297,19 @@ func prod(s []int) int {
 	return p
 }
 
-// coreRecover turns a panic (gorgonia panics on some malformed graphs) into
-// an error wrapping ErrEngine.
-func coreRecover(where string, err *error) {
+// recoverEngine turns a panic into an error wrapping ErrEngine. It is the
+// package's one recovery boundary: every exported function and method that
+// runs the engine defers it (and so does each goroutine a split call starts,
+// another edge), so that a panic below them (gorgonia panics on some
+// malformed graphs) reaches the caller as an error.
+func recoverEngine(where string, err *error) {
 	if r := recover(); r != nil {
 		*err = fmt.Errorf("%s: %w: recovered panic: %v", where, ErrEngine, r)
 	}
 }
 
-// coreCheckNonFinite refuses NaN and ±Inf in x, naming the first position.
-func coreCheckNonFinite(x []float64, sample int) error {
+// checkFinite refuses NaN and ±Inf in x, naming the first position.
+func checkFinite(x []float64, sample int) error {
 	for i, v := range x {
 		if math.IsNaN(v) || math.IsInf(v, 0) {
 			return fmt.Errorf("%w: x[%d] (sample %d, element %d) is %v", ErrNonFinite, i, i/sample, i%sample, v)

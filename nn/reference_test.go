@@ -223,7 +223,7 @@ func TestReferenceExportedOps(t *testing.T) {
 		}
 		// The op list onnx.load read from the same file (python3-onnx 1.12.0).
 		assert.ElementsMatch(t, mm.Ops, got, mm.ONNX)
-		assert.Empty(t, onnxlite.Unsupported(model), mm.ONNX)
+		assert.Empty(t, nn.Unsupported(model), mm.ONNX)
 	}
 }
 

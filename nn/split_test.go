@@ -66,7 +66,7 @@ func TestSplitBitIdentical(t *testing.T) {
 		for _, dt := range []DType{Float32, Float64} {
 			ref := splitHead(t, name, Options{DType: dt, Parallel: 1})
 			for _, n := range batches {
-				if execRace && n == 64 && strings.HasPrefix(name, "cnn") {
+				if raceEnabled && n == 64 && strings.HasPrefix(name, "cnn") {
 					continue // minutes under the race detector; covered without it
 				}
 				x := splitInput(ref, n)
@@ -97,9 +97,9 @@ func TestSplitBitIdentical(t *testing.T) {
 						require.Len(t, net, len(wantNet))
 						for i := range net {
 							assert.Equal(t, wantNet[i].Dims, net[i].Dims)
-							a, err := coreTensorFloats(wantNet[i])
+							a, err := tensorFloats(wantNet[i])
 							require.NoError(t, err)
-							b, err := coreTensorFloats(net[i])
+							b, err := tensorFloats(net[i])
 							require.NoError(t, err)
 							assert.Equal(t, splitBits(a), splitBits(b), "network forward %d", i)
 						}
@@ -136,7 +136,7 @@ func TestSplitWork(t *testing.T) {
 	require.NoError(t, err)
 	// closed form: 2·(30·64 + 64·64 + 64·2) = 12288 FLOPs per sample.
 	assert.Equal(t, 12288.0, p.flopsPerSample())
-	// 64·12288 FLOPs < 2·SplitMinPartFLOPs: one part, on the batch-64 program.
+	// 64·12288 FLOPs < 2·splitMinPartFLOPs: one part, on the batch-64 program.
 	assert.Positive(t, splitMachines(h.nw)[64])
 	assert.Zero(t, splitMachines(h.nw)[32])
 
@@ -145,10 +145,10 @@ func TestSplitWork(t *testing.T) {
 	require.NoError(t, err)
 	q, err := c.nw.program(c.shapes(1), request{outputs: c.outputs, grad: true})
 	require.NoError(t, err)
-	// cnn-m carries more than SplitMinPartFLOPs per sample (12 722 176 by
+	// cnn-m carries more than splitMinPartFLOPs per sample (12 722 176 by
 	// bench.FLOPs, the count bench/compare reports): a batch of 2 runs as
 	// two parts of 1.
-	require.Greater(t, q.flopsPerSample(), float64(SplitMinPartFLOPs))
+	require.Greater(t, q.flopsPerSample(), float64(splitMinPartFLOPs))
 	assert.Zero(t, splitMachines(c.nw)[2])
 	assert.Positive(t, splitMachines(c.nw)[1])
 }
@@ -280,7 +280,7 @@ func TestSplitFixedBatch(t *testing.T) {
 	x := []float64{-1, 2, -3, 4, -5, 6, 0.5, -0.25, 7, -8, 9, -0.125}
 	outs, err := nw.Forward(ctx, []*onnxlite.Tensor{tensor64("x", []int64{4, 3}, x)})
 	require.NoError(t, err)
-	got, err := coreTensorFloats(outs[0])
+	got, err := tensorFloats(outs[0])
 	require.NoError(t, err)
 	for i, v := range x {
 		assert.Equal(t, math.Max(v, 0), got[i], "y[%d]", i) // closed form: Relu(x) = max(x, 0)

@@ -72,7 +72,7 @@ func decodeFrom[T any](r io.Reader, opts DecodeOptions, what string, message fun
 	if err != nil {
 		return zero, fmt.Errorf("onnxlite: %s: %w", what, err)
 	}
-	defer recoverTo(&err, what)
+	defer recoverTo(&err, what, ErrMalformed)
 	v, err = message(d, buf)
 	if err != nil {
 		return zero, fmt.Errorf("onnxlite: %s: %w", what, err)
@@ -98,14 +98,6 @@ func decodeFileWith[T any](path string, opts DecodeOptions, decode func(io.Reade
 		return zero, fmt.Errorf("%w (file %s)", err, path)
 	}
 	return v, nil
-}
-
-// recoverTo turns a panic into an error. The decoder is written not to
-// panic; this is the last line of defence at the API boundary.
-func recoverTo(err *error, what string) {
-	if r := recover(); r != nil {
-		*err = fmt.Errorf("onnxlite: %s: internal error: %v: %w", what, r, ErrMalformed)
-	}
 }
 
 type decoder struct {

@@ -325,14 +325,14 @@ func floatInit(name string, n int) []byte {
 	return pbBytes(b, 9, make([]byte, 4*n))
 }
 
-func requireLimit(t *testing.T, err error, limit string, value, max int64) {
+func requireLimit(t *testing.T, err error, limit string, value, most int64) {
 	t.Helper()
 	require.ErrorIs(t, err, ErrLimit)
 	var le *LimitError
 	require.ErrorAs(t, err, &le)
-	assert.Equal(t, LimitError{Limit: limit, Value: value, Max: max}, *le)
+	assert.Equal(t, LimitError{Limit: limit, Value: value, Max: most}, *le)
 	assert.Contains(t, err.Error(), limit)
-	assert.Contains(t, err.Error(), fmt.Sprint(max))
+	assert.Contains(t, err.Error(), fmt.Sprint(most))
 }
 
 func TestLimits(t *testing.T) {

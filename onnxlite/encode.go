@@ -16,7 +16,7 @@ import (
 // gives back an IR equal to m. A tensor whose Data does not match its DType
 // and Dims, or an attribute kind onnxlite does not represent, is an error.
 func Encode(w io.Writer, m *Model) (err error) {
-	defer recoverEncode(&err)
+	defer recoverTo(&err, "encode", nil)
 	if m == nil {
 		return errors.New("onnxlite: encode: nil model")
 	}
@@ -27,7 +27,7 @@ func Encode(w io.Writer, m *Model) (err error) {
 // EncodeTensor writes t to w as a serialized TensorProto, in the form of
 // the input_*.pb files of the ONNX backend test data.
 func EncodeTensor(w io.Writer, t *Tensor) (err error) {
-	defer recoverEncode(&err)
+	defer recoverTo(&err, "encode tensor", nil)
 	b, err := appendTensor(nil, t)
 	return writeEncoded(w, "encode tensor", b, err)
 }
@@ -42,12 +42,6 @@ func writeEncoded(w io.Writer, what string, b []byte, err error) error {
 		return fmt.Errorf("onnxlite: %s: %w", what, err)
 	}
 	return nil
-}
-
-func recoverEncode(err *error) {
-	if r := recover(); r != nil {
-		*err = fmt.Errorf("onnxlite: encode: internal error: %v", r)
-	}
 }
 
 func appendString(b []byte, num protowire.Number, s string) []byte {

@@ -1,6 +1,9 @@
 package onnxlite
 
-import "errors"
+import (
+	"errors"
+	"fmt"
+)
 
 // Sentinel errors of the codec. Every error returned by Decode, DecodeTensor,
 // Encode and EncodeTensor that stems from one of these conditions wraps the
@@ -29,3 +32,19 @@ var (
 	// ErrLimit is matched by every *LimitError.
 	ErrLimit = errors.New("decode limit exceeded")
 )
+
+// recoverTo turns a panic into the error *err, wrapping kind when it is
+// not nil (the input was malformed or invalid). onnxlite is written not to
+// panic on any input; this is the last line of defence, and the package's
+// one recovery boundary: Decode, DecodeTensor, Encode, EncodeTensor and
+// Infer defer it.
+func recoverTo(err *error, what string, kind error) {
+	r := recover()
+	switch {
+	case r == nil:
+	case kind == nil:
+		*err = fmt.Errorf("onnxlite: %s: internal error: %v", what, r)
+	default:
+		*err = fmt.Errorf("onnxlite: %s: internal error: %v: %w", what, r, kind)
+	}
+}

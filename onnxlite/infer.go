@@ -52,12 +52,9 @@ func (v ValueShape) NumElements() int64 { return prodInt64(v.Shape) }
 // A value with more than DefaultLimits.MaxTensorElements elements or a rank
 // above DefaultLimits.MaxRank is a *LimitError.
 func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
-	defer func() {
-		if r := recover(); r != nil {
-			st, err = nil, fmt.Errorf("onnxlite: shape inference failed on malformed input (%v): %w", r, ErrInvalid)
-		}
-	}()
-	if err := m.Validate(); err != nil {
+	defer recoverTo(&err, "infer", ErrInvalid)
+	order, err := m.validate()
+	if err != nil {
 		return nil, err
 	}
 	g := m.Graph
@@ -103,8 +100,8 @@ func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 		}
 	}
 	opset := m.OpsetVersion("")
-	for i, n := range g.Nodes {
-		if err := s.inferNode(n, i, opset); err != nil {
+	for _, i := range order {
+		if err := s.inferNode(g.Nodes[i], i, opset); err != nil {
 			return nil, err
 		}
 	}

@@ -91,7 +91,7 @@ func (e *LimitError) Is(target error) bool { return target == ErrLimit }
 // elementCount returns the product of dims. It refuses negative dims with
 // ErrMalformed and counts larger than max with a *LimitError, checking for
 // overflow at every step before anything is allocated.
-func elementCount(dims []int64, max int64) (int64, error) {
+func elementCount(dims []int64, limit int64) (int64, error) {
 	for i, d := range dims {
 		if d < 0 {
 			return 0, fmt.Errorf("dims[%d] = %d: negative dimension: %w", i, d, ErrMalformed)
@@ -104,12 +104,12 @@ func elementCount(dims []int64, max int64) (int64, error) {
 	for _, d := range dims {
 		hi, lo := bits.Mul64(n, uint64(d))
 		if hi != 0 || lo > math.MaxInt64 {
-			return 0, &LimitError{Limit: "MaxTensorElements", Value: math.MaxInt64, Max: max}
+			return 0, &LimitError{Limit: "MaxTensorElements", Value: math.MaxInt64, Max: limit}
 		}
 		n = lo
 	}
-	if int64(n) > max {
-		return 0, &LimitError{Limit: "MaxTensorElements", Value: int64(n), Max: max}
+	if int64(n) > limit {
+		return 0, &LimitError{Limit: "MaxTensorElements", Value: int64(n), Max: limit}
 	}
 	return int64(n), nil
 }

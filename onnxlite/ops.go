@@ -14,54 +14,41 @@ const (
 	MaxOpset = 17
 )
 
-// opKind says how an operator is supported.
-type opKind uint8
+// onnxlite supports an operator when Infer can handle its nodes: it has a
+// shape rule for it (shapes.go), or evaluates it (Constant), or folds it away
+// (the fold-only operators below). Which of these operators a program can
+// compute at run time is not onnxlite's to say: nn.Unsupported lists the
+// nodes nn cannot run.
 
-const (
-	runtimeOp  opKind = iota + 1 // compiled by nn
-	foldOnlyOp                   // only when all its inputs are constant
-)
-
-// supportedOps are the default-domain operators apportion handles.
-var supportedOps = map[string]opKind{
-	"Gemm": runtimeOp, "MatMul": runtimeOp,
-	"Add": runtimeOp, "Sub": runtimeOp, "Mul": runtimeOp, "Div": runtimeOp,
-	"Neg": runtimeOp, "Abs": runtimeOp, "Sqrt": runtimeOp, "Exp": runtimeOp,
-	"Log": runtimeOp, "Pow": runtimeOp,
-	"Relu": runtimeOp, "LeakyRelu": runtimeOp, "PRelu": runtimeOp, "Elu": runtimeOp,
-	"Selu": runtimeOp, "Celu": runtimeOp, "Sigmoid": runtimeOp, "HardSigmoid": runtimeOp,
-	"HardSwish": runtimeOp, "Tanh": runtimeOp, "Softplus": runtimeOp, "Softsign": runtimeOp,
-	"Erf": runtimeOp, "Clip": runtimeOp, "Softmax": runtimeOp, "LogSoftmax": runtimeOp,
-	"Conv": runtimeOp, "MaxPool": runtimeOp, "AveragePool": runtimeOp,
-	"GlobalAveragePool": runtimeOp, "GlobalMaxPool": runtimeOp,
-	"BatchNormalization": runtimeOp,
-	"Flatten":            runtimeOp, "Reshape": runtimeOp, "Transpose": runtimeOp,
-	"Squeeze": runtimeOp, "Unsqueeze": runtimeOp, "Concat": runtimeOp, "Pad": runtimeOp,
-	"ReduceMean": runtimeOp, "ReduceSum": runtimeOp,
-	"Identity": runtimeOp, "Dropout": runtimeOp, "Constant": runtimeOp, "Cast": runtimeOp,
-	"Shape": foldOnlyOp, "Gather": foldOnlyOp, "Slice": foldOnlyOp,
-	"ConstantOfShape": foldOnlyOp, "Range": foldOnlyOp,
+// foldOnlyOps are the operators Infer supports only when constant folding
+// removes them.
+var foldOnlyOps = map[string]bool{
+	"Shape": true, "Gather": true, "Slice": true, "ConstantOfShape": true, "Range": true,
 }
 
 // SupportedOps returns the names of the supported default-domain operators,
 // sorted. It includes the fold-only operators (see FoldOnly).
 func SupportedOps() []string {
-	out := make([]string, 0, len(supportedOps))
-	for op := range supportedOps {
+	out := []string{"Constant"}
+	for op := range shapeRules {
+		out = append(out, op)
+	}
+	for op := range foldOnlyOps {
 		out = append(out, op)
 	}
 	sort.Strings(out)
 	return out
 }
 
-// IsSupported reports whether op of domain is supported. Only the default
-// domain ("" or "ai.onnx") has supported operators.
+// IsSupported reports whether op of domain is supported: whether Infer
+// handles its nodes. Only the default domain ("" or "ai.onnx") has supported
+// operators.
 func IsSupported(domain, op string) bool {
 	if !isDefaultDomain(domain) {
 		return false
 	}
-	_, ok := supportedOps[op]
-	return ok
+	_, rule := shapeRules[op]
+	return rule || op == "Constant" || foldOnlyOps[op]
 }
 
 // FoldOnly reports whether the default-domain operator op is supported only
@@ -70,7 +57,7 @@ func IsSupported(domain, op string) bool {
 // (Shape excepted: it folds to the inferred shape of any value), with an
 // error wrapping ErrFoldOnly.
 func FoldOnly(op string) bool {
-	return supportedOps[op] == foldOnlyOp
+	return foldOnlyOps[op]
 }
 
 // ErrFoldOnly is wrapped when Infer meets a fold-only operator (see FoldOnly)

@@ -27,7 +27,9 @@ type UnsupportedOp struct {
 	Node   string // the node's name, or "#i" (its index) when it has none
 }
 
-// UnsupportedError lists every node of a model whose operator is not supported.
+// UnsupportedError lists every node of a model whose operator is not
+// supported: by onnxlite when Validate returns it (see Unsupported), by the
+// package that runs the model when that one does.
 type UnsupportedError struct {
 	Ops []UnsupportedOp
 }
@@ -42,15 +44,15 @@ func (e *UnsupportedError) Error() string {
 		}
 		parts[i] = fmt.Sprintf("%s (node %q)", op, u.Node)
 	}
-	return fmt.Sprintf("onnxlite: %d unsupported operator node(s): %s; supported are the default-domain operators listed by SupportedOps",
-		len(e.Ops), strings.Join(parts, ", "))
+	return fmt.Sprintf("%d unsupported operator node(s): %s", len(e.Ops), strings.Join(parts, ", "))
 }
 
 // Is makes errors.Is(err, ErrUnsupported) true.
 func (e *UnsupportedError) Is(target error) bool { return target == ErrUnsupported }
 
-// Unsupported lists the nodes of m whose operator is not supported, in graph
-// order, without failing. It returns nil for a nil model or graph.
+// Unsupported lists the nodes of m whose operator onnxlite does not support
+// (see IsSupported), in graph order, without failing. It returns nil for a
+// nil model or graph.
 func Unsupported(m *Model) []UnsupportedOp {
 	if m == nil || m.Graph == nil {
 		return nil
@@ -92,13 +94,21 @@ func invalidf(format string, args ...any) error {
 //     input, an initializer or a node;
 //   - the nodes form no cycle (ErrCycle names the nodes on one).
 //
-// Nodes out of topological order are sorted in place (a stable Kahn sort: among
-// nodes ready at the same time, graph order is kept). Structural problems wrap
-// ErrInvalid; after them, the unsupported operators are reported all at once as
-// an *UnsupportedError.
+// Validate does not modify m: nodes out of topological order stay where they
+// are (Infer visits them in order). Structural problems wrap ErrInvalid;
+// after them, the operators onnxlite does not support are reported all at
+// once as an *UnsupportedError.
 func (m *Model) Validate() error {
+	_, err := m.validate()
+	return err
+}
+
+// validate is Validate, and returns the indices of m's nodes in a
+// topological order: a stable Kahn sort, which keeps graph order among
+// nodes ready at the same time.
+func (m *Model) validate() ([]int, error) {
 	if m == nil || m.Graph == nil {
-		return invalidf("expected a model with a graph, got none")
+		return nil, invalidf("expected a model with a graph, got none")
 	}
 	g := m.Graph
 	hasDefault := false
@@ -109,13 +119,13 @@ func (m *Model) Validate() error {
 			d = ""
 			hasDefault = true
 			if o.Version < MinOpset || o.Version > MaxOpset {
-				return fmt.Errorf("onnxlite: default-domain opset version %d: expected %d to %d: %w", o.Version, MinOpset, MaxOpset, ErrUnsupported)
+				return nil, fmt.Errorf("onnxlite: default-domain opset version %d: expected %d to %d: %w", o.Version, MinOpset, MaxOpset, ErrUnsupported)
 			}
 		}
 		imported[d] = true
 	}
 	if !hasDefault {
-		return invalidf("expected an opset_import for the default domain (\"\" or \"ai.onnx\"), got %s", describeOpsets(m.Opsets))
+		return nil, invalidf("expected an opset_import for the default domain (\"\" or \"ai.onnx\"), got %s", describeOpsets(m.Opsets))
 	}
 
 	// producer records what defines each name: "initializer", "input" or a node.
@@ -123,13 +133,13 @@ func (m *Model) Validate() error {
 	inits := map[string]bool{}
 	for i, t := range g.Initializers {
 		if t == nil {
-			return invalidf("initializer #%d is nil", i)
+			return nil, invalidf("initializer #%d is nil", i)
 		}
 		if t.Name == "" {
-			return invalidf("initializer #%d: expected a name, got an empty one", i)
+			return nil, invalidf("initializer #%d: expected a name, got an empty one", i)
 		}
 		if inits[t.Name] {
-			return invalidf("initializer %q: name defined twice", t.Name)
+			return nil, invalidf("initializer %q: name defined twice", t.Name)
 		}
 		inits[t.Name] = true
 		producer[t.Name] = "initializer"
@@ -137,10 +147,10 @@ func (m *Model) Validate() error {
 	inputs := map[string]bool{}
 	for i, v := range g.Inputs {
 		if v == nil || v.Name == "" {
-			return invalidf("graph input #%d: expected a name, got none", i)
+			return nil, invalidf("graph input #%d: expected a name, got none", i)
 		}
 		if inputs[v.Name] {
-			return invalidf("graph input %q: name listed twice", v.Name)
+			return nil, invalidf("graph input %q: name listed twice", v.Name)
 		}
 		inputs[v.Name] = true
 		if !inits[v.Name] {
@@ -149,10 +159,10 @@ func (m *Model) Validate() error {
 	}
 	for i, n := range g.Nodes {
 		if n == nil {
-			return invalidf("node #%d is nil", i)
+			return nil, invalidf("node #%d is nil", i)
 		}
 		if !isDefaultDomain(n.Domain) && !imported[n.Domain] {
-			return invalidf("node %q (%s): domain %q is not imported: expected it in opset_import, got %s",
+			return nil, invalidf("node %q (%s): domain %q is not imported: expected it in opset_import, got %s",
 				nodeName(n, i), n.OpType, n.Domain, describeOpsets(m.Opsets))
 		}
 		for _, o := range n.Outputs {
@@ -160,7 +170,7 @@ func (m *Model) Validate() error {
 				continue
 			}
 			if p, ok := producer[o]; ok {
-				return invalidf("node %q (%s): output %q is already defined by %s", nodeName(n, i), n.OpType, o, p)
+				return nil, invalidf("node %q (%s): output %q is already defined by %s", nodeName(n, i), n.OpType, o, p)
 			}
 			producer[o] = fmt.Sprintf("node %q (%s)", nodeName(n, i), n.OpType)
 		}
@@ -171,26 +181,27 @@ func (m *Model) Validate() error {
 				continue
 			}
 			if _, ok := producer[in]; !ok {
-				return invalidf("node %q (%s): input %q is undefined: expected a graph input, an initializer or a node output of that name",
+				return nil, invalidf("node %q (%s): input %q is undefined: expected a graph input, an initializer or a node output of that name",
 					nodeName(n, i), n.OpType, in)
 			}
 		}
 	}
 	for i, v := range g.Outputs {
 		if v == nil || v.Name == "" {
-			return invalidf("graph output #%d: expected a name, got none", i)
+			return nil, invalidf("graph output #%d: expected a name, got none", i)
 		}
 		if _, ok := producer[v.Name]; !ok {
-			return invalidf("graph output %q is not produced by any node, input or initializer", v.Name)
+			return nil, invalidf("graph output %q is not produced by any node, input or initializer", v.Name)
 		}
 	}
-	if err := sortNodes(g); err != nil {
-		return err
+	order, err := topoOrder(g)
+	if err != nil {
+		return nil, err
 	}
 	if u := Unsupported(m); len(u) > 0 {
-		return &UnsupportedError{Ops: u}
+		return nil, fmt.Errorf("onnxlite: %w", &UnsupportedError{Ops: u})
 	}
-	return nil
+	return order, nil
 }
 
 func describeOpsets(ops []OpsetImport) string {
@@ -204,10 +215,11 @@ func describeOpsets(ops []OpsetImport) string {
 	return strings.Join(parts, ", ")
 }
 
-// sortNodes orders g.Nodes topologically with a stable Kahn sort (Kahn 1962,
-// "Topological sorting of large networks"): repeatedly take the first node in
-// graph order all of whose inputs are available. Names must be checked first.
-func sortNodes(g *Graph) error {
+// topoOrder returns the indices of g.Nodes in topological order, from a
+// stable Kahn sort (Kahn 1962, "Topological sorting of large networks"):
+// repeatedly take the first node in graph order all of whose inputs are
+// available. Names must be checked first.
+func topoOrder(g *Graph) ([]int, error) {
 	n := len(g.Nodes)
 	producedBy := map[string]int{}
 	for i, nd := range g.Nodes {
@@ -242,12 +254,8 @@ func sortNodes(g *Graph) error {
 	}
 	order := make([]int, 0, n)
 	done := make([]bool, n)
-	sorted := true
 	for ready.Len() > 0 {
 		i := heap.Pop(ready).(int)
-		if len(order) > 0 && i < order[len(order)-1] {
-			sorted = false
-		}
 		done[i] = true
 		order = append(order, i)
 		for _, u := range users[i] {
@@ -258,16 +266,9 @@ func sortNodes(g *Graph) error {
 		}
 	}
 	if len(order) < n {
-		return cycleError(g, done, producedBy)
+		return nil, cycleError(g, done, producedBy)
 	}
-	if !sorted {
-		nodes := make([]*Node, n)
-		for k, i := range order {
-			nodes[k] = g.Nodes[i]
-		}
-		copy(g.Nodes, nodes)
-	}
-	return nil
+	return order, nil
 }
 
 // cycleError walks back from an unsorted node through unsorted producers

@@ -151,20 +151,26 @@ func TestValidateOmittedOptionalInput(t *testing.T) {
 	require.NoError(t, model(13, g).Validate())
 }
 
-func TestValidateSortsNodes(t *testing.T) {
+func TestValidateLeavesNodesInferSortsThem(t *testing.T) {
 	g := chain()
 	a, b, c := g.Nodes[0], g.Nodes[1], g.Nodes[2]
 	// A second independent branch d keeps its place relative to a (stable).
 	d := node("d", "Relu", []string{"x"}, []string{"u"})
 	g.Outputs = append(g.Outputs, output("u"))
 	g.Nodes = []*onnxlite.Node{c, d, b, a}
-	require.NoError(t, model(13, g).Validate())
-	assert.Equal(t, []*onnxlite.Node{d, a, b, c}, g.Nodes)
+	m := model(13, g)
+	require.NoError(t, m.Validate())
+	assert.Equal(t, []*onnxlite.Node{c, d, b, a}, g.Nodes, "Validate does not modify the model")
+	st, err := onnxlite.Infer(m, nil)
+	require.NoError(t, err)
+	assert.Equal(t, []*onnxlite.Node{d, a, b, c}, st.Nodes)
+	assert.Equal(t, []*onnxlite.Node{c, d, b, a}, g.Nodes, "Infer does not modify the model")
 
 	// A sorted graph is left as it is.
 	g.Nodes = []*onnxlite.Node{a, d, b, c}
-	require.NoError(t, model(13, g).Validate())
-	assert.Equal(t, []*onnxlite.Node{a, d, b, c}, g.Nodes)
+	st, err = onnxlite.Infer(m, nil)
+	require.NoError(t, err)
+	assert.Equal(t, []*onnxlite.Node{a, d, b, c}, st.Nodes)
 }
 
 func TestValidateCycle(t *testing.T) {

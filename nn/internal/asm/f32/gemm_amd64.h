@@ -1,0 +1,38 @@
+// Register blocks shared by the 6×16 float32 kernels (gemm_amd64.s,
+// conv_amd64.s): the tile of C lives in Y0..Y11 (row r in Y(2r), Y(2r+1)),
+// Y12/Y13 hold a row of B, Y14/Y15 broadcast elements of A.
+
+// ZERO12 clears the 6×16 accumulator tile.
+#define ZERO12 \
+	VXORPS Y0, Y0, Y0; VXORPS Y1, Y1, Y1; VXORPS Y2, Y2, Y2; VXORPS Y3, Y3, Y3; \
+	VXORPS Y4, Y4, Y4; VXORPS Y5, Y5, Y5; VXORPS Y6, Y6, Y6; VXORPS Y7, Y7, Y7; \
+	VXORPS Y8, Y8, Y8; VXORPS Y9, Y9, Y9; VXORPS Y10, Y10, Y10; VXORPS Y11, Y11, Y11
+
+// FMA6x16 adds the outer product of one 16-float row of B (b0, b1: its two
+// halves) and one 6-float column of A (a0..a5) to the tile, one fused
+// multiply-add per element, rows in order.
+#define FMA6x16(b0, b1, a0, a1, a2, a3, a4, a5) \
+	VMOVUPS b0, Y12; VMOVUPS b1, Y13; \
+	VBROADCASTSS a0, Y14; VFMADD231PS Y12, Y14, Y0; VFMADD231PS Y13, Y14, Y1; \
+	VBROADCASTSS a1, Y15; VFMADD231PS Y12, Y15, Y2; VFMADD231PS Y13, Y15, Y3; \
+	VBROADCASTSS a2, Y14; VFMADD231PS Y12, Y14, Y4; VFMADD231PS Y13, Y14, Y5; \
+	VBROADCASTSS a3, Y15; VFMADD231PS Y12, Y15, Y6; VFMADD231PS Y13, Y15, Y7; \
+	VBROADCASTSS a4, Y14; VFMADD231PS Y12, Y14, Y8; VFMADD231PS Y13, Y14, Y9; \
+	VBROADCASTSS a5, Y15; VFMADD231PS Y12, Y15, Y10; VFMADD231PS Y13, Y15, Y11
+
+// MUL12 scales the tile by the broadcast scalar in s.
+#define MUL12(s) \
+	VMULPS s, Y0, Y0; VMULPS s, Y1, Y1; VMULPS s, Y2, Y2; VMULPS s, Y3, Y3; \
+	VMULPS s, Y4, Y4; VMULPS s, Y5, Y5; VMULPS s, Y6, Y6; VMULPS s, Y7, Y7; \
+	VMULPS s, Y8, Y8; VMULPS s, Y9, Y9; VMULPS s, Y10, Y10; VMULPS s, Y11, Y11
+
+// STORE2 stores one tile row (r0, r1) at DX.
+#define STORE2(r0, r1) \
+	VMOVUPS r0, (DX); VMOVUPS r1, 32(DX)
+
+// ACC2 stores one tile row plus beta (broadcast in Y15) times the row at DX:
+// DX[j] = fma(beta, DX[j], r[j]).
+#define ACC2(r0, r1) \
+	VMOVUPS (DX), Y12; VMOVUPS 32(DX), Y13; \
+	VFMADD231PS Y15, Y12, r0; VFMADD231PS Y15, Y13, r1; \
+	VMOVUPS r0, (DX); VMOVUPS r1, 32(DX)

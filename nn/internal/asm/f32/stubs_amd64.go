@@ -1,0 +1,309 @@
+//go:build amd64 && !purego
+
+package f32
+
+import "golang.org/x/sys/cpu"
+
+// useAsm reports whether the CPU runs the assembly kernels, which need AVX2
+// and FMA. It is the only place the package reads CPU features.
+var useAsm = cpu.X86.HasAVX2 && cpu.X86.HasFMA
+
+// Asm reports whether the kernels run in assembly: on amd64 with AVX2 and
+// FMA.
+func Asm() bool { return useAsm }
+
+// Gemm6x16 stores the 6×16 tile c[r·ldc+j] = alpha·Σ_p a[6p+r]·b[16p+j] +
+// beta·c[r·ldc+j] from kc ≥ 1 packed 6-float columns of A and 16-float rows
+// of B, each sum one chain of fused multiply-adds in the order of p; c is
+// not read when beta is 0.
+func Gemm6x16(kc int, a, b, c *float32, ldc int, alpha, beta float32) {
+	if useAsm {
+		gemm6x16Asm(kc, a, b, c, ldc, alpha, beta)
+		return
+	}
+	gemm6x16(kc, a, b, c, ldc, alpha, beta)
+}
+
+// Gemm6x16Strided is Gemm6x16 with element (r, p) of A read in place at
+// a[r·rs + p·ps]; it stores the bits Gemm6x16 stores for the packed strip.
+func Gemm6x16Strided(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32) {
+	if useAsm {
+		gemm6x16StridedAsm(kc, a, rs, ps, b, c, ldc, alpha, beta)
+		return
+	}
+	gemm6x16Strided(kc, a, rs, ps, b, c, ldc, alpha, beta)
+}
+
+// Gemm6x16Edge is Gemm6x16Strided for the bottom edge of C: it reads and
+// stores only rows r < mr (1 ≤ mr ≤ 6) of c, with the bits of a full tile,
+// and reads all six rows of A.
+func Gemm6x16Edge(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32, mr int) {
+	if useAsm {
+		gemm6x16EdgeAsm(kc, a, rs, ps, b, c, ldc, alpha, beta, mr)
+		return
+	}
+	gemm6x16Edge(kc, a, rs, ps, b, c, ldc, alpha, beta, mr)
+}
+
+// Gemm1x32 stores the row c[j] = alpha·Σ_p a[p·inca]·b[p·ldb+j] +
+// beta·c[j], j < 32, reading A and B in place, each sum the chain of fused
+// multiply-adds Gemm6x16 forms; c is not read when beta is 0.
+func Gemm1x32(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alpha, beta float32) {
+	if useAsm {
+		gemm1x32Asm(kc, a, inca, b, ldb, c, alpha, beta)
+		return
+	}
+	gemm1x32(kc, a, inca, b, ldb, c, alpha, beta)
+}
+
+// Conv6x16 is Gemm6x16 with row p of B read in place at b[off[p]] and an
+// epilogue for a convolution: it stores c[r·ldc+j] = T[r][j] + bias[r] with
+// one rounding (the bits of Gemm6x16 with beta 1 on a tile filled with the
+// bias), or T[r][j] when bias is nil; c is never read.
+func Conv6x16(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *float32) {
+	if useAsm {
+		conv6x16Asm(kc, a, b, off, c, ldc, bias)
+		return
+	}
+	conv6x16(kc, a, b, off, c, ldc, bias)
+}
+
+// Transpose8x8 stores the transpose of the 8×8 block src[r·lds+c] at
+// dst[c·ldd+r].
+func Transpose8x8(src *float32, lds int, dst *float32, ldd int) {
+	if useAsm {
+		transpose8x8Asm(src, lds, dst, ldd)
+		return
+	}
+	transpose8x8(src, lds, dst, ldd)
+}
+
+// CopyRows16 copies rows ≥ 1 runs of 16 floats from src[r·lds] to dst[16r].
+func CopyRows16(src *float32, lds int, dst *float32, rows int) {
+	if useAsm {
+		copyRows16Asm(src, lds, dst, rows)
+		return
+	}
+	copyRows16(src, lds, dst, rows)
+}
+
+// CopyRows copies rows runs of w floats from src (rows lds apart) to dst
+// (rows ldd apart).
+func CopyRows(dst *float32, ldd int, src *float32, lds int, rows, w int) {
+	if useAsm {
+		copyRowsAsm(dst, ldd, src, lds, rows, w)
+		return
+	}
+	copyRows(dst, ldd, src, lds, rows, w)
+}
+
+// Relu stores y[i] = max(x[i], 0) with Go's max (NaN stays NaN, −0 gives
+// +0) for i < len(x); y must be at least as long as x.
+func Relu(y, x []float32) {
+	y = y[:len(x)]
+	n := 0
+	if useAsm {
+		if n = len(x) &^ 7; n > 0 {
+			reluAsm(&y[0], &x[0], n)
+		}
+	}
+	relu(y[n:], x[n:])
+}
+
+// ReluGrad stores d[i] = dy[i] where x[i] > 0 and +0 elsewhere (NaN
+// included) for i < len(x); d and dy must be at least as long as x.
+func ReluGrad(d, x, dy []float32) {
+	d, dy = d[:len(x)], dy[:len(x)]
+	n := 0
+	if useAsm {
+		if n = len(x) &^ 7; n > 0 {
+			reluGradAsm(&d[0], &x[0], &dy[0], n)
+		}
+	}
+	reluGrad(d[n:], x[n:], dy[n:])
+}
+
+// MaxPool2x2 stores, for each of planes planes of h×w in x, the 2×2
+// stride-2 max pool of its top-left 2·oh×2·ow corner in the plane of oh×ow
+// in y: the first NaN of each window if it has one, else its first maximal
+// element in row-major order.
+func MaxPool2x2(x, y []float32, planes, h, w, oh, ow int) {
+	if useAsm && maxPoolFits(len(x), len(y), planes, h, w, oh, ow) && !maxPool2x2Asm(&x[0], &y[0], planes, h, w, oh, ow) {
+		return
+	}
+	maxPool2x2(x, y, planes, h, w, oh, ow)
+}
+
+// MaxPool2x2Grad stores the gradient of MaxPool2x2 into the covered part
+// of dx (rows < 2·oh, columns < 2·ow of each plane, laid out like x):
+// 0 + dy at the window's element MaxPool2x2 picks, +0 at the others.
+func MaxPool2x2Grad(x, dy, dx []float32, planes, h, w, oh, ow int) {
+	if useAsm && maxPoolFits(len(x), len(dy), planes, h, w, oh, ow) && len(dx) >= len(x) && !maxPool2x2GradAsm(&x[0], &dy[0], &dx[0], planes, h, w, oh, ow) {
+		return
+	}
+	maxPool2x2Grad(x, dy, dx, planes, h, w, oh, ow)
+}
+
+// maxPoolFits checks the conditions of the pooling assembly, so that it
+// never reads or writes outside the slices.
+func maxPoolFits(nx, ny, planes, h, w, oh, ow int) bool {
+	return planes >= 1 && oh >= 1 && ow >= 4 && 2*ow <= w && 2*oh <= h &&
+		nx >= planes*h*w && ny >= planes*oh*ow
+}
+
+// gemm6x16Asm is
+//
+//	for r := 0; r < 6; r++ {
+//		for j := 0; j < 16; j++ {
+//			var t float32
+//			for p := 0; p < kc; p++ {
+//				t = fma(a[6*p+r], b[16*p+j], t)
+//			}
+//			if alpha != 1 {
+//				t *= alpha
+//			}
+//			if beta != 0 {
+//				t = fma(beta, c[r*ldc+j], t)
+//			}
+//			c[r*ldc+j] = t
+//		}
+//	}
+//
+//go:noescape
+func gemm6x16Asm(kc int, a, b, c *float32, ldc int, alpha, beta float32)
+
+// gemm6x16StridedAsm is gemm6x16Asm with a[r*rs+p*ps] in place of a[6*p+r].
+//
+//go:noescape
+func gemm6x16StridedAsm(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32)
+
+// gemm6x16EdgeAsm is gemm6x16StridedAsm with r < mr in place of r < 6.
+//
+//go:noescape
+func gemm6x16EdgeAsm(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32, mr int)
+
+// gemm1x32Asm is
+//
+//	for j := 0; j < 32; j++ {
+//		var t float32
+//		for p := 0; p < kc; p++ {
+//			t = fma(a[p*inca], b[p*ldb+j], t)
+//		}
+//		t *= alpha
+//		if beta != 0 {
+//			t = fma(beta, c[j], t)
+//		}
+//		c[j] = t
+//	}
+//
+//go:noescape
+func gemm1x32Asm(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alpha, beta float32)
+
+// conv6x16Asm is
+//
+//	for r := 0; r < 6; r++ {
+//		for j := 0; j < 16; j++ {
+//			var t float32
+//			for p := 0; p < kc; p++ {
+//				t = fma(a[6*p+r], b[off[p]+j], t)
+//			}
+//			if bias != nil {
+//				t += bias[r]
+//			}
+//			c[r*ldc+j] = t
+//		}
+//	}
+//
+//go:noescape
+func conv6x16Asm(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *float32)
+
+// transpose8x8Asm is
+//
+//	for r := 0; r < 8; r++ {
+//		for c := 0; c < 8; c++ {
+//			dst[c*ldd+r] = src[r*lds+c]
+//		}
+//	}
+//
+//go:noescape
+func transpose8x8Asm(src *float32, lds int, dst *float32, ldd int)
+
+// copyRows16Asm is
+//
+//	for r := 0; r < rows; r++ {
+//		copy(dst[16*r:16*r+16], src[r*lds:r*lds+16])
+//	}
+//
+//go:noescape
+func copyRows16Asm(src *float32, lds int, dst *float32, rows int)
+
+// copyRowsAsm is
+//
+//	for r := 0; r < rows; r++ {
+//		copy(dst[r*ldd:r*ldd+w], src[r*lds:r*lds+w])
+//	}
+//
+//go:noescape
+func copyRowsAsm(dst *float32, ldd int, src *float32, lds int, rows, w int)
+
+// reluAsm is, for n a multiple of 8,
+//
+//	for i := 0; i < n; i++ {
+//		y[i] = max(x[i], 0)
+//	}
+//
+//go:noescape
+func reluAsm(y, x *float32, n int)
+
+// reluGradAsm is, for n a multiple of 8,
+//
+//	for i := 0; i < n; i++ {
+//		if x[i] > 0 {
+//			d[i] = dy[i]
+//		} else {
+//			d[i] = 0
+//		}
+//	}
+//
+//go:noescape
+func reluGradAsm(d, x, dy *float32, n int)
+
+// maxPool2x2Asm is, when x holds no NaN and maxPoolFits holds,
+//
+//	for pl := 0; pl < planes; pl++ {
+//		for i := 0; i < oh; i++ {
+//			for j := 0; j < ow; j++ {
+//				q := pl*h*w + 2*i*w + 2*j
+//				win := [4]float32{x[q], x[q+1], x[q+w], x[q+w+1]}
+//				y[(pl*oh+i)*ow+j] = win[firstMax4(win[0], win[1], win[2], win[3])]
+//			}
+//		}
+//	}
+//
+// and reports false. When a window holds a NaN it reports true, with y
+// incomplete.
+//
+//go:noescape
+func maxPool2x2Asm(x, y *float32, planes, h, w, oh, ow int) bool
+
+// maxPool2x2GradAsm is, when x holds no NaN and maxPoolFits holds,
+//
+//	for pl := 0; pl < planes; pl++ {
+//		for i := 0; i < oh; i++ {
+//			for j := 0; j < ow; j++ {
+//				q := pl*h*w + 2*i*w + 2*j
+//				win := [4]int{q, q + 1, q + w, q + w + 1}
+//				k := firstMax4(x[q], x[q+1], x[q+w], x[q+w+1])
+//				for _, e := range win {
+//					dx[e] = 0
+//				}
+//				dx[win[k]] = 0 + dy[(pl*oh+i)*ow+j]
+//			}
+//		}
+//	}
+//
+// and reports false. When a window holds a NaN it reports true, with dx
+// incomplete.
+//
+//go:noescape
+func maxPool2x2GradAsm(x, dy, dx *float32, planes, h, w, oh, ow int) bool

@@ -1,0 +1,80 @@
+//go:build !amd64 || purego
+
+package f32
+
+// useAsm is false: this build has no assembly, and every kernel runs its
+// loop (loops.go).
+const useAsm = false
+
+// Asm reports whether the kernels run in assembly: never in this build.
+func Asm() bool { return useAsm }
+
+// Gemm6x16 stores the 6×16 tile c[r·ldc+j] = alpha·Σ_p a[6p+r]·b[16p+j] +
+// beta·c[r·ldc+j] from kc ≥ 1 packed 6-float columns of A and 16-float rows
+// of B, each sum one chain of fused multiply-adds in the order of p; c is
+// not read when beta is 0.
+func Gemm6x16(kc int, a, b, c *float32, ldc int, alpha, beta float32) {
+	gemm6x16(kc, a, b, c, ldc, alpha, beta)
+}
+
+// Gemm6x16Strided is Gemm6x16 with element (r, p) of A read in place at
+// a[r·rs + p·ps]; it stores the bits Gemm6x16 stores for the packed strip.
+func Gemm6x16Strided(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32) {
+	gemm6x16Strided(kc, a, rs, ps, b, c, ldc, alpha, beta)
+}
+
+// Gemm6x16Edge is Gemm6x16Strided for the bottom edge of C: it reads and
+// stores only rows r < mr (1 ≤ mr ≤ 6) of c, with the bits of a full tile,
+// and reads all six rows of A.
+func Gemm6x16Edge(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32, mr int) {
+	gemm6x16Edge(kc, a, rs, ps, b, c, ldc, alpha, beta, mr)
+}
+
+// Gemm1x32 stores the row c[j] = alpha·Σ_p a[p·inca]·b[p·ldb+j] +
+// beta·c[j], j < 32, reading A and B in place, each sum the chain of fused
+// multiply-adds Gemm6x16 forms; c is not read when beta is 0.
+func Gemm1x32(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alpha, beta float32) {
+	gemm1x32(kc, a, inca, b, ldb, c, alpha, beta)
+}
+
+// Conv6x16 is Gemm6x16 with row p of B read in place at b[off[p]] and an
+// epilogue for a convolution: it stores c[r·ldc+j] = T[r][j] + bias[r] with
+// one rounding (the bits of Gemm6x16 with beta 1 on a tile filled with the
+// bias), or T[r][j] when bias is nil; c is never read.
+func Conv6x16(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *float32) {
+	conv6x16(kc, a, b, off, c, ldc, bias)
+}
+
+// Transpose8x8 stores the transpose of the 8×8 block src[r·lds+c] at
+// dst[c·ldd+r].
+func Transpose8x8(src *float32, lds int, dst *float32, ldd int) { transpose8x8(src, lds, dst, ldd) }
+
+// CopyRows16 copies rows ≥ 1 runs of 16 floats from src[r·lds] to dst[16r].
+func CopyRows16(src *float32, lds int, dst *float32, rows int) { copyRows16(src, lds, dst, rows) }
+
+// CopyRows copies rows runs of w floats from src (rows lds apart) to dst
+// (rows ldd apart).
+func CopyRows(dst *float32, ldd int, src *float32, lds int, rows, w int) {
+	copyRows(dst, ldd, src, lds, rows, w)
+}
+
+// Relu stores y[i] = max(x[i], 0) with Go's max (NaN stays NaN, −0 gives
+// +0) for i < len(x); y must be at least as long as x.
+func Relu(y, x []float32) { relu(y, x) }
+
+// ReluGrad stores d[i] = dy[i] where x[i] > 0 and +0 elsewhere (NaN
+// included) for i < len(x); d and dy must be at least as long as x.
+func ReluGrad(d, x, dy []float32) { reluGrad(d, x, dy) }
+
+// MaxPool2x2 stores, for each of planes planes of h×w in x, the 2×2
+// stride-2 max pool of its top-left 2·oh×2·ow corner in the plane of oh×ow
+// in y: the first NaN of each window if it has one, else its first maximal
+// element in row-major order.
+func MaxPool2x2(x, y []float32, planes, h, w, oh, ow int) { maxPool2x2(x, y, planes, h, w, oh, ow) }
+
+// MaxPool2x2Grad stores the gradient of MaxPool2x2 into the covered part
+// of dx (rows < 2·oh, columns < 2·ow of each plane, laid out like x):
+// 0 + dy at the window's element MaxPool2x2 picks, +0 at the others.
+func MaxPool2x2Grad(x, dy, dx []float32, planes, h, w, oh, ow int) {
+	maxPool2x2Grad(x, dy, dx, planes, h, w, oh, ow)
+}

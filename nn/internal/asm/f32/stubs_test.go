@@ -1,0 +1,483 @@
+package f32
+
+import (
+	"fmt"
+	"math"
+	"math/big"
+	"math/rand/v2"
+	"testing"
+
+	"github.com/stretchr/testify/require"
+
+	"github.com/apportion/apportion/internal/cpupeak"
+)
+
+// The kernels run their assembly here when useAsm is set; every test below
+// checks them against their loops (loops.go) bit for bit, and the loops
+// against references outside this package.
+
+func randFloats(rng *rand.Rand, n int) []float32 {
+	s := make([]float32, n)
+	for i := range s {
+		s[i] = float32(rng.Float64()*2 - 1)
+	}
+	return s
+}
+
+func requireBits(t *testing.T, want, got []float32, format string, args ...any) {
+	t.Helper()
+	for i := range want {
+		if math.Float32bits(want[i]) != math.Float32bits(got[i]) {
+			t.Fatalf("%s: element %d: got %v (%#x), want %v (%#x)", fmt.Sprintf(format, args...), i,
+				got[i], math.Float32bits(got[i]), want[i], math.Float32bits(want[i]))
+		}
+	}
+}
+
+// exactFMA is x·y + z evaluated exactly with math/big and rounded once to
+// the nearest float32, ties to even: the fusedMultiplyAdd of IEEE
+// 754-2008, §5.4.1.
+func exactFMA(x, y, z float32) float32 {
+	p := new(big.Float).SetPrec(1000).SetFloat64(float64(x))
+	p.Mul(p, new(big.Float).SetFloat64(float64(y)))
+	p.Add(p, new(big.Float).SetFloat64(float64(z)))
+	f, _ := p.Float32()
+	return f
+}
+
+func TestFMAMatchesExactRounding(t *testing.T) {
+	// fma against the exact product-sum rounded once (math/big), over
+	// random operands whose exponents spread wide enough that the sum's
+	// rounding falls anywhere from the top bit of the product to far
+	// below it, including the ties that a plain float64 sum rounds twice.
+	rng := rand.New(rand.NewPCG(1, 2))
+	draw := func() float32 {
+		m := float32(rng.Float64()*2 - 1)
+		return float32(math.Ldexp(float64(m), rng.IntN(60)-30))
+	}
+	for i := 0; i < 200000; i++ {
+		x, y, z := draw(), draw(), draw()
+		if i%3 == 0 {
+			// z cancels most of x·y: the sum keeps the product's low bits.
+			z = -float32(float64(x) * float64(y))
+		}
+		want, got := exactFMA(x, y, z), fma(x, y, z)
+		if math.Float32bits(want) != math.Float32bits(got) {
+			t.Fatalf("fma(%g, %g, %g) = %g (%#x), exact rounding %g (%#x)", x, y, z, got, math.Float32bits(got), want, math.Float32bits(want))
+		}
+	}
+	// (1 + 2⁻¹²)² + 2⁻⁸⁰ lies just above the midpoint 1 + 2⁻¹¹ + 2⁻²⁴ of two
+	// float32 neighbours: rounded to float64 first, it lands on the
+	// midpoint, and ties to even would then round it down.
+	x := float32(1 + 0x1p-12)
+	require.Equal(t, float32(1+0x1p-11+0x1p-23), fma(x, x, 0x1p-80), "no double rounding")
+	require.Equal(t, float32(1+0x1p-11), float32(float64(x)*float64(x)+0x1p-80), "the double rounding fma avoids")
+	require.True(t, math.IsInf(float64(fma(float32(math.Inf(1)), 2, 1)), 1))
+	require.True(t, math.IsNaN(float64(fma(float32(math.Inf(1)), 0, 1))), "∞·0 is NaN (IEEE 754 §7.2)")
+	require.Equal(t, uint32(0), math.Float32bits(fma(float32(math.Copysign(0, -1)), 1, 0)), "−0·1 + 0 is +0 in round to nearest (IEEE 754 §6.3)")
+}
+
+// tileCase is one set of operands for the 6×16 and 1×32 kernels.
+type tileCase struct {
+	kc          int
+	alpha, beta float32
+}
+
+func tileCases() []tileCase {
+	var cs []tileCase
+	for _, kc := range []int{1, 2, 3, 4, 5, 27, 256, 300} {
+		for _, alpha := range []float32{1, 0.75} {
+			for _, beta := range []float32{0, 1, -0.5} {
+				cs = append(cs, tileCase{kc, alpha, beta})
+			}
+		}
+	}
+	return cs
+}
+
+func TestGemmKernelsMatchLoops(t *testing.T) {
+	t.Logf("assembly: %t", useAsm)
+	rng := rand.New(rand.NewPCG(3, 4))
+	for _, tc := range tileCases() {
+		kc := tc.kc
+		name := fmt.Sprintf("kc=%d alpha=%v beta=%v", kc, tc.alpha, tc.beta)
+		a, b := randFloats(rng, 6*kc), randFloats(rng, 16*kc)
+		const ldc = 21
+		c0 := randFloats(rng, 6*ldc)
+		got, want := append([]float32(nil), c0...), append([]float32(nil), c0...)
+		Gemm6x16(kc, &a[0], &b[0], &got[0], ldc, tc.alpha, tc.beta)
+		gemm6x16(kc, &a[0], &b[0], &want[0], ldc, tc.alpha, tc.beta)
+		requireBits(t, want, got, "Gemm6x16 %s", name)
+
+		// A strip read in place, rows kc+3 apart, and its transpose.
+		lda := kc + 3
+		as := randFloats(rng, 6*lda)
+		got, want = append([]float32(nil), c0...), append([]float32(nil), c0...)
+		Gemm6x16Strided(kc, &as[0], lda, 1, &b[0], &got[0], ldc, tc.alpha, tc.beta)
+		gemm6x16Strided(kc, &as[0], lda, 1, &b[0], &want[0], ldc, tc.alpha, tc.beta)
+		requireBits(t, want, got, "Gemm6x16Strided %s", name)
+		at := randFloats(rng, kc*8)
+		got, want = append([]float32(nil), c0...), append([]float32(nil), c0...)
+		Gemm6x16Strided(kc, &at[0], 1, 8, &b[0], &got[0], ldc, tc.alpha, tc.beta)
+		gemm6x16Strided(kc, &at[0], 1, 8, &b[0], &want[0], ldc, tc.alpha, tc.beta)
+		requireBits(t, want, got, "Gemm6x16Strided transposed %s", name)
+
+		for mr := 1; mr <= 6; mr++ {
+			got, want = append([]float32(nil), c0...), append([]float32(nil), c0...)
+			Gemm6x16Edge(kc, &a[0], 1, 6, &b[0], &got[0], ldc, tc.alpha, tc.beta, mr)
+			gemm6x16Edge(kc, &a[0], 1, 6, &b[0], &want[0], ldc, tc.alpha, tc.beta, mr)
+			requireBits(t, want, got, "Gemm6x16Edge mr=%d %s", mr, name)
+		}
+
+		ldb := 32 + 5
+		ar, br := randFloats(rng, 2*kc), randFloats(rng, kc*ldb)
+		c1 := randFloats(rng, 32)
+		got, want = append([]float32(nil), c1...), append([]float32(nil), c1...)
+		Gemm1x32(kc, &ar[0], 2, &br[0], ldb, &got[0], tc.alpha, tc.beta)
+		gemm1x32(kc, &ar[0], 2, &br[0], ldb, &want[0], tc.alpha, tc.beta)
+		requireBits(t, want, got, "Gemm1x32 %s", name)
+	}
+}
+
+func TestGemmLoopsMatchExactChains(t *testing.T) {
+	// The loops against the definition in their doc comments evaluated
+	// with exactFMA: one chain of fused multiply-adds per element in the
+	// order of p, then alpha·T (rounded) and a fused multiply-add with
+	// beta·c.
+	rng := rand.New(rand.NewPCG(5, 6))
+	for _, tc := range tileCases() {
+		kc := tc.kc
+		a, b := randFloats(rng, 6*kc), randFloats(rng, 16*kc)
+		const ldc = 16
+		c0 := randFloats(rng, 6*ldc)
+		got := append([]float32(nil), c0...)
+		gemm6x16(kc, &a[0], &b[0], &got[0], ldc, tc.alpha, tc.beta)
+		want := make([]float32, len(c0))
+		for r := 0; r < 6; r++ {
+			for j := 0; j < 16; j++ {
+				var s float32
+				for p := 0; p < kc; p++ {
+					s = exactFMA(a[6*p+r], b[16*p+j], s)
+				}
+				if tc.alpha != 1 {
+					s *= tc.alpha
+				}
+				if tc.beta != 0 {
+					s = exactFMA(tc.beta, c0[r*ldc+j], s)
+				}
+				want[r*ldc+j] = s
+			}
+		}
+		requireBits(t, want, got, "gemm6x16 kc=%d alpha=%v beta=%v", kc, tc.alpha, tc.beta)
+	}
+}
+
+func TestGemm6x16StridedBits(t *testing.T) {
+	// Gemm6x16Strided on A in place and Gemm6x16 on the packed strip perform
+	// the same fused multiply-add chains, so they store equal IEEE 754 bit
+	// patterns (IEEE 754-2008 §5.4.1), for both layouts of A, every beta
+	// path and k remainders of the four-way unrolled loop.
+	rng := rand.New(rand.NewPCG(13, 14))
+	for _, kc := range []int{1, 2, 3, 4, 5, 27, 256} {
+		for _, tA := range []bool{false, true} {
+			for _, beta := range []float32{0, 1, -0.5} {
+				lda := kc + 3
+				rows, ps, rs := 6, 1, lda
+				if tA {
+					lda, rows, ps, rs = 6+2, kc, 6+2, 1
+				}
+				a := randFloats(rng, rows*lda)
+				bp := randFloats(rng, 16*kc)
+				packed := make([]float32, 6*kc)
+				for p := 0; p < kc; p++ {
+					for r := 0; r < 6; r++ {
+						packed[6*p+r] = a[r*rs+p*ps]
+					}
+				}
+				want := make([]float32, 6*16)
+				for i := range want {
+					want[i] = float32(rng.Float64())
+				}
+				got := append([]float32(nil), want...)
+				Gemm6x16(kc, &packed[0], &bp[0], &want[0], 16, 0.75, beta)
+				Gemm6x16Strided(kc, &a[0], rs, ps, &bp[0], &got[0], 16, 0.75, beta)
+				requireBits(t, want, got, "kc=%d tA=%v beta=%v", kc, tA, beta)
+			}
+		}
+	}
+}
+
+func TestGemm6x16EdgeBitsAndBounds(t *testing.T) {
+	// Gemm6x16Edge must store, for the top mr rows of a tile, the bits
+	// Gemm6x16 gives those elements in a full tile (the same fused
+	// multiply-add chains, IEEE 754-2008 §5.4.1), and leave every other
+	// element of C untouched: sentinels below and beside keep their bits.
+	rng := rand.New(rand.NewPCG(15, 16))
+	const ldc = 16 + 5
+	for _, kc := range []int{1, 3, 9, 27, 256} {
+		a := randFloats(rng, 6*kc)
+		bp := randFloats(rng, 16*kc)
+		for _, beta := range []float32{0, 1, -0.5} {
+			for _, alpha := range []float32{1, 0.75} {
+				c0 := make([]float32, (6+1)*ldc)
+				for i := range c0 {
+					c0[i] = float32(rng.Float64())
+				}
+				full := append([]float32(nil), c0...)
+				Gemm6x16(kc, &a[0], &bp[0], &full[0], ldc, alpha, beta)
+				for mr := 1; mr <= 6; mr++ {
+					c := append([]float32(nil), c0...)
+					Gemm6x16Edge(kc, &a[0], 1, 6, &bp[0], &c[0], ldc, alpha, beta, mr)
+					for i := range c {
+						r, j := i/ldc, i%ldc
+						want := c0[i]
+						if r < mr && j < 16 {
+							want = full[i]
+						}
+						if math.Float32bits(want) != math.Float32bits(c[i]) {
+							t.Fatalf("kc=%d alpha=%v beta=%v mr=%d: c[%d][%d] = %v, want %v", kc, alpha, beta, mr, r, j, c[i], want)
+						}
+					}
+				}
+			}
+		}
+	}
+}
+
+func TestConv6x16MatchesLoop(t *testing.T) {
+	// Conv6x16 against its loop, rows of B at scattered offsets, with and
+	// without the bias; c past the 16 columns is never written.
+	rng := rand.New(rand.NewPCG(7, 8))
+	for _, kc := range []int{1, 2, 5, 27, 144} {
+		a := randFloats(rng, 6*kc)
+		b := randFloats(rng, 400)
+		off := make([]int32, kc)
+		for p := range off {
+			off[p] = int32(rng.IntN(400 - 16))
+		}
+		bias := randFloats(rng, 6)
+		for _, bp := range []*float32{nil, &bias[0]} {
+			const ldc = 20
+			got, want := make([]float32, 6*ldc), make([]float32, 6*ldc)
+			for i := range got {
+				got[i], want[i] = float32(math.NaN()), float32(math.NaN())
+			}
+			Conv6x16(kc, &a[0], &b[0], &off[0], &got[0], ldc, bp)
+			conv6x16(kc, &a[0], &b[0], &off[0], &want[0], ldc, bp)
+			requireBits(t, want, got, "kc=%d bias=%t", kc, bp != nil)
+		}
+	}
+}
+
+func TestCopyKernels(t *testing.T) {
+	// The copies equal the Go builtin copy row by row (common practice),
+	// and write nothing outside the rows.
+	rng := rand.New(rand.NewPCG(50, 51))
+	for w := 1; w <= 41; w++ {
+		rows, lds, ldd := 3, w+rng.IntN(3), w+2+rng.IntN(3)
+		src := randFloats(rng, (rows-1)*lds+w)
+		got := make([]float32, rows*ldd+1)
+		want := make([]float32, rows*ldd+1)
+		for i := range got {
+			got[i], want[i] = -7, -7
+		}
+		CopyRows(&got[1], ldd, &src[0], lds, rows, w)
+		for r := 0; r < rows; r++ {
+			copy(want[1+r*ldd:1+r*ldd+w], src[r*lds:r*lds+w])
+		}
+		requireBits(t, want, got, "CopyRows width %d", w)
+	}
+	src := randFloats(rng, 4*20+16)
+	got := make([]float32, 5*16)
+	CopyRows16(&src[0], 20, &got[0], 5)
+	for r := 0; r < 5; r++ {
+		requireBits(t, src[20*r:20*r+16], got[16*r:16*r+16], "CopyRows16 row %d", r)
+	}
+	blk := randFloats(rng, 7*11+8)
+	tr := make([]float32, 7*9+8)
+	Transpose8x8(&blk[0], 11, &tr[0], 9)
+	for r := 0; r < 8; r++ {
+		for c := 0; c < 8; c++ {
+			require.Equal(t, blk[r*11+c], tr[c*9+r], "Transpose8x8 (%d, %d)", r, c)
+		}
+	}
+}
+
+// specials32 are IEEE 754 binary32 bit patterns at the edges of Relu:
+// ±0, the smallest and largest subnormals, the smallest normal, ±1, the
+// largest finite, ±Inf and a quiet NaN (IEEE 754-2019, 3.4).
+var specials32 = []uint32{
+	0x00000000, 0x80000000, // +0, -0
+	0x00000001, 0x80000001, // ±smallest subnormal
+	0x007fffff, 0x807fffff, // ±largest subnormal
+	0x00800000, 0x80800000, // ±smallest normal
+	0x3f800000, 0xbf800000, // ±1
+	0x7f7fffff, 0xff7fffff, // ±largest finite
+	0x7f800000, 0xff800000, // ±Inf
+	0x7fc00000, // quiet NaN
+}
+
+// TestReluMatchesGoMax checks Relu against Go's max, which the Go
+// specification defines for floats: max(x, 0) is NaN for NaN and +0 for -0
+// ("negative zero is smaller than positive zero"; The Go Programming
+// Language Specification, Min and max). The derivative is g where x > 0 and
+// +0 elsewhere, NaN included (an ordered comparison with NaN is false, IEEE
+// 754-2019, 5.11). Every length up to 70 exercises the 32-, 8- and
+// 1-element paths.
+func TestReluMatchesGoMax(t *testing.T) {
+	rng := rand.New(rand.NewPCG(5, 5))
+	for n := 0; n <= 70; n++ {
+		x := make([]float32, n)
+		g := make([]float32, n)
+		for i := range x {
+			if rng.IntN(3) == 0 {
+				x[i] = math.Float32frombits(specials32[rng.IntN(len(specials32))])
+			} else {
+				x[i] = float32(rng.NormFloat64())
+			}
+			g[i] = float32(rng.NormFloat64())
+		}
+		y := make([]float32, n)
+		d := make([]float32, n)
+		Relu(y, x)
+		ReluGrad(d, x, g)
+		for i, xi := range x {
+			want := max(xi, 0) // Go spec semantics
+			require.Equal(t, math.Float32bits(want), math.Float32bits(y[i]), "n=%d relu(%#x)", n, math.Float32bits(xi))
+			var wd float32
+			if xi > 0 {
+				wd = g[i]
+			}
+			require.Equal(t, math.Float32bits(wd), math.Float32bits(d[i]), "n=%d ∂relu(%#x)", n, math.Float32bits(xi))
+		}
+		// The backward reads y = Relu(x) instead of x: the same mask.
+		dy := make([]float32, n)
+		ReluGrad(dy, y, g)
+		for i := range d {
+			require.Equal(t, math.Float32bits(d[i]), math.Float32bits(dy[i]), "n=%d ∂relu from y at x=%#x", n, math.Float32bits(x[i]))
+		}
+	}
+	// The specials themselves, in a block the vector path takes whole.
+	x := make([]float32, 32)
+	for i := range x {
+		x[i] = math.Float32frombits(specials32[i%len(specials32)])
+	}
+	y := make([]float32, 32)
+	Relu(y, x)
+	require.Equal(t, uint32(0x00000000), math.Float32bits(y[1]), "relu(-0) = +0 (Go spec, max)")
+	require.True(t, math.IsNaN(float64(y[14])), "relu(NaN) = NaN (Go spec, max)")
+	require.Equal(t, uint32(0x7f800000), math.Float32bits(y[12]), "relu(+Inf) = +Inf")
+	require.Equal(t, uint32(0x00000000), math.Float32bits(y[13]), "relu(-Inf) = +0")
+	// In place, as UnsafeDo runs it.
+	want := append([]float32(nil), y...)
+	Relu(x, x)
+	for i := range x {
+		require.Equal(t, math.Float32bits(want[i]), math.Float32bits(x[i]))
+	}
+}
+
+func TestMaxPool2x2MatchesLoop(t *testing.T) {
+	// MaxPool2x2 and its gradient against their loops on inputs full of
+	// ties and signed zeros, with and without NaNs (the assembly hands a
+	// pass holding a NaN back to the loop), for output widths below, at and
+	// past the 4- and 8-wide steps, odd sizes leaving an uncovered border.
+	rng := rand.New(rand.NewPCG(21, 22))
+	values := []float32{-2, -1, float32(math.Copysign(0, -1)), 0, 0, 1, 2, 2}
+	for _, ow := range []int{1, 3, 4, 5, 8, 11, 16} {
+		for _, nan := range []bool{false, true} {
+			planes, h, w, oh := 3, 7, 2*ow+1, 3
+			x := make([]float32, planes*h*w)
+			for i := range x {
+				x[i] = values[rng.IntN(len(values))]
+			}
+			if nan {
+				x[rng.IntN(len(x))] = float32(math.NaN())
+			}
+			dy := randFloats(rng, planes*oh*ow)
+			got, want := make([]float32, len(dy)), make([]float32, len(dy))
+			MaxPool2x2(x, got, planes, h, w, oh, ow)
+			maxPool2x2(x, want, planes, h, w, oh, ow)
+			requireBits(t, want, got, "forward ow=%d nan=%t", ow, nan)
+			gdx, wdx := make([]float32, len(x)), make([]float32, len(x))
+			MaxPool2x2Grad(x, dy, gdx, planes, h, w, oh, ow)
+			maxPool2x2Grad(x, dy, wdx, planes, h, w, oh, ow)
+			requireBits(t, wdx, gdx, "gradient ow=%d nan=%t", ow, nan)
+		}
+	}
+}
+
+// BenchmarkFMAPeak reports the float32 fused multiply-add throughput of one
+// core with no memory traffic: the ceiling for every GEMM benchmark here.
+func BenchmarkFMAPeak(b *testing.B) {
+	if !cpupeak.Available() {
+		b.Skip("no AVX2/FMA on this CPU")
+	}
+	const iters = 1 << 16
+	cpupeak.Bench(b, cpupeak.FlopsPerIteration*iters, func() { cpupeak.Loop(iters) })
+}
+
+// BenchmarkGemm6x16 times the tile kernel alone on packed panels that stay
+// in L1 (one 6×kc strip of A, one kc×16 strip of B), at the k depths of the
+// models' products: 16, 27 (3×3×3 im2col), 72, 144, 256 and 288.
+func BenchmarkGemm6x16(b *testing.B) {
+	rng := rand.New(rand.NewPCG(11, 12))
+	for _, kc := range []int{16, 27, 72, 144, 256, 288} {
+		a := randFloats(rng, 6*kc)
+		as := randFloats(rng, 6*(kc+3))
+		p := randFloats(rng, 16*kc)
+		var c [6 * 16]float32
+		for _, beta := range []float32{0, 1} {
+			b.Run(fmt.Sprintf("kc=%d/beta=%v/packed", kc, beta), func(b *testing.B) {
+				cpupeak.Bench(b, 2*float64(6*16*kc), func() { Gemm6x16(kc, &a[0], &p[0], &c[0], 16, 1, beta) })
+			})
+			// The same strip of A read in place (rows kc+3 apart).
+			b.Run(fmt.Sprintf("kc=%d/beta=%v/strided", kc, beta), func(b *testing.B) {
+				cpupeak.Bench(b, 2*float64(6*16*kc), func() { Gemm6x16Strided(kc, &as[0], kc+3, 1, &p[0], &c[0], 16, 1, beta) })
+			})
+		}
+	}
+}
+
+func BenchmarkRelu(b *testing.B) {
+	const n = 64 * 16 * 32 * 32 // cnn-m's first Relu at batch 64
+	x := make([]float32, n)
+	for i := range x {
+		x[i] = float32(i%7) - 3
+	}
+	y := make([]float32, n)
+	b.Run("kernel", func(b *testing.B) {
+		b.SetBytes(8 * n)
+		for b.Loop() {
+			Relu(y, x)
+		}
+	})
+	b.Run("loop", func(b *testing.B) {
+		b.SetBytes(8 * n)
+		for b.Loop() {
+			relu(y, x)
+		}
+	})
+}
+
+func BenchmarkReluGrad(b *testing.B) {
+	const n = 64 * 16 * 32 * 32
+	x := make([]float32, n)
+	g := make([]float32, n)
+	for i := range x {
+		x[i] = float32(i%7) - 3
+		g[i] = float32(i % 5)
+	}
+	d := make([]float32, n)
+	b.Run("kernel", func(b *testing.B) {
+		b.SetBytes(12 * n)
+		for b.Loop() {
+			ReluGrad(d, x, g)
+		}
+	})
+	b.Run("loop", func(b *testing.B) {
+		b.SetBytes(12 * n)
+		for b.Loop() {
+			reluGrad(d, x, g)
+		}
+	})
+}

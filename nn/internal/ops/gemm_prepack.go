@@ -1,0 +1,251 @@
+package ops
+
+import (
+	"fmt"
+
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+)
+
+// sgemmPrepacked holds a B operand that never changes between products (a
+// model weight) in the layouts the float32 GEMM reads, each made on the
+// first product that needs it instead of on every call:
+//
+//   - panels: every kc×nc block of op(B) in the strip layout of
+//     sgemmPackPanelB, blocks ordered as the packed driver visits them (jc
+//     outer, pc inner). Block (jc, pc) starts at jc·k + pc·ncPad, where ncPad
+//     is nc rounded up to a multiple of sgemmNR, and its strip jr at a further
+//     jr·kc.
+//   - rows (tB only): op(B) = Bᵀ stored row-major, k×n with stride n, which
+//     the row kernel reads in place for products with few rows; with op(B) =
+//     B the row kernel reads B itself.
+//
+// A program runs one batch size, so one op usually builds one layout: at
+// most one extra copy of the weight. Products through sgemmPre round every
+// element exactly like sgemm does (same kernels, same k blocks), so an op
+// may take either path for any batch size without changing a bit of a row's
+// result. A value is used by one goroutine at a time (each machine has its
+// own ops), so the lazy building needs no lock.
+type sgemmPrepacked struct {
+	tB     bool
+	k, n   int
+	panels []float32
+	rows   []float32
+}
+
+// newSgemmPrepacked returns an empty prepacked op(B), k×n, transposed when
+// tB; nil when the CPU has no packed kernel (callers then use sgemm).
+func newSgemmPrepacked(tB bool, n, k int) *sgemmPrepacked {
+	if !f32.Asm() || n <= 0 || k <= 0 {
+		return nil
+	}
+	return &sgemmPrepacked{tB: tB, k: k, n: n}
+}
+
+// rowsOf returns op(B) row-major with its stride: B itself when op(B) = B,
+// else the transposed copy, made from b on first use.
+func (p *sgemmPrepacked) rowsOf(b []float32, ldb int) ([]float32, int) {
+	if !p.tB {
+		return b, ldb
+	}
+	if p.rows == nil {
+		k, n := p.k, p.n
+		p.rows = make([]float32, k*n)
+		for i := 0; i < k; i++ {
+			row := p.rows[i*n : i*n+n]
+			for j := range row {
+				row[j] = b[j*ldb+i]
+			}
+		}
+	}
+	return p.rows, p.n
+}
+
+// panelsOf returns the packed panels, made from b on first use.
+func (p *sgemmPrepacked) panelsOf(b []float32, ldb int) []float32 {
+	if p.panels != nil {
+		return p.panels
+	}
+	k, n := p.k, p.n
+	size := 0
+	for jc := 0; jc < n; jc += sgemmNC {
+		size += k * sgemmRoundNR(min(sgemmNC, n-jc))
+	}
+	p.panels = make([]float32, size)
+	off := 0
+	for jc := 0; jc < n; jc += sgemmNC {
+		nc := min(sgemmNC, n-jc)
+		for pc := 0; pc < k; pc += sgemmKC {
+			kc := min(sgemmKC, k-pc)
+			sgemmPackPanelB(p.tB, b, ldb, pc, kc, jc, nc, p.panels[off:])
+			off += kc * sgemmRoundNR(nc)
+		}
+	}
+	return p.panels
+}
+
+// sgemmRoundNR rounds n up to a multiple of sgemmNR.
+func sgemmRoundNR(n int) int { return (n + sgemmNR - 1) / sgemmNR * sgemmNR }
+
+// sgemmPre computes C = alpha·op(A)·op(B) + beta·C like sgemm, op(B) k×n
+// stored in b (row stride ldb, transposed when pb.tB) and read through pb's
+// layouts. b must hold the same values on every call with pb: the layouts
+// are made from the first call's b. Warm, it allocates nothing: the packing
+// buffer of A and the edge tile come from sgemmBufs.
+func sgemmPre(tA bool, m, n, k int, alpha float32, a []float32, lda int, pb *sgemmPrepacked, b []float32, ldb int, beta float32, c []float32, ldc int) {
+	if pb.n != n || pb.k != k {
+		panic(fmt.Sprintf("nn: sgemm: prepacked B is %d×%d, product needs %d×%d", pb.k, pb.n, k, n))
+	}
+	sgemmCheck(tA, pb.tB, m, n, k, a, lda, b, ldb, c, ldc)
+	if m == 0 || n == 0 {
+		return
+	}
+	if alpha == 0 || k == 0 {
+		sgemmScale(m, n, beta, c, ldc)
+		return
+	}
+	if n >= 32 && m < sgemmPreRowsBelow {
+		n32 := n &^ 31
+		rows, ld := pb.rowsOf(b, ldb)
+		sgemmRowsLoop(tA, m, n32, k, alpha, a, lda, rows, ld, beta, c, ldc)
+		if n32 < n {
+			sgemmPrePanels(tA, m, n32, alpha, a, lda, pb.panelsOf(b, ldb), pb, beta, c, ldc)
+		}
+		return
+	}
+	sgemmPrePanels(tA, m, 0, alpha, a, lda, pb.panelsOf(b, ldb), pb, beta, c, ldc)
+}
+
+// sgemmPrePanels is the packed driver over pb's panels for the columns j0..n
+// of C; j0 must be a multiple of sgemmNR.
+func sgemmPrePanels(tA bool, m, j0 int, alpha float32, a []float32, lda int, panels []float32, pb *sgemmPrepacked, beta float32, c []float32, ldc int) {
+	n, k := pb.n, pb.k
+	scratch := sgemmBufs.Get().(*sgemmScratch)
+	defer sgemmBufs.Put(scratch)
+	off := 0
+	for jc := 0; jc < n; jc += sgemmNC {
+		nc := min(sgemmNC, n-jc)
+		ncPad := sgemmRoundNR(nc)
+		if jc+nc <= j0 {
+			off += k * ncPad
+			continue
+		}
+		jr0 := max(j0-jc, 0)
+		for pc := 0; pc < k; pc += sgemmKC {
+			kc := min(sgemmKC, k-pc)
+			bet := beta
+			if pc > 0 {
+				bet = 1
+			}
+			bufB := panels[off : off+kc*ncPad]
+			off += kc * ncPad
+			for ic := 0; ic < m; ic += sgemmMC {
+				mc := min(sgemmMC, m-ic)
+				sgemmBlock(tA, a, lda, ic, mc, pc, kc, nc, jr0, alpha, bet, scratch.a, bufB, &scratch.tile, c[ic*ldc+jc:], ldc)
+			}
+		}
+	}
+}
+
+// sgemmMacro multiplies a packed mc×kc block of A by the columns jr0..nc of
+// a packed kc×nc panel of B into C (c[0] is the block's top-left element),
+// as C = alpha·A·B + bet·C per register tile.
+func sgemmMacro(mc, nc, kc, jr0 int, alpha, bet float32, bufA, bufB []float32, tile *[sgemmMR * sgemmNR]float32, c []float32, ldc int) {
+	for jr := jr0; jr < nc; jr += sgemmNR {
+		nr := min(sgemmNR, nc-jr)
+		bp := &bufB[jr*kc]
+		for ir := 0; ir < mc; ir += sgemmMR {
+			mr := min(sgemmMR, mc-ir)
+			ap := &bufA[ir*kc]
+			ci := ir*ldc + jr
+			if mr == sgemmMR && nr == sgemmNR {
+				f32.Gemm6x16(kc, ap, bp, &c[ci], ldc, alpha, bet)
+				continue
+			}
+			if nr == sgemmNR {
+				// Bottom edge, whole columns: only mr rows of C are touched.
+				f32.Gemm6x16Edge(kc, ap, 1, sgemmMR, bp, &c[ci], ldc, alpha, bet, mr)
+				continue
+			}
+			// Edge tile: the kernel updates a full tile loaded with the
+			// part of C inside it (the zero-padded panels fill the rest),
+			// so edge elements round exactly like interior ones.
+			clear(tile[:])
+			if bet != 0 {
+				for i := 0; i < mr; i++ {
+					copy(tile[i*sgemmNR:i*sgemmNR+nr], c[ci+i*ldc:ci+i*ldc+nr])
+				}
+			}
+			f32.Gemm6x16(kc, ap, bp, &tile[0], sgemmNR, alpha, bet)
+			for i := 0; i < mr; i++ {
+				copy(c[ci+i*ldc:ci+i*ldc+nr], tile[i*sgemmNR:i*sgemmNR+nr])
+			}
+		}
+	}
+}
+
+// sgemmRowsLoop runs the row kernel over the first n columns of C (n a
+// multiple of 32) for each of the m rows, reading op(B) = B in place; the k
+// blocks are those of the packed driver.
+func sgemmRowsLoop(tA bool, m, n, k int, alpha float32, a []float32, lda int, b []float32, ldb int, beta float32, c []float32, ldc int) {
+	for i := 0; i < m; i++ {
+		// Row i of op(A): A[i][p] = a[i·lda+p], or Aᵀ[i][p] = a[p·lda+i].
+		off, inc := i*lda, 1
+		if tA {
+			off, inc = i, lda
+		}
+		for pc := 0; pc < k; pc += sgemmKC {
+			kc := min(sgemmKC, k-pc)
+			bet := beta
+			if pc > 0 {
+				bet = 1
+			}
+			for j := 0; j < n; j += 32 {
+				f32.Gemm1x32(kc, &a[off+pc*inc], inc, &b[pc*ldb+j], ldb, &c[i*ldc+j], alpha, bet)
+			}
+		}
+	}
+}
+
+// sgemmBlock multiplies rows ic..ic+mc, columns pc..pc+kc of op(A) by the
+// columns jr0..nc of a packed kc×nc panel of B into C (c[0] is the element
+// of row ic and the panel's first column). With op(A) = A and the strided
+// kernel, full strips of A are read in place and only a last strip of
+// fewer than sgemmMR rows is packed; otherwise the block is packed into
+// bufA. Either way every element gets the same chain of fused
+// multiply-adds.
+func sgemmBlock(tA bool, a []float32, lda, ic, mc, pc, kc, nc, jr0 int, alpha, bet float32, bufA, bufB []float32, tile *[sgemmMR * sgemmNR]float32, c []float32, ldc int) {
+	if tA {
+		sgemmPackBlockA(tA, a, lda, ic, mc, pc, kc, bufA)
+		sgemmMacro(mc, nc, kc, jr0, alpha, bet, bufA, bufB, tile, c, ldc)
+		return
+	}
+	full := mc / sgemmMR * sgemmMR
+	if full < mc {
+		// The partial strip goes through sgemmMacro on its packed copy.
+		sgemmPackBlockA(false, a, lda, ic+full, mc-full, pc, kc, bufA)
+		sgemmMacro(mc-full, nc, kc, jr0, alpha, bet, bufA, bufB, tile, c[full*ldc:], ldc)
+	}
+	for jr := jr0; jr < nc; jr += sgemmNR {
+		nr := min(sgemmNR, nc-jr)
+		bp := &bufB[jr*kc]
+		for ir := 0; ir < full; ir += sgemmMR {
+			ap := &a[(ic+ir)*lda+pc]
+			ci := ir*ldc + jr
+			if nr == sgemmNR {
+				f32.Gemm6x16Strided(kc, ap, lda, 1, bp, &c[ci], ldc, alpha, bet)
+				continue
+			}
+			// Edge tile, as in sgemmMacro.
+			clear(tile[:])
+			if bet != 0 {
+				for i := 0; i < sgemmMR; i++ {
+					copy(tile[i*sgemmNR:i*sgemmNR+nr], c[ci+i*ldc:ci+i*ldc+nr])
+				}
+			}
+			f32.Gemm6x16Strided(kc, ap, lda, 1, bp, &tile[0], sgemmNR, alpha, bet)
+			for i := 0; i < sgemmMR; i++ {
+				copy(c[ci+i*ldc:ci+i*ldc+nr], tile[i*sgemmNR:i*sgemmNR+nr])
+			}
+		}
+	}
+}

@@ -1,0 +1,6 @@
+//go:build !race
+
+package ops
+
+// raceEnabled is set when the race detector is on; it changes allocation counts.
+const raceEnabled = false

@@ -1,0 +1,584 @@
+package nn
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"slices"
+	"strconv"
+
+	"github.com/apportion/apportion/onnxlite"
+)
+
+// request says what a program computes: the named values (nil means the
+// graph outputs) and, when grad is set, the gradient of Σ_i out[i, target[i]]
+// of the single requested value with respect to the first runtime input.
+type request struct {
+	outputs []string
+	grad    bool
+}
+
+// appendKey appends a text that tells requests apart to b.
+func (r request) appendKey(b []byte) []byte {
+	for _, o := range r.outputs {
+		b = strconv.AppendQuote(b, o)
+	}
+	return strconv.AppendBool(append(b, '/'), r.grad)
+}
+
+// program is one compiled configuration: exact input shapes and a request.
+// A perSample program runs its batch-1 inner program once per sample.
+type program struct {
+	nw        *Network
+	static    *onnxlite.Static
+	inShapes  [][]int
+	outNames  []string
+	outShapes [][]int
+	req       request
+	pool      *machinePool
+
+	perSample bool
+	inner     *program
+	batch     int
+}
+
+// describe fills the ports and the declared input shapes.
+func (nw *Network) describe() error {
+	g := nw.model.Graph
+	inits := map[string]bool{}
+	for _, t := range g.Initializers {
+		inits[t.Name] = true
+	}
+	for _, vi := range g.Inputs {
+		if inits[vi.Name] {
+			continue
+		}
+		p := Port{Name: vi.Name}
+		var decl []int
+		if vi.Type != nil {
+			p.DType = vi.Type.Elem
+			if vi.Type.HasShape {
+				decl = make([]int, len(vi.Type.Shape))
+				for j, d := range vi.Type.Shape {
+					decl[j] = -1
+					if d.HasValue {
+						decl[j] = int(d.Value)
+					}
+				}
+			}
+		}
+		if s, ok := nw.opts.InputShapes[vi.Name]; ok {
+			if decl != nil && len(decl) != len(s)+1 {
+				return fmt.Errorf("input %q: %w: Options.InputShapes gives per-sample shape %v (rank %d) but the model declares rank %d", vi.Name, ErrShape, s, len(s), len(decl))
+			}
+			if decl == nil {
+				decl = make([]int, len(s)+1)
+				decl[0] = -1
+			}
+			for j, d := range s {
+				if decl[j+1] >= 0 && decl[j+1] != d {
+					return fmt.Errorf("input %q: %w: Options.InputShapes gives %v but the model declares %s", vi.Name, ErrShape, s, shapeString(decl, true))
+				}
+				decl[j+1] = d
+			}
+		}
+		if len(decl) > 0 {
+			p.Shape = append([]int(nil), decl[1:]...)
+		}
+		nw.inputs = append(nw.inputs, p)
+		nw.declared = append(nw.declared, decl)
+	}
+	for name := range nw.opts.InputShapes {
+		found := false
+		for _, p := range nw.inputs {
+			found = found || p.Name == name
+		}
+		if !found {
+			return fmt.Errorf("%w: Options.InputShapes names %q, which is not a runtime input (inputs: %s)", ErrBadRequest, name, portNames(nw.inputs))
+		}
+	}
+	// Output shapes from inference at the smallest batch, when every
+	// input shape is known; the declared types otherwise.
+	var st *onnxlite.Static
+	if shapes, ok := nw.sampleShapes(1); ok {
+		if s, err := nw.inferFor(shapes); err == nil {
+			st = s
+		}
+	}
+	for _, vi := range g.Outputs {
+		p := Port{Name: vi.Name, Shape: nil}
+		if vi.Type != nil {
+			p.DType = vi.Type.Elem
+		}
+		if st != nil {
+			if v, ok := st.Values[vi.Name]; ok && len(v.Shape) > 0 {
+				p.Shape = append([]int(nil), v.Shape[1:]...)
+				if p.DType == onnxlite.Undefined {
+					p.DType = v.DType
+				}
+			}
+		} else if vi.Type != nil && vi.Type.HasShape && len(vi.Type.Shape) > 0 {
+			for _, d := range vi.Type.Shape[1:] {
+				if d.HasValue {
+					p.Shape = append(p.Shape, int(d.Value))
+				} else {
+					p.Shape = append(p.Shape, -1)
+				}
+			}
+		}
+		nw.outputs = append(nw.outputs, p)
+	}
+	return nil
+}
+
+// sampleShapes returns full input shapes at batch n (a declared fixed batch
+// other than 1 is kept), or false when a non-batch dimension is unknown.
+func (nw *Network) sampleShapes(n int) ([][]int, bool) {
+	shapes := make([][]int, len(nw.declared))
+	for i, decl := range nw.declared {
+		if decl == nil {
+			return nil, false
+		}
+		s := append([]int(nil), decl...)
+		for j := range s {
+			if j == 0 && (s[0] < 0 || s[0] == 1) {
+				s[0] = n
+				continue
+			}
+			if s[j] < 0 {
+				return nil, false
+			}
+		}
+		shapes[i] = s
+	}
+	return shapes, true
+}
+
+func (nw *Network) inputMap(shapes [][]int) map[string][]int {
+	m := make(map[string][]int, len(shapes))
+	for i, s := range shapes {
+		m[nw.inputs[i].Name] = s
+	}
+	return m
+}
+
+// inferFor runs shape inference for exact input shapes, relaxing a declared
+// batch of one when the shapes ask for another batch. It reports an error
+// when the relaxed graph is not batch-consistent.
+func (nw *Network) inferFor(shapes [][]int) (*onnxlite.Static, error) {
+	relax, err := nw.needsRelax(shapes)
+	if err != nil {
+		return nil, err
+	}
+	if !relax {
+		return onnxlite.Infer(nw.model, nw.inputMap(shapes))
+	}
+	return nw.inferRelaxed(shapes)
+}
+
+// needsRelax reports whether shapes ask for a batch other than a declared
+// fixed batch of 1; other fixed batch mismatches are errors.
+func (nw *Network) needsRelax(shapes [][]int) (bool, error) {
+	relax := false
+	for i, decl := range nw.declared {
+		if len(decl) == 0 || decl[0] < 0 || len(shapes[i]) == 0 || shapes[i][0] == decl[0] {
+			continue
+		}
+		if decl[0] != 1 {
+			return false, fmt.Errorf("input %q: %w: the model fixes the batch dimension to %d, got shape %v", nw.inputs[i].Name, ErrShape, decl[0], shapes[i])
+		}
+		relax = true
+	}
+	return relax, nil
+}
+
+// inferRelaxed infers the relaxed model at the requested batch and at batch
+// 1 and accepts the result only when every value that changed went from a
+// leading dimension of 1 to the batch, all else equal, and every graph
+// output carries the batch.
+func (nw *Network) inferRelaxed(shapes [][]int) (*onnxlite.Static, error) {
+	n := -1
+	one := make([][]int, len(shapes))
+	for i, s := range shapes {
+		one[i] = append([]int(nil), s...)
+		if len(s) > 0 {
+			if n < 0 {
+				n = s[0]
+			} else if s[0] != n {
+				return nil, fmt.Errorf("%w: inputs disagree on the batch size: %d and %d", ErrShape, n, s[0])
+			}
+			one[i][0] = 1
+		}
+	}
+	stN, err := onnxlite.Infer(nw.relaxed, nw.inputMap(shapes))
+	if err != nil {
+		return nil, err
+	}
+	st1, err := onnxlite.Infer(nw.relaxed, nw.inputMap(one))
+	if err != nil {
+		return nil, err
+	}
+	for name, vn := range stN.Values {
+		v1, ok := st1.Values[name]
+		if !ok {
+			return nil, fmt.Errorf("%w: value %q exists at batch %d only", errBatchInconsistent, name, n)
+		}
+		if slices.Equal(v1.Shape, vn.Shape) {
+			continue
+		}
+		if len(v1.Shape) != len(vn.Shape) || len(v1.Shape) == 0 || v1.Shape[0] != 1 || vn.Shape[0] != n || !slices.Equal(v1.Shape[1:], vn.Shape[1:]) {
+			return nil, fmt.Errorf("%w: value %q has shape %v at batch 1 and %v at batch %d", errBatchInconsistent, name, v1.Shape, vn.Shape, n)
+		}
+	}
+	for _, o := range stN.Outputs {
+		s := stN.Values[o].Shape
+		if len(s) == 0 || s[0] != n {
+			return nil, fmt.Errorf("%w: output %q has shape %v at batch %d", errBatchInconsistent, o, s, n)
+		}
+	}
+	return stN, nil
+}
+
+var errBatchInconsistent = errors.New("graph is not batch-consistent")
+
+// relaxModel returns a copy of m in which every Reshape whose shape is a
+// constant (initializer or Constant node) with a leading entry of 1 uses 0
+// there instead ("copy the input's dimension"), so that a graph exported at
+// batch 1 follows the batch. At batch 1 both graphs compute the same values
+// whenever the Reshape's data has a leading dimension of 1; the caller checks
+// that with shape inference before trusting the copy.
+func relaxModel(m *onnxlite.Model) *onnxlite.Model {
+	g := m.Graph
+	consts := map[string]*onnxlite.Tensor{}
+	for _, t := range g.Initializers {
+		consts[t.Name] = t
+	}
+	for _, n := range g.Nodes {
+		if n.OpType == "Constant" && len(n.Outputs) == 1 {
+			if a := n.Attr("value"); a != nil && a.T != nil {
+				consts[n.Outputs[0]] = a.T
+			}
+		}
+	}
+	cp := *m
+	gc := *g
+	gc.Nodes = make([]*onnxlite.Node, len(g.Nodes))
+	gc.Initializers = append([]*onnxlite.Tensor(nil), g.Initializers...)
+	changed := false
+	for i, n := range g.Nodes {
+		gc.Nodes[i] = n
+		if n.OpType != "Reshape" || len(n.Inputs) < 2 || n.AttrInt("allowzero", 0) != 0 {
+			continue
+		}
+		t := consts[n.Inputs[1]]
+		if t == nil {
+			continue
+		}
+		vals, ok := t.Data.([]int64)
+		if !ok || len(vals) < 2 || vals[0] != 1 {
+			continue
+		}
+		nv := append([]int64(nil), vals...)
+		nv[0] = 0
+		name := fmt.Sprintf("%s__nn_batch_relaxed_%d", n.Inputs[1], i)
+		gc.Initializers = append(gc.Initializers, &onnxlite.Tensor{Name: name, DType: onnxlite.Int64, Dims: append([]int64(nil), t.Dims...), Data: nv})
+		nn := *n
+		nn.Inputs = append([]string(nil), n.Inputs...)
+		nn.Inputs[1] = name
+		gc.Nodes[i] = &nn
+		changed = true
+	}
+	// The declared batch of one becomes symbolic.
+	relaxVI := func(vis []*onnxlite.ValueInfo) []*onnxlite.ValueInfo {
+		out := make([]*onnxlite.ValueInfo, len(vis))
+		for i, vi := range vis {
+			out[i] = vi
+			if vi.Type == nil || !vi.Type.HasShape || len(vi.Type.Shape) == 0 {
+				continue
+			}
+			d := vi.Type.Shape[0]
+			if !d.HasValue || d.Value != 1 {
+				continue
+			}
+			t := *vi.Type
+			t.Shape = append([]onnxlite.Dim(nil), vi.Type.Shape...)
+			t.Shape[0] = onnxlite.Dim{Param: "nn_batch"}
+			v := *vi
+			v.Type = &t
+			out[i] = &v
+			changed = true
+		}
+		return out
+	}
+	gc.Inputs = relaxVI(g.Inputs)
+	gc.Outputs = relaxVI(g.Outputs)
+	gc.ValueInfo = relaxVI(g.ValueInfo)
+	if !changed {
+		return m
+	}
+	cp.Graph = &gc
+	return &cp
+}
+
+// program returns the cached program for shapes and req, compiling it on
+// first use.
+func (nw *Network) program(shapes [][]int, req request) (*program, error) {
+	// The key is built without fmt and looked up without a string copy:
+	// this runs on every call.
+	var buf [128]byte
+	kb := buf[:0]
+	for _, s := range shapes {
+		kb = append(kb, '[')
+		for _, d := range s {
+			kb = append(strconv.AppendInt(kb, int64(d), 10), ' ')
+		}
+		kb = append(kb, ']')
+	}
+	kb = req.appendKey(kb)
+	nw.mu.Lock()
+	p, ok := nw.progs[string(kb)]
+	nw.mu.Unlock()
+	if ok {
+		return p, nil
+	}
+	key := string(kb)
+	p, err := nw.newProgram(shapes, req)
+	if err != nil {
+		return nil, err
+	}
+	nw.mu.Lock()
+	defer nw.mu.Unlock()
+	if q, ok := nw.progs[key]; ok {
+		return q, nil
+	}
+	nw.progs[key] = p
+	return p, nil
+}
+
+func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
+	relax, err := nw.needsRelax(shapes)
+	if err != nil {
+		return nil, err
+	}
+	var st *onnxlite.Static
+	if relax {
+		st, err = nw.inferRelaxed(shapes)
+		if errors.Is(err, errBatchInconsistent) || (err != nil && !errors.Is(err, ErrShape)) {
+			// Run sample by sample on the model as exported.
+			one := make([][]int, len(shapes))
+			for i, s := range shapes {
+				one[i] = append([]int(nil), s...)
+				one[i][0] = 1
+			}
+			inner, err := nw.program(one, req)
+			if err != nil {
+				return nil, err
+			}
+			return &program{nw: nw, perSample: true, inner: inner, batch: shapes[0][0], inShapes: shapes, req: req, outNames: inner.outNames}, nil
+		}
+	} else {
+		st, err = onnxlite.Infer(nw.model, nw.inputMap(shapes))
+	}
+	if err != nil {
+		return nil, err
+	}
+	p := &program{nw: nw, static: st, inShapes: shapes, req: req}
+	p.outNames = req.outputs
+	if p.outNames == nil {
+		p.outNames = st.Outputs
+	}
+	for _, o := range p.outNames {
+		v, ok := st.Values[o]
+		if !ok {
+			return nil, fmt.Errorf("%w: no value %q in the graph", ErrBadRequest, o)
+		}
+		if !isFloat(v.DType) {
+			return nil, fmt.Errorf("value %q: %w: element type %v is not floating point", o, onnxlite.ErrUnsupported, v.DType)
+		}
+		p.outShapes = append(p.outShapes, v.Shape)
+	}
+	if req.grad {
+		if len(st.Inputs) != 1 {
+			return nil, fmt.Errorf("%w: gradients need a model with exactly one runtime input, this one has %d", ErrBadRequest, len(st.Inputs))
+		}
+		if len(p.outNames) != 1 || len(p.outShapes[0]) == 0 {
+			return nil, fmt.Errorf("%w: gradients need one batched output", ErrBadRequest)
+		}
+	}
+	p.pool = newMachinePool(nw.opts.Machines, p.build)
+	return p, nil
+}
+
+func isFloat(dt onnxlite.DataType) bool {
+	return dt == onnxlite.Float || dt == onnxlite.Double || dt == onnxlite.Float16
+}
+
+// run executes p on data (one flat slice per runtime input). When p.req.grad
+// is set, mask (the one-hot selection, shaped like the output) must be given
+// and grad returns the gradient w.r.t. the first input.
+func (p *program) run(ctx context.Context, data [][]float64, mask []float64) (outs [][]float64, grad []float64, err error) {
+	if p.perSample {
+		return p.runPerSample(ctx, data, mask)
+	}
+	m, err := p.pool.acquire(ctx)
+	if err != nil {
+		return nil, nil, err
+	}
+	// A run that fails, or panics on its way to the caller's recovery,
+	// may leave the machine half-way: it is dropped, not released.
+	ok := false
+	defer func() { p.pool.release(m, ok) }()
+	outs, grad, err = m.run(p, data, mask)
+	if err != nil {
+		return nil, nil, err
+	}
+	ok = true
+	return outs, grad, nil
+}
+
+func (p *program) runPerSample(ctx context.Context, data [][]float64, mask []float64) (outs [][]float64, grad []float64, err error) {
+	in := p.inner
+	sizes := make([]int, len(data))
+	for i, s := range in.inShapes {
+		sizes[i] = prod(s)
+	}
+	var outSizes []int
+	for _, s := range in.outShapes {
+		outSizes = append(outSizes, prod(s))
+	}
+	outs = make([][]float64, len(outSizes))
+	sub := make([][]float64, len(data))
+	for b := 0; b < p.batch; b++ {
+		if err := ctx.Err(); err != nil {
+			return nil, nil, err
+		}
+		for i := range data {
+			sub[i] = data[i][b*sizes[i] : (b+1)*sizes[i]]
+		}
+		var m []float64
+		if mask != nil {
+			m = mask[b*outSizes[0] : (b+1)*outSizes[0]]
+		}
+		o, g, err := in.run(ctx, sub, m)
+		if err != nil {
+			return nil, nil, err
+		}
+		for i := range o {
+			outs[i] = append(outs[i], o[i]...)
+		}
+		grad = append(grad, g...)
+	}
+	return outs, grad, nil
+}
+
+// outputShapes returns the full output shapes of p.
+func (p *program) outputShapes() [][]int {
+	if !p.perSample {
+		return p.outShapes
+	}
+	out := make([][]int, len(p.inner.outShapes))
+	for i, s := range p.inner.outShapes {
+		s = append([]int(nil), s...)
+		if len(s) > 0 {
+			s[0] *= p.batch
+		}
+		out[i] = s
+	}
+	return out
+}
+
+// runChunked runs shapes/data through the programs for req, splitting the
+// batch (first dimension of every input) into chunks of at most
+// Options.MaxBatch samples, and into Options.Parallel concurrent parts when
+// the batch is large enough (see runSplit). mask, when given, is split with
+// the outputs.
+func (nw *Network) runChunked(ctx context.Context, shapes [][]int, data [][]float64, mask []float64) ([][]float64, [][]int, error) {
+	outs, shp, _, err := nw.runReq(ctx, shapes, data, request{}, mask)
+	return outs, shp, err
+}
+
+func (nw *Network) runReq(ctx context.Context, shapes [][]int, data [][]float64, req request, mask []float64) ([][]float64, [][]int, []float64, error) {
+	if err := ctx.Err(); err != nil {
+		return nil, nil, nil, err
+	}
+	n := -1
+	for _, s := range shapes {
+		if len(s) == 0 {
+			n = -1
+			break
+		}
+		if n < 0 {
+			n = s[0]
+		} else if s[0] != n {
+			n = -1
+			break
+		}
+	}
+	if parts := nw.splitParts(n); parts > 1 && len(shapes) > 0 {
+		return nw.runSplit(ctx, shapes, data, req, mask, n, parts)
+	}
+	return nw.runReqSeq(ctx, shapes, data, req, mask, n)
+}
+
+// runReqSeq runs the batch of n samples (-1 when the inputs do not share a
+// first dimension) on the caller's goroutine, in chunks of at most
+// Options.MaxBatch samples.
+func (nw *Network) runReqSeq(ctx context.Context, shapes [][]int, data [][]float64, req request, mask []float64, n int) ([][]float64, [][]int, []float64, error) {
+	chunk := nw.opts.MaxBatch
+	if n <= chunk || len(shapes) == 0 {
+		p, err := nw.program(shapes, req)
+		if err != nil {
+			return nil, nil, nil, err
+		}
+		o, g, err := p.run(ctx, data, mask)
+		return o, p.outputShapes(), g, err
+	}
+	var outs [][]float64
+	var outShapes [][]int
+	var grad []float64
+	for start := 0; start < n; start += chunk {
+		if err := ctx.Err(); err != nil {
+			return nil, nil, nil, err
+		}
+		end := start + chunk
+		if end > n {
+			end = n
+		}
+		cs := make([][]int, len(shapes))
+		cd := make([][]float64, len(shapes))
+		for i, s := range shapes {
+			per := prod(s[1:])
+			cs[i] = append([]int{end - start}, s[1:]...)
+			cd[i] = data[i][start*per : end*per]
+		}
+		p, err := nw.program(cs, req)
+		if err != nil {
+			return nil, nil, nil, err
+		}
+		var cm []float64
+		shp := p.outputShapes()
+		if mask != nil {
+			per := prod(shp[0][1:])
+			cm = mask[start*per : end*per]
+		}
+		o, g, err := p.run(ctx, cd, cm)
+		if err != nil {
+			return nil, nil, nil, err
+		}
+		if outs == nil {
+			outs = make([][]float64, len(o))
+			outShapes = make([][]int, len(o))
+			for i, s := range shp {
+				if len(s) == 0 || s[0] != end-start {
+					return nil, nil, nil, fmt.Errorf("%w: output %q has shape %v for a chunk of %d samples; run it with at most Options.MaxBatch = %d samples", ErrShape, p.outNames[i], s, end-start, chunk)
+				}
+				outShapes[i] = append([]int{n}, s[1:]...)
+			}
+		}
+		for i := range o {
+			outs[i] = append(outs[i], o[i]...)
+		}
+		grad = append(grad, g...)
+	}
+	return outs, outShapes, grad, nil
+}
