@@ -89,12 +89,7 @@ func TestPumpsSummaryRanksRuleFeatures(t *testing.T) {
 			}
 		}()
 	}
-	// Row 0 alone first, so that the first gradient program is built before
-	// goroutines share the network (gorgonia initialises some state lazily).
-	r0, err := gradattr.IntegratedGradients(context.Background(), h, rows[0], gradattr.TargetTop, opt)
-	require.NoError(t, err)
-	attrs[0] = r0.Attributions
-	for i := 1; i < len(rows); i++ {
+	for i := range rows {
 		next <- i
 	}
 	close(next)
