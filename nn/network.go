@@ -159,16 +159,16 @@ func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
 	// every node nn does not run (those onnxlite does not support among them).
 	var ue *onnxlite.UnsupportedError
 	if err := m.Validate(); err != nil && !errors.As(err, &ue) {
-		return nil, fmt.Errorf("nn: compile: %w", err)
+		return nil, modelError("nn: compile", err)
 	}
 	if u := Unsupported(m); len(u) > 0 {
-		return nil, fmt.Errorf("nn: compile: %w", &onnxlite.UnsupportedError{Ops: u})
+		return nil, &onnxlite.UnsupportedError{Ops: u}
 	}
 	nw = &Network{model: m, opts: opts, progs: map[string]*program{},
 		splitMinFLOPs: splitMinPartFLOPs}
 	nw.relaxed = relaxModel(m)
 	if err := nw.describe(); err != nil {
-		return nil, fmt.Errorf("nn: compile: %w", err)
+		return nil, modelError("nn: compile", err)
 	}
 	return nw, nil
 }
@@ -224,13 +224,23 @@ func (nw *Network) Forward(ctx context.Context, inputs []*onnxlite.Tensor) (outs
 	}
 	res, outShapes, err := nw.runChunked(ctx, shapes, data, nil)
 	if err != nil {
-		return nil, fmt.Errorf("nn: forward: %w", err)
+		return nil, modelError("nn: forward", err)
 	}
 	outs = make([]*onnxlite.Tensor, len(res))
 	for i, r := range res {
 		outs[i] = makeTensor(nw.outputs[i].Name, nw.opts.DType, outShapes[i], r)
 	}
 	return outs, nil
+}
+
+// modelError returns err as it is when it describes the model (invalid, or
+// asking for what apportion does not compute), and prefixed with where
+// otherwise.
+func modelError(where string, err error) error {
+	if errors.Is(err, onnxlite.ErrInvalid) || errors.Is(err, onnxlite.ErrUnsupported) {
+		return err
+	}
+	return fmt.Errorf("%s: %w", where, err)
 }
 
 func portNames(ps []Port) string {

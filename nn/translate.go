@@ -260,13 +260,42 @@ func (b *builder) constantNode(_ *onnxlite.Node, out string) error {
 	return err
 }
 
-// cast translates a Cast between floating-point types: the engine computes
-// in one element type, so the value passes unchanged.
+// cast translates a Cast of a run-time value. The engine holds every value
+// in its one floating-point type, integers and booleans included, so a
+// Cast to a floating-point type at least as wide as the engine's passes the
+// value unchanged; a narrower one rounds (float16, bfloat16, and float32 on
+// the float64 engine); a Cast to an integer type truncates toward zero
+// (onnxlite's folding does the same, common practice) and one to BOOL
+// gives 1 for every non-zero value.
 func (b *builder) cast(n *onnxlite.Node, out string) error {
-	if to := onnxlite.DataType(n.AttrInt("to", 0)); !isFloat(to) {
-		return fmt.Errorf("%w: Cast of a run-time value to %v", onnxlite.ErrUnsupported, to)
+	x, err := b.input(n, 0)
+	if err != nil {
+		return err
 	}
-	return b.alias(n, out)
+	from := b.st.Values[n.Inputs[0]].DType
+	to := b.st.Values[out].DType
+	var kind string
+	switch {
+	case to == from:
+	case to == onnxlite.Bool:
+		kind = "CastBool"
+	case !isFloat(to) && isFloat(from):
+		kind = "CastInt"
+	case to == onnxlite.Float16:
+		kind = "CastFloat16"
+	case to == onnxlite.BFloat16:
+		kind = "CastBFloat16"
+	case to == onnxlite.Float && b.dt == tensor.Float64:
+		kind = "CastFloat"
+	}
+	if kind == "" {
+		return b.set(out, x)
+	}
+	y, err := ops.Unary(x, kind, 0, 0)
+	if err != nil {
+		return err
+	}
+	return b.set(out, y)
 }
 
 // alias makes out the node of n's first input (reshaped to out's inferred
@@ -809,24 +838,12 @@ func (b *builder) reduce(n *onnxlite.Node, out string) error {
 	if err != nil {
 		return err
 	}
-	r := len(b.shape(n.Inputs[0]))
-	var axes []int
-	if n.OpType == "ReduceSum" && b.opset >= 13 {
-		if b.has(n, 1) {
-			if axes, err = b.constInts(n, 1, "axes"); err != nil {
-				return err
-			}
-		}
-	} else {
-		axes = ints(n.AttrInts("axes", nil))
+	axes, noop, err := b.st.ReduceAxes(n)
+	if err != nil {
+		return err
 	}
-	if len(axes) == 0 && n.AttrInt("noop_with_empty_axes", 0) != 0 {
+	if noop {
 		return b.set(out, x)
-	}
-	for i, a := range axes {
-		if axes[i], err = normAxis(a, r); err != nil {
-			return err
-		}
 	}
 	y, err := ops.Reduce(x, axes, n.AttrInt("keepdims", 1) != 0, n.OpType == "ReduceMean")
 	if err != nil {
@@ -937,35 +954,25 @@ func (b *builder) pad(n *onnxlite.Node, out string) error {
 	if err != nil {
 		return err
 	}
-	mode := n.AttrString("mode", "constant")
-	var pads []int
+	pads, err := b.st.Pads(n)
+	if err != nil {
+		return err
+	}
 	var value float64
 	switch {
-	case b.opset < 2:
-		pads = ints(n.AttrInts("paddings", nil))
-		value = float64(n.AttrFloat("value", 0))
 	case b.opset < 11:
-		pads = ints(n.AttrInts("pads", nil))
 		value = float64(n.AttrFloat("value", 0))
-	default:
-		if pads, err = b.constInts(n, 1, "pads"); err != nil {
+	case b.has(n, 2):
+		v, err := b.constFloats(n, 2, "constant_value")
+		if err != nil {
 			return err
 		}
-		if b.has(n, 2) {
-			v, err := b.constFloats(n, 2, "constant_value")
-			if err != nil {
-				return err
-			}
-			if len(v) != 1 {
-				return fmt.Errorf("Pad: expected a scalar constant_value, got %d values", len(v))
-			}
-			value = v[0]
+		if len(v) != 1 {
+			return fmt.Errorf("Pad: expected a scalar constant_value, got %d values", len(v))
 		}
+		value = v[0]
 	}
-	if r := len(b.shape(n.Inputs[0])); len(pads) != 2*r {
-		return fmt.Errorf("Pad: expected %d pads for rank %d, got %v", 2*r, r, pads)
-	}
-	y, err := ops.Pad(x, pads, mode, value)
+	y, err := ops.Pad(x, pads, n.AttrString("mode", "constant"), value)
 	if err != nil {
 		return err
 	}

@@ -38,8 +38,9 @@ func (v ValueShape) NumElements() int64 { return prodInt64(v.Shape) }
 // with every declared fixed dim. Naming a value that is not a runtime input is
 // an error.
 //
-// The shape rules follow the ONNX operator specifications (onnx/defs, opsets 1
-// to 17) for every supported operator, with numpy broadcasting for the
+// The shape rules follow the ONNX operator specifications (Operators.md and
+// Changelog.md of ONNX 1.23, opsets 1 to MaxOpset) for every supported
+// operator, with each revision's semantics where they changed, with numpy broadcasting for the
 // elementwise operators. A node whose inputs are all constant and whose operator
 // is Shape, Gather, Slice, Squeeze, Unsqueeze, Concat, Cast, Constant,
 // ConstantOfShape, Range, Reshape, Identity, Flatten, integer Add/Sub/Mul/Div,
@@ -65,7 +66,7 @@ func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 	}
 	for _, t := range g.Initializers {
 		if err := checkTensor(t); err != nil {
-			return nil, fmt.Errorf("onnxlite: initializer %q: %v: %w", t.Name, err, ErrInvalid)
+			return nil, invalidf("initializer %q: %v", t.Name, err)
 		}
 		vs := ValueShape{DType: t.DType, Shape: t.Shape()}
 		if err := checkValueLimits(t.Name, vs); err != nil {
@@ -219,7 +220,7 @@ func describeDims(ds []Dim) string {
 // checkValueLimits refuses values beyond DefaultLimits.MaxTensorElements or DefaultLimits.MaxRank.
 func checkValueLimits(name string, vs ValueShape) error {
 	if len(vs.Shape) > DefaultLimits.MaxRank {
-		return fmt.Errorf("onnxlite: value %q: shape %v: %w", name, vs.Shape,
+		return fmt.Errorf("value %q: shape %v: %w", name, vs.Shape,
 			&LimitError{Limit: "MaxRank", Value: int64(len(vs.Shape)), Max: int64(DefaultLimits.MaxRank)})
 	}
 	dims := make([]int64, len(vs.Shape))
@@ -227,7 +228,7 @@ func checkValueLimits(name string, vs ValueShape) error {
 		dims[i] = int64(d)
 	}
 	if _, err := elementCount(dims, DefaultLimits.MaxTensorElements); err != nil {
-		return fmt.Errorf("onnxlite: value %q: shape %v: %w", name, vs.Shape, err)
+		return fmt.Errorf("value %q: shape %v: %w", name, vs.Shape, err)
 	}
 	return nil
 }
@@ -241,14 +242,22 @@ type nodeCtx struct {
 	consts []*Tensor     // nil unless the input is constant
 }
 
-// errorf wraps ErrInvalid with the node's name and operator.
+// errorf returns an error wrapping ErrInvalid that names the node and its
+// operator: the model breaks the operator's specification.
 func (c *nodeCtx) errorf(format string, args ...any) error {
-	return fmt.Errorf("onnxlite: node %q (%s): "+format+": %w", append([]any{nodeName(c.n, c.idx), c.n.OpType}, append(args, ErrInvalid)...)...)
+	return invalidf("node %q (%s): "+format, append([]any{nodeName(c.n, c.idx), c.n.OpType}, args...)...)
+}
+
+// unsupportedf returns an error wrapping ErrUnsupported that names the node
+// and its operator: the node is valid, but asks for something apportion
+// does not compute.
+func (c *nodeCtx) unsupportedf(format string, args ...any) error {
+	return unsupportedf("node %q (%s): "+format, append([]any{nodeName(c.n, c.idx), c.n.OpType}, args...)...)
 }
 
 // wrap prefixes err with the node's name and operator.
 func (c *nodeCtx) wrap(err error) error {
-	return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(c.n, c.idx), c.n.OpType, err)
+	return fmt.Errorf("node %q (%s): %w", nodeName(c.n, c.idx), c.n.OpType, err)
 }
 
 // input returns input i, or nil when it is omitted.
@@ -267,16 +276,25 @@ func (c *nodeCtx) need(i int) (*ValueShape, error) {
 	return nil, c.errorf("expected input %d, got none (the node has %d inputs)", i, len(c.n.Inputs))
 }
 
-// constInts returns the integer elements of constant input i; ok is false when
-// the input is omitted.
-func (c *nodeCtx) constInts(i int, what string) (vals []int64, ok bool, err error) {
+// constInput returns constant input i; ok is false when the input is
+// omitted. A run-time value there is an error wrapping ErrUnsupported.
+func (c *nodeCtx) constInput(i int, what string) (t *Tensor, ok bool, err error) {
 	if c.input(i) == nil {
 		return nil, false, nil
 	}
-	t := c.consts[i]
-	if t == nil {
-		return nil, true, c.errorf("%s (input %d, %q) must be a constant (an initializer or folded value), got a run-time value",
+	if t = c.consts[i]; t == nil {
+		return nil, true, c.unsupportedf("its %s (input %d, %q) are computed at run time: apportion needs them constant (an initializer, a folded value or an input given with the model)",
 			what, i, c.n.Inputs[i])
+	}
+	return t, true, nil
+}
+
+// constInts returns the integer elements of constant input i; ok is false
+// when the input is omitted.
+func (c *nodeCtx) constInts(i int, what string) (vals []int64, ok bool, err error) {
+	t, ok, err := c.constInput(i, what)
+	if t == nil {
+		return nil, ok, err
 	}
 	v, err := t.Int64s()
 	if err != nil {
@@ -322,8 +340,8 @@ func (s *Static) inferNode(n *Node, idx int, opset int64) error {
 	case c.allConst() && canFold(c):
 		outs, err = fold(c)
 	case FoldOnly(n.OpType):
-		return fmt.Errorf("onnxlite: node %q (%s): expected constant inputs to fold it, got run-time value(s) %s: %s is not supported at run time: %w (%w)",
-			nodeName(n, idx), n.OpType, runtimeInputs(c), n.OpType, ErrFoldOnly, ErrUnsupported)
+		return fmt.Errorf("%w: node %q (%s): %s needs constant inputs, got the run-time value(s) %s (%w)",
+			ErrUnsupported, nodeName(n, idx), n.OpType, n.OpType, runtimeInputs(c), ErrFoldOnly)
 	}
 	if err != nil {
 		return err
@@ -336,7 +354,7 @@ func (s *Static) inferNode(n *Node, idx int, opset int64) error {
 			t.Name = n.Outputs[i]
 			vs := ValueShape{DType: t.DType, Shape: t.Shape()}
 			if err := checkValueLimits(t.Name, vs); err != nil {
-				return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(n, idx), n.OpType, err)
+				return c.wrap(err)
 			}
 			s.Values[t.Name] = vs
 			s.Consts[t.Name] = t
@@ -355,7 +373,7 @@ func (s *Static) inferNode(n *Node, idx int, opset int64) error {
 			return c.errorf("output %d (%q): expected at most %d outputs, got %d", i, o, len(shapes), len(n.Outputs))
 		}
 		if err := checkValueLimits(o, shapes[i]); err != nil {
-			return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(n, idx), n.OpType, err)
+			return c.wrap(err)
 		}
 		s.Values[o] = shapes[i]
 	}

@@ -5,13 +5,18 @@ import (
 	"sort"
 )
 
-// The default-domain operator set versions the shape rules cover. Models that
-// import an older default opset (1–6, as the early PyTorch exporters wrote)
-// are read with the semantics of their version where the rules differ, e.g.
-// the legacy broadcast attribute of the elementwise operators.
+// The default-domain operator set versions the shape rules cover: every
+// revision of each supported operator up to MaxOpset (26, the newest ONNX
+// Runtime 1.30 accepts), with its semantics where a revision changed them
+// (Reduce* with axes as an input from 18, Pad's axes from 18 and wrap from
+// 19, Split's num_outputs from 18, AveragePool's dilations from 19, …).
+// Models that import an older default opset (1–6, as the early PyTorch
+// exporters wrote) are read with the semantics of their version where the
+// rules differ, e.g. the legacy broadcast attribute of the elementwise
+// operators. A newer opset is refused with ErrUnsupported.
 const (
 	MinOpset = 1
-	MaxOpset = 17
+	MaxOpset = 26
 )
 
 // onnxlite supports an operator when Infer can handle its nodes: it has a

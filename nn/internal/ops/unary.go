@@ -9,6 +9,7 @@ import (
 	"unsafe"
 
 	"github.com/chewxy/hm"
+	"github.com/x448/float16"
 	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
 )
@@ -199,6 +200,36 @@ var unaryTable = map[string]unaryFn{
 		f:  func(x, _, _ float64) float64 { return x },
 		df: func(_, _, _, _ float64) float64 { return 1 },
 	},
+	// Cast to an integer type of a floating-point value: truncation toward
+	// zero, with no derivative (an integer carries none).
+	"CastInt": {f: func(x, _, _ float64) float64 { return math.Trunc(x) }, df: zeroDerivative},
+	// Cast to BOOL: 1 where x ≠ 0 (NaN included), 0 elsewhere.
+	"CastBool": {
+		f: func(x, _, _ float64) float64 {
+			if x != 0 {
+				return 1
+			}
+			return 0
+		},
+		df: zeroDerivative,
+	},
+	// Casts to a narrower floating-point type round to nearest, ties to
+	// even (IEEE 754 §4.3.1). The derivative is 1, as in PyTorch, whose
+	// autograd passes the gradient through a change of dtype (common
+	// practice): the rounding is a change of representation, not of the
+	// function the model computes.
+	"CastFloat": {
+		f:  func(x, _, _ float64) float64 { return float64(float32(x)) },
+		df: func(_, _, _, _ float64) float64 { return 1 },
+	},
+	"CastFloat16": {
+		f:  func(x, _, _ float64) float64 { return float64(float16.Fromfloat32(float32(x)).Float32()) },
+		df: func(_, _, _, _ float64) float64 { return 1 },
+	},
+	"CastBFloat16": {
+		f:  func(x, _, _ float64) float64 { return float64(bfloat16(float32(x))) },
+		df: func(_, _, _, _ float64) float64 { return 1 },
+	},
 	// Clip(lo=alpha, hi=beta): y = min(max(x, lo), hi). The gradient passes
 	// where lo ≤ x ≤ hi, both kinks included (common practice).
 	"Clip": {
@@ -212,6 +243,22 @@ var unaryTable = map[string]unaryFn{
 	},
 }
 
+// zeroDerivative is the derivative of the piecewise-constant functions.
+func zeroDerivative(_, _, _, _ float64) float64 { return 0 }
+
+// bfloat16 rounds x to the nearest bfloat16, ties to even: the upper 16
+// bits of its binary32 pattern after adding half an ulp of bfloat16 (the
+// rounding ONNX Runtime's and PyTorch's conversions use, from memory).
+// NaN stays a NaN.
+func bfloat16(x float32) float32 {
+	if x != x {
+		return x
+	}
+	b := math.Float32bits(x)
+	b += 0x7fff + (b>>16)&1
+	return math.Float32frombits(b &^ 0xffff)
+}
+
 // sigmoid is 1/(1 + e⁻ˣ), evaluated without overflow for large |x|.
 func sigmoid(x float64) float64 {
 	if x >= 0 {
@@ -221,10 +268,12 @@ func sigmoid(x float64) float64 {
 	return e / (1 + e)
 }
 
-// unary applies the ONNX elementwise op named op: Relu, LeakyRelu(alpha),
+// Unary applies the ONNX elementwise op named op: Relu, LeakyRelu(alpha),
 // Elu(alpha), Selu(alpha, gamma=beta), Celu(alpha), Sigmoid,
 // HardSigmoid(alpha, beta), HardSwish, Tanh, Softplus, Softsign, Erf, Abs,
-// Sqrt, Exp, Log, Neg, Pow (constant exponent alpha), Identity.
+// Sqrt, Exp, Log, Neg, Pow (constant exponent alpha), Identity; and the
+// casts of a run-time value: CastInt (truncation toward zero), CastBool,
+// CastFloat, CastFloat16, CastBFloat16 (rounding to the narrower type).
 //
 // The caller passes the ONNX defaults for absent attributes (LeakyRelu 0.01,
 // Elu 1, Celu 1, Selu 1.67326319217681884765625 and 1.05070102214813232421875,

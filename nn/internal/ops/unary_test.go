@@ -285,6 +285,7 @@ func elemUnaryCases() []elemCase {
 		mk("Clip", -0.5, 0.7, wide, -0.5, 0.7),
 		mk("Clip", math.Inf(-1), 0.3, wide, 0.3),
 		mk("Clip", -1, math.Inf(1), wide, -1),
+		mk("CastInt", 0, 0, wide, -4, -3, -2, -1, 0, 1, 2, 3, 4),
 	}
 }
 
