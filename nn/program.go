@@ -413,6 +413,16 @@ func isFloat(dt onnxlite.DataType) bool {
 	return dt == onnxlite.Float || dt == onnxlite.Double || dt == onnxlite.Float16
 }
 
+// numeric reports whether the engine holds values of type dt: floating
+// point, integer or boolean, all as floating-point numbers.
+func numeric(dt onnxlite.DataType) bool {
+	switch dt {
+	case onnxlite.String, onnxlite.Complex64, onnxlite.Complex128, onnxlite.Undefined:
+		return false
+	}
+	return true
+}
+
 // run executes p on data (one flat slice per runtime input). When p.req.grad
 // is set, mask (the one-hot selection, shaped like the output) must be given
 // and grad returns the gradient w.r.t. the first input.

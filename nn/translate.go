@@ -42,8 +42,8 @@ func (b *builder) value(name string) (*G.Node, error) {
 	if !ok {
 		return nil, fmt.Errorf("value %q is not computed by any translated node", name)
 	}
-	if !isFloat(t.DType) && t.DType != onnxlite.Int64 && t.DType != onnxlite.Int32 {
-		return nil, fmt.Errorf("constant %q: %w: element type %v in arithmetic", name, onnxlite.ErrUnsupported, t.DType)
+	if !numeric(t.DType) {
+		return nil, fmt.Errorf("%w: constant %q of element type %v in arithmetic", onnxlite.ErrUnsupported, name, t.DType)
 	}
 	vals, err := t.Float64s()
 	if err != nil {
@@ -163,6 +163,13 @@ func ones(n int) []int {
 // (onnxlite.FoldOnly) it is the set of operators nn runs (Unsupported).
 var translations = map[string]func(b *builder, n *onnxlite.Node, out string) error{
 	"Identity": (*builder).identity, "Dropout": (*builder).identity, "Constant": (*builder).constantNode,
+	"Gelu": (*builder).unary, "Mish": (*builder).unary, "ThresholdedRelu": (*builder).unary,
+	"Reciprocal": (*builder).unary, "Sign": (*builder).unary, "Floor": (*builder).unary,
+	"Ceil": (*builder).unary, "Round": (*builder).unary,
+	"Max": (*builder).variadic, "Min": (*builder).variadic, "Sum": (*builder).variadic, "Mean": (*builder).variadic,
+	"Equal": (*builder).binary, "Less": (*builder).binary, "Greater": (*builder).binary,
+	"ReduceMax": (*builder).reduce, "ReduceMin": (*builder).reduce, "ReduceL2": (*builder).reduce,
+	"ReduceLogSumExp": (*builder).reduce, "Where": (*builder).where,
 	"Cast":    (*builder).cast,
 	"Reshape": (*builder).alias, "Flatten": (*builder).alias, "Squeeze": (*builder).alias, "Unsqueeze": (*builder).alias,
 	"Transpose": (*builder).transpose, "Concat": (*builder).concat,
@@ -236,8 +243,9 @@ func (b *builder) node(n *onnxlite.Node) error {
 		out = n.Outputs[0]
 	}
 	for _, o := range n.Outputs {
-		if o != "" && !isFloat(b.st.Values[o].DType) && !(n.OpType == "Dropout" || n.OpType == "MaxPool") {
-			return fmt.Errorf("%w: run-time value %q of element type %v (only floating-point values are computed at run time)", onnxlite.ErrUnsupported, o, b.st.Values[o].DType)
+		dt := b.st.Values[o].DType
+		if o != "" && !isFloat(dt) && dt != onnxlite.Bool && !(n.OpType == "Dropout" || n.OpType == "MaxPool") {
+			return fmt.Errorf("%w: run-time value %q of element type %v (floating-point and boolean values are computed at run time)", onnxlite.ErrUnsupported, o, dt)
 		}
 	}
 	if b.fused[n] {
@@ -674,8 +682,14 @@ func (b *builder) unary(n *onnxlite.Node, out string) error {
 	case "HardSigmoid":
 		alpha = float64(n.AttrFloat("alpha", 0.2))
 		beta = float64(n.AttrFloat("beta", 0.5))
+	case "ThresholdedRelu":
+		alpha = float64(n.AttrFloat("alpha", 1))
 	}
-	y, err := ops.Unary(x, n.OpType, alpha, beta)
+	kind := n.OpType
+	if kind == "Gelu" && n.AttrString("approximate", "none") == "tanh" {
+		kind = "GeluTanh"
+	}
+	y, err := ops.Unary(x, kind, alpha, beta)
 	if err != nil {
 		return err
 	}
@@ -845,7 +859,7 @@ func (b *builder) reduce(n *onnxlite.Node, out string) error {
 	if noop {
 		return b.set(out, x)
 	}
-	y, err := ops.Reduce(x, axes, n.AttrInt("keepdims", 1) != 0, n.OpType == "ReduceMean")
+	y, err := ops.ReduceBy(x, axes, n.AttrInt("keepdims", 1) != 0, n.OpType)
 	if err != nil {
 		return err
 	}

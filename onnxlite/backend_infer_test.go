@@ -10,6 +10,7 @@ import (
 	"testing"
 
 	"github.com/apportion/apportion/internal/onnxtestdata"
+	"github.com/apportion/apportion/internal/ortdata"
 	"github.com/apportion/apportion/onnxlite"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
@@ -306,7 +307,9 @@ func sameTensor(got, want *onnxlite.Tensor) error {
 
 // TestSupportedOpsInBackendData checks every supported operator name against
 // the ONNX backend test data (Debian libonnx-testdata 1.12.0): each is used by
-// at least one node of some case, and every case built only from supported
+// at least one node of some case, or, for the operators that came after
+// opset 17 (Gelu, GroupNormalization, Mish), by one of the ONNX Runtime 1.30
+// cases of testdata/ort; and every backend case built only from supported
 // operators validates (the ONNX checker accepted them when they were made).
 func TestSupportedOpsInBackendData(t *testing.T) {
 	dir := onnxtestdata.Dir(t)
@@ -325,8 +328,13 @@ func TestSupportedOpsInBackendData(t *testing.T) {
 			assert.NoError(t, m.Validate(), c.Suite+"/"+c.Name)
 		}
 	}
+	for _, c := range ortdata.Cases(t) {
+		for _, op := range c.Ops {
+			used[op] = true
+		}
+	}
 	for _, op := range onnxlite.SupportedOps() {
-		assert.True(t, used[op], "%s is used by no backend case", op)
+		assert.True(t, used[op], "%s is used by no backend case or ONNX Runtime fixture", op)
 	}
 }
 

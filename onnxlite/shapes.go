@@ -28,15 +28,18 @@ func init() {
 		"BatchNormalization": {1, ruleBatchNorm},
 		"Flatten":            {1, ruleFlatten}, "Reshape": {1, ruleReshape}, "Transpose": {1, ruleTranspose},
 		"Squeeze": {1, ruleSqueeze}, "Unsqueeze": {1, ruleUnsqueeze}, "Concat": {0, ruleConcat}, "Pad": {1, rulePad},
-		"ReduceMean": {1, ruleReduce}, "ReduceSum": {1, ruleReduce},
+		"ReduceMean": {1, ruleReduce}, "ReduceSum": {1, ruleReduce}, "ReduceMax": {1, ruleReduce},
+		"ReduceMin": {1, ruleReduce}, "ReduceL2": {1, ruleReduce}, "ReduceLogSumExp": {1, ruleReduce},
 		"Softmax": {1, ruleSoftmax}, "LogSoftmax": {1, ruleSoftmax},
 		"Dropout": {1, ruleDropout}, "Cast": {1, ruleCast}, "Clip": {1, ruleClip},
 	}
 	for _, op := range []string{"Neg", "Abs", "Sqrt", "Exp", "Log", "Relu", "LeakyRelu", "Elu",
 		"Selu", "Celu", "Sigmoid", "HardSigmoid", "HardSwish", "Tanh", "Softplus", "Softsign",
-		"Erf", "Identity"} {
+		"Erf", "Identity", "Mish", "ThresholdedRelu", "Reciprocal", "Sign", "Floor", "Ceil", "Round"} {
 		shapeRules[op] = shapeRule{1, ruleUnary}
 	}
+	shapeRules["Gelu"] = shapeRule{1, ruleGelu}
+	addIndexRules()
 }
 
 // outShapes checks the node's required inputs and applies its shape rule.
@@ -108,6 +111,14 @@ func normAxis(axis int64, rank int) (int, error) {
 func ruleUnary(c *nodeCtx) ([]ValueShape, error) {
 	x := c.in[0]
 	return []ValueShape{{x.DType, slices.Clone(x.Shape)}}, nil
+}
+
+// ruleGelu: the output has the input's shape; approximate is none or tanh.
+func ruleGelu(c *nodeCtx) ([]ValueShape, error) {
+	if a := c.n.AttrString("approximate", "none"); a != "none" && a != "tanh" {
+		return nil, c.errorf("approximate %q: expected none or tanh", a)
+	}
+	return ruleUnary(c)
 }
 
 // ruleBinary covers the elementwise Add, Sub, Mul, Div and Pow: numpy
@@ -767,7 +778,8 @@ func padsOf(c *nodeCtx, r int) ([]int64, error) {
 	return pads, nil
 }
 
-// ruleReduce covers ReduceMean and ReduceSum. Axes are an attribute before the revision that made
+// ruleReduce covers ReduceMean, ReduceSum, ReduceMax, ReduceMin, ReduceL2
+// and ReduceLogSumExp. Axes are an attribute before the revision that made
 // them input 1 (13 for ReduceSum, 18 for the others); from that revision no
 // axes, or an empty axes tensor, reduce every axis unless
 // noop_with_empty_axes=1, which makes the node the identity.
