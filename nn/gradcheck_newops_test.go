@@ -7,9 +7,10 @@ import (
 )
 
 // TestGradcheckNewOperators checks the gradient of the operators and
-// revisions added for opsets 18 to 26 and the exporters of today (GELU,
-// masks, variadic and reducing operators) against central finite
-// differences in float64, as TestGradcheckOperators does for the others. Floor, Ceil, Round and Sign have a zero gradient wherever
+// revisions added for opsets 18 to 26 and the exporters of today
+// (normalizations, GELU, masks, variadic and reducing operators) against
+// central finite differences in float64, as TestGradcheckOperators does for
+// the others. Floor, Ceil, Round and Sign have a zero gradient wherever
 // they have one (the backward passes zero; PyTorch's does too, common
 // practice); the check confirms the zero away from their jumps.
 func TestGradcheckNewOperators(t *testing.T) {
@@ -61,6 +62,25 @@ func TestGradcheckNewOperators(t *testing.T) {
 		{name: "Pad axes wrap", build: func(g *irGraph) {
 			g.node("Pad", []string{"x", g.ints("pads", 2, 3), "", g.ints("axes", -1)}, "y", aString("mode", "wrap"))
 		}, shape: []int64{2, 3}, lo: -1, hi: 1, opset: 19},
+		{name: "LayerNormalization axis -1", build: func(g *irGraph) {
+			g.node("LayerNormalization", []string{"x", g.random("s", 1, 5), g.random("b", 1, 5)}, "y")
+		}, shape: []int64{2, 5}, lo: -2, hi: 2, opset: 17},
+		{name: "LayerNormalization axis 1 with statistics", build: func(g *irGraph) {
+			g.m.Graph.Nodes = append(g.m.Graph.Nodes, &onnxlite.Node{Name: "ln", OpType: "LayerNormalization",
+				Inputs: []string{"x", g.random("s", 1, 3, 4)}, Outputs: []string{"a", "mean", "inv"},
+				Attrs: []*onnxlite.Attribute{aInt("axis", 1), aFloat("epsilon", 1e-3)}})
+			m := g.node("Mul", []string{"mean", "inv"}, "mi")
+			g.node("Add", []string{"a", m}, "y")
+		}, shape: []int64{3, 4}, lo: -2, hi: 2, opset: 17},
+		{name: "GroupNormalization opset 18", build: func(g *irGraph) {
+			g.node("GroupNormalization", []string{"x", g.random("s", 1, 2), g.random("b", 1, 2)}, "y", aInt("num_groups", 2))
+		}, shape: []int64{4, 3}, lo: -2, hi: 2, opset: 18},
+		{name: "GroupNormalization opset 21", build: func(g *irGraph) {
+			g.node("GroupNormalization", []string{"x", g.random("s", 1, 4), g.random("b", 1, 4)}, "y", aInt("num_groups", 2))
+		}, shape: []int64{4, 3}, lo: -2, hi: 2, opset: 21},
+		{name: "InstanceNormalization", build: func(g *irGraph) {
+			g.node("InstanceNormalization", []string{"x", g.random("s", 1, 3), g.random("b", 1, 3)}, "y", aFloat("epsilon", 1e-4))
+		}, shape: []int64{3, 2, 3}, lo: -2, hi: 2},
 		{name: "ReduceMean axes input", build: func(g *irGraph) {
 			a := g.node("ReduceMean", []string{"x", g.ints("a1", 2)}, "a")
 			g.node("Mul", []string{a, "x"}, "y")

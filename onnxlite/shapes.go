@@ -40,6 +40,7 @@ func init() {
 	}
 	shapeRules["Gelu"] = shapeRule{1, ruleGelu}
 	addIndexRules()
+	addNormRules()
 }
 
 // outShapes checks the node's required inputs and applies its shape rule.

@@ -24,6 +24,10 @@ func elemSelectCases() []elemCase {
 				return -2 + 4*r.Float64()
 			},
 			build: func(xs []*G.Node) (*G.Node, error) { return Where(xs[0], xs[1], xs[2]) }},
+		{name: "Normalize rows of 4", shapes: [][]int{{3, 2, 4}}, draw: wide,
+			build: func(xs []*G.Node) (*G.Node, error) { return Normalize(xs[0], 4, 1e-5) }},
+		{name: "Normalize rows of 12", shapes: [][]int{{2, 3, 4}}, draw: wide,
+			build: func(xs []*G.Node) (*G.Node, error) { return Normalize(xs[0], 12, 1e-3) }},
 	}
 	for _, kind := range []string{"ReduceMax", "ReduceMin", "ReduceL2", "ReduceLogSumExp"} {
 		cases = append(cases,
@@ -55,6 +59,8 @@ func TestSelectClosedForms(t *testing.T) {
 	require.NoError(t, err)
 	l2, err := ReduceBy(x, nil, false, "ReduceL2")
 	require.NoError(t, err)
+	nrm, err := Normalize(x, 3, 0)
+	require.NoError(t, err)
 	big, _ := elemInput(g, tensor.Float32, []int{2}, []float64{88, 100}, "big")
 	lse32, err := ReduceBy(big, nil, false, "ReduceLogSumExp")
 	require.NoError(t, err)
@@ -65,6 +71,8 @@ func TestSelectClosedForms(t *testing.T) {
 	assert.InDelta(t, 3+math.Log(1+math.Exp(-1)+math.Exp(-2)), elemValues(t, lse.Value())[0], 1e-15)
 	// √(1 + 4 + … + 36) = √91.
 	assert.InDelta(t, math.Sqrt(91), elemValues(t, l2.Value())[0], 1e-14)
+	// (x − 2)/√(2/3) for the row 1, 2, 3: ∓√(3/2) and 0.
+	assert.InDeltaSlice(t, []float64{-math.Sqrt(1.5), 0, math.Sqrt(1.5)}, elemValues(t, nrm.Value())[:3], 1e-15)
 	// e¹⁰⁰ overflows binary32 (max ≈ 3.4e38); relative to the maximum the
 	// sum does not: 100 + log(1 + e⁻¹²).
 	assert.InDelta(t, 100+math.Log1p(math.Exp(-12)), elemValues(t, lse32.Value())[0], 1e-4)
