@@ -6,9 +6,9 @@ import (
 	"github.com/apportion/apportion/onnxlite"
 )
 
-// TestGradcheckNewOperators checks the gradient of the operators and
-// revisions added for opsets 18 to 26 and the exporters of today
-// (normalizations, GELU, masks, variadic and reducing operators) against
+// TestGradcheckNewOperators checks the gradient of every operator added for
+// opsets 18 to 26 and the exporters of today (normalizations, GELU,
+// selections, resampling, masks, variadic and reducing operators) against
 // central finite differences in float64, as TestGradcheckOperators does for
 // the others. Floor, Ceil, Round and Sign have a zero gradient wherever
 // they have one (the backward passes zero; PyTorch's does too, common
@@ -59,6 +59,18 @@ func TestGradcheckNewOperators(t *testing.T) {
 			m := g.node("Mul", []string{ac, bu}, "m")
 			g.node("Add", []string{m, d}, "y")
 		}, shape: []int64{3, 4}, lo: -1, hi: 1, opset: 18},
+		{name: "Slice Split Concat", build: func(g *irGraph) {
+			s := g.node("Slice", []string{"x", g.ints("st", 4), g.ints("en", -100), g.ints("ax", 2), g.ints("sp", -2)}, "s")
+			g.m.Graph.Nodes = append(g.m.Graph.Nodes, &onnxlite.Node{Name: "split", OpType: "Split",
+				Inputs: []string{"x"}, Outputs: []string{"p", "q", "r"}, Attrs: []*onnxlite.Attribute{aInt("axis", 2), aInt("num_outputs", 3)}})
+			pq := g.node("Mul", []string{"p", "q"}, "pq")
+			g.node("Concat", []string{s, pq, "r"}, "y", aInt("axis", 2))
+		}, shape: []int64{4, 5}, lo: -1, hi: 1, opset: 18},
+		{name: "Expand Tile Gather", build: func(g *irGraph) {
+			e := g.node("Expand", []string{"x", g.ints("sh", 1, 3, 4)}, "e")
+			tl := g.node("Tile", []string{e, g.ints("rp", 1, 1, 2)}, "t")
+			g.node("Gather", []string{tl, g.ints("id", 5, 0, -1, 5)}, "y", aInt("axis", 2))
+		}, shape: []int64{3, 1}, lo: -1, hi: 1},
 		{name: "Pad axes wrap", build: func(g *irGraph) {
 			g.node("Pad", []string{"x", g.ints("pads", 2, 3), "", g.ints("axes", -1)}, "y", aString("mode", "wrap"))
 		}, shape: []int64{2, 3}, lo: -1, hi: 1, opset: 19},
@@ -81,10 +93,17 @@ func TestGradcheckNewOperators(t *testing.T) {
 		{name: "InstanceNormalization", build: func(g *irGraph) {
 			g.node("InstanceNormalization", []string{"x", g.random("s", 1, 3), g.random("b", 1, 3)}, "y", aFloat("epsilon", 1e-4))
 		}, shape: []int64{3, 2, 3}, lo: -2, hi: 2},
-		{name: "ReduceMean axes input", build: func(g *irGraph) {
-			a := g.node("ReduceMean", []string{"x", g.ints("a1", 2)}, "a")
-			g.node("Mul", []string{a, "x"}, "y")
-		}, shape: []int64{3, 4}, lo: -1, hi: 1, opset: 18},
+		{name: "Resize linear and cubic", build: func(g *irGraph) {
+			a := g.node("Resize", []string{"x", "", g.floats("sc", []int64{4}, []float32{1, 1, 1.5, 2})}, "a", aString("mode", "linear"))
+			g.node("Resize", []string{a, "", "", g.ints("sz", 5, 3)}, "y", aString("mode", "cubic"),
+				aString("coordinate_transformation_mode", "align_corners"), aInts("axes", 2, 3))
+		}, shape: []int64{2, 3, 4}, lo: -1, hi: 1, opset: 19},
+		{name: "Resize nearest antialias, Upsample", build: func(g *irGraph) {
+			a := g.node("Resize", []string{"x", "", g.floats("sc", []int64{2}, []float32{0.5, 0.75})}, "a",
+				aString("mode", "linear"), aInt("antialias", 1), aInts("axes", 2, 3))
+			g.node("Resize", []string{a, "", g.floats("s2", []int64{4}, []float32{1, 1, 2, 3})}, "y",
+				aString("mode", "nearest"), aString("coordinate_transformation_mode", "asymmetric"), aString("nearest_mode", "floor"))
+		}, shape: []int64{1, 6, 4}, lo: -1, hi: 1, opset: 18},
 	}
 	checkOpCases(t, cases, 300)
 }

@@ -30,25 +30,6 @@ var inferExpectedFailures = map[string]string{
 	"node/test_castlike_FLOAT_to_BFLOAT16_expanded": "model declares like [3 4], data set gives [1]",
 }
 
-func init() {
-	// Gather and Slice are fold-only: on run-time data they are refused.
-	for _, c := range []string{
-		"node/test_gather_0", "node/test_gather_1", "node/test_gather_2d_indices",
-		"node/test_gather_negative_indices", "pytorch-converted/test_Embedding",
-		"pytorch-converted/test_Embedding_sparse",
-	} {
-		inferExpectedFailures[c] = "Gather of run-time data is fold-only"
-	}
-	for _, c := range []string{
-		"node/test_slice", "node/test_slice_default_axes", "node/test_slice_default_steps",
-		"node/test_slice_end_out_of_bounds", "node/test_slice_neg", "node/test_slice_neg_steps",
-		"node/test_slice_negative_axes", "node/test_slice_start_out_of_bounds",
-		"pytorch-operator/test_operator_index",
-	} {
-		inferExpectedFailures[c] = "Slice of run-time data is fold-only"
-	}
-}
-
 // backendCase is a decoded backend test case with the shapes of data set 0.
 type backendCase struct {
 	name    string
@@ -113,8 +94,10 @@ func supportedCases(t *testing.T) (cases []backendCase, total int) {
 // initializers; the node tests feed them as graph inputs, so the test passes
 // their input_*.pb values as initializers, as an exporter would write them.
 var paramSlots = map[string][]int{
-	"Reshape": {1}, "Squeeze": {1}, "Unsqueeze": {1}, "Pad": {1, 2}, "ReduceSum": {1},
-	"Slice": {1, 2, 3, 4}, "ConstantOfShape": {0}, "Range": {0, 1, 2},
+	"Reshape": {1}, "Squeeze": {1}, "Unsqueeze": {1}, "Pad": {1, 2, 3}, "ReduceSum": {1},
+	"ReduceMean": {1}, "ReduceMax": {1}, "ReduceMin": {1}, "ReduceL2": {1}, "ReduceLogSumExp": {1},
+	"Slice": {1, 2, 3, 4}, "ConstantOfShape": {0}, "Range": {0, 1, 2}, "Expand": {1}, "Tile": {1},
+	"Split": {1}, "Resize": {1, 2, 3}, "Upsample": {1},
 }
 
 // paramInputs names the graph inputs that feed a shape-parameter slot.
@@ -177,8 +160,6 @@ func TestBackendInferShapes(t *testing.T) {
 			match++
 		case !listed:
 			t.Errorf("%s: %v", bc.name, err)
-		case strings.Contains(reason, "fold-only") && !(errors.Is(err, onnxlite.ErrFoldOnly) && errors.Is(err, onnxlite.ErrUnsupported)):
-			t.Errorf("%s: expected an ErrFoldOnly refusal that is also ErrUnsupported (%s), got %v", bc.name, reason, err)
 		}
 	}
 	for name := range inferExpectedFailures {
@@ -348,7 +329,7 @@ var shapeOps = map[string]bool{
 // (Debian libonnx-testdata 1.12.0, suites pytorch-converted and
 // pytorch-operator) that use shape operators: none may keep a fold-only or
 // Constant node, and every Reshape left must read a folded constant shape.
-// Gather and Slice of run-time data are refused as fold-only instead.
+// Gather and Slice of run-time data stay in the graph, for the engine.
 func TestBackendPyTorchModelsFold(t *testing.T) {
 	cases, _ := supportedCases(t)
 	n := 0
@@ -365,11 +346,6 @@ func TestBackendPyTorchModelsFold(t *testing.T) {
 		}
 		n++
 		st, err := onnxlite.Infer(bc.model, bc.inputs)
-		if reason, ok := inferExpectedFailures[bc.name]; ok && strings.Contains(reason, "fold-only") {
-			require.ErrorIs(t, err, onnxlite.ErrFoldOnly, bc.name)
-			require.ErrorIs(t, err, onnxlite.ErrUnsupported, bc.name)
-			continue
-		}
 		require.NoError(t, err, bc.name)
 		for _, nd := range st.Nodes {
 			assert.False(t, onnxlite.FoldOnly(nd.OpType) || nd.OpType == "Constant", "%s: %s node %q left", bc.name, nd.OpType, nd.Name)

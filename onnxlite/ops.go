@@ -28,7 +28,7 @@ const (
 // foldOnlyOps are the operators Infer supports only when constant folding
 // removes them.
 var foldOnlyOps = map[string]bool{
-	"Shape": true, "Gather": true, "Slice": true, "ConstantOfShape": true, "Range": true,
+	"Shape": true, "ConstantOfShape": true, "Range": true,
 }
 
 // SupportedOps returns the names of the supported default-domain operators,
@@ -57,10 +57,10 @@ func IsSupported(domain, op string) bool {
 }
 
 // FoldOnly reports whether the default-domain operator op is supported only
-// when constant folding removes it: Shape, Gather, Slice, ConstantOfShape and
-// Range. Infer refuses such a node when one of its inputs is a run-time value
-// (Shape excepted: it folds to the inferred shape of any value), with an
-// error wrapping ErrFoldOnly.
+// when constant folding removes it: Shape, ConstantOfShape and Range. Infer
+// refuses such a node when one of its inputs is a run-time value (Shape
+// excepted: it folds to the inferred shape of any value), with an error
+// wrapping ErrFoldOnly.
 func FoldOnly(op string) bool {
 	return foldOnlyOps[op]
 }

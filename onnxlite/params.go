@@ -27,6 +27,34 @@ func (s *Static) ctx(n *Node) *nodeCtx {
 	return c
 }
 
+// SliceParams returns the geometry of Slice node n.
+func (s *Static) SliceParams(n *Node) (SliceParams, error) {
+	c := s.ctx(n)
+	if _, err := c.need(0); err != nil {
+		return SliceParams{}, err
+	}
+	return sliceParams(c)
+}
+
+// SplitSizes returns the axis of Split node n and the length of each part
+// along it, one per output.
+func (s *Static) SplitSizes(n *Node) (axis int, sizes []int, err error) {
+	c := s.ctx(n)
+	if _, err := c.need(0); err != nil {
+		return 0, nil, err
+	}
+	return splitSizes(c)
+}
+
+// ResizeParams returns the geometry of Resize or Upsample node n.
+func (s *Static) ResizeParams(n *Node) (ResizeParams, error) {
+	c := s.ctx(n)
+	if _, err := c.need(0); err != nil {
+		return ResizeParams{}, err
+	}
+	return resizeParams(c)
+}
+
 // Pads returns the pads of Pad node n, two per axis of its data (the begins,
 // then the ends), with the axes input of opset 18 applied.
 func (s *Static) Pads(n *Node) ([]int, error) {

@@ -41,6 +41,7 @@ func init() {
 	shapeRules["Gelu"] = shapeRule{1, ruleGelu}
 	addIndexRules()
 	addNormRules()
+	addResizeRules()
 }
 
 // outShapes checks the node's required inputs and applies its shape rule.
