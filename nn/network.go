@@ -1,7 +1,9 @@
 // Package nn compiles ONNX graphs decoded by onnxlite into gorgonia programs
 // and runs them: batched forward passes and gradients of one selected output
 // element with respect to the input, for every sample of a batch in one
-// forward and one backward pass.
+// forward and one backward pass. Every subgraph whose inputs are all
+// constants is evaluated once, when a program is compiled, with the same
+// operators the program runs.
 //
 // A Network compiles lazily: one program per set of input shapes (and, for
 // gradients, per selected output), each run on a bounded pool of compiled

@@ -162,6 +162,13 @@ func (nw *Network) inputMap(shapes [][]int) map[string][]int {
 	return m
 }
 
+// infer runs shape inference on m (the model or its relaxed copy) for
+// exact run-time input shapes, folding every constant subgraph with the
+// engine.
+func (nw *Network) infer(m *onnxlite.Model, shapes [][]int) (*onnxlite.Static, error) {
+	return onnxlite.InferWith(m, onnxlite.InferOptions{Shapes: nw.inputMap(shapes), Eval: nw.evaluator()})
+}
+
 // inferFor runs shape inference for exact input shapes, relaxing a declared
 // batch of one when the shapes ask for another batch. It reports an error
 // when the relaxed graph is not batch-consistent.
@@ -171,7 +178,7 @@ func (nw *Network) inferFor(shapes [][]int) (*onnxlite.Static, error) {
 		return nil, err
 	}
 	if !relax {
-		return onnxlite.Infer(nw.model, nw.inputMap(shapes))
+		return nw.infer(nw.model, shapes)
 	}
 	return nw.inferRelaxed(shapes)
 }
@@ -210,11 +217,11 @@ func (nw *Network) inferRelaxed(shapes [][]int) (*onnxlite.Static, error) {
 			one[i][0] = 1
 		}
 	}
-	stN, err := onnxlite.Infer(nw.relaxed, nw.inputMap(shapes))
+	stN, err := nw.infer(nw.relaxed, shapes)
 	if err != nil {
 		return nil, err
 	}
-	st1, err := onnxlite.Infer(nw.relaxed, nw.inputMap(one))
+	st1, err := nw.infer(nw.relaxed, one)
 	if err != nil {
 		return nil, err
 	}
@@ -377,7 +384,7 @@ func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
 			return &program{nw: nw, perSample: true, inner: inner, batch: shapes[0][0], inShapes: shapes, req: req, outNames: inner.outNames}, nil
 		}
 	} else {
-		st, err = onnxlite.Infer(nw.model, nw.inputMap(shapes))
+		st, err = nw.infer(nw.model, shapes)
 	}
 	if err != nil {
 		return nil, err

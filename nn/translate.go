@@ -248,9 +248,8 @@ func (b *builder) node(n *onnxlite.Node) error {
 		out = n.Outputs[0]
 	}
 	for _, o := range n.Outputs {
-		dt := b.st.Values[o].DType
-		if o != "" && !isFloat(dt) && dt != onnxlite.Bool && !(n.OpType == "Dropout" || n.OpType == "MaxPool") {
-			return fmt.Errorf("%w: run-time value %q of element type %v (floating-point and boolean values are computed at run time)", onnxlite.ErrUnsupported, o, dt)
+		if dt := b.st.Values[o].DType; o != "" && !numeric(dt) {
+			return fmt.Errorf("%w: run-time value %q of element type %v", onnxlite.ErrUnsupported, o, dt)
 		}
 	}
 	if b.fused[n] {

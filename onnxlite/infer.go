@@ -28,31 +28,57 @@ func (v ValueShape) String() string { return fmt.Sprintf("%v%v", v.DType, v.Shap
 // NumElements is the product of the dims (1 for a scalar).
 func (v ValueShape) NumElements() int64 { return prodInt64(v.Shape) }
 
-// Infer validates m (see Validate), gives every value a concrete shape and
-// element type, and folds the constant subgraphs that exporters emit for shape
-// arithmetic.
-//
-// inputs maps runtime graph inputs (those not backed by an initializer) to
-// concrete shapes. An input absent from the map uses its declared shape, which
-// must then be fully fixed; a given shape must have the declared rank and agree
-// with every declared fixed dim. Naming a value that is not a runtime input is
-// an error.
+// Infer is InferWith with the given input shapes and no other options.
+func Infer(m *Model, inputs map[string][]int) (*Static, error) {
+	return InferWith(m, InferOptions{Shapes: inputs})
+}
+
+// InferOptions tune InferWith. The zero value uses the declared input shapes
+// and folds only what onnxlite evaluates itself.
+type InferOptions struct {
+	// Shapes maps runtime graph inputs (those not backed by an initializer)
+	// to concrete shapes. An input absent from the map uses its declared
+	// shape, which must then be fully fixed; a given shape must have the
+	// declared rank and agree with every declared fixed dim.
+	Shapes map[string][]int
+	// Eval, when set, evaluates every node whose inputs are all constant
+	// and that onnxlite does not fold itself (see Evaluator).
+	Eval Evaluator
+}
+
+// Evaluator computes the outputs of node n of a model of default-domain
+// opset opset, all of whose inputs are the constants in inputs (nil for an
+// omitted optional input). outputs gives the element type and shape Infer
+// inferred for each output (the zero ValueShape for an omitted one); the
+// result has one tensor per output, nil for omitted ones, of that type and
+// shape, except that a floating-point value may be held in another
+// floating-point type: the precision the evaluator computed it in, which
+// Static.Consts keeps (Static.Values keeps the ONNX type). nn's engine is
+// one: it runs the node with the operators it runs at run time.
+type Evaluator func(n *Node, opset int64, inputs []*Tensor, outputs []ValueShape) ([]*Tensor, error)
+
+// InferWith validates m (see Validate), gives every value a concrete shape
+// and element type, and folds the constant subgraphs of the model: the shape
+// arithmetic that exporters emit, and with opts.Eval every node whose inputs
+// are all constant.
 //
 // The shape rules follow the ONNX operator specifications (Operators.md and
 // Changelog.md of ONNX 1.23, opsets 1 to MaxOpset) for every supported
-// operator, with each revision's semantics where they changed, with numpy broadcasting for the
-// elementwise operators. A node whose inputs are all constant and whose operator
-// is Shape, Gather, Slice, Squeeze, Unsqueeze, Concat, Cast, Constant,
-// ConstantOfShape, Range, Reshape, Identity, Flatten, integer Add/Sub/Mul/Div,
-// or float Add/Sub/Mul/Div/Neg of at most 4096 elements, is evaluated: its
-// outputs go to Consts and the node leaves Nodes. Shape always folds, to the
-// inferred shape of its input. A fold-only operator (see FoldOnly) that cannot
-// be folded is an error naming the node that wraps ErrFoldOnly and
-// ErrUnsupported.
+// operator, with each revision's semantics where they changed, and numpy
+// broadcasting for the elementwise operators. A node whose inputs are all
+// constant and whose operator is Shape, Gather, Slice, Squeeze, Unsqueeze,
+// Concat, Cast, Constant, ConstantOfShape, Range, Reshape, Identity,
+// Flatten, integer Add/Sub/Mul/Div, or float Add/Sub/Mul/Div/Neg of at most
+// 4096 elements, is evaluated exactly by onnxlite; any other node whose
+// inputs are all constant is evaluated by opts.Eval when it is set. The
+// outputs of an evaluated node go to Consts and the node leaves Nodes. Shape
+// always folds, to the inferred shape of its input. A fold-only operator
+// (see FoldOnly) that cannot be folded is an error naming the node that
+// wraps ErrFoldOnly and ErrUnsupported.
 //
 // A value with more than DefaultLimits.MaxTensorElements elements or a rank
 // above DefaultLimits.MaxRank is a *LimitError.
-func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
+func InferWith(m *Model, opts InferOptions) (st *Static, err error) {
 	defer recoverTo(&err, "infer", ErrInvalid)
 	order, err := m.validate()
 	if err != nil {
@@ -77,11 +103,13 @@ func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 	}
 	runtime := map[string]bool{}
 	params := map[string]symbolicDim{}
+	shapes := opts.Shapes
 	for _, in := range g.Inputs {
 		if _, ok := s.Consts[in.Name]; ok {
 			continue
 		}
-		vs, err := inputShape(in, inputs)
+		runtime[in.Name] = true
+		vs, err := inputShape(in, shapes)
 		if err != nil {
 			return nil, err
 		}
@@ -93,16 +121,15 @@ func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 		}
 		s.Values[in.Name] = vs
 		s.Inputs = append(s.Inputs, in.Name)
-		runtime[in.Name] = true
 	}
-	for name := range inputs {
+	for name := range shapes {
 		if !runtime[name] {
-			return nil, invalidf("input shape given for %q: expected one of the runtime graph inputs %v", name, s.Inputs)
+			return nil, fmt.Errorf("input shape given for %q: expected one of the runtime graph inputs %v", name, runtimeNames(g))
 		}
 	}
 	opset := m.OpsetVersion("")
 	for _, i := range order {
-		if err := s.inferNode(g.Nodes[i], i, opset); err != nil {
+		if err := s.inferNode(g.Nodes[i], i, opset, opts.Eval); err != nil {
 			return nil, err
 		}
 	}
@@ -113,6 +140,22 @@ func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 		s.Outputs = append(s.Outputs, o.Name)
 	}
 	return s, nil
+}
+
+// runtimeNames lists the runtime graph inputs of g (those not backed by an
+// initializer) in graph order.
+func runtimeNames(g *Graph) []string {
+	inits := map[string]bool{}
+	for _, t := range g.Initializers {
+		inits[t.Name] = true
+	}
+	var out []string
+	for _, in := range g.Inputs {
+		if !inits[in.Name] {
+			out = append(out, in.Name)
+		}
+	}
+	return out
 }
 
 // inputShape resolves the concrete shape of a runtime graph input.
@@ -321,7 +364,7 @@ func (c *nodeCtx) allConst() bool {
 	return true
 }
 
-func (s *Static) inferNode(n *Node, idx int, opset int64) error {
+func (s *Static) inferNode(n *Node, idx int, opset int64, eval Evaluator) error {
 	c := &nodeCtx{n: n, idx: idx, opset: opset,
 		in: make([]*ValueShape, len(n.Inputs)), consts: make([]*Tensor, len(n.Inputs))}
 	for i, name := range n.Inputs {
@@ -339,7 +382,7 @@ func (s *Static) inferNode(n *Node, idx int, opset int64) error {
 		outs, err = foldShape(c)
 	case c.allConst() && canFold(c):
 		outs, err = fold(c)
-	case FoldOnly(n.OpType):
+	case FoldOnly(n.OpType) && !c.allConst():
 		return fmt.Errorf("%w: node %q (%s): %s needs constant inputs, got the run-time value(s) %s (%w)",
 			ErrUnsupported, nodeName(n, idx), n.OpType, n.OpType, runtimeInputs(c), ErrFoldOnly)
 	}
@@ -347,19 +390,7 @@ func (s *Static) inferNode(n *Node, idx int, opset int64) error {
 		return err
 	}
 	if outs != nil {
-		for i, t := range outs {
-			if i >= len(n.Outputs) || n.Outputs[i] == "" || t == nil {
-				continue
-			}
-			t.Name = n.Outputs[i]
-			vs := ValueShape{DType: t.DType, Shape: t.Shape()}
-			if err := checkValueLimits(t.Name, vs); err != nil {
-				return c.wrap(err)
-			}
-			s.Values[t.Name] = vs
-			s.Consts[t.Name] = t
-		}
-		return nil
+		return s.setConsts(c, outs)
 	}
 	shapes, err := c.outShapes()
 	if err != nil {
@@ -375,9 +406,74 @@ func (s *Static) inferNode(n *Node, idx int, opset int64) error {
 		if err := checkValueLimits(o, shapes[i]); err != nil {
 			return c.wrap(err)
 		}
-		s.Values[o] = shapes[i]
+	}
+	if eval != nil && c.allConst() && len(n.Inputs) > 0 {
+		return s.evaluate(c, eval, shapes)
+	}
+	for i, o := range n.Outputs {
+		if o != "" {
+			s.Values[o] = shapes[i]
+		}
 	}
 	s.Nodes = append(s.Nodes, n)
+	return nil
+}
+
+// evaluate folds a node whose inputs are all constant with eval, checking
+// that each result has the element type and shape the rules inferred.
+func (s *Static) evaluate(c *nodeCtx, eval Evaluator, shapes []ValueShape) error {
+	want := make([]ValueShape, len(c.n.Outputs))
+	for i, o := range c.n.Outputs {
+		if o != "" {
+			want[i] = shapes[i]
+		}
+	}
+	outs, err := eval(c.n, c.opset, c.consts, want)
+	if err != nil {
+		return c.wrap(err)
+	}
+	for i, o := range c.n.Outputs {
+		if o == "" {
+			continue
+		}
+		if i >= len(outs) || outs[i] == nil {
+			return c.wrap(fmt.Errorf("constant folding computed no value for output %q", o))
+		}
+		t := outs[i]
+		sameKind := t.DType == want[i].DType || isFloatType(t.DType) && isFloatType(want[i].DType)
+		if !sameKind || !slices.Equal(t.Shape(), want[i].Shape) {
+			return c.wrap(fmt.Errorf("constant folding computed %v%v for output %q, inference gives %v", t.DType, t.Shape(), o, want[i]))
+		}
+	}
+	if err := s.setConsts(c, outs); err != nil {
+		return err
+	}
+	for i, o := range c.n.Outputs {
+		if o != "" {
+			s.Values[o] = want[i] // the ONNX type, whatever precision Eval kept
+		}
+	}
+	return nil
+}
+
+func isFloatType(dt DataType) bool {
+	return dt == Float || dt == Double || dt == Float16 || dt == BFloat16
+}
+
+// setConsts records the folded outputs of c's node as constants.
+func (s *Static) setConsts(c *nodeCtx, outs []*Tensor) error {
+	for i, t := range outs {
+		if i >= len(c.n.Outputs) || c.n.Outputs[i] == "" || t == nil {
+			continue
+		}
+		t.Name = c.n.Outputs[i]
+		vs := ValueShape{DType: t.DType, Shape: t.Shape()}
+		if err := checkValueLimits(t.Name, vs); err != nil {
+			return c.wrap(err)
+		}
+		s.Values[t.Name] = vs
+		s.Consts[t.Name] = t
+	}
 	return nil
 }
 

@@ -81,8 +81,11 @@ func TestInferConcreteShapes(t *testing.T) {
 	require.ErrorIs(t, err, onnxlite.ErrInvalid)
 	assert.Contains(t, err.Error(), "rank 4")
 
+	// A shape for a value that is not a runtime input is the caller's
+	// mistake, not the model's.
 	_, err = onnxlite.Infer(m, map[string][]int{"x": {7, 3, 4, 5}, "zero": {1}})
-	require.ErrorIs(t, err, onnxlite.ErrInvalid)
+	require.Error(t, err)
+	assert.NotErrorIs(t, err, onnxlite.ErrInvalid)
 	assert.Contains(t, err.Error(), `"zero"`)
 }
 
