@@ -2,7 +2,6 @@ package nn
 
 import (
 	"context"
-	"errors"
 	"fmt"
 	"math"
 	"slices"
@@ -76,29 +75,20 @@ func runORTCase(c ortdata.Case, dt DType) (string, error) {
 	return "", nil
 }
 
-// TestORTFixtures runs the cases of testdata/ort (the opset 18–26 revisions
-// of the supported operators, the operators added since, six whole models)
-// against the outputs ONNX Runtime 1.30 (CPU) computed for them, within
+// TestORTFixtures runs every case of testdata/ort: the opset 18–26
+// revisions of the supported operators, the operators added since, integer
+// shape inputs, half-precision inputs and six whole models, against the
+// outputs ONNX Runtime 1.30 (CPU) computed for them, within
 // 1e-5 + 1e-4·|want| on the float32 engine (integer outputs exactly); the
 // float64 engine, which ONNX Runtime's float32 kernels differ from by
-// rounding, within the same bound. Cases of operators not supported yet,
-// and those of integer or half-precision inputs, are counted, not run.
+// rounding, within the same bound.
 func TestORTFixtures(t *testing.T) {
 	cases := ortdata.Cases(t)
 	pass := map[DType]int{}
-	notYet := 0
 	for _, c := range cases {
-		if !floatInputs(c) {
-			notYet++
-			continue
-		}
 		for _, dt := range []DType{Float32, Float64} {
 			msg, err := runORTCase(c, dt)
 			switch {
-			case errors.Is(err, onnxlite.ErrUnsupported):
-				if dt == Float32 {
-					notYet++
-				}
 			case err != nil:
 				t.Errorf("%s (%s, %s engine): %v", c.Name, c.Checks, dt, err)
 			case msg != "":
@@ -108,18 +98,8 @@ func TestORTFixtures(t *testing.T) {
 			}
 		}
 	}
-	summary := fmt.Sprintf("ONNX Runtime fixtures: %d of %d pass on the float32 engine, %d on float64; %d not supported yet", pass[Float32], len(cases), pass[Float64], notYet)
+	summary := fmt.Sprintf("ONNX Runtime fixtures: %d of %d pass on the float32 engine, %d on float64", pass[Float32], len(cases), pass[Float64])
 	fmt.Println(summary)
 	t.Log(summary)
 	require.NotEmpty(t, cases)
-}
-
-// floatInputs reports whether every input of c is float32 or float64.
-func floatInputs(c ortdata.Case) bool {
-	for _, in := range c.Inputs {
-		if in.DType != "float32" && in.DType != "float64" {
-			return false
-		}
-	}
-	return true
 }

@@ -258,10 +258,28 @@ func (b *builder) node(n *onnxlite.Node) error {
 	return translate(b, n, out)
 }
 
-// identity translates Identity and Dropout (inference: the identity).
+// identity translates Identity and Dropout (inference: the identity). A
+// Dropout in training mode (is_test 0 before opset 7, training_mode true
+// from 12) with a non-zero ratio drops random elements, which is refused.
 func (b *builder) identity(n *onnxlite.Node, out string) error {
-	if n.OpType == "Dropout" && n.AttrInt("is_test", 1) == 0 && b.opset < 7 {
-		return fmt.Errorf("%w: Dropout in training mode", onnxlite.ErrUnsupported)
+	if n.OpType == "Dropout" {
+		training := n.AttrInt("is_test", 1) == 0 && b.opset < 7
+		if b.opset >= 12 && b.has(n, 2) {
+			v, err := b.constFloats(n, 2, "training_mode")
+			if err != nil {
+				return err
+			}
+			ratio := []float64{0.5}
+			if b.has(n, 1) {
+				if ratio, err = b.constFloats(n, 1, "ratio"); err != nil {
+					return err
+				}
+			}
+			training = len(v) == 1 && v[0] != 0 && len(ratio) == 1 && ratio[0] != 0
+		}
+		if training {
+			return fmt.Errorf("%w: Dropout in training mode drops elements at random; export the model in inference mode", onnxlite.ErrUnsupported)
+		}
 	}
 	return b.alias(n, out)
 }

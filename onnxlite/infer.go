@@ -41,6 +41,12 @@ type InferOptions struct {
 	// shape, which must then be fully fixed; a given shape must have the
 	// declared rank and agree with every declared fixed dim.
 	Shapes map[string][]int
+	// Values holds runtime graph inputs whose values are known when the
+	// model is specialised (see InputUses): each is a constant of the
+	// result, with the tensor's shape, and is not listed in Static.Inputs.
+	// An input that nothing reads (InputUse.Unread) is left out of the
+	// result whatever Shapes and Values give for it.
+	Values map[string]*Tensor
 	// Eval, when set, evaluates every node whose inputs are all constant
 	// and that onnxlite does not fold itself (see Evaluator).
 	Eval Evaluator
@@ -104,11 +110,27 @@ func InferWith(m *Model, opts InferOptions) (st *Static, err error) {
 	runtime := map[string]bool{}
 	params := map[string]symbolicDim{}
 	shapes := opts.Shapes
+	uses := InputUses(m)
 	for _, in := range g.Inputs {
 		if _, ok := s.Consts[in.Name]; ok {
 			continue
 		}
 		runtime[in.Name] = true
+		if uses[in.Name].Unread {
+			continue // nothing reads it: no shape or value to check
+		}
+		if t, ok := opts.Values[in.Name]; ok {
+			vs, err := heldInput(in, t)
+			if err != nil {
+				return nil, err
+			}
+			if err := bindParams(in, vs.Shape, params); err != nil {
+				return nil, err
+			}
+			s.Values[in.Name] = vs
+			s.Consts[in.Name] = t
+			continue
+		}
 		vs, err := inputShape(in, shapes)
 		if err != nil {
 			return nil, err
@@ -125,6 +147,14 @@ func InferWith(m *Model, opts InferOptions) (st *Static, err error) {
 	for name := range shapes {
 		if !runtime[name] {
 			return nil, fmt.Errorf("input shape given for %q: expected one of the runtime graph inputs %v", name, runtimeNames(g))
+		}
+		if _, held := opts.Values[name]; held {
+			return nil, fmt.Errorf("input %q: given both a shape and a value", name)
+		}
+	}
+	for name := range opts.Values {
+		if !runtime[name] {
+			return nil, fmt.Errorf("input value given for %q: expected one of the runtime graph inputs %v", name, runtimeNames(g))
 		}
 	}
 	opset := m.OpsetVersion("")
@@ -156,6 +186,25 @@ func runtimeNames(g *Graph) []string {
 		}
 	}
 	return out
+}
+
+// heldInput checks a value given for a runtime input against the input's
+// declared type and shape.
+func heldInput(in *ValueInfo, t *Tensor) (ValueShape, error) {
+	if in.Type == nil || in.Type.Kind != KindTensor {
+		return ValueShape{}, invalidf("graph input %q: expected a tensor type, got %s", in.Name, describeType(in.Type))
+	}
+	if err := checkTensor(t); err != nil {
+		return ValueShape{}, fmt.Errorf("input %q: %v", in.Name, err)
+	}
+	if t.DType != in.Type.Elem {
+		return ValueShape{}, fmt.Errorf("input %q: expected a %v tensor, got %v", in.Name, in.Type.Elem, t.DType)
+	}
+	vs, err := inputShape(in, map[string][]int{in.Name: t.Shape()})
+	if err != nil {
+		return ValueShape{}, err
+	}
+	return vs, checkValueLimits(in.Name, vs)
 }
 
 // inputShape resolves the concrete shape of a runtime graph input.

@@ -27,7 +27,9 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs := newFlagSet("predict", "-model PATH -input FILE [-input FILE ...] [-format json|table]",
 		"apportion predict -model model.onnx -input samples.csv -format table",
 		"Inputs bind to the model's graph inputs in order (initializer-backed inputs\n"+
-			"excluded). A .pb file is an ONNX TensorProto used with its stored shape;\n"+
+			"excluded), of any numeric type: floating point (float16 and bfloat16\n"+
+			"widened), integer (token ids, target shapes) or bool. A .pb file is an\n"+
+			"ONNX TensorProto used with its stored shape;\n"+
 			".npy, .json and .csv files hold samples of the input's per-sample shape\n"+
 			"(its shape without the leading batch dimension): a CSV row per sample with\n"+
 			"an optional header row, JSON nested arrays for one sample or an array of them.", stderr)
@@ -41,9 +43,6 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if *modelPath == "" {
 		return usageError(stderr, "predict", "-model is required")
 	}
-	if len(inputs) == 0 {
-		return usageError(stderr, "predict", "-input is required")
-	}
 	if *format != "table" && *format != "json" {
 		return usageError(stderr, "predict", "-format must be json or table, got %q", *format)
 	}
@@ -52,6 +51,9 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		return failure(stderr, "predict", err)
 	}
 	feeds := m.Inputs()
+	if len(inputs) == 0 && len(feeds) > 0 {
+		return usageError(stderr, "predict", "-input is required")
+	}
 	if len(inputs) != len(feeds) {
 		names := make([]string, len(feeds))
 		for i, f := range feeds {
