@@ -1,6 +1,7 @@
 package main
 
 import (
+	"encoding/json"
 	"math"
 	"os"
 	"path/filepath"
@@ -76,6 +77,25 @@ func TestPredictIntegerAndHalfInputs(t *testing.T) {
 	requireOutputs(t, predictJSON(t, "-model", model, "-input", js), outputs)
 }
 
+// TestPredictPrecisionFloat64: the backend case's reference values, near
+// 1e223, overflow binary32 (max ≈ 3.4e38, IEEE 754); -precision float64
+// computes them (ONNX backend test data, Debian libonnx-testdata 1.12.0).
+func TestPredictPrecisionFloat64(t *testing.T) {
+	dir := caseDir(t, "pytorch-operator/test_operator_addconstant")
+	inputs, outputs := setFiles(t, dir)
+	model := filepath.Join(dir, "model.onnx")
+	doc := predictJSON(t, "-model", model, "-input", inputs[0], "-precision", "float64")
+	want, err := onnxlite.DecodeTensorFile(outputs[0], onnxlite.DecodeOptions{})
+	require.NoError(t, err)
+	wv, _ := want.Float64s()
+	for k, w := range wv {
+		assert.InDelta(t, w, *doc.Outputs[0].Data[k], 1e-12*math.Abs(w), "element %d", k)
+	}
+	code, _, errs := cli(t, "predict", "-model", model, "-input", inputs[0], "-precision", "float16")
+	assert.Equal(t, exitUsage, code)
+	assert.Contains(t, errs, "-precision \"float16\": expected float32 or float64")
+}
+
 // twoInputModel writes y = x·W + b + Σ_k E[ids_k] (x float (N, 3), ids
 // int64 (N, 2) into a 5×4 table E), whose output t is linear in x: by
 // Sundararajan et al. 2017 (eq. 1), integrated gradients from the zero
@@ -118,6 +138,44 @@ func twoInputModel(t *testing.T) (path string, w []float32) {
 	require.NoError(t, onnxlite.Encode(f, m))
 	require.NoError(t, f.Close())
 	return path, w
+}
+
+// TestExplainHoldsOtherInputs explains a model of a float input and token
+// ids: the attributions go to the float input, the ids held at each
+// sample's values.
+func TestExplainHoldsOtherInputs(t *testing.T) {
+	model, w := twoInputModel(t)
+	tmp := t.TempDir()
+	x := []float64{1, 2, 3, 0.5, -1, 2}
+	xs, ids := filepath.Join(tmp, "x.json"), filepath.Join(tmp, "ids.json")
+	writeJSON(t, xs, []int{2, 3}, x)
+	writeJSON(t, ids, []int{2, 2}, []float64{0, 4, 2, 2})
+	for _, extra := range [][]string{nil, {"-input-name", "x"}} {
+		args := append([]string{"explain", "-model", model, "-input", xs, "-input", ids, "-target", "1", "-steps", "8", "-format", "json"}, extra...)
+		code, out, errs := cli(t, args...)
+		require.Equal(t, exitOK, code, errs)
+		var doc struct {
+			Model        map[string]any `json:"model"`
+			Explanations []struct {
+				Attributions []float64 `json:"attributions"`
+			} `json:"explanations"`
+		}
+		require.NoError(t, json.Unmarshal([]byte(out), &doc))
+		assert.Equal(t, "x", doc.Model["input"])
+		require.Len(t, doc.Explanations, 2)
+		for s, e := range doc.Explanations {
+			for i, a := range e.Attributions {
+				// IG of a linear function: x_i·W[i, 1] (Sundararajan et al. 2017, eq. 1).
+				assert.InDelta(t, x[s*3+i]*float64(w[i*4+1]), a, 1e-5, "sample %d feature %d", s, i)
+			}
+		}
+	}
+	code, _, errs := cli(t, "explain", "-model", model, "-input", xs, "-input", ids, "-input-name", "ids")
+	assert.NotEqual(t, exitOK, code)
+	assert.Contains(t, errs, `input "ids" holds INT64 values (token ids, indices), which have no gradient`)
+	code, _, errs = cli(t, "explain", "-model", model, "-input", xs)
+	assert.Equal(t, exitUsage, code)
+	assert.Contains(t, errs, "the model has 2 inputs (x, ids): give one -input per input, in that order, got 1")
 }
 
 // TestPredictInputsRequired: predict needs one -input per model input, and

@@ -37,6 +37,8 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	var inputs multiFlag
 	fs.Var(&inputs, "input", "input `file` (.pb, .npy, .json or .csv); repeat once per graph input")
 	format := fs.String("format", "json", "output format: json or table")
+	var precision string
+	registerPrecisionFlag(fs, &precision)
 	if code, done := parseFlags(fs, args, stdout); done {
 		return code
 	}
@@ -45,6 +47,10 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	}
 	if *format != "table" && *format != "json" {
 		return usageError(stderr, "predict", "-format must be json or table, got %q", *format)
+	}
+	dtype, err := explain.ParsePrecision(precision)
+	if err != nil {
+		return usageError(stderr, "predict", "-%v", err)
 	}
 	m, err := explain.ReadModel(*modelPath)
 	if err != nil {
@@ -86,7 +92,7 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			count = b.Samples
 		}
 	}
-	if err := m.Compile(explain.CompileOptions{InputShapes: open, Parallel: runtime.GOMAXPROCS(0)}); err != nil {
+	if err := m.Compile(explain.CompileOptions{InputShapes: open, Parallel: runtime.GOMAXPROCS(0), DType: dtype}); err != nil {
 		return failure(stderr, "predict", err)
 	}
 	res, err := m.Predict(context.Background(), tensors)
