@@ -119,3 +119,45 @@ func isParamInput(op string, i int) bool {
 	}
 	return false
 }
+
+// FoldOnlyOnRuntime lists the nodes of fold-only operators (see FoldOnly)
+// that read a value computed at run time, which no constant folding can
+// remove: a model with such nodes does not compile. A value is computed at
+// run time when it depends on a runtime input whose values the model
+// computes with (not a compile-time input, InputUse.CompileTime), other
+// than through its shape (Shape).
+func FoldOnlyOnRuntime(m *Model) []UnsupportedOp {
+	if m == nil || m.Graph == nil {
+		return nil
+	}
+	uses := InputUses(m)
+	runtime := map[string]bool{}
+	for name, u := range uses {
+		runtime[name] = !u.CompileTime() && !u.Unread
+	}
+	order, err := topoOrder(m.Graph)
+	if err != nil {
+		return nil
+	}
+	var out []UnsupportedOp
+	for _, i := range order {
+		n := m.Graph.Nodes[i]
+		if n == nil || n.OpType == "Shape" {
+			continue
+		}
+		reads := false
+		for _, in := range n.Inputs {
+			reads = reads || runtime[in]
+		}
+		if !reads {
+			continue
+		}
+		for _, o := range n.Outputs {
+			runtime[o] = true
+		}
+		if isDefaultDomain(n.Domain) && FoldOnly(n.OpType) {
+			out = append(out, UnsupportedOp{Op: n.OpType, Node: nodeName(n, i)})
+		}
+	}
+	return out
+}

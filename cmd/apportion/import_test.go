@@ -178,6 +178,47 @@ func TestExplainHoldsOtherInputs(t *testing.T) {
 	assert.Contains(t, errs, "the model has 2 inputs (x, ids): give one -input per input, in that order, got 1")
 }
 
+// TestInspectVerdict: inspect says what compile says, for a model that
+// runs and explains, a text model of token ids, a model of a newer opset
+// and one whose shape parameter is an input.
+func TestInspectVerdict(t *testing.T) {
+	inspect := func(model string) map[string]any {
+		t.Helper()
+		code, out, errs := cli(t, "inspect", "-model", model, "-format", "json")
+		require.Equal(t, exitOK, code, errs)
+		return decodeJSON(t, out)
+	}
+	reflect := filepath.Join("..", "..", "testdata", "reference", "digits_reflect_cnn.onnx")
+	assert.Equal(t, "yes", inspect(reflect)["explainable"])
+
+	text, _, _ := ortCase(t, "model", "text_embedding_conv1d_opset26")
+	doc := inspect(text)
+	assert.Equal(t, "indices", doc["inputs"].([]any)[0].(map[string]any)["use"])
+	assert.Regexp(t, `^no: .*no floating-point input`, doc["explainable"])
+
+	shape, _, _ := ortCase(t, "node", "reshape_runtime_shape_opset18")
+	doc = inspect(shape)
+	assert.Equal(t, "compile-time", doc["inputs"].([]any)[1].(map[string]any)["use"])
+	assert.Regexp(t, `^not checked: input "shape" is read when the model is compiled`, doc["explainable"])
+	code, out, _ := cli(t, "inspect", "-model", shape)
+	require.Equal(t, exitOK, code)
+	assert.Regexp(t, `(?m)^  shape\s+int64\s+\[2\]\s+read when compiling: a program per value$`, out)
+
+	// The same reflect CNN declaring opset 27, one past ONNX Runtime 1.30's.
+	m, err := onnxlite.DecodeFile(reflect, onnxlite.DecodeOptions{})
+	require.NoError(t, err)
+	m.Opsets = []onnxlite.OpsetImport{{Version: 27}}
+	newer := filepath.Join(t.TempDir(), "newer.onnx")
+	f, err := os.Create(newer)
+	require.NoError(t, err)
+	require.NoError(t, onnxlite.Encode(f, m))
+	require.NoError(t, f.Close())
+	assert.Equal(t, "no: not supported by apportion: the model imports ONNX opset 27, newer than 26, the newest apportion reads: re-export the model at opset 26", inspect(newer)["explainable"])
+	code, out, _ = cli(t, "inspect", "-model", newer)
+	require.Equal(t, exitOK, code)
+	assert.Regexp(t, `(?m)^opset\s+27 \(newer than 26, the newest apportion reads\)$`, out)
+}
+
 // TestPredictInputsRequired: predict needs one -input per model input, and
 // none for a model without inputs (ONNX backend test data, Debian
 // libonnx-testdata 1.12.0: node/test_constant outputs its Constant).
