@@ -330,10 +330,11 @@ func (h *Head) Gradient(ctx context.Context, x []float64, n int, target []int) (
 	return outs[0], grad, nil
 }
 
-// Gradient is a convenience over Head: for the single runtime input x (full
-// shape, first dimension the batch) it returns the selected output (full
-// shape) and, per sample i, ∂out[i, target[i]]/∂x[i] with x's shape, both as
-// Double tensors.
+// Gradient is a convenience over Head, for a model whose only runtime input
+// is the one sel names (by default the first floating-point input): for x
+// (full shape, first dimension the batch) it returns the selected output
+// (full shape) and, per sample i, ∂out[i, target[i]]/∂x[i] with x's shape,
+// both as Double tensors.
 func (nw *Network) Gradient(ctx context.Context, x *onnxlite.Tensor, sel Selection, target []int) (out, grad *onnxlite.Tensor, err error) {
 	defer recoverEngine("nn: gradient", &err)
 	h, err := nw.Head(sel)

@@ -608,16 +608,11 @@ func (p *program) outputShapes() [][]int {
 	return out
 }
 
-// runChunked runs shapes/data through the programs for req, splitting the
+// runReq runs shapes/data through the programs for req, splitting the
 // batch (first dimension of every input) into chunks of at most
 // Options.MaxBatch samples, and into Options.Parallel concurrent parts when
 // the batch is large enough (see runSplit). mask, when given, is split with
 // the outputs.
-func (nw *Network) runChunked(ctx context.Context, shapes [][]int, data [][]float64, mask []float64) ([][]float64, [][]int, error) {
-	outs, shp, _, err := nw.runReq(ctx, shapes, data, request{}, mask)
-	return outs, shp, err
-}
-
 func (nw *Network) runReq(ctx context.Context, shapes [][]int, data [][]float64, req request, mask []float64) ([][]float64, [][]int, []float64, error) {
 	if err := ctx.Err(); err != nil {
 		return nil, nil, nil, err

@@ -97,9 +97,9 @@ func TestSplitBitIdentical(t *testing.T) {
 						require.Len(t, net, len(wantNet))
 						for i := range net {
 							assert.Equal(t, wantNet[i].Dims, net[i].Dims)
-							a, err := tensorFloats(wantNet[i])
+							a, err := wantNet[i].Float64s()
 							require.NoError(t, err)
-							b, err := tensorFloats(net[i])
+							b, err := net[i].Float64s()
 							require.NoError(t, err)
 							assert.Equal(t, splitBits(a), splitBits(b), "network forward %d", i)
 						}
@@ -282,7 +282,7 @@ func TestSplitFixedBatch(t *testing.T) {
 	x := []float64{-1, 2, -3, 4, -5, 6, 0.5, -0.25, 7, -8, 9, -0.125}
 	outs, err := nw.Forward(ctx, []*onnxlite.Tensor{tensor64("x", []int64{4, 3}, x)})
 	require.NoError(t, err)
-	got, err := tensorFloats(outs[0])
+	got, err := outs[0].Float64s()
 	require.NoError(t, err)
 	for i, v := range x {
 		assert.Equal(t, math.Max(v, 0), got[i], "y[%d]", i) // closed form: Relu(x) = max(x, 0)

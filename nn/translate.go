@@ -1015,21 +1015,6 @@ func (b *builder) pad(n *onnxlite.Node, out string) error {
 	return b.set(out, y)
 }
 
-// tensorFloats returns the elements of a floating-point tensor.
-func tensorFloats(t *onnxlite.Tensor) ([]float64, error) {
-	if !isFloat(t.DType) {
-		return nil, fmt.Errorf("%w: expected a FLOAT, DOUBLE or FLOAT16 tensor, got %v", ErrBadRequest, t.DType)
-	}
-	v, err := t.Float64s()
-	if err != nil {
-		return nil, err
-	}
-	if int64(len(v)) != t.NumElements() {
-		return nil, fmt.Errorf("%w: dims %v need %d elements, data has %d", ErrShape, t.Dims, t.NumElements(), len(v))
-	}
-	return v, nil
-}
-
 // makeTensor wraps engine results as a Float or Double tensor.
 func makeTensor(name string, dt DType, shape []int, vals []float64) *onnxlite.Tensor {
 	dims := make([]int64, len(shape))
