@@ -314,7 +314,7 @@ func (nw *Network) feedValues(t *onnxlite.Tensor, p Port) ([]float64, error) {
 		limit := nw.exactInts()
 		for i, x := range v {
 			if math.Abs(x) > limit {
-				return nil, fmt.Errorf("%w: %v value %v at position %d: the %v engine holds integers exactly only up to %v in magnitude; use the float64 engine", ErrBadRequest, t.DType, x, i, nw.opts.DType, limit)
+				return nil, fmt.Errorf("%w: %v value %v at position %d: the %v engine holds integers exactly only up to %.0f in magnitude; use the float64 engine", ErrBadRequest, t.DType, x, i, nw.opts.DType, limit)
 			}
 		}
 	}
