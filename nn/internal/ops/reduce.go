@@ -226,8 +226,12 @@ func reduceRun[T float](op *reduceOp, p, xv G.Value) (G.Value, error) {
 		for i := range acc {
 			acc[i] = math.Sqrt(acc[i])
 		}
-	default:
-		each(func(a *float64, x float64) { *a += x })
+	default: // sum and mean: the hot case, without a call per element
+		eachRow(op.inShape, sx, sy, func(o, _, iy int) {
+			for j, xj := range x[o : o+n] {
+				acc[iy+j*ly] += float64(xj)
+			}
+		})
 	}
 	s := op.scale()
 	for i, a := range acc {
