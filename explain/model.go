@@ -107,13 +107,17 @@ func (m *Model) Inputs() []*onnxlite.ValueInfo {
 }
 
 // Input returns the spec of the runtime input an explanation attributes
-// to: the one InputName names, or the first floating-point input.
+// to: the one InputName names, or the first floating-point input the model
+// computes with (not one it reads only as a parameter, such as Resize's
+// scales).
 func (m *Model) Input() (samples.Spec, error) {
 	feeds := m.Inputs()
+	uses := onnxlite.InputUses(m.Graph)
 	names := make([]string, len(feeds))
 	for i, f := range feeds {
 		names[i] = f.Name
-		if m.InputName == "" && f.Type != nil && f.Type.Kind == onnxlite.KindTensor && floating(f.Type.Elem) ||
+		data := !uses[f.Name].CompileTime() && !uses[f.Name].Unread
+		if m.InputName == "" && data && f.Type != nil && f.Type.Kind == onnxlite.KindTensor && floating(f.Type.Elem) ||
 			m.InputName != "" && f.Name == m.InputName {
 			return samples.SpecOf(f), nil
 		}
