@@ -180,8 +180,7 @@ func TestExplainBadSampleInBatch(t *testing.T) {
 	}
 	bad := doc.Explanations[1]
 	require.NotNil(t, bad.Error)
-	assert.Contains(t, *bad.Error, "index 1")
-	assert.Contains(t, *bad.Error, "NaN")
+	assert.Equal(t, "line 3, column b: NaN value is not a finite number", *bad.Error)
 	assert.Nil(t, bad.Target)
 	assert.Nil(t, bad.Attributions)
 	assert.Contains(t, errs, "sample 1")
@@ -330,7 +329,7 @@ func TestExplainMalformedSamplesKeepTheRest(t *testing.T) {
 		good, bad []int
 		msgs      []string
 	}{
-		{csvPath, []int{0, 3}, []int{1, 2}, []string{`line 3 (sample 1), field 1: "oops" is not a number`, "line 4 (sample 2): expected 3 values, got 2"}},
+		{csvPath, []int{0, 3}, []int{1, 2}, []string{`line 3, column b: "oops" is not a number`, "line 4: expected 3 values, got 2"}},
 		{jsonPath, []int{0, 2}, []int{1, 3}, []string{"expected 3 values (shape [3]), got 2", "expected a sample of shape [3] or 3 flat values, got shape [3 1]"}},
 	} {
 		doc, errs := explainJSONRun(t, exitFail, "-model", model, "-input", tc.path)
@@ -353,5 +352,5 @@ func TestExplainMalformedSamplesKeepTheRest(t *testing.T) {
 	// predict needs every sample: it refuses the file and names the first bad row.
 	code, _, errs := cli(t, "predict", "-model", model, "-input", csvPath)
 	assert.Equal(t, exitFail, code)
-	assert.Contains(t, errs, "line 3 (sample 1)")
+	assert.Contains(t, errs, `line 3, column b: "oops" is not a number`)
 }
