@@ -55,6 +55,7 @@ type explainConfig struct {
 
 	settings explain.Settings
 	set      map[string]bool // the flags given
+	ignored  []string        // notes on the columns of CSV files the model does not read
 }
 
 // registerMethodFlags defines the flags that choose and tune the
@@ -150,6 +151,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if err != nil {
 		return fail(stderr, "explain", err)
 	}
+	notes(stderr, "explain", c.ignored)
 	rep, err := ex.Explain(context.Background(), batch, progress(stderr))
 	if err != nil {
 		return fail(stderr, "explain", err)
@@ -279,6 +281,33 @@ func (c *explainConfig) validate() string {
 type loadedModel struct {
 	model *explain.Model
 	demo  *demo.Scenario // nil for -model
+	// ignored notes, for each CSV file read by the model's feature names,
+	// the columns the model does not read.
+	ignored []string
+}
+
+// noteIgnored notes the columns of the file called name that the model
+// does not read.
+func (l *loadedModel) noteIgnored(name string, cols []string) {
+	if n := ignoredNote(name, cols); n != "" {
+		l.ignored = append(l.ignored, n)
+	}
+}
+
+// ignoredNote says that the columns cols of the file called name are not
+// read; "" when there are none.
+func ignoredNote(name string, cols []string) string {
+	if len(cols) == 0 {
+		return ""
+	}
+	return fmt.Sprintf("%s: ignored the columns the model does not read: %s", name, strings.Join(cols, ", "))
+}
+
+// notes prints each note on stderr, prefixed with the command.
+func notes(stderr io.Writer, cmd string, lines []string) {
+	for _, n := range lines {
+		fmt.Fprintf(stderr, "apportion %s: %s\n", cmd, n)
+	}
 }
 
 // loadModel reads -model, or the embedded demo scenario called demoName.
@@ -351,6 +380,7 @@ func (l *loadedModel) readSet(path string, field explain.Field) (*explain.Datase
 	if err != nil {
 		return nil, fmt.Errorf("%s: %w", flagName(field), err)
 	}
+	l.noteIgnored(path, b.Ignored)
 	return explain.NewDataset(path, raw, b), nil
 }
 
@@ -378,6 +408,7 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 	if err != nil {
 		return nil, nil, err
 	}
+	l.noteIgnored(batch.Name, batch.Ignored)
 	if err := m.Compile(explain.CompileOptions{InputShapes: explain.OpenShapes(spec, batch), Parallel: parallel}); err != nil {
 		return nil, nil, err
 	}
@@ -403,6 +434,7 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 		return nil, nil, err
 	}
 	ex, err := explain.New(m, head, c.settings)
+	c.ignored = l.ignored
 	return ex, batch, err
 }
 

@@ -72,6 +72,9 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		if err != nil {
 			return failure(stderr, "predict", err)
 		}
+		if n := ignoredNote(b.Name, b.Ignored); n != "" {
+			notes(stderr, "predict", []string{n})
+		}
 		t, err := b.ToTensor(spec)
 		if err != nil {
 			return failure(stderr, "predict", err)

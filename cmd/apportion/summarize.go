@@ -109,6 +109,7 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 	if err != nil {
 		return fail(stderr, "summarize", err)
 	}
+	notes(stderr, "summarize", c.ignored)
 	if err := sc.write(stdout, s, name); err != nil {
 		return failure(stderr, "summarize", err)
 	}
@@ -233,6 +234,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 	if err != nil {
 		return nil, nil, "", err
 	}
+	l.noteIgnored(sc.inputName(), table.Ignored)
 	rows := table.Rows
 	var first []float64
 	todo := 0
@@ -279,6 +281,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 		FirstKey: sc.firstRow, ByPredicted: sc.by == byPredicted, Progress: tick,
 	})
 	done()
+	c.ignored = l.ignored
 	if err != nil {
 		return nil, nil, "", err
 	}

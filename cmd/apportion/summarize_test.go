@@ -56,7 +56,9 @@ func writeTemp(t *testing.T, name, content string) string {
 func TestSummarizeDemoTable(t *testing.T) {
 	code, out, errOut := cli(t, "summarize", "-steps", "32")
 	require.Equal(t, exitOK, code, errOut)
-	assert.Empty(t, errOut, "no progress bar when standard error is not a terminal")
+	// No progress bar when standard error is not a terminal: only the
+	// note on the column the summary does not read.
+	assert.Equal(t, "apportion summarize: demo:pumps_test.csv: ignored the columns the model does not read: label\n", errOut)
 	assert.Contains(t, out, "500 rows summarised, 0 skipped")
 	assert.Contains(t, out, "all rows (500 rows)")
 	for line, n := range pumpLineRows {
@@ -312,6 +314,7 @@ func TestSummarizeModelFile(t *testing.T) {
 	for _, in := range []string{inOrder, shuffled} {
 		code, out, errOut := cli(t, "summarize", "-model", model, "-input", in, "-reference", ref, "-baseline", "mean", "-steps", "16", "-by", "label", "-bootstrap", "30", "-format", "json")
 		require.Equal(t, exitOK, code, errOut)
+		assert.Equal(t, 1, strings.Count(errOut, filepath.Base(in)+": ignored the columns the model does not read: pump_line\n"), errOut)
 		docs = append(docs, out)
 	}
 	assert.Equal(t, docs[0], docs[1])
