@@ -10,6 +10,11 @@
 //	                   explain.Defaults
 //	GET  /metrics      Prometheus text format
 //
+// A sample in "inputs" is an array of numbers in the model's input shape,
+// or, for a model whose metadata names its features, an object of the
+// features' values by name ({"bearing_temp": 77.2, ...}; every feature
+// given, no other key).
+//
 // Errors are {"error": "..."}: 400 for a bad request, 413 for a body over
 // the limit, 503 with Retry-After when the queue is full, 504 past the time
 // limit. A bounded pool of workers computes requests; with coalescing, the
@@ -450,10 +455,14 @@ func decodeRequest(raw []byte, v any) *httpError {
 }
 
 // samplesOf reads the "inputs" field: one sample or an array of samples of
-// the model's input shape, finite numbers only.
+// the model's input shape, finite numbers only; a sample is an array of
+// numbers, or an object of its features' values by name (see namedInputs).
 func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError) {
 	if len(bytes.TrimSpace(inputs)) == 0 || string(bytes.TrimSpace(inputs)) == "null" {
 		return nil, badRequest(`"inputs" is required: an array of samples of shape %s`, samples.ShapeString(h.sampleShape()))
+	}
+	if b, ok, herr := h.namedInputs(inputs); ok {
+		return b, herr
 	}
 	b, err := samples.ReadJSON(bytes.NewReader(inputs), h.spec)
 	if err == nil {

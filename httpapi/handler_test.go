@@ -11,6 +11,7 @@ import (
 	"net"
 	"net/http"
 	"net/http/httptest"
+	"regexp"
 	"strconv"
 	"strings"
 	"sync"
@@ -629,4 +630,61 @@ func TestBatcherStacksCalls(t *testing.T) {
 	check(results[2], [][]float64{point(4)}, []int{1})
 	check(results[3], [][]float64{point(5)}, []int{0})
 	check(results[4], [][]float64{point(6)}, []int{1})
+}
+
+func TestNamedInputs(t *testing.T) {
+	// Samples as objects keyed by feature name, the request's form of a CSV
+	// file with a header: rows of the demo's held-out file, keyed by its
+	// header (the model's feature_names metadata) in reverse order. The
+	// values are bound by name, so the documents equal those of the same
+	// rows as arrays in the feature order demo/data/README.md documents.
+	_, ts, _ := testServer(t, nil)
+	order := []string{"bearing_temp", "vibration_rms", "discharge_pressure", "suction_pressure", "flow", "motor_current", "hours_since_service", "ambient_temp"}
+	raw, err := demo.File("pumps_test.csv")
+	require.NoError(t, err)
+	lines := strings.Split(string(raw), "\n")
+	header := strings.Split(lines[0], ",")
+	var objects, arrays []string
+	for _, line := range lines[1:4] {
+		cells := strings.Split(line, ",")
+		byName := map[string]string{}
+		for j, h := range header {
+			byName[h] = cells[j]
+		}
+		var kv, vals []string
+		for j := len(order) - 1; j >= 0; j-- {
+			kv = append(kv, strconv.Quote(order[j])+":"+byName[order[j]])
+		}
+		for _, f := range order {
+			vals = append(vals, byName[f])
+		}
+		objects = append(objects, "{"+strings.Join(kv, ",")+"}")
+		arrays = append(arrays, "["+strings.Join(vals, ",")+"]")
+	}
+	for route, rest := range map[string]string{"/v1/predict": "}", "/v1/explain": `,"method":"grad"}`} {
+		code, _, byName := post(t, ts.URL+route, `{"inputs":[`+strings.Join(objects, ",")+`]`+rest)
+		require.Equal(t, http.StatusOK, code, byName)
+		code, _, byPosition := post(t, ts.URL+route, `{"inputs":[`+strings.Join(arrays, ",")+`]`+rest)
+		require.Equal(t, http.StatusOK, code, byPosition)
+		assert.JSONEq(t, byPosition, byName, route)
+	}
+	// One object alone is one sample.
+	code, _, one := post(t, ts.URL+"/v1/predict", `{"inputs":`+objects[0]+`}`)
+	require.Equal(t, http.StatusOK, code, one)
+	code, _, first := post(t, ts.URL+"/v1/predict", `{"inputs":[`+arrays[0]+`]}`)
+	require.Equal(t, http.StatusOK, code)
+	assert.JSONEq(t, first, one)
+
+	// A feature left out, a key that is not a feature and a value that is
+	// not a number are named, with the sample.
+	for body, want := range map[string]string{
+		`{"inputs":[` + objects[0] + `,{"flow":1}]}`:                                                                            `"inputs"[1] (for "sensors"): feature "bearing_temp" is missing`,
+		`{"inputs":[` + objects[0] + "," + strings.Replace(objects[1], `"ambient_temp":`, `"ambient":`, 1) + `]}`:               `"inputs"[1] (for "sensors"): "ambient" is not a feature of the model (features: bearing_temp, vibration_rms,`,
+		`{"inputs":[` + strings.Replace(objects[0], `"flow":`, `"x":1,"flow":`, 1) + `]}`:                                       `"inputs"[0] (for "sensors"): "x" is not a feature`,
+		`{"inputs":[` + regexp.MustCompile(`"bearing_temp":[^,}]+`).ReplaceAllString(objects[0], `"bearing_temp":"hot"`) + `]}`: `"inputs"[0] (for "sensors"): feature "bearing_temp": expected a number, got "hot"`,
+	} {
+		code, _, got := post(t, ts.URL+"/v1/predict", body)
+		assert.Equal(t, http.StatusBadRequest, code, got)
+		assert.Contains(t, errorOf(t, got), want)
+	}
 }
