@@ -40,6 +40,9 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 	}
 	e := &Explainer{model: m, head: head, settings: s, input: input, output: output, shape: head.InputShape()}
 	e.size = samples.Product(e.shape)
+	if n := head.OutputSize(); s.Target >= n {
+		return nil, fieldError(FieldTarget, fmt.Sprintf(" must be top or an index from 0 to %d (output %q has %d values), got %d", n-1, output, n, s.Target))
+	}
 	// A method with baselines averages the samples explained when it has
 	// no reference set; the others cannot do without one.
 	if s.NeedsReference() && !s.Method.Reads(gradattr.ParamBaseline) && s.Reference == nil {

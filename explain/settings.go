@@ -110,6 +110,10 @@ type Baseline struct {
 	Samples *Dataset
 }
 
+// BaselineWords are the baselines ParseBaseline reads that are not files,
+// as a message lists them.
+const BaselineWords = "zero, mean, blur or blur:S"
+
 // ParseBaseline reads a baseline as the surfaces write it: zero, mean,
 // blur (σ = DefaultBlurSigma), blur:S (σ = S pixels), or else the name of
 // a file of baseline samples, which the caller reads into Samples.
@@ -277,7 +281,7 @@ func (s *Settings) set(f Field, text string) error {
 	case FieldRule:
 		r, err := gradattr.ParseRule(text)
 		if err != nil {
-			return fieldError(f, ": ", err)
+			return fieldError(f, " must be trapezoid, left, right, midpoint or gauss-legendre, got ", strconv.Quote(text))
 		}
 		s.Rule = r
 	case FieldTolerance:
@@ -311,9 +315,9 @@ func (s *Settings) set(f Field, text string) error {
 }
 
 // Check judges the settings together: a method parameter given (by Set)
-// for a method that does not read it, a reference set given with
-// integrated gradients against a baseline other than the mean. Errors are
-// *FieldError.
+// for a method that does not read it, fewer integration points than the
+// rule needs, a reference set given with integrated gradients against a
+// baseline other than the mean. Errors are *FieldError.
 func (s *Settings) Check() error {
 	if _, err := gradattr.ParseMethod(string(s.Method)); err != nil {
 		return fieldError(FieldMethod, " must be one of ", gradattr.MethodNames(), ", got ", strconv.Quote(string(s.Method)))
@@ -329,6 +333,9 @@ func (s *Settings) Check() error {
 			}
 		}
 		return fieldError(f, " applies to ", FieldMethod, " ", strings.Join(readers, " and "), " only, not ", s.Method)
+	}
+	if min := s.Rule.MinPoints(); s.Method.Reads(gradattr.ParamSteps) && s.Steps > 0 && s.Steps < min {
+		return fieldError(FieldSteps, fmt.Sprintf(" must be auto or at least %d with the %s rule, got %d", min, s.Rule, s.Steps))
 	}
 	if s.Reference != nil && s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.Kind != gradattr.BaselineMean {
 		return fieldError(FieldReference, " with ", FieldMethod, " ", s.Method, " is the set ", FieldBaseline, " mean averages; give ", FieldBaseline, " mean too")

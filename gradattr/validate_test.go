@@ -100,7 +100,7 @@ func TestValidation(t *testing.T) {
 		}, ErrInput, "+Inf"},
 		{"target", func() error { _, err := Gradient(ctx, f, x, 1, GradientOptions{}); return err }, ErrInput, "target 1, model has outputs 0..0"},
 		{"unknown rule", func() error { _, err := IntegratedGradients(ctx, f, x, 0, IGOptions{Rule: Rule(9)}); return err }, ErrOptions, "unknown quadrature rule 9"},
-		{"trapezoid 1 point", func() error { _, err := IntegratedGradients(ctx, f, x, 0, IGOptions{Points: 1}); return err }, ErrOptions, "want 0 (automatic) or 2.."},
+		{"trapezoid 1 point", func() error { _, err := IntegratedGradients(ctx, f, x, 0, IGOptions{Points: 1}); return err }, ErrOptions, "want 2..65536, or 0 to refine the count automatically"},
 		{"too many points", func() error {
 			_, err := IntegratedGradients(ctx, f, x, 0, IGOptions{Points: MaxPointsLimit + 1})
 			return err

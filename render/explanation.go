@@ -143,10 +143,19 @@ func Table(w io.Writer, rep *explain.Report) error {
 			fmt.Fprintf(w, "completeness: sum %s  expected %s  gap %s  relative gap %s%s  %s\n",
 				Number(cp.Sum), Number(cp.Expected), signed(cp.Gap), Number(cp.RelativeGap), tol, verdict)
 		}
-		fmt.Fprintf(w, "cost: %d gradient evaluations, %d forward passes, %s\n",
-			r.Cost.GradientEvals, r.Cost.ForwardPasses, r.Cost.Elapsed.Round(10_000))
+		fmt.Fprintf(w, "cost: %s, %s, %s\n", Count(r.Cost.GradientEvals, "gradient evaluation", "gradient evaluations"),
+			Count(r.Cost.ForwardPasses, "forward pass", "forward passes"), r.Cost.Elapsed.Round(10_000))
 	}
 	return nil
+}
+
+// Count writes n with the singular or the plural noun: "1 forward pass",
+// "2 forward passes".
+func Count(n int, one, many string) string {
+	if n == 1 {
+		return "1 " + one
+	}
+	return strconv.Itoa(n) + " " + many
 }
 
 // Number formats v for people, with five significant digits.

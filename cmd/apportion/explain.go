@@ -59,11 +59,12 @@ type explainConfig struct {
 }
 
 // registerMethodFlags defines the flags that choose and tune the
-// attribution method, with the library's defaults; baselineHelp and
-// referenceHelp describe -baseline and -reference, whose defaults differ
-// between commands. The values are read back through the flag set (see
-// readSettings).
-func registerMethodFlags(fs *flag.FlagSet, baselineHelp, referenceHelp string) {
+// attribution method, with the library's defaults; baselineDefault,
+// baselineHelp and referenceHelp describe -baseline and -reference, whose
+// defaults differ between commands (a baselineDefault of "" shows none, for
+// a help text that says it). The values are read back through the flag set
+// (see readSettings).
+func registerMethodFlags(fs *flag.FlagSet, baselineDefault, baselineHelp, referenceHelp string) {
 	var aliases []string
 	for _, m := range gradattr.Methods() {
 		aliases = append(aliases, m.Alias())
@@ -73,9 +74,9 @@ func registerMethodFlags(fs *flag.FlagSet, baselineHelp, referenceHelp string) {
 	fs.String("method", explain.DefaultMethod.Alias(), "attribution method: "+strings.Join(aliases, ", ")+" (or the canonical names "+gradattr.MethodNames()+")")
 	fs.String("target", explain.DefaultTargetText, "output element to explain: an index `N`, or top for the largest")
 	fs.Bool("logits", false, "explain the input of the Softmax, LogSoftmax or Sigmoid that produces the output (the logits)")
-	fs.String("baseline", explain.DefaultBaselineText, baselineHelp)
+	fs.String("baseline", baselineDefault, baselineHelp)
 	fs.String("reference", "", referenceHelp)
-	fs.String("steps", explain.DefaultStepsText, "integration points for ig: a number `N`, or auto to refine until -tolerance")
+	fs.String("steps", explain.DefaultStepsText, "integration points for ig: a number `N` (at least 2 with the trapezoid rule, 1 with the others), or auto to refine until -tolerance")
 	fs.String("rule", "", "quadrature `rule` for ig: trapezoid, left, right, midpoint or gauss-legendre (default trapezoid)")
 	fs.Float64("tolerance", ig.Tolerance, fmt.Sprintf("relative completeness gap `R` to meet; expected-grad, complete only in expectation, uses %v unless given", eg.Tolerance))
 	fs.Int("samples", sg.Samples, "noisy copies (smoothgrad) or baseline draws (expected-grad) `N`")
@@ -121,7 +122,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	var c explainConfig
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded demo model chosen by -demo)")
 	fs.StringVar(&c.inputPath, "input", "", "samples to explain: a .csv, .json, .npy or .pb `file` (required with -model; default: the demo's own sample)")
-	registerMethodFlags(fs,
+	registerMethodFlags(fs, explain.DefaultBaselineText,
 		"baseline `kind` for ig: zero, mean (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), or the path of a file of baseline samples (results averaged over them)",
 		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the random methods")
@@ -216,7 +217,7 @@ func reportFailed(stderr io.Writer, rep *explain.Report) int {
 		}
 	}
 	if n := rep.Failed(); n > 0 {
-		fmt.Fprintf(stderr, "apportion explain: %d of %d samples failed\n", n, len(rep.Explanations))
+		fmt.Fprintf(stderr, "apportion explain: %d of %s failed\n", n, render.Count(len(rep.Explanations), "sample", "samples"))
 		return exitFail
 	}
 	return exitOK
@@ -373,6 +374,9 @@ func (l *loadedModel) readSet(path string, field explain.Field) (*explain.Datase
 		return nil, err
 	}
 	raw, err := samples.ReadLimited(path)
+	if field == explain.FieldBaseline && errors.Is(err, os.ErrNotExist) {
+		return nil, &usageErr{fmt.Sprintf("-baseline must be %s, or the path of a file of baseline samples; got %q, which is neither (there is no such file)", explain.BaselineWords, path)}
+	}
 	if err != nil {
 		return nil, fmt.Errorf("%s: input %s (for %q): %w", flagName(field), path, spec.Name, err)
 	}

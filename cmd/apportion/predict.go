@@ -57,7 +57,7 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		for i, f := range feeds {
 			names[i] = f.Name
 		}
-		return usageError(stderr, "predict", "the model has %d inputs (%s), got %d -input files", len(feeds), strings.Join(names, ", "), len(inputs))
+		return usageError(stderr, "predict", "the model has %s (%s), got %s", render.Count(len(feeds), "input", "inputs"), strings.Join(names, ", "), render.Count(len(inputs), "-input file", "-input files"))
 	}
 	tensors := make([]*onnxlite.Tensor, len(feeds))
 	open := map[string][]int{}
