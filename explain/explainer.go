@@ -184,7 +184,8 @@ type Explanation struct {
 	// Result is the attribution; nil when Err is set.
 	Result *gradattr.Result
 	// BaselineOutputs are the model's outputs at the baseline, when there
-	// is one baseline; nil otherwise or when they could not be computed.
+	// is one baseline (for gradient × input, the zero input); nil otherwise
+	// or when they could not be computed.
 	BaselineOutputs []float64
 	// Grouped sums the attributions over Settings.Groups.
 	Grouped *gradattr.GroupedResult
@@ -241,8 +242,8 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 			ex.Result, ex.Err = gradattr.Attribute(ctx, e.head, x, e.settings.Target, o)
 		}
 		if ex.Err == nil {
-			if len(o.Baselines) == 1 {
-				ex.BaselineOutputs = e.baselineOutputs(ctx, x, o.Baselines[0])
+			if b, ok := reportedBaseline(o); ok {
+				ex.BaselineOutputs = e.baselineOutputs(ctx, x, b)
 			}
 			if e.settings.Groups != nil {
 				ex.Grouped, ex.Err = ex.Result.Grouped(e.settings.Groups)
@@ -254,6 +255,19 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 		}
 	}
 	return rep, nil
+}
+
+// reportedBaseline is the one baseline whose outputs a result reports: the
+// baseline of integrated gradients when there is one, the zero input that
+// gradient × input's completeness is checked against.
+func reportedBaseline(o gradattr.Options) (gradattr.Baseline, bool) {
+	switch {
+	case o.Method == gradattr.MethodGradientTimesInput:
+		return gradattr.Baseline{Kind: gradattr.BaselineZero}, true
+	case o.Method.Reads(gradattr.ParamBaseline) && len(o.Baselines) == 1:
+		return o.Baselines[0], true
+	}
+	return gradattr.Baseline{}, false
 }
 
 // baselineOutputs evaluates the model at the baseline of sample x; nil when

@@ -196,3 +196,25 @@ func TestResultJSON(t *testing.T) {
 	require.NoError(t, err)
 	assert.NotContains(t, string(b), "completeness")
 }
+
+func TestCompletenessJSON(t *testing.T) {
+	// A judged check writes its verdict; an unjudged one (gradient × input)
+	// has none: "ok" is null (RFC 8259 §3: null is the JSON value for no
+	// value).
+	for _, c := range []struct {
+		cp   Completeness
+		want string
+	}{
+		{Completeness{Sum: 1, Expected: 1, Tolerance: 0.005, Judged: true, OK: true}, `"judged":true,"ok":true`},
+		{Completeness{Sum: 2, Expected: 1, Gap: 1, RelativeGap: 1, Tolerance: 0.005, Judged: true}, `"judged":true,"ok":false`},
+		{Completeness{Sum: 2, Expected: 1, Gap: 1, RelativeGap: 1}, `"judged":false,"ok":null`},
+	} {
+		raw, err := json.Marshal(c.cp)
+		require.NoError(t, err)
+		assert.Contains(t, string(raw), c.want)
+		assert.Contains(t, string(raw), `"sum":`)
+		var back Completeness
+		require.NoError(t, json.Unmarshal(raw, &back))
+		assert.Equal(t, c.cp, back, "reads back")
+	}
+}

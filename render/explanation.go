@@ -60,7 +60,7 @@ func bar(v, scale float64) string {
 func Table(w io.Writer, rep *explain.Report) error {
 	labels := rep.Labels()
 	classes := rep.Model.Meta.Classes
-	fmt.Fprintf(w, "model %s  output %s  method %s\n", rep.Model.Name, rep.Output, rep.Settings.Method)
+	fmt.Fprintf(w, "model %s  output %s  method %s\n", rep.Model.Name, outputLabel(rep), rep.Settings.Method)
 	for _, e := range rep.Explanations {
 		fmt.Fprintln(w)
 		if e.Err != nil {
@@ -147,6 +147,15 @@ func Table(w io.Writer, rep *explain.Report) error {
 			Count(r.Cost.ForwardPasses, "forward pass", "forward passes"), r.Cost.Elapsed.Round(10_000))
 	}
 	return nil
+}
+
+// outputLabel names the output explained: its name, and "(logits)" when
+// the logits before its final Softmax, LogSoftmax or Sigmoid are explained.
+func outputLabel(rep *explain.Report) string {
+	if rep.Settings.Logits {
+		return rep.Output + " (logits)"
+	}
+	return rep.Output
 }
 
 // Count writes n with the singular or the plural noun: "1 forward pass",

@@ -435,6 +435,9 @@ func PNG(w io.Writer, rep *explain.Report, e explain.Explanation) error {
 		method += " (baseline " + baselineTitle(rep) + ")"
 	}
 	title := fmt.Sprintf("%s, sample %d: %s of output %s[%s]", rep.Model.Name, e.Index, method, rep.Output, target)
+	if rep.Settings.Logits {
+		title = fmt.Sprintf("%s, sample %d: %s of the logits of output %s[%s]", rep.Model.Name, e.Index, method, rep.Output, target)
+	}
 	notes := []string{"output " + Number(r.Output)}
 	if cp := r.Completeness; cp != nil {
 		notes[0] += ", baseline output " + Number(r.BaselineOutput)

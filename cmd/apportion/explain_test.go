@@ -354,3 +354,46 @@ func TestExplainMalformedSamplesKeepTheRest(t *testing.T) {
 	assert.Equal(t, exitFail, code)
 	assert.Contains(t, errs, `line 3, column b: "oops" is not a number`)
 }
+
+func TestExplainGradientTimesInputRecord(t *testing.T) {
+	// Gradient × input reports completeness against the zero input without
+	// judging it: the document carries the outputs at that baseline,
+	// softmax(0) = (1/3, 1/3, 1/3) (closed form), and "ok": null.
+	model, _, y, xpb := softmaxCase(t)
+	code, out, errs := cli(t, "explain", "-model", model, "-input", xpb, "-method", "grad-input", "-format", "json")
+	require.Equal(t, exitOK, code, errs)
+	var doc struct {
+		Explanations []struct {
+			Target          int            `json:"target"`
+			BaselineOutputs []float64      `json:"baseline_outputs"`
+			Completeness    map[string]any `json:"completeness"`
+		} `json:"explanations"`
+	}
+	require.NoError(t, json.Unmarshal([]byte(out), &doc))
+	e := doc.Explanations[0]
+	require.Len(t, e.BaselineOutputs, 3)
+	for _, v := range e.BaselineOutputs {
+		assert.InDelta(t, 1.0/3, v, 1e-7)
+	}
+	assert.InDelta(t, y[e.Target]-1.0/3, e.Completeness["expected"], 1e-6, "f(x) − f(0), f(x) from output_0.pb")
+	assert.Equal(t, false, e.Completeness["judged"])
+	assert.Contains(t, e.Completeness, "ok")
+	assert.Nil(t, e.Completeness["ok"])
+
+	// The table names the baseline output it subtracts.
+	code, out, errs = cli(t, "explain", "-model", model, "-input", xpb, "-method", "grad-input")
+	require.Equal(t, exitOK, code, errs)
+	assert.Contains(t, out, "baseline output 0.33333")
+	assert.Contains(t, out, "not judged")
+}
+
+func TestExplainLogitsNamed(t *testing.T) {
+	// With -logits the table's header and the JSON settings say that the
+	// logits were explained (render's tests check the PNG's title).
+	model, _, _, xpb := softmaxCase(t)
+	code, out, errs := cli(t, "explain", "-model", model, "-input", xpb, "-logits", "-method", "grad")
+	require.Equal(t, exitOK, code, errs)
+	assert.Contains(t, strings.SplitN(out, "\n", 2)[0], "output y (logits)")
+	doc, _ := explainJSONRun(t, exitOK, "-model", model, "-input", xpb, "-logits", "-method", "grad")
+	assert.Equal(t, true, doc.Settings["logits"])
+}
