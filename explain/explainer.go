@@ -189,6 +189,9 @@ type Explanation struct {
 	BaselineOutputs []float64
 	// Grouped sums the attributions over Settings.Groups.
 	Grouped *gradattr.GroupedResult
+	// Warnings say what the result's numbers do not: that they are near
+	// zero because the output is saturated or does not change.
+	Warnings []Warning
 	// Err says why the sample could not be explained: it could not be
 	// read, holds a NaN or infinity, or the method failed on it.
 	Err error
@@ -245,6 +248,7 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 			if b, ok := reportedBaseline(o); ok {
 				ex.BaselineOutputs = e.baselineOutputs(ctx, x, b)
 			}
+			ex.Warnings = e.warnings(x, ex.Result)
 			if e.settings.Groups != nil {
 				ex.Grouped, ex.Err = ex.Result.Grouped(e.settings.Groups)
 			}

@@ -21,6 +21,15 @@ var (
 	colorFrame    = color.RGBA{R: 0xB0, G: 0xB0, B: 0xB0, A: 0xFF}
 )
 
+// The terminal's colours for positive and negative bars: the ANSI
+// 256-colour palette's nearest entries to PuOr's #E08214 (172, #D78700) and
+// #8073AC (97, #875FAF), the scheme's middle orange and purple, legible on
+// dark and light backgrounds alike.
+const (
+	termPositive = 172
+	termNegative = 97
+)
+
 // heatScalePercentile is the percentile of |a| that maps to the ends of the
 // colour map.
 const heatScalePercentile = 99

@@ -9,7 +9,6 @@ import (
 	"io"
 	"math"
 	"path/filepath"
-	"sort"
 	"strconv"
 	"strings"
 	"sync"
@@ -423,7 +422,7 @@ func PNGPath(out string, i, n int) string {
 // ((H,W), (1,H,W), or (C,H,W) with C ≤ 3, attributions summed over
 // channels), a bar chart of the 64 largest |attribution| otherwise, and a
 // bar chart of the group sums when the settings have groups.
-func PNG(w io.Writer, rep *explain.Report, e explain.Explanation) error {
+func PNG(w io.Writer, rep *explain.Report, e explain.Explanation, opt Options) error {
 	r := e.Result
 	target := strconv.Itoa(r.Target)
 	if classes := rep.Model.Meta.Classes; r.Target >= 0 && r.Target < len(classes) {
@@ -451,6 +450,9 @@ func PNG(w io.Writer, rep *explain.Report, e explain.Explanation) error {
 		notes = append(notes, fmt.Sprintf("completeness: sum %s, expected %s, relative gap %s%s",
 			Number(cp.Sum), Number(cp.Expected), Number(cp.RelativeGap), verdict))
 	}
+	for _, wn := range e.Warnings {
+		notes = append(notes, "warning: "+wn.Message+opt.suggestion(wn))
+	}
 	if g := e.Grouped; g != nil {
 		return Bars(w, title, notes, g.Names, g.Attributions, nil, nil)
 	}
@@ -469,16 +471,9 @@ func PNG(w io.Writer, rep *explain.Report, e explain.Explanation) error {
 		return Heatmap(w, title, img, h, wd, attr, notes...)
 	}
 	labels := rep.Labels()
-	order := make([]int, len(r.Attributions))
-	for i := range order {
-		order[i] = i
-	}
-	if len(order) > maxTableFeatures {
-		sort.SliceStable(order, func(a, b int) bool {
-			return math.Abs(r.Attributions[order[a]]) > math.Abs(r.Attributions[order[b]])
-		})
-		notes = append(notes, fmt.Sprintf("the %d features with the largest |attribution| of %d", maxTableFeatures, len(order)))
-		order = order[:maxTableFeatures]
+	order, hidden := opt.selection(r.Attributions)
+	if hidden > 0 {
+		notes = append(notes, opt.hiddenNote(hidden, len(r.Attributions)))
 	}
 	names := make([]string, len(order))
 	vals := make([]float64, len(order))

@@ -8,6 +8,7 @@ import (
 	"image/png"
 	"math"
 	"path/filepath"
+	"strings"
 	"testing"
 
 	"github.com/stretchr/testify/assert"
@@ -380,15 +381,7 @@ func TestExplainPNGGroups(t *testing.T) {
 	// "first two" = a_0 + a_1 and "last" = a_2.
 	groups := []gradattr.Group{{Name: "first two", Indices: []int{0, 1}}, {Name: "last", Indices: []int{2}}}
 	rep, x, y := explainCase(t, "node/test_softmax_example", gradattr.MethodGradientTimesInput, groups)
-	k := gradattr.Top(y)
-	a := make([]float64, 3)
-	for i := range a {
-		d := 0.0
-		if i == k {
-			d = 1
-		}
-		a[i] = x[i] * y[k] * (d - y[i])
-	}
+	_, a := testfiles.SoftmaxGradientTimesInput(x, y)
 	sums := []float64{a[0] + a[1], a[2]}
 	red, blue := colourRuns(drawPNG(t, rep))
 	require.Len(t, red, 2)
@@ -511,8 +504,39 @@ func explainCase(t *testing.T, name string, method gradattr.Method, groups []gra
 func drawPNG(t *testing.T, rep *explain.Report) *image.RGBA {
 	t.Helper()
 	var buf bytes.Buffer
-	require.NoError(t, PNG(&buf, rep, rep.Explanations[0]))
+	require.NoError(t, PNG(&buf, rep, rep.Explanations[0], Options{}))
 	// PNG signature, ISO/IEC 15948:2003 §5.2.
 	require.True(t, bytes.HasPrefix(buf.Bytes(), []byte("\x89PNG\r\n\x1a\n")))
 	return decodePNG(t, buf.Bytes())
+}
+
+func TestTableColours(t *testing.T) {
+	// The gradient of y = softmax(x) (ONNX backend test data 1.12.0,
+	// node/test_softmax_example) for the top class k: a_i = y_k(δ_ik − y_i),
+	// positive for i = k and negative for the others. With Color, positive
+	// bars are drawn in ANSI 256-colour 172 and negative ones in 97
+	// (ECMA-48 SGR 38;5;n), the terminal's PuOr orange and purple; without
+	// it, no escape at all.
+	rep, x, y := explainCase(t, "node/test_softmax_example", gradattr.MethodGradient, nil)
+	k := gradattr.Top(y)
+	pos, neg := 0, 0
+	for i := range x {
+		d := 0.0
+		if i == k {
+			d = 1
+		}
+		if a := y[k] * (d - y[i]); a > 0 {
+			pos++
+		} else if a < 0 {
+			neg++
+		}
+	}
+	require.Positive(t, pos)
+	require.Positive(t, neg)
+	var plain, colour bytes.Buffer
+	require.NoError(t, Table(&plain, rep, Options{}))
+	require.NoError(t, Table(&colour, rep, Options{Color: true}))
+	assert.NotContains(t, plain.String(), "\x1b[")
+	assert.Equal(t, pos, strings.Count(colour.String(), "\x1b[38;5;172m█"))
+	assert.Equal(t, neg, strings.Count(colour.String(), "\x1b[38;5;97m"))
 }

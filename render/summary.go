@@ -39,9 +39,9 @@ func writeGroupStats(w io.Writer, title string, g gradattr.GroupStats) {
 	}
 	ranked := g.Ranked()
 	hidden := 0
-	if len(ranked) > maxTableFeatures {
-		hidden = len(ranked) - maxTableFeatures
-		ranked = ranked[:maxTableFeatures]
+	if len(ranked) > MaxFeatures {
+		hidden = len(ranked) - MaxFeatures
+		ranked = ranked[:MaxFeatures]
 	}
 	defer func() {
 		if hidden > 0 {

@@ -11,6 +11,8 @@ import (
 	"runtime"
 	"strings"
 
+	"golang.org/x/term"
+
 	"github.com/apportion/apportion/demo"
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
@@ -52,6 +54,8 @@ type explainConfig struct {
 	out       string
 	demo      string
 	seed      uint64 // -seed, which summarize also uses for the bootstrap
+	sort      string
+	render    render.Options
 
 	settings explain.Settings
 	set      map[string]bool // the flags given
@@ -130,6 +134,8 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv, npy or png (png needs -out)")
 	fs.StringVar(&c.out, "out", "", "write the result to `file` instead of standard output (png: file_0.png, file_1.png, ... for several samples)")
 	fs.StringVar(&c.demo, "demo", "", "embedded invented demo `scenario` to explain without -model: pumps (the default) or welds")
+	fs.IntVar(&c.render.Top, "top", 0, "show only the `K` features with the largest |attribution| in the table and the PNG (0: all, at most 64)")
+	fs.StringVar(&c.sort, "sort", "model", "order of the features in the table and the PNG: model (the model's order), abs (largest |attribution| first) or value (largest attribution first)")
 	if code, done := parseFlags(fs, args, stdout); done {
 		return code
 	}
@@ -158,8 +164,9 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		return fail(stderr, "explain", err)
 	}
 
+	c.render.Color = c.out == "" && colorTerminal(stdout)
 	if c.format == "png" {
-		if err := writePNGs(c.out, rep); err != nil {
+		if err := writePNGs(c.out, rep, c.render); err != nil {
 			return failure(stderr, "explain", err)
 		}
 		return reportFailed(stderr, rep)
@@ -177,7 +184,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	case "npy":
 		err = render.NPY(w, rep)
 	default:
-		err = render.Table(w, rep)
+		err = render.Table(w, rep, c.render)
 	}
 	if err != nil {
 		return failure(stderr, "explain", err)
@@ -192,13 +199,13 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 
 // writePNGs writes one PNG per explained sample to render.PNGPath(out, ...);
 // samples that failed get no file.
-func writePNGs(out string, rep *explain.Report) error {
+func writePNGs(out string, rep *explain.Report, opt render.Options) error {
 	for _, e := range rep.Explanations {
 		if e.Err != nil {
 			continue
 		}
 		var buf bytes.Buffer
-		if err := render.PNG(&buf, rep, e); err != nil {
+		if err := render.PNG(&buf, rep, e, opt); err != nil {
 			return fmt.Errorf("sample %d: %w", e.Index, err)
 		}
 		if err := os.WriteFile(render.PNGPath(out, e.Index, len(rep.Explanations)), buf.Bytes(), 0o644); err != nil {
@@ -261,6 +268,13 @@ func (c *explainConfig) validate() string {
 		}
 	default:
 		return fmt.Sprintf("-format must be table, json, csv, npy or png, got %q", c.format)
+	}
+	if c.render.Top < 0 {
+		return fmt.Sprintf("-top must be 0 (all features) or more, got %d", c.render.Top)
+	}
+	var err error
+	if c.render.Sort, err = render.ParseSort(c.sort); err != nil {
+		return "-sort " + err.Error()
 	}
 	// An embedded demo scenario supplies its own reference set.
 	demoReference := c.modelPath == "" && (c.demo != "" || demoModel == nil)
@@ -440,6 +454,18 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 	ex, err := explain.New(m, head, c.settings)
 	c.ignored = l.ignored
 	return ex, batch, err
+}
+
+// colorTerminal reports whether w is a terminal that shows colour: a
+// character device, with NO_COLOR unset or empty (no-color.org) and TERM
+// set to something other than dumb (common practice).
+func colorTerminal(w io.Writer) bool {
+	f, ok := w.(*os.File)
+	if !ok || !term.IsTerminal(int(f.Fd())) {
+		return false
+	}
+	t := os.Getenv("TERM")
+	return os.Getenv("NO_COLOR") == "" && t != "" && t != "dumb"
 }
 
 // progress reports finished samples of a long batch on w when w is a

@@ -6,6 +6,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"sort"
 	"strconv"
 	"strings"
 	"testing"
@@ -13,6 +14,8 @@ import (
 	"codeberg.org/sbinet/npyio/npy"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+
+	"github.com/apportion/apportion/internal/testfiles"
 )
 
 type explainDoc struct {
@@ -396,4 +399,77 @@ func TestExplainLogitsNamed(t *testing.T) {
 	assert.Contains(t, strings.SplitN(out, "\n", 2)[0], "output y (logits)")
 	doc, _ := explainJSONRun(t, exitOK, "-model", model, "-input", xpb, "-logits", "-method", "grad")
 	assert.Equal(t, true, doc.Settings["logits"])
+}
+
+func TestExplainSaturatedTable(t *testing.T) {
+	// y = softmax(x) (ONNX backend test data 1.12.0) at x = (0, 0, 40):
+	// y_2 = 1/(1 + 2e^−40), within 1e-6 of 1 (closed form), so its gradient
+	// is below 1e-17. The table says so, suggests -logits, and draws the
+	// bars on the scale |f(x)| = 1: no bar shows. The same in JSON.
+	model, _, _, _ := softmaxCase(t)
+	in := writeTemp(t, "sat.json", "[0, 0, 40]")
+	code, out, errs := cli(t, "explain", "-model", model, "-input", in, "-method", "grad")
+	require.Equal(t, exitOK, code, errs)
+	assert.Contains(t, out, "warning: output y[2] is 1, within 1e-6 of 1")
+	assert.Contains(t, out, "try -logits")
+	assert.Contains(t, out, "(a full bar is 1, |output|)")
+	assert.NotContains(t, out, "█")
+	doc, _ := explainJSONRun(t, exitOK, "-model", model, "-input", in, "-method", "grad")
+	require.Len(t, doc.Explanations, 1)
+	assert.Less(t, math.Abs(doc.Explanations[0].Attributions[0]), 1e-15)
+
+	// Explaining the logits, the gradient of y = x_2 is e_2 (closed form):
+	// no warning, and a full bar for x_2.
+	code, out, errs = cli(t, "explain", "-model", model, "-input", in, "-method", "grad", "-logits")
+	require.Equal(t, exitOK, code, errs)
+	assert.NotContains(t, out, "warning")
+	assert.Contains(t, out, "│"+strings.Repeat("█", 12))
+	assert.Contains(t, out, "(a full bar is 1, the largest |attribution|)")
+}
+
+func TestExplainTopAndSort(t *testing.T) {
+	// Gradient × input of y = softmax(x) (ONNX backend test data 1.12.0,
+	// node/test_softmax_example) has the closed form a_i = x_i·y_k(δ_ik − y_i)
+	// for the top class k. The table lists the features in the model's
+	// order by default, by |a| or by a with -sort, and only the -top K of
+	// largest |a|, saying how many it leaves out.
+	model, x, y, xpb := softmaxCase(t)
+	_, a := testfiles.SoftmaxGradientTimesInput(x, y)
+	rowsOf := func(out string) []int {
+		var idx []int
+		for _, line := range strings.Split(out, "\n") {
+			f := strings.Fields(line)
+			if len(f) >= 3 && len(f[0]) == 1 && f[0] >= "0" && f[0] <= "2" {
+				idx = append(idx, int(f[0][0]-'0'))
+			}
+		}
+		return idx
+	}
+	byAbs := []int{0, 1, 2}
+	sort.SliceStable(byAbs, func(i, j int) bool { return math.Abs(a[byAbs[i]]) > math.Abs(a[byAbs[j]]) })
+	byValue := []int{0, 1, 2}
+	sort.SliceStable(byValue, func(i, j int) bool { return a[byValue[i]] > a[byValue[j]] })
+	for _, c := range []struct {
+		args []string
+		want []int
+		note string
+	}{
+		{nil, []int{0, 1, 2}, ""},
+		{[]string{"-sort", "abs"}, byAbs, ""},
+		{[]string{"-sort", "value"}, byValue, ""},
+		{[]string{"-top", "2"}, func() []int { s := append([]int(nil), byAbs[:2]...); sort.Ints(s); return s }(), "1 of 3 features not shown: -top 2 keeps those with the largest |attribution|"},
+		{[]string{"-top", "2", "-sort", "abs"}, byAbs[:2], "1 of 3 features not shown"},
+	} {
+		code, out, errs := cli(t, append([]string{"explain", "-model", model, "-input", xpb, "-method", "grad-input"}, c.args...)...)
+		require.Equal(t, exitOK, code, errs)
+		assert.Equal(t, c.want, rowsOf(out), "%v (closed form %v)", c.args, a)
+		if c.note != "" {
+			assert.Contains(t, out, c.note, c.args)
+		} else {
+			assert.NotContains(t, out, "not shown", c.args)
+		}
+	}
+	code, _, errs := cli(t, "explain", "-model", model, "-input", xpb, "-sort", "size")
+	assert.Equal(t, exitUsage, code)
+	assert.Contains(t, errs, `-sort must be model, abs or value, got "size"`)
 }

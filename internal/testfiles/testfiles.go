@@ -101,3 +101,24 @@ func ReadPB(t testing.TB, path string) (shape []int, data []float64) {
 	require.NoError(t, err)
 	return tt.Shape(), data
 }
+
+// SoftmaxGradientTimesInput is gradient × input of y = softmax(x) for its
+// top class k, in closed form: a_i = x_i·y_k(δ_ik − y_i), the softmax
+// derivative ∂y_k/∂x_i = y_k(δ_ik − y_i) times the input. y holds the
+// outputs at x (the first largest is the top class).
+func SoftmaxGradientTimesInput(x, y []float64) (k int, a []float64) {
+	for i := range y {
+		if y[i] > y[k] {
+			k = i
+		}
+	}
+	a = make([]float64, len(x))
+	for i := range a {
+		d := 0.0
+		if i == k {
+			d = 1
+		}
+		a[i] = x[i] * y[k] * (d - y[i])
+	}
+	return k, a
+}
