@@ -7,6 +7,7 @@ import (
 	"flag"
 	"fmt"
 	"io"
+	"math"
 	"os"
 	"runtime"
 	"strings"
@@ -56,6 +57,8 @@ type explainConfig struct {
 	seed      uint64 // -seed, which summarize also uses for the bootstrap
 	sort      string
 	render    render.Options
+	// allowIncomplete accepts results whose completeness check fails.
+	allowIncomplete bool
 
 	settings explain.Settings
 	set      map[string]bool // the flags given
@@ -134,6 +137,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv, npy or png (png needs -out)")
 	fs.StringVar(&c.out, "out", "", "write the result to `file` instead of standard output (png: file_0.png, file_1.png, ... for several samples)")
 	fs.StringVar(&c.demo, "demo", "", "embedded invented demo `scenario` to explain without -model: pumps (the default) or welds")
+	fs.BoolVar(&c.allowIncomplete, "allow-incomplete", false, "exit 0 even when a completeness check fails (the results are printed either way)")
 	fs.IntVar(&c.render.Top, "top", 0, "show only the `K` features with the largest |attribution| in the table and the PNG (0: all, at most 64)")
 	fs.StringVar(&c.sort, "sort", "model", "order of the features in the table and the PNG: model (the model's order), abs (largest |attribution| first) or value (largest attribution first)")
 	if code, done := parseFlags(fs, args, stdout); done {
@@ -169,7 +173,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		if err := writePNGs(c.out, rep, c.render); err != nil {
 			return failure(stderr, "explain", err)
 		}
-		return reportFailed(stderr, rep)
+		return c.reportFailed(stderr, rep)
 	}
 	w := stdout
 	var buf bytes.Buffer
@@ -194,7 +198,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			return failure(stderr, "explain", err)
 		}
 	}
-	return reportFailed(stderr, rep)
+	return c.reportFailed(stderr, rep)
 }
 
 // writePNGs writes one PNG per explained sample to render.PNGPath(out, ...);
@@ -215,19 +219,40 @@ func writePNGs(out string, rep *explain.Report, opt render.Options) error {
 	return nil
 }
 
-// reportFailed prints the samples that could not be explained and returns
-// the exit status.
-func reportFailed(stderr io.Writer, rep *explain.Report) int {
+// reportFailed prints the samples that could not be explained and those
+// whose completeness check failed, and returns the exit status: 1 when a
+// sample failed, or a check failed without -allow-incomplete.
+func (c *explainConfig) reportFailed(stderr io.Writer, rep *explain.Report) int {
+	incomplete := 0
 	for _, e := range rep.Explanations {
 		if e.Err != nil {
 			fmt.Fprintf(stderr, "apportion explain: sample %d: %v\n", e.Index, e.Err)
+			continue
+		}
+		if cp := e.Result.Completeness; cp != nil && cp.Judged && !cp.OK {
+			incomplete++
+			fmt.Fprintf(stderr, "apportion explain: sample %d: the completeness check failed: the attributions sum to %s, %s off f(x) − f(x′) = %s, a relative gap of %s above the tolerance %s\n",
+				e.Index, render.Number(cp.Sum), render.Number(math.Abs(cp.Gap)), render.Number(cp.Expected), render.Number(cp.RelativeGap), render.Number(cp.Tolerance))
 		}
 	}
+	status := exitOK
 	if n := rep.Failed(); n > 0 {
 		fmt.Fprintf(stderr, "apportion explain: %d of %s failed\n", n, render.Count(len(rep.Explanations), "sample", "samples"))
-		return exitFail
+		status = exitFail
 	}
-	return exitOK
+	if incomplete > 0 {
+		hint := "more -steps, another -rule, or -allow-incomplete to accept the results"
+		if rep.Settings.Method == gradattr.MethodExpectedGradients {
+			hint = "more -samples, or -allow-incomplete to accept the results"
+		}
+		if c.allowIncomplete {
+			hint = "accepted with -allow-incomplete"
+		} else {
+			status = exitFail
+		}
+		fmt.Fprintf(stderr, "apportion explain: %d of %s incomplete (%s)\n", incomplete, render.Count(len(rep.Explanations)-rep.Failed(), "result", "results"), hint)
+	}
+	return status
 }
 
 // errUsage marks a flag combination that is wrong, detected after parsing.
