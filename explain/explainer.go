@@ -84,7 +84,7 @@ func (e *Explainer) options(batch *samples.Batch, name func(*Dataset) string) (g
 	s := &e.settings
 	o := gradattr.Options{
 		Method: s.Method, Points: s.Steps, Rule: s.Rule, Tolerance: s.Tolerance,
-		Samples: s.Samples, Noise: s.Noise, Seed: s.Seed,
+		Samples: s.Samples, Noise: s.Noise, Seed: s.Seed, Absolute: s.Absolute, Variant: s.Variant,
 	}
 	if s.Reference != nil && s.Reference.Batch != nil {
 		o.Reference = s.Reference.Batch.Rows()
@@ -93,23 +93,27 @@ func (e *Explainer) options(batch *samples.Batch, name func(*Dataset) string) (g
 		return o, nil
 	}
 	switch b := s.Baseline; b.Kind {
-	case gradattr.BaselineMean:
+	case gradattr.BaselineMean, gradattr.BaselineMedian:
 		if o.Reference != nil {
-			o.Baselines = []gradattr.Baseline{{Kind: gradattr.BaselineMean, Reference: o.Reference}}
+			o.Baselines = []gradattr.Baseline{{Kind: b.Kind, Reference: o.Reference}}
 			break
 		}
 		if batch == nil {
-			return o, fieldError(FieldBaseline, " mean needs ", FieldReference, " to explain single rows")
+			return o, fieldError(FieldBaseline, " ", string(b.Kind), " needs ", FieldReference, " to explain single rows")
 		}
 		rows := batch.Rows()
 		for i, row := range rows {
 			if err := samples.CheckFinite(row); err != nil {
-				e := fieldError(FieldBaseline, fmt.Sprintf(" mean: sample %d of %s: ", i, batch.Name), err)
+				e := fieldError(FieldBaseline, fmt.Sprintf(" %s: sample %d of %s: ", b.Kind, i, batch.Name), err)
 				e.Input = true
 				return o, e
 			}
 		}
-		o.Baselines = []gradattr.Baseline{{Kind: gradattr.BaselineMean, Reference: rows, Source: batch.Name}}
+		o.Baselines = []gradattr.Baseline{{Kind: b.Kind, Reference: rows, Source: batch.Name}}
+	case gradattr.BaselineConstant:
+		o.Baselines = []gradattr.Baseline{{Kind: gradattr.BaselineConstant, Value: b.Value}}
+	case gradattr.BaselineUniform:
+		o.Baselines = []gradattr.Baseline{{Kind: gradattr.BaselineUniform, Lo: b.Lo, Hi: b.Hi, Seed: s.Seed}}
 	case gradattr.BaselineBlur:
 		o.Baselines = []gradattr.Baseline{{Kind: gradattr.BaselineBlur, Sigma: b.Sigma}}
 	case gradattr.BaselineValues:

@@ -494,19 +494,24 @@ func PNG(w io.Writer, rep *explain.Report, e explain.Explanation, opt Options) e
 // for another σ), the mean of the reference set or of the input, or the
 // file of baseline samples.
 func baselineTitle(rep *explain.Report) string {
+	g := func(v float64) string { return strconv.FormatFloat(v, 'g', -1, 64) }
 	switch b := rep.Settings.Baseline; b.Kind {
-	case gradattr.BaselineMean:
+	case gradattr.BaselineMean, gradattr.BaselineMedian:
 		if ref := rep.Settings.Reference; ref != nil {
 			name := ref.Name
 			if ref.Batch != nil {
 				name = ref.Batch.Name // the file's own name, without a "demo:" label
 			}
-			return "mean of " + filepath.Base(name)
+			return string(b.Kind) + " of " + filepath.Base(name)
 		}
-		return "mean of the input"
+		return string(b.Kind) + " of the input"
+	case gradattr.BaselineConstant:
+		return "constant " + g(b.Value)
+	case gradattr.BaselineUniform:
+		return "uniform noise in [" + g(b.Lo) + ", " + g(b.Hi) + ")"
 	case gradattr.BaselineBlur:
 		if b.Sigma != explain.DefaultBlurSigma {
-			return "blur:" + strconv.FormatFloat(b.Sigma, 'g', -1, 64)
+			return "blur:" + g(b.Sigma)
 		}
 		return "blur"
 	case gradattr.BaselineValues:

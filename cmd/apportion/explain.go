@@ -10,6 +10,7 @@ import (
 	"math"
 	"os"
 	"runtime"
+	"strconv"
 	"strings"
 
 	"golang.org/x/term"
@@ -42,7 +43,7 @@ func demoScenario(name string) (*demo.Scenario, error) {
 var methodFlagNames = []explain.Field{
 	explain.FieldMethod, explain.FieldTarget, explain.FieldOutput, explain.FieldLogits, explain.FieldBaseline,
 	explain.FieldReference, explain.FieldSteps, explain.FieldRule, explain.FieldTolerance, explain.FieldSamples,
-	explain.FieldNoise, explain.FieldSeed,
+	explain.FieldNoise, explain.FieldSeed, explain.FieldAbs, explain.FieldVariant,
 }
 
 // explainConfig holds explain's flags; settings are the method flags read
@@ -56,6 +57,7 @@ type explainConfig struct {
 	demo      string
 	seed      uint64 // -seed, which summarize also uses for the bootstrap
 	sort      string
+	patch     string // -patch HxW
 	render    render.Options
 	// allowIncomplete accepts results whose completeness check fails.
 	allowIncomplete bool
@@ -88,6 +90,8 @@ func registerMethodFlags(fs *flag.FlagSet, baselineDefault, baselineHelp, refere
 	fs.Float64("tolerance", ig.Tolerance, fmt.Sprintf("relative completeness gap `R` to meet; expected-grad, complete only in expectation, uses %v unless given", eg.Tolerance))
 	fs.Int("samples", sg.Samples, "noisy copies (smoothgrad) or baseline draws (expected-grad) `N`")
 	fs.Float64("noise", sg.Noise, "smoothgrad noise level `R`: σ / (max x − min x)")
+	fs.Bool("abs", false, "grad: the gradient's absolute value |∂f/∂x| (Simonyan et al. 2013), not its sign")
+	fs.String("variant", gradattr.VariantMean.String(), "smoothgrad aggregate of the noisy copies' gradients: mean, squared (mean of squares) or variance")
 }
 
 // readSettings sets the library's settings from the method flags given
@@ -134,6 +138,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the random methods")
 	fs.StringVar(&c.groups, "groups", "", "JSON `file` naming groups of features to report together")
+	fs.StringVar(&c.patch, "patch", "", "report image samples by patches of `HxW` pixels (all channels), tiled from the top left, instead of -groups")
 	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv, npy or png (png needs -out)")
 	fs.StringVar(&c.out, "out", "", "write the result to `file` instead of standard output (png: file_0.png, file_1.png, ... for several samples)")
 	fs.StringVar(&c.demo, "demo", "", "embedded invented demo `scenario` to explain without -model: pumps (the default) or welds")
@@ -293,6 +298,14 @@ func (c *explainConfig) validate() string {
 		}
 	default:
 		return fmt.Sprintf("-format must be table, json, csv, npy or png, got %q", c.format)
+	}
+	if c.patch != "" {
+		if c.groups != "" {
+			return "-patch and -groups both group the features; give one"
+		}
+		if _, _, ok := parsePatch(c.patch); !ok {
+			return fmt.Sprintf("-patch must be HxW, two whole numbers of pixels such as 4x4, got %q", c.patch)
+		}
 	}
 	if c.render.Top < 0 {
 		return fmt.Sprintf("-top must be 0 (all features) or more, got %d", c.render.Top)
@@ -476,9 +489,27 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 	if err != nil {
 		return nil, nil, err
 	}
+	if c.patch != "" {
+		ph, pw, _ := parsePatch(c.patch)
+		shape := head.InputShape()
+		if len(shape) < 2 {
+			return nil, nil, &usageErr{fmt.Sprintf("-patch %s needs samples with at least two axes (height, width), got shape %s", c.patch, samples.ShapeString(shape))}
+		}
+		if c.settings.Groups, err = gradattr.GridGroups(shape, ph, pw); err != nil {
+			return nil, nil, err
+		}
+	}
 	ex, err := explain.New(m, head, c.settings)
 	c.ignored = l.ignored
 	return ex, batch, err
+}
+
+// parsePatch reads -patch HxW.
+func parsePatch(s string) (h, w int, ok bool) {
+	hs, ws, found := strings.Cut(strings.ToLower(s), "x")
+	h, errH := strconv.Atoi(hs)
+	w, errW := strconv.Atoi(ws)
+	return h, w, found && errH == nil && errW == nil && h >= 1 && w >= 1
 }
 
 // colorTerminal reports whether w is a terminal that shows colour: a

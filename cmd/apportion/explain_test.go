@@ -143,15 +143,7 @@ func TestExplainGradientSoftmaxJacobian(t *testing.T) {
 	e := doc.Explanations[0]
 	require.Nil(t, e.Error)
 	assert.Nil(t, e.Completeness) // the gradient has no reference point
-	k := 1
-	want := make([]float64, 3)
-	for i := range want {
-		d := 0.0
-		if i == k {
-			d = 1
-		}
-		want[i] = s[k] * (d - s[i])
-	}
+	want := testfiles.SoftmaxGradient(s, 1)
 	for i := range want {
 		assert.InDelta(t, want[i], e.Attributions[i], 1e-5, "∂s_1/∂x_%d", i)
 	}
@@ -502,4 +494,86 @@ func TestExplainIncompleteExitStatus(t *testing.T) {
 	assert.Greater(t, cp.RelativeGap, cp.Tolerance)
 	explainJSONRun(t, exitOK, "-model", model, "-input", xpb)
 	explainJSONRun(t, exitOK, "-model", model, "-input", xpb, "-method", "grad-input")
+}
+
+func TestExplainLibraryOptions(t *testing.T) {
+	// The flags that reach the library's options, each against a closed
+	// form on ONNX backend test data 1.12.0 (node/test_softmax_example,
+	// y = softmax(x)).
+	//
+	// The gradient of the top output k is g_i = y_k(δ_ik − y_i), negative
+	// for i ≠ k: -abs gives |g_i| (Simonyan et al. 2013). With noise of
+	// σ = 1e-9 the copies of SmoothGrad sit at x, so the mean variant is g,
+	// the squared one g² (Hooker et al. 2019) and the variance 0 (Adebayo
+	// et al. 2018), to well within 1e-6.
+	model, _, y, xpb := softmaxCase(t)
+	g := testfiles.SoftmaxGradient(y, argmax(y))
+	run := func(args ...string) explainDoc {
+		doc, _ := explainJSONRun(t, exitOK, append([]string{"-model", model, "-input", xpb}, args...)...)
+		require.Nil(t, doc.Explanations[0].Error)
+		return doc
+	}
+	doc := run("-method", "grad", "-abs")
+	for i, a := range doc.Explanations[0].Attributions {
+		assert.InDelta(t, math.Abs(g[i]), a, 1e-6, "|g_%d|", i)
+	}
+	assert.Equal(t, true, doc.Settings["absolute"])
+	for variant, want := range map[string]func(float64) float64{
+		"mean":     func(v float64) float64 { return v },
+		"squared":  func(v float64) float64 { return v * v },
+		"variance": func(float64) float64 { return 0 },
+	} {
+		doc := run("-method", "smoothgrad", "-variant", variant, "-samples", "8", "-noise", "1e-9")
+		for i, a := range doc.Explanations[0].Attributions {
+			assert.InDelta(t, want(g[i]), a, 1e-6, "%s, feature %d", variant, i)
+		}
+		assert.Equal(t, variant, doc.Settings["variant"])
+	}
+
+	// y = softmax(x) (node/test_softmax_example) at any constant input c is
+	// (1/3, 1/3, 1/3): the baselines constant:2, and the median of the rows
+	// (0,0,0), (1,1,1), (5,5,5), which is (1,1,1), give that output, and
+	// integrated gradients shares out f(x) − 1/3 (Sundararajan et al. 2017,
+	// completeness).
+	ref := writeTemp(t, "ref.json", "[[0,0,0],[1,1,1],[5,5,5]]")
+	for _, args := range [][]string{{"-baseline", "constant:2"}, {"-baseline", "median", "-reference", ref}} {
+		doc := run(args...)
+		e := doc.Explanations[0]
+		require.Len(t, e.BaselineOutputs, 3, args)
+		for _, v := range e.BaselineOutputs {
+			assert.InDelta(t, 1.0/3, v, 1e-7, args)
+		}
+		assert.InDelta(t, y[*e.Target]-1.0/3, sum(e.Attributions), 0.005*(y[*e.Target]-1.0/3), args)
+	}
+	// uniform:LO:HI draws the baseline from -seed: the same seed, the same
+	// baseline; another seed, another.
+	base := func(seed string) []float64 {
+		doc, _ := explainJSONRun(t, exitOK, "-model", model, "-input", xpb, "-baseline", "uniform:-1:1", "-seed", seed)
+		return doc.Explanations[0].BaselineOutputs
+	}
+	assert.Equal(t, base("3"), base("3"))
+	assert.NotEqual(t, base("3"), base("4"))
+
+	// -patch HxW groups an image by tiles of all channels: on the demo's
+	// 1×32×32 weld patch, 8x8 makes 16 groups, each the sum of its 64
+	// pixels' attributions.
+	doc, _ = explainJSONRun(t, exitOK, "-demo", "welds", "-method", "grad-input", "-patch", "8x8")
+	e := doc.Explanations[0]
+	require.NotNil(t, e.Groups)
+	require.Len(t, e.Groups.Names, 16)
+	assert.Equal(t, "patch 1,2", e.Groups.Names[6])
+	s := 0.0
+	for r := 8; r < 16; r++ {
+		for c := 16; c < 24; c++ {
+			s += e.Attributions[r*32+c]
+		}
+	}
+	assert.InDelta(t, s, e.Groups.Attributions[6], 1e-12)
+	assert.True(t, e.Groups.Partition)
+	code, _, errs := cli(t, "explain", "-demo", "welds", "-patch", "8")
+	assert.Equal(t, exitUsage, code)
+	assert.Contains(t, errs, `-patch must be HxW`)
+	code, _, errs = cli(t, "explain", "-model", model, "-input", xpb, "-patch", "2x2")
+	assert.Equal(t, exitUsage, code)
+	assert.Contains(t, errs, "-patch 2x2 needs samples with at least two axes")
 }

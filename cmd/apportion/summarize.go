@@ -205,8 +205,8 @@ func (sc *summarizeConfig) validate() string {
 		// answers "why not normal?".
 		s.Baseline = explain.Baseline{Kind: gradattr.BaselineMean}
 	}
-	if s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.Kind == gradattr.BaselineMean && s.Reference == nil && c.modelPath != "" {
-		return "-baseline mean needs -reference here: the mean of the rows themselves would differ between parts of a data set, whose summaries could then not be merged"
+	if s.Method.Reads(gradattr.ParamBaseline) && s.NeedsReference() && s.Reference == nil && c.modelPath != "" {
+		return fmt.Sprintf("-baseline %s needs -reference here: the %s of the rows themselves would differ between parts of a data set, whose summaries could then not be merged", s.Baseline.Kind, s.Baseline.Kind)
 	}
 	if s.NeedsReference() && !s.Method.Reads(gradattr.ParamBaseline) && s.Reference == nil && c.modelPath != "" {
 		return fmt.Sprintf("-method %s needs -reference, a file of reference samples", s.Method)

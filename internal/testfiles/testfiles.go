@@ -102,23 +102,33 @@ func ReadPB(t testing.TB, path string) (shape []int, data []float64) {
 	return tt.Shape(), data
 }
 
+// SoftmaxGradient is the gradient of output k of y = softmax(x) in closed
+// form, the softmax derivative ∂y_k/∂x_i = y_k(δ_ik − y_i); y holds the
+// outputs at x.
+func SoftmaxGradient(y []float64, k int) []float64 {
+	g := make([]float64, len(y))
+	for i := range g {
+		d := 0.0
+		if i == k {
+			d = 1
+		}
+		g[i] = y[k] * (d - y[i])
+	}
+	return g
+}
+
 // SoftmaxGradientTimesInput is gradient × input of y = softmax(x) for its
-// top class k, in closed form: a_i = x_i·y_k(δ_ik − y_i), the softmax
-// derivative ∂y_k/∂x_i = y_k(δ_ik − y_i) times the input. y holds the
-// outputs at x (the first largest is the top class).
+// top class k (the first largest y_k), in closed form: a_i = x_i·y_k(δ_ik
+// − y_i).
 func SoftmaxGradientTimesInput(x, y []float64) (k int, a []float64) {
 	for i := range y {
 		if y[i] > y[k] {
 			k = i
 		}
 	}
-	a = make([]float64, len(x))
+	a = SoftmaxGradient(y, k)
 	for i := range a {
-		d := 0.0
-		if i == k {
-			d = 1
-		}
-		a[i] = x[i] * y[k] * (d - y[i])
+		a[i] *= x[i]
 	}
 	return k, a
 }
