@@ -6,8 +6,8 @@
 //	POST /v1/predict   {"inputs": [sample, ...]}: the predict document
 //	POST /v1/explain   {"inputs", "method", "target", "steps", "rule",
 //	                   "tolerance", "baseline", "samples", "noise", "seed",
-//	                   "logits"}: the explain document; absent fields take
-//	                   explain.Defaults
+//	                   "logits", "abs", "variant"}: the explain document;
+//	                   absent fields take explain.Defaults
 //	GET  /metrics      Prometheus text format
 //
 // A sample in "inputs" is an array of numbers in the model's input shape,
@@ -588,6 +588,8 @@ type explainRequest struct {
 	Noise     *float64        `json:"noise"`
 	Seed      *uint64         `json:"seed"`
 	Logits    *bool           `json:"logits"`
+	Abs       *bool           `json:"abs"`
+	Variant   *string         `json:"variant"`
 }
 
 // fieldName names a setting as a request field: "steps".
@@ -633,6 +635,8 @@ func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 		{explain.FieldSamples, req.Samples != nil, func() string { return strconv.Itoa(*req.Samples) }},
 		{explain.FieldNoise, req.Noise != nil, func() string { return float(*req.Noise) }},
 		{explain.FieldSeed, req.Seed != nil, func() string { return strconv.FormatUint(*req.Seed, 10) }},
+		{explain.FieldAbs, req.Abs != nil, func() string { return strconv.FormatBool(*req.Abs) }},
+		{explain.FieldVariant, req.Variant != nil, func() string { return *req.Variant }},
 	}
 	for _, fl := range fields {
 		if !fl.given {
@@ -643,7 +647,7 @@ func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 		}
 	}
 	if st.Baseline.Kind == gradattr.BaselineValues {
-		return st, badRequest(`"baseline" must be zero, mean, blur or blur:S, got %q`, *req.Baseline)
+		return st, badRequest(`"baseline" must be %s (files are the command line's), got %q`, explain.BaselineWords, *req.Baseline)
 	}
 	if st.NeedsReference() {
 		st.Reference = h.opt.Reference

@@ -168,7 +168,7 @@ func TestServeStatuses(t *testing.T) {
 			[]string{`"method" must be one of gradient (grad), gradient-times-input (grad-input), smoothgrad, integrated-gradients (ig), expected-gradients (expected-grad), got "lime"`}},
 		{"no inputs", "/v1/explain", `{"method": "grad"}`, http.StatusBadRequest, []string{`"inputs" is required`}},
 		{"target out of range", "/v1/explain", `{"inputs": [` + sample + `], "method": "grad", "target": 3}`, http.StatusBadRequest, []string{`"target" must be top or an index from 0 to 2 (output "condition" has 3 values), got 3`}},
-		{"file baseline", "/v1/explain", `{"inputs": [` + sample + `], "baseline": "/etc/passwd"}`, http.StatusBadRequest, []string{`"baseline" must be zero, mean, blur or blur:S`}},
+		{"file baseline", "/v1/explain", `{"inputs": [` + sample + `], "baseline": "/etc/passwd"}`, http.StatusBadRequest, []string{`"baseline" must be zero, constant:V, mean, median, blur, blur:S or uniform:LO:HI (files are the command line's), got "/etc/passwd"`}},
 		{"steps too large", "/v1/explain", `{"inputs": [` + sample + `], "steps": 100000}`, http.StatusBadRequest, []string{`"steps" must be auto or a number from 1 to 65536, got "100000"`}},
 		{"flag of another method", "/v1/explain", `{"inputs": [` + sample + `], "noise": 0.2}`, http.StatusBadRequest, []string{`"noise" applies to "method" smoothgrad only, not integrated-gradients`}},
 		{"over the limit", "/v1/explain", `{"inputs": [` + strings.Repeat(sample+",", 200) + sample + `]}`, http.StatusRequestEntityTooLarge, []string{"over the limit of 1024 bytes (1KiB)"}},
