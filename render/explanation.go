@@ -261,7 +261,7 @@ func Table(w io.Writer, rep *explain.Report, opt Options) error {
 			fmt.Fprintf(w, "  (%s)\n", opt.hiddenNote(hidden, len(r.Attributions)))
 		}
 		if g := e.Grouped; g != nil {
-			writeGroupTable(w, g, opt)
+			writeGroupTable(w, g, e, opt)
 		}
 		if cp := r.Completeness; cp != nil {
 			verdict := "ok"
@@ -359,9 +359,13 @@ func signed(v float64) string {
 }
 
 // CSV writes one record per feature of each explained sample: sample,
-// feature, value, attribution (shortest decimals). Failed samples have no
-// records.
+// feature, value, attribution (shortest decimals); with feature groups, one
+// record per group instead: sample, group, attribution, in the groups'
+// order. Failed samples have no records.
 func CSV(w io.Writer, rep *explain.Report) error {
+	if rep.Settings.Groups != nil {
+		return groupsCSV(w, rep)
+	}
 	labels := rep.Labels()
 	cw := csv.NewWriter(w)
 	if err := cw.Write([]string{"sample", "feature", "value", "attribution"}); err != nil {
@@ -388,6 +392,44 @@ func CSV(w io.Writer, rep *explain.Report) error {
 	}
 	cw.Flush()
 	return cw.Error()
+}
+
+// groupsCSV writes one record per group of each explained sample.
+func groupsCSV(w io.Writer, rep *explain.Report) error {
+	cw := csv.NewWriter(w)
+	if err := cw.Write([]string{"sample", "group", "attribution"}); err != nil {
+		return err
+	}
+	for _, e := range rep.Explanations {
+		if e.Err != nil || e.Grouped == nil {
+			continue
+		}
+		for i, a := range e.Grouped.Attributions {
+			if err := cw.Write([]string{strconv.Itoa(e.Index), e.Grouped.Names[i], strconv.FormatFloat(a, 'g', -1, 64)}); err != nil {
+				return err
+			}
+		}
+	}
+	cw.Flush()
+	return cw.Error()
+}
+
+// GroupsNPY writes the attributions summed per group as one float64 .npy
+// array of shape (samples, groups), the groups in their order; a failed
+// sample's row is NaN.
+func GroupsNPY(w io.Writer, rep *explain.Report) error {
+	n := len(rep.Settings.Groups)
+	data := make([]float64, 0, len(rep.Explanations)*n)
+	for _, e := range rep.Explanations {
+		if e.Err != nil || e.Grouped == nil || len(e.Grouped.Attributions) != n {
+			for range n {
+				data = append(data, math.NaN())
+			}
+			continue
+		}
+		data = append(data, e.Grouped.Attributions...)
+	}
+	return npy.Write(w, nested(data, []int{len(rep.Explanations), n}))
 }
 
 // NPY writes the attributions as one float64 .npy array of shape
@@ -433,12 +475,12 @@ func nested(data []float64, shape []int) any {
 }
 
 // writeGroupTable prints the attributions summed per group, in the
-// groups' order.
-func writeGroupTable(w io.Writer, g *gradattr.GroupedResult, opt Options) {
-	scale := 0.0
-	for _, a := range g.Attributions {
-		scale = math.Max(scale, math.Abs(a))
-	}
+// groups' order, on the scale of Scale (of the group sums).
+func writeGroupTable(w io.Writer, g *gradattr.GroupedResult, e explain.Explanation, opt Options) {
+	r := *e.Result
+	r.Attributions = g.Attributions
+	e.Result = &r
+	scale, what := Scale(e)
 	width := utf8.RuneCountInString("group")
 	for _, n := range g.Names {
 		width = max(width, utf8.RuneCountInString(n))
@@ -454,6 +496,7 @@ func writeGroupTable(w io.Writer, g *gradattr.GroupedResult, opt Options) {
 	for i, n := range g.Names {
 		fmt.Fprintf(w, "  %s%s  %s%s  %s\n", n, pad(n, width), pad(vals[i], vw), vals[i], strings.TrimRight(opt.bar(g.Attributions[i], scale), " "))
 	}
+	fmt.Fprintf(w, "  (a full bar is %s, %s)\n", Number(scale), what)
 	if !g.Partition {
 		fmt.Fprintf(w, "  (the groups overlap or miss features: %d overlapping, %d missing; their sums need not add up to the total)\n",
 			len(g.Coverage.Overlapping), len(g.Coverage.Missing))

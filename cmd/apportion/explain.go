@@ -9,6 +9,7 @@ import (
 	"io"
 	"math"
 	"os"
+	"path/filepath"
 	"runtime"
 	"strconv"
 	"strings"
@@ -137,7 +138,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		"baseline `kind` for ig: zero, mean (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), or the path of a file of baseline samples (results averaged over them)",
 		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the random methods")
-	fs.StringVar(&c.groups, "groups", "", "JSON `file` naming groups of features to report together")
+	fs.StringVar(&c.groups, "groups", "", "JSON `file` of feature groups to report summed, in its order: {\"name\": [features], ...}, each feature an index from 0 or a feature name")
 	fs.StringVar(&c.patch, "patch", "", "report image samples by patches of `HxW` pixels (all channels), tiled from the top left, instead of -groups")
 	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv, npy or png (png needs -out)")
 	fs.StringVar(&c.out, "out", "", "write the result to `file` instead of standard output (png: file_0.png, file_1.png, ... for several samples)")
@@ -203,7 +204,26 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			return failure(stderr, "explain", err)
 		}
 	}
+	if c.format == "npy" && rep.Settings.Groups != nil {
+		// The group sums are a second array, in a file of their own.
+		var g bytes.Buffer
+		path := groupsPath(c.out)
+		if err := render.GroupsNPY(&g, rep); err != nil {
+			return failure(stderr, "explain", err)
+		}
+		if err := os.WriteFile(path, g.Bytes(), 0o644); err != nil {
+			return failure(stderr, "explain", err)
+		}
+		fmt.Fprintf(stderr, "apportion explain: wrote the group sums, %s × %s, to %s\n", render.Count(len(rep.Explanations), "sample", "samples"), render.Count(len(rep.Settings.Groups), "group", "groups"), path)
+	}
 	return c.reportFailed(stderr, rep)
+}
+
+// groupsPath is the file -format npy writes the group sums to: out with
+// _groups before its extension (a.npy: a_groups.npy).
+func groupsPath(out string) string {
+	ext := filepath.Ext(out)
+	return strings.TrimSuffix(out, ext) + "_groups" + ext
 }
 
 // writePNGs writes one PNG per explained sample to render.PNGPath(out, ...);
@@ -298,6 +318,9 @@ func (c *explainConfig) validate() string {
 		}
 	default:
 		return fmt.Sprintf("-format must be table, json, csv, npy or png, got %q", c.format)
+	}
+	if c.format == "npy" && (c.groups != "" || c.patch != "") && c.out == "" {
+		return "-format npy with groups writes two arrays: give -out FILE.npy for the attributions, and the group sums go to FILE_groups.npy"
 	}
 	if c.patch != "" {
 		if c.groups != "" {
@@ -474,20 +497,25 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 	if c.settings.Method == gradattr.MethodExpectedGradients && c.settings.Reference == nil {
 		return nil, nil, &usageErr{fmt.Sprintf("-method %s needs -reference, a file of reference samples", c.settings.Method)}
 	}
+	head, err := m.Head(c.settings.Output, c.settings.Logits)
+	if err != nil {
+		return nil, nil, err
+	}
 	if c.groups != "" {
+		size := samples.Product(head.InputShape())
+		names := m.Meta.Features
+		if len(names) != size {
+			names = batch.Features // a CSV header read by position
+		}
 		f, err := os.Open(c.groups)
 		if err != nil {
 			return nil, nil, fmt.Errorf("-groups: %w", err)
 		}
-		c.settings.Groups, err = explain.ReadGroups(f)
+		c.settings.Groups, err = explain.ReadGroups(f, size, names)
 		f.Close()
 		if err != nil {
 			return nil, nil, fmt.Errorf("-groups %s: %w", c.groups, err)
 		}
-	}
-	head, err := m.Head(c.settings.Output, c.settings.Logits)
-	if err != nil {
-		return nil, nil, err
 	}
 	if c.patch != "" {
 		ph, pw, _ := parsePatch(c.patch)

@@ -577,3 +577,75 @@ func TestExplainLibraryOptions(t *testing.T) {
 	assert.Equal(t, exitUsage, code)
 	assert.Contains(t, errs, "-patch 2x2 needs samples with at least two axes")
 }
+
+func TestExplainGroupsEveryFormat(t *testing.T) {
+	// Groups of the demo pumps' eight features (demo/data/README.md names
+	// them) given by name and by index, in a file order that is not
+	// alphabetical: every format keeps that order, and each group is the sum
+	// of its features' attributions (additivity of the sum, common
+	// practice).
+	groups := writeTemp(t, "groups.json", `{"wear": ["vibration_rms", "bearing_temp", 6], "hydraulics": ["discharge_pressure", 3, "flow"], "other": [5, "ambient_temp"]}`)
+	members := [][]int{{1, 0, 6}, {2, 3, 4}, {5, 7}}
+	names := []string{"wear", "hydraulics", "other"}
+	doc, _ := explainJSONRun(t, exitOK, "-groups", groups)
+	e := doc.Explanations[0]
+	require.NotNil(t, e.Groups)
+	assert.Equal(t, names, e.Groups.Names)
+	want := make([]float64, 3)
+	for g, idx := range members {
+		for _, i := range idx {
+			want[g] += e.Attributions[i]
+		}
+		assert.InDelta(t, want[g], e.Groups.Attributions[g], 1e-12, names[g])
+	}
+
+	// CSV: one record per group, in order.
+	code, out, errs := cli(t, "explain", "-groups", groups, "-format", "csv")
+	require.Equal(t, exitOK, code, errs)
+	recs, err := csv.NewReader(strings.NewReader(out)).ReadAll()
+	require.NoError(t, err)
+	require.Len(t, recs, 4)
+	assert.Equal(t, []string{"sample", "group", "attribution"}, recs[0])
+	for g := range names {
+		assert.Equal(t, names[g], recs[g+1][1])
+		v, err := strconv.ParseFloat(recs[g+1][2], 64)
+		require.NoError(t, err)
+		assert.Equal(t, e.Groups.Attributions[g], v)
+	}
+
+	// npy: the attributions in -out, the group sums (samples, groups) in a
+	// second file, named on standard error (NEP 1 format, read with npyio).
+	p := filepath.Join(t.TempDir(), "attr.npy")
+	code, _, errs = cli(t, "explain", "-groups", groups, "-format", "npy", "-out", p)
+	require.Equal(t, exitOK, code, errs)
+	gp := filepath.Join(filepath.Dir(p), "attr_groups.npy")
+	assert.Contains(t, errs, "wrote the group sums, 1 sample × 3 groups, to "+gp)
+	f, err := os.Open(gp)
+	require.NoError(t, err)
+	defer f.Close()
+	r, err := npy.NewReader(f)
+	require.NoError(t, err)
+	assert.Equal(t, []int{1, 3}, r.Header.Descr.Shape)
+	var got []float64
+	require.NoError(t, r.Read(&got))
+	assert.Equal(t, e.Groups.Attributions, got)
+	code, _, errs = cli(t, "explain", "-groups", groups, "-format", "npy")
+	assert.Equal(t, exitUsage, code)
+	assert.Contains(t, errs, "give -out FILE.npy")
+
+	// The table lists the groups in order.
+	code, out, errs = cli(t, "explain", "-groups", groups)
+	require.Equal(t, exitOK, code, errs)
+	assert.Regexp(t, `(?s)wear .*hydraulics .*other `, out)
+
+	// A name the model does not have, or an index past its features.
+	for text, msg := range map[string]string{
+		`{"wear": ["vibration"]}`: `group "wear": no feature is called "vibration" (features: bearing_temp, vibration_rms,`,
+		`{"wear": [8]}`:           `group "wear": feature index 8 is out of range: the sample has 8 features, 0 to 7`,
+		`[{"indices": [1]}]`:      "group 0 has no name",
+	} {
+		code, _, errs := cli(t, "explain", "-groups", writeTemp(t, "bad.json", text))
+		assert.Equal(t, exitFail, code, text)
+		assert.Contains(t, errs, msg, text)
+	}
+}
