@@ -118,28 +118,3 @@ func SummaryCSV(w io.Writer, s *gradattr.Summary) error {
 	cw.Flush()
 	return cw.Error()
 }
-
-// maxSummaryBars is the number of features the PNG chart shows at most.
-const maxSummaryBars = 64
-
-// SummaryPNG draws mean |attribution| over all rows, ranked, with the
-// bootstrap intervals as whiskers.
-func SummaryPNG(w io.Writer, s *gradattr.Summary) error {
-	ranked := s.Overall().Ranked()
-	if len(ranked) == 0 {
-		return fmt.Errorf("no rows were summarised: nothing to draw")
-	}
-	title := fmt.Sprintf("mean |attribution| (%s) over %d rows, 95%% bootstrap intervals", s.Options().Method, s.Rows())
-	if len(ranked) > maxSummaryBars {
-		title += fmt.Sprintf("; the %d largest of %d features", maxSummaryBars, len(ranked))
-		ranked = ranked[:maxSummaryBars]
-	}
-	labels := make([]string, len(ranked))
-	vals := make([]float64, len(ranked))
-	lo := make([]float64, len(ranked))
-	hi := make([]float64, len(ranked))
-	for i, f := range ranked {
-		labels[i], vals[i], lo[i], hi[i] = f.Feature, f.MeanAbs, f.MeanAbsLo, f.MeanAbsHi
-	}
-	return Bars(w, title, nil, labels, vals, lo, hi)
-}
