@@ -206,13 +206,22 @@ var summaryLegend = []legendItem{
 // when there are more). Each point's mark tells the sign of the feature's
 // mean signed attribution in that panel.
 func SummaryPNG(w io.Writer, s *gradattr.Summary) error {
+	chart, err := summaryChart(s)
+	if err != nil {
+		return err
+	}
+	return Forest(w, chart)
+}
+
+// summaryChart is the forest plot of summary s.
+func summaryChart(s *gradattr.Summary) (ForestChart, error) {
 	ranked := s.Overall().Ranked()
 	if len(ranked) == 0 {
-		return fmt.Errorf("no rows were summarised: nothing to draw")
+		return ForestChart{}, fmt.Errorf("no rows were summarised: nothing to draw")
 	}
 	groups := s.Groups()
 	if 1+len(groups) > maxForestPanels {
-		return fmt.Errorf("%d groups are more than a chart can show (%d); -format table, csv or json lists them all", len(groups), maxForestPanels-1)
+		return ForestChart{}, fmt.Errorf("%d groups are more than a chart can show (%d); -format table, csv or json lists them all", len(groups), maxForestPanels-1)
 	}
 	o := s.Options()
 	title := fmt.Sprintf("%s: mean |attribution| per feature, with 95%% bootstrap intervals (%d replicates)", o.Method.Title(), o.Bootstrap)
@@ -248,6 +257,6 @@ func SummaryPNG(w io.Writer, s *gradattr.Summary) error {
 	for _, g := range groups {
 		panels = append(panels, panel(o.GroupBy+" = "+g.Name, g))
 	}
-	return Forest(w, ForestChart{Title: title, Notes: notes, Labels: labels, Panels: panels,
-		Axis: "mean |attribution| over the rows, one axis for every panel", Legend: summaryLegend})
+	return ForestChart{Title: title, Notes: notes, Labels: labels, Panels: panels,
+		Axis: "mean |attribution| over the rows, one axis for every panel", Legend: summaryLegend}, nil
 }

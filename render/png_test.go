@@ -646,3 +646,57 @@ func TestTableColours(t *testing.T) {
 	assert.Equal(t, pos, strings.Count(colour.String(), "\x1b[38;5;172m█"))
 	assert.Equal(t, neg, strings.Count(colour.String(), "\x1b[38;5;97m"))
 }
+
+func TestSummaryOneScale(t *testing.T) {
+	// Two groups whose largest mean |a| differ fourfold, 0.1 and 0.4 (by
+	// hand: each row's |a| is the group's value): the table draws both on
+	// the scale of the larger, so group a's bar is a quarter of b's, 3 of
+	// 12 cells; the forest plot puts both panels on one axis.
+	s, err := gradattr.NewSummary(gradattr.SummaryOptions{Features: []string{"f"}, Model: "m", Method: gradattr.MethodGradient, GroupBy: "g", Bootstrap: 20})
+	require.NoError(t, err)
+	for k := 0; k < 4; k++ {
+		require.NoError(t, s.Add(uint64(k), "a", []float64{0.1}))
+		require.NoError(t, s.Add(uint64(4+k), "b", []float64{0.4}))
+	}
+	var buf bytes.Buffer
+	SummaryTable(&buf, s, "")
+	out := buf.String()
+	assert.Contains(t, out, "(a full bar is a mean |a| of 0.4, the largest of any group)")
+	block := func(group string) string {
+		i := strings.Index(out, "g = "+group)
+		require.GreaterOrEqual(t, i, 0)
+		line := strings.Split(out[i:], "\n")[2]
+		return line[strings.LastIndex(line, " ")+1:]
+	}
+	assert.Equal(t, strings.Repeat("█", 3), block("a"))
+	assert.Equal(t, strings.Repeat("█", 12), block("b"))
+	assert.Empty(t, SummaryWarnings(s))
+
+	// The forest plot draws every group as a panel, all rows first, each
+	// point at its mean |a| on the one axis.
+	chart, err := summaryChart(s)
+	require.NoError(t, err)
+	require.Len(t, chart.Panels, 3)
+	assert.Equal(t, []string{"all rows (8 rows)", "g = a (4 rows)", "g = b (4 rows)"}, []string{chart.Panels[0].Title, chart.Panels[1].Title, chart.Panels[2].Title})
+	var png bytes.Buffer
+	require.NoError(t, SummaryPNG(&png, s))
+	img := decodePNG(t, png.Bytes())
+	face, err := newFace()
+	require.NoError(t, err)
+	l, err := layoutForest(face, chart)
+	require.NoError(t, err)
+	require.Equal(t, l.size, img.Bounds().Size())
+	for k, want := range []float64{0.25, 0.1, 0.4} {
+		assertMark(t, img, l.axis(k).x(want), l.rowY(k, 0), 1, chart.Panels[k].Title)
+	}
+
+	// More than ManyGroups groups: a warning.
+	many, err := gradattr.NewSummary(gradattr.SummaryOptions{Features: []string{"f"}, Model: "m", Method: gradattr.MethodGradient, GroupBy: "id", Bootstrap: 5})
+	require.NoError(t, err)
+	for k := 0; k <= ManyGroups; k++ {
+		require.NoError(t, many.Add(uint64(k), "row "+string(rune('A'+k%26))+string(rune('a'+k/26)), []float64{1}))
+	}
+	w := SummaryWarnings(many)
+	require.Len(t, w, 1)
+	assert.Contains(t, w[0], "grouping by id makes 51 groups, more than 50")
+}

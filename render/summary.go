@@ -12,8 +12,23 @@ import (
 	"github.com/apportion/apportion/gradattr"
 )
 
+// ManyGroups is the number of groups above which SummaryWarnings asks
+// whether the grouping column is a feature: a column with more distinct
+// values than that seldom names subgroups.
+const ManyGroups = 50
+
+// SummaryWarnings are what a summary's numbers do not say by themselves:
+// that it has more than ManyGroups groups.
+func SummaryWarnings(s *gradattr.Summary) []string {
+	if n := len(s.Groups()); n > ManyGroups {
+		return []string{fmt.Sprintf("grouping by %s makes %d groups, more than %d: is %s a feature or an identifier rather than a subgroup? Each group's intervals come from few rows", s.Options().GroupBy, n, ManyGroups, s.Options().GroupBy)}
+	}
+	return nil
+}
+
 // SummaryTable prints the overall statistics and then each group's,
-// features ranked by mean |attribution|, with a bar of mean |a|.
+// features ranked by mean |attribution|, with a bar of mean |a| on one
+// scale for every group.
 func SummaryTable(w io.Writer, s *gradattr.Summary, modelName string) {
 	o := s.Options()
 	model := "sha256 " + o.Model
@@ -26,13 +41,22 @@ func SummaryTable(w io.Writer, s *gradattr.Summary, modelName string) {
 	fmt.Fprintf(w, "model %s  method %s\n", model, o.Method)
 	fmt.Fprintf(w, "%d rows summarised, %d skipped; 95%% intervals from %d Poisson bootstrap replicates (seed %d)\n",
 		s.Rows(), s.SkippedRows(), o.Bootstrap, o.Seed)
-	writeGroupStats(w, "all rows", s.Overall())
+	scale := 0.0
+	for _, g := range append([]gradattr.GroupStats{s.Overall()}, s.Groups()...) {
+		for _, f := range g.Features {
+			scale = math.Max(scale, f.MeanAbs)
+		}
+	}
+	writeGroupStats(w, "all rows", s.Overall(), scale)
 	for _, g := range s.Groups() {
-		writeGroupStats(w, o.GroupBy+" = "+g.Name, g)
+		writeGroupStats(w, o.GroupBy+" = "+g.Name, g, scale)
+	}
+	if s.Rows() > 0 {
+		fmt.Fprintf(w, "\n(a full bar is a mean |a| of %s, the largest of any group)\n", Number(scale))
 	}
 }
 
-func writeGroupStats(w io.Writer, title string, g gradattr.GroupStats) {
+func writeGroupStats(w io.Writer, title string, g gradattr.GroupStats, scale float64) {
 	fmt.Fprintf(w, "\n%s (%d rows)\n", title, g.Rows)
 	if g.Rows == 0 {
 		return
@@ -48,10 +72,6 @@ func writeGroupStats(w io.Writer, title string, g gradattr.GroupStats) {
 			fmt.Fprintf(w, "  (%d features with smaller mean |a| not shown; -format json or csv lists all)\n", hidden)
 		}
 	}()
-	scale := 0.0
-	for _, f := range ranked {
-		scale = math.Max(scale, f.MeanAbs)
-	}
 	num := func(v float64) string { return strconv.FormatFloat(v, 'g', 4, 64) }
 	signed := func(v float64) string {
 		if v >= 0 {

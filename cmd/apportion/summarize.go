@@ -110,6 +110,9 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 		return fail(stderr, "summarize", err)
 	}
 	notes(stderr, "summarize", c.ignored)
+	for _, w := range render.SummaryWarnings(s) {
+		fmt.Fprintf(stderr, "apportion summarize: warning: %s\n", w)
+	}
 	if err := sc.write(stdout, s, name); err != nil {
 		return failure(stderr, "summarize", err)
 	}

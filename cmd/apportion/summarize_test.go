@@ -75,7 +75,10 @@ func TestSummarizeDemoTable(t *testing.T) {
 		name := strings.Fields(l)[0]
 		assert.True(t, ruleFeatures[name], "feature %q ranked in the first three: %s", name, l)
 	}
-	assert.Contains(t, lines[i+2], "████████████", "the largest mean |a| has the full bar")
+	// One scale for every group: exactly one row, the largest mean |a| of
+	// any group, has the full bar.
+	assert.Equal(t, 1, strings.Count(out, "████████████"))
+	assert.Contains(t, out, "the largest of any group)")
 }
 
 func TestSummarizeDemoJSON(t *testing.T) {
@@ -494,4 +497,18 @@ func TestSummarizeMergesWithLibrary(t *testing.T) {
 	want, err := os.ReadFile(outs["whole"])
 	require.NoError(t, err)
 	assert.Equal(t, strings.TrimSpace(string(want)), string(got))
+}
+
+func TestSummarizeManyGroupsWarns(t *testing.T) {
+	// Grouping by a feature column (hours_since_service, nearly one value
+	// per row in the demo's held-out file) makes more than 50 groups: the
+	// summary is written, with a warning on standard error.
+	in := writeTemp(t, "rows.csv", pumpsCSV(t, 0, 60))
+	code, out, errOut := cli(t, "summarize", "-input", in, "-by", "hours_since_service", "-method", "grad", "-bootstrap", "10")
+	require.Equal(t, exitOK, code, errOut)
+	assert.Contains(t, out, "60 rows summarised")
+	assert.Regexp(t, `apportion summarize: warning: grouping by hours_since_service makes \d+ groups, more than 50`, errOut)
+	code, _, errOut = cli(t, "summarize", "-input", in, "-by", "pump_line", "-method", "grad", "-bootstrap", "10")
+	require.Equal(t, exitOK, code, errOut)
+	assert.NotContains(t, errOut, "warning")
 }
