@@ -383,8 +383,8 @@ next:
 func TestServeMetricsAndLogs(t *testing.T) {
 	_, ts, logs := testServer(t, nil)
 	sample := strings.TrimSpace(demoSampleJSON(t))
-	// Two points of the trapezoid rule (the end points) on the saturated
-	// demo sample cannot meet a 1e-6 tolerance: a completeness failure.
+	// Two points of the trapezoid rule (the end points) on the demo sample
+	// do not meet a 1e-6 tolerance: a completeness failure.
 	for i := 0; i < 3; i++ {
 		code, _, body := post(t, ts.URL+"/v1/explain", `{"inputs":[`+sample+`],"steps":2,"tolerance":1e-6}`)
 		require.Equal(t, http.StatusOK, code, body)
