@@ -82,21 +82,24 @@ func axisRange(values []float64, scale float64) (lo, hi float64) {
 	return lo, hi
 }
 
-// niceTicks returns the ticks of an axis over [lo, hi]: multiples of a
-// step of 1, 2 or 5 times a power of ten, about five of them, from the
-// largest multiple at or below lo to the smallest at or above hi (Heckbert
-// 1990, "Nice numbers for graph labels", from memory).
+// niceTicks returns the ticks of an axis over [lo, hi]: the multiples
+// within it of a step of 1, 2 or 5 times a power of ten, about five of
+// them: the span over four rounded to the nearest such number (Heckbert
+// 1990, "Nice numbers for graph labels": a fraction f of its power of ten
+// rounds to 1 below 1.5, 2 below 3, 5 below 7, else 10; from memory).
 func niceTicks(lo, hi float64) []float64 {
-	raw := (hi - lo) / 5
+	raw := (hi - lo) / 4
 	p := math.Pow(10, math.Floor(math.Log10(raw)))
 	step := 10 * p
-	for _, m := range []float64{1, 2, 5} {
-		if m*p >= raw {
-			step = m * p
-			break
-		}
+	switch f := raw / p; {
+	case f < 1.5:
+		step = p
+	case f < 3:
+		step = 2 * p
+	case f < 7:
+		step = 5 * p
 	}
-	first, last := math.Floor(lo/step+1e-9), math.Ceil(hi/step-1e-9)
+	first, last := math.Ceil(lo/step-1e-9), math.Floor(hi/step+1e-9)
 	ticks := make([]float64, 0, int(last-first)+1)
 	for k := first; k <= last; k++ {
 		// k·step to 12 significant digits: 3·0.2 is 0.6, not 0.6000000000000001.
@@ -109,20 +112,33 @@ func niceTicks(lo, hi float64) []float64 {
 	return ticks
 }
 
-// axis maps values to x pixels over ticks[0]..ticks[len−1].
+// axis maps values in [lo, hi] to x pixels x0..x0+w.
 type axis struct {
-	x0, w int
-	ticks []float64
+	x0, w  int
+	lo, hi float64
+	ticks  []float64
 }
 
+// axisPad is the share of the span an axis adds beyond a value's end
+// that is not zero, so that no mark sits on the axis's edge.
+const axisPad = 0.04
+
+// newAxis returns the axis from x0, w pixels wide, that shows [lo, hi]
+// (lo ≤ 0 ≤ hi), padded at the ends that are not zero.
 func newAxis(x0, w int, lo, hi float64) axis {
-	return axis{x0: x0, w: w, ticks: niceTicks(lo, hi)}
+	pad := axisPad * (hi - lo)
+	if lo < 0 {
+		lo -= pad
+	}
+	if hi > 0 {
+		hi += pad
+	}
+	return axis{x0: x0, w: w, lo: lo, hi: hi, ticks: niceTicks(lo, hi)}
 }
 
 // x is the pixel column of value v.
 func (a axis) x(v float64) float64 {
-	lo, hi := a.ticks[0], a.ticks[len(a.ticks)-1]
-	return float64(a.x0) + (v-lo)/(hi-lo)*float64(a.w)
+	return float64(a.x0) + (v-a.lo)/(a.hi-a.lo)*float64(a.w)
 }
 
 // draw draws the axis line at y with its ticks and their labels below.

@@ -252,7 +252,7 @@ func assertMark(t *testing.T, img *image.RGBA, x float64, y int, v float64, msg 
 
 func TestDotPlot(t *testing.T) {
 	// Values of both signs on one axis: from min(0, min v) = −1 to 2, ticks
-	// of 1 (Heckbert's 1, 2, 5 steps); each mark sits at its value, a
+	// of 1 within it (Heckbert's 1, 2, 5 steps); each mark sits at its value, a
 	// stem lighter than the mark joins it to zero, and the zero line runs
 	// through every row.
 	values := []float64{2, -1, 0, 0.5}
@@ -262,7 +262,9 @@ func TestDotPlot(t *testing.T) {
 	}
 	img, l := dotsOf(t, chart)
 	assert.Equal(t, []float64{-1, 0, 1, 2}, l.ax.ticks)
-	assert.InDelta(t, float64(l.ax.x0+l.ax.w), l.ax.x(2), 1e-9)
+	// The axis spans [−1, 2] padded by 4% of 3 at both ends.
+	assert.InDelta(t, float64(l.ax.x0), l.ax.x(-1.12), 1e-9)
+	assert.InDelta(t, float64(l.ax.x0+l.ax.w), l.ax.x(2.12), 1e-9)
 	zx := int(math.Round(l.ax.x(0)))
 	for i, v := range values {
 		y := l.rowY(i)
@@ -302,22 +304,23 @@ func TestDotPlotScaleFloor(t *testing.T) {
 		chart.Rows = append(chart.Rows, DotRow{Cells: []string{"f"}, Value: v})
 	}
 	_, l := dotsOf(t, chart)
-	assert.GreaterOrEqual(t, l.ax.ticks[len(l.ax.ticks)-1], 1.0)
+	assert.GreaterOrEqual(t, l.ax.hi, 1.0)
+	assert.Equal(t, 1.0, l.ax.ticks[len(l.ax.ticks)-1])
 	for _, r := range chart.Rows {
 		assert.InDelta(t, l.ax.x(0), l.ax.x(r.Value), 1)
 	}
 	// Without the floor the largest value spans the axis.
 	chart.Scale = 0
 	_, l = dotsOf(t, chart)
-	assert.Less(t, l.ax.ticks[len(l.ax.ticks)-1], 1e-11)
+	assert.Less(t, l.ax.hi, 1e-11)
 }
 
 func TestNiceTicks(t *testing.T) {
-	// Steps of 1, 2 or 5 times a power of ten, about five of them, covering
+	// Steps of 1, 2 or 5 times a power of ten, about five of them, within
 	// the span (Heckbert 1990, from memory).
-	assert.Equal(t, []float64{0, 0.2, 0.4, 0.6, 0.8, 1}, niceTicks(0, 0.97))
-	assert.Equal(t, []float64{-0.05, 0, 0.05, 0.1, 0.15, 0.2, 0.25}, niceTicks(-0.03, 0.22))
-	assert.Equal(t, []float64{0, 2e-13, 4e-13, 6e-13, 8e-13, 1e-12}, niceTicks(0, 9e-13))
+	assert.Equal(t, []float64{0, 0.2, 0.4, 0.6, 0.8}, niceTicks(0, 0.97))
+	assert.Equal(t, []float64{0, 0.05, 0.1, 0.15, 0.2}, niceTicks(-0.03, 0.22))
+	assert.Equal(t, []float64{0, 2e-13, 4e-13, 6e-13, 8e-13}, niceTicks(0, 9e-13))
 }
 
 func TestForestPlot(t *testing.T) {
@@ -400,7 +403,7 @@ func TestExplainPNGDots(t *testing.T) {
 		assertMark(t, img, l.ax.x(a), l.rowY(i), a, "feature "+string(rune('0'+i)))
 	}
 	scale, _ := Scale(e)
-	assert.GreaterOrEqual(t, l.ax.ticks[len(l.ax.ticks)-1]-l.ax.ticks[0], scale)
+	assert.GreaterOrEqual(t, l.ax.hi-l.ax.lo, scale)
 	assert.InDelta(t, math.Abs(e.Result.Output-e.Result.BaselineOutput), scale, 1e-12, "f(x) − f(0) is larger than every |a_i| here")
 }
 
