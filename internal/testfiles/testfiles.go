@@ -132,3 +132,18 @@ func SoftmaxGradientTimesInput(x, y []float64) (k int, a []float64) {
 	}
 	return k, a
 }
+
+// ReadmeCode returns the first code block fenced as lang (```go) in the
+// section of the README at path headed "## heading".
+func ReadmeCode(t testing.TB, path, heading, lang string) string {
+	t.Helper()
+	readme, err := os.ReadFile(path)
+	require.NoError(t, err)
+	_, section, ok := strings.Cut(string(readme), "\n## "+heading+"\n")
+	require.True(t, ok, "README has no section %q", heading)
+	_, code, ok := strings.Cut(section, "```"+lang+"\n")
+	require.True(t, ok, "the section %q has no %s code", heading, lang)
+	code, _, ok = strings.Cut(code, "```")
+	require.True(t, ok)
+	return code
+}
