@@ -104,6 +104,15 @@ func (e *Explainer) warnings(x []float64, r *gradattr.Result) []Warning {
 		return []Warning{{Code: WarnNoChange, Suggest: append([]Field{FieldBaseline}, logits...), Message: fmt.Sprintf(
 			"%s is %s at the sample and %s at the baseline: with no change to share out, the attributions sum to about zero and say little about the features",
 			out, num(r.Output), num(r.BaselineOutput))}}
+	case Negligible(r, x) && s.Method == gradattr.MethodSmoothGrad && r.Settings.Sigma == nil:
+		lo, hi := x[0], x[0]
+		for _, v := range x {
+			lo, hi = math.Min(lo, v), math.Max(hi, v)
+		}
+		noise := r.Settings.Noise
+		return []Warning{{Code: WarnNegligible, Suggest: append([]Field{FieldNoise}, logits...), Message: fmt.Sprintf(
+			"every attribution is negligible: none moves %s by as much as %s. SmoothGrad adds noise of σ = %s to every feature (%s of the range of the sample's values, %s); where the features have different scales, most noisy copies land where the output is flat",
+			out, num(gradattr.CompletenessFloor), num(noise*(hi-lo)), num(noise), num(hi-lo))}}
 	case Negligible(r, x):
 		return []Warning{{Code: WarnNegligible, Suggest: logits, Message: fmt.Sprintf(
 			"every attribution is negligible: none moves %s by as much as %s, so the output is flat around the sample (saturated, or beyond the kink of a ReLU)",

@@ -54,8 +54,8 @@ type DotChart struct {
 	Columns []Column
 	Rows    []DotRow
 	// Scale is the least extent of the axis (see Scale): an axis that
-	// would span less is widened to it on the side of the larger values,
-	// so that values far below it show as small. 0 sets no floor.
+	// would span less is widened to it, each side in proportion, so that
+	// values far below it show as small. 0 sets no floor.
 	// ScaleNote says what it is.
 	Scale     float64
 	ScaleNote string
@@ -64,16 +64,17 @@ type DotChart struct {
 }
 
 // axisRange is the span an axis shows: from min(0, min v) to max(0, max v),
-// widened to at least scale on the side of the larger |v|.
+// widened to at least scale, each side by its share of the span (all to
+// the positive side when every value is 0).
 func axisRange(values []float64, scale float64) (lo, hi float64) {
 	for _, v := range values {
 		lo, hi = math.Min(lo, v), math.Max(hi, v)
 	}
-	if hi-lo < scale {
-		if hi >= -lo {
-			hi = lo + scale
+	if span := hi - lo; span < scale {
+		if span == 0 {
+			hi = scale
 		} else {
-			lo = hi - scale
+			lo, hi = lo*scale/span, hi*scale/span
 		}
 	}
 	if hi == lo {

@@ -319,8 +319,11 @@ func (o Options) suggestion(w explain.Warning) string {
 	for i, f := range w.Suggest {
 		names[i] = o.fieldName(f)
 	}
-	if f := w.Suggest[0]; f == explain.FieldBaseline {
+	switch w.Suggest[0] {
+	case explain.FieldBaseline:
 		names[0] = "another " + names[0]
+	case explain.FieldNoise:
+		names[0] = "a smaller " + names[0]
 	}
 	return "; try " + strings.Join(names, " or ")
 }

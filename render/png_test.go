@@ -297,15 +297,18 @@ func TestDotPlot(t *testing.T) {
 
 func TestDotPlotScaleFloor(t *testing.T) {
 	// Attributions of 1e-13 on an axis that must span at least 1 (the
-	// output's change) sit on the zero line: ticks to 1, and every mark
+	// output's change) sit on the zero line: the axis spans 1, split
+	// between the signs as the values are (2 : 7), and every mark is
 	// within a pixel of zero.
 	chart := DotChart{Title: "tiny", Columns: []Column{{Header: "feature"}}, Scale: 1, ScaleNote: "|output|"}
 	for _, v := range []float64{1e-13, -2e-13, 7e-13} {
 		chart.Rows = append(chart.Rows, DotRow{Cells: []string{"f"}, Value: v})
 	}
 	_, l := dotsOf(t, chart)
-	assert.GreaterOrEqual(t, l.ax.hi, 1.0)
-	assert.Equal(t, 1.0, l.ax.ticks[len(l.ax.ticks)-1])
+	lo, hi := axisRange([]float64{1e-13, -2e-13, 7e-13}, 1)
+	assert.InDelta(t, -2.0/9, lo, 1e-12)
+	assert.InDelta(t, 7.0/9, hi, 1e-12)
+	assert.GreaterOrEqual(t, l.ax.hi-l.ax.lo, 1.0)
 	for _, r := range chart.Rows {
 		assert.InDelta(t, l.ax.x(0), l.ax.x(r.Value), 1)
 	}

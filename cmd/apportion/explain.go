@@ -124,18 +124,21 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		"Attributes one output of the model, for each sample of -input, to the\n"+
 			"sample's features. Integrated gradients (ig) and expected gradients\n"+
 			"(expected-grad) report completeness: the attributions should sum to the\n"+
-			"output minus the output at the baseline, within -tolerance.\n\n"+
+			"output minus the output at the baseline, within -tolerance; when they do\n"+
+			"not, the results are printed and the exit status is 1 (0 with\n"+
+			"-allow-incomplete). A saturated output or one that does not move gets a\n"+
+			"warning, and the bars are drawn on the scale of the output's change.\n\n"+
 			"Without -model, explain runs an embedded, invented demo (-demo pumps or\n"+
 			"welds). -format png draws a heatmap for image-shaped samples ((H,W),\n"+
 			"(1,H,W), or (C,H,W) with C ≤ 3: attributions summed over channels) and a\n"+
-			"signed bar chart otherwise; it needs -out, and with several samples\n"+
+			"dot plot otherwise; it needs -out, and with several samples\n"+
 			"writes one file per sample, the index before the extension\n"+
 			"(-out a.png: a_0.png, a_1.png, ...).\n\n"+caution, stderr)
 	var c explainConfig
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded demo model chosen by -demo)")
 	fs.StringVar(&c.inputPath, "input", "", "samples to explain: a .csv, .json, .npy or .pb `file` (required with -model; default: the demo's own sample)")
 	registerMethodFlags(fs, explain.DefaultBaselineText,
-		"baseline `kind` for ig: zero, mean (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), or the path of a file of baseline samples (results averaged over them)",
+		"baseline `kind` for ig: zero, constant:V (every feature V), mean or median (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), uniform:LO:HI (noise from -seed), or the path of a file of baseline samples (results averaged over them)",
 		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the random methods")
 	fs.StringVar(&c.groups, "groups", "", "JSON `file` of feature groups to report summed, in its order: {\"name\": [features], ...}, each feature an index from 0 or a feature name")
