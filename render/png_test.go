@@ -234,6 +234,20 @@ func dotsOf(t *testing.T, chart DotChart) (*image.RGBA, dotLayout) {
 	return img, l
 }
 
+// forestOf draws chart and returns the image and its layout.
+func forestOf(t *testing.T, chart ForestChart) (*image.RGBA, forestLayout) {
+	t.Helper()
+	var buf bytes.Buffer
+	require.NoError(t, Forest(&buf, chart))
+	face, err := newFace()
+	require.NoError(t, err)
+	l, err := layoutForest(face, chart)
+	require.NoError(t, err)
+	img := decodePNG(t, buf.Bytes())
+	require.Equal(t, l.size, img.Bounds().Size())
+	return img, l
+}
+
 // assertMark checks the mark of value v of row i: a filled orange disc for
 // v > 0 (its centre and a point 3 pixels out are orange), an open purple
 // ring for v < 0 (white centre, purple at 4 pixels out), on the axis at v.
@@ -333,14 +347,7 @@ func TestForestPlot(t *testing.T) {
 		{Title: "all", Point: []float64{0.4, 0.1}, Lo: []float64{0.3, 0.05}, Hi: []float64{0.5, 0.2}, Sign: []int{1, -1}},
 		{Title: "group", Point: []float64{0.2, math.NaN()}, Lo: []float64{0.1, math.NaN()}, Hi: []float64{0.35, math.NaN()}, Sign: []int{0, 0}},
 	}}
-	var buf bytes.Buffer
-	require.NoError(t, Forest(&buf, chart))
-	img := decodePNG(t, buf.Bytes())
-	face, err := newFace()
-	require.NoError(t, err)
-	l, err := layoutForest(face, chart)
-	require.NoError(t, err)
-	assert.Equal(t, l.size, img.Bounds().Size())
+	img, l := forestOf(t, chart)
 	a0, a1 := l.axis(0), l.axis(1)
 	assert.Equal(t, a0.ticks, a1.ticks, "one axis for every panel")
 	assertMark(t, img, a0.x(0.4), l.rowY(0, 0), 1, "a, all")
@@ -684,14 +691,11 @@ func TestSummaryOneScale(t *testing.T) {
 	require.NoError(t, err)
 	require.Len(t, chart.Panels, 3)
 	assert.Equal(t, []string{"all rows (8 rows)", "g = a (4 rows)", "g = b (4 rows)"}, []string{chart.Panels[0].Title, chart.Panels[1].Title, chart.Panels[2].Title})
-	var png bytes.Buffer
-	require.NoError(t, SummaryPNG(&png, s))
-	img := decodePNG(t, png.Bytes())
-	face, err := newFace()
-	require.NoError(t, err)
-	l, err := layoutForest(face, chart)
-	require.NoError(t, err)
-	require.Equal(t, l.size, img.Bounds().Size())
+	img, l := forestOf(t, chart)
+	var drawn, summary bytes.Buffer
+	require.NoError(t, Forest(&drawn, chart))
+	require.NoError(t, SummaryPNG(&summary, s))
+	assert.Equal(t, drawn.Bytes(), summary.Bytes(), "SummaryPNG draws that chart")
 	for k, want := range []float64{0.25, 0.1, 0.4} {
 		assertMark(t, img, l.axis(k).x(want), l.rowY(k, 0), 1, chart.Panels[k].Title)
 	}

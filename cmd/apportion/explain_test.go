@@ -196,14 +196,8 @@ func TestExplainBadSampleInBatch(t *testing.T) {
 	code, out, _ = cli(t, "explain", "-model", model, "-input", in, "-format", "npy", "-out", p)
 	assert.Equal(t, exitFail, code)
 	assert.Empty(t, out)
-	f, err := os.Open(p)
-	require.NoError(t, err)
-	defer f.Close()
-	r, err := npy.NewReader(f)
-	require.NoError(t, err)
-	assert.Equal(t, []int{3, 3}, r.Header.Descr.Shape)
-	var got []float64
-	require.NoError(t, r.Read(&got))
+	shape, got := readNPY(t, p)
+	assert.Equal(t, []int{3, 3}, shape)
 	for j := 0; j < 3; j++ {
 		assert.InDelta(t, doc.Explanations[0].Attributions[j], got[j], 1e-12)
 		assert.True(t, math.IsNaN(got[3+j]))
@@ -620,14 +614,8 @@ func TestExplainGroupsEveryFormat(t *testing.T) {
 	require.Equal(t, exitOK, code, errs)
 	gp := filepath.Join(filepath.Dir(p), "attr_groups.npy")
 	assert.Contains(t, errs, "wrote the group sums, 1 sample × 3 groups, to "+gp)
-	f, err := os.Open(gp)
-	require.NoError(t, err)
-	defer f.Close()
-	r, err := npy.NewReader(f)
-	require.NoError(t, err)
-	assert.Equal(t, []int{1, 3}, r.Header.Descr.Shape)
-	var got []float64
-	require.NoError(t, r.Read(&got))
+	shape, got := readNPY(t, gp)
+	assert.Equal(t, []int{1, 3}, shape)
 	assert.Equal(t, e.Groups.Attributions, got)
 	code, _, errs = cli(t, "explain", "-groups", groups, "-format", "npy")
 	assert.Equal(t, exitUsage, code)
@@ -679,4 +667,17 @@ func TestExplainSmoothGradNoiseWarning(t *testing.T) {
 	_, out, _ = cli(t, "explain", "-method", "smoothgrad", "-noise", "0.001", "-format", "json")
 	require.NoError(t, json.Unmarshal([]byte(out), &raw))
 	assert.Empty(t, raw.Explanations[0].Warnings)
+}
+
+// readNPY reads a float64 .npy file (NEP 1 format, with npyio): its shape
+// and its values, row-major.
+func readNPY(t *testing.T, path string) (shape []int, data []float64) {
+	t.Helper()
+	f, err := os.Open(path)
+	require.NoError(t, err)
+	defer f.Close()
+	r, err := npy.NewReader(f)
+	require.NoError(t, err)
+	require.NoError(t, r.Read(&data))
+	return r.Header.Descr.Shape, data
 }
