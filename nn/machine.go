@@ -1,14 +1,14 @@
 package nn
 
 import (
-	"github.com/apportion/apportion/nn/internal/ops"
-
 	"context"
+	"errors"
 	"fmt"
 
 	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
 
+	"github.com/apportion/apportion/nn/internal/ops"
 	"github.com/apportion/apportion/onnxlite"
 )
 
@@ -172,6 +172,9 @@ func (m *machine) run(p *program, data [][]float64, mask []float64) (outs [][]fl
 		}
 	}
 	if err := m.exec(); err != nil {
+		if ie := (*ops.IndexError)(nil); errors.As(err, &ie) {
+			return nil, nil, fmt.Errorf("%w: %v", ErrBadRequest, ie)
+		}
 		return nil, nil, fmt.Errorf("%w: %v", ErrEngine, err)
 	}
 	outs = make([][]float64, len(m.outputs))

@@ -3,9 +3,11 @@ package nn_test
 import (
 	"context"
 	"encoding/json"
+	"fmt"
 	"math"
 	"os"
 	"path/filepath"
+	"strings"
 	"testing"
 
 	"codeberg.org/sbinet/npyio/npz"
@@ -324,6 +326,18 @@ func TestReferenceTextModel(t *testing.T) {
 			}
 			_, err = nw.Head(nn.Selection{})
 			assert.ErrorIs(t, err, nn.ErrBadRequest, "token ids have no gradient")
+
+			// An id beyond the vocabulary (text_cnn_vocab.txt: 40 tokens) is
+			// the data's fault, not the engine's.
+			words, err := os.ReadFile(filepath.Join(referenceDir, "text_cnn_vocab.txt"))
+			require.NoError(t, err)
+			vocab := len(strings.Fields(string(words)))
+			bad := *idTensor
+			bad.Data = append([]int64{int64(vocab)}, idData[1:]...)
+			_, err = nw.Forward(context.Background(), []*onnxlite.Tensor{&bad})
+			assert.ErrorIs(t, err, nn.ErrBadRequest)
+			assert.NotErrorIs(t, err, nn.ErrEngine)
+			assert.Contains(t, err.Error(), fmt.Sprintf("Gather index %d at position 0 of its indices is out of range: expected a whole number from %d to %d", vocab, -vocab, vocab-1))
 
 			cnw, err := nn.Compile(cut, nn.Options{DType: tc.dt})
 			require.NoError(t, err)

@@ -80,6 +80,20 @@ func (op *gatherOp) SymDiff(inputs G.Nodes, _, grad *G.Node) (G.Nodes, error) {
 	return G.Nodes{d, nil}, nil
 }
 
+// IndexError is a Gather index outside the axis it selects from: a value
+// of the run's data (a token id beyond an embedding's rows, say), not a
+// fault of the engine.
+type IndexError struct {
+	Value    float64 // the index as given
+	Position int     // its position in the indices, row-major
+	Size     int     // the length d of the gathered axis
+}
+
+func (e *IndexError) Error() string {
+	return fmt.Sprintf("Gather index %v at position %d of its indices is out of range: expected a whole number from %d to %d (the axis gathered from has %d entries)",
+		e.Value, e.Position, -e.Size, e.Size-1, e.Size)
+}
+
 // geometry returns the sizes of the outer axes, the gathered axis and the
 // inner axes.
 func (op *gatherOp) geometry() (outer, d, inner int) {
@@ -95,7 +109,7 @@ func eachGathered[T float](op *gatherOp, ind []T, f func(src, dst int)) error {
 	for j, x := range ind {
 		v := float64(x)
 		if v != math.Trunc(v) || v < -float64(d) || v >= float64(d) {
-			return fmt.Errorf("nn: Gather: index %v at position %d: expected a whole number from %d to %d", v, j, -d, d-1)
+			return &IndexError{Value: v, Position: j, Size: d}
 		}
 	}
 	for o := 0; o < outer; o++ {
