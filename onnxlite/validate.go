@@ -143,6 +143,11 @@ func (m *Model) validate() ([]int, error) {
 		}
 		imported[d] = true
 	}
+	if !hasDefault && len(m.Opsets) > 0 && !usesDefaultDomain(g) {
+		// Valid ONNX (an opset_import entry for every domain the nodes
+		// use), but none of the operators apportion runs.
+		return nil, unsupportedf("the model's operators come only from %s; apportion reads the ONNX operator set (domain \"\" or \"ai.onnx\")", describeOpsets(m.Opsets))
+	}
 	if !hasDefault {
 		return nil, invalidf("expected an opset_import for the default domain (\"\" or \"ai.onnx\"), got %s", describeOpsets(m.Opsets))
 	}
@@ -343,4 +348,14 @@ func (h *intHeap) Pop() any {
 	x := old[len(old)-1]
 	*h = old[:len(old)-1]
 	return x
+}
+
+// usesDefaultDomain reports whether a node of g is in the default domain.
+func usesDefaultDomain(g *Graph) bool {
+	for _, n := range g.Nodes {
+		if n != nil && isDefaultDomain(n.Domain) {
+			return true
+		}
+	}
+	return false
 }
