@@ -96,6 +96,24 @@ func TestPredictPrecisionFloat64(t *testing.T) {
 	assert.Contains(t, errs, "-precision \"float16\": expected float32 or float64")
 }
 
+// TestPredictEmptyParameterInput: an axes input given as an empty .pb
+// tensor is a parameter (reduce over every axis, or with
+// noop_with_empty_axes over none), not a batch without samples; the
+// outputs against the ONNX backend test data (Debian libonnx-testdata
+// 1.12.0). An empty data input is still refused.
+func TestPredictEmptyParameterInput(t *testing.T) {
+	for _, name := range []string{"node/test_reduce_sum_empty_axes_input_noop_random", "node/test_reduce_sum_default_axes_keepdims_random"} {
+		dir := caseDir(t, name)
+		inputs, outputs := setFiles(t, dir)
+		requireOutputs(t, predictJSON(t, "-model", filepath.Join(dir, "model.onnx"), "-input", inputs[0], "-input", inputs[1]), outputs)
+	}
+	dir := caseDir(t, "node/test_reshape_allowzero_reordered")
+	inputs, _ := setFiles(t, dir)
+	code, _, errs := cli(t, "predict", "-model", filepath.Join(dir, "model.onnx"), "-input", inputs[0], "-input", inputs[1])
+	assert.Equal(t, exitFail, code)
+	assert.Contains(t, errs, "expected at least one sample, got a tensor of shape [0 3 4]")
+}
+
 // twoInputModel writes y = x·W + b + Σ_k E[ids_k] (x float (N, 3), ids
 // int64 (N, 2) into a 5×4 table E), whose output t is linear in x: by
 // Sundararajan et al. 2017 (eq. 1), integrated gradients from the zero

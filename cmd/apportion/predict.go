@@ -74,8 +74,10 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if len(feeds) == 1 {
 		opt = m.ReadOptions(false)
 	}
+	uses := onnxlite.InputUses(m.Graph)
 	for i, vi := range feeds {
 		spec := samples.SpecOf(vi)
+		opt.Whole = uses[vi.Name].CompileTime()
 		b, err := samples.ReadFile(inputs[i], spec, opt)
 		if err != nil {
 			return failure(stderr, "predict", err)
