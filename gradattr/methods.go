@@ -19,6 +19,7 @@ const (
 	MethodSmoothGrad          Method = "smoothgrad"
 	MethodIntegratedGradients Method = "integrated-gradients"
 	MethodExpectedGradients   Method = "expected-gradients"
+	MethodShapley             Method = "shapley"
 )
 
 // Param names a setting that some methods read, as the command line's
@@ -35,6 +36,9 @@ const (
 	ParamSamples   Param = "samples"   // Options.Samples
 	ParamNoise     Param = "noise"     // Options.Noise
 	ParamSeed      Param = "seed"      // Options.Seed
+
+	ParamReferenceRows Param = "reference-rows" // Options.ReferenceRows
+	ParamEstimator     Param = "estimator"      // Options.Estimator
 )
 
 // DefaultSeed is the seed Method.Defaults gives the random methods. An
@@ -45,11 +49,11 @@ const DefaultSeed = 1
 // method, so that a surface (command-line flags, an HTTP request, a
 // pipeline step) can carry any of them. Attribute runs the method.
 //
-// A zero Tolerance, Samples or Noise takes the value of Method.Defaults;
-// a zero Points refines the point count automatically, the zero Rule is
-// the trapezoid rule and nil Baselines is one zero baseline. Seed is taken
-// as it is. Fields the method does not read (see Method.Params) are
-// ignored.
+// A zero Tolerance, Samples, Noise, ReferenceRows or Estimator takes the
+// value of Method.Defaults; a zero Points refines the point count
+// automatically, the zero Rule is the trapezoid rule and nil Baselines is
+// one zero baseline. Seed is taken as it is. Fields the method does not
+// read (see Method.Params) are ignored.
 type Options struct {
 	// Method is the method to run.
 	Method Method
@@ -71,11 +75,22 @@ type Options struct {
 	// Baselines are the baselines of integrated gradients.
 	Baselines []Baseline
 	// Reference is the reference set: expected gradients draw their
-	// baselines from it, and a BaselineMean or BaselineMedian baseline of
-	// integrated gradients without a Reference of its own averages it.
+	// baselines from it, Shapley values average over ReferenceRows of its
+	// rows, and a BaselineMean or BaselineMedian baseline without a
+	// Reference of its own averages it.
 	Reference [][]float64
+	// ReferenceRows is K, the reference rows of Shapley values.
+	ReferenceRows int
+	// Estimator is the estimator of Shapley values.
+	Estimator Estimator
+	// Groups are groups of features. The methods that switch features on
+	// and off (Method.Perturbs) play them as players, and they must then
+	// partition the features; for the others the result carries the
+	// attributions summed per group. Either way Result.Groups has them.
+	Groups []Group
 	// BatchSize is the number of points per model call; 0 means
-	// DefaultBatchSize.
+	// DefaultBatchSize, or DefaultForwardBatch for Shapley values, which
+	// only run the model forward.
 	BatchSize int
 }
 
@@ -88,7 +103,11 @@ type methodSpec struct {
 	title    string // the name in running text and figure titles
 	params   []Param
 	defaults Options
+	perturbs bool // switches groups on and off as players
 	run      func(ctx context.Context, m Model, x []float64, target int, o Options) (*Result, error)
+	// cost is the model evaluations of one sample of the given shape (size
+	// values), at most; o has its defaults filled in.
+	cost func(o Options, shape []int, size int) Cost
 }
 
 var methodSpecs = []methodSpec{
@@ -97,12 +116,14 @@ var methodSpecs = []methodSpec{
 		run: func(ctx context.Context, m Model, x []float64, target int, _ Options) (*Result, error) {
 			return Gradient(ctx, m, x, target, GradientOptions{})
 		},
+		cost: func(Options, []int, int) Cost { return Cost{GradientEvals: 1, ForwardPasses: 1} },
 	},
 	{
 		method: MethodGradientTimesInput, alias: "grad-input", title: "gradient × input",
 		run: func(ctx context.Context, m Model, x []float64, target int, _ Options) (*Result, error) {
 			return GradientTimesInput(ctx, m, x, target)
 		},
+		cost: func(Options, []int, int) Cost { return Cost{GradientEvals: 1, ForwardPasses: 2} },
 	},
 	{
 		method: MethodSmoothGrad, title: "SmoothGrad",
@@ -113,6 +134,7 @@ var methodSpecs = []methodSpec{
 				Samples: o.Samples, Noise: o.Noise, Seed: o.Seed, BatchSize: o.BatchSize,
 			})
 		},
+		cost: func(o Options, _ []int, _ int) Cost { return Cost{GradientEvals: o.Samples, ForwardPasses: 1} },
 	},
 	{
 		method: MethodIntegratedGradients, alias: "ig", title: "integrated gradients",
@@ -123,6 +145,19 @@ var methodSpecs = []methodSpec{
 				Rule: o.Rule, Points: o.Points, Tolerance: o.Tolerance,
 				Baselines: o.baselines(), BatchSize: o.BatchSize,
 			})
+		},
+		cost: func(o Options, _ []int, _ int) Cost {
+			b := max(1, len(o.Baselines))
+			points := o.Points
+			if points == 0 {
+				// Refinement reuses earlier points except under
+				// Gauss–Legendre, whose passes sum to under twice the cap.
+				points = DefaultMaxPoints
+				if o.Rule == RuleGaussLegendre {
+					points *= 2
+				}
+			}
+			return Cost{GradientEvals: b * points, ForwardPasses: 1 + b}
 		},
 	},
 	{
@@ -137,6 +172,32 @@ var methodSpecs = []methodSpec{
 				Reference: o.Reference, Samples: o.Samples, Seed: o.Seed,
 				Tolerance: o.Tolerance, BatchSize: o.BatchSize,
 			})
+		},
+		cost: func(o Options, _ []int, _ int) Cost {
+			return Cost{GradientEvals: o.Samples, ForwardPasses: 1 + len(o.Reference)}
+		},
+	},
+	{
+		method: MethodShapley, title: "Shapley values", perturbs: true,
+		params:   []Param{ParamReference, ParamReferenceRows, ParamEstimator, ParamSeed},
+		defaults: Options{ReferenceRows: DefaultReferenceRows, Estimator: EstimatorAuto, Seed: DefaultSeed},
+		run: func(ctx context.Context, m Model, x []float64, target int, o Options) (*Result, error) {
+			return Shapley(ctx, m, x, target, ShapleyOptions{
+				Reference: o.Reference, ReferenceRows: o.ReferenceRows, Estimator: o.Estimator,
+				Seed: o.Seed, Groups: o.Groups, BatchSize: o.BatchSize,
+			})
+		},
+		cost: func(o Options, _ []int, size int) Cost {
+			k := o.ReferenceRows
+			if len(o.Reference) > 0 {
+				k = min(k, len(o.Reference))
+			}
+			d := size
+			if o.Groups != nil {
+				d = len(o.Groups)
+			}
+			coalitions := 1<<min(d, MaxExactPlayers) - 2
+			return Cost{ForwardPasses: 1 + k + coalitions*k}
 		},
 	},
 }
@@ -231,29 +292,72 @@ func ParseMethod(s string) (Method, error) {
 	return "", fmt.Errorf("%w: method %q, want one of %s", ErrOptions, s, MethodNames())
 }
 
+// Perturbs reports whether the method switches features on and off
+// (Shapley values): with groups, it plays the
+// groups as players, which must then partition the features.
+func (m Method) Perturbs() bool {
+	s, ok := m.spec()
+	return ok && s.perturbs
+}
+
 // Attribute runs o.Method on output target of m at x with the parameters
-// of o (see Options for the defaults).
+// of o (see Options for the defaults). With Options.Groups, Result.Groups
+// holds the attributions per group.
 func Attribute(ctx context.Context, m Model, x []float64, target int, o Options) (*Result, error) {
 	s, ok := o.Method.spec()
 	if !ok {
 		return nil, fmt.Errorf("%w: method %q, want one of %s", ErrOptions, o.Method, MethodNames())
 	}
-	return s.run(ctx, m, x, target, o.withDefaults())
+	o = o.withDefaults()
+	groups := o.Groups
+	if !s.perturbs {
+		o.Groups = nil
+	}
+	r, err := s.run(ctx, m, x, target, o)
+	if err != nil {
+		return nil, err
+	}
+	if groups != nil && r.Groups == nil {
+		if r.Groups, err = r.Grouped(groups); err != nil {
+			return nil, err
+		}
+	}
+	return r, nil
+}
+
+// Estimate returns the model evaluations Attribute spends on one sample of
+// the given shape with options o, at most: the point cap of automatic
+// integrated gradients. A server can hold a request to a budget with it
+// before any model call.
+func (o Options) Estimate(shape []int) (Cost, error) {
+	s, ok := o.Method.spec()
+	if !ok {
+		return Cost{}, fmt.Errorf("%w: method %q, want one of %s", ErrOptions, o.Method, MethodNames())
+	}
+	size, err := shapeSize(shape)
+	if err != nil {
+		return Cost{}, err
+	}
+	return s.cost(o.withDefaults(), shape, size), nil
 }
 
 // withDefaults fills zero parameters from the method's defaults.
 func (o Options) withDefaults() Options {
 	d := o.Method.Defaults()
-	if o.Tolerance == 0 {
-		o.Tolerance = d.Tolerance
-	}
-	if o.Samples == 0 {
-		o.Samples = d.Samples
-	}
-	if o.Noise == 0 {
-		o.Noise = d.Noise
-	}
+	orDefault(&o.Tolerance, d.Tolerance)
+	orDefault(&o.Samples, d.Samples)
+	orDefault(&o.Noise, d.Noise)
+	orDefault(&o.ReferenceRows, d.ReferenceRows)
+	orDefault(&o.Estimator, d.Estimator)
 	return o
+}
+
+// orDefault sets *v to def when *v is the zero value.
+func orDefault[T comparable](v *T, def T) {
+	var zero T
+	if *v == zero {
+		*v = def
+	}
 }
 
 // baselines returns the baselines, a mean or median baseline without data
@@ -310,7 +414,14 @@ func (o Options) Settings() Settings {
 			s.Noise = o.Noise
 		case ParamSeed:
 			s.Seed = o.Seed
+		case ParamReferenceRows:
+			s.ReferenceRows = o.ReferenceRows
+		case ParamEstimator:
+			s.Estimator = string(o.Estimator)
 		}
+	}
+	if o.Groups != nil && o.Method.Perturbs() {
+		s.Groups = len(o.Groups)
 	}
 	return s
 }

@@ -18,6 +18,7 @@ func TestParseMethod(t *testing.T) {
 		"smoothgrad":           MethodSmoothGrad,
 		"integrated-gradients": MethodIntegratedGradients, "ig": MethodIntegratedGradients,
 		"expected-gradients": MethodExpectedGradients, "expected-grad": MethodExpectedGradients,
+		"shapley": MethodShapley,
 	} {
 		got, err := ParseMethod(name)
 		require.NoError(t, err, name)
@@ -31,7 +32,7 @@ func TestParseMethod(t *testing.T) {
 		assert.ErrorIs(t, err, ErrOptions, "%q", bad)
 		assert.ErrorContains(t, err, "integrated-gradients (ig)")
 	}
-	assert.Len(t, Methods(), 5)
+	assert.Len(t, Methods(), 6)
 	assert.Equal(t, "ig", MethodIntegratedGradients.Alias())
 	assert.Equal(t, "smoothgrad", MethodSmoothGrad.Alias(), "a short name is its own alias")
 }
@@ -84,8 +85,16 @@ func TestOptionsSettingsMatchResults(t *testing.T) {
 		}
 		r, err := Attribute(context.Background(), f, x, 0, o)
 		require.NoError(t, err, m)
+		// The estimate is a bound on what the call spent.
+		est, err := o.Estimate([]int{2})
+		require.NoError(t, err, m)
+		assert.LessOrEqual(t, r.Cost.ForwardPasses, est.ForwardPasses, m)
+		assert.LessOrEqual(t, r.Cost.GradientEvals, est.GradientEvals, m)
 		got := r.Settings
 		got.BatchSize, got.Variant = 0, ""
+		if o.Estimator == EstimatorAuto {
+			got.Estimator = string(EstimatorAuto) // which one auto picks is the call's to know
+		}
 		want, err := json.Marshal(o.Settings())
 		require.NoError(t, err)
 		have, err := json.Marshal(got)
