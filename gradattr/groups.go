@@ -84,6 +84,9 @@ type GroupedResult struct {
 	// expected value and tolerance); nil when the Result has none or the
 	// groups do not partition the features.
 	Completeness *Completeness `json:"completeness,omitempty"`
+	// StandardErrors holds the standard error of each group's value, when
+	// a sampling method computed the values per group (see Result.Groups).
+	StandardErrors []float64 `json:"standard_errors,omitempty"`
 }
 
 // Grouped sums r's attributions over groups and reports whether they

@@ -39,6 +39,7 @@ const (
 
 	ParamReferenceRows Param = "reference-rows" // Options.ReferenceRows
 	ParamEstimator     Param = "estimator"      // Options.Estimator
+	ParamCoalitions    Param = "coalitions"     // Options.Coalitions
 )
 
 // DefaultSeed is the seed Method.Defaults gives the random methods. An
@@ -49,11 +50,11 @@ const DefaultSeed = 1
 // method, so that a surface (command-line flags, an HTTP request, a
 // pipeline step) can carry any of them. Attribute runs the method.
 //
-// A zero Tolerance, Samples, Noise, ReferenceRows or Estimator takes the
-// value of Method.Defaults; a zero Points refines the point count
-// automatically, the zero Rule is the trapezoid rule and nil Baselines is
-// one zero baseline. Seed is taken as it is. Fields the method does not
-// read (see Method.Params) are ignored.
+// A zero Tolerance, Samples, Noise, ReferenceRows, Estimator or
+// Coalitions takes the value of Method.Defaults; a zero Points refines the
+// point count automatically, the zero Rule is the trapezoid rule and nil
+// Baselines is one zero baseline. Seed is taken as it is. Fields the
+// method does not read (see Method.Params) are ignored.
 type Options struct {
 	// Method is the method to run.
 	Method Method
@@ -83,6 +84,9 @@ type Options struct {
 	ReferenceRows int
 	// Estimator is the estimator of Shapley values.
 	Estimator Estimator
+	// Coalitions is the coalition budget of the sampled Shapley
+	// estimators.
+	Coalitions int
 	// Groups are groups of features. The methods that switch features on
 	// and off (Method.Perturbs) play them as players, and they must then
 	// partition the features; for the others the result carries the
@@ -179,12 +183,13 @@ var methodSpecs = []methodSpec{
 	},
 	{
 		method: MethodShapley, title: "Shapley values", perturbs: true,
-		params:   []Param{ParamReference, ParamReferenceRows, ParamEstimator, ParamSeed},
-		defaults: Options{ReferenceRows: DefaultReferenceRows, Estimator: EstimatorAuto, Seed: DefaultSeed},
+		params: []Param{ParamReference, ParamReferenceRows, ParamEstimator, ParamCoalitions, ParamSeed},
+		defaults: Options{ReferenceRows: DefaultReferenceRows, Estimator: EstimatorAuto,
+			Coalitions: DefaultCoalitions, Seed: DefaultSeed},
 		run: func(ctx context.Context, m Model, x []float64, target int, o Options) (*Result, error) {
 			return Shapley(ctx, m, x, target, ShapleyOptions{
 				Reference: o.Reference, ReferenceRows: o.ReferenceRows, Estimator: o.Estimator,
-				Seed: o.Seed, Groups: o.Groups, BatchSize: o.BatchSize,
+				Coalitions: o.Coalitions, Seed: o.Seed, Groups: o.Groups, BatchSize: o.BatchSize,
 			})
 		},
 		cost: func(o Options, _ []int, size int) Cost {
@@ -192,11 +197,18 @@ var methodSpecs = []methodSpec{
 			if len(o.Reference) > 0 {
 				k = min(k, len(o.Reference))
 			}
+			coalitions := o.Coalitions // the sampled estimators spend at most the budget
+			exact := func(d int) int { return 1<<d - 2 }
 			d := size
 			if o.Groups != nil {
 				d = len(o.Groups)
 			}
-			coalitions := 1<<min(d, MaxExactPlayers) - 2
+			switch o.Estimator {
+			case EstimatorExact:
+				coalitions = exact(min(d, MaxExactPlayers))
+			case EstimatorAuto:
+				coalitions = max(coalitions, exact(min(d, AutoExactPlayers)))
+			}
 			return Cost{ForwardPasses: 1 + k + coalitions*k}
 		},
 	},
@@ -327,7 +339,8 @@ func Attribute(ctx context.Context, m Model, x []float64, target int, o Options)
 
 // Estimate returns the model evaluations Attribute spends on one sample of
 // the given shape with options o, at most: the point cap of automatic
-// integrated gradients. A server can hold a request to a budget with it
+// integrated gradients, the coalitions of the automatic Shapley estimator
+// whichever it picks. A server can hold a request to a budget with it
 // before any model call.
 func (o Options) Estimate(shape []int) (Cost, error) {
 	s, ok := o.Method.spec()
@@ -349,6 +362,7 @@ func (o Options) withDefaults() Options {
 	orDefault(&o.Noise, d.Noise)
 	orDefault(&o.ReferenceRows, d.ReferenceRows)
 	orDefault(&o.Estimator, d.Estimator)
+	orDefault(&o.Coalitions, d.Coalitions)
 	return o
 }
 
@@ -418,6 +432,8 @@ func (o Options) Settings() Settings {
 			s.ReferenceRows = o.ReferenceRows
 		case ParamEstimator:
 			s.Estimator = string(o.Estimator)
+		case ParamCoalitions:
+			s.Coalitions = o.Coalitions
 		}
 	}
 	if o.Groups != nil && o.Method.Perturbs() {

@@ -94,7 +94,7 @@ func (p *players) spread(v []float64, size int) []float64 {
 // grouped is the record of values computed per group, when the players
 // are groups: the values themselves, not sums of the per-feature ones;
 // nil when the players are the features.
-func (p *players) grouped(v []float64, c *Completeness) *GroupedResult {
+func (p *players) grouped(v, se []float64, c *Completeness) *GroupedResult {
 	if p.groups == nil {
 		return nil
 	}
@@ -102,7 +102,7 @@ func (p *players) grouped(v []float64, c *Completeness) *GroupedResult {
 	for g, grp := range p.groups {
 		names[g] = grp.Name
 	}
-	g := &GroupedResult{Names: names, Attributions: slices.Clone(v), Partition: true}
+	g := &GroupedResult{Names: names, Attributions: slices.Clone(v), StandardErrors: slices.Clone(se), Partition: true}
 	if c != nil {
 		g.Completeness = completeness(v, c.Expected, 0, c.Tolerance, c.Judged)
 	}

@@ -42,6 +42,10 @@ type Result struct {
 	// Completeness compares Σ Attributions with Output − BaselineOutput;
 	// nil for gradient and SmoothGrad.
 	Completeness *Completeness `json:"completeness,omitempty"`
+	// StandardErrors holds the standard error of each attribution, for
+	// the sampled estimators of Shapley values; nil otherwise. With groups
+	// as players it is spread over their features as the attributions are.
+	StandardErrors []float64 `json:"standard_errors,omitempty"`
 	// Groups holds the attributions per feature group when the options
 	// asked for groups (Options.Groups): for the
 	// methods that switch groups on and off (Method.Perturbs) the values
@@ -141,8 +145,11 @@ type Settings struct {
 	// average over.
 	ReferenceRows int `json:"reference_rows,omitempty"`
 	// Estimator is the estimator of Shapley values: auto (before the
-	// call) or exact.
+	// call), exact or regression.
 	Estimator string `json:"estimator,omitempty"`
+	// Coalitions is the coalition budget of the sampled Shapley
+	// estimators.
+	Coalitions int `json:"coalitions,omitempty"`
 	// Groups is the number of feature groups a method that switches
 	// groups on and off played with (Options.Groups).
 	Groups int `json:"groups,omitempty"`

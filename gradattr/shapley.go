@@ -4,6 +4,9 @@ import (
 	"context"
 	"fmt"
 	"math"
+	"math/rand/v2"
+
+	"gonum.org/v1/gonum/mat"
 )
 
 // Estimator names how Shapley computes the Shapley values.
@@ -11,20 +14,24 @@ type Estimator string
 
 // The estimators. The empty Estimator is EstimatorAuto.
 const (
-	// EstimatorAuto is EstimatorExact.
+	// EstimatorAuto is EstimatorExact for at most AutoExactPlayers players
+	// and EstimatorRegression for more.
 	EstimatorAuto Estimator = "auto"
 	// EstimatorExact enumerates all 2^d coalitions of d players.
 	EstimatorExact Estimator = "exact"
+	// EstimatorRegression solves the Shapley-kernel weighted least squares
+	// over sampled coalitions.
+	EstimatorRegression Estimator = "regression"
 )
 
-// ParseEstimator reads an estimator by name: auto or exact. Errors wrap
-// ErrOptions.
+// ParseEstimator reads an estimator by name: auto, exact or regression.
+// Errors wrap ErrOptions.
 func ParseEstimator(s string) (Estimator, error) {
 	switch e := Estimator(s); e {
-	case EstimatorAuto, EstimatorExact:
+	case EstimatorAuto, EstimatorExact, EstimatorRegression:
 		return e, nil
 	}
-	return "", fmt.Errorf("%w: estimator %q, want auto or exact", ErrOptions, s)
+	return "", fmt.Errorf("%w: estimator %q, want auto, exact or regression", ErrOptions, s)
 }
 
 // Shapley-value defaults and limits.
@@ -32,8 +39,15 @@ const (
 	// DefaultReferenceRows is K, the number of reference rows the value
 	// function averages over.
 	DefaultReferenceRows = 100
+	// DefaultCoalitions is the coalition budget of the sampled estimators.
+	DefaultCoalitions = 2048
+	// AutoExactPlayers is the largest number of players EstimatorAuto
+	// enumerates exactly (2^12 coalitions).
+	AutoExactPlayers = 12
 	// MaxExactPlayers bounds EstimatorExact: 2^20 coalitions.
 	MaxExactPlayers = 20
+	// MaxCoalitions bounds the coalition budget.
+	MaxCoalitions = 1 << 24
 	// EfficiencyTolerance is the relative gap by which the efficiency of
 	// Shapley values, Σ φ_i = v(N) − v(∅), is judged. Every estimator
 	// here meets it by construction, so the check guards the arithmetic,
@@ -43,7 +57,7 @@ const (
 
 // ShapleyOptions configures Shapley. The zero value (with a Reference,
 // which is required) means: K = 100 reference rows, the automatic
-// estimator, seed 0, every feature a player, batches of
+// estimator, 2048 coalitions, seed 0, every feature a player, batches of
 // DefaultForwardBatch rows.
 type ShapleyOptions struct {
 	// Reference is the reference set, one sample per row. Required.
@@ -54,7 +68,10 @@ type ShapleyOptions struct {
 	ReferenceRows int
 	// Estimator selects the estimator; "" means EstimatorAuto.
 	Estimator Estimator
-	// Seed seeds the choice of reference rows.
+	// Coalitions is the coalition budget of the sampled estimators; 0
+	// means DefaultCoalitions.
+	Coalitions int
+	// Seed seeds the choice of reference rows and the sampled coalitions.
 	Seed uint64
 	// Groups, when set, are the players: they must partition the features.
 	// Each group's value is spread evenly over its features in
@@ -79,9 +96,22 @@ type ShapleyOptions struct {
 // BaselineOutput is (1/K) Σ_k f(r_k)[target] and BaselineOutputs the
 // mean of every output.
 //
-// The exact estimator enumerates all 2^d − 2 coalitions besides ∅ and N,
-// each of K forward rows, and takes the sum above. The reference rows are
-// drawn from math/rand/v2's PCG seeded by (Seed, 3).
+// Estimators (every coalition costs K forward rows):
+//
+//   - exact: all 2^d − 2 coalitions besides ∅ and N, and the sum above.
+//   - regression: the Shapley kernel weighted least squares
+//     min Σ_S k(S) (v(S) − v(∅) − Σ_{i∈S} φ_i)² subject to Σ φ_i = v(N) − v(∅),
+//     k(S) = (d − 1) / (C(d, |S|) |S| (d − |S|))  (Lundberg & Lee 2017,
+//     Theorem 2), over coalitions drawn with probability ∝ k(S), each with
+//     its complement (paired sampling), solved in the closed form of Covert
+//     & Lee 2021 (§3): φ = Â⁻¹(b̂ − 1 (1ᵀÂ⁻¹b̂ − v(N) + v(∅)) / 1ᵀÂ⁻¹1),
+//     Â = mean z zᵀ, b̂ = mean z (v(z) − v(∅)). Standard errors by the
+//     sandwich (delta-method) estimate over the pairs: Cov φ ≈ C Σ_u C / P,
+//     C = Â⁻¹ − Â⁻¹11ᵀÂ⁻¹ / 1ᵀÂ⁻¹1, u = z (v(z) − v(∅) − zᵀφ) averaged per
+//     pair, P pairs.
+//
+// The reference rows are drawn from math/rand/v2's PCG seeded by (Seed, 3),
+// the regression's coalitions by (Seed, 5).
 func Shapley(ctx context.Context, m Model, x []float64, target int, opt ShapleyOptions) (*Result, error) {
 	est := opt.Estimator
 	if est == "" {
@@ -91,6 +121,10 @@ func Shapley(ctx context.Context, m Model, x []float64, target int, opt ShapleyO
 		return nil, err
 	}
 	k, err := countOption("reference rows", opt.ReferenceRows, DefaultReferenceRows, 1, MaxSamplesLimit)
+	if err != nil {
+		return nil, err
+	}
+	n, err := countOption("coalitions", opt.Coalitions, DefaultCoalitions, 1, MaxCoalitions)
 	if err != nil {
 		return nil, err
 	}
@@ -110,15 +144,18 @@ func Shapley(ctx context.Context, m Model, x []float64, target int, opt ShapleyO
 	}
 	d := p.n()
 	if est == EstimatorAuto {
-		est = EstimatorExact
+		est = EstimatorRegression
+		if d <= AutoExactPlayers {
+			est = EstimatorExact
+		}
 	}
 	bg := sampleRows(opt.Reference, k, opt.Seed)
-	s := Settings{Method: MethodShapley, Estimator: string(est), ReferenceRows: k,
+	s := Settings{Method: MethodShapley, Estimator: string(est), ReferenceRows: k, Coalitions: n,
 		References: len(opt.Reference), Seed: opt.Seed, BatchSize: e.batch}
 	if opt.Groups != nil {
 		s.Groups = len(opt.Groups)
 	}
-	coalitions, err := shapleyCoalitions(d)
+	coalitions, err := shapleyCoalitions(est, d, n)
 	if err != nil {
 		return nil, err
 	}
@@ -134,7 +171,13 @@ func Shapley(ctx context.Context, m Model, x []float64, target int, opt ShapleyO
 		return nil, err
 	}
 	g := game{e: e, p: p, bg: bg, empty: base[e.target], full: e.outputs[e.target]}
-	phi, err := g.exact()
+	var phi, se []float64
+	switch est {
+	case EstimatorExact:
+		phi, err = g.exact()
+	case EstimatorRegression:
+		phi, se, err = g.regression(n/2, opt.Seed)
+	}
 	if err != nil {
 		return nil, err
 	}
@@ -142,22 +185,31 @@ func Shapley(ctx context.Context, m Model, x []float64, target int, opt ShapleyO
 	r := e.result(attr, s)
 	r.BaselineOutput = g.empty
 	r.BaselineOutputs = base
+	r.StandardErrors = p.spread(se, e.size)
 	r.Completeness = completeness(attr, g.full, g.empty, EfficiencyTolerance, true)
-	r.Groups = p.grouped(phi, r.Completeness)
+	r.Groups = p.grouped(phi, se, r.Completeness)
 	return r, nil
 }
 
-// shapleyCoalitions returns the number of coalitions the exact estimator
-// evaluates for d players, or why it cannot run.
-func shapleyCoalitions(d int) (int, error) {
+// shapleyCoalitions returns the number of coalitions est evaluates for d
+// players with a budget of n, or why it cannot run.
+func shapleyCoalitions(est Estimator, d, n int) (int, error) {
 	if d == 1 {
 		return 0, nil // φ = v(N) − v(∅)
 	}
-	if d > MaxExactPlayers {
-		return 0, fmt.Errorf("%w: exact Shapley values of %d players would take 2^%d coalitions; at most %d players",
-			ErrOptions, d, d, MaxExactPlayers)
+	switch est {
+	case EstimatorExact:
+		if d > MaxExactPlayers {
+			return 0, fmt.Errorf("%w: exact Shapley values of %d players would take 2^%d coalitions; at most %d players, or use the regression or permutation estimator",
+				ErrOptions, d, d, MaxExactPlayers)
+		}
+		return 1<<d - 2, nil
+	default:
+		if n < 4 {
+			return 0, fmt.Errorf("%w: the regression estimator needs at least 4 coalitions (two pairs, for its standard errors), got %d", ErrOptions, n)
+		}
+		return n / 2 * 2, nil
 	}
-	return 1<<d - 2, nil
 }
 
 // game is the cooperative game of one Shapley computation.
@@ -209,6 +261,140 @@ func (g *game) exact() ([]float64, error) {
 		phi[i] = sum
 	}
 	return phi, nil
+}
+
+// regression is the paired-sampling Shapley-kernel regression over pairs
+// pairs of coalitions.
+func (g *game) regression(pairs int, seed uint64) (phi, se []float64, err error) {
+	d := g.p.n()
+	if d == 1 {
+		return []float64{g.full - g.empty}, []float64{0}, nil
+	}
+	// Sizes s = 1..d−1 with probability ∝ 1/(s(d−s)), which is the Shapley
+	// kernel summed over the C(d, s) coalitions of size s.
+	cdf := make([]float64, d)
+	for s := 1; s < d; s++ {
+		cdf[s] = cdf[s-1] + 1/float64(s*(d-s))
+	}
+	for s := range cdf {
+		cdf[s] /= cdf[d-1]
+	}
+	rng := rand.New(rand.NewPCG(seed, 5))
+	n := 2 * pairs
+	z := make([]bool, n*d)
+	perm := make([]int, d)
+	for j := 0; j < pairs; j++ {
+		u := rng.Float64()
+		s := 1
+		for s < d-1 && cdf[s] <= u {
+			s++
+		}
+		for i := range perm {
+			perm[i] = i
+		}
+		for i := 0; i < s; i++ {
+			k := i + rng.IntN(d-i)
+			perm[i], perm[k] = perm[k], perm[i]
+		}
+		row, comp := z[2*j*d:(2*j+1)*d], z[(2*j+1)*d:(2*j+2)*d]
+		for _, i := range perm[:s] {
+			row[i] = true
+		}
+		for i := range comp {
+			comp[i] = !row[i]
+		}
+	}
+	vals, err := g.e.coalitionValues(g.p, g.bg, n, func(c int, on []bool) { copy(on, z[c*d:(c+1)*d]) })
+	if err != nil {
+		return nil, nil, err
+	}
+
+	zm := mat.NewDense(n, d, nil)
+	b := mat.NewVecDense(d, nil)
+	for c := 0; c < n; c++ {
+		dv := vals[c] - g.empty
+		for i, in := range z[c*d : (c+1)*d] {
+			if in {
+				zm.Set(c, i, 1)
+				b.SetVec(i, b.AtVec(i)+dv)
+			}
+		}
+	}
+	b.ScaleVec(1/float64(n), b)
+	a := mat.NewSymDense(d, nil)
+	a.SymOuterK(1/float64(n), zm.T())
+	var chol mat.Cholesky
+	if !chol.Factorize(a) {
+		return nil, nil, fmt.Errorf("%w: the regression estimator's %d coalitions do not determine %d players (a singular system); give more coalitions", ErrOptions, n, d)
+	}
+	ones := mat.NewVecDense(d, nil)
+	for i := 0; i < d; i++ {
+		ones.SetVec(i, 1)
+	}
+	var ainv1, ainvb mat.VecDense
+	if err := chol.SolveVecTo(&ainv1, ones); err != nil {
+		return nil, nil, fmt.Errorf("%w: the regression estimator's system is singular; give more coalitions", ErrOptions)
+	}
+	if err := chol.SolveVecTo(&ainvb, b); err != nil {
+		return nil, nil, fmt.Errorf("%w: the regression estimator's system is singular; give more coalitions", ErrOptions)
+	}
+	s1 := mat.Sum(&ainv1)
+	lambda := (mat.Sum(&ainvb) - (g.full - g.empty)) / s1
+	phi = make([]float64, d)
+	for i := range phi {
+		phi[i] = ainvb.AtVec(i) - lambda*ainv1.AtVec(i)
+	}
+
+	// Sandwich standard errors: u_j = ½ Σ_{z in pair j} z (v(z) − v(∅) − zᵀφ),
+	// centred; Cov φ ≈ C U Uᵀ C / (P (P − 1)).
+	um := mat.NewDense(d, pairs, nil)
+	mean := make([]float64, d)
+	for j := 0; j < pairs; j++ {
+		for c := 2 * j; c < 2*j+2; c++ {
+			row := z[c*d : (c+1)*d]
+			res := vals[c] - g.empty
+			for i, in := range row {
+				if in {
+					res -= phi[i]
+				}
+			}
+			for i, in := range row {
+				if in {
+					um.Set(i, j, um.At(i, j)+res/2)
+				}
+			}
+		}
+		for i := range mean {
+			mean[i] += um.At(i, j)
+		}
+	}
+	for i := range mean {
+		mean[i] /= float64(pairs)
+		for j := 0; j < pairs; j++ {
+			um.Set(i, j, um.At(i, j)-mean[i])
+		}
+	}
+	// C = Â⁻¹ − Â⁻¹1 1ᵀÂ⁻¹ / 1ᵀÂ⁻¹1
+	var ainv mat.SymDense
+	if err := chol.InverseTo(&ainv); err != nil {
+		return nil, nil, fmt.Errorf("%w: the regression estimator's system is singular; give more coalitions", ErrOptions)
+	}
+	cm := mat.NewSymDense(d, nil)
+	cm.CopySym(&ainv)
+	cm.SymRankOne(cm, -1/s1, &ainv1)
+	var cu mat.Dense
+	cu.Mul(cm, um)
+	se = make([]float64, d)
+	scale := 1 / float64(pairs*(pairs-1))
+	for i := range se {
+		ss := 0.0
+		for j := 0; j < pairs; j++ {
+			v := cu.At(i, j)
+			ss += v * v
+		}
+		se[i] = math.Sqrt(ss * scale)
+	}
+	return phi, se, nil
 }
 
 // binomial returns C(n, k) in float64 (exact up to 2^53).
