@@ -145,7 +145,7 @@ type Settings struct {
 	// average over.
 	ReferenceRows int `json:"reference_rows,omitempty"`
 	// Estimator is the estimator of Shapley values: auto (before the
-	// call), exact or regression.
+	// call), exact, regression or permutation.
 	Estimator string `json:"estimator,omitempty"`
 	// Coalitions is the coalition budget of the sampled Shapley
 	// estimators.

@@ -22,16 +22,19 @@ const (
 	// EstimatorRegression solves the Shapley-kernel weighted least squares
 	// over sampled coalitions.
 	EstimatorRegression Estimator = "regression"
+	// EstimatorPermutation averages marginal contributions over sampled
+	// permutations.
+	EstimatorPermutation Estimator = "permutation"
 )
 
-// ParseEstimator reads an estimator by name: auto, exact or regression.
-// Errors wrap ErrOptions.
+// ParseEstimator reads an estimator by name: auto, exact, regression or
+// permutation. Errors wrap ErrOptions.
 func ParseEstimator(s string) (Estimator, error) {
 	switch e := Estimator(s); e {
-	case EstimatorAuto, EstimatorExact, EstimatorRegression:
+	case EstimatorAuto, EstimatorExact, EstimatorRegression, EstimatorPermutation:
 		return e, nil
 	}
-	return "", fmt.Errorf("%w: estimator %q, want auto, exact or regression", ErrOptions, s)
+	return "", fmt.Errorf("%w: estimator %q, want auto, exact, regression or permutation", ErrOptions, s)
 }
 
 // Shapley-value defaults and limits.
@@ -109,9 +112,14 @@ type ShapleyOptions struct {
 //     sandwich (delta-method) estimate over the pairs: Cov φ ≈ C Σ_u C / P,
 //     C = Â⁻¹ − Â⁻¹11ᵀÂ⁻¹ / 1ᵀÂ⁻¹1, u = z (v(z) − v(∅) − zᵀφ) averaged per
 //     pair, P pairs.
+//   - permutation: marginal contributions along random orderings of the
+//     players (Štrumbelj & Kononenko 2014), each ordering with its reverse
+//     (antithetic sampling, Mitchell et al. 2022); Coalitions / (d − 1)
+//     orderings, rounded down to pairs; standard errors from the spread of
+//     the pair means.
 //
 // The reference rows are drawn from math/rand/v2's PCG seeded by (Seed, 3),
-// the regression's coalitions by (Seed, 5).
+// the regression's coalitions by (Seed, 5), the orderings by (Seed, 4).
 func Shapley(ctx context.Context, m Model, x []float64, target int, opt ShapleyOptions) (*Result, error) {
 	est := opt.Estimator
 	if est == "" {
@@ -177,6 +185,8 @@ func Shapley(ctx context.Context, m Model, x []float64, target int, opt ShapleyO
 		phi, err = g.exact()
 	case EstimatorRegression:
 		phi, se, err = g.regression(n/2, opt.Seed)
+	case EstimatorPermutation:
+		phi, se, err = g.permutation(coalitions/(d-1), opt.Seed)
 	}
 	if err != nil {
 		return nil, err
@@ -204,11 +214,18 @@ func shapleyCoalitions(est Estimator, d, n int) (int, error) {
 				ErrOptions, d, d, MaxExactPlayers)
 		}
 		return 1<<d - 2, nil
-	default:
+	case EstimatorRegression:
 		if n < 4 {
 			return 0, fmt.Errorf("%w: the regression estimator needs at least 4 coalitions (two pairs, for its standard errors), got %d", ErrOptions, n)
 		}
 		return n / 2 * 2, nil
+	default:
+		perms := n / (d - 1) / 2 * 2
+		if perms < 4 {
+			return 0, fmt.Errorf("%w: the permutation estimator needs at least 4·(players − 1) = %d coalitions for %d players (two antithetic pairs of orderings, for its standard errors), got %d",
+				ErrOptions, 4*(d-1), d, n)
+		}
+		return perms * (d - 1), nil
 	}
 }
 
@@ -393,6 +410,70 @@ func (g *game) regression(pairs int, seed uint64) (phi, se []float64, err error)
 			ss += v * v
 		}
 		se[i] = math.Sqrt(ss * scale)
+	}
+	return phi, se, nil
+}
+
+// permutation averages marginal contributions over perms orderings: pairs
+// of a random ordering and its reverse.
+func (g *game) permutation(perms int, seed uint64) (phi, se []float64, err error) {
+	d := g.p.n()
+	if d == 1 {
+		return []float64{g.full - g.empty}, []float64{0}, nil
+	}
+	rng := rand.New(rand.NewPCG(seed, 4))
+	order := make([]int, perms*d)
+	for q := 0; q < perms; q += 2 {
+		o, rev := order[q*d:(q+1)*d], order[(q+1)*d:(q+2)*d]
+		for i := range o {
+			o[i] = i
+		}
+		rng.Shuffle(d, func(i, j int) { o[i], o[j] = o[j], o[i] })
+		for i := range rev {
+			rev[i] = o[d-1-i]
+		}
+	}
+	// Coalition (q, t), t = 1..d−1, holds the first t players of ordering q.
+	vals, err := g.e.coalitionValues(g.p, g.bg, perms*(d-1), func(c int, on []bool) {
+		q, t := c/(d-1), c%(d-1)+1
+		for _, i := range order[q*d : q*d+t] {
+			on[i] = true
+		}
+	})
+	if err != nil {
+		return nil, nil, err
+	}
+	// psi[j] holds the marginal contributions of pair j, the mean of an
+	// ordering's and its reverse's.
+	pairs := perms / 2
+	psi := make([]float64, pairs*d)
+	phi = make([]float64, d)
+	for j := 0; j < pairs; j++ {
+		pj := psi[j*d : (j+1)*d]
+		for q := 2 * j; q < 2*j+2; q++ {
+			prev := g.empty
+			for t := 1; t <= d; t++ {
+				cur := g.full
+				if t < d {
+					cur = vals[q*(d-1)+t-1]
+				}
+				pj[order[q*d+t-1]] += (cur - prev) / 2
+				prev = cur
+			}
+		}
+		for i, v := range pj {
+			phi[i] += v
+		}
+	}
+	se = make([]float64, d)
+	for i := range phi {
+		phi[i] /= float64(pairs)
+		ss := 0.0
+		for j := 0; j < pairs; j++ {
+			dv := psi[j*d+i] - phi[i]
+			ss += dv * dv
+		}
+		se[i] = math.Sqrt(ss / float64(pairs-1) / float64(pairs))
 	}
 	return phi, se, nil
 }
