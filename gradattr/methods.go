@@ -20,6 +20,7 @@ const (
 	MethodIntegratedGradients Method = "integrated-gradients"
 	MethodExpectedGradients   Method = "expected-gradients"
 	MethodShapley             Method = "shapley"
+	MethodSurrogate           Method = "surrogate"
 )
 
 // Param names a setting that some methods read, as the command line's
@@ -40,6 +41,7 @@ const (
 	ParamReferenceRows Param = "reference-rows" // Options.ReferenceRows
 	ParamEstimator     Param = "estimator"      // Options.Estimator
 	ParamCoalitions    Param = "coalitions"     // Options.Coalitions
+	ParamKernelWidth   Param = "kernel-width"   // Options.KernelWidth
 )
 
 // DefaultSeed is the seed Method.Defaults gives the random methods. An
@@ -50,11 +52,11 @@ const DefaultSeed = 1
 // method, so that a surface (command-line flags, an HTTP request, a
 // pipeline step) can carry any of them. Attribute runs the method.
 //
-// A zero Tolerance, Samples, Noise, ReferenceRows, Estimator or
-// Coalitions takes the value of Method.Defaults; a zero Points refines the
-// point count automatically, the zero Rule is the trapezoid rule and nil
-// Baselines is one zero baseline. Seed is taken as it is. Fields the
-// method does not read (see Method.Params) are ignored.
+// A zero Tolerance, Samples, Noise, ReferenceRows, Estimator, Coalitions,
+// KernelWidth or Ridge takes the value of Method.Defaults; a zero Points
+// refines the point count automatically, the zero Rule is the trapezoid
+// rule and nil Baselines is one zero baseline. Seed is taken as it is.
+// Fields the method does not read (see Method.Params) are ignored.
 type Options struct {
 	// Method is the method to run.
 	Method Method
@@ -85,16 +87,20 @@ type Options struct {
 	// Estimator is the estimator of Shapley values.
 	Estimator Estimator
 	// Coalitions is the coalition budget of the sampled Shapley
-	// estimators.
+	// estimators and the number of coalitions of the surrogate.
 	Coalitions int
+	// KernelWidth is the width of the surrogate's proximity kernel, and
+	// Ridge its ridge penalty.
+	KernelWidth float64
+	Ridge       float64
 	// Groups are groups of features. The methods that switch features on
 	// and off (Method.Perturbs) play them as players, and they must then
 	// partition the features; for the others the result carries the
 	// attributions summed per group. Either way Result.Groups has them.
 	Groups []Group
 	// BatchSize is the number of points per model call; 0 means
-	// DefaultBatchSize, or DefaultForwardBatch for Shapley values, which
-	// only run the model forward.
+	// DefaultBatchSize, or DefaultForwardBatch for the methods that only
+	// run the model forward.
 	BatchSize int
 }
 
@@ -212,6 +218,21 @@ var methodSpecs = []methodSpec{
 			return Cost{ForwardPasses: 1 + k + coalitions*k}
 		},
 	},
+	{
+		method: MethodSurrogate, title: "local surrogate", perturbs: true,
+		params:   []Param{ParamBaseline, ParamReference, ParamCoalitions, ParamKernelWidth, ParamSeed},
+		defaults: Options{Coalitions: DefaultCoalitions, KernelWidth: DefaultKernelWidth, Ridge: DefaultRidge, Seed: DefaultSeed},
+		run: func(ctx context.Context, m Model, x []float64, target int, o Options) (*Result, error) {
+			return Surrogate(ctx, m, x, target, SurrogateOptions{
+				Baselines: o.baselines(), Coalitions: o.Coalitions, KernelWidth: o.KernelWidth,
+				Ridge: o.Ridge, Seed: o.Seed, Groups: o.Groups, BatchSize: o.BatchSize,
+			})
+		},
+		cost: func(o Options, _ []int, _ int) Cost {
+			b := max(1, len(o.Baselines))
+			return Cost{ForwardPasses: 1 + b + (o.Coalitions-2)*b}
+		},
+	},
 }
 
 func (m Method) spec() (*methodSpec, bool) {
@@ -305,7 +326,7 @@ func ParseMethod(s string) (Method, error) {
 }
 
 // Perturbs reports whether the method switches features on and off
-// (Shapley values): with groups, it plays the
+// (Shapley values, the surrogate): with groups, it plays the
 // groups as players, which must then partition the features.
 func (m Method) Perturbs() bool {
 	s, ok := m.spec()
@@ -363,6 +384,8 @@ func (o Options) withDefaults() Options {
 	orDefault(&o.ReferenceRows, d.ReferenceRows)
 	orDefault(&o.Estimator, d.Estimator)
 	orDefault(&o.Coalitions, d.Coalitions)
+	orDefault(&o.KernelWidth, d.KernelWidth)
+	orDefault(&o.Ridge, d.Ridge)
 	return o
 }
 
@@ -434,6 +457,8 @@ func (o Options) Settings() Settings {
 			s.Estimator = string(o.Estimator)
 		case ParamCoalitions:
 			s.Coalitions = o.Coalitions
+		case ParamKernelWidth:
+			s.KernelWidth, s.Ridge = o.KernelWidth, o.Ridge
 		}
 	}
 	if o.Groups != nil && o.Method.Perturbs() {

@@ -31,13 +31,14 @@ type Result struct {
 	Outputs []float64 `json:"outputs"`
 	// BaselineOutput is the target output at the reference point: f(x′)
 	// (the mean over baselines when there are several) for integrated
-	// gradients, the mean of f over the reference set for expected
-	// gradients and over the reference rows for Shapley values, f(0) for
-	// gradient×input; 0 for gradient and SmoothGrad.
+	// gradients and the surrogate, the mean of f over the reference set for
+	// expected gradients and over the reference rows for Shapley values,
+	// f(0) for gradient×input; 0 for gradient and SmoothGrad.
 	BaselineOutput float64 `json:"baseline_output"`
 	// BaselineOutputs holds every output at the reference point, for the
 	// methods that evaluate it as such: the mean over the reference rows
-	// (Shapley values); nil for the others.
+	// (Shapley values) or over the baselines (surrogate); nil for the
+	// others.
 	BaselineOutputs []float64 `json:"baseline_outputs,omitempty"`
 	// Completeness compares Σ Attributions with Output − BaselineOutput;
 	// nil for gradient and SmoothGrad.
@@ -46,6 +47,8 @@ type Result struct {
 	// the sampled estimators of Shapley values; nil otherwise. With groups
 	// as players it is spread over their features as the attributions are.
 	StandardErrors []float64 `json:"standard_errors,omitempty"`
+	// Surrogate is the local surrogate model's fit; nil for other methods.
+	Surrogate *SurrogateFit `json:"surrogate,omitempty"`
 	// Groups holds the attributions per feature group when the options
 	// asked for groups (Options.Groups): for the
 	// methods that switch groups on and off (Method.Perturbs) the values
@@ -148,8 +151,12 @@ type Settings struct {
 	// call), exact, regression or permutation.
 	Estimator string `json:"estimator,omitempty"`
 	// Coalitions is the coalition budget of the sampled Shapley
-	// estimators.
+	// estimators and of the surrogate.
 	Coalitions int `json:"coalitions,omitempty"`
+	// KernelWidth is the width of the surrogate's proximity kernel.
+	KernelWidth float64 `json:"kernel_width,omitempty"`
+	// Ridge is the surrogate's ridge penalty.
+	Ridge float64 `json:"ridge,omitempty"`
 	// Groups is the number of feature groups a method that switches
 	// groups on and off played with (Options.Groups).
 	Groups int `json:"groups,omitempty"`

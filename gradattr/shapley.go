@@ -42,7 +42,8 @@ const (
 	// DefaultReferenceRows is K, the number of reference rows the value
 	// function averages over.
 	DefaultReferenceRows = 100
-	// DefaultCoalitions is the coalition budget of the sampled estimators.
+	// DefaultCoalitions is the coalition budget of the sampled estimators
+	// (and of the surrogate).
 	DefaultCoalitions = 2048
 	// AutoExactPlayers is the largest number of players EstimatorAuto
 	// enumerates exactly (2^12 coalitions).
