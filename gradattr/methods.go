@@ -21,6 +21,7 @@ const (
 	MethodExpectedGradients   Method = "expected-gradients"
 	MethodShapley             Method = "shapley"
 	MethodSurrogate           Method = "surrogate"
+	MethodOcclusion           Method = "occlusion"
 )
 
 // Param names a setting that some methods read, as the command line's
@@ -42,6 +43,8 @@ const (
 	ParamEstimator     Param = "estimator"      // Options.Estimator
 	ParamCoalitions    Param = "coalitions"     // Options.Coalitions
 	ParamKernelWidth   Param = "kernel-width"   // Options.KernelWidth
+	ParamWindow        Param = "window"         // Options.Window
+	ParamStride        Param = "stride"         // Options.Stride
 )
 
 // DefaultSeed is the seed Method.Defaults gives the random methods. An
@@ -53,10 +56,11 @@ const DefaultSeed = 1
 // pipeline step) can carry any of them. Attribute runs the method.
 //
 // A zero Tolerance, Samples, Noise, ReferenceRows, Estimator, Coalitions,
-// KernelWidth or Ridge takes the value of Method.Defaults; a zero Points
-// refines the point count automatically, the zero Rule is the trapezoid
-// rule and nil Baselines is one zero baseline. Seed is taken as it is.
-// Fields the method does not read (see Method.Params) are ignored.
+// KernelWidth, Ridge, Window or Stride takes the value of Method.Defaults;
+// a zero Points refines the point count automatically, the zero Rule is
+// the trapezoid rule and nil Baselines is one zero baseline. Seed is taken
+// as it is. Fields the method does not read (see Method.Params) are
+// ignored.
 type Options struct {
 	// Method is the method to run.
 	Method Method
@@ -93,6 +97,10 @@ type Options struct {
 	// Ridge its ridge penalty.
 	KernelWidth float64
 	Ridge       float64
+	// Window and Stride are the occlusion window [height, width] and its
+	// step; a zero Stride is half the window's shorter side.
+	Window [2]int
+	Stride int
 	// Groups are groups of features. The methods that switch features on
 	// and off (Method.Perturbs) play them as players, and they must then
 	// partition the features; for the others the result carries the
@@ -233,6 +241,32 @@ var methodSpecs = []methodSpec{
 			return Cost{ForwardPasses: 1 + b + (o.Coalitions-2)*b}
 		},
 	},
+	{
+		method: MethodOcclusion, title: "occlusion", perturbs: true,
+		params:   []Param{ParamBaseline, ParamReference, ParamWindow, ParamStride},
+		defaults: Options{Window: [2]int{DefaultWindow, DefaultWindow}, Stride: DefaultWindow / 2},
+		run: func(ctx context.Context, m Model, x []float64, target int, o Options) (*Result, error) {
+			return Occlusion(ctx, m, x, target, OcclusionOptions{
+				Baselines: o.baselines(), Window: o.Window, Stride: o.Stride, Groups: o.Groups, BatchSize: o.BatchSize,
+			})
+		},
+		cost: func(o Options, shape []int, size int) Cost {
+			b := max(1, len(o.Baselines))
+			regions := size
+			switch {
+			case o.Groups != nil:
+				regions = len(o.Groups)
+			case len(shape) >= 2:
+				h, w := shape[len(shape)-2], shape[len(shape)-1]
+				oh, ow, stride := OcclusionOptions{Window: o.Window, Stride: o.Stride}.window()
+				regions = 0
+				if oh <= h && ow <= w && stride > 0 {
+					regions = ((h-oh)/stride + 1) * ((w-ow)/stride + 1)
+				}
+			}
+			return Cost{ForwardPasses: 1 + b + regions*b}
+		},
+	},
 }
 
 func (m Method) spec() (*methodSpec, bool) {
@@ -326,7 +360,7 @@ func ParseMethod(s string) (Method, error) {
 }
 
 // Perturbs reports whether the method switches features on and off
-// (Shapley values, the surrogate): with groups, it plays the
+// (Shapley values, the surrogate, occlusion): with groups, it plays the
 // groups as players, which must then partition the features.
 func (m Method) Perturbs() bool {
 	s, ok := m.spec()
@@ -386,6 +420,10 @@ func (o Options) withDefaults() Options {
 	orDefault(&o.Coalitions, d.Coalitions)
 	orDefault(&o.KernelWidth, d.KernelWidth)
 	orDefault(&o.Ridge, d.Ridge)
+	orDefault(&o.Window, d.Window)
+	if o.Window != [2]int{} {
+		orDefault(&o.Stride, max(1, min(o.Window[0], o.Window[1])/2))
+	}
 	return o
 }
 
@@ -459,6 +497,10 @@ func (o Options) Settings() Settings {
 			s.Coalitions = o.Coalitions
 		case ParamKernelWidth:
 			s.KernelWidth, s.Ridge = o.KernelWidth, o.Ridge
+		case ParamWindow:
+			s.Window = []int{o.Window[0], o.Window[1]}
+		case ParamStride:
+			s.Stride = o.Stride
 		}
 	}
 	if o.Groups != nil && o.Method.Perturbs() {

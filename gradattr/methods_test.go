@@ -18,7 +18,7 @@ func TestParseMethod(t *testing.T) {
 		"smoothgrad":           MethodSmoothGrad,
 		"integrated-gradients": MethodIntegratedGradients, "ig": MethodIntegratedGradients,
 		"expected-gradients": MethodExpectedGradients, "expected-grad": MethodExpectedGradients,
-		"shapley": MethodShapley, "surrogate": MethodSurrogate,
+		"shapley": MethodShapley, "surrogate": MethodSurrogate, "occlusion": MethodOcclusion,
 	} {
 		got, err := ParseMethod(name)
 		require.NoError(t, err, name)
@@ -32,7 +32,7 @@ func TestParseMethod(t *testing.T) {
 		assert.ErrorIs(t, err, ErrOptions, "%q", bad)
 		assert.ErrorContains(t, err, "integrated-gradients (ig)")
 	}
-	assert.Len(t, Methods(), 7)
+	assert.Len(t, Methods(), 8)
 	assert.Equal(t, "ig", MethodIntegratedGradients.Alias())
 	assert.Equal(t, "smoothgrad", MethodSmoothGrad.Alias(), "a short name is its own alias")
 }

@@ -5,6 +5,7 @@ import (
 	"context"
 	"encoding/json"
 	"os/exec"
+	"slices"
 	"testing"
 
 	"github.com/stretchr/testify/assert"
@@ -98,4 +99,55 @@ func TestShapleyPumpsAgainstTorch(t *testing.T) {
 		assert.InDelta(t, want.Full, r.Output, tol, "%v", dt)
 	}
 	t.Logf("φ (float64 engine) %.4f; torch %.4f", got[nn.Float64].Attributions, want.Phi)
+}
+
+func TestOcclusionWeldsAgainstLoop(t *testing.T) {
+	// Occlusion of a welds patch through the compiled model in batches
+	// against the definition (Zeiler & Fergus 2014, §4.2) run window by
+	// window, one Forward per occluded patch: a 4×4 window by 2 set to the
+	// mean clean patch, each pixel the mean drop over its windows.
+	h := weldsHead(t)
+	patches, _ := readNPY[float32](t, "welds_test_patches.npy")
+	x := make([]float64, 1024)
+	for i := range x {
+		x[i] = float64(patches[1024+i]) // held-out patch 1, defective
+	}
+	ref := demoReference(t, "welds")
+	mean := make([]float64, 1024)
+	for _, r := range ref {
+		for i, v := range r {
+			mean[i] += v / float64(len(ref))
+		}
+	}
+	ctx := context.Background()
+	res, err := gradattr.Occlusion(ctx, h, x, gradattr.TargetTop, gradattr.OcclusionOptions{
+		Baselines: []gradattr.Baseline{{Kind: gradattr.BaselineValues, Values: mean}}})
+	require.NoError(t, err)
+	fx, err := h.Forward(ctx, x, 1)
+	require.NoError(t, err)
+	k := res.Target
+	sum, count := make([]float64, 1024), make([]float64, 1024)
+	for y0 := 0; y0+4 <= 32; y0 += 2 {
+		for x0 := 0; x0+4 <= 32; x0 += 2 {
+			p := slices.Clone(x)
+			for y := y0; y < y0+4; y++ {
+				for xx := x0; xx < x0+4; xx++ {
+					p[y*32+xx] = mean[y*32+xx]
+				}
+			}
+			out, err := h.Forward(ctx, p, 1)
+			require.NoError(t, err)
+			for y := y0; y < y0+4; y++ {
+				for xx := x0; xx < x0+4; xx++ {
+					sum[y*32+xx] += fx[k] - out[k]
+					count[y*32+xx]++
+				}
+			}
+		}
+	}
+	for i := range sum {
+		sum[i] /= count[i]
+	}
+	assert.InDeltaSlice(t, sum, res.Attributions, 1e-12)
+	assert.Equal(t, 1+1+15*15, res.Cost.ForwardPasses)
 }

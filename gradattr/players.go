@@ -91,6 +91,18 @@ func (p *players) spread(v []float64, size int) []float64 {
 	return out
 }
 
+// paint returns one value per feature from one value per player: each
+// feature takes its player's value.
+func (p *players) paint(v []float64, size int) []float64 {
+	out := make([]float64, size)
+	for q, idx := range p.idx {
+		for _, i := range idx {
+			out[i] = v[q]
+		}
+	}
+	return out
+}
+
 // grouped is the record of values computed per group, when the players
 // are groups: the values themselves, not sums of the per-feature ones;
 // nil when the players are the features.

@@ -31,14 +31,15 @@ type Result struct {
 	Outputs []float64 `json:"outputs"`
 	// BaselineOutput is the target output at the reference point: f(x′)
 	// (the mean over baselines when there are several) for integrated
-	// gradients and the surrogate, the mean of f over the reference set for
-	// expected gradients and over the reference rows for Shapley values,
-	// f(0) for gradient×input; 0 for gradient and SmoothGrad.
+	// gradients, the surrogate and occlusion, the mean of f over the
+	// reference set for expected gradients and over the reference rows for
+	// Shapley values, f(0) for gradient×input; 0 for gradient and
+	// SmoothGrad.
 	BaselineOutput float64 `json:"baseline_output"`
 	// BaselineOutputs holds every output at the reference point, for the
 	// methods that evaluate it as such: the mean over the reference rows
-	// (Shapley values) or over the baselines (surrogate); nil for the
-	// others.
+	// (Shapley values) or over the baselines (surrogate, occlusion); nil
+	// for the others.
 	BaselineOutputs []float64 `json:"baseline_outputs,omitempty"`
 	// Completeness compares Σ Attributions with Output − BaselineOutput;
 	// nil for gradient and SmoothGrad.
@@ -157,6 +158,10 @@ type Settings struct {
 	KernelWidth float64 `json:"kernel_width,omitempty"`
 	// Ridge is the surrogate's ridge penalty.
 	Ridge float64 `json:"ridge,omitempty"`
+	// Window is the occlusion window, [height, width], and Stride its
+	// step.
+	Window []int `json:"window,omitempty"`
+	Stride int   `json:"stride,omitempty"`
 	// Groups is the number of feature groups a method that switches
 	// groups on and off played with (Options.Groups).
 	Groups int `json:"groups,omitempty"`
