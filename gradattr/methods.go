@@ -106,6 +106,11 @@ type Options struct {
 	// partition the features; for the others the result carries the
 	// attributions summed per group. Either way Result.Groups has them.
 	Groups []Group
+	// Superpixels, when > 0, makes the groups from the sample itself: about
+	// that many SLIC superpixels of the image (see SuperpixelGroups), with
+	// SLIC's Compactness (0 means DefaultCompactness). It excludes Groups.
+	Superpixels int
+	Compactness float64
 	// BatchSize is the number of points per model call; 0 means
 	// DefaultBatchSize, or DefaultForwardBatch for the methods that only
 	// run the model forward.
@@ -214,8 +219,11 @@ var methodSpecs = []methodSpec{
 			coalitions := o.Coalitions // the sampled estimators spend at most the budget
 			exact := func(d int) int { return 1<<d - 2 }
 			d := size
-			if o.Groups != nil {
+			switch {
+			case o.Groups != nil:
 				d = len(o.Groups)
+			case o.Superpixels > 0:
+				d = MaxExactPlayers // SLIC's count is known only from the image
 			}
 			switch o.Estimator {
 			case EstimatorExact:
@@ -256,6 +264,8 @@ var methodSpecs = []methodSpec{
 			switch {
 			case o.Groups != nil:
 				regions = len(o.Groups)
+			case o.Superpixels > 0 && len(shape) >= 2:
+				regions = shape[len(shape)-2] * shape[len(shape)-1] // at most a segment per pixel
 			case len(shape) >= 2:
 				h, w := shape[len(shape)-2], shape[len(shape)-1]
 				oh, ow, stride := OcclusionOptions{Window: o.Window, Stride: o.Stride}.window()
@@ -368,14 +378,31 @@ func (m Method) Perturbs() bool {
 }
 
 // Attribute runs o.Method on output target of m at x with the parameters
-// of o (see Options for the defaults). With Options.Groups, Result.Groups
-// holds the attributions per group.
+// of o (see Options for the defaults). With groups (Options.Groups, or
+// superpixels of x), Result.Groups holds the attributions per group.
 func Attribute(ctx context.Context, m Model, x []float64, target int, o Options) (*Result, error) {
 	s, ok := o.Method.spec()
 	if !ok {
 		return nil, fmt.Errorf("%w: method %q, want one of %s", ErrOptions, o.Method, MethodNames())
 	}
 	o = o.withDefaults()
+	var segments []int
+	if o.Superpixels != 0 {
+		if o.Groups != nil {
+			return nil, fmt.Errorf("%w: groups and superpixels both given; superpixels make the groups", ErrOptions)
+		}
+		if m == nil {
+			return nil, fmt.Errorf("%w: nil model", ErrModel)
+		}
+		var shape []int
+		if err := callSafe("InputShape", func() { shape = m.InputShape() }); err != nil {
+			return nil, err
+		}
+		var err error
+		if o.Groups, segments, err = SuperpixelGroups(x, shape, o.Superpixels, o.Compactness); err != nil {
+			return nil, err
+		}
+	}
 	groups := o.Groups
 	if !s.perturbs {
 		o.Groups = nil
@@ -389,14 +416,21 @@ func Attribute(ctx context.Context, m Model, x []float64, target int, o Options)
 			return nil, err
 		}
 	}
+	if r.Groups != nil {
+		r.Groups.Segments = segments
+	}
+	if o.Superpixels != 0 {
+		r.Settings.Superpixels, r.Settings.Compactness = o.Superpixels, o.Compactness
+	}
 	return r, nil
 }
 
 // Estimate returns the model evaluations Attribute spends on one sample of
 // the given shape with options o, at most: the point cap of automatic
 // integrated gradients, the coalitions of the automatic Shapley estimator
-// whichever it picks. A server can hold a request to a budget with it
-// before any model call.
+// whichever it picks, one region per pixel for occlusion of superpixels
+// (whose count only the image decides). A server can hold a request to a
+// budget with it before any model call.
 func (o Options) Estimate(shape []int) (Cost, error) {
 	s, ok := o.Method.spec()
 	if !ok {
@@ -423,6 +457,9 @@ func (o Options) withDefaults() Options {
 	orDefault(&o.Window, d.Window)
 	if o.Window != [2]int{} {
 		orDefault(&o.Stride, max(1, min(o.Window[0], o.Window[1])/2))
+	}
+	if o.Superpixels != 0 {
+		orDefault(&o.Compactness, DefaultCompactness)
 	}
 	return o
 }
@@ -502,6 +539,9 @@ func (o Options) Settings() Settings {
 		case ParamStride:
 			s.Stride = o.Stride
 		}
+	}
+	if o.Superpixels != 0 {
+		s.Superpixels, s.Compactness = o.Superpixels, o.Compactness
 	}
 	if o.Groups != nil && o.Method.Perturbs() {
 		s.Groups = len(o.Groups)

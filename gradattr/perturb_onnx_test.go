@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
+	"math"
 	"os/exec"
 	"slices"
 	"testing"
@@ -150,4 +151,44 @@ func TestOcclusionWeldsAgainstLoop(t *testing.T) {
 	}
 	assert.InDeltaSlice(t, sum, res.Attributions, 1e-12)
 	assert.Equal(t, 1+1+15*15, res.Cost.ForwardPasses)
+}
+
+func TestShapleyWeldsSuperpixels(t *testing.T) {
+	// Shapley values of about 64 SLIC segments of a welds patch by the
+	// regression estimator: efficiency holds to rounding (the constraint
+	// of Lundberg & Lee 2017, Theorem 2), each segment's value is spread
+	// over its pixels, and the standard errors are finite and positive.
+	h := weldsHead(t)
+	patches, _ := readNPY[float32](t, "welds_test_patches.npy")
+	x := make([]float64, 1024)
+	for i := range x {
+		x[i] = float64(patches[1024+i])
+	}
+	ref := demoReference(t, "welds")
+	r, err := gradattr.Attribute(context.Background(), h, x, gradattr.TargetTop, gradattr.Options{
+		Method: gradattr.MethodShapley, Reference: ref, ReferenceRows: 8, Coalitions: 512, Superpixels: 64})
+	require.NoError(t, err)
+	assert.Equal(t, string(gradattr.EstimatorRegression), r.Settings.Estimator)
+	g := r.Groups
+	require.NotNil(t, g)
+	assert.InDelta(t, 64, len(g.Names), 0.2*64)
+	assert.True(t, r.Completeness.OK)
+	assert.True(t, g.Completeness.OK)
+	assert.Equal(t, 1+8+512*8, r.Cost.ForwardPasses)
+	for s, name := range g.Names {
+		assert.Greater(t, g.StandardErrors[s], 0.0, name)
+		n := 0
+		for _, l := range g.Segments {
+			if l == s {
+				n++
+			}
+		}
+		for p, l := range g.Segments {
+			if l == s {
+				assert.InDelta(t, g.Attributions[s]/float64(n), r.Attributions[p], 1e-15)
+				assert.InDelta(t, g.StandardErrors[s]/float64(n), r.StandardErrors[p], 1e-15)
+			}
+		}
+	}
+	assert.False(t, math.IsNaN(r.Completeness.Sum))
 }

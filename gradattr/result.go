@@ -51,7 +51,7 @@ type Result struct {
 	// Surrogate is the local surrogate model's fit; nil for other methods.
 	Surrogate *SurrogateFit `json:"surrogate,omitempty"`
 	// Groups holds the attributions per feature group when the options
-	// asked for groups (Options.Groups): for the
+	// asked for groups (Options.Groups or Options.Superpixels): for the
 	// methods that switch groups on and off (Method.Perturbs) the values
 	// the method computed for each group, for the others the sums of the
 	// feature attributions.
@@ -162,6 +162,10 @@ type Settings struct {
 	// step.
 	Window []int `json:"window,omitempty"`
 	Stride int   `json:"stride,omitempty"`
+	// Superpixels is the number of SLIC segments asked for, and
+	// Compactness SLIC's m.
+	Superpixels int     `json:"superpixels,omitempty"`
+	Compactness float64 `json:"compactness,omitempty"`
 	// Groups is the number of feature groups a method that switches
 	// groups on and off played with (Options.Groups).
 	Groups int `json:"groups,omitempty"`
