@@ -54,9 +54,10 @@ func bar(v, scale float64) string {
 }
 
 // Table prints the explanations for people: per sample the target and its
-// output, one row per feature (its label, value and attribution, with a
-// signed bar; the 64 largest |attribution| when there are more), the
-// group sums, the completeness check and the cost.
+// output, one row per feature (its label, value and attribution, with its
+// standard error when the method has one and a signed bar; the 64 largest
+// |attribution| when there are more), the groups, the completeness check,
+// the surrogate's fit and the cost.
 func Table(w io.Writer, rep *explain.Report) error {
 	labels := rep.Labels()
 	classes := rep.Model.Meta.Classes
@@ -94,7 +95,7 @@ func Table(w io.Writer, rep *explain.Report) error {
 			hidden = len(order) - maxTableFeatures
 			order = order[:maxTableFeatures]
 		}
-		rows := [][3]string{{"feature", "value", "attribution"}}
+		rows := [][4]string{{"feature", "value", "attribution", "± s.e."}}
 		for _, i := range order {
 			label := strconv.Itoa(i)
 			if i < len(labels) {
@@ -104,9 +105,13 @@ func Table(w io.Writer, rep *explain.Report) error {
 			if i < len(e.Values) {
 				value = Number(e.Values[i])
 			}
-			rows = append(rows, [3]string{label, value, signed(r.Attributions[i])})
+			se := ""
+			if r.StandardErrors != nil {
+				se = Number(r.StandardErrors[i])
+			}
+			rows = append(rows, [4]string{label, value, signed(r.Attributions[i]), se})
 		}
-		var width [3]int
+		var width [4]int
 		for _, row := range rows {
 			for k, cell := range row {
 				width[k] = max(width[k], utf8.RuneCountInString(cell))
@@ -117,6 +122,9 @@ func Table(w io.Writer, rep *explain.Report) error {
 			line := row[0] + strings.Repeat(" ", width[0]-utf8.RuneCountInString(row[0])) +
 				"  " + strings.Repeat(" ", width[1]-utf8.RuneCountInString(row[1])) + row[1] +
 				"  " + strings.Repeat(" ", width[2]-utf8.RuneCountInString(row[2])) + row[2]
+			if r.StandardErrors != nil {
+				line += "  " + strings.Repeat(" ", width[3]-utf8.RuneCountInString(row[3])) + row[3]
+			}
 			if n > 0 {
 				line += "  " + bar(r.Attributions[order[n-1]], scale)
 			}
@@ -142,6 +150,9 @@ func Table(w io.Writer, rep *explain.Report) error {
 			}
 			fmt.Fprintf(w, "completeness: sum %s  expected %s  gap %s  relative gap %s%s  %s\n",
 				Number(cp.Sum), Number(cp.Expected), signed(cp.Gap), Number(cp.RelativeGap), tol, verdict)
+		}
+		if fit := r.Surrogate; fit != nil {
+			fmt.Fprintf(w, "surrogate: intercept %s  fidelity (weighted R²) %s\n", Number(fit.Intercept), Number(fit.Fidelity))
 		}
 		fmt.Fprintf(w, "cost: %d gradient evaluations, %d forward passes, %s\n",
 			r.Cost.GradientEvals, r.Cost.ForwardPasses, r.Cost.Elapsed.Round(10_000))
@@ -252,6 +263,9 @@ func writeGroupTable(w io.Writer, g *gradattr.GroupedResult) {
 	vw := utf8.RuneCountInString("attribution")
 	for i, a := range g.Attributions {
 		vals[i] = signed(a)
+		if g.StandardErrors != nil {
+			vals[i] += " ± " + Number(g.StandardErrors[i])
+		}
 		vw = max(vw, utf8.RuneCountInString(vals[i]))
 	}
 	pad := func(s string, n int) string { return strings.Repeat(" ", n-utf8.RuneCountInString(s)) }
