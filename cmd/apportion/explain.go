@@ -39,7 +39,9 @@ func demoScenario(name string) (*demo.Scenario, error) {
 var methodFlagNames = []explain.Field{
 	explain.FieldMethod, explain.FieldTarget, explain.FieldOutput, explain.FieldLogits, explain.FieldBaseline,
 	explain.FieldReference, explain.FieldSteps, explain.FieldRule, explain.FieldTolerance, explain.FieldSamples,
-	explain.FieldNoise, explain.FieldSeed,
+	explain.FieldNoise, explain.FieldSeed, explain.FieldReferenceRows, explain.FieldEstimator, explain.FieldCoalitions,
+	explain.FieldKernelWidth, explain.FieldWindow, explain.FieldStride, explain.FieldSuperpixels, explain.FieldCompactness,
+	explain.FieldPatch,
 }
 
 // explainConfig holds explain's flags; settings are the method flags read
@@ -79,6 +81,16 @@ func registerMethodFlags(fs *flag.FlagSet, baselineHelp, referenceHelp string) {
 	fs.Float64("tolerance", ig.Tolerance, fmt.Sprintf("relative completeness gap `R` to meet; expected-grad, complete only in expectation, uses %v unless given", eg.Tolerance))
 	fs.Int("samples", sg.Samples, "noisy copies (smoothgrad) or baseline draws (expected-grad) `N`")
 	fs.Float64("noise", sg.Noise, "smoothgrad noise level `R`: σ / (max x − min x)")
+	sh, su, oc := gradattr.MethodShapley.Defaults(), gradattr.MethodSurrogate.Defaults(), gradattr.MethodOcclusion.Defaults()
+	fs.Int("reference-rows", sh.ReferenceRows, "shapley: reference rows `K` to average over (a seeded sample when -reference has more; all, in order, otherwise)")
+	fs.String("estimator", string(sh.Estimator), fmt.Sprintf("shapley `estimator`: auto (exact up to %d players, else regression), exact, regression or permutation", gradattr.AutoExactPlayers))
+	fs.Int("coalitions", sh.Coalitions, "coalition budget `N` of shapley's sampled estimators, and the surrogate's coalitions")
+	fs.Float64("kernel-width", su.KernelWidth, "surrogate: width `W` of the proximity kernel on the share of players switched off")
+	fs.String("window", fmt.Sprintf("%dx%d", oc.Window[0], oc.Window[1]), "occlusion window `HxW` in pixels, moved over images without groups")
+	fs.Int("stride", 0, "occlusion window step `S` in pixels (default half the window's shorter side)")
+	fs.Int("superpixels", 0, "make the feature groups about `N` SLIC superpixels of each image, for any method")
+	fs.Float64("compactness", gradattr.DefaultCompactness, "SLIC compactness `M` of -superpixels: higher, more regular segments")
+	fs.String("patch", "", "make the feature groups a grid of patches of `HxW` pixels, for any method")
 }
 
 // readSettings sets the library's settings from the method flags given
@@ -93,7 +105,7 @@ func (c *explainConfig) readSettings(fs *flag.FlagSet) error {
 			continue
 		}
 		v := fs.Lookup(string(f)).Value.String()
-		if f == explain.FieldRule && v == "" {
+		if (f == explain.FieldRule || f == explain.FieldPatch) && v == "" {
 			continue
 		}
 		if err := c.settings.Set(f, v); err != nil {
@@ -108,9 +120,12 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		"apportion explain -model model.onnx -input samples.csv -method ig -target top\n"+
 			"\tapportion explain -demo welds -format png -out welds.png",
 		"Attributes one output of the model, for each sample of -input, to the\n"+
-			"sample's features. Integrated gradients (ig) and expected gradients\n"+
-			"(expected-grad) report completeness: the attributions should sum to the\n"+
-			"output minus the output at the baseline, within -tolerance.\n\n"+
+			"sample's features. Integrated gradients (ig), expected gradients\n"+
+			"(expected-grad) and Shapley values (shapley) report completeness: the\n"+
+			"attributions should sum to the output minus the output at the baseline\n"+
+			"(for shapley, the mean output over the reference rows). Shapley values,\n"+
+			"the local surrogate and occlusion only run the model forward; with\n"+
+			"-groups, -patch or -superpixels they switch whole groups on and off.\n\n"+
 			"Without -model, explain runs an embedded, invented demo (-demo pumps or\n"+
 			"welds). -format png draws a heatmap for image-shaped samples ((H,W),\n"+
 			"(1,H,W), or (C,H,W) with C ≤ 3: attributions summed over channels) and a\n"+
@@ -121,8 +136,8 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded demo model chosen by -demo)")
 	fs.StringVar(&c.inputPath, "input", "", "samples to explain: a .csv, .json, .npy or .pb `file` (required with -model; default: the demo's own sample)")
 	registerMethodFlags(fs,
-		"baseline `kind` for ig: zero, mean (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), or the path of a file of baseline samples (results averaged over them)",
-		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
+		"baseline `kind` for ig, surrogate and occlusion: zero, mean (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), or the path of a file of baseline samples (results averaged over them)",
+		"reference samples `file` for expected-grad, shapley and -baseline mean (default without -model: the demo's reference set)")
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the random methods")
 	fs.StringVar(&c.groups, "groups", "", "JSON `file` naming groups of features to report together")
 	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv, npy or png (png needs -out)")
@@ -384,8 +399,8 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 	if err := l.readDatasets(&c.settings); err != nil {
 		return nil, nil, err
 	}
-	if c.settings.Method == gradattr.MethodExpectedGradients && c.settings.Reference == nil {
-		return nil, nil, &usageErr{fmt.Sprintf("-method %s needs -reference, a file of reference samples", c.settings.Method)}
+	if s := &c.settings; s.NeedsReference() && !s.Method.Reads(gradattr.ParamBaseline) && s.Reference == nil {
+		return nil, nil, &usageErr{fmt.Sprintf("-method %s needs -reference, a file of reference samples", s.Method)}
 	}
 	if c.groups != "" {
 		f, err := os.Open(c.groups)
