@@ -47,7 +47,8 @@ func (n Numbers) MarshalJSON() ([]byte, error) {
 //	 "explanations": [{"index", "target", "outputs", "attributions",
 //	                   "shape", "baseline_outputs", "completeness",
 //	                   "points", "error", "groups", "standard_errors",
-//	                   "estimator", "fidelity", "intercept"}]}
+//	                   "estimator", "fidelity", "intercept",
+//	                   "warnings": [{"code", "message", "suggest"}]}]}
 //
 // A failed sample has "error" and null results.
 type Document struct {
@@ -88,6 +89,8 @@ type ExplanationDocument struct {
 	// Fidelity and Intercept describe the local surrogate's fit.
 	Fidelity  *float64 `json:"fidelity,omitempty"`
 	Intercept *float64 `json:"intercept,omitempty"`
+	// Warnings are the result's warnings, [] for none.
+	Warnings []Warning `json:"warnings"`
 }
 
 // Document returns the report's document.
@@ -103,7 +106,7 @@ func (r *Report) Document() *Document {
 		shape = []int{}
 	}
 	for _, e := range r.Explanations {
-		j := ExplanationDocument{Index: e.Index, Shape: shape}
+		j := ExplanationDocument{Index: e.Index, Shape: shape, Warnings: []Warning{}}
 		if e.Err != nil {
 			msg := e.Err.Error()
 			j.Error = &msg
@@ -130,6 +133,9 @@ func (r *Report) Document() *Document {
 			}
 			if fit := res.Surrogate; fit != nil {
 				j.Fidelity, j.Intercept = &fit.Fidelity, &fit.Intercept
+			}
+			if e.Warnings != nil {
+				j.Warnings = e.Warnings
 			}
 		}
 		doc.Explanations = append(doc.Explanations, j)

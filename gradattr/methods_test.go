@@ -91,7 +91,7 @@ func TestOptionsSettingsMatchResults(t *testing.T) {
 		assert.LessOrEqual(t, r.Cost.ForwardPasses, est.ForwardPasses, m)
 		assert.LessOrEqual(t, r.Cost.GradientEvals, est.GradientEvals, m)
 		got := r.Settings
-		got.BatchSize, got.Variant = 0, ""
+		got.BatchSize = 0
 		if o.Estimator == EstimatorAuto {
 			got.Estimator = string(EstimatorAuto) // which one auto picks is the call's to know
 		}

@@ -22,7 +22,7 @@ func TestTableStandardErrorsAndFit(t *testing.T) {
 	res := rep.Explanations[0].Result
 	require.NotNil(t, res.Surrogate)
 	var buf bytes.Buffer
-	require.NoError(t, Table(&buf, rep))
+	require.NoError(t, Table(&buf, rep, Options{}))
 	out := buf.String()
 	assert.Contains(t, out, "surrogate: intercept "+Number(res.Surrogate.Intercept)+"  fidelity (weighted R²) "+Number(res.Surrogate.Fidelity)+"\n")
 	assert.NotContains(t, out, "± s.e.", "no standard errors, no column")
@@ -30,7 +30,7 @@ func TestTableStandardErrorsAndFit(t *testing.T) {
 	res.StandardErrors = []float64{0.125, 0.25, 0.5}
 	rep.Explanations[0].Grouped.StandardErrors = []float64{0.0625, 0.03125}
 	buf.Reset()
-	require.NoError(t, Table(&buf, rep))
+	require.NoError(t, Table(&buf, rep, Options{}))
 	assert.Regexp(t, `(?m)^  feature\s+value\s+attribution\s+± s\.e\.$`, buf.String())
 	for i, se := range []string{"0.125", "0.25", "0.5"} {
 		// The features are named by index: the model has no names.

@@ -156,7 +156,7 @@ func TestExplainGroupsFromImages(t *testing.T) {
 	// pixel sum (additivity of the sum, common practice); Shapley values
 	// play the patches as players, and are efficient over them (Shapley
 	// 1953).
-	doc := perturbRun(t, "-demo", "welds", "-superpixels", "64", "-steps", "16")
+	doc := perturbRun(t, "-demo", "welds", "-superpixels", "64", "-steps", "16", "-allow-incomplete")
 	e := doc.Explanations[0]
 	require.NotNil(t, e.Groups)
 	assert.InDelta(t, 64, len(e.Groups.Names), 0.2*64)
@@ -200,7 +200,7 @@ func TestExplainPerturbationUsageErrors(t *testing.T) {
 		{[]string{"-method", "occlusion", "-window", "4"}, "-window: expected a size HxW in pixels"},
 		{[]string{"-compactness", "5"}, "-compactness applies to -superpixels only"},
 		{[]string{"-superpixels", "4"}, "-superpixels needs samples with at least two axes (height, width), got shape [3]"},
-		{[]string{"-patch", "2x2"}, "-patch needs samples with at least two axes"},
+		{[]string{"-patch", "2x2"}, "-patch 2x2 needs samples with at least two axes"},
 		{[]string{"-method", "shapley"}, "-method shapley needs -reference"},
 		{[]string{"-method", "occlusion", "-groups", g}, "each feature must be in exactly one group"},
 	} {
