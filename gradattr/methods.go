@@ -223,20 +223,23 @@ var methodSpecs = []methodSpec{
 			if len(o.Reference) > 0 {
 				k = min(k, len(o.Reference))
 			}
-			coalitions := o.Coalitions // the sampled estimators spend at most the budget
-			exact := func(d int) int { return 1<<d - 2 }
-			d := size
-			switch {
-			case o.Groups != nil:
-				d = len(o.Groups)
-			case o.Superpixels > 0:
-				d = MaxExactPlayers // SLIC's count is known only from the image
-			}
-			switch o.Estimator {
-			case EstimatorExact:
-				coalitions = exact(min(d, MaxExactPlayers))
-			case EstimatorAuto:
-				coalitions = max(coalitions, exact(min(d, AutoExactPlayers)))
+			var coalitions int
+			if o.Superpixels > 0 && o.Groups == nil {
+				// SLIC's count is known only from the image: the most any
+				// count can take.
+				coalitions = o.Coalitions
+				switch o.Estimator {
+				case EstimatorExact:
+					coalitions = 1<<MaxExactPlayers - 2
+				case EstimatorAuto:
+					coalitions = max(coalitions, 1<<AutoExactPlayers-2)
+				}
+			} else {
+				d := size
+				if o.Groups != nil {
+					d = len(o.Groups)
+				}
+				coalitions, _ = shapleyCoalitions(o.Estimator.choose(d), d, o.Coalitions) // an error spends none
 			}
 			return Cost{ForwardPasses: 1 + k + coalitions*k}
 		},

@@ -152,12 +152,7 @@ func Shapley(ctx context.Context, m Model, x []float64, target int, opt ShapleyO
 		return nil, err
 	}
 	d := p.n()
-	if est == EstimatorAuto {
-		est = EstimatorRegression
-		if d <= AutoExactPlayers {
-			est = EstimatorExact
-		}
-	}
+	est = est.choose(d)
 	bg := sampleRows(opt.Reference, k, opt.Seed)
 	s := Settings{Method: MethodShapley, Estimator: string(est), ReferenceRows: k, Coalitions: n,
 		References: len(opt.Reference), Seed: opt.Seed, BatchSize: e.batch}
@@ -200,6 +195,19 @@ func Shapley(ctx context.Context, m Model, x []float64, target int, opt ShapleyO
 	r.Completeness = completeness(attr, g.full, g.empty, EfficiencyTolerance, true)
 	r.Groups = p.grouped(phi, se, r.Completeness)
 	return r, nil
+}
+
+// choose returns the estimator that runs for d players: the one asked
+// for, or for EstimatorAuto, exact enumeration up to AutoExactPlayers and
+// the regression above.
+func (est Estimator) choose(d int) Estimator {
+	switch {
+	case est != EstimatorAuto:
+		return est
+	case d <= AutoExactPlayers:
+		return EstimatorExact
+	}
+	return EstimatorRegression
 }
 
 // shapleyCoalitions returns the number of coalitions est evaluates for d

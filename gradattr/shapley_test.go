@@ -341,20 +341,27 @@ func TestShapleyCost(t *testing.T) {
 	assert.Equal(t, 30*3+3+1, r.Cost.ForwardPasses)
 	est, err := o.Estimate([]int{5})
 	require.NoError(t, err)
-	assert.Equal(t, Cost{ForwardPasses: 1 + 3 + 3*DefaultCoalitions}, est, "auto bounds by the larger of its two estimators")
+	assert.Equal(t, Cost{ForwardPasses: r.Cost.ForwardPasses}, est, "auto picks exact enumeration for 5 players")
 	o.Estimator = EstimatorExact
 	est, err = o.Estimate([]int{5})
 	require.NoError(t, err)
 	assert.Equal(t, r.Cost.ForwardPasses, est.ForwardPasses)
 	for _, e := range sampled {
 		o.Estimator = e
+		o.Coalitions = 203 // the permutation estimator spends whole antithetic pairs of 4 coalitions each
 		r, err := Attribute(context.Background(), f, []float64{1, 1, 1, 1, 1}, 0, o)
 		require.NoError(t, err)
 		est, err := o.Estimate([]int{5})
 		require.NoError(t, err)
-		assert.LessOrEqual(t, r.Cost.ForwardPasses, est.ForwardPasses, e)
-		assert.Greater(t, r.Cost.ForwardPasses, est.ForwardPasses*9/10, e)
+		assert.Equal(t, r.Cost.ForwardPasses, est.ForwardPasses, e)
+		assert.LessOrEqual(t, r.Cost.ForwardPasses, 1+3+3*203, e)
 	}
+	// With superpixels the number of players is the image's to decide;
+	// auto is bounded by the larger of its two estimators.
+	o = Options{Method: MethodShapley, Reference: ref, Superpixels: 8}
+	est, err = o.Estimate([]int{1, 8, 8})
+	require.NoError(t, err)
+	assert.Equal(t, Cost{ForwardPasses: 1 + 3 + 3*(1<<AutoExactPlayers-2)}, est)
 }
 
 func TestShapleyErrors(t *testing.T) {
