@@ -63,3 +63,73 @@ func TestServeShapleyAndOcclusion(t *testing.T) {
 		assert.Contains(t, errorOf(t, body), c.says, c.body)
 	}
 }
+
+func TestServeOcclusionAndSurrogateAgainstPredict(t *testing.T) {
+	// Occlusion of tabular features, one at a time, is by definition
+	// f(x) − f(x with feature i at the baseline) (Zeiler & Fergus 2014):
+	// checked against the server's own predictions of the occluded rows.
+	// The surrogate's document carries its fit (Ribeiro et al. 2016: the
+	// weighted R² lies in [0, 1]) and answers the same bits for the same
+	// seed.
+	_, ts, _ := testServer(t, nil)
+	var x []float64
+	require.NoError(t, json.Unmarshal([]byte(demoSampleJSON(t)), &x))
+	code, _, body := post(t, ts.URL+"/v1/explain", `{"inputs":[`+floatsJSON(x)+`],"method":"occlusion","baseline":"zero"}`)
+	require.Equal(t, http.StatusOK, code, body)
+	var doc explainDoc
+	require.NoError(t, json.Unmarshal([]byte(body), &doc))
+	e := doc.Explanations[0]
+	require.NotNil(t, e.Target)
+
+	rows := [][]float64{x}
+	for i := range x {
+		r := append([]float64(nil), x...)
+		r[i] = 0
+		rows = append(rows, r)
+	}
+	in, err := json.Marshal(map[string]any{"inputs": rows})
+	require.NoError(t, err)
+	code, _, body = post(t, ts.URL+"/v1/predict", string(in))
+	require.Equal(t, http.StatusOK, code, body)
+	var pred struct {
+		Outputs []struct {
+			Name  string    `json:"name"`
+			Shape []int     `json:"shape"`
+			Data  []float64 `json:"data"`
+		} `json:"outputs"`
+	}
+	require.NoError(t, json.Unmarshal([]byte(body), &pred))
+	var f func(row int) float64
+	for _, o := range pred.Outputs {
+		if len(o.Shape) == 2 && o.Shape[1] == len(e.Outputs) && float32(o.Data[*e.Target]) == float32(e.Outputs[*e.Target]) {
+			f = func(row int) float64 { return o.Data[row*o.Shape[1]+*e.Target] }
+		}
+	}
+	require.NotNil(t, f, "the explained output among the predictions")
+	require.Len(t, e.Attributions, len(x))
+	for i := range x {
+		// The predictions are float32 (the model's precision), written
+		// to the shortest decimal that reads back the same.
+		assert.InDelta(t, f(0)-f(i+1), e.Attributions[i], 1e-6, "feature %d", i)
+	}
+
+	req := `{"inputs":[` + floatsJSON(x) + `],"method":"surrogate","coalitions":300,"seed":5}`
+	code, _, first := post(t, ts.URL+"/v1/explain", req)
+	require.Equal(t, http.StatusOK, code, first)
+	var fit struct {
+		Explanations []struct {
+			Attributions []float64 `json:"attributions"`
+			Fidelity     *float64  `json:"fidelity"`
+			Intercept    *float64  `json:"intercept"`
+		} `json:"explanations"`
+	}
+	require.NoError(t, json.Unmarshal([]byte(first), &fit))
+	s := fit.Explanations[0]
+	require.NotNil(t, s.Fidelity)
+	require.NotNil(t, s.Intercept)
+	assert.GreaterOrEqual(t, *s.Fidelity, 0.0)
+	assert.LessOrEqual(t, *s.Fidelity, 1.0)
+	assert.Len(t, s.Attributions, len(x))
+	_, _, again := post(t, ts.URL+"/v1/explain", req)
+	assert.JSONEq(t, first, again)
+}
