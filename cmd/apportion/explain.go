@@ -11,7 +11,6 @@ import (
 	"os"
 	"path/filepath"
 	"runtime"
-	"strconv"
 	"strings"
 
 	"golang.org/x/term"
@@ -344,7 +343,7 @@ func (c *explainConfig) validate() string {
 		if c.groups != "" {
 			return "-patch and -groups both group the features; give one"
 		}
-		if _, _, ok := parsePatch(c.patch); !ok || c.settings.Set(explain.FieldPatch, c.patch) != nil {
+		if c.settings.Set(explain.FieldPatch, c.patch) != nil {
 			return fmt.Sprintf("-patch must be HxW, two whole numbers of pixels such as 4x4, got %q", c.patch)
 		}
 	}
@@ -541,14 +540,6 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 	ex, err := explain.New(m, head, c.settings)
 	c.ignored = l.ignored
 	return ex, batch, err
-}
-
-// parsePatch reads -patch HxW.
-func parsePatch(s string) (h, w int, ok bool) {
-	hs, ws, found := strings.Cut(strings.ToLower(s), "x")
-	h, errH := strconv.Atoi(hs)
-	w, errW := strconv.Atoi(ws)
-	return h, w, found && errH == nil && errW == nil && h >= 1 && w >= 1
 }
 
 // colorTerminal reports whether w is a terminal that shows colour: a
