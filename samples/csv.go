@@ -2,6 +2,7 @@ package samples
 
 import (
 	"encoding/csv"
+	"errors"
 	"fmt"
 	"io"
 	"math"
@@ -281,10 +282,12 @@ func parseFields(rec []string, cols []int, finite bool, name func(j int) string)
 	x := make([]float64, len(cols))
 	for n, j := range cols {
 		f := strings.TrimSpace(rec[j])
-		v, err := strconv.ParseFloat(f, 64)
+		v, err := parseDecimal(f, false)
 		switch {
-		case err != nil:
+		case errors.Is(err, errNotNumber):
 			return nil, fmt.Errorf("%s: %q is not a number", name(j), f)
+		case err != nil:
+			return nil, fmt.Errorf("%s: %w", name(j), err)
 		case finite && (math.IsNaN(v) || math.IsInf(v, 0)):
 			return nil, fmt.Errorf("%s: %s %w", name(j), f, ErrNonFinite)
 		}
@@ -321,7 +324,7 @@ func columnIndex(header []string) map[string]int {
 // numericRow reports whether every field of rec is a number.
 func numericRow(rec []string) bool {
 	for _, f := range rec {
-		if _, err := strconv.ParseFloat(strings.TrimSpace(f), 64); err != nil {
+		if !isNumber(strings.TrimSpace(f)) {
 			return false
 		}
 	}
@@ -337,7 +340,7 @@ func numericColumn(records [][]string, j int) bool {
 			continue
 		}
 		n++
-		if _, err := strconv.ParseFloat(strings.TrimSpace(rec[j]), 64); err == nil {
+		if isNumber(strings.TrimSpace(rec[j])) {
 			yes++
 		}
 	}

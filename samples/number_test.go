@@ -1,0 +1,67 @@
+package samples_test
+
+import (
+	"math"
+	"strings"
+	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
+	"github.com/apportion/apportion/samples"
+)
+
+func TestCSVNumbers(t *testing.T) {
+	// Numbers in decimal notation are read; the other spellings
+	// strconv.ParseFloat accepts (digit separators, hexadecimal floats,
+	// Go 1.13) are not numbers in a data file (common practice: NumPy's
+	// loadtxt and spreadsheets read neither), and values out of the
+	// binary64 range (IEEE 754: largest finite 1.797…e308, smallest
+	// subnormal 4.94…e-324) are reported as such, not read as ±Inf or 0.
+	spec := samples.Spec{Name: "x", Shape: []int{-1, 2}, HasShape: true}
+	file := "a,b\n" +
+		"12,-0.5\n" + // 2
+		".5,3.\n" + // 3
+		"+1e3,1E-3\n" + // 4
+		"1e-320,0e-999\n" + // 5: a subnormal, and zero written with a large exponent
+		"1_000,1\n" + // 6
+		"0x1p-2,1\n" + // 7
+		"1e400,1\n" + // 8
+		"1e-400,1\n" + // 9
+		"-2e-400,1\n" + // 10
+		"NaN,inf\n" // 11
+	b, err := samples.Read(strings.NewReader(file), "n.csv", spec, samples.Options{KeepBad: true})
+	require.NoError(t, err)
+	require.Equal(t, 10, b.Samples)
+	assert.Equal(t, []float64{12, -0.5}, b.Sample(0))
+	assert.Equal(t, []float64{0.5, 3}, b.Sample(1))
+	assert.Equal(t, []float64{1000, 0.001}, b.Sample(2))
+	assert.Equal(t, []float64{1e-320, 0}, b.Sample(3))
+	assert.EqualError(t, b.Bad[4], `line 6 (sample 4), field 0: "1_000" is not a number`)
+	assert.EqualError(t, b.Bad[5], `line 7 (sample 5), field 0: "0x1p-2" is not a number`)
+	assert.EqualError(t, b.Bad[6], "line 8 (sample 6), field 0: 1e400 is out of the float64 range (larger than 1.8e308 in magnitude)")
+	assert.EqualError(t, b.Bad[7], "line 9 (sample 7), field 0: 1e-400 is out of the float64 range (smaller than 4.9e-324 in magnitude, it would read as 0)")
+	assert.Contains(t, b.Bad[8].Error(), "-2e-400 is out of the float64 range")
+	var re *samples.RangeError
+	assert.ErrorAs(t, b.Bad[6], &re)
+	// NaN and infinities are words the reader knows, refused later as not
+	// finite.
+	assert.NotContains(t, b.Bad, 9)
+	assert.True(t, math.IsNaN(b.Sample(9)[0]))
+	assert.True(t, math.IsInf(b.Sample(9)[1], 1))
+	assert.ErrorIs(t, b.CheckFinite(), samples.ErrNonFinite)
+
+	// A first row of numbers out of range is data, not a header.
+	b, err = samples.Read(strings.NewReader("1e400,1\n2,3\n"), "n.csv", spec, samples.Options{KeepBad: true})
+	require.NoError(t, err)
+	assert.Equal(t, 2, b.Samples)
+	assert.Nil(t, b.Features)
+
+	// The table reader of summaries reads numbers the same way.
+	tbl, err := samples.ReadTable(strings.NewReader("g,a,b\nx,1_000,2\ny,1e-400,2\nz,4,5\n"), "t.csv", samples.Spec{},
+		samples.TableOptions{Size: 2, Features: []string{"a", "b"}, Group: "g"})
+	require.NoError(t, err)
+	assert.EqualError(t, tbl.Rows[0].Err, `column a: "1_000" is not a number`)
+	assert.Contains(t, tbl.Rows[1].Err.Error(), "1e-400 is out of the float64 range")
+	assert.Equal(t, []float64{4, 5}, tbl.Rows[2].Values)
+}
