@@ -14,7 +14,18 @@ import (
 // to it, or flat). When the per-sample shape is fully declared, a top-level
 // array is read element by element, so that one malformed sample is marked
 // bad in the batch and the others are kept.
-func ReadJSON(r io.Reader, spec Spec) (*Batch, error) {
+func ReadJSON(r io.Reader, spec Spec) (*Batch, error) { return readAll(newJSONSource(r, spec)) }
+
+// newJSONSource reads the document whole and hands out its samples.
+func newJSONSource(r io.Reader, spec Spec) (*pbSource, error) {
+	b, err := readJSONWhole(r, spec)
+	if err != nil {
+		return nil, err
+	}
+	return &pbSource{b: b}, nil
+}
+
+func readJSONWhole(r io.Reader, spec Spec) (*Batch, error) {
 	dec := json.NewDecoder(r)
 	dec.UseNumber()
 	var v any
@@ -111,4 +122,12 @@ func flattenJSON(v any, path string, depth int, shape *[]int, data *[]float64) e
 	default:
 		return fmt.Errorf("at %s: expected a number or an array, got %T %v", at, v, v)
 	}
+}
+
+// appendNaN appends n NaNs, the values of a sample that cannot be read.
+func appendNaN(dst []float64, n int) []float64 {
+	for range n {
+		dst = append(dst, math.NaN())
+	}
+	return dst
 }

@@ -6,7 +6,6 @@
 package samples
 
 import (
-	"bytes"
 	"errors"
 	"fmt"
 	"io"
@@ -84,6 +83,9 @@ type Batch struct {
 	Data []float64
 	// Samples is the number of samples, Shape[0] (1 for a rank-0 tensor).
 	Samples int
+	// First is the index in the file of the batch's first sample: 0, or
+	// where a batch of a Stream starts.
+	First int
 	// Features holds the CSV header's names of the columns read, when the
 	// file has a header.
 	Features []string
@@ -171,9 +173,9 @@ func (b *Batch) CheckFinite() error {
 	for i, v := range b.Data {
 		if math.IsNaN(v) || math.IsInf(v, 0) {
 			if per == 0 {
-				return &NonFiniteError{Index: i, Value: v}
+				return &NonFiniteError{Sample: b.First, Index: i, Value: v}
 			}
-			return &NonFiniteError{Sample: i / per, Index: i % per, Value: v}
+			return &NonFiniteError{Sample: b.First + i/per, Index: i % per, Value: v}
 		}
 	}
 	return nil
@@ -222,52 +224,34 @@ type Options struct {
 	// Features are the model's feature names: a CSV file whose header
 	// names them is read by name (see ReadCSV).
 	Features []string
+	// MaxSamples, when positive, is the most samples a file may hold; a
+	// reader stops at the sample past it with an error wrapping
+	// ErrTooMany.
+	MaxSamples int
 }
 
 // Read reads samples of spec from r, a file called name whose extension
 // selects the format. Errors name the file and the input.
 func Read(r io.Reader, name string, spec Spec, opt Options) (*Batch, error) {
-	b, err := read(r, name, spec, opt)
-	if err == nil && !opt.KeepBad {
-		if err = b.FirstBad(); err == nil {
-			err = b.CheckFinite()
-		}
-	}
-	if err != nil {
-		return nil, fmt.Errorf("input %s (for %q): %w", name, spec.Name, err)
-	}
-	b.Name = name
-	return b, nil
-}
-
-func read(r io.Reader, name string, spec Spec, opt Options) (*Batch, error) {
-	f, err := FormatOf(name)
+	s, err := NewStream(r, name, spec, opt)
 	if err != nil {
 		return nil, err
 	}
-	switch f {
-	case PB:
-		return ReadPB(r, spec)
-	case NPY:
-		return ReadNPY(r, spec)
-	case JSON:
-		return ReadJSON(r, spec)
-	default:
-		return ReadCSV(r, spec, opt.Features)
-	}
+	return s.All()
 }
 
 // ReadFile reads the file at path (see Read), refusing a file of more than
-// MaxBytes.
+// MaxBytes; OpenStream reads a file of any size a batch at a time.
 func ReadFile(path string, spec Spec, opt Options) (*Batch, error) {
-	if _, err := FormatOf(path); err != nil {
-		return nil, fmt.Errorf("input %s (for %q): %w", path, spec.Name, err)
+	if st, err := os.Stat(path); err == nil && st.Size() > MaxBytes {
+		return nil, fmt.Errorf("input %s (for %q): file is %d bytes, more than the %d bytes an input may have", path, spec.Name, st.Size(), MaxBytes)
 	}
-	raw, err := ReadLimited(path)
+	s, f, err := OpenStream(path, spec, opt)
 	if err != nil {
-		return nil, fmt.Errorf("input %s (for %q): %w", path, spec.Name, err)
+		return nil, err
 	}
-	return Read(bytes.NewReader(raw), path, spec, opt)
+	defer f.Close()
+	return s.All()
 }
 
 // ReadLimited reads the file at path, refusing one of more than MaxBytes.

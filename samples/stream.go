@@ -1,0 +1,226 @@
+package samples
+
+import (
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"os"
+)
+
+// ErrTooMany is wrapped when a file holds more samples than
+// Options.MaxSamples allows.
+var ErrTooMany = errors.New("too many samples")
+
+// source reads the samples of one format, a batch at a time.
+type source interface {
+	// next reads up to n samples (n ≥ 1), the first of which has index
+	// first in the file, into a batch whose Bad keys count from its first
+	// sample. After the last sample it returns io.EOF.
+	next(n, first int) (*Batch, error)
+}
+
+// Stream reads the samples of one file a batch at a time, so that a file
+// of any length is read, and its samples explained, in constant memory.
+// Each Batch records in First where its samples start in the file, and
+// its errors name samples by their index in the file. Read, ReadFile and
+// the format readers read a whole file through a Stream.
+type Stream struct {
+	name string
+	spec Spec
+	opt  Options
+	src  source
+	// done counts the samples returned so far.
+	done int
+	err  error // sticky: the first error, or io.EOF
+	// bare leaves errors unwrapped, for the format readers, whose
+	// callers name the file.
+	bare bool
+	// features are the CSV header's names of the columns read.
+	features []string
+}
+
+// NewStream starts reading r, a file called name whose extension selects
+// the format, as samples of spec. It reads what the format puts first (a
+// CSV header, a .npy header, a JSON document's first sample; a .pb tensor
+// whole) and reports it when malformed. Errors name the file and the
+// input.
+func NewStream(r io.Reader, name string, spec Spec, opt Options) (*Stream, error) {
+	s := &Stream{name: name, spec: spec, opt: opt}
+	f, err := FormatOf(name)
+	if err == nil {
+		s.src, err = newSource(f, r, spec, opt)
+	}
+	if err != nil {
+		return nil, s.wrap(err)
+	}
+	if c, ok := s.src.(*csvSource); ok {
+		s.features = c.features()
+	}
+	return s, nil
+}
+
+func newSource(f Format, r io.Reader, spec Spec, opt Options) (source, error) {
+	switch f {
+	case PB:
+		return newPBSource(r, spec)
+	case NPY:
+		return newNPYSource(r, spec)
+	case JSON:
+		return newJSONSource(r, spec)
+	default:
+		return newCSVSource(r, spec, opt.Features)
+	}
+}
+
+// OpenStream opens the file at path and starts reading it (see
+// NewStream); Close closes the file.
+func OpenStream(path string, spec Spec, opt Options) (*Stream, io.Closer, error) {
+	if _, err := FormatOf(path); err != nil {
+		return nil, nil, fmt.Errorf("input %s (for %q): %w", path, spec.Name, err)
+	}
+	f, err := openRegular(path)
+	if err != nil {
+		return nil, nil, fmt.Errorf("input %s (for %q): %w", path, spec.Name, err)
+	}
+	s, err := NewStream(f, path, spec, opt)
+	if err != nil {
+		f.Close()
+		return nil, nil, err
+	}
+	return s, f, nil
+}
+
+// openRegular opens the file at path for reading, refusing anything but a
+// regular file (a FIFO would block, a directory has no samples).
+func openRegular(path string) (*os.File, error) {
+	st, err := os.Stat(path)
+	if err != nil {
+		return nil, err
+	}
+	if !st.Mode().IsRegular() {
+		return nil, fmt.Errorf("%s is not a regular file", path)
+	}
+	return os.Open(path)
+}
+
+func (s *Stream) wrap(err error) error {
+	if s.bare {
+		return err
+	}
+	return fmt.Errorf("input %s (for %q): %w", s.name, s.spec.Name, err)
+}
+
+// Features are the CSV header's names of the columns read, when the file
+// has a header.
+func (s *Stream) Features() []string { return s.features }
+
+// Next returns the next batch of at most n samples (n < 1 means 1), or
+// io.EOF after the last. Without Options.KeepBad a sample that cannot be
+// read, or holds a NaN or an infinity, is the error; with it, the sample
+// is marked in Batch.Bad. A file with more than Options.MaxSamples samples
+// is an error wrapping ErrTooMany once the sample past the limit is
+// reached, before it is read whole. After an error Next returns it again.
+func (s *Stream) Next(n int) (*Batch, error) {
+	if s.err != nil {
+		return nil, s.err
+	}
+	n = max(n, 1)
+	if max := s.opt.MaxSamples; max > 0 {
+		n = min(n, max+1-s.done)
+	}
+	b, err := s.src.next(n, s.done)
+	switch {
+	case err == io.EOF && s.done == 0:
+		err = s.wrap(errors.New("expected at least one sample, got none"))
+	case err == io.EOF:
+	case err != nil:
+		err = s.wrap(err)
+	case s.opt.MaxSamples > 0 && s.done+b.Samples > s.opt.MaxSamples:
+		err = s.wrap(fmt.Errorf("%w: more than the %d samples allowed", ErrTooMany, s.opt.MaxSamples))
+	}
+	if err != nil {
+		s.err = err
+		return nil, err
+	}
+	b.Name, b.First = s.name, s.done
+	if b.Features == nil {
+		b.Features = s.features
+	}
+	s.done += b.Samples
+	if !s.opt.KeepBad {
+		if err = b.FirstBad(); err == nil {
+			err = b.CheckFinite()
+		}
+		if err != nil {
+			s.err = s.wrap(err)
+			return nil, s.err
+		}
+	}
+	return b, nil
+}
+
+// readChunk is the number of samples Read takes from a stream at a time.
+const readChunk = 4096
+
+// All reads the rest of the stream as one batch. With Options.KeepBad, a
+// file none of whose samples can be read is the error of its first.
+func (s *Stream) All() (*Batch, error) {
+	chunk := readChunk
+	if _, whole := s.src.(*pbSource); whole {
+		chunk = math.MaxInt // keeps Batch.Tensor
+	}
+	var parts []*Batch
+	for {
+		b, err := s.Next(chunk)
+		if err == io.EOF {
+			break
+		}
+		if err != nil {
+			return nil, err
+		}
+		parts = append(parts, b)
+	}
+	if len(parts) == 0 {
+		return nil, s.err
+	}
+	all := parts[0]
+	if len(parts) > 1 {
+		all = concat(parts)
+	}
+	if len(all.Bad) == all.Samples {
+		return nil, s.wrap(all.FirstBad())
+	}
+	return all, nil
+}
+
+// concat joins batches of one sample shape, in order, into one.
+func concat(parts []*Batch) *Batch {
+	n, size := 0, 0
+	for _, p := range parts {
+		n += p.Samples
+		size += len(p.Data)
+	}
+	first := parts[0]
+	all := &Batch{Name: first.Name, First: first.First, Samples: n, Features: first.Features,
+		Shape: append([]int{n}, first.SampleShape()...), Data: make([]float64, 0, size)}
+	for _, p := range parts {
+		for i, err := range p.Bad {
+			all.markBad(p.First-first.First+i, err)
+		}
+		all.Data = append(all.Data, p.Data...)
+	}
+	return all
+}
+
+// readAll reads the whole of src as one batch, for the format readers.
+func readAll(src source, err error) (*Batch, error) {
+	if err != nil {
+		return nil, err
+	}
+	s := &Stream{src: src, opt: Options{KeepBad: true}, bare: true}
+	if c, ok := src.(*csvSource); ok {
+		s.features = c.features()
+	}
+	return s.All()
+}
