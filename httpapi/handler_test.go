@@ -156,9 +156,9 @@ func TestServeStatuses(t *testing.T) {
 		{"not an object", "/v1/predict", `[1, 2]`, http.StatusBadRequest, []string{"malformed JSON"}},
 		{"unknown field", "/v1/explain", `{"inputs": [` + sample + `], "step": 4}`, http.StatusBadRequest, []string{`unknown field "step"`}},
 		{"wrong length", "/v1/explain", `{"inputs": [[1, 2, 3]]}`, http.StatusBadRequest,
-			[]string{"expected samples of shape [8] (8 values each)", "got an array of shape [1 3] (3 values per row)"}},
+			[]string{"at [0]: expected 8 values (shape [8]), got 3 (shape [3])"}},
 		{"wrong length predict", "/v1/predict", `{"inputs": [[1, 2, 3, 4, 5, 6, 7, 8, 9]]}`, http.StatusBadRequest,
-			[]string{"expected samples of shape [8]", "9 values per row"}},
+			[]string{"at [0]: expected 8 values (shape [8]), got 9"}},
 		{"NaN token", "/v1/explain", `{"inputs": [[1, 2, 3, NaN, 5, 6, 7, 8]]}`, http.StatusBadRequest, []string{"NaN", "expected finite numbers"}},
 		{"Infinity token", "/v1/predict", `{"inputs": [[1, 2, 3, -Infinity, 5, 6, 7, 8]]}`, http.StatusBadRequest, []string{"Infinity", "expected finite numbers"}},
 		// 1e999 overflows float64 (IEEE 754 binary64: largest finite ≈ 1.8e308).
