@@ -3,7 +3,6 @@ package samples_test
 import (
 	"bytes"
 	"encoding/json"
-	"io"
 	"math/rand/v2"
 	"strconv"
 	"strings"
@@ -157,19 +156,8 @@ func TestStreamJSON(t *testing.T) {
 	raw = append(append([]byte("["), bytes.Join(rows, []byte(",\n"))...), ']')
 	s, err := samples.NewStream(bytes.NewReader(raw), "s.json", pumpsSpec, samples.Options{KeepBad: true})
 	require.NoError(t, err)
-	var got []float64
-	bad := map[int]string{}
-	for {
-		b, err := s.Next(3)
-		if err == io.EOF {
-			break
-		}
-		require.NoError(t, err)
-		for i, e := range b.Bad {
-			bad[b.First+i] = e.Error()
-		}
-		got = append(got, b.Data...)
-	}
+	got, bad, err := drain(t, s, 3)
+	require.NoError(t, err)
 	require.Len(t, got, len(want))
 	assert.Equal(t, map[int]string{4: "at [4][2]: expected a number, got null"}, bad)
 	assert.Equal(t, want[:32], got[:32])
