@@ -7,6 +7,7 @@ import (
 	"os"
 	"path/filepath"
 	"strconv"
+	"strings"
 	"testing"
 
 	"github.com/stretchr/testify/assert"
@@ -153,4 +154,23 @@ func TestPredictBackendRelu(t *testing.T) {
 	require.NoError(t, err)
 	assert.Len(t, m.SHA256, 64)
 	assert.NotContains(t, string(raw), m.SHA256)
+}
+
+func TestGroupsFileRepeatedIndex(t *testing.T) {
+	// A groups file that lists an index twice in one group would count
+	// that feature twice in the group's sum; explain refuses it, naming
+	// the groups, before explaining anything (node/test_softmax_example:
+	// three features).
+	m, _, _ := softmax(t)
+	head, err := m.Head("", false)
+	require.NoError(t, err)
+	groups, err := explain.ReadGroups(strings.NewReader(`{"a": [0, 0, 1], "b": [2]}`))
+	require.NoError(t, err)
+	s := explain.Defaults()
+	s.Groups = groups
+	_, err = explain.New(m, head, s)
+	var fe *explain.FieldError
+	require.ErrorAs(t, err, &fe)
+	assert.Equal(t, explain.FieldGroups, fe.Field)
+	assert.Equal(t, `groups: gradattr: invalid input: group 0 ("a") lists index 0 twice`, err.Error())
 }
