@@ -2,6 +2,7 @@ package onnxlite
 
 import (
 	"fmt"
+	"math"
 	"slices"
 	"strings"
 )
@@ -52,6 +53,21 @@ func (v ValueShape) NumElements() int64 { return prodInt64(v.Shape) }
 // A value with more than DefaultLimits.MaxTensorElements elements or a rank
 // above DefaultLimits.MaxRank is a *LimitError.
 func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
+	return InferWith(m, inputs, InferOptions{})
+}
+
+// InferOptions bound what InferWith may compute.
+type InferOptions struct {
+	// MaxValueBytes, when positive, bounds the total bytes of the values
+	// of the specialised graph: every value's element count times its
+	// element size, initializers, inputs and folded constants included. A
+	// node whose outputs would cross it is refused with a *LimitError
+	// (Limit "MaxValueBytes") before a constant it folds is made.
+	MaxValueBytes int64
+}
+
+// InferWith is Infer within the bounds of opt.
+func InferWith(m *Model, inputs map[string][]int, opt InferOptions) (st *Static, err error) {
 	defer recoverTo(&err, "infer", ErrInvalid)
 	order, err := m.validate()
 	if err != nil {
@@ -63,12 +79,16 @@ func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 		Values: map[string]ValueShape{},
 		Consts: map[string]*Tensor{},
 	}
+	b := &valueBytes{max: opt.MaxValueBytes}
 	for _, t := range g.Initializers {
 		if err := checkTensor(t); err != nil {
 			return nil, fmt.Errorf("onnxlite: initializer %q: %v: %w", t.Name, err, ErrInvalid)
 		}
 		vs := ValueShape{DType: t.DType, Shape: t.Shape()}
 		if err := checkValueLimits(t.Name, vs); err != nil {
+			return nil, err
+		}
+		if err := b.add(t.Name, vs); err != nil {
 			return nil, err
 		}
 		s.Values[t.Name] = vs
@@ -87,6 +107,9 @@ func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 		if err := checkValueLimits(in.Name, vs); err != nil {
 			return nil, err
 		}
+		if err := b.add(in.Name, vs); err != nil {
+			return nil, err
+		}
 		if err := bindParams(in, vs.Shape, params); err != nil {
 			return nil, err
 		}
@@ -101,7 +124,7 @@ func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 	}
 	opset := m.OpsetVersion("")
 	for _, i := range order {
-		if err := s.inferNode(g.Nodes[i], i, opset); err != nil {
+		if err := s.inferNode(g.Nodes[i], i, opset, b); err != nil {
 			return nil, err
 		}
 	}
@@ -216,6 +239,60 @@ func describeDims(ds []Dim) string {
 	return "[" + strings.Join(parts, " ") + "]"
 }
 
+// valueBytes adds up the bytes of a graph's values against a limit (none
+// when max is 0).
+type valueBytes struct {
+	max, total int64
+}
+
+// bytesOf is the size of a value in bytes, saturated at math.MaxInt64.
+func bytesOf(vs ValueShape) int64 {
+	n := int64(max(elemSize(vs.DType), 1))
+	for _, d := range vs.Shape {
+		if d != 0 && n > math.MaxInt64/int64(d) {
+			return math.MaxInt64
+		}
+		n *= int64(d)
+	}
+	return n
+}
+
+// check reports whether values of the given shapes still fit.
+func (b *valueBytes) check(name string, vss ...ValueShape) error {
+	if b == nil || b.max <= 0 {
+		return nil
+	}
+	total := b.total
+	for _, vs := range vss {
+		total = min(total+bytesOf(vs), math.MaxInt64/2)
+	}
+	if total > b.max {
+		return fmt.Errorf("onnxlite: value %q: %w", name, &LimitError{Limit: "MaxValueBytes", Value: total, Max: b.max})
+	}
+	return nil
+}
+
+// add counts a value, once it fits.
+func (b *valueBytes) add(name string, vs ValueShape) error {
+	if err := b.check(name, vs); err != nil {
+		return err
+	}
+	b.total = min(b.total+bytesOf(vs), math.MaxInt64/2)
+	return nil
+}
+
+// reserve checks that outputs of the given shapes still fit the limit on
+// value bytes, before the node makes them.
+func (c *nodeCtx) reserve(vss ...ValueShape) error {
+	if len(c.n.Outputs) == 0 {
+		return nil
+	}
+	if err := c.bytes.check(c.n.Outputs[0], vss...); err != nil {
+		return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(c.n, c.idx), c.n.OpType, err)
+	}
+	return nil
+}
+
 // checkValueLimits refuses values beyond DefaultLimits.MaxTensorElements or DefaultLimits.MaxRank.
 func checkValueLimits(name string, vs ValueShape) error {
 	if len(vs.Shape) > DefaultLimits.MaxRank {
@@ -239,6 +316,7 @@ type nodeCtx struct {
 	opset  int64
 	in     []*ValueShape // nil for an omitted optional input
 	consts []*Tensor     // nil unless the input is constant
+	bytes  *valueBytes   // the values' bytes so far; nil for no limit
 }
 
 // errorf wraps ErrInvalid with the node's name and operator.
@@ -303,8 +381,8 @@ func (c *nodeCtx) allConst() bool {
 	return true
 }
 
-func (s *Static) inferNode(n *Node, idx int, opset int64) error {
-	c := &nodeCtx{n: n, idx: idx, opset: opset,
+func (s *Static) inferNode(n *Node, idx int, opset int64, b *valueBytes) error {
+	c := &nodeCtx{n: n, idx: idx, opset: opset, bytes: b,
 		in: make([]*ValueShape, len(n.Inputs)), consts: make([]*Tensor, len(n.Inputs))}
 	for i, name := range n.Inputs {
 		if name == "" {
@@ -320,6 +398,14 @@ func (s *Static) inferNode(n *Node, idx int, opset int64) error {
 	case n.OpType == "Shape":
 		outs, err = foldShape(c)
 	case c.allConst() && canFold(c):
+		// What the node's outputs would take is known before they are
+		// made: a folded constant can be far larger than its inputs. The
+		// fold-only operators, which have no shape rule, check in fold.
+		if shapes, serr := c.outShapes(); serr == nil && len(n.Outputs) > 0 {
+			if err := c.reserve(shapes...); err != nil {
+				return err
+			}
+		}
 		outs, err = fold(c)
 	case FoldOnly(n.OpType):
 		return fmt.Errorf("onnxlite: node %q (%s): expected constant inputs to fold it, got run-time value(s) %s: %s is not supported at run time: %w (%w)",
@@ -336,6 +422,9 @@ func (s *Static) inferNode(n *Node, idx int, opset int64) error {
 			t.Name = n.Outputs[i]
 			vs := ValueShape{DType: t.DType, Shape: t.Shape()}
 			if err := checkValueLimits(t.Name, vs); err != nil {
+				return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(n, idx), n.OpType, err)
+			}
+			if err := b.add(t.Name, vs); err != nil {
 				return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(n, idx), n.OpType, err)
 			}
 			s.Values[t.Name] = vs
@@ -355,6 +444,9 @@ func (s *Static) inferNode(n *Node, idx int, opset int64) error {
 			return c.errorf("output %d (%q): expected at most %d outputs, got %d", i, o, len(shapes), len(n.Outputs))
 		}
 		if err := checkValueLimits(o, shapes[i]); err != nil {
+			return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(n, idx), n.OpType, err)
+		}
+		if err := b.add(o, shapes[i]); err != nil {
 			return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(n, idx), n.OpType, err)
 		}
 		s.Values[o] = shapes[i]
