@@ -104,7 +104,7 @@ func (nw *Network) Head(sel Selection) (h *Head, err error) {
 }
 
 func onnxStaticAtOne(nw *Network, shapes [][]int) (*onnxlite.Static, error) {
-	return onnxlite.Infer(nw.model, nw.inputMap(shapes))
+	return nw.infer(nw.model, shapes)
 }
 
 // InputShape returns the per-sample input shape.

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"math"
 	"slices"
 	"strconv"
 
@@ -171,7 +172,7 @@ func (nw *Network) inferFor(shapes [][]int) (*onnxlite.Static, error) {
 		return nil, err
 	}
 	if !relax {
-		return onnxlite.Infer(nw.model, nw.inputMap(shapes))
+		return nw.infer(nw.model, shapes)
 	}
 	return nw.inferRelaxed(shapes)
 }
@@ -210,11 +211,11 @@ func (nw *Network) inferRelaxed(shapes [][]int) (*onnxlite.Static, error) {
 			one[i][0] = 1
 		}
 	}
-	stN, err := onnxlite.Infer(nw.relaxed, nw.inputMap(shapes))
+	stN, err := nw.infer(nw.relaxed, shapes)
 	if err != nil {
 		return nil, err
 	}
-	st1, err := onnxlite.Infer(nw.relaxed, nw.inputMap(one))
+	st1, err := nw.infer(nw.relaxed, one)
 	if err != nil {
 		return nil, err
 	}
@@ -240,6 +241,80 @@ func (nw *Network) inferRelaxed(shapes [][]int) (*onnxlite.Static, error) {
 }
 
 var errBatchInconsistent = errors.New("graph is not batch-consistent")
+
+// ErrTooLarge is wrapped when the values of a program would take more than
+// Options.MaxValueBytes; it wraps onnxlite.ErrLimit too.
+var ErrTooLarge = fmt.Errorf("values too large for one program: %w", onnxlite.ErrLimit)
+
+// infer runs shape inference of m for the input shapes within the
+// network's limit on value bytes.
+func (nw *Network) infer(m *onnxlite.Model, shapes [][]int) (*onnxlite.Static, error) {
+	st, err := onnxlite.InferWith(m, nw.inputMap(shapes), onnxlite.InferOptions{MaxValueBytes: nw.opts.MaxValueBytes})
+	var le *onnxlite.LimitError
+	if errors.As(err, &le) && le.Limit == "MaxValueBytes" {
+		return nil, nw.tooLarge(shapes, le.Value, false, err)
+	}
+	return st, err
+}
+
+// checkValueBytes adds up the bytes of a program's values as the engine
+// holds them (floating-point values in its element type, the others as
+// int64), with, for a gradient program, one adjoint per floating-point
+// value that is not a constant, and refuses a program over
+// Options.MaxValueBytes before any of it is built.
+func (nw *Network) checkValueBytes(st *onnxlite.Static, shapes [][]int, grad bool) error {
+	float := int64(4)
+	if nw.opts.DType == Float64 {
+		float = 8
+	}
+	total := int64(0)
+	for name, vs := range st.Values {
+		n := int64(1)
+		for _, d := range vs.Shape {
+			n = min(n*int64(d), math.MaxInt64/64)
+		}
+		size := int64(8)
+		if isFloat(vs.DType) {
+			size = float
+			if _, isConst := st.Consts[name]; grad && !isConst {
+				size *= 2
+			}
+		}
+		total = min(total+n*size, math.MaxInt64/2)
+	}
+	if total > nw.opts.MaxValueBytes {
+		return nw.tooLarge(shapes, total, grad, nil)
+	}
+	return nil
+}
+
+// tooLarge is the error of a program whose values need need bytes.
+func (nw *Network) tooLarge(shapes [][]int, need int64, grad bool, cause error) error {
+	what := "its values"
+	if grad {
+		what = "its values and their gradients"
+	}
+	err := fmt.Errorf("nn: the program for input shape %s needs more than %s for %s, over the limit of %s on one program: %w",
+		shapeString(shapes[0], false), formatBytes(need), what, formatBytes(nw.opts.MaxValueBytes), ErrTooLarge)
+	if cause != nil {
+		err = fmt.Errorf("%w (%w)", err, cause)
+	}
+	return err
+}
+
+// formatBytes writes n bytes in the largest binary unit under it: 1.5 GiB.
+func formatBytes(n int64) string {
+	const unit = 1024
+	if n < unit {
+		return strconv.FormatInt(n, 10) + " bytes"
+	}
+	v, i := float64(n), -1
+	for v >= unit && i < 3 {
+		v /= unit
+		i++
+	}
+	return strconv.FormatFloat(v, 'f', 1, 64) + " " + []string{"KiB", "MiB", "GiB", "TiB"}[i]
+}
 
 // relaxModel returns a copy of m in which every Reshape whose shape is a
 // constant (initializer or Constant node) with a leading entry of 1 uses 0
@@ -377,9 +452,12 @@ func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
 			return &program{nw: nw, perSample: true, inner: inner, batch: shapes[0][0], inShapes: shapes, req: req, outNames: inner.outNames}, nil
 		}
 	} else {
-		st, err = onnxlite.Infer(nw.model, nw.inputMap(shapes))
+		st, err = nw.infer(nw.model, shapes)
 	}
 	if err != nil {
+		return nil, err
+	}
+	if err := nw.checkValueBytes(st, shapes, req.grad); err != nil {
 		return nil, err
 	}
 	p := &program{nw: nw, static: st, inShapes: shapes, req: req}
