@@ -89,6 +89,9 @@ type methodSpec struct {
 	params   []Param
 	defaults Options
 	run      func(ctx context.Context, m Model, x []float64, target int, o Options) (*Result, error)
+	// work is the most samples run sends through the model for one input
+	// (see Options.Work), f(x) aside; o has its defaults filled in.
+	work func(o Options) int
 }
 
 var methodSpecs = []methodSpec{
@@ -97,12 +100,14 @@ var methodSpecs = []methodSpec{
 		run: func(ctx context.Context, m Model, x []float64, target int, _ Options) (*Result, error) {
 			return Gradient(ctx, m, x, target, GradientOptions{})
 		},
+		work: func(Options) int { return 1 },
 	},
 	{
 		method: MethodGradientTimesInput, alias: "grad-input", title: "gradient × input",
 		run: func(ctx context.Context, m Model, x []float64, target int, _ Options) (*Result, error) {
 			return GradientTimesInput(ctx, m, x, target)
 		},
+		work: func(Options) int { return 2 }, // f at zero, ∂f/∂x
 	},
 	{
 		method: MethodSmoothGrad, title: "SmoothGrad",
@@ -113,6 +118,7 @@ var methodSpecs = []methodSpec{
 				Samples: o.Samples, Noise: o.Noise, Seed: o.Seed, BatchSize: o.BatchSize,
 			})
 		},
+		work: func(o Options) int { return o.Samples },
 	},
 	{
 		method: MethodIntegratedGradients, alias: "ig", title: "integrated gradients",
@@ -123,6 +129,10 @@ var methodSpecs = []methodSpec{
 				Rule: o.Rule, Points: o.Points, Tolerance: o.Tolerance,
 				Baselines: o.baselines(), BatchSize: o.BatchSize,
 			})
+		},
+		// Per baseline, f(x′) and the path integral's gradients.
+		work: func(o Options) int {
+			return max(1, len(o.Baselines)) * (1 + gradientsWorst(o.Rule, o.Points, DefaultMaxPoints))
 		},
 	},
 	{
@@ -138,6 +148,8 @@ var methodSpecs = []methodSpec{
 				Tolerance: o.Tolerance, BatchSize: o.BatchSize,
 			})
 		},
+		// f at every reference sample, and one gradient per draw.
+		work: func(o Options) int { return len(o.Reference) + o.Samples },
 	},
 }
 
@@ -239,6 +251,20 @@ func Attribute(ctx context.Context, m Model, x []float64, target int, o Options)
 		return nil, fmt.Errorf("%w: method %q, want one of %s", ErrOptions, o.Method, MethodNames())
 	}
 	return s.run(ctx, m, x, target, o.withDefaults())
+}
+
+// Work is the most samples one Attribute call with o sends through the
+// model (Forward and Gradient together) for one input, f(x) included,
+// known before any call: integrated gradients with automatic points count
+// every refinement up to the largest point count, expected gradients f at
+// every reference sample. A server budgets its requests by it. An unknown
+// method has work 0.
+func (o Options) Work() int {
+	s, ok := o.Method.spec()
+	if !ok {
+		return 0
+	}
+	return 1 + s.work(o.withDefaults())
 }
 
 // withDefaults fills zero parameters from the method's defaults.
