@@ -15,6 +15,7 @@ import (
 
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/internal/modelcount"
 	"github.com/apportion/apportion/internal/onnxtestdata"
 	"github.com/apportion/apportion/internal/testfiles"
 	"github.com/apportion/apportion/onnxlite"
@@ -173,4 +174,36 @@ func TestGroupsFileRepeatedIndex(t *testing.T) {
 	require.ErrorAs(t, err, &fe)
 	assert.Equal(t, explain.FieldGroups, fe.Field)
 	assert.Equal(t, `groups: gradattr: invalid input: group 0 ("a") lists index 0 twice`, err.Error())
+}
+
+func TestWorkCountsEveryModelCall(t *testing.T) {
+	// The work of a batch is what the model is sent explaining it: the
+	// head below counts the samples of every call (node/test_softmax_example
+	// of the ONNX backend test data, three samples of three values).
+	m, x, _ := softmax(t)
+	head, err := m.Head("", false)
+	require.NoError(t, err)
+	spec, err := m.Input()
+	require.NoError(t, err)
+	var rows []string
+	for _, d := range []float64{0, 0.5, -1} {
+		rows = append(rows, "["+testfiles.F32(x[0]+d)+","+testfiles.F32(x[1])+","+testfiles.F32(x[2]-d)+"]")
+	}
+	b, err := samples.Read(strings.NewReader("["+strings.Join(rows, ",")+"]"), "rows.json", spec, samples.Options{})
+	require.NoError(t, err)
+	for _, method := range []string{"grad", "grad-input", "smoothgrad", "ig"} {
+		s := explain.Defaults()
+		require.NoError(t, s.Set(explain.FieldMethod, method))
+		if method == "ig" {
+			require.NoError(t, s.Set(explain.FieldSteps, "24"))
+		}
+		c := &modelcount.Model{Model: head}
+		ex, err := explain.New(m, c, s)
+		require.NoError(t, err)
+		want, err := ex.Work(b)
+		require.NoError(t, err)
+		_, err = ex.Explain(context.Background(), b, nil)
+		require.NoError(t, err)
+		assert.Equal(t, c.Samples(), want, method)
+	}
 }

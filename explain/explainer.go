@@ -4,6 +4,7 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"math"
 
 	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/samples"
@@ -151,6 +152,25 @@ func (e *Explainer) Attribute(ctx context.Context, x []float64) (*gradattr.Resul
 		return nil, err
 	}
 	return gradattr.Attribute(ctx, e.head, x, e.settings.Target, o)
+}
+
+// Work is the most samples explaining b sends through the model: per
+// sample, the method's work (gradattr.Options.Work) and the model's output
+// at a single baseline; b.Samples times that, saturated at math.MaxInt. It
+// is known before any model call.
+func (e *Explainer) Work(b *samples.Batch) (int, error) {
+	o, err := e.options(b, byName)
+	if err != nil {
+		return 0, err
+	}
+	per := o.Work()
+	if len(o.Baselines) == 1 {
+		per++
+	}
+	if b.Samples > 0 && per > math.MaxInt/b.Samples {
+		return math.MaxInt, nil
+	}
+	return per * b.Samples, nil
 }
 
 // Report is the explanations of a batch of samples, with what they are of.
