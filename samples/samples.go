@@ -244,7 +244,7 @@ func Read(r io.Reader, name string, spec Spec, opt Options) (*Batch, error) {
 // MaxBytes; OpenStream reads a file of any size a batch at a time.
 func ReadFile(path string, spec Spec, opt Options) (*Batch, error) {
 	if st, err := os.Stat(path); err == nil && st.Size() > MaxBytes {
-		return nil, fmt.Errorf("input %s (for %q): file is %d bytes, more than the %d bytes an input may have", path, spec.Name, st.Size(), MaxBytes)
+		return nil, &FileError{Name: path, Input: spec.Name, Err: fmt.Errorf("file is %d bytes, more than the %d bytes an input may have", st.Size(), MaxBytes)}
 	}
 	s, f, err := OpenStream(path, spec, opt)
 	if err != nil {

@@ -77,11 +77,11 @@ func newSource(f Format, r io.Reader, spec Spec, opt Options) (source, error) {
 // NewStream); Close closes the file.
 func OpenStream(path string, spec Spec, opt Options) (*Stream, io.Closer, error) {
 	if _, err := FormatOf(path); err != nil {
-		return nil, nil, fmt.Errorf("input %s (for %q): %w", path, spec.Name, err)
+		return nil, nil, &FileError{Name: path, Input: spec.Name, Err: err}
 	}
 	f, err := openRegular(path)
 	if err != nil {
-		return nil, nil, fmt.Errorf("input %s (for %q): %w", path, spec.Name, err)
+		return nil, nil, &FileError{Name: path, Input: spec.Name, Err: err}
 	}
 	s, err := NewStream(f, path, spec, opt)
 	if err != nil {
@@ -108,8 +108,23 @@ func (s *Stream) wrap(err error) error {
 	if s.bare {
 		return err
 	}
-	return fmt.Errorf("input %s (for %q): %w", s.name, s.spec.Name, err)
+	return &FileError{Name: s.name, Input: s.spec.Name, Err: err}
 }
+
+// FileError is an error of reading the samples of one file: it names the
+// file and the model input they are read for. A caller that names the
+// file its own way (the HTTP API's "inputs" field) words Err.
+type FileError struct {
+	// Name is the file's name; Input the model input's.
+	Name, Input string
+	Err         error
+}
+
+func (e *FileError) Error() string {
+	return fmt.Sprintf("input %s (for %q): %v", e.Name, e.Input, e.Err)
+}
+
+func (e *FileError) Unwrap() error { return e.Err }
 
 // Features are the CSV header's names of the columns read, when the file
 // has a header.
