@@ -10,9 +10,11 @@
 //	                   explain.Defaults
 //	GET  /metrics      Prometheus text format
 //
-// Errors are {"error": "..."}: 400 for a bad request, 413 for a body over
-// the limit, 503 with Retry-After when the queue is full, 504 past the time
-// limit. A bounded pool of workers computes requests; with coalescing, the
+// Errors are {"error": "...", "request_id": "..."}: 400 for a bad request,
+// 413 for a body or a number of samples over the limits, 503 with
+// Retry-After when the queue is full, 504 past the time limit. Every answer
+// carries X-Request-ID: the client's own, or one made for the request,
+// which the request's log line gives too. A bounded pool of workers computes requests; with coalescing, the
 // model passes of concurrent requests are stacked into shared batches.
 package httpapi
 
@@ -42,6 +44,8 @@ import (
 const (
 	// DefaultMaxBody is the largest request body, in bytes.
 	DefaultMaxBody = 8 << 20
+	// DefaultMaxSamples is the most samples one request may hold.
+	DefaultMaxSamples = 256
 	// DefaultTimeout bounds one request, queueing included.
 	DefaultTimeout = 30 * time.Second
 	// DefaultQueue is the serve command's queue length.
@@ -61,7 +65,7 @@ const (
 )
 
 // Options configure a Handler. The zero value means: bodies up to
-// DefaultMaxBody, DefaultTimeout per request, GOMAXPROCS workers, no queue
+// DefaultMaxBody of up to DefaultMaxSamples samples, DefaultTimeout per request, GOMAXPROCS workers, no queue
 // (a request that finds every worker busy gets 503), no coalescing, no
 // reference set, no request log.
 type Options struct {
@@ -69,6 +73,10 @@ type Options struct {
 	// DefaultMaxBody. It is decided from Content-Length when the client
 	// sends it.
 	MaxBody int64
+	// MaxSamples is the most samples one request may hold; 0 means
+	// DefaultMaxSamples. A request with more gets 413, decided as soon as
+	// the sample past the limit is reached.
+	MaxSamples int
 	// Timeout bounds one request, queueing included; 0 means
 	// DefaultTimeout. A request past it gets 504 and stops at its next
 	// model pass.
@@ -115,11 +123,14 @@ type Handler struct {
 func New(m *explain.Model, opt Options) (*Handler, error) {
 	procs := runtime.GOMAXPROCS(0)
 	switch {
-	case opt.MaxBody < 0 || opt.Timeout < 0 || opt.Workers < 0 || opt.Queue < 0:
-		return nil, fmt.Errorf("httpapi: negative limits: max body %d, timeout %v, workers %d, queue %d", opt.MaxBody, opt.Timeout, opt.Workers, opt.Queue)
+	case opt.MaxBody < 0 || opt.MaxSamples < 0 || opt.Timeout < 0 || opt.Workers < 0 || opt.Queue < 0:
+		return nil, fmt.Errorf("httpapi: negative limits: max body %d, max samples %d, timeout %v, workers %d, queue %d", opt.MaxBody, opt.MaxSamples, opt.Timeout, opt.Workers, opt.Queue)
 	}
 	if opt.MaxBody == 0 {
 		opt.MaxBody = DefaultMaxBody
+	}
+	if opt.MaxSamples == 0 {
+		opt.MaxSamples = DefaultMaxSamples
 	}
 	if opt.Timeout == 0 {
 		opt.Timeout = DefaultTimeout
@@ -450,14 +461,24 @@ func decodeRequest(raw []byte, v any) *httpError {
 }
 
 // samplesOf reads the "inputs" field: one sample or an array of samples of
-// the model's input shape, finite numbers only.
+// the model's input shape, finite numbers only, at most Options.MaxSamples
+// of them (the reading stops at the sample past the limit). The first
+// sample that cannot be read is the error.
 func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError) {
 	if len(bytes.TrimSpace(inputs)) == 0 || string(bytes.TrimSpace(inputs)) == "null" {
 		return nil, badRequest(`"inputs" is required: an array of samples of shape %s`, samples.ShapeString(h.sampleShape()))
 	}
-	b, err := samples.ReadJSON(bytes.NewReader(inputs), h.spec)
+	var b *samples.Batch
+	s, err := samples.NewStream(bytes.NewReader(inputs), "inputs.json", h.spec, samples.Options{MaxSamples: h.opt.MaxSamples})
 	if err == nil {
-		err = b.CheckFinite()
+		b, err = s.All()
+	}
+	if errors.Is(err, samples.ErrTooMany) {
+		return nil, &httpError{http.StatusRequestEntityTooLarge,
+			fmt.Sprintf(`"inputs" holds more than the %d samples one request may have; send them in several requests`, h.opt.MaxSamples)}
+	}
+	if fe := (*samples.FileError)(nil); errors.As(err, &fe) {
+		err = fe.Err
 	}
 	if err != nil {
 		return nil, badRequest(`"inputs" (for %q): %v`, h.spec.Name, err)
