@@ -21,6 +21,8 @@ package httpapi
 import (
 	"bytes"
 	"context"
+	"crypto/rand"
+	"encoding/hex"
 	"encoding/json"
 	"errors"
 	"fmt"
@@ -296,17 +298,39 @@ func badRequest(format string, a ...any) *httpError {
 
 // errorJSON is the body of every error response.
 type errorJSON struct {
-	Error string `json:"error"`
+	Error     string `json:"error"`
+	RequestID string `json:"request_id,omitempty"`
 }
 
 func writeError(w http.ResponseWriter, e *httpError) {
+	body := errorJSON{Error: e.msg}
 	if sw, ok := w.(*statusWriter); ok {
 		sw.errMsg = e.msg
+		body.RequestID = sw.id
 	}
 	if e.code == http.StatusServiceUnavailable {
 		w.Header().Set("Retry-After", strconv.Itoa(retryAfter))
 	}
-	writeJSONBody(w, e.code, errorJSON{e.msg})
+	writeJSONBody(w, e.code, body)
+}
+
+// requestIDHeader carries a request's ID both ways.
+const requestIDHeader = "X-Request-ID"
+
+// requestID returns the client's request ID when it is one (1 to 128
+// printable ASCII characters without spaces), and otherwise a new one: 16
+// random bytes in hex.
+func requestID(given string) string {
+	ok := len(given) > 0 && len(given) <= 128
+	for i := 0; ok && i < len(given); i++ {
+		ok = given[i] > ' ' && given[i] < 0x7f
+	}
+	if ok {
+		return given
+	}
+	var b [16]byte
+	rand.Read(b[:])
+	return hex.EncodeToString(b[:])
 }
 
 func writeJSONBody(w http.ResponseWriter, code int, v any) {
@@ -332,11 +356,12 @@ type requestLog struct {
 	completeness string // ok, failed, not judged; "" when none applies
 }
 
-// statusWriter records the status a handler wrote.
+// statusWriter records the status a handler wrote, and the request's ID.
 type statusWriter struct {
 	http.ResponseWriter
 	code   int
 	errMsg string
+	id     string
 }
 
 func (w *statusWriter) WriteHeader(code int) {
@@ -360,7 +385,8 @@ type handlerFunc func(w http.ResponseWriter, r *http.Request, rl *requestLog)
 func (h *Handler) route(name, method string, fn handlerFunc) http.Handler {
 	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
 		start := time.Now()
-		sw := &statusWriter{ResponseWriter: w}
+		sw := &statusWriter{ResponseWriter: w, id: requestID(r.Header.Get(requestIDHeader))}
+		sw.Header().Set(requestIDHeader, sw.id)
 		rl := &requestLog{}
 		if method != "" && r.Method != method && !(method == http.MethodGet && r.Method == http.MethodHead) {
 			sw.Header().Set("Allow", method)
@@ -379,7 +405,7 @@ func (h *Handler) route(name, method string, fn handlerFunc) http.Handler {
 			h.metrics.explainLatency.WithLabelValues(rl.method).Observe(d.Seconds())
 		}
 		attrs := []slog.Attr{
-			slog.String("route", name), slog.String("http_method", r.Method), slog.String("status", code),
+			slog.String("route", name), slog.String("request_id", sw.id), slog.String("http_method", r.Method), slog.String("status", code),
 			slog.Float64("duration_ms", float64(d.Microseconds())/1000),
 		}
 		if rl.method != "" {

@@ -88,12 +88,14 @@ var (
 	get  = testhttp.Get
 )
 
-// errorOf decodes an error body; every error is {"error": "..."}.
+// errorOf decodes an error body; every error is {"error": "...",
+// "request_id": "..."}.
 func errorOf(t *testing.T, body string) string {
 	t.Helper()
 	var e map[string]string
 	require.NoError(t, json.Unmarshal([]byte(body), &e), body)
-	require.Len(t, e, 1, body)
+	require.Len(t, e, 2, body)
+	require.NotEmpty(t, e["request_id"], body)
 	return e["error"]
 }
 

@@ -1,6 +1,8 @@
 package httpapi
 
 import (
+	"encoding/json"
+	"io"
 	"net/http"
 	"strings"
 	"testing"
@@ -44,4 +46,55 @@ func TestServeMaxSamples(t *testing.T) {
 	code, _, body = post(t, ts.URL+"/v1/predict", `{"inputs": `+many(3)+`}`)
 	assert.Equal(t, http.StatusRequestEntityTooLarge, code)
 	assert.Contains(t, errorOf(t, body), "more than the 2 samples")
+}
+
+// logLine returns the request log line whose request_id is id.
+func logLine(t *testing.T, logs *syncBuffer, id string) map[string]any {
+	t.Helper()
+	for _, line := range strings.Split(strings.TrimSpace(logs.String()), "\n") {
+		var rec map[string]any
+		require.NoError(t, json.Unmarshal([]byte(line), &rec), line)
+		if rec["request_id"] == id {
+			return rec
+		}
+	}
+	t.Fatalf("no log line with request_id %q in %s", id, logs.String())
+	return nil
+}
+
+func TestServeRequestID(t *testing.T) {
+	_, ts, logs := testServer(t, nil)
+	send := func(id, body string) (*http.Response, string) {
+		req, err := http.NewRequest(http.MethodPost, ts.URL+"/v1/explain", strings.NewReader(body))
+		require.NoError(t, err)
+		if id != "" {
+			req.Header.Set("X-Request-ID", id)
+		}
+		resp, err := http.DefaultClient.Do(req)
+		require.NoError(t, err)
+		defer resp.Body.Close()
+		raw, err := io.ReadAll(resp.Body)
+		require.NoError(t, err)
+		return resp, string(raw)
+	}
+	// The client's ID is echoed in the header, the error body and the log.
+	resp, body := send("pump-7/2024-05-01T10:00", `{"inputs": [[1, 2, 3]]}`)
+	assert.Equal(t, http.StatusBadRequest, resp.StatusCode)
+	assert.Equal(t, "pump-7/2024-05-01T10:00", resp.Header.Get("X-Request-ID"))
+	var e map[string]string
+	require.NoError(t, json.Unmarshal([]byte(body), &e))
+	assert.Equal(t, "pump-7/2024-05-01T10:00", e["request_id"])
+	rec := logLine(t, logs, "pump-7/2024-05-01T10:00")
+	assert.Equal(t, "400", rec["status"])
+	assert.Contains(t, rec["error"], "expected 8 values")
+
+	// Without one, or with one that cannot be echoed (spaces, over 128
+	// characters), the server makes one: 16 random bytes in hex.
+	for _, given := range []string{"", "two words", strings.Repeat("x", 129)} {
+		resp, _ := send(given, `{"inputs": [`+demoSampleJSON(t)+`], "method": "grad"}`)
+		assert.Equal(t, http.StatusOK, resp.StatusCode)
+		id := resp.Header.Get("X-Request-ID")
+		assert.Regexp(t, `^[0-9a-f]{32}$`, id, "given %q", given)
+		assert.Equal(t, "200", logLine(t, logs, id)["status"])
+	}
 }
