@@ -11,7 +11,7 @@
 //	GET  /metrics      Prometheus text format
 //
 // Errors are {"error": "...", "request_id": "..."}: 400 for a bad request,
-// 413 for a body or a number of samples over the limits, 503 with
+// 413 for a body, a number of samples or a cost over the limits, 503 with
 // Retry-After when the queue is full, 504 past the time limit. Every answer
 // carries X-Request-ID: the client's own, or one made for the request,
 // which the request's log line gives too. A bounded pool of workers computes requests; with coalescing, the
@@ -48,6 +48,10 @@ const (
 	DefaultMaxBody = 8 << 20
 	// DefaultMaxSamples is the most samples one request may hold.
 	DefaultMaxSamples = 256
+	// DefaultMaxWork is the most model evaluations one request may cost
+	// (see Options.MaxWork): DefaultMaxSamples samples explained with
+	// integrated gradients at automatic points under any rule fit in it.
+	DefaultMaxWork = 1 << 22
 	// DefaultTimeout bounds one request, queueing included.
 	DefaultTimeout = 30 * time.Second
 	// DefaultQueue is the serve command's queue length.
@@ -67,7 +71,8 @@ const (
 )
 
 // Options configure a Handler. The zero value means: bodies up to
-// DefaultMaxBody of up to DefaultMaxSamples samples, DefaultTimeout per request, GOMAXPROCS workers, no queue
+// DefaultMaxBody of up to DefaultMaxSamples samples costing up to
+// DefaultMaxWork, DefaultTimeout per request, GOMAXPROCS workers, no queue
 // (a request that finds every worker busy gets 503), no coalescing, no
 // reference set, no request log.
 type Options struct {
@@ -79,6 +84,14 @@ type Options struct {
 	// DefaultMaxSamples. A request with more gets 413, decided as soon as
 	// the sample past the limit is reached.
 	MaxSamples int
+	// MaxWork is the most work one request may cost: the samples it sends
+	// through the model, forward and gradient passes alike, counted before
+	// any pass from its samples and settings as their most
+	// (explain.Explainer.Work: integrated gradients at automatic points
+	// count every refinement up to the largest point count); 0 means
+	// DefaultMaxWork. A request over it gets 413 with its cost and the
+	// budget.
+	MaxWork int
 	// Timeout bounds one request, queueing included; 0 means
 	// DefaultTimeout. A request past it gets 504 and stops at its next
 	// model pass.
@@ -125,8 +138,12 @@ type Handler struct {
 func New(m *explain.Model, opt Options) (*Handler, error) {
 	procs := runtime.GOMAXPROCS(0)
 	switch {
-	case opt.MaxBody < 0 || opt.MaxSamples < 0 || opt.Timeout < 0 || opt.Workers < 0 || opt.Queue < 0:
-		return nil, fmt.Errorf("httpapi: negative limits: max body %d, max samples %d, timeout %v, workers %d, queue %d", opt.MaxBody, opt.MaxSamples, opt.Timeout, opt.Workers, opt.Queue)
+	case opt.MaxBody < 0 || opt.MaxSamples < 0 || opt.MaxWork < 0 || opt.Timeout < 0 || opt.Workers < 0 || opt.Queue < 0:
+		return nil, fmt.Errorf("httpapi: negative limits: max body %d, max samples %d, max work %d, timeout %v, workers %d, queue %d",
+			opt.MaxBody, opt.MaxSamples, opt.MaxWork, opt.Timeout, opt.Workers, opt.Queue)
+	}
+	if opt.MaxWork == 0 {
+		opt.MaxWork = DefaultMaxWork
 	}
 	if opt.MaxBody == 0 {
 		opt.MaxBody = DefaultMaxBody
@@ -352,6 +369,7 @@ func writeRaw(w http.ResponseWriter, code int, b []byte) {
 type requestLog struct {
 	method       string // attribution method
 	samples      int
+	work         int // the request's cost in model evaluations, its most
 	points       int
 	completeness string // ok, failed, not judged; "" when none applies
 }
@@ -410,7 +428,7 @@ func (h *Handler) route(name, method string, fn handlerFunc) http.Handler {
 		}
 		if rl.method != "" {
 			attrs = append(attrs, slog.String("method", rl.method), slog.Int("samples", rl.samples),
-				slog.Int("points", rl.points), slog.String("completeness", rl.completeness))
+				slog.Int("work", rl.work), slog.Int("points", rl.points), slog.String("completeness", rl.completeness))
 		}
 		if sw.errMsg != "" {
 			attrs = append(attrs, slog.String("error", sw.errMsg))
@@ -517,6 +535,17 @@ func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError)
 	return b, nil
 }
 
+// budget refuses a request whose work, for n samples, is over
+// Options.MaxWork.
+func (h *Handler) budget(work, n int) *httpError {
+	if work <= h.opt.MaxWork {
+		return nil
+	}
+	return &httpError{http.StatusRequestEntityTooLarge, fmt.Sprintf(
+		"the request costs up to %d model evaluations (%d samples, %d each), over this server's budget of %d per request; send fewer samples, or ask for fewer steps or samples per explanation",
+		work, n, work/max(n, 1), h.opt.MaxWork)}
+}
+
 // run computes f on a worker under the request's time limit. It answers
 // 503 when the queue is full and 504 past the limit; f's own error is
 // returned as it is. finished reports that f has returned (or will never
@@ -584,6 +613,10 @@ func (h *Handler) predict(w http.ResponseWriter, r *http.Request, rl *requestLog
 	t, err := b.ToTensor(h.spec)
 	if err != nil {
 		h.finish(w, badRequest("%v", err))
+		return
+	}
+	if herr := h.budget(b.Samples, b.Samples); herr != nil {
+		h.finish(w, herr)
 		return
 	}
 	var body []byte
@@ -737,6 +770,16 @@ func (h *Handler) explain(w http.ResponseWriter, r *http.Request, rl *requestLog
 	ex, err := explain.New(h.model, head, st)
 	if err != nil {
 		h.finish(w, settingsError(err))
+		return
+	}
+	work, err := ex.Work(b)
+	if err != nil {
+		h.finish(w, settingsError(err))
+		return
+	}
+	rl.work = work
+	if herr := h.budget(work, b.Samples); herr != nil {
+		h.finish(w, herr)
 		return
 	}
 	var body []byte

@@ -264,13 +264,16 @@ func gauge(t *testing.T, s *Handler, name string) float64 {
 
 // passes is the number of model passes (Forward and Gradient calls that
 // reached the network) since the handler started, from its registry.
-func passes(t *testing.T, s *Handler) int64 {
+func passes(t *testing.T, s *Handler) int64 { return counterSum(t, s, "apportion_model_passes_total") }
+
+// counterSum adds up the counters of one metric over their labels.
+func counterSum(t *testing.T, s *Handler, name string) int64 {
 	t.Helper()
 	mfs, err := s.metrics.reg.Gather()
 	require.NoError(t, err)
 	n := 0.0
 	for _, mf := range mfs {
-		if mf.GetName() == "apportion_model_passes_total" {
+		if mf.GetName() == name {
 			for _, m := range mf.GetMetric() {
 				n += m.GetCounter().GetValue()
 			}

@@ -98,3 +98,34 @@ func TestServeRequestID(t *testing.T) {
 		assert.Equal(t, "200", logLine(t, logs, id)["status"])
 	}
 }
+
+func TestServeWorkBudget(t *testing.T) {
+	// Two samples with integrated gradients at 47 trapezoid points cost,
+	// each, f(x), f(x′), 47 gradients and the output at the baseline: 50
+	// model evaluations, 100 in all, which the model's own count of the
+	// samples it is sent confirms; at 48 points, 102, over a budget of 100:
+	// 413 before any pass.
+	s, ts, logs := testServer(t, func(o *Options) { o.MaxWork = 100 })
+	sample := demoSampleJSON(t)
+	req := func(steps string) string {
+		return `{"inputs": [` + sample + `, ` + sample + `], "rule": "trapezoid", "steps": ` + steps + `}`
+	}
+	code, _, body := post(t, ts.URL+"/v1/explain", req("48"))
+	assert.Equal(t, http.StatusRequestEntityTooLarge, code)
+	assert.Equal(t, "the request costs up to 102 model evaluations (2 samples, 51 each), over this server's budget of 100 per request; send fewer samples, or ask for fewer steps or samples per explanation", errorOf(t, body))
+	assert.Zero(t, passes(t, s))
+
+	code, hdr, body := post(t, ts.URL+"/v1/explain", req("47"))
+	require.Equal(t, http.StatusOK, code, body)
+	assert.EqualValues(t, 100, counterSum(t, s, "apportion_model_points_total"))
+	assert.EqualValues(t, 100, logLine(t, logs, hdr.Get("X-Request-ID"))["work"])
+
+	// The request of 5,000 samples × 4,097 steps that once ran 17 s: its
+	// cost is known from its settings alone, and refused at once (here
+	// with the sample limit raised so that the budget decides).
+	s, ts, _ = testServer(t, func(o *Options) { o.MaxSamples = 5000 })
+	code, _, body = post(t, ts.URL+"/v1/explain", `{"inputs": [`+strings.TrimSuffix(strings.Repeat(sample+",", 5000), ",")+`], "steps": 4097}`)
+	assert.Equal(t, http.StatusRequestEntityTooLarge, code)
+	assert.Contains(t, errorOf(t, body), "costs up to 20500000 model evaluations (5000 samples, 4100 each), over this server's budget of 4194304")
+	assert.Zero(t, passes(t, s))
+}
