@@ -11,7 +11,8 @@
 //	GET  /metrics      Prometheus text format
 //
 // Errors are {"error": "...", "request_id": "..."}: 400 for a bad request,
-// 413 for a body, a number of samples or a cost over the limits, 503 with
+// 408 for a body that does not arrive within the time limit, 413 for a
+// body, a number of samples or a cost over the limits, 503 with
 // Retry-After when the queue is full, 504 past the time limit. Every answer
 // carries X-Request-ID: the client's own, or one made for the request,
 // which the request's log line gives too. A bounded pool of workers computes requests; with coalescing, the
@@ -31,6 +32,7 @@ import (
 	"math"
 	"net"
 	"net/http"
+	"os"
 	"runtime"
 	"strconv"
 	"sync"
@@ -52,7 +54,8 @@ const (
 	// (see Options.MaxWork): DefaultMaxSamples samples explained with
 	// integrated gradients at automatic points under any rule fit in it.
 	DefaultMaxWork = 1 << 22
-	// DefaultTimeout bounds one request, queueing included.
+	// DefaultTimeout bounds one request from its arrival: reading its body,
+	// queueing and computing.
 	DefaultTimeout = 30 * time.Second
 	// DefaultQueue is the serve command's queue length.
 	DefaultQueue = 64
@@ -92,9 +95,10 @@ type Options struct {
 	// DefaultMaxWork. A request over it gets 413 with its cost and the
 	// budget.
 	MaxWork int
-	// Timeout bounds one request, queueing included; 0 means
-	// DefaultTimeout. A request past it gets 504 and stops at its next
-	// model pass.
+	// Timeout bounds one request from its arrival, reading its body,
+	// queueing and computing included; 0 means DefaultTimeout. A body
+	// still arriving when it passes gets 408; a request past it otherwise
+	// gets 504 and stops at its next model pass.
 	Timeout time.Duration
 	// Workers is the number of requests computed at once; 0 means
 	// GOMAXPROCS, times 4 with Coalesce (so that passes meet).
@@ -389,6 +393,9 @@ func (w *statusWriter) WriteHeader(code int) {
 	w.ResponseWriter.WriteHeader(code)
 }
 
+// Unwrap gives http.ResponseController the connection's writer.
+func (w *statusWriter) Unwrap() http.ResponseWriter { return w.ResponseWriter }
+
 func (w *statusWriter) Write(b []byte) (int, error) {
 	if w.code == 0 {
 		w.code = http.StatusOK
@@ -406,6 +413,13 @@ func (h *Handler) route(name, method string, fn handlerFunc) http.Handler {
 		sw := &statusWriter{ResponseWriter: w, id: requestID(r.Header.Get(requestIDHeader))}
 		sw.Header().Set(requestIDHeader, sw.id)
 		rl := &requestLog{}
+		// The time limit covers the whole request, from here: reading and
+		// parsing the body too, whose reads fail once it has passed.
+		deadline := start.Add(h.opt.Timeout)
+		ctx, cancel := context.WithDeadline(r.Context(), deadline)
+		defer cancel()
+		r = r.WithContext(ctx)
+		_ = http.NewResponseController(sw).SetReadDeadline(deadline) // not every ResponseWriter has one
 		if method != "" && r.Method != method && !(method == http.MethodGet && r.Method == http.MethodHead) {
 			sw.Header().Set("Allow", method)
 			writeError(sw, &httpError{http.StatusMethodNotAllowed, fmt.Sprintf("%s takes %s, got %s", name, method, r.Method)})
@@ -457,9 +471,14 @@ func (h *Handler) readBody(w http.ResponseWriter, r *http.Request) ([]byte, *htt
 	raw, err := io.ReadAll(http.MaxBytesReader(w, r.Body, limit))
 	if err != nil {
 		var mb *http.MaxBytesError
-		if errors.As(err, &mb) {
+		var ne net.Error
+		switch {
+		case errors.As(err, &mb):
 			return nil, &httpError{http.StatusRequestEntityTooLarge,
 				fmt.Sprintf("request body is over the limit of %d bytes (%s)", limit, FormatBytes(limit))}
+		case errors.Is(err, os.ErrDeadlineExceeded), errors.As(err, &ne) && ne.Timeout(), r.Context().Err() != nil:
+			return nil, &httpError{http.StatusRequestTimeout,
+				fmt.Sprintf("the request body did not arrive within the server's time limit of %v", h.opt.Timeout)}
 		}
 		return nil, badRequest("reading the request body: %v", err)
 	}
@@ -551,8 +570,8 @@ func (h *Handler) budget(work, n int) *httpError {
 // returned as it is. finished reports that f has returned (or will never
 // run), so that what it wrote may be read.
 func (h *Handler) run(r *http.Request, f func(ctx context.Context) *httpError) (herr *httpError, finished bool) {
-	ctx, cancel := context.WithTimeout(r.Context(), h.opt.Timeout)
-	defer cancel() // stops the work of a request that is given up
+	ctx, cancel := context.WithCancel(r.Context()) // the request's time limit (see route)
+	defer cancel()                                 // stops the work of a request that is given up
 	var ferr *httpError
 	j := &job{ctx: ctx, done: make(chan struct{})}
 	j.run = func(ctx context.Context) {

@@ -1,11 +1,16 @@
 package httpapi
 
 import (
+	"bufio"
 	"encoding/json"
+	"fmt"
 	"io"
+	"net"
 	"net/http"
 	"strings"
+	"sync/atomic"
 	"testing"
+	"time"
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
@@ -128,4 +133,41 @@ func TestServeWorkBudget(t *testing.T) {
 	assert.Equal(t, http.StatusRequestEntityTooLarge, code)
 	assert.Contains(t, errorOf(t, body), "costs up to 20500000 model evaluations (5000 samples, 4100 each), over this server's budget of 4194304")
 	assert.Zero(t, passes(t, s))
+}
+
+func TestServeSlowBodyMeetsTheDeadline(t *testing.T) {
+	// A client that sends its body a byte every 20 ms (a 1,000-byte body
+	// would take 20 s) gets 408 once the request's time limit of 300 ms
+	// has passed, while it is still sending: the limit covers reading the
+	// body, whose reads the handler's deadline ends.
+	_, ts, _ := testServer(t, func(o *Options) { o.Timeout = 300 * time.Millisecond })
+	conn, err := net.Dial("tcp", ts.Listener.Addr().String())
+	require.NoError(t, err)
+	defer conn.Close()
+	_, err = fmt.Fprintf(conn, "POST /v1/explain HTTP/1.1\r\nHost: test\r\nContent-Type: application/json\r\nContent-Length: 1000\r\n\r\n{")
+	require.NoError(t, err)
+	var sent atomic.Int64
+	stop := make(chan struct{})
+	defer close(stop)
+	go func() {
+		for range 999 {
+			select {
+			case <-stop:
+				return
+			case <-time.After(20 * time.Millisecond):
+			}
+			if _, err := conn.Write([]byte(" ")); err != nil {
+				return
+			}
+			sent.Add(1)
+		}
+	}()
+	resp, err := http.ReadResponse(bufio.NewReader(conn), nil)
+	require.NoError(t, err)
+	defer resp.Body.Close()
+	raw, err := io.ReadAll(resp.Body)
+	require.NoError(t, err)
+	assert.Equal(t, http.StatusRequestTimeout, resp.StatusCode)
+	assert.Equal(t, "the request body did not arrive within the server's time limit of 300ms", errorOf(t, string(raw)))
+	assert.Less(t, sent.Load(), int64(999), "answered only after the whole body was sent")
 }
