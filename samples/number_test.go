@@ -8,6 +8,7 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
 
@@ -64,4 +65,26 @@ func TestCSVNumbers(t *testing.T) {
 	assert.EqualError(t, tbl.Rows[0].Err, `column a: "1_000" is not a number`)
 	assert.Contains(t, tbl.Rows[1].Err.Error(), "1e-400 is out of the float64 range")
 	assert.Equal(t, []float64{4, 5}, tbl.Rows[2].Values)
+}
+
+func TestFloat32Range(t *testing.T) {
+	// A float32 input cannot take values beyond ±3.4028235e38 or below
+	// 1.4e-45 in magnitude but 0 (IEEE 754 binary32: largest finite, and
+	// half the smallest subnormal, under which a value rounds to 0): such a
+	// sample is reported, where a float64 input reads it.
+	file := "[[1e39, 1], [1, 2], [-1e-46, 3], [3.4e38, 1.5e-45]]"
+	f32 := samples.Spec{Name: "x", Elem: onnxlite.Float, Shape: []int{-1, 2}, HasShape: true}
+	b, err := samples.Read(strings.NewReader(file), "n.json", f32, samples.Options{KeepBad: true})
+	require.NoError(t, err)
+	assert.EqualError(t, b.Bad[0], "sample 0, index 0: 1e+39 is out of the float32 range of the input (larger than 3.4e38 in magnitude)")
+	assert.EqualError(t, b.Bad[2], "sample 2, index 0: -1e-46 is out of the float32 range of the input (smaller than 1.4e-45 in magnitude, it would read as 0)")
+	assert.Len(t, b.Bad, 2)
+	_, err = samples.Read(strings.NewReader(file), "n.json", f32, samples.Options{})
+	assert.ErrorContains(t, err, "1e+39 is out of the float32 range")
+
+	f64 := f32
+	f64.Elem = onnxlite.Double
+	b, err = samples.Read(strings.NewReader(file), "n.json", f64, samples.Options{})
+	require.NoError(t, err)
+	assert.Equal(t, 1e39, b.Data[0])
 }

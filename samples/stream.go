@@ -6,6 +6,8 @@ import (
 	"io"
 	"math"
 	"os"
+
+	"github.com/apportion/apportion/onnxlite"
 )
 
 // ErrTooMany is wrapped when a file holds more samples than
@@ -162,6 +164,9 @@ func (s *Stream) Next(n int) (*Batch, error) {
 	if b.Features == nil {
 		b.Features = s.features
 	}
+	if s.spec.Elem == onnxlite.Float && b.Tensor == nil {
+		b.checkFloat32()
+	}
 	s.done += b.Samples
 	if !s.opt.KeepBad {
 		if err = b.FirstBad(); err == nil {
@@ -207,6 +212,29 @@ func (s *Stream) All() (*Batch, error) {
 		return nil, s.wrap(all.FirstBad())
 	}
 	return all, nil
+}
+
+// checkFloat32 marks bad the samples, not already bad, that hold a value a
+// float32 input cannot take: beyond ±3.4e38, or so small that it would
+// read as 0 (below 1.4e-45 in magnitude; IEEE 754 binary32).
+func (b *Batch) checkFloat32() {
+	for i := 0; i < b.Samples; i++ {
+		if b.Bad[i] != nil {
+			continue
+		}
+		for j, v := range b.Sample(i) {
+			f := float32(v)
+			switch {
+			case math.IsInf(float64(f), 0) && !math.IsInf(v, 0):
+				b.markBad(i, fmt.Errorf("sample %d, index %d: %v is out of the float32 range of the input (larger than 3.4e38 in magnitude)", b.First+i, j, v))
+			case f == 0 && v != 0:
+				b.markBad(i, fmt.Errorf("sample %d, index %d: %v is out of the float32 range of the input (smaller than 1.4e-45 in magnitude, it would read as 0)", b.First+i, j, v))
+			default:
+				continue
+			}
+			break
+		}
+	}
 }
 
 // concat joins batches of one sample shape, in order, into one.
