@@ -54,6 +54,10 @@ const (
 	// (see Options.MaxWork): DefaultMaxSamples samples explained with
 	// integrated gradients at automatic points under any rule fit in it.
 	DefaultMaxWork = 1 << 22
+	// DefaultSmallWork is the most work of a small request (see
+	// Options.SmallWork): 16 samples of integrated gradients at automatic
+	// points.
+	DefaultSmallWork = 1 << 16
 	// DefaultTimeout bounds one request from its arrival: reading its body,
 	// queueing and computing.
 	DefaultTimeout = 30 * time.Second
@@ -95,6 +99,12 @@ type Options struct {
 	// DefaultMaxWork. A request over it gets 413 with its cost and the
 	// budget.
 	MaxWork int
+	// SmallWork is the most work of a small request; 0 means
+	// DefaultSmallWork. Heavier requests hold at most three quarters of
+	// the workers and of the cores (at least one), so that small requests
+	// always find a worker, and with Coalesce the model passes of small
+	// requests are run first.
+	SmallWork int
 	// Timeout bounds one request from its arrival, reading its body,
 	// queueing and computing included; 0 means DefaultTimeout. A body
 	// still arriving when it passes gets 408; a request past it otherwise
@@ -148,6 +158,9 @@ func New(m *explain.Model, opt Options) (*Handler, error) {
 	}
 	if opt.MaxWork == 0 {
 		opt.MaxWork = DefaultMaxWork
+	}
+	if opt.SmallWork <= 0 {
+		opt.SmallWork = DefaultSmallWork
 	}
 	if opt.MaxBody == 0 {
 		opt.MaxBody = DefaultMaxBody
@@ -565,15 +578,20 @@ func (h *Handler) budget(work, n int) *httpError {
 		work, n, work/max(n, 1), h.opt.MaxWork)}
 }
 
-// run computes f on a worker under the request's time limit. It answers
-// 503 when the queue is full and 504 past the limit; f's own error is
-// returned as it is. finished reports that f has returned (or will never
-// run), so that what it wrote may be read.
-func (h *Handler) run(r *http.Request, f func(ctx context.Context) *httpError) (herr *httpError, finished bool) {
+// run computes f on a worker under the request's time limit, as a heavy
+// request when work is over Options.SmallWork. It answers 503 when the
+// queue is full and 504 past the limit; f's own error is returned as it
+// is. finished reports that f has returned (or will never run), so that
+// what it wrote may be read.
+func (h *Handler) run(r *http.Request, work int, f func(ctx context.Context) *httpError) (herr *httpError, finished bool) {
 	ctx, cancel := context.WithCancel(r.Context()) // the request's time limit (see route)
 	defer cancel()                                 // stops the work of a request that is given up
+	heavy := work > h.opt.SmallWork
+	if heavy {
+		ctx = withHeavy(ctx)
+	}
 	var ferr *httpError
-	j := &job{ctx: ctx, done: make(chan struct{})}
+	j := &job{ctx: ctx, done: make(chan struct{}), heavy: heavy}
 	j.run = func(ctx context.Context) {
 		defer func() {
 			if p := recover(); p != nil {
@@ -639,7 +657,7 @@ func (h *Handler) predict(w http.ResponseWriter, r *http.Request, rl *requestLog
 		return
 	}
 	var body []byte
-	herr, _ = h.run(r, func(ctx context.Context) *httpError {
+	herr, _ = h.run(r, b.Samples, func(ctx context.Context) *httpError {
 		h.metrics.countPass("forward", b.Samples)
 		res, err := h.model.Predict(ctx, []*onnxlite.Tensor{t})
 		if err != nil {
@@ -803,7 +821,7 @@ func (h *Handler) explain(w http.ResponseWriter, r *http.Request, rl *requestLog
 	}
 	var body []byte
 	var got requestLog // written by the worker, read once it has finished
-	herr, finished := h.run(r, func(ctx context.Context) *httpError {
+	herr, finished := h.run(r, work, func(ctx context.Context) *httpError {
 		rep, err := ex.Explain(ctx, b, nil)
 		if err != nil {
 			var fe *explain.FieldError

@@ -49,7 +49,7 @@ func (s *syncBuffer) String() string {
 }
 
 // demoModel returns the embedded pumps demo model and its reference set.
-func demoModel(t *testing.T) (*explain.Model, *explain.Dataset) {
+func demoModel(t testing.TB) (*explain.Model, *explain.Dataset) {
 	t.Helper()
 	s, err := demo.Get("pumps")
 	require.NoError(t, err)
@@ -100,7 +100,7 @@ func errorOf(t *testing.T, body string) string {
 }
 
 // demoSampleJSON is the demo's own sample.
-func demoSampleJSON(t *testing.T) string {
+func demoSampleJSON(t testing.TB) string {
 	t.Helper()
 	s, err := demo.Get("pumps")
 	require.NoError(t, err)
@@ -607,7 +607,7 @@ func TestBatcherStacksCalls(t *testing.T) {
 	go call(2, point(4), 1, []int{1})
 	go call(3, point(5), 1, []int{0})
 	go call(4, point(6), 1, []int{1})
-	waitFor(t, "the calls to queue", func() bool { return len(b.calls) == 5 })
+	waitFor(t, "the calls to queue", func() bool { return len(b.urgent) == 5 })
 	cancel() // given up while waiting: no pass may include it
 	time.Sleep(10 * time.Millisecond)
 	close(g.open)
