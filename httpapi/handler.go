@@ -551,7 +551,7 @@ func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError)
 	}
 	if errors.Is(err, samples.ErrTooMany) {
 		return nil, &httpError{http.StatusRequestEntityTooLarge,
-			fmt.Sprintf(`"inputs" holds more than the %d samples one request may have; send them in several requests`, h.opt.MaxSamples)}
+			fmt.Sprintf(`"inputs" holds more than the %s one request may have; send them in several requests`, count(h.opt.MaxSamples, "sample"))}
 	}
 	if fe := (*samples.FileError)(nil); errors.As(err, &fe) {
 		err = fe.Err
@@ -574,8 +574,16 @@ func (h *Handler) budget(work, n int) *httpError {
 		return nil
 	}
 	return &httpError{http.StatusRequestEntityTooLarge, fmt.Sprintf(
-		"the request costs up to %d model evaluations (%d samples, %d each), over this server's budget of %d per request; send fewer samples, or ask for fewer steps or samples per explanation",
-		work, n, work/max(n, 1), h.opt.MaxWork)}
+		"the request costs up to %s (%s, %d each), over this server's budget of %d per request; send fewer samples, or ask for fewer steps or samples per explanation",
+		count(work, "model evaluation"), count(n, "sample"), work/max(n, 1), h.opt.MaxWork)}
+}
+
+// count writes n things: "1 sample", "3 samples".
+func count(n int, thing string) string {
+	if n == 1 {
+		return "1 " + thing
+	}
+	return strconv.Itoa(n) + " " + thing + "s"
 }
 
 // run computes f on a worker under the request's time limit, as a heavy
