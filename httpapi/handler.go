@@ -27,14 +27,16 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
-	"io"
 	"log/slog"
 	"math"
 	"net"
 	"net/http"
 	"os"
+	"reflect"
 	"runtime"
+	"sort"
 	"strconv"
+	"strings"
 	"sync"
 	"time"
 
@@ -481,7 +483,11 @@ func (h *Handler) readBody(w http.ResponseWriter, r *http.Request) ([]byte, *htt
 		return nil, &httpError{http.StatusRequestEntityTooLarge,
 			fmt.Sprintf("request body of %d bytes is over the limit of %d bytes (%s)", r.ContentLength, limit, FormatBytes(limit))}
 	}
-	raw, err := io.ReadAll(http.MaxBytesReader(w, r.Body, limit))
+	// Read into one buffer of the announced size (bytes.MinRead over it,
+	// so that reading to the end does not grow it), not by doubling.
+	buf := bytes.NewBuffer(make([]byte, 0, max(r.ContentLength, 0)+bytes.MinRead))
+	_, err := buf.ReadFrom(http.MaxBytesReader(w, r.Body, limit))
+	raw := buf.Bytes()
 	if err != nil {
 		var mb *http.MaxBytesError
 		var ne net.Error
@@ -508,32 +514,91 @@ func (h *Handler) readRequest(w http.ResponseWriter, r *http.Request, v any) *ht
 	return decodeRequest(raw, v)
 }
 
-// decodeRequest decodes raw into v, refusing unknown fields and data after
-// the object. Bare NaN and Infinity tokens, which some encoders write but
-// JSON does not have, get a message of their own.
+// decodeRequest decodes raw, a JSON object, into v, a pointer to a struct
+// whose fields have json tags, refusing unknown fields and data after the
+// object. The object is split into its fields once, with no copy of the
+// body beyond their values, and each field is decoded into its own;
+// a field of the wrong type is named with what it takes. Bare NaN and
+// Infinity tokens, which some encoders write but JSON does not have, get a
+// message of their own.
 func decodeRequest(raw []byte, v any) *httpError {
-	dec := json.NewDecoder(bytes.NewReader(raw))
-	dec.DisallowUnknownFields()
-	err := dec.Decode(v)
-	if err == nil {
-		if _, terr := dec.Token(); terr != io.EOF {
-			return badRequest("malformed JSON: expected one object, got more data after it")
-		}
-		return nil
-	}
-	var se *json.SyntaxError
-	if errors.As(err, &se) && se.Offset > 0 && int(se.Offset) <= len(raw) {
-		rest := raw[se.Offset-1:]
-		for _, tok := range []string{"NaN", "Infinity"} {
-			if bytes.HasPrefix(rest, []byte(tok)) {
-				return badRequest("%s at byte %d: expected finite numbers, got a value that is not a finite number (JSON has no NaN or Infinity, and a model cannot be explained at one)", tok, se.Offset)
-			}
-		}
-	}
-	if errors.Is(err, io.EOF) {
+	if len(bytes.TrimSpace(raw)) == 0 {
 		return badRequest("malformed JSON: expected an object, got an empty body")
 	}
-	return badRequest("malformed JSON: %v", err)
+	var fields map[string]json.RawMessage
+	if err := json.Unmarshal(raw, &fields); err != nil {
+		var se *json.SyntaxError
+		var te *json.UnmarshalTypeError
+		switch {
+		case errors.As(err, &se) && strings.Contains(se.Error(), "after top-level value"):
+			return badRequest("malformed JSON: expected one object, got more data after it")
+		case errors.As(err, &se) && se.Offset > 0 && int(se.Offset) <= len(raw):
+			rest := raw[se.Offset-1:]
+			for _, tok := range []string{"NaN", "Infinity"} {
+				if bytes.HasPrefix(rest, []byte(tok)) {
+					return badRequest("%s at byte %d: expected finite numbers, got a value that is not a finite number (JSON has no NaN or Infinity, and a model cannot be explained at one)", tok, se.Offset)
+				}
+			}
+		case errors.As(err, &te):
+			return badRequest("malformed JSON: expected an object, got %s", jsonKind(te.Value))
+		}
+		return badRequest("malformed JSON: %v", err)
+	}
+	st := reflect.ValueOf(v).Elem()
+	known := map[string]int{}
+	for i := range st.NumField() {
+		name, _, _ := strings.Cut(st.Type().Field(i).Tag.Get("json"), ",")
+		known[name] = i
+	}
+	names := make([]string, 0, len(fields))
+	for name := range fields {
+		names = append(names, name)
+	}
+	sort.Strings(names)
+	for _, name := range names {
+		i, ok := known[name]
+		if !ok {
+			return badRequest("malformed JSON: unknown field %q", name)
+		}
+		f := st.Field(i)
+		if err := json.Unmarshal(fields[name], f.Addr().Interface()); err != nil {
+			return badRequest("%q must be %s, got %s", name, typeWords(f.Type()), fields[name])
+		}
+	}
+	return nil
+}
+
+// jsonKind names the kind of JSON value encoding/json reports.
+func jsonKind(kind string) string {
+	switch kind {
+	case "array", "object":
+		return "an " + kind
+	case "number", "string":
+		return "a " + kind
+	case "bool":
+		return "true or false"
+	}
+	return kind
+}
+
+// typeWords says what a request field of type t takes.
+func typeWords(t reflect.Type) string {
+	for t.Kind() == reflect.Pointer {
+		t = t.Elem()
+	}
+	switch t.Kind() {
+	case reflect.String:
+		return "a string"
+	case reflect.Bool:
+		return "true or false"
+	case reflect.Int, reflect.Int64:
+		return "an integer"
+	case reflect.Uint, reflect.Uint64:
+		return "a non-negative integer"
+	case reflect.Float64:
+		return "a number"
+	}
+	return "a JSON value"
 }
 
 // samplesOf reads the "inputs" field: one sample or an array of samples of

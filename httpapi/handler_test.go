@@ -65,7 +65,7 @@ func demoModel(t testing.TB) (*explain.Model, *explain.Dataset) {
 // testServer serves the pumps demo, with its reference set, on an
 // httptest listener (127.0.0.1), with the serve command's defaults; edit
 // changes the options.
-func testServer(t *testing.T, edit func(o *Options)) (*Handler, *httptest.Server, *syncBuffer) {
+func testServer(t testing.TB, edit func(o *Options)) (*Handler, *httptest.Server, *syncBuffer) {
 	t.Helper()
 	m, ref := demoModel(t)
 	logs := &syncBuffer{}

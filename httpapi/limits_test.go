@@ -171,3 +171,23 @@ func TestServeSlowBodyMeetsTheDeadline(t *testing.T) {
 	assert.Equal(t, "the request body did not arrive within the server's time limit of 300ms", errorOf(t, string(raw)))
 	assert.Less(t, sent.Load(), int64(999), "answered only after the whole body was sent")
 }
+
+func TestServeFieldTypes(t *testing.T) {
+	// A field of the wrong JSON type is named with what it takes, in the
+	// request's words.
+	_, ts, _ := testServer(t, nil)
+	sample := demoSampleJSON(t)
+	for body, want := range map[string]string{
+		`{"inputs": [` + sample + `], "method": 5}`:     `"method" must be a string, got 5`,
+		`{"inputs": [` + sample + `], "seed": -1}`:      `"seed" must be a non-negative integer, got -1`,
+		`{"inputs": [` + sample + `], "logits": "yes"}`: `"logits" must be true or false, got "yes"`,
+		`{"inputs": [` + sample + `], "noise": [0.1]}`:  `"noise" must be a number, got [0.1]`,
+		`[1, 2]`:             "malformed JSON: expected an object, got an array",
+		`{"inputs": [1]} {}`: "malformed JSON: expected one object, got more data after it",
+		` `:                  "malformed JSON: expected an object, got an empty body",
+	} {
+		code, _, got := post(t, ts.URL+"/v1/explain", body)
+		assert.Equal(t, http.StatusBadRequest, code, body)
+		assert.Equal(t, want, errorOf(t, got), body)
+	}
+}
