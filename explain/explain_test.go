@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
+	"io"
 	"os"
 	"path/filepath"
 	"strconv"
@@ -206,4 +207,62 @@ func TestWorkCountsEveryModelCall(t *testing.T) {
 		require.NoError(t, err)
 		assert.Equal(t, c.Samples(), want, method)
 	}
+}
+
+func TestDocumentWriterStreams(t *testing.T) {
+	// The explain document of a file read two samples at a time, written
+	// as its batches come, is the document of the file read whole, byte
+	// for byte (node/test_softmax_example of the ONNX backend test data,
+	// five samples, the fourth too short, with integrated gradients).
+	m, x, _ := softmax(t)
+	head, err := m.Head("", false)
+	require.NoError(t, err)
+	spec, err := m.Input()
+	require.NoError(t, err)
+	s := explain.Defaults()
+	s.Steps = 8
+	ex, err := explain.New(m, head, s)
+	require.NoError(t, err)
+	var rows []string
+	for i := range 5 {
+		d := float64(i) / 4
+		rows = append(rows, "["+testfiles.F32(x[0]+d)+","+testfiles.F32(x[1])+","+testfiles.F32(x[2]-d)+"]")
+	}
+	rows[3] = "[1, 2]"
+	file := "[" + strings.Join(rows, ",") + "]"
+	whole, err := samples.Read(strings.NewReader(file), "rows.json", spec, samples.Options{KeepBad: true})
+	require.NoError(t, err)
+	rep, err := ex.Explain(context.Background(), whole, nil)
+	require.NoError(t, err)
+	var want bytes.Buffer
+	require.NoError(t, rep.WriteJSON(&want))
+
+	stream, err := samples.NewStream(strings.NewReader(file), "rows.json", spec, samples.Options{KeepBad: true})
+	require.NoError(t, err)
+	var got bytes.Buffer
+	d := explain.NewDocumentWriter(&got)
+	for {
+		b, err := stream.Next(2)
+		if err == io.EOF {
+			break
+		}
+		require.NoError(t, err)
+		part, err := ex.Explain(context.Background(), b, nil)
+		require.NoError(t, err)
+		require.NoError(t, d.Write(part))
+	}
+	require.NoError(t, d.Close())
+	assert.Equal(t, want.String(), got.String())
+	assert.Contains(t, got.String(), `"index": 4`)
+
+	// A report without explanations makes the document's empty array.
+	var empty bytes.Buffer
+	d = explain.NewDocumentWriter(&empty)
+	rep.Explanations = nil
+	require.NoError(t, d.Write(rep))
+	require.NoError(t, d.Close())
+	want.Reset()
+	require.NoError(t, rep.WriteJSON(&want))
+	assert.Equal(t, want.String(), empty.String())
+	assert.Contains(t, empty.String(), `"explanations": []`)
 }

@@ -194,7 +194,8 @@ type Report struct {
 
 // Explanation is the result for one sample, or why there is none.
 type Explanation struct {
-	// Index is the sample's index in the batch.
+	// Index is the sample's index in its file: in the batch, plus the
+	// batch's First.
 	Index int
 	// Values is the sample.
 	Values []float64
@@ -248,7 +249,7 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 		record: e.record(o, byName)}
 	for i := 0; i < b.Samples; i++ {
 		x := b.Sample(i)
-		ex := Explanation{Index: i, Values: x}
+		ex := Explanation{Index: b.First + i, Values: x}
 		switch {
 		case b.Bad[i] != nil:
 			ex.Err = b.Bad[i]
