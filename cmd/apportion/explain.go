@@ -2,7 +2,6 @@ package main
 
 import (
 	"bytes"
-	"context"
 	"errors"
 	"flag"
 	"fmt"
@@ -146,50 +145,17 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		return fail(stderr, "explain", err)
 	}
 
-	ex, batch, err := c.load(runtime.GOMAXPROCS(0))
+	ex, in, spec, err := c.load(runtime.GOMAXPROCS(0))
 	if err != nil {
 		return fail(stderr, "explain", err)
 	}
-	rep, err := ex.Explain(context.Background(), batch, progress(stderr))
-	if err != nil {
-		return fail(stderr, "explain", err)
-	}
-
-	if c.format == "png" {
-		if err := writePNGs(c.out, rep); err != nil {
-			return failure(stderr, "explain", err)
-		}
-		return reportFailed(stderr, rep)
-	}
-	w := stdout
-	var buf bytes.Buffer
-	if c.out != "" {
-		w = &buf
-	}
-	switch c.format {
-	case "json":
-		err = rep.WriteJSON(w)
-	case "csv":
-		err = render.CSV(w, rep)
-	case "npy":
-		err = render.NPY(w, rep)
-	default:
-		err = render.Table(w, rep)
-	}
-	if err != nil {
-		return failure(stderr, "explain", err)
-	}
-	if c.out != "" {
-		if err := os.WriteFile(c.out, buf.Bytes(), 0o644); err != nil {
-			return failure(stderr, "explain", err)
-		}
-	}
-	return reportFailed(stderr, rep)
+	defer in.close()
+	return c.writeExplanations(ex, in, spec, stdout, stderr)
 }
 
-// writePNGs writes one PNG per explained sample to render.PNGPath(out, ...);
-// samples that failed get no file.
-func writePNGs(out string, rep *explain.Report) error {
+// writePNGs writes one PNG per explained sample to render.PNGPath(out, ...)
+// of n samples in all; samples that failed get no file.
+func writePNGs(out string, rep *explain.Report, n int) error {
 	for _, e := range rep.Explanations {
 		if e.Err != nil {
 			continue
@@ -198,7 +164,7 @@ func writePNGs(out string, rep *explain.Report) error {
 		if err := render.PNG(&buf, rep, e); err != nil {
 			return fmt.Errorf("sample %d: %w", e.Index, err)
 		}
-		if err := os.WriteFile(render.PNGPath(out, e.Index, len(rep.Explanations)), buf.Bytes(), 0o644); err != nil {
+		if err := os.WriteFile(render.PNGPath(out, e.Index, n), buf.Bytes(), 0o644); err != nil {
 			return err
 		}
 	}
@@ -208,13 +174,27 @@ func writePNGs(out string, rep *explain.Report) error {
 // reportFailed prints the samples that could not be explained and returns
 // the exit status.
 func reportFailed(stderr io.Writer, rep *explain.Report) int {
-	for _, e := range rep.Explanations {
+	return failedStatus(stderr, countFailed(stderr, rep.Explanations), len(rep.Explanations))
+}
+
+// countFailed prints the samples that could not be explained and returns
+// their number.
+func countFailed(stderr io.Writer, exps []explain.Explanation) int {
+	n := 0
+	for _, e := range exps {
 		if e.Err != nil {
 			fmt.Fprintf(stderr, "apportion explain: sample %d: %v\n", e.Index, e.Err)
+			n++
 		}
 	}
-	if n := rep.Failed(); n > 0 {
-		fmt.Fprintf(stderr, "apportion explain: %d of %d samples failed\n", n, len(rep.Explanations))
+	return n
+}
+
+// failedStatus says how many of total samples failed, if any, and returns
+// the exit status.
+func failedStatus(stderr io.Writer, failed, total int) int {
+	if failed > 0 {
+		fmt.Fprintf(stderr, "apportion explain: %d of %d samples failed\n", failed, total)
 		return exitFail
 	}
 	return exitOK
@@ -354,56 +334,71 @@ func (l *loadedModel) readSet(path string, field explain.Field) (*explain.Datase
 	return explain.NewDataset(path, raw, b), nil
 }
 
-// load reads the model and the samples, compiles the model with parallel
-// goroutines per call, and returns the explainer and the samples.
-func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, error) {
+// load reads the model and the first batches of the samples, compiles
+// the model with parallel goroutines per call, and returns the explainer,
+// the samples and their spec. The samples are read whole when the output
+// (.npy) or the baseline (the mean of the samples themselves) needs them
+// all; otherwise a long input is a stream.
+func (c *explainConfig) load(parallel int) (*explain.Explainer, *inputBatches, samples.Spec, error) {
 	l, err := loadModel(c.modelPath, c.demo)
 	if err != nil {
-		return nil, nil, err
+		return nil, nil, samples.Spec{}, err
 	}
 	m := l.model
 	spec, err := m.Input()
 	if err != nil {
-		return nil, nil, err
+		return nil, nil, spec, err
 	}
 	if _, err := m.Output(c.settings.Output); err != nil {
-		return nil, nil, err
+		return nil, nil, spec, err
 	}
-	var batch *samples.Batch
-	if c.inputPath == "" {
-		batch, err = samples.Read(bytes.NewReader(l.demo.Sample), l.demo.SampleFile, spec, m.ReadOptions(true))
-	} else {
-		batch, err = samples.ReadFile(c.inputPath, spec, m.ReadOptions(true))
-	}
+	in, err := openInput(l, c.inputPath, spec, m.ReadOptions(true))
 	if err != nil {
-		return nil, nil, err
+		return nil, nil, spec, err
 	}
-	if err := m.Compile(explain.CompileOptions{InputShapes: explain.OpenShapes(spec, batch), Parallel: parallel}); err != nil {
-		return nil, nil, err
+	ex, err := c.explainer(l, spec, in, parallel)
+	if err != nil {
+		in.close()
+	}
+	return ex, in, spec, err
+}
+
+// explainer compiles the model for the input's shape and makes the
+// explainer of c's settings.
+func (c *explainConfig) explainer(l *loadedModel, spec samples.Spec, in *inputBatches, parallel int) (*explain.Explainer, error) {
+	m := l.model
+	if err := m.Compile(explain.CompileOptions{InputShapes: explain.OpenShapes(spec, in.first()), Parallel: parallel}); err != nil {
+		return nil, err
 	}
 	if err := l.readDatasets(&c.settings); err != nil {
-		return nil, nil, err
+		return nil, err
 	}
-	if c.settings.Method == gradattr.MethodExpectedGradients && c.settings.Reference == nil {
-		return nil, nil, &usageErr{fmt.Sprintf("-method %s needs -reference, a file of reference samples", c.settings.Method)}
+	s := &c.settings
+	if s.Method == gradattr.MethodExpectedGradients && s.Reference == nil {
+		return nil, &usageErr{fmt.Sprintf("-method %s needs -reference, a file of reference samples", s.Method)}
+	}
+	inputMean := s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.Kind == gradattr.BaselineMean && s.Reference == nil
+	if !in.whole() && (c.format == "npy" || inputMean) {
+		if err := in.readWhole(); err != nil {
+			return nil, err
+		}
 	}
 	if c.groups != "" {
 		f, err := os.Open(c.groups)
 		if err != nil {
-			return nil, nil, fmt.Errorf("-groups: %w", err)
+			return nil, fmt.Errorf("-groups: %w", err)
 		}
-		c.settings.Groups, err = explain.ReadGroups(f)
+		s.Groups, err = explain.ReadGroups(f)
 		f.Close()
 		if err != nil {
-			return nil, nil, fmt.Errorf("-groups %s: %w", c.groups, err)
+			return nil, fmt.Errorf("-groups %s: %w", c.groups, err)
 		}
 	}
-	head, err := m.Head(c.settings.Output, c.settings.Logits)
+	head, err := m.Head(s.Output, s.Logits)
 	if err != nil {
-		return nil, nil, err
+		return nil, err
 	}
-	ex, err := explain.New(m, head, c.settings)
-	return ex, batch, err
+	return explain.New(m, head, *s)
 }
 
 // progress reports finished samples of a long batch on w when w is a
