@@ -153,3 +153,30 @@ func BenchmarkLargeInput(b *testing.B) {
 type discard struct{}
 
 func (discard) Write(p []byte) (int, error) { return len(p), nil }
+
+func TestSummarizeStreams(t *testing.T) {
+	// The demo's held-out rows with a bad one, summarised by pump line
+	// whole and one row per batch: the same summary document, bit for bit
+	// (the exact sums do not depend on the order rows are added in), and
+	// the same rows reported skipped.
+	raw, err := os.ReadFile("../../demo/data/pumps_test.csv")
+	require.NoError(t, err)
+	lines := strings.SplitAfter(string(raw), "\n")[:41]
+	lines[17] = "1,2,3\n"
+	input := filepath.Join(t.TempDir(), "rows.csv")
+	require.NoError(t, os.WriteFile(input, []byte(strings.Join(lines, "")), 0o644))
+	args := []string{"summarize", "-model", "../../demo/data/pumps.onnx", "-input", input, "-reference", "../../demo/data/pumps_reference.csv",
+		"-baseline", "mean", "-steps", "16", "-by", "pump_line", "-bootstrap", "20", "-format", "json"}
+	code, whole, errsWhole := cli(t, args...)
+	require.Equal(t, exitFail, code) // one row skipped
+	defer func(v int) { chunkValues, chunkDone = v, nil }(chunkValues)
+	chunkValues = 8
+	batches := 0
+	chunkDone = func() { batches++ }
+	code, streamed, errsStreamed := cli(t, args...)
+	require.Equal(t, exitFail, code)
+	assert.Equal(t, 40, batches)
+	assert.Equal(t, whole, streamed)
+	assert.Equal(t, errsWhole, errsStreamed)
+	assert.Contains(t, errsStreamed, "line 18: expected 10 fields, as in the header, got 3")
+}
