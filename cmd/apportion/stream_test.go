@@ -180,3 +180,29 @@ func TestSummarizeStreams(t *testing.T) {
 	assert.Equal(t, errsWhole, errsStreamed)
 	assert.Contains(t, errsStreamed, "line 18: expected 10 fields, as in the header, got 3")
 }
+
+func TestMalformedNPYThroughEveryCommand(t *testing.T) {
+	// The 10-byte .npy whose header once panicked inside the .npy library,
+	// and a real file cut short, given to explain, predict and -reference:
+	// a failure naming the file (status 1), never a panic.
+	dir := t.TempDir()
+	crash := filepath.Join(dir, "crash.npy")
+	require.NoError(t, os.WriteFile(crash, []byte("\x93NUMPY\x01000"), 0o644))
+	welds, err := os.ReadFile("../../demo/data/welds_reference.npy")
+	require.NoError(t, err)
+	cut := filepath.Join(dir, "cut.npy")
+	require.NoError(t, os.WriteFile(cut, welds[:40], 0o644))
+	pumps, weldsModel := "../../demo/data/pumps.onnx", "../../demo/data/welds.onnx"
+	for _, file := range []string{crash, cut} {
+		for _, args := range [][]string{
+			{"explain", "-model", pumps, "-input", file},
+			{"predict", "-model", pumps, "-input", file},
+			{"explain", "-model", weldsModel, "-input", "../../demo/data/welds_sample.json", "-baseline", "mean", "-reference", file},
+		} {
+			code, _, errs := cli(t, args...)
+			assert.Equal(t, exitFail, code, "%v: %s", args, errs)
+			assert.Contains(t, errs, file, args)
+			assert.NotContains(t, errs, "panic", args)
+		}
+	}
+}
