@@ -11,17 +11,18 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
 
-// fuzzSpecs are the inputs every fuzzed file is read for: a fixed sample
-// with named features, a rank-3 sample, an open dimension, no declared
+// fuzzSpecs are the inputs every fuzzed file is read for: a fixed float32
+// sample with named features, a rank-3 sample, an open dimension, no declared
 // shape, and scalar samples.
 var fuzzSpecs = []struct {
 	spec     samples.Spec
 	features []string
 }{
-	{samples.Spec{Name: "x", Shape: []int{-1, 8}, HasShape: true}, []string{"a", "b", "c", "d", "e", "f", "g", "h"}},
+	{samples.Spec{Name: "x", Elem: onnxlite.Float, Shape: []int{-1, 8}, HasShape: true}, []string{"a", "b", "c", "d", "e", "f", "g", "h"}},
 	{samples.Spec{Name: "x", Shape: []int{-1, 2, 4}, HasShape: true}, nil},
 	{samples.Spec{Name: "x", Shape: []int{-1, -1}, HasShape: true}, nil},
 	{samples.Spec{Name: "x"}, nil},
