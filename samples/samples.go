@@ -2,7 +2,11 @@
 // .npy and ONNX TensorProto (.pb) files, and turns them into tensors of the
 // model's input type. A file is read sample by sample: one that cannot be
 // read (a short CSV row, a field that is not a number, a JSON sample of the
-// wrong shape) is reported with where it is, and the others survive.
+// wrong shape, a value out of range) is reported with where it is, and the
+// others survive. Read takes a whole file; Stream and TableReader read one a
+// batch at a time, in memory that does not grow with its length. No input
+// makes a reader panic, and what a reader allocates follows the bytes it is
+// given, not the sizes a header declares.
 package samples
 
 import (
