@@ -19,6 +19,7 @@ import (
 	"github.com/apportion/apportion/internal/modelcount"
 	"github.com/apportion/apportion/internal/onnxtestdata"
 	"github.com/apportion/apportion/internal/testfiles"
+	"github.com/apportion/apportion/nn"
 	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
@@ -265,4 +266,23 @@ func TestDocumentWriterStreams(t *testing.T) {
 	require.NoError(t, rep.WriteJSON(&want))
 	assert.Equal(t, want.String(), empty.String())
 	assert.Contains(t, empty.String(), `"explanations": []`)
+}
+
+func TestCompileMaxValueBytes(t *testing.T) {
+	// The limit on a program's values reaches the engine: the softmax
+	// example (three float32 inputs and outputs, 24 bytes of values at
+	// batch 1; IEEE 754 binary32) runs within 24 bytes and not within 23.
+	dir := filepath.Join(onnxtestdata.Dir(t), "node", "test_softmax_example")
+	for limit, fits := range map[int64]bool{24: true, 23: false} {
+		m, err := explain.ReadModel(filepath.Join(dir, "model.onnx"))
+		require.NoError(t, err)
+		require.NoError(t, m.Compile(explain.CompileOptions{MaxValueBytes: limit}))
+		x := &onnxlite.Tensor{Name: "x", DType: onnxlite.Float, Dims: []int64{1, 3}, Data: []float32{1, 2, 3}}
+		_, err = m.Predict(context.Background(), []*onnxlite.Tensor{x})
+		if fits {
+			assert.NoError(t, err)
+		} else {
+			assert.ErrorIs(t, err, nn.ErrTooLarge)
+		}
+	}
 }

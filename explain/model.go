@@ -151,13 +151,16 @@ type CompileOptions struct {
 	// across (nn.Options.Parallel): one-shot runs use every core, servers
 	// 1, since their concurrency comes from requests.
 	Parallel int
+	// MaxValueBytes bounds the bytes of the values of one compiled
+	// program (nn.Options.MaxValueBytes); 0 means nn.DefaultMaxValueBytes.
+	MaxValueBytes int64
 }
 
 // Compile builds the model's network.
 func (m *Model) Compile(opt CompileOptions) error {
 	var nw *nn.Network
 	err := guard(func() (err error) {
-		nw, err = nn.Compile(m.Graph, nn.Options{InputShapes: opt.InputShapes, Parallel: opt.Parallel})
+		nw, err = nn.Compile(m.Graph, nn.Options{InputShapes: opt.InputShapes, Parallel: opt.Parallel, MaxValueBytes: opt.MaxValueBytes})
 		return err
 	})
 	if err != nil {
