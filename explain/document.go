@@ -48,7 +48,8 @@ func (n Numbers) MarshalJSON() ([]byte, error) {
 //	              "reference" (the reference set's name)},
 //	 "explanations": [{"index", "target", "outputs", "attributions",
 //	                   "shape", "baseline_outputs", "completeness",
-//	                   "points", "error", "groups"}]}
+//	                   "points", "error", "groups",
+//	                   "warnings": [{"code", "message", "suggest"}]}]}
 //
 // A failed sample has "error" and null results.
 type Document struct {
@@ -81,6 +82,8 @@ type ExplanationDocument struct {
 	// Groups is present with feature groups: the attributions summed per
 	// group.
 	Groups *gradattr.GroupedResult `json:"groups,omitempty"`
+	// Warnings are the result's warnings, [] for none.
+	Warnings []Warning `json:"warnings"`
 }
 
 // Document returns the report's document.
@@ -108,7 +111,7 @@ func (r *Report) explanationDocument(e Explanation) ExplanationDocument {
 	if shape == nil {
 		shape = []int{}
 	}
-	j := ExplanationDocument{Index: e.Index, Shape: shape}
+	j := ExplanationDocument{Index: e.Index, Shape: shape, Warnings: []Warning{}}
 	if e.Err != nil {
 		msg := e.Err.Error()
 		j.Error = &msg
@@ -128,6 +131,9 @@ func (r *Report) explanationDocument(e Explanation) ExplanationDocument {
 	j.Completeness = res.Completeness
 	j.Points = res.Cost.GradientEvals
 	j.Groups = e.Grouped
+	if e.Warnings != nil {
+		j.Warnings = e.Warnings
+	}
 	return j
 }
 

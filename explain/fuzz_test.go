@@ -40,10 +40,18 @@ func pumps(f *testing.F) (*explain.Model, gradattr.Model, []float64) {
 	return m, head, b.Sample(0)
 }
 
-// FuzzReadGroups reads arbitrary bytes as a groups file and sets the
-// groups to explain the pumps demo (eight features). Nothing may panic;
-// groups that are accepted sum any attributions.
+// FuzzReadGroups reads arbitrary bytes as a groups file of the pumps demo
+// (eight features, by index or by the model's names) and sets the groups
+// to explain it. Nothing may panic; groups that are accepted sum any
+// attributions.
 func FuzzReadGroups(f *testing.F) {
+	m, head, _ := pumps(f)
+	names := m.ReadOptions(false).Features
+	if len(names) != 8 {
+		f.Fatalf("expected the pumps demo to name its 8 features, got %q", names)
+	}
+	f.Add([]byte(`{"first": ["` + names[0] + `", 7], "twice": ["` + names[1] + `", 1]}`))
+	f.Add([]byte(`[{"name": "g", "indices": ["` + names[2] + `", "no such feature"]}]`))
 	for _, seed := range []string{
 		`{"temperatures": [0, 7], "pressures": [2, 3], "rest": [1, 4, 5, 6]}`,
 		`[{"name": "a", "indices": [0, 1]}, {"name": "b", "indices": [2]}]`,
@@ -52,9 +60,8 @@ func FuzzReadGroups(f *testing.F) {
 	} {
 		f.Add([]byte(seed))
 	}
-	m, head, _ := pumps(f)
 	f.Fuzz(func(t *testing.T, data []byte) {
-		groups, err := explain.ReadGroups(bytes.NewReader(data))
+		groups, err := explain.ReadGroups(bytes.NewReader(data), 8, names)
 		if err != nil {
 			return
 		}

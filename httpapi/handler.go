@@ -6,16 +6,22 @@
 //	POST /v1/predict   {"inputs": [sample, ...]}: the predict document
 //	POST /v1/explain   {"inputs", "method", "target", "steps", "rule",
 //	                   "tolerance", "baseline", "samples", "noise", "seed",
-//	                   "logits"}: the explain document; absent fields take
-//	                   explain.Defaults
+//	                   "logits", "abs", "variant"}: the explain document;
+//	                   absent fields take explain.Defaults
 //	GET  /metrics      Prometheus text format
+//
+// A sample in "inputs" is an array of numbers in the model's input shape,
+// or, for a model whose metadata names its features, an object of the
+// features' values by name ({"bearing_temp": 77.2, ...}; every feature
+// given, no other key).
 //
 // Errors are {"error": "...", "request_id": "..."}: 400 for a bad request,
 // 408 for a body that does not arrive within the time limit, 413 for a
 // body, a number of samples or a cost over the limits, 503 with
 // Retry-After when the queue is full, 504 past the time limit. Every answer
 // carries X-Request-ID: the client's own, or one made for the request,
-// which the request's log line gives too. A bounded pool of workers computes requests; with coalescing, the
+// which the request's log line gives too. A bounded pool of workers
+// computes requests; with coalescing, the
 // model passes of concurrent requests are stacked into shared batches.
 package httpapi
 
@@ -601,13 +607,23 @@ func typeWords(t reflect.Type) string {
 	return "a JSON value"
 }
 
+// tooManySamples is the error of a request of more than MaxSamples samples.
+func (h *Handler) tooManySamples() *httpError {
+	return &httpError{http.StatusRequestEntityTooLarge,
+		fmt.Sprintf(`"inputs" holds more than the %s one request may have; send them in several requests`, count(h.opt.MaxSamples, "sample"))}
+}
+
 // samplesOf reads the "inputs" field: one sample or an array of samples of
 // the model's input shape, finite numbers only, at most Options.MaxSamples
-// of them (the reading stops at the sample past the limit). The first
-// sample that cannot be read is the error.
+// of them (the reading stops at the sample past the limit); a sample is an
+// array of numbers, or an object of its features' values by name (see
+// namedInputs). The first sample that cannot be read is the error.
 func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError) {
 	if len(bytes.TrimSpace(inputs)) == 0 || string(bytes.TrimSpace(inputs)) == "null" {
 		return nil, badRequest(`"inputs" is required: an array of samples of shape %s`, samples.ShapeString(h.sampleShape()))
+	}
+	if b, ok, herr := h.namedInputs(inputs); ok {
+		return b, herr
 	}
 	var b *samples.Batch
 	s, err := samples.NewStream(bytes.NewReader(inputs), "inputs.json", h.spec, samples.Options{MaxSamples: h.opt.MaxSamples})
@@ -615,8 +631,7 @@ func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError)
 		b, err = s.All()
 	}
 	if errors.Is(err, samples.ErrTooMany) {
-		return nil, &httpError{http.StatusRequestEntityTooLarge,
-			fmt.Sprintf(`"inputs" holds more than the %s one request may have; send them in several requests`, count(h.opt.MaxSamples, "sample"))}
+		return nil, h.tooManySamples()
 	}
 	if fe := (*samples.FileError)(nil); errors.As(err, &fe) {
 		err = fe.Err
@@ -769,6 +784,8 @@ type explainRequest struct {
 	Noise     *float64        `json:"noise"`
 	Seed      *uint64         `json:"seed"`
 	Logits    *bool           `json:"logits"`
+	Abs       *bool           `json:"abs"`
+	Variant   *string         `json:"variant"`
 }
 
 // fieldName names a setting as a request field: "steps".
@@ -814,6 +831,8 @@ func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 		{explain.FieldSamples, req.Samples != nil, func() string { return strconv.Itoa(*req.Samples) }},
 		{explain.FieldNoise, req.Noise != nil, func() string { return float(*req.Noise) }},
 		{explain.FieldSeed, req.Seed != nil, func() string { return strconv.FormatUint(*req.Seed, 10) }},
+		{explain.FieldAbs, req.Abs != nil, func() string { return strconv.FormatBool(*req.Abs) }},
+		{explain.FieldVariant, req.Variant != nil, func() string { return *req.Variant }},
 	}
 	for _, fl := range fields {
 		if !fl.given {
@@ -824,7 +843,7 @@ func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 		}
 	}
 	if st.Baseline.Kind == gradattr.BaselineValues {
-		return st, badRequest(`"baseline" must be zero, mean, blur or blur:S, got %q`, *req.Baseline)
+		return st, badRequest(`"baseline" must be %s (files are the command line's), got %q`, explain.BaselineWords, *req.Baseline)
 	}
 	if st.NeedsReference() {
 		st.Reference = h.opt.Reference

@@ -26,7 +26,7 @@ func TestServeShortSecondSample(t *testing.T) {
 		code, _, body := post(t, ts.URL+route, `{"inputs": [`+sample+`, [1, 2, 3]]`+extra+`}`)
 		assert.Equal(t, http.StatusBadRequest, code, route)
 		msg := errorOf(t, body)
-		assert.Equal(t, `"inputs" (for "sensors"): at [1]: expected 8 values (shape [8]), got 3 (shape [3])`, msg, route)
+		assert.Equal(t, `"inputs" (for "sensors"): sample 1: expected 8 values (shape [8]), got 3 (shape [3])`, msg, route)
 		assert.NotContains(t, msg, "NaN")
 	}
 }

@@ -93,6 +93,14 @@ func (s *csvSource) features() []string {
 	return s.header
 }
 
+// ignored names the header's columns a read by feature names leaves out.
+func (s *csvSource) ignored() []string {
+	if s.byName {
+		return unread(s.header, s.cols, -1)
+	}
+	return nil
+}
+
 // record reads the next record and the line it starts on.
 func (s *csvSource) record() ([]string, int, error) {
 	if s.pending != nil {
@@ -127,7 +135,7 @@ func (s *csvSource) next(n, first int) (*Batch, error) {
 		if err != nil {
 			return nil, err
 		}
-		where := fmt.Sprintf("line %d (sample %d)", line, first+b.Samples)
+		where := fmt.Sprintf("line %d", line)
 		x, err := s.row(rec)
 		if err != nil {
 			b.markBad(b.Samples, fmt.Errorf("%s%w", where, err))
@@ -150,7 +158,7 @@ func (s *csvSource) row(rec []string) ([]float64, error) {
 		if len(rec) != len(s.header) {
 			return nil, fmt.Errorf(": expected %d fields, as in the header, got %d", len(s.header), len(rec))
 		}
-		x, err := parseFields(rec, s.cols, false, func(j int) string { return "column " + s.header[j] })
+		x, err := parseFields(rec, s.cols, true, func(j int) string { return "column " + s.header[j] })
 		if err != nil {
 			return nil, fmt.Errorf(", %w", err)
 		}
@@ -159,7 +167,11 @@ func (s *csvSource) row(rec []string) ([]float64, error) {
 	if len(rec) != len(s.cols) {
 		return nil, fmt.Errorf(": expected %d values, got %d", len(s.cols), len(rec))
 	}
-	x, err := parseFields(rec, s.cols, false, func(j int) string { return "field " + strconv.Itoa(j) })
+	name := func(j int) string { return "column " + strconv.Itoa(j+1) }
+	if s.header != nil {
+		name = func(j int) string { return "column " + s.header[j] }
+	}
+	x, err := parseFields(rec, s.cols, true, name)
 	if err != nil {
 		return nil, fmt.Errorf(", %w", err)
 	}
@@ -172,6 +184,9 @@ type Table struct {
 	// Columns names the columns read as the samples' values, in order;
 	// nil for a file that is not CSV.
 	Columns []string
+	// Ignored names the columns of a CSV file that are neither values nor
+	// the group column, in file order.
+	Ignored []string
 	// SampleShape is the shape of one sample of a file that is not CSV;
 	// nil for CSV, whose samples are flat.
 	SampleShape []int
@@ -229,7 +244,7 @@ func ReadTable(r io.Reader, name string, spec Spec, opt TableOptions) (*Table, e
 	if err != nil {
 		return nil, err
 	}
-	t := &Table{Columns: tr.Columns, SampleShape: tr.SampleShape}
+	t := &Table{Columns: tr.Columns, Ignored: tr.Ignored, SampleShape: tr.SampleShape}
 	for {
 		rows, err := tr.Next(readChunk)
 		if err == io.EOF {
@@ -246,8 +261,9 @@ func ReadTable(r io.Reader, name string, spec Spec, opt TableOptions) (*Table, e
 // so that a table of any length is summarised in constant memory (see
 // ReadTable for the columns read).
 type TableReader struct {
-	// Columns and SampleShape are the table's (see Table).
+	// Columns, Ignored and SampleShape are the table's (see Table).
 	Columns     []string
+	Ignored     []string
 	SampleShape []int
 	next        func(n int) ([]Row, error)
 }
@@ -385,7 +401,7 @@ func newCSVTable(r io.Reader, name string, opt TableOptions) (*TableReader, erro
 		row.Values, row.Err = parseFields(rec, cols, true, func(j int) string { return "column " + header[j] })
 		return row
 	}
-	t := &TableReader{Columns: pick(header, cols)}
+	t := &TableReader{Columns: pick(header, cols), Ignored: unread(header, cols, groupCol)}
 	t.next = func(n int) ([]Row, error) {
 		var rows []Row
 		for len(rows) < n {
@@ -441,18 +457,43 @@ func parseFields(rec []string, cols []int, finite bool, name func(j int) string)
 	return x, nil
 }
 
-// columnsByName returns the positions of the features in the header.
+// columnsByName returns the positions of the features in the header. A
+// feature the header lacks is an error naming every one missing.
 func columnsByName(header, features []string) ([]int, error) {
 	index := columnIndex(header)
 	cols := make([]int, len(features))
+	var missing []string
 	for i, f := range features {
 		j, ok := index[f]
 		if !ok {
-			return nil, fmt.Errorf("the model's feature %q (metadata feature_names) is not a column (columns: %s)", f, strings.Join(header, ", "))
+			missing = append(missing, strconv.Quote(f))
 		}
 		cols[i] = j
 	}
+	if len(missing) > 0 {
+		what := "feature " + missing[0] + " is not a column"
+		if len(missing) > 1 {
+			what = "features " + strings.Join(missing, ", ") + " are not columns"
+		}
+		return nil, fmt.Errorf("the model's %s of the file (the header is matched to the feature names in the model's metadata; the columns are %s)", what, strings.Join(header, ", "))
+	}
 	return cols, nil
+}
+
+// unread returns the columns of header that are not in cols and are not
+// column skip (-1 for none), in file order.
+func unread(header []string, cols []int, skip int) []string {
+	used := map[int]bool{skip: true}
+	for _, j := range cols {
+		used[j] = true
+	}
+	var out []string
+	for j, h := range header {
+		if !used[j] {
+			out = append(out, h)
+		}
+	}
+	return out
 }
 
 // columnIndex maps each column name to its first position.

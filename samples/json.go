@@ -195,21 +195,32 @@ func (s *jsonSource) next(n, first int) (*Batch, error) {
 }
 
 // check says why v is not a sample of the stream's shape, or returns nil;
-// i is its index.
+// i is its index. An error about the sample as a whole is a
+// *wholeSampleError, which does not say where the sample is.
 func (s *jsonSource) check(v *jsonValue, per, i int) error {
 	got := len(v.data) - v.base
-	at := "[" + strconv.Itoa(i) + "]"
 	switch {
 	case v.err != nil:
 		return v.err
 	case got != per && s.fixed:
-		return fmt.Errorf("at %s: expected %d values (shape %s), got %d (shape %s)", at, per, ShapeString(s.sample), got, ShapeString(v.shape))
+		return wholeSampleErrorf("expected %d values (shape %s), got %d (shape %s)", per, ShapeString(s.sample), got, ShapeString(v.shape))
 	case slices.Equal(v.shape, s.sample), s.fixed && slices.Equal(v.shape, []int{per}):
 		return nil
 	case s.fixed:
-		return fmt.Errorf("at %s: expected a sample of shape %s or %d flat values, got shape %s", at, ShapeString(s.sample), per, ShapeString(v.shape))
+		return wholeSampleErrorf("expected a sample of shape %s or %d flat values, got shape %s", ShapeString(s.sample), per, ShapeString(v.shape))
 	}
-	return fmt.Errorf("ragged array at %s: expected a sample of shape %s, as the first, got shape %s", at, ShapeString(s.sample), ShapeString(v.shape))
+	return wholeSampleErrorf("ragged array: expected a sample of shape %s, as the first, got shape %s", ShapeString(s.sample), ShapeString(v.shape))
+}
+
+// wholeSampleError is an error about a sample as a whole, whose index the
+// caller gives: a batch's Bad is indexed by it, and a stream that stops at
+// the first bad sample names it.
+type wholeSampleError struct{ msg string }
+
+func (e *wholeSampleError) Error() string { return e.msg }
+
+func wholeSampleErrorf(format string, a ...any) error {
+	return &wholeSampleError{fmt.Sprintf(format, a...)}
 }
 
 // matchesShape reports whether got fits want, where -1 in want matches any
@@ -433,7 +444,7 @@ func (sc *jsonScanner) number() (float64, error) {
 		return 0, err
 	case err != nil && string(sc.num) == "-":
 		if b, _ := sc.r.Peek(8); string(b) == "Infinity" {
-			return 0, nonFiniteJSON("-Infinity", start)
+			return 0, nonFiniteJSON("Infinity", start+1)
 		}
 		fallthrough
 	case err != nil:
@@ -513,10 +524,11 @@ func (sc *jsonScanner) skip(depth int) (string, error) {
 	return "", sc.unexpected(c, "a value")
 }
 
-// nonFiniteJSON is the error of a NaN or Infinity token, which some
-// encoders write but JSON does not have.
+// nonFiniteJSON is the error of a NaN or Infinity token (word) whose
+// first letter is byte off, which some encoders write but JSON does not
+// have.
 func nonFiniteJSON(word string, off int64) error {
-	return fmt.Errorf("reading JSON: %s at byte %d: expected finite numbers, got a value that is not a finite number (JSON has no NaN or Infinity, and a model cannot be explained at one)", word, off)
+	return fmt.Errorf("reading JSON: %w", &NonFiniteTokenError{Token: word, Offset: off})
 }
 
 // errIgnored marks a value read only for its syntax.

@@ -120,18 +120,23 @@ func TestReadJSONSampleErrors(t *testing.T) {
 	require.NoError(t, err)
 	require.Equal(t, 7, b.Samples)
 	assert.Len(t, b.Bad, 5)
-	assert.EqualError(t, b.Bad[1], "at [1]: expected 8 values (shape [8]), got 3 (shape [3])")
+	// A sample's shape is its own error, which its index in the batch
+	// places; a value's position is said.
+	assert.EqualError(t, b.Bad[1], "expected 8 values (shape [8]), got 3 (shape [3])")
 	assert.EqualError(t, b.Bad[2], "at [2]: expected a number, got null")
 	assert.EqualError(t, b.Bad[3], "at [3]: expected a number, got a string")
 	assert.EqualError(t, b.Bad[4], "at [4]: expected a number, got an object")
-	assert.EqualError(t, b.Bad[5], "at [5]: expected a sample of shape [8] or 8 flat values, got shape [2 4]")
+	assert.EqualError(t, b.Bad[5], "expected a sample of shape [8] or 8 flat values, got shape [2 4]")
 	assert.Equal(t, []float64{1, 2, 3, 4, 5, 6, 7, 8}, b.Sample(6))
+	// Read without KeepBad, the first bad sample is the error, named.
+	_, err = samples.Read(strings.NewReader(doc), "s.json", pumpsSpec, samples.Options{})
+	assert.EqualError(t, err, `input s.json (for "sensors"): sample 1: expected 8 values (shape [8]), got 3 (shape [3])`)
 
 	for doc, want := range map[string]string{
 		`[[1,2,3,4,5,6,7,8], [1,2`:          "expected a value, , or ] at byte 25, got the end of the file",
 		`[[1,2,3,4,5,6,7,8]] [1]`:           "expected one array, got more data after it",
 		`[[1,2,3,4,5,6,7,NaN]]`:             "NaN at byte 17: expected finite numbers",
-		`[[1,2,3,4,5,6,7,-Infinity]]`:       "-Infinity at byte 17: expected finite numbers",
+		`[[1,2,3,4,5,6,7,-Infinity]]`:       "Infinity at byte 18: expected finite numbers",
 		`[[1,2,3,4,5,6,7,8], {"a" 1}]`:      `expected : at byte 26, got '1'`,
 		`[[1,2,3,4,5,6,7,8] [1]]`:           "expected , or ] at byte 21, got '['",
 		``:                                  "expected an array of samples, got an empty file",

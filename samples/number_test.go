@@ -1,7 +1,6 @@
 package samples_test
 
 import (
-	"math"
 	"strings"
 	"testing"
 
@@ -38,19 +37,17 @@ func TestCSVNumbers(t *testing.T) {
 	assert.Equal(t, []float64{0.5, 3}, b.Sample(1))
 	assert.Equal(t, []float64{1000, 0.001}, b.Sample(2))
 	assert.Equal(t, []float64{1e-320, 0}, b.Sample(3))
-	assert.EqualError(t, b.Bad[4], `line 6 (sample 4), field 0: "1_000" is not a number`)
-	assert.EqualError(t, b.Bad[5], `line 7 (sample 5), field 0: "0x1p-2" is not a number`)
-	assert.EqualError(t, b.Bad[6], "line 8 (sample 6), field 0: 1e400 is out of the float64 range (larger than 1.8e308 in magnitude)")
-	assert.EqualError(t, b.Bad[7], "line 9 (sample 7), field 0: 1e-400 is out of the float64 range (smaller than 4.9e-324 in magnitude, it would read as 0)")
+	assert.EqualError(t, b.Bad[4], `line 6, column a: "1_000" is not a number`)
+	assert.EqualError(t, b.Bad[5], `line 7, column a: "0x1p-2" is not a number`)
+	assert.EqualError(t, b.Bad[6], "line 8, column a: 1e400 is out of the float64 range (larger than 1.8e308 in magnitude)")
+	assert.EqualError(t, b.Bad[7], "line 9, column a: 1e-400 is out of the float64 range (smaller than 4.9e-324 in magnitude, it would read as 0)")
 	assert.Contains(t, b.Bad[8].Error(), "-2e-400 is out of the float64 range")
 	var re *samples.RangeError
 	assert.ErrorAs(t, b.Bad[6], &re)
-	// NaN and infinities are words the reader knows, refused later as not
-	// finite.
-	assert.NotContains(t, b.Bad, 9)
-	assert.True(t, math.IsNaN(b.Sample(9)[0]))
-	assert.True(t, math.IsInf(b.Sample(9)[1], 1))
-	assert.ErrorIs(t, b.CheckFinite(), samples.ErrNonFinite)
+	// NaN and infinities are words the reader knows, refused as not
+	// finite where they are.
+	assert.EqualError(t, b.Bad[9], "line 11, column a: NaN value is not a finite number")
+	assert.ErrorIs(t, b.Bad[9], samples.ErrNonFinite)
 
 	// A first row of numbers out of range is data, not a header.
 	b, err = samples.Read(strings.NewReader("1e400,1\n2,3\n"), "n.csv", spec, samples.Options{KeepBad: true})

@@ -93,6 +93,10 @@ type Batch struct {
 	// Features holds the CSV header's names of the columns read, when the
 	// file has a header.
 	Features []string
+	// Ignored names the columns of a CSV file read by the model's feature
+	// names that are not features, in file order: a caller may say they
+	// were left out.
+	Ignored []string
 	// Tensor is the decoded .pb tensor, nil for other formats.
 	Tensor *onnxlite.Tensor
 	// Bad holds, by sample index, the samples that could not be read (a CSV
@@ -112,16 +116,22 @@ func (b *Batch) markBad(i int, err error) {
 
 // FirstBad returns the error of the lowest-numbered bad sample, or nil.
 func (b *Batch) FirstBad() error {
+	if first := b.firstBadIndex(); first >= 0 {
+		return b.Bad[first]
+	}
+	return nil
+}
+
+// firstBadIndex is the index of the first sample that could not be read,
+// or -1.
+func (b *Batch) firstBadIndex() int {
 	first := -1
 	for i := range b.Bad {
 		if first < 0 || i < first {
 			first = i
 		}
 	}
-	if first < 0 {
-		return nil
-	}
-	return b.Bad[first]
+	return first
 }
 
 // SampleSize is the number of values in one sample.

@@ -38,8 +38,9 @@ type Stream struct {
 	// bare leaves errors unwrapped, for the format readers, whose
 	// callers name the file.
 	bare bool
-	// features are the CSV header's names of the columns read.
-	features []string
+	// features are the CSV header's names of the columns read; ignored
+	// the columns a read by feature names leaves out.
+	features, ignored []string
 }
 
 // NewStream starts reading r, a file called name whose extension selects
@@ -57,7 +58,7 @@ func NewStream(r io.Reader, name string, spec Spec, opt Options) (*Stream, error
 		return nil, s.wrap(err)
 	}
 	if c, ok := s.src.(*csvSource); ok {
-		s.features = c.features()
+		s.features, s.ignored = c.features(), c.ignored()
 	}
 	return s, nil
 }
@@ -132,6 +133,10 @@ func (e *FileError) Unwrap() error { return e.Err }
 // has a header.
 func (s *Stream) Features() []string { return s.features }
 
+// Ignored names the columns of a CSV file read by the model's feature
+// names that are not features, in file order (see Batch.Ignored).
+func (s *Stream) Ignored() []string { return s.ignored }
+
 // Next returns the next batch of at most n samples (n < 1 means 1), or
 // io.EOF after the last. Without Options.KeepBad a sample that cannot be
 // read, or holds a NaN or an infinity, is the error; with it, the sample
@@ -162,7 +167,7 @@ func (s *Stream) Next(n int) (*Batch, error) {
 	}
 	b.Name, b.First = s.name, s.done
 	if b.Features == nil {
-		b.Features = s.features
+		b.Features, b.Ignored = s.features, s.ignored
 	}
 	if s.spec.Elem == onnxlite.Float && b.Tensor == nil {
 		b.checkFloat32()
@@ -171,6 +176,10 @@ func (s *Stream) Next(n int) (*Batch, error) {
 	if !s.opt.KeepBad {
 		if err = b.FirstBad(); err == nil {
 			err = b.CheckFinite()
+		}
+		var whole *wholeSampleError
+		if errors.As(err, &whole) {
+			err = fmt.Errorf("sample %d: %w", b.First+b.firstBadIndex(), err)
 		}
 		if err != nil {
 			s.err = s.wrap(err)
@@ -245,7 +254,7 @@ func concat(parts []*Batch) *Batch {
 		size += len(p.Data)
 	}
 	first := parts[0]
-	all := &Batch{Name: first.Name, First: first.First, Samples: n, Features: first.Features,
+	all := &Batch{Name: first.Name, First: first.First, Samples: n, Features: first.Features, Ignored: first.Ignored,
 		Shape: append([]int{n}, first.SampleShape()...), Data: make([]float64, 0, size)}
 	for _, p := range parts {
 		for i, err := range p.Bad {
@@ -263,7 +272,7 @@ func readAll(src source, err error) (*Batch, error) {
 	}
 	s := &Stream{src: src, opt: Options{KeepBad: true}, bare: true}
 	if c, ok := src.(*csvSource); ok {
-		s.features = c.features()
+		s.features, s.ignored = c.features(), c.ignored()
 	}
 	return s.All()
 }

@@ -57,10 +57,10 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		for i, f := range feeds {
 			names[i] = f.Name
 		}
-		return usageError(stderr, "predict", "the model has %d inputs (%s), got %d -input files", len(feeds), strings.Join(names, ", "), len(inputs))
+		return usageError(stderr, "predict", "the model has %s (%s), got %s", render.Count(len(feeds), "input", "inputs"), strings.Join(names, ", "), render.Count(len(inputs), "-input file", "-input files"))
 	}
 	if len(feeds) == 1 {
-		res, count, err := predictStream(m, inputs[0], samples.SpecOf(feeds[0]), m.ReadOptions(false))
+		res, count, err := predictStream(m, inputs[0], samples.SpecOf(feeds[0]), m.ReadOptions(false), stderr)
 		if err != nil {
 			return failure(stderr, "predict", err)
 		}
@@ -75,6 +75,9 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		b, err := samples.ReadFile(inputs[i], spec, opt)
 		if err != nil {
 			return failure(stderr, "predict", err)
+		}
+		if n := ignoredNote(b.Name, b.Ignored); n != "" {
+			notes(stderr, "predict", []string{n})
 		}
 		t, err := b.ToTensor(spec)
 		if err != nil {

@@ -115,13 +115,17 @@ func (in *inputBatches) close() {
 // its one runtime input, a batch at a time: the outputs are kept, the
 // inputs are not. It returns the outputs of all the samples, as one run
 // on them all gives them (a sample's outputs do not depend on its batch),
-// and their number.
-func predictStream(m *explain.Model, path string, spec samples.Spec, opt samples.Options) (*explain.Prediction, int, error) {
+// and their number. The columns of a CSV file the model does not read are
+// noted on stderr.
+func predictStream(m *explain.Model, path string, spec samples.Spec, opt samples.Options, stderr io.Writer) (*explain.Prediction, int, error) {
 	in, err := openInput(nil, path, spec, opt)
 	if err != nil {
 		return nil, 0, err
 	}
 	defer in.close()
+	if n := ignoredNote(in.first().Name, in.first().Ignored); n != "" {
+		notes(stderr, "predict", []string{n})
+	}
 	if err := m.Compile(explain.CompileOptions{InputShapes: explain.OpenShapes(spec, in.first()), Parallel: runtime.GOMAXPROCS(0)}); err != nil {
 		return nil, 0, err
 	}
@@ -188,10 +192,10 @@ func (c *explainConfig) writeExplanations(ex *explain.Explainer, in *inputBatche
 			return fail(stderr, "explain", err)
 		}
 		if c.format == "png" {
-			if err := writePNGs(c.out, rep, len(rep.Explanations)); err != nil {
+			if err := writePNGs(c.out, rep, len(rep.Explanations), c.render); err != nil {
 				return failure(stderr, "explain", err)
 			}
-			return reportFailed(stderr, rep)
+			return c.reportFailed(stderr, rep)
 		}
 		w := stdout
 		var buf bytes.Buffer
@@ -206,7 +210,7 @@ func (c *explainConfig) writeExplanations(ex *explain.Explainer, in *inputBatche
 		case "npy":
 			err = render.NPY(w, rep)
 		default:
-			err = render.Table(w, rep)
+			err = render.Table(w, rep, c.render)
 		}
 		if err != nil {
 			return failure(stderr, "explain", err)
@@ -216,7 +220,19 @@ func (c *explainConfig) writeExplanations(ex *explain.Explainer, in *inputBatche
 				return failure(stderr, "explain", err)
 			}
 		}
-		return reportFailed(stderr, rep)
+		if c.format == "npy" && rep.Settings.Groups != nil {
+			// The group sums are a second array, in a file of their own.
+			var g bytes.Buffer
+			path := groupsPath(c.out)
+			if err := render.GroupsNPY(&g, rep); err != nil {
+				return failure(stderr, "explain", err)
+			}
+			if err := os.WriteFile(path, g.Bytes(), 0o644); err != nil {
+				return failure(stderr, "explain", err)
+			}
+			fmt.Fprintf(stderr, "apportion explain: wrote the group sums, %s × %s, to %s\n", render.Count(len(rep.Explanations), "sample", "samples"), render.Count(len(rep.Settings.Groups), "group", "groups"), path)
+		}
+		return c.reportFailed(stderr, rep)
 	}
 
 	out := &lazyFile{path: c.out, w: stdout}
@@ -225,7 +241,7 @@ func (c *explainConfig) writeExplanations(ex *explain.Explainer, in *inputBatche
 	var header string // what the table or CSV writes before the first sample
 	show, done := streamProgress(stderr)
 	defer done()
-	failed, total := 0, 0
+	var t tally
 	for {
 		b, err := in.next(chunkSamples(spec))
 		if err == io.EOF {
@@ -240,18 +256,18 @@ func (c *explainConfig) writeExplanations(ex *explain.Explainer, in *inputBatche
 		}
 		switch c.format {
 		case "png":
-			err = writePNGs(c.out, rep, 2) // many samples: numbered files
+			err = writePNGs(c.out, rep, 2, c.render) // many samples: numbered files
 		case "json":
 			if doc == nil {
 				doc = explain.NewDocumentWriter(out)
 			}
 			err = doc.Write(rep)
 		default:
-			if total == 0 {
-				header, err = renderHead(c.format, rep)
+			if t.total == 0 {
+				header, err = renderHead(c.format, rep, c.render)
 			}
 			if err == nil {
-				err = writeWithoutHead(out, c.format, rep, header, total > 0)
+				err = writeWithoutHead(out, c.format, rep, c.render, header, t.total > 0)
 			}
 		}
 		if err == nil {
@@ -260,8 +276,7 @@ func (c *explainConfig) writeExplanations(ex *explain.Explainer, in *inputBatche
 		if err != nil {
 			return failure(stderr, "explain", err)
 		}
-		failed += countFailed(stderr, rep.Explanations)
-		total += len(rep.Explanations)
+		t.add(stderr, rep)
 		if chunkDone != nil {
 			chunkDone()
 		}
@@ -274,32 +289,32 @@ func (c *explainConfig) writeExplanations(ex *explain.Explainer, in *inputBatche
 	if err := out.close(); err != nil {
 		return failure(stderr, "explain", err)
 	}
-	return failedStatus(stderr, failed, total)
+	return c.status(stderr, &t)
 }
 
 // renderText renders rep as a table or CSV.
-func renderText(w io.Writer, format string, rep *explain.Report) error {
+func renderText(w io.Writer, format string, rep *explain.Report, opt render.Options) error {
 	if format == "csv" {
 		return render.CSV(w, rep)
 	}
-	return render.Table(w, rep)
+	return render.Table(w, rep, opt)
 }
 
 // renderHead is what the table or CSV of rep writes before its first
 // sample: the rendering of rep without explanations.
-func renderHead(format string, rep *explain.Report) (string, error) {
+func renderHead(format string, rep *explain.Report, opt render.Options) (string, error) {
 	empty := *rep
 	empty.Explanations = nil
 	var b strings.Builder
-	err := renderText(&b, format, &empty)
+	err := renderText(&b, format, &empty, opt)
 	return b.String(), err
 }
 
 // writeWithoutHead renders rep, leaving out the head the first batch has
 // already written when later is set.
-func writeWithoutHead(w io.Writer, format string, rep *explain.Report, head string, later bool) error {
+func writeWithoutHead(w io.Writer, format string, rep *explain.Report, opt render.Options, head string, later bool) error {
 	var b bytes.Buffer
-	if err := renderText(&b, format, rep); err != nil {
+	if err := renderText(&b, format, rep, opt); err != nil {
 		return err
 	}
 	text := b.Bytes()

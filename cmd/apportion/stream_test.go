@@ -70,7 +70,7 @@ func TestExplainStreamsEveryFormat(t *testing.T) {
 	input := pumpRows(t, 30)
 	model := "../../demo/data/pumps.onnx"
 	for _, format := range []string{"table", "csv", "json"} {
-		whole, streamed, batches := wholeAndStreamed(t, "explain", "-model", model, "-input", input, "-steps", "8", "-format", format)
+		whole, streamed, batches := wholeAndStreamed(t, "explain", "-model", model, "-input", input, "-steps", "8", "-allow-incomplete", "-format", format)
 		assert.Equal(t, 30, batches, format)
 		assert.Equal(t, elapsed.ReplaceAllString(whole, "$1"), elapsed.ReplaceAllString(streamed, "$1"), format)
 	}
@@ -81,11 +81,21 @@ func TestExplainStreamsEveryFormat(t *testing.T) {
 	}
 	// -out is written as the batches come, and names the samples the same.
 	out := filepath.Join(t.TempDir(), "a.csv")
-	wholeAndStreamed(t, "explain", "-model", model, "-input", input, "-steps", "8", "-format", "csv", "-out", out)
+	wholeAndStreamed(t, "explain", "-model", model, "-input", input, "-steps", "8", "-allow-incomplete", "-format", "csv", "-out", out)
 	raw, err := os.ReadFile(out)
 	require.NoError(t, err)
 	assert.Equal(t, 1+30*8, strings.Count(string(raw), "\n"))
 	assert.Contains(t, string(raw), "\n29,")
+
+	// Without -allow-incomplete, the failed checks of every batch are
+	// counted, and the exit status is the one of the input read whole.
+	_, _, wholeErrs := cli(t, "explain", "-model", model, "-input", input, "-steps", "8", "-format", "csv")
+	defer func(v int) { chunkValues = v }(chunkValues)
+	chunkValues = 8
+	code, _, errs := cli(t, "explain", "-model", model, "-input", input, "-steps", "8", "-format", "csv")
+	assert.Equal(t, exitFail, code)
+	assert.Equal(t, wholeErrs, errs)
+	assert.Contains(t, errs, "9 of 30 results incomplete")
 }
 
 // liveHeap explains the n pump rows of input with the gradient, the
