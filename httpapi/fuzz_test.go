@@ -10,8 +10,8 @@ import (
 )
 
 // FuzzRequestBody posts arbitrary bytes to /v1/explain and /v1/predict of
-// a handler serving the pumps demo with a budget that keeps each request
-// small. No request may panic or fail inside the server (500); every
+// a handler serving the pumps demo (whose samples may be arrays, or objects
+// of its named features) with a budget that keeps each request small. No request may panic or fail inside the server (500); every
 // answer is 200 or an error the client caused or a limit, with a JSON body
 // of its own.
 func FuzzRequestBody(f *testing.F) {
@@ -31,7 +31,30 @@ func FuzzRequestBody(f *testing.F) {
 	} {
 		f.Add([]byte(seed))
 	}
+	// Samples as objects of the features' values by name: whole, as an
+	// array, with a key misspelt, with a feature missing.
 	m, ref := demoModel(f)
+	var x []float64
+	if err := json.Unmarshal([]byte(sample), &x); err != nil {
+		f.Fatal(err)
+	}
+	named := map[string]float64{}
+	for i, name := range m.Meta.Features {
+		named[name] = x[i]
+	}
+	one, _ := json.Marshal(named)
+	f.Add([]byte(`{"inputs": ` + string(one) + `, "method": "grad"}`))
+	f.Add([]byte(`{"inputs": [` + string(one) + `, ` + string(one) + `], "steps": 8}`))
+	if len(m.Meta.Features) > 0 {
+		first := m.Meta.Features[0]
+		named[first+"_"] = named[first]
+		delete(named, first)
+		misspelt, _ := json.Marshal(named)
+		f.Add([]byte(`{"inputs": [` + string(misspelt) + `]}`))
+		delete(named, first+"_")
+		missing, _ := json.Marshal(named)
+		f.Add([]byte(`{"inputs": [` + string(one) + `, ` + string(missing) + `]}`))
+	}
 	h, err := New(m, Options{Reference: ref, MaxWork: 4000, Timeout: 5 * time.Second, Workers: 1, Queue: 4})
 	if err != nil {
 		f.Fatal(err)

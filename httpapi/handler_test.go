@@ -680,13 +680,16 @@ func TestNamedInputs(t *testing.T) {
 	require.Equal(t, http.StatusOK, code)
 	assert.JSONEq(t, first, one)
 
-	// A feature left out, a key that is not a feature and a value that is
-	// not a number are named, with the sample.
+	// A feature left out, a key that is not a feature, a value that is not
+	// a number and one the input cannot take are named, with the sample.
 	for body, want := range map[string]string{
 		`{"inputs":[` + objects[0] + `,{"flow":1}]}`:                                                                            `"inputs"[1] (for "sensors"): feature "bearing_temp" is missing`,
 		`{"inputs":[` + objects[0] + "," + strings.Replace(objects[1], `"ambient_temp":`, `"ambient":`, 1) + `]}`:               `"inputs"[1] (for "sensors"): "ambient" is not a feature of the model (features: bearing_temp, vibration_rms,`,
 		`{"inputs":[` + strings.Replace(objects[0], `"flow":`, `"x":1,"flow":`, 1) + `]}`:                                       `"inputs"[0] (for "sensors"): "x" is not a feature`,
 		`{"inputs":[` + regexp.MustCompile(`"bearing_temp":[^,}]+`).ReplaceAllString(objects[0], `"bearing_temp":"hot"`) + `]}`: `"inputs"[0] (for "sensors"): feature "bearing_temp": expected a number, got "hot"`,
+		// 1e300 is a float64 but beyond the float32 input's range (IEEE 754
+		// binary32: largest finite ≈ 3.4e38), as in an array of numbers.
+		`{"inputs":[` + regexp.MustCompile(`"flow":[^,}]+`).ReplaceAllString(objects[0], `"flow":1e300`) + `]}`: `"inputs"[0] (for "sensors"): feature "flow": 1e+300 is out of the float32 range of the input`,
 	} {
 		code, _, got := post(t, ts.URL+"/v1/predict", body)
 		assert.Equal(t, http.StatusBadRequest, code, got)

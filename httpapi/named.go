@@ -9,6 +9,7 @@ import (
 	"strconv"
 	"strings"
 
+	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
 
@@ -53,6 +54,11 @@ func (h *Handler) namedInputs(inputs json.RawMessage) (b *samples.Batch, ok bool
 		Data: make([]float64, 0, size*len(objects)), Features: features}
 	for n, o := range objects {
 		x, err := namedSample(o, features, index)
+		if err == nil && h.spec.Elem == onnxlite.Float {
+			if j, ferr := samples.CheckFloat32(x); ferr != nil {
+				err = fmt.Errorf("feature %q: %w", features[j], ferr)
+			}
+		}
 		if err != nil {
 			return nil, true, badRequest(`"inputs"[%d] (for %q): %v`, n, h.spec.Name, err)
 		}

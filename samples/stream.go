@@ -224,26 +224,33 @@ func (s *Stream) All() (*Batch, error) {
 }
 
 // checkFloat32 marks bad the samples, not already bad, that hold a value a
-// float32 input cannot take: beyond ±3.4e38, or so small that it would
-// read as 0 (below 1.4e-45 in magnitude; IEEE 754 binary32).
+// float32 input cannot take (see CheckFloat32).
 func (b *Batch) checkFloat32() {
 	for i := 0; i < b.Samples; i++ {
 		if b.Bad[i] != nil {
 			continue
 		}
-		for j, v := range b.Sample(i) {
-			f := float32(v)
-			switch {
-			case math.IsInf(float64(f), 0) && !math.IsInf(v, 0):
-				b.markBad(i, fmt.Errorf("sample %d, index %d: %v is out of the float32 range of the input (larger than 3.4e38 in magnitude)", b.First+i, j, v))
-			case f == 0 && v != 0:
-				b.markBad(i, fmt.Errorf("sample %d, index %d: %v is out of the float32 range of the input (smaller than 1.4e-45 in magnitude, it would read as 0)", b.First+i, j, v))
-			default:
-				continue
-			}
-			break
+		if j, err := CheckFloat32(b.Sample(i)); err != nil {
+			b.markBad(i, fmt.Errorf("sample %d, index %d: %w", b.First+i, j, err))
 		}
 	}
+}
+
+// CheckFloat32 returns the index of the first value of x a float32 input
+// cannot take, and why: beyond ±3.4e38, or so small that it would read as
+// 0 (below 1.4e-45 in magnitude; IEEE 754 binary32). NaN and ±Inf are left
+// to CheckFinite.
+func CheckFloat32(x []float64) (int, error) {
+	for j, v := range x {
+		f := float32(v)
+		switch {
+		case math.IsInf(float64(f), 0) && !math.IsInf(v, 0):
+			return j, fmt.Errorf("%v is out of the float32 range of the input (larger than 3.4e38 in magnitude)", v)
+		case f == 0 && v != 0:
+			return j, fmt.Errorf("%v is out of the float32 range of the input (smaller than 1.4e-45 in magnitude, it would read as 0)", v)
+		}
+	}
+	return 0, nil
 }
 
 // concat joins batches of one sample shape, in order, into one.
