@@ -160,17 +160,30 @@ func TestPredictBackendRelu(t *testing.T) {
 }
 
 func TestGroupsFileRepeatedIndex(t *testing.T) {
-	// A groups file that lists an index twice in one group would count
-	// that feature twice in the group's sum; explain refuses it, naming
-	// the groups, before explaining anything (node/test_softmax_example:
-	// three features).
+	// A groups file that lists a feature twice in one group would count
+	// it twice in the group's sum: ReadGroups refuses it, by index or by
+	// name, and so does the explainer for groups made otherwise, before
+	// explaining anything (node/test_softmax_example: three features).
+	for text, want := range map[string]string{
+		`{"a": [0, 0, 1], "b": [2]}`:           `group "a" lists feature 0 ("x") twice; a feature is counted once in a group`,
+		`[{"name": "b", "indices": [2, "z"]}]`: `group "b" lists feature 2 ("z") twice; a feature is counted once in a group`,
+		`{"a": ["x", 1], "b": ["y", "x"]}`:     "",
+	} {
+		groups, err := explain.ReadGroups(strings.NewReader(text), 3, []string{"x", "y", "z"})
+		if want == "" {
+			require.NoError(t, err, text)
+			assert.Equal(t, []gradattr.Group{{Name: "a", Indices: []int{0, 1}}, {Name: "b", Indices: []int{1, 0}}}, groups)
+			continue
+		}
+		assert.EqualError(t, err, want, text)
+	}
+	_, err := explain.ReadGroups(strings.NewReader(`{"a": [1, 1]}`), 3, nil)
+	assert.EqualError(t, err, `group "a" lists feature 1 twice; a feature is counted once in a group`, "without names")
 	m, _, _ := softmax(t)
 	head, err := m.Head("", false)
 	require.NoError(t, err)
-	groups, err := explain.ReadGroups(strings.NewReader(`{"a": [0, 0, 1], "b": [2]}`), 3, nil)
-	require.NoError(t, err)
 	s := explain.Defaults()
-	s.Groups = groups
+	s.Groups = []gradattr.Group{{Name: "a", Indices: []int{0, 0, 1}}, {Name: "b", Indices: []int{2}}}
 	_, err = explain.New(m, head, s)
 	var fe *explain.FieldError
 	require.ErrorAs(t, err, &fe)
