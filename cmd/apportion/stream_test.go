@@ -45,7 +45,7 @@ func pumpRows(t testing.TB, n int) string {
 }
 
 // elapsed is the wall time at the end of a table's cost line.
-var elapsed = regexp.MustCompile(`(?m)(forward passes), [0-9.]+[µnm]?s$`)
+var elapsed = regexp.MustCompile(`(?m)(forward pass(?:es)?), [0-9.]+[µnm]?s$`)
 
 // wholeAndStreamed runs the command line on args as it is (an input of
 // fewer than two batches is read whole) and with batches of one sample,
@@ -74,6 +74,10 @@ func TestExplainStreamsEveryFormat(t *testing.T) {
 		assert.Equal(t, 30, batches, format)
 		assert.Equal(t, elapsed.ReplaceAllString(whole, "$1"), elapsed.ReplaceAllString(streamed, "$1"), format)
 	}
+	// The table's options and its warnings (the gradient of a saturated
+	// output) stream the same.
+	whole, streamed, _ := wholeAndStreamed(t, "explain", "-model", model, "-input", input, "-method", "grad", "-top", "3", "-sort", "abs")
+	assert.Equal(t, elapsed.ReplaceAllString(whole, "$1"), elapsed.ReplaceAllString(streamed, "$1"))
 	for _, format := range []string{"json", "table"} {
 		whole, streamed, batches := wholeAndStreamed(t, "predict", "-model", model, "-input", input, "-format", format)
 		assert.Equal(t, 30, batches, format)
