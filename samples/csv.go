@@ -38,7 +38,7 @@ type csvSource struct {
 func newCSVSource(r io.Reader, spec Spec, features []string) (*csvSource, error) {
 	s := &csvSource{cr: newCSVReader(r)}
 	rec, line, err := s.record()
-	if err == nil && !numericRow(rec) {
+	if err == nil && !dataRow(rec) {
 		s.header = trimmed(rec)
 		rec, line, err = s.record()
 	}
@@ -505,6 +505,24 @@ func columnIndex(header []string) map[string]int {
 		}
 	}
 	return index
+}
+
+// dataRow reports whether rec is a row of samples rather than a header:
+// every field is a number, or starts as one does (a digit, or a sign or
+// point before a digit), so that a first row holding "1_000" or "0x1p-2" is
+// a row whose values cannot be read, not a header of names.
+func dataRow(rec []string) bool {
+	for _, f := range rec {
+		f = strings.TrimSpace(f)
+		if isNumber(f) {
+			continue
+		}
+		digits := strings.TrimLeft(f, "+-.")
+		if digits == "" || !isDigit(digits[0]) || len(f)-len(digits) > 2 {
+			return false
+		}
+	}
+	return true
 }
 
 // numericRow reports whether every field of rec is a number.

@@ -49,6 +49,18 @@ func TestCSVNumbers(t *testing.T) {
 	assert.EqualError(t, b.Bad[9], "line 11, column a: NaN value is not a finite number")
 	assert.ErrorIs(t, b.Bad[9], samples.ErrNonFinite)
 
+	// A first row whose fields start as numbers do is data, not a header:
+	// its values that cannot be read are its own error.
+	b, err = samples.Read(strings.NewReader("1_000,1\n0x1p-2,-.5\n2,3\n"), "n.csv", spec, samples.Options{KeepBad: true})
+	require.NoError(t, err)
+	assert.Equal(t, 3, b.Samples)
+	assert.Nil(t, b.Features)
+	assert.EqualError(t, b.Bad[0], `line 1, column 1: "1_000" is not a number`)
+	assert.EqualError(t, b.Bad[1], `line 2, column 1: "0x1p-2" is not a number`)
+	b, err = samples.Read(strings.NewReader("a1,-x\n2,3\n"), "n.csv", spec, samples.Options{})
+	require.NoError(t, err)
+	assert.Equal(t, []string{"a1", "-x"}, b.Features, "names that do not start as numbers: a header")
+
 	// A first row of numbers out of range is data, not a header.
 	b, err = samples.Read(strings.NewReader("1e400,1\n2,3\n"), "n.csv", spec, samples.Options{KeepBad: true})
 	require.NoError(t, err)
