@@ -1,7 +1,9 @@
 package explain
 
 import (
+	"bytes"
 	"encoding/json"
+	"errors"
 	"io"
 	"math"
 	"strconv"
@@ -95,52 +97,62 @@ type ExplanationDocument struct {
 
 // Document returns the report's document.
 func (r *Report) Document() *Document {
-	doc := &Document{
+	doc := r.head()
+	for _, e := range r.Explanations {
+		doc.Explanations = append(doc.Explanations, r.explanationDocument(e))
+	}
+	return doc
+}
+
+// head is the document without its explanations.
+func (r *Report) head() *Document {
+	return &Document{
 		Model:        ModelRecord{Path: r.Model.Name, SHA256: r.Model.SHA256, Input: r.Input, Output: r.Output},
 		Method:       r.Settings.Method,
 		Settings:     r.record,
 		Explanations: []ExplanationDocument{},
 	}
+}
+
+// explanationDocument is one sample's record.
+func (r *Report) explanationDocument(e Explanation) ExplanationDocument {
 	shape := r.Batch.SampleShape()
 	if shape == nil {
 		shape = []int{}
 	}
-	for _, e := range r.Explanations {
-		j := ExplanationDocument{Index: e.Index, Shape: shape, Warnings: []Warning{}}
-		if e.Err != nil {
-			msg := e.Err.Error()
-			j.Error = &msg
-		} else {
-			res := e.Result
-			t := res.Target
-			j.Target = &t
-			j.Outputs = Numbers{Values: nonNil(res.Outputs), Bits: 64}
-			j.Attributions = Numbers{Values: nonNil(res.Attributions), Bits: 64}
-			if len(res.Shape) > 0 {
-				j.Shape = res.Shape
-			}
-			if e.BaselineOutputs != nil {
-				j.BaselineOutputs = Numbers{Values: e.BaselineOutputs, Bits: 64}
-			}
-			j.Completeness = res.Completeness
-			j.Points = res.Cost.GradientEvals
-			j.Groups = e.Grouped
-			if res.StandardErrors != nil {
-				j.StandardErrors = &Numbers{Values: res.StandardErrors, Bits: 64}
-			}
-			if res.Settings.Method == gradattr.MethodShapley {
-				j.Estimator = res.Settings.Estimator
-			}
-			if fit := res.Surrogate; fit != nil {
-				j.Fidelity, j.Intercept = &fit.Fidelity, &fit.Intercept
-			}
-			if e.Warnings != nil {
-				j.Warnings = e.Warnings
-			}
-		}
-		doc.Explanations = append(doc.Explanations, j)
+	j := ExplanationDocument{Index: e.Index, Shape: shape, Warnings: []Warning{}}
+	if e.Err != nil {
+		msg := e.Err.Error()
+		j.Error = &msg
+		return j
 	}
-	return doc
+	res := e.Result
+	t := res.Target
+	j.Target = &t
+	j.Outputs = Numbers{Values: nonNil(res.Outputs), Bits: 64}
+	j.Attributions = Numbers{Values: nonNil(res.Attributions), Bits: 64}
+	if len(res.Shape) > 0 {
+		j.Shape = res.Shape
+	}
+	if e.BaselineOutputs != nil {
+		j.BaselineOutputs = Numbers{Values: e.BaselineOutputs, Bits: 64}
+	}
+	j.Completeness = res.Completeness
+	j.Points = res.Cost.GradientEvals
+	j.Groups = e.Grouped
+	if res.StandardErrors != nil {
+		j.StandardErrors = &Numbers{Values: res.StandardErrors, Bits: 64}
+	}
+	if res.Settings.Method == gradattr.MethodShapley {
+		j.Estimator = res.Settings.Estimator
+	}
+	if fit := res.Surrogate; fit != nil {
+		j.Fidelity, j.Intercept = &fit.Fidelity, &fit.Intercept
+	}
+	if e.Warnings != nil {
+		j.Warnings = e.Warnings
+	}
+	return j
 }
 
 // WriteJSON writes the report's document, indented by two spaces.
@@ -148,6 +160,75 @@ func (r *Report) WriteJSON(w io.Writer) error {
 	enc := json.NewEncoder(w)
 	enc.SetIndent("", "  ")
 	return enc.Encode(r.Document())
+}
+
+// DocumentWriter writes the reports of the batches of one stream of
+// samples (Explainer.Explain of each, in order) as one explain document:
+// the bytes Report.WriteJSON writes for all of them at once, written as
+// they come, so that the document of a file of any length takes constant
+// memory.
+type DocumentWriter struct {
+	w   io.Writer
+	n   int // explanations written
+	err error
+}
+
+// NewDocumentWriter returns a writer of one document to w.
+func NewDocumentWriter(w io.Writer) *DocumentWriter { return &DocumentWriter{w: w, n: -1} }
+
+// Write adds the explanations of rep; the first report also gives the
+// document's head (model, method, settings).
+func (d *DocumentWriter) Write(rep *Report) error {
+	if d.err != nil {
+		return d.err
+	}
+	if d.n < 0 {
+		head, err := json.MarshalIndent(rep.head(), "", "  ")
+		if err != nil {
+			d.err = err
+			return err
+		}
+		// The head ends with the explanations' empty array and the
+		// object's brace: "[]\n}".
+		head = bytes.TrimSuffix(head, []byte("]\n}"))
+		d.write(head)
+		d.n = 0
+	}
+	for _, e := range rep.Explanations {
+		raw, err := json.MarshalIndent(rep.explanationDocument(e), "    ", "  ")
+		if err != nil {
+			d.err = err
+			return err
+		}
+		if d.n > 0 {
+			d.write([]byte(","))
+		}
+		d.write([]byte("\n    "))
+		d.write(raw)
+		d.n++
+	}
+	return d.err
+}
+
+// Close ends the document; a document with no report written is not one.
+func (d *DocumentWriter) Close() error {
+	switch {
+	case d.err != nil:
+		return d.err
+	case d.n < 0:
+		return errors.New("explain: no report was written to the document")
+	case d.n == 0:
+		d.write([]byte("]\n}\n"))
+	default:
+		d.write([]byte("\n  ]\n}\n"))
+	}
+	return d.err
+}
+
+func (d *DocumentWriter) write(b []byte) {
+	if d.err == nil {
+		_, d.err = d.w.Write(b)
+	}
 }
 
 func nonNil(v []float64) []float64 {

@@ -4,9 +4,11 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
+	"io"
 	"os"
 	"path/filepath"
 	"strconv"
+	"strings"
 	"testing"
 
 	"github.com/stretchr/testify/assert"
@@ -14,8 +16,10 @@ import (
 
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/internal/modelcount"
 	"github.com/apportion/apportion/internal/onnxtestdata"
 	"github.com/apportion/apportion/internal/testfiles"
+	"github.com/apportion/apportion/nn"
 	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
@@ -195,6 +199,147 @@ func TestSettingsPerturbationFields(t *testing.T) {
 	}
 	_, err := explain.ParseSize("12x")
 	assert.ErrorContains(t, err, `expected a size HxW in pixels, height and width from 1 to 16777216 (like 4x4), got "12x"`)
+}
+
+func TestGroupsFileRepeatedIndex(t *testing.T) {
+	// A groups file that lists a feature twice in one group would count
+	// it twice in the group's sum: ReadGroups refuses it, by index or by
+	// name, and so does the explainer for groups made otherwise, before
+	// explaining anything (node/test_softmax_example: three features).
+	for text, want := range map[string]string{
+		`{"a": [0, 0, 1], "b": [2]}`:           `group "a" lists feature 0 ("x") twice; a feature is counted once in a group`,
+		`[{"name": "b", "indices": [2, "z"]}]`: `group "b" lists feature 2 ("z") twice; a feature is counted once in a group`,
+		`{"a": ["x", 1], "b": ["y", "x"]}`:     "",
+	} {
+		groups, err := explain.ReadGroups(strings.NewReader(text), 3, []string{"x", "y", "z"})
+		if want == "" {
+			require.NoError(t, err, text)
+			assert.Equal(t, []gradattr.Group{{Name: "a", Indices: []int{0, 1}}, {Name: "b", Indices: []int{1, 0}}}, groups)
+			continue
+		}
+		assert.EqualError(t, err, want, text)
+	}
+	_, err := explain.ReadGroups(strings.NewReader(`{"a": [1, 1]}`), 3, nil)
+	assert.EqualError(t, err, `group "a" lists feature 1 twice; a feature is counted once in a group`, "without names")
+	m, _, _ := softmax(t)
+	head, err := m.Head("", false)
+	require.NoError(t, err)
+	s := explain.Defaults()
+	s.Groups = []gradattr.Group{{Name: "a", Indices: []int{0, 0, 1}}, {Name: "b", Indices: []int{2}}}
+	_, err = explain.New(m, head, s)
+	var fe *explain.FieldError
+	require.ErrorAs(t, err, &fe)
+	assert.Equal(t, explain.FieldGroups, fe.Field)
+	assert.Equal(t, `groups: gradattr: invalid input: group 0 ("a") lists index 0 twice`, err.Error())
+}
+
+func TestWorkCountsEveryModelCall(t *testing.T) {
+	// The work of a batch is what the model is sent explaining it: the
+	// head below counts the samples of every call (node/test_softmax_example
+	// of the ONNX backend test data, three samples of three values).
+	m, x, _ := softmax(t)
+	head, err := m.Head("", false)
+	require.NoError(t, err)
+	spec, err := m.Input()
+	require.NoError(t, err)
+	var rows []string
+	for _, d := range []float64{0, 0.5, -1} {
+		rows = append(rows, "["+testfiles.F32(x[0]+d)+","+testfiles.F32(x[1])+","+testfiles.F32(x[2]-d)+"]")
+	}
+	b, err := samples.Read(strings.NewReader("["+strings.Join(rows, ",")+"]"), "rows.json", spec, samples.Options{})
+	require.NoError(t, err)
+	for _, method := range []string{"grad", "grad-input", "smoothgrad", "ig"} {
+		s := explain.Defaults()
+		require.NoError(t, s.Set(explain.FieldMethod, method))
+		if method == "ig" {
+			require.NoError(t, s.Set(explain.FieldSteps, "24"))
+		}
+		c := &modelcount.Model{Model: head}
+		ex, err := explain.New(m, c, s)
+		require.NoError(t, err)
+		want, err := ex.Work(b)
+		require.NoError(t, err)
+		_, err = ex.Explain(context.Background(), b, nil)
+		require.NoError(t, err)
+		assert.Equal(t, c.Samples(), want, method)
+	}
+}
+
+func TestDocumentWriterStreams(t *testing.T) {
+	// The explain document of a file read two samples at a time, written
+	// as its batches come, is the document of the file read whole, byte
+	// for byte (node/test_softmax_example of the ONNX backend test data,
+	// five samples, the fourth too short, with integrated gradients).
+	m, x, _ := softmax(t)
+	head, err := m.Head("", false)
+	require.NoError(t, err)
+	spec, err := m.Input()
+	require.NoError(t, err)
+	s := explain.Defaults()
+	s.Steps = 8
+	ex, err := explain.New(m, head, s)
+	require.NoError(t, err)
+	var rows []string
+	for i := range 5 {
+		d := float64(i) / 4
+		rows = append(rows, "["+testfiles.F32(x[0]+d)+","+testfiles.F32(x[1])+","+testfiles.F32(x[2]-d)+"]")
+	}
+	rows[3] = "[1, 2]"
+	file := "[" + strings.Join(rows, ",") + "]"
+	whole, err := samples.Read(strings.NewReader(file), "rows.json", spec, samples.Options{KeepBad: true})
+	require.NoError(t, err)
+	rep, err := ex.Explain(context.Background(), whole, nil)
+	require.NoError(t, err)
+	var want bytes.Buffer
+	require.NoError(t, rep.WriteJSON(&want))
+
+	stream, err := samples.NewStream(strings.NewReader(file), "rows.json", spec, samples.Options{KeepBad: true})
+	require.NoError(t, err)
+	var got bytes.Buffer
+	d := explain.NewDocumentWriter(&got)
+	for {
+		b, err := stream.Next(2)
+		if err == io.EOF {
+			break
+		}
+		require.NoError(t, err)
+		part, err := ex.Explain(context.Background(), b, nil)
+		require.NoError(t, err)
+		require.NoError(t, d.Write(part))
+	}
+	require.NoError(t, d.Close())
+	assert.Equal(t, want.String(), got.String())
+	assert.Contains(t, got.String(), `"index": 4`)
+
+	// A report without explanations makes the document's empty array.
+	var empty bytes.Buffer
+	d = explain.NewDocumentWriter(&empty)
+	rep.Explanations = nil
+	require.NoError(t, d.Write(rep))
+	require.NoError(t, d.Close())
+	want.Reset()
+	require.NoError(t, rep.WriteJSON(&want))
+	assert.Equal(t, want.String(), empty.String())
+	assert.Contains(t, empty.String(), `"explanations": []`)
+}
+
+func TestCompileMaxValueBytes(t *testing.T) {
+	// The limit on a program's values reaches the engine: the softmax
+	// example (three float32 inputs and outputs, 24 bytes of values at
+	// batch 1; IEEE 754 binary32) runs within 24 bytes and not within 23.
+	dir := filepath.Join(onnxtestdata.Dir(t), "node", "test_softmax_example")
+	for limit, fits := range map[int64]bool{24: true, 23: false} {
+		m, err := explain.ReadModel(filepath.Join(dir, "model.onnx"))
+		require.NoError(t, err)
+		require.NoError(t, m.Compile(explain.CompileOptions{MaxValueBytes: limit}))
+		x := &onnxlite.Tensor{Name: "x", DType: onnxlite.Float, Dims: []int64{1, 3}, Data: []float32{1, 2, 3}}
+		_, err = m.Predict(context.Background(), []*onnxlite.Tensor{x})
+		if fits {
+			assert.NoError(t, err)
+		} else {
+			assert.ErrorIs(t, err, nn.ErrTooLarge)
+		}
+	}
 }
 
 // explainSoftmax explains the rows of x with the softmax model and the

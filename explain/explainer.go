@@ -4,6 +4,7 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"math"
 	"strings"
 
 	"github.com/apportion/apportion/gradattr"
@@ -282,6 +283,29 @@ func (e *Explainer) Attribute(ctx context.Context, x []float64) (*gradattr.Resul
 	return gradattr.Attribute(ctx, e.head, x, e.settings.Target, o)
 }
 
+// Work is the most samples explaining b sends through the model: per
+// sample, the method's estimate (gradattr.Options.Estimate) and the model's output
+// at the baseline a result reports (see reportedBaseline); b.Samples times that, saturated at math.MaxInt. It
+// is known before any model call.
+func (e *Explainer) Work(b *samples.Batch) (int, error) {
+	o, err := e.options(b, byName)
+	if err != nil {
+		return 0, err
+	}
+	est, err := o.Estimate(e.head.InputShape())
+	if err != nil {
+		return 0, err
+	}
+	per := est.GradientEvals + est.ForwardPasses
+	if _, ok := reportedBaseline(o); ok {
+		per++
+	}
+	if b.Samples > 0 && per > math.MaxInt/b.Samples {
+		return math.MaxInt, nil
+	}
+	return per * b.Samples, nil
+}
+
 // Report is the explanations of a batch of samples, with what they are of.
 type Report struct {
 	// Model is the model explained; Input names its input, Output the
@@ -303,7 +327,8 @@ type Report struct {
 
 // Explanation is the result for one sample, or why there is none.
 type Explanation struct {
-	// Index is the sample's index in the batch.
+	// Index is the sample's index in its file: in the batch, plus the
+	// batch's First.
 	Index int
 	// Values is the sample.
 	Values []float64
@@ -368,8 +393,8 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 		record: e.record(o, byName)}
 	for i := 0; i < b.Samples; i++ {
 		x := b.Sample(i)
-		ex := Explanation{Index: i, Values: x}
-		head, err := e.headFor(i)
+		ex := Explanation{Index: b.First + i, Values: x}
+		head, err := e.headFor(b.First + i)
 		switch {
 		case b.Bad[i] != nil:
 			ex.Err = b.Bad[i]

@@ -75,11 +75,21 @@ func ReadGroups(r io.Reader, n int, names []string) ([]gradattr.Group, error) {
 	out := make([]gradattr.Group, len(groups))
 	for k, g := range groups {
 		out[k] = gradattr.Group{Name: g.name, Indices: make([]int, len(g.members))}
+		seen := make(map[int]bool, len(g.members))
 		for j, m := range g.members {
 			i, err := memberIndex(m, n, names, index)
 			if err != nil {
 				return nil, fmt.Errorf("group %q: %w", g.name, err)
 			}
+			if seen[i] {
+				// Its attribution would count twice in the group's sum.
+				feature := strconv.Itoa(i)
+				if i < len(names) {
+					feature += " (" + strconv.Quote(names[i]) + ")"
+				}
+				return nil, fmt.Errorf("group %q lists feature %s twice; a feature is counted once in a group", g.name, feature)
+			}
+			seen[i] = true
 			out[k].Indices[j] = i
 		}
 	}

@@ -176,6 +176,9 @@ type CompileOptions struct {
 	// default), or nn.Float64 for values beyond the float32 range and
 	// reference-grade results (see ParsePrecision).
 	DType nn.DType
+	// MaxValueBytes bounds the bytes of the values of one compiled
+	// program (nn.Options.MaxValueBytes); 0 means nn.DefaultMaxValueBytes.
+	MaxValueBytes int64
 }
 
 // ParsePrecision reads the name of an engine precision: float32 (also
@@ -194,7 +197,7 @@ func ParsePrecision(s string) (nn.DType, error) {
 func (m *Model) Compile(opt CompileOptions) error {
 	var nw *nn.Network
 	err := guard(func() (err error) {
-		nw, err = nn.Compile(m.Graph, nn.Options{InputShapes: opt.InputShapes, Parallel: opt.Parallel, DType: opt.DType})
+		nw, err = nn.Compile(m.Graph, nn.Options{InputShapes: opt.InputShapes, Parallel: opt.Parallel, DType: opt.DType, MaxValueBytes: opt.MaxValueBytes})
 		return err
 	})
 	if err != nil {

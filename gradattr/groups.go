@@ -13,18 +13,38 @@ type Group struct {
 	Indices []int  `json:"indices"`
 }
 
+// checkGroups returns an error wrapping ErrInput for the first index of a
+// group outside [0, n) or listed twice in its group, which would count that
+// feature twice in the group's sum.
+func checkGroups(n int, groups []Group) error {
+	seen := make([]int, n) // 1 + the last group that listed each index
+	for g, grp := range groups {
+		for _, i := range grp.Indices {
+			switch {
+			case i < 0 || i >= n:
+				return fmt.Errorf("%w: group %d (%q) has index %d, features are 0..%d", ErrInput, g, grp.Name, i, n-1)
+			case seen[i] == g+1:
+				return fmt.Errorf("%w: group %d (%q) lists index %d twice", ErrInput, g, grp.Name, i)
+			}
+			seen[i] = g + 1
+		}
+	}
+	return nil
+}
+
 // GroupSum returns, for each group, the sum of attr over its indices. An
-// index outside [0, len(attr)) is an error wrapping ErrInput. Because
+// index outside [0, len(attr)), or listed twice in one group, is an error
+// wrapping ErrInput. Because
 // attributions are additive, when the groups partition the features (see
 // Cover) the group sums add up to Σ attr, so a completeness check on the
 // features holds for the groups too.
 func GroupSum(attr []float64, groups []Group) ([]float64, error) {
+	if err := checkGroups(len(attr), groups); err != nil {
+		return nil, err
+	}
 	sums := make([]float64, len(groups))
 	for g, grp := range groups {
 		for _, i := range grp.Indices {
-			if i < 0 || i >= len(attr) {
-				return nil, fmt.Errorf("%w: group %d (%q) has index %d, features are 0..%d", ErrInput, g, grp.Name, i, len(attr)-1)
-			}
 			sums[g] += attr[i]
 		}
 	}
@@ -34,7 +54,7 @@ func GroupSum(attr []float64, groups []Group) ([]float64, error) {
 // Coverage tells how a set of groups covers n features.
 type Coverage struct {
 	// Overlapping lists, in increasing order, the features in more than
-	// one group (or listed twice in one).
+	// one group.
 	Overlapping []int `json:"overlapping,omitempty"`
 	// Missing lists, in increasing order, the features in no group.
 	Missing []int `json:"missing,omitempty"`
@@ -43,18 +63,18 @@ type Coverage struct {
 // Partition reports whether every feature is in exactly one group.
 func (c Coverage) Partition() bool { return len(c.Overlapping) == 0 && len(c.Missing) == 0 }
 
-// Cover checks how groups cover features 0..n−1; an index out of range is an
-// error wrapping ErrInput.
+// Cover checks how groups cover features 0..n−1; an index out of range, or
+// listed twice in one group, is an error wrapping ErrInput.
 func Cover(n int, groups []Group) (Coverage, error) {
 	if n < 0 {
 		return Coverage{}, fmt.Errorf("%w: %d features", ErrInput, n)
 	}
+	if err := checkGroups(n, groups); err != nil {
+		return Coverage{}, err
+	}
 	count := make([]int, n)
-	for g, grp := range groups {
+	for _, grp := range groups {
 		for _, i := range grp.Indices {
-			if i < 0 || i >= n {
-				return Coverage{}, fmt.Errorf("%w: group %d (%q) has index %d, features are 0..%d", ErrInput, g, grp.Name, i, n-1)
-			}
 			count[i]++
 		}
 	}

@@ -64,16 +64,16 @@ func TestGridGroups(t *testing.T) {
 }
 
 func TestCoverReportsOverlapAndGaps(t *testing.T) {
-	groups := []Group{{"a", []int{0, 1}}, {"b", []int{1, 2, 2}}, {"c", []int{5}}}
+	groups := []Group{{"a", []int{0, 1}}, {"b", []int{1, 2, 4}}, {"c", []int{4, 5}}}
 	cov, err := Cover(7, groups)
 	require.NoError(t, err)
-	assert.Equal(t, []int{1, 2}, cov.Overlapping)
-	assert.Equal(t, []int{3, 4, 6}, cov.Missing)
+	assert.Equal(t, []int{1, 4}, cov.Overlapping)
+	assert.Equal(t, []int{3, 6}, cov.Missing)
 	assert.False(t, cov.Partition())
 	attr := []float64{1, 2, 4, 8, 16, 32, 64}
 	sums, err := GroupSum(attr, groups)
 	require.NoError(t, err)
-	assert.Equal(t, []float64{3, 10, 32}, sums) // by hand: 1+2, 2+4+4, 32
+	assert.Equal(t, []float64{3, 22, 48}, sums) // by hand: 1+2, 2+4+16, 16+32
 	r := &Result{Attributions: attr}
 	g, err := r.Grouped(groups)
 	require.NoError(t, err)
@@ -86,6 +86,16 @@ func TestCoverReportsOverlapAndGaps(t *testing.T) {
 	assert.ErrorContains(t, err, `group 0 ("x") has index 7, features are 0..6`)
 	_, err = Cover(7, []Group{{"x", []int{-1}}})
 	assert.ErrorIs(t, err, ErrInput)
+
+	// An index listed twice in one group would count its feature twice in
+	// the group's sum (Σ over a set counts each member once): refused by
+	// both, and the group sums keep Σ attributions (completeness) intact.
+	twice := []Group{{"a", []int{0, 0, 1}}}
+	_, err = GroupSum(attr, twice)
+	assert.ErrorIs(t, err, ErrInput)
+	assert.ErrorContains(t, err, `group 0 ("a") lists index 0 twice`)
+	_, err = Cover(7, twice)
+	assert.ErrorContains(t, err, `group 0 ("a") lists index 0 twice`)
 	_, err = FieldGroups([]string{"a"}, []int{0})
 	assert.ErrorIs(t, err, ErrInput)
 	_, err = FieldGroups([]string{"a"}, []int{1, 2})

@@ -177,17 +177,10 @@ var methodSpecs = []methodSpec{
 			})
 		},
 		cost: func(o Options, _ []int, _ int) Cost {
+			// Per baseline, f(x′) and the path integral's gradients,
+			// every refinement counted up to the largest point count.
 			b := max(1, len(o.Baselines))
-			points := o.Points
-			if points == 0 {
-				// Refinement reuses earlier points except under
-				// Gauss–Legendre, whose passes sum to under twice the cap.
-				points = DefaultMaxPoints
-				if o.Rule == RuleGaussLegendre {
-					points *= 2
-				}
-			}
-			return Cost{GradientEvals: b * points, ForwardPasses: 1 + b}
+			return Cost{GradientEvals: b * gradientsWorst(o.Rule, o.Points, DefaultMaxPoints), ForwardPasses: 1 + b}
 		},
 	},
 	{
@@ -439,8 +432,9 @@ func Attribute(ctx context.Context, m Model, x []float64, target int, o Options)
 // the given shape with options o, at most: the point cap of automatic
 // integrated gradients, the coalitions of the automatic Shapley estimator
 // whichever it picks, one region per pixel for occlusion of superpixels
-// (whose count only the image decides). A server can hold a request to a
-// budget with it before any model call.
+// (whose count only the image decides). Forward passes include f(x), so
+// GradientEvals + ForwardPasses bounds the samples sent through the model.
+// A server can hold a request to a budget with it before any model call.
 func (o Options) Estimate(shape []int) (Cost, error) {
 	s, ok := o.Method.spec()
 	if !ok {

@@ -271,6 +271,32 @@ func (s *schedule) refineNodes() (nodes []node, fresh bool) {
 	return nodes, false
 }
 
+// gradientsWorst is the number of gradient evaluations of one path
+// integral along the schedule of rule: points fixed, or (points 0) refined
+// from the automatic start up to maxPoints without ever stopping early,
+// counting the nodes initial and refineNodes return without making them.
+func gradientsWorst(rule Rule, points, maxPoints int) int {
+	var s *schedule
+	if points > 0 {
+		return startSchedule(rule, points).points()
+	}
+	s = startSchedule(rule, min(maxPoints, max(autoStart+boolInt(rule == RuleTrapezoid), rule.MinPoints())))
+	n := s.points()
+	for s.nextPoints() <= maxPoints {
+		old := s.m
+		s.refine()
+		switch rule {
+		case RuleMidpoint:
+			n += 2 * old
+		case RuleGaussLegendre:
+			n += s.m
+		default:
+			n += old
+		}
+	}
+	return n
+}
+
 // coefficients returns c_end and c_in of the current rule.
 func (s *schedule) coefficients() (cEnd, cIn float64) {
 	switch s.rule {

@@ -856,6 +856,10 @@ func (s *Summary) UnmarshalJSON(raw []byte) error {
 	if doc.Bootstrap <= 0 {
 		return fmt.Errorf("%w: summary JSON: bootstrap %d, want ≥ 1", ErrInput, doc.Bootstrap)
 	}
+	// The sums the document lists bound what decoding it may allocate.
+	if err := doc.Overall.State.check(len(doc.Features), doc.Bootstrap, "overall"); err != nil {
+		return err
+	}
 	n, err := NewSummary(SummaryOptions{
 		Features: doc.Features, Model: doc.Model, Method: doc.Method, Settings: settings,
 		GroupBy: doc.GroupBy, Bootstrap: doc.Bootstrap, Seed: doc.Seed,
@@ -926,8 +930,27 @@ func DecodeSummary(r io.Reader) (*Summary, error) {
 	return s, nil
 }
 
+// check reports a state that does not hold the sums of nf features and b
+// replicates, before any of them is allocated.
+func (st *groupState) check(nf, b int, what string) error {
+	bad := func(format string, a ...any) error {
+		return fmt.Errorf("%w: summary JSON: %s: %s", ErrInput, what, fmt.Sprintf(format, a...))
+	}
+	if len(st.SumAbs) != nf || len(st.Sum) != nf || len(st.SumSq) != nf || len(st.BootAbs) != nf || len(st.BootSum) != nf {
+		return bad("state: expected sums for %d features", nf)
+	}
+	if len(st.BootCount) != b {
+		return bad("state: expected %d bootstrap weights, got %d", b, len(st.BootCount))
+	}
+	for i := range nf {
+		if len(st.BootAbs[i]) != b || len(st.BootSum[i]) != b {
+			return bad("state: expected %d bootstrap sums for feature %d", b, i)
+		}
+	}
+	return nil
+}
+
 func (s *Summary) readGroup(gj groupJSON, what string) (*accum, error) {
-	g := s.newAccum()
 	st := gj.State
 	bad := func(format string, a ...any) error {
 		return fmt.Errorf("%w: summary JSON: %s: %s", ErrInput, what, fmt.Sprintf(format, a...))
@@ -935,13 +958,11 @@ func (s *Summary) readGroup(gj groupJSON, what string) (*accum, error) {
 	if gj.Rows < 0 {
 		return nil, bad("rows %d", gj.Rows)
 	}
+	if err := st.check(s.nf, s.b, what); err != nil {
+		return nil, err
+	}
+	g := s.newAccum()
 	g.rows = int64(gj.Rows)
-	if len(st.SumAbs) != s.nf || len(st.Sum) != s.nf || len(st.SumSq) != s.nf || len(st.BootAbs) != s.nf || len(st.BootSum) != s.nf {
-		return nil, bad("state: expected sums for %d features", s.nf)
-	}
-	if len(st.BootCount) != s.b {
-		return nil, bad("state: expected %d bootstrap weights, got %d", s.b, len(st.BootCount))
-	}
 	for b, c := range st.BootCount {
 		if c < 0 {
 			return nil, bad("state: bootstrap weight %d is %d", b, c)

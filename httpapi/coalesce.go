@@ -30,7 +30,8 @@ var errBatcherClosed = errors.New("the server is shutting down")
 // into shared passes. Its runners each take the oldest waiting call and
 // every waiting call of the same kind (forward or gradient) that still fits
 // in coalesceMaxPoints points, run them as one batch and hand each caller
-// its rows back. Samples do not interact in a batch (nn.Head.Gradient), so
+// its rows back; the calls of small requests are taken before those of
+// heavy ones, so that a small request's passes do not wait behind theirs. Samples do not interact in a batch (nn.Head.Gradient), so
 // each caller gets the values it would have got alone. A runner waits up to
 // window for more calls only while more requests are in flight than there
 // are runners, so that light traffic never waits.
@@ -43,7 +44,8 @@ type batcher struct {
 	size    int // values per sample
 	nout    int // outputs per sample
 	max     int
-	calls   chan *stackedCall
+	calls   chan *stackedCall // of heavy requests
+	urgent  chan *stackedCall // of small ones, taken first
 	quit    chan struct{}
 	wg      sync.WaitGroup
 	metrics *metrics
@@ -70,7 +72,7 @@ type stackedCall struct {
 func newBatcher(m gradattr.Model, runners, maxPoints int, window time.Duration, busy func() int, metrics *metrics) *batcher {
 	b := &batcher{
 		m: m, size: samples.Product(m.InputShape()), nout: m.OutputSize(), max: maxPoints,
-		calls: make(chan *stackedCall, 1024), quit: make(chan struct{}), metrics: metrics,
+		calls: make(chan *stackedCall, 1024), urgent: make(chan *stackedCall, 1024), quit: make(chan struct{}), metrics: metrics,
 		window: window, busy: busy, runners: runners,
 	}
 	b.wg.Add(runners)
@@ -113,8 +115,12 @@ func (b *batcher) do(ctx context.Context, c *stackedCall) ([]float64, []float64,
 	c.x = append([]float64(nil), c.x...)
 	c.target = append([]int(nil), c.target...)
 	c.done = make(chan struct{})
+	lane := b.urgent
+	if isHeavy(ctx) {
+		lane = b.calls
+	}
 	select {
-	case b.calls <- c:
+	case lane <- c:
 	case <-ctx.Done():
 		return nil, nil, ctx.Err()
 	case <-b.quit:
@@ -138,10 +144,13 @@ func (b *batcher) runner() {
 		first := carry
 		carry = nil
 		if first == nil {
-			select {
-			case first = <-b.calls:
-			case <-b.quit:
-				return
+			if first = b.poll(); first == nil {
+				select {
+				case first = <-b.urgent:
+				case first = <-b.calls:
+				case <-b.quit:
+					return
+				}
 			}
 		}
 		group = append(group[:0], first)
@@ -157,30 +166,24 @@ func (b *batcher) runner() {
 		}
 	drain:
 		for total < b.max {
-			select {
-			case c := <-b.calls:
-				if c.grad != first.grad || total+c.n > b.max {
-					carry = c
-					break drain
-				}
-				group = append(group, c)
-				total += c.n
-			default:
+			c := b.poll()
+			if c == nil {
 				if window == nil {
 					break drain
 				}
 				select {
-				case c := <-b.calls:
-					if c.grad != first.grad || total+c.n > b.max {
-						carry = c
-						break drain
-					}
-					group = append(group, c)
-					total += c.n
+				case c = <-b.urgent:
+				case c = <-b.calls:
 				case <-window:
 					break drain
 				}
 			}
+			if c.grad != first.grad || total+c.n > b.max {
+				carry = c
+				break drain
+			}
+			group = append(group, c)
+			total += c.n
 		}
 		if timer != nil {
 			timer.Stop()
@@ -188,6 +191,31 @@ func (b *batcher) runner() {
 		b.run(group)
 	}
 }
+
+// poll takes a waiting call without blocking, one of a small request
+// first; nil when none waits.
+func (b *batcher) poll() *stackedCall {
+	select {
+	case c := <-b.urgent:
+		return c
+	default:
+	}
+	select {
+	case c := <-b.urgent:
+		return c
+	case c := <-b.calls:
+		return c
+	default:
+		return nil
+	}
+}
+
+// heavyKey marks the context of a heavy request (see workPool).
+type heavyKey struct{}
+
+func withHeavy(ctx context.Context) context.Context { return context.WithValue(ctx, heavyKey{}, true) }
+
+func isHeavy(ctx context.Context) bool { v, _ := ctx.Value(heavyKey{}).(bool); return v }
 
 // run evaluates the calls of group, of one kind, as one pass.
 func (b *batcher) run(group []*stackedCall) {

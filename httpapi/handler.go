@@ -17,24 +17,32 @@
 // features' values by name ({"bearing_temp": 77.2, ...}; every feature
 // given, no other key).
 //
-// Errors are {"error": "..."}: 400 for a bad request, 413 for a body over
-// the limit, 503 with Retry-After when the queue is full, 504 past the time
-// limit. A bounded pool of workers computes requests; with coalescing, the
+// Errors are {"error": "...", "request_id": "..."}: 400 for a bad request,
+// 408 for a body that does not arrive within the time limit, 413 for a
+// body, a number of samples or a cost over the limits, 503 with
+// Retry-After when the queue is full, 504 past the time limit. Every answer
+// carries X-Request-ID: the client's own, or one made for the request,
+// which the request's log line gives too. A bounded pool of workers
+// computes requests; with coalescing, the
 // model passes of concurrent requests are stacked into shared batches.
 package httpapi
 
 import (
 	"bytes"
 	"context"
+	"crypto/rand"
+	"encoding/hex"
 	"encoding/json"
 	"errors"
 	"fmt"
-	"io"
 	"log/slog"
 	"math"
 	"net"
 	"net/http"
+	"os"
+	"reflect"
 	"runtime"
+	"sort"
 	"strconv"
 	"strings"
 	"sync"
@@ -51,7 +59,18 @@ import (
 const (
 	// DefaultMaxBody is the largest request body, in bytes.
 	DefaultMaxBody = 8 << 20
-	// DefaultTimeout bounds one request, queueing included.
+	// DefaultMaxSamples is the most samples one request may hold.
+	DefaultMaxSamples = 256
+	// DefaultMaxWork is the most model evaluations one request may cost
+	// (see Options.MaxWork): DefaultMaxSamples samples explained with
+	// integrated gradients at automatic points under any rule fit in it.
+	DefaultMaxWork = 1 << 22
+	// DefaultSmallWork is the most work of a small request (see
+	// Options.SmallWork): 16 samples of integrated gradients at automatic
+	// points.
+	DefaultSmallWork = 1 << 16
+	// DefaultTimeout bounds one request from its arrival: reading its body,
+	// queueing and computing.
 	DefaultTimeout = 30 * time.Second
 	// DefaultQueue is the serve command's queue length.
 	DefaultQueue = 64
@@ -70,7 +89,8 @@ const (
 )
 
 // Options configure a Handler. The zero value means: bodies up to
-// DefaultMaxBody, DefaultTimeout per request, GOMAXPROCS workers, no queue
+// DefaultMaxBody of up to DefaultMaxSamples samples costing up to
+// DefaultMaxWork, DefaultTimeout per request, GOMAXPROCS workers, no queue
 // (a request that finds every worker busy gets 503), no coalescing, no
 // reference set, no request log.
 type Options struct {
@@ -78,9 +98,28 @@ type Options struct {
 	// DefaultMaxBody. It is decided from Content-Length when the client
 	// sends it.
 	MaxBody int64
-	// Timeout bounds one request, queueing included; 0 means
-	// DefaultTimeout. A request past it gets 504 and stops at its next
-	// model pass.
+	// MaxSamples is the most samples one request may hold; 0 means
+	// DefaultMaxSamples. A request with more gets 413, decided as soon as
+	// the sample past the limit is reached.
+	MaxSamples int
+	// MaxWork is the most work one request may cost: the samples it sends
+	// through the model, forward and gradient passes alike, counted before
+	// any pass from its samples and settings as their most
+	// (explain.Explainer.Work: integrated gradients at automatic points
+	// count every refinement up to the largest point count); 0 means
+	// DefaultMaxWork. A request over it gets 413 with its cost and the
+	// budget.
+	MaxWork int
+	// SmallWork is the most work of a small request; 0 means
+	// DefaultSmallWork. Heavier requests hold at most three quarters of
+	// the workers and of the cores (at least one), so that small requests
+	// always find a worker, and with Coalesce the model passes of small
+	// requests are run first.
+	SmallWork int
+	// Timeout bounds one request from its arrival, reading its body,
+	// queueing and computing included; 0 means DefaultTimeout. A body
+	// still arriving when it passes gets 408; a request past it otherwise
+	// gets 504 and stops at its next model pass.
 	Timeout time.Duration
 	// Workers is the number of requests computed at once; 0 means
 	// GOMAXPROCS, times 4 with Coalesce (so that passes meet).
@@ -127,11 +166,21 @@ type Handler struct {
 func New(m *explain.Model, opt Options) (*Handler, error) {
 	procs := runtime.GOMAXPROCS(0)
 	switch {
-	case opt.MaxBody < 0 || opt.Timeout < 0 || opt.Workers < 0 || opt.Queue < 0:
-		return nil, fmt.Errorf("httpapi: negative limits: max body %d, timeout %v, workers %d, queue %d", opt.MaxBody, opt.Timeout, opt.Workers, opt.Queue)
+	case opt.MaxBody < 0 || opt.MaxSamples < 0 || opt.MaxWork < 0 || opt.Timeout < 0 || opt.Workers < 0 || opt.Queue < 0:
+		return nil, fmt.Errorf("httpapi: negative limits: max body %d, max samples %d, max work %d, timeout %v, workers %d, queue %d",
+			opt.MaxBody, opt.MaxSamples, opt.MaxWork, opt.Timeout, opt.Workers, opt.Queue)
+	}
+	if opt.MaxWork == 0 {
+		opt.MaxWork = DefaultMaxWork
+	}
+	if opt.SmallWork <= 0 {
+		opt.SmallWork = DefaultSmallWork
 	}
 	if opt.MaxBody == 0 {
 		opt.MaxBody = DefaultMaxBody
+	}
+	if opt.MaxSamples == 0 {
+		opt.MaxSamples = DefaultMaxSamples
 	}
 	if opt.Timeout == 0 {
 		opt.Timeout = DefaultTimeout
@@ -297,17 +346,39 @@ func badRequest(format string, a ...any) *httpError {
 
 // errorJSON is the body of every error response.
 type errorJSON struct {
-	Error string `json:"error"`
+	Error     string `json:"error"`
+	RequestID string `json:"request_id,omitempty"`
 }
 
 func writeError(w http.ResponseWriter, e *httpError) {
+	body := errorJSON{Error: e.msg}
 	if sw, ok := w.(*statusWriter); ok {
 		sw.errMsg = e.msg
+		body.RequestID = sw.id
 	}
 	if e.code == http.StatusServiceUnavailable {
 		w.Header().Set("Retry-After", strconv.Itoa(retryAfter))
 	}
-	writeJSONBody(w, e.code, errorJSON{e.msg})
+	writeJSONBody(w, e.code, body)
+}
+
+// requestIDHeader carries a request's ID both ways.
+const requestIDHeader = "X-Request-ID"
+
+// requestID returns the client's request ID when it is one (1 to 128
+// printable ASCII characters without spaces), and otherwise a new one: 16
+// random bytes in hex.
+func requestID(given string) string {
+	ok := len(given) > 0 && len(given) <= 128
+	for i := 0; ok && i < len(given); i++ {
+		ok = given[i] > ' ' && given[i] < 0x7f
+	}
+	if ok {
+		return given
+	}
+	var b [16]byte
+	rand.Read(b[:])
+	return hex.EncodeToString(b[:])
 }
 
 func writeJSONBody(w http.ResponseWriter, code int, v any) {
@@ -329,15 +400,17 @@ func writeRaw(w http.ResponseWriter, code int, b []byte) {
 type requestLog struct {
 	method       string // attribution method
 	samples      int
+	work         int // the request's cost in model evaluations, its most
 	points       int
 	completeness string // ok, failed, not judged; "" when none applies
 }
 
-// statusWriter records the status a handler wrote.
+// statusWriter records the status a handler wrote, and the request's ID.
 type statusWriter struct {
 	http.ResponseWriter
 	code   int
 	errMsg string
+	id     string
 }
 
 func (w *statusWriter) WriteHeader(code int) {
@@ -346,6 +419,9 @@ func (w *statusWriter) WriteHeader(code int) {
 	}
 	w.ResponseWriter.WriteHeader(code)
 }
+
+// Unwrap gives http.ResponseController the connection's writer.
+func (w *statusWriter) Unwrap() http.ResponseWriter { return w.ResponseWriter }
 
 func (w *statusWriter) Write(b []byte) (int, error) {
 	if w.code == 0 {
@@ -361,8 +437,16 @@ type handlerFunc func(w http.ResponseWriter, r *http.Request, rl *requestLog)
 func (h *Handler) route(name, method string, fn handlerFunc) http.Handler {
 	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
 		start := time.Now()
-		sw := &statusWriter{ResponseWriter: w}
+		sw := &statusWriter{ResponseWriter: w, id: requestID(r.Header.Get(requestIDHeader))}
+		sw.Header().Set(requestIDHeader, sw.id)
 		rl := &requestLog{}
+		// The time limit covers the whole request, from here: reading and
+		// parsing the body too, whose reads fail once it has passed.
+		deadline := start.Add(h.opt.Timeout)
+		ctx, cancel := context.WithDeadline(r.Context(), deadline)
+		defer cancel()
+		r = r.WithContext(ctx)
+		_ = http.NewResponseController(sw).SetReadDeadline(deadline) // not every ResponseWriter has one
 		if method != "" && r.Method != method && !(method == http.MethodGet && r.Method == http.MethodHead) {
 			sw.Header().Set("Allow", method)
 			writeError(sw, &httpError{http.StatusMethodNotAllowed, fmt.Sprintf("%s takes %s, got %s", name, method, r.Method)})
@@ -380,12 +464,12 @@ func (h *Handler) route(name, method string, fn handlerFunc) http.Handler {
 			h.metrics.explainLatency.WithLabelValues(rl.method).Observe(d.Seconds())
 		}
 		attrs := []slog.Attr{
-			slog.String("route", name), slog.String("http_method", r.Method), slog.String("status", code),
+			slog.String("route", name), slog.String("request_id", sw.id), slog.String("http_method", r.Method), slog.String("status", code),
 			slog.Float64("duration_ms", float64(d.Microseconds())/1000),
 		}
 		if rl.method != "" {
 			attrs = append(attrs, slog.String("method", rl.method), slog.Int("samples", rl.samples),
-				slog.Int("points", rl.points), slog.String("completeness", rl.completeness))
+				slog.Int("work", rl.work), slog.Int("points", rl.points), slog.String("completeness", rl.completeness))
 		}
 		if sw.errMsg != "" {
 			attrs = append(attrs, slog.String("error", sw.errMsg))
@@ -411,12 +495,21 @@ func (h *Handler) readBody(w http.ResponseWriter, r *http.Request) ([]byte, *htt
 		return nil, &httpError{http.StatusRequestEntityTooLarge,
 			fmt.Sprintf("request body of %d bytes is over the limit of %d bytes (%s)", r.ContentLength, limit, FormatBytes(limit))}
 	}
-	raw, err := io.ReadAll(http.MaxBytesReader(w, r.Body, limit))
+	// Read into one buffer of the announced size (bytes.MinRead over it,
+	// so that reading to the end does not grow it), not by doubling.
+	buf := bytes.NewBuffer(make([]byte, 0, max(r.ContentLength, 0)+bytes.MinRead))
+	_, err := buf.ReadFrom(http.MaxBytesReader(w, r.Body, limit))
+	raw := buf.Bytes()
 	if err != nil {
 		var mb *http.MaxBytesError
-		if errors.As(err, &mb) {
+		var ne net.Error
+		switch {
+		case errors.As(err, &mb):
 			return nil, &httpError{http.StatusRequestEntityTooLarge,
 				fmt.Sprintf("request body is over the limit of %d bytes (%s)", limit, FormatBytes(limit))}
+		case errors.Is(err, os.ErrDeadlineExceeded), errors.As(err, &ne) && ne.Timeout(), r.Context().Err() != nil:
+			return nil, &httpError{http.StatusRequestTimeout,
+				fmt.Sprintf("the request body did not arrive within the server's time limit of %v", h.opt.Timeout)}
 		}
 		return nil, badRequest("reading the request body: %v", err)
 	}
@@ -433,37 +526,104 @@ func (h *Handler) readRequest(w http.ResponseWriter, r *http.Request, v any) *ht
 	return decodeRequest(raw, v)
 }
 
-// decodeRequest decodes raw into v, refusing unknown fields and data after
-// the object. Bare NaN and Infinity tokens, which some encoders write but
-// JSON does not have, get a message of their own.
+// decodeRequest decodes raw, a JSON object, into v, a pointer to a struct
+// whose fields have json tags, refusing unknown fields and data after the
+// object. The object is split into its fields once, with no copy of the
+// body beyond their values, and each field is decoded into its own;
+// a field of the wrong type is named with what it takes. Bare NaN and
+// Infinity tokens, which some encoders write but JSON does not have, get a
+// message of their own.
 func decodeRequest(raw []byte, v any) *httpError {
-	dec := json.NewDecoder(bytes.NewReader(raw))
-	dec.DisallowUnknownFields()
-	err := dec.Decode(v)
-	if err == nil {
-		if _, terr := dec.Token(); terr != io.EOF {
-			return badRequest("malformed JSON: expected one object, got more data after it")
-		}
-		return nil
-	}
-	var se *json.SyntaxError
-	if errors.As(err, &se) && se.Offset > 0 && int(se.Offset) <= len(raw) {
-		rest := raw[se.Offset-1:]
-		for _, tok := range []string{"NaN", "Infinity"} {
-			if bytes.HasPrefix(rest, []byte(tok)) {
-				return badRequest("%s at byte %d: expected finite numbers, got a value that is not a finite number (JSON has no NaN or Infinity, and a model cannot be explained at one)", tok, se.Offset)
-			}
-		}
-	}
-	if errors.Is(err, io.EOF) {
+	if len(bytes.TrimSpace(raw)) == 0 {
 		return badRequest("malformed JSON: expected an object, got an empty body")
 	}
-	return badRequest("malformed JSON: %v", err)
+	var fields map[string]json.RawMessage
+	if err := json.Unmarshal(raw, &fields); err != nil {
+		var se *json.SyntaxError
+		var te *json.UnmarshalTypeError
+		switch {
+		case errors.As(err, &se) && strings.Contains(se.Error(), "after top-level value"):
+			return badRequest("malformed JSON: expected one object, got more data after it")
+		case errors.As(err, &se) && se.Offset > 0 && int(se.Offset) <= len(raw):
+			rest := raw[se.Offset-1:]
+			for _, tok := range []string{"NaN", "Infinity"} {
+				if bytes.HasPrefix(rest, []byte(tok)) {
+					return badRequest("%s at byte %d: expected finite numbers, got a value that is not a finite number (JSON has no NaN or Infinity, and a model cannot be explained at one)", tok, se.Offset)
+				}
+			}
+		case errors.As(err, &te):
+			return badRequest("malformed JSON: expected an object, got %s", jsonKind(te.Value))
+		}
+		return badRequest("malformed JSON: %v", err)
+	}
+	st := reflect.ValueOf(v).Elem()
+	known := map[string]int{}
+	for i := range st.NumField() {
+		name, _, _ := strings.Cut(st.Type().Field(i).Tag.Get("json"), ",")
+		known[name] = i
+	}
+	names := make([]string, 0, len(fields))
+	for name := range fields {
+		names = append(names, name)
+	}
+	sort.Strings(names)
+	for _, name := range names {
+		i, ok := known[name]
+		if !ok {
+			return badRequest("malformed JSON: unknown field %q", name)
+		}
+		f := st.Field(i)
+		if err := json.Unmarshal(fields[name], f.Addr().Interface()); err != nil {
+			return badRequest("%q must be %s, got %s", name, typeWords(f.Type()), fields[name])
+		}
+	}
+	return nil
+}
+
+// jsonKind names the kind of JSON value encoding/json reports.
+func jsonKind(kind string) string {
+	switch kind {
+	case "array", "object":
+		return "an " + kind
+	case "number", "string":
+		return "a " + kind
+	case "bool":
+		return "true or false"
+	}
+	return kind
+}
+
+// typeWords says what a request field of type t takes.
+func typeWords(t reflect.Type) string {
+	for t.Kind() == reflect.Pointer {
+		t = t.Elem()
+	}
+	switch t.Kind() {
+	case reflect.String:
+		return "a string"
+	case reflect.Bool:
+		return "true or false"
+	case reflect.Int, reflect.Int64:
+		return "an integer"
+	case reflect.Uint, reflect.Uint64:
+		return "a non-negative integer"
+	case reflect.Float64:
+		return "a number"
+	}
+	return "a JSON value"
+}
+
+// tooManySamples is the error of a request of more than MaxSamples samples.
+func (h *Handler) tooManySamples() *httpError {
+	return &httpError{http.StatusRequestEntityTooLarge,
+		fmt.Sprintf(`"inputs" holds more than the %s one request may have; send them in several requests`, count(h.opt.MaxSamples, "sample"))}
 }
 
 // samplesOf reads the "inputs" field: one sample or an array of samples of
-// the model's input shape, finite numbers only; a sample is an array of
-// numbers, or an object of its features' values by name (see namedInputs).
+// the model's input shape, finite numbers only, at most Options.MaxSamples
+// of them (the reading stops at the sample past the limit); a sample is an
+// array of numbers, or an object of its features' values by name (see
+// namedInputs). The first sample that cannot be read is the error.
 func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError) {
 	if len(bytes.TrimSpace(inputs)) == 0 || string(bytes.TrimSpace(inputs)) == "null" {
 		return nil, badRequest(`"inputs" is required: an array of samples of shape %s`, samples.ShapeString(h.sampleShape()))
@@ -471,9 +631,16 @@ func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError)
 	if b, ok, herr := h.namedInputs(inputs); ok {
 		return b, herr
 	}
-	b, err := samples.ReadJSON(bytes.NewReader(inputs), h.spec)
+	var b *samples.Batch
+	s, err := samples.NewStream(bytes.NewReader(inputs), "inputs.json", h.spec, samples.Options{MaxSamples: h.opt.MaxSamples})
 	if err == nil {
-		err = b.CheckFinite()
+		b, err = s.All()
+	}
+	if errors.Is(err, samples.ErrTooMany) {
+		return nil, h.tooManySamples()
+	}
+	if fe := (*samples.FileError)(nil); errors.As(err, &fe) {
+		err = fe.Err
 	}
 	if err != nil {
 		return nil, badRequest(`"inputs" (for %q): %v`, h.spec.Name, err)
@@ -486,15 +653,39 @@ func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError)
 	return b, nil
 }
 
-// run computes f on a worker under the request's time limit. It answers
-// 503 when the queue is full and 504 past the limit; f's own error is
-// returned as it is. finished reports that f has returned (or will never
-// run), so that what it wrote may be read.
-func (h *Handler) run(r *http.Request, f func(ctx context.Context) *httpError) (herr *httpError, finished bool) {
-	ctx, cancel := context.WithTimeout(r.Context(), h.opt.Timeout)
-	defer cancel() // stops the work of a request that is given up
+// budget refuses a request whose work, for n samples, is over
+// Options.MaxWork.
+func (h *Handler) budget(work, n int) *httpError {
+	if work <= h.opt.MaxWork {
+		return nil
+	}
+	return &httpError{http.StatusRequestEntityTooLarge, fmt.Sprintf(
+		"the request costs up to %s (%s, %d each), over this server's budget of %d per request; send fewer samples, or ask for fewer steps or samples per explanation",
+		count(work, "model evaluation"), count(n, "sample"), work/max(n, 1), h.opt.MaxWork)}
+}
+
+// count writes n things: "1 sample", "3 samples".
+func count(n int, thing string) string {
+	if n == 1 {
+		return "1 " + thing
+	}
+	return strconv.Itoa(n) + " " + thing + "s"
+}
+
+// run computes f on a worker under the request's time limit, as a heavy
+// request when work is over Options.SmallWork. It answers 503 when the
+// queue is full and 504 past the limit; f's own error is returned as it
+// is. finished reports that f has returned (or will never run), so that
+// what it wrote may be read.
+func (h *Handler) run(r *http.Request, work int, f func(ctx context.Context) *httpError) (herr *httpError, finished bool) {
+	ctx, cancel := context.WithCancel(r.Context()) // the request's time limit (see route)
+	defer cancel()                                 // stops the work of a request that is given up
+	heavy := work > h.opt.SmallWork
+	if heavy {
+		ctx = withHeavy(ctx)
+	}
 	var ferr *httpError
-	j := &job{ctx: ctx, done: make(chan struct{})}
+	j := &job{ctx: ctx, done: make(chan struct{}), heavy: heavy}
 	j.run = func(ctx context.Context) {
 		defer func() {
 			if p := recover(); p != nil {
@@ -555,8 +746,12 @@ func (h *Handler) predict(w http.ResponseWriter, r *http.Request, rl *requestLog
 		h.finish(w, badRequest("%v", err))
 		return
 	}
+	if herr := h.budget(b.Samples, b.Samples); herr != nil {
+		h.finish(w, herr)
+		return
+	}
 	var body []byte
-	herr, _ = h.run(r, func(ctx context.Context) *httpError {
+	herr, _ = h.run(r, b.Samples, func(ctx context.Context) *httpError {
 		h.metrics.countPass("forward", b.Samples)
 		res, err := h.model.Predict(ctx, []*onnxlite.Tensor{t})
 		if err != nil {
@@ -734,9 +929,19 @@ func (h *Handler) explain(w http.ResponseWriter, r *http.Request, rl *requestLog
 		h.finish(w, settingsError(err))
 		return
 	}
+	work, err := ex.Work(b)
+	if err != nil {
+		h.finish(w, settingsError(err))
+		return
+	}
+	rl.work = work
+	if herr := h.budget(work, b.Samples); herr != nil {
+		h.finish(w, herr)
+		return
+	}
 	var body []byte
 	var got requestLog // written by the worker, read once it has finished
-	herr, finished := h.run(r, func(ctx context.Context) *httpError {
+	herr, finished := h.run(r, work, func(ctx context.Context) *httpError {
 		rep, err := ex.Explain(ctx, b, nil)
 		if err != nil {
 			var fe *explain.FieldError

@@ -50,7 +50,7 @@ func (s *syncBuffer) String() string {
 }
 
 // demoModel returns the embedded pumps demo model and its reference set.
-func demoModel(t *testing.T) (*explain.Model, *explain.Dataset) {
+func demoModel(t testing.TB) (*explain.Model, *explain.Dataset) {
 	t.Helper()
 	s, err := demo.Get("pumps")
 	require.NoError(t, err)
@@ -66,7 +66,7 @@ func demoModel(t *testing.T) (*explain.Model, *explain.Dataset) {
 // testServer serves the pumps demo, with its reference set, on an
 // httptest listener (127.0.0.1), with the serve command's defaults; edit
 // changes the options.
-func testServer(t *testing.T, edit func(o *Options)) (*Handler, *httptest.Server, *syncBuffer) {
+func testServer(t testing.TB, edit func(o *Options)) (*Handler, *httptest.Server, *syncBuffer) {
 	t.Helper()
 	m, ref := demoModel(t)
 	logs := &syncBuffer{}
@@ -89,17 +89,19 @@ var (
 	get  = testhttp.Get
 )
 
-// errorOf decodes an error body; every error is {"error": "..."}.
+// errorOf decodes an error body; every error is {"error": "...",
+// "request_id": "..."}.
 func errorOf(t *testing.T, body string) string {
 	t.Helper()
 	var e map[string]string
 	require.NoError(t, json.Unmarshal([]byte(body), &e), body)
-	require.Len(t, e, 1, body)
+	require.Len(t, e, 2, body)
+	require.NotEmpty(t, e["request_id"], body)
 	return e["error"]
 }
 
 // demoSampleJSON is the demo's own sample.
-func demoSampleJSON(t *testing.T) string {
+func demoSampleJSON(t testing.TB) string {
 	t.Helper()
 	s, err := demo.Get("pumps")
 	require.NoError(t, err)
@@ -157,9 +159,9 @@ func TestServeStatuses(t *testing.T) {
 		{"not an object", "/v1/predict", `[1, 2]`, http.StatusBadRequest, []string{"malformed JSON"}},
 		{"unknown field", "/v1/explain", `{"inputs": [` + sample + `], "step": 4}`, http.StatusBadRequest, []string{`unknown field "step"`}},
 		{"wrong length", "/v1/explain", `{"inputs": [[1, 2, 3]]}`, http.StatusBadRequest,
-			[]string{"expected samples of shape [8] (8 values each)", "got an array of shape [1 3] (3 values per row)"}},
+			[]string{"sample 0: expected 8 values (shape [8]), got 3 (shape [3])"}},
 		{"wrong length predict", "/v1/predict", `{"inputs": [[1, 2, 3, 4, 5, 6, 7, 8, 9]]}`, http.StatusBadRequest,
-			[]string{"expected samples of shape [8]", "9 values per row"}},
+			[]string{"sample 0: expected 8 values (shape [8]), got 9"}},
 		{"NaN token", "/v1/explain", `{"inputs": [[1, 2, 3, NaN, 5, 6, 7, 8]]}`, http.StatusBadRequest, []string{"NaN", "expected finite numbers"}},
 		{"Infinity token", "/v1/predict", `{"inputs": [[1, 2, 3, -Infinity, 5, 6, 7, 8]]}`, http.StatusBadRequest, []string{"Infinity", "expected finite numbers"}},
 		// 1e999 overflows float64 (IEEE 754 binary64: largest finite ≈ 1.8e308).
@@ -263,13 +265,16 @@ func gauge(t *testing.T, s *Handler, name string) float64 {
 
 // passes is the number of model passes (Forward and Gradient calls that
 // reached the network) since the handler started, from its registry.
-func passes(t *testing.T, s *Handler) int64 {
+func passes(t *testing.T, s *Handler) int64 { return counterSum(t, s, "apportion_model_passes_total") }
+
+// counterSum adds up the counters of one metric over their labels.
+func counterSum(t *testing.T, s *Handler, name string) int64 {
 	t.Helper()
 	mfs, err := s.metrics.reg.Gather()
 	require.NoError(t, err)
 	n := 0.0
 	for _, mf := range mfs {
-		if mf.GetName() == "apportion_model_passes_total" {
+		if mf.GetName() == name {
 			for _, m := range mf.GetMetric() {
 				n += m.GetCounter().GetValue()
 			}
@@ -603,7 +608,7 @@ func TestBatcherStacksCalls(t *testing.T) {
 	go call(2, point(4), 1, []int{1})
 	go call(3, point(5), 1, []int{0})
 	go call(4, point(6), 1, []int{1})
-	waitFor(t, "the calls to queue", func() bool { return len(b.calls) == 5 })
+	waitFor(t, "the calls to queue", func() bool { return len(b.urgent) == 5 })
 	cancel() // given up while waiting: no pass may include it
 	time.Sleep(10 * time.Millisecond)
 	close(g.open)
@@ -675,13 +680,16 @@ func TestNamedInputs(t *testing.T) {
 	require.Equal(t, http.StatusOK, code)
 	assert.JSONEq(t, first, one)
 
-	// A feature left out, a key that is not a feature and a value that is
-	// not a number are named, with the sample.
+	// A feature left out, a key that is not a feature, a value that is not
+	// a number and one the input cannot take are named, with the sample.
 	for body, want := range map[string]string{
 		`{"inputs":[` + objects[0] + `,{"flow":1}]}`:                                                                            `"inputs"[1] (for "sensors"): feature "bearing_temp" is missing`,
 		`{"inputs":[` + objects[0] + "," + strings.Replace(objects[1], `"ambient_temp":`, `"ambient":`, 1) + `]}`:               `"inputs"[1] (for "sensors"): "ambient" is not a feature of the model (features: bearing_temp, vibration_rms,`,
 		`{"inputs":[` + strings.Replace(objects[0], `"flow":`, `"x":1,"flow":`, 1) + `]}`:                                       `"inputs"[0] (for "sensors"): "x" is not a feature`,
 		`{"inputs":[` + regexp.MustCompile(`"bearing_temp":[^,}]+`).ReplaceAllString(objects[0], `"bearing_temp":"hot"`) + `]}`: `"inputs"[0] (for "sensors"): feature "bearing_temp": expected a number, got "hot"`,
+		// 1e300 is a float64 but beyond the float32 input's range (IEEE 754
+		// binary32: largest finite ≈ 3.4e38), as in an array of numbers.
+		`{"inputs":[` + regexp.MustCompile(`"flow":[^,}]+`).ReplaceAllString(objects[0], `"flow":1e300`) + `]}`: `"inputs"[0] (for "sensors"): feature "flow": 1e+300 is out of the float32 range of the input`,
 	} {
 		code, _, got := post(t, ts.URL+"/v1/predict", body)
 		assert.Equal(t, http.StatusBadRequest, code, got)

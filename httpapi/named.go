@@ -9,6 +9,7 @@ import (
 	"strconv"
 	"strings"
 
+	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
 
@@ -26,11 +27,16 @@ func (h *Handler) namedInputs(inputs json.RawMessage) (b *samples.Batch, ok bool
 	case len(raw) > 0 && raw[0] == '{':
 		objects = []json.RawMessage{raw}
 	case len(raw) > 0 && raw[0] == '[':
+		// Decided by the first sample, before decoding any: arrays of
+		// numbers are read by samplesOf without this copy of them.
+		if first := bytes.TrimSpace(raw[1:]); len(first) == 0 || first[0] != '{' {
+			return nil, false, nil
+		}
 		if err := json.Unmarshal(raw, &objects); err != nil || len(objects) == 0 {
 			return nil, false, nil
 		}
-		if first := bytes.TrimSpace(objects[0]); len(first) == 0 || first[0] != '{' {
-			return nil, false, nil
+		if h.opt.MaxSamples > 0 && len(objects) > h.opt.MaxSamples {
+			return nil, true, h.tooManySamples()
 		}
 	default:
 		return nil, false, nil
@@ -48,6 +54,11 @@ func (h *Handler) namedInputs(inputs json.RawMessage) (b *samples.Batch, ok bool
 		Data: make([]float64, 0, size*len(objects)), Features: features}
 	for n, o := range objects {
 		x, err := namedSample(o, features, index)
+		if err == nil && h.spec.Elem == onnxlite.Float {
+			if j, ferr := samples.CheckFloat32(x); ferr != nil {
+				err = fmt.Errorf("feature %q: %w", features[j], ferr)
+			}
+		}
 		if err != nil {
 			return nil, true, badRequest(`"inputs"[%d] (for %q): %v`, n, h.spec.Name, err)
 		}

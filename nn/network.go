@@ -85,7 +85,19 @@ type Options struct {
 	// order, bit for bit those of Parallel 1: a sample's results do not
 	// depend on its batch.
 	Parallel int
+	// MaxValueBytes bounds the bytes of the values of one program: of
+	// every value of the graph at the program's input shape, constants
+	// included, as the engine holds them, and of their gradients in a
+	// gradient program (default DefaultMaxValueBytes). It is checked from
+	// the inferred shapes before a program is built, and before shape
+	// inference makes a folded constant; a program over it is an error
+	// wrapping ErrTooLarge.
+	MaxValueBytes int64
 }
+
+// DefaultMaxValueBytes is Options.MaxValueBytes when it is zero: 256 MiB
+// (DEVELOPERS.md compares it with the programs of the bench models).
+const DefaultMaxValueBytes = 256 << 20
 
 // Sentinel errors. Errors returned by this package that stem from one of these
 // conditions wrap the matching sentinel, so callers can test with errors.Is.
@@ -160,8 +172,11 @@ func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
 	if opts.DType != Float32 && opts.DType != Float64 {
 		return nil, fmt.Errorf("nn: compile: %w: unknown DType %d (want Float32 or Float64)", ErrBadRequest, int(opts.DType))
 	}
-	if opts.MaxBatch < 0 || opts.Machines < 0 || opts.Parallel < 0 {
-		return nil, fmt.Errorf("nn: compile: %w: negative MaxBatch %d, Machines %d or Parallel %d", ErrBadRequest, opts.MaxBatch, opts.Machines, opts.Parallel)
+	if opts.MaxBatch < 0 || opts.Machines < 0 || opts.Parallel < 0 || opts.MaxValueBytes < 0 {
+		return nil, fmt.Errorf("nn: compile: %w: negative MaxBatch %d, Machines %d, Parallel %d or MaxValueBytes %d", ErrBadRequest, opts.MaxBatch, opts.Machines, opts.Parallel, opts.MaxValueBytes)
+	}
+	if opts.MaxValueBytes == 0 {
+		opts.MaxValueBytes = DefaultMaxValueBytes
 	}
 	if opts.MaxBatch == 0 {
 		opts.MaxBatch = DefaultMaxBatch

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"math"
 	"slices"
 	"strconv"
 
@@ -235,13 +236,18 @@ func (nw *Network) inputMap(shapes [][]int) map[string][]int {
 
 // infer runs shape inference on m (the model or its relaxed copy) for
 // exact run-time input shapes and the held values, folding every constant
-// subgraph with the engine.
+// subgraph with the engine, within the network's limit on value bytes.
 func (nw *Network) infer(m *onnxlite.Model, shapes [][]int, h *heldValues) (*onnxlite.Static, error) {
-	opts := onnxlite.InferOptions{Shapes: nw.inputMap(shapes), Eval: nw.evaluator()}
+	opts := onnxlite.InferOptions{Shapes: nw.inputMap(shapes), Eval: nw.evaluator(), MaxValueBytes: nw.opts.MaxValueBytes}
 	if h != nil {
 		opts.Values = h.values
 	}
-	return onnxlite.InferWith(m, opts)
+	st, err := onnxlite.InferWith(m, opts)
+	var le *onnxlite.LimitError
+	if errors.As(err, &le) && le.Limit == "MaxValueBytes" {
+		return nil, nw.tooLarge(shapes, le.Value, false, err)
+	}
+	return st, err
 }
 
 // inferFor runs shape inference for exact input shapes, relaxing a declared
@@ -322,6 +328,69 @@ func (nw *Network) inferRelaxed(shapes [][]int, h *heldValues) (*onnxlite.Static
 }
 
 var errBatchInconsistent = errors.New("graph is not batch-consistent")
+
+// ErrTooLarge is wrapped when the values of a program would take more than
+// Options.MaxValueBytes; it wraps onnxlite.ErrLimit too.
+var ErrTooLarge = fmt.Errorf("values too large for one program: %w", onnxlite.ErrLimit)
+
+// checkValueBytes adds up the bytes of a program's values as the engine
+// holds them (floating-point values in its element type, the others as
+// int64), with, for a gradient program, one adjoint per floating-point
+// value that is not a constant, and refuses a program over
+// Options.MaxValueBytes before any of it is built.
+func (nw *Network) checkValueBytes(st *onnxlite.Static, shapes [][]int, grad bool) error {
+	float := int64(4)
+	if nw.opts.DType == Float64 {
+		float = 8
+	}
+	total := int64(0)
+	for name, vs := range st.Values {
+		n := int64(1)
+		for _, d := range vs.Shape {
+			n = min(n*int64(d), math.MaxInt64/64)
+		}
+		size := int64(8)
+		if isFloat(vs.DType) {
+			size = float
+			if _, isConst := st.Consts[name]; grad && !isConst {
+				size *= 2
+			}
+		}
+		total = min(total+n*size, math.MaxInt64/2)
+	}
+	if total > nw.opts.MaxValueBytes {
+		return nw.tooLarge(shapes, total, grad, nil)
+	}
+	return nil
+}
+
+// tooLarge is the error of a program whose values need need bytes.
+func (nw *Network) tooLarge(shapes [][]int, need int64, grad bool, cause error) error {
+	what := "its values"
+	if grad {
+		what = "its values and their gradients"
+	}
+	err := fmt.Errorf("nn: the program for input shape %s needs more than %s for %s, over the limit of %s on one program: %w",
+		shapeString(shapes[0], false), formatBytes(need), what, formatBytes(nw.opts.MaxValueBytes), ErrTooLarge)
+	if cause != nil {
+		err = fmt.Errorf("%w (%w)", err, cause)
+	}
+	return err
+}
+
+// formatBytes writes n bytes in the largest binary unit under it: 1.5 GiB.
+func formatBytes(n int64) string {
+	const unit = 1024
+	if n < unit {
+		return strconv.FormatInt(n, 10) + " bytes"
+	}
+	v, i := float64(n), -1
+	for v >= unit && i < 3 {
+		v /= unit
+		i++
+	}
+	return strconv.FormatFloat(v, 'f', 1, 64) + " " + []string{"KiB", "MiB", "GiB", "TiB"}[i]
+}
 
 // relaxModel returns a copy of m in which every Reshape whose shape is a
 // constant (initializer or Constant node) with a leading entry of 1 uses 0
@@ -482,6 +551,9 @@ func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
 		st, err = nw.infer(nw.model, shapes, req.held)
 	}
 	if err != nil {
+		return nil, err
+	}
+	if err := nw.checkValueBytes(st, shapes, req.grad); err != nil {
 		return nil, err
 	}
 	p := &program{nw: nw, static: st, inShapes: shapes, req: req}

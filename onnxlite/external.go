@@ -13,8 +13,9 @@ import (
 // data_location=EXTERNAL. The external_data entries are "location" (a path
 // relative to the model's directory), "offset" and "length" in bytes
 // (optional; offset defaults to 0 and length to the rest of the file), and
-// "checksum", which is ignored. The file must lie inside d.baseDir after
-// resolving symlinks on both sides; the offset and length are checked against
+// "checksum", which is ignored. The file must be a regular file (checked
+// before it is opened) inside d.baseDir after resolving symlinks on both
+// sides; the offset and length are checked against
 // the file size before anything is read, and the length must be want, the
 // byte size the dims and element type call for.
 func (d *decoder) loadExternal(path string, entries [][2]string, want int64) ([]byte, error) {
@@ -71,7 +72,15 @@ func (d *decoder) loadExternal(path string, entries [][2]string, want int64) ([]
 	if err != nil || rel == ".." || strings.HasPrefix(rel, ".."+string(filepath.Separator)) || filepath.IsAbs(rel) {
 		return nil, fail("external data file %q resolves to %s, outside the model directory %s", loc, target, base)
 	}
-	f, err := os.Open(target)
+	// Opening a FIFO blocks until a writer comes, and a device may never
+	// end: anything but a regular file is refused before it is opened, and
+	// opened without blocking in case it was replaced in between.
+	if st, err := os.Stat(target); err != nil {
+		return nil, fail("external data file %q: %v", loc, err)
+	} else if !st.Mode().IsRegular() {
+		return nil, fail("external data file %q is not a regular file", loc)
+	}
+	f, err := openNonBlocking(target)
 	if err != nil {
 		return nil, fail("external data file %q: %v", loc, err)
 	}

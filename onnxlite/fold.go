@@ -226,6 +226,9 @@ func foldConstantOfShape(c *nodeCtx) ([]*Tensor, error) {
 		dt = a.T.DType
 		fill = reflect.ValueOf(a.T.Data).Index(0)
 	}
+	if err := c.reserve(ValueShape{DType: dt, Shape: shape}); err != nil {
+		return nil, err
+	}
 	n := prod(shape)
 	data := reflect.MakeSlice(sliceType(dt), n, n)
 	for i := 0; i < n; i++ {
@@ -274,6 +277,9 @@ func foldRange(c *nodeCtx) ([]*Tensor, error) {
 		if n > DefaultLimits.MaxTensorElements {
 			return nil, c.wrap(&LimitError{Limit: "MaxTensorElements", Value: n, Max: DefaultLimits.MaxTensorElements})
 		}
+		if err := c.reserve(ValueShape{DType: dt, Shape: []int{int(n)}}); err != nil {
+			return nil, err
+		}
 		out := make([]int64, n)
 		for i := range out {
 			out[i] = v[0] + int64(i)*step
@@ -299,6 +305,9 @@ func foldRange(c *nodeCtx) ([]*Tensor, error) {
 		return nil, c.wrap(&LimitError{Limit: "MaxTensorElements", Value: int64(min(nf, math.MaxInt64/2)), Max: DefaultLimits.MaxTensorElements})
 	}
 	n := int(nf)
+	if err := c.reserve(ValueShape{DType: dt, Shape: []int{n}}); err != nil {
+		return nil, err
+	}
 	out := make([]float64, n)
 	for i := range out {
 		out[i] = v[0] + float64(i)*v[2]

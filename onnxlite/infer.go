@@ -2,6 +2,7 @@ package onnxlite
 
 import (
 	"fmt"
+	"math"
 	"slices"
 	"strings"
 )
@@ -50,6 +51,12 @@ type InferOptions struct {
 	// Eval, when set, evaluates every node whose inputs are all constant
 	// and that onnxlite does not fold itself (see Evaluator).
 	Eval Evaluator
+	// MaxValueBytes, when positive, bounds the total bytes of the values
+	// of the specialised graph: every value's element count times its
+	// element size, initializers, inputs and folded constants included. A
+	// node whose outputs would cross it is refused with a *LimitError
+	// (Limit "MaxValueBytes") before a constant it folds is made.
+	MaxValueBytes int64
 }
 
 // Evaluator computes the outputs of node n of a model of default-domain
@@ -96,12 +103,16 @@ func InferWith(m *Model, opts InferOptions) (st *Static, err error) {
 		Values: map[string]ValueShape{},
 		Consts: map[string]*Tensor{},
 	}
+	b := &valueBytes{max: opts.MaxValueBytes}
 	for _, t := range g.Initializers {
 		if err := checkTensor(t); err != nil {
 			return nil, invalidf("initializer %q: %v", t.Name, err)
 		}
 		vs := ValueShape{DType: t.DType, Shape: t.Shape()}
 		if err := checkValueLimits(t.Name, vs); err != nil {
+			return nil, err
+		}
+		if err := b.add(t.Name, vs); err != nil {
 			return nil, err
 		}
 		s.Values[t.Name] = vs
@@ -127,6 +138,9 @@ func InferWith(m *Model, opts InferOptions) (st *Static, err error) {
 			if err := bindParams(in, vs.Shape, params); err != nil {
 				return nil, err
 			}
+			if err := b.add(in.Name, vs); err != nil {
+				return nil, err
+			}
 			s.Values[in.Name] = vs
 			s.Consts[in.Name] = t
 			continue
@@ -136,6 +150,9 @@ func InferWith(m *Model, opts InferOptions) (st *Static, err error) {
 			return nil, err
 		}
 		if err := checkValueLimits(in.Name, vs); err != nil {
+			return nil, err
+		}
+		if err := b.add(in.Name, vs); err != nil {
 			return nil, err
 		}
 		if err := bindParams(in, vs.Shape, params); err != nil {
@@ -159,7 +176,7 @@ func InferWith(m *Model, opts InferOptions) (st *Static, err error) {
 	}
 	opset := m.OpsetVersion("")
 	for _, i := range order {
-		if err := s.inferNode(g.Nodes[i], i, opset, opts.Eval); err != nil {
+		if err := s.inferNode(g.Nodes[i], i, opset, opts.Eval, b); err != nil {
 			return nil, err
 		}
 	}
@@ -309,6 +326,60 @@ func describeDims(ds []Dim) string {
 	return "[" + strings.Join(parts, " ") + "]"
 }
 
+// valueBytes adds up the bytes of a graph's values against a limit (none
+// when max is 0).
+type valueBytes struct {
+	max, total int64
+}
+
+// bytesOf is the size of a value in bytes, saturated at math.MaxInt64.
+func bytesOf(vs ValueShape) int64 {
+	n := int64(max(elemSize(vs.DType), 1))
+	for _, d := range vs.Shape {
+		if d != 0 && n > math.MaxInt64/int64(d) {
+			return math.MaxInt64
+		}
+		n *= int64(d)
+	}
+	return n
+}
+
+// check reports whether values of the given shapes still fit.
+func (b *valueBytes) check(name string, vss ...ValueShape) error {
+	if b == nil || b.max <= 0 {
+		return nil
+	}
+	total := b.total
+	for _, vs := range vss {
+		total = min(total+bytesOf(vs), math.MaxInt64/2)
+	}
+	if total > b.max {
+		return fmt.Errorf("onnxlite: value %q: %w", name, &LimitError{Limit: "MaxValueBytes", Value: total, Max: b.max})
+	}
+	return nil
+}
+
+// add counts a value, once it fits.
+func (b *valueBytes) add(name string, vs ValueShape) error {
+	if err := b.check(name, vs); err != nil {
+		return err
+	}
+	b.total = min(b.total+bytesOf(vs), math.MaxInt64/2)
+	return nil
+}
+
+// reserve checks that outputs of the given shapes still fit the limit on
+// value bytes, before the node makes them.
+func (c *nodeCtx) reserve(vss ...ValueShape) error {
+	if len(c.n.Outputs) == 0 {
+		return nil
+	}
+	if err := c.bytes.check(c.n.Outputs[0], vss...); err != nil {
+		return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(c.n, c.idx), c.n.OpType, err)
+	}
+	return nil
+}
+
 // checkValueLimits refuses values beyond DefaultLimits.MaxTensorElements or DefaultLimits.MaxRank.
 func checkValueLimits(name string, vs ValueShape) error {
 	if len(vs.Shape) > DefaultLimits.MaxRank {
@@ -332,6 +403,7 @@ type nodeCtx struct {
 	opset  int64
 	in     []*ValueShape // nil for an omitted optional input
 	consts []*Tensor     // nil unless the input is constant
+	bytes  *valueBytes   // the values' bytes so far; nil for no limit
 }
 
 // errorf returns an error wrapping ErrInvalid that names the node and its
@@ -413,8 +485,8 @@ func (c *nodeCtx) allConst() bool {
 	return true
 }
 
-func (s *Static) inferNode(n *Node, idx int, opset int64, eval Evaluator) error {
-	c := &nodeCtx{n: n, idx: idx, opset: opset,
+func (s *Static) inferNode(n *Node, idx int, opset int64, eval Evaluator, b *valueBytes) error {
+	c := &nodeCtx{n: n, idx: idx, opset: opset, bytes: b,
 		in: make([]*ValueShape, len(n.Inputs)), consts: make([]*Tensor, len(n.Inputs))}
 	for i, name := range n.Inputs {
 		if name == "" {
@@ -430,6 +502,14 @@ func (s *Static) inferNode(n *Node, idx int, opset int64, eval Evaluator) error 
 	case n.OpType == "Shape":
 		outs, err = foldShape(c)
 	case c.allConst() && canFold(c):
+		// What the node's outputs would take is known before they are
+		// made: a folded constant can be far larger than its inputs. The
+		// fold-only operators, which have no shape rule, check in fold.
+		if shapes, serr := c.outShapes(); serr == nil && len(n.Outputs) > 0 {
+			if err := c.reserve(shapes...); err != nil {
+				return err
+			}
+		}
 		outs, err = fold(c)
 	case FoldOnly(n.OpType) && !c.allConst():
 		return fmt.Errorf("%w: node %q (%s): %s needs constant inputs, got the run-time value(s) %s (%w)",
@@ -457,12 +537,19 @@ func (s *Static) inferNode(n *Node, idx int, opset int64, eval Evaluator) error 
 		}
 	}
 	if eval != nil && c.allConst() && len(n.Inputs) > 0 {
+		if err := c.reserve(shapes...); err != nil {
+			return err
+		}
 		return s.evaluate(c, eval, shapes)
 	}
 	for i, o := range n.Outputs {
-		if o != "" {
-			s.Values[o] = shapes[i]
+		if o == "" {
+			continue
 		}
+		if err := b.add(o, shapes[i]); err != nil {
+			return c.wrap(err)
+		}
+		s.Values[o] = shapes[i]
 	}
 	s.Nodes = append(s.Nodes, n)
 	return nil
@@ -518,6 +605,9 @@ func (s *Static) setConsts(c *nodeCtx, outs []*Tensor) error {
 		t.Name = c.n.Outputs[i]
 		vs := ValueShape{DType: t.DType, Shape: t.Shape()}
 		if err := checkValueLimits(t.Name, vs); err != nil {
+			return c.wrap(err)
+		}
+		if err := c.bytes.add(t.Name, vs); err != nil {
 			return c.wrap(err)
 		}
 		s.Values[t.Name] = vs

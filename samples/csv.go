@@ -2,6 +2,7 @@ package samples
 
 import (
 	"encoding/csv"
+	"errors"
 	"fmt"
 	"io"
 	"math"
@@ -14,101 +15,167 @@ import (
 // features (features, one name per value of a sample), the columns are
 // matched by name, in the model's order, and other columns are ignored;
 // otherwise the columns are the sample's values in order. A row that cannot
-// be read is marked bad in the batch, with its line.
+// be read is marked bad in the batch, with its line. Numbers are written
+// in decimal notation (see RangeError for those out of range).
 func ReadCSV(r io.Reader, spec Spec, features []string) (*Batch, error) {
-	records, lines, err := readRecords(r)
-	if err != nil {
-		return nil, fmt.Errorf("reading CSV: %w", err)
+	return readAll(newCSVSource(r, spec, features))
+}
+
+// csvSource reads the rows of a CSV file of samples as they are asked for.
+type csvSource struct {
+	cr     *csv.Reader
+	header []string
+	// cols are the fields read, in the sample's order; byName is set when
+	// they were found by the model's feature names.
+	cols   []int
+	byName bool
+	sample []int
+	// pending is the first data row, read to size the samples.
+	pending     []string
+	pendingLine int
+}
+
+func newCSVSource(r io.Reader, spec Spec, features []string) (*csvSource, error) {
+	s := &csvSource{cr: newCSVReader(r)}
+	rec, line, err := s.record()
+	if err == nil && !dataRow(rec) {
+		s.header = trimmed(rec)
+		rec, line, err = s.record()
 	}
-	var header []string
-	if len(records) > 0 && !numericRow(records[0]) {
-		header, records, lines = trimmed(records[0]), records[1:], lines[1:]
-	}
-	if len(records) == 0 {
+	if err == io.EOF {
 		return nil, fmt.Errorf("expected at least one row of numbers, got none")
 	}
+	if err != nil {
+		return nil, err
+	}
+	s.pending, s.pendingLine = rec, line
 	ps, fixed := spec.FixedSample()
-	if header != nil && len(features) > 0 && (!fixed || len(features) == Product(ps)) {
-		cols, err := columnsByName(header, features)
-		if err != nil {
+	if s.header != nil && len(features) > 0 && (!fixed || len(features) == Product(ps)) {
+		if s.cols, err = columnsByName(s.header, features); err != nil {
 			return nil, err
 		}
-		sample := ps
+		s.byName = true
+		s.sample = ps
 		if !fixed {
-			sample = []int{len(cols)}
+			s.sample = []int{len(s.cols)}
 		}
-		b := &Batch{Shape: append([]int{len(records)}, sample...), Samples: len(records), Features: pick(header, cols),
-			Ignored: unread(header, cols, -1)}
-		b.Data = make([]float64, 0, len(cols)*len(records))
-		for i, rec := range records {
-			where := fmt.Sprintf("line %d", lines[i])
-			if len(rec) != len(header) {
-				b.markBad(i, fmt.Errorf("%s: expected %d fields, as in the header, got %d", where, len(header), len(rec)))
-				b.Data = appendNaN(b.Data, len(cols))
-				continue
-			}
-			x, err := parseFields(rec, cols, true, func(j int) string { return "column " + header[j] })
-			if err != nil {
-				b.markBad(i, fmt.Errorf("%s, %w", where, err))
-				x = appendNaN(nil, len(cols))
-			}
-			b.Data = append(b.Data, x...)
-		}
-		if len(b.Bad) == len(records) {
-			return nil, b.FirstBad()
-		}
-		return b, nil
+		return s, nil
 	}
-
-	width := len(records[0])
-	if header != nil {
-		width = len(header)
+	width := len(rec)
+	if s.header != nil {
+		width = len(s.header)
 	}
 	if fixed {
 		width = Product(ps)
 	}
-	if header != nil && len(header) != width {
-		return nil, fmt.Errorf("header has %d names, expected %d (one per value of a sample of shape %s)", len(header), width, ShapeString(ps))
+	if s.header != nil && len(s.header) != width {
+		return nil, fmt.Errorf("header has %d names, expected %d (one per value of a sample of shape %s)", len(s.header), width, ShapeString(ps))
 	}
-	cols := make([]int, width)
-	for j := range cols {
-		cols[j] = j
+	s.cols = make([]int, width)
+	for j := range s.cols {
+		s.cols[j] = j
 	}
-	b := &Batch{Samples: len(records), Data: make([]float64, 0, width*len(records))}
-	for i, rec := range records {
-		where := fmt.Sprintf("line %d", lines[i])
-		var x []float64
-		err := fmt.Errorf("%s: expected %d values, got %d", where, width, len(rec))
-		if len(rec) == width {
-			name := func(j int) string { return "column " + strconv.Itoa(j+1) }
-			if header != nil {
-				name = func(j int) string { return "column " + header[j] }
-			}
-			if x, err = parseFields(rec, cols, true, name); err != nil {
-				err = fmt.Errorf("%s, %w", where, err)
-			}
-		}
-		if err != nil {
-			b.markBad(i, err)
-			x = appendNaN(nil, width)
-		}
-		b.Data = append(b.Data, x...)
-	}
-	if len(b.Bad) == len(records) {
-		return nil, b.FirstBad()
-	}
-	sample := ps
+	s.sample = ps
 	if !fixed {
-		sample = []int{width}
+		s.sample = []int{width}
 		if per, ok := spec.PerSample(); ok && len(per) != 1 {
 			return nil, fmt.Errorf("expected samples of shape %s, which a CSV row of %d values cannot fill", ShapeString(per), width)
 		}
 	}
-	b.Shape = append([]int{len(records)}, sample...)
-	if header != nil {
-		b.Features = header
+	return s, nil
+}
+
+// features names the columns read, when the file has a header.
+func (s *csvSource) features() []string {
+	if s.byName {
+		return pick(s.header, s.cols)
 	}
+	return s.header
+}
+
+// ignored names the header's columns a read by feature names leaves out.
+func (s *csvSource) ignored() []string {
+	if s.byName {
+		return unread(s.header, s.cols, -1)
+	}
+	return nil
+}
+
+// record reads the next record and the line it starts on.
+func (s *csvSource) record() ([]string, int, error) {
+	if s.pending != nil {
+		rec := s.pending
+		s.pending = nil
+		return rec, s.pendingLine, nil
+	}
+	rec, line, err := nextRecord(s.cr)
+	if err != nil && err != io.EOF {
+		err = fmt.Errorf("reading CSV: %w", err)
+	}
+	return rec, line, err
+}
+
+// nextRecord reads the next record of cr and the line it starts on.
+func nextRecord(cr *csv.Reader) ([]string, int, error) {
+	rec, err := cr.Read()
+	if err != nil {
+		return nil, 0, err
+	}
+	line, _ := cr.FieldPos(0)
+	return rec, line, nil
+}
+
+func (s *csvSource) next(n, first int) (*Batch, error) {
+	b := &Batch{Data: make([]float64, 0, min(n*len(s.cols), 1<<16))}
+	for b.Samples < n {
+		rec, line, err := s.record()
+		if err == io.EOF {
+			break
+		}
+		if err != nil {
+			return nil, err
+		}
+		where := fmt.Sprintf("line %d", line)
+		x, err := s.row(rec)
+		if err != nil {
+			b.markBad(b.Samples, fmt.Errorf("%s%w", where, err))
+			x = appendNaN(nil, len(s.cols))
+		}
+		b.Data = append(b.Data, x...)
+		b.Samples++
+	}
+	if b.Samples == 0 {
+		return nil, io.EOF
+	}
+	b.Shape = append([]int{b.Samples}, s.sample...)
 	return b, nil
+}
+
+// row reads the sample of one record; its error starts with the
+// separator that follows where the record is.
+func (s *csvSource) row(rec []string) ([]float64, error) {
+	if s.byName {
+		if len(rec) != len(s.header) {
+			return nil, fmt.Errorf(": expected %d fields, as in the header, got %d", len(s.header), len(rec))
+		}
+		x, err := parseFields(rec, s.cols, true, func(j int) string { return "column " + s.header[j] })
+		if err != nil {
+			return nil, fmt.Errorf(", %w", err)
+		}
+		return x, nil
+	}
+	if len(rec) != len(s.cols) {
+		return nil, fmt.Errorf(": expected %d values, got %d", len(s.cols), len(rec))
+	}
+	name := func(j int) string { return "column " + strconv.Itoa(j+1) }
+	if s.header != nil {
+		name = func(j int) string { return "column " + s.header[j] }
+	}
+	x, err := parseFields(rec, s.cols, true, name)
+	if err != nil {
+		return nil, fmt.Errorf(", %w", err)
+	}
+	return x, nil
 }
 
 // Table is a CSV file of rows to explain, with columns the model does not
@@ -173,48 +240,124 @@ func (e *ColumnError) Error() string {
 // Size is 0. Any other format is read as by Read, one row per sample. A
 // row that cannot be used keeps its error; the others are read.
 func ReadTable(r io.Reader, name string, spec Spec, opt TableOptions) (*Table, error) {
+	tr, err := NewTableReader(r, name, spec, opt)
+	if err != nil {
+		return nil, err
+	}
+	t := &Table{Columns: tr.Columns, Ignored: tr.Ignored, SampleShape: tr.SampleShape}
+	for {
+		rows, err := tr.Next(readChunk)
+		if err == io.EOF {
+			return t, nil
+		}
+		if err != nil {
+			return nil, err
+		}
+		t.Rows = append(t.Rows, rows...)
+	}
+}
+
+// TableReader reads the rows of a table a batch at a time, in file order,
+// so that a table of any length is summarised in constant memory (see
+// ReadTable for the columns read).
+type TableReader struct {
+	// Columns, Ignored and SampleShape are the table's (see Table).
+	Columns     []string
+	Ignored     []string
+	SampleShape []int
+	next        func(n int) ([]Row, error)
+}
+
+// Next returns the next rows, at most n (n < 1 means 1), or io.EOF after
+// the last.
+func (t *TableReader) Next(n int) ([]Row, error) { return t.next(max(n, 1)) }
+
+// NewTableReader starts reading the rows of the file called name: a CSV
+// file's header and its first rows, which choose the columns; another
+// format's header.
+func NewTableReader(r io.Reader, name string, spec Spec, opt TableOptions) (*TableReader, error) {
 	f, err := FormatOf(name)
 	if err != nil {
 		return nil, fmt.Errorf("input %s: %w", name, err)
 	}
-	if f != CSV {
-		if opt.Group != "" {
-			return nil, fmt.Errorf("input %s: group column %q: the file is not CSV, the one format with named columns", name, opt.Group)
-		}
-		b, err := Read(r, name, spec, Options{KeepBad: true})
+	if f == CSV {
+		return newCSVTable(r, name, opt)
+	}
+	if opt.Group != "" {
+		return nil, fmt.Errorf("input %s: group column %q: the file is not CSV, the one format with named columns", name, opt.Group)
+	}
+	s, err := NewStream(r, name, spec, Options{KeepBad: true})
+	if err != nil {
+		return nil, err
+	}
+	t := &TableReader{}
+	t.next = func(n int) ([]Row, error) {
+		b, err := s.Next(n)
 		if err != nil {
 			return nil, err
 		}
-		t := &Table{SampleShape: b.SampleShape(), Rows: make([]Row, b.Samples)}
-		for i := range t.Rows {
-			row := Row{Where: "sample " + strconv.Itoa(i), Values: b.Sample(i), Err: b.Bad[i]}
+		t.SampleShape = b.SampleShape()
+		rows := make([]Row, b.Samples)
+		for i := range rows {
+			row := Row{Where: "sample " + strconv.Itoa(b.First+i), Values: b.Sample(i), Err: b.Bad[i]}
 			if row.Err == nil {
 				row.Err = CheckFinite(row.Values)
 			}
 			if row.Err != nil {
 				row.Values = nil
 			}
-			t.Rows[i] = row
+			rows[i] = row
 		}
-		return t, nil
+		return rows, nil
 	}
-	return readCSVTable(r, name, opt)
+	// The sample shape is known once the first samples are read.
+	first, err := t.next(readChunk)
+	if err != nil {
+		return nil, err
+	}
+	next := t.next
+	t.next = func(n int) ([]Row, error) {
+		if first != nil {
+			rows := first
+			first = nil
+			return rows, nil
+		}
+		return next(n)
+	}
+	return t, nil
 }
 
-func readCSVTable(r io.Reader, name string, opt TableOptions) (*Table, error) {
-	records, lines, err := readRecords(r)
+// numericSniff is the number of rows whose fields decide which columns of
+// a table are numeric.
+const numericSniff = 20
+
+func newCSVTable(r io.Reader, name string, opt TableOptions) (*TableReader, error) {
+	cr := newCSVReader(r)
+	rec, err := cr.Read()
+	if err == io.EOF {
+		return nil, fmt.Errorf("input %s: reading the header: %w", name, io.EOF)
+	}
 	if err != nil {
 		return nil, fmt.Errorf("input %s: %w", name, err)
 	}
-	if len(records) == 0 {
-		return nil, fmt.Errorf("input %s: reading the header: %w", name, io.EOF)
-	}
-	header := trimmed(records[0])
+	header := trimmed(rec)
 	if numericRow(header) {
 		return nil, fmt.Errorf("input %s: expected a header row naming the columns, got a row of numbers", name)
 	}
-	records, lines = records[1:], lines[1:]
-	if len(records) == 0 {
+	// The first rows, read ahead to find the numeric columns.
+	var ahead [][]string
+	var lines []int
+	for len(ahead) < numericSniff {
+		rec, line, err := nextRecord(cr)
+		if err == io.EOF {
+			break
+		}
+		if err != nil {
+			return nil, fmt.Errorf("input %s: %w", name, err)
+		}
+		ahead, lines = append(ahead, rec), append(lines, line)
+	}
+	if len(ahead) == 0 {
 		return nil, fmt.Errorf("input %s: expected at least one data row after the header, got none", name)
 	}
 	index := columnIndex(header)
@@ -232,7 +375,7 @@ func readCSVTable(r io.Reader, name string, opt TableOptions) (*Table, error) {
 		}
 	} else {
 		for j := range header {
-			if j != groupCol && numericColumn(records, j) {
+			if j != groupCol && numericColumn(ahead, j) {
 				cols = append(cols, j)
 			}
 		}
@@ -243,13 +386,11 @@ func readCSVTable(r io.Reader, name string, opt TableOptions) (*Table, error) {
 			cols = cols[:k]
 		}
 	}
-	t := &Table{Columns: pick(header, cols), Ignored: unread(header, cols, groupCol), Rows: make([]Row, len(records))}
-	for i, rec := range records {
-		row := Row{Where: "line " + strconv.Itoa(lines[i])}
+	row := func(rec []string, line int) Row {
+		row := Row{Where: "line " + strconv.Itoa(line)}
 		if len(rec) != len(header) {
 			row.Err = fmt.Errorf("expected %d fields, as in the header, got %d", len(header), len(rec))
-			t.Rows[i] = row
-			continue
+			return row
 		}
 		if groupCol >= 0 {
 			row.Group = strings.TrimSpace(rec[groupCol])
@@ -258,29 +399,42 @@ func readCSVTable(r io.Reader, name string, opt TableOptions) (*Table, error) {
 			}
 		}
 		row.Values, row.Err = parseFields(rec, cols, true, func(j int) string { return "column " + header[j] })
-		t.Rows[i] = row
+		return row
+	}
+	t := &TableReader{Columns: pick(header, cols), Ignored: unread(header, cols, groupCol)}
+	t.next = func(n int) ([]Row, error) {
+		var rows []Row
+		for len(rows) < n {
+			if len(ahead) > 0 {
+				rows = append(rows, row(ahead[0], lines[0]))
+				ahead, lines = ahead[1:], lines[1:]
+				continue
+			}
+			rec, line, err := nextRecord(cr)
+			if err == io.EOF {
+				break
+			}
+			if err != nil {
+				return nil, fmt.Errorf("input %s: %w", name, err)
+			}
+			rows = append(rows, row(rec, line))
+		}
+		if len(rows) == 0 {
+			return nil, io.EOF
+		}
+		return rows, nil
 	}
 	return t, nil
 }
 
-// readRecords reads every record of a CSV file with the line each starts
-// on. Records may have different lengths; fields lose their leading space.
-func readRecords(r io.Reader) (records [][]string, lines []int, err error) {
+// newCSVReader reads records of any length whose fields lose their
+// leading space.
+func newCSVReader(r io.Reader) *csv.Reader {
 	cr := csv.NewReader(r)
 	cr.FieldsPerRecord = -1
 	cr.TrimLeadingSpace = true
-	for {
-		rec, err := cr.Read()
-		if err == io.EOF {
-			return records, lines, nil
-		}
-		if err != nil {
-			return nil, nil, err
-		}
-		line, _ := cr.FieldPos(0)
-		records = append(records, rec)
-		lines = append(lines, line)
-	}
+	cr.ReuseRecord = false
+	return cr
 }
 
 // parseFields reads the fields cols of rec as numbers, refusing NaN and
@@ -289,10 +443,12 @@ func parseFields(rec []string, cols []int, finite bool, name func(j int) string)
 	x := make([]float64, len(cols))
 	for n, j := range cols {
 		f := strings.TrimSpace(rec[j])
-		v, err := strconv.ParseFloat(f, 64)
+		v, err := parseDecimal(f, false)
 		switch {
-		case err != nil:
+		case errors.Is(err, errNotNumber):
 			return nil, fmt.Errorf("%s: %q is not a number", name(j), f)
+		case err != nil:
+			return nil, fmt.Errorf("%s: %w", name(j), err)
 		case finite && (math.IsNaN(v) || math.IsInf(v, 0)):
 			return nil, fmt.Errorf("%s: %s %w", name(j), f, ErrNonFinite)
 		}
@@ -351,10 +507,28 @@ func columnIndex(header []string) map[string]int {
 	return index
 }
 
+// dataRow reports whether rec is a row of samples rather than a header:
+// every field is a number, or starts as one does (a digit, or a sign or
+// point before a digit), so that a first row holding "1_000" or "0x1p-2" is
+// a row whose values cannot be read, not a header of names.
+func dataRow(rec []string) bool {
+	for _, f := range rec {
+		f = strings.TrimSpace(f)
+		if isNumber(f) {
+			continue
+		}
+		digits := strings.TrimLeft(f, "+-.")
+		if digits == "" || !isDigit(digits[0]) || len(f)-len(digits) > 2 {
+			return false
+		}
+	}
+	return true
+}
+
 // numericRow reports whether every field of rec is a number.
 func numericRow(rec []string) bool {
 	for _, f := range rec {
-		if _, err := strconv.ParseFloat(strings.TrimSpace(f), 64); err != nil {
+		if !isNumber(strings.TrimSpace(f)) {
 			return false
 		}
 	}
@@ -365,12 +539,12 @@ func numericRow(rec []string) bool {
 // column j.
 func numericColumn(records [][]string, j int) bool {
 	n, yes := 0, 0
-	for _, rec := range records[:min(len(records), 20)] {
+	for _, rec := range records[:min(len(records), numericSniff)] {
 		if j >= len(rec) {
 			continue
 		}
 		n++
-		if _, err := strconv.ParseFloat(strings.TrimSpace(rec[j]), 64); err == nil {
+		if isNumber(strings.TrimSpace(rec[j])) {
 			yes++
 		}
 	}
@@ -391,11 +565,4 @@ func pick(s []string, idx []int) []string {
 		out[i] = s[j]
 	}
 	return out
-}
-
-func appendNaN(dst []float64, n int) []float64 {
-	for range n {
-		dst = append(dst, math.NaN())
-	}
-	return dst
 }

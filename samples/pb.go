@@ -3,6 +3,7 @@ package samples
 import (
 	"fmt"
 	"io"
+	"reflect"
 
 	"github.com/apportion/apportion/onnxlite"
 )
@@ -10,9 +11,18 @@ import (
 // ReadPB reads one ONNX TensorProto: the samples are its first axis, and
 // its stored shape must fit the declared one. Batch.Tensor keeps the
 // tensor, so that it is fed to the model as it is. A tensor with no
-// elements along its first axis is read as a batch of no samples (Read
-// refuses it unless Options.AllowEmpty).
-func ReadPB(r io.Reader, spec Spec) (*Batch, error) {
+// elements along its first axis is read as a batch of no samples when
+// Options.AllowEmpty (Read); ReadPB refuses it.
+func ReadPB(r io.Reader, spec Spec) (*Batch, error) { return readAll(newPBSource(r, spec, false)) }
+
+// pbSource hands out the samples of a tensor decoded whole: a TensorProto
+// has no order in which it could be read in parts.
+type pbSource struct {
+	b     *Batch
+	given bool // the whole tensor was handed out
+}
+
+func newPBSource(r io.Reader, spec Spec, allowEmpty bool) (*pbSource, error) {
 	t, err := onnxlite.DecodeTensor(r, onnxlite.DecodeOptions{})
 	if err != nil {
 		return nil, fmt.Errorf("reading ONNX tensor: %w", err)
@@ -31,5 +41,29 @@ func ReadPB(r io.Reader, spec Spec) (*Batch, error) {
 	if len(shape) > 0 {
 		b.Samples = shape[0]
 	}
-	return b, nil
+	if b.Samples == 0 && !allowEmpty {
+		return nil, fmt.Errorf("expected at least one sample, got a tensor of shape %s", ShapeString(shape))
+	}
+	return &pbSource{b: b}, nil
+}
+
+func (s *pbSource) next(n, first int) (*Batch, error) {
+	b := s.b
+	switch {
+	case first == 0 && n >= b.Samples && !s.given:
+		s.given = true // a tensor of no samples, too: it is fed as it is
+		return b, nil
+	case first >= b.Samples:
+		return nil, io.EOF
+	}
+	hi := min(first+n, b.Samples)
+	per := b.SampleSize()
+	part := &Batch{Shape: append([]int{hi - first}, b.SampleShape()...), Data: b.Data[first*per : hi*per], Samples: hi - first}
+	if b.Tensor != nil {
+		t := *b.Tensor
+		t.Dims = append([]int64{int64(hi - first)}, t.Dims[1:]...)
+		t.Data = reflect.ValueOf(t.Data).Slice(first*per, hi*per).Interface()
+		part.Tensor = &t
+	}
+	return part, nil
 }

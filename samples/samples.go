@@ -2,11 +2,14 @@
 // .npy and ONNX TensorProto (.pb) files, and turns them into tensors of the
 // model's input type. A file is read sample by sample: one that cannot be
 // read (a short CSV row, a field that is not a number, a JSON sample of the
-// wrong shape) is reported with where it is, and the others survive.
+// wrong shape, a value out of range) is reported with where it is, and the
+// others survive. Read takes a whole file; Stream and TableReader read one a
+// batch at a time, in memory that does not grow with its length. No input
+// makes a reader panic, and what a reader allocates follows the bytes it is
+// given, not the sizes a header declares.
 package samples
 
 import (
-	"bytes"
 	"errors"
 	"fmt"
 	"io"
@@ -84,6 +87,9 @@ type Batch struct {
 	Data []float64
 	// Samples is the number of samples, Shape[0] (1 for a rank-0 tensor).
 	Samples int
+	// First is the index in the file of the batch's first sample: 0, or
+	// where a batch of a Stream starts.
+	First int
 	// Features holds the CSV header's names of the columns read, when the
 	// file has a header.
 	Features []string
@@ -110,16 +116,22 @@ func (b *Batch) markBad(i int, err error) {
 
 // FirstBad returns the error of the lowest-numbered bad sample, or nil.
 func (b *Batch) FirstBad() error {
+	if first := b.firstBadIndex(); first >= 0 {
+		return b.Bad[first]
+	}
+	return nil
+}
+
+// firstBadIndex is the index of the first sample that could not be read,
+// or -1.
+func (b *Batch) firstBadIndex() int {
 	first := -1
 	for i := range b.Bad {
 		if first < 0 || i < first {
 			first = i
 		}
 	}
-	if first < 0 {
-		return nil
-	}
-	return b.Bad[first]
+	return first
 }
 
 // SampleSize is the number of values in one sample.
@@ -175,9 +187,9 @@ func (b *Batch) CheckFinite() error {
 	for i, v := range b.Data {
 		if math.IsNaN(v) || math.IsInf(v, 0) {
 			if per == 0 {
-				return &NonFiniteError{Index: i, Value: v}
+				return &NonFiniteError{Sample: b.First, Index: i, Value: v}
 			}
-			return &NonFiniteError{Sample: i / per, Index: i % per, Value: v}
+			return &NonFiniteError{Sample: b.First + i/per, Index: i % per, Value: v}
 		}
 	}
 	return nil
@@ -230,57 +242,34 @@ type Options struct {
 	// axis, for a caller that feeds the tensor as it is (an empty list of
 	// axes, a batch of none) rather than explaining its samples.
 	AllowEmpty bool
+	// MaxSamples, when positive, is the most samples a file may hold; a
+	// reader stops at the sample past it with an error wrapping
+	// ErrTooMany.
+	MaxSamples int
 }
 
 // Read reads samples of spec from r, a file called name whose extension
 // selects the format. Errors name the file and the input.
 func Read(r io.Reader, name string, spec Spec, opt Options) (*Batch, error) {
-	b, err := read(r, name, spec, opt)
-	if err == nil && !opt.KeepBad {
-		if err = b.FirstBad(); err == nil {
-			err = b.CheckFinite()
-		}
-	}
-	if err != nil {
-		return nil, fmt.Errorf("input %s (for %q): %w", name, spec.Name, err)
-	}
-	b.Name = name
-	return b, nil
-}
-
-func read(r io.Reader, name string, spec Spec, opt Options) (*Batch, error) {
-	f, err := FormatOf(name)
+	s, err := NewStream(r, name, spec, opt)
 	if err != nil {
 		return nil, err
 	}
-	switch f {
-	case PB:
-		b, err := ReadPB(r, spec)
-		if err == nil && b.Samples == 0 && !opt.AllowEmpty {
-			return nil, fmt.Errorf("expected at least one sample, got a tensor of shape %s", ShapeString(b.Shape))
-		}
-		return b, err
-	case NPY:
-		return ReadNPY(r, spec)
-	case JSON:
-		b, err := ReadJSON(r, spec)
-		return b, nonFiniteJSON(err)
-	default:
-		return ReadCSV(r, spec, opt.Features)
-	}
+	return s.All()
 }
 
 // ReadFile reads the file at path (see Read), refusing a file of more than
-// MaxBytes.
+// MaxBytes; OpenStream reads a file of any size a batch at a time.
 func ReadFile(path string, spec Spec, opt Options) (*Batch, error) {
-	if _, err := FormatOf(path); err != nil {
-		return nil, fmt.Errorf("input %s (for %q): %w", path, spec.Name, err)
+	if st, err := os.Stat(path); err == nil && st.Size() > MaxBytes {
+		return nil, &FileError{Name: path, Input: spec.Name, Err: fmt.Errorf("file is %d bytes, more than the %d bytes an input may have", st.Size(), MaxBytes)}
 	}
-	raw, err := ReadLimited(path)
+	s, f, err := OpenStream(path, spec, opt)
 	if err != nil {
-		return nil, fmt.Errorf("input %s (for %q): %w", path, spec.Name, err)
+		return nil, err
 	}
-	return Read(bytes.NewReader(raw), path, spec, opt)
+	defer f.Close()
+	return s.All()
 }
 
 // ReadLimited reads the file at path, refusing one of more than MaxBytes.

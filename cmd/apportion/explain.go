@@ -2,7 +2,6 @@ package main
 
 import (
 	"bytes"
-	"context"
 	"errors"
 	"flag"
 	"fmt"
@@ -189,59 +188,14 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		return fail(stderr, "explain", err)
 	}
 
-	ex, batch, err := c.load(runtime.GOMAXPROCS(0))
+	ex, in, spec, err := c.load(runtime.GOMAXPROCS(0))
 	if err != nil {
 		return fail(stderr, "explain", err)
 	}
+	defer in.close()
 	notes(stderr, "explain", c.ignored)
-	rep, err := ex.Explain(context.Background(), batch, progress(stderr))
-	if err != nil {
-		return fail(stderr, "explain", err)
-	}
-
 	c.render.Color = c.out == "" && colorTerminal(stdout)
-	if c.format == "png" {
-		if err := writePNGs(c.out, rep, c.render); err != nil {
-			return failure(stderr, "explain", err)
-		}
-		return c.reportFailed(stderr, rep)
-	}
-	w := stdout
-	var buf bytes.Buffer
-	if c.out != "" {
-		w = &buf
-	}
-	switch c.format {
-	case "json":
-		err = rep.WriteJSON(w)
-	case "csv":
-		err = render.CSV(w, rep)
-	case "npy":
-		err = render.NPY(w, rep)
-	default:
-		err = render.Table(w, rep, c.render)
-	}
-	if err != nil {
-		return failure(stderr, "explain", err)
-	}
-	if c.out != "" {
-		if err := os.WriteFile(c.out, buf.Bytes(), 0o644); err != nil {
-			return failure(stderr, "explain", err)
-		}
-	}
-	if c.format == "npy" && rep.Settings.Groups != nil {
-		// The group sums are a second array, in a file of their own.
-		var g bytes.Buffer
-		path := groupsPath(c.out)
-		if err := render.GroupsNPY(&g, rep); err != nil {
-			return failure(stderr, "explain", err)
-		}
-		if err := os.WriteFile(path, g.Bytes(), 0o644); err != nil {
-			return failure(stderr, "explain", err)
-		}
-		fmt.Fprintf(stderr, "apportion explain: wrote the group sums, %s × %s, to %s\n", render.Count(len(rep.Explanations), "sample", "samples"), render.Count(len(rep.Settings.Groups), "group", "groups"), path)
-	}
-	return c.reportFailed(stderr, rep)
+	return c.writeExplanations(ex, in, spec, stdout, stderr)
 }
 
 // groupsPath is the file -format npy writes the group sums to: out with
@@ -251,9 +205,9 @@ func groupsPath(out string) string {
 	return strings.TrimSuffix(out, ext) + "_groups" + ext
 }
 
-// writePNGs writes one PNG per explained sample to render.PNGPath(out, ...);
-// samples that failed get no file.
-func writePNGs(out string, rep *explain.Report, opt render.Options) error {
+// writePNGs writes one PNG per explained sample to render.PNGPath(out, ...)
+// of n samples in all; samples that failed get no file.
+func writePNGs(out string, rep *explain.Report, n int, opt render.Options) error {
 	for _, e := range rep.Explanations {
 		if e.Err != nil {
 			continue
@@ -262,37 +216,59 @@ func writePNGs(out string, rep *explain.Report, opt render.Options) error {
 		if err := render.PNG(&buf, rep, e, opt); err != nil {
 			return fmt.Errorf("sample %d: %w", e.Index, err)
 		}
-		if err := os.WriteFile(render.PNGPath(out, e.Index, len(rep.Explanations)), buf.Bytes(), 0o644); err != nil {
+		if err := os.WriteFile(render.PNGPath(out, e.Index, n), buf.Bytes(), 0o644); err != nil {
 			return err
 		}
 	}
 	return nil
 }
 
-// reportFailed prints the samples that could not be explained and those
-// whose completeness check failed, and returns the exit status: 1 when a
-// sample failed, or a check failed without -allow-incomplete.
-func (c *explainConfig) reportFailed(stderr io.Writer, rep *explain.Report) int {
-	incomplete := 0
+// tally counts, over the batches of an input, the samples that could not
+// be explained and the results whose completeness check failed.
+type tally struct {
+	failed, incomplete, results, total int
+}
+
+// add prints the samples of rep that could not be explained and those
+// whose completeness check failed, and counts them.
+func (t *tally) add(stderr io.Writer, rep *explain.Report) {
 	for _, e := range rep.Explanations {
+		t.total++
 		if e.Err != nil {
+			t.failed++
 			fmt.Fprintf(stderr, "apportion explain: sample %d: %v\n", e.Index, e.Err)
 			continue
 		}
+		t.results++
 		if cp := e.Result.Completeness; cp != nil && cp.Judged && !cp.OK {
-			incomplete++
+			t.incomplete++
 			fmt.Fprintf(stderr, "apportion explain: sample %d: the completeness check failed: the attributions sum to %s, %s off f(x) − f(x′) = %s, a relative gap of %s above the tolerance %s\n",
 				e.Index, render.Number(cp.Sum), render.Number(math.Abs(cp.Gap)), render.Number(cp.Expected), render.Number(cp.RelativeGap), render.Number(cp.Tolerance))
 		}
 	}
+}
+
+// reportFailed prints the samples of rep that could not be explained and
+// those whose completeness check failed, and returns the exit status (see
+// status).
+func (c *explainConfig) reportFailed(stderr io.Writer, rep *explain.Report) int {
+	var t tally
+	t.add(stderr, rep)
+	return c.status(stderr, &t)
+}
+
+// status says how many samples failed and how many results are
+// incomplete, if any, and returns the exit status: 1 when a sample failed,
+// or a check failed without -allow-incomplete.
+func (c *explainConfig) status(stderr io.Writer, t *tally) int {
 	status := exitOK
-	if n := rep.Failed(); n > 0 {
-		fmt.Fprintf(stderr, "apportion explain: %d of %s failed\n", n, render.Count(len(rep.Explanations), "sample", "samples"))
+	if t.failed > 0 {
+		fmt.Fprintf(stderr, "apportion explain: %d of %s failed\n", t.failed, render.Count(t.total, "sample", "samples"))
 		status = exitFail
 	}
-	if incomplete > 0 {
+	if t.incomplete > 0 {
 		hint := "more -steps, another -rule, or -allow-incomplete to accept the results"
-		if rep.Settings.Method == gradattr.MethodExpectedGradients {
+		if c.settings.Method == gradattr.MethodExpectedGradients {
 			hint = "more -samples, or -allow-incomplete to accept the results"
 		}
 		if c.allowIncomplete {
@@ -300,7 +276,7 @@ func (c *explainConfig) reportFailed(stderr io.Writer, rep *explain.Report) int 
 		} else {
 			status = exitFail
 		}
-		fmt.Fprintf(stderr, "apportion explain: %d of %s incomplete (%s)\n", incomplete, render.Count(len(rep.Explanations)-rep.Failed(), "result", "results"), hint)
+		fmt.Fprintf(stderr, "apportion explain: %d of %s incomplete (%s)\n", t.incomplete, render.Count(t.results, "result", "results"), hint)
 	}
 	return status
 }
@@ -491,81 +467,105 @@ func (l *loadedModel) readSet(path string, field explain.Field) (*explain.Datase
 	return explain.NewDataset(path, raw, b), nil
 }
 
-// load reads the model and the samples, compiles the model with parallel
-// goroutines per call, and returns the explainer and the samples.
-func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, error) {
+// load reads the model and the first batches of the samples, compiles
+// the model with parallel goroutines per call, and returns the explainer,
+// the samples and their spec. The samples are read whole when the output
+// (.npy) or the baseline (the mean of the samples themselves) needs them
+// all; otherwise a long input is a stream. A model's other inputs are read
+// whole and held at each sample's values.
+func (c *explainConfig) load(parallel int) (*explain.Explainer, *inputBatches, samples.Spec, error) {
 	l, err := loadModel(c.modelPath, c.demo)
 	if err != nil {
-		return nil, nil, err
+		return nil, nil, samples.Spec{}, err
 	}
 	m := l.model
 	m.InputName = c.inputName
 	spec, err := m.Input()
 	if err != nil {
-		return nil, nil, err
+		return nil, nil, spec, err
 	}
 	if _, err := m.Output(c.settings.Output); err != nil {
-		return nil, nil, err
-	}
-	dtype, err := explain.ParsePrecision(c.precision)
-	if err != nil {
-		return nil, nil, err
+		return nil, nil, spec, err
 	}
 	held, open, err := c.readOthers(m, spec)
 	if err != nil {
-		return nil, nil, err
+		return nil, nil, spec, err
 	}
-	var batch *samples.Batch
-	if c.inputPath == "" {
-		batch, err = samples.Read(bytes.NewReader(l.demo.Sample), l.demo.SampleFile, spec, m.ReadOptions(true))
-	} else {
-		batch, err = samples.ReadFile(c.inputs[indexOf(m, spec.Name, len(c.inputs))], spec, m.ReadOptions(true))
+	path := c.inputPath
+	if path != "" {
+		path = c.inputs[indexOf(m, spec.Name, len(c.inputs))]
 	}
+	in, err := openInput(l, path, spec, m.ReadOptions(true))
 	if err != nil {
-		return nil, nil, err
+		return nil, nil, spec, err
 	}
-	l.noteIgnored(batch.Name, batch.Ignored)
-	for name, shape := range explain.OpenShapes(spec, batch) {
+	ex, err := c.explainer(l, spec, in, open, held, parallel)
+	if err != nil {
+		in.close()
+	}
+	c.ignored = l.ignored
+	return ex, in, spec, err
+}
+
+// explainer compiles the model for the input's shape (and the open shapes
+// of the other inputs) and makes the explainer of c's settings, holding
+// the other inputs.
+func (c *explainConfig) explainer(l *loadedModel, spec samples.Spec, in *inputBatches, open map[string][]int, held []*samples.Batch, parallel int) (*explain.Explainer, error) {
+	m := l.model
+	dtype, err := explain.ParsePrecision(c.precision)
+	if err != nil {
+		return nil, err
+	}
+	first := in.first()
+	l.noteIgnored(first.Name, first.Ignored)
+	for name, shape := range explain.OpenShapes(spec, first) {
 		open[name] = shape
 	}
 	if err := m.Compile(explain.CompileOptions{InputShapes: open, Parallel: parallel, DType: dtype}); err != nil {
-		return nil, nil, err
+		return nil, err
 	}
 	if err := l.readDatasets(&c.settings); err != nil {
-		return nil, nil, err
+		return nil, err
 	}
-	if s := &c.settings; s.NeedsReference() && !s.Method.Reads(gradattr.ParamBaseline) && s.Reference == nil {
-		return nil, nil, &usageErr{fmt.Sprintf("-method %s needs -reference, a file of reference samples", s.Method)}
+	s := &c.settings
+	if s.NeedsReference() && !s.Method.Reads(gradattr.ParamBaseline) && s.Reference == nil {
+		return nil, &usageErr{fmt.Sprintf("-method %s needs -reference, a file of reference samples", s.Method)}
 	}
-	head, err := m.Head(c.settings.Output, c.settings.Logits)
+	// A mean or median baseline without a reference set is the input's own.
+	ofInput := s.Method.Reads(gradattr.ParamBaseline) && s.NeedsReference() && s.Reference == nil
+	if !in.whole() && (c.format == "npy" || ofInput) {
+		if err := in.readWhole(); err != nil {
+			return nil, err
+		}
+	}
+	head, err := m.Head(s.Output, s.Logits)
 	if err != nil {
-		return nil, nil, err
+		return nil, err
 	}
 	if c.groups != "" {
 		size := samples.Product(head.InputShape())
 		names := m.Meta.Features
 		if len(names) != size {
-			names = batch.Features // a CSV header read by position
+			names = in.first().Features // a CSV header read by position
 		}
 		f, err := os.Open(c.groups)
 		if err != nil {
-			return nil, nil, fmt.Errorf("-groups: %w", err)
+			return nil, fmt.Errorf("-groups: %w", err)
 		}
-		c.settings.Groups, err = explain.ReadGroups(f, size, names)
+		s.Groups, err = explain.ReadGroups(f, size, names)
 		f.Close()
 		if err != nil {
-			return nil, nil, fmt.Errorf("-groups %s: %w", c.groups, err)
+			return nil, fmt.Errorf("-groups %s: %w", c.groups, err)
 		}
 	}
 	if shape := head.InputShape(); c.patch != "" && len(shape) < 2 {
-		return nil, nil, &usageErr{fmt.Sprintf("-patch %s needs samples with at least two axes (height, width), got shape %s", c.patch, samples.ShapeString(shape))}
+		return nil, &usageErr{fmt.Sprintf("-patch %s needs samples with at least two axes (height, width), got shape %s", c.patch, samples.ShapeString(shape))}
 	}
-	ex, err := explain.New(m, head, c.settings)
+	ex, err := explain.New(m, head, *s)
 	if err == nil && held != nil {
 		err = ex.Hold(held)
 	}
-	c.ignored = l.ignored
-	return ex, batch, err
+	return ex, err
 }
 
 // indexOf returns the position of the input called name among the model's

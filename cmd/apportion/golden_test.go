@@ -24,7 +24,23 @@ import (
 // since the vocabulary they are written in may change; keys added later are
 // not compared either. The reference is the program's own earlier output:
 // this test guards refactoring, it does not check correctness.
-func TestGoldenResults(t *testing.T) {
+func TestGoldenResults(t *testing.T) { runGolden(t) }
+
+// TestGoldenResultsStreamed runs the golden cases with inputs read and
+// explained one sample at a time (those of more than two samples whose
+// settings allow a stream): the results are the same.
+func TestGoldenResultsStreamed(t *testing.T) {
+	defer func(v int) { chunkValues = v }(chunkValues)
+	chunkValues = 1
+	batches := 0
+	chunkDone = func() { batches++ }
+	defer func() { chunkDone = nil }()
+	runGolden(t)
+	t.Logf("%d batches streamed", batches)
+	assert.Greater(t, batches, 20, "some cases are streamed")
+}
+
+func runGolden(t *testing.T) {
 	skipUnlessRecordedKernels(t, "the golden results were")
 	dir, err := filepath.Abs("../../testdata/golden")
 	require.NoError(t, err)

@@ -67,13 +67,17 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		}
 		return usageError(stderr, "predict", "the model has %s (%s), got %s", render.Count(len(feeds), "input", "inputs"), strings.Join(names, ", "), render.Count(len(inputs), "-input file", "-input files"))
 	}
+	if len(feeds) == 1 {
+		res, count, err := predictStream(m, inputs[0], samples.SpecOf(feeds[0]), m.ReadOptions(false), dtype, stderr)
+		if err != nil {
+			return failure(stderr, "predict", err)
+		}
+		return writePrediction(stdout, stderr, *format, m, res, count)
+	}
 	tensors := make([]*onnxlite.Tensor, len(feeds))
 	open := map[string][]int{}
 	count := 0
 	var opt samples.Options
-	if len(feeds) == 1 {
-		opt = m.ReadOptions(false)
-	}
 	opt.AllowEmpty = true // a .pb tensor is fed as it is: empty axes, or no rows
 	for i, vi := range feeds {
 		spec := samples.SpecOf(vi)
@@ -103,7 +107,12 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if err != nil {
 		return failure(stderr, "predict", err)
 	}
-	if *format == "json" {
+	return writePrediction(stdout, stderr, *format, m, res, count)
+}
+
+// writePrediction writes the outputs of count samples in format.
+func writePrediction(stdout, stderr io.Writer, format string, m *explain.Model, res *explain.Prediction, count int) int {
+	if format == "json" {
 		if err := json.NewEncoder(stdout).Encode(res); err != nil {
 			return failure(stderr, "predict", err)
 		}

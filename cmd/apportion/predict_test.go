@@ -157,10 +157,10 @@ func TestPredictBadInputs(t *testing.T) {
 
 	// A ragged nested array is reported with its path.
 	check("ragged.json", "[[[1,2,3,4,5],[1,2,3,4,5],[1,2,3,4],[1,2,3,4,5]]]", "ragged array at [0][2]: expected 5 elements, got 4")
-	check("mixed.json", "[[1,2],[3,[4]]]", "ragged array at [1][1]")
+	check("mixed.json", "[["+strings.Repeat("1,", 19)+"1],[3,[4]]]", "ragged array at [1][1]: expected a number, got an array")
 	// A sample of the wrong shape names both.
-	check("wrong.json", "[[1,2,3],[4,5,6]]", "expected samples of shape [4 5] (20 values each), got an array of shape [2 3]")
-	check("text.json", `[["a"]]`, "expected a number or an array")
+	check("wrong.json", "[[1,2,3],[4,5,6]]", "sample 0: expected 20 values (shape [4 5]), got 3 (shape [3])")
+	check("text.json", `[["a"]]`, "at [0][0]: expected a number, got a string")
 	check("x.txt", "1,2", `unknown file type ".txt"`)
 
 	// A .pb of the wrong shape: the Gemm's b input [7,4] given for x [3,4,5].

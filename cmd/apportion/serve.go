@@ -20,16 +20,18 @@ const defaultServeAddr = "127.0.0.1:8080"
 
 // serveConfig holds serve's flags, validated.
 type serveConfig struct {
-	addr      string
-	modelPath string
-	reference string
-	maxBody   int64
-	timeout   time.Duration
-	workers   int // requests computed at once; 0: the handler's default
-	queue     int // requests waiting for a worker
-	coalesce  bool
-	drain     time.Duration
-	precision string
+	addr       string
+	modelPath  string
+	reference  string
+	maxBody    int64
+	maxSamples int
+	maxWork    int
+	timeout    time.Duration
+	workers    int // requests computed at once; 0: the handler's default
+	queue      int // requests waiting for a worker
+	coalesce   bool
+	drain      time.Duration
+	precision  string
 }
 
 func runServe(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
@@ -44,17 +46,24 @@ func runServe(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			"\t                   \"abs\", \"variant\"}:\n"+
 			"\t                   the document of explain -format json\n"+
 			"\tGET  /metrics      Prometheus text format\n\n"+
-			"Errors are JSON {\"error\": \"...\"}: 400 bad request, 413 body over -max-body,\n"+
-			"503 queue full (with Retry-After), 504 past -timeout. SIGINT or SIGTERM stops\n"+
-			"accepting connections and waits up to -drain for requests in flight.\n"+
-			"One JSON log line per request goes to standard error.\n\n"+caution, stderr)
+			"Errors are JSON {\"error\": \"...\", \"request_id\": \"...\"}: 400 bad request, 408 body not\n"+
+			"in within -timeout, 413 body over -max-body, more samples than -max-samples or\n"+
+			"work over -max-work, 503 queue full (with Retry-After), 504 past -timeout.\n"+
+			"The work of a request is the samples it sends through the model, counted\n"+
+			"before any of it runs (integrated gradients at automatic points count every\n"+
+			"refinement up to 4097 points). Every answer carries X-Request-ID: the client's\n"+
+			"own, or a new one. SIGINT or SIGTERM stops accepting connections and waits\n"+
+			"up to -drain for requests in flight. One JSON log line per request goes to\n"+
+			"standard error.\n\n"+caution, stderr)
 	c := serveConfig{}
 	maxBody := byteSize(httpapi.DefaultMaxBody)
 	fs.StringVar(&c.addr, "addr", defaultServeAddr, "`address` to listen on")
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default the embedded pumps demo)")
 	fs.StringVar(&c.reference, "reference", "", "reference samples `file` for expected-grad and baseline mean (default the demo's reference set with the demo model)")
 	fs.Var(&maxBody, "max-body", "largest request body, in `bytes` (suffixes KiB, MiB, GiB, kB, MB, GB)")
-	fs.DurationVar(&c.timeout, "timeout", httpapi.DefaultTimeout, "time limit of one request, queueing included")
+	fs.IntVar(&c.maxSamples, "max-samples", httpapi.DefaultMaxSamples, "most samples `N` in one request")
+	fs.IntVar(&c.maxWork, "max-work", httpapi.DefaultMaxWork, "most work `N` of one request: samples sent through the model, forward and gradient passes alike")
+	fs.DurationVar(&c.timeout, "timeout", httpapi.DefaultTimeout, "time limit of one request from its arrival, reading its body and queueing included")
 	fs.IntVar(&c.workers, "workers", 0, "`N` requests computed at once (default GOMAXPROCS, ×4 with -coalesce)")
 	fs.IntVar(&c.queue, "queue", httpapi.DefaultQueue, "`N` requests that may wait for a worker before the server answers 503")
 	fs.BoolVar(&c.coalesce, "coalesce", httpapi.DefaultCoalesce, "stack the model passes of concurrent requests into shared batches")
@@ -100,6 +109,12 @@ func (c *serveConfig) validate() string {
 	if c.maxBody < 1 {
 		return fmt.Sprintf("-max-body must be at least 1 byte, got %d", c.maxBody)
 	}
+	if c.maxSamples < 1 {
+		return fmt.Sprintf("-max-samples must be at least 1, got %d", c.maxSamples)
+	}
+	if c.maxWork < 1 {
+		return fmt.Sprintf("-max-work must be at least 1, got %d", c.maxWork)
+	}
 	if c.timeout <= 0 {
 		return fmt.Sprintf("-timeout must be positive, got %v", c.timeout)
 	}
@@ -126,7 +141,7 @@ func newHandler(c serveConfig, log *slog.Logger) (*httpapi.Handler, string, erro
 		return nil, "", err
 	}
 	opt := httpapi.Options{
-		MaxBody: c.maxBody, Timeout: c.timeout, Workers: c.workers, Queue: c.queue,
+		MaxBody: c.maxBody, MaxSamples: c.maxSamples, MaxWork: c.maxWork, Timeout: c.timeout, Workers: c.workers, Queue: c.queue,
 		Coalesce: c.coalesce, Logger: log, DType: dtype,
 	}
 	if opt.Reference, err = l.reference(c.reference); err != nil {

@@ -28,7 +28,8 @@ import (
 // before it is validated.
 func testServer(t *testing.T, edit func(c *serveConfig)) *httptest.Server {
 	t.Helper()
-	c := serveConfig{maxBody: httpapi.DefaultMaxBody, timeout: httpapi.DefaultTimeout, queue: httpapi.DefaultQueue, drain: httpapi.DefaultDrain}
+	c := serveConfig{maxBody: httpapi.DefaultMaxBody, maxSamples: httpapi.DefaultMaxSamples, maxWork: httpapi.DefaultMaxWork,
+		timeout: httpapi.DefaultTimeout, queue: httpapi.DefaultQueue, drain: httpapi.DefaultDrain}
 	if edit != nil {
 		edit(&c)
 	}
@@ -206,6 +207,22 @@ func TestServeSignal(t *testing.T) {
 	}
 }
 
+func TestServeLimitFlags(t *testing.T) {
+	// -max-samples and -max-work reach the handler: two samples of the
+	// demo are one too many for -max-samples 1, and integrated gradients at
+	// 16 trapezoid points cost each f(x), f(x′), 16 gradients and the
+	// output at the baseline, 19, over -max-work 18.
+	sample := demoSampleJSON(t)
+	ts := testServer(t, func(c *serveConfig) { c.maxSamples = 1 })
+	code, _, body := post(t, ts.URL+"/v1/predict", `{"inputs": [`+sample+`, `+sample+`]}`)
+	assert.Equal(t, http.StatusRequestEntityTooLarge, code)
+	assert.Contains(t, body, "more than the 1 sample one request may have")
+	ts = testServer(t, func(c *serveConfig) { c.maxWork = 18 })
+	code, _, body = post(t, ts.URL+"/v1/explain", `{"inputs": [`+sample+`], "steps": 16}`)
+	assert.Equal(t, http.StatusRequestEntityTooLarge, code)
+	assert.Contains(t, body, "costs up to 19 model evaluations (1 sample, 19 each), over this server's budget of 18")
+}
+
 func TestServeFlags(t *testing.T) {
 	for _, tc := range []struct {
 		args []string
@@ -216,6 +233,8 @@ func TestServeFlags(t *testing.T) {
 		{[]string{"-timeout", "0s"}, "-timeout must be positive"},
 		{[]string{"-workers", "-1"}, "-workers must be 0 (default) or more, got -1"},
 		{[]string{"-queue", "-2"}, "-queue must be 0 or more, got -2"},
+		{[]string{"-max-samples", "0"}, "-max-samples must be at least 1, got 0"},
+		{[]string{"-max-work", "-5"}, "-max-work must be at least 1, got -5"},
 	} {
 		code, _, errs := cli(t, append([]string{"serve"}, tc.args...)...)
 		assert.Equal(t, exitUsage, code, tc.args)

@@ -234,28 +234,41 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 	if _, err := m.Output(c.settings.Output); err != nil {
 		return nil, nil, "", err
 	}
-	table, err := sc.readRows(m, spec)
+	tr, closer, err := sc.openRows(m, spec)
 	if err != nil {
 		return nil, nil, "", err
 	}
-	l.noteIgnored(sc.inputName(), table.Ignored)
-	rows := table.Rows
+	defer closer.Close()
+	l.noteIgnored(sc.inputName(), tr.Ignored)
+	// The rows up to the first that can be read, which sizes the model's
+	// input; an input that ends first has no row to summarise.
+	n := chunkSamples(spec)
+	var ahead [][]samples.Row
 	var first []float64
-	todo := 0
-	for _, r := range rows {
-		if r.Err == nil {
-			if first == nil {
+	ended := false
+	for first == nil && !ended {
+		rows, err := tr.Next(n)
+		switch {
+		case err == io.EOF:
+			ended = true
+		case err != nil:
+			return nil, nil, "", err
+		}
+		ahead = append(ahead, rows)
+		for _, r := range rows {
+			if r.Err == nil {
 				first = r.Values
+				break
 			}
-			todo++
 		}
 	}
 	if first == nil {
-		return nil, nil, "", fmt.Errorf("input %s: no row could be read (first problem: %s: %v)", sc.inputName(), rows[0].Where, rows[0].Err)
+		r := ahead[0][0]
+		return nil, nil, "", fmt.Errorf("input %s: no row could be read (first problem: %s: %v)", sc.inputName(), r.Where, r.Err)
 	}
 	shape := []int{1, len(first)}
-	if table.SampleShape != nil {
-		shape = append([]int{1}, table.SampleShape...)
+	if tr.SampleShape != nil {
+		shape = append([]int{1}, tr.SampleShape...)
 	}
 	one := &samples.Batch{Name: sc.inputName(), Shape: shape, Data: first, Samples: 1}
 	dtype, err := explain.ParsePrecision(c.precision)
@@ -276,7 +289,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 	if err != nil {
 		return nil, nil, "", err
 	}
-	opt, err := ex.SummaryOptions(ex.Features(table.Columns), sc.by, sc.bootstrap, c.seed)
+	opt, err := ex.SummaryOptions(ex.Features(tr.Columns), sc.by, sc.bootstrap, c.seed)
 	if err != nil {
 		return nil, nil, "", err
 	}
@@ -284,22 +297,60 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 	if err != nil {
 		return nil, nil, "", err
 	}
-	tick, done := summaryProgress(stderr, todo)
-	skipped, err := ex.Summarize(ctx, rows, s, explain.SummarizeOptions{
-		FirstKey: sc.firstRow, ByPredicted: sc.by == byPredicted, Progress: tick,
-	})
-	done()
-	c.ignored = l.ignored
-	if err != nil {
+	// The number of rows is known when the input ended in the rows read
+	// ahead (the bar counts them); otherwise the bar counts without an end.
+	todo := -1
+	if rows, err := tr.Next(n); err == io.EOF {
+		todo = 0
+		for _, part := range ahead {
+			for _, r := range part {
+				if r.Err == nil {
+					todo++
+				}
+			}
+		}
+	} else if err != nil {
 		return nil, nil, "", err
+	} else {
+		ahead = append(ahead, rows)
 	}
+	tick, done := summaryProgress(stderr, todo)
+	defer done()
+	var skipped []explain.Skipped
+	offset := 0
+	for {
+		var rows []samples.Row
+		if len(ahead) > 0 {
+			rows, ahead = ahead[0], ahead[1:]
+		} else if rows, err = tr.Next(n); err == io.EOF {
+			break
+		} else if err != nil {
+			return nil, nil, "", err
+		}
+		part, err := ex.Summarize(ctx, rows, s, explain.SummarizeOptions{
+			FirstKey: sc.firstRow + uint64(offset), ByPredicted: sc.by == byPredicted, Progress: tick,
+		})
+		if err != nil {
+			return nil, nil, "", err
+		}
+		for _, r := range part {
+			r.Row += offset
+			skipped = append(skipped, r)
+		}
+		offset += len(rows)
+		if chunkDone != nil {
+			chunkDone()
+		}
+	}
+	c.ignored = l.ignored
 	return s, skipped, m.Name, nil
 }
 
-// summaryProgress shows a progress bar on stderr when it is a terminal.
+// summaryProgress shows a progress bar on stderr when it is a terminal:
+// of total rows, or (total −1) counting rows without an end.
 func summaryProgress(stderr io.Writer, total int) (tick, done func()) {
 	f, ok := stderr.(*os.File)
-	if !ok || total < 2 || !term.IsTerminal(int(f.Fd())) {
+	if !ok || (total >= 0 && total < 2) || !term.IsTerminal(int(f.Fd())) {
 		return func() {}, func() {}
 	}
 	bar := progressbar.NewOptions(total,
@@ -318,19 +369,25 @@ func (sc *summarizeConfig) inputName() string {
 	return sc.ex.inputPath
 }
 
-// readRows reads the rows to explain and the names of their columns.
-func (sc *summarizeConfig) readRows(m *explain.Model, spec samples.Spec) (*samples.Table, error) {
+// openRows starts reading the rows to explain and the names of their
+// columns; the closer closes the file.
+func (sc *summarizeConfig) openRows(m *explain.Model, spec samples.Spec) (*samples.TableReader, io.Closer, error) {
 	c := &sc.ex
 	name := sc.inputName()
-	var raw []byte
-	var err error
+	var r io.Reader
+	closer := io.NopCloser(nil)
 	if c.inputPath == "" {
-		raw, err = demo.File(demoSummaryFile)
-	} else if raw, err = samples.ReadLimited(c.inputPath); err != nil {
-		err = fmt.Errorf("input %s: %w", c.inputPath, err)
-	}
-	if err != nil {
-		return nil, err
+		raw, err := demo.File(demoSummaryFile)
+		if err != nil {
+			return nil, nil, err
+		}
+		r = bytes.NewReader(raw)
+	} else {
+		f, err := os.Open(c.inputPath)
+		if err != nil {
+			return nil, nil, fmt.Errorf("input %s: %w", c.inputPath, err)
+		}
+		r, closer = f, f
 	}
 	opt := samples.TableOptions{Features: m.Meta.Features}
 	if ps, ok := spec.FixedSample(); ok {
@@ -340,14 +397,19 @@ func (sc *summarizeConfig) readRows(m *explain.Model, spec samples.Spec) (*sampl
 		opt.Group = sc.by
 	}
 	if f, _ := samples.FormatOf(name); f != samples.CSV && opt.Group != "" {
-		return nil, &usageErr{fmt.Sprintf("-by %s names a column, and %s is not a CSV file; use -by predicted", sc.by, name)}
+		closer.Close()
+		return nil, nil, &usageErr{fmt.Sprintf("-by %s names a column, and %s is not a CSV file; use -by predicted", sc.by, name)}
 	}
-	t, err := samples.ReadTable(bytes.NewReader(raw), name, spec, opt)
+	t, err := samples.NewTableReader(r, name, spec, opt)
 	var ce *samples.ColumnError
 	if errors.As(err, &ce) && ce.Column == sc.by {
-		return nil, &usageErr{fmt.Sprintf("-by %s: no such column in %s (columns: %s)", sc.by, name, strings.Join(ce.Columns, ", "))}
+		err = &usageErr{fmt.Sprintf("-by %s: no such column in %s (columns: %s)", sc.by, name, strings.Join(ce.Columns, ", "))}
 	}
-	return t, err
+	if err != nil {
+		closer.Close()
+		return nil, nil, err
+	}
+	return t, closer, nil
 }
 
 // runMerge merges the summary files and writes the result. Every error
