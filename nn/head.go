@@ -29,6 +29,11 @@ type Head struct {
 	inSize   int
 	outShape []int // per sample
 	outSize  int
+	// fixed holds one sample's values of the Network's further runtime
+	// inputs, bound to every sample of a batch (a Layer's fixed values),
+	// and fshape their per-sample shapes.
+	fixed  [][]float64
+	fshape [][]int
 }
 
 // Head returns the view of the output chosen by sel. The Network must have
@@ -36,7 +41,14 @@ type Head struct {
 // Options.InputShapes); gradients are taken with respect to it.
 func (nw *Network) Head(sel Selection) (h *Head, err error) {
 	defer recoverEngine("nn: head", &err)
-	if len(nw.inputs) != 1 {
+	return nw.headOf(sel, 0)
+}
+
+// headOf returns the head of a Network whose first runtime input is the
+// one gradients are taken with respect to and whose fixed further inputs
+// are bound by the caller (Layer.At).
+func (nw *Network) headOf(sel Selection, fixed int) (h *Head, err error) {
+	if len(nw.inputs) != 1+fixed {
 		return nil, fmt.Errorf("nn: head: %w: gradients are taken w.r.t. a single runtime input; the model has %d (%s)", ErrBadRequest, len(nw.inputs), portNames(nw.inputs))
 	}
 	shapes, ok := nw.sampleShapes(1)
@@ -99,6 +111,9 @@ func (nw *Network) Head(sel Selection) (h *Head, err error) {
 		return nil, fmt.Errorf("nn: head: value %q: %w: element type %v", value, ErrBadRequest, vs.DType)
 	}
 	h = &Head{nw: nw, value: value, outputs: []string{value}, inShape: shapes[0][1:], outShape: vs.Shape[1:]}
+	for _, s := range shapes[1:] {
+		h.fshape = append(h.fshape, s[1:])
+	}
 	h.inSize, h.outSize = prod(h.inShape), prod(h.outShape)
 	return h, nil
 }
@@ -131,7 +146,24 @@ func (h *Head) check(x []float64, n int) error {
 }
 
 func (h *Head) shapes(n int) [][]int {
-	return [][]int{append([]int{n}, h.inShape...)}
+	out := [][]int{append([]int{n}, h.inShape...)}
+	for _, s := range h.fshape {
+		out = append(out, append([]int{n}, s...))
+	}
+	return out
+}
+
+// withFixed appends to data (x alone) each fixed value repeated n times.
+func (h *Head) withFixed(data [][]float64, n int) [][]float64 {
+	out := data
+	for _, f := range h.fixed {
+		r := make([]float64, 0, n*len(f))
+		for range n {
+			r = append(r, f...)
+		}
+		out = append(out, r)
+	}
+	return out
 }
 
 // Forward evaluates n samples held in x (n·∏InputShape values, row-major)
@@ -141,7 +173,7 @@ func (h *Head) Forward(ctx context.Context, x []float64, n int) (out []float64, 
 	if err := h.check(x, n); err != nil {
 		return nil, fmt.Errorf("nn: head forward: %w", err)
 	}
-	outs, _, _, err := h.nw.runReq(ctx, h.shapes(n), [][]float64{x}, request{outputs: h.outputs}, nil)
+	outs, _, _, err := h.nw.runReq(ctx, h.shapes(n), h.withFixed([][]float64{x}, n), request{outputs: h.outputs}, nil)
 	if err != nil {
 		return nil, fmt.Errorf("nn: head forward: %w", err)
 	}
@@ -169,7 +201,7 @@ func (h *Head) Gradient(ctx context.Context, x []float64, n int, target []int) (
 		}
 		mask[i*h.outSize+t] = 1
 	}
-	outs, _, grad, err := h.nw.runReq(ctx, h.shapes(n), [][]float64{x}, request{outputs: h.outputs, grad: true}, mask)
+	outs, _, grad, err := h.nw.runReq(ctx, h.shapes(n), h.withFixed([][]float64{x}, n), request{outputs: h.outputs, grad: true}, mask)
 	if err != nil {
 		return nil, nil, fmt.Errorf("nn: head gradient: %w", err)
 	}

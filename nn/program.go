@@ -398,8 +398,8 @@ func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
 		p.outShapes = append(p.outShapes, v.Shape)
 	}
 	if req.grad {
-		if len(st.Inputs) != 1 {
-			return nil, fmt.Errorf("%w: gradients need a model with exactly one runtime input, this one has %d", ErrBadRequest, len(st.Inputs))
+		if len(st.Inputs) == 0 {
+			return nil, fmt.Errorf("%w: gradients are taken w.r.t. the first runtime input, and the model has none", ErrBadRequest)
 		}
 		if len(p.outNames) != 1 || len(p.outShapes[0]) == 0 {
 			return nil, fmt.Errorf("%w: gradients need one batched output", ErrBadRequest)
