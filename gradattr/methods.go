@@ -19,6 +19,7 @@ const (
 	MethodSmoothGrad          Method = "smoothgrad"
 	MethodIntegratedGradients Method = "integrated-gradients"
 	MethodExpectedGradients   Method = "expected-gradients"
+	MethodGradCAM             Method = "grad-cam"
 )
 
 // Param names a setting that some methods read, as the command line's
@@ -144,6 +145,14 @@ var methodSpecs = []methodSpec{
 				Reference: o.Reference, Samples: o.Samples, Seed: o.Seed,
 				Tolerance: o.Tolerance, BatchSize: o.BatchSize,
 			})
+		},
+	},
+	{
+		// Attributes to a convolutional layer's channels and places: the
+		// model's input is the layer's activation.
+		method: MethodGradCAM, title: "Grad-CAM",
+		run: func(ctx context.Context, m Model, a []float64, target int, _ Options) (*Result, error) {
+			return GradCAM(ctx, m, a, target)
 		},
 	},
 }

@@ -18,6 +18,7 @@ func TestParseMethod(t *testing.T) {
 		"smoothgrad":           MethodSmoothGrad,
 		"integrated-gradients": MethodIntegratedGradients, "ig": MethodIntegratedGradients,
 		"expected-gradients": MethodExpectedGradients, "expected-grad": MethodExpectedGradients,
+		"grad-cam": MethodGradCAM,
 	} {
 		got, err := ParseMethod(name)
 		require.NoError(t, err, name)
@@ -31,7 +32,7 @@ func TestParseMethod(t *testing.T) {
 		assert.ErrorIs(t, err, ErrOptions, "%q", bad)
 		assert.ErrorContains(t, err, "integrated-gradients (ig)")
 	}
-	assert.Len(t, Methods(), 5)
+	assert.Len(t, Methods(), 6)
 	assert.Equal(t, "ig", MethodIntegratedGradients.Alias())
 	assert.Equal(t, "smoothgrad", MethodSmoothGrad.Alias(), "a short name is its own alias")
 }
@@ -73,6 +74,7 @@ func TestOptionsSettingsMatchResults(t *testing.T) {
 	// records in its Result, for every field both know: the same JSON,
 	// after dropping the fields only a call can know.
 	f := linear([]float64{1, -1}, 0)
+	f.Shape = []int{1, 2} // one channel of two places, for Grad-CAM
 	x := []float64{0.5, 2}
 	for _, m := range Methods() {
 		o := m.Defaults()
