@@ -19,6 +19,11 @@ type Explainer struct {
 	output   string
 	shape    []int // of one sample
 	size     int
+	// layer is set when the explanation is at an intermediate value
+	// (Settings.Layer, and Grad-CAM); attrShape is the shape of the
+	// attributions, the input's otherwise.
+	layer     *layerState
+	attrShape []int
 }
 
 // New joins a compiled model, the output explained (head, from
@@ -40,6 +45,10 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 	}
 	e := &Explainer{model: m, head: head, settings: s, input: input, output: output, shape: head.InputShape()}
 	e.size = samples.Product(e.shape)
+	e.attrShape = e.shape
+	if err := e.atLayer(); err != nil {
+		return nil, err
+	}
 	if n := head.OutputSize(); s.Target >= n {
 		return nil, fieldError(FieldTarget, fmt.Sprintf(" must be top or an index from 0 to %d (output %q has %d values), got %d", n-1, output, n, s.Target))
 	}
@@ -68,6 +77,9 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 		return nil, fieldError(FieldBaseline, " blur needs samples with at least two axes (height, width), got shape ", samples.ShapeString(e.shape))
 	}
 	if s.Groups != nil {
+		if e.layer != nil {
+			return nil, fieldError(FieldGroups, " sum features of the input; they do not apply at ", FieldLayer, " ", e.layer.l.Name())
+		}
 		if _, err := gradattr.Cover(e.size, s.Groups); err != nil {
 			e := fieldError(FieldGroups, ": ", err)
 			e.Input = true
@@ -147,6 +159,12 @@ func (e *Explainer) record(o gradattr.Options, name func(*Dataset) string) map[s
 	if s.Reference != nil && s.NeedsReference() {
 		rec["reference"] = name(s.Reference)
 	}
+	if e.layer != nil {
+		rec["layer"] = e.layer.l.Name()
+		if s.Method.Reads(gradattr.ParamBaseline) {
+			rec["layer_baseline"] = s.layerBaseline()
+		}
+	}
 	return rec
 }
 
@@ -157,7 +175,8 @@ func (e *Explainer) Attribute(ctx context.Context, x []float64) (*gradattr.Resul
 	if err != nil {
 		return nil, err
 	}
-	return gradattr.Attribute(ctx, e.head, x, e.settings.Target, o)
+	res, _, _, err := e.attribute(ctx, x, o)
+	return res, err
 }
 
 // Report is the explanations of a batch of samples, with what they are of.
@@ -173,6 +192,12 @@ type Report struct {
 	Options  gradattr.Options
 	// Batch is the samples explained.
 	Batch *samples.Batch
+	// Layer names the value the attributions are of, "" for the input;
+	// Shape is their per-sample shape.
+	Layer string
+	Shape []int
+
+	layerShape []int
 	// Explanations holds one entry per sample, in order.
 	Explanations []Explanation
 
@@ -185,6 +210,10 @@ type Explanation struct {
 	Index int
 	// Values is the sample.
 	Values []float64
+	// LayerValues is the value at Settings.Layer for the sample, V(x),
+	// when the explanation is at a layer (for Grad-CAM, the activation A);
+	// nil otherwise.
+	LayerValues []float64
 	// Result is the attribution; nil when Err is set.
 	Result *gradattr.Result
 	// BaselineOutputs are the model's outputs at the baseline, when there
@@ -199,6 +228,28 @@ type Explanation struct {
 	// Err says why the sample could not be explained: it could not be
 	// read, holds a NaN or infinity, or the method failed on it.
 	Err error
+}
+
+// FeatureValues returns the values e's attributions are of, one per
+// attribution: the sample, or its value at the layer; nil for Grad-CAM,
+// whose map has one entry per place of the layer, not per value.
+func (r *Report) FeatureValues(e Explanation) []float64 {
+	switch {
+	case r.Layer == "":
+		return e.Values
+	case r.Settings.Method == gradattr.MethodGradCAM:
+		return nil
+	}
+	return e.LayerValues
+}
+
+// LayerShape returns the per-sample shape of the value at Layer; nil
+// without a layer.
+func (r *Report) LayerShape() []int {
+	if r.Layer == "" {
+		return nil
+	}
+	return r.layerShape
 }
 
 // Failed returns the number of samples that could not be explained.
@@ -216,6 +267,10 @@ func (r *Report) Failed() int {
 // by the model's names, else by the batch's CSV header, else by index.
 func (r *Report) Labels() []string {
 	meta := r.Model.Meta
+	if r.Layer != "" {
+		meta.Features = nil
+		return meta.Labels(r.Shape)
+	}
 	if meta.Features == nil {
 		meta.Features = r.Batch.Features
 	}
@@ -236,7 +291,10 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 		return nil, err
 	}
 	rep := &Report{Model: e.model, Input: e.input.Name, Output: e.output, Settings: e.settings, Options: o, Batch: b,
-		record: e.record(o, byName)}
+		Shape: e.attrShape, record: e.record(o, byName)}
+	if e.layer != nil {
+		rep.Layer, rep.layerShape = e.layer.l.Name(), e.layer.l.InputShape()
+	}
 	for i := 0; i < b.Samples; i++ {
 		x := b.Sample(i)
 		ex := Explanation{Index: i, Values: x}
@@ -246,13 +304,16 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 		case samples.CheckFinite(x) != nil:
 			ex.Err = samples.CheckFinite(x)
 		default:
-			ex.Result, ex.Err = gradattr.Attribute(ctx, e.head, x, e.settings.Target, o)
+			var at []float64
+			ex.Result, at, ex.BaselineOutputs, ex.Err = e.attribute(ctx, x, o)
+			if ex.Err == nil {
+				ex.Warnings = e.warnings(at, ex.Result)
+			}
+			if e.layer != nil {
+				ex.LayerValues = at
+			}
 		}
 		if ex.Err == nil {
-			if b, ok := reportedBaseline(o); ok {
-				ex.BaselineOutputs = e.baselineOutputs(ctx, x, b)
-			}
-			ex.Warnings = e.warnings(x, ex.Result)
 			if e.settings.Groups != nil {
 				ex.Grouped, ex.Err = ex.Result.Grouped(e.settings.Groups)
 			}
@@ -276,22 +337,4 @@ func reportedBaseline(o gradattr.Options) (gradattr.Baseline, bool) {
 		return o.Baselines[0], true
 	}
 	return gradattr.Baseline{}, false
-}
-
-// baselineOutputs evaluates the model at the baseline of sample x; nil when
-// that fails (the attribution itself has succeeded, so the sample is kept).
-func (e *Explainer) baselineOutputs(ctx context.Context, x []float64, b gradattr.Baseline) []float64 {
-	var out []float64
-	err := guard(func() error {
-		xb, err := b.Build(x, e.shape)
-		if err != nil {
-			return err
-		}
-		out, err = e.head.Forward(ctx, xb, 1)
-		return err
-	})
-	if err != nil {
-		return nil
-	}
-	return out
 }

@@ -34,6 +34,9 @@ const (
 	FieldAbs       Field = Field(gradattr.ParamAbs)
 	FieldVariant   Field = Field(gradattr.ParamVariant)
 	FieldGroups    Field = "groups"
+	FieldLayer     Field = "layer"
+	// FieldLayerBaseline is how the baseline at a layer is formed.
+	FieldLayerBaseline Field = "layer-baseline"
 )
 
 // methodFields are the method parameters, in the order Check reports them.
@@ -221,6 +224,15 @@ type Settings struct {
 	// Groups are feature groups whose attributions are also reported
 	// summed.
 	Groups []gradattr.Group
+	// Layer names a value of the model (see Model.Values) to attribute
+	// to instead of the input: the attributions have its shape, and
+	// completeness is judged there. "" means the input (for Grad-CAM,
+	// Model.CAMLayer).
+	Layer string
+	// LayerBaseline is the baseline at Layer: LayerBaselineInput (the
+	// default) is the value computed from the input's baseline,
+	// LayerBaselineZero the value 0.
+	LayerBaseline string
 
 	given map[Field]bool
 }
@@ -346,6 +358,16 @@ func (s *Settings) set(f Field, text string) error {
 			return fieldError(f, " must be a non-negative integer, got ", strconv.Quote(text))
 		}
 		s.Seed = v
+	case FieldLayer:
+		if text == "" {
+			return fieldError(f, " must name a value of the model (inspect -values lists them), got \"\"")
+		}
+		s.Layer = text
+	case FieldLayerBaseline:
+		if text != LayerBaselineInput && text != LayerBaselineZero {
+			return fieldError(f, " must be input or zero, got ", strconv.Quote(text))
+		}
+		s.LayerBaseline = text
 	case FieldVariant:
 		v, err := gradattr.ParseVariant(text)
 		if err != nil {
@@ -380,6 +402,9 @@ func (s *Settings) Check() error {
 			}
 		}
 		return fieldError(f, " applies to ", FieldMethod, " ", strings.Join(readers, " and "), " only, not ", s.Method)
+	}
+	if s.given[FieldLayerBaseline] && (s.Layer == "" || !s.Method.Reads(gradattr.ParamBaseline)) {
+		return fieldError(FieldLayerBaseline, " applies with ", FieldLayer, " to a method with a baseline")
 	}
 	if min := s.Rule.MinPoints(); s.Method.Reads(gradattr.ParamSteps) && s.Steps > 0 && s.Steps < min {
 		return fieldError(FieldSteps, fmt.Sprintf(" must be auto or at least %d with the %s rule, got %d", min, s.Rule, s.Steps))

@@ -205,7 +205,11 @@ func Scale(e explain.Explanation) (scale float64, what string) {
 func Table(w io.Writer, rep *explain.Report, opt Options) error {
 	labels := rep.Labels()
 	classes := rep.Model.Meta.Classes
-	fmt.Fprintf(w, "model %s  output %s  method %s\n", rep.Model.Name, outputLabel(rep), rep.Settings.Method)
+	fmt.Fprintf(w, "model %s  output %s  method %s", rep.Model.Name, outputLabel(rep), rep.Settings.Method)
+	if rep.Layer != "" {
+		fmt.Fprintf(w, "  layer %s %s", rep.Layer, samples.ShapeString(rep.LayerShape()))
+	}
+	fmt.Fprintln(w)
 	for _, e := range rep.Explanations {
 		fmt.Fprintln(w)
 		if e.Err != nil {
@@ -235,8 +239,8 @@ func Table(w io.Writer, rep *explain.Report, opt Options) error {
 				label = labels[i]
 			}
 			value := ""
-			if i < len(e.Values) {
-				value = Number(e.Values[i])
+			if vals := rep.FeatureValues(e); i < len(vals) {
+				value = Number(vals[i])
 			}
 			rows = append(rows, [3]string{label, value, signed(r.Attributions[i])})
 		}
@@ -384,8 +388,8 @@ func CSV(w io.Writer, rep *explain.Report) error {
 				label = labels[i]
 			}
 			value := ""
-			if i < len(e.Values) {
-				value = strconv.FormatFloat(e.Values[i], 'g', -1, 64)
+			if vals := rep.FeatureValues(e); i < len(vals) {
+				value = strconv.FormatFloat(vals[i], 'g', -1, 64)
 			}
 			rec := []string{strconv.Itoa(e.Index), label, value, strconv.FormatFloat(a, 'g', -1, 64)}
 			if err := cw.Write(rec); err != nil {
@@ -440,6 +444,10 @@ func GroupsNPY(w io.Writer, rep *explain.Report) error {
 func NPY(w io.Writer, rep *explain.Report) error {
 	shape := append([]int{len(rep.Explanations)}, rep.Batch.SampleShape()...)
 	per := rep.Batch.SampleSize()
+	if rep.Layer != "" {
+		shape = append([]int{len(rep.Explanations)}, rep.Shape...)
+		per = samples.Product(rep.Shape)
+	}
 	data := make([]float64, 0, len(rep.Explanations)*per)
 	for _, e := range rep.Explanations {
 		if e.Err != nil || len(e.Result.Attributions) != per {

@@ -44,7 +44,8 @@ func demoScenario(name string) (*demo.Scenario, error) {
 var methodFlagNames = []explain.Field{
 	explain.FieldMethod, explain.FieldTarget, explain.FieldOutput, explain.FieldLogits, explain.FieldBaseline,
 	explain.FieldReference, explain.FieldSteps, explain.FieldRule, explain.FieldTolerance, explain.FieldSamples,
-	explain.FieldNoise, explain.FieldSeed, explain.FieldAbs, explain.FieldVariant,
+	explain.FieldNoise, explain.FieldSeed, explain.FieldAbs, explain.FieldVariant, explain.FieldLayer,
+	explain.FieldLayerBaseline,
 }
 
 // explainConfig holds explain's flags; settings are the method flags read
@@ -93,6 +94,8 @@ func registerMethodFlags(fs *flag.FlagSet, baselineDefault, baselineHelp, refere
 	fs.Float64("noise", sg.Noise, "smoothgrad noise level `R`: σ / (max x − min x)")
 	fs.Bool("abs", false, "grad: the gradient's absolute value |∂f/∂x| (Simonyan et al. 2013), not its sign")
 	fs.String("variant", gradattr.VariantMean.String(), "smoothgrad aggregate of the noisy copies' gradients: mean, squared (mean of squares) or variance")
+	fs.String("layer", "", "attribute to the value called `NAME` inside the model instead of its input (inspect -values lists them); grad-cam's default is the last value with spatial axes")
+	fs.String("layer-baseline", explain.LayerBaselineInput, "the baseline at -layer: input (the value computed from the input's -baseline) or zero")
 }
 
 // readSettings sets the library's settings from the method flags given
