@@ -590,6 +590,9 @@ type explainRequest struct {
 	Logits    *bool           `json:"logits"`
 	Abs       *bool           `json:"abs"`
 	Variant   *string         `json:"variant"`
+	Layer     *string         `json:"layer"`
+	// LayerBaseline is the baseline at "layer": input or zero.
+	LayerBaseline *string `json:"layer-baseline"`
 }
 
 // fieldName names a setting as a request field: "steps".
@@ -637,6 +640,8 @@ func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 		{explain.FieldSeed, req.Seed != nil, func() string { return strconv.FormatUint(*req.Seed, 10) }},
 		{explain.FieldAbs, req.Abs != nil, func() string { return strconv.FormatBool(*req.Abs) }},
 		{explain.FieldVariant, req.Variant != nil, func() string { return *req.Variant }},
+		{explain.FieldLayer, req.Layer != nil, func() string { return *req.Layer }},
+		{explain.FieldLayerBaseline, req.LayerBaseline != nil, func() string { return *req.LayerBaseline }},
 	}
 	for _, fl := range fields {
 		if !fl.given {

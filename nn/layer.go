@@ -78,8 +78,33 @@ type Layer struct {
 
 // Layer returns the output chosen by sel as a function of the value
 // called value. Its InputShape is V's per-sample shape.
+// Layers are kept: a second call with the same arguments returns the
+// same Layer, whose programs are already compiled.
 func (nw *Network) Layer(value string, sel Selection) (l *Layer, err error) {
 	defer recoverEngine("nn: layer", &err)
+	key := fmt.Sprintf("%q %q %v", value, sel.Output, sel.Logits)
+	nw.mu.Lock()
+	l, ok := nw.layers[key]
+	nw.mu.Unlock()
+	if ok {
+		return l, nil
+	}
+	if l, err = nw.newLayer(value, sel); err != nil {
+		return nil, err
+	}
+	nw.mu.Lock()
+	defer nw.mu.Unlock()
+	if k, ok := nw.layers[key]; ok {
+		return k, nil
+	}
+	if nw.layers == nil {
+		nw.layers = map[string]*Layer{}
+	}
+	nw.layers[key] = l
+	return l, nil
+}
+
+func (nw *Network) newLayer(value string, sel Selection) (*Layer, error) {
 	input, err := nw.Head(sel)
 	if err != nil {
 		return nil, err

@@ -127,8 +127,9 @@ type Network struct {
 	// (splitMinPartFLOPs; tests lower it to split every batch).
 	splitMinFLOPs float64
 
-	mu    sync.Mutex
-	progs map[string]*program
+	mu     sync.Mutex
+	progs  map[string]*program
+	layers map[string]*Layer // by value and selection
 }
 
 // Compile validates m and prepares it for running. Programs are compiled
