@@ -4,8 +4,11 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"strings"
 
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/nn"
+	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
 
@@ -24,6 +27,9 @@ type Explainer struct {
 	// attributions, the input's otherwise.
 	layer     *layerState
 	attrShape []int
+	// held are the model's other runtime inputs (Hold): one batch per
+	// input of Model.Inputs, nil at the attributed one.
+	held []*samples.Batch
 }
 
 // New joins a compiled model, the output explained (head, from
@@ -168,6 +174,79 @@ func (e *Explainer) record(o gradattr.Options, name func(*Dataset) string) map[s
 	return rec
 }
 
+// Hold gives the values of the model's other runtime inputs: one batch per
+// input of Model.Inputs, in order, nil at the input explanations attribute
+// to. Each batch holds as many samples as the batch Explain gets, or one
+// sample, which every sample then shares: sample i is explained with the
+// other inputs at their sample i, held fixed while the method varies the
+// attributed input.
+func (e *Explainer) Hold(inputs []*samples.Batch) error {
+	feeds := e.model.Inputs()
+	if len(inputs) != len(feeds) {
+		return fmt.Errorf("expected one input per model input (%d: %s), got %d", len(feeds), inputNames(feeds), len(inputs))
+	}
+	for i, b := range inputs {
+		if feeds[i].Name != e.input.Name && b == nil {
+			return fmt.Errorf("input %q: no samples given", feeds[i].Name)
+		}
+	}
+	e.held = inputs
+	return nil
+}
+
+func inputNames(vis []*onnxlite.ValueInfo) string {
+	names := make([]string, len(vis))
+	for i, v := range vis {
+		names[i] = v.Name
+	}
+	return strings.Join(names, ", ")
+}
+
+// headFor returns the head that explains sample i: e's, with the other
+// inputs held at their sample i.
+func (e *Explainer) headFor(i int) (gradattr.Model, error) {
+	if len(e.model.Inputs()) == 1 {
+		return e.head, nil
+	}
+	if e.held == nil {
+		return nil, fmt.Errorf("the model has %d inputs (%s): give samples for each", len(e.model.Inputs()), inputNames(e.model.Inputs()))
+	}
+	w, ok := e.head.(interface {
+		With([]*onnxlite.Tensor) (*nn.Head, error)
+	})
+	if !ok {
+		return nil, fmt.Errorf("the head explained cannot hold the model's other inputs")
+	}
+	feeds := e.model.Inputs()
+	ts := make([]*onnxlite.Tensor, len(feeds))
+	for k, b := range e.held {
+		if b == nil || feeds[k].Name == e.input.Name {
+			continue
+		}
+		j := i
+		if b.Samples == 1 {
+			j = 0
+		}
+		if j >= b.Samples {
+			return nil, fmt.Errorf("input %q: %d samples, no sample %d", feeds[k].Name, b.Samples, i)
+		}
+		if b.Bad[j] != nil {
+			return nil, fmt.Errorf("input %q: %w", feeds[k].Name, b.Bad[j])
+		}
+		t, err := b.SampleTensor(j, samples.SpecOf(feeds[k]))
+		if err != nil {
+			return nil, fmt.Errorf("input %q: %w", feeds[k].Name, err)
+		}
+		ts[k] = t
+	}
+	var h gradattr.Model
+	err := guard(func() (err error) {
+		h, err = w.With(ts)
+		return err
+	})
+	return h, err
+}
+
 // Attribute explains one row x. A mean baseline needs a reference set
 // here.
 func (e *Explainer) Attribute(ctx context.Context, x []float64) (*gradattr.Result, error) {
@@ -175,7 +254,7 @@ func (e *Explainer) Attribute(ctx context.Context, x []float64) (*gradattr.Resul
 	if err != nil {
 		return nil, err
 	}
-	res, _, _, err := e.attribute(ctx, x, o)
+	res, _, _, err := e.attribute(ctx, e.head, x, o)
 	return res, err
 }
 
@@ -290,6 +369,11 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 	if err != nil {
 		return nil, err
 	}
+	for k, h := range e.held {
+		if h != nil && h.Samples != 1 && h.Samples != b.Samples {
+			return nil, fmt.Errorf("input %q: %d samples, expected one or as many as the %d of %s", e.model.Inputs()[k].Name, h.Samples, b.Samples, b.Name)
+		}
+	}
 	rep := &Report{Model: e.model, Input: e.input.Name, Output: e.output, Settings: e.settings, Options: o, Batch: b,
 		Shape: e.attrShape, record: e.record(o, byName)}
 	if e.layer != nil {
@@ -298,14 +382,17 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 	for i := 0; i < b.Samples; i++ {
 		x := b.Sample(i)
 		ex := Explanation{Index: i, Values: x}
+		head, err := e.headFor(i)
 		switch {
 		case b.Bad[i] != nil:
 			ex.Err = b.Bad[i]
 		case samples.CheckFinite(x) != nil:
 			ex.Err = samples.CheckFinite(x)
+		case err != nil:
+			ex.Err = err
 		default:
 			var at []float64
-			ex.Result, at, ex.BaselineOutputs, ex.Err = e.attribute(ctx, x, o)
+			ex.Result, at, ex.BaselineOutputs, ex.Err = e.attribute(ctx, head, x, o)
 			if ex.Err == nil {
 				ex.Warnings = e.warnings(at, ex.Result)
 			}

@@ -104,15 +104,16 @@ func (e *Explainer) layerReference(ctx context.Context, rows [][]float64) ([][]f
 }
 
 // attribute explains output target at sample x with the options o: at
-// the input, or at the layer. It returns the result, the point it
+// the input (through head, which holds the model's other inputs), or at
+// the layer. It returns the result, the point it
 // attributes among (x, or V(x)), and the outputs at the one baseline the
 // result reports (nil when there is none).
-func (e *Explainer) attribute(ctx context.Context, x []float64, o gradattr.Options) (res *gradattr.Result, at, baseOut []float64, err error) {
+func (e *Explainer) attribute(ctx context.Context, head gradattr.Model, x []float64, o gradattr.Options) (res *gradattr.Result, at, baseOut []float64, err error) {
 	if e.layer == nil {
-		res, err = gradattr.Attribute(ctx, e.head, x, e.settings.Target, o)
+		res, err = gradattr.Attribute(ctx, head, x, e.settings.Target, o)
 		if err == nil {
 			if b, ok := reportedBaseline(o); ok {
-				baseOut = forwardAt(ctx, e.head, x, e.shape, b)
+				baseOut = forwardAt(ctx, head, x, e.shape, b)
 			}
 		}
 		return res, x, baseOut, err

@@ -105,7 +105,7 @@ func (e *Explainer) Summarize(ctx context.Context, rows []samples.Row, s *gradat
 		go func() {
 			defer wg.Done()
 			for i := range jobs {
-				res, _, _, err := e.attribute(ctx, rows[i].Values, o)
+				res, _, _, err := e.attribute(ctx, e.head, rows[i].Values, o)
 				results <- outcome{i, res, err}
 			}
 		}()

@@ -39,6 +39,7 @@ import (
 
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/nn"
 	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
@@ -94,6 +95,9 @@ type Options struct {
 	Reference *explain.Dataset
 	// Logger gets one line per request; nil logs nothing.
 	Logger *slog.Logger
+	// DType is the engine's element type: nn.Float32 (the zero value) or
+	// nn.Float64.
+	DType nn.DType
 }
 
 // Handler serves the /v1 API for one model. It is safe for concurrent use;
@@ -155,7 +159,7 @@ func New(m *explain.Model, opt Options) (*Handler, error) {
 			return nil, fmt.Errorf("reference %s: expected samples of %d values, got %d", ref.Name, want, got)
 		}
 	}
-	if err := m.Compile(explain.CompileOptions{Parallel: 1}); err != nil {
+	if err := m.Compile(explain.CompileOptions{Parallel: 1, DType: opt.DType}); err != nil {
 		return nil, err
 	}
 	h.pool = newWorkPool(opt.Workers, opt.Queue, h.metrics)

@@ -21,17 +21,25 @@ type Value struct {
 	DType onnxlite.DataType
 }
 
-// staticAtOne infers the graph at batch 1, as Head does.
-func (nw *Network) staticAtOne() (*onnxlite.Static, error) {
+// staticAtOne infers the graph of a Network with one run-time input (and
+// no compile-time input) at batch 1, as Head does; shape is the input's
+// per-sample shape.
+func (nw *Network) staticAtOne() (st *onnxlite.Static, shape []int, err error) {
+	if len(nw.feeds) != 1 || len(nw.held) != 0 {
+		return nil, nil, fmt.Errorf("%w: the model's values are listed for a model of one run-time input, this one has %d (%s)", ErrBadRequest, len(nw.inputs), portNames(nw.inputs))
+	}
 	shapes, ok := nw.sampleShapes(1)
 	if !ok {
-		return nil, fmt.Errorf("%w: the per-sample input shape is not fully known; give it in Options.InputShapes", ErrShape)
+		return nil, nil, fmt.Errorf("%w: the per-sample input shape is not fully known; give it in Options.InputShapes", ErrShape)
 	}
-	st, err := nw.inferFor(shapes)
+	if len(shapes[0]) == 0 || shapes[0][0] != 1 {
+		return nil, nil, fmt.Errorf("%w: input %q has shape %v at batch 1; expected a leading batch dimension", ErrShape, nw.feeds[0].Name, shapes[0])
+	}
+	st, err = nw.inferFor(shapes, nil)
 	if err != nil {
-		st, err = onnxStaticAtOne(nw, shapes)
+		st, err = nw.infer(nw.model, shapes, nil)
 	}
-	return st, err
+	return st, shapes[0][1:], err
 }
 
 // Values lists, in graph order, the values the Network computes at run
@@ -41,7 +49,7 @@ func (nw *Network) staticAtOne() (*onnxlite.Static, error) {
 // out too.
 func (nw *Network) Values() (vals []Value, err error) {
 	defer recoverEngine("nn: values", &err)
-	st, err := nw.staticAtOne()
+	st, _, err := nw.staticAtOne()
 	if err != nil {
 		return nil, fmt.Errorf("nn: values: %w", err)
 	}
@@ -67,13 +75,14 @@ func (nw *Network) Values() (vals []Value, err error) {
 // Every value of the graph can be a Layer's V, including the output of a
 // Conv or Gemm that the compiler runs together with the Relu reading it.
 type Layer struct {
-	value  string
-	op     string
-	shape  []int
-	input  *Head    // the Network's own head, for V(x)
-	cut    *Head    // g, with the fixed values as further inputs
-	fixed  []string // the values held fixed
-	fshape [][]int  // their per-sample shapes
+	value   string
+	op      string
+	shape   []int
+	nw      *Network // the whole graph, for V(x)
+	inShape []int    // its input's per-sample shape
+	cut     *Head    // g, with the fixed values as further inputs
+	fixed   []string // the values held fixed
+	fshape  [][]int  // their per-sample shapes
 }
 
 // Layer returns the output chosen by sel as a function of the value
@@ -105,30 +114,54 @@ func (nw *Network) Layer(value string, sel Selection) (l *Layer, err error) {
 }
 
 func (nw *Network) newLayer(value string, sel Selection) (*Layer, error) {
-	input, err := nw.Head(sel)
-	if err != nil {
-		return nil, err
-	}
-	st, err := nw.staticAtOne()
+	st, inShape, err := nw.staticAtOne()
 	if err != nil {
 		return nil, fmt.Errorf("nn: layer: %w", err)
 	}
-	cut, l, err := cutAt(st, value, input.value)
+	out, err := selectedValue(st, sel)
+	if err != nil {
+		return nil, fmt.Errorf("nn: layer: %w", err)
+	}
+	cut, l, err := cutAt(st, value, out)
 	if err != nil {
 		return nil, fmt.Errorf("nn: layer %q: %w", value, err)
 	}
-	l.input = input
+	l.nw, l.inShape = nw, inShape
 	opts := nw.opts
 	opts.InputShapes = nil
 	cnw, err := Compile(cut, opts)
 	if err != nil {
 		return nil, fmt.Errorf("nn: layer %q: the graph after it: %w", value, err)
 	}
-	l.cut, err = cnw.headOf(Selection{Output: input.value}, len(l.fixed))
+	l.cut, err = cnw.Head(Selection{Output: out, Input: value})
 	if err != nil {
 		return nil, fmt.Errorf("nn: layer %q: %w", value, err)
 	}
 	return l, nil
+}
+
+// selectedValue returns the value sel selects in st: a graph output, or
+// with Logits the input of the Softmax, LogSoftmax or Sigmoid producing it.
+func selectedValue(st *onnxlite.Static, sel Selection) (string, error) {
+	out := sel.Output
+	if out == "" {
+		if len(st.Outputs) == 0 {
+			return "", fmt.Errorf("%w: the model has no outputs", ErrBadRequest)
+		}
+		out = st.Outputs[0]
+	}
+	if !slices.Contains(st.Outputs, out) {
+		return "", fmt.Errorf("%w: no graph output %q (outputs: %q)", ErrBadRequest, out, st.Outputs)
+	}
+	if !sel.Logits {
+		return out, nil
+	}
+	for _, n := range st.Nodes {
+		if slices.Contains(n.Outputs, out) && (n.OpType == "Softmax" || n.OpType == "LogSoftmax" || n.OpType == "Sigmoid") {
+			return n.Inputs[0], nil
+		}
+	}
+	return "", fmt.Errorf("%w: Logits needs output %q to be produced by Softmax, LogSoftmax or Sigmoid", ErrBadRequest, out)
 }
 
 // cutAt returns the graph downstream of value in st as a model of its own,
@@ -252,6 +285,9 @@ func (l *Layer) Fixed() []string { return slices.Clone(l.fixed) }
 // value when the Selection asked for it).
 func (l *Layer) Output() string { return l.cut.value }
 
+// SampleShape returns the per-sample shape of the Network's input.
+func (l *Layer) SampleShape() []int { return slices.Clone(l.inShape) }
+
 // Values returns V for n samples held in x (n·∏ of the Network's input
 // shape values, row-major): n·∏InputShape values.
 func (l *Layer) Values(ctx context.Context, x []float64, n int) (v []float64, err error) {
@@ -264,11 +300,15 @@ func (l *Layer) Values(ctx context.Context, x []float64, n int) (v []float64, er
 }
 
 func (l *Layer) run(ctx context.Context, x []float64, n int, names []string) ([][]float64, error) {
-	h := l.input
-	if err := h.check(x, n); err != nil {
+	size := prod(l.inShape)
+	if n <= 0 || len(x) != n*size {
+		return nil, fmt.Errorf("nn: layer %q: %w: %d samples of shape %v need %d values, got %d", l.value, ErrShape, n, l.inShape, n*size, len(x))
+	}
+	if err := checkFinite(x, size); err != nil {
 		return nil, fmt.Errorf("nn: layer %q: %w", l.value, err)
 	}
-	outs, _, _, err := h.nw.runReq(ctx, h.shapes(n), [][]float64{x}, request{outputs: names}, nil)
+	shape := append([]int{n}, l.inShape...)
+	outs, _, _, err := l.nw.runReq(ctx, [][]int{shape}, [][]float64{x}, request{outputs: names}, nil)
 	if err != nil {
 		return nil, fmt.Errorf("nn: layer %q: %w", l.value, err)
 	}
@@ -285,7 +325,15 @@ func (l *Layer) At(ctx context.Context, x []float64) (h *Head, v []float64, err 
 	if err != nil {
 		return nil, nil, err
 	}
-	hc := *l.cut
-	hc.fixed = outs[1:]
-	return &hc, outs[0], nil
+	if len(l.fixed) == 0 {
+		return l.cut, outs[0], nil
+	}
+	ts := make([]*onnxlite.Tensor, 1, 1+len(l.fixed))
+	for i, f := range l.fixed {
+		ts = append(ts, makeTensor(f, Float64, append([]int{1}, l.fshape[i]...), outs[1+i]))
+	}
+	if h, err = l.cut.With(ts); err != nil {
+		return nil, nil, err
+	}
+	return h, outs[0], nil
 }

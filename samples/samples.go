@@ -226,6 +226,10 @@ type Options struct {
 	// Features are the model's feature names: a CSV file whose header
 	// names them is read by name (see ReadCSV).
 	Features []string
+	// Whole says the input is a parameter the model reads whole when it
+	// compiles (a target shape, axes), not a batch of samples: a .pb
+	// tensor for it may be empty (no axes, say).
+	Whole bool
 }
 
 // Read reads samples of spec from r, a file called name whose extension
@@ -251,7 +255,11 @@ func read(r io.Reader, name string, spec Spec, opt Options) (*Batch, error) {
 	}
 	switch f {
 	case PB:
-		return ReadPB(r, spec)
+		b, err := ReadPB(r, spec)
+		if err == nil && b.Samples == 0 && !opt.Whole {
+			return nil, fmt.Errorf("expected at least one sample, got a tensor of shape %s", ShapeString(b.Shape))
+		}
+		return b, err
 	case NPY:
 		return ReadNPY(r, spec)
 	case JSON:

@@ -52,7 +52,10 @@ var methodFlagNames = []explain.Field{
 // by the library.
 type explainConfig struct {
 	modelPath string
-	inputPath string
+	inputPath string    // the first -input
+	inputs    multiFlag // every -input, one per graph input (explain)
+	inputName string    // -input-name: the input to attribute to
+	precision string    // -precision: float32 or float64
 	groups    string
 	format    string
 	out       string
@@ -139,7 +142,9 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			"(-out a.png: a_0.png, a_1.png, ...).\n\n"+caution, stderr)
 	var c explainConfig
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded demo model chosen by -demo)")
-	fs.StringVar(&c.inputPath, "input", "", "samples to explain: a .csv, .json, .npy or .pb `file` (required with -model; default: the demo's own sample)")
+	fs.Var(&c.inputs, "input", "samples to explain: a .csv, .json, .npy or .pb `file` (required with -model; default: the demo's own sample); for a model of several inputs, one -input per input, in the model's order")
+	fs.StringVar(&c.inputName, "input-name", "", "`name` of the model input to attribute to (default the first floating-point input); the other inputs are held at each sample's values")
+	registerPrecisionFlag(fs, &c.precision)
 	registerMethodFlags(fs, explain.DefaultBaselineText,
 		"baseline `kind` for ig: zero, constant:V (every feature V), mean or median (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), uniform:LO:HI (noise from -seed), or the path of a file of baseline samples (results averaged over them)",
 		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
@@ -154,6 +159,9 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs.StringVar(&c.sort, "sort", "model", "order of the features in the table and the PNG: model (the model's order), abs (largest |attribution| first) or value (largest attribution first)")
 	if code, done := parseFlags(fs, args, stdout); done {
 		return code
+	}
+	if len(c.inputs) > 0 {
+		c.inputPath = c.inputs[0]
 	}
 	if err := c.readSettings(fs); err != nil {
 		return fail(stderr, "explain", err)
@@ -352,6 +360,9 @@ func (c *explainConfig) validate() string {
 	if c.demo != "" && c.modelPath != "" {
 		return "-demo selects an embedded model and sample; it cannot be combined with -model"
 	}
+	if _, err := explain.ParsePrecision(c.precision); err != nil {
+		return "-" + err.Error()
+	}
 	if c.inputPath == "" && c.modelPath != "" {
 		return "-input is required"
 	}
@@ -477,6 +488,7 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 		return nil, nil, err
 	}
 	m := l.model
+	m.InputName = c.inputName
 	spec, err := m.Input()
 	if err != nil {
 		return nil, nil, err
@@ -484,17 +496,28 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 	if _, err := m.Output(c.settings.Output); err != nil {
 		return nil, nil, err
 	}
+	dtype, err := explain.ParsePrecision(c.precision)
+	if err != nil {
+		return nil, nil, err
+	}
+	held, open, err := c.readOthers(m, spec)
+	if err != nil {
+		return nil, nil, err
+	}
 	var batch *samples.Batch
 	if c.inputPath == "" {
 		batch, err = samples.Read(bytes.NewReader(l.demo.Sample), l.demo.SampleFile, spec, m.ReadOptions(true))
 	} else {
-		batch, err = samples.ReadFile(c.inputPath, spec, m.ReadOptions(true))
+		batch, err = samples.ReadFile(c.inputs[indexOf(m, spec.Name, len(c.inputs))], spec, m.ReadOptions(true))
 	}
 	if err != nil {
 		return nil, nil, err
 	}
 	l.noteIgnored(batch.Name, batch.Ignored)
-	if err := m.Compile(explain.CompileOptions{InputShapes: explain.OpenShapes(spec, batch), Parallel: parallel}); err != nil {
+	for name, shape := range explain.OpenShapes(spec, batch) {
+		open[name] = shape
+	}
+	if err := m.Compile(explain.CompileOptions{InputShapes: open, Parallel: parallel, DType: dtype}); err != nil {
 		return nil, nil, err
 	}
 	if err := l.readDatasets(&c.settings); err != nil {
@@ -534,8 +557,69 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 		}
 	}
 	ex, err := explain.New(m, head, c.settings)
+	if err == nil && held != nil {
+		err = ex.Hold(held)
+	}
 	c.ignored = l.ignored
 	return ex, batch, err
+}
+
+// indexOf returns the position of the input called name among the model's
+// inputs when every input has a file (given files), and 0 otherwise.
+func indexOf(m *explain.Model, name string, given int) int {
+	feeds := m.Inputs()
+	if given != len(feeds) {
+		return 0
+	}
+	for i, f := range feeds {
+		if f.Name == name {
+			return i
+		}
+	}
+	return 0
+}
+
+// readOthers reads the files of the model's inputs other than the one
+// explained (spec), when the model has several: one -input per graph
+// input, in graph order. It returns them for Explainer.Hold (nil at the
+// explained input) and the per-sample shapes of those declared open.
+func (c *explainConfig) readOthers(m *explain.Model, spec samples.Spec) ([]*samples.Batch, map[string][]int, error) {
+	feeds := m.Inputs()
+	open := map[string][]int{}
+	if len(feeds) == 1 && len(c.inputs) <= 1 {
+		return nil, open, nil
+	}
+	if len(c.inputs) != len(feeds) {
+		names := make([]string, len(feeds))
+		for i, f := range feeds {
+			names[i] = f.Name
+		}
+		return nil, nil, &usageErr{fmt.Sprintf("the model has %d inputs (%s): give one -input per input, in that order, got %d", len(feeds), strings.Join(names, ", "), len(c.inputs))}
+	}
+	held := make([]*samples.Batch, len(feeds))
+	for i, vi := range feeds {
+		if vi.Name == spec.Name {
+			continue
+		}
+		other := samples.SpecOf(vi)
+		b, err := samples.ReadFile(c.inputs[i], other, samples.Options{})
+		if err != nil {
+			return nil, nil, err
+		}
+		if err := b.FirstBad(); err != nil {
+			return nil, nil, fmt.Errorf("input %s (for %q): %w", c.inputs[i], vi.Name, err)
+		}
+		held[i] = b
+		for name, shape := range explain.OpenShapes(other, b) {
+			open[name] = shape
+		}
+	}
+	return held, open, nil
+}
+
+// registerPrecisionFlag defines -precision, the engine's element type.
+func registerPrecisionFlag(fs *flag.FlagSet, p *string) {
+	fs.StringVar(p, "precision", "float32", "the engine's floating-point `type`: float32, or float64 for values beyond the float32 range and reference-grade results")
 }
 
 // parsePatch reads -patch HxW.
