@@ -27,6 +27,9 @@ type Explainer struct {
 	// attributions, the input's otherwise.
 	layer     *layerState
 	attrShape []int
+	// tokens is set when the layer is a token model's embedding, whose
+	// attributions are summed per token.
+	tokens bool
 	// held are the model's other runtime inputs (Hold): one batch per
 	// input of Model.Inputs, nil at the attributed one.
 	held []*samples.Batch
@@ -165,7 +168,13 @@ func (e *Explainer) record(o gradattr.Options, name func(*Dataset) string) map[s
 	if s.Reference != nil && s.NeedsReference() {
 		rec["reference"] = name(s.Reference)
 	}
-	if e.layer != nil {
+	switch {
+	case e.tokens:
+		rec["layer"] = e.layer.l.Name()
+		if s.Method.Reads(gradattr.ParamBaseline) && s.BaselineToken != nil {
+			rec["baseline_token"] = *s.BaselineToken
+		}
+	case e.layer != nil:
 		rec["layer"] = e.layer.l.Name()
 		if s.Method.Reads(gradattr.ParamBaseline) {
 			rec["layer_baseline"] = s.layerBaseline()
@@ -275,6 +284,9 @@ type Report struct {
 	// Shape is their per-sample shape.
 	Layer string
 	Shape []int
+	// Tokens is set when the attributions are per token of a model of
+	// token ids (see Model.Tokens): one per position of the sample.
+	Tokens bool
 
 	layerShape []int
 	// Explanations holds one entry per sample, in order.
@@ -289,6 +301,9 @@ type Explanation struct {
 	Index int
 	// Values is the sample.
 	Values []float64
+	// Tokens names the sample's tokens, one per position, when the report
+	// is per token (Report.Tokens).
+	Tokens []string
 	// LayerValues is the value at Settings.Layer for the sample, V(x),
 	// when the explanation is at a layer (for Grad-CAM, the activation A);
 	// nil otherwise.
@@ -314,12 +329,25 @@ type Explanation struct {
 // whose map has one entry per place of the layer, not per value.
 func (r *Report) FeatureValues(e Explanation) []float64 {
 	switch {
-	case r.Layer == "":
+	case r.Layer == "" || r.Tokens:
 		return e.Values
 	case r.Settings.Method == gradattr.MethodGradCAM:
 		return nil
 	}
 	return e.LayerValues
+}
+
+// SampleLabels names the features of explanation e: one per token, "i
+// token", for a report per token; Labels otherwise.
+func (r *Report) SampleLabels(e Explanation) []string {
+	if !r.Tokens {
+		return r.Labels()
+	}
+	out := make([]string, len(e.Tokens))
+	for i, t := range e.Tokens {
+		out[i] = fmt.Sprintf("%d %s", i, t)
+	}
+	return out
 }
 
 // LayerShape returns the per-sample shape of the value at Layer; nil
@@ -379,6 +407,7 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 	if e.layer != nil {
 		rep.Layer, rep.layerShape = e.layer.l.Name(), e.layer.l.InputShape()
 	}
+	rep.Tokens = e.tokens
 	for i := 0; i < b.Samples; i++ {
 		x := b.Sample(i)
 		ex := Explanation{Index: i, Values: x}
@@ -396,8 +425,11 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 			if ex.Err == nil {
 				ex.Warnings = e.warnings(at, ex.Result)
 			}
-			if e.layer != nil {
+			if e.layer != nil && !e.tokens {
 				ex.LayerValues = at
+			}
+			if e.tokens {
+				ex.Tokens = e.model.TokenNames(x)
 			}
 		}
 		if ex.Err == nil {

@@ -130,7 +130,12 @@ func (e *Explainer) attribute(ctx context.Context, head gradattr.Model, x []floa
 			return nil, nil, nil, err
 		}
 	}
-	if o.Method.Reads(gradattr.ParamBaseline) {
+	switch {
+	case o.Method.Reads(gradattr.ParamBaseline) && e.tokens:
+		if lo.Baselines, err = e.tokenBaseline(ctx); err != nil {
+			return nil, nil, nil, err
+		}
+	case o.Method.Reads(gradattr.ParamBaseline):
 		if e.settings.LayerBaseline == LayerBaselineZero {
 			lo.Baselines = []gradattr.Baseline{{Kind: gradattr.BaselineZero}}
 		}
@@ -155,6 +160,10 @@ func (e *Explainer) attribute(ctx context.Context, head gradattr.Model, x []floa
 	}
 	if b, ok := reportedBaseline(lo); ok {
 		baseOut = forwardAt(ctx, h, v, l.InputShape(), b)
+	}
+	if e.tokens {
+		perToken(res)
+		return res, x, baseOut, nil
 	}
 	return res, v, baseOut, nil
 }
@@ -183,6 +192,18 @@ func forwardAt(ctx context.Context, m gradattr.Model, x []float64, shape []int, 
 func (e *Explainer) atLayer() error {
 	s := &e.settings
 	name := s.Layer
+	t, tokens := e.model.Tokens()
+	tokens = tokens && t.Input == e.input.Name
+	switch {
+	case tokens && s.Given(FieldBaseline):
+		return fieldError(FieldBaseline, " sets a baseline of the input's values; the baseline of a model of token ids is zero embeddings, or the embedding of ", FieldBaselineToken)
+	case !tokens && s.BaselineToken != nil:
+		return fieldError(FieldBaselineToken, " applies to a model that reads token ids through an embedding; this one does not")
+	case tokens && s.BaselineToken != nil && *s.BaselineToken >= t.Vocabulary:
+		return fieldError(FieldBaselineToken, fmt.Sprintf(" must be a token id from 0 to %d (the embedding has %d rows), got %d", t.Vocabulary-1, t.Vocabulary, *s.BaselineToken))
+	case tokens && name == "" && s.Method != gradattr.MethodGradCAM:
+		name, e.tokens = t.Embedding, true
+	}
 	if s.Method == gradattr.MethodGradCAM {
 		s.Logits = s.Logits || squashing[e.model.producer(e.output)]
 		if name == "" {
@@ -206,6 +227,9 @@ func (e *Explainer) atLayer() error {
 			return fieldError(FieldLayer, fmt.Sprintf(" %s has shape %v; grad-cam reads a value with a channel axis and spatial axes, (C, H, W) or (C, L)", name, e.attrShape))
 		}
 		e.attrShape = e.attrShape[1:]
+	}
+	if e.tokens {
+		e.attrShape = e.attrShape[:1]
 	}
 	return nil
 }

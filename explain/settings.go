@@ -37,6 +37,9 @@ const (
 	FieldLayer     Field = "layer"
 	// FieldLayerBaseline is how the baseline at a layer is formed.
 	FieldLayerBaseline Field = "layer-baseline"
+	// FieldBaselineToken is the token whose embedding is a token model's
+	// baseline.
+	FieldBaselineToken Field = "baseline-token"
 )
 
 // methodFields are the method parameters, in the order Check reports them.
@@ -233,6 +236,10 @@ type Settings struct {
 	// default) is the value computed from the input's baseline,
 	// LayerBaselineZero the value 0.
 	LayerBaseline string
+	// BaselineToken is, for a token model (Model.Tokens), the id whose
+	// embedding at every position is the baseline (a padding token); nil,
+	// the default, is zero vectors.
+	BaselineToken *int
 
 	given map[Field]bool
 }
@@ -363,6 +370,12 @@ func (s *Settings) set(f Field, text string) error {
 			return fieldError(f, " must name a value of the model (inspect -values lists them), got \"\"")
 		}
 		s.Layer = text
+	case FieldBaselineToken:
+		n, err := strconv.Atoi(text)
+		if err != nil || n < 0 {
+			return fieldError(f, " must be a token id, a whole number from 0, got ", strconv.Quote(text))
+		}
+		s.BaselineToken = &n
 	case FieldLayerBaseline:
 		if text != LayerBaselineInput && text != LayerBaselineZero {
 			return fieldError(f, " must be input or zero, got ", strconv.Quote(text))

@@ -337,3 +337,17 @@ func (l *Layer) At(ctx context.Context, x []float64) (h *Head, v []float64, err 
 	}
 	return h, outs[0], nil
 }
+
+// OutputSize returns the number of output scalars per sample.
+func (l *Layer) OutputSize() int { return l.cut.OutputSize() }
+
+// Forward evaluates the selected output (see Output) for n samples x of
+// the Network's input.
+func (l *Layer) Forward(ctx context.Context, x []float64, n int) (out []float64, err error) {
+	defer recoverEngine("nn: layer forward", &err)
+	outs, err := l.run(ctx, x, n, []string{l.cut.value})
+	if err != nil {
+		return nil, err
+	}
+	return outs[0], nil
+}

@@ -230,9 +230,15 @@ func Table(w io.Writer, rep *explain.Report, opt Options) error {
 			fmt.Fprintln(w, wrap("  warning: "+wn.Message+opt.suggestion(wn), "    ", tableWidth))
 		}
 
+		if rep.Tokens {
+			labels = rep.SampleLabels(e)
+		}
 		order, hidden := opt.selection(r.Attributions)
 		scale, what := Scale(e)
 		rows := [][3]string{{"feature", "value", "attribution"}}
+		if rep.Tokens {
+			rows[0] = [3]string{"token", "id", "attribution"}
+		}
 		for _, i := range order {
 			label := strconv.Itoa(i)
 			if i < len(labels) {
@@ -381,6 +387,9 @@ func CSV(w io.Writer, rep *explain.Report) error {
 	for _, e := range rep.Explanations {
 		if e.Err != nil {
 			continue
+		}
+		if rep.Tokens {
+			labels = rep.SampleLabels(e)
 		}
 		for i, a := range e.Result.Attributions {
 			label := strconv.Itoa(i)

@@ -476,6 +476,9 @@ func explanationFigure(rep *explain.Report, e explain.Explanation, opt Options) 
 		return figure{heat: &heatmapFigure{title: title, notes: notes, img: img, attr: attr, height: h, width: wd}}
 	}
 	names, units := featureColumns(rep)
+	if rep.Tokens {
+		names = rep.SampleLabels(e)
+	}
 	order, hidden := opt.selection(r.Attributions)
 	if hidden > 0 {
 		notes = append(notes, opt.hiddenNote(hidden, len(r.Attributions)))

@@ -203,16 +203,19 @@ const (
 	JSON Format = ".json"
 	NPY  Format = ".npy"
 	PB   Format = ".pb"
+	// Text is one text per line, read as token ids with a vocabulary
+	// (ReadText).
+	Text Format = ".txt"
 )
 
 // FormatOf returns the format of the file called name, by its extension
 // (in any case).
 func FormatOf(name string) (Format, error) {
 	switch f := Format(strings.ToLower(filepath.Ext(name))); f {
-	case CSV, JSON, NPY, PB:
+	case CSV, JSON, NPY, PB, Text:
 		return f, nil
 	default:
-		return "", fmt.Errorf("unknown file type %q: expected .pb, .npy, .json or .csv", string(f))
+		return "", fmt.Errorf("unknown file type %q: expected .pb, .npy, .json, .csv or .txt", string(f))
 	}
 }
 
@@ -230,6 +233,8 @@ type Options struct {
 	// compiles (a target shape, axes), not a batch of samples: a .pb
 	// tensor for it may be empty (no axes, say).
 	Whole bool
+	// Vocabulary reads a text file (.txt) of a model of token ids.
+	Vocabulary *Vocabulary
 }
 
 // Read reads samples of spec from r, a file called name whose extension
@@ -265,6 +270,8 @@ func read(r io.Reader, name string, spec Spec, opt Options) (*Batch, error) {
 	case JSON:
 		b, err := ReadJSON(r, spec)
 		return b, nonFiniteJSON(err)
+	case Text:
+		return ReadText(r, spec, opt.Vocabulary)
 	default:
 		return ReadCSV(r, spec, opt.Features)
 	}

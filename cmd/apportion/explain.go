@@ -45,7 +45,7 @@ var methodFlagNames = []explain.Field{
 	explain.FieldMethod, explain.FieldTarget, explain.FieldOutput, explain.FieldLogits, explain.FieldBaseline,
 	explain.FieldReference, explain.FieldSteps, explain.FieldRule, explain.FieldTolerance, explain.FieldSamples,
 	explain.FieldNoise, explain.FieldSeed, explain.FieldAbs, explain.FieldVariant, explain.FieldLayer,
-	explain.FieldLayerBaseline,
+	explain.FieldLayerBaseline, explain.FieldBaselineToken,
 }
 
 // explainConfig holds explain's flags; settings are the method flags read
@@ -64,6 +64,8 @@ type explainConfig struct {
 	sort      string
 	patch     string // -patch HxW
 	render    render.Options
+	// vocab is -vocab, a vocabulary file for a model of token ids.
+	vocab string
 	// allowIncomplete accepts results whose completeness check fails.
 	allowIncomplete bool
 
@@ -99,6 +101,7 @@ func registerMethodFlags(fs *flag.FlagSet, baselineDefault, baselineHelp, refere
 	fs.String("variant", gradattr.VariantMean.String(), "smoothgrad aggregate of the noisy copies' gradients: mean, squared (mean of squares) or variance")
 	fs.String("layer", "", "attribute to the value called `NAME` inside the model instead of its input (inspect -values lists them); grad-cam's default is the last value with spatial axes")
 	fs.String("layer-baseline", explain.LayerBaselineInput, "the baseline at -layer: input (the value computed from the input's -baseline) or zero")
+	fs.String("baseline-token", "", "a model of token ids: the baseline is the embedding of token `ID` at every position (a padding token), instead of zero embeddings")
 }
 
 // readSettings sets the library's settings from the method flags given
@@ -153,7 +156,8 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs.StringVar(&c.patch, "patch", "", "report image samples by patches of `HxW` pixels (all channels), tiled from the top left, instead of -groups")
 	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv, npy or png (png needs -out)")
 	fs.StringVar(&c.out, "out", "", "write the result to `file` instead of standard output (png: file_0.png, file_1.png, ... for several samples)")
-	fs.StringVar(&c.demo, "demo", "", "embedded invented demo `scenario` to explain without -model: pumps (the default) or welds")
+	fs.StringVar(&c.demo, "demo", "", "embedded invented demo `scenario` to explain without -model: pumps (the default), welds or tickets")
+	fs.StringVar(&c.vocab, "vocab", "", "vocabulary `file` of a model of token ids, one token per line (id = line number from 0), for .txt inputs and token names (default: the model's own, from its metadata)")
 	fs.BoolVar(&c.allowIncomplete, "allow-incomplete", false, "exit 0 even when a completeness check fails (the results are printed either way)")
 	fs.IntVar(&c.render.Top, "top", 0, "show only the `K` features with the largest |attribution| in the table and the PNG (0: all, at most 64)")
 	fs.StringVar(&c.sort, "sort", "model", "order of the features in the table and the PNG: model (the model's order), abs (largest |attribution| first) or value (largest attribution first)")
@@ -489,6 +493,9 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 	}
 	m := l.model
 	m.InputName = c.inputName
+	if err := readVocabulary(m, c.vocab); err != nil {
+		return nil, nil, err
+	}
 	spec, err := m.Input()
 	if err != nil {
 		return nil, nil, err
@@ -662,4 +669,23 @@ func progress(w io.Writer) func(done, total int) {
 			fmt.Fprint(w, "\r\033[K")
 		}
 	}
+}
+
+// readVocabulary sets the vocabulary of a model of token ids from the file
+// at path (one token per line, id = line number from 0), when path is
+// given.
+func readVocabulary(m *explain.Model, path string) error {
+	if path == "" {
+		return nil
+	}
+	raw, err := samples.ReadLimited(path)
+	if err != nil {
+		return fmt.Errorf("-vocab: %w", err)
+	}
+	v, err := samples.ReadVocabulary(bytes.NewReader(raw))
+	if err != nil {
+		return fmt.Errorf("-vocab %s: %w", path, err)
+	}
+	m.Meta.Vocabulary = v.Tokens
+	return nil
 }
