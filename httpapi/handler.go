@@ -597,6 +597,8 @@ type explainRequest struct {
 	Layer     *string         `json:"layer"`
 	// LayerBaseline is the baseline at "layer": input or zero.
 	LayerBaseline *string `json:"layer-baseline"`
+	// BaselineToken is a token model's baseline token id.
+	BaselineToken *int `json:"baseline-token"`
 }
 
 // fieldName names a setting as a request field: "steps".
@@ -646,6 +648,7 @@ func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 		{explain.FieldVariant, req.Variant != nil, func() string { return *req.Variant }},
 		{explain.FieldLayer, req.Layer != nil, func() string { return *req.Layer }},
 		{explain.FieldLayerBaseline, req.LayerBaseline != nil, func() string { return *req.LayerBaseline }},
+		{explain.FieldBaselineToken, req.BaselineToken != nil, func() string { return strconv.Itoa(*req.BaselineToken) }},
 	}
 	for _, fl := range fields {
 		if !fl.given {

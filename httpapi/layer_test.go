@@ -2,10 +2,16 @@ package httpapi
 
 import (
 	"encoding/json"
+	"net/http/httptest"
+	"strings"
 	"testing"
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+
+	"github.com/apportion/apportion/demo"
+	"github.com/apportion/apportion/explain"
+	"github.com/apportion/apportion/gradattr"
 )
 
 func TestExplainAtLayer(t *testing.T) {
@@ -37,4 +43,40 @@ func TestExplainAtLayer(t *testing.T) {
 	code, _, resp = post(t, ts.URL+"/v1/explain", `{"inputs": [`+x+`], "layer-baseline": "zero"}`)
 	assert.Equal(t, 400, code)
 	assert.Contains(t, errorOf(t, resp), `"layer-baseline" applies with "layer"`)
+}
+
+func TestExplainTokenModel(t *testing.T) {
+	s, err := demo.Get("tickets")
+	require.NoError(t, err)
+	m, err := explain.Decode(s.Model, "demo:"+s.ModelFile, explain.DecodeOptions{})
+	require.NoError(t, err)
+	h, err := New(m, Options{Queue: DefaultQueue})
+	require.NoError(t, err)
+	ts := httptest.NewServer(h)
+	defer func() { ts.Close(); h.Close() }()
+	// demo/data/tickets_sample.txt as ids of the model's vocabulary
+	// (its metadata), padded with [pad] (id 0).
+	ids, err := m.Vocabulary().IDs(string(s.Sample), 16)
+	require.NoError(t, err)
+	code, _, body := post(t, ts.URL+"/v1/explain", `{"inputs": [`+floatsJSON(ids)+`], "baseline-token": 0}`)
+	require.Equal(t, 200, code, body)
+	var doc struct {
+		Settings     map[string]any `json:"settings"`
+		Explanations []struct {
+			Attributions []float64 `json:"attributions"`
+			Tokens       []string  `json:"tokens"`
+		} `json:"explanations"`
+	}
+	require.NoError(t, json.Unmarshal([]byte(body), &doc))
+	e := doc.Explanations[0]
+	assert.Equal(t, strings.Fields(string(s.Sample)), e.Tokens[:len(strings.Fields(string(s.Sample)))])
+	assert.Len(t, e.Attributions, 16)
+	assert.Equal(t, "screeching", e.Tokens[gradattr.Top(e.Attributions)], "the planted urgent word (demo/data/README.md)")
+	assert.EqualValues(t, 0, doc.Settings["baseline_token"])
+	for i, tok := range e.Tokens {
+		if tok == "[pad]" {
+			// E = E′ at a padding position (Sundararajan et al. 2017, eq. 1: x − x′ = 0)
+			assert.Zero(t, e.Attributions[i])
+		}
+	}
 }

@@ -387,8 +387,9 @@ func Title(rep *explain.Report, e explain.Explanation) string {
 
 // figure is what PNG draws for one explanation: a dot plot, or a heatmap.
 type figure struct {
-	dots *DotChart
-	heat *heatmapFigure
+	dots   *DotChart
+	heat   *heatmapFigure
+	tokens *tokenFigure
 }
 
 // heatmapFigure holds Heatmap's arguments.
@@ -409,6 +410,9 @@ func PNG(w io.Writer, rep *explain.Report, e explain.Explanation, opt Options) e
 	f := explanationFigure(rep, e, opt)
 	if h := f.heat; h != nil {
 		return Heatmap(w, h.title, h.img, h.height, h.width, h.attr, h.notes...)
+	}
+	if t := f.tokens; t != nil {
+		return Tokens(w, t.title, t.tokens, t.attr, t.notes...)
 	}
 	return Dots(w, *f.dots)
 }
@@ -450,6 +454,9 @@ func explanationFigure(rep *explain.Report, e explain.Explanation, opt Options) 
 		scale, what := Scale(ge)
 		return figure{dots: &DotChart{Title: title, Notes: notes, Columns: []Column{{Header: "group"}}, Rows: rows,
 			Scale: scale, ScaleNote: what, Axis: axis + ", summed per group"}}
+	}
+	if rep.Tokens && len(e.Tokens) == len(r.Attributions) {
+		return figure{tokens: &tokenFigure{title: title, notes: notes, tokens: e.Tokens, attr: r.Attributions}}
 	}
 	if ch, h, wd, ok := imageShape(rep.Batch.SampleShape()); ok && rep.Settings.Method == gradattr.MethodGradCAM && len(r.Shape) == 2 {
 		img := make([]float64, h*wd)
@@ -530,6 +537,12 @@ func featureColumns(rep *explain.Report) (names, units []string) {
 // file of baseline samples.
 func baselineTitle(rep *explain.Report) string {
 	g := func(v float64) string { return strconv.FormatFloat(v, 'g', -1, 64) }
+	if rep.Tokens {
+		if id := rep.Settings.BaselineToken; id != nil {
+			return fmt.Sprintf("the embedding of token %d", *id)
+		}
+		return "zero embeddings"
+	}
 	switch b := rep.Settings.Baseline; b.Kind {
 	case gradattr.BaselineMean, gradattr.BaselineMedian:
 		if ref := rep.Settings.Reference; ref != nil {

@@ -154,7 +154,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the random methods")
 	fs.StringVar(&c.groups, "groups", "", "JSON `file` of feature groups to report summed, in its order: {\"name\": [features], ...}, each feature an index from 0 or a feature name")
 	fs.StringVar(&c.patch, "patch", "", "report image samples by patches of `HxW` pixels (all channels), tiled from the top left, instead of -groups")
-	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv, npy or png (png needs -out)")
+	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv, npy, png (needs -out) or html (a model of token ids: one page of every sample)")
 	fs.StringVar(&c.out, "out", "", "write the result to `file` instead of standard output (png: file_0.png, file_1.png, ... for several samples)")
 	fs.StringVar(&c.demo, "demo", "", "embedded invented demo `scenario` to explain without -model: pumps (the default), welds or tickets")
 	fs.StringVar(&c.vocab, "vocab", "", "vocabulary `file` of a model of token ids, one token per line (id = line number from 0), for .txt inputs and token names (default: the model's own, from its metadata)")
@@ -211,6 +211,8 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		err = render.CSV(w, rep)
 	case "npy":
 		err = render.NPY(w, rep)
+	case "html":
+		err = render.HTML(w, rep, c.render)
 	default:
 		err = render.Table(w, rep, c.render)
 	}
@@ -329,13 +331,13 @@ func fail(stderr io.Writer, cmd string, err error) int {
 // usage error, or "".
 func (c *explainConfig) validate() string {
 	switch c.format {
-	case "table", "json", "csv", "npy":
+	case "table", "json", "csv", "npy", "html":
 	case "png":
 		if c.out == "" {
 			return "-format png needs -out, the file to write the image to (PNG is binary, not for a terminal)"
 		}
 	default:
-		return fmt.Sprintf("-format must be table, json, csv, npy or png, got %q", c.format)
+		return fmt.Sprintf("-format must be table, json, csv, npy, png or html, got %q", c.format)
 	}
 	if c.format == "npy" && (c.groups != "" || c.patch != "") && c.out == "" {
 		return "-format npy with groups writes two arrays: give -out FILE.npy for the attributions, and the group sums go to FILE_groups.npy"

@@ -138,3 +138,31 @@ func TestExplainTokensText(t *testing.T) {
 	assert.Equal(t, 1, code)
 	assert.Contains(t, errs, "a text file needs a vocabulary")
 }
+
+func TestExplainTicketsDemoFormats(t *testing.T) {
+	code, out, errs := cli(t, "explain", "-demo", "tickets", "-format", "json")
+	require.Equal(t, 0, code, errs)
+	var doc tokenDoc
+	require.NoError(t, json.Unmarshal([]byte(out), &doc))
+	e := doc.Explanations[0]
+	// demo/data/tickets_sample.txt, its deciding word at position 3
+	assert.Equal(t, "screeching", e.Tokens[3])
+	assert.Equal(t, 3, argmax(e.Attributions), "the planted urgent word carries the largest attribution")
+
+	code, out, errs = cli(t, "explain", "-demo", "tickets", "-format", "html")
+	require.Equal(t, 0, code, errs)
+	assert.True(t, strings.HasPrefix(out, "<!DOCTYPE html>"))
+	assert.Contains(t, out, ">screeching<small>")
+	assert.NotContains(t, out, "http", "self-contained: nothing fetched")
+
+	png := filepath.Join(t.TempDir(), "note.png")
+	code, _, errs = cli(t, "explain", "-demo", "tickets", "-format", "png", "-out", png)
+	require.Equal(t, 0, code, errs)
+	b, err := os.ReadFile(png)
+	require.NoError(t, err)
+	assert.Equal(t, "\x89PNG", string(b[:4]), "PNG signature (PNG specification, §5.2)")
+
+	code, _, errs = cli(t, "explain", "-format", "html")
+	assert.Equal(t, 1, code)
+	assert.Contains(t, errs, "the page shows attributions per token")
+}
