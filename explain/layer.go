@@ -112,7 +112,9 @@ func (e *Explainer) attribute(ctx context.Context, head gradattr.Model, x []floa
 	if e.layer == nil {
 		res, err = gradattr.Attribute(ctx, head, x, e.settings.Target, o)
 		if err == nil {
-			if b, ok := reportedBaseline(o); ok {
+			if res.BaselineOutputs != nil {
+				baseOut = res.BaselineOutputs
+			} else if b, ok := reportedBaseline(o); ok {
 				baseOut = forwardAt(ctx, head, x, e.shape, b)
 			}
 		}
@@ -158,7 +160,9 @@ func (e *Explainer) attribute(ctx context.Context, head gradattr.Model, x []floa
 	if err != nil {
 		return nil, nil, nil, err
 	}
-	if b, ok := reportedBaseline(lo); ok {
+	if res.BaselineOutputs != nil {
+		baseOut = res.BaselineOutputs
+	} else if b, ok := reportedBaseline(lo); ok {
 		baseOut = forwardAt(ctx, h, v, l.InputShape(), b)
 	}
 	if e.tokens {

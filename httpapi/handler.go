@@ -6,8 +6,10 @@
 //	POST /v1/predict   {"inputs": [sample, ...]}: the predict document
 //	POST /v1/explain   {"inputs", "method", "target", "steps", "rule",
 //	                   "tolerance", "baseline", "samples", "noise", "seed",
-//	                   "logits", "abs", "variant"}: the explain document;
-//	                   absent fields take explain.Defaults
+//	                   "logits", "abs", "variant", "reference_rows",
+//	                   "estimator", "coalitions", "kernel_width", "window",
+//	                   "stride", "superpixels", "compactness", "patch"}: the
+//	                   explain document; absent fields take explain.Defaults
 //	GET  /metrics      Prometheus text format
 //
 // A sample in "inputs" is an array of numbers in the model's input shape,
@@ -34,6 +36,7 @@ import (
 	"net/http"
 	"runtime"
 	"strconv"
+	"strings"
 	"sync"
 	"time"
 
@@ -594,15 +597,28 @@ type explainRequest struct {
 	Logits    *bool           `json:"logits"`
 	Abs       *bool           `json:"abs"`
 	Variant   *string         `json:"variant"`
-	Layer     *string         `json:"layer"`
+
+	ReferenceRows *int     `json:"reference_rows"`
+	Estimator     *string  `json:"estimator"`
+	Coalitions    *int     `json:"coalitions"`
+	KernelWidth   *float64 `json:"kernel_width"`
+	Window        *string  `json:"window"` // "HxW"
+	Stride        *int     `json:"stride"`
+	Superpixels   *int     `json:"superpixels"`
+	Compactness   *float64 `json:"compactness"`
+	Patch         *string  `json:"patch"` // "HxW"
+	Layer         *string  `json:"layer"`
 	// LayerBaseline is the baseline at "layer": input or zero.
-	LayerBaseline *string `json:"layer-baseline"`
+	LayerBaseline *string `json:"layer_baseline"`
 	// BaselineToken is a token model's baseline token id.
-	BaselineToken *int `json:"baseline-token"`
+	BaselineToken *int `json:"baseline_token"`
 }
 
-// fieldName names a setting as a request field: "steps".
-func fieldName(f explain.Field) string { return strconv.Quote(string(f)) }
+// fieldName names a setting as a request field, in the snake case of the
+// JSON documents: "steps", "reference_rows".
+func fieldName(f explain.Field) string {
+	return strconv.Quote(strings.ReplaceAll(string(f), "-", "_"))
+}
 
 // settingsError answers a settings error as a bad request, naming the
 // request's fields.
@@ -646,6 +662,15 @@ func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 		{explain.FieldSeed, req.Seed != nil, func() string { return strconv.FormatUint(*req.Seed, 10) }},
 		{explain.FieldAbs, req.Abs != nil, func() string { return strconv.FormatBool(*req.Abs) }},
 		{explain.FieldVariant, req.Variant != nil, func() string { return *req.Variant }},
+		{explain.FieldReferenceRows, req.ReferenceRows != nil, func() string { return strconv.Itoa(*req.ReferenceRows) }},
+		{explain.FieldEstimator, req.Estimator != nil, func() string { return *req.Estimator }},
+		{explain.FieldCoalitions, req.Coalitions != nil, func() string { return strconv.Itoa(*req.Coalitions) }},
+		{explain.FieldKernelWidth, req.KernelWidth != nil, func() string { return float(*req.KernelWidth) }},
+		{explain.FieldWindow, req.Window != nil, func() string { return *req.Window }},
+		{explain.FieldStride, req.Stride != nil, func() string { return strconv.Itoa(*req.Stride) }},
+		{explain.FieldSuperpixels, req.Superpixels != nil, func() string { return strconv.Itoa(*req.Superpixels) }},
+		{explain.FieldCompactness, req.Compactness != nil, func() string { return float(*req.Compactness) }},
+		{explain.FieldPatch, req.Patch != nil, func() string { return *req.Patch }},
 		{explain.FieldLayer, req.Layer != nil, func() string { return *req.Layer }},
 		{explain.FieldLayerBaseline, req.LayerBaseline != nil, func() string { return *req.LayerBaseline }},
 		{explain.FieldBaselineToken, req.BaselineToken != nil, func() string { return strconv.Itoa(*req.BaselineToken) }},

@@ -40,9 +40,9 @@ func TestExplainAtLayer(t *testing.T) {
 	code, _, resp := post(t, ts.URL+"/v1/explain", `{"inputs": [`+x+`], "layer": "nope"}`)
 	assert.Equal(t, 400, code)
 	assert.Contains(t, errorOf(t, resp), `"layer" "nope": the model has no such value`)
-	code, _, resp = post(t, ts.URL+"/v1/explain", `{"inputs": [`+x+`], "layer-baseline": "zero"}`)
+	code, _, resp = post(t, ts.URL+"/v1/explain", `{"inputs": [`+x+`], "layer_baseline": "zero"}`)
 	assert.Equal(t, 400, code)
-	assert.Contains(t, errorOf(t, resp), `"layer-baseline" applies with "layer"`)
+	assert.Contains(t, errorOf(t, resp), `"layer_baseline" applies with "layer"`)
 }
 
 func TestExplainTokenModel(t *testing.T) {
@@ -58,7 +58,7 @@ func TestExplainTokenModel(t *testing.T) {
 	// (its metadata), padded with [pad] (id 0).
 	ids, err := m.Vocabulary().IDs(string(s.Sample), 16)
 	require.NoError(t, err)
-	code, _, body := post(t, ts.URL+"/v1/explain", `{"inputs": [`+floatsJSON(ids)+`], "baseline-token": 0}`)
+	code, _, body := post(t, ts.URL+"/v1/explain", `{"inputs": [`+floatsJSON(ids)+`], "baseline_token": 0}`)
 	require.Equal(t, 200, code, body)
 	var doc struct {
 		Settings     map[string]any `json:"settings"`

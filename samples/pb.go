@@ -11,7 +11,7 @@ import (
 // its stored shape must fit the declared one. Batch.Tensor keeps the
 // tensor, so that it is fed to the model as it is. A tensor with no
 // elements along its first axis is read as a batch of no samples (Read
-// refuses it unless Options.Whole says the tensor is a parameter).
+// refuses it unless Options.AllowEmpty).
 func ReadPB(r io.Reader, spec Spec) (*Batch, error) {
 	t, err := onnxlite.DecodeTensor(r, onnxlite.DecodeOptions{})
 	if err != nil {

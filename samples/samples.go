@@ -229,10 +229,10 @@ type Options struct {
 	// Features are the model's feature names: a CSV file whose header
 	// names them is read by name (see ReadCSV).
 	Features []string
-	// Whole says the input is a parameter the model reads whole when it
-	// compiles (a target shape, axes), not a batch of samples: a .pb
-	// tensor for it may be empty (no axes, say).
-	Whole bool
+	// AllowEmpty accepts a .pb tensor with no elements along its first
+	// axis, for a caller that feeds the tensor as it is (an empty list of
+	// axes, a batch of none) rather than explaining its samples.
+	AllowEmpty bool
 	// Vocabulary reads a text file (.txt) of a model of token ids.
 	Vocabulary *Vocabulary
 }
@@ -261,7 +261,7 @@ func read(r io.Reader, name string, spec Spec, opt Options) (*Batch, error) {
 	switch f {
 	case PB:
 		b, err := ReadPB(r, spec)
-		if err == nil && b.Samples == 0 && !opt.Whole {
+		if err == nil && b.Samples == 0 && !opt.AllowEmpty {
 			return nil, fmt.Errorf("expected at least one sample, got a tensor of shape %s", ShapeString(b.Shape))
 		}
 		return b, err

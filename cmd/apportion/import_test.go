@@ -96,20 +96,25 @@ func TestPredictPrecisionFloat64(t *testing.T) {
 	assert.Contains(t, errs, "-precision \"float16\": expected float32 or float64")
 }
 
-// TestPredictEmptyParameterInput: an axes input given as an empty .pb
-// tensor is a parameter (reduce over every axis, or with
-// noop_with_empty_axes over none), not a batch without samples; the
-// outputs against the ONNX backend test data (Debian libonnx-testdata
-// 1.12.0). An empty data input is still refused.
-func TestPredictEmptyParameterInput(t *testing.T) {
-	for _, name := range []string{"node/test_reduce_sum_empty_axes_input_noop_random", "node/test_reduce_sum_default_axes_keepdims_random"} {
+// TestPredictEmptyTensors: predict feeds a .pb tensor as it is, empty or
+// not: an axes input with no axes (reduce over every axis, or with
+// noop_with_empty_axes over none) and data with no rows; the outputs
+// against the ONNX backend test data (Debian libonnx-testdata 1.12.0).
+// explain still wants samples.
+func TestPredictEmptyTensors(t *testing.T) {
+	for _, name := range []string{"node/test_reduce_sum_empty_axes_input_noop_random", "node/test_reduce_sum_default_axes_keepdims_random",
+		"node/test_reshape_allowzero_reordered", "node/test_split_zero_size_splits"} {
 		dir := caseDir(t, name)
 		inputs, outputs := setFiles(t, dir)
-		requireOutputs(t, predictJSON(t, "-model", filepath.Join(dir, "model.onnx"), "-input", inputs[0], "-input", inputs[1]), outputs)
+		args := []string{"-model", filepath.Join(dir, "model.onnx")}
+		for _, in := range inputs {
+			args = append(args, "-input", in)
+		}
+		requireOutputs(t, predictJSON(t, args...), outputs)
 	}
 	dir := caseDir(t, "node/test_reshape_allowzero_reordered")
 	inputs, _ := setFiles(t, dir)
-	code, _, errs := cli(t, "predict", "-model", filepath.Join(dir, "model.onnx"), "-input", inputs[0], "-input", inputs[1])
+	code, _, errs := cli(t, "explain", "-model", filepath.Join(dir, "model.onnx"), "-input", inputs[0], "-input", inputs[1])
 	assert.Equal(t, exitFail, code)
 	assert.Contains(t, errs, "expected at least one sample, got a tensor of shape [0 3 4]")
 }

@@ -74,10 +74,9 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if len(feeds) == 1 {
 		opt = m.ReadOptions(false)
 	}
-	uses := onnxlite.InputUses(m.Graph)
+	opt.AllowEmpty = true // a .pb tensor is fed as it is: empty axes, or no rows
 	for i, vi := range feeds {
 		spec := samples.SpecOf(vi)
-		opt.Whole = uses[vi.Name].CompileTime()
 		b, err := samples.ReadFile(inputs[i], spec, opt)
 		if err != nil {
 			return failure(stderr, "predict", err)
