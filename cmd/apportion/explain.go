@@ -110,7 +110,7 @@ func registerMethodFlags(fs *flag.FlagSet, baselineDefault, baselineHelp, refere
 	fs.Int("superpixels", 0, "make the feature groups about `N` SLIC superpixels of each image, for any method")
 	fs.Float64("compactness", gradattr.DefaultCompactness, "SLIC compactness `M` of -superpixels: higher, more regular segments")
 	fs.String("layer", "", "attribute to the value called `NAME` inside the model instead of its input (inspect -values lists them); grad-cam's default is the last value with spatial axes")
-	fs.String("layer-baseline", explain.LayerBaselineInput, "the baseline at -layer: input (the value computed from the input's -baseline) or zero")
+	fs.String("layer-baseline", explain.LayerBaselineInput, "the baseline at -layer: `input` (the value computed from the input's -baseline) or zero")
 	fs.String("baseline-token", "", "a model of token ids: the baseline is the embedding of token `ID` at every position (a padding token), instead of zero embeddings")
 }
 
