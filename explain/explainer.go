@@ -452,7 +452,7 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 	if e.layer != nil {
 		rep.Layer, rep.layerShape = e.layer.l.Name(), e.layer.l.InputShape()
 	}
-	rep.Tokens = e.tokens
+	rep.Tokens = e.perToken()
 	for i := 0; i < b.Samples; i++ {
 		x := b.Sample(i)
 		ex := Explanation{Index: i, Values: x}
@@ -473,7 +473,7 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 			if e.layer != nil && !e.tokens {
 				ex.LayerValues = at
 			}
-			if e.tokens {
+			if rep.Tokens {
 				ex.Tokens = e.model.TokenNames(x)
 			}
 		}

@@ -125,3 +125,15 @@ func (m *Model) TokenNames(ids []float64) []string {
 	}
 	return out
 }
+
+// perToken reports whether the attributions are one per token: a token
+// model explained through its embedding, or Grad-CAM on a token model
+// whose map has one place per token.
+func (e *Explainer) perToken() bool {
+	if e.tokens {
+		return true
+	}
+	t, ok := e.model.Tokens()
+	return ok && t.Input == e.input.Name && e.settings.Method == gradattr.MethodGradCAM &&
+		len(e.attrShape) == 1 && len(e.shape) == 1 && e.attrShape[0] == e.shape[0]
+}

@@ -166,3 +166,20 @@ func TestExplainTicketsDemoFormats(t *testing.T) {
 	assert.Equal(t, 1, code)
 	assert.Contains(t, errs, "the page shows attributions per token")
 }
+
+func TestExplainTicketsGradCAM(t *testing.T) {
+	code, out, errs := cli(t, "explain", "-demo", "tickets", "-method", "grad-cam", "-format", "json")
+	require.Equal(t, 0, code, errs)
+	var doc tokenDoc
+	require.NoError(t, json.Unmarshal([]byte(out), &doc))
+	e := doc.Explanations[0]
+	assert.Equal(t, "conv.relu", doc.Settings["layer"], "the last value with a channel axis and places")
+	require.Len(t, e.Attributions, 16, "one place per token")
+	require.Len(t, e.Tokens, 16)
+	// The convolution's kernel of 3 (demo/data/README.md) lets place p see
+	// tokens p − 1 to p + 1: the planted word, at 3, is in the receptive
+	// field of the map's largest place.
+	top := argmax(e.Attributions)
+	assert.LessOrEqual(t, top-1, 3)
+	assert.GreaterOrEqual(t, top+1, 3)
+}
