@@ -1,4 +1,4 @@
-// Package demo embeds apportion's two invented demo scenarios: the models,
+// Package demo embeds apportion's three invented demo scenarios: the models,
 // one sample each to explain, reference sets for baselines and held-out test
 // sets. All of it is made up; data/README.md says how each file was made and
 // `go run ./examples/train -out demo/data` regenerates it.
@@ -10,6 +10,9 @@
 //     only vibration_rms, bearing_temp and hours_since_service.
 //   - welds: a 1×32×32 grey patch of a weld seam → clean or defective
 //     (a crack or porosity), with ground-truth defect masks.
+//   - tickets: a pump technician's maintenance note of up to 16 words →
+//     urgent, routine or informational, decided by one planted word; the
+//     model reads token ids and carries its vocabulary in its metadata.
 package demo
 
 import (
@@ -42,16 +45,16 @@ type Scenario struct {
 	ModelFile string
 
 	// Sample is one input to explain, as JSON: a flat list of 8 numbers for
-	// pumps, a nested [1][32][32] list for welds. SampleClass is its true
-	// class.
+	// pumps, a nested [1][32][32] list for welds; for tickets a text file,
+	// one note per line. SampleClass is its true class.
 	Sample      []byte
 	SampleFile  string
 	SampleClass string
 
 	// Reference is the reference population for mean baselines and expected
 	// gradients: pumps_reference.csv (200 normal rows with a header of the
-	// feature names) or welds_reference.npy (32 clean patches, float32
-	// [32,1,32,32]).
+	// feature names), welds_reference.npy (32 clean patches, float32
+	// [32,1,32,32]) or tickets_reference.txt (40 routine notes).
 	Reference     []byte
 	ReferenceFile string
 
@@ -59,7 +62,9 @@ type Scenario struct {
 	// pumps_test.csv (500 rows; the 8 features, pump_line, label). welds:
 	// welds_test_patches.npy (float32 [200,1,32,32]), welds_test_masks.npy
 	// (uint8 [200,32,32]) and welds_test_labels.npy (int64 [200,2]: class,
-	// defect kind).
+	// defect kind). tickets: tickets_test.txt (600 notes, one per line) and
+	// tickets_test_truth.npy (int64 [600,2]: class, position of the planted
+	// deciding word).
 	Test []string
 }
 
@@ -82,6 +87,15 @@ var scenarios = map[string]Scenario{
 		SampleClass:   "defective",
 		ReferenceFile: "welds_reference.npy",
 		Test:          []string{"welds_test_patches.npy", "welds_test_masks.npy", "welds_test_labels.npy"},
+	},
+	"tickets": {
+		Name:          "tickets",
+		Description:   "Invented triage of pump technicians' maintenance notes: a note of up to 16 words classed urgent, routine or informational.",
+		ModelFile:     "tickets.onnx",
+		SampleFile:    "tickets_sample.txt",
+		SampleClass:   "urgent",
+		ReferenceFile: "tickets_reference.txt",
+		Test:          []string{"tickets_test.txt", "tickets_test_truth.npy"},
 	},
 }
 

@@ -23,7 +23,7 @@ import (
 )
 
 func TestNamesAndGet(t *testing.T) {
-	assert.Equal(t, []string{"pumps", "welds"}, Names())
+	assert.Equal(t, []string{"pumps", "tickets", "welds"}, Names())
 
 	s, err := Get("")
 	require.NoError(t, err)
@@ -33,7 +33,7 @@ func TestNamesAndGet(t *testing.T) {
 	_, err = Get("turbines")
 	require.ErrorIs(t, err, ErrUnknown)
 	assert.Contains(t, err.Error(), `"turbines"`)
-	assert.Contains(t, err.Error(), "pumps, welds")
+	assert.Contains(t, err.Error(), "pumps, tickets, welds")
 
 	// Every file a scenario names is embedded, and nothing else is but the README.
 	named := map[string]bool{"README.md": true}
@@ -85,21 +85,27 @@ func TestFileSizes(t *testing.T) {
 // wantModel is what the ONNX header and signature of a demo model must be.
 type wantModel struct {
 	input, output string
-	inShape       []int64 // after the symbolic batch dimension
+	elem          onnxlite.DataType // of the input
+	inShape       []int64           // after the symbolic batch dimension
 	outClasses    []string
 	metaKeys      []string
 }
 
 var wantModels = map[string]wantModel{
 	"pumps": {
-		input: "sensors", output: "condition", inShape: []int64{8},
+		input: "sensors", output: "condition", inShape: []int64{8}, elem: onnxlite.Float,
 		outClasses: []string{"normal", "degraded", "failing"},
 		metaKeys:   []string{"feature_names", "feature_units", "class_names", "scenario", "description"},
 	},
 	"welds": {
-		input: "patch", output: "verdict", inShape: []int64{1, 32, 32},
+		input: "patch", output: "verdict", inShape: []int64{1, 32, 32}, elem: onnxlite.Float,
 		outClasses: []string{"clean", "defective"},
 		metaKeys:   []string{"class_names", "scenario", "description"},
+	},
+	"tickets": {
+		input: "note", output: "triage", inShape: []int64{16}, elem: onnxlite.Int64,
+		outClasses: []string{"urgent", "routine", "informational"},
+		metaKeys:   []string{"class_names", "vocabulary", "scenario", "description"},
 	},
 }
 
@@ -127,7 +133,7 @@ func TestModelsDecode(t *testing.T) {
 			in := m.Graph.Inputs[0]
 			assert.Equal(t, want.input, in.Name)
 			require.NotNil(t, in.Type)
-			assert.Equal(t, onnxlite.Float, in.Type.Elem)
+			assert.Equal(t, want.elem, in.Type.Elem)
 			require.Len(t, in.Type.Shape, 1+len(want.inShape))
 			assert.Equal(t, "batch", in.Type.Shape[0].Param)
 			assert.False(t, in.Type.Shape[0].HasValue)
@@ -582,7 +588,8 @@ func TestONNXChecker(t *testing.T) {
 import sys, onnx, numpy as np
 d = sys.argv[1]
 for name, inp, shape, out in [("pumps", "sensors", ["batch", 8], ["batch", 3]),
-                              ("welds", "patch", ["batch", 1, 32, 32], ["batch", 2])]:
+                              ("welds", "patch", ["batch", 1, 32, 32], ["batch", 2]),
+                              ("tickets", "note", ["batch", 16], ["batch", 3])]:
     m = onnx.load(d + "/" + name + ".onnx")
     onnx.checker.check_model(m, full_check=True)
     g = onnx.shape_inference.infer_shapes(m, strict_mode=True).graph
@@ -596,10 +603,12 @@ assert p.dtype == np.float32 and p.shape == (200, 1, 32, 32)
 assert k.dtype == np.uint8 and k.shape == (200, 32, 32)
 assert l.dtype == np.int64 and l.shape == (200, 2)
 assert r.dtype == np.float32 and r.shape == (32, 1, 32, 32)
+t = np.load(d + "/tickets_test_truth.npy")
+assert t.dtype == np.int64 and t.shape == (600, 2)
 print("npy ok", int(l[:, 0].sum()))
 `
 	out, err := exec.Command(onnxPython, "-c", script, dir).CombinedOutput()
 	require.NoError(t, err, "%s", out)
 	lines := strings.Fields(string(out))
-	assert.Equal(t, []string{"pumps", "ok", "8", "13", "welds", "ok", "8", "13", "npy", "ok"}, lines[:10], fmt.Sprint(lines))
+	assert.Equal(t, []string{"pumps", "ok", "8", "13", "welds", "ok", "8", "13", "tickets", "ok", "8", "13", "npy", "ok"}, lines[:14], fmt.Sprint(lines))
 }

@@ -18,5 +18,6 @@ func ExampleGet() {
 	}
 	// Output:
 	// pumps: pumps.onnx, sample pumps_sample.json (failing), reference pumps_reference.csv
+	// tickets: tickets.onnx, sample tickets_sample.txt (urgent), reference tickets_reference.txt
 	// welds: welds.onnx, sample welds_sample.json (defective), reference welds_reference.npy
 }

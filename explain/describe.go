@@ -30,6 +30,36 @@ type Description struct {
 	// Explainable is compile's verdict: "yes", or "no: " and the reason,
 	// or "not checked: " and why it needs samples to tell.
 	Explainable string `json:"explainable"`
+	// Values is present when asked for (Model.DescribeValues): the
+	// values the model computes, the names a layer is chosen by.
+	Values []Computed `json:"values,omitempty"`
+}
+
+// Computed is one value a model computes from its input: its name, the
+// operator that produces it, its element type and its per-sample shape.
+type Computed struct {
+	Name  string `json:"name"`
+	Op    string `json:"op"`
+	Type  string `json:"type"`
+	Shape []int  `json:"shape"`
+}
+
+// DescribeValues adds to d the values the compiled model computes from
+// its input (see Model.Values).
+func (m *Model) DescribeValues(d *Description) error {
+	vals, err := m.Values()
+	if err != nil {
+		return err
+	}
+	d.Values = []Computed{}
+	for _, v := range vals {
+		shape := v.Shape
+		if shape == nil {
+			shape = []int{}
+		}
+		d.Values = append(d.Values, Computed{Name: v.Name, Op: v.Op, Type: typeName(&onnxlite.Type{Kind: onnxlite.KindTensor, Elem: v.DType}), Shape: shape})
+	}
+	return nil
 }
 
 // Value is one graph input or output of a Description. Use, for inputs,

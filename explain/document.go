@@ -70,11 +70,13 @@ type ModelRecord struct {
 
 // ExplanationDocument is one sample's record in a Document.
 type ExplanationDocument struct {
-	Index           int                    `json:"index"`
-	Target          *int                   `json:"target"`
-	Outputs         Numbers                `json:"outputs"`
-	Attributions    Numbers                `json:"attributions"`
-	Shape           []int                  `json:"shape"`
+	Index        int     `json:"index"`
+	Target       *int    `json:"target"`
+	Outputs      Numbers `json:"outputs"`
+	Attributions Numbers `json:"attributions"`
+	Shape        []int   `json:"shape"`
+	// Tokens names the sample's tokens, for a model of token ids.
+	Tokens          []string               `json:"tokens,omitempty"`
 	BaselineOutputs Numbers                `json:"baseline_outputs"`
 	Completeness    *gradattr.Completeness `json:"completeness"`
 	// Points is the number of gradient evaluations spent.
@@ -134,6 +136,7 @@ func (r *Report) explanationDocument(e Explanation) ExplanationDocument {
 	if len(res.Shape) > 0 {
 		j.Shape = res.Shape
 	}
+	j.Tokens = e.Tokens
 	if e.BaselineOutputs != nil {
 		j.BaselineOutputs = Numbers{Values: e.BaselineOutputs, Bits: 64}
 	}

@@ -23,6 +23,14 @@ type Explainer struct {
 	output   string
 	shape    []int // of one sample
 	size     int
+	// layer is set when the explanation is at an intermediate value
+	// (Settings.Layer, and Grad-CAM); attrShape is the shape of the
+	// attributions, the input's otherwise.
+	layer     *layerState
+	attrShape []int
+	// tokens is set when the layer is a token model's embedding, whose
+	// attributions are summed per token.
+	tokens bool
 	// held are the model's other runtime inputs (Hold): one batch per
 	// input of Model.Inputs, nil at the attributed one.
 	held []*samples.Batch
@@ -47,6 +55,10 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 	}
 	e := &Explainer{model: m, head: head, settings: s, input: input, output: output, shape: head.InputShape()}
 	e.size = samples.Product(e.shape)
+	e.attrShape = e.shape
+	if err := e.atLayer(); err != nil {
+		return nil, err
+	}
 	if n := head.OutputSize(); s.Target >= n {
 		return nil, fieldError(FieldTarget, fmt.Sprintf(" must be top or an index from 0 to %d (output %q has %d values), got %d", n-1, output, n, s.Target))
 	}
@@ -73,6 +85,9 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 	}
 	if s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.Kind == gradattr.BaselineBlur && len(e.shape) < 2 {
 		return nil, fieldError(FieldBaseline, " blur needs samples with at least two axes (height, width), got shape ", samples.ShapeString(e.shape))
+	}
+	if e.layer != nil && (s.Groups != nil || s.Patch != [2]int{} || s.Superpixels > 0) {
+		return nil, fieldError(FieldGroups, " sum features of the input; they do not apply at ", FieldLayer, " ", e.layer.l.Name())
 	}
 	if err := e.groups(); err != nil {
 		return nil, err
@@ -194,6 +209,18 @@ func (e *Explainer) record(o gradattr.Options, name func(*Dataset) string) map[s
 	if s.Reference != nil && s.NeedsReference() {
 		rec["reference"] = name(s.Reference)
 	}
+	switch {
+	case e.tokens:
+		rec["layer"] = e.layer.l.Name()
+		if s.Method.Reads(gradattr.ParamBaseline) && s.BaselineToken != nil {
+			rec["baseline_token"] = *s.BaselineToken
+		}
+	case e.layer != nil:
+		rec["layer"] = e.layer.l.Name()
+		if s.Method.Reads(gradattr.ParamBaseline) {
+			rec["layer_baseline"] = s.layerBaseline()
+		}
+	}
 	if s.Patch != [2]int{} {
 		rec["patch"] = fmt.Sprintf("%dx%d", s.Patch[0], s.Patch[1])
 	}
@@ -280,7 +307,8 @@ func (e *Explainer) Attribute(ctx context.Context, x []float64) (*gradattr.Resul
 	if err != nil {
 		return nil, err
 	}
-	return gradattr.Attribute(ctx, e.head, x, e.settings.Target, o)
+	res, _, _, err := e.attribute(ctx, e.head, x, o)
+	return res, err
 }
 
 // Work is the most samples explaining b sends through the model: per
@@ -319,6 +347,15 @@ type Report struct {
 	Options  gradattr.Options
 	// Batch is the samples explained.
 	Batch *samples.Batch
+	// Layer names the value the attributions are of, "" for the input;
+	// Shape is their per-sample shape.
+	Layer string
+	Shape []int
+	// Tokens is set when the attributions are per token of a model of
+	// token ids (see Model.Tokens): one per position of the sample.
+	Tokens bool
+
+	layerShape []int
 	// Explanations holds one entry per sample, in order.
 	Explanations []Explanation
 
@@ -332,6 +369,13 @@ type Explanation struct {
 	Index int
 	// Values is the sample.
 	Values []float64
+	// Tokens names the sample's tokens, one per position, when the report
+	// is per token (Report.Tokens).
+	Tokens []string
+	// LayerValues is the value at Settings.Layer for the sample, V(x),
+	// when the explanation is at a layer (for Grad-CAM, the activation A);
+	// nil otherwise.
+	LayerValues []float64
 	// Result is the attribution; nil when Err is set.
 	Result *gradattr.Result
 	// BaselineOutputs are the model's outputs at the baseline: the
@@ -350,6 +394,41 @@ type Explanation struct {
 	Err error
 }
 
+// FeatureValues returns the values e's attributions are of, one per
+// attribution: the sample, or its value at the layer; nil for Grad-CAM,
+// whose map has one entry per place of the layer, not per value.
+func (r *Report) FeatureValues(e Explanation) []float64 {
+	switch {
+	case r.Layer == "" || r.Tokens:
+		return e.Values
+	case r.Settings.Method == gradattr.MethodGradCAM:
+		return nil
+	}
+	return e.LayerValues
+}
+
+// SampleLabels names the features of explanation e: one per token, "i
+// token", for a report per token; Labels otherwise.
+func (r *Report) SampleLabels(e Explanation) []string {
+	if !r.Tokens {
+		return r.Labels()
+	}
+	out := make([]string, len(e.Tokens))
+	for i, t := range e.Tokens {
+		out[i] = fmt.Sprintf("%d %s", i, t)
+	}
+	return out
+}
+
+// LayerShape returns the per-sample shape of the value at Layer; nil
+// without a layer.
+func (r *Report) LayerShape() []int {
+	if r.Layer == "" {
+		return nil
+	}
+	return r.layerShape
+}
+
 // Failed returns the number of samples that could not be explained.
 func (r *Report) Failed() int {
 	n := 0
@@ -365,6 +444,10 @@ func (r *Report) Failed() int {
 // by the model's names, else by the batch's CSV header, else by index.
 func (r *Report) Labels() []string {
 	meta := r.Model.Meta
+	if r.Layer != "" {
+		meta.Features = nil
+		return meta.Labels(r.Shape)
+	}
 	if meta.Features == nil {
 		meta.Features = r.Batch.Features
 	}
@@ -390,7 +473,11 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 		}
 	}
 	rep := &Report{Model: e.model, Input: e.input.Name, Output: e.output, Settings: e.settings, Options: o, Batch: b,
-		record: e.record(o, byName)}
+		Shape: e.attrShape, record: e.record(o, byName)}
+	if e.layer != nil {
+		rep.Layer, rep.layerShape = e.layer.l.Name(), e.layer.l.InputShape()
+	}
+	rep.Tokens = e.perToken()
 	for i := 0; i < b.Samples; i++ {
 		x := b.Sample(i)
 		ex := Explanation{Index: b.First + i, Values: x}
@@ -403,15 +490,19 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 		case err != nil:
 			ex.Err = err
 		default:
-			ex.Result, ex.Err = gradattr.Attribute(ctx, head, x, e.settings.Target, o)
+			var at []float64
+			ex.Result, at, ex.BaselineOutputs, ex.Err = e.attribute(ctx, head, x, o)
+			if ex.Err == nil {
+				ex.Warnings = e.warnings(at, ex.Result)
+			}
+			if e.layer != nil && !e.tokens {
+				ex.LayerValues = at
+			}
+			if rep.Tokens {
+				ex.Tokens = e.model.TokenNames(x)
+			}
 		}
 		if ex.Err == nil {
-			if ex.Result.BaselineOutputs != nil {
-				ex.BaselineOutputs = ex.Result.BaselineOutputs
-			} else if b, ok := reportedBaseline(o); ok {
-				ex.BaselineOutputs = e.baselineOutputs(ctx, head, x, b)
-			}
-			ex.Warnings = e.warnings(x, ex.Result)
 			ex.Grouped = ex.Result.Groups
 		}
 		rep.Explanations = append(rep.Explanations, ex)
@@ -433,22 +524,4 @@ func reportedBaseline(o gradattr.Options) (gradattr.Baseline, bool) {
 		return o.Baselines[0], true
 	}
 	return gradattr.Baseline{}, false
-}
-
-// baselineOutputs evaluates the model at the baseline of sample x; nil when
-// that fails (the attribution itself has succeeded, so the sample is kept).
-func (e *Explainer) baselineOutputs(ctx context.Context, head gradattr.Model, x []float64, b gradattr.Baseline) []float64 {
-	var out []float64
-	err := guard(func() error {
-		xb, err := b.Build(x, e.shape)
-		if err != nil {
-			return err
-		}
-		out, err = head.Forward(ctx, xb, 1)
-		return err
-	})
-	if err != nil {
-		return nil
-	}
-	return out
 }

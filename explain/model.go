@@ -128,6 +128,13 @@ func (m *Model) Input() (samples.Spec, error) {
 	if m.InputName != "" {
 		return samples.Spec{}, fmt.Errorf("the model has no input %q (inputs: %s)", m.InputName, strings.Join(names, ", "))
 	}
+	if t, ok := m.Tokens(); ok {
+		for _, f := range feeds {
+			if f.Name == t.Input {
+				return samples.SpecOf(f), nil
+			}
+		}
+	}
 	return samples.Spec{}, fmt.Errorf("the model has no floating-point input to attribute to (inputs: %s): token ids and other integers have no gradient", strings.Join(names, ", "))
 }
 
@@ -159,7 +166,7 @@ func (m *Model) Output(name string) (string, error) {
 // ReadOptions are the options samples for this model are read with: CSV
 // columns by the model's feature names, bad samples kept with keepBad.
 func (m *Model) ReadOptions(keepBad bool) samples.Options {
-	return samples.Options{KeepBad: keepBad, Features: m.Meta.Features}
+	return samples.Options{KeepBad: keepBad, Features: m.Meta.Features, Vocabulary: m.Vocabulary()}
 }
 
 // CompileOptions tune Compile. The zero value compiles for the float32
@@ -240,7 +247,8 @@ func (m *Model) producer(output string) string {
 }
 
 // Head returns the output called output (the first for "") as a function
-// of the model's runtime input, or with logits the input of its final
+// of the model's runtime input (of a token model, one that runs the model
+// on token ids but has no gradient: see Tokens), or with logits the input of its final
 // Softmax, LogSoftmax or Sigmoid. An output without one refuses logits
 // with a *FieldError.
 func (m *Model) Head(output string, logits bool) (gradattr.Model, error) {
@@ -263,6 +271,13 @@ func (m *Model) Head(output string, logits bool) (gradattr.Model, error) {
 			}
 			return nil, fieldError(FieldLogits, fmt.Sprintf(" explains the input of a final Softmax, LogSoftmax or Sigmoid, and output %q comes from %s", name, op))
 		}
+	}
+	if t, ok := m.Tokens(); ok && t.Input == spec.Name {
+		l, err := m.layer(t.Embedding, output, logits)
+		if err != nil {
+			return nil, err
+		}
+		return tokenHead{l}, nil
 	}
 	var h *nn.Head
 	err = guard(func() (err error) {

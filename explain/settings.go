@@ -44,6 +44,12 @@ const (
 	FieldSuperpixels   Field = "superpixels"
 	FieldCompactness   Field = "compactness"
 	FieldPatch         Field = "patch"
+	FieldLayer         Field = "layer"
+	// FieldLayerBaseline is how the baseline at a layer is formed.
+	FieldLayerBaseline Field = "layer-baseline"
+	// FieldBaselineToken is the token whose embedding is a token model's
+	// baseline.
+	FieldBaselineToken Field = "baseline-token"
 )
 
 // methodFields are the method parameters, in the order Check reports them.
@@ -242,6 +248,19 @@ type Settings struct {
 	// off play them as players, the others report their attributions
 	// summed per group too.
 	Groups []gradattr.Group
+	// Layer names a value of the model (see Model.Values) to attribute
+	// to instead of the input: the attributions have its shape, and
+	// completeness is judged there. "" means the input (for Grad-CAM,
+	// Model.CAMLayer).
+	Layer string
+	// LayerBaseline is the baseline at Layer: LayerBaselineInput (the
+	// default) is the value computed from the input's baseline,
+	// LayerBaselineZero the value 0.
+	LayerBaseline string
+	// BaselineToken is, for a token model (Model.Tokens), the id whose
+	// embedding at every position is the baseline (a padding token); nil,
+	// the default, is zero vectors.
+	BaselineToken *int
 	// Patch, when set, makes the groups a grid of patches of [height,
 	// width] pixels (gradattr.GridGroups).
 	Patch [2]int
@@ -376,6 +395,22 @@ func (s *Settings) set(f Field, text string) error {
 			return fieldError(f, " must be a non-negative integer, got ", strconv.Quote(text))
 		}
 		s.Seed = v
+	case FieldLayer:
+		if text == "" {
+			return fieldError(f, " must name a value of the model (inspect -values lists them), got \"\"")
+		}
+		s.Layer = text
+	case FieldBaselineToken:
+		n, err := strconv.Atoi(text)
+		if err != nil || n < 0 {
+			return fieldError(f, " must be a token id, a whole number from 0, got ", strconv.Quote(text))
+		}
+		s.BaselineToken = &n
+	case FieldLayerBaseline:
+		if text != LayerBaselineInput && text != LayerBaselineZero {
+			return fieldError(f, " must be input or zero, got ", strconv.Quote(text))
+		}
+		s.LayerBaseline = text
 	case FieldVariant:
 		v, err := gradattr.ParseVariant(text)
 		if err != nil {
@@ -462,6 +497,9 @@ func (s *Settings) Check() error {
 			}
 		}
 		return fieldError(f, " applies to ", FieldMethod, " ", strings.Join(readers, " and "), " only, not ", s.Method)
+	}
+	if s.given[FieldLayerBaseline] && (s.Layer == "" || !s.Method.Reads(gradattr.ParamBaseline)) {
+		return fieldError(FieldLayerBaseline, " applies with ", FieldLayer, " to a method with a baseline")
 	}
 	if min := s.Rule.MinPoints(); s.Method.Reads(gradattr.ParamSteps) && s.Steps > 0 && s.Steps < min {
 		return fieldError(FieldSteps, fmt.Sprintf(" must be auto or at least %d with the %s rule, got %d", min, s.Rule, s.Steps))

@@ -31,6 +31,7 @@ func (e *Explainer) SummaryOptions(features []string, groupBy string, bootstrap 
 // (see modelmeta.Meta.Labels).
 func (e *Explainer) Features(columns []string) []string {
 	switch {
+	case e.layer != nil:
 	case len(e.model.Meta.Features) == e.size:
 		return append([]string(nil), e.model.Meta.Features...)
 	case len(columns) == e.size:
@@ -38,7 +39,7 @@ func (e *Explainer) Features(columns []string) []string {
 	}
 	meta := e.model.Meta
 	meta.Features = nil
-	return meta.Labels(e.shape)
+	return meta.Labels(e.attrShape)
 }
 
 // SummarizeOptions tune Summarize.
@@ -104,7 +105,7 @@ func (e *Explainer) Summarize(ctx context.Context, rows []samples.Row, s *gradat
 		go func() {
 			defer wg.Done()
 			for i := range jobs {
-				res, err := gradattr.Attribute(ctx, e.head, rows[i].Values, e.settings.Target, o)
+				res, _, _, err := e.attribute(ctx, e.head, rows[i].Values, o)
 				results <- outcome{i, res, err}
 			}
 		}()

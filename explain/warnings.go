@@ -4,6 +4,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"math"
+	"slices"
 	"strconv"
 	"strings"
 
@@ -91,6 +92,14 @@ func (e *Explainer) warnings(x []float64, r *gradattr.Result) []Warning {
 	}
 	atSample := s.Method == gradattr.MethodGradient || s.Method == gradattr.MethodGradientTimesInput || s.Method == gradattr.MethodSmoothGrad
 	out := fmt.Sprintf("output %s[%d]", e.output, r.Target)
+	if s.Method == gradattr.MethodGradCAM {
+		if slices.ContainsFunc(r.Attributions, func(a float64) bool { return a != 0 }) {
+			return nil
+		}
+		return []Warning{{Code: WarnNegligible, Message: fmt.Sprintf(
+			"the map is 0 at every place: Σ_c α_c·A_c is at most 0 everywhere in %s, so by the gradient-weighted channels no place argues for %s (Grad-CAM keeps only positive evidence)",
+			e.layer.l.Name(), out)}}
+	}
 	switch p := r.Output; {
 	case probability && atSample && (p <= SaturationMargin || p >= 1-SaturationMargin):
 		end := "0"

@@ -22,6 +22,7 @@ const (
 	MethodShapley             Method = "shapley"
 	MethodSurrogate           Method = "surrogate"
 	MethodOcclusion           Method = "occlusion"
+	MethodGradCAM             Method = "grad-cam"
 )
 
 // Param names a setting that some methods read, as the command line's
@@ -279,6 +280,18 @@ var methodSpecs = []methodSpec{
 			}
 			return Cost{ForwardPasses: 1 + b + regions*b}
 		},
+	},
+	{
+		// Attributes to a convolutional layer's channels and places: the
+		// model's input is the layer's activation.
+		method: MethodGradCAM, title: "Grad-CAM",
+		run: func(ctx context.Context, m Model, a []float64, target int, o Options) (*Result, error) {
+			if o.Groups != nil || o.Superpixels > 0 {
+				return nil, fmt.Errorf("%w: Grad-CAM's map has one value per place of the layer, not one per feature: groups do not apply", ErrOptions)
+			}
+			return GradCAM(ctx, m, a, target)
+		},
+		cost: func(Options, []int, int) Cost { return Cost{GradientEvals: 1, ForwardPasses: 1} },
 	},
 }
 

@@ -19,6 +19,7 @@ func TestParseMethod(t *testing.T) {
 		"integrated-gradients": MethodIntegratedGradients, "ig": MethodIntegratedGradients,
 		"expected-gradients": MethodExpectedGradients, "expected-grad": MethodExpectedGradients,
 		"shapley": MethodShapley, "surrogate": MethodSurrogate, "occlusion": MethodOcclusion,
+		"grad-cam": MethodGradCAM,
 	} {
 		got, err := ParseMethod(name)
 		require.NoError(t, err, name)
@@ -32,7 +33,7 @@ func TestParseMethod(t *testing.T) {
 		assert.ErrorIs(t, err, ErrOptions, "%q", bad)
 		assert.ErrorContains(t, err, "integrated-gradients (ig)")
 	}
-	assert.Len(t, Methods(), 8)
+	assert.Len(t, Methods(), 9)
 	assert.Equal(t, "ig", MethodIntegratedGradients.Alias())
 	assert.Equal(t, "smoothgrad", MethodSmoothGrad.Alias(), "a short name is its own alias")
 }
@@ -76,6 +77,10 @@ func TestOptionsSettingsMatchResults(t *testing.T) {
 	f := linear([]float64{1, -1}, 0)
 	x := []float64{0.5, 2}
 	for _, m := range Methods() {
+		f.Shape = []int{2}
+		if m == MethodGradCAM {
+			f.Shape = []int{1, 2} // one channel of two places
+		}
 		o := m.Defaults()
 		if m.Reads(ParamReference) {
 			o.Reference = [][]float64{{0, 0}, {1, 1}}
@@ -126,6 +131,11 @@ func TestAttributeGroups(t *testing.T) {
 	ref := [][]float64{{0, 0, 0, 0}}
 	for _, m := range Methods() {
 		o := Options{Method: m, Groups: groups, Reference: ref, Ridge: 1e-14, Points: 2}
+		if m == MethodGradCAM {
+			_, err := Attribute(ctx, f, x, 0, o)
+			assert.ErrorIs(t, err, ErrOptions, "a map per place, not per feature")
+			continue
+		}
 		r, err := Attribute(ctx, f, x, 0, o)
 		require.NoError(t, err, m)
 		require.NotNil(t, r.Groups, m)

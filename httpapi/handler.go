@@ -802,6 +802,11 @@ type explainRequest struct {
 	Superpixels   *int     `json:"superpixels"`
 	Compactness   *float64 `json:"compactness"`
 	Patch         *string  `json:"patch"` // "HxW"
+	Layer         *string  `json:"layer"`
+	// LayerBaseline is the baseline at "layer": input or zero.
+	LayerBaseline *string `json:"layer_baseline"`
+	// BaselineToken is a token model's baseline token id.
+	BaselineToken *int `json:"baseline_token"`
 }
 
 // fieldName names a setting as a request field, in the snake case of the
@@ -861,6 +866,9 @@ func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 		{explain.FieldSuperpixels, req.Superpixels != nil, func() string { return strconv.Itoa(*req.Superpixels) }},
 		{explain.FieldCompactness, req.Compactness != nil, func() string { return float(*req.Compactness) }},
 		{explain.FieldPatch, req.Patch != nil, func() string { return *req.Patch }},
+		{explain.FieldLayer, req.Layer != nil, func() string { return *req.Layer }},
+		{explain.FieldLayerBaseline, req.LayerBaseline != nil, func() string { return *req.LayerBaseline }},
+		{explain.FieldBaselineToken, req.BaselineToken != nil, func() string { return strconv.Itoa(*req.BaselineToken) }},
 	}
 	for _, fl := range fields {
 		if !fl.given {

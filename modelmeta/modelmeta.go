@@ -5,6 +5,7 @@
 //	feature_names  ["bearing_temp", "vibration_rms", ...]  one per input value
 //	feature_units  ["°C", "mm/s", ...]                      one per input value
 //	class_names    ["normal", "degraded", "failing"]        one per output value
+//	vocabulary     ["[pad]", "[unk]", "leaking", ...]       one per token id, from 0
 //
 // Write stores each list as a JSON array of strings. Read accepts a JSON
 // array or a comma-separated list, and "classes" for class_names.
@@ -24,6 +25,7 @@ const (
 	KeyFeatureNames = "feature_names"
 	KeyFeatureUnits = "feature_units"
 	KeyClassNames   = "class_names"
+	KeyVocabulary   = "vocabulary"
 	// keyClasses is read in place of class_names when that is absent.
 	keyClasses = "classes"
 )
@@ -37,6 +39,9 @@ type Meta struct {
 	Units []string
 	// Classes names the values of one output sample.
 	Classes []string
+	// Vocabulary names the token ids of a model whose input holds them:
+	// id i is Vocabulary[i].
+	Vocabulary []string
 }
 
 // Read returns the names in m's metadata_props.
@@ -50,9 +55,10 @@ func Read(m *onnxlite.Model) Meta {
 // FromProps reads the names from metadata_props key/value pairs.
 func FromProps(md map[string]string) Meta {
 	return Meta{
-		Features: list(md, KeyFeatureNames),
-		Units:    list(md, KeyFeatureUnits),
-		Classes:  list(md, KeyClassNames, keyClasses),
+		Features:   list(md, KeyFeatureNames),
+		Units:      list(md, KeyFeatureUnits),
+		Classes:    list(md, KeyClassNames, keyClasses),
+		Vocabulary: list(md, KeyVocabulary),
 	}
 }
 
@@ -117,7 +123,7 @@ func Write(m *onnxlite.Model, meta Meta) error {
 	if m.Metadata == nil {
 		m.Metadata = map[string]string{}
 	}
-	for key, names := range map[string][]string{KeyFeatureNames: meta.Features, KeyFeatureUnits: meta.Units, KeyClassNames: meta.Classes} {
+	for key, names := range map[string][]string{KeyFeatureNames: meta.Features, KeyFeatureUnits: meta.Units, KeyClassNames: meta.Classes, KeyVocabulary: meta.Vocabulary} {
 		if names != nil {
 			b, _ := json.Marshal(names) // a []string always marshals
 			m.Metadata[key] = string(b)

@@ -1,6 +1,8 @@
 package nn
 
 import (
+	"slices"
+
 	G "gorgonia.org/gorgonia"
 
 	"github.com/apportion/apportion/onnxlite"
@@ -18,18 +20,16 @@ import (
 var fuseReluOff bool
 
 // fusedRelu returns the Relu node that alone reads the first output of n,
-// or nil when that output has other readers, is a graph output, or fusion
-// is off. Readers are counted over every node left after folding, so a
+// or nil when that output has other readers, is a graph output or a value
+// the program returns, or fusion is off. Readers are counted over every node left after folding, so a
 // reader that a request does not need still blocks the fusion.
 func (b *builder) fusedRelu(n *onnxlite.Node) *onnxlite.Node {
 	if fuseReluOff || len(n.Outputs) == 0 || n.Outputs[0] == "" {
 		return nil
 	}
 	out := n.Outputs[0]
-	for _, o := range b.st.Outputs {
-		if o == out {
-			return nil
-		}
+	if slices.Contains(b.st.Outputs, out) || slices.Contains(b.requested, out) {
+		return nil
 	}
 	var relu *onnxlite.Node
 	for _, m := range b.st.Nodes {

@@ -98,6 +98,7 @@ func (p *program) build() (m *machine, err error) {
 		dt = tensor.Float64
 	}
 	b := newBuilder(p.static, dt, p.nw.model)
+	b.requested = p.outNames
 	m = &machine{g: b.g, dt: dt}
 	for i, name := range p.static.Inputs {
 		shape := p.inShapes[i]

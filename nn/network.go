@@ -158,6 +158,7 @@ type Network struct {
 	// outTypes are the element types of the graph outputs, known once a
 	// program of them is compiled.
 	outTypes []onnxlite.DataType
+	layers   map[string]*Layer // by value and selection
 }
 
 // Compile validates m and prepares it for running. Programs are compiled

@@ -27,6 +27,9 @@ type builder struct {
 	// fused holds the Relu nodes already applied by the Conv or Gemm
 	// before them (fuse_relu.go).
 	fused map[*onnxlite.Node]bool
+	// requested are the values the program returns, which a fusion must
+	// not hide.
+	requested []string
 }
 
 func newBuilder(st *onnxlite.Static, dt tensor.Dtype, m *onnxlite.Model) *builder {

@@ -205,7 +205,11 @@ func Scale(e explain.Explanation) (scale float64, what string) {
 func Table(w io.Writer, rep *explain.Report, opt Options) error {
 	labels := rep.Labels()
 	classes := rep.Model.Meta.Classes
-	fmt.Fprintf(w, "model %s  output %s  method %s\n", rep.Model.Name, outputLabel(rep), rep.Settings.Method)
+	fmt.Fprintf(w, "model %s  output %s  method %s", rep.Model.Name, outputLabel(rep), rep.Settings.Method)
+	if rep.Layer != "" {
+		fmt.Fprintf(w, "  layer %s %s", rep.Layer, samples.ShapeString(rep.LayerShape()))
+	}
+	fmt.Fprintln(w)
 	for _, e := range rep.Explanations {
 		fmt.Fprintln(w)
 		if e.Err != nil {
@@ -226,17 +230,23 @@ func Table(w io.Writer, rep *explain.Report, opt Options) error {
 			fmt.Fprintln(w, wrap("  warning: "+wn.Message+opt.suggestion(wn), "    ", tableWidth))
 		}
 
+		if rep.Tokens {
+			labels = rep.SampleLabels(e)
+		}
 		order, hidden := opt.selection(r.Attributions)
 		scale, what := Scale(e)
 		rows := [][4]string{{"feature", "value", "attribution", "± s.e."}}
+		if rep.Tokens {
+			rows[0] = [4]string{"token", "id", "attribution", "± s.e."}
+		}
 		for _, i := range order {
 			label := strconv.Itoa(i)
 			if i < len(labels) {
 				label = labels[i]
 			}
 			value := ""
-			if i < len(e.Values) {
-				value = Number(e.Values[i])
+			if vals := rep.FeatureValues(e); i < len(vals) {
+				value = Number(vals[i])
 			}
 			se := ""
 			if r.StandardErrors != nil {
@@ -388,14 +398,17 @@ func CSV(w io.Writer, rep *explain.Report) error {
 		if e.Err != nil {
 			continue
 		}
+		if rep.Tokens {
+			labels = rep.SampleLabels(e)
+		}
 		for i, a := range e.Result.Attributions {
 			label := strconv.Itoa(i)
 			if i < len(labels) {
 				label = labels[i]
 			}
 			value := ""
-			if i < len(e.Values) {
-				value = strconv.FormatFloat(e.Values[i], 'g', -1, 64)
+			if vals := rep.FeatureValues(e); i < len(vals) {
+				value = strconv.FormatFloat(vals[i], 'g', -1, 64)
 			}
 			rec := []string{strconv.Itoa(e.Index), label, value, strconv.FormatFloat(a, 'g', -1, 64)}
 			if err := cw.Write(rec); err != nil {
@@ -450,6 +463,10 @@ func GroupsNPY(w io.Writer, rep *explain.Report) error {
 func NPY(w io.Writer, rep *explain.Report) error {
 	shape := append([]int{len(rep.Explanations)}, rep.Batch.SampleShape()...)
 	per := rep.Batch.SampleSize()
+	if rep.Layer != "" {
+		shape = append([]int{len(rep.Explanations)}, rep.Shape...)
+		per = samples.Product(rep.Shape)
+	}
 	data := make([]float64, 0, len(rep.Explanations)*per)
 	for _, e := range rep.Explanations {
 		if e.Err != nil || len(e.Result.Attributions) != per {

@@ -387,8 +387,9 @@ func Title(rep *explain.Report, e explain.Explanation) string {
 
 // figure is what PNG draws for one explanation: a dot plot, or a heatmap.
 type figure struct {
-	dots *DotChart
-	heat *heatmapFigure
+	dots   *DotChart
+	heat   *heatmapFigure
+	tokens *tokenFigure
 }
 
 // heatmapFigure holds Heatmap's arguments.
@@ -409,6 +410,9 @@ func PNG(w io.Writer, rep *explain.Report, e explain.Explanation, opt Options) e
 	f := explanationFigure(rep, e, opt)
 	if h := f.heat; h != nil {
 		return Heatmap(w, h.title, h.img, h.height, h.width, h.attr, h.notes...)
+	}
+	if t := f.tokens; t != nil {
+		return Tokens(w, t.title, t.tokens, t.attr, t.notes...)
 	}
 	return Dots(w, *f.dots)
 }
@@ -451,7 +455,20 @@ func explanationFigure(rep *explain.Report, e explain.Explanation, opt Options) 
 		return figure{dots: &DotChart{Title: title, Notes: notes, Columns: []Column{{Header: "group"}}, Rows: rows,
 			Scale: scale, ScaleNote: what, Axis: axis + ", summed per group"}}
 	}
-	if ch, h, wd, ok := imageShape(rep.Batch.SampleShape()); ok && len(r.Attributions) == ch*h*wd {
+	if rep.Tokens && len(e.Tokens) == len(r.Attributions) {
+		return figure{tokens: &tokenFigure{title: title, notes: notes, tokens: e.Tokens, attr: r.Attributions}}
+	}
+	if ch, h, wd, ok := imageShape(rep.Batch.SampleShape()); ok && rep.Settings.Method == gradattr.MethodGradCAM && len(r.Shape) == 2 {
+		img := make([]float64, h*wd)
+		for k := 0; k < ch; k++ {
+			for i := range img {
+				img[i] += e.Values[k*h*wd+i] / float64(ch)
+			}
+		}
+		notes = append(notes, fmt.Sprintf("the %d×%d map of %s, upsampled bilinearly to the input's %d×%d", r.Shape[0], r.Shape[1], rep.Layer, h, wd))
+		return figure{heat: &heatmapFigure{title: title, notes: notes, img: img, attr: Bilinear(r.Attributions, r.Shape[0], r.Shape[1], h, wd), height: h, width: wd}}
+	}
+	if ch, h, wd, ok := imageShape(rep.Batch.SampleShape()); ok && rep.Layer == "" && len(r.Attributions) == ch*h*wd {
 		img := make([]float64, h*wd)
 		attr := make([]float64, h*wd)
 		for k := 0; k < ch; k++ {
@@ -466,6 +483,9 @@ func explanationFigure(rep *explain.Report, e explain.Explanation, opt Options) 
 		return figure{heat: &heatmapFigure{title: title, notes: notes, img: img, attr: attr, height: h, width: wd}}
 	}
 	names, units := featureColumns(rep)
+	if rep.Tokens {
+		names = rep.SampleLabels(e)
+	}
 	order, hidden := opt.selection(r.Attributions)
 	if hidden > 0 {
 		notes = append(notes, opt.hiddenNote(hidden, len(r.Attributions)))
@@ -481,8 +501,8 @@ func explanationFigure(rep *explain.Report, e explain.Explanation, opt Options) 
 		if i < len(names) {
 			label = names[i]
 		}
-		if i < len(e.Values) {
-			value = Number(e.Values[i])
+		if vals := rep.FeatureValues(e); i < len(vals) {
+			value = Number(vals[i])
 		}
 		rows[k] = DotRow{Cells: []string{label}, Value: r.Attributions[i]}
 		if units != nil {
@@ -500,6 +520,9 @@ func explanationFigure(rep *explain.Report, e explain.Explanation, opt Options) 
 func featureColumns(rep *explain.Report) (names, units []string) {
 	meta := rep.Model.Meta
 	n := rep.Batch.SampleSize()
+	if rep.Layer != "" {
+		return rep.Labels(), nil
+	}
 	if len(meta.Features) == n {
 		if len(meta.Units) == n {
 			return meta.Features, meta.Units
@@ -514,6 +537,12 @@ func featureColumns(rep *explain.Report) (names, units []string) {
 // file of baseline samples.
 func baselineTitle(rep *explain.Report) string {
 	g := func(v float64) string { return strconv.FormatFloat(v, 'g', -1, 64) }
+	if rep.Tokens {
+		if id := rep.Settings.BaselineToken; id != nil {
+			return fmt.Sprintf("the embedding of token %d", *id)
+		}
+		return "zero embeddings"
+	}
 	switch b := rep.Settings.Baseline; b.Kind {
 	case gradattr.BaselineMean, gradattr.BaselineMedian:
 		if ref := rep.Settings.Reference; ref != nil {
@@ -537,4 +566,29 @@ func baselineTitle(rep *explain.Report) string {
 		return filepath.Base(b.Samples.Name)
 	}
 	return string(gradattr.BaselineZero)
+}
+
+// Bilinear resamples the h×w grid m (row-major) to oh×ow by bilinear
+// interpolation between the centres of m's cells: output cell (i, j) reads
+// m at ((i + ½)·h/oh − ½, (j + ½)·w/ow − ½), clamped to the grid (common
+// practice: the half-pixel convention of image resizing).
+func Bilinear(m []float64, h, w, oh, ow int) []float64 {
+	out := make([]float64, oh*ow)
+	coord := func(i, in, n int) (lo, hi int, t float64) {
+		x := (float64(i)+0.5)*float64(in)/float64(n) - 0.5
+		x = math.Min(math.Max(x, 0), float64(in-1))
+		lo = int(math.Floor(x))
+		hi = min(lo+1, in-1)
+		return lo, hi, x - float64(lo)
+	}
+	for i := range oh {
+		y0, y1, ty := coord(i, h, oh)
+		for j := range ow {
+			x0, x1, tx := coord(j, w, ow)
+			top := m[y0*w+x0]*(1-tx) + m[y0*w+x1]*tx
+			bottom := m[y1*w+x0]*(1-tx) + m[y1*w+x1]*tx
+			out[i*ow+j] = top*(1-ty) + bottom*ty
+		}
+	}
+	return out
 }

@@ -10,6 +10,7 @@ import (
 
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/samples"
 )
 
 // PredictionTable prints, sample by sample (count of them, the first axis
@@ -91,6 +92,14 @@ func DescriptionTable(w io.Writer, path string, rep *explain.Description) {
 	}
 	section("inputs", rep.Inputs)
 	section("outputs", rep.Outputs)
+	if rep.Values != nil {
+		fmt.Fprintf(w, "\nvalues (per sample; -layer NAME attributes to one)\n")
+		tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+		for _, v := range rep.Values {
+			fmt.Fprintf(tw, "  %s\t%s\t%s\t%s\n", v.Name, v.Op, v.Type, samples.ShapeString(v.Shape))
+		}
+		tw.Flush()
+	}
 
 	total := 0
 	names := make([]string, 0, len(rep.Ops))

@@ -15,14 +15,15 @@ import (
 // Options.AllowEmpty (Read); ReadPB refuses it.
 func ReadPB(r io.Reader, spec Spec) (*Batch, error) { return readAll(newPBSource(r, spec, false)) }
 
-// pbSource hands out the samples of a tensor decoded whole: a TensorProto
-// has no order in which it could be read in parts.
-type pbSource struct {
+// wholeSource hands out the samples of a file read whole: a TensorProto
+// has no order in which it could be read in parts, and a text file is
+// short.
+type wholeSource struct {
 	b     *Batch
 	given bool // the whole tensor was handed out
 }
 
-func newPBSource(r io.Reader, spec Spec, allowEmpty bool) (*pbSource, error) {
+func newPBSource(r io.Reader, spec Spec, allowEmpty bool) (*wholeSource, error) {
 	t, err := onnxlite.DecodeTensor(r, onnxlite.DecodeOptions{})
 	if err != nil {
 		return nil, fmt.Errorf("reading ONNX tensor: %w", err)
@@ -44,10 +45,10 @@ func newPBSource(r io.Reader, spec Spec, allowEmpty bool) (*pbSource, error) {
 	if b.Samples == 0 && !allowEmpty {
 		return nil, fmt.Errorf("expected at least one sample, got a tensor of shape %s", ShapeString(shape))
 	}
-	return &pbSource{b: b}, nil
+	return &wholeSource{b: b}, nil
 }
 
-func (s *pbSource) next(n, first int) (*Batch, error) {
+func (s *wholeSource) next(n, first int) (*Batch, error) {
 	b := s.b
 	switch {
 	case first == 0 && n >= b.Samples && !s.given:

@@ -215,16 +215,19 @@ const (
 	JSON Format = ".json"
 	NPY  Format = ".npy"
 	PB   Format = ".pb"
+	// Text is one text per line, read as token ids with a vocabulary
+	// (ReadText).
+	Text Format = ".txt"
 )
 
 // FormatOf returns the format of the file called name, by its extension
 // (in any case).
 func FormatOf(name string) (Format, error) {
 	switch f := Format(strings.ToLower(filepath.Ext(name))); f {
-	case CSV, JSON, NPY, PB:
+	case CSV, JSON, NPY, PB, Text:
 		return f, nil
 	default:
-		return "", fmt.Errorf("unknown file type %q: expected .pb, .npy, .json or .csv", string(f))
+		return "", fmt.Errorf("unknown file type %q: expected .pb, .npy, .json, .csv or .txt", string(f))
 	}
 }
 
@@ -246,6 +249,8 @@ type Options struct {
 	// reader stops at the sample past it with an error wrapping
 	// ErrTooMany.
 	MaxSamples int
+	// Vocabulary reads a text file (.txt) of a model of token ids.
+	Vocabulary *Vocabulary
 }
 
 // Read reads samples of spec from r, a file called name whose extension

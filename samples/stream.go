@@ -72,6 +72,12 @@ func newSource(f Format, r io.Reader, spec Spec, opt Options) (source, error) {
 		return newNPYSource(r, spec)
 	case JSON:
 		return newJSONSource(r, spec)
+	case Text:
+		b, err := ReadText(r, spec, opt.Vocabulary)
+		if err != nil {
+			return nil, err
+		}
+		return &wholeSource{b: b}, nil
 	default:
 		return newCSVSource(r, spec, opt.Features)
 	}
@@ -198,7 +204,7 @@ const readChunk = 4096
 // file none of whose samples can be read is the error of its first.
 func (s *Stream) All() (*Batch, error) {
 	chunk := readChunk
-	if _, whole := s.src.(*pbSource); whole {
+	if _, whole := s.src.(*wholeSource); whole {
 		chunk = math.MaxInt // keeps Batch.Tensor
 	}
 	var parts []*Batch

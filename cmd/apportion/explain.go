@@ -44,7 +44,8 @@ var methodFlagNames = []explain.Field{
 	explain.FieldReference, explain.FieldSteps, explain.FieldRule, explain.FieldTolerance, explain.FieldSamples,
 	explain.FieldNoise, explain.FieldSeed, explain.FieldAbs, explain.FieldVariant, explain.FieldReferenceRows,
 	explain.FieldEstimator, explain.FieldCoalitions, explain.FieldKernelWidth, explain.FieldWindow, explain.FieldStride,
-	explain.FieldSuperpixels, explain.FieldCompactness,
+	explain.FieldSuperpixels, explain.FieldCompactness, explain.FieldLayer,
+	explain.FieldLayerBaseline, explain.FieldBaselineToken,
 }
 
 // explainConfig holds explain's flags; settings are the method flags read
@@ -63,6 +64,8 @@ type explainConfig struct {
 	sort      string
 	patch     string // -patch HxW
 	render    render.Options
+	// vocab is -vocab, a vocabulary file for a model of token ids.
+	vocab string
 	// allowIncomplete accepts results whose completeness check fails.
 	allowIncomplete bool
 
@@ -105,6 +108,9 @@ func registerMethodFlags(fs *flag.FlagSet, baselineDefault, baselineHelp, refere
 	fs.Int("stride", 0, "occlusion window step `S` in pixels (default half the window's shorter side)")
 	fs.Int("superpixels", 0, "make the feature groups about `N` SLIC superpixels of each image, for any method")
 	fs.Float64("compactness", gradattr.DefaultCompactness, "SLIC compactness `M` of -superpixels: higher, more regular segments")
+	fs.String("layer", "", "attribute to the value called `NAME` inside the model instead of its input (inspect -values lists them); grad-cam's default is the last value with spatial axes")
+	fs.String("layer-baseline", explain.LayerBaselineInput, "the baseline at -layer: `input` (the value computed from the input's -baseline) or zero")
+	fs.String("baseline-token", "", "a model of token ids: the baseline is the embedding of token `ID` at every position (a padding token), instead of zero embeddings")
 }
 
 // readSettings sets the library's settings from the method flags given
@@ -161,9 +167,10 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the random methods")
 	fs.StringVar(&c.groups, "groups", "", "JSON `file` of feature groups to report summed, in its order: {\"name\": [features], ...}, each feature an index from 0 or a feature name")
 	fs.StringVar(&c.patch, "patch", "", "report image samples by patches of `HxW` pixels (all channels), tiled from the top left, instead of -groups")
-	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv, npy or png (png needs -out)")
+	fs.StringVar(&c.format, "format", "table", "output format: table, json, csv, npy, png (needs -out) or html (a model of token ids: one page of every sample)")
 	fs.StringVar(&c.out, "out", "", "write the result to `file` instead of standard output (png: file_0.png, file_1.png, ... for several samples)")
-	fs.StringVar(&c.demo, "demo", "", "embedded invented demo `scenario` to explain without -model: pumps (the default) or welds")
+	fs.StringVar(&c.demo, "demo", "", "embedded invented demo `scenario` to explain without -model: pumps (the default), welds or tickets")
+	fs.StringVar(&c.vocab, "vocab", "", "vocabulary `file` of a model of token ids, one token per line (id = line number from 0), for .txt inputs and token names (default: the model's own, from its metadata)")
 	fs.BoolVar(&c.allowIncomplete, "allow-incomplete", false, "exit 0 even when a completeness check fails (the results are printed either way)")
 	fs.IntVar(&c.render.Top, "top", 0, "show only the `K` features with the largest |attribution| in the table and the PNG (0: all, at most 64)")
 	fs.StringVar(&c.sort, "sort", "model", "order of the features in the table and the PNG: model (the model's order), abs (largest |attribution| first) or value (largest attribution first)")
@@ -312,13 +319,13 @@ func fail(stderr io.Writer, cmd string, err error) int {
 // usage error, or "".
 func (c *explainConfig) validate() string {
 	switch c.format {
-	case "table", "json", "csv", "npy":
+	case "table", "json", "csv", "npy", "html":
 	case "png":
 		if c.out == "" {
 			return "-format png needs -out, the file to write the image to (PNG is binary, not for a terminal)"
 		}
 	default:
-		return fmt.Sprintf("-format must be table, json, csv, npy or png, got %q", c.format)
+		return fmt.Sprintf("-format must be table, json, csv, npy, png or html, got %q", c.format)
 	}
 	if c.format == "npy" && (c.groups != "" || c.patch != "") && c.out == "" {
 		return "-format npy with groups writes two arrays: give -out FILE.npy for the attributions, and the group sums go to FILE_groups.npy"
@@ -480,6 +487,9 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *inputBatches, s
 	}
 	m := l.model
 	m.InputName = c.inputName
+	if err := readVocabulary(m, c.vocab); err != nil {
+		return nil, nil, samples.Spec{}, err
+	}
 	spec, err := m.Input()
 	if err != nil {
 		return nil, nil, spec, err
@@ -533,7 +543,7 @@ func (c *explainConfig) explainer(l *loadedModel, spec samples.Spec, in *inputBa
 	}
 	// A mean or median baseline without a reference set is the input's own.
 	ofInput := s.Method.Reads(gradattr.ParamBaseline) && s.NeedsReference() && s.Reference == nil
-	if !in.whole() && (c.format == "npy" || ofInput) {
+	if !in.whole() && (c.format == "npy" || c.format == "html" || ofInput) {
 		if err := in.readWhole(); err != nil {
 			return nil, err
 		}
@@ -658,4 +668,23 @@ func progress(w io.Writer) func(done, total int) {
 			fmt.Fprint(w, "\r\033[K")
 		}
 	}
+}
+
+// readVocabulary sets the vocabulary of a model of token ids from the file
+// at path (one token per line, id = line number from 0), when path is
+// given.
+func readVocabulary(m *explain.Model, path string) error {
+	if path == "" {
+		return nil
+	}
+	raw, err := samples.ReadLimited(path)
+	if err != nil {
+		return fmt.Errorf("-vocab: %w", err)
+	}
+	v, err := samples.ReadVocabulary(bytes.NewReader(raw))
+	if err != nil {
+		return fmt.Errorf("-vocab %s: %w", path, err)
+	}
+	m.Meta.Vocabulary = v.Tokens
+	return nil
 }

@@ -78,8 +78,8 @@ func TestExplainPNGUsageErrors(t *testing.T) {
 	}{
 		{[]string{"-model", model, "-input", xpb, "-format", "png"}, "-format png needs -out"},
 		{[]string{"-demo", "welds", "-model", model}, "-demo selects an embedded model and sample; it cannot be combined with -model"},
-		{[]string{"-demo", "bridges"}, `unknown scenario "bridges": want one of pumps, welds`},
-		{[]string{"-format", "gif"}, "-format must be table, json, csv, npy or png"},
+		{[]string{"-demo", "bridges"}, `unknown scenario "bridges": want one of pumps, tickets, welds`},
+		{[]string{"-format", "gif"}, "-format must be table, json, csv, npy, png or html"},
 	} {
 		code, stdout, errs := cli(t, append([]string{"explain"}, c.args...)...)
 		assert.Equal(t, exitUsage, code, "%v: %s", c.args, errs)

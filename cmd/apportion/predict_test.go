@@ -161,7 +161,9 @@ func TestPredictBadInputs(t *testing.T) {
 	// A sample of the wrong shape names both.
 	check("wrong.json", "[[1,2,3],[4,5,6]]", "sample 0: expected 20 values (shape [4 5]), got 3 (shape [3])")
 	check("text.json", `[["a"]]`, "at [0][0]: expected a number, got a string")
-	check("x.txt", "1,2", `unknown file type ".txt"`)
+	check("x.tsv", "1,2", `unknown file type ".tsv"`)
+	// A text file is read with a vocabulary, which a model of float inputs lacks.
+	check("x.txt", "1 2", "a text file needs a vocabulary")
 
 	// A .pb of the wrong shape: the Gemm's b input [7,4] given for x [3,4,5].
 	gemm := caseDir(t, "node/test_gemm_default_vector_bias")

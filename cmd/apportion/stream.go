@@ -210,6 +210,8 @@ func (c *explainConfig) writeExplanations(ex *explain.Explainer, in *inputBatche
 			err = render.CSV(w, rep)
 		case "npy":
 			err = render.NPY(w, rep)
+		case "html":
+			err = render.HTML(w, rep, c.render)
 		default:
 			err = render.Table(w, rep, c.render)
 		}

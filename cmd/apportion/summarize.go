@@ -227,6 +227,9 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 		return nil, nil, "", err
 	}
 	m := l.model
+	if _, ok := m.Tokens(); ok && c.settings.Layer == "" && c.settings.Method != gradattr.MethodGradCAM {
+		return nil, nil, "", errors.New("a summary of a model of token ids, per token string, is not available: explain its texts with apportion explain, or summarise a -layer of it")
+	}
 	spec, err := m.Input()
 	if err != nil {
 		return nil, nil, "", err

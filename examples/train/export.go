@@ -178,3 +178,39 @@ func encodeModel(m *onnxlite.Model) ([]byte, error) {
 	}
 	return buf.Bytes(), nil
 }
+
+// ticketsDescription is the tickets model's invented description.
+const ticketsDescription = "Invented triage of pump technicians' maintenance notes: a note of up to 16 words classed urgent, routine or informational."
+
+// ticketsModel is the ONNX graph of m: note (int64 token ids) → Gather
+// (embedding) → Transpose → Conv (kernel 3, pads 1) → Relu → ReduceMean
+// over the positions → Gemm → Softmax → triage.
+func ticketsModel(m *textCNN, vocab []string) (*onnxlite.Model, error) {
+	in := batchTensor("note", ticketLen)
+	in.Type.Elem = onnxlite.Int64
+	b := &graphBuilder{g: &onnxlite.Graph{
+		Name:    "tickets",
+		Inputs:  []*onnxlite.ValueInfo{in},
+		Outputs: []*onnxlite.ValueInfo{batchTensor("triage", int64(len(ticketClasses)))},
+	}}
+	emb := b.init("embedding.weight", []int64{int64(m.Vocab), int64(m.Embed)}, m.Emb)
+	h := b.node("Gather", "embedded", []string{emb, "note"}, intAttr("axis", 0))
+	h = b.node("Transpose", "channels", []string{h}, ints("perm", 0, 2, 1))
+	w := b.init("conv.weight", []int64{int64(m.Channels), int64(m.Embed), 3}, m.Conv)
+	c := b.init("conv.bias", []int64{int64(m.Channels)}, m.ConvB)
+	h = b.node("Conv", "conv", []string{h, w, c}, ints("kernel_shape", 3), ints("pads", 1, 1), ints("strides", 1), ints("dilations", 1), intAttr("group", 1))
+	h = b.node("Relu", "conv.relu", []string{h})
+	h = b.node("ReduceMean", "pooled", []string{h}, ints("axes", 2), intAttr("keepdims", 0))
+	fw := b.init("dense.weight", []int64{int64(m.FC.In), int64(m.FC.Out)}, m.FC.W)
+	fb := b.init("dense.bias", []int64{int64(m.FC.Out)}, m.FC.B)
+	h = b.node("Gemm", "dense", []string{h, fw, fb})
+	b.node("Softmax", "triage", []string{h}, intAttr("axis", 1))
+	if b.err != nil {
+		return nil, fmt.Errorf("tickets model: %w", b.err)
+	}
+	model := newModel(b.g, map[string]string{"scenario": "tickets", "description": ticketsDescription}, ticketsDescription)
+	if err := modelmeta.Write(model, modelmeta.Meta{Classes: ticketClasses, Vocabulary: vocab}); err != nil {
+		return nil, fmt.Errorf("tickets model: %w", err)
+	}
+	return model, nil
+}

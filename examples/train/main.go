@@ -12,6 +12,8 @@
 //     hours_since_service only (see pumpScore).
 //   - welds: a 32×32 grey patch of a weld seam → clean or defective, where a
 //     defect is a crack or porosity with a known pixel mask (see drawWeld).
+//   - tickets: a pump technician's note of up to 16 words → urgent, routine
+//     or informational, decided by one planted word (see drawTicket).
 //
 // The data sets are a pure function of -seed. Training is seeded as well
 // and single-threaded, so a rerun on the same machine writes the same files.
@@ -33,8 +35,9 @@ func main() {
 
 // Training settings of the committed models.
 var (
-	pumpsTraining = trainConfig{Epochs: 60, BatchSize: 50, LearnRate: 0.01}
-	weldsTraining = trainConfig{Epochs: 20, BatchSize: 32, LearnRate: 0.003}
+	pumpsTraining   = trainConfig{Epochs: 60, BatchSize: 50, LearnRate: 0.01}
+	weldsTraining   = trainConfig{Epochs: 20, BatchSize: 32, LearnRate: 0.003}
+	ticketsTraining = trainConfig{Epochs: 12, BatchSize: 40, LearnRate: 0.01}
 )
 
 // defaultSeed is the seed of the committed files.
@@ -47,15 +50,15 @@ func run(args []string, stdout, stderr io.Writer) int {
 	fs.SetOutput(stderr)
 	out := fs.String("out", filepath.Join("internal", "demo", "data"), "directory to write the demo files to")
 	seed := fs.Uint64("seed", defaultSeed, "seed of the data sets and of training")
-	only := fs.String("only", "", "regenerate one scenario only: pumps or welds (default both)")
+	only := fs.String("only", "", "regenerate one scenario only: pumps, welds or tickets (default all)")
 	fs.Usage = func() {
-		fmt.Fprintf(stderr, "usage: go run ./examples/train [-out dir] [-seed n] [-only pumps|welds]\n\n")
+		fmt.Fprintf(stderr, "usage: go run ./examples/train [-out dir] [-seed n] [-only pumps|welds|tickets]\n\n")
 		fs.PrintDefaults()
 	}
 	if err := fs.Parse(args); err != nil {
 		return 2
 	}
-	if fs.NArg() > 0 || (*only != "" && *only != "pumps" && *only != "welds") {
+	if fs.NArg() > 0 || (*only != "" && *only != "pumps" && *only != "welds" && *only != "tickets") {
 		fs.Usage()
 		return 2
 	}
@@ -73,6 +76,12 @@ func run(args []string, stdout, stderr io.Writer) int {
 	if *only == "" || *only == "welds" {
 		if err := buildWelds(w, *seed); err != nil {
 			fmt.Fprintln(stderr, "train: welds:", err)
+			return 1
+		}
+	}
+	if *only == "" || *only == "tickets" {
+		if err := buildTickets(w, *seed); err != nil {
+			fmt.Fprintln(stderr, "train: tickets:", err)
 			return 1
 		}
 	}
@@ -220,5 +229,49 @@ func buildWelds(w *writer, seed uint64) error {
 		{"welds_test_patches.npy", func() ([]byte, error) { return weldPatchesNPY(s.Test) }},
 		{"welds_test_masks.npy", func() ([]byte, error) { return weldMasksNPY(s.Test) }},
 		{"welds_test_labels.npy", func() ([]byte, error) { return weldLabelsNPY(s.Test) }},
+	})
+}
+
+// buildTickets draws the tickets data, trains and exports the model, and
+// writes the tickets files.
+func buildTickets(w *writer, seed uint64) error {
+	s := generateTickets(seed)
+	vocab := ticketVocabulary()
+	index := make(map[string]int, len(vocab))
+	for i, t := range vocab {
+		index[t] = i
+	}
+	ids := make([][]int, len(s.Train))
+	labels := make([]int, len(s.Train))
+	for i, t := range s.Train {
+		ids[i], labels[i] = ticketIDs(index, t), t.Label
+	}
+	start := time.Now()
+	cfg := ticketsTraining
+	cfg.Seed = seed
+	m, err := trainTextCNN(ids, labels, len(vocab), cfg)
+	if err != nil {
+		return fmt.Errorf("training: %w", err)
+	}
+	elapsed := time.Since(start)
+	correct := 0
+	for _, t := range s.Test {
+		if m.predict(ticketIDs(index, t)) == t.Label {
+			correct++
+		}
+	}
+	fmt.Fprintf(w.log, "tickets: trained in %v; held-out accuracy %.3f (%d/%d)\n",
+		elapsed.Round(time.Millisecond), float64(correct)/float64(len(s.Test)), correct, len(s.Test))
+	model, err := ticketsModel(m, vocab)
+	if err != nil {
+		return err
+	}
+	sample := []ticketNote{ticketSample(s.Test)}
+	return w.writeAll([]output{
+		{"tickets.onnx", func() ([]byte, error) { return encodeModel(model) }},
+		{"tickets_sample.txt", func() ([]byte, error) { return ticketText(sample), nil }},
+		{"tickets_reference.txt", func() ([]byte, error) { return ticketText(s.Reference), nil }},
+		{"tickets_test.txt", func() ([]byte, error) { return ticketText(s.Test), nil }},
+		{"tickets_test_truth.npy", func() ([]byte, error) { return ticketTruthNPY(s.Test) }},
 	})
 }

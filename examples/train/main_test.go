@@ -6,8 +6,10 @@ import (
 	"encoding/csv"
 	"math"
 	"strconv"
+	"strings"
 	"testing"
 
+	"codeberg.org/sbinet/npyio/npy"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 	G "gorgonia.org/gorgonia"
@@ -229,4 +231,64 @@ func TestRunUsage(t *testing.T) {
 	assert.Equal(t, 2, run([]string{"-nosuchflag"}, &out, &errb))
 	assert.Equal(t, 2, run([]string{"extra"}, &out, &errb))
 	assert.Empty(t, out.String())
+}
+
+// TestTicketsDataReproduces regenerates the tickets data sets from the
+// default seed and compares them with the committed files byte for byte.
+func TestTicketsDataReproduces(t *testing.T) {
+	s := generateTickets(defaultSeed)
+	require.Len(t, s.Test, ticketTest)
+	assert.Equal(t, committed(t, "tickets_test.txt"), ticketText(s.Test))
+	assert.Equal(t, committed(t, "tickets_reference.txt"), ticketText(s.Reference))
+	assert.Equal(t, committed(t, "tickets_sample.txt"), ticketText([]ticketNote{ticketSample(s.Test)}))
+	truth, err := ticketTruthNPY(s.Test)
+	require.NoError(t, err)
+	assert.Equal(t, committed(t, "tickets_test_truth.npy"), truth)
+	assert.NotEqual(t, ticketText(s.Test), ticketText(generateTickets(defaultSeed+1).Test))
+}
+
+// TestTicketsLabelRule checks the committed held-out notes against the
+// documented rule, applied to the text alone with the deciding words of
+// demo/data/README.md: a note with an urgent word is urgent; else one with
+// a routine word routine; else informational; and the planted word is one
+// of its class's deciding words, where the truth file says.
+func TestTicketsLabelRule(t *testing.T) {
+	// The deciding words as demo/data/README.md lists them.
+	words := [][]string{
+		strings.Fields("leaking smoking seized sparking flooding overheating cracked burst tripped screeching"),
+		strings.Fields("greased lubricated tightened replaced scheduled calibrated flushed cleaned adjusted serviced"),
+		strings.Fields("noted logged fyi observed recorded photographed reported mentioned documented forwarded"),
+	}
+	class := map[string]int{}
+	for c, ws := range words {
+		for _, w := range ws {
+			class[w] = c
+		}
+	}
+	var flat []int64
+	require.NoError(t, npy.Read(bytes.NewReader(committed(t, "tickets_test_truth.npy")), &flat))
+	truth := make([][2]int64, len(flat)/2)
+	for i := range truth {
+		truth[i] = [2]int64{flat[2*i], flat[2*i+1]}
+	}
+	lines := strings.Split(strings.TrimSuffix(string(committed(t, "tickets_test.txt")), "\n"), "\n")
+	require.Len(t, lines, len(truth))
+	counts := make([]int, 3)
+	for i, line := range lines {
+		note := strings.Fields(line)
+		require.LessOrEqual(t, len(note), ticketLen, "note %d", i)
+		label := 2
+		for _, w := range note {
+			if c, ok := class[w]; ok && c < label {
+				label = c
+			}
+		}
+		assert.EqualValues(t, truth[i][0], label, "note %d: %q", i, line)
+		p := truth[i][1]
+		require.Less(t, int(p), len(note))
+		c, ok := class[note[p]]
+		assert.True(t, ok && c == label, "note %d: planted word %q", i, note[p])
+		counts[label]++
+	}
+	t.Logf("held-out notes by class: %v", counts)
 }
