@@ -80,7 +80,7 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 func (e *Explainer) options(batch *samples.Batch, name func(*Dataset) string) (gradattr.Options, error) {
 	s := &e.settings
 	o := gradattr.Options{
-		Method: s.Method, Points: s.Steps, Rule: s.Rule, Tolerance: s.Tolerance,
+		Method: s.Method, Points: s.Steps, Rule: s.Rule, Tolerance: s.Tolerance, Exact: gradattr.ExactNever,
 		Samples: s.Samples, Noise: s.Noise, Seed: s.Seed,
 	}
 	if s.Reference != nil && s.Reference.Batch != nil {

@@ -22,9 +22,11 @@ const (
 const autoStart = 4
 
 // IGOptions configures IntegratedGradients. The zero value means: one zero
-// baseline, the trapezoid rule, automatic point count refined until the
-// relative completeness gap and the relative change of the attributions are
-// at most 0.005, or DefaultMaxPoints points; batches of 64.
+// baseline; the exact integral when the model provides it (ExactAuto),
+// otherwise the trapezoid rule with an automatic point count refined until
+// the relative completeness gap and the relative change of the
+// attributions are at most 0.005, or DefaultMaxPoints points; batches of
+// 64.
 type IGOptions struct {
 	// Rule is the quadrature rule; the zero value is RuleTrapezoid.
 	Rule Rule
@@ -42,6 +44,12 @@ type IGOptions struct {
 	// BatchSize is the number of points per model call; 0 means
 	// DefaultBatchSize.
 	BatchSize int
+	// Exact says when to integrate exactly (see ExactMode); the zero
+	// value is ExactAuto.
+	Exact ExactMode
+	// MaxPieces caps the pieces of one exact path integral; 0 means
+	// DefaultMaxPieces with ExactAuto and MaxPiecesLimit with ExactAlways.
+	MaxPieces int
 }
 
 // IntegratedGradients attributes output target of m at x along the straight
@@ -74,6 +82,15 @@ type IGOptions struct {
 // each baseline, and completeness is checked against the mean baseline
 // output (1/B) Σ_b F(x′_b), for which the mean attributions are complete.
 // Settings.Points is then the largest per-baseline count.
+//
+// Exact integrated gradients (opt.Exact; by default whenever the point
+// count is automatic and the model allows it) take the integral from a
+// PathIntegrator instead: for a network that is piecewise-linear up to a
+// smooth head, the integral over the pieces of the path on which it is
+// affine (Sotoudeh & Thakur 2019), exact up to rounding. The result then
+// has Settings.Exact set and Settings.Pieces (the largest per-baseline
+// count) and spends no gradient evaluations; when ExactAuto falls back to
+// quadrature, Settings.ExactSkipped says why.
 func IntegratedGradients(ctx context.Context, m Model, x []float64, target int, opt IGOptions) (*Result, error) {
 	if !opt.Rule.valid() {
 		return nil, fmt.Errorf("%w: unknown quadrature rule %d", ErrOptions, int(opt.Rule))
@@ -115,6 +132,22 @@ func IntegratedGradients(ctx context.Context, m Model, x []float64, target int, 
 	if opt.Points == 0 {
 		s.Auto, s.MaxPoints = true, maxPoints
 	}
+	plan, err := planExact(m, opt)
+	if err != nil {
+		return nil, err
+	}
+	if plan.pi != nil {
+		es := s
+		if opt.Exact == ExactAlways {
+			es.Auto, es.MaxPoints = false, 0
+		}
+		r, why, err := exactIG(e, plan, bases, opt, es)
+		if err != nil || r != nil {
+			return r, err
+		}
+		plan.skipped = why
+	}
+	s.ExactSkipped = plan.skipped
 	total := make([]float64, e.size)
 	meanBase := 0.0
 	ig := newIntegrator(e, x)

@@ -56,6 +56,9 @@ type Options struct {
 	// Points fixes the number of integration points of integrated
 	// gradients per baseline; 0 chooses it automatically (IGOptions.Points).
 	Points int
+	// Exact says when integrated gradients integrate exactly
+	// (IGOptions.Exact).
+	Exact ExactMode
 	// Rule is the quadrature rule of integrated gradients.
 	Rule Rule
 	// Tolerance is the relative completeness gap to meet (integrated
@@ -121,7 +124,7 @@ var methodSpecs = []methodSpec{
 		run: func(ctx context.Context, m Model, x []float64, target int, o Options) (*Result, error) {
 			return IntegratedGradients(ctx, m, x, target, IGOptions{
 				Rule: o.Rule, Points: o.Points, Tolerance: o.Tolerance,
-				Baselines: o.baselines(), BatchSize: o.BatchSize,
+				Baselines: o.baselines(), BatchSize: o.BatchSize, Exact: o.Exact,
 			})
 		},
 	},
@@ -295,10 +298,16 @@ func (o Options) Settings() Settings {
 				s.References = len(o.Reference)
 			}
 		case ParamSteps:
-			if o.Points > 0 {
+			switch {
+			case o.Points > 0:
 				s.Points = o.Points
-			} else {
+			case o.Exact == ExactAlways:
+				s.Exact, s.MaxPieces = true, MaxPiecesLimit
+			default:
 				s.Auto, s.MaxPoints = true, DefaultMaxPoints
+				if o.Exact == ExactAuto {
+					s.MaxPieces = DefaultMaxPieces
+				}
 			}
 		case ParamRule:
 			s.Rule = o.Rule.String()

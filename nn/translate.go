@@ -300,15 +300,9 @@ func (b *builder) transpose(n *onnxlite.Node, out string) error {
 		return err
 	}
 	r := len(b.shape(n.Inputs[0]))
-	perm := ints(n.AttrInts("perm", nil))
-	if perm == nil {
-		perm = make([]int, r)
-		for i := range perm {
-			perm[i] = r - 1 - i
-		}
-	}
-	if len(perm) != r {
-		return fmt.Errorf("perm %v: expected %d entries for rank %d", perm, r, r)
+	perm, err := transposePerm(n, r)
+	if err != nil {
+		return err
 	}
 	if r <= 1 {
 		return b.set(out, x)
@@ -318,6 +312,22 @@ func (b *builder) transpose(n *onnxlite.Node, out string) error {
 		return err
 	}
 	return b.set(out, y)
+}
+
+// transposePerm reads the permutation of Transpose node n on rank r
+// (default: the axes reversed).
+func transposePerm(n *onnxlite.Node, r int) ([]int, error) {
+	perm := ints(n.AttrInts("perm", nil))
+	if perm == nil {
+		perm = make([]int, r)
+		for i := range perm {
+			perm[i] = r - 1 - i
+		}
+	}
+	if len(perm) != r {
+		return nil, fmt.Errorf("perm %v: expected %d entries for rank %d", perm, r, r)
+	}
+	return perm, nil
 }
 
 func (b *builder) concat(n *onnxlite.Node, out string) error {
@@ -501,45 +511,18 @@ func (b *builder) matmul(n *onnxlite.Node, out string) error {
 // y = scale·(x − mean)/√(var + ε) + B (Ioffe & Szegedy 2015, Algorithm 2),
 // into y = s·x + t with per-channel s = scale/√(var + ε) and t = B − mean·s.
 func (b *builder) batchNorm(n *onnxlite.Node, out string) error {
-	if n.AttrInt("training_mode", 0) != 0 {
-		return fmt.Errorf("%w: BatchNormalization in training mode", onnxlite.ErrUnsupported)
-	}
-	for _, o := range n.Outputs[1:] {
-		if o != "" {
-			return fmt.Errorf("%w: BatchNormalization running statistics outputs", onnxlite.ErrUnsupported)
-		}
-	}
 	x, err := b.input(n, 0)
 	if err != nil {
 		return err
 	}
+	s, t, runtime, err := b.batchNormAffine(n)
+	if err != nil {
+		return err
+	}
 	sx := b.shape(n.Inputs[0])
-	if len(sx) < 2 {
-		return fmt.Errorf("BatchNormalization: expected input of rank ≥ 2, got %v", sx)
-	}
-	c := sx[1]
-	shape := append([]int{c}, ones(len(sx)-2)...)
-	eps := float64(n.AttrFloat("epsilon", 1e-5))
-	for i := 1; i <= 4; i++ {
-		if _, ok := b.st.Consts[n.Inputs[i]]; !ok {
-			return b.batchNormRuntime(n, out, x, shape, eps)
-		}
-	}
-	var p [4][]float64
-	for i, what := range []string{"scale", "B", "mean", "var"} {
-		if p[i], err = b.constFloats(n, i+1, what); err != nil {
-			return err
-		}
-	}
-	for i := range p {
-		if len(p[i]) != c {
-			return fmt.Errorf("BatchNormalization: expected %d channel parameters, got %d", c, len(p[i]))
-		}
-	}
-	s, t := make([]float64, c), make([]float64, c)
-	for i := 0; i < c; i++ {
-		s[i] = p[0][i] / math.Sqrt(p[3][i]+eps)
-		t[i] = p[1][i] - p[2][i]*s[i]
+	shape := append([]int{sx[1]}, ones(len(sx)-2)...)
+	if runtime {
+		return b.batchNormRuntime(n, out, x, shape, float64(n.AttrFloat("epsilon", 1e-5)))
 	}
 	y, err := ops.Binary(x, b.constant(shape, s, n.Inputs[1]+"/scale"), "Mul")
 	if err != nil {
@@ -549,6 +532,48 @@ func (b *builder) batchNorm(n *onnxlite.Node, out string) error {
 		return err
 	}
 	return b.set(out, y)
+}
+
+// batchNormAffine returns the per-channel s and t of inference-mode
+// BatchNormalization node n with constant parameters, y = s·x + t;
+// runtime reports parameters computed at run time instead.
+func (b *builder) batchNormAffine(n *onnxlite.Node) (s, t []float64, runtime bool, err error) {
+	if n.AttrInt("training_mode", 0) != 0 {
+		return nil, nil, false, fmt.Errorf("%w: BatchNormalization in training mode", onnxlite.ErrUnsupported)
+	}
+	for _, o := range n.Outputs[1:] {
+		if o != "" {
+			return nil, nil, false, fmt.Errorf("%w: BatchNormalization running statistics outputs", onnxlite.ErrUnsupported)
+		}
+	}
+	sx := b.shape(n.Inputs[0])
+	if len(sx) < 2 {
+		return nil, nil, false, fmt.Errorf("BatchNormalization: expected input of rank ≥ 2, got %v", sx)
+	}
+	c := sx[1]
+	for i := 1; i <= 4; i++ {
+		if _, ok := b.st.Consts[n.Inputs[i]]; !ok {
+			return nil, nil, true, nil
+		}
+	}
+	var p [4][]float64
+	for i, what := range []string{"scale", "B", "mean", "var"} {
+		if p[i], err = b.constFloats(n, i+1, what); err != nil {
+			return nil, nil, false, err
+		}
+	}
+	for i := range p {
+		if len(p[i]) != c {
+			return nil, nil, false, fmt.Errorf("BatchNormalization: expected %d channel parameters, got %d", c, len(p[i]))
+		}
+	}
+	eps := float64(n.AttrFloat("epsilon", 1e-5))
+	s, t = make([]float64, c), make([]float64, c)
+	for i := 0; i < c; i++ {
+		s[i] = p[0][i] / math.Sqrt(p[3][i]+eps)
+		t[i] = p[1][i] - p[2][i]*s[i]
+	}
+	return s, t, false, nil
 }
 
 // batchNormRuntime computes the same formula with graph operations when
@@ -633,7 +658,18 @@ func (b *builder) unary(n *onnxlite.Node, out string) error {
 	if err != nil {
 		return err
 	}
-	var alpha, beta float64
+	alpha, beta := unaryParams(n)
+	y, err := ops.Unary(x, n.OpType, alpha, beta)
+	if err != nil {
+		return err
+	}
+	return b.set(out, y)
+}
+
+// unaryParams reads the attributes of an elementwise node with defaults:
+// LeakyRelu's slope, Elu's and Celu's alpha, Selu's alpha and gamma,
+// HardSigmoid's alpha and beta.
+func unaryParams(n *onnxlite.Node) (alpha, beta float64) {
 	switch n.OpType {
 	case "LeakyRelu":
 		alpha = float64(n.AttrFloat("alpha", 0.01))
@@ -646,11 +682,7 @@ func (b *builder) unary(n *onnxlite.Node, out string) error {
 		alpha = float64(n.AttrFloat("alpha", 0.2))
 		beta = float64(n.AttrFloat("beta", 0.5))
 	}
-	y, err := ops.Unary(x, n.OpType, alpha, beta)
-	if err != nil {
-		return err
-	}
-	return b.set(out, y)
+	return alpha, beta
 }
 
 func (b *builder) pow(n *onnxlite.Node, out string) error {
@@ -703,7 +735,25 @@ func (b *builder) clip(n *onnxlite.Node, out string) error {
 	if err != nil {
 		return err
 	}
-	lo, hi := math.Inf(-1), math.Inf(1)
+	lo, hi, runtime, err := b.clipBounds(n)
+	if err != nil {
+		return err
+	}
+	if runtime {
+		return b.clipRuntime(n, out, x)
+	}
+	y, err := ops.Clip(x, lo, hi)
+	if err != nil {
+		return err
+	}
+	return b.set(out, y)
+}
+
+// clipBounds reads the bounds of Clip node n, ±Inf when absent, from its
+// attributes (opset < 11) or its constant inputs; runtime reports a bound
+// computed at run time instead.
+func (b *builder) clipBounds(n *onnxlite.Node) (lo, hi float64, runtime bool, err error) {
+	lo, hi = math.Inf(-1), math.Inf(1)
 	if b.opset < 11 {
 		if a := n.Attr("min"); a != nil {
 			lo = float64(a.F)
@@ -711,35 +761,27 @@ func (b *builder) clip(n *onnxlite.Node, out string) error {
 		if a := n.Attr("max"); a != nil {
 			hi = float64(a.F)
 		}
-	} else {
-		runtime := false
-		for i := 1; i <= 2; i++ {
-			if _, ok := b.st.Consts[n.Inputs[min(i, len(n.Inputs)-1)]]; b.has(n, i) && !ok {
-				runtime = true
-			}
-		}
-		if runtime {
-			return b.clipRuntime(n, out, x)
-		}
-		for i, p := range []*float64{&lo, &hi} {
-			if !b.has(n, i+1) {
-				continue
-			}
-			v, err := b.constFloats(n, i+1, []string{"min", "max"}[i])
-			if err != nil {
-				return err
-			}
-			if len(v) != 1 {
-				return fmt.Errorf("Clip: expected a scalar bound, got %d values", len(v))
-			}
-			*p = v[0]
+		return lo, hi, false, nil
+	}
+	for i := 1; i <= 2; i++ {
+		if _, ok := b.st.Consts[n.Inputs[min(i, len(n.Inputs)-1)]]; b.has(n, i) && !ok {
+			return lo, hi, true, nil
 		}
 	}
-	y, err := ops.Clip(x, lo, hi)
-	if err != nil {
-		return err
+	for i, p := range []*float64{&lo, &hi} {
+		if !b.has(n, i+1) {
+			continue
+		}
+		v, err := b.constFloats(n, i+1, []string{"min", "max"}[i])
+		if err != nil {
+			return lo, hi, false, err
+		}
+		if len(v) != 1 {
+			return lo, hi, false, fmt.Errorf("Clip: expected a scalar bound, got %d values", len(v))
+		}
+		*p = v[0]
 	}
-	return b.set(out, y)
+	return lo, hi, false, nil
 }
 
 // clipRuntime handles Clip whose bounds are run-time values; an absent
@@ -788,11 +830,9 @@ func (b *builder) binary(n *onnxlite.Node, out string) error {
 		}
 	}
 	if n.OpType == "PRelu" {
-		// A per-channel slope of shape (C) applies to axis 1 (the ONNX
-		// PRelu before opset 7 and the common exporter layout).
 		sx, ss := b.shape(n.Inputs[0]), b.shape(n.Inputs[1])
-		if len(ss) == 1 && len(sx) > 2 && ss[0] == sx[1] && ss[0] != sx[len(sx)-1] {
-			if y, err = G.Reshape(y, tensor.Shape(append([]int{ss[0]}, ones(len(sx)-2)...))); err != nil {
+		if s := preluSlopeShape(sx, ss); len(s) != len(ss) {
+			if y, err = G.Reshape(y, tensor.Shape(s)); err != nil {
 				return err
 			}
 		}
@@ -804,35 +844,57 @@ func (b *builder) binary(n *onnxlite.Node, out string) error {
 	return b.set(out, z)
 }
 
+// preluSlopeShape is the shape PRelu's slope of shape ss broadcasts with
+// against x of shape sx: a per-channel slope of shape (C) applies to axis
+// 1 (the ONNX PRelu before opset 7 and the common exporter layout).
+func preluSlopeShape(sx, ss []int) []int {
+	if len(ss) == 1 && len(sx) > 2 && ss[0] == sx[1] && ss[0] != sx[len(sx)-1] {
+		return append([]int{ss[0]}, ones(len(sx)-2)...)
+	}
+	return ss
+}
+
 func (b *builder) reduce(n *onnxlite.Node, out string) error {
 	x, err := b.input(n, 0)
 	if err != nil {
 		return err
 	}
-	r := len(b.shape(n.Inputs[0]))
-	var axes []int
-	if n.OpType == "ReduceSum" && b.opset >= 13 {
-		if b.has(n, 1) {
-			if axes, err = b.constInts(n, 1, "axes"); err != nil {
-				return err
-			}
-		}
-	} else {
-		axes = ints(n.AttrInts("axes", nil))
+	axes, noop, err := b.reduceAxes(n)
+	if err != nil {
+		return err
 	}
-	if len(axes) == 0 && n.AttrInt("noop_with_empty_axes", 0) != 0 {
+	if noop {
 		return b.set(out, x)
-	}
-	for i, a := range axes {
-		if axes[i], err = normAxis(a, r); err != nil {
-			return err
-		}
 	}
 	y, err := ops.Reduce(x, axes, n.AttrInt("keepdims", 1) != 0, n.OpType == "ReduceMean")
 	if err != nil {
 		return err
 	}
 	return b.set(out, y)
+}
+
+// reduceAxes reads the axes of ReduceSum or ReduceMean node n, normalised
+// (empty: all); noop reports an empty list with noop_with_empty_axes.
+func (b *builder) reduceAxes(n *onnxlite.Node) (axes []int, noop bool, err error) {
+	r := len(b.shape(n.Inputs[0]))
+	if n.OpType == "ReduceSum" && b.opset >= 13 {
+		if b.has(n, 1) {
+			if axes, err = b.constInts(n, 1, "axes"); err != nil {
+				return nil, false, err
+			}
+		}
+	} else {
+		axes = ints(n.AttrInts("axes", nil))
+	}
+	if len(axes) == 0 && n.AttrInt("noop_with_empty_axes", 0) != 0 {
+		return nil, true, nil
+	}
+	for i, a := range axes {
+		if axes[i], err = normAxis(a, r); err != nil {
+			return nil, false, err
+		}
+	}
+	return axes, false, nil
 }
 
 // spatialAttr reads a per-axis integer attribute, default def on each of k axes.
@@ -862,24 +924,13 @@ func (b *builder) conv(n *onnxlite.Node, out string) error {
 			return err
 		}
 	}
-	sx, sw := b.shape(n.Inputs[0]), b.shape(n.Inputs[1])
-	k := len(sx) - 2
-	if k < 1 || k > 2 {
-		return fmt.Errorf("%w: Conv on rank-%d input (1-D and 2-D spatial data only)", onnxlite.ErrUnsupported, len(sx))
-	}
-	kernel := ints(n.AttrInts("kernel_shape", nil))
-	if kernel == nil {
-		kernel = append([]int(nil), sw[2:]...)
-	}
-	strides := spatialAttr(n, "strides", k, 1)
-	dil := spatialAttr(n, "dilations", k, 1)
-	pads := spatialAttr(n, "pads", 2*k, 0)
-	pads, err = ops.ResolvePads(n.AttrString("auto_pad", "NOTSET"), sx[2:], kernel, strides, dil, pads)
+	spec, err := b.convSpec(n)
 	if err != nil {
 		return err
 	}
 	relu := b.fusedRelu(n)
-	y, err := ops.Conv(x, w, bias, ops.ConvSpec{Pads: pads, Strides: strides, Dilations: dil, Group: int(n.AttrInt("group", 1)), Relu: relu != nil})
+	spec.Relu = relu != nil
+	y, err := ops.Conv(x, w, bias, spec)
 	if err != nil {
 		return err
 	}
@@ -889,25 +940,43 @@ func (b *builder) conv(n *onnxlite.Node, out string) error {
 	return b.set(out, y)
 }
 
-func (b *builder) pool(n *onnxlite.Node, out string) error {
+// convSpec reads the attributes of Conv node n, pads resolved.
+func (b *builder) convSpec(n *onnxlite.Node) (ops.ConvSpec, error) {
+	sx, sw := b.shape(n.Inputs[0]), b.shape(n.Inputs[1])
+	k := len(sx) - 2
+	if k < 1 || k > 2 {
+		return ops.ConvSpec{}, fmt.Errorf("%w: Conv on rank-%d input (1-D and 2-D spatial data only)", onnxlite.ErrUnsupported, len(sx))
+	}
+	kernel := ints(n.AttrInts("kernel_shape", nil))
+	if kernel == nil {
+		kernel = append([]int(nil), sw[2:]...)
+	}
+	strides := spatialAttr(n, "strides", k, 1)
+	dil := spatialAttr(n, "dilations", k, 1)
+	pads, err := ops.ResolvePads(n.AttrString("auto_pad", "NOTSET"), sx[2:], kernel, strides, dil, spatialAttr(n, "pads", 2*k, 0))
+	if err != nil {
+		return ops.ConvSpec{}, err
+	}
+	return ops.ConvSpec{Pads: pads, Strides: strides, Dilations: dil, Group: int(n.AttrInt("group", 1))}, nil
+}
+
+// poolSpec reads the attributes of MaxPool or AveragePool node n, pads
+// resolved.
+func (b *builder) poolSpec(n *onnxlite.Node) (ops.PoolSpec, error) {
 	if len(n.Outputs) > 1 && n.Outputs[1] != "" {
-		return fmt.Errorf("%w: MaxPool Indices output", onnxlite.ErrUnsupported)
+		return ops.PoolSpec{}, fmt.Errorf("%w: MaxPool Indices output", onnxlite.ErrUnsupported)
 	}
 	if n.AttrInt("storage_order", 0) != 0 {
-		return fmt.Errorf("%w: MaxPool storage_order 1", onnxlite.ErrUnsupported)
-	}
-	x, err := b.input(n, 0)
-	if err != nil {
-		return err
+		return ops.PoolSpec{}, fmt.Errorf("%w: MaxPool storage_order 1", onnxlite.ErrUnsupported)
 	}
 	sx := b.shape(n.Inputs[0])
 	k := len(sx) - 2
 	if k < 1 || k > 2 {
-		return fmt.Errorf("%w: %s on rank-%d input (1-D and 2-D spatial data only)", onnxlite.ErrUnsupported, n.OpType, len(sx))
+		return ops.PoolSpec{}, fmt.Errorf("%w: %s on rank-%d input (1-D and 2-D spatial data only)", onnxlite.ErrUnsupported, n.OpType, len(sx))
 	}
 	kernel := ints(n.AttrInts("kernel_shape", nil))
 	if len(kernel) != k {
-		return fmt.Errorf("%s: expected kernel_shape with %d entries, got %v", n.OpType, k, kernel)
+		return ops.PoolSpec{}, fmt.Errorf("%s: expected kernel_shape with %d entries, got %v", n.OpType, k, kernel)
 	}
 	spec := ops.PoolSpec{
 		Kernel:          kernel,
@@ -916,7 +985,17 @@ func (b *builder) pool(n *onnxlite.Node, out string) error {
 		CeilMode:        n.AttrInt("ceil_mode", 0) != 0,
 		CountIncludePad: n.AttrInt("count_include_pad", 0) != 0,
 	}
+	var err error
 	spec.Pads, err = ops.ResolvePads(n.AttrString("auto_pad", "NOTSET"), sx[2:], kernel, spec.Strides, spec.Dilations, spatialAttr(n, "pads", 2*k, 0))
+	return spec, err
+}
+
+func (b *builder) pool(n *onnxlite.Node, out string) error {
+	spec, err := b.poolSpec(n)
+	if err != nil {
+		return err
+	}
+	x, err := b.input(n, 0)
 	if err != nil {
 		return err
 	}
@@ -937,9 +1016,21 @@ func (b *builder) pad(n *onnxlite.Node, out string) error {
 	if err != nil {
 		return err
 	}
-	mode := n.AttrString("mode", "constant")
-	var pads []int
-	var value float64
+	pads, mode, value, err := b.padArgs(n)
+	if err != nil {
+		return err
+	}
+	y, err := ops.Pad(x, pads, mode, value)
+	if err != nil {
+		return err
+	}
+	return b.set(out, y)
+}
+
+// padArgs reads the pads, mode and constant value of Pad node n, from its
+// attributes or (opset ≥ 11) its constant inputs.
+func (b *builder) padArgs(n *onnxlite.Node) (pads []int, mode string, value float64, err error) {
+	mode = n.AttrString("mode", "constant")
 	switch {
 	case b.opset < 2:
 		pads = ints(n.AttrInts("paddings", nil))
@@ -949,27 +1040,23 @@ func (b *builder) pad(n *onnxlite.Node, out string) error {
 		value = float64(n.AttrFloat("value", 0))
 	default:
 		if pads, err = b.constInts(n, 1, "pads"); err != nil {
-			return err
+			return nil, "", 0, err
 		}
 		if b.has(n, 2) {
 			v, err := b.constFloats(n, 2, "constant_value")
 			if err != nil {
-				return err
+				return nil, "", 0, err
 			}
 			if len(v) != 1 {
-				return fmt.Errorf("Pad: expected a scalar constant_value, got %d values", len(v))
+				return nil, "", 0, fmt.Errorf("Pad: expected a scalar constant_value, got %d values", len(v))
 			}
 			value = v[0]
 		}
 	}
 	if r := len(b.shape(n.Inputs[0])); len(pads) != 2*r {
-		return fmt.Errorf("Pad: expected %d pads for rank %d, got %v", 2*r, r, pads)
+		return nil, "", 0, fmt.Errorf("Pad: expected %d pads for rank %d, got %v", 2*r, r, pads)
 	}
-	y, err := ops.Pad(x, pads, mode, value)
-	if err != nil {
-		return err
-	}
-	return b.set(out, y)
+	return pads, mode, value, nil
 }
 
 // tensorFloats returns the elements of a floating-point tensor.
