@@ -46,7 +46,8 @@ func (n Numbers) MarshalJSON() ([]byte, error) {
 //	              "reference" (the reference set's name)},
 //	 "explanations": [{"index", "target", "outputs", "attributions",
 //	                   "shape", "baseline_outputs", "completeness",
-//	                   "points", "error", "groups"}]}
+//	                   "points", "exact", "pieces", "exact_skipped",
+//	                   "error", "groups"}]}
 //
 // A failed sample has "error" and null results.
 type Document struct {
@@ -74,8 +75,15 @@ type ExplanationDocument struct {
 	BaselineOutputs Numbers                `json:"baseline_outputs"`
 	Completeness    *gradattr.Completeness `json:"completeness"`
 	// Points is the number of gradient evaluations spent.
-	Points int     `json:"points"`
-	Error  *string `json:"error"`
+	Points int `json:"points"`
+	// Exact is present, true, when integrated gradients integrated
+	// exactly, over Pieces pieces of the path (the most of any baseline).
+	Exact  bool `json:"exact,omitempty"`
+	Pieces int  `json:"pieces,omitempty"`
+	// ExactSkipped says why automatic integrated gradients integrated by
+	// quadrature on a model that may offer the exact integral.
+	ExactSkipped string  `json:"exact_skipped,omitempty"`
+	Error        *string `json:"error"`
 	// Groups is present with feature groups: the attributions summed per
 	// group.
 	Groups *gradattr.GroupedResult `json:"groups,omitempty"`
@@ -112,6 +120,7 @@ func (r *Report) Document() *Document {
 			}
 			j.Completeness = res.Completeness
 			j.Points = res.Cost.GradientEvals
+			j.Exact, j.Pieces, j.ExactSkipped = res.Settings.Exact, res.Settings.Pieces, res.Settings.ExactSkipped
 			j.Groups = e.Grouped
 		}
 		doc.Explanations = append(doc.Explanations, j)

@@ -94,6 +94,16 @@ func (b *batcher) Forward(ctx context.Context, x []float64, n int) ([]float64, e
 
 // Gradient evaluates n samples and their gradients, stacked with other
 // waiting calls.
+// PiecewiseLinear and IntegratePath pass exact path integrals through to
+// the model without stacking: an exact integral is one call per sample
+// and baseline, which walks the path itself.
+func (b *batcher) PiecewiseLinear() error { return piecewiseLinear(b.m) }
+
+// IntegratePath is the model's (see PiecewiseLinear).
+func (b *batcher) IntegratePath(ctx context.Context, from, to []float64, target, maxPieces int) ([]float64, int, error) {
+	return integratePath(ctx, b.m, from, to, target, maxPieces)
+}
+
 func (b *batcher) Gradient(ctx context.Context, x []float64, n int, target []int) ([]float64, []float64, error) {
 	return b.do(ctx, &stackedCall{grad: true, x: x, n: n, target: target})
 }

@@ -2,6 +2,7 @@ package httpapi
 
 import (
 	"context"
+	"errors"
 	"net/http"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -59,7 +60,7 @@ func newMetrics() *metrics {
 	})
 	m.passes = prometheus.NewCounterVec(prometheus.CounterOpts{
 		Name: "apportion_model_passes_total",
-		Help: "Calls into the network, by kind (forward, gradient: one forward and one backward pass).",
+		Help: "Calls into the network, by kind (forward; gradient: one forward and one backward pass; path: one exact path integral).",
 	}, []string{"kind"})
 	m.points = prometheus.NewCounterVec(prometheus.CounterOpts{
 		Name: "apportion_model_points_total",
@@ -105,3 +106,33 @@ func (c *countingModel) Gradient(ctx context.Context, x []float64, n int, target
 	c.metrics.countPass("gradient", n)
 	return c.m.Gradient(ctx, x, n, target)
 }
+
+// PiecewiseLinear is the model's (see gradattr.PathIntegrator).
+func (c *countingModel) PiecewiseLinear() error { return piecewiseLinear(c.m) }
+
+// IntegratePath counts an exact path integral as a "path" pass of one
+// point.
+func (c *countingModel) IntegratePath(ctx context.Context, from, to []float64, target, maxPieces int) ([]float64, int, error) {
+	c.metrics.countPass("path", 1)
+	return integratePath(ctx, c.m, from, to, target, maxPieces)
+}
+
+// piecewiseLinear and integratePath pass exact path integrals through to
+// m, refusing with the reason when m does not offer them.
+func piecewiseLinear(m gradattr.Model) error {
+	pi, ok := m.(gradattr.PathIntegrator)
+	if !ok {
+		return errNoPathIntegral
+	}
+	return pi.PiecewiseLinear()
+}
+
+func integratePath(ctx context.Context, m gradattr.Model, from, to []float64, target, maxPieces int) ([]float64, int, error) {
+	pi, ok := m.(gradattr.PathIntegrator)
+	if !ok {
+		return nil, 0, errNoPathIntegral
+	}
+	return pi.IntegratePath(ctx, from, to, target, maxPieces)
+}
+
+var errNoPathIntegral = errors.New("the model does not integrate its gradient along a path")

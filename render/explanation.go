@@ -143,8 +143,16 @@ func Table(w io.Writer, rep *explain.Report) error {
 			fmt.Fprintf(w, "completeness: sum %s  expected %s  gap %s  relative gap %s%s  %s\n",
 				Number(cp.Sum), Number(cp.Expected), signed(cp.Gap), Number(cp.RelativeGap), tol, verdict)
 		}
-		fmt.Fprintf(w, "cost: %d gradient evaluations, %d forward passes, %s\n",
-			r.Cost.GradientEvals, r.Cost.ForwardPasses, r.Cost.Elapsed.Round(10_000))
+		if r.Settings.Exact {
+			fmt.Fprintf(w, "cost: exact integral over %d pieces of the path, %d forward passes, %s\n",
+				r.Settings.Pieces, r.Cost.ForwardPasses, r.Cost.Elapsed.Round(10_000))
+		} else {
+			fmt.Fprintf(w, "cost: %d gradient evaluations, %d forward passes, %s\n",
+				r.Cost.GradientEvals, r.Cost.ForwardPasses, r.Cost.Elapsed.Round(10_000))
+		}
+		if r.Settings.ExactSkipped != "" {
+			fmt.Fprintf(w, "by quadrature, not exact: %s\n", r.Settings.ExactSkipped)
+		}
 	}
 	return nil
 }
