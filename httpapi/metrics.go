@@ -117,6 +117,56 @@ func (c *countingModel) IntegratePath(ctx context.Context, from, to []float64, t
 	return integratePath(ctx, c.m, from, to, target, maxPieces)
 }
 
+// GradientSum counts a gradient sum as a gradient pass of n points.
+func (c *countingModel) GradientSum(ctx context.Context, x []float64, n int, weight []float64, target int) ([]float64, []float64, error) {
+	c.metrics.countPass("gradient", n)
+	return gradientSum(ctx, c.m, x, n, weight, target)
+}
+
+// PathGradientSum counts a gradient sum as a gradient pass of its points.
+func (c *countingModel) PathGradientSum(ctx context.Context, from, to, alpha, weight []float64, target int) ([]float64, []float64, error) {
+	c.metrics.countPass("gradient", len(alpha))
+	return pathGradientSum(ctx, c.m, from, to, alpha, weight, target)
+}
+
+// gradientSum and pathGradientSum pass gradient sums through to m, or
+// form them from m's gradients, point by point in order, when m does not
+// offer them.
+func gradientSum(ctx context.Context, m gradattr.Model, x []float64, n int, weight []float64, target int) ([]float64, []float64, error) {
+	if s, ok := m.(gradattr.GradientSummer); ok {
+		return s.GradientSum(ctx, x, n, weight, target)
+	}
+	tgt := make([]int, n)
+	for i := range tgt {
+		tgt[i] = target
+	}
+	out, g, err := m.Gradient(ctx, x, n, tgt)
+	if err != nil {
+		return nil, nil, err
+	}
+	size := len(g) / max(n, 1)
+	sum := make([]float64, size)
+	for i, w := range weight {
+		for j, v := range g[i*size : (i+1)*size] {
+			sum[j] += w * v
+		}
+	}
+	return out, sum, nil
+}
+
+func pathGradientSum(ctx context.Context, m gradattr.Model, from, to, alpha, weight []float64, target int) ([]float64, []float64, error) {
+	if s, ok := m.(gradattr.GradientSummer); ok {
+		return s.PathGradientSum(ctx, from, to, alpha, weight, target)
+	}
+	x := make([]float64, 0, len(alpha)*len(from))
+	for _, a := range alpha {
+		for j := range from {
+			x = append(x, from[j]+a*(to[j]-from[j]))
+		}
+	}
+	return gradientSum(ctx, m, x, len(alpha), weight, target)
+}
+
 // piecewiseLinear and integratePath pass exact path integrals through to
 // m, refusing with the reason when m does not offer them.
 func piecewiseLinear(m gradattr.Model) error {

@@ -29,7 +29,8 @@ type Head struct {
 	inSize   int
 	outShape []int // per sample
 	outSize  int
-	path     *pathPlans // built on first use by the exact path integral
+	path     *pathPlans   // built on first use by the exact path integral
+	sums     *prefixPlans // found on first use by the gradient sums
 }
 
 // Head returns the view of the output chosen by sel. The Network must have
@@ -99,7 +100,7 @@ func (nw *Network) Head(sel Selection) (h *Head, err error) {
 	if !isFloat(vs.DType) {
 		return nil, fmt.Errorf("nn: head: value %q: %w: element type %v", value, ErrBadRequest, vs.DType)
 	}
-	h = &Head{nw: nw, value: value, outputs: []string{value}, inShape: shapes[0][1:], outShape: vs.Shape[1:], path: &pathPlans{}}
+	h = &Head{nw: nw, value: value, outputs: []string{value}, inShape: shapes[0][1:], outShape: vs.Shape[1:], path: &pathPlans{}, sums: &prefixPlans{}}
 	h.inSize, h.outSize = prod(h.inShape), prod(h.outShape)
 	return h, nil
 }

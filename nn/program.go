@@ -13,9 +13,13 @@ import (
 // request says what a program computes: the named values (nil means the
 // graph outputs) and, when grad is set, the gradient of Σ_i out[i, target[i]]
 // of the single requested value with respect to the first runtime input.
+// With from set the program starts at that value instead of the runtime
+// input: its nodes are those after the affine prefix that computes it
+// (summed.go), and it is the program's one input.
 type request struct {
 	outputs []string
 	grad    bool
+	from    string
 }
 
 // appendKey appends a text that tells requests apart to b.
@@ -23,7 +27,11 @@ func (r request) appendKey(b []byte) []byte {
 	for _, o := range r.outputs {
 		b = strconv.AppendQuote(b, o)
 	}
-	return strconv.AppendBool(append(b, '/'), r.grad)
+	b = strconv.AppendBool(append(b, '/'), r.grad)
+	if r.from != "" {
+		b = strconv.AppendQuote(append(b, '/'), r.from)
+	}
+	return b
 }
 
 // program is one compiled configuration: exact input shapes and a request.
@@ -356,13 +364,21 @@ func (nw *Network) program(shapes [][]int, req request) (*program, error) {
 }
 
 func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
-	relax, err := nw.needsRelax(shapes)
+	inShapes := shapes
+	if req.from != "" {
+		// Shapes are inferred from the runtime input's.
+		var ok bool
+		if inShapes, ok = nw.sampleShapes(shapes[0][0]); !ok {
+			return nil, fmt.Errorf("%w: the input's per-sample shape is not known", ErrShape)
+		}
+	}
+	relax, err := nw.needsRelax(inShapes)
 	if err != nil {
 		return nil, err
 	}
 	var st *onnxlite.Static
 	if relax {
-		st, err = nw.inferRelaxed(shapes)
+		st, err = nw.inferRelaxed(inShapes)
 		if errors.Is(err, errBatchInconsistent) || (err != nil && !errors.Is(err, ErrShape)) {
 			// Run sample by sample on the model as exported.
 			one := make([][]int, len(shapes))
@@ -377,10 +393,15 @@ func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
 			return &program{nw: nw, perSample: true, inner: inner, batch: shapes[0][0], inShapes: shapes, req: req, outNames: inner.outNames}, nil
 		}
 	} else {
-		st, err = onnxlite.Infer(nw.model, nw.inputMap(shapes))
+		st, err = onnxlite.Infer(nw.model, nw.inputMap(inShapes))
 	}
 	if err != nil {
 		return nil, err
+	}
+	if req.from != "" {
+		if st, err = suffixStatic(st, req.from); err != nil {
+			return nil, err
+		}
 	}
 	p := &program{nw: nw, static: st, inShapes: shapes, req: req}
 	p.outNames = req.outputs
