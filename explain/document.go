@@ -47,7 +47,8 @@ func (n Numbers) MarshalJSON() ([]byte, error) {
 //	 "explanations": [{"index", "target", "outputs", "attributions",
 //	                   "shape", "baseline_outputs", "completeness",
 //	                   "points", "exact", "pieces", "exact_skipped",
-//	                   "error", "groups"}]}
+//	                   "error", "groups",
+//	                   "warnings": [{"code", "message", "suggest"}]}]}
 //
 // A failed sample has "error" and null results.
 type Document struct {
@@ -87,6 +88,8 @@ type ExplanationDocument struct {
 	// Groups is present with feature groups: the attributions summed per
 	// group.
 	Groups *gradattr.GroupedResult `json:"groups,omitempty"`
+	// Warnings are the result's warnings, [] for none.
+	Warnings []Warning `json:"warnings"`
 }
 
 // Document returns the report's document.
@@ -102,7 +105,7 @@ func (r *Report) Document() *Document {
 		shape = []int{}
 	}
 	for _, e := range r.Explanations {
-		j := ExplanationDocument{Index: e.Index, Shape: shape}
+		j := ExplanationDocument{Index: e.Index, Shape: shape, Warnings: []Warning{}}
 		if e.Err != nil {
 			msg := e.Err.Error()
 			j.Error = &msg
@@ -122,6 +125,9 @@ func (r *Report) Document() *Document {
 			j.Points = res.Cost.GradientEvals
 			j.Exact, j.Pieces, j.ExactSkipped = res.Settings.Exact, res.Settings.Pieces, res.Settings.ExactSkipped
 			j.Groups = e.Grouped
+			if e.Warnings != nil {
+				j.Warnings = e.Warnings
+			}
 		}
 		doc.Explanations = append(doc.Explanations, j)
 	}
