@@ -76,7 +76,10 @@ type IGOptions struct {
 // errors of opposite sign cancel in it, and on ReLU networks a coarse rule
 // can meet the gap while single attributions are off by several percent.
 // Every pass sends its points to the model in batches of BatchSize, in node
-// order. Completeness.OK reports whether the tolerance was met.
+// order; a model that is a GradientSummer gets them instead as weighted
+// sums, one for the end nodes and one for the others (at most 4096 points
+// a call), and adds them up as it forms them. Completeness.OK reports
+// whether the tolerance was met.
 //
 // With several baselines the attributions are the mean of those against
 // each baseline, and completeness is checked against the mean baseline
@@ -256,6 +259,35 @@ func (g *integrator) use(j int, _, grad []float64) {
 	}
 }
 
+// evaluate adds the gradients at the nodes to the running sums: from a
+// GradientSummer, one sum per kind of node (end nodes and the others), or
+// point by point.
+func (g *integrator) evaluate() error {
+	s := g.e.summer()
+	if s == nil {
+		return g.e.gradients(len(g.nodes), g.fill, g.use)
+	}
+	for _, end := range []bool{true, false} {
+		var alpha, weight []float64
+		for _, n := range g.nodes {
+			if n.end == end {
+				alpha, weight = append(alpha, n.alpha), append(weight, n.weight)
+			}
+		}
+		if len(alpha) == 0 {
+			continue
+		}
+		sum := g.sumIn
+		if end {
+			sum = g.sumEnd
+		}
+		if err := g.e.pathSum(s, g.xb, alpha, weight, sum); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
 // run integrates from xb to x along sched, refining while done(attr) is
 // false, and returns a fresh attribution slice.
 func (g *integrator) run(xb []float64, sched *schedule, done func(attr []float64) bool) ([]float64, error) {
@@ -268,7 +300,7 @@ func (g *integrator) run(xb []float64, sched *schedule, done func(attr []float64
 	attr := make([]float64, g.e.size)
 	g.nodes = sched.initial()
 	for {
-		if err := g.e.gradients(len(g.nodes), g.fill, g.use); err != nil {
+		if err := g.evaluate(); err != nil {
 			return nil, err
 		}
 		cEnd, cIn := sched.coefficients()
