@@ -38,7 +38,7 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 	if err != nil {
 		return nil, err
 	}
-	e := &Explainer{model: m, head: withoutSums(head), settings: s, input: input, output: output, shape: head.InputShape()}
+	e := &Explainer{model: m, head: head, settings: s, input: input, output: output, shape: head.InputShape()}
 	e.size = samples.Product(e.shape)
 	if n := head.OutputSize(); s.Target >= n {
 		return nil, fieldError(FieldTarget, fmt.Sprintf(" must be top or an index from 0 to %d (output %q has %d values), got %d", n-1, output, n, s.Target))
@@ -303,21 +303,4 @@ func (e *Explainer) baselineOutputs(ctx context.Context, x []float64, b gradattr
 		return nil
 	}
 	return out
-}
-
-// withoutSums hides a head's gradient sums (gradattr.GradientSummer) from
-// the methods, keeping exact path integrals, so that explanations round as
-// they did point by point.
-func withoutSums(head gradattr.Model) gradattr.Model {
-	if _, sums := head.(gradattr.GradientSummer); !sums {
-		return head
-	}
-	pi, ok := head.(gradattr.PathIntegrator)
-	if !ok {
-		return struct{ gradattr.Model }{head}
-	}
-	return struct {
-		gradattr.Model
-		gradattr.PathIntegrator
-	}{head, pi}
 }
