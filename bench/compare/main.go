@@ -68,6 +68,7 @@ func main() {
 	python := flag.String("python", "/usr/bin/python3", "Python interpreter with torch and onnx")
 	script := flag.String("torch-side", filepath.Join("bench", "torch_side.py"), "PyTorch side script")
 	models := flag.String("only", "", "comma-separated zoo models (and demos, for the IG rows) to run (default all)")
+	igOnly := flag.String("ig", "", "comma-separated models of the IG-to-0.1% rows (default: those -only names, or the zoo and both demos; none for no rows)")
 	node := flag.String("node", "node", "node, for the ONNX Runtime forward anchor (skipped when absent)")
 	ortSide := flag.String("ort-side", filepath.Join("bench", "ort_side.js"), "ONNX Runtime side script")
 	ortModules := flag.String("ort-modules", os.Getenv("NODE_PATH"), "node_modules directory holding onnxruntime-node (default $NODE_PATH)")
@@ -92,6 +93,10 @@ func main() {
 	if *models != "" {
 		cfg.only = strings.Split(*models, ",")
 	}
+	cfg.ig = cfg.only
+	if *igOnly != "" {
+		cfg.ig = strings.Split(*igOnly, ",")
+	}
 	if err := run(cfg); err != nil {
 		fmt.Fprintln(os.Stderr, "compare:", err)
 		os.Exit(1)
@@ -104,6 +109,8 @@ type config struct {
 	dir, out       string
 	python, script string
 	only           []string
+	// ig are the models of the IG rows (nil: all).
+	ig []string
 	// node runs ortSide with NODE_PATH=ortModules.
 	node, ortSide, ortModules string
 }
@@ -308,7 +315,7 @@ func run(cfg config) error {
 			}
 		}
 		if threads == 1 {
-			for _, name := range igModels(cfg.dir, cfg.only) {
+			for _, name := range igModels(cfg.dir, cfg.ig) {
 				r, err := measureIG(gp, tp, name, cfg.reps, target)
 				if err != nil {
 					return fmt.Errorf("%s IG to 0.1%%: %w", name, err)
