@@ -10,6 +10,10 @@ answer per line on stdout:
   {"cmd": "check", "model": M, "n": N}             -> outputs and input gradients
   {"cmd": "time", "model": M, "task": T, "iters": K, "samples": S}
                                                    -> seconds for K calls
+  {"cmd": "forward", "path": P, "n": N}            -> outputs of N input rows
+  {"cmd": "rows", "path": P, "rows": R, "batch": B, "iters": K}
+                                                   -> seconds for K times R rows
+                                                      forward, B per call
 
   {"cmd": "igsweep", "path": P, "x": X, "target": T, "ref": R}
                                                    -> the smallest doubling of the
@@ -20,7 +24,10 @@ Tasks are the ones bench/compare times on the Go side: predict, gradient,
 ig64 (one batched pass of 64 trapezoid points), smoothgrad50 (one batched
 pass of 50 noisy copies), ig64x (ig64 for each of S samples in turn),
 forward (a batch of S samples, no gradient) and igtol (IG with "points"
-trapezoid points at the sample "x" of the model at "path").
+trapezoid points at the sample "x" of the model at "path"). The "forward"
+and "rows" commands load any model file of the same operators plus Sub and
+Div by a constant and Softmax (the demo models): the forward-only table of
+bench/compare.
 
 Run with Debian's interpreter: /usr/bin/python3 bench/torch_side.py --threads 1
 """
@@ -53,8 +60,8 @@ def attr(node, name, default=None):
     return default
 
 
-class Affine(nn.Module):
-    """x − c or x / c with a constant c (ONNX Sub and Div by an initializer)."""
+class Constant(nn.Module):
+    """x − c or x / c for a constant c (ONNX Sub and Div with an initializer)."""
 
     def __init__(self, op, c):
         super().__init__()
@@ -86,7 +93,7 @@ def build(path):
         elif op == "Relu":
             layers.append(nn.ReLU())
         elif op in ("Sub", "Div"):
-            layers.append(Affine(op, inits[node.input[1]]))
+            layers.append(Constant(op, inits[node.input[1]]))
         elif op == "Softmax":
             assert attr(node, "axis", -1) in (1, -1)
             layers.append(nn.Softmax(dim=1))
@@ -101,7 +108,7 @@ def build(path):
             assert attr(node, "transA", 0) == 0
             assert attr(node, "alpha", 1.0) == 1.0 and attr(node, "beta", 1.0) == 1.0
             w = inits[node.input[1]]
-            if attr(node, "transB", 0) == 0:
+            if attr(node, "transB", 0) == 0:  # B is (in, out); Linear keeps (out, in)
                 w = w.T
             b = inits[node.input[2]]
             lin = nn.Linear(w.shape[1], w.shape[0])
@@ -186,16 +193,42 @@ class Side:
         self.warm = set()
 
     def model(self, name):
-        if name not in self.models:
-            self.models[name] = build(os.path.join(self.dir, name + ".onnx"))
-        return self.models[name]
+        return self.file(os.path.join(self.dir, name + ".onnx"))
+
+    def file(self, path):
+        if path not in self.models:
+            self.models[path] = build(path)
+        return self.models[path]
+
+    def forward(self, req):
+        model, shape = self.file(req["path"])
+        with torch.no_grad():
+            out = model(bench_input(shape, req.get("n", 1)))
+        return {"out": out.flatten().tolist()}
+
+    def rows(self, req):
+        """Forward passes of req["rows"] rows in batches of req["batch"],
+        req["iters"] times: the model cost of a forward-only method."""
+        model, shape = self.file(req["path"])
+        total, batch = req["rows"], req["batch"]
+        x = bench_input(shape, min(batch, total))
+
+        def call():
+            with torch.no_grad():
+                for lo in range(0, total, batch):
+                    model(x[:min(batch, total - lo)])
+        key = (req["path"], total, batch)
+        if key not in self.warm:
+            call()
+            self.warm.add(key)
+        t0 = time.perf_counter()
+        for _ in range(req["iters"]):
+            call()
+        return {"seconds": time.perf_counter() - t0}
 
     def case(self, req):
         """The model at req["path"] and the sample req["x"] in its shape."""
-        path = req["path"]
-        if path not in self.models:
-            self.models[path] = build(path)
-        model, shape = self.models[path]
+        model, shape = self.file(req["path"])
         return model, torch.tensor(req["x"], dtype=torch.float32).reshape([1] + shape)
 
     def igsweep(self, req):
@@ -296,6 +329,10 @@ def main():
                 resp = side.igsweep(req)
             elif cmd == "time":
                 resp = side.time(req)
+            elif cmd == "forward":
+                resp = side.forward(req)
+            elif cmd == "rows":
+                resp = side.rows(req)
             else:
                 raise ValueError("unknown cmd %r" % cmd)
         except Exception as e:  # report, keep serving

@@ -4,8 +4,11 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"strings"
 
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/nn"
+	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
 
@@ -19,6 +22,9 @@ type Explainer struct {
 	output   string
 	shape    []int // of one sample
 	size     int
+	// held are the model's other runtime inputs (Hold): one batch per
+	// input of Model.Inputs, nil at the attributed one.
+	held []*samples.Batch
 }
 
 // New joins a compiled model, the output explained (head, from
@@ -76,14 +82,51 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 	if s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.Kind == gradattr.BaselineBlur && len(e.shape) < 2 {
 		return nil, fieldError(FieldBaseline, " blur needs samples with at least two axes (height, width), got shape ", samples.ShapeString(e.shape))
 	}
-	if s.Groups != nil {
-		if _, err := gradattr.Cover(e.size, s.Groups); err != nil {
-			e := fieldError(FieldGroups, ": ", err)
-			e.Input = true
-			return nil, e
-		}
+	if err := e.groups(); err != nil {
+		return nil, err
 	}
 	return e, nil
+}
+
+// groups checks the settings' groups against the samples, and makes the
+// groups of a patch grid.
+func (e *Explainer) groups() error {
+	s := &e.settings
+	for _, f := range []Field{FieldSuperpixels, FieldPatch} {
+		if s.given[f] && len(e.shape) < 2 {
+			return fieldError(f, " needs samples with at least two axes (height, width), got shape ", samples.ShapeString(e.shape))
+		}
+	}
+	if s.Patch != [2]int{} {
+		if s.Groups != nil {
+			return fieldError(FieldPatch, " and ", FieldGroups, " both make the groups; give one")
+		}
+		var err error
+		if s.Groups, err = gradattr.GridGroups(e.shape, s.Patch[0], s.Patch[1]); err != nil {
+			return fieldError(FieldPatch, ": ", err)
+		}
+	}
+	if s.Superpixels > 0 && s.Groups != nil {
+		return fieldError(FieldSuperpixels, " and ", FieldGroups, " both make the groups; give one")
+	}
+	grouped := s.Groups != nil || s.Superpixels > 0
+	if s.given[FieldWindow] && grouped {
+		return fieldError(FieldWindow, " moves over the image without groups; with groups each group is occluded in turn")
+	}
+	if s.Groups == nil {
+		return nil
+	}
+	cov, err := gradattr.Cover(e.size, s.Groups)
+	if err == nil && s.Method.Perturbs() && !cov.Partition() {
+		err = fmt.Errorf("%s switches groups on and off, so each feature must be in exactly one group; %d features are in none and %d in more than one",
+			s.Method, len(cov.Missing), len(cov.Overlapping))
+	}
+	if err != nil {
+		e := fieldError(FieldGroups, ": ", err)
+		e.Input = true
+		return e
+	}
+	return nil
 }
 
 // options are the method's options for explaining samples of batch (nil
@@ -94,6 +137,9 @@ func (e *Explainer) options(batch *samples.Batch, name func(*Dataset) string) (g
 	o := gradattr.Options{
 		Method: s.Method, Points: s.Steps, Rule: s.Rule, Tolerance: s.Tolerance, Exact: s.Exact,
 		Samples: s.Samples, Noise: s.Noise, Seed: s.Seed, Absolute: s.Absolute, Variant: s.Variant,
+		ReferenceRows: s.ReferenceRows, Estimator: s.Estimator, Coalitions: s.Coalitions,
+		KernelWidth: s.KernelWidth, Window: s.Window, Stride: s.Stride,
+		Groups: s.Groups, Superpixels: s.Superpixels, Compactness: s.Compactness,
 	}
 	if s.Reference != nil && s.Reference.Batch != nil {
 		o.Reference = s.Reference.Batch.Rows()
@@ -156,7 +202,83 @@ func (e *Explainer) record(o gradattr.Options, name func(*Dataset) string) map[s
 	if s.Reference != nil && s.NeedsReference() {
 		rec["reference"] = name(s.Reference)
 	}
+	if s.Patch != [2]int{} {
+		rec["patch"] = fmt.Sprintf("%dx%d", s.Patch[0], s.Patch[1])
+	}
 	return rec
+}
+
+// Hold gives the values of the model's other runtime inputs: one batch per
+// input of Model.Inputs, in order, nil at the input explanations attribute
+// to. Each batch holds as many samples as the batch Explain gets, or one
+// sample, which every sample then shares: sample i is explained with the
+// other inputs at their sample i, held fixed while the method varies the
+// attributed input.
+func (e *Explainer) Hold(inputs []*samples.Batch) error {
+	feeds := e.model.Inputs()
+	if len(inputs) != len(feeds) {
+		return fmt.Errorf("expected one input per model input (%d: %s), got %d", len(feeds), inputNames(feeds), len(inputs))
+	}
+	for i, b := range inputs {
+		if feeds[i].Name != e.input.Name && b == nil {
+			return fmt.Errorf("input %q: no samples given", feeds[i].Name)
+		}
+	}
+	e.held = inputs
+	return nil
+}
+
+func inputNames(vis []*onnxlite.ValueInfo) string {
+	names := make([]string, len(vis))
+	for i, v := range vis {
+		names[i] = v.Name
+	}
+	return strings.Join(names, ", ")
+}
+
+// headFor returns the head that explains sample i: e's, with the other
+// inputs held at their sample i.
+func (e *Explainer) headFor(i int) (gradattr.Model, error) {
+	if len(e.model.Inputs()) == 1 {
+		return e.head, nil
+	}
+	if e.held == nil {
+		return nil, fmt.Errorf("the model has %d inputs (%s): give samples for each", len(e.model.Inputs()), inputNames(e.model.Inputs()))
+	}
+	w, ok := e.head.(interface {
+		With([]*onnxlite.Tensor) (*nn.Head, error)
+	})
+	if !ok {
+		return nil, fmt.Errorf("the head explained cannot hold the model's other inputs")
+	}
+	feeds := e.model.Inputs()
+	ts := make([]*onnxlite.Tensor, len(feeds))
+	for k, b := range e.held {
+		if b == nil || feeds[k].Name == e.input.Name {
+			continue
+		}
+		j := i
+		if b.Samples == 1 {
+			j = 0
+		}
+		if j >= b.Samples {
+			return nil, fmt.Errorf("input %q: %d samples, no sample %d", feeds[k].Name, b.Samples, i)
+		}
+		if b.Bad[j] != nil {
+			return nil, fmt.Errorf("input %q: %w", feeds[k].Name, b.Bad[j])
+		}
+		t, err := b.SampleTensor(j, samples.SpecOf(feeds[k]))
+		if err != nil {
+			return nil, fmt.Errorf("input %q: %w", feeds[k].Name, err)
+		}
+		ts[k] = t
+	}
+	var h gradattr.Model
+	err := guard(func() (err error) {
+		h, err = w.With(ts)
+		return err
+	})
+	return h, err
 }
 
 // Attribute explains one row x. A mean baseline needs a reference set
@@ -196,11 +318,13 @@ type Explanation struct {
 	Values []float64
 	// Result is the attribution; nil when Err is set.
 	Result *gradattr.Result
-	// BaselineOutputs are the model's outputs at the baseline, when there
-	// is one baseline (for gradient × input, the zero input); nil otherwise
-	// or when they could not be computed.
+	// BaselineOutputs are the model's outputs at the baseline: the
+	// method's own (gradattr.Result.BaselineOutputs) when it has them,
+	// else those at the one baseline (for gradient × input, the zero
+	// input); nil when there are several or they could not be computed.
 	BaselineOutputs []float64
-	// Grouped sums the attributions over Settings.Groups.
+	// Grouped is the attributions per group of Settings.Groups or of the
+	// superpixels (gradattr.Result.Groups).
 	Grouped *gradattr.GroupedResult
 	// Warnings say what the result's numbers do not: that they are near
 	// zero because the output is saturated or does not change.
@@ -244,27 +368,35 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 	if err != nil {
 		return nil, err
 	}
+	for k, h := range e.held {
+		if h != nil && h.Samples != 1 && h.Samples != b.Samples {
+			return nil, fmt.Errorf("input %q: %d samples, expected one or as many as the %d of %s", e.model.Inputs()[k].Name, h.Samples, b.Samples, b.Name)
+		}
+	}
 	rep := &Report{Model: e.model, Input: e.input.Name, Output: e.output, Settings: e.settings, Options: o, Batch: b,
 		record: e.record(o, byName)}
 	for i := 0; i < b.Samples; i++ {
 		x := b.Sample(i)
 		ex := Explanation{Index: i, Values: x}
+		head, err := e.headFor(i)
 		switch {
 		case b.Bad[i] != nil:
 			ex.Err = b.Bad[i]
 		case samples.CheckFinite(x) != nil:
 			ex.Err = samples.CheckFinite(x)
+		case err != nil:
+			ex.Err = err
 		default:
-			ex.Result, ex.Err = gradattr.Attribute(ctx, e.head, x, e.settings.Target, o)
+			ex.Result, ex.Err = gradattr.Attribute(ctx, head, x, e.settings.Target, o)
 		}
 		if ex.Err == nil {
-			if b, ok := reportedBaseline(o); ok {
-				ex.BaselineOutputs = e.baselineOutputs(ctx, x, b)
+			if ex.Result.BaselineOutputs != nil {
+				ex.BaselineOutputs = ex.Result.BaselineOutputs
+			} else if b, ok := reportedBaseline(o); ok {
+				ex.BaselineOutputs = e.baselineOutputs(ctx, head, x, b)
 			}
 			ex.Warnings = e.warnings(x, ex.Result)
-			if e.settings.Groups != nil {
-				ex.Grouped, ex.Err = ex.Result.Grouped(e.settings.Groups)
-			}
+			ex.Grouped = ex.Result.Groups
 		}
 		rep.Explanations = append(rep.Explanations, ex)
 		if progress != nil {
@@ -289,14 +421,14 @@ func reportedBaseline(o gradattr.Options) (gradattr.Baseline, bool) {
 
 // baselineOutputs evaluates the model at the baseline of sample x; nil when
 // that fails (the attribution itself has succeeded, so the sample is kept).
-func (e *Explainer) baselineOutputs(ctx context.Context, x []float64, b gradattr.Baseline) []float64 {
+func (e *Explainer) baselineOutputs(ctx context.Context, head gradattr.Model, x []float64, b gradattr.Baseline) []float64 {
 	var out []float64
 	err := guard(func() error {
 		xb, err := b.Build(x, e.shape)
 		if err != nil {
 			return err
 		}
-		out, err = e.head.Forward(ctx, xb, 1)
+		out, err = head.Forward(ctx, xb, 1)
 		return err
 	})
 	if err != nil {

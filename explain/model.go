@@ -40,6 +40,10 @@ type Model struct {
 	Graph *onnxlite.Model
 	// Meta holds the names of its features and classes.
 	Meta modelmeta.Meta
+	// InputName names the runtime input explanations attribute to; empty
+	// means the first floating-point input. A model with other runtime
+	// inputs holds them at each sample's values (Explainer.Hold).
+	InputName string
 
 	net *nn.Network
 }
@@ -105,18 +109,31 @@ func (m *Model) Inputs() []*onnxlite.ValueInfo {
 	return out
 }
 
-// Input returns the spec of the model's one runtime input, the one an
-// explanation attributes to.
+// Input returns the spec of the runtime input an explanation attributes
+// to: the one InputName names, or the first floating-point input the model
+// computes with (not one it reads only as a parameter, such as Resize's
+// scales).
 func (m *Model) Input() (samples.Spec, error) {
 	feeds := m.Inputs()
-	if len(feeds) != 1 {
-		names := make([]string, len(feeds))
-		for i, f := range feeds {
-			names[i] = f.Name
+	uses := onnxlite.InputUses(m.Graph)
+	names := make([]string, len(feeds))
+	for i, f := range feeds {
+		names[i] = f.Name
+		data := !uses[f.Name].CompileTime() && !uses[f.Name].Unread
+		if m.InputName == "" && data && f.Type != nil && f.Type.Kind == onnxlite.KindTensor && floating(f.Type.Elem) ||
+			m.InputName != "" && f.Name == m.InputName {
+			return samples.SpecOf(f), nil
 		}
-		return samples.Spec{}, fmt.Errorf("explain needs a model with one runtime input, this one has %d (%s)", len(feeds), strings.Join(names, ", "))
 	}
-	return samples.SpecOf(feeds[0]), nil
+	if m.InputName != "" {
+		return samples.Spec{}, fmt.Errorf("the model has no input %q (inputs: %s)", m.InputName, strings.Join(names, ", "))
+	}
+	return samples.Spec{}, fmt.Errorf("the model has no floating-point input to attribute to (inputs: %s): token ids and other integers have no gradient", strings.Join(names, ", "))
+}
+
+// floating reports whether dt is a floating-point element type.
+func floating(dt onnxlite.DataType) bool {
+	return dt == onnxlite.Float || dt == onnxlite.Double || dt == onnxlite.Float16 || dt == onnxlite.BFloat16
 }
 
 // Output returns the name of the output called name, the first output
@@ -145,7 +162,8 @@ func (m *Model) ReadOptions(keepBad bool) samples.Options {
 	return samples.Options{KeepBad: keepBad, Features: m.Meta.Features}
 }
 
-// CompileOptions tune Compile.
+// CompileOptions tune Compile. The zero value compiles for the float32
+// engine.
 type CompileOptions struct {
 	// InputShapes gives the per-sample shape of each input whose declared
 	// shape leaves a dimension after the batch open (see OpenShapes).
@@ -154,13 +172,29 @@ type CompileOptions struct {
 	// across (nn.Options.Parallel): one-shot runs use every core, servers
 	// 1, since their concurrency comes from requests.
 	Parallel int
+	// DType is the element type the engine computes in: nn.Float32 (the
+	// default), or nn.Float64 for values beyond the float32 range and
+	// reference-grade results (see ParsePrecision).
+	DType nn.DType
+}
+
+// ParsePrecision reads the name of an engine precision: float32 (also
+// for ""), or float64.
+func ParsePrecision(s string) (nn.DType, error) {
+	switch s {
+	case "float32", "":
+		return nn.Float32, nil
+	case "float64":
+		return nn.Float64, nil
+	}
+	return 0, fmt.Errorf("precision %q: expected float32 or float64", s)
 }
 
 // Compile builds the model's network.
 func (m *Model) Compile(opt CompileOptions) error {
 	var nw *nn.Network
 	err := guard(func() (err error) {
-		nw, err = nn.Compile(m.Graph, nn.Options{InputShapes: opt.InputShapes, Parallel: opt.Parallel})
+		nw, err = nn.Compile(m.Graph, nn.Options{InputShapes: opt.InputShapes, Parallel: opt.Parallel, DType: opt.DType})
 		return err
 	})
 	if err != nil {
@@ -211,6 +245,10 @@ func (m *Model) Head(output string, logits bool) (gradattr.Model, error) {
 	if err != nil {
 		return nil, err
 	}
+	spec, err := m.Input()
+	if err != nil {
+		return nil, err
+	}
 	if logits {
 		name, err := m.Output(output)
 		if err != nil {
@@ -225,7 +263,7 @@ func (m *Model) Head(output string, logits bool) (gradattr.Model, error) {
 	}
 	var h *nn.Head
 	err = guard(func() (err error) {
-		h, err = nw.Head(nn.Selection{Output: output, Logits: logits})
+		h, err = nw.Head(nn.Selection{Output: output, Logits: logits, Input: spec.Name})
 		return err
 	})
 	if err != nil {

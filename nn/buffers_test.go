@@ -24,7 +24,8 @@ func execProgram(t testing.TB, m *onnxlite.Model, dt DType, n int, grad bool) (*
 	require.NoError(t, err)
 	h, err := nw.Head(Selection{})
 	require.NoError(t, err)
-	p, err := nw.program(h.shapes(n), request{outputs: []string{h.value}, grad: grad})
+	shapes, _ := h.feed(nil, n)
+	p, err := nw.program(shapes, request{outputs: []string{h.value}, grad: grad})
 	require.NoError(t, err)
 	require.False(t, p.perSample)
 	return nw, p

@@ -26,6 +26,10 @@ var conformanceExpected = map[string]string{
 	// outputs) is outside inference.
 	"node/test_batchnorm_epsilon_training_mode": "BatchNormalization training mode",
 	"node/test_batchnorm_example_training_mode": "BatchNormalization training mode",
+	// Training-mode dropout drops elements at random (its reference output
+	// comes from numpy's generator): refused, as outside inference.
+	"node/test_training_dropout":         "Dropout training mode",
+	"node/test_training_dropout_default": "Dropout training mode",
 }
 
 // conformanceExpectedFloat32 lists backend cases that pass on the float64

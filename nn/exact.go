@@ -22,6 +22,10 @@ func (h *Head) plans() *pathPlans {
 	pp := h.path
 	pp.once.Do(func() {
 		defer recoverEngine("nn: piecewise-linear plan", &pp.err)
+		if !h.single() {
+			pp.err = fmt.Errorf("the exact path integral is not available for a model of several inputs (inputs: %s)", portNames(h.nw.inputs))
+			return
+		}
 		shapes := [][]int{append([]int{1}, h.inShape...)}
 		st, err := onnxlite.Infer(h.nw.model, h.nw.inputMap(shapes))
 		if err != nil {
@@ -37,6 +41,14 @@ func (h *Head) plans() *pathPlans {
 	return pp
 }
 
+// single reports whether the Head's input is the model's only input: the
+// exact path integral and the gradient sums are offered for those models
+// only (with other run-time or compile-time inputs the methods integrate
+// point by point).
+func (h *Head) single() bool {
+	return len(h.nw.feeds) == 1 && len(h.nw.held) == 0
+}
+
 // PiecewiseLinear returns nil when the Head's value is a piecewise-linear
 // function of the input, optionally passed through one final Softmax,
 // LogSoftmax or Sigmoid (the head), so that IntegratePath integrates its
@@ -50,7 +62,9 @@ func (h *Head) plans() *pathPlans {
 // ErrNotPiecewiseLinear that names the first node of another operator
 // (or of one of these used otherwise, such as a product of two run-time
 // values); an operator added to the engine later is refused until it is
-// added here.
+// added here. For a model of several inputs (other run-time inputs or
+// compile-time ones) it returns an error that says so, not wrapping
+// ErrNotPiecewiseLinear: there the methods integrate point by point.
 func (h *Head) PiecewiseLinear() error {
 	return h.plans().err
 }

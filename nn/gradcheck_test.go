@@ -2,9 +2,9 @@ package nn
 
 import (
 	"context"
+	"errors"
 	"math"
 	"math/rand"
-	"strings"
 	"testing"
 
 	"github.com/stretchr/testify/require"
@@ -227,13 +227,19 @@ func TestGradcheckOperators(t *testing.T) {
 			g.node("Squeeze", []string{u, g.ints("ax2", 1)}, "y")
 		}, shape: []int64{3, 2, 2}, lo: -1, hi: 1, opset: 13},
 	}
+	checkOpCases(t, cases, 100)
+}
+
+// checkOpCases builds each case into a model of input "x" (batch of 3) and
+// checks its head's gradient against central finite differences.
+func checkOpCases(t *testing.T, cases []opCase, seed int) {
 	for ci, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
 			opset := c.opset
 			if opset == 0 {
 				opset = 13
 			}
-			g := newIR(opset, int64(100+ci))
+			g := newIR(opset, int64(seed+ci))
 			g.input("x", append([]int64{-1}, c.shape...)...)
 			c.build(g)
 			g.output("y")
@@ -319,6 +325,9 @@ func TestGradcheckBackendModels(t *testing.T) {
 			continue
 		}
 		in, out := c.sets[0][0][0], c.sets[0][1][0]
+		if !isFloat(in.DType) {
+			continue // token ids and other integers have no gradient
+		}
 		size := int(in.NumElements())
 		if size > 1000 || size == 0 || len(in.Dims) == 0 || len(out.Dims) == 0 {
 			continue
@@ -330,7 +339,7 @@ func TestGradcheckBackendModels(t *testing.T) {
 		shape := in.Shape()
 		val := nw.outputs[0].Name
 		p, err := nw.program([][]int{shape}, request{outputs: []string{val}, grad: true})
-		if err != nil && strings.Contains(err.Error(), "is not supported at run time") {
+		if errors.Is(err, onnxlite.ErrFoldOnly) {
 			continue // a fold-only operator on run-time values, as in TestConformance
 		}
 		require.NoError(t, err, c.id)
@@ -345,6 +354,12 @@ func TestGradcheckBackendModels(t *testing.T) {
 		require.NoError(t, err, c.id)
 		fp, err := nw.program([][]int{shape}, request{outputs: []string{val}})
 		require.NoError(t, err)
+		// Point i perturbs coordinate i/4 (fdCheck's order), which lies in
+		// one row; rows do not interact, so the loss is summed over that
+		// row's output alone: the other rows' outputs, which may be far
+		// larger (1e223 in pytorch-operator/test_operator_addconstant),
+		// would swallow the change.
+		perRow := size / rows
 		fdCheck(t, c.id, x, grad, func(points [][]float64) ([]float64, error) {
 			v := make([]float64, len(points))
 			for i, pt := range points {
@@ -352,8 +367,9 @@ func TestGradcheckBackendModels(t *testing.T) {
 				if err != nil {
 					return nil, err
 				}
-				for k, m := range mask {
-					v[i] += m * o[0][k]
+				r := i / 4 / perRow
+				for k := r * cols; k < (r+1)*cols; k++ {
+					v[i] += mask[k] * o[0][k]
 				}
 			}
 			return v, nil

@@ -1,14 +1,14 @@
 package nn
 
 import (
-	"github.com/apportion/apportion/nn/internal/ops"
-
 	"context"
+	"errors"
 	"fmt"
 
 	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
 
+	"github.com/apportion/apportion/nn/internal/ops"
 	"github.com/apportion/apportion/onnxlite"
 )
 
@@ -111,7 +111,7 @@ func (p *program) build() (m *machine, err error) {
 	}
 	for _, n := range needed(p.static.Nodes, p.outNames) {
 		if err := b.node(n); err != nil {
-			return nil, fmt.Errorf("node %q (%s): %w", n.Name, n.OpType, err)
+			return nil, fmt.Errorf("node %q (%s): %w", nodeLabel(p.static.Model, n), n.OpType, err)
 		}
 	}
 	for _, o := range p.outNames {
@@ -139,9 +139,9 @@ func (p *program) build() (m *machine, err error) {
 			one = float64(1)
 		}
 		seed := b.g.AddNode(G.NewConstant(one))
-		grads, err := G.Backpropagate(G.Nodes{loss}, G.Nodes{seed}, G.Nodes{m.inputs[0]})
+		grads, err := G.Backpropagate(G.Nodes{loss}, G.Nodes{seed}, G.Nodes{m.inputs[p.req.wrt]})
 		if err != nil {
-			return nil, fmt.Errorf("differentiating output %q w.r.t. input %q: %w", p.outNames[0], p.static.Inputs[0], err)
+			return nil, fmt.Errorf("differentiating output %q w.r.t. input %q: %w", p.outNames[0], p.static.Inputs[p.req.wrt], err)
 		}
 		m.grad = grads[0]
 	}
@@ -172,6 +172,9 @@ func (m *machine) run(p *program, data [][]float64, mask []float64) (outs [][]fl
 		}
 	}
 	if err := m.exec(); err != nil {
+		if ie := (*ops.IndexError)(nil); errors.As(err, &ie) {
+			return nil, nil, fmt.Errorf("%w: %v", ErrBadRequest, ie)
+		}
 		return nil, nil, fmt.Errorf("%w: %v", ErrEngine, err)
 	}
 	outs = make([][]float64, len(m.outputs))
@@ -187,8 +190,8 @@ func (m *machine) run(p *program, data [][]float64, mask []float64) (outs [][]fl
 		if grad, err = ops.Floats(m.vals[m.slot[m.grad]]); err != nil {
 			return nil, nil, fmt.Errorf("%w: gradient: %v", ErrEngine, err)
 		}
-		if len(grad) != len(data[0]) {
-			return nil, nil, fmt.Errorf("%w: gradient has %d values, the input %d", ErrEngine, len(grad), len(data[0]))
+		if len(grad) != len(data[p.req.wrt]) {
+			return nil, nil, fmt.Errorf("%w: gradient has %d values, the input %d", ErrEngine, len(grad), len(data[p.req.wrt]))
 		}
 	}
 	return outs, grad, nil
@@ -303,6 +306,20 @@ func (m *machine) exec() error {
 		m.vals[i] = v
 	}
 	return nil
+}
+
+// nodeLabel names node n of m in messages: its name, or "#i" (its index)
+// when it has none, as onnxlite names it.
+func nodeLabel(m *onnxlite.Model, n *onnxlite.Node) string {
+	if n.Name != "" || m == nil || m.Graph == nil {
+		return n.Name
+	}
+	for i, k := range m.Graph.Nodes {
+		if k == n {
+			return fmt.Sprintf("#%d", i)
+		}
+	}
+	return n.Name
 }
 
 // gShape is the gorgonia shape of an ONNX shape: rank-0 values are held

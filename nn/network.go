@@ -1,7 +1,9 @@
 // Package nn compiles ONNX graphs decoded by onnxlite into gorgonia programs
 // and runs them: batched forward passes and gradients of one selected output
-// element with respect to the input, for every sample of a batch in one
-// forward and one backward pass.
+// element with respect to one input, for every sample of a batch in one
+// forward and one backward pass. Every subgraph whose inputs are all
+// constants is evaluated once, when a program is compiled, with the same
+// operators the program runs.
 //
 // A Network compiles lazily: one program per set of input shapes (and, for
 // gradients, per selected output), each run on a bounded pool of compiled
@@ -106,10 +108,16 @@ type Port struct {
 	// Name is the ONNX value name.
 	Name string
 	// Shape is the shape of one sample, without the batch dimension; -1
-	// marks a dimension that is not known until run time.
+	// marks a dimension that is not known until run time. For a
+	// compile-time input it is the whole declared shape.
 	Shape []int
 	// DType is the ONNX element type declared by the model.
 	DType onnxlite.DataType
+	// CompileTime marks an input whose values the model uses only as
+	// parameters (a target shape, axes, slice bounds, pads, scales; see
+	// onnxlite.InputUses): it has no batch dimension, and the Network
+	// compiles a program for each value it is given, cached by value.
+	CompileTime bool
 }
 
 // Network is a compiled ONNX model. It is safe for concurrent use.
@@ -117,10 +125,13 @@ type Network struct {
 	model   *onnxlite.Model
 	relaxed *onnxlite.Model // Reshape shapes with a leading 1 rewritten to 0
 	opts    Options
-	inputs  []Port
+	inputs  []Port       // every runtime input, in graph order
+	feeds   []Port       // the inputs computed with at run time, in graph order
+	held    []Port       // the compile-time inputs, in graph order
+	unread  map[int]bool // the inputs no node reads, by index in inputs
 	outputs []Port
-	// declared holds the full declared shape of each runtime input (-1 for
-	// symbolic dims), and declaredBatch its first dimension (-1 symbolic, 0 no batch axis).
+	// declared holds the full declared shape of each input of feeds (-1
+	// for symbolic dims).
 	declared [][]int
 
 	// splitMinFLOPs is the least forward work per part of a split call
@@ -129,6 +140,12 @@ type Network struct {
 
 	mu    sync.Mutex
 	progs map[string]*program
+	// heldProgs counts the programs compiled for held values (see
+	// maxHeldPrograms).
+	heldProgs int
+	// outTypes are the element types of the graph outputs, known once a
+	// program of them is compiled.
+	outTypes []onnxlite.DataType
 }
 
 // Compile validates m and prepares it for running. Programs are compiled
@@ -159,16 +176,16 @@ func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
 	// every node nn does not run (those onnxlite does not support among them).
 	var ue *onnxlite.UnsupportedError
 	if err := m.Validate(); err != nil && !errors.As(err, &ue) {
-		return nil, fmt.Errorf("nn: compile: %w", err)
+		return nil, modelError("nn: compile", err)
 	}
 	if u := Unsupported(m); len(u) > 0 {
-		return nil, fmt.Errorf("nn: compile: %w", &onnxlite.UnsupportedError{Ops: u})
+		return nil, &onnxlite.UnsupportedError{Ops: u}
 	}
 	nw = &Network{model: m, opts: opts, progs: map[string]*program{},
 		splitMinFLOPs: splitMinPartFLOPs}
 	nw.relaxed = relaxModel(m)
 	if err := nw.describe(); err != nil {
-		return nil, fmt.Errorf("nn: compile: %w", err)
+		return nil, modelError("nn: compile", err)
 	}
 	return nw, nil
 }
@@ -193,44 +210,123 @@ func clonePorts(ps []Port) []Port {
 }
 
 // Forward runs the model on inputs, bound to Inputs() in order, each with its
-// full shape including the batch dimension, and returns every graph output
-// with its full shape. Outputs are Float tensors on the Float32 engine and
-// Double tensors on the Float64 engine. A batch larger than Options.MaxBatch
-// is run in chunks along the first dimension.
+// full shape including the batch dimension (a compile-time input with its
+// declared shape), and returns every graph output with its full shape.
+// Floating-point inputs of any precision are widened to the engine's;
+// integer and boolean inputs that the model computes with at run time (the
+// indices of a Gather, say) are held as floating-point numbers, which must
+// represent them exactly (magnitudes up to 2^24 on the Float32 engine,
+// 2^53 on Float64). Floating-point outputs are Float tensors on the
+// Float32 engine and Double tensors on the Float64 engine; integer and
+// boolean outputs have their declared type. A batch larger than
+// Options.MaxBatch is run in chunks along the first dimension.
 func (nw *Network) Forward(ctx context.Context, inputs []*onnxlite.Tensor) (outs []*onnxlite.Tensor, err error) {
 	defer recoverEngine("nn: forward", &err)
 	if len(inputs) != len(nw.inputs) {
 		return nil, fmt.Errorf("nn: forward: %w: expected %d inputs (%s), got %d", ErrBadRequest, len(nw.inputs), portNames(nw.inputs), len(inputs))
 	}
-	shapes := make([][]int, len(inputs))
-	data := make([][]float64, len(inputs))
+	var shapes [][]int
+	var data [][]float64
+	var fixed []*onnxlite.Tensor
 	for i, t := range inputs {
 		p := nw.inputs[i]
+		if nw.unread[i] {
+			continue
+		}
 		if t == nil {
 			return nil, fmt.Errorf("nn: forward: input %q: %w: nil tensor", p.Name, ErrBadRequest)
 		}
-		vals, err := tensorFloats(t)
+		if p.CompileTime {
+			fixed = append(fixed, t)
+			continue
+		}
+		vals, err := nw.feedValues(t, p)
 		if err != nil {
 			return nil, fmt.Errorf("nn: forward: input %q: %w", p.Name, err)
 		}
-		shape := make([]int, len(t.Dims))
-		for j, d := range t.Dims {
-			shape[j] = int(d)
-		}
-		if err := nw.checkInputShape(i, shape, len(vals)); err != nil {
+		shape := t.Shape()
+		if err := nw.checkInputShape(len(shapes), shape, len(vals)); err != nil {
 			return nil, fmt.Errorf("nn: forward: %w", err)
 		}
-		shapes[i], data[i] = shape, vals
+		shapes, data = append(shapes, shape), append(data, vals)
 	}
-	res, outShapes, err := nw.runChunked(ctx, shapes, data, nil)
+	h, err := nw.newHeld(fixed)
 	if err != nil {
 		return nil, fmt.Errorf("nn: forward: %w", err)
 	}
+	res, outShapes, _, err := nw.runReq(ctx, shapes, data, request{held: h}, nil)
+	if err != nil {
+		return nil, modelError("nn: forward", err)
+	}
+	nw.mu.Lock()
+	types := nw.outTypes
+	nw.mu.Unlock()
 	outs = make([]*onnxlite.Tensor, len(res))
 	for i, r := range res {
+		if types != nil && !isFloat(types[i]) {
+			if outs[i], err = onnxlite.FromFloat64s(nw.outputs[i].Name, types[i], dims(outShapes[i]), r); err != nil {
+				return nil, fmt.Errorf("nn: forward: %w: %v", ErrEngine, err)
+			}
+			continue
+		}
 		outs[i] = makeTensor(nw.outputs[i].Name, nw.opts.DType, outShapes[i], r)
 	}
 	return outs, nil
+}
+
+// modelError returns err as it is when it describes the model (invalid, or
+// asking for what apportion does not compute), and prefixed with where
+// otherwise.
+func modelError(where string, err error) error {
+	if errors.Is(err, onnxlite.ErrInvalid) || errors.Is(err, onnxlite.ErrUnsupported) {
+		return err
+	}
+	return fmt.Errorf("%s: %w", where, err)
+}
+
+// exactInts is the largest magnitude below which the engine holds every
+// integer exactly: 2^24 for float32, 2^53 for float64 (IEEE 754 binary32
+// and binary64 significands).
+func (nw *Network) exactInts() float64 {
+	if nw.opts.DType == Float64 {
+		return 1 << 53
+	}
+	return 1 << 24
+}
+
+// feedValues returns the elements of a tensor given for input p as the
+// engine holds them: floating-point values widened, integers and booleans
+// as numbers, which must be exact in the engine's type. A floating-point
+// input takes any floating-point tensor, an integer or boolean one any
+// integer or boolean tensor.
+func (nw *Network) feedValues(t *onnxlite.Tensor, p Port) ([]float64, error) {
+	if !numeric(t.DType) || (p.DType != onnxlite.Undefined && isFloat(p.DType) != isFloat(t.DType)) {
+		return nil, fmt.Errorf("%w: expected a %v tensor, got %v", ErrBadRequest, p.DType, t.DType)
+	}
+	v, err := t.Float64s()
+	if err != nil {
+		return nil, fmt.Errorf("%w: %v", ErrBadRequest, err)
+	}
+	if int64(len(v)) != t.NumElements() {
+		return nil, fmt.Errorf("%w: dims %v need %d elements, data has %d", ErrShape, t.Dims, t.NumElements(), len(v))
+	}
+	if !isFloat(t.DType) {
+		limit := nw.exactInts()
+		for i, x := range v {
+			if math.Abs(x) > limit {
+				return nil, fmt.Errorf("%w: %v value %v at position %d: the %v engine holds integers exactly only up to %.0f in magnitude; use the float64 engine", ErrBadRequest, t.DType, x, i, nw.opts.DType, limit)
+			}
+		}
+	}
+	return v, nil
+}
+
+func dims(shape []int) []int64 {
+	d := make([]int64, len(shape))
+	for i, s := range shape {
+		d[i] = int64(s)
+	}
+	return d
 }
 
 func portNames(ps []Port) string {
@@ -244,9 +340,10 @@ func portNames(ps []Port) string {
 	return s
 }
 
-// checkInputShape compares a full input shape with the declared one.
+// checkInputShape compares a full shape of run-time input i (an index
+// into feeds) with the declared one.
 func (nw *Network) checkInputShape(i int, shape []int, n int) error {
-	p := nw.inputs[i]
+	p := nw.feeds[i]
 	decl := nw.declared[i]
 	if decl != nil {
 		want := shapeString(decl, true)

@@ -507,7 +507,7 @@ func (pb *planBuilder[T]) gather(n *onnxlite.Node, i int) error {
 			sb.endRow(0)
 		}
 	case "ReduceSum", "ReduceMean":
-		axes, noop, err := pb.b.reduceAxes(n)
+		axes, noop, err := pb.b.st.ReduceAxes(n)
 		if err != nil {
 			return err
 		}

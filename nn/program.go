@@ -12,13 +12,18 @@ import (
 
 // request says what a program computes: the named values (nil means the
 // graph outputs) and, when grad is set, the gradient of Σ_i out[i, target[i]]
-// of the single requested value with respect to the first runtime input.
-// With from set the program starts at that value instead of the runtime
-// input: its nodes are those after the affine prefix that computes it
-// (summed.go), and it is the program's one input.
+// of the single requested value with respect to run-time input wrt (an
+// index into Network.feeds); held gives the values of the compile-time
+// inputs, for which the program is specialised. With from set the program
+// starts at that value instead of the run-time input: its nodes are those
+// after the affine prefix that computes it (summed.go), and it is the
+// program's one input (only for models of one run-time input and no
+// compile-time ones).
 type request struct {
 	outputs []string
 	grad    bool
+	wrt     int
+	held    *heldValues
 	from    string
 }
 
@@ -28,10 +33,53 @@ func (r request) appendKey(b []byte) []byte {
 		b = strconv.AppendQuote(b, o)
 	}
 	b = strconv.AppendBool(append(b, '/'), r.grad)
+	b = strconv.AppendInt(append(b, '/'), int64(r.wrt), 10)
+	if r.held != nil {
+		b = append(append(b, '/'), r.held.key...)
+	}
 	if r.from != "" {
-		b = strconv.AppendQuote(append(b, '/'), r.from)
+		b = strconv.AppendQuote(append(b, "/from="...), r.from)
 	}
 	return b
+}
+
+// held holds the values of a call's compile-time inputs (Port.CompileTime)
+// and a text that tells them apart, part of the program key.
+type heldValues struct {
+	values map[string]*onnxlite.Tensor
+	key    string
+}
+
+// newHeld returns the held values of tensors (one per compile-time input,
+// in order), converted to the declared element types.
+func (nw *Network) newHeld(tensors []*onnxlite.Tensor) (*heldValues, error) {
+	if len(nw.held) == 0 {
+		return nil, nil
+	}
+	h := &heldValues{values: map[string]*onnxlite.Tensor{}}
+	var key []byte
+	for i, p := range nw.held {
+		t := tensors[i]
+		if t == nil {
+			return nil, fmt.Errorf("input %q: %w: no value given; the model needs it to compile", p.Name, ErrBadRequest)
+		}
+		vals, err := t.Float64s()
+		if err != nil {
+			return nil, fmt.Errorf("input %q: %w: %v", p.Name, ErrBadRequest, err)
+		}
+		c, err := onnxlite.FromFloat64s(p.Name, p.DType, t.Dims, vals)
+		if err != nil {
+			return nil, fmt.Errorf("input %q: %w: expected %v values, got %v", p.Name, ErrBadRequest, p.DType, err)
+		}
+		if isFloat(p.DType) && p.DType == t.DType {
+			c = &onnxlite.Tensor{Name: p.Name, DType: t.DType, Dims: t.Dims, Data: t.Data}
+		}
+		h.values[p.Name] = c
+		key = strconv.AppendQuote(key, p.Name)
+		key = fmt.Appendf(key, "%v=%v;", t.Dims, vals)
+	}
+	h.key = string(key)
+	return h, nil
 }
 
 // program is one compiled configuration: exact input shapes and a request.
@@ -42,6 +90,7 @@ type program struct {
 	inShapes  [][]int
 	outNames  []string
 	outShapes [][]int
+	outTypes  []onnxlite.DataType
 	req       request
 	pool      *machinePool
 
@@ -57,11 +106,25 @@ func (nw *Network) describe() error {
 	for _, t := range g.Initializers {
 		inits[t.Name] = true
 	}
+	uses := onnxlite.InputUses(nw.model)
 	for _, vi := range g.Inputs {
 		if inits[vi.Name] {
 			continue
 		}
-		p := Port{Name: vi.Name}
+		p := Port{Name: vi.Name, CompileTime: uses[vi.Name].CompileTime()}
+		if uses[vi.Name].Unread {
+			// Nothing reads it: Forward takes any tensor for it and
+			// ignores it.
+			if vi.Type != nil {
+				p.DType = vi.Type.Elem
+			}
+			if nw.unread == nil {
+				nw.unread = map[int]bool{}
+			}
+			nw.unread[len(nw.inputs)] = true
+			nw.inputs = append(nw.inputs, p)
+			continue
+		}
 		var decl []int
 		if vi.Type != nil {
 			p.DType = vi.Type.Elem
@@ -90,10 +153,17 @@ func (nw *Network) describe() error {
 				decl[j+1] = d
 			}
 		}
+		if p.CompileTime {
+			p.Shape = decl
+			nw.inputs = append(nw.inputs, p)
+			nw.held = append(nw.held, p)
+			continue
+		}
 		if len(decl) > 0 {
 			p.Shape = append([]int(nil), decl[1:]...)
 		}
 		nw.inputs = append(nw.inputs, p)
+		nw.feeds = append(nw.feeds, p)
 		nw.declared = append(nw.declared, decl)
 	}
 	for name := range nw.opts.InputShapes {
@@ -106,10 +176,11 @@ func (nw *Network) describe() error {
 		}
 	}
 	// Output shapes from inference at the smallest batch, when every
-	// input shape is known; the declared types otherwise.
+	// input shape is known and none is needed at compile time; the
+	// declared types otherwise.
 	var st *onnxlite.Static
-	if shapes, ok := nw.sampleShapes(1); ok {
-		if s, err := nw.inferFor(shapes); err == nil {
+	if shapes, ok := nw.sampleShapes(1); ok && len(nw.held) == 0 {
+		if s, err := nw.inferFor(shapes, nil); err == nil {
 			st = s
 		}
 	}
@@ -165,23 +236,34 @@ func (nw *Network) sampleShapes(n int) ([][]int, bool) {
 func (nw *Network) inputMap(shapes [][]int) map[string][]int {
 	m := make(map[string][]int, len(shapes))
 	for i, s := range shapes {
-		m[nw.inputs[i].Name] = s
+		m[nw.feeds[i].Name] = s
 	}
 	return m
+}
+
+// infer runs shape inference on m (the model or its relaxed copy) for
+// exact run-time input shapes and the held values, folding every constant
+// subgraph with the engine.
+func (nw *Network) infer(m *onnxlite.Model, shapes [][]int, h *heldValues) (*onnxlite.Static, error) {
+	opts := onnxlite.InferOptions{Shapes: nw.inputMap(shapes), Eval: nw.evaluator()}
+	if h != nil {
+		opts.Values = h.values
+	}
+	return onnxlite.InferWith(m, opts)
 }
 
 // inferFor runs shape inference for exact input shapes, relaxing a declared
 // batch of one when the shapes ask for another batch. It reports an error
 // when the relaxed graph is not batch-consistent.
-func (nw *Network) inferFor(shapes [][]int) (*onnxlite.Static, error) {
+func (nw *Network) inferFor(shapes [][]int, h *heldValues) (*onnxlite.Static, error) {
 	relax, err := nw.needsRelax(shapes)
 	if err != nil {
 		return nil, err
 	}
 	if !relax {
-		return onnxlite.Infer(nw.model, nw.inputMap(shapes))
+		return nw.infer(nw.model, shapes, h)
 	}
-	return nw.inferRelaxed(shapes)
+	return nw.inferRelaxed(shapes, h)
 }
 
 // needsRelax reports whether shapes ask for a batch other than a declared
@@ -193,7 +275,7 @@ func (nw *Network) needsRelax(shapes [][]int) (bool, error) {
 			continue
 		}
 		if decl[0] != 1 {
-			return false, fmt.Errorf("input %q: %w: the model fixes the batch dimension to %d, got shape %v", nw.inputs[i].Name, ErrShape, decl[0], shapes[i])
+			return false, fmt.Errorf("input %q: %w: the model fixes the batch dimension to %d, got shape %v", nw.feeds[i].Name, ErrShape, decl[0], shapes[i])
 		}
 		relax = true
 	}
@@ -204,7 +286,7 @@ func (nw *Network) needsRelax(shapes [][]int) (bool, error) {
 // 1 and accepts the result only when every value that changed went from a
 // leading dimension of 1 to the batch, all else equal, and every graph
 // output carries the batch.
-func (nw *Network) inferRelaxed(shapes [][]int) (*onnxlite.Static, error) {
+func (nw *Network) inferRelaxed(shapes [][]int, h *heldValues) (*onnxlite.Static, error) {
 	n := -1
 	one := make([][]int, len(shapes))
 	for i, s := range shapes {
@@ -218,11 +300,11 @@ func (nw *Network) inferRelaxed(shapes [][]int) (*onnxlite.Static, error) {
 			one[i][0] = 1
 		}
 	}
-	stN, err := onnxlite.Infer(nw.relaxed, nw.inputMap(shapes))
+	stN, err := nw.infer(nw.relaxed, shapes, h)
 	if err != nil {
 		return nil, err
 	}
-	st1, err := onnxlite.Infer(nw.relaxed, nw.inputMap(one))
+	st1, err := nw.infer(nw.relaxed, one, h)
 	if err != nil {
 		return nil, err
 	}
@@ -359,9 +441,28 @@ func (nw *Network) program(shapes [][]int, req request) (*program, error) {
 	if q, ok := nw.progs[key]; ok {
 		return q, nil
 	}
+	if req.held != nil {
+		if nw.heldProgs >= maxHeldPrograms {
+			// Forget the programs of other values (their machines go
+			// with them once their runs end).
+			for k, q := range nw.progs {
+				if q.req.held != nil {
+					delete(nw.progs, k)
+				}
+			}
+			nw.heldProgs = 0
+		}
+		nw.heldProgs++
+	}
 	nw.progs[key] = p
 	return p, nil
 }
+
+// maxHeldPrograms bounds the programs a Network keeps for the values of its
+// compile-time inputs: past it, those programs are dropped and compiled
+// again when asked for, so that a caller cycling through many values
+// cannot grow the cache without bound.
+const maxHeldPrograms = 64
 
 func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
 	inShapes := shapes
@@ -378,7 +479,7 @@ func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
 	}
 	var st *onnxlite.Static
 	if relax {
-		st, err = nw.inferRelaxed(inShapes)
+		st, err = nw.inferRelaxed(inShapes, req.held)
 		if errors.Is(err, errBatchInconsistent) || (err != nil && !errors.Is(err, ErrShape)) {
 			// Run sample by sample on the model as exported.
 			one := make([][]int, len(shapes))
@@ -390,10 +491,11 @@ func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
 			if err != nil {
 				return nil, err
 			}
-			return &program{nw: nw, perSample: true, inner: inner, batch: shapes[0][0], inShapes: shapes, req: req, outNames: inner.outNames}, nil
+			return &program{nw: nw, perSample: true, inner: inner, batch: shapes[0][0], inShapes: shapes, req: req,
+				outNames: inner.outNames, outTypes: inner.outTypes}, nil
 		}
 	} else {
-		st, err = onnxlite.Infer(nw.model, nw.inputMap(inShapes))
+		st, err = nw.infer(nw.model, inShapes, req.held)
 	}
 	if err != nil {
 		return nil, err
@@ -413,14 +515,22 @@ func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
 		if !ok {
 			return nil, fmt.Errorf("%w: no value %q in the graph", ErrBadRequest, o)
 		}
-		if !isFloat(v.DType) {
-			return nil, fmt.Errorf("value %q: %w: element type %v is not floating point", o, onnxlite.ErrUnsupported, v.DType)
+		if !numeric(v.DType) {
+			return nil, fmt.Errorf("%w: output %q of element type %v", onnxlite.ErrUnsupported, o, v.DType)
 		}
 		p.outShapes = append(p.outShapes, v.Shape)
+		p.outTypes = append(p.outTypes, v.DType)
+	}
+	if req.outputs == nil {
+		nw.mu.Lock()
+		if nw.outTypes == nil {
+			nw.outTypes = p.outTypes
+		}
+		nw.mu.Unlock()
 	}
 	if req.grad {
-		if len(st.Inputs) != 1 {
-			return nil, fmt.Errorf("%w: gradients need a model with exactly one runtime input, this one has %d", ErrBadRequest, len(st.Inputs))
+		if req.wrt < 0 || req.wrt >= len(st.Inputs) {
+			return nil, fmt.Errorf("%w: gradient with respect to run-time input %d of %d", ErrBadRequest, req.wrt, len(st.Inputs))
 		}
 		if len(p.outNames) != 1 || len(p.outShapes[0]) == 0 {
 			return nil, fmt.Errorf("%w: gradients need one batched output", ErrBadRequest)
@@ -430,8 +540,19 @@ func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
 	return p, nil
 }
 
+// isFloat reports whether dt is a floating-point type.
 func isFloat(dt onnxlite.DataType) bool {
-	return dt == onnxlite.Float || dt == onnxlite.Double || dt == onnxlite.Float16
+	return dt == onnxlite.Float || dt == onnxlite.Double || dt == onnxlite.Float16 || dt == onnxlite.BFloat16
+}
+
+// numeric reports whether the engine holds values of type dt: floating
+// point, integer or boolean, all as floating-point numbers.
+func numeric(dt onnxlite.DataType) bool {
+	switch dt {
+	case onnxlite.String, onnxlite.Complex64, onnxlite.Complex128, onnxlite.Undefined:
+		return false
+	}
+	return true
 }
 
 // run executes p on data (one flat slice per runtime input). When p.req.grad
@@ -508,16 +629,11 @@ func (p *program) outputShapes() [][]int {
 	return out
 }
 
-// runChunked runs shapes/data through the programs for req, splitting the
+// runReq runs shapes/data through the programs for req, splitting the
 // batch (first dimension of every input) into chunks of at most
 // Options.MaxBatch samples, and into Options.Parallel concurrent parts when
 // the batch is large enough (see runSplit). mask, when given, is split with
 // the outputs.
-func (nw *Network) runChunked(ctx context.Context, shapes [][]int, data [][]float64, mask []float64) ([][]float64, [][]int, error) {
-	outs, shp, _, err := nw.runReq(ctx, shapes, data, request{}, mask)
-	return outs, shp, err
-}
-
 func (nw *Network) runReq(ctx context.Context, shapes [][]int, data [][]float64, req request, mask []float64) ([][]float64, [][]int, []float64, error) {
 	if err := ctx.Err(); err != nil {
 		return nil, nil, nil, err

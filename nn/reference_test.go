@@ -3,9 +3,11 @@ package nn_test
 import (
 	"context"
 	"encoding/json"
+	"fmt"
 	"math"
 	"os"
 	"path/filepath"
+	"strings"
 	"testing"
 
 	"codeberg.org/sbinet/npyio/npz"
@@ -35,7 +37,13 @@ type referenceManifest struct {
 		DynamicBatch bool     `json:"dynamic_batch"`
 		Ops          []string `json:"ops"`
 		Nodes        []string `json:"nodes"`
+		InputDType   string   `json:"input_dtype"`
 	} `json:"models"`
+	Tokens struct {
+		Fixture string `json:"fixture"`
+		ONNX    string `json:"onnx"`
+		Value   string `json:"value"`
+	} `json:"tokens"`
 }
 
 func loadReferenceManifest(t *testing.T) referenceManifest {
@@ -115,6 +123,9 @@ func relMax(got, want []float64) float64 {
 func TestReferenceTorch(t *testing.T) {
 	man := loadReferenceManifest(t)
 	for _, mm := range man.Models {
+		if mm.InputDType == "int64" {
+			continue // token ids: TestReferenceTextModel
+		}
 		t.Run(mm.ONNX, func(t *testing.T) {
 			fx := openReference(t, mm.Fixture)
 			x, wantOut, wantGrad := fx.f64("x"), fx.f64("out"), fx.f64("grad")
@@ -178,6 +189,9 @@ func TestReferenceTorch(t *testing.T) {
 func TestReferenceBatchIndependence(t *testing.T) {
 	man := loadReferenceManifest(t)
 	for _, mm := range man.Models {
+		if mm.InputDType == "int64" {
+			continue // token ids: TestReferenceTextModel
+		}
 		t.Run(mm.ONNX, func(t *testing.T) {
 			fx := openReference(t, mm.Fixture)
 			x, wantGrad := fx.f64("x"), fx.f64("grad")
@@ -235,6 +249,9 @@ func TestReferenceLogits(t *testing.T) {
 	man := loadReferenceManifest(t)
 	checked := 0
 	for _, mm := range man.Models {
+		if mm.InputDType == "int64" {
+			continue // token ids: TestReferenceTextModel
+		}
 		t.Run(mm.ONNX, func(t *testing.T) {
 			fx := openReference(t, mm.Fixture)
 			model, err := onnxlite.DecodeFile(filepath.Join(referenceDir, mm.ONNX), onnxlite.DecodeOptions{})
@@ -265,4 +282,104 @@ func TestReferenceLogits(t *testing.T) {
 		})
 	}
 	assert.Equal(t, 6, checked, "three Softmax models, two engines")
+}
+
+// TestReferenceTextModel runs the text classifier of testdata/reference,
+// whose int64 token ids feed an embedding Gather, on both engines: its
+// logits against float64 torch (python3-torch 1.13.1), and the gradient of
+// the target logit at the embedding output against ∂F/∂E of the fixture,
+// taken on the graph cut at that value (E becomes the graph's input, so
+// the engine differentiates everything downstream of the lookup).
+func TestReferenceTextModel(t *testing.T) {
+	man := loadReferenceManifest(t)
+	tok := man.Tokens
+	require.NotEmpty(t, tok.ONNX)
+	fx := openReference(t, tok.Fixture)
+	ids, wantOut, target := fx.ints("ids"), fx.f64("out"), fx.ints("target")
+	emb, wantGrad := fx.f64("emb"), fx.f64("emb_grad")
+	rows := len(target)
+	length := len(ids) / rows
+	classes := len(wantOut) / rows
+	model, err := onnxlite.DecodeFile(filepath.Join(referenceDir, tok.ONNX), onnxlite.DecodeOptions{})
+	require.NoError(t, err)
+	idData := make([]int64, len(ids))
+	for i, v := range ids {
+		idData[i] = int64(v)
+	}
+	idTensor := &onnxlite.Tensor{Name: model.Graph.Inputs[0].Name, DType: onnxlite.Int64,
+		Dims: []int64{int64(rows), int64(length)}, Data: idData}
+	cut := cutAt(t, model, tok.Value, []int64{-1, int64(length), int64(len(emb) / len(ids))})
+	for _, tc := range []struct {
+		dt              nn.DType
+		outTol, gradTol float64
+	}{{nn.Float32, 1e-5, 1e-4}, {nn.Float64, 1e-9, 1e-9}} {
+		t.Run(tc.dt.String(), func(t *testing.T) {
+			nw, err := nn.Compile(model, nn.Options{DType: tc.dt})
+			require.NoError(t, err)
+			outs, err := nw.Forward(context.Background(), []*onnxlite.Tensor{idTensor})
+			require.NoError(t, err)
+			got, err := outs[0].Float64s()
+			require.NoError(t, err)
+			for r := 0; r < rows; r++ {
+				// float64 torch reference (python3-torch 1.13.1)
+				assert.LessOrEqual(t, relMax(got[r*classes:(r+1)*classes], wantOut[r*classes:(r+1)*classes]), tc.outTol, "row %d logits", r)
+			}
+			_, err = nw.Head(nn.Selection{})
+			assert.ErrorIs(t, err, nn.ErrBadRequest, "token ids have no gradient")
+
+			// An id beyond the vocabulary (text_cnn_vocab.txt: 40 tokens) is
+			// the data's fault, not the engine's.
+			words, err := os.ReadFile(filepath.Join(referenceDir, "text_cnn_vocab.txt"))
+			require.NoError(t, err)
+			vocab := len(strings.Fields(string(words)))
+			bad := *idTensor
+			bad.Data = append([]int64{int64(vocab)}, idData[1:]...)
+			_, err = nw.Forward(context.Background(), []*onnxlite.Tensor{&bad})
+			assert.ErrorIs(t, err, nn.ErrBadRequest)
+			assert.NotErrorIs(t, err, nn.ErrEngine)
+			assert.Contains(t, err.Error(), fmt.Sprintf("Gather index %d at position 0 of its indices is out of range: expected a whole number from %d to %d", vocab, -vocab, vocab-1))
+
+			cnw, err := nn.Compile(cut, nn.Options{DType: tc.dt})
+			require.NoError(t, err)
+			h, err := cnw.Head(nn.Selection{})
+			require.NoError(t, err)
+			out, grad, err := h.Gradient(context.Background(), emb, rows, target)
+			require.NoError(t, err)
+			per := len(emb) / rows
+			for r := 0; r < rows; r++ {
+				// float64 torch.autograd reference (python3-torch 1.13.1)
+				assert.LessOrEqual(t, relMax(out[r*classes:(r+1)*classes], wantOut[r*classes:(r+1)*classes]), tc.outTol, "row %d logits from E", r)
+				assert.LessOrEqual(t, relL1(grad[r*per:(r+1)*per], wantGrad[r*per:(r+1)*per]), tc.gradTol, "row %d ∂F/∂E", r)
+			}
+		})
+	}
+}
+
+// cutAt returns a copy of m whose value name is a graph input of the given
+// shape (−1: the batch) and whose nodes computing only it are gone.
+func cutAt(t *testing.T, m *onnxlite.Model, name string, shape []int64) *onnxlite.Model {
+	t.Helper()
+	cp := *m
+	g := *m.Graph
+	g.Nodes = nil
+	found := false
+	for _, n := range m.Graph.Nodes {
+		if len(n.Outputs) == 1 && n.Outputs[0] == name {
+			found = true
+			continue
+		}
+		g.Nodes = append(g.Nodes, n)
+	}
+	require.True(t, found, "no node computes %q", name)
+	dims := make([]onnxlite.Dim, len(shape))
+	for i, d := range shape {
+		if d < 0 {
+			dims[i] = onnxlite.Dim{Param: "N"}
+		} else {
+			dims[i] = onnxlite.Dim{Value: d, HasValue: true}
+		}
+	}
+	g.Inputs = []*onnxlite.ValueInfo{{Name: name, Type: &onnxlite.Type{Kind: onnxlite.KindTensor, Elem: onnxlite.Float, Shape: dims, HasShape: true}}}
+	cp.Graph = &g
+	return &cp
 }

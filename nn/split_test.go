@@ -97,9 +97,9 @@ func TestSplitBitIdentical(t *testing.T) {
 						require.Len(t, net, len(wantNet))
 						for i := range net {
 							assert.Equal(t, wantNet[i].Dims, net[i].Dims)
-							a, err := tensorFloats(wantNet[i])
+							a, err := wantNet[i].Float64s()
 							require.NoError(t, err)
-							b, err := tensorFloats(net[i])
+							b, err := net[i].Float64s()
 							require.NoError(t, err)
 							assert.Equal(t, splitBits(a), splitBits(b), "network forward %d", i)
 						}
@@ -132,7 +132,8 @@ func TestSplitWork(t *testing.T) {
 	n := 64
 	_, _, err := h.Gradient(ctx, splitInput(h, n), n, splitTargets(h, n))
 	require.NoError(t, err)
-	p, err := h.nw.program(h.shapes(32), request{outputs: h.outputs, grad: true})
+	shapes, _ := h.feed(nil, 32)
+	p, err := h.nw.program(shapes, request{outputs: h.outputs, grad: true})
 	require.NoError(t, err)
 	// closed form: 2·(30·64 + 64·64 + 64·2) = 12288 FLOPs per sample.
 	assert.Equal(t, 12288.0, p.flopsPerSample())
@@ -143,7 +144,8 @@ func TestSplitWork(t *testing.T) {
 	c := splitHead(t, "cnn-m", Options{Parallel: 2})
 	_, _, err = c.Gradient(ctx, splitInput(c, 2), 2, splitTargets(c, 2))
 	require.NoError(t, err)
-	q, err := c.nw.program(c.shapes(1), request{outputs: c.outputs, grad: true})
+	shapes1, _ := c.feed(nil, 1)
+	q, err := c.nw.program(shapes1, request{outputs: c.outputs, grad: true})
 	require.NoError(t, err)
 	// cnn-m carries more than splitMinPartFLOPs per sample (12 722 176 by
 	// bench.FLOPs, the count bench/compare reports): a batch of 2 runs as
@@ -280,7 +282,7 @@ func TestSplitFixedBatch(t *testing.T) {
 	x := []float64{-1, 2, -3, 4, -5, 6, 0.5, -0.25, 7, -8, 9, -0.125}
 	outs, err := nw.Forward(ctx, []*onnxlite.Tensor{tensor64("x", []int64{4, 3}, x)})
 	require.NoError(t, err)
-	got, err := tensorFloats(outs[0])
+	got, err := outs[0].Float64s()
 	require.NoError(t, err)
 	for i, v := range x {
 		assert.Equal(t, math.Max(v, 0), got[i], "y[%d]", i) // closed form: Relu(x) = max(x, 0)

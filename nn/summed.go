@@ -37,10 +37,14 @@ type prefixPlans struct {
 }
 
 // prefix returns the Head's affine prefix, or nil when the input is read
-// by anything else first (or the chain would end at the Head's value).
+// by anything else first (or the chain would end at the Head's value), or
+// the model has other inputs.
 func (h *Head) prefix() *affinePrefix {
 	pp := h.sums
 	pp.once.Do(func() {
+		if !h.single() {
+			return
+		}
 		var err error
 		defer recoverEngine("nn: affine prefix", &err)
 		shapes := [][]int{append([]int{1}, h.inShape...)}

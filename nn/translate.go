@@ -42,8 +42,8 @@ func (b *builder) value(name string) (*G.Node, error) {
 	if !ok {
 		return nil, fmt.Errorf("value %q is not computed by any translated node", name)
 	}
-	if !isFloat(t.DType) && t.DType != onnxlite.Int64 && t.DType != onnxlite.Int32 {
-		return nil, fmt.Errorf("constant %q: %w: element type %v in arithmetic", name, onnxlite.ErrUnsupported, t.DType)
+	if !numeric(t.DType) {
+		return nil, fmt.Errorf("%w: constant %q of element type %v in arithmetic", onnxlite.ErrUnsupported, name, t.DType)
 	}
 	vals, err := t.Float64s()
 	if err != nil {
@@ -163,8 +163,20 @@ func ones(n int) []int {
 // (onnxlite.FoldOnly) it is the set of operators nn runs (Unsupported).
 var translations = map[string]func(b *builder, n *onnxlite.Node, out string) error{
 	"Identity": (*builder).identity, "Dropout": (*builder).identity, "Constant": (*builder).constantNode,
-	"Cast":    (*builder).cast,
-	"Reshape": (*builder).alias, "Flatten": (*builder).alias, "Squeeze": (*builder).alias, "Unsqueeze": (*builder).alias,
+	"Gelu": (*builder).unary, "Mish": (*builder).unary, "ThresholdedRelu": (*builder).unary,
+	"Reciprocal": (*builder).unary, "Sign": (*builder).unary, "Floor": (*builder).unary,
+	"Ceil": (*builder).unary, "Round": (*builder).unary,
+	"Max": (*builder).variadic, "Min": (*builder).variadic, "Sum": (*builder).variadic, "Mean": (*builder).variadic,
+	"Equal": (*builder).binary, "Less": (*builder).binary, "Greater": (*builder).binary,
+	"ReduceMax": (*builder).reduce, "ReduceMin": (*builder).reduce, "ReduceL2": (*builder).reduce,
+	"ReduceLogSumExp": (*builder).reduce,
+	"Slice":           (*builder).slice, "Gather": (*builder).gather, "Split": (*builder).split,
+	"Expand": (*builder).expand, "Tile": (*builder).tile, "Where": (*builder).where,
+	"Resize": (*builder).resize, "Upsample": (*builder).resize,
+	"LayerNormalization": (*builder).layerNorm, "GroupNormalization": (*builder).groupNorm,
+	"InstanceNormalization": (*builder).instanceNorm,
+	"Cast":                  (*builder).cast,
+	"Reshape":               (*builder).alias, "Flatten": (*builder).alias, "Squeeze": (*builder).alias, "Unsqueeze": (*builder).alias,
 	"Transpose": (*builder).transpose, "Concat": (*builder).concat,
 	"Gemm": (*builder).gemm, "MatMul": (*builder).matmul,
 	"BatchNormalization": (*builder).batchNorm,
@@ -236,8 +248,8 @@ func (b *builder) node(n *onnxlite.Node) error {
 		out = n.Outputs[0]
 	}
 	for _, o := range n.Outputs {
-		if o != "" && !isFloat(b.st.Values[o].DType) && !(n.OpType == "Dropout" || n.OpType == "MaxPool") {
-			return fmt.Errorf("%w: run-time value %q of element type %v (only floating-point values are computed at run time)", onnxlite.ErrUnsupported, o, b.st.Values[o].DType)
+		if dt := b.st.Values[o].DType; o != "" && !numeric(dt) {
+			return fmt.Errorf("%w: run-time value %q of element type %v", onnxlite.ErrUnsupported, o, dt)
 		}
 	}
 	if b.fused[n] {
@@ -246,10 +258,28 @@ func (b *builder) node(n *onnxlite.Node) error {
 	return translate(b, n, out)
 }
 
-// identity translates Identity and Dropout (inference: the identity).
+// identity translates Identity and Dropout (inference: the identity). A
+// Dropout in training mode (is_test 0 before opset 7, training_mode true
+// from 12) with a non-zero ratio drops random elements, which is refused.
 func (b *builder) identity(n *onnxlite.Node, out string) error {
-	if n.OpType == "Dropout" && n.AttrInt("is_test", 1) == 0 && b.opset < 7 {
-		return fmt.Errorf("%w: Dropout in training mode", onnxlite.ErrUnsupported)
+	if n.OpType == "Dropout" {
+		training := n.AttrInt("is_test", 1) == 0 && b.opset < 7
+		if b.opset >= 12 && b.has(n, 2) {
+			v, err := b.constFloats(n, 2, "training_mode")
+			if err != nil {
+				return err
+			}
+			ratio := []float64{0.5}
+			if b.has(n, 1) {
+				if ratio, err = b.constFloats(n, 1, "ratio"); err != nil {
+					return err
+				}
+			}
+			training = len(v) == 1 && v[0] != 0 && len(ratio) == 1 && ratio[0] != 0
+		}
+		if training {
+			return fmt.Errorf("%w: Dropout in training mode drops elements at random; export the model in inference mode", onnxlite.ErrUnsupported)
+		}
 	}
 	return b.alias(n, out)
 }
@@ -260,13 +290,42 @@ func (b *builder) constantNode(_ *onnxlite.Node, out string) error {
 	return err
 }
 
-// cast translates a Cast between floating-point types: the engine computes
-// in one element type, so the value passes unchanged.
+// cast translates a Cast of a run-time value. The engine holds every value
+// in its one floating-point type, integers and booleans included, so a
+// Cast to a floating-point type at least as wide as the engine's passes the
+// value unchanged; a narrower one rounds (float16, bfloat16, and float32 on
+// the float64 engine); a Cast to an integer type truncates toward zero
+// (onnxlite's folding does the same, common practice) and one to BOOL
+// gives 1 for every non-zero value.
 func (b *builder) cast(n *onnxlite.Node, out string) error {
-	if to := onnxlite.DataType(n.AttrInt("to", 0)); !isFloat(to) {
-		return fmt.Errorf("%w: Cast of a run-time value to %v", onnxlite.ErrUnsupported, to)
+	x, err := b.input(n, 0)
+	if err != nil {
+		return err
 	}
-	return b.alias(n, out)
+	from := b.st.Values[n.Inputs[0]].DType
+	to := b.st.Values[out].DType
+	var kind string
+	switch {
+	case to == from:
+	case to == onnxlite.Bool:
+		kind = "CastBool"
+	case !isFloat(to) && isFloat(from):
+		kind = "CastInt"
+	case to == onnxlite.Float16:
+		kind = "CastFloat16"
+	case to == onnxlite.BFloat16:
+		kind = "CastBFloat16"
+	case to == onnxlite.Float && b.dt == tensor.Float64:
+		kind = "CastFloat"
+	}
+	if kind == "" {
+		return b.set(out, x)
+	}
+	y, err := ops.Unary(x, kind, 0, 0)
+	if err != nil {
+		return err
+	}
+	return b.set(out, y)
 }
 
 // alias makes out the node of n's first input (reshaped to out's inferred
@@ -659,7 +718,11 @@ func (b *builder) unary(n *onnxlite.Node, out string) error {
 		return err
 	}
 	alpha, beta := unaryParams(n)
-	y, err := ops.Unary(x, n.OpType, alpha, beta)
+	kind := n.OpType
+	if kind == "Gelu" && n.AttrString("approximate", "none") == "tanh" {
+		kind = "GeluTanh"
+	}
+	y, err := ops.Unary(x, kind, alpha, beta)
 	if err != nil {
 		return err
 	}
@@ -681,6 +744,8 @@ func unaryParams(n *onnxlite.Node) (alpha, beta float64) {
 	case "HardSigmoid":
 		alpha = float64(n.AttrFloat("alpha", 0.2))
 		beta = float64(n.AttrFloat("beta", 0.5))
+	case "ThresholdedRelu":
+		alpha = float64(n.AttrFloat("alpha", 1))
 	}
 	return alpha, beta
 }
@@ -859,42 +924,18 @@ func (b *builder) reduce(n *onnxlite.Node, out string) error {
 	if err != nil {
 		return err
 	}
-	axes, noop, err := b.reduceAxes(n)
+	axes, noop, err := b.st.ReduceAxes(n)
 	if err != nil {
 		return err
 	}
 	if noop {
 		return b.set(out, x)
 	}
-	y, err := ops.Reduce(x, axes, n.AttrInt("keepdims", 1) != 0, n.OpType == "ReduceMean")
+	y, err := ops.ReduceBy(x, axes, n.AttrInt("keepdims", 1) != 0, n.OpType)
 	if err != nil {
 		return err
 	}
 	return b.set(out, y)
-}
-
-// reduceAxes reads the axes of ReduceSum or ReduceMean node n, normalised
-// (empty: all); noop reports an empty list with noop_with_empty_axes.
-func (b *builder) reduceAxes(n *onnxlite.Node) (axes []int, noop bool, err error) {
-	r := len(b.shape(n.Inputs[0]))
-	if n.OpType == "ReduceSum" && b.opset >= 13 {
-		if b.has(n, 1) {
-			if axes, err = b.constInts(n, 1, "axes"); err != nil {
-				return nil, false, err
-			}
-		}
-	} else {
-		axes = ints(n.AttrInts("axes", nil))
-	}
-	if len(axes) == 0 && n.AttrInt("noop_with_empty_axes", 0) != 0 {
-		return nil, true, nil
-	}
-	for i, a := range axes {
-		if axes[i], err = normAxis(a, r); err != nil {
-			return nil, false, err
-		}
-	}
-	return axes, false, nil
 }
 
 // spatialAttr reads a per-axis integer attribute, default def on each of k axes.
@@ -1030,48 +1071,24 @@ func (b *builder) pad(n *onnxlite.Node, out string) error {
 // padArgs reads the pads, mode and constant value of Pad node n, from its
 // attributes or (opset ≥ 11) its constant inputs.
 func (b *builder) padArgs(n *onnxlite.Node) (pads []int, mode string, value float64, err error) {
+	if pads, err = b.st.Pads(n); err != nil {
+		return nil, "", 0, err
+	}
 	mode = n.AttrString("mode", "constant")
 	switch {
-	case b.opset < 2:
-		pads = ints(n.AttrInts("paddings", nil))
-		value = float64(n.AttrFloat("value", 0))
 	case b.opset < 11:
-		pads = ints(n.AttrInts("pads", nil))
 		value = float64(n.AttrFloat("value", 0))
-	default:
-		if pads, err = b.constInts(n, 1, "pads"); err != nil {
+	case b.has(n, 2):
+		v, err := b.constFloats(n, 2, "constant_value")
+		if err != nil {
 			return nil, "", 0, err
 		}
-		if b.has(n, 2) {
-			v, err := b.constFloats(n, 2, "constant_value")
-			if err != nil {
-				return nil, "", 0, err
-			}
-			if len(v) != 1 {
-				return nil, "", 0, fmt.Errorf("Pad: expected a scalar constant_value, got %d values", len(v))
-			}
-			value = v[0]
+		if len(v) != 1 {
+			return nil, "", 0, fmt.Errorf("Pad: expected a scalar constant_value, got %d values", len(v))
 		}
-	}
-	if r := len(b.shape(n.Inputs[0])); len(pads) != 2*r {
-		return nil, "", 0, fmt.Errorf("Pad: expected %d pads for rank %d, got %v", 2*r, r, pads)
+		value = v[0]
 	}
 	return pads, mode, value, nil
-}
-
-// tensorFloats returns the elements of a floating-point tensor.
-func tensorFloats(t *onnxlite.Tensor) ([]float64, error) {
-	if !isFloat(t.DType) {
-		return nil, fmt.Errorf("%w: expected a FLOAT, DOUBLE or FLOAT16 tensor, got %v", ErrBadRequest, t.DType)
-	}
-	v, err := t.Float64s()
-	if err != nil {
-		return nil, err
-	}
-	if int64(len(v)) != t.NumElements() {
-		return nil, fmt.Errorf("%w: dims %v need %d elements, data has %d", ErrShape, t.Dims, t.NumElements(), len(v))
-	}
-	return v, nil
 }
 
 // makeTensor wraps engine results as a Float or Double tensor.

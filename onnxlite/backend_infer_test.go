@@ -10,6 +10,7 @@ import (
 	"testing"
 
 	"github.com/apportion/apportion/internal/onnxtestdata"
+	"github.com/apportion/apportion/internal/ortdata"
 	"github.com/apportion/apportion/onnxlite"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
@@ -22,30 +23,10 @@ var inferExpectedFailures = map[string]string{
 	// The reference output of ONNX 1.12's generator stores bfloat16 results as
 	// UINT16 (numpy has no bfloat16); Cast's spec says the output type is to=BFLOAT16.
 	"node/test_cast_FLOAT_to_BFLOAT16": "reference file stores BFLOAT16 as UINT16",
-	// The expanded CastLike models declare input "like" as [3 4] while their
-	// input_1.pb holds one element; Infer refuses a shape that contradicts the
-	// declared fixed dims.
-	"node/test_castlike_BFLOAT16_to_FLOAT_expanded": "model declares like [3 4], data set gives [1]",
-	"node/test_castlike_FLOAT_to_BFLOAT16_expanded": "model declares like [3 4], data set gives [1]",
-}
-
-func init() {
-	// Gather and Slice are fold-only: on run-time data they are refused.
-	for _, c := range []string{
-		"node/test_gather_0", "node/test_gather_1", "node/test_gather_2d_indices",
-		"node/test_gather_negative_indices", "pytorch-converted/test_Embedding",
-		"pytorch-converted/test_Embedding_sparse",
-	} {
-		inferExpectedFailures[c] = "Gather of run-time data is fold-only"
-	}
-	for _, c := range []string{
-		"node/test_slice", "node/test_slice_default_axes", "node/test_slice_default_steps",
-		"node/test_slice_end_out_of_bounds", "node/test_slice_neg", "node/test_slice_neg_steps",
-		"node/test_slice_negative_axes", "node/test_slice_start_out_of_bounds",
-		"pytorch-operator/test_operator_index",
-	} {
-		inferExpectedFailures[c] = "Slice of run-time data is fold-only"
-	}
+	// The expanded CastLike model declares input "like" as [3 4] while its
+	// input_1.pb holds one element; nothing reads "like" (Infer ignores it),
+	// but the case's output stores BFLOAT16 as UINT16 (above).
+	"node/test_castlike_FLOAT_to_BFLOAT16_expanded": "reference file stores BFLOAT16 as UINT16",
 }
 
 // backendCase is a decoded backend test case with the shapes of data set 0.
@@ -53,6 +34,7 @@ type backendCase struct {
 	name    string
 	model   *onnxlite.Model
 	inputs  map[string][]int
+	values  map[string]*onnxlite.Tensor
 	outputs []*onnxlite.Tensor
 }
 
@@ -70,7 +52,7 @@ func supportedCases(t *testing.T) (cases []backendCase, total int) {
 		}
 		total++
 		ins, outs := onnxtestdata.SetFiles(c.Sets[0])
-		bc := backendCase{name: c.Suite + "/" + c.Name, model: m, inputs: map[string][]int{}}
+		bc := backendCase{name: c.Suite + "/" + c.Name, model: m, inputs: map[string][]int{}, values: map[string]*onnxlite.Tensor{}}
 		// Inputs pair with the graph inputs not backed by an initializer, in order.
 		var runtime []string
 		inits := map[string]bool{}
@@ -82,7 +64,7 @@ func supportedCases(t *testing.T) (cases []backendCase, total int) {
 				runtime = append(runtime, in.Name)
 			}
 		}
-		params := paramInputs(m)
+		uses := onnxlite.InputUses(m)
 		for i, p := range ins {
 			tn, err := onnxlite.DecodeTensorFile(p, onnxlite.DecodeOptions{})
 			require.NoError(t, err, "%s: %s", bc.name, p)
@@ -90,9 +72,10 @@ func supportedCases(t *testing.T) (cases []backendCase, total int) {
 			if i < len(runtime) && (name == "" || !slices.Contains(runtime, name)) {
 				name = runtime[i]
 			}
-			if params[name] {
-				tn.Name = name
-				m.Graph.Initializers = append(m.Graph.Initializers, tn)
+			if uses[name].CompileTime() {
+				// Parameters (axes, pads, target shapes, slice bounds,
+				// scales) are compile-time values.
+				bc.values[name] = tn
 				continue
 			}
 			bc.inputs[name] = tn.Shape()
@@ -105,28 +88,6 @@ func supportedCases(t *testing.T) (cases []backendCase, total int) {
 		cases = append(cases, bc)
 	}
 	return cases, total
-}
-
-// paramSlots are the operator inputs that carry shape parameters (axes, pads,
-// target shapes, slice bounds, range bounds). Exported models hold them in
-// initializers; the node tests feed them as graph inputs, so the test passes
-// their input_*.pb values as initializers, as an exporter would write them.
-var paramSlots = map[string][]int{
-	"Reshape": {1}, "Squeeze": {1}, "Unsqueeze": {1}, "Pad": {1, 2}, "ReduceSum": {1},
-	"Slice": {1, 2, 3, 4}, "ConstantOfShape": {0}, "Range": {0, 1, 2},
-}
-
-// paramInputs names the graph inputs that feed a shape-parameter slot.
-func paramInputs(m *onnxlite.Model) map[string]bool {
-	out := map[string]bool{}
-	for _, n := range m.Graph.Nodes {
-		for _, i := range paramSlots[n.OpType] {
-			if i < len(n.Inputs) && n.Inputs[i] != "" {
-				out[n.Inputs[i]] = true
-			}
-		}
-	}
-	return out
 }
 
 // allTensors reports whether every graph input and output is a tensor (the
@@ -142,7 +103,7 @@ func allTensors(g *onnxlite.Graph) bool {
 }
 
 func checkInferred(bc backendCase) error {
-	st, err := onnxlite.Infer(bc.model, bc.inputs)
+	st, err := onnxlite.InferWith(bc.model, onnxlite.InferOptions{Shapes: bc.inputs, Values: bc.values})
 	if err != nil {
 		return err
 	}
@@ -176,8 +137,6 @@ func TestBackendInferShapes(t *testing.T) {
 			match++
 		case !listed:
 			t.Errorf("%s: %v", bc.name, err)
-		case strings.Contains(reason, "fold-only") && !(errors.Is(err, onnxlite.ErrFoldOnly) && errors.Is(err, onnxlite.ErrUnsupported)):
-			t.Errorf("%s: expected an ErrFoldOnly refusal that is also ErrUnsupported (%s), got %v", bc.name, reason, err)
 		}
 	}
 	for name := range inferExpectedFailures {
@@ -306,7 +265,9 @@ func sameTensor(got, want *onnxlite.Tensor) error {
 
 // TestSupportedOpsInBackendData checks every supported operator name against
 // the ONNX backend test data (Debian libonnx-testdata 1.12.0): each is used by
-// at least one node of some case, and every case built only from supported
+// at least one node of some case, or, for the operators that came after
+// opset 17 (Gelu, GroupNormalization, Mish), by one of the ONNX Runtime 1.30
+// cases of testdata/ort; and every backend case built only from supported
 // operators validates (the ONNX checker accepted them when they were made).
 func TestSupportedOpsInBackendData(t *testing.T) {
 	dir := onnxtestdata.Dir(t)
@@ -325,8 +286,13 @@ func TestSupportedOpsInBackendData(t *testing.T) {
 			assert.NoError(t, m.Validate(), c.Suite+"/"+c.Name)
 		}
 	}
+	for _, c := range ortdata.Cases(t) {
+		for _, op := range c.Ops {
+			used[op] = true
+		}
+	}
 	for _, op := range onnxlite.SupportedOps() {
-		assert.True(t, used[op], "%s is used by no backend case", op)
+		assert.True(t, used[op], "%s is used by no backend case or ONNX Runtime fixture", op)
 	}
 }
 
@@ -340,7 +306,7 @@ var shapeOps = map[string]bool{
 // (Debian libonnx-testdata 1.12.0, suites pytorch-converted and
 // pytorch-operator) that use shape operators: none may keep a fold-only or
 // Constant node, and every Reshape left must read a folded constant shape.
-// Gather and Slice of run-time data are refused as fold-only instead.
+// Gather and Slice of run-time data stay in the graph, for the engine.
 func TestBackendPyTorchModelsFold(t *testing.T) {
 	cases, _ := supportedCases(t)
 	n := 0
@@ -356,12 +322,7 @@ func TestBackendPyTorchModelsFold(t *testing.T) {
 			continue
 		}
 		n++
-		st, err := onnxlite.Infer(bc.model, bc.inputs)
-		if reason, ok := inferExpectedFailures[bc.name]; ok && strings.Contains(reason, "fold-only") {
-			require.ErrorIs(t, err, onnxlite.ErrFoldOnly, bc.name)
-			require.ErrorIs(t, err, onnxlite.ErrUnsupported, bc.name)
-			continue
-		}
+		st, err := onnxlite.InferWith(bc.model, onnxlite.InferOptions{Shapes: bc.inputs, Values: bc.values})
 		require.NoError(t, err, bc.name)
 		for _, nd := range st.Nodes {
 			assert.False(t, onnxlite.FoldOnly(nd.OpType) || nd.OpType == "Constant", "%s: %s node %q left", bc.name, nd.OpType, nd.Name)

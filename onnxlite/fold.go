@@ -565,88 +565,15 @@ func foldGather(c *nodeCtx) ([]*Tensor, error) {
 	return c.tensors(newTensor(x.DType, out, data.Interface()))
 }
 
-// foldSlice evaluates Slice (attributes starts/ends/axes before opset 10, inputs
-// starts, ends, axes, steps from it). Per the ONNX spec, negative starts and
-// ends count from the end, and they clamp to [0, dim] for positive steps and
-// [−1, dim−1] for negative ones.
+// foldSlice evaluates Slice with the geometry sliceParams resolves.
 func foldSlice(c *nodeCtx) ([]*Tensor, error) {
 	x := c.consts[0]
 	xs := x.Shape()
-	var starts, ends, axes, steps []int64
-	if c.opset < 10 {
-		starts, ends, axes = c.n.AttrInts("starts", nil), c.n.AttrInts("ends", nil), c.n.AttrInts("axes", nil)
-		if starts == nil || ends == nil {
-			return nil, c.errorf("expected the starts and ends attributes (opset %d), got starts %v, ends %v", c.opset, starts, ends)
-		}
-	} else {
-		var err error
-		if starts, err = c.requiredInts(1, "starts"); err != nil {
-			return nil, err
-		}
-		if ends, err = c.requiredInts(2, "ends"); err != nil {
-			return nil, err
-		}
-		if axes, _, err = c.constInts(3, "axes"); err != nil {
-			return nil, err
-		}
-		if steps, _, err = c.constInts(4, "steps"); err != nil {
-			return nil, err
-		}
+	sp, err := sliceParams(c)
+	if err != nil {
+		return nil, err
 	}
-	if len(starts) != len(ends) {
-		return nil, c.errorf("starts %v and ends %v: expected the same length", starts, ends)
-	}
-	if axes == nil {
-		for i := range starts {
-			axes = append(axes, int64(i))
-		}
-	}
-	if steps == nil {
-		steps = slices.Repeat([]int64{1}, len(starts))
-	}
-	if len(axes) != len(starts) || len(steps) != len(starts) {
-		return nil, c.errorf("starts %v, ends %v, axes %v, steps %v: expected equal lengths", starts, ends, axes, steps)
-	}
-	r := len(xs)
-	first := make([]int64, r)
-	step := slices.Repeat([]int64{1}, r)
-	out := slices.Clone(xs)
-	seen := make([]bool, r)
-	for i, a := range axes {
-		ax, err := normAxis(a, r)
-		if err != nil {
-			return nil, c.errorf("axes %v: %v", axes, err)
-		}
-		if seen[ax] {
-			return nil, c.errorf("axes %v: axis %d repeats", axes, a)
-		}
-		seen[ax] = true
-		d := int64(xs[ax])
-		s, e, st := starts[i], ends[i], steps[i]
-		if st == 0 {
-			return nil, c.errorf("steps %v: expected non-zero steps", steps)
-		}
-		if s < 0 {
-			s += d
-		}
-		if e < 0 {
-			e += d
-		}
-		var n int64
-		st = max(st, -math.MaxInt64)
-		if st > 0 {
-			s, e = min(max(s, 0), d), min(max(e, 0), d)
-			if e > s {
-				n = (e-s-1)/st + 1
-			}
-		} else {
-			s, e = min(max(s, -1), d-1), min(max(e, -1), d-1)
-			if s > e {
-				n = (s-e-1)/(-st) + 1
-			}
-		}
-		first[ax], step[ax], out[ax] = s, st, int(n)
-	}
+	r, out := len(xs), sp.Shape
 	src := reflect.ValueOf(x.Data)
 	total := prod(out)
 	data := reflect.MakeSlice(src.Type(), total, total)
@@ -661,7 +588,7 @@ func foldSlice(c *nodeCtx) ([]*Tensor, error) {
 		for ax := r - 1; ax >= 0; ax-- {
 			coord := rem % out[ax]
 			rem /= out[ax]
-			off += int(first[ax]+int64(coord)*step[ax]) * strides[ax]
+			off += (sp.Start[ax] + coord*sp.Step[ax]) * strides[ax]
 		}
 		data.Index(p).Set(src.Index(off))
 	}

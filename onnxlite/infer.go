@@ -28,30 +28,63 @@ func (v ValueShape) String() string { return fmt.Sprintf("%v%v", v.DType, v.Shap
 // NumElements is the product of the dims (1 for a scalar).
 func (v ValueShape) NumElements() int64 { return prodInt64(v.Shape) }
 
-// Infer validates m (see Validate), gives every value a concrete shape and
-// element type, and folds the constant subgraphs that exporters emit for shape
-// arithmetic.
+// Infer is InferWith with the given input shapes and no other options.
+func Infer(m *Model, inputs map[string][]int) (*Static, error) {
+	return InferWith(m, InferOptions{Shapes: inputs})
+}
+
+// InferOptions tune InferWith. The zero value uses the declared input shapes
+// and folds only what onnxlite evaluates itself.
+type InferOptions struct {
+	// Shapes maps runtime graph inputs (those not backed by an initializer)
+	// to concrete shapes. An input absent from the map uses its declared
+	// shape, which must then be fully fixed; a given shape must have the
+	// declared rank and agree with every declared fixed dim.
+	Shapes map[string][]int
+	// Values holds runtime graph inputs whose values are known when the
+	// model is specialised (see InputUses): each is a constant of the
+	// result, with the tensor's shape, and is not listed in Static.Inputs.
+	// An input that nothing reads (InputUse.Unread) is left out of the
+	// result whatever Shapes and Values give for it.
+	Values map[string]*Tensor
+	// Eval, when set, evaluates every node whose inputs are all constant
+	// and that onnxlite does not fold itself (see Evaluator).
+	Eval Evaluator
+}
+
+// Evaluator computes the outputs of node n of a model of default-domain
+// opset opset, all of whose inputs are the constants in inputs (nil for an
+// omitted optional input). outputs gives the element type and shape Infer
+// inferred for each output (the zero ValueShape for an omitted one); the
+// result has one tensor per output, nil for omitted ones, of that type and
+// shape, except that a floating-point value may be held in another
+// floating-point type: the precision the evaluator computed it in, which
+// Static.Consts keeps (Static.Values keeps the ONNX type). nn's engine is
+// one: it runs the node with the operators it runs at run time.
+type Evaluator func(n *Node, opset int64, inputs []*Tensor, outputs []ValueShape) ([]*Tensor, error)
+
+// InferWith validates m (see Validate), gives every value a concrete shape
+// and element type, and folds the constant subgraphs of the model: the shape
+// arithmetic that exporters emit, and with opts.Eval every node whose inputs
+// are all constant.
 //
-// inputs maps runtime graph inputs (those not backed by an initializer) to
-// concrete shapes. An input absent from the map uses its declared shape, which
-// must then be fully fixed; a given shape must have the declared rank and agree
-// with every declared fixed dim. Naming a value that is not a runtime input is
-// an error.
-//
-// The shape rules follow the ONNX operator specifications (onnx/defs, opsets 1
-// to 17) for every supported operator, with numpy broadcasting for the
-// elementwise operators. A node whose inputs are all constant and whose operator
-// is Shape, Gather, Slice, Squeeze, Unsqueeze, Concat, Cast, Constant,
-// ConstantOfShape, Range, Reshape, Identity, Flatten, integer Add/Sub/Mul/Div,
-// or float Add/Sub/Mul/Div/Neg of at most 4096 elements, is evaluated: its
-// outputs go to Consts and the node leaves Nodes. Shape always folds, to the
-// inferred shape of its input. A fold-only operator (see FoldOnly) that cannot
-// be folded is an error naming the node that wraps ErrFoldOnly and
-// ErrUnsupported.
+// The shape rules follow the ONNX operator specifications (Operators.md and
+// Changelog.md of ONNX 1.23, opsets 1 to MaxOpset) for every supported
+// operator, with each revision's semantics where they changed, and numpy
+// broadcasting for the elementwise operators. A node whose inputs are all
+// constant and whose operator is Shape, Gather, Slice, Squeeze, Unsqueeze,
+// Concat, Cast, Constant, ConstantOfShape, Range, Reshape, Identity,
+// Flatten, integer Add/Sub/Mul/Div, or float Add/Sub/Mul/Div/Neg of at most
+// 4096 elements, is evaluated exactly by onnxlite; any other node whose
+// inputs are all constant is evaluated by opts.Eval when it is set. The
+// outputs of an evaluated node go to Consts and the node leaves Nodes. Shape
+// always folds, to the inferred shape of its input. A fold-only operator
+// (see FoldOnly) that cannot be folded is an error naming the node that
+// wraps ErrFoldOnly and ErrUnsupported.
 //
 // A value with more than DefaultLimits.MaxTensorElements elements or a rank
 // above DefaultLimits.MaxRank is a *LimitError.
-func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
+func InferWith(m *Model, opts InferOptions) (st *Static, err error) {
 	defer recoverTo(&err, "infer", ErrInvalid)
 	order, err := m.validate()
 	if err != nil {
@@ -65,7 +98,7 @@ func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 	}
 	for _, t := range g.Initializers {
 		if err := checkTensor(t); err != nil {
-			return nil, fmt.Errorf("onnxlite: initializer %q: %v: %w", t.Name, err, ErrInvalid)
+			return nil, invalidf("initializer %q: %v", t.Name, err)
 		}
 		vs := ValueShape{DType: t.DType, Shape: t.Shape()}
 		if err := checkValueLimits(t.Name, vs); err != nil {
@@ -76,11 +109,29 @@ func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 	}
 	runtime := map[string]bool{}
 	params := map[string]symbolicDim{}
+	shapes := opts.Shapes
+	uses := InputUses(m)
 	for _, in := range g.Inputs {
 		if _, ok := s.Consts[in.Name]; ok {
 			continue
 		}
-		vs, err := inputShape(in, inputs)
+		runtime[in.Name] = true
+		if uses[in.Name].Unread {
+			continue // nothing reads it: no shape or value to check
+		}
+		if t, ok := opts.Values[in.Name]; ok {
+			vs, err := heldInput(in, t)
+			if err != nil {
+				return nil, err
+			}
+			if err := bindParams(in, vs.Shape, params); err != nil {
+				return nil, err
+			}
+			s.Values[in.Name] = vs
+			s.Consts[in.Name] = t
+			continue
+		}
+		vs, err := inputShape(in, shapes)
 		if err != nil {
 			return nil, err
 		}
@@ -92,16 +143,23 @@ func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 		}
 		s.Values[in.Name] = vs
 		s.Inputs = append(s.Inputs, in.Name)
-		runtime[in.Name] = true
 	}
-	for name := range inputs {
+	for name := range shapes {
 		if !runtime[name] {
-			return nil, invalidf("input shape given for %q: expected one of the runtime graph inputs %v", name, s.Inputs)
+			return nil, fmt.Errorf("input shape given for %q: expected one of the runtime graph inputs %v", name, runtimeNames(g))
+		}
+		if _, held := opts.Values[name]; held {
+			return nil, fmt.Errorf("input %q: given both a shape and a value", name)
+		}
+	}
+	for name := range opts.Values {
+		if !runtime[name] {
+			return nil, fmt.Errorf("input value given for %q: expected one of the runtime graph inputs %v", name, runtimeNames(g))
 		}
 	}
 	opset := m.OpsetVersion("")
 	for _, i := range order {
-		if err := s.inferNode(g.Nodes[i], i, opset); err != nil {
+		if err := s.inferNode(g.Nodes[i], i, opset, opts.Eval); err != nil {
 			return nil, err
 		}
 	}
@@ -112,6 +170,41 @@ func Infer(m *Model, inputs map[string][]int) (st *Static, err error) {
 		s.Outputs = append(s.Outputs, o.Name)
 	}
 	return s, nil
+}
+
+// runtimeNames lists the runtime graph inputs of g (those not backed by an
+// initializer) in graph order.
+func runtimeNames(g *Graph) []string {
+	inits := map[string]bool{}
+	for _, t := range g.Initializers {
+		inits[t.Name] = true
+	}
+	var out []string
+	for _, in := range g.Inputs {
+		if !inits[in.Name] {
+			out = append(out, in.Name)
+		}
+	}
+	return out
+}
+
+// heldInput checks a value given for a runtime input against the input's
+// declared type and shape.
+func heldInput(in *ValueInfo, t *Tensor) (ValueShape, error) {
+	if in.Type == nil || in.Type.Kind != KindTensor {
+		return ValueShape{}, invalidf("graph input %q: expected a tensor type, got %s", in.Name, describeType(in.Type))
+	}
+	if err := checkTensor(t); err != nil {
+		return ValueShape{}, fmt.Errorf("input %q: %v", in.Name, err)
+	}
+	if t.DType != in.Type.Elem {
+		return ValueShape{}, fmt.Errorf("input %q: expected a %v tensor, got %v", in.Name, in.Type.Elem, t.DType)
+	}
+	vs, err := inputShape(in, map[string][]int{in.Name: t.Shape()})
+	if err != nil {
+		return ValueShape{}, err
+	}
+	return vs, checkValueLimits(in.Name, vs)
 }
 
 // inputShape resolves the concrete shape of a runtime graph input.
@@ -219,7 +312,7 @@ func describeDims(ds []Dim) string {
 // checkValueLimits refuses values beyond DefaultLimits.MaxTensorElements or DefaultLimits.MaxRank.
 func checkValueLimits(name string, vs ValueShape) error {
 	if len(vs.Shape) > DefaultLimits.MaxRank {
-		return fmt.Errorf("onnxlite: value %q: shape %v: %w", name, vs.Shape,
+		return fmt.Errorf("value %q: shape %v: %w", name, vs.Shape,
 			&LimitError{Limit: "MaxRank", Value: int64(len(vs.Shape)), Max: int64(DefaultLimits.MaxRank)})
 	}
 	dims := make([]int64, len(vs.Shape))
@@ -227,7 +320,7 @@ func checkValueLimits(name string, vs ValueShape) error {
 		dims[i] = int64(d)
 	}
 	if _, err := elementCount(dims, DefaultLimits.MaxTensorElements); err != nil {
-		return fmt.Errorf("onnxlite: value %q: shape %v: %w", name, vs.Shape, err)
+		return fmt.Errorf("value %q: shape %v: %w", name, vs.Shape, err)
 	}
 	return nil
 }
@@ -241,14 +334,22 @@ type nodeCtx struct {
 	consts []*Tensor     // nil unless the input is constant
 }
 
-// errorf wraps ErrInvalid with the node's name and operator.
+// errorf returns an error wrapping ErrInvalid that names the node and its
+// operator: the model breaks the operator's specification.
 func (c *nodeCtx) errorf(format string, args ...any) error {
-	return fmt.Errorf("onnxlite: node %q (%s): "+format+": %w", append([]any{nodeName(c.n, c.idx), c.n.OpType}, append(args, ErrInvalid)...)...)
+	return invalidf("node %q (%s): "+format, append([]any{nodeName(c.n, c.idx), c.n.OpType}, args...)...)
+}
+
+// unsupportedf returns an error wrapping ErrUnsupported that names the node
+// and its operator: the node is valid, but asks for something apportion
+// does not compute.
+func (c *nodeCtx) unsupportedf(format string, args ...any) error {
+	return unsupportedf("node %q (%s): "+format, append([]any{nodeName(c.n, c.idx), c.n.OpType}, args...)...)
 }
 
 // wrap prefixes err with the node's name and operator.
 func (c *nodeCtx) wrap(err error) error {
-	return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(c.n, c.idx), c.n.OpType, err)
+	return fmt.Errorf("node %q (%s): %w", nodeName(c.n, c.idx), c.n.OpType, err)
 }
 
 // input returns input i, or nil when it is omitted.
@@ -267,16 +368,25 @@ func (c *nodeCtx) need(i int) (*ValueShape, error) {
 	return nil, c.errorf("expected input %d, got none (the node has %d inputs)", i, len(c.n.Inputs))
 }
 
-// constInts returns the integer elements of constant input i; ok is false when
-// the input is omitted.
-func (c *nodeCtx) constInts(i int, what string) (vals []int64, ok bool, err error) {
+// constInput returns constant input i; ok is false when the input is
+// omitted. A run-time value there is an error wrapping ErrUnsupported.
+func (c *nodeCtx) constInput(i int, what string) (t *Tensor, ok bool, err error) {
 	if c.input(i) == nil {
 		return nil, false, nil
 	}
-	t := c.consts[i]
-	if t == nil {
-		return nil, true, c.errorf("%s (input %d, %q) must be a constant (an initializer or folded value), got a run-time value",
+	if t = c.consts[i]; t == nil {
+		return nil, true, c.unsupportedf("its %s (input %d, %q) are computed at run time: apportion needs them constant (an initializer, a folded value or an input given with the model)",
 			what, i, c.n.Inputs[i])
+	}
+	return t, true, nil
+}
+
+// constInts returns the integer elements of constant input i; ok is false
+// when the input is omitted.
+func (c *nodeCtx) constInts(i int, what string) (vals []int64, ok bool, err error) {
+	t, ok, err := c.constInput(i, what)
+	if t == nil {
+		return nil, ok, err
 	}
 	v, err := t.Int64s()
 	if err != nil {
@@ -303,7 +413,7 @@ func (c *nodeCtx) allConst() bool {
 	return true
 }
 
-func (s *Static) inferNode(n *Node, idx int, opset int64) error {
+func (s *Static) inferNode(n *Node, idx int, opset int64, eval Evaluator) error {
 	c := &nodeCtx{n: n, idx: idx, opset: opset,
 		in: make([]*ValueShape, len(n.Inputs)), consts: make([]*Tensor, len(n.Inputs))}
 	for i, name := range n.Inputs {
@@ -321,27 +431,15 @@ func (s *Static) inferNode(n *Node, idx int, opset int64) error {
 		outs, err = foldShape(c)
 	case c.allConst() && canFold(c):
 		outs, err = fold(c)
-	case FoldOnly(n.OpType):
-		return fmt.Errorf("onnxlite: node %q (%s): expected constant inputs to fold it, got run-time value(s) %s: %s is not supported at run time: %w (%w)",
-			nodeName(n, idx), n.OpType, runtimeInputs(c), n.OpType, ErrFoldOnly, ErrUnsupported)
+	case FoldOnly(n.OpType) && !c.allConst():
+		return fmt.Errorf("%w: node %q (%s): %s needs constant inputs, got the run-time value(s) %s (%w)",
+			ErrUnsupported, nodeName(n, idx), n.OpType, n.OpType, runtimeInputs(c), ErrFoldOnly)
 	}
 	if err != nil {
 		return err
 	}
 	if outs != nil {
-		for i, t := range outs {
-			if i >= len(n.Outputs) || n.Outputs[i] == "" || t == nil {
-				continue
-			}
-			t.Name = n.Outputs[i]
-			vs := ValueShape{DType: t.DType, Shape: t.Shape()}
-			if err := checkValueLimits(t.Name, vs); err != nil {
-				return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(n, idx), n.OpType, err)
-			}
-			s.Values[t.Name] = vs
-			s.Consts[t.Name] = t
-		}
-		return nil
+		return s.setConsts(c, outs)
 	}
 	shapes, err := c.outShapes()
 	if err != nil {
@@ -355,11 +453,76 @@ func (s *Static) inferNode(n *Node, idx int, opset int64) error {
 			return c.errorf("output %d (%q): expected at most %d outputs, got %d", i, o, len(shapes), len(n.Outputs))
 		}
 		if err := checkValueLimits(o, shapes[i]); err != nil {
-			return fmt.Errorf("onnxlite: node %q (%s): %w", nodeName(n, idx), n.OpType, err)
+			return c.wrap(err)
 		}
-		s.Values[o] = shapes[i]
+	}
+	if eval != nil && c.allConst() && len(n.Inputs) > 0 {
+		return s.evaluate(c, eval, shapes)
+	}
+	for i, o := range n.Outputs {
+		if o != "" {
+			s.Values[o] = shapes[i]
+		}
 	}
 	s.Nodes = append(s.Nodes, n)
+	return nil
+}
+
+// evaluate folds a node whose inputs are all constant with eval, checking
+// that each result has the element type and shape the rules inferred.
+func (s *Static) evaluate(c *nodeCtx, eval Evaluator, shapes []ValueShape) error {
+	want := make([]ValueShape, len(c.n.Outputs))
+	for i, o := range c.n.Outputs {
+		if o != "" {
+			want[i] = shapes[i]
+		}
+	}
+	outs, err := eval(c.n, c.opset, c.consts, want)
+	if err != nil {
+		return c.wrap(err)
+	}
+	for i, o := range c.n.Outputs {
+		if o == "" {
+			continue
+		}
+		if i >= len(outs) || outs[i] == nil {
+			return c.wrap(fmt.Errorf("constant folding computed no value for output %q", o))
+		}
+		t := outs[i]
+		sameKind := t.DType == want[i].DType || isFloatType(t.DType) && isFloatType(want[i].DType)
+		if !sameKind || !slices.Equal(t.Shape(), want[i].Shape) {
+			return c.wrap(fmt.Errorf("constant folding computed %v%v for output %q, inference gives %v", t.DType, t.Shape(), o, want[i]))
+		}
+	}
+	if err := s.setConsts(c, outs); err != nil {
+		return err
+	}
+	for i, o := range c.n.Outputs {
+		if o != "" {
+			s.Values[o] = want[i] // the ONNX type, whatever precision Eval kept
+		}
+	}
+	return nil
+}
+
+func isFloatType(dt DataType) bool {
+	return dt == Float || dt == Double || dt == Float16 || dt == BFloat16
+}
+
+// setConsts records the folded outputs of c's node as constants.
+func (s *Static) setConsts(c *nodeCtx, outs []*Tensor) error {
+	for i, t := range outs {
+		if i >= len(c.n.Outputs) || c.n.Outputs[i] == "" || t == nil {
+			continue
+		}
+		t.Name = c.n.Outputs[i]
+		vs := ValueShape{DType: t.DType, Shape: t.Shape()}
+		if err := checkValueLimits(t.Name, vs); err != nil {
+			return c.wrap(err)
+		}
+		s.Values[t.Name] = vs
+		s.Consts[t.Name] = t
+	}
 	return nil
 }
 

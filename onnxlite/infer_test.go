@@ -81,15 +81,17 @@ func TestInferConcreteShapes(t *testing.T) {
 	require.ErrorIs(t, err, onnxlite.ErrInvalid)
 	assert.Contains(t, err.Error(), "rank 4")
 
+	// A shape for a value that is not a runtime input is the caller's
+	// mistake, not the model's.
 	_, err = onnxlite.Infer(m, map[string][]int{"x": {7, 3, 4, 5}, "zero": {1}})
-	require.ErrorIs(t, err, onnxlite.ErrInvalid)
+	require.Error(t, err)
+	assert.NotErrorIs(t, err, onnxlite.ErrInvalid)
 	assert.Contains(t, err.Error(), `"zero"`)
 }
 
 // TestInferFoldOnlyRefused gives each fold-only operator (FoldOnly) a
 // run-time input. The node forms follow the ONNX operator specs (opset 13):
-// Gather(data, indices), Slice(data, starts, ends), ConstantOfShape(input)
-// and Range(start, limit, delta).
+// ConstantOfShape(input) and Range(start, limit, delta).
 func TestInferFoldOnlyRefused(t *testing.T) {
 	cases := []struct {
 		op     string
@@ -97,10 +99,6 @@ func TestInferFoldOnlyRefused(t *testing.T) {
 		inits  []*onnxlite.Tensor
 		ins    []string
 	}{
-		{"Gather", []*onnxlite.ValueInfo{tensorInput("x", onnxlite.Float, 4, 3)},
-			[]*onnxlite.Tensor{int64Tensor(t, "idx", []int64{2}, 0, 2)}, []string{"x", "idx"}},
-		{"Slice", []*onnxlite.ValueInfo{tensorInput("x", onnxlite.Float, 4, 3)},
-			[]*onnxlite.Tensor{int64Tensor(t, "starts", []int64{1}, 0), int64Tensor(t, "ends", []int64{1}, 2)}, []string{"x", "starts", "ends"}},
 		{"ConstantOfShape", []*onnxlite.ValueInfo{tensorInput("x", onnxlite.Int64, 2)}, nil, []string{"x"}},
 		{"Range", []*onnxlite.ValueInfo{tensorInput("x", onnxlite.Int64)},
 			[]*onnxlite.Tensor{int64Tensor(t, "limit", []int64{}, 5), int64Tensor(t, "delta", []int64{}, 1)}, []string{"x", "limit", "delta"}},

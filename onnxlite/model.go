@@ -4,8 +4,12 @@
 // graph IR that keeps every field the rest of apportion needs (opsets,
 // metadata, nodes with attributes, initializers, typed inputs and outputs).
 // Validate checks the graph, Infer gives every value a static shape and folds
-// the constant shape arithmetic that exporters emit, and Encode writes a
-// Model back as a valid ONNX file.
+// the constant shape arithmetic that exporters emit (InferWith hands every
+// other all-constant node to an engine's Evaluator), and Encode writes a
+// Model back as a valid ONNX file. Errors about a model start with
+// "invalid model: " when it breaks the ONNX specification (ErrInvalid) and
+// "not supported by apportion: " when it asks for what apportion does not
+// compute (ErrUnsupported).
 package onnxlite
 
 // DataType is an ONNX TensorProto.DataType enum value.

@@ -5,13 +5,18 @@ import (
 	"sort"
 )
 
-// The default-domain operator set versions the shape rules cover. Models that
-// import an older default opset (1–6, as the early PyTorch exporters wrote)
-// are read with the semantics of their version where the rules differ, e.g.
-// the legacy broadcast attribute of the elementwise operators.
+// The default-domain operator set versions the shape rules cover: every
+// revision of each supported operator up to MaxOpset (26, the newest ONNX
+// Runtime 1.30 accepts), with its semantics where a revision changed them
+// (Reduce* with axes as an input from 18, Pad's axes from 18 and wrap from
+// 19, Split's num_outputs from 18, AveragePool's dilations from 19, …).
+// Models that import an older default opset (1–6, as the early PyTorch
+// exporters wrote) are read with the semantics of their version where the
+// rules differ, e.g. the legacy broadcast attribute of the elementwise
+// operators. A newer opset is refused with ErrUnsupported.
 const (
 	MinOpset = 1
-	MaxOpset = 17
+	MaxOpset = 26
 )
 
 // onnxlite supports an operator when Infer can handle its nodes: it has a
@@ -23,7 +28,7 @@ const (
 // foldOnlyOps are the operators Infer supports only when constant folding
 // removes them.
 var foldOnlyOps = map[string]bool{
-	"Shape": true, "Gather": true, "Slice": true, "ConstantOfShape": true, "Range": true,
+	"Shape": true, "ConstantOfShape": true, "Range": true,
 }
 
 // SupportedOps returns the names of the supported default-domain operators,
@@ -52,10 +57,10 @@ func IsSupported(domain, op string) bool {
 }
 
 // FoldOnly reports whether the default-domain operator op is supported only
-// when constant folding removes it: Shape, Gather, Slice, ConstantOfShape and
-// Range. Infer refuses such a node when one of its inputs is a run-time value
-// (Shape excepted: it folds to the inferred shape of any value), with an
-// error wrapping ErrFoldOnly.
+// when constant folding removes it: Shape, ConstantOfShape and Range. Infer
+// refuses such a node when one of its inputs is a run-time value (Shape
+// excepted: it folds to the inferred shape of any value), with an error
+// wrapping ErrFoldOnly.
 func FoldOnly(op string) bool {
 	return foldOnlyOps[op]
 }

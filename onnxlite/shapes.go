@@ -28,15 +28,20 @@ func init() {
 		"BatchNormalization": {1, ruleBatchNorm},
 		"Flatten":            {1, ruleFlatten}, "Reshape": {1, ruleReshape}, "Transpose": {1, ruleTranspose},
 		"Squeeze": {1, ruleSqueeze}, "Unsqueeze": {1, ruleUnsqueeze}, "Concat": {0, ruleConcat}, "Pad": {1, rulePad},
-		"ReduceMean": {1, ruleReduce}, "ReduceSum": {1, ruleReduce},
+		"ReduceMean": {1, ruleReduce}, "ReduceSum": {1, ruleReduce}, "ReduceMax": {1, ruleReduce},
+		"ReduceMin": {1, ruleReduce}, "ReduceL2": {1, ruleReduce}, "ReduceLogSumExp": {1, ruleReduce},
 		"Softmax": {1, ruleSoftmax}, "LogSoftmax": {1, ruleSoftmax},
 		"Dropout": {1, ruleDropout}, "Cast": {1, ruleCast}, "Clip": {1, ruleClip},
 	}
 	for _, op := range []string{"Neg", "Abs", "Sqrt", "Exp", "Log", "Relu", "LeakyRelu", "Elu",
 		"Selu", "Celu", "Sigmoid", "HardSigmoid", "HardSwish", "Tanh", "Softplus", "Softsign",
-		"Erf", "Identity"} {
+		"Erf", "Identity", "Mish", "ThresholdedRelu", "Reciprocal", "Sign", "Floor", "Ceil", "Round"} {
 		shapeRules[op] = shapeRule{1, ruleUnary}
 	}
+	shapeRules["Gelu"] = shapeRule{1, ruleGelu}
+	addIndexRules()
+	addNormRules()
+	addResizeRules()
 }
 
 // outShapes checks the node's required inputs and applies its shape rule.
@@ -108,6 +113,14 @@ func normAxis(axis int64, rank int) (int, error) {
 func ruleUnary(c *nodeCtx) ([]ValueShape, error) {
 	x := c.in[0]
 	return []ValueShape{{x.DType, slices.Clone(x.Shape)}}, nil
+}
+
+// ruleGelu: the output has the input's shape; approximate is none or tanh.
+func ruleGelu(c *nodeCtx) ([]ValueShape, error) {
+	if a := c.n.AttrString("approximate", "none"); a != "none" && a != "tanh" {
+		return nil, c.errorf("approximate %q: expected none or tanh", a)
+	}
+	return ruleUnary(c)
 }
 
 // ruleBinary covers the elementwise Add, Sub, Mul, Div and Pow: numpy
@@ -298,6 +311,12 @@ func spatialOut(c *nodeCtx, in []int, kernel []int64, ceil bool) ([]int, error) 
 			}
 			if ceil {
 				o = (span+s-1)/s + 1
+				// A last window that would start in the end padding is
+				// dropped (MaxPool-22 and AveragePool-22 say so; ONNX
+				// Runtime drops it at every opset).
+				if (o-1)*s >= x+pb {
+					o--
+				}
 			} else {
 				o = span/s + 1
 			}
@@ -687,28 +706,22 @@ func ruleConcat(c *nodeCtx) ([]ValueShape, error) {
 }
 
 // rulePad: out[i] = in[i] + pad_begin[i] + pad_end[i]; pads are an attribute
-// before opset 11 ("paddings" in opset 1) and input 1 from it.
+// before opset 11 ("paddings" in opset 1) and input 1 from it. From opset 18
+// the optional input 3 names the axes the pads refer to (the others are not
+// padded), and from 19 the mode may be wrap.
 func rulePad(c *nodeCtx) ([]ValueShape, error) {
 	x := c.in[0]
-	var pads []int64
-	if c.opset < 11 {
-		pads = c.n.AttrInts("pads", c.n.AttrInts("paddings", nil))
-	} else {
-		var err error
-		if pads, err = c.requiredInts(1, "pads"); err != nil {
-			return nil, err
-		}
-		if v := c.input(2); v != nil && prod(v.Shape) != 1 {
-			return nil, c.errorf("constant_value: expected one element, got shape %v", v.Shape)
-		}
-	}
 	r := len(x.Shape)
-	if len(pads) != 2*r {
-		return nil, c.errorf("pads %v: expected %d values (begins then ends) for input %v", pads, 2*r, x.Shape)
+	pads, err := padsOf(c, r)
+	if err != nil {
+		return nil, err
 	}
 	mode := c.n.AttrString("mode", "constant")
-	if mode != "constant" && mode != "reflect" && mode != "edge" {
-		return nil, c.errorf("mode %q: expected constant, reflect or edge", mode)
+	switch {
+	case mode == "constant" || mode == "reflect" || mode == "edge":
+	case mode == "wrap" && c.opset >= 19:
+	default:
+		return nil, c.errorf("mode %q: expected constant, reflect or edge (and wrap from opset 19)", mode)
 	}
 	out := make([]int, r)
 	for i := range out {
@@ -721,35 +734,69 @@ func rulePad(c *nodeCtx) ([]ValueShape, error) {
 	return []ValueShape{{x.DType, out}}, nil
 }
 
-// ruleReduce covers ReduceMean and ReduceSum. Axes are an attribute, or input 1
-// for ReduceSum from opset 13 (ReduceMean only at 18, past MaxOpset); no axes
-// reduce all axes unless noop_with_empty_axes=1.
+// padsOf reads the pads of a Pad node whose data has rank r, as 2r values
+// (begins then ends), expanding the axes input of opset 18.
+func padsOf(c *nodeCtx, r int) ([]int64, error) {
+	var pads []int64
+	if c.opset < 11 {
+		pads = c.n.AttrInts("pads", c.n.AttrInts("paddings", nil))
+	} else {
+		var err error
+		if pads, err = c.requiredInts(1, "pads"); err != nil {
+			return nil, err
+		}
+		if v := c.input(2); v != nil && prod(v.Shape) != 1 {
+			return nil, c.errorf("constant_value: expected one element, got shape %v", v.Shape)
+		}
+	}
+	if c.opset >= 18 {
+		axes, present, err := c.constInts(3, "axes")
+		if err != nil {
+			return nil, err
+		}
+		if present {
+			if len(pads) != 2*len(axes) {
+				return nil, c.errorf("pads %v: expected %d values (begins then ends) for axes %v", pads, 2*len(axes), axes)
+			}
+			full := make([]int64, 2*r)
+			seen := make([]bool, r)
+			for i, a := range axes {
+				ax, err := normAxis(a, r)
+				if err != nil {
+					return nil, c.errorf("axes %v: %v", axes, err)
+				}
+				if seen[ax] {
+					return nil, c.errorf("axes %v: axis %d repeats", axes, a)
+				}
+				seen[ax] = true
+				full[ax], full[r+ax] = pads[i], pads[len(axes)+i]
+			}
+			return full, nil
+		}
+	}
+	if len(pads) != 2*r {
+		return nil, c.errorf("pads %v: expected %d values (begins then ends) for input %v", pads, 2*r, c.in[0].Shape)
+	}
+	return pads, nil
+}
+
+// ruleReduce covers ReduceMean, ReduceSum, ReduceMax, ReduceMin, ReduceL2
+// and ReduceLogSumExp. Axes are an attribute before the revision that made
+// them input 1 (13 for ReduceSum, 18 for the others); from that revision no
+// axes, or an empty axes tensor, reduce every axis unless
+// noop_with_empty_axes=1, which makes the node the identity.
 func ruleReduce(c *nodeCtx) ([]ValueShape, error) {
 	x := c.in[0]
-	since := int64(18)
-	if c.n.OpType == "ReduceSum" {
-		since = 13
-	}
-	axes, _, err := axesOf(c, since)
+	axes, noop, err := reduceAxes(c)
 	if err != nil {
 		return nil, err
 	}
-	keep := c.n.AttrInt("keepdims", 1) != 0
-	r := len(x.Shape)
-	red := make([]bool, r)
-	if len(axes) == 0 {
-		if c.opset >= since && c.n.AttrInt("noop_with_empty_axes", 0) != 0 {
-			return []ValueShape{{x.DType, slices.Clone(x.Shape)}}, nil
-		}
-		for i := range red {
-			red[i] = true
-		}
+	if noop {
+		return []ValueShape{{x.DType, slices.Clone(x.Shape)}}, nil
 	}
-	for _, a := range axes {
-		ax, err := normAxis(a, r)
-		if err != nil {
-			return nil, c.errorf("axes %v: %v", axes, err)
-		}
+	keep := c.n.AttrInt("keepdims", 1) != 0
+	red := make([]bool, len(x.Shape))
+	for _, ax := range axes {
 		red[ax] = true
 	}
 	out := []int{}
@@ -762,6 +809,47 @@ func ruleReduce(c *nodeCtx) ([]ValueShape, error) {
 		}
 	}
 	return []ValueShape{{x.DType, out}}, nil
+}
+
+// reduceAxes resolves the axes of a Reduce* node: in [0, rank), in the
+// order given, every axis when none are named; noop reports the identity.
+func reduceAxes(c *nodeCtx) (axes []int, noop bool, err error) {
+	since := reduceAxesInput(c.n.OpType)
+	given, _, err := axesOf(c, since)
+	if err != nil {
+		return nil, false, err
+	}
+	r := len(c.in[0].Shape)
+	if len(given) == 0 {
+		if c.opset >= since && c.n.AttrInt("noop_with_empty_axes", 0) != 0 {
+			return nil, true, nil
+		}
+		for i := 0; i < r; i++ {
+			axes = append(axes, i)
+		}
+		return axes, false, nil
+	}
+	seen := make([]bool, r)
+	for _, a := range given {
+		ax, err := normAxis(a, r)
+		if err != nil {
+			return nil, false, c.errorf("axes %v: %v", given, err)
+		}
+		if seen[ax] {
+			return nil, false, c.errorf("axes %v: axis %d repeats", given, a)
+		}
+		seen[ax] = true
+		axes = append(axes, ax)
+	}
+	return axes, false, nil
+}
+
+// reduceAxesInput is the opset from which op takes its axes as input 1.
+func reduceAxesInput(op string) int64 {
+	if op == "ReduceSum" {
+		return 13
+	}
+	return 18
 }
 
 // ruleSoftmax: the output has the input's shape. The axis (default 1 before

@@ -234,3 +234,89 @@ func checkTensor(t *Tensor) error {
 	}
 	return nil
 }
+
+// maxExact is 2^53: every integer of smaller magnitude is a float64.
+const maxExact = 1 << 53
+
+// FromFloat64s returns a tensor of type dt holding vals: floating-point
+// types rounded to nearest, ties to even (float16 and bfloat16 through
+// float32); integer types only for whole numbers that the type holds and
+// that float64 holds exactly (|v| ≤ 2^53), an error naming the first
+// element otherwise; BOOL true for every non-zero value.
+func FromFloat64s(name string, dt DataType, dims []int64, vals []float64) (*Tensor, error) {
+	var data any
+	switch dt {
+	case Float, Double:
+		data = floatsAs(dt, vals)
+	case Float16:
+		data = convert(vals, func(v float64) float16.Float16 { return float16.Fromfloat32(float32(v)) })
+	case BFloat16:
+		data = convert(vals, func(v float64) BFloat16Bits { return bfloat16Of(float32(v)) })
+	case Bool:
+		data = convert(vals, func(v float64) bool { return v != 0 })
+	default:
+		if !isIntType(dt) {
+			return nil, fmt.Errorf("onnxlite: tensor %q: element type %v: %w", name, dt, ErrUnsupportedEncoding)
+		}
+		ints := make([]int64, len(vals))
+		for i, v := range vals {
+			if v != math.Trunc(v) || math.Abs(v) > maxExact {
+				return nil, fmt.Errorf("onnxlite: tensor %q: element %d = %v is not an integer of magnitude at most 2^53", name, i, v)
+			}
+			ints[i] = int64(v)
+		}
+		if err := checkRange(dt, ints); err != nil {
+			return nil, fmt.Errorf("onnxlite: tensor %q: %w", name, err)
+		}
+		data = intsAs(dt, ints)
+	}
+	return NewTensor(name, dt, dims, data)
+}
+
+// checkRange reports the first value of v that integer type dt does not hold.
+func checkRange(dt DataType, v []int64) error {
+	lo, hi := intRange(dt)
+	for i, x := range v {
+		if x < lo || x > hi {
+			return fmt.Errorf("element %d = %d does not fit %v", i, x, dt)
+		}
+	}
+	return nil
+}
+
+// intRange returns the values an integer or boolean type holds as int64,
+// and for FLOAT16 and BFLOAT16 those of their 16-bit patterns (how
+// TensorProto stores them in int32_data); UINT64 is capped at the int64
+// maximum.
+func intRange(dt DataType) (lo, hi int64) {
+	switch dt {
+	case Int8:
+		return math.MinInt8, math.MaxInt8
+	case Uint8:
+		return 0, math.MaxUint8
+	case Int16:
+		return math.MinInt16, math.MaxInt16
+	case Uint16, Float16, BFloat16:
+		return 0, math.MaxUint16
+	case Int32:
+		return math.MinInt32, math.MaxInt32
+	case Uint32:
+		return 0, math.MaxUint32
+	case Bool:
+		return 0, 1
+	case Uint64:
+		return 0, math.MaxInt64
+	}
+	return math.MinInt64, math.MaxInt64
+}
+
+// bfloat16Of rounds x to the nearest bfloat16, ties to even; a NaN stays a
+// (quiet) NaN.
+func bfloat16Of(x float32) BFloat16Bits {
+	b := math.Float32bits(x)
+	if x != x {
+		return BFloat16Bits(b>>16 | 0x40)
+	}
+	b += 0x7fff + (b>>16)&1
+	return BFloat16Bits(b >> 16)
+}

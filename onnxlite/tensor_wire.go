@@ -482,19 +482,7 @@ func (d *decoder) tensorData(path string, dt DataType, n int64, tf *tensorFields
 	if err != nil {
 		return nil, err
 	}
-	lo, hi := int64(math.MinInt32), int64(math.MaxInt32)
-	switch dt {
-	case Int8:
-		lo, hi = math.MinInt8, math.MaxInt8
-	case Uint8:
-		lo, hi = 0, math.MaxUint8
-	case Int16:
-		lo, hi = math.MinInt16, math.MaxInt16
-	case Uint16, Float16, BFloat16:
-		lo, hi = 0, math.MaxUint16
-	case Bool:
-		lo, hi = 0, 1
-	}
+	lo, hi := intRange(dt)
 	for i, u := range vals {
 		if v := int64(u); v < lo || v > hi {
 			return nil, malformed(path, "int32_data[%d] = %d out of range [%d, %d] for %v", i, v, lo, hi, dt)

@@ -7,18 +7,21 @@ import (
 	"strings"
 )
 
-// ErrInvalid is wrapped by every structural problem Validate and Infer find:
-// a missing graph or opset, a duplicate or undefined name, a shape that does
-// not fit an operator.
+// ErrInvalid is wrapped by every problem Validate and Infer find that breaks
+// the ONNX specification: a missing graph or opset, a duplicate or undefined
+// name, a shape that does not fit an operator. Its message starts with
+// "invalid model: ".
 var ErrInvalid = errors.New("invalid model")
 
 // ErrCycle is wrapped when the graph's nodes depend on each other in a cycle.
 // A cycle error also wraps ErrInvalid.
 var ErrCycle = errors.New("graph has a cycle")
 
-// ErrUnsupported is wrapped when a model uses an operator, domain or opset
-// version apportion does not handle. *UnsupportedError matches it with errors.Is.
-var ErrUnsupported = errors.New("unsupported")
+// ErrUnsupported is wrapped when a valid model asks for something apportion
+// does not handle: an operator, a domain, an opset version newer than
+// MaxOpset, an attribute value. Its message starts with "not supported by
+// apportion: ". *UnsupportedError matches it with errors.Is.
+var ErrUnsupported = errors.New("not supported by apportion")
 
 // UnsupportedOp names one node whose operator is not supported.
 type UnsupportedOp struct {
@@ -44,7 +47,11 @@ func (e *UnsupportedError) Error() string {
 		}
 		parts[i] = fmt.Sprintf("%s (node %q)", op, u.Node)
 	}
-	return fmt.Sprintf("%d unsupported operator node(s): %s", len(e.Ops), strings.Join(parts, ", "))
+	noun := "operator"
+	if len(e.Ops) > 1 {
+		noun = "operators"
+	}
+	return fmt.Sprintf("%v: %s %s", ErrUnsupported, noun, strings.Join(parts, ", "))
 }
 
 // Is makes errors.Is(err, ErrUnsupported) true.
@@ -79,14 +86,23 @@ func nodeName(n *Node, i int) string {
 	return fmt.Sprintf("#%d", i)
 }
 
+// invalidf returns an error wrapping ErrInvalid: "invalid model: " and the
+// formatted text.
 func invalidf(format string, args ...any) error {
-	return fmt.Errorf("onnxlite: "+format+": %w", append(args, ErrInvalid)...)
+	return fmt.Errorf("%w: "+format, append([]any{ErrInvalid}, args...)...)
+}
+
+// unsupportedf returns an error wrapping ErrUnsupported: "not supported by
+// apportion: " and the formatted text.
+func unsupportedf(format string, args ...any) error {
+	return fmt.Errorf("%w: "+format, append([]any{ErrUnsupported}, args...)...)
 }
 
 // Validate checks the structure of m and then its operators:
 //
 //   - the model has a graph and imports the default-domain opset, at a version
-//     from MinOpset to MaxOpset, and every other domain a node uses;
+//     from MinOpset to MaxOpset (a newer one wraps ErrUnsupported), and every
+//     other domain a node uses;
 //   - initializer names, graph input names and node output names are unique,
 //     except that a graph input may repeat an initializer's name (models of IR
 //     version < 4 list initializers as inputs);
@@ -118,11 +134,19 @@ func (m *Model) validate() ([]int, error) {
 		if isDefaultDomain(d) {
 			d = ""
 			hasDefault = true
-			if o.Version < MinOpset || o.Version > MaxOpset {
-				return nil, fmt.Errorf("onnxlite: default-domain opset version %d: expected %d to %d: %w", o.Version, MinOpset, MaxOpset, ErrUnsupported)
+			if o.Version > MaxOpset {
+				return nil, unsupportedf("the model imports ONNX opset %d, newer than %d, the newest apportion reads: re-export the model at opset %d", o.Version, MaxOpset, MaxOpset)
+			}
+			if o.Version < MinOpset {
+				return nil, invalidf("the model imports ONNX opset %d: expected a version from %d", o.Version, MinOpset)
 			}
 		}
 		imported[d] = true
+	}
+	if !hasDefault && len(m.Opsets) > 0 && !usesDefaultDomain(g) {
+		// Valid ONNX (an opset_import entry for every domain the nodes
+		// use), but none of the operators apportion runs.
+		return nil, unsupportedf("the model's operators come only from %s; apportion reads the ONNX operator set (domain \"\" or \"ai.onnx\")", describeOpsets(m.Opsets))
 	}
 	if !hasDefault {
 		return nil, invalidf("expected an opset_import for the default domain (\"\" or \"ai.onnx\"), got %s", describeOpsets(m.Opsets))
@@ -199,7 +223,7 @@ func (m *Model) validate() ([]int, error) {
 		return nil, err
 	}
 	if u := Unsupported(m); len(u) > 0 {
-		return nil, fmt.Errorf("onnxlite: %w", &UnsupportedError{Ops: u})
+		return nil, &UnsupportedError{Ops: u}
 	}
 	return order, nil
 }
@@ -309,8 +333,8 @@ func cycleError(g *Graph, done []bool, producedBy map[string]int) error {
 		i := path[len(path)-1-k]
 		names[k] = fmt.Sprintf("%q (%s)", nodeName(g.Nodes[i], i), g.Nodes[i].OpType)
 	}
-	return fmt.Errorf("onnxlite: nodes %s depend on each other in a cycle: expected an acyclic graph: %w (%w)",
-		strings.Join(names, " -> "), ErrCycle, ErrInvalid)
+	return fmt.Errorf("%w: nodes %s depend on each other in a cycle: expected an acyclic graph (%w)",
+		ErrInvalid, strings.Join(names, " -> "), ErrCycle)
 }
 
 type intHeap []int
@@ -324,4 +348,14 @@ func (h *intHeap) Pop() any {
 	x := old[len(old)-1]
 	*h = old[:len(old)-1]
 	return x
+}
+
+// usesDefaultDomain reports whether a node of g is in the default domain.
+func usesDefaultDomain(g *Graph) bool {
+	for _, n := range g.Nodes {
+		if n != nil && isDefaultDomain(n.Domain) {
+			return true
+		}
+	}
+	return false
 }

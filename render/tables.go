@@ -70,14 +70,22 @@ func DescriptionTable(w io.Writer, path string, rep *explain.Description) {
 	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
 	fmt.Fprintf(tw, "model\t%s\n", path)
 	fmt.Fprintf(tw, "producer\t%s\n", rep.Producer)
-	fmt.Fprintf(tw, "opset\t%d\n", rep.Opset)
+	opset := fmt.Sprintf("%d", rep.Opset)
+	if rep.MaxOpset > 0 && rep.Opset > rep.MaxOpset {
+		opset += fmt.Sprintf(" (newer than %d, the newest apportion reads)", rep.MaxOpset)
+	}
+	fmt.Fprintf(tw, "opset\t%s\n", opset)
 	fmt.Fprintf(tw, "parameters\t%d\n", rep.Parameters)
 	tw.Flush()
 	section := func(title string, vals []explain.Value) {
 		fmt.Fprintf(w, "\n%s\n", title)
 		tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
 		for _, v := range vals {
-			fmt.Fprintf(tw, "  %s\t%s\t%s\n", v.Name, v.Type, shapeTextAny(v.Shape))
+			fmt.Fprintf(tw, "  %s\t%s\t%s", v.Name, v.Type, shapeTextAny(v.Shape))
+			if use := useText[v.Use]; use != "" {
+				fmt.Fprintf(tw, "\t%s", use)
+			}
+			fmt.Fprintln(tw)
 		}
 		tw.Flush()
 	}
@@ -112,24 +120,41 @@ func DescriptionTable(w io.Writer, path string, rep *explain.Description) {
 		tw.Flush()
 	}
 
-	if len(rep.Unsupported) == 0 {
-		fmt.Fprintf(w, "\nunsupported operators: none\n")
-		return
-	}
-	fmt.Fprintf(w, "\nunsupported operators (%d nodes)\n", len(rep.Unsupported))
-	tw = tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
-	for _, u := range rep.Unsupported {
-		op := u.Op
-		if u.Domain != "" && u.Domain != "ai.onnx" {
-			op = u.Domain + "." + op
+	nodes := func(title string, us []explain.Unsupported) {
+		if len(us) == 0 {
+			fmt.Fprintf(w, "\n%s: none\n", title)
+			return
 		}
-		node := u.Node
-		if node == "" {
-			node = "(unnamed)"
+		fmt.Fprintf(w, "\n%s (%d nodes)\n", title, len(us))
+		tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+		for _, u := range us {
+			op := u.Op
+			if u.Domain != "" && u.Domain != "ai.onnx" {
+				op = u.Domain + "." + op
+			}
+			node := u.Node
+			if node == "" {
+				node = "(unnamed)"
+			}
+			fmt.Fprintf(tw, "  %s\tnode %s\n", op, node)
 		}
-		fmt.Fprintf(tw, "  %s\tnode %s\n", op, node)
+		tw.Flush()
 	}
-	tw.Flush()
+	nodes("unsupported operators", rep.Unsupported)
+	if len(rep.FoldOnly) > 0 {
+		nodes("operators computed only on constants, reading run-time values", rep.FoldOnly)
+	}
+	if rep.Explainable != "" {
+		fmt.Fprintf(w, "\nexplainable: %s\n", rep.Explainable)
+	}
+}
+
+// useText says, for the inspect table, what a model does with an input
+// whose use is not plain data (explain.Value.Use).
+var useText = map[string]string{
+	"indices":      "indices, read at run time",
+	"compile-time": "read when compiling: a program per value",
+	"unread":       "not read by the model",
 }
 
 func shapeTextAny(s []any) string {

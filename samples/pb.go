@@ -9,7 +9,9 @@ import (
 
 // ReadPB reads one ONNX TensorProto: the samples are its first axis, and
 // its stored shape must fit the declared one. Batch.Tensor keeps the
-// tensor, so that it is fed to the model as it is.
+// tensor, so that it is fed to the model as it is. A tensor with no
+// elements along its first axis is read as a batch of no samples (Read
+// refuses it unless Options.AllowEmpty).
 func ReadPB(r io.Reader, spec Spec) (*Batch, error) {
 	t, err := onnxlite.DecodeTensor(r, onnxlite.DecodeOptions{})
 	if err != nil {
@@ -28,9 +30,6 @@ func ReadPB(r io.Reader, spec Spec) (*Batch, error) {
 	b := &Batch{Shape: shape, Data: data, Samples: 1, Tensor: t}
 	if len(shape) > 0 {
 		b.Samples = shape[0]
-	}
-	if b.Samples == 0 {
-		return nil, fmt.Errorf("expected at least one sample, got a tensor of shape %s", ShapeString(shape))
 	}
 	return b, nil
 }

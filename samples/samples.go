@@ -226,6 +226,10 @@ type Options struct {
 	// Features are the model's feature names: a CSV file whose header
 	// names them is read by name (see ReadCSV).
 	Features []string
+	// AllowEmpty accepts a .pb tensor with no elements along its first
+	// axis, for a caller that feeds the tensor as it is (an empty list of
+	// axes, a batch of none) rather than explaining its samples.
+	AllowEmpty bool
 }
 
 // Read reads samples of spec from r, a file called name whose extension
@@ -251,7 +255,11 @@ func read(r io.Reader, name string, spec Spec, opt Options) (*Batch, error) {
 	}
 	switch f {
 	case PB:
-		return ReadPB(r, spec)
+		b, err := ReadPB(r, spec)
+		if err == nil && b.Samples == 0 && !opt.AllowEmpty {
+			return nil, fmt.Errorf("expected at least one sample, got a tensor of shape %s", ShapeString(b.Shape))
+		}
+		return b, err
 	case NPY:
 		return ReadNPY(r, spec)
 	case JSON:

@@ -40,45 +40,54 @@ func TypeName(t onnxlite.DataType) string {
 
 // ToTensor returns the batch as a tensor of the spec's element type: the .pb
 // tensor as it was read, otherwise the values converted (float32 for an
-// undeclared type; integers must be whole).
+// undeclared type; float16 and bfloat16 rounded to nearest; integers must
+// be whole and fit the type; bool true for every non-zero value).
 func (b *Batch) ToTensor(spec Spec) (*onnxlite.Tensor, error) {
 	if b.Tensor != nil {
 		return b.Tensor, nil
 	}
-	dims := make([]int64, len(b.Shape))
-	for i, d := range b.Shape {
+	return tensorOf(spec, b.Shape, b.Data)
+}
+
+// SampleTensor returns sample i as a tensor of one sample (a leading
+// dimension of 1) of the spec's element type, converted as ToTensor does.
+func (b *Batch) SampleTensor(i int, spec Spec) (*onnxlite.Tensor, error) {
+	if i < 0 || i >= b.Samples {
+		return nil, fmt.Errorf("sample %d of %d", i, b.Samples)
+	}
+	shape := append([]int{1}, b.SampleShape()...)
+	if b.Tensor != nil && len(b.Shape) == 0 {
+		shape = nil // a scalar tensor is its only sample
+	}
+	dt := spec.Elem
+	if b.Tensor != nil {
+		dt = b.Tensor.DType
+	}
+	return tensorOf(Spec{Name: spec.Name, Elem: dt}, shape, b.Sample(i))
+}
+
+// tensorOf converts values to a tensor of spec's element type.
+func tensorOf(spec Spec, shape []int, data []float64) (*onnxlite.Tensor, error) {
+	dims := make([]int64, len(shape))
+	for i, d := range shape {
 		dims[i] = int64(d)
 	}
-	t := &onnxlite.Tensor{Name: spec.Name, DType: spec.Elem, Dims: dims}
-	switch spec.Elem {
-	case onnxlite.Float, onnxlite.Undefined:
-		t.DType = onnxlite.Float
-		out := make([]float32, len(b.Data))
-		for i, v := range b.Data {
-			out[i] = float32(v)
-		}
-		t.Data = out
-	case onnxlite.Double:
-		t.Data = append([]float64(nil), b.Data...)
-	case onnxlite.Int64, onnxlite.Int32:
-		ints := make([]int64, len(b.Data))
-		for i, v := range b.Data {
-			if v != math.Trunc(v) {
-				return nil, fmt.Errorf("input %q is %s: value %v at position %d is not an integer", spec.Name, TypeName(spec.Elem), v, i)
-			}
-			ints[i] = int64(v)
-		}
-		if spec.Elem == onnxlite.Int64 {
-			t.Data = ints
-		} else {
-			i32 := make([]int32, len(ints))
-			for i, v := range ints {
-				i32[i] = int32(v)
-			}
-			t.Data = i32
-		}
+	dt := spec.Elem
+	if dt == onnxlite.Undefined {
+		dt = onnxlite.Float
+	}
+	switch dt {
+	case onnxlite.Float, onnxlite.Double, onnxlite.Float16, onnxlite.BFloat16, onnxlite.Bool:
 	default:
-		return nil, fmt.Errorf("input %q is %s: only float32, float64, int32 and int64 inputs can be read from .npy, .json or .csv; use a .pb tensor", spec.Name, TypeName(spec.Elem))
+		for i, v := range data {
+			if v != math.Trunc(v) {
+				return nil, fmt.Errorf("input %q is %s: value %v at position %d is not an integer", spec.Name, TypeName(dt), v, i)
+			}
+		}
+	}
+	t, err := onnxlite.FromFloat64s(spec.Name, dt, dims, data)
+	if err != nil {
+		return nil, fmt.Errorf("input %q is %s: %w", spec.Name, TypeName(dt), err)
 	}
 	return t, nil
 }

@@ -28,16 +28,20 @@ type request struct {
 	Samples int    `json:"samples,omitempty"`
 	N       int    `json:"n,omitempty"`
 	// The IG-to-0.1% rows: the case's file, sample and target, the
-	// reference integral, and PyTorch's point count.
+	// reference integral, and PyTorch's point count. Path is also the
+	// model file of the forward-only table's rows and forward commands.
 	Path   string    `json:"path,omitempty"`
 	X      []float64 `json:"x,omitempty"`
 	Target int       `json:"target,omitempty"`
 	Ref    []float64 `json:"ref,omitempty"`
 	Points int       `json:"points,omitempty"`
-	// The forward anchor (bench/ort_side.js).
+	// The forward anchor (bench/ort_side.js); Batch is also the batch
+	// size of the forward-only table.
 	Shape   []int `json:"shape,omitempty"`
 	Batch   int   `json:"batch,omitempty"`
 	Threads int   `json:"threads,omitempty"`
+	// Rows is the row count of the forward-only table.
+	Rows int `json:"rows,omitempty"`
 }
 
 // response is the union of the answers.
@@ -65,6 +69,7 @@ type response struct {
 	Seconds float64 `json:"seconds"`
 	Allocs  float64 `json:"allocs"` // per call
 	Bytes   float64 `json:"bytes"`  // per call
+	Rows    int     `json:"rows"`   // model rows per call (perturb)
 	// peak: the FMA ceiling of GOMAXPROCS cores and nn's matrix-product rate
 	GFLOPS float64 `json:"gflops,omitempty"`
 	GEMM   float64 `json:"gemm,omitempty"`
@@ -73,13 +78,14 @@ type response struct {
 // goSide serves the protocol on the Go side: it runs under the GOMAXPROCS
 // its parent set.
 type goSide struct {
-	dir   string
-	heads map[string]*nn.Head
-	warm  map[string]bool
+	dir      string
+	heads    map[string]*nn.Head
+	warm     map[string]bool
+	perturbs map[string]*perturbRun
 }
 
 func runChild(dir string, in io.Reader, out io.Writer) error {
-	s := &goSide{dir: dir, heads: map[string]*nn.Head{}, warm: map[string]bool{}}
+	s := &goSide{dir: dir, heads: map[string]*nn.Head{}, warm: map[string]bool{}, perturbs: map[string]*perturbRun{}}
 	sc := bufio.NewScanner(in)
 	sc.Buffer(make([]byte, 1<<20), 1<<20)
 	enc := json.NewEncoder(out)
@@ -202,23 +208,32 @@ func (s *goSide) serve(req request) (response, error) {
 			}
 			s.warm[key] = true
 		}
-		iters := max(req.Iters, 1)
-		runtime.GC()
-		var m0, m1 runtime.MemStats
-		runtime.ReadMemStats(&m0)
-		t0 := time.Now()
-		for i := 0; i < iters; i++ {
-			if err := call(); err != nil {
-				return response{}, err
-			}
-		}
-		sec := time.Since(t0).Seconds()
-		runtime.ReadMemStats(&m1)
-		return response{Seconds: sec,
-			Allocs: float64(m1.Mallocs-m0.Mallocs) / float64(iters),
-			Bytes:  float64(m1.TotalAlloc-m0.TotalAlloc) / float64(iters)}, nil
+		return timeCalls(max(req.Iters, 1), call)
+	case "perturb":
+		return s.timePerturb(req.Task, max(req.Iters, 1))
+	case "forward":
+		return s.forwardRows(req.Task, max(req.N, 1))
 	}
 	return response{}, fmt.Errorf("unknown cmd %q", req.Cmd)
+}
+
+// timeCalls times iters calls of call, after a garbage collection, and
+// returns the seconds and the allocations per call.
+func timeCalls(iters int, call func() error) (response, error) {
+	runtime.GC()
+	var m0, m1 runtime.MemStats
+	runtime.ReadMemStats(&m0)
+	t0 := time.Now()
+	for i := 0; i < iters; i++ {
+		if err := call(); err != nil {
+			return response{}, err
+		}
+	}
+	sec := time.Since(t0).Seconds()
+	runtime.ReadMemStats(&m1)
+	return response{Seconds: sec,
+		Allocs: float64(m1.Mallocs-m0.Mallocs) / float64(iters),
+		Bytes:  float64(m1.TotalAlloc-m0.TotalAlloc) / float64(iters)}, nil
 }
 
 // goTask returns one call of task on h: the same work bench/torch_side.py

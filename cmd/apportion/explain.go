@@ -11,7 +11,6 @@ import (
 	"os"
 	"path/filepath"
 	"runtime"
-	"strconv"
 	"strings"
 
 	"golang.org/x/term"
@@ -44,14 +43,19 @@ func demoScenario(name string) (*demo.Scenario, error) {
 var methodFlagNames = []explain.Field{
 	explain.FieldMethod, explain.FieldTarget, explain.FieldOutput, explain.FieldLogits, explain.FieldBaseline,
 	explain.FieldReference, explain.FieldSteps, explain.FieldRule, explain.FieldTolerance, explain.FieldSamples,
-	explain.FieldNoise, explain.FieldSeed, explain.FieldAbs, explain.FieldVariant,
+	explain.FieldNoise, explain.FieldSeed, explain.FieldAbs, explain.FieldVariant, explain.FieldReferenceRows,
+	explain.FieldEstimator, explain.FieldCoalitions, explain.FieldKernelWidth, explain.FieldWindow, explain.FieldStride,
+	explain.FieldSuperpixels, explain.FieldCompactness,
 }
 
 // explainConfig holds explain's flags; settings are the method flags read
 // by the library.
 type explainConfig struct {
 	modelPath string
-	inputPath string
+	inputPath string    // the first -input
+	inputs    multiFlag // every -input, one per graph input (explain)
+	inputName string    // -input-name: the input to attribute to
+	precision string    // -precision: float32 or float64
 	groups    string
 	format    string
 	out       string
@@ -93,6 +97,15 @@ func registerMethodFlags(fs *flag.FlagSet, baselineDefault, baselineHelp, refere
 	fs.Float64("noise", sg.Noise, "smoothgrad noise level `R`: σ / (max x − min x)")
 	fs.Bool("abs", false, "grad: the gradient's absolute value |∂f/∂x| (Simonyan et al. 2013), not its sign")
 	fs.String("variant", gradattr.VariantMean.String(), "smoothgrad aggregate of the noisy copies' gradients: mean, squared (mean of squares) or variance")
+	sh, su, oc := gradattr.MethodShapley.Defaults(), gradattr.MethodSurrogate.Defaults(), gradattr.MethodOcclusion.Defaults()
+	fs.Int("reference-rows", sh.ReferenceRows, "shapley: reference rows `K` to average over (a seeded sample when -reference has more; all, in order, otherwise)")
+	fs.String("estimator", string(sh.Estimator), fmt.Sprintf("shapley `estimator`: auto (exact up to %d players, else regression), exact, regression or permutation", gradattr.AutoExactPlayers))
+	fs.Int("coalitions", sh.Coalitions, "coalition budget `N` of shapley's sampled estimators, and the surrogate's coalitions")
+	fs.Float64("kernel-width", su.KernelWidth, "surrogate: width `W` of the proximity kernel on the share of players switched off")
+	fs.String("window", fmt.Sprintf("%dx%d", oc.Window[0], oc.Window[1]), "occlusion window `HxW` in pixels, moved over images without groups")
+	fs.Int("stride", 0, "occlusion window step `S` in pixels (default half the window's shorter side)")
+	fs.Int("superpixels", 0, "make the feature groups about `N` SLIC superpixels of each image, for any method")
+	fs.Float64("compactness", gradattr.DefaultCompactness, "SLIC compactness `M` of -superpixels: higher, more regular segments")
 }
 
 // readSettings sets the library's settings from the method flags given
@@ -122,12 +135,16 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		"apportion explain -model model.onnx -input samples.csv -method ig -target top\n"+
 			"\tapportion explain -demo welds -format png -out welds.png",
 		"Attributes one output of the model, for each sample of -input, to the\n"+
-			"sample's features. Integrated gradients (ig) and expected gradients\n"+
-			"(expected-grad) report completeness: the attributions should sum to the\n"+
-			"output minus the output at the baseline, within -tolerance; when they do\n"+
-			"not, the results are printed and the exit status is 1 (0 with\n"+
-			"-allow-incomplete). A saturated output or one that does not move gets a\n"+
-			"warning, and the bars are drawn on the scale of the output's change.\n\n"+
+			"sample's features. Integrated gradients (ig), expected gradients\n"+
+			"(expected-grad) and Shapley values (shapley) report completeness: the\n"+
+			"attributions should sum to the output minus the output at the baseline\n"+
+			"(for shapley, the mean output over the reference rows), within\n"+
+			"-tolerance; when they do not, the results are printed and the exit\n"+
+			"status is 1 (0 with -allow-incomplete). A saturated output or one that\n"+
+			"does not move gets a warning, and the bars are drawn on the scale of the\n"+
+			"output's change. Shapley values, the local surrogate and occlusion only\n"+
+			"run the model forward; with -groups, -patch or -superpixels they switch\n"+
+			"whole groups on and off.\n\n"+
 			"Without -model, explain runs an embedded, invented demo (-demo pumps or\n"+
 			"welds). -format png draws a heatmap for image-shaped samples ((H,W),\n"+
 			"(1,H,W), or (C,H,W) with C ≤ 3: attributions summed over channels) and a\n"+
@@ -136,10 +153,12 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			"(-out a.png: a_0.png, a_1.png, ...).\n\n"+caution, stderr)
 	var c explainConfig
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded demo model chosen by -demo)")
-	fs.StringVar(&c.inputPath, "input", "", "samples to explain: a .csv, .json, .npy or .pb `file` (required with -model; default: the demo's own sample)")
+	fs.Var(&c.inputs, "input", "samples to explain: a .csv, .json, .npy or .pb `file` (required with -model; default: the demo's own sample); for a model of several inputs, one -input per input, in the model's order")
+	fs.StringVar(&c.inputName, "input-name", "", "`name` of the model input to attribute to (default the first floating-point input); the other inputs are held at each sample's values")
+	registerPrecisionFlag(fs, &c.precision)
 	registerMethodFlags(fs, explain.DefaultBaselineText,
-		"baseline `kind` for ig: zero, constant:V (every feature V), mean or median (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), uniform:LO:HI (noise from -seed), or the path of a file of baseline samples (results averaged over them)",
-		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
+		"baseline `kind` for ig, surrogate and occlusion: zero, constant:V (every feature V), mean or median (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), uniform:LO:HI (noise from -seed), or the path of a file of baseline samples (results averaged over them)",
+		"reference samples `file` for expected-grad, shapley and -baseline mean (default without -model: the demo's reference set)")
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the random methods")
 	fs.StringVar(&c.groups, "groups", "", "JSON `file` of feature groups to report summed, in its order: {\"name\": [features], ...}, each feature an index from 0 or a feature name")
 	fs.StringVar(&c.patch, "patch", "", "report image samples by patches of `HxW` pixels (all channels), tiled from the top left, instead of -groups")
@@ -151,6 +170,9 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs.StringVar(&c.sort, "sort", "model", "order of the features in the table and the PNG: model (the model's order), abs (largest |attribution| first) or value (largest attribution first)")
 	if code, done := parseFlags(fs, args, stdout); done {
 		return code
+	}
+	if len(c.inputs) > 0 {
+		c.inputPath = c.inputs[0]
 	}
 	if err := c.readSettings(fs); err != nil {
 		return fail(stderr, "explain", err)
@@ -329,7 +351,7 @@ func (c *explainConfig) validate() string {
 		if c.groups != "" {
 			return "-patch and -groups both group the features; give one"
 		}
-		if _, _, ok := parsePatch(c.patch); !ok {
+		if c.settings.Set(explain.FieldPatch, c.patch) != nil {
 			return fmt.Sprintf("-patch must be HxW, two whole numbers of pixels such as 4x4, got %q", c.patch)
 		}
 	}
@@ -348,6 +370,9 @@ func (c *explainConfig) validate() string {
 	}
 	if c.demo != "" && c.modelPath != "" {
 		return "-demo selects an embedded model and sample; it cannot be combined with -model"
+	}
+	if _, err := explain.ParsePrecision(c.precision); err != nil {
+		return "-" + err.Error()
 	}
 	if c.inputPath == "" && c.modelPath != "" {
 		return "-input is required"
@@ -474,6 +499,7 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 		return nil, nil, err
 	}
 	m := l.model
+	m.InputName = c.inputName
 	spec, err := m.Input()
 	if err != nil {
 		return nil, nil, err
@@ -481,24 +507,35 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 	if _, err := m.Output(c.settings.Output); err != nil {
 		return nil, nil, err
 	}
+	dtype, err := explain.ParsePrecision(c.precision)
+	if err != nil {
+		return nil, nil, err
+	}
+	held, open, err := c.readOthers(m, spec)
+	if err != nil {
+		return nil, nil, err
+	}
 	var batch *samples.Batch
 	if c.inputPath == "" {
 		batch, err = samples.Read(bytes.NewReader(l.demo.Sample), l.demo.SampleFile, spec, m.ReadOptions(true))
 	} else {
-		batch, err = samples.ReadFile(c.inputPath, spec, m.ReadOptions(true))
+		batch, err = samples.ReadFile(c.inputs[indexOf(m, spec.Name, len(c.inputs))], spec, m.ReadOptions(true))
 	}
 	if err != nil {
 		return nil, nil, err
 	}
 	l.noteIgnored(batch.Name, batch.Ignored)
-	if err := m.Compile(explain.CompileOptions{InputShapes: explain.OpenShapes(spec, batch), Parallel: parallel}); err != nil {
+	for name, shape := range explain.OpenShapes(spec, batch) {
+		open[name] = shape
+	}
+	if err := m.Compile(explain.CompileOptions{InputShapes: open, Parallel: parallel, DType: dtype}); err != nil {
 		return nil, nil, err
 	}
 	if err := l.readDatasets(&c.settings); err != nil {
 		return nil, nil, err
 	}
-	if c.settings.Method == gradattr.MethodExpectedGradients && c.settings.Reference == nil {
-		return nil, nil, &usageErr{fmt.Sprintf("-method %s needs -reference, a file of reference samples", c.settings.Method)}
+	if s := &c.settings; s.NeedsReference() && !s.Method.Reads(gradattr.ParamBaseline) && s.Reference == nil {
+		return nil, nil, &usageErr{fmt.Sprintf("-method %s needs -reference, a file of reference samples", s.Method)}
 	}
 	head, err := m.Head(c.settings.Output, c.settings.Logits)
 	if err != nil {
@@ -520,27 +557,73 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 			return nil, nil, fmt.Errorf("-groups %s: %w", c.groups, err)
 		}
 	}
-	if c.patch != "" {
-		ph, pw, _ := parsePatch(c.patch)
-		shape := head.InputShape()
-		if len(shape) < 2 {
-			return nil, nil, &usageErr{fmt.Sprintf("-patch %s needs samples with at least two axes (height, width), got shape %s", c.patch, samples.ShapeString(shape))}
-		}
-		if c.settings.Groups, err = gradattr.GridGroups(shape, ph, pw); err != nil {
-			return nil, nil, err
-		}
+	if shape := head.InputShape(); c.patch != "" && len(shape) < 2 {
+		return nil, nil, &usageErr{fmt.Sprintf("-patch %s needs samples with at least two axes (height, width), got shape %s", c.patch, samples.ShapeString(shape))}
 	}
 	ex, err := explain.New(m, head, c.settings)
+	if err == nil && held != nil {
+		err = ex.Hold(held)
+	}
 	c.ignored = l.ignored
 	return ex, batch, err
 }
 
-// parsePatch reads -patch HxW.
-func parsePatch(s string) (h, w int, ok bool) {
-	hs, ws, found := strings.Cut(strings.ToLower(s), "x")
-	h, errH := strconv.Atoi(hs)
-	w, errW := strconv.Atoi(ws)
-	return h, w, found && errH == nil && errW == nil && h >= 1 && w >= 1
+// indexOf returns the position of the input called name among the model's
+// inputs when every input has a file (given files), and 0 otherwise.
+func indexOf(m *explain.Model, name string, given int) int {
+	feeds := m.Inputs()
+	if given != len(feeds) {
+		return 0
+	}
+	for i, f := range feeds {
+		if f.Name == name {
+			return i
+		}
+	}
+	return 0
+}
+
+// readOthers reads the files of the model's inputs other than the one
+// explained (spec), when the model has several: one -input per graph
+// input, in graph order. It returns them for Explainer.Hold (nil at the
+// explained input) and the per-sample shapes of those declared open.
+func (c *explainConfig) readOthers(m *explain.Model, spec samples.Spec) ([]*samples.Batch, map[string][]int, error) {
+	feeds := m.Inputs()
+	open := map[string][]int{}
+	if len(feeds) == 1 && len(c.inputs) <= 1 {
+		return nil, open, nil
+	}
+	if len(c.inputs) != len(feeds) {
+		names := make([]string, len(feeds))
+		for i, f := range feeds {
+			names[i] = f.Name
+		}
+		return nil, nil, &usageErr{fmt.Sprintf("the model has %d inputs (%s): give one -input per input, in that order, got %d", len(feeds), strings.Join(names, ", "), len(c.inputs))}
+	}
+	held := make([]*samples.Batch, len(feeds))
+	for i, vi := range feeds {
+		if vi.Name == spec.Name {
+			continue
+		}
+		other := samples.SpecOf(vi)
+		b, err := samples.ReadFile(c.inputs[i], other, samples.Options{})
+		if err != nil {
+			return nil, nil, err
+		}
+		if err := b.FirstBad(); err != nil {
+			return nil, nil, fmt.Errorf("input %s (for %q): %w", c.inputs[i], vi.Name, err)
+		}
+		held[i] = b
+		for name, shape := range explain.OpenShapes(other, b) {
+			open[name] = shape
+		}
+	}
+	return held, open, nil
+}
+
+// registerPrecisionFlag defines -precision, the engine's element type.
+func registerPrecisionFlag(fs *flag.FlagSet, p *string) {
+	fs.StringVar(p, "precision", "float32", "the engine's floating-point `type`: float32, or float64 for values beyond the float32 range and reference-grade results")
 }
 
 // colorTerminal reports whether w is a terminal that shows colour: a

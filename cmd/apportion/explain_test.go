@@ -309,11 +309,11 @@ func TestExplainSettings(t *testing.T) {
 	code, _, errs := cli(t, "explain", "-model", model, "-input", xpb, "-output", "z")
 	assert.Equal(t, exitUsage, code)
 	assert.Contains(t, errs, `-output "z" is not an output of the model (outputs: y)`)
-	// A model with three runtime inputs cannot be explained.
+	// A model with three runtime inputs needs a file for each.
 	gemm := caseDir(t, "node/test_gemm_default_vector_bias")
 	code, _, errs = cli(t, "explain", "-model", filepath.Join(gemm, "model.onnx"), "-input", xpb)
-	assert.Equal(t, exitFail, code)
-	assert.Contains(t, errs, "one runtime input, this one has 3 (a, b, c)")
+	assert.Equal(t, exitUsage, code)
+	assert.Contains(t, errs, "the model has 3 inputs (a, b, c): give one -input per input, in that order, got 1")
 }
 
 func TestExplainDemoHook(t *testing.T) {

@@ -15,13 +15,14 @@ func TestInspectJSONConv(t *testing.T) {
 	require.Equal(t, exitOK, code, errs)
 	doc := decodeJSON(t, out)
 	// The schema of inspect's JSON.
-	assert.ElementsMatch(t, []string{"inputs", "outputs", "opset", "producer", "ops", "parameters", "metadata", "unsupported"}, keys(doc))
+	assert.ElementsMatch(t, []string{"inputs", "outputs", "opset", "producer", "ops", "parameters", "metadata", "unsupported",
+		"max_opset", "fold_only", "explainable"}, keys(doc))
 
 	// Values read from the file with python3-onnx 1.12.0
 	// (onnx.load(...).graph.input / .output / .opset_import / .producer_name).
 	assert.Equal(t, []any{
-		map[string]any{"name": "x", "type": "float32", "shape": []any{1.0, 1.0, 7.0, 5.0}},
-		map[string]any{"name": "W", "type": "float32", "shape": []any{1.0, 1.0, 3.0, 3.0}},
+		map[string]any{"name": "x", "type": "float32", "shape": []any{1.0, 1.0, 7.0, 5.0}, "use": "data"},
+		map[string]any{"name": "W", "type": "float32", "shape": []any{1.0, 1.0, 3.0, 3.0}, "use": "data"},
 	}, doc["inputs"])
 	assert.Equal(t, []any{
 		map[string]any{"name": "y", "type": "float32", "shape": []any{1.0, 1.0, 4.0, 3.0}},
@@ -32,6 +33,12 @@ func TestInspectJSONConv(t *testing.T) {
 	assert.Equal(t, 0.0, doc["parameters"]) // no initializers
 	assert.Equal(t, map[string]any{}, doc["metadata"])
 	assert.Equal(t, []any{}, doc["unsupported"])
+	// ONNX Runtime 1.30 accepts opsets up to 26 (testdata/ort/README.md).
+	assert.Equal(t, 26.0, doc["max_opset"])
+	assert.Equal(t, []any{}, doc["fold_only"])
+	// x is the first floating-point input; the weights W are a second
+	// run-time input, held at each sample's values.
+	assert.Equal(t, "yes", doc["explainable"])
 }
 
 func TestInspectJSONInitializersAndSymbolicDims(t *testing.T) {
@@ -43,7 +50,7 @@ func TestInspectJSONInitializersAndSymbolicDims(t *testing.T) {
 	code, out, errs := cli(t, "inspect", "-model", filepath.Join(dir, "model.onnx"), "-format", "json")
 	require.Equal(t, exitOK, code, errs)
 	doc := decodeJSON(t, out)
-	assert.Equal(t, []any{map[string]any{"name": "0", "type": "float32", "shape": []any{4.0, 10.0}}}, doc["inputs"])
+	assert.Equal(t, []any{map[string]any{"name": "0", "type": "float32", "shape": []any{4.0, 10.0}, "use": "data"}}, doc["inputs"])
 	assert.Equal(t, []any{map[string]any{"name": "3", "type": "float32", "shape": []any{4.0, 8.0}}}, doc["outputs"])
 	assert.Equal(t, 88.0, doc["parameters"])
 	assert.Equal(t, 6.0, doc["opset"])
@@ -60,8 +67,8 @@ func TestInspectJSONInitializersAndSymbolicDims(t *testing.T) {
 	require.Equal(t, exitOK, code, errs)
 	doc = decodeJSON(t, out)
 	assert.Equal(t, []any{
-		map[string]any{"name": "X", "type": "float32", "shape": []any{"n"}},
-		map[string]any{"name": "Splits", "type": "int64", "shape": []any{3.0}},
+		map[string]any{"name": "X", "type": "float32", "shape": []any{"n"}, "use": "data"},
+		map[string]any{"name": "Splits", "type": "int64", "shape": []any{3.0}, "use": "data"},
 	}, doc["inputs"])
 	assert.Equal(t, []any{map[string]any{"name": "len", "type": "int64", "shape": []any{}}}, doc["outputs"])
 	assert.Equal(t, 12.0, doc["opset"])
@@ -70,6 +77,7 @@ func TestInspectJSONInitializersAndSymbolicDims(t *testing.T) {
 		map[string]any{"op": "SplitToSequence", "node": "#0"},
 		map[string]any{"op": "SequenceLength", "node": "#1"},
 	}, doc["unsupported"])
+	assert.Regexp(t, `^no: not supported by apportion: operators SplitToSequence`, doc["explainable"])
 }
 
 func TestInspectTable(t *testing.T) {
@@ -84,6 +92,7 @@ func TestInspectTable(t *testing.T) {
 	assert.Regexp(t, `(?m)^  y\s+float32\s+\[1 1 4 3\]$`, out)
 	assert.Regexp(t, `(?m)^  Conv\s+1$`, out)
 	assert.Contains(t, out, "unsupported operators: none")
+	assert.Regexp(t, `(?m)^explainable: yes$`, out)
 }
 
 func TestInspectBadModel(t *testing.T) {

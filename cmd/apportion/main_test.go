@@ -124,7 +124,6 @@ func TestUsageErrors(t *testing.T) {
 		{"inspect", "-model", "m.onnx", "-format", "xml"},
 		{"inspect", "-nosuchflag"},
 		{"inspect", "-model", "m.onnx", "extra"},
-		{"predict", "-model", "m.onnx"},
 		{"predict", "-input", "x.csv"},
 		{"explain", "-model", "m.onnx"},
 		{"explain", "-model", "m.onnx", "-input", "x.csv", "-method", "lime"},

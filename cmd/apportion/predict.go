@@ -27,7 +27,9 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs := newFlagSet("predict", "-model PATH -input FILE [-input FILE ...] [-format json|table]",
 		"apportion predict -model model.onnx -input samples.csv -format table",
 		"Inputs bind to the model's graph inputs in order (initializer-backed inputs\n"+
-			"excluded). A .pb file is an ONNX TensorProto used with its stored shape;\n"+
+			"excluded), of any numeric type: floating point (float16 and bfloat16\n"+
+			"widened), integer (token ids, target shapes) or bool. A .pb file is an\n"+
+			"ONNX TensorProto used with its stored shape;\n"+
 			".npy, .json and .csv files hold samples of the input's per-sample shape\n"+
 			"(its shape without the leading batch dimension): a CSV row per sample with\n"+
 			"an optional header row, JSON nested arrays for one sample or an array of them.", stderr)
@@ -35,23 +37,29 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	var inputs multiFlag
 	fs.Var(&inputs, "input", "input `file` (.pb, .npy, .json or .csv); repeat once per graph input")
 	format := fs.String("format", "json", "output format: json or table")
+	var precision string
+	registerPrecisionFlag(fs, &precision)
 	if code, done := parseFlags(fs, args, stdout); done {
 		return code
 	}
 	if *modelPath == "" {
 		return usageError(stderr, "predict", "-model is required")
 	}
-	if len(inputs) == 0 {
-		return usageError(stderr, "predict", "-input is required")
-	}
 	if *format != "table" && *format != "json" {
 		return usageError(stderr, "predict", "-format must be json or table, got %q", *format)
+	}
+	dtype, err := explain.ParsePrecision(precision)
+	if err != nil {
+		return usageError(stderr, "predict", "-%v", err)
 	}
 	m, err := explain.ReadModel(*modelPath)
 	if err != nil {
 		return failure(stderr, "predict", err)
 	}
 	feeds := m.Inputs()
+	if len(inputs) == 0 && len(feeds) > 0 {
+		return usageError(stderr, "predict", "-input is required")
+	}
 	if len(inputs) != len(feeds) {
 		names := make([]string, len(feeds))
 		for i, f := range feeds {
@@ -66,6 +74,7 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if len(feeds) == 1 {
 		opt = m.ReadOptions(false)
 	}
+	opt.AllowEmpty = true // a .pb tensor is fed as it is: empty axes, or no rows
 	for i, vi := range feeds {
 		spec := samples.SpecOf(vi)
 		b, err := samples.ReadFile(inputs[i], spec, opt)
@@ -87,7 +96,7 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			count = b.Samples
 		}
 	}
-	if err := m.Compile(explain.CompileOptions{InputShapes: open, Parallel: runtime.GOMAXPROCS(0)}); err != nil {
+	if err := m.Compile(explain.CompileOptions{InputShapes: open, Parallel: runtime.GOMAXPROCS(0), DType: dtype}); err != nil {
 		return failure(stderr, "predict", err)
 	}
 	res, err := m.Predict(context.Background(), tensors)

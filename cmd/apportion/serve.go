@@ -11,6 +11,7 @@ import (
 	"syscall"
 	"time"
 
+	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/httpapi"
 )
 
@@ -28,6 +29,7 @@ type serveConfig struct {
 	queue     int // requests waiting for a worker
 	coalesce  bool
 	drain     time.Duration
+	precision string
 }
 
 func runServe(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
@@ -57,6 +59,7 @@ func runServe(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs.IntVar(&c.queue, "queue", httpapi.DefaultQueue, "`N` requests that may wait for a worker before the server answers 503")
 	fs.BoolVar(&c.coalesce, "coalesce", httpapi.DefaultCoalesce, "stack the model passes of concurrent requests into shared batches")
 	fs.DurationVar(&c.drain, "drain", httpapi.DefaultDrain, "on SIGINT or SIGTERM, time to wait for requests in flight")
+	registerPrecisionFlag(fs, &c.precision)
 	if code, done := parseFlags(fs, args, stdout); done {
 		return code
 	}
@@ -103,6 +106,9 @@ func (c *serveConfig) validate() string {
 	if c.drain < 0 {
 		return fmt.Sprintf("-drain must be 0 or more, got %v", c.drain)
 	}
+	if _, err := explain.ParsePrecision(c.precision); err != nil {
+		return "-" + err.Error()
+	}
 	return ""
 }
 
@@ -115,9 +121,13 @@ func newHandler(c serveConfig, log *slog.Logger) (*httpapi.Handler, string, erro
 		return nil, "", err
 	}
 	m := l.model
+	dtype, err := explain.ParsePrecision(c.precision)
+	if err != nil {
+		return nil, "", err
+	}
 	opt := httpapi.Options{
 		MaxBody: c.maxBody, Timeout: c.timeout, Workers: c.workers, Queue: c.queue,
-		Coalesce: c.coalesce, Logger: log,
+		Coalesce: c.coalesce, Logger: log, DType: dtype,
 	}
 	if opt.Reference, err = l.reference(c.reference); err != nil {
 		return nil, "", err

@@ -74,9 +74,10 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 	c := &sc.ex
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded pumps demo)")
 	fs.StringVar(&c.inputPath, "input", "", "rows to explain: a .csv `file` with a header (or .npy, .json, .pb); required with -model")
+	registerPrecisionFlag(fs, &c.precision)
 	registerMethodFlags(fs, "",
-		"baseline `kind` for ig: zero, constant:V, mean or median (of -reference), uniform:LO:HI, or the path of a file of baseline samples (results averaged over them) (default: mean of the demo's reference set without -model, zero with -model)",
-		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
+		"baseline `kind` for ig, surrogate and occlusion: zero, constant:V, mean or median (of -reference), uniform:LO:HI, or the path of a file of baseline samples (results averaged over them) (default: mean of the demo's reference set without -model, zero with -model)",
+		"reference samples `file` for expected-grad, shapley and -baseline mean (default without -model: the demo's reference set)")
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the bootstrap weights (and of smoothgrad and expected-grad)")
 	fs.StringVar(&sc.by, "by", "", "group rows by this CSV `column`, or by the predicted class with predicted (default for the demo: pump_line)")
 	fs.StringVar(&sc.format, "format", "table", "output format: table, json (mergeable), csv or png (needs -out)")
@@ -257,7 +258,11 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 		shape = append([]int{1}, table.SampleShape...)
 	}
 	one := &samples.Batch{Name: sc.inputName(), Shape: shape, Data: first, Samples: 1}
-	if err := m.Compile(explain.CompileOptions{InputShapes: explain.OpenShapes(spec, one), Parallel: runtime.GOMAXPROCS(0)}); err != nil {
+	dtype, err := explain.ParsePrecision(c.precision)
+	if err != nil {
+		return nil, nil, "", &usageErr{"-" + err.Error()}
+	}
+	if err := m.Compile(explain.CompileOptions{InputShapes: explain.OpenShapes(spec, one), Parallel: runtime.GOMAXPROCS(0), DType: dtype}); err != nil {
 		return nil, nil, "", err
 	}
 	if err := l.readDatasets(&c.settings); err != nil {

@@ -594,17 +594,19 @@ def main():
         "eg_draws": EG_DRAWS, "eg_refs": EG_REFS})
     checks = manifest.setdefault("checks", {})
 
-    def add(onnx_file, fixture, opset, shape, ops, nodes, dynamic, note, acc, test_acc, key="models"):
-        """Records a model under manifest[key]: "models" for those apportion
-        runs today (its Go tests run every entry), "new_models" for those
-        that need operators or inputs it does not run yet."""
+    # Every model is one apportion runs (its Go tests run every entry of
+    # "models"); "new_models" held those it did not run yet.
+    manifest.pop("new_models", None)
+
+    def add(onnx_file, fixture, opset, shape, ops, nodes, dynamic, note, acc, test_acc):
+        """Records a model under manifest["models"]."""
         entry = {
             "onnx": onnx_file, "fixture": fixture + ".npz", "opset": opset,
             "input_shape": list(shape), "dynamic_batch": dynamic, "ops": ops,
             "nodes": nodes, "train_accuracy": round(acc, 4),
             "test_accuracy": round(test_acc, 4), "note": note}
-        models = [m for m in manifest.get(key, []) if m["onnx"] != onnx_file] + [entry]
-        manifest[key] = sorted(models, key=lambda m: MODEL_ORDER.index(m["onnx"]))
+        models = [m for m in manifest.get("models", []) if m["onnx"] != onnx_file] + [entry]
+        manifest["models"] = sorted(models, key=lambda m: MODEL_ORDER.index(m["onnx"]))
         print(f"{onnx_file}: opset {opset}, ops {ops}")
         return entry
 
@@ -688,7 +690,7 @@ def main():
         ops, nodes = export(wine, (13,), "wine_mlp.onnx", 17, True)
         add("wine_mlp.onnx", "wine_mlp", 17, (13,), ops, nodes, True,
             "residual MLP on scikit-learn's wine data: Sub/Div standardisation, Linear 32, LayerNorm, GELU, "
-            "[Linear 32, GELU, + residual, LayerNorm], Linear 3; logits output", acc, test_acc, key="new_models")
+            "[Linear 32, GELU, + residual, LayerNorm], Linear 3; logits output", acc, test_acc)
         references("wine_mlp", as_exported(wine, "wine_mlp.onnx"), (13,), xtr, xte, seed=14, checks=checks)
 
     if "digits_reflect_cnn" in only:
@@ -702,7 +704,7 @@ def main():
         ops, nodes = export(rcnn, (1, 8, 8), "digits_reflect_cnn.onnx", 17, True)
         entry = add("digits_reflect_cnn.onnx", "digits_reflect_cnn", 17, (1, 8, 8), ops, nodes, True,
             "CNN on the 8x8 digits with nn.ReflectionPad2d((1, 2, 1, 0)) before a 3x3 Conv, Relu, MaxPool, "
-            "Flatten, Gemm; logits output", acc, test_acc, key="new_models")
+            "Flatten, Gemm; logits output", acc, test_acc)
         entry["pad_chain"] = pad_chain(onnx.load(os.path.join(OUT, "digits_reflect_cnn.onnx")))
         references("digits_reflect_cnn", rcnn, (1, 8, 8), xtr, xte, seed=15, checks=checks)
 
@@ -721,7 +723,7 @@ def main():
         entry = add("text_cnn.onnx", "text_cnn", 17, (TEXT_LENGTH,), ops, nodes, True,
             f"text classifier on seeded synthetic token sequences (vocabulary text_cnn_vocab.txt, {TEXT_VOCAB} invented "
             "words, id 0 the padding token): int64 ids, Embedding 8, Conv1d 16 (kernel 3, padding 1), Relu, "
-            "mean over positions, Linear 3; logits output", acc, test_acc, key="new_models")
+            "mean over positions, Linear 3; logits output", acc, test_acc)
         entry["input_dtype"] = "int64"
 
         m = onnx.load(os.path.join(OUT, "text_cnn.onnx"))

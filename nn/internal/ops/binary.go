@@ -17,13 +17,22 @@ import (
 // kernel in unary.go, softmax.go and reduce.go shares.
 
 // binaryKinds lists the binary ops Binary accepts.
-var binaryKinds = map[string]bool{"Add": true, "Sub": true, "Mul": true, "Div": true, "Pow": true, "PRelu": true}
+var binaryKinds = map[string]bool{"Add": true, "Sub": true, "Mul": true, "Div": true, "Pow": true, "PRelu": true,
+	"Max": true, "Min": true, "Equal": true, "Less": true, "Greater": true}
+
+// comparisons are the binary kinds whose result is 1 or 0 (true or false):
+// piecewise constant, so no gradient flows through them.
+var comparisons = map[string]bool{"Equal": true, "Less": true, "Greater": true}
 
 // Binary applies Add, Sub, Mul, Div or PRelu (x<0 ? slope*x : x,
 // slope broadcast to x) with numpy broadcasting; gradients reduce over
 // broadcast axes. It also takes Pow with a tensor exponent, y = a^b, whose
 // gradients are ∂y/∂a = b·a^(b-1) and ∂y/∂b = a^b·ln a (0 where a = 0, NaN
-// where a < 0, as ln is); unary covers the common constant exponent.
+// where a < 0, as ln is); unary covers the common constant exponent. Max
+// and Min pass the gradient to the larger (smaller) operand, half to each
+// where they are equal (torch.maximum and torch.minimum do so, from
+// memory). Equal, Less and Greater give 1 where the comparison holds and 0
+// elsewhere, and no gradient.
 //
 // Shapes are aligned on their last axis and every pair of sizes must be
 // equal or contain a 1 (ONNX Broadcasting.md, multidirectional). For PRelu
@@ -55,7 +64,7 @@ func Binary(a, b *G.Node, op string) (out *G.Node, err error) {
 	}
 	bop := &binaryOp{kind: op, dt: dt, aShape: as, bShape: bs, outShape: os,
 		aType: a.Type(), bType: b.Type(), outType: nodeType(dt, len(os)),
-		fixed: [2]bool{fixed(a), fixed(b)}}
+		fixed: [2]bool{fixed(a) || comparisons[op], fixed(b) || comparisons[op]}}
 	return G.ApplyOp(bop, a, b)
 }
 
@@ -154,6 +163,26 @@ func binaryFunc[T float](kind string) func(a, b T) T {
 		return func(a, b T) T { return a / b }
 	case "Pow":
 		return func(a, b T) T { return T(math.Pow(float64(a), float64(b))) }
+	case "Max":
+		return func(a, b T) T {
+			if a != a || b != b {
+				return a + b // NaN propagates
+			}
+			return max(a, b)
+		}
+	case "Min":
+		return func(a, b T) T {
+			if a != a || b != b {
+				return a + b
+			}
+			return min(a, b)
+		}
+	case "Equal":
+		return func(a, b T) T { return truth[T](a == b) }
+	case "Less":
+		return func(a, b T) T { return truth[T](a < b) }
+	case "Greater":
+		return func(a, b T) T { return truth[T](a > b) }
 	default: // PRelu
 		return func(x, s T) T {
 			if x < 0 {
@@ -193,6 +222,10 @@ func binaryGrad[T float](kind string, which int) func(a, b, g T) T {
 			}
 			return g * T(math.Pow(float64(a), float64(b))*math.Log(float64(a)))
 		}
+	case "Max0", "Min1":
+		return func(a, b, g T) T { return g * split[T](a > b, a == b) }
+	case "Max1", "Min0":
+		return func(a, b, g T) T { return g * split[T](b > a, a == b) }
 	case "PRelu0":
 		return func(x, s, g T) T {
 			if x < 0 {
@@ -208,6 +241,26 @@ func binaryGrad[T float](kind string, which int) func(a, b, g T) T {
 			return 0
 		}
 	}
+}
+
+// truth is 1 for true and 0 for false.
+func truth[T float](b bool) T {
+	if b {
+		return 1
+	}
+	return 0
+}
+
+// split is the share of the gradient of max(a, b) that goes to a: 1 where
+// a wins, a half where they tie, 0 where b wins.
+func split[T float](wins, tie bool) T {
+	switch {
+	case wins:
+		return 1
+	case tie:
+		return 0.5
+	}
+	return 0
 }
 
 // binaryOp is the forward op of Binary.

@@ -56,6 +56,16 @@ func elemBinaryCases() []elemCase {
 			build: func(xs []*G.Node) (*G.Node, error) { return Binary(xs[0], xs[1], "Pow") },
 		})
 	}
+	// Max and Min: the draws are continuous, so ties (where the gradient
+	// splits) have probability zero.
+	for _, op := range []string{"Max", "Min"} {
+		for _, s := range shapes {
+			out = append(out, elemCase{
+				name: fmt.Sprintf("%s%v%v", op, s[0], s[1]), shapes: s, draw: elemUniform(-3, 3),
+				build: func(xs []*G.Node) (*G.Node, error) { return Binary(xs[0], xs[1], op) },
+			})
+		}
+	}
 	for _, s := range [][][]int{{{2, 3, 4}, {3, 1}}, {{2, 3, 4}, {4}}, {{2, 3}, {1}}, {{2, 3}, {2, 3}}} {
 		out = append(out, elemCase{
 			name: fmt.Sprintf("PRelu%v%v", s[0], s[1]), shapes: s, draw: elemUniform(-3, 3),
@@ -113,7 +123,7 @@ func TestBroadcastBinaryRejectsBadInput(t *testing.T) {
 	_, err = Binary(a, s, "PRelu") // slope bigger than x: not unidirectional
 	assert.ErrorContains(t, err, "does not broadcast to input shape [2 3]")
 
-	_, err = Binary(a, a, "Max")
+	_, err = Binary(a, a, "Mod")
 	assert.ErrorIs(t, err, errUnknownOp)
 
 	f32, _ := elemInput(g, tensor.Float32, []int{2, 3}, make([]float64, 6), "f")

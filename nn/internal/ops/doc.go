@@ -5,11 +5,14 @@
 //
 // The files group the operators by family: matmul.go (MatMul, Gemm),
 // conv*.go and im2col.go (Conv), pool*.go (MaxPool, AveragePool and the
-// global pools), pad.go, unary.go (elementwise functions, Clip), binary.go
-// (Add, Sub, Mul, Div, Pow, PRelu with broadcasting), reduce.go,
-// softmax.go, clip.go (Clip with run-time bounds) and loss.go (the
-// selection that a gradient program differentiates); gemm*.go hold the
-// packed float32 GEMM.
+// global pools), pad.go, unary.go (elementwise functions, Clip, casts),
+// binary.go (Add, Sub, Mul, Div, Pow, PRelu, Max, Min and the comparisons
+// with broadcasting), reduce.go, softmax.go, clip.go (Clip with run-time
+// bounds), norm.go (the standardisation of the normalization operators),
+// where.go, gather.go (Gather with run-time indices), indexmap.go (Slice,
+// Expand, constant-index Gather: maps that move and repeat elements) with
+// resample.go (Resize) and loss.go (the selection that a gradient program
+// differentiates); gemm*.go hold the packed float32 GEMM.
 //
 // Buffers: every op implements gorgonia's UsePreallocDoer with one
 // contract. Given a *tensor.Dense of the output's element type and shape

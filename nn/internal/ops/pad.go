@@ -9,20 +9,22 @@ import (
 	"gorgonia.org/tensor"
 )
 
-// padOp pads x with ONNX Pad semantics (opset 2-18) over all of its axes.
+// Pad pads x with ONNX Pad semantics (opsets 2–25) over all of its axes.
 // pads is [x1_begin, x2_begin, ..., x1_end, x2_end] with one begin and one
-// end entry per axis; a negative entry crops that many elements. The mode
-// says what the new elements hold:
+// end entry per axis; a negative entry crops that many elements, before
+// the padding is taken from what remains (n elements). The mode says what
+// the new elements hold:
 //
 //	constant: value
 //	reflect:  the mirror image without the edge, x[−i] = x[i] and x[n−1+i] = x[n−1−i]
 //	edge:     the nearest edge element, x[clamp(i, 0, n−1)]
+//	wrap:     the elements from the other end, x[i mod n] (Pad-19)
 //
-// (numpy.pad modes "constant", "reflect" and "edge", which the ONNX Pad
-// doc refers to). reflect needs every positive pad to be at most n−1. The
-// gradient adds each output gradient onto the input element it was copied
-// from, so reflect and edge gradients accumulate on the mirrored and edge
-// elements; constant elements get none.
+// (numpy.pad modes "constant", "reflect", "edge" and "wrap", which the ONNX
+// Pad doc refers to). reflect needs every positive pad to be at most n−1.
+// The gradient adds each output gradient onto the input element it was
+// copied from, so reflect, edge and wrap gradients accumulate on the
+// elements copied more than once; constant elements get none.
 func Pad(x *G.Node, pads []int, mode string, value float64) (y *G.Node, err error) {
 	if x == nil {
 		return nil, fmt.Errorf("nn: Pad: %w: input is required", ErrShape)
@@ -33,9 +35,9 @@ func Pad(x *G.Node, pads []int, mode string, value float64) (y *G.Node, err erro
 	switch mode {
 	case "", "constant":
 		mode = "constant"
-	case "reflect", "edge":
+	case "reflect", "edge", "wrap":
 	default:
-		return nil, fmt.Errorf("nn: Pad: %w: expected mode constant, reflect or edge, got %q", ErrShape, mode)
+		return nil, fmt.Errorf("nn: Pad: %w: expected mode constant, reflect, edge or wrap, got %q", ErrShape, mode)
 	}
 	op := &padOp{rank: x.Dims(), pads: append([]int(nil), pads...), mode: mode, value: value, constX: fixed(x)}
 	if op.rank < 1 {
@@ -71,11 +73,13 @@ func (op *padOp) maps(xs tensor.Shape) (tensor.Shape, [][]int, error) {
 	for a, n := range xs {
 		b, e := op.pads[a], op.pads[a+op.rank]
 		o := n + b + e
-		if n < 1 || o < 1 {
-			return nil, nil, fmt.Errorf("nn: Pad: %w: axis %d of size %d with pads (%d, %d) leaves %d elements, expected at least 1", ErrShape, a, n, b, e, o)
+		// The crop: the elements [lo, lo+k) of the axis remain.
+		lo, k := max(-b, 0), n-max(-b, 0)-max(-e, 0)
+		if n < 1 || o < 1 || (k < 1 && op.mode != "constant") {
+			return nil, nil, fmt.Errorf("nn: Pad: %w: axis %d of size %d with pads (%d, %d) leaves %d elements, expected at least 1", ErrShape, a, n, b, e, min(o, k))
 		}
-		if op.mode == "reflect" && (b > n-1 || e > n-1) {
-			return nil, nil, fmt.Errorf("nn: Pad: %w: reflect pads (%d, %d) on axis %d of size %d, expected at most %d", ErrShape, b, e, a, n, n-1)
+		if op.mode == "reflect" && (b > k-1 || e > k-1) {
+			return nil, nil, fmt.Errorf("nn: Pad: %w: reflect pads (%d, %d) on axis %d of size %d, expected at most %d", ErrShape, b, e, a, k, k-1)
 		}
 		if total > maxElems/o {
 			return nil, nil, fmt.Errorf("nn: Pad: %w: output exceeds %d elements", errTooLarge, maxElems)
@@ -84,21 +88,24 @@ func (op *padOp) maps(xs tensor.Shape) (tensor.Shape, [][]int, error) {
 		oshp[a] = o
 		m[a] = make([]int, o)
 		for j := range m[a] {
-			i := j - b
+			i := j - max(b, 0)
 			switch {
-			case i >= 0 && i < n:
+			case i >= 0 && i < k:
 			case op.mode == "edge":
-				i = min(max(i, 0), n-1)
+				i = min(max(i, 0), k-1)
+			case op.mode == "wrap":
+				i = (i%k + k) % k
 			case op.mode == "reflect":
 				if i < 0 {
 					i = -i
 				} else {
-					i = 2*(n-1) - i
+					i = 2*(k-1) - i
 				}
 			default:
-				i = -1
+				m[a][j] = -1
+				continue
 			}
-			m[a][j] = i
+			m[a][j] = lo + i
 		}
 	}
 	return oshp, m, nil

@@ -127,7 +127,7 @@ func TestPadErrors(t *testing.T) {
 	}{
 		// Each error names what was expected and what came (common practice).
 		{"pads length", x, []int{1, 1}, "constant", ErrShape, "expected 4 pads"},
-		{"unknown mode", x, []int{0, 0, 0, 0}, "wrap", ErrShape, `got "wrap"`},
+		{"unknown mode", x, []int{0, 0, 0, 0}, "mirror", ErrShape, `got "mirror"`},
 		{"reflect too wide", x, []int{3, 0, 0, 0}, "reflect", ErrShape, "expected at most 2"},
 		{"crop everything", x, []int{0, -2, 0, -2}, "edge", ErrShape, "leaves 0 elements"},
 		{"int input", xi, []int{0, 0, 0, 0}, "constant", ErrShape, "float32 or float64"},

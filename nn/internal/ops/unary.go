@@ -9,6 +9,7 @@ import (
 	"unsafe"
 
 	"github.com/chewxy/hm"
+	"github.com/x448/float16"
 	G "gorgonia.org/gorgonia"
 	"gorgonia.org/tensor"
 )
@@ -139,7 +140,7 @@ var unaryTable = map[string]unaryFn{
 	// Softplus: y = log(eˣ + 1) = max(x, 0) + log1p(e^-|x|), which neither
 	// overflows nor loses the small tail; dy/dx = sigmoid(x).
 	"Softplus": {
-		f:  func(x, _, _ float64) float64 { return math.Max(x, 0) + math.Log1p(math.Exp(-math.Abs(x))) },
+		f:  func(x, _, _ float64) float64 { return softplus(x) },
 		df: func(x, _, _, _ float64) float64 { return sigmoid(x) },
 	},
 	// Softsign: y = x/(1 + |x|); dy/dx = 1/(1 + |x|)².
@@ -199,6 +200,105 @@ var unaryTable = map[string]unaryFn{
 		f:  func(x, _, _ float64) float64 { return x },
 		df: func(_, _, _, _ float64) float64 { return 1 },
 	},
+	// Gelu (approximate "none"): y = x·Φ(x) = x/2·(1 + erf(x/√2))
+	// (Hendrycks & Gimpel 2016, eq. 1); dy/dx = Φ(x) + x·φ(x).
+	"Gelu": {
+		f: func(x, _, _ float64) float64 { return 0.5 * x * (1 + math.Erf(x/math.Sqrt2)) },
+		df: func(x, _, _, _ float64) float64 {
+			return 0.5*(1+math.Erf(x/math.Sqrt2)) + x*math.Exp(-x*x/2)/math.Sqrt(2*math.Pi)
+		},
+	},
+	// GeluTanh (Gelu with approximate "tanh"): y = x/2·(1 + tanh(u)),
+	// u = √(2/π)·(x + 0.044715x³) (Hendrycks & Gimpel 2016, section 2);
+	// dy/dx = (1 + t)/2 + x/2·(1 − t²)·√(2/π)·(1 + 3·0.044715x²), t = tanh(u).
+	"GeluTanh": {
+		f: func(x, _, _ float64) float64 {
+			return 0.5 * x * (1 + math.Tanh(math.Sqrt(2/math.Pi)*(x+0.044715*x*x*x)))
+		},
+		df: func(x, _, _, _ float64) float64 {
+			k := math.Sqrt(2 / math.Pi)
+			t := math.Tanh(k * (x + 0.044715*x*x*x))
+			return 0.5*(1+t) + 0.5*x*(1-t*t)*k*(1+3*0.044715*x*x)
+		},
+	},
+	// Mish: y = x·tanh(softplus(x)) (Misra 2019, eq. 1);
+	// dy/dx = tanh(s) + x·(1 − tanh²(s))·sigmoid(x), s = softplus(x).
+	"Mish": {
+		f: func(x, _, _ float64) float64 { return x * math.Tanh(softplus(x)) },
+		df: func(x, _, _, _ float64) float64 {
+			t := math.Tanh(softplus(x))
+			return t + x*(1-t*t)*sigmoid(x)
+		},
+	},
+	// ThresholdedRelu(alpha): y = x for x > alpha, 0 otherwise.
+	"ThresholdedRelu": {
+		f: func(x, a, _ float64) float64 {
+			if x > a {
+				return x
+			}
+			return 0
+		},
+		df: func(x, _, a, _ float64) float64 {
+			if x > a {
+				return 1
+			}
+			return 0
+		},
+	},
+	// Reciprocal: y = 1/x; dy/dx = −y².
+	"Reciprocal": {
+		f:  func(x, _, _ float64) float64 { return 1 / x },
+		df: func(_, y, _, _ float64) float64 { return -y * y },
+	},
+	// Sign, Floor, Ceil and Round (half to even, ONNX Round-11) are
+	// piecewise constant: their derivative is 0 wherever it exists, and
+	// the backward passes 0 at the jumps too (common practice: PyTorch's
+	// sign, floor, ceil and round backward return zeros).
+	"Sign": {
+		f: func(x, _, _ float64) float64 {
+			switch {
+			case x > 0:
+				return 1
+			case x < 0:
+				return -1
+			}
+			return x // ±0 and NaN
+		},
+		df: zeroDerivative,
+	},
+	"Floor": {f: func(x, _, _ float64) float64 { return math.Floor(x) }, df: zeroDerivative},
+	"Ceil":  {f: func(x, _, _ float64) float64 { return math.Ceil(x) }, df: zeroDerivative},
+	"Round": {f: func(x, _, _ float64) float64 { return math.RoundToEven(x) }, df: zeroDerivative},
+	// Cast to an integer type of a floating-point value: truncation toward
+	// zero, with no derivative (an integer carries none).
+	"CastInt": {f: func(x, _, _ float64) float64 { return math.Trunc(x) }, df: zeroDerivative},
+	// Cast to BOOL: 1 where x ≠ 0 (NaN included), 0 elsewhere.
+	"CastBool": {
+		f: func(x, _, _ float64) float64 {
+			if x != 0 {
+				return 1
+			}
+			return 0
+		},
+		df: zeroDerivative,
+	},
+	// Casts to a narrower floating-point type round to nearest, ties to
+	// even (IEEE 754 §4.3.1). The derivative is 1, as in PyTorch, whose
+	// autograd passes the gradient through a change of dtype (common
+	// practice): the rounding is a change of representation, not of the
+	// function the model computes.
+	"CastFloat": {
+		f:  func(x, _, _ float64) float64 { return float64(float32(x)) },
+		df: func(_, _, _, _ float64) float64 { return 1 },
+	},
+	"CastFloat16": {
+		f:  func(x, _, _ float64) float64 { return float64(float16.Fromfloat32(float32(x)).Float32()) },
+		df: func(_, _, _, _ float64) float64 { return 1 },
+	},
+	"CastBFloat16": {
+		f:  func(x, _, _ float64) float64 { return float64(bfloat16(float32(x))) },
+		df: func(_, _, _, _ float64) float64 { return 1 },
+	},
 	// Clip(lo=alpha, hi=beta): y = min(max(x, lo), hi). The gradient passes
 	// where lo ≤ x ≤ hi, both kinks included (common practice).
 	"Clip": {
@@ -212,6 +312,26 @@ var unaryTable = map[string]unaryFn{
 	},
 }
 
+// zeroDerivative is the derivative of the piecewise-constant functions.
+func zeroDerivative(_, _, _, _ float64) float64 { return 0 }
+
+// softplus is log(1 + eˣ) = max(x, 0) + log1p(e^−|x|), which neither
+// overflows nor loses the small tail.
+func softplus(x float64) float64 { return math.Max(x, 0) + math.Log1p(math.Exp(-math.Abs(x))) }
+
+// bfloat16 rounds x to the nearest bfloat16, ties to even: the upper 16
+// bits of its binary32 pattern after adding half an ulp of bfloat16 (the
+// rounding ONNX Runtime's and PyTorch's conversions use, from memory).
+// NaN stays a NaN.
+func bfloat16(x float32) float32 {
+	if x != x {
+		return x
+	}
+	b := math.Float32bits(x)
+	b += 0x7fff + (b>>16)&1
+	return math.Float32frombits(b &^ 0xffff)
+}
+
 // sigmoid is 1/(1 + e⁻ˣ), evaluated without overflow for large |x|.
 func sigmoid(x float64) float64 {
 	if x >= 0 {
@@ -221,14 +341,19 @@ func sigmoid(x float64) float64 {
 	return e / (1 + e)
 }
 
-// unary applies the ONNX elementwise op named op: Relu, LeakyRelu(alpha),
+// Unary applies the ONNX elementwise op named op: Relu, LeakyRelu(alpha),
 // Elu(alpha), Selu(alpha, gamma=beta), Celu(alpha), Sigmoid,
 // HardSigmoid(alpha, beta), HardSwish, Tanh, Softplus, Softsign, Erf, Abs,
-// Sqrt, Exp, Log, Neg, Pow (constant exponent alpha), Identity.
+// Sqrt, Exp, Log, Neg, Pow (constant exponent alpha), Identity, Gelu,
+// GeluTanh (Gelu with approximate tanh), Mish, ThresholdedRelu(alpha),
+// Reciprocal, Sign, Floor, Ceil, Round; and the casts of a run-time value:
+// CastInt (truncation toward zero), CastBool, CastFloat, CastFloat16,
+// CastBFloat16 (rounding to the narrower type).
 //
 // The caller passes the ONNX defaults for absent attributes (LeakyRelu 0.01,
 // Elu 1, Celu 1, Selu 1.67326319217681884765625 and 1.05070102214813232421875,
-// HardSigmoid 0.2 and 0.5); parameters that an op does not use are ignored.
+// HardSigmoid 0.2 and 0.5, ThresholdedRelu 1); parameters that an op does
+// not use are ignored.
 func Unary(x *G.Node, op string, alpha, beta float64) (*G.Node, error) {
 	if op == "Clip" {
 		return nil, fmt.Errorf("nn: unary op %q: use clip: %w", op, errUnknownOp)
