@@ -15,11 +15,19 @@ answer per line on stdout:
                                                    -> seconds for K times R rows
                                                       forward, B per call
 
+  {"cmd": "igsweep", "path": P, "x": X, "target": T, "ref": R}
+                                                   -> the smallest doubling of the
+                                                      trapezoid point count whose IG
+                                                      is within 0.1% relative L1 of R
+
 Tasks are the ones bench/compare times on the Go side: predict, gradient,
 ig64 (one batched pass of 64 trapezoid points), smoothgrad50 (one batched
-pass of 50 noisy copies) and ig64x (ig64 for each of S samples in turn). "forward" and "rows" load any
-model file of the same operators plus Sub and Div by a constant and
-Softmax (the demo models): the forward-only table of bench/compare.
+pass of 50 noisy copies), ig64x (ig64 for each of S samples in turn),
+forward (a batch of S samples, no gradient) and igtol (IG with "points"
+trapezoid points at the sample "x" of the model at "path"). The "forward"
+and "rows" commands load any model file of the same operators plus Sub and
+Div by a constant and Softmax (the demo models): the forward-only table of
+bench/compare.
 
 Run with Debian's interpreter: /usr/bin/python3 bench/torch_side.py --threads 1
 """
@@ -38,6 +46,9 @@ import torch
 import torch.nn as nn
 
 TARGET_IG_POINTS = 64
+IG_TOLERANCE = 1e-3  # relative L1 of the exact integral (bench/compare/igtol.go)
+IG_MAX_POINTS = 1 << 16
+IG_CHUNK = 256  # points per batched pass
 SMOOTHGRAD_COPIES = 50
 SMOOTHGRAD_NOISE = 0.15  # σ = 0.15·(max x − min x), gradattr.DefaultNoise
 
@@ -63,7 +74,7 @@ class Constant(nn.Module):
 
 def build(path):
     """Rebuild the ONNX graph (a chain of Sub/Div by constants, Conv, Relu,
-    MaxPool, Flatten, Gemm, Softmax) as nn.Sequential."""
+    MaxPool, Flatten, Gemm and a final Softmax) as nn.Sequential."""
     m = onnx.load(path)
     inits = {t.name: onnx.numpy_helper.to_array(t) for t in m.graph.initializer}
     layers = []
@@ -84,7 +95,8 @@ def build(path):
         elif op in ("Sub", "Div"):
             layers.append(Constant(op, inits[node.input[1]]))
         elif op == "Softmax":
-            layers.append(nn.Softmax(dim=attr(node, "axis", -1)))
+            assert attr(node, "axis", -1) in (1, -1)
+            layers.append(nn.Softmax(dim=1))
         elif op == "MaxPool":
             k = attr(node, "kernel_shape")
             s = attr(node, "strides", k)
@@ -144,6 +156,25 @@ def integrated_gradients(model, x, target, points=TARGET_IG_POINTS, base=None):
     return (x - base) * g, out[-1, target].item() - out[0, target].item()
 
 
+def integrated_gradients_chunked(model, x, target, points):
+    """Trapezoid IG from the zero baseline with points nodes, in batched
+    passes of at most IG_CHUNK points (the same rule as
+    integrated_gradients)."""
+    alpha = torch.linspace(0.0, 1.0, points, dtype=torch.float64)
+    w = torch.full((points,), 1.0 / (points - 1), dtype=torch.float64)
+    w[0] *= 0.5
+    w[-1] *= 0.5
+    view = [-1] + [1] * (x.dim() - 1)
+    total = torch.zeros_like(x)
+    for lo in range(0, points, IG_CHUNK):
+        a = alpha[lo:lo + IG_CHUNK].float()
+        pts = (a.view(view) * x).requires_grad_(True)
+        out = model(pts)
+        out[:, target].sum().backward()
+        total += (pts.grad * w[lo:lo + IG_CHUNK].float().view(view)).sum(0, keepdim=True)
+    return x * total
+
+
 def smoothgrad(model, x, target, copies=SMOOTHGRAD_COPIES, gen=None):
     """SmoothGrad (Smilkov et al. 2017, eq. 3): the mean gradient over noisy copies."""
     sigma = SMOOTHGRAD_NOISE * (x.max() - x.min()).item()
@@ -195,6 +226,24 @@ class Side:
             call()
         return {"seconds": time.perf_counter() - t0}
 
+    def case(self, req):
+        """The model at req["path"] and the sample req["x"] in its shape."""
+        model, shape = self.file(req["path"])
+        return model, torch.tensor(req["x"], dtype=torch.float32).reshape([1] + shape)
+
+    def igsweep(self, req):
+        model, x = self.case(req)
+        ref = np.asarray(req["ref"], dtype=np.float64)
+        norm = np.abs(ref).sum()
+        points, err = 2, math.inf
+        while points <= IG_MAX_POINTS:
+            ig = integrated_gradients_chunked(model, x, req.get("target", 0), points)
+            err = np.abs(ig.flatten().double().numpy() - ref).sum() / norm
+            if err <= IG_TOLERANCE:
+                break
+            points *= 2
+        return {"points": points, "ig_error": err}
+
     def check(self, req):
         model, shape = self.model(req["model"])
         n = req.get("n", 1)
@@ -210,8 +259,12 @@ class Side:
                 "ig": ig.flatten().tolist(), "ig_delta": delta}
 
     def time(self, req):
+        task = req["task"]
+        if task == "igtol":
+            model, x = self.case(req)
+            return self.timed(req, lambda: integrated_gradients_chunked(model, x, req.get("target", 0), req["points"]),
+                              (req["path"], task, req["points"]))
         model, shape = self.model(req["model"])
-        task, iters = req["task"], req["iters"]
         samples = req.get("samples", 1)
         x = bench_input(shape, max(samples, 1))
         x1 = x[:1]
@@ -230,13 +283,20 @@ class Side:
         elif task == "smoothgrad50":
             def call():
                 smoothgrad(model, x1, target, gen=self.gen)
+        elif task == "forward":
+            def call():
+                with torch.no_grad():
+                    model(x)
         elif task == "ig64x":
             def call():
                 for i in range(samples):
                     integrated_gradients(model, x[i:i + 1], target)
         else:
             raise ValueError("unknown task %r" % task)
-        key = (req["model"], task, samples)
+        return self.timed(req, call, (req["model"], task, samples))
+
+    def timed(self, req, call, key):
+        iters = req["iters"]
         if key not in self.warm:  # warm up outside the timing, once
             call()
             self.warm.add(key)
@@ -265,6 +325,8 @@ def main():
                         "threads": torch.get_num_threads(), "python": sys.version.split()[0]}
             elif cmd == "check":
                 resp = side.check(req)
+            elif cmd == "igsweep":
+                resp = side.igsweep(req)
             elif cmd == "time":
                 resp = side.time(req)
             elif cmd == "forward":

@@ -48,7 +48,8 @@ func (n Numbers) MarshalJSON() ([]byte, error) {
 //	              "reference" (the reference set's name)},
 //	 "explanations": [{"index", "target", "outputs", "attributions",
 //	                   "shape", "baseline_outputs", "completeness",
-//	                   "points", "error", "groups", "standard_errors",
+//	                   "points", "exact", "pieces", "exact_skipped",
+//	                   "error", "groups", "standard_errors",
 //	                   "estimator", "fidelity", "intercept",
 //	                   "warnings": [{"code", "message", "suggest"}]}]}
 //
@@ -80,8 +81,15 @@ type ExplanationDocument struct {
 	BaselineOutputs Numbers                `json:"baseline_outputs"`
 	Completeness    *gradattr.Completeness `json:"completeness"`
 	// Points is the number of gradient evaluations spent.
-	Points int     `json:"points"`
-	Error  *string `json:"error"`
+	Points int `json:"points"`
+	// Exact is present, true, when integrated gradients integrated
+	// exactly, over Pieces pieces of the path (the most of any baseline).
+	Exact  bool `json:"exact,omitempty"`
+	Pieces int  `json:"pieces,omitempty"`
+	// ExactSkipped says why automatic integrated gradients integrated by
+	// quadrature on a model that may offer the exact integral.
+	ExactSkipped string  `json:"exact_skipped,omitempty"`
+	Error        *string `json:"error"`
 	// Groups is present with feature groups: the attributions per group.
 	Groups *gradattr.GroupedResult `json:"groups,omitempty"`
 	// StandardErrors holds the standard error of each attribution, for
@@ -142,6 +150,7 @@ func (r *Report) explanationDocument(e Explanation) ExplanationDocument {
 	}
 	j.Completeness = res.Completeness
 	j.Points = res.Cost.GradientEvals
+	j.Exact, j.Pieces, j.ExactSkipped = res.Settings.Exact, res.Settings.Pieces, res.Settings.ExactSkipped
 	j.Groups = e.Grouped
 	if res.StandardErrors != nil {
 		j.StandardErrors = &Numbers{Values: res.StandardErrors, Bits: 64}

@@ -48,8 +48,8 @@ func TestSettingsWording(t *testing.T) {
 	require.ErrorAs(t, err, &fe)
 	assert.ErrorIs(t, err, explain.ErrSettings)
 	assert.Equal(t, explain.FieldSteps, fe.Field)
-	assert.Equal(t, `-steps must be auto or a number from 1 to 65536, got "100000"`, fe.Wording(flag))
-	assert.Equal(t, `"steps" must be auto or a number from 1 to 65536, got "100000"`, fe.Wording(field))
+	assert.Equal(t, `-steps must be auto, exact, refine or a number from 1 to 65536, got "100000"`, fe.Wording(flag))
+	assert.Equal(t, `"steps" must be auto, exact, refine or a number from 1 to 65536, got "100000"`, fe.Wording(field))
 
 	// A parameter the method does not read names both fields.
 	require.NoError(t, s.Set(explain.FieldNoise, "0.2"))
@@ -65,6 +65,22 @@ func TestSettingsWording(t *testing.T) {
 	}
 	require.ErrorAs(t, s.Set(explain.FieldMethod, "lime"), &fe)
 	assert.Contains(t, fe.Wording(flag), "-method must be one of gradient (grad), ")
+}
+
+func TestSettingsSteps(t *testing.T) {
+	// The steps words choose the exact integral or quadrature; a count
+	// fixes the quadrature's points.
+	s := explain.Defaults()
+	assert.Equal(t, gradattr.ExactAuto, s.Exact, "the default is auto")
+	for _, c := range []struct {
+		text  string
+		steps int
+		exact gradattr.ExactMode
+	}{{"exact", 0, gradattr.ExactAlways}, {"refine", 0, gradattr.ExactNever}, {"auto", 0, gradattr.ExactAuto}, {"16", 16, gradattr.ExactAuto}} {
+		require.NoError(t, s.Set(explain.FieldSteps, c.text))
+		assert.Equal(t, c.steps, s.Steps, c.text)
+		assert.Equal(t, c.exact, s.Exact, c.text)
+	}
 }
 
 func TestExplainLogitsClosedForm(t *testing.T) {

@@ -83,6 +83,15 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 			return nil, e
 		}
 	}
+	if s.Method.Reads(gradattr.ParamSteps) && s.Exact == gradattr.ExactAlways {
+		pi, ok := head.(gradattr.PathIntegrator)
+		if !ok {
+			return nil, fieldError(FieldSteps, " ", StepsExact, " needs a model that integrates its gradient along a path")
+		}
+		if err := pi.PiecewiseLinear(); err != nil {
+			return nil, fieldError(FieldSteps, " ", StepsExact, ": ", err)
+		}
+	}
 	if s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.Kind == gradattr.BaselineBlur && len(e.shape) < 2 {
 		return nil, fieldError(FieldBaseline, " blur needs samples with at least two axes (height, width), got shape ", samples.ShapeString(e.shape))
 	}
@@ -142,7 +151,7 @@ func (e *Explainer) groups() error {
 func (e *Explainer) options(batch *samples.Batch, name func(*Dataset) string) (gradattr.Options, error) {
 	s := &e.settings
 	o := gradattr.Options{
-		Method: s.Method, Points: s.Steps, Rule: s.Rule, Tolerance: s.Tolerance,
+		Method: s.Method, Points: s.Steps, Rule: s.Rule, Tolerance: s.Tolerance, Exact: s.Exact,
 		Samples: s.Samples, Noise: s.Noise, Seed: s.Seed, Absolute: s.Absolute, Variant: s.Variant,
 		ReferenceRows: s.ReferenceRows, Estimator: s.Estimator, Coalitions: s.Coalitions,
 		KernelWidth: s.KernelWidth, Window: s.Window, Stride: s.Stride,

@@ -218,8 +218,12 @@ type Settings struct {
 	// Baseline is the baseline of integrated gradients.
 	Baseline Baseline
 	// Steps fixes the integration points of integrated gradients; 0
-	// refines them automatically.
+	// chooses automatically, as Exact says.
 	Steps int
+	// Exact says when integrated gradients integrate exactly; the zero
+	// value, gradattr.ExactAuto, integrates exactly where the model
+	// allows it and refines a quadrature rule elsewhere.
+	Exact gradattr.ExactMode
 	// Rule is the quadrature rule of integrated gradients.
 	Rule gradattr.Rule
 	// Tolerance, Samples, Noise and Seed are the methods' (see
@@ -295,6 +299,16 @@ const (
 	DefaultStepsText    = "auto"
 )
 
+// The words of the steps setting besides a point count: auto (the exact
+// integral where the model allows it, else a refined quadrature rule),
+// exact (the exact integral or an error), refine (a refined quadrature
+// rule only).
+const (
+	StepsAuto   = "auto"
+	StepsExact  = "exact"
+	StepsRefine = "refine"
+)
+
 // Given reports whether field f was set with Set.
 func (s *Settings) Given(f Field) bool { return s.given[f] }
 
@@ -302,10 +316,10 @@ func (s *Settings) Given(f Field) bool { return s.given[f] }
 // given: method (a canonical name or an alias), target (an index or top),
 // output, logits (true or false), baseline (see ParseBaseline), reference
 // (the name of the set, read by the caller into Reference.Batch), steps
-// (a count or auto), rule, tolerance, samples, noise, seed, abs (true or
-// false), variant (mean, squared or variance), reference-rows, estimator,
-// coalitions, kernel-width, window (HxW), stride, superpixels, compactness
-// and patch (HxW). A value out of range is a *FieldError.
+// (a count, auto, exact or refine), rule, tolerance, samples, noise, seed,
+// abs (true or false), variant (mean, squared or variance), reference-rows,
+// estimator, coalitions, kernel-width, window (HxW), stride, superpixels,
+// compactness and patch (HxW). A value out of range is a *FieldError.
 func (s *Settings) Set(f Field, text string) error {
 	if s.given == nil {
 		s.given = map[Field]bool{}
@@ -356,15 +370,16 @@ func (s *Settings) set(f Field, text string) error {
 	case FieldReference:
 		s.Reference = &Dataset{Name: text}
 	case FieldSteps:
-		if text == "auto" {
-			s.Steps = 0
+		modes := map[string]gradattr.ExactMode{StepsAuto: gradattr.ExactAuto, StepsExact: gradattr.ExactAlways, StepsRefine: gradattr.ExactNever}
+		if mode, ok := modes[text]; ok {
+			s.Steps, s.Exact = 0, mode
 			return nil
 		}
 		n, err := strconv.Atoi(text)
 		if err != nil || n < 1 || n > gradattr.MaxPointsLimit {
-			return fieldError(f, fmt.Sprintf(" must be auto or a number from 1 to %d, got %q", gradattr.MaxPointsLimit, text))
+			return fieldError(f, fmt.Sprintf(" must be auto, exact, refine or a number from 1 to %d, got %q", gradattr.MaxPointsLimit, text))
 		}
-		s.Steps = n
+		s.Steps, s.Exact = n, gradattr.ExactAuto
 	case FieldRule:
 		r, err := gradattr.ParseRule(text)
 		if err != nil {
@@ -502,7 +517,7 @@ func (s *Settings) Check() error {
 		return fieldError(FieldLayerBaseline, " applies with ", FieldLayer, " to a method with a baseline")
 	}
 	if min := s.Rule.MinPoints(); s.Method.Reads(gradattr.ParamSteps) && s.Steps > 0 && s.Steps < min {
-		return fieldError(FieldSteps, fmt.Sprintf(" must be auto or at least %d with the %s rule, got %d", min, s.Rule, s.Steps))
+		return fieldError(FieldSteps, fmt.Sprintf(" must be auto, exact, refine or at least %d with the %s rule, got %d", min, s.Rule, s.Steps))
 	}
 	if s.Reference != nil && s.Method.Reads(gradattr.ParamBaseline) && !s.Baseline.fromReference() {
 		return fieldError(FieldReference, " with ", FieldMethod, " ", s.Method, " is the set ", FieldBaseline, " mean or median reads; give ", FieldBaseline, " mean or median too")

@@ -22,9 +22,11 @@ const (
 const autoStart = 4
 
 // IGOptions configures IntegratedGradients. The zero value means: one zero
-// baseline, the trapezoid rule, automatic point count refined until the
-// relative completeness gap and the relative change of the attributions are
-// at most 0.005, or DefaultMaxPoints points; batches of 64.
+// baseline; the exact integral when the model provides it (ExactAuto),
+// otherwise the trapezoid rule with an automatic point count refined until
+// the relative completeness gap and the relative change of the
+// attributions are at most 0.005, or DefaultMaxPoints points; batches of
+// 64.
 type IGOptions struct {
 	// Rule is the quadrature rule; the zero value is RuleTrapezoid.
 	Rule Rule
@@ -42,6 +44,12 @@ type IGOptions struct {
 	// BatchSize is the number of points per model call; 0 means
 	// DefaultBatchSize.
 	BatchSize int
+	// Exact says when to integrate exactly (see ExactMode); the zero
+	// value is ExactAuto.
+	Exact ExactMode
+	// MaxPieces caps the pieces of one exact path integral; 0 means
+	// DefaultMaxPieces with ExactAuto and MaxPiecesLimit with ExactAlways.
+	MaxPieces int
 }
 
 // IntegratedGradients attributes output target of m at x along the straight
@@ -68,12 +76,24 @@ type IGOptions struct {
 // errors of opposite sign cancel in it, and on ReLU networks a coarse rule
 // can meet the gap while single attributions are off by several percent.
 // Every pass sends its points to the model in batches of BatchSize, in node
-// order. Completeness.OK reports whether the tolerance was met.
+// order; a model that is a GradientSummer gets them instead as weighted
+// sums, one for the end nodes and one for the others (at most 4096 points
+// a call), and adds them up as it forms them. Completeness.OK reports
+// whether the tolerance was met.
 //
 // With several baselines the attributions are the mean of those against
 // each baseline, and completeness is checked against the mean baseline
 // output (1/B) Σ_b F(x′_b), for which the mean attributions are complete.
 // Settings.Points is then the largest per-baseline count.
+//
+// Exact integrated gradients (opt.Exact; by default whenever the point
+// count is automatic and the model allows it) take the integral from a
+// PathIntegrator instead: for a network that is piecewise-linear up to a
+// smooth head, the integral over the pieces of the path on which it is
+// affine (Sotoudeh & Thakur 2019), exact up to rounding. The result then
+// has Settings.Exact set and Settings.Pieces (the largest per-baseline
+// count) and spends no gradient evaluations; when ExactAuto falls back to
+// quadrature, Settings.ExactSkipped says why.
 func IntegratedGradients(ctx context.Context, m Model, x []float64, target int, opt IGOptions) (*Result, error) {
 	if !opt.Rule.valid() {
 		return nil, fmt.Errorf("%w: unknown quadrature rule %d", ErrOptions, int(opt.Rule))
@@ -115,6 +135,22 @@ func IntegratedGradients(ctx context.Context, m Model, x []float64, target int, 
 	if opt.Points == 0 {
 		s.Auto, s.MaxPoints = true, maxPoints
 	}
+	plan, err := planExact(m, opt)
+	if err != nil {
+		return nil, err
+	}
+	if plan.pi != nil {
+		es := s
+		if opt.Exact == ExactAlways {
+			es.Auto, es.MaxPoints = false, 0
+		}
+		r, why, err := exactIG(e, plan, bases, opt, es)
+		if err != nil || r != nil {
+			return r, err
+		}
+		plan.skipped = why
+	}
+	s.ExactSkipped = plan.skipped
 	total := make([]float64, e.size)
 	meanBase := 0.0
 	ig := newIntegrator(e, x)
@@ -223,6 +259,35 @@ func (g *integrator) use(j int, _, grad []float64) {
 	}
 }
 
+// evaluate adds the gradients at the nodes to the running sums: from a
+// GradientSummer, one sum per kind of node (end nodes and the others), or
+// point by point.
+func (g *integrator) evaluate() error {
+	s := g.e.summer()
+	if s == nil {
+		return g.e.gradients(len(g.nodes), g.fill, g.use)
+	}
+	for _, end := range []bool{true, false} {
+		var alpha, weight []float64
+		for _, n := range g.nodes {
+			if n.end == end {
+				alpha, weight = append(alpha, n.alpha), append(weight, n.weight)
+			}
+		}
+		if len(alpha) == 0 {
+			continue
+		}
+		sum := g.sumIn
+		if end {
+			sum = g.sumEnd
+		}
+		if err := g.e.pathSum(s, g.xb, alpha, weight, sum); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
 // run integrates from xb to x along sched, refining while done(attr) is
 // false, and returns a fresh attribution slice.
 func (g *integrator) run(xb []float64, sched *schedule, done func(attr []float64) bool) ([]float64, error) {
@@ -235,7 +300,7 @@ func (g *integrator) run(xb []float64, sched *schedule, done func(attr []float64
 	attr := make([]float64, g.e.size)
 	g.nodes = sched.initial()
 	for {
-		if err := g.e.gradients(len(g.nodes), g.fill, g.use); err != nil {
+		if err := g.evaluate(); err != nil {
 			return nil, err
 		}
 		cEnd, cIn := sched.coefficients()

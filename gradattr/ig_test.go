@@ -436,3 +436,77 @@ func TestIGAutoDoesNotStopOnCancellingErrors(t *testing.T) {
 	assert.LessOrEqual(t, relL1, DefaultTolerance, "points %d", r.Settings.Points)
 	assert.Greater(t, r.Settings.Points, 5)
 }
+
+// summingFunc is a Func that also returns gradient sums, formed from its
+// own gradients in float64 in point order, counting its calls.
+type summingFunc struct {
+	*Func
+	calls, points int
+}
+
+func (s *summingFunc) GradientSum(ctx context.Context, x []float64, n int, weight []float64, target int) ([]float64, []float64, error) {
+	s.calls++
+	s.points += n
+	tgt := make([]int, n)
+	for i := range tgt {
+		tgt[i] = target
+	}
+	out, g, err := s.Gradient(ctx, x, n, tgt)
+	if err != nil {
+		return nil, nil, err
+	}
+	size := len(g) / n
+	sum := make([]float64, size)
+	for i, w := range weight {
+		for j, v := range g[i*size : (i+1)*size] {
+			sum[j] += w * v
+		}
+	}
+	return out, sum, nil
+}
+
+func (s *summingFunc) PathGradientSum(ctx context.Context, from, to, alpha, weight []float64, target int) ([]float64, []float64, error) {
+	x := make([]float64, 0, len(alpha)*len(from))
+	for _, a := range alpha {
+		for j := range from {
+			x = append(x, from[j]+a*(to[j]-from[j]))
+		}
+	}
+	return s.GradientSum(ctx, x, len(alpha), weight, target)
+}
+
+func TestIGAndSmoothGradTakeSums(t *testing.T) {
+	// A model that returns gradient sums gets the points of a pass as sums
+	// (one for the trapezoid's end nodes, one for the others), the same
+	// points and weights as point by point: on the closed form f = x₁x₂
+	// (∂f/∂x₁ = x₂, ∂f/∂x₂ = x₁) the two agree to rounding, and IG from
+	// the zero baseline, (x₁x₂/2, x₁x₂/2) (Sundararajan et al. 2017, eq. 1:
+	// x₁ ∫₀¹ αx₂ dα), is exact for the rules exact on degree 1.
+	ctx := context.Background()
+	x := []float64{1.5, -0.7}
+	for _, rule := range allRules {
+		plain, err := IntegratedGradients(ctx, product(), x, 0, IGOptions{Rule: rule})
+		require.NoError(t, err)
+		s := &summingFunc{Func: product()}
+		summed, err := IntegratedGradients(ctx, s, x, 0, IGOptions{Rule: rule})
+		require.NoError(t, err)
+		assert.InDeltaSlice(t, plain.Attributions, summed.Attributions, 1e-15, "%v", rule)
+		assert.Equal(t, plain.Settings.Points, summed.Settings.Points, "%v", rule)
+		assert.Equal(t, plain.Cost.GradientEvals, summed.Cost.GradientEvals, "%v", rule)
+		assert.Equal(t, summed.Cost.GradientEvals, s.points, "%v: every point went through the sums", rule)
+		if rule != RuleLeft && rule != RuleRight {
+			assert.InDeltaSlice(t, []float64{x[0] * x[1] / 2, x[0] * x[1] / 2}, summed.Attributions, 1e-12, "%v: closed form", rule)
+		}
+	}
+	plain, err := SmoothGrad(ctx, product(), x, 0, SmoothGradOptions{Samples: 20, Seed: 3})
+	require.NoError(t, err)
+	s := &summingFunc{Func: product()}
+	summed, err := SmoothGrad(ctx, s, x, 0, SmoothGradOptions{Samples: 20, Seed: 3})
+	require.NoError(t, err)
+	assert.InDeltaSlice(t, plain.Attributions, summed.Attributions, 1e-15)
+	assert.Equal(t, 1, s.calls, "one sum for the 20 copies")
+	squared, err := SmoothGrad(ctx, s, x, 0, SmoothGradOptions{Samples: 20, Seed: 3, Variant: VariantSquared})
+	require.NoError(t, err)
+	assert.Equal(t, 1, s.calls, "the squared variant needs the gradients themselves")
+	assert.Positive(t, squared.Attributions[0])
+}

@@ -70,6 +70,9 @@ type Options struct {
 	// Points fixes the number of integration points of integrated
 	// gradients per baseline; 0 chooses it automatically (IGOptions.Points).
 	Points int
+	// Exact says when integrated gradients integrate exactly
+	// (IGOptions.Exact).
+	Exact ExactMode
 	// Rule is the quadrature rule of integrated gradients.
 	Rule Rule
 	// Tolerance is the relative completeness gap to meet (integrated
@@ -174,14 +177,25 @@ var methodSpecs = []methodSpec{
 		run: func(ctx context.Context, m Model, x []float64, target int, o Options) (*Result, error) {
 			return IntegratedGradients(ctx, m, x, target, IGOptions{
 				Rule: o.Rule, Points: o.Points, Tolerance: o.Tolerance,
-				Baselines: o.baselines(), BatchSize: o.BatchSize,
+				Baselines: o.baselines(), BatchSize: o.BatchSize, Exact: o.Exact,
 			})
 		},
 		cost: func(o Options, _ []int, _ int) Cost {
 			// Per baseline, f(x′) and the path integral's gradients,
-			// every refinement counted up to the largest point count.
+			// every refinement counted up to the largest point count; a
+			// piece of an exact integral counted as one gradient (its
+			// forward pass with the directional derivative and its
+			// backward pass), automatic points the pieces of the exact
+			// attempt before the quadrature.
 			b := max(1, len(o.Baselines))
-			return Cost{GradientEvals: b * gradientsWorst(o.Rule, o.Points, DefaultMaxPoints), ForwardPasses: 1 + b}
+			grads := gradientsWorst(o.Rule, o.Points, DefaultMaxPoints)
+			switch {
+			case o.Exact == ExactAlways:
+				grads = MaxPiecesLimit
+			case o.Exact == ExactAuto && o.Points == 0:
+				grads += DefaultMaxPieces
+			}
+			return Cost{GradientEvals: b * grads, ForwardPasses: 1 + b}
 		},
 	},
 	{
@@ -528,10 +542,16 @@ func (o Options) Settings() Settings {
 				s.References = len(o.Reference)
 			}
 		case ParamSteps:
-			if o.Points > 0 {
+			switch {
+			case o.Points > 0:
 				s.Points = o.Points
-			} else {
+			case o.Exact == ExactAlways:
+				s.Exact, s.MaxPieces = true, MaxPiecesLimit
+			default:
 				s.Auto, s.MaxPoints = true, DefaultMaxPoints
+				if o.Exact == ExactAuto {
+					s.MaxPieces = DefaultMaxPieces
+				}
 			}
 		case ParamRule:
 			s.Rule = o.Rule.String()

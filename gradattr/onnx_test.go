@@ -826,7 +826,7 @@ func TestONNXFloat32RoundingFloor(t *testing.T) {
 	b := newIR(t, "offset", onnxlite.Float, "x", []int64{1}, "y", []int64{1})
 	b.node("Add", "y", []string{"x", b.init("c", []int64{1}, []float64{10000})})
 	x := []float64{0.1}
-	opt := gradattr.IGOptions{Tolerance: igTolerance, MaxPoints: 65}
+	opt := gradattr.IGOptions{Tolerance: igTolerance, MaxPoints: 65, Exact: gradattr.ExactNever}
 
 	r32, err := gradattr.IntegratedGradients(context.Background(), b.head(nn.Float32), x, 0, opt)
 	require.NoError(t, err)

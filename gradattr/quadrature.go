@@ -2,9 +2,9 @@ package gradattr
 
 import (
 	"fmt"
-	"math"
 	"slices"
-	"sync"
+
+	"github.com/apportion/apportion/internal/gausslegendre"
 )
 
 // Rule is a quadrature rule for the path integral of integrated gradients,
@@ -90,8 +90,6 @@ func (r Rule) Nodes(m int) (alpha, weight []float64, err error) {
 	return alpha, weight, nil
 }
 
-var glCache sync.Map // int → [2][]float64
-
 // GaussLegendre returns the n nodes x_j ∈ (−1, 1), in increasing order, and
 // weights w_j of the Gauss–Legendre rule ∫₋₁¹ g ≈ Σ w_j g(x_j) (Abramowitz &
 // Stegun 1964, 25.4.29): x_j are the roots of the Legendre polynomial P_n,
@@ -107,54 +105,8 @@ func GaussLegendre(n int) (x, w []float64) {
 	if n < 1 || n > MaxPointsLimit {
 		return nil, nil
 	}
-	x, w = gaussLegendre(n)
+	x, w = gausslegendre.Rule(n)
 	return slices.Clone(x), slices.Clone(w)
-}
-
-// gaussLegendre computes GaussLegendre(n) once per n and caches it; callers
-// must not modify the result.
-func gaussLegendre(n int) (x, w []float64) {
-	if v, ok := glCache.Load(n); ok {
-		p := v.([2][]float64)
-		return p[0], p[1]
-	}
-	x, w = make([]float64, n), make([]float64, n)
-	for i := 0; i < (n+1)/2; i++ {
-		z := math.Cos(math.Pi * (float64(i) + 0.75) / (float64(n) + 0.5))
-		var dp float64
-		for iter := 0; iter < 100; iter++ {
-			p, q := legendre(n, z)
-			dp = float64(n) * (z*p - q) / (z*z - 1)
-			dz := p / dp
-			z -= dz
-			if math.Abs(dz) <= 1e-16*math.Max(1, math.Abs(z)) {
-				break
-			}
-		}
-		p, q := legendre(n, z)
-		dp = float64(n) * (z*p - q) / (z*z - 1)
-		wt := 2 / ((1 - z*z) * dp * dp)
-		// The root near cos(π(i+¾)/(n+½)) is the (i+1)-th largest.
-		x[n-1-i], w[n-1-i] = z, wt
-		x[i], w[i] = -z, wt
-	}
-	if n%2 == 1 {
-		x[n/2] = 0
-	}
-	glCache.Store(n, [2][]float64{x, w})
-	return x, w
-}
-
-// legendre returns P_n(z) and P_{n−1}(z).
-func legendre(n int, z float64) (pn, pn1 float64) {
-	p0, p1 := 1.0, z
-	if n == 0 {
-		return 1, 0
-	}
-	for k := 1; k < n; k++ {
-		p0, p1 = p1, (float64(2*k+1)*z*p1-float64(k)*p0)/float64(k+1)
-	}
-	return p1, p0
 }
 
 // schedule is one rule's refinement plan: the nodes first evaluated, then
@@ -238,7 +190,7 @@ func (s *schedule) initial() []node {
 }
 
 func (s *schedule) gauss() []node {
-	x, w := gaussLegendre(s.m)
+	x, w := gausslegendre.Rule(s.m)
 	nodes := make([]node, s.m)
 	for j := range nodes {
 		nodes[j] = node{alpha: (x[j] + 1) / 2, weight: w[j] / 2}

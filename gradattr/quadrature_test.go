@@ -45,16 +45,13 @@ func TestGaussLegendreTable(t *testing.T) {
 			assert.Equal(t, w[i], w[n-1-i])
 		}
 	}
-	// Large n: the weights sum to 2 = ∫₋₁¹ 1 and each node is a root of
-	// P_n (A&S 25.4.29).
+	// Large n: the weights sum to 2 = ∫₋₁¹ 1 (A&S 25.4.29); that each node
+	// is a root of P_n is checked in internal/gausslegendre.
 	for _, n := range []int{64, 513, 1024} {
-		x, w := GaussLegendre(n)
+		_, w := GaussLegendre(n)
 		s := 0.0
-		for j := range x {
+		for j := range w {
 			s += w[j]
-			p, q := legendre(n, x[j])
-			dp := float64(n) * (x[j]*p - q) / (x[j]*x[j] - 1)
-			assert.Less(t, math.Abs(p/dp), 1e-15, "n=%d root %d: Newton step", n, j)
 		}
 		assert.InDelta(t, 2, s, 1e-12, "n=%d", n)
 	}

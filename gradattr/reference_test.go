@@ -147,9 +147,10 @@ func TestReferenceGradientTimesInput(t *testing.T) {
 	}
 }
 
-// TestReferenceIntegratedGradients checks automatic integrated gradients
-// (float64 engine) against the exact integral for the zero baseline and the
-// training-set mean baseline, to 0.5% relative L1.
+// TestReferenceIntegratedGradients checks integrated gradients by automatic
+// quadrature (ExactNever, float64 engine) against the exact integral for the
+// zero baseline and the training-set mean baseline, to 0.5% relative L1 (the
+// exact integration is checked in exact_test.go).
 //
 // The tolerance is 1e-4, not 1e-3: the refinement stops on the completeness
 // gap, a check on the sum of the attributions, in which per-feature
@@ -179,7 +180,7 @@ func TestReferenceIntegratedGradients(t *testing.T) {
 				worst, maxPoints := 0.0, 0
 				for r := 0; r < c.rows; r++ {
 					res, err := gradattr.IntegratedGradients(ctx, c.head, row(c.x, r, c.features), c.target[r],
-						gradattr.IGOptions{Tolerance: 1e-4, Baselines: []gradattr.Baseline{tc.baseline}})
+						gradattr.IGOptions{Tolerance: 1e-4, Baselines: []gradattr.Baseline{tc.baseline}, Exact: gradattr.ExactNever})
 					require.NoError(t, err)
 					require.NotNil(t, res.Completeness)
 					e := relL1(res.Attributions, row(want, r, c.features))

@@ -136,6 +136,17 @@ type Settings struct {
 	Auto bool `json:"auto,omitempty"`
 	// MaxPoints is the refinement cap of automatic integrated gradients.
 	MaxPoints int `json:"max_points,omitempty"`
+	// Exact is set when integrated gradients integrate exactly (asked for
+	// with ExactAlways, or done).
+	Exact bool `json:"exact,omitempty"`
+	// Pieces is the number of pieces of the exact path integral (the
+	// largest per baseline).
+	Pieces int `json:"pieces,omitempty"`
+	// MaxPieces is the piece limit of exact integrated gradients.
+	MaxPieces int `json:"max_pieces,omitempty"`
+	// ExactSkipped says why automatic integrated gradients integrated by
+	// quadrature when the model offers the exact integral.
+	ExactSkipped string `json:"exact_skipped,omitempty"`
 	// Samples is the number of noisy copies (SmoothGrad) or draws
 	// (expected gradients).
 	Samples int `json:"samples,omitempty"`

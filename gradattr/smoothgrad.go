@@ -97,8 +97,9 @@ type SmoothGradOptions struct {
 // variance variant takes (1/n) Σ_k (∂F(x+ε_k)/∂x_i − M̂_i)² (Adebayo et al.
 // 2018, VarGrad; Welford's update, in copy order). ε is drawn with
 // math/rand/v2's PCG seeded by (Seed, 0) and NormFloat64, copy by copy,
-// feature by feature, or taken from Perturbations or NoiseFunc. The result
-// has no Completeness.
+// feature by feature, or taken from Perturbations or NoiseFunc. For the
+// mean of a GradientSummer the copies go to the model as one weighted sum
+// (at most 4096 copies a call). The result has no Completeness.
 func SmoothGrad(ctx context.Context, m Model, x []float64, target int, opt SmoothGradOptions) (*Result, error) {
 	if opt.Variant < VariantMean || opt.Variant > VariantVariance {
 		return nil, fmt.Errorf("%w: SmoothGrad variant %d, want mean (0), squared (1) or variance (2)", ErrOptions, int(opt.Variant))
@@ -221,7 +222,16 @@ func SmoothGrad(ctx context.Context, m Model, x []float64, target int, opt Smoot
 			}
 		}
 	}
-	if err := e.gradients(n, fill, use); err != nil {
+	if s := e.summer(); s != nil && opt.Variant == VariantMean {
+		ones := make([]float64, n)
+		for i := range ones {
+			ones[i] = 1
+		}
+		err = e.pointSum(s, n, fill, ones, mean)
+	} else {
+		err = e.gradients(n, fill, use)
+	}
+	if err != nil {
 		return nil, err
 	}
 	if fillErr != nil {

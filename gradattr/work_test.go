@@ -40,7 +40,7 @@ func TestEstimateBoundsTheModelCalls(t *testing.T) {
 		{Method: gradattr.MethodIntegratedGradients, Points: 33, Baselines: []gradattr.Baseline{{}, {Kind: gradattr.BaselineMean, Reference: ref}}},
 	}
 	for _, r := range []gradattr.Rule{gradattr.RuleTrapezoid, gradattr.RuleLeft, gradattr.RuleRight, gradattr.RuleMidpoint, gradattr.RuleGaussLegendre} {
-		cases = append(cases, gradattr.Options{Method: gradattr.MethodIntegratedGradients, Rule: r, Tolerance: 1e-300})
+		cases = append(cases, gradattr.Options{Method: gradattr.MethodIntegratedGradients, Rule: r, Tolerance: 1e-300, Exact: gradattr.ExactNever})
 	}
 	for _, o := range cases {
 		f := countingFunc()
@@ -51,4 +51,26 @@ func TestEstimateBoundsTheModelCalls(t *testing.T) {
 		require.NoError(t, err)
 		assert.Equal(t, f.Samples(), est.GradientEvals+est.ForwardPasses, "%v %v points %d", o.Method, o.Rule, o.Points)
 	}
+}
+
+func TestEstimateCountsTheExactAttempt(t *testing.T) {
+	// Automatic integrated gradients may first integrate exactly, up to
+	// DefaultMaxPieces pieces per baseline, then by quadrature: the
+	// estimate, a bound, counts both; -steps exact counts MaxPiecesLimit
+	// pieces per baseline (each piece one forward pass with its
+	// directional derivative and one backward pass, as a gradient).
+	quad := gradattr.Options{Method: gradattr.MethodIntegratedGradients, Exact: gradattr.ExactNever}
+	auto := quad
+	auto.Exact = gradattr.ExactAuto
+	exact := quad
+	exact.Exact = gradattr.ExactAlways
+	estQuad, err := quad.Estimate([]int{2})
+	require.NoError(t, err)
+	estAuto, err := auto.Estimate([]int{2})
+	require.NoError(t, err)
+	estExact, err := exact.Estimate([]int{2})
+	require.NoError(t, err)
+	assert.Equal(t, estQuad.GradientEvals+gradattr.DefaultMaxPieces, estAuto.GradientEvals)
+	assert.Equal(t, gradattr.MaxPiecesLimit, estExact.GradientEvals)
+	assert.Equal(t, estQuad.ForwardPasses, estExact.ForwardPasses)
 }

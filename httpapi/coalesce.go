@@ -96,6 +96,29 @@ func (b *batcher) Forward(ctx context.Context, x []float64, n int) ([]float64, e
 
 // Gradient evaluates n samples and their gradients, stacked with other
 // waiting calls.
+// PiecewiseLinear and IntegratePath pass exact path integrals through to
+// the model without stacking: an exact integral is one call per sample
+// and baseline, which walks the path itself.
+func (b *batcher) PiecewiseLinear() error { return piecewiseLinear(b.m) }
+
+// IntegratePath is the model's (see PiecewiseLinear).
+func (b *batcher) IntegratePath(ctx context.Context, from, to []float64, target, maxPieces int) ([]float64, int, error) {
+	return integratePath(ctx, b.m, from, to, target, maxPieces)
+}
+
+// GradientSum and PathGradientSum pass gradient sums through to the model
+// without stacking: a sum is one call for all the points of a pass, which
+// the model runs in its own batches, and stacking it with other requests'
+// calls would change how it rounds.
+func (b *batcher) GradientSum(ctx context.Context, x []float64, n int, weight []float64, target int) ([]float64, []float64, error) {
+	return gradientSum(ctx, b.m, x, n, weight, target)
+}
+
+// PathGradientSum is the model's (see GradientSum).
+func (b *batcher) PathGradientSum(ctx context.Context, from, to, alpha, weight []float64, target int) ([]float64, []float64, error) {
+	return pathGradientSum(ctx, b.m, from, to, alpha, weight, target)
+}
+
 func (b *batcher) Gradient(ctx context.Context, x []float64, n int, target []int) ([]float64, []float64, error) {
 	return b.do(ctx, &stackedCall{grad: true, x: x, n: n, target: target})
 }

@@ -782,7 +782,7 @@ type explainRequest struct {
 	Inputs    json.RawMessage `json:"inputs"`
 	Method    *string         `json:"method"`
 	Target    json.RawMessage `json:"target"` // an index, or "top"
-	Steps     json.RawMessage `json:"steps"`  // a count, or "auto"
+	Steps     json.RawMessage `json:"steps"`  // a count, or "auto", "exact" or "refine"
 	Rule      *string         `json:"rule"`
 	Tolerance *float64        `json:"tolerance"`
 	Baseline  *string         `json:"baseline"`
@@ -831,11 +831,11 @@ func settingsError(err error) *httpError {
 // it (without one, the mean baseline averages "inputs").
 func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 	st := explain.Defaults()
-	target, herr := intOrWord("target", req.Target, explain.DefaultTargetText, "top")
+	target, herr := intOrWord("target", req.Target, explain.DefaultTargetText, `"top"`)
 	if herr != nil {
 		return st, herr
 	}
-	steps, herr := intOrWord("steps", req.Steps, explain.DefaultStepsText, "auto")
+	steps, herr := intOrWord("steps", req.Steps, explain.DefaultStepsText, `"auto", "exact" or "refine"`)
 	if herr != nil {
 		return st, herr
 	}
@@ -893,8 +893,9 @@ func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 	return st, nil
 }
 
-// intOrWord reads a field that holds a non-negative integer or one word.
-func intOrWord(name string, raw json.RawMessage, def, word string) (string, *httpError) {
+// intOrWord reads a field that holds a non-negative integer or a word; words
+// names them for the error message.
+func intOrWord(name string, raw json.RawMessage, def, words string) (string, *httpError) {
 	if raw == nil {
 		return def, nil
 	}
@@ -906,7 +907,7 @@ func intOrWord(name string, raw json.RawMessage, def, word string) (string, *htt
 	if err := json.Unmarshal(raw, &n); err == nil && n == math.Trunc(n) && math.Abs(n) < 1<<53 {
 		return strconv.FormatInt(int64(n), 10), nil
 	}
-	return "", badRequest("%q must be a number or %q, got %s", name, word, raw)
+	return "", badRequest("%q must be a number or %s, got %s", name, words, raw)
 }
 
 func (h *Handler) explain(w http.ResponseWriter, r *http.Request, rl *requestLog) {

@@ -171,7 +171,7 @@ func TestServeStatuses(t *testing.T) {
 		{"no inputs", "/v1/explain", `{"method": "grad"}`, http.StatusBadRequest, []string{`"inputs" is required`}},
 		{"target out of range", "/v1/explain", `{"inputs": [` + sample + `], "method": "grad", "target": 3}`, http.StatusBadRequest, []string{`"target" must be top or an index from 0 to 2 (output "condition" has 3 values), got 3`}},
 		{"file baseline", "/v1/explain", `{"inputs": [` + sample + `], "baseline": "/etc/passwd"}`, http.StatusBadRequest, []string{`"baseline" must be zero, constant:V, mean, median, blur, blur:S or uniform:LO:HI (files are the command line's), got "/etc/passwd"`}},
-		{"steps too large", "/v1/explain", `{"inputs": [` + sample + `], "steps": 100000}`, http.StatusBadRequest, []string{`"steps" must be auto or a number from 1 to 65536, got "100000"`}},
+		{"steps too large", "/v1/explain", `{"inputs": [` + sample + `], "steps": 100000}`, http.StatusBadRequest, []string{`"steps" must be auto, exact, refine or a number from 1 to 65536, got "100000"`}},
 		{"flag of another method", "/v1/explain", `{"inputs": [` + sample + `], "noise": 0.2}`, http.StatusBadRequest, []string{`"noise" applies to "method" smoothgrad only, not integrated-gradients`}},
 		{"over the limit", "/v1/explain", `{"inputs": [` + strings.Repeat(sample+",", 200) + sample + `]}`, http.StatusRequestEntityTooLarge, []string{"over the limit of 1024 bytes (1KiB)"}},
 	}
@@ -520,6 +520,45 @@ func TestServeCoalescedMatchesAlone(t *testing.T) {
 	for i := range bodies {
 		assert.JSONEq(t, want[i], got[i], "request %d", i)
 	}
+}
+
+func TestServeExact(t *testing.T) {
+	// The pumps demo is piecewise-linear up to its Softmax: "steps":
+	// "exact" (and the default, auto) integrate exactly, with or without
+	// coalescing, to the same document; completeness (Sundararajan et al.
+	// 2017, Proposition 1) holds to float32 rounding.
+	_, alone, _ := testServer(t, nil)
+	_, stacked, _ := testServer(t, func(o *Options) { o.Coalesce = true })
+	sample := strings.TrimSpace(demoSampleJSON(t))
+	for _, steps := range []string{`"exact"`, `"auto"`} {
+		body := `{"inputs":[` + sample + `],"steps":` + steps + `}`
+		var docs []string
+		for _, ts := range []*httptest.Server{alone, stacked} {
+			code, _, got := post(t, ts.URL+"/v1/explain", body)
+			require.Equal(t, http.StatusOK, code, got)
+			docs = append(docs, got)
+		}
+		assert.JSONEq(t, docs[0], docs[1], "coalescing leaves the exact integral alone")
+		var doc struct {
+			Explanations []struct {
+				Exact        bool `json:"exact"`
+				Pieces       int  `json:"pieces"`
+				Points       int  `json:"points"`
+				Completeness struct {
+					RelativeGap float64 `json:"relative_gap"`
+				} `json:"completeness"`
+			} `json:"explanations"`
+		}
+		require.NoError(t, json.Unmarshal([]byte(docs[0]), &doc))
+		e := doc.Explanations[0]
+		assert.True(t, e.Exact, steps)
+		assert.Positive(t, e.Pieces, steps)
+		assert.Zero(t, e.Points, steps)
+		assert.Less(t, e.Completeness.RelativeGap, 1e-5, steps)
+	}
+	code, _, body := post(t, alone.URL+"/v1/explain", `{"inputs":[`+sample+`],"steps":"exactly"}`)
+	assert.Equal(t, http.StatusBadRequest, code)
+	assert.Contains(t, errorOf(t, body), `"steps" must be auto, exact, refine or a number`)
 }
 
 // gatedModel passes calls to m, holding the first one until open is closed,

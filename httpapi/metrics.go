@@ -2,6 +2,7 @@ package httpapi
 
 import (
 	"context"
+	"errors"
 	"net/http"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -59,7 +60,7 @@ func newMetrics() *metrics {
 	})
 	m.passes = prometheus.NewCounterVec(prometheus.CounterOpts{
 		Name: "apportion_model_passes_total",
-		Help: "Calls into the network, by kind (forward, gradient: one forward and one backward pass).",
+		Help: "Calls into the network, by kind (forward; gradient: one forward and one backward pass; path: one exact path integral).",
 	}, []string{"kind"})
 	m.points = prometheus.NewCounterVec(prometheus.CounterOpts{
 		Name: "apportion_model_points_total",
@@ -105,3 +106,83 @@ func (c *countingModel) Gradient(ctx context.Context, x []float64, n int, target
 	c.metrics.countPass("gradient", n)
 	return c.m.Gradient(ctx, x, n, target)
 }
+
+// PiecewiseLinear is the model's (see gradattr.PathIntegrator).
+func (c *countingModel) PiecewiseLinear() error { return piecewiseLinear(c.m) }
+
+// IntegratePath counts an exact path integral as a "path" pass of one
+// point.
+func (c *countingModel) IntegratePath(ctx context.Context, from, to []float64, target, maxPieces int) ([]float64, int, error) {
+	c.metrics.countPass("path", 1)
+	return integratePath(ctx, c.m, from, to, target, maxPieces)
+}
+
+// GradientSum counts a gradient sum as a gradient pass of n points.
+func (c *countingModel) GradientSum(ctx context.Context, x []float64, n int, weight []float64, target int) ([]float64, []float64, error) {
+	c.metrics.countPass("gradient", n)
+	return gradientSum(ctx, c.m, x, n, weight, target)
+}
+
+// PathGradientSum counts a gradient sum as a gradient pass of its points.
+func (c *countingModel) PathGradientSum(ctx context.Context, from, to, alpha, weight []float64, target int) ([]float64, []float64, error) {
+	c.metrics.countPass("gradient", len(alpha))
+	return pathGradientSum(ctx, c.m, from, to, alpha, weight, target)
+}
+
+// gradientSum and pathGradientSum pass gradient sums through to m, or
+// form them from m's gradients, point by point in order, when m does not
+// offer them.
+func gradientSum(ctx context.Context, m gradattr.Model, x []float64, n int, weight []float64, target int) ([]float64, []float64, error) {
+	if s, ok := m.(gradattr.GradientSummer); ok {
+		return s.GradientSum(ctx, x, n, weight, target)
+	}
+	tgt := make([]int, n)
+	for i := range tgt {
+		tgt[i] = target
+	}
+	out, g, err := m.Gradient(ctx, x, n, tgt)
+	if err != nil {
+		return nil, nil, err
+	}
+	size := len(g) / max(n, 1)
+	sum := make([]float64, size)
+	for i, w := range weight {
+		for j, v := range g[i*size : (i+1)*size] {
+			sum[j] += w * v
+		}
+	}
+	return out, sum, nil
+}
+
+func pathGradientSum(ctx context.Context, m gradattr.Model, from, to, alpha, weight []float64, target int) ([]float64, []float64, error) {
+	if s, ok := m.(gradattr.GradientSummer); ok {
+		return s.PathGradientSum(ctx, from, to, alpha, weight, target)
+	}
+	x := make([]float64, 0, len(alpha)*len(from))
+	for _, a := range alpha {
+		for j := range from {
+			x = append(x, from[j]+a*(to[j]-from[j]))
+		}
+	}
+	return gradientSum(ctx, m, x, len(alpha), weight, target)
+}
+
+// piecewiseLinear and integratePath pass exact path integrals through to
+// m, refusing with the reason when m does not offer them.
+func piecewiseLinear(m gradattr.Model) error {
+	pi, ok := m.(gradattr.PathIntegrator)
+	if !ok {
+		return errNoPathIntegral
+	}
+	return pi.PiecewiseLinear()
+}
+
+func integratePath(ctx context.Context, m gradattr.Model, from, to []float64, target, maxPieces int) ([]float64, int, error) {
+	pi, ok := m.(gradattr.PathIntegrator)
+	if !ok {
+		return nil, 0, errNoPathIntegral
+	}
+	return pi.IntegratePath(ctx, from, to, target, maxPieces)
+}
+
+var errNoPathIntegral = errors.New("the model does not integrate its gradient along a path")

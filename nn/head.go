@@ -36,6 +36,8 @@ type Head struct {
 	inSize   int
 	outShape []int // per sample
 	outSize  int
+	path     *pathPlans   // built on first use by the exact path integral
+	sums     *prefixPlans // found on first use by the gradient sums
 	// others holds one sample of each other run-time input (nil at wrt)
 	// and otherShapes its shape, and held the compile-time inputs, once
 	// With has set them.
@@ -57,7 +59,8 @@ func (nw *Network) Head(sel Selection) (h *Head, err error) {
 	if err != nil {
 		return nil, fmt.Errorf("nn: head: %w", err)
 	}
-	h = &Head{nw: nw, wrt: wrt, sel: sel, bound: len(nw.feeds) == 1 && len(nw.held) == 0}
+	h = &Head{nw: nw, wrt: wrt, sel: sel, bound: len(nw.feeds) == 1 && len(nw.held) == 0,
+		path: &pathPlans{}, sums: &prefixPlans{}}
 	if len(nw.held) > 0 {
 		// The shapes depend on the compile-time inputs' values: With
 		// infers them.
@@ -226,6 +229,9 @@ func (h *Head) With(inputs []*onnxlite.Tensor) (hw *Head, err error) {
 	}
 	c.bound = true
 	if len(nw.held) > 0 {
+		// The value and shapes may change with the held values: the copy
+		// builds its own plans (which such a model does not offer).
+		c.path, c.sums = &pathPlans{}, &prefixPlans{}
 		if err := c.infer(); err != nil {
 			return nil, err
 		}

@@ -15,12 +15,17 @@ import (
 // graph outputs) and, when grad is set, the gradient of Σ_i out[i, target[i]]
 // of the single requested value with respect to run-time input wrt (an
 // index into Network.feeds); held gives the values of the compile-time
-// inputs, for which the program is specialised.
+// inputs, for which the program is specialised. With from set the program
+// starts at that value instead of the run-time input: its nodes are those
+// after the affine prefix that computes it (summed.go), and it is the
+// program's one input (only for models of one run-time input and no
+// compile-time ones).
 type request struct {
 	outputs []string
 	grad    bool
 	wrt     int
 	held    *heldValues
+	from    string
 }
 
 // appendKey appends a text that tells requests apart to b.
@@ -32,6 +37,9 @@ func (r request) appendKey(b []byte) []byte {
 	b = strconv.AppendInt(append(b, '/'), int64(r.wrt), 10)
 	if r.held != nil {
 		b = append(append(b, '/'), r.held.key...)
+	}
+	if r.from != "" {
+		b = strconv.AppendQuote(append(b, "/from="...), r.from)
 	}
 	return b
 }
@@ -526,13 +534,21 @@ func (nw *Network) program(shapes [][]int, req request) (*program, error) {
 const maxHeldPrograms = 64
 
 func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
-	relax, err := nw.needsRelax(shapes)
+	inShapes := shapes
+	if req.from != "" {
+		// Shapes are inferred from the runtime input's.
+		var ok bool
+		if inShapes, ok = nw.sampleShapes(shapes[0][0]); !ok {
+			return nil, fmt.Errorf("%w: the input's per-sample shape is not known", ErrShape)
+		}
+	}
+	relax, err := nw.needsRelax(inShapes)
 	if err != nil {
 		return nil, err
 	}
 	var st *onnxlite.Static
 	if relax {
-		st, err = nw.inferRelaxed(shapes, req.held)
+		st, err = nw.inferRelaxed(inShapes, req.held)
 		if errors.Is(err, errBatchInconsistent) || (err != nil && !errors.Is(err, ErrShape)) {
 			// Run sample by sample on the model as exported.
 			one := make([][]int, len(shapes))
@@ -548,10 +564,15 @@ func (nw *Network) newProgram(shapes [][]int, req request) (*program, error) {
 				outNames: inner.outNames, outTypes: inner.outTypes}, nil
 		}
 	} else {
-		st, err = nw.infer(nw.model, shapes, req.held)
+		st, err = nw.infer(nw.model, inShapes, req.held)
 	}
 	if err != nil {
 		return nil, err
+	}
+	if req.from != "" {
+		if st, err = suffixStatic(st, req.from); err != nil {
+			return nil, err
+		}
 	}
 	if err := nw.checkValueBytes(st, shapes, req.grad); err != nil {
 		return nil, err

@@ -298,8 +298,15 @@ func Table(w io.Writer, rep *explain.Report, opt Options) error {
 		if fit := r.Surrogate; fit != nil {
 			fmt.Fprintf(w, "surrogate: intercept %s  fidelity (weighted R²) %s\n", Number(fit.Intercept), Number(fit.Fidelity))
 		}
-		fmt.Fprintf(w, "cost: %s, %s, %s\n", Count(r.Cost.GradientEvals, "gradient evaluation", "gradient evaluations"),
+		evals := Count(r.Cost.GradientEvals, "gradient evaluation", "gradient evaluations")
+		if r.Settings.Exact {
+			evals = "exact integral over " + Count(r.Settings.Pieces, "piece", "pieces") + " of the path"
+		}
+		fmt.Fprintf(w, "cost: %s, %s, %s\n", evals,
 			Count(r.Cost.ForwardPasses, "forward pass", "forward passes"), r.Cost.Elapsed.Round(10_000))
+		if r.Settings.ExactSkipped != "" {
+			fmt.Fprintf(w, "by quadrature, not exact: %s\n", r.Settings.ExactSkipped)
+		}
 	}
 	return nil
 }

@@ -27,11 +27,21 @@ type request struct {
 	Iters   int    `json:"iters,omitempty"`
 	Samples int    `json:"samples,omitempty"`
 	N       int    `json:"n,omitempty"`
-	// rows and forward (the forward-only table): a model file, a row
-	// count and a batch size.
-	Path  string `json:"path,omitempty"`
-	Rows  int    `json:"rows,omitempty"`
-	Batch int    `json:"batch,omitempty"`
+	// The IG-to-0.1% rows: the case's file, sample and target, the
+	// reference integral, and PyTorch's point count. Path is also the
+	// model file of the forward-only table's rows and forward commands.
+	Path   string    `json:"path,omitempty"`
+	X      []float64 `json:"x,omitempty"`
+	Target int       `json:"target,omitempty"`
+	Ref    []float64 `json:"ref,omitempty"`
+	Points int       `json:"points,omitempty"`
+	// The forward anchor (bench/ort_side.js); Batch is also the batch
+	// size of the forward-only table.
+	Shape   []int `json:"shape,omitempty"`
+	Batch   int   `json:"batch,omitempty"`
+	Threads int   `json:"threads,omitempty"`
+	// Rows is the row count of the forward-only table.
+	Rows int `json:"rows,omitempty"`
 }
 
 // response is the union of the answers.
@@ -40,6 +50,7 @@ type response struct {
 	// info
 	Go      string `json:"go,omitempty"`
 	Torch   string `json:"torch,omitempty"`
+	ORT     string `json:"ort,omitempty"`
 	Threads int    `json:"threads,omitempty"`
 	// check
 	Out     []float64 `json:"out,omitempty"`
@@ -47,6 +58,13 @@ type response struct {
 	Grad    []float64 `json:"grad,omitempty"`
 	IG      []float64 `json:"ig,omitempty"`
 	IGDelta float64   `json:"ig_delta"`
+	// igref and igsweep
+	X       []float64 `json:"x,omitempty"`
+	Path    string    `json:"path,omitempty"`
+	Pieces  int       `json:"pieces,omitempty"`
+	How     string    `json:"how,omitempty"`
+	IGError float64   `json:"ig_error"`
+	Points  int       `json:"points,omitempty"`
 	// time
 	Seconds float64 `json:"seconds"`
 	Allocs  float64 `json:"allocs"` // per call
@@ -102,7 +120,7 @@ func (s *goSide) head(name string) (*nn.Head, bench.Spec, error) {
 	}
 	// One call may split its batch over every thread the child is given,
 	// as torch.set_num_threads lets one PyTorch call use them.
-	nw, err := nn.Compile(m, nn.Options{Parallel: runtime.GOMAXPROCS(0)})
+	nw, err := nn.Compile(m, s.options())
 	if err != nil {
 		return nil, spec, err
 	}
@@ -112,6 +130,11 @@ func (s *goSide) head(name string) (*nn.Head, bench.Spec, error) {
 	}
 	s.heads[name] = h
 	return h, spec, nil
+}
+
+// options are the Options the child compiles with.
+func (s *goSide) options() nn.Options {
+	return nn.Options{Parallel: runtime.GOMAXPROCS(0)}
 }
 
 func (s *goSide) serve(req request) (response, error) {
@@ -160,12 +183,21 @@ func (s *goSide) serve(req request) (response, error) {
 			return response{}, err
 		}
 		return response{Out: out, Target: t, Grad: g, IG: ig.Attributions, IGDelta: ig.Output - ig.BaselineOutput}, nil
+	case "igref":
+		return s.igRef(ctx, req.Model)
 	case "time":
-		h, spec, err := s.head(req.Model)
-		if err != nil {
-			return response{}, err
+		var call func() error
+		var err error
+		if req.Task == "igtol" {
+			call, err = s.igTask(ctx, req.Model)
+		} else {
+			var h *nn.Head
+			var spec bench.Spec
+			if h, spec, err = s.head(req.Model); err != nil {
+				return response{}, err
+			}
+			call, err = goTask(ctx, h, spec, req.Task, req.Samples)
 		}
-		call, err := goTask(ctx, h, spec, req.Task, req.Samples)
 		if err != nil {
 			return response{}, err
 		}
@@ -220,6 +252,8 @@ func goTask(ctx context.Context, h *nn.Head, spec bench.Spec, task string, sampl
 	switch task {
 	case "predict":
 		return func() error { _, err := h.Forward(ctx, x1, 1); return err }, nil
+	case "forward":
+		return func() error { _, err := h.Forward(ctx, x, samples); return err }, nil
 	case "gradient":
 		return func() error { _, err := gradattr.Gradient(ctx, h, x1, t, gradattr.GradientOptions{}); return err }, nil
 	case "ig64":

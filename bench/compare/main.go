@@ -27,6 +27,15 @@
 // goroutines, internal/cpupeak), measured in the same run at the same
 // thread count; the rate of nn's own matrix product on a one-MatMul model
 // (256×256×256 and 64×1024×256 through Head.Forward) is reported beside it.
+//
+// Two more tables answer a user's questions. "IG to 0.1%" (igtol.go, one
+// thread, the zoo and both demos): apportion's integrated gradients with a
+// 0.1% tolerance against PyTorch's trapezoid rule at the smallest doubling
+// of its point count that is within 0.1% relative L1 of the float64 exact
+// integral. The forward anchor (anchor.go): predict at batch 1, 64 and
+// 1024 beside ONNX Runtime (npm onnxruntime-node run by node on
+// bench/ort_side.js, found through -ort-modules or NODE_PATH); without node
+// or the package the run says so and goes on without it.
 package main
 
 import (
@@ -58,7 +67,11 @@ func main() {
 	out := flag.String("out", filepath.Join("bench", "RESULTS.md"), "results file (empty: none)")
 	python := flag.String("python", "/usr/bin/python3", "Python interpreter with torch and onnx")
 	script := flag.String("torch-side", filepath.Join("bench", "torch_side.py"), "PyTorch side script")
-	models := flag.String("only", "", "comma-separated zoo models to run (default all)")
+	models := flag.String("only", "", "comma-separated zoo models (and demos, for the IG rows) to run (default all)")
+	igOnly := flag.String("ig", "", "comma-separated models of the IG-to-0.1% rows (default: those -only names, or the zoo and both demos; none for no rows)")
+	node := flag.String("node", "node", "node, for the ONNX Runtime forward anchor (skipped when absent)")
+	ortSide := flag.String("ort-side", filepath.Join("bench", "ort_side.js"), "ONNX Runtime side script")
+	ortModules := flag.String("ort-modules", os.Getenv("NODE_PATH"), "node_modules directory holding onnxruntime-node (default $NODE_PATH)")
 	methods := flag.Bool("forward-only", true, "time the forward-only methods (Shapley values) against PyTorch's forward passes")
 	zoo := flag.Bool("zoo", true, "time the zoo models' tasks")
 	flag.Usage = func() {
@@ -77,12 +90,17 @@ func main() {
 		fmt.Fprintln(os.Stderr, "compare: -reps must be at least 1")
 		os.Exit(2)
 	}
-	cfg := config{quick: *quick, reps: *reps, dir: *dir, out: *out, python: *python, script: *script, forwardOnly: *methods}
+	cfg := config{quick: *quick, reps: *reps, dir: *dir, out: *out, python: *python, script: *script,
+		node: *node, ortSide: *ortSide, ortModules: *ortModules, forwardOnly: *methods}
 	if *models != "" {
 		cfg.only = strings.Split(*models, ",")
 	}
 	if !*zoo {
 		cfg.only = []string{}
+	}
+	cfg.ig = cfg.only
+	if *igOnly != "" {
+		cfg.ig = strings.Split(*igOnly, ",")
 	}
 	if err := run(cfg); err != nil {
 		fmt.Fprintln(os.Stderr, "compare:", err)
@@ -96,7 +114,11 @@ type config struct {
 	dir, out       string
 	python, script string
 	only           []string
-	forwardOnly    bool
+	// ig are the models of the IG rows (nil: all).
+	ig []string
+	// node runs ortSide with NODE_PATH=ortModules.
+	node, ortSide, ortModules string
+	forwardOnly               bool
 }
 
 // task is one timed row.
@@ -218,6 +240,9 @@ func run(cfg config) error {
 		for _, n := range cfg.only {
 			s, err := bench.Lookup(n)
 			if err != nil {
+				if len(igModels(cfg.dir, []string{n})) == 1 {
+					continue // a demo, for the IG rows
+				}
 				return err
 			}
 			specs = append(specs, s)
@@ -235,7 +260,13 @@ func run(cfg config) error {
 		}
 		flops[s.Name] = float64(f)
 	}
+	ortVersion, ortErr := probeORT(cfg)
+	if ortErr != nil {
+		fmt.Fprintf(os.Stderr, "compare: ONNX Runtime not usable (%v)\n  install it with: npm install --ignore-scripts onnxruntime-node@1.30.0, and give -ort-modules DIR/node_modules\n  running without the forward anchor\n", ortErr)
+	}
 	var rows []row
+	var anchors []anchorRow
+	var igRows []igRow
 	var checks []string
 	var prows []perturbRow
 	var pchecks []string
@@ -283,6 +314,23 @@ func run(cfg config) error {
 				rows = append(rows, r)
 				fmt.Fprintln(os.Stderr, formatRow(r))
 			}
+			if ortErr == nil {
+				a, err := anchor(cfg, gp, s, threads, target)
+				if err != nil {
+					return fmt.Errorf("%s forward anchor: %w", s.Name, err)
+				}
+				anchors = append(anchors, a...)
+			}
+		}
+		if threads == 1 {
+			for _, name := range igModels(cfg.dir, cfg.ig) {
+				r, err := measureIG(gp, tp, name, cfg.reps, target)
+				if err != nil {
+					return fmt.Errorf("%s IG to 0.1%%: %w", name, err)
+				}
+				igRows = append(igRows, r)
+				fmt.Fprintln(os.Stderr, formatIGRow(r))
+			}
 		}
 		for _, c := range perturbCases() {
 			if !cfg.forwardOnly {
@@ -310,12 +358,14 @@ func run(cfg config) error {
 	if len(rows) > 0 {
 		table = renderTable(rows)
 	}
+	table += renderIG(igRows) + renderAnchors(anchors)
 	if prows != nil {
 		table += "\n" + renderPerturbTable(prows)
 	}
 	fmt.Print(table)
 	if cfg.out != "" {
 		md := renderMarkdown(cfg, rows, checks, peaks, gemms, goVersion, torchVersion, loadStart, loadEnd, time.Since(started))
+		md += igMarkdown(igRows) + anchorMarkdown(anchors, ortVersion, ortErr)
 		if prows != nil {
 			md += "\n" + renderPerturbMarkdown(prows, pchecks)
 		}
@@ -407,45 +457,74 @@ func maxDiff(a, b []float64) (d, scale float64, err error) {
 // count so that one measurement lasts about target seconds, then reps
 // measurements alternate between the sides.
 func measure(gp, tp *peer, model string, tk task, reps int, target float64) (row, error) {
-	iters := func(p *peer) (int, error) {
-		r, err := p.call(request{Cmd: "time", Model: model, Task: tk.name, Iters: 1, Samples: tk.samples})
+	req := request{Cmd: "time", Model: model, Task: tk.name, Samples: tk.samples}
+	var treq *request
+	if tp != nil {
+		treq = &req
+	}
+	t, err := timeSides(gp, &req, tp, treq, reps, target)
+	if err != nil {
+		return row{}, err
+	}
+	return row{model: model, task: tk.label, goSec: t.goSec, torchSec: t.otherSec, allocs: t.allocs, bytes: t.bytes}, nil
+}
+
+// timing is the median time per call of both sides, and the Go side's
+// allocations per call.
+type timing struct {
+	goSec, otherSec float64
+	allocs, bytes   float64
+}
+
+// timeSides times the "time" requests greq on gp and oreq on op (none when
+// op is nil): a calibration call sets each side's iteration count so that
+// one measurement lasts about target seconds, then reps measurements
+// alternate between the sides.
+func timeSides(gp *peer, greq *request, op *peer, oreq *request, reps int, target float64) (timing, error) {
+	iters := func(p *peer, req request) (int, error) {
+		req.Iters = 1
+		r, err := p.call(req)
 		if err != nil {
 			return 0, err
 		}
 		return max(1, int(math.Ceil(target/math.Max(r.Seconds, 1e-7)))), nil
 	}
-	gi, err := iters(gp)
+	gi, err := iters(gp, *greq)
 	if err != nil {
-		return row{}, fmt.Errorf("go side: %w", err)
+		return timing{}, fmt.Errorf("go side: %w", err)
 	}
-	ti := 0
-	if tp != nil {
-		if ti, err = iters(tp); err != nil {
-			return row{}, fmt.Errorf("torch side: %w", err)
+	oi := 0
+	if op != nil {
+		if oi, err = iters(op, *oreq); err != nil {
+			return timing{}, fmt.Errorf("%s side: %w", filepath.Base(op.cmd.Path), err)
 		}
 	}
-	var gs, ts, allocs, byts []float64
+	var gs, others, allocs, byts []float64
 	for i := 0; i < reps; i++ {
-		r, err := gp.call(request{Cmd: "time", Model: model, Task: tk.name, Iters: gi, Samples: tk.samples})
+		req := *greq
+		req.Iters = gi
+		r, err := gp.call(req)
 		if err != nil {
-			return row{}, fmt.Errorf("go side: %w", err)
+			return timing{}, fmt.Errorf("go side: %w", err)
 		}
 		gs = append(gs, r.Seconds/float64(gi))
 		allocs = append(allocs, r.Allocs)
 		byts = append(byts, r.Bytes)
-		if tp != nil {
-			r, err := tp.call(request{Cmd: "time", Model: model, Task: tk.name, Iters: ti, Samples: tk.samples})
+		if op != nil {
+			req := *oreq
+			req.Iters = oi
+			r, err := op.call(req)
 			if err != nil {
-				return row{}, fmt.Errorf("torch side: %w", err)
+				return timing{}, fmt.Errorf("%s side: %w", filepath.Base(op.cmd.Path), err)
 			}
-			ts = append(ts, r.Seconds/float64(ti))
+			others = append(others, r.Seconds/float64(oi))
 		}
 	}
-	out := row{model: model, task: tk.label, goSec: median(gs), allocs: median(allocs), bytes: median(byts)}
-	if tp != nil {
-		out.torchSec = median(ts)
+	t := timing{goSec: median(gs), allocs: median(allocs), bytes: median(byts)}
+	if op != nil {
+		t.otherSec = median(others)
 	}
-	return out, nil
+	return t, nil
 }
 
 func median(v []float64) float64 {
@@ -479,6 +558,29 @@ func cpuModel() string {
 		if k, v, ok := strings.Cut(line, ":"); ok && strings.TrimSpace(k) == "model name" {
 			return strings.TrimSpace(v)
 		}
+	}
+	return "unknown"
+}
+
+// simdFlags lists the vector-extension flags of the first CPU in
+// /proc/cpuinfo.
+func simdFlags() string {
+	b, err := os.ReadFile("/proc/cpuinfo")
+	if err != nil {
+		return "unknown"
+	}
+	for _, line := range strings.Split(string(b), "\n") {
+		k, v, ok := strings.Cut(line, ":")
+		if !ok || strings.TrimSpace(k) != "flags" {
+			continue
+		}
+		var out []string
+		for _, f := range strings.Fields(v) {
+			if strings.HasPrefix(f, "sse") || strings.HasPrefix(f, "ssse") || strings.HasPrefix(f, "avx") || f == "fma" || f == "f16c" || strings.HasPrefix(f, "amx") {
+				out = append(out, f)
+			}
+		}
+		return strings.Join(out, " ")
 	}
 	return "unknown"
 }
@@ -545,6 +647,7 @@ func renderMarkdown(cfg config, rows []row, checks []string, peaks, gemms map[in
 	b.WriteString("`; see bench/compare/main.go for the method.\n\n")
 	b.WriteString("## Machine\n\n")
 	fmt.Fprintf(&b, "- CPU: %s, %d cores visible (`nproc`)\n", cpuModel(), runtime.NumCPU())
+	fmt.Fprintf(&b, "- SIMD flags (/proc/cpuinfo): %s\n", simdFlags())
 	fmt.Fprintf(&b, "- Go: %s, GOARCH %s\n", goVersion, runtime.GOARCH)
 	if torchVersion == "" {
 		torchVersion = "not available (apt-get install python3-torch)"

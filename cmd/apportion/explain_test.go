@@ -42,9 +42,12 @@ type explainDoc struct {
 			Judged      bool    `json:"judged"`
 			OK          bool    `json:"ok"`
 		} `json:"completeness"`
-		Points int     `json:"points"`
-		Error  *string `json:"error"`
-		Groups *struct {
+		Points       int     `json:"points"`
+		Exact        bool    `json:"exact"`
+		Pieces       int     `json:"pieces"`
+		ExactSkipped string  `json:"exact_skipped"`
+		Error        *string `json:"error"`
+		Groups       *struct {
 			Names        []string  `json:"names"`
 			Attributions []float64 `json:"attributions"`
 			Partition    bool      `json:"partition"`
@@ -112,7 +115,42 @@ func TestExplainIGSoftmax(t *testing.T) {
 	// Σ a_i = F(x) − F(0) = y_top − 1/3, within the requested tolerance.
 	want := y[*e.Target] - 1.0/3
 	assert.InDelta(t, want, sum(e.Attributions), 0.005*math.Abs(want)+1e-6)
+	// A Softmax of the input itself is piecewise-linear (one piece) up to
+	// its head: -steps auto integrates exactly, without gradient passes.
+	assert.True(t, e.Exact)
+	assert.Equal(t, 1, e.Pieces)
+	assert.Zero(t, e.Points)
+	assert.Equal(t, true, doc.Settings["auto"])
+	assert.EqualValues(t, 1024, doc.Settings["max_pieces"])
+
+	// -steps refine integrates by quadrature, within the tolerance.
+	doc, _ = explainJSONRun(t, exitOK, "-model", model, "-input", xpb, "-steps", "refine")
+	e = doc.Explanations[0]
+	assert.False(t, e.Exact)
 	assert.Greater(t, e.Points, 0)
+	assert.NotContains(t, doc.Settings, "max_pieces")
+	assert.InDelta(t, want, sum(e.Attributions), 0.005*math.Abs(want)+1e-6)
+}
+
+func TestExplainExactRefused(t *testing.T) {
+	// y = erf(x) (node/test_erf, python3-onnx 1.12.0) is not
+	// piecewise-linear: -steps exact is a usage error that names the
+	// operator, and -steps auto integrates by quadrature and says why.
+	dir := caseDir(t, "node/test_erf")
+	in, _ := setFiles(t, dir)
+	model := filepath.Join(dir, "model.onnx")
+	code, out, errs := cli(t, "explain", "-model", model, "-input", in[0], "-steps", "exact")
+	assert.Equal(t, exitUsage, code)
+	assert.Empty(t, out)
+	assert.Contains(t, errs, "-steps exact: not a piecewise-linear network")
+	assert.Contains(t, errs, "operator Erf")
+
+	doc, _ := explainJSONRun(t, exitOK, "-model", model, "-input", in[0], "-target", "0")
+	e := doc.Explanations[0]
+	require.Nil(t, e.Error)
+	assert.False(t, e.Exact)
+	assert.Greater(t, e.Points, 0)
+	assert.Contains(t, e.ExactSkipped, "operator Erf")
 }
 
 func TestExplainLogitsClosedForm(t *testing.T) {

@@ -255,3 +255,116 @@ func TestPredictInputsRequired(t *testing.T) {
 	_, outputs := onnxtestdata.SetFiles(filepath.Join(dir, "test_data_set_0"))
 	requireOutputs(t, predictJSON(t, "-model", filepath.Join(dir, "model.onnx")), outputs)
 }
+
+// TestExplainSeveralInputsQuadrature: on a model of a float input and
+// token ids, integrated gradients integrate by quadrature (the exact path
+// integral and the gradient sums are not offered there), meet completeness
+// with -steps auto, and -steps exact is a usage error that says why.
+func TestExplainSeveralInputsQuadrature(t *testing.T) {
+	model, f := severalInputsModel(t, false)
+	tmp := t.TempDir()
+	x := []float64{1, 2, 3, 0.5, -1, 2}
+	ids := []float64{0, 4, 2, 2}
+	xs, is := filepath.Join(tmp, "x.json"), filepath.Join(tmp, "ids.json")
+	writeJSON(t, xs, []int{2, 3}, x)
+	writeJSON(t, is, []int{2, 2}, ids)
+	const target = 2
+	doc, _ := explainJSONRun(t, exitOK, "-model", model, "-input", xs, "-input", is, "-target", "2", "-steps", "auto")
+	require.Len(t, doc.Explanations, 2)
+	for s, ex := range doc.Explanations {
+		require.Nil(t, ex.Error)
+		assert.False(t, ex.Exact)
+		assert.Greater(t, ex.Points, 0)
+		assert.Contains(t, ex.ExactSkipped, "not available for a model of several inputs")
+		require.NotNil(t, ex.Completeness)
+		assert.True(t, ex.Completeness.Judged)
+		assert.True(t, ex.Completeness.OK, "relative gap %v", ex.Completeness.RelativeGap)
+		// Completeness (Sundararajan et al. 2017, Proposition 1) against
+		// the closed form: Σ a_i = F(x) − F(0), within the tolerance
+		// (0.005) and binary32 rounding.
+		id := ids[s*2 : s*2+2]
+		want := f(x[s*3:s*3+3], id)[target] - f([]float64{0, 0, 0}, id)[target]
+		assert.InDelta(t, want, sum(ex.Attributions), 0.005*math.Abs(want)+1e-5, "sample %d", s)
+		assert.InDelta(t, f(x[s*3:s*3+3], id)[target], ex.Outputs[target], 1e-5, "sample %d", s)
+	}
+
+	code, out, errs := cli(t, "explain", "-model", model, "-input", xs, "-input", is, "-steps", "exact")
+	assert.Equal(t, exitUsage, code)
+	assert.Empty(t, out)
+	assert.Contains(t, errs, "-steps exact: the exact path integral is not available for a model of several inputs (inputs: \"x\", \"ids\")")
+}
+
+// severalInputsModel writes y = softmax(relu(x·W + b) + Σ_k E[ids_k]) (x
+// float (N, 3), ids int64 (N, 2) into a 5×4 table E) and returns the
+// closed form in float64. With shape set the sum goes through a Reshape to
+// a compile-time input "shape" first (given [-1, 4] it changes nothing).
+func severalInputsModel(t *testing.T, shape bool) (string, func(x, ids []float64) []float64) {
+	t.Helper()
+	w := []float64{0.5, -1, 2, 0.25, 1.5, 0.75, -0.5, 1, -2, 0.125, 1, -0.25}
+	bias := []float64{0.1, -0.2, 0.3, -0.4}
+	e := make([]float64, 20)
+	for i := range e {
+		e[i] = (float64(i%7) - 3) / 4
+	}
+	f32t := func(name string, dims []int64, v []float64) *onnxlite.Tensor {
+		f := make([]float32, len(v))
+		for i, x := range v {
+			f[i] = float32(x)
+		}
+		return &onnxlite.Tensor{Name: name, DType: onnxlite.Float, Dims: dims, Data: f}
+	}
+	in := func(name string, dt onnxlite.DataType, dims ...onnxlite.Dim) *onnxlite.ValueInfo {
+		return &onnxlite.ValueInfo{Name: name, Type: &onnxlite.Type{Kind: onnxlite.KindTensor, Elem: dt, HasShape: true, Shape: dims}}
+	}
+	batch, fixed := onnxlite.Dim{Param: "N"}, func(d int64) onnxlite.Dim { return onnxlite.Dim{Value: d, HasValue: true} }
+	g := &onnxlite.Graph{
+		Name:    "several_inputs",
+		Inputs:  []*onnxlite.ValueInfo{in("x", onnxlite.Float, batch, fixed(3)), in("ids", onnxlite.Int64, batch, fixed(2))},
+		Outputs: []*onnxlite.ValueInfo{{Name: "y", Type: &onnxlite.Type{Kind: onnxlite.KindTensor, Elem: onnxlite.Float}}},
+		Initializers: []*onnxlite.Tensor{
+			f32t("W", []int64{3, 4}, w), f32t("b", []int64{4}, bias), f32t("E", []int64{5, 4}, e),
+			{Name: "axes", DType: onnxlite.Int64, Dims: []int64{1}, Data: []int64{1}},
+		},
+		Nodes: []*onnxlite.Node{
+			{Name: "dense", OpType: "Gemm", Inputs: []string{"x", "W", "b"}, Outputs: []string{"h"}},
+			{Name: "act", OpType: "Relu", Inputs: []string{"h"}, Outputs: []string{"r"}},
+			{Name: "embed", OpType: "Gather", Inputs: []string{"E", "ids"}, Outputs: []string{"g"}},
+			{Name: "pool", OpType: "ReduceSum", Inputs: []string{"g", "axes"}, Outputs: []string{"s"},
+				Attrs: []*onnxlite.Attribute{{Name: "keepdims", Type: onnxlite.AttrInt, I: 0}}},
+			{Name: "sum", OpType: "Add", Inputs: []string{"r", "s"}, Outputs: []string{"z"}},
+		},
+	}
+	last := "z"
+	if shape {
+		g.Inputs = append(g.Inputs, in("shape", onnxlite.Int64, fixed(2)))
+		g.Nodes = append(g.Nodes, &onnxlite.Node{Name: "reshape", OpType: "Reshape", Inputs: []string{"z", "shape"}, Outputs: []string{"l"}})
+		last = "l"
+	}
+	g.Nodes = append(g.Nodes, &onnxlite.Node{Name: "prob", OpType: "Softmax", Inputs: []string{last}, Outputs: []string{"y"}})
+	m := &onnxlite.Model{IRVersion: 8, Opsets: []onnxlite.OpsetImport{{Version: 13}}, ProducerName: "apportion-test", Graph: g}
+	path := filepath.Join(t.TempDir(), "several_inputs.onnx")
+	f, err := os.Create(path)
+	require.NoError(t, err)
+	require.NoError(t, onnxlite.Encode(f, m))
+	require.NoError(t, f.Close())
+	return path, func(x, ids []float64) []float64 {
+		z := make([]float64, 4)
+		total := 0.0
+		for j := range z {
+			h := bias[j]
+			for i := range 3 {
+				h += x[i] * w[i*4+j]
+			}
+			z[j] = max(h, 0)
+			for _, id := range ids {
+				z[j] += e[int(id)*4+j]
+			}
+			z[j] = math.Exp(z[j])
+			total += z[j]
+		}
+		for j := range z {
+			z[j] /= total
+		}
+		return z
+	}
+}

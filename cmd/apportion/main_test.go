@@ -130,6 +130,7 @@ func TestUsageErrors(t *testing.T) {
 		{"explain", "-model", "m.onnx", "-input", "x.csv", "-format", "xml"},
 		{"explain", "-model", "m.onnx", "-input", "x.csv", "-steps", "0"},
 		{"explain", "-model", "m.onnx", "-input", "x.csv", "-steps", "many"},
+		{"explain", "-model", "m.onnx", "-input", "x.csv", "-steps", "exactly"},
 		{"explain", "-model", "m.onnx", "-input", "x.csv", "-target", "-3"},
 		{"explain", "-model", "m.onnx", "-input", "x.csv", "-tolerance", "0"},
 		{"explain", "-model", "m.onnx", "-input", "x.csv", "-samples", "0"},

@@ -70,8 +70,8 @@ func TestMessagesSpeakTheUsersLanguage(t *testing.T) {
 	}{
 		{exitUsage, []string{"frobnicate"}, `unknown command "frobnicate"`},
 		{exitUsage, []string{"help", "frobnicate"}, ""},
-		{exitUsage, []string{"explain", "-steps", "1"}, "-steps must be auto or at least 2 with the trapezoid rule, got 1"},
-		{exitUsage, []string{"explain", "-steps", "0"}, "-steps must be auto or a number from 1 to 65536"},
+		{exitUsage, []string{"explain", "-steps", "1"}, "-steps must be auto, exact, refine or at least 2 with the trapezoid rule, got 1"},
+		{exitUsage, []string{"explain", "-steps", "0"}, "-steps must be auto, exact, refine or a number from 1 to 65536"},
 		{exitUsage, []string{"explain", "-steps", "many"}, ""},
 		{exitUsage, []string{"explain", "-baseline", "meen"}, "-baseline must be zero, constant:V, mean, median, blur, blur:S or uniform:LO:HI, or the path of a file"},
 		{exitUsage, []string{"explain", "-target", "3"}, `-target must be top or an index from 0 to 2 (output "condition" has 3 values), got 3`},

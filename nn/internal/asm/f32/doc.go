@@ -11,7 +11,9 @@
 // showing the loop it computes). The dispatch rule is the same for every
 // kernel: the assembly runs when the CPU has AVX2 and FMA, checked once when
 // the package is loaded (useAsm, reported by Asm), and the loop runs
-// otherwise (stubs_noasm.go on other builds). Both compute the same IEEE 754
+// otherwise (stubs_noasm.go on other builds). The packed, strided and
+// convolution tiles also have an AVX-512 form (suffix Avx512), which runs
+// instead on a CPU with AVX-512F (useAVX512) and stores the AVX2 form's bits. Both compute the same IEEE 754
 // bits: a product accumulates as one chain of fused multiply-adds per
 // element, which fma emulates exactly, so the loops are the portable kernels
 // and, in the tests, the oracle the assembly is checked against bit for bit.

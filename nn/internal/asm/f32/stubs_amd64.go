@@ -8,6 +8,11 @@ import "golang.org/x/sys/cpu"
 // and FMA. It is the only place the package reads CPU features.
 var useAsm = cpu.X86.HasAVX2 && cpu.X86.HasFMA
 
+// useAVX512 reports whether the tile kernels that have an AVX-512 form run
+// it: on a CPU with AVX-512F besides AVX2 and FMA. The forms store the bits
+// of the AVX2 ones.
+var useAVX512 = useAsm && cpu.X86.HasAVX512F
+
 // Asm reports whether the kernels run in assembly: on amd64 with AVX2 and
 // FMA.
 func Asm() bool { return useAsm }
@@ -17,6 +22,10 @@ func Asm() bool { return useAsm }
 // of B, each sum one chain of fused multiply-adds in the order of p; c is
 // not read when beta is 0.
 func Gemm6x16(kc int, a, b, c *float32, ldc int, alpha, beta float32) {
+	if useAVX512 {
+		gemm6x16Avx512(kc, a, b, c, ldc, alpha, beta)
+		return
+	}
 	if useAsm {
 		gemm6x16Asm(kc, a, b, c, ldc, alpha, beta)
 		return
@@ -27,6 +36,10 @@ func Gemm6x16(kc int, a, b, c *float32, ldc int, alpha, beta float32) {
 // Gemm6x16Strided is Gemm6x16 with element (r, p) of A read in place at
 // a[r·rs + p·ps]; it stores the bits Gemm6x16 stores for the packed strip.
 func Gemm6x16Strided(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32) {
+	if useAVX512 {
+		gemm6x16StridedAvx512(kc, a, rs, ps, b, c, ldc, alpha, beta)
+		return
+	}
 	if useAsm {
 		gemm6x16StridedAsm(kc, a, rs, ps, b, c, ldc, alpha, beta)
 		return
@@ -61,6 +74,10 @@ func Gemm1x32(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alp
 // one rounding (the bits of Gemm6x16 with beta 1 on a tile filled with the
 // bias), or T[r][j] when bias is nil; c is never read.
 func Conv6x16(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *float32) {
+	if useAVX512 {
+		conv6x16Avx512(kc, a, b, off, c, ldc, bias)
+		return
+	}
 	if useAsm {
 		conv6x16Asm(kc, a, b, off, c, ldc, bias)
 		return
@@ -307,3 +324,21 @@ func maxPool2x2Asm(x, y *float32, planes, h, w, oh, ow int) bool
 //
 //go:noescape
 func maxPool2x2GradAsm(x, dy, dx *float32, planes, h, w, oh, ow int) bool
+
+// gemm6x16Avx512 is gemm6x16Asm on AVX-512 (one ZMM register per tile row,
+// A broadcast from memory into the fused multiply-adds): the same loop, the
+// same bits.
+//
+//go:noescape
+func gemm6x16Avx512(kc int, a, b, c *float32, ldc int, alpha, beta float32)
+
+// gemm6x16StridedAvx512 is gemm6x16StridedAsm on AVX-512: the same loop,
+// the same bits.
+//
+//go:noescape
+func gemm6x16StridedAvx512(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32)
+
+// conv6x16Avx512 is conv6x16Asm on AVX-512: the same loop, the same bits.
+//
+//go:noescape
+func conv6x16Avx512(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *float32)

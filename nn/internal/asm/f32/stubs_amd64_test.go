@@ -3,8 +3,12 @@
 package f32
 
 import (
+	"fmt"
 	"math"
+	"math/rand/v2"
 	"testing"
+
+	"github.com/apportion/apportion/internal/cpupeak"
 
 	"github.com/stretchr/testify/require"
 )
@@ -41,4 +45,112 @@ func TestMaxPool2x2AsmNaN(t *testing.T) {
 			}
 		}
 	}
+}
+
+func TestGemm6x16FormsMatchLoop(t *testing.T) {
+	// Both assembly forms of the packed tile, AVX2 (gemm6x16Asm) and
+	// AVX-512 (gemm6x16Avx512), each called directly whichever one Gemm6x16
+	// dispatches to, store the bits of the loop: one chain of fused
+	// multiply-adds per element in the order of p (IEEE 754-2008 fusedMultiplyAdd,
+	// emulated exactly by the loop; TestGemmLoopsMatchExactChains checks
+	// the loop against math/big).
+	if !useAsm {
+		t.Skip("no AVX2 and FMA on this CPU")
+	}
+	rng := rand.New(rand.NewPCG(5, 6))
+	for _, tc := range tileCases() {
+		kc := tc.kc
+		a, b := randFloats(rng, 6*kc), randFloats(rng, 16*kc)
+		const ldc = 19
+		c0 := randFloats(rng, 6*ldc)
+		want := append([]float32(nil), c0...)
+		gemm6x16(kc, &a[0], &b[0], &want[0], ldc, tc.alpha, tc.beta)
+		got := append([]float32(nil), c0...)
+		gemm6x16Asm(kc, &a[0], &b[0], &got[0], ldc, tc.alpha, tc.beta)
+		requireBits(t, want, got, "AVX2 kc=%d alpha=%v beta=%v", kc, tc.alpha, tc.beta)
+		if !useAVX512 {
+			continue
+		}
+		got = append([]float32(nil), c0...)
+		gemm6x16Avx512(kc, &a[0], &b[0], &got[0], ldc, tc.alpha, tc.beta)
+		requireBits(t, want, got, "AVX-512 kc=%d alpha=%v beta=%v", kc, tc.alpha, tc.beta)
+	}
+}
+
+func TestGemm6x16StridedFormsMatchLoop(t *testing.T) {
+	// The strided tile in both assembly forms, A read in place by rows
+	// (rs = lda, ps = 1) and by columns (rs = 1, ps = lda), stores the
+	// bits of its loop (see TestGemm6x16FormsMatchLoop).
+	if !useAsm {
+		t.Skip("no AVX2 and FMA on this CPU")
+	}
+	rng := rand.New(rand.NewPCG(7, 8))
+	for _, tc := range tileCases() {
+		kc := tc.kc
+		b := randFloats(rng, 16*kc)
+		const ldc = 17
+		c0 := randFloats(rng, 6*ldc)
+		for _, layout := range []struct{ rs, ps, n int }{{kc + 3, 1, 6 * (kc + 3)}, {1, 9, 9 * kc}} {
+			a := randFloats(rng, layout.n)
+			want := append([]float32(nil), c0...)
+			gemm6x16Strided(kc, &a[0], layout.rs, layout.ps, &b[0], &want[0], ldc, tc.alpha, tc.beta)
+			got := append([]float32(nil), c0...)
+			gemm6x16StridedAsm(kc, &a[0], layout.rs, layout.ps, &b[0], &got[0], ldc, tc.alpha, tc.beta)
+			requireBits(t, want, got, "AVX2 kc=%d rs=%d alpha=%v beta=%v", kc, layout.rs, tc.alpha, tc.beta)
+			if !useAVX512 {
+				continue
+			}
+			got = append([]float32(nil), c0...)
+			gemm6x16StridedAvx512(kc, &a[0], layout.rs, layout.ps, &b[0], &got[0], ldc, tc.alpha, tc.beta)
+			requireBits(t, want, got, "AVX-512 kc=%d rs=%d alpha=%v beta=%v", kc, layout.rs, tc.alpha, tc.beta)
+		}
+	}
+}
+
+// BenchmarkGemm6x16Forms times the AVX2 and AVX-512 forms of the packed
+// tile side by side on panels that stay in L1, at the k depths of the
+// models' products; the dispatch prefers AVX-512 because it measures faster.
+func BenchmarkGemm6x16Forms(b *testing.B) {
+	if !useAVX512 {
+		b.Skip("no AVX-512 on this CPU")
+	}
+	rng := rand.New(rand.NewPCG(11, 12))
+	for _, kc := range []int{30, 64, 256} {
+		a := randFloats(rng, 6*kc)
+		p := randFloats(rng, 16*kc)
+		var c [6 * 16]float32
+		for _, f := range []struct {
+			name string
+			fn   func(kc int, a, b, c *float32, ldc int, alpha, beta float32)
+		}{{"avx2", gemm6x16Asm}, {"avx512", gemm6x16Avx512},
+			{"avx2-strided", func(kc int, a, b, c *float32, ldc int, alpha, beta float32) {
+				gemm6x16StridedAsm(kc, a, 1, 6, b, c, ldc, alpha, beta)
+			}},
+			{"avx512-strided", func(kc int, a, b, c *float32, ldc int, alpha, beta float32) {
+				gemm6x16StridedAvx512(kc, a, 1, 6, b, c, ldc, alpha, beta)
+			}}} {
+			b.Run(fmt.Sprintf("kc=%d/%s", kc, f.name), func(b *testing.B) {
+				cpupeak.Bench(b, 2*float64(6*16*kc), func() { f.fn(kc, &a[0], &p[0], &c[0], 16, 1, 1) })
+			})
+		}
+	}
+}
+
+// convForm is one implementation of the convolution tile.
+type convForm struct {
+	name string
+	fn   func(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *float32)
+}
+
+// convForms are the convolution tile's dispatch and each assembly form
+// this CPU runs, called directly whichever one Conv6x16 picks.
+func convForms() []convForm {
+	forms := []convForm{{"Conv6x16", Conv6x16}}
+	if useAsm {
+		forms = append(forms, convForm{"AVX2", conv6x16Asm})
+	}
+	if useAVX512 {
+		forms = append(forms, convForm{"AVX-512", conv6x16Avx512})
+	}
+	return forms
 }

@@ -245,10 +245,11 @@ func TestGemm6x16EdgeBitsAndBounds(t *testing.T) {
 }
 
 func TestConv6x16MatchesLoop(t *testing.T) {
-	// Conv6x16 against its loop, rows of B at scattered offsets, with and
-	// without the bias; c past the 16 columns is never written.
+	// Conv6x16 and each assembly form this CPU runs (AVX2, AVX-512) against
+	// the loop, rows of B at scattered offsets, with and without the bias;
+	// c past the 16 columns is never written.
 	rng := rand.New(rand.NewPCG(7, 8))
-	for _, kc := range []int{1, 2, 5, 27, 144} {
+	for _, kc := range []int{1, 2, 3, 4, 5, 27, 144} {
 		a := randFloats(rng, 6*kc)
 		b := randFloats(rng, 400)
 		off := make([]int32, kc)
@@ -258,13 +259,19 @@ func TestConv6x16MatchesLoop(t *testing.T) {
 		bias := randFloats(rng, 6)
 		for _, bp := range []*float32{nil, &bias[0]} {
 			const ldc = 20
-			got, want := make([]float32, 6*ldc), make([]float32, 6*ldc)
-			for i := range got {
-				got[i], want[i] = float32(math.NaN()), float32(math.NaN())
+			want := make([]float32, 6*ldc)
+			for i := range want {
+				want[i] = float32(math.NaN())
 			}
-			Conv6x16(kc, &a[0], &b[0], &off[0], &got[0], ldc, bp)
 			conv6x16(kc, &a[0], &b[0], &off[0], &want[0], ldc, bp)
-			requireBits(t, want, got, "kc=%d bias=%t", kc, bp != nil)
+			for _, f := range convForms() {
+				got := make([]float32, 6*ldc)
+				for i := range got {
+					got[i] = float32(math.NaN())
+				}
+				f.fn(kc, &a[0], &b[0], &off[0], &got[0], ldc, bp)
+				requireBits(t, want, got, "%s kc=%d bias=%t", f.name, kc, bp != nil)
+			}
 		}
 	}
 }

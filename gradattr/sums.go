@@ -1,0 +1,77 @@
+package gradattr
+
+import "context"
+
+// GradientSummer is a Model that returns weighted sums of input gradients
+// without the gradients themselves, which lets it form them more cheaply:
+// nn's Head pulls the sum back through the affine layers the input meets
+// first once, instead of once per point. Integrated gradients by
+// quadrature and SmoothGrad's mean use it when the model offers it; the
+// sums then round as the model forms them, not point by point.
+type GradientSummer interface {
+	// GradientSum returns the outputs of the n samples in x (n·OutputSize
+	// values) and Σ_i weight[i]·∂out[i, target]/∂x[i].
+	GradientSum(ctx context.Context, x []float64, n int, weight []float64, target int) (out, sum []float64, err error)
+	// PathGradientSum is GradientSum at the points
+	// from + alpha[i]·(to − from), i < len(alpha).
+	PathGradientSum(ctx context.Context, from, to, alpha, weight []float64, target int) (out, sum []float64, err error)
+}
+
+// sumChunk is the most points a method sends to a GradientSummer in one
+// call: a fixed count, not the batch size, so that results do not depend
+// on the batch size.
+const sumChunk = 4096
+
+// summer returns the model as a GradientSummer, or nil.
+func (e *engine) summer() GradientSummer {
+	s, _ := e.m.(GradientSummer)
+	return s
+}
+
+// pathSum adds to dst the weighted sum of the target's input gradients at
+// the points from + alpha[i]·(x − from).
+func (e *engine) pathSum(s GradientSummer, from, alpha, weight, dst []float64) error {
+	return e.sumChunks("PathGradientSum", len(alpha), dst, func(lo, hi int) ([]float64, []float64, error) {
+		return s.PathGradientSum(e.ctx, from, e.x, alpha[lo:hi], weight[lo:hi], e.target)
+	})
+}
+
+// pointSum adds to dst the weighted sum of the target's input gradients at
+// n points, fill(i, p) writing point i.
+func (e *engine) pointSum(s GradientSummer, n int, fill func(i int, dst []float64), weight, dst []float64) error {
+	buf := make([]float64, min(n, sumChunk)*e.size)
+	return e.sumChunks("GradientSum", n, dst, func(lo, hi int) ([]float64, []float64, error) {
+		x := buf[:(hi-lo)*e.size]
+		for i := lo; i < hi; i++ {
+			fill(i, x[(i-lo)*e.size:(i-lo+1)*e.size])
+		}
+		return s.GradientSum(e.ctx, x, hi-lo, weight[lo:hi], e.target)
+	})
+}
+
+// sumChunks makes the sum calls of n points, at most sumChunk a call,
+// adds their sums to dst and counts n gradient evaluations.
+func (e *engine) sumChunks(what string, n int, dst []float64, sum func(lo, hi int) (out, sum []float64, err error)) error {
+	for lo := 0; lo < n; lo += sumChunk {
+		hi := min(lo+sumChunk, n)
+		var out, s []float64
+		err := e.call(what, func() (err error) {
+			out, s, err = sum(lo, hi)
+			return err
+		})
+		if err != nil {
+			return err
+		}
+		e.cost.GradientEvals += hi - lo
+		if err := checkReturned(what+" outputs", out, e.nout, hi-lo); err != nil {
+			return err
+		}
+		if err := checkReturned(what, s, e.size, 1); err != nil {
+			return err
+		}
+		for i, v := range s {
+			dst[i] += v
+		}
+	}
+	return nil
+}

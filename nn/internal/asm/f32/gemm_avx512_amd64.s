@@ -1,0 +1,223 @@
+//go:build amd64 && !purego
+
+#include "textflag.h"
+
+// The AVX-512 form of the 6×16 tile: row r of the tile lives in one ZMM
+// register, Z(r), a row of B in Z12, and each element of A is broadcast
+// from memory into its fused multiply-add. Each element of C is the chain
+// of fused multiply-adds of gemm6x16Asm, in the same order, so the two
+// store the same bits.
+
+// FMAZ6x16 adds the outer product of one 16-float row of B and one 6-float
+// column of A (a0..a5) to the tile, one fused multiply-add per element.
+#define FMAZ6x16(b, a0, a1, a2, a3, a4, a5) \
+	VMOVUPS b, Z12; \
+	VFMADD231PS.BCST a0, Z12, Z0; VFMADD231PS.BCST a1, Z12, Z1; VFMADD231PS.BCST a2, Z12, Z2; \
+	VFMADD231PS.BCST a3, Z12, Z3; VFMADD231PS.BCST a4, Z12, Z4; VFMADD231PS.BCST a5, Z12, Z5
+
+// EPILOGUEZ scales the tile by alpha (skipped when alpha == 1) and stores
+// it at DX, rows R8 bytes apart, adding beta times the old rows when beta
+// is not 0, one fused multiply-add per element as ACC2 does.
+#define EPILOGUEZ(alphaOff, betaOff) \
+	MOVL alphaOff(FP), AX; \
+	CMPL AX, $0x3f800000; \
+	JEQ zscaled; \
+	VBROADCASTSS alphaOff(FP), Z14; \
+	VMULPS Z14, Z0, Z0; VMULPS Z14, Z1, Z1; VMULPS Z14, Z2, Z2; \
+	VMULPS Z14, Z3, Z3; VMULPS Z14, Z4, Z4; VMULPS Z14, Z5, Z5; \
+zscaled: \
+	VXORPS X13, X13, X13; \
+	MOVSS betaOff(FP), X15; \
+	UCOMISS X13, X15; \
+	JNE zaccumulate; \
+	JP zaccumulate; \
+	VMOVUPS Z0, (DX); ADDQ R8, DX; VMOVUPS Z1, (DX); ADDQ R8, DX; VMOVUPS Z2, (DX); ADDQ R8, DX; \
+	VMOVUPS Z3, (DX); ADDQ R8, DX; VMOVUPS Z4, (DX); ADDQ R8, DX; VMOVUPS Z5, (DX); \
+	VZEROUPPER; \
+	RET; \
+zaccumulate: \
+	VBROADCASTSS betaOff(FP), Z15; \
+	VMOVUPS (DX), Z12; VFMADD231PS Z15, Z12, Z0; VMOVUPS Z0, (DX); ADDQ R8, DX; \
+	VMOVUPS (DX), Z12; VFMADD231PS Z15, Z12, Z1; VMOVUPS Z1, (DX); ADDQ R8, DX; \
+	VMOVUPS (DX), Z12; VFMADD231PS Z15, Z12, Z2; VMOVUPS Z2, (DX); ADDQ R8, DX; \
+	VMOVUPS (DX), Z12; VFMADD231PS Z15, Z12, Z3; VMOVUPS Z3, (DX); ADDQ R8, DX; \
+	VMOVUPS (DX), Z12; VFMADD231PS Z15, Z12, Z4; VMOVUPS Z4, (DX); ADDQ R8, DX; \
+	VMOVUPS (DX), Z12; VFMADD231PS Z15, Z12, Z5; VMOVUPS Z5, (DX); \
+	VZEROUPPER; \
+	RET
+
+// func gemm6x16Avx512(kc int, a, b, c *float32, ldc int, alpha, beta float32)
+//
+// gemm6x16Asm on AVX-512: the same arguments, chains and epilogue.
+TEXT ·gemm6x16Avx512(SB), NOSPLIT, $0-48
+	MOVQ kc+0(FP), CX
+	MOVQ a+8(FP), SI
+	MOVQ b+16(FP), DI
+	MOVQ c+24(FP), DX
+	MOVQ ldc+32(FP), R8
+	SHLQ $2, R8
+	VPXORD Z0, Z0, Z0
+	VPXORD Z1, Z1, Z1
+	VPXORD Z2, Z2, Z2
+	VPXORD Z3, Z3, Z3
+	VPXORD Z4, Z4, Z4
+	VPXORD Z5, Z5, Z5
+	MOVQ CX, BX
+	ANDQ $3, BX
+	SHRQ $2, CX
+	JZ tail
+
+loop4:
+	FMAZ6x16(0(DI), 0(SI), 4(SI), 8(SI), 12(SI), 16(SI), 20(SI))
+	FMAZ6x16(64(DI), 24(SI), 28(SI), 32(SI), 36(SI), 40(SI), 44(SI))
+	FMAZ6x16(128(DI), 48(SI), 52(SI), 56(SI), 60(SI), 64(SI), 68(SI))
+	FMAZ6x16(192(DI), 72(SI), 76(SI), 80(SI), 84(SI), 88(SI), 92(SI))
+	ADDQ $96, SI
+	ADDQ $256, DI
+	DECQ CX
+	JNZ loop4
+
+tail:
+	TESTQ BX, BX
+	JZ done
+
+loop1:
+	FMAZ6x16(0(DI), 0(SI), 4(SI), 8(SI), 12(SI), 16(SI), 20(SI))
+	ADDQ $24, SI
+	ADDQ $64, DI
+	DECQ BX
+	JNZ loop1
+
+done:
+	EPILOGUEZ(alpha+40, beta+44)
+
+// func gemm6x16StridedAvx512(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha, beta float32)
+//
+// gemm6x16StridedAsm on AVX-512: element (r, p) of A broadcast from
+// a[r·rs + p·ps]; the same chains and epilogue as gemm6x16Avx512.
+TEXT ·gemm6x16StridedAvx512(SB), NOSPLIT, $0-64
+	MOVQ kc+0(FP), CX
+	MOVQ a+8(FP), SI
+	MOVQ rs+16(FP), R9
+	SHLQ $2, R9
+	LEAQ (R9)(R9*2), R10
+	LEAQ (R9)(R9*4), R11
+	MOVQ ps+24(FP), R12
+	SHLQ $2, R12
+	MOVQ b+32(FP), DI
+	MOVQ c+40(FP), DX
+	MOVQ ldc+48(FP), R8
+	SHLQ $2, R8
+	VPXORD Z0, Z0, Z0
+	VPXORD Z1, Z1, Z1
+	VPXORD Z2, Z2, Z2
+	VPXORD Z3, Z3, Z3
+	VPXORD Z4, Z4, Z4
+	VPXORD Z5, Z5, Z5
+	MOVQ CX, BX
+	ANDQ $3, BX
+	SHRQ $2, CX
+	JZ stail
+
+sloop4:
+	FMAZ6x16(0(DI), (SI), (SI)(R9*1), (SI)(R9*2), (SI)(R10*1), (SI)(R9*4), (SI)(R11*1))
+	ADDQ R12, SI
+	FMAZ6x16(64(DI), (SI), (SI)(R9*1), (SI)(R9*2), (SI)(R10*1), (SI)(R9*4), (SI)(R11*1))
+	ADDQ R12, SI
+	FMAZ6x16(128(DI), (SI), (SI)(R9*1), (SI)(R9*2), (SI)(R10*1), (SI)(R9*4), (SI)(R11*1))
+	ADDQ R12, SI
+	FMAZ6x16(192(DI), (SI), (SI)(R9*1), (SI)(R9*2), (SI)(R10*1), (SI)(R9*4), (SI)(R11*1))
+	ADDQ R12, SI
+	ADDQ $256, DI
+	DECQ CX
+	JNZ sloop4
+
+stail:
+	TESTQ BX, BX
+	JZ sdone
+
+sloop1:
+	FMAZ6x16(0(DI), (SI), (SI)(R9*1), (SI)(R9*2), (SI)(R10*1), (SI)(R9*4), (SI)(R11*1))
+	ADDQ R12, SI
+	ADDQ $64, DI
+	DECQ BX
+	JNZ sloop1
+
+sdone:
+	EPILOGUEZ(alpha+56, beta+60)
+
+// func conv6x16Avx512(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *float32)
+//
+// conv6x16Asm (conv_amd64.s) on AVX-512: row p of B read in place at
+// b[off[p]], the chains of gemm6x16Avx512, and the same store of T + bias
+// (one rounding) or T.
+TEXT ·conv6x16Avx512(SB), NOSPLIT, $0-56
+	MOVQ kc+0(FP), CX
+	MOVQ a+8(FP), SI
+	MOVQ b+16(FP), DI
+	MOVQ off+24(FP), R9
+	MOVQ c+32(FP), DX
+	MOVQ ldc+40(FP), R8
+	SHLQ $2, R8
+	VPXORD Z0, Z0, Z0
+	VPXORD Z1, Z1, Z1
+	VPXORD Z2, Z2, Z2
+	VPXORD Z3, Z3, Z3
+	VPXORD Z4, Z4, Z4
+	VPXORD Z5, Z5, Z5
+	MOVQ CX, BX
+	ANDQ $3, BX
+	SHRQ $2, CX
+	JZ ktail
+
+kloop4:
+	MOVLQSX 0(R9), AX
+	FMAZ6x16((DI)(AX*4), 0(SI), 4(SI), 8(SI), 12(SI), 16(SI), 20(SI))
+	MOVLQSX 4(R9), AX
+	FMAZ6x16((DI)(AX*4), 24(SI), 28(SI), 32(SI), 36(SI), 40(SI), 44(SI))
+	MOVLQSX 8(R9), AX
+	FMAZ6x16((DI)(AX*4), 48(SI), 52(SI), 56(SI), 60(SI), 64(SI), 68(SI))
+	MOVLQSX 12(R9), AX
+	FMAZ6x16((DI)(AX*4), 72(SI), 76(SI), 80(SI), 84(SI), 88(SI), 92(SI))
+	ADDQ $96, SI
+	ADDQ $16, R9
+	DECQ CX
+	JNZ kloop4
+
+ktail:
+	TESTQ BX, BX
+	JZ kstore
+
+kloop1:
+	MOVLQSX 0(R9), AX
+	FMAZ6x16((DI)(AX*4), 0(SI), 4(SI), 8(SI), 12(SI), 16(SI), 20(SI))
+	ADDQ $24, SI
+	ADDQ $4, R9
+	DECQ BX
+	JNZ kloop1
+
+kstore:
+	MOVQ bias+48(FP), BX
+	TESTQ BX, BX
+	JEQ knobias
+	VADDPS.BCST 0(BX), Z0, Z0
+	VADDPS.BCST 4(BX), Z1, Z1
+	VADDPS.BCST 8(BX), Z2, Z2
+	VADDPS.BCST 12(BX), Z3, Z3
+	VADDPS.BCST 16(BX), Z4, Z4
+	VADDPS.BCST 20(BX), Z5, Z5
+
+knobias:
+	VMOVUPS Z0, (DX)
+	ADDQ R8, DX
+	VMOVUPS Z1, (DX)
+	ADDQ R8, DX
+	VMOVUPS Z2, (DX)
+	ADDQ R8, DX
+	VMOVUPS Z3, (DX)
+	ADDQ R8, DX
+	VMOVUPS Z4, (DX)
+	ADDQ R8, DX
+	VMOVUPS Z5, (DX)
+	VZEROUPPER
+	RET
