@@ -147,6 +147,7 @@ type Settings struct {
 	Seed             uint64  `json:"seed"`
 	Target           int     `json:"target"`
 	Units            int     `json:"units"`
+	Grouped          bool    `json:"grouped"`
 	Steps            int     `json:"steps"`
 	RandomOrders     int     `json:"random_orders"`
 	Draws            int     `json:"draws"`
@@ -280,7 +281,7 @@ func Assess(ctx context.Context, c Config) (*Report, error) {
 		delete(has, MetricRandomization)
 	}
 	rep := &Report{Skipped: []Skipped{}, Metrics: c.Metrics, Settings: Settings{
-		Seed: c.Seed, Target: c.Target, Units: len(u), Steps: steps, RandomOrders: c.RandomOrders,
+		Seed: c.Seed, Target: c.Target, Units: len(u), Grouped: c.Groups != nil, Steps: steps, RandomOrders: c.RandomOrders,
 		Draws: c.Draws, SensitivityDraws: c.SensitivityDraws, Noise: c.Noise, Radius: c.Radius,
 	}}
 	if has[MetricRandomization] {

@@ -372,3 +372,20 @@ func TestAssessSkipsBadSamples(t *testing.T) {
 		t.Errorf("a panicking model: %d scored, %d skipped", rep.Samples, len(rep.Skipped))
 	}
 }
+
+// The interval is mean ± t₀.₉₇₅(n − 1)·s/√n: for 1, 2, 3, 4, 5, s = √2.5
+// and t₀.₉₇₅(4) = 2.776 (Student's t table, to four digits), so the
+// half-width is 2.776·√2.5/√5 = 1.963. NaN and infinite values are left
+// out; one value has no width.
+func TestIntervalStudentT(t *testing.T) {
+	iv := interval([]float64{1, 2, math.NaN(), 3, 4, math.Inf(1), 5})
+	if iv.N != 5 || iv.Mean != 3 || math.Abs(iv.Hi-3-1.963) > 5e-4 || math.Abs(3-iv.Lo-1.963) > 5e-4 {
+		t.Errorf("interval %+v, want 3 ± 1.963 over 5 values", iv)
+	}
+	if one := interval([]float64{2}); one.Lo != 2 || one.Hi != 2 {
+		t.Errorf("one value: %+v", one)
+	}
+	if interval([]float64{math.NaN()}) != nil {
+		t.Error("no finite value: want no interval")
+	}
+}
