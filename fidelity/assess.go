@@ -177,6 +177,8 @@ type MethodScores struct {
 	// Method is the method's canonical name; Title its name in text.
 	Method gradattr.Method `json:"method"`
 	Title  string          `json:"title"`
+	// NotScored says why the method was not run at all ("" when it was).
+	NotScored string `json:"not_scored,omitempty"`
 	// Failed lists the samples the method could not explain.
 	Failed []Skipped `json:"failed,omitempty"`
 
@@ -332,6 +334,9 @@ func Assess(ctx context.Context, c Config) (*Report, error) {
 	scores := make([]MethodScores, len(c.Methods))
 	for k, m := range c.Methods {
 		scores[k] = MethodScores{Method: m, Title: m.Title()}
+		if NeedsReference(m) && c.Reference == nil {
+			scores[k].NotScored = "it needs a reference set"
+		}
 		acc[k].spear = make([][]float64, len(c.Layers))
 		acc[k].ssim = make([][]float64, len(c.Layers))
 	}
@@ -393,6 +398,9 @@ func Assess(ctx context.Context, c Config) (*Report, error) {
 			o := c.Options(m)
 			a := &acc[k]
 			sc := &scores[k]
+			if sc.NotScored != "" {
+				continue
+			}
 			vals := map[string]float64{"del": nan, "ins": nan, "gauss": nan, "base": nan, "sens": nan}
 			fail := func(err error) {
 				sc.Failed = append(sc.Failed, Skipped{Index: i, Error: err.Error()})
@@ -551,6 +559,13 @@ func (c Config) Options(m gradattr.Method) gradattr.Options {
 		o.Baselines = []gradattr.Baseline{{Kind: gradattr.BaselineValues, Values: c.Baseline}}
 	}
 	return o
+}
+
+// NeedsReference reports whether method m cannot run without a reference
+// set: it reads one and has no baseline to use instead (expected
+// gradients).
+func NeedsReference(m gradattr.Method) bool {
+	return m.Reads(gradattr.ParamReference) && !m.Reads(gradattr.ParamBaseline)
 }
 
 // runMethod runs o, recovering a panic of the model.

@@ -51,15 +51,24 @@ type InfidelityOptions struct {
 	Seed, Stream uint64
 }
 
-// Infidelity returns the Monte Carlo estimate of
+// Infidelity returns the Monte Carlo estimate, over opt.Draws
+// perturbations I, of the infidelity of Yeh, Hsieh, Suggala, Inouye &
+// Ravikumar 2019 ("On the (in)fidelity and sensitivity of explanations",
+// §2),
 //
-//	INFD(Φ, f, x) = E_I[(Iᵀ Φ(x) − (f(x) − f(x − I)))²]
+//	INFD(Φ, f, x) = E_I[(Iᵀ Φ(x) − (f(x) − f(x − I)))²],
 //
-// (Yeh, Hsieh, Suggala, Inouye & Ravikumar 2019, "On the (in)fidelity and
-// sensitivity of explanations", §2) over opt.Draws perturbations: how far
-// the attribution's first-order account of the output's change is from
-// the change itself. 0 is perfect; it is in the square of the output's
-// units. With opt.Shares, Φ_i is read per unit of feature i (see
+// with the attribution scaled by its best factor β and divided by the
+// infidelity of the zero attribution:
+//
+//	min_β E[(β Iᵀ Φ − Δ)²] / E[Δ²] = 1 − E[Iᵀ Φ · Δ]² / (E[(Iᵀ Φ)²] E[Δ²]),  Δ = f(x) − f(x − I).
+//
+// β makes methods whose attributions differ only in scale compare (Yeh et
+// al. scale the explanations so in their experiments; from memory), and the
+// division makes it a share: 0 when the attribution's first-order account
+// predicts every change, 1 when it predicts none better than nothing. It
+// is 0 when every Δ is 0 and the account is too, 1 when only one of them
+// is. With opt.Shares, Φ is read per unit of each feature (see
 // InfidelityOptions.Shares).
 func Infidelity(ctx context.Context, m gradattr.Model, x []float64, target int, attr []float64, opt InfidelityOptions) (float64, error) {
 	if err := checkVector("the attribution", attr, len(x)); err != nil {
@@ -95,16 +104,21 @@ func Infidelity(ctx context.Context, m gradattr.Model, x []float64, target int, 
 	if err := e.outputs(opt.Draws, fill, out); err != nil {
 		return 0, err
 	}
-	sum := 0.0
+	var pp, pd, dd float64 // Σ (IᵀΦ)², Σ IᵀΦ·Δ, Σ Δ²
 	for k, in := range perturbations {
-		dot := 0.0
-		for i, v := range in {
-			dot += v * attr[i]
-		}
-		d := dot - (fx - out[k])
-		sum += d * d
+		p := dot(in, attr)
+		d := fx - out[k]
+		pp += p * p
+		pd += p * d
+		dd += d * d
 	}
-	return sum / float64(opt.Draws), nil
+	switch {
+	case dd == 0 && pp == 0:
+		return 0, nil
+	case dd == 0 || pp == 0:
+		return 1, nil
+	}
+	return math.Max(0, 1-pd*pd/(pp*dd)), nil
 }
 
 // perUnit returns attr_i/(x_i − x′_i), 0 where x_i = x′_i.

@@ -1,6 +1,7 @@
 package render
 
 import (
+	"bytes"
 	"fmt"
 	"image"
 	"image/color"
@@ -19,6 +20,20 @@ import (
 // then the randomization test layer by layer and what each column means.
 // title heads the table (the model and the samples).
 func AssessTable(w io.Writer, rep *fidelity.Report, title string) error {
+	var b bytes.Buffer
+	if err := assessTable(&b, rep, title); err != nil {
+		return err
+	}
+	// tabwriter pads the last cells; the lines end at their text.
+	lines := strings.Split(b.String(), "\n")
+	for i, l := range lines {
+		lines[i] = strings.TrimRight(l, " ")
+	}
+	_, err := io.WriteString(w, strings.Join(lines, "\n"))
+	return err
+}
+
+func assessTable(w io.Writer, rep *fidelity.Report, title string) error {
 	has := map[fidelity.Metric]bool{}
 	for _, m := range rep.Metrics {
 		has[m] = true
@@ -145,16 +160,16 @@ func AssessTable(w io.Writer, rep *fidelity.Report, title string) error {
 
 	fmt.Fprintln(w)
 	var notes []string
+	unit := "feature"
+	if st.Grouped {
+		unit = "group"
+	}
 	if has[fidelity.MetricDeletion] || has[fidelity.MetricInsertion] {
-		unit := "feature"
-		if st.Grouped {
-			unit = "group"
-		}
 		notes = append(notes, fmt.Sprintf("deletion, insertion: area under the target output as %s are replaced by the baseline (deletion: lower is better) or put back into it (insertion: higher is better), most positive first, in %s; random order: %d random orders per sample; [k/n]: the samples whose area is below (deletion) or above (insertion) the central 95%% of their random orders'.",
 			Count(st.Units, unit, unit+"s"), Count(st.Steps, "step", "steps"), st.RandomOrders))
 	}
 	if has[fidelity.MetricInfidelity] {
-		notes = append(notes, fmt.Sprintf("infidelity: mean of (Iᵀa − (f(x) − f(x − I)))² over %d perturbations I: Gaussian with σ = %g standard deviations of each feature, or a random half of the units replaced by the baseline (lower is better).", st.Draws, st.Noise))
+		notes = append(notes, fmt.Sprintf("infidelity: mean of (β·Iᵀa − (f(x) − f(x − I)))² over %d perturbations I, with the best factor β, divided by the mean of (f(x) − f(x − I))²: 0 when the attributions predict every change, 1 when no better than none; I Gaussian with σ = %g standard deviations of each feature, or a random half of the %ss replaced by the baseline.", st.Draws, st.Noise, unit))
 	}
 	if has[fidelity.MetricSensitivity] {
 		notes = append(notes, fmt.Sprintf("max-sensitivity: the largest ‖a(y) − a(x)‖ / ‖a(x)‖ over %d points y within %g standard deviations of x (lower is steadier).", st.SensitivityDraws, st.Radius))
@@ -169,6 +184,9 @@ func AssessTable(w io.Writer, rep *fidelity.Report, title string) error {
 		fmt.Fprintln(w, wrap(n, "  ", 100))
 	}
 	for _, s := range rep.Methods {
+		if s.NotScored != "" {
+			fmt.Fprintf(w, "%s not scored: %s.\n", s.Title, s.NotScored)
+		}
 		if n := len(s.Failed); n > 0 {
 			fmt.Fprintf(w, "%s failed on %s: sample %d: %s\n", s.Title, Count(n, "sample", "samples"), s.Failed[0].Index, s.Failed[0].Error)
 		}

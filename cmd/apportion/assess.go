@@ -114,6 +114,11 @@ func runAssess(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	if err != nil {
 		return failure(stderr, "assess", err)
 	}
+	for _, s := range rep.Methods {
+		if s.NotScored != "" {
+			fmt.Fprintf(stderr, "apportion assess: %s not scored: %s; give -reference\n", s.Title, s.NotScored)
+		}
+	}
 	for _, s := range rep.Skipped {
 		fmt.Fprintf(stderr, "apportion assess: sample %d skipped: %s\n", s.Index, s.Error)
 	}
