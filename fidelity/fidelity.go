@@ -59,8 +59,6 @@ type evaluator struct {
 	size   int // features per sample
 	nout   int // outputs per sample
 	target int
-	// Forward counts the samples sent through Model.Forward.
-	forward int
 }
 
 func newEvaluator(ctx context.Context, m gradattr.Model, target int) (*evaluator, error) {
@@ -111,7 +109,6 @@ func (e *evaluator) outputs(n int, fill func(i int, dst []float64), dst []float6
 			}
 			return err
 		}
-		e.forward += k
 		if len(out) != k*e.nout {
 			return fmt.Errorf("%w: the model returned %d values for %d samples, want %d", ErrModel, len(out), k, k*e.nout)
 		}

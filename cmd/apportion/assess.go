@@ -158,12 +158,15 @@ func (c *assessConfig) validate() string {
 			return fmt.Sprintf("-patch must be HxW, two whole numbers of pixels such as 4x4, got %q", c.patch)
 		}
 	}
+	if c.config.Steps < 0 {
+		return fmt.Sprintf("-curve-steps must be 0 (one per feature or group) or more, got %d", c.config.Steps)
+	}
 	for _, f := range []struct {
 		name string
 		v    int
-	}{{"-curve-steps", c.config.Steps}, {"-orders", c.config.RandomOrders - 1}, {"-draws", c.config.Draws - 1}, {"-sensitivity-draws", c.config.SensitivityDraws - 1}} {
-		if f.v < 0 {
-			return fmt.Sprintf("%s must be at least %d", f.name, map[bool]int{true: 0, false: 1}[f.name == "-curve-steps"])
+	}{{"-orders", c.config.RandomOrders}, {"-draws", c.config.Draws}, {"-sensitivity-draws", c.config.SensitivityDraws}} {
+		if f.v < 1 {
+			return fmt.Sprintf("%s must be at least 1, got %d", f.name, f.v)
 		}
 	}
 	if !(c.config.Noise > 0) || !(c.config.Radius > 0) {
