@@ -268,6 +268,11 @@ func Assess(ctx context.Context, c Config) (*Report, error) {
 			return nil, err
 		}
 	}
+	for k, r := range c.Reference {
+		if err := checkVector(fmt.Sprintf("reference sample %d", k), r, size); err != nil {
+			return nil, err
+		}
+	}
 	if c.Target != gradattr.TargetTop && (c.Target < 0 || c.Target >= nout) {
 		return nil, fmt.Errorf("%w: target %d, the model has outputs 0..%d", ErrInput, c.Target, nout-1)
 	}

@@ -375,6 +375,12 @@ func TestAssessSkipsBadSamples(t *testing.T) {
 		t.Errorf("expected gradients without a reference set: %+v, want not scored", eg)
 	}
 
+	bad := cfg
+	bad.Reference = [][]float64{{1, 2, 3}, {1, 2}}
+	if _, err := Assess(context.Background(), bad); !errors.Is(err, ErrInput) {
+		t.Errorf("a reference sample of the wrong size: %v, want ErrInput", err)
+	}
+
 	panicky := bumpy(3)
 	panicky.F = func(out, x []float64) { panic("broken") }
 	cfg.Model = panicky
