@@ -400,7 +400,7 @@ func AssessPNG(w io.Writer, rep *fidelity.Report, title string) error {
 	}
 	width := max(x-assessGap+pngMargin, minTextWidth)
 	legendTop := top + assessPanelH + tickLen + 4*pngLine
-	rows := (len(rep.Methods) + 1 + 3) / 4
+	rows := (len(rep.Methods) + 3) / 4 // the random orders close the last row
 	height := legendTop + rows*pngLine + pngLine + pngMargin
 	c := newCanvas(width, height, face)
 	c.writeLines(lines)
