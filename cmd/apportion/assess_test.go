@@ -20,10 +20,23 @@ import (
 // pumps demo's first 20 held-out pumps the model classes failing
 // (demo/data/README.md: 101 failing pumps held out), with one row for the
 // random orders, and prints no progress when standard error is not a
-// terminal.
+// terminal. The README shows what it prints, the tables without the notes
+// below them.
 func TestAssessDemoNoFlags(t *testing.T) {
 	code, out, errOut := cli(t, "assess")
 	require.Equal(t, exitOK, code, errOut)
+	t.Run("README", func(t *testing.T) {
+		skipUnlessRecordedKernels(t, "the README's tables were")
+		raw, err := os.ReadFile("../../README.md")
+		require.NoError(t, err)
+		const start = "```text\n$ apportion assess\n"
+		readme := string(raw)
+		i := strings.Index(readme, start)
+		require.GreaterOrEqual(t, i, 0, "the README shows assess's output")
+		block := readme[i+len(start):]
+		block = block[:strings.Index(block, "```")]
+		assert.True(t, strings.HasPrefix(out, block), "the README shows\n%s\nassess prints\n%s", block, out)
+	})
 	assert.Contains(t, out, "demo:pumps.onnx on demo:pumps_test.csv, the samples classed failing")
 	assert.Contains(t, out, "20 samples scored")
 	for _, m := range gradattr.Methods() {

@@ -52,20 +52,3 @@ func TestReadmeCurl(t *testing.T) {
 	delta := e.Outputs[*e.Target] - e.BaselineOutputs[*e.Target]
 	assert.InDelta(t, delta, sum(e.Attributions), e.Completeness.Tolerance*math.Abs(delta))
 }
-
-// TestReadmeAssess checks that the README shows what assess prints on the
-// pumps demo today, the tables without the notes below them.
-func TestReadmeAssess(t *testing.T) {
-	skipUnlessRecordedKernels(t, "the README's tables were")
-	raw, err := os.ReadFile("../../README.md")
-	require.NoError(t, err)
-	const start = "```text\n$ apportion assess\n"
-	readme := string(raw)
-	i := strings.Index(readme, start)
-	require.GreaterOrEqual(t, i, 0, "the README shows assess's output")
-	block := readme[i+len(start):]
-	block = block[:strings.Index(block, "```")]
-	code, out, errs := cli(t, "assess")
-	require.Equal(t, exitOK, code, errs)
-	assert.True(t, strings.HasPrefix(out, block), "the README shows\n%s\nassess prints\n%s", block, out)
-}
