@@ -407,7 +407,8 @@ func AssessPNG(w io.Writer, rep *fidelity.Report, title string) error {
 	for _, p := range panels {
 		p.draw(c)
 	}
-	grey := colorMixed
+	// Lighter than Dark2's own grey, the eighth method's colour.
+	grey := colorFrame
 	k := 0
 	if rep.Fractions != nil {
 		if rep.Random != nil {
