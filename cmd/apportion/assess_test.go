@@ -27,14 +27,7 @@ func TestAssessDemoNoFlags(t *testing.T) {
 	require.Equal(t, exitOK, code, errOut)
 	t.Run("README", func(t *testing.T) {
 		skipUnlessRecordedKernels(t, "the README's tables were")
-		raw, err := os.ReadFile("../../README.md")
-		require.NoError(t, err)
-		const start = "```text\n$ apportion assess\n"
-		readme := string(raw)
-		i := strings.Index(readme, start)
-		require.GreaterOrEqual(t, i, 0, "the README shows assess's output")
-		block := readme[i+len(start):]
-		block = block[:strings.Index(block, "```")]
+		block := readmeBlock(t, "$ apportion assess")
 		assert.True(t, strings.HasPrefix(out, block), "the README shows\n%s\nassess prints\n%s", block, out)
 	})
 	assert.Contains(t, out, "demo:pumps.onnx on demo:pumps_test.csv, the samples classed failing")
