@@ -10,10 +10,16 @@ answer per line on stdout:
   {"cmd": "check", "model": M, "n": N}             -> outputs and input gradients
   {"cmd": "time", "model": M, "task": T, "iters": K, "samples": S}
                                                    -> seconds for K calls
+  {"cmd": "forward", "path": P, "n": N}            -> outputs of N input rows
+  {"cmd": "rows", "path": P, "rows": R, "batch": B, "iters": K}
+                                                   -> seconds for K times R rows
+                                                      forward, B per call
 
 Tasks are the ones bench/compare times on the Go side: predict, gradient,
 ig64 (one batched pass of 64 trapezoid points), smoothgrad50 (one batched
-pass of 50 noisy copies) and ig64x (ig64 for each of S samples in turn).
+pass of 50 noisy copies) and ig64x (ig64 for each of S samples in turn). "forward" and "rows" load any
+model file of the same operators plus Sub and Div by a constant and
+Softmax (the demo models): the forward-only table of bench/compare.
 
 Run with Debian's interpreter: /usr/bin/python3 bench/torch_side.py --threads 1
 """
@@ -43,8 +49,21 @@ def attr(node, name, default=None):
     return default
 
 
+class Constant(nn.Module):
+    """x − c or x / c for a constant c (ONNX Sub and Div with an initializer)."""
+
+    def __init__(self, op, c):
+        super().__init__()
+        self.op = op
+        self.register_buffer("c", torch.from_numpy(c.copy()))
+
+    def forward(self, x):
+        return x - self.c if self.op == "Sub" else x / self.c
+
+
 def build(path):
-    """Rebuild the ONNX graph (a chain of Conv/Relu/MaxPool/Flatten/Gemm) as nn.Sequential."""
+    """Rebuild the ONNX graph (a chain of Sub/Div by constants, Conv, Relu,
+    MaxPool, Flatten, Gemm, Softmax) as nn.Sequential."""
     m = onnx.load(path)
     inits = {t.name: onnx.numpy_helper.to_array(t) for t in m.graph.initializer}
     layers = []
@@ -62,6 +81,10 @@ def build(path):
             layers.append(conv)
         elif op == "Relu":
             layers.append(nn.ReLU())
+        elif op in ("Sub", "Div"):
+            layers.append(Constant(op, inits[node.input[1]]))
+        elif op == "Softmax":
+            layers.append(nn.Softmax(dim=attr(node, "axis", -1)))
         elif op == "MaxPool":
             k = attr(node, "kernel_shape")
             s = attr(node, "strides", k)
@@ -70,9 +93,11 @@ def build(path):
             assert attr(node, "axis", 1) == 1
             layers.append(nn.Flatten())
         elif op == "Gemm":
-            assert attr(node, "transB", 0) == 1 and attr(node, "transA", 0) == 0
+            assert attr(node, "transA", 0) == 0
             assert attr(node, "alpha", 1.0) == 1.0 and attr(node, "beta", 1.0) == 1.0
             w = inits[node.input[1]]
+            if attr(node, "transB", 0) == 0:  # B is (in, out); Linear keeps (out, in)
+                w = w.T
             b = inits[node.input[2]]
             lin = nn.Linear(w.shape[1], w.shape[0])
             lin.weight.data = torch.from_numpy(w.copy())
@@ -137,9 +162,38 @@ class Side:
         self.warm = set()
 
     def model(self, name):
-        if name not in self.models:
-            self.models[name] = build(os.path.join(self.dir, name + ".onnx"))
-        return self.models[name]
+        return self.file(os.path.join(self.dir, name + ".onnx"))
+
+    def file(self, path):
+        if path not in self.models:
+            self.models[path] = build(path)
+        return self.models[path]
+
+    def forward(self, req):
+        model, shape = self.file(req["path"])
+        with torch.no_grad():
+            out = model(bench_input(shape, req.get("n", 1)))
+        return {"out": out.flatten().tolist()}
+
+    def rows(self, req):
+        """Forward passes of req["rows"] rows in batches of req["batch"],
+        req["iters"] times: the model cost of a forward-only method."""
+        model, shape = self.file(req["path"])
+        total, batch = req["rows"], req["batch"]
+        x = bench_input(shape, min(batch, total))
+
+        def call():
+            with torch.no_grad():
+                for lo in range(0, total, batch):
+                    model(x[:min(batch, total - lo)])
+        key = (req["path"], total, batch)
+        if key not in self.warm:
+            call()
+            self.warm.add(key)
+        t0 = time.perf_counter()
+        for _ in range(req["iters"]):
+            call()
+        return {"seconds": time.perf_counter() - t0}
 
     def check(self, req):
         model, shape = self.model(req["model"])
@@ -213,6 +267,10 @@ def main():
                 resp = side.check(req)
             elif cmd == "time":
                 resp = side.time(req)
+            elif cmd == "forward":
+                resp = side.forward(req)
+            elif cmd == "rows":
+                resp = side.rows(req)
             else:
                 raise ValueError("unknown cmd %r" % cmd)
         except Exception as e:  # report, keep serving

@@ -38,8 +38,9 @@ func TestFLOPsClosedForm(t *testing.T) {
 		"cnn-s": 2 * (convMACs(8, 28, 28, 1, 3) + convMACs(16, 14, 14, 8, 3) + 16*7*7*10),
 		"cnn-m": 2 * (convMACs(16, 32, 32, 3, 3) + convMACs(16, 32, 32, 16, 3) +
 			convMACs(32, 16, 16, 16, 3) + convMACs(32, 16, 16, 32, 3) + 32*8*8*10),
+		"mlp-12": 2 * (12*64 + 64*64 + 64*3),
 	}
-	for _, s := range Zoo {
+	for _, s := range All {
 		m, err := Build(s)
 		require.NoError(t, err, s.Name)
 		got, err := FLOPs(m, s.Input)
@@ -66,7 +67,7 @@ func TestInputFormula(t *testing.T) {
 // the bytes Build and onnxlite.Encode give today (the weights are seeded;
 // the files are what the PyTorch side loads).
 func TestZooFilesUpToDate(t *testing.T) {
-	for _, s := range Zoo {
+	for _, s := range All {
 		m, err := Build(s)
 		require.NoError(t, err)
 		var a, b bytes.Buffer

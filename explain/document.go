@@ -46,7 +46,8 @@ func (n Numbers) MarshalJSON() ([]byte, error) {
 //	              "reference" (the reference set's name)},
 //	 "explanations": [{"index", "target", "outputs", "attributions",
 //	                   "shape", "baseline_outputs", "completeness",
-//	                   "points", "error", "groups",
+//	                   "points", "error", "groups", "standard_errors",
+//	                   "estimator", "fidelity", "intercept",
 //	                   "warnings": [{"code", "message", "suggest"}]}]}
 //
 // A failed sample has "error" and null results.
@@ -77,9 +78,17 @@ type ExplanationDocument struct {
 	// Points is the number of gradient evaluations spent.
 	Points int     `json:"points"`
 	Error  *string `json:"error"`
-	// Groups is present with feature groups: the attributions summed per
-	// group.
+	// Groups is present with feature groups: the attributions per group.
 	Groups *gradattr.GroupedResult `json:"groups,omitempty"`
+	// StandardErrors holds the standard error of each attribution, for
+	// the sampled estimators of Shapley values.
+	StandardErrors *Numbers `json:"standard_errors,omitempty"`
+	// Estimator is the estimator of Shapley values that ran (the one
+	// "auto" chose).
+	Estimator string `json:"estimator,omitempty"`
+	// Fidelity and Intercept describe the local surrogate's fit.
+	Fidelity  *float64 `json:"fidelity,omitempty"`
+	Intercept *float64 `json:"intercept,omitempty"`
 	// Warnings are the result's warnings, [] for none.
 	Warnings []Warning `json:"warnings"`
 }
@@ -116,6 +125,15 @@ func (r *Report) Document() *Document {
 			j.Completeness = res.Completeness
 			j.Points = res.Cost.GradientEvals
 			j.Groups = e.Grouped
+			if res.StandardErrors != nil {
+				j.StandardErrors = &Numbers{Values: res.StandardErrors, Bits: 64}
+			}
+			if res.Settings.Method == gradattr.MethodShapley {
+				j.Estimator = res.Settings.Estimator
+			}
+			if fit := res.Surrogate; fit != nil {
+				j.Fidelity, j.Intercept = &fit.Fidelity, &fit.Intercept
+			}
 			if e.Warnings != nil {
 				j.Warnings = e.Warnings
 			}

@@ -155,6 +155,48 @@ func TestPredictBackendRelu(t *testing.T) {
 	assert.NotContains(t, string(raw), m.SHA256)
 }
 
+func TestSettingsPerturbationFields(t *testing.T) {
+	// The settings of Shapley values, the surrogate, occlusion and the
+	// groups read from the surfaces' text (common practice: HxW for a size
+	// in pixels, height first, as image shapes are written).
+	s := explain.Defaults()
+	for f, text := range map[explain.Field]string{
+		explain.FieldMethod: "occlusion", explain.FieldWindow: "3x5", explain.FieldStride: "2",
+	} {
+		require.NoError(t, s.Set(f, text), f)
+	}
+	assert.Equal(t, [2]int{3, 5}, s.Window)
+	assert.Equal(t, 2, s.Stride)
+	assert.NoError(t, s.Check())
+	require.NoError(t, s.Set(explain.FieldPatch, "8X8"))
+	assert.Equal(t, [2]int{8, 8}, s.Patch)
+
+	s = explain.Defaults()
+	for f, text := range map[explain.Field]string{
+		explain.FieldMethod: "shapley", explain.FieldReferenceRows: "50", explain.FieldEstimator: "permutation",
+		explain.FieldCoalitions: "300", explain.FieldSuperpixels: "20", explain.FieldCompactness: "15",
+	} {
+		require.NoError(t, s.Set(f, text), f)
+	}
+	assert.Equal(t, 50, s.ReferenceRows)
+	assert.Equal(t, gradattr.EstimatorPermutation, s.Estimator)
+	assert.Equal(t, 300, s.Coalitions)
+	assert.Equal(t, 20, s.Superpixels)
+	assert.Equal(t, 15.0, s.Compactness)
+	assert.NoError(t, s.Check())
+
+	var fe *explain.FieldError
+	for f, text := range map[explain.Field]string{
+		explain.FieldWindow: "4", explain.FieldPatch: "0x3", explain.FieldStride: "-1", explain.FieldCoalitions: "many",
+		explain.FieldKernelWidth: "0", explain.FieldEstimator: "kernel", explain.FieldSuperpixels: "0",
+	} {
+		require.ErrorAs(t, s.Set(f, text), &fe, f)
+		assert.Equal(t, f, fe.Field)
+	}
+	_, err := explain.ParseSize("12x")
+	assert.ErrorContains(t, err, `expected a size HxW in pixels, height and width from 1 to 16777216 (like 4x4), got "12x"`)
+}
+
 // explainSoftmax explains the rows of x with the softmax model and the
 // settings s, with the method given.
 func explainSoftmax(t *testing.T, m *explain.Model, s explain.Settings, x ...[]float64) *explain.Report {

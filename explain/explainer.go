@@ -67,14 +67,51 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 	if s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.Kind == gradattr.BaselineBlur && len(e.shape) < 2 {
 		return nil, fieldError(FieldBaseline, " blur needs samples with at least two axes (height, width), got shape ", samples.ShapeString(e.shape))
 	}
-	if s.Groups != nil {
-		if _, err := gradattr.Cover(e.size, s.Groups); err != nil {
-			e := fieldError(FieldGroups, ": ", err)
-			e.Input = true
-			return nil, e
-		}
+	if err := e.groups(); err != nil {
+		return nil, err
 	}
 	return e, nil
+}
+
+// groups checks the settings' groups against the samples, and makes the
+// groups of a patch grid.
+func (e *Explainer) groups() error {
+	s := &e.settings
+	for _, f := range []Field{FieldSuperpixels, FieldPatch} {
+		if s.given[f] && len(e.shape) < 2 {
+			return fieldError(f, " needs samples with at least two axes (height, width), got shape ", samples.ShapeString(e.shape))
+		}
+	}
+	if s.Patch != [2]int{} {
+		if s.Groups != nil {
+			return fieldError(FieldPatch, " and ", FieldGroups, " both make the groups; give one")
+		}
+		var err error
+		if s.Groups, err = gradattr.GridGroups(e.shape, s.Patch[0], s.Patch[1]); err != nil {
+			return fieldError(FieldPatch, ": ", err)
+		}
+	}
+	if s.Superpixels > 0 && s.Groups != nil {
+		return fieldError(FieldSuperpixels, " and ", FieldGroups, " both make the groups; give one")
+	}
+	grouped := s.Groups != nil || s.Superpixels > 0
+	if s.given[FieldWindow] && grouped {
+		return fieldError(FieldWindow, " moves over the image without groups; with groups each group is occluded in turn")
+	}
+	if s.Groups == nil {
+		return nil
+	}
+	cov, err := gradattr.Cover(e.size, s.Groups)
+	if err == nil && s.Method.Perturbs() && !cov.Partition() {
+		err = fmt.Errorf("%s switches groups on and off, so each feature must be in exactly one group; %d features are in none and %d in more than one",
+			s.Method, len(cov.Missing), len(cov.Overlapping))
+	}
+	if err != nil {
+		e := fieldError(FieldGroups, ": ", err)
+		e.Input = true
+		return e
+	}
+	return nil
 }
 
 // options are the method's options for explaining samples of batch (nil
@@ -85,6 +122,9 @@ func (e *Explainer) options(batch *samples.Batch, name func(*Dataset) string) (g
 	o := gradattr.Options{
 		Method: s.Method, Points: s.Steps, Rule: s.Rule, Tolerance: s.Tolerance,
 		Samples: s.Samples, Noise: s.Noise, Seed: s.Seed, Absolute: s.Absolute, Variant: s.Variant,
+		ReferenceRows: s.ReferenceRows, Estimator: s.Estimator, Coalitions: s.Coalitions,
+		KernelWidth: s.KernelWidth, Window: s.Window, Stride: s.Stride,
+		Groups: s.Groups, Superpixels: s.Superpixels, Compactness: s.Compactness,
 	}
 	if s.Reference != nil && s.Reference.Batch != nil {
 		o.Reference = s.Reference.Batch.Rows()
@@ -147,6 +187,9 @@ func (e *Explainer) record(o gradattr.Options, name func(*Dataset) string) map[s
 	if s.Reference != nil && s.NeedsReference() {
 		rec["reference"] = name(s.Reference)
 	}
+	if s.Patch != [2]int{} {
+		rec["patch"] = fmt.Sprintf("%dx%d", s.Patch[0], s.Patch[1])
+	}
 	return rec
 }
 
@@ -187,11 +230,13 @@ type Explanation struct {
 	Values []float64
 	// Result is the attribution; nil when Err is set.
 	Result *gradattr.Result
-	// BaselineOutputs are the model's outputs at the baseline, when there
-	// is one baseline (for gradient × input, the zero input); nil otherwise
-	// or when they could not be computed.
+	// BaselineOutputs are the model's outputs at the baseline: the
+	// method's own (gradattr.Result.BaselineOutputs) when it has them,
+	// else those at the one baseline (for gradient × input, the zero
+	// input); nil when there are several or they could not be computed.
 	BaselineOutputs []float64
-	// Grouped sums the attributions over Settings.Groups.
+	// Grouped is the attributions per group of Settings.Groups or of the
+	// superpixels (gradattr.Result.Groups).
 	Grouped *gradattr.GroupedResult
 	// Warnings say what the result's numbers do not: that they are near
 	// zero because the output is saturated or does not change.
@@ -249,13 +294,13 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 			ex.Result, ex.Err = gradattr.Attribute(ctx, e.head, x, e.settings.Target, o)
 		}
 		if ex.Err == nil {
-			if b, ok := reportedBaseline(o); ok {
+			if ex.Result.BaselineOutputs != nil {
+				ex.BaselineOutputs = ex.Result.BaselineOutputs
+			} else if b, ok := reportedBaseline(o); ok {
 				ex.BaselineOutputs = e.baselineOutputs(ctx, x, b)
 			}
 			ex.Warnings = e.warnings(x, ex.Result)
-			if e.settings.Groups != nil {
-				ex.Grouped, ex.Err = ex.Result.Grouped(e.settings.Groups)
-			}
+			ex.Grouped = ex.Result.Groups
 		}
 		rep.Explanations = append(rep.Explanations, ex)
 		if progress != nil {

@@ -34,10 +34,21 @@ const (
 	FieldAbs       Field = Field(gradattr.ParamAbs)
 	FieldVariant   Field = Field(gradattr.ParamVariant)
 	FieldGroups    Field = "groups"
+
+	FieldReferenceRows Field = Field(gradattr.ParamReferenceRows)
+	FieldEstimator     Field = Field(gradattr.ParamEstimator)
+	FieldCoalitions    Field = Field(gradattr.ParamCoalitions)
+	FieldKernelWidth   Field = Field(gradattr.ParamKernelWidth)
+	FieldWindow        Field = Field(gradattr.ParamWindow)
+	FieldStride        Field = Field(gradattr.ParamStride)
+	FieldSuperpixels   Field = "superpixels"
+	FieldCompactness   Field = "compactness"
+	FieldPatch         Field = "patch"
 )
 
 // methodFields are the method parameters, in the order Check reports them.
-var methodFields = []Field{FieldBaseline, FieldReference, FieldSteps, FieldRule, FieldTolerance, FieldSamples, FieldNoise, FieldSeed, FieldAbs, FieldVariant}
+var methodFields = []Field{FieldBaseline, FieldReference, FieldSteps, FieldRule, FieldTolerance, FieldSamples, FieldNoise, FieldSeed, FieldAbs, FieldVariant,
+	FieldReferenceRows, FieldEstimator, FieldCoalitions, FieldKernelWidth, FieldWindow, FieldStride}
 
 // ErrSettings is wrapped by every FieldError.
 var ErrSettings = errors.New("explain: invalid settings")
@@ -216,11 +227,29 @@ type Settings struct {
 	Absolute bool
 	Variant  gradattr.Variant
 	// Reference is the reference set: expected gradients draw from it,
-	// the mean baseline averages it.
+	// Shapley values average over its rows, the mean baseline averages it.
 	Reference *Dataset
-	// Groups are feature groups whose attributions are also reported
-	// summed.
+	// ReferenceRows, Estimator and Coalitions are Shapley values' (and
+	// Coalitions the surrogate's), KernelWidth the surrogate's, Window
+	// ([height, width]) and Stride occlusion's (see gradattr.Options).
+	ReferenceRows int
+	Estimator     gradattr.Estimator
+	Coalitions    int
+	KernelWidth   float64
+	Window        [2]int
+	Stride        int
+	// Groups are feature groups: the methods that switch features on and
+	// off play them as players, the others report their attributions
+	// summed per group too.
 	Groups []gradattr.Group
+	// Patch, when set, makes the groups a grid of patches of [height,
+	// width] pixels (gradattr.GridGroups).
+	Patch [2]int
+	// Superpixels, when > 0, makes the groups about that many SLIC
+	// superpixels of each sample, with SLIC's Compactness (0: the
+	// default).
+	Superpixels int
+	Compactness float64
 
 	given map[Field]bool
 }
@@ -255,8 +284,9 @@ func (s *Settings) Given(f Field) bool { return s.given[f] }
 // output, logits (true or false), baseline (see ParseBaseline), reference
 // (the name of the set, read by the caller into Reference.Batch), steps
 // (a count or auto), rule, tolerance, samples, noise, seed, abs (true or
-// false) and variant (mean, squared or variance). A value out
-// of range is a *FieldError.
+// false), variant (mean, squared or variance), reference-rows, estimator,
+// coalitions, kernel-width, window (HxW), stride, superpixels, compactness
+// and patch (HxW). A value out of range is a *FieldError.
 func (s *Settings) Set(f Field, text string) error {
 	if s.given == nil {
 		s.given = map[Field]bool{}
@@ -352,6 +382,58 @@ func (s *Settings) set(f Field, text string) error {
 			return fieldError(f, " must be mean, squared or variance, got ", strconv.Quote(text))
 		}
 		s.Variant = v
+	case FieldReferenceRows:
+		n, err := count(f, text, gradattr.MaxSamplesLimit)
+		if err != nil {
+			return err
+		}
+		s.ReferenceRows = n
+	case FieldEstimator:
+		e, err := gradattr.ParseEstimator(text)
+		if err != nil {
+			return fieldError(f, " must be auto, exact, regression or permutation, got ", strconv.Quote(text))
+		}
+		s.Estimator = e
+	case FieldCoalitions:
+		n, err := count(f, text, gradattr.MaxCoalitions)
+		if err != nil {
+			return err
+		}
+		s.Coalitions = n
+	case FieldKernelWidth:
+		v, err := strconv.ParseFloat(text, 64)
+		if err != nil || math.IsNaN(v) || math.IsInf(v, 0) || v <= 0 {
+			return fieldError(f, " must be a positive number, got ", text)
+		}
+		s.KernelWidth = v
+	case FieldWindow, FieldPatch:
+		hw, err := ParseSize(text)
+		if err != nil {
+			return fieldError(f, ": ", err)
+		}
+		if f == FieldWindow {
+			s.Window = hw
+		} else {
+			s.Patch = hw
+		}
+	case FieldStride:
+		n, err := count(f, text, maxPixels)
+		if err != nil {
+			return err
+		}
+		s.Stride = n
+	case FieldSuperpixels:
+		n, err := count(f, text, maxPixels)
+		if err != nil {
+			return err
+		}
+		s.Superpixels = n
+	case FieldCompactness:
+		v, err := strconv.ParseFloat(text, 64)
+		if err != nil || math.IsNaN(v) || math.IsInf(v, 0) || v <= 0 {
+			return fieldError(f, " must be a positive number, got ", text)
+		}
+		s.Compactness = v
 	default:
 		return fieldError(f, " is not a setting")
 	}
@@ -387,7 +469,38 @@ func (s *Settings) Check() error {
 	if s.Reference != nil && s.Method.Reads(gradattr.ParamBaseline) && !s.Baseline.fromReference() {
 		return fieldError(FieldReference, " with ", FieldMethod, " ", s.Method, " is the set ", FieldBaseline, " mean or median reads; give ", FieldBaseline, " mean or median too")
 	}
+	if s.given[FieldCompactness] && s.Superpixels == 0 {
+		return fieldError(FieldCompactness, " applies to ", FieldSuperpixels, " only; give ", FieldSuperpixels, " N too")
+	}
+	if s.Superpixels > 0 && s.Patch != [2]int{} {
+		return fieldError(FieldPatch, " and ", FieldSuperpixels, " both make the groups; give one")
+	}
 	return nil
+}
+
+// maxPixels bounds the counts of pixels the surfaces take (a stride, a
+// number of superpixels).
+const maxPixels = 1 << 24
+
+// count reads a whole number from 1 to most for field f.
+func count(f Field, text string, most int) (int, error) {
+	n, err := strconv.Atoi(text)
+	if err != nil || n < 1 || n > most {
+		return 0, fieldError(f, fmt.Sprintf(" must be a whole number from 1 to %d, got %q", most, text))
+	}
+	return n, nil
+}
+
+// ParseSize reads a size in pixels as the surfaces write it, HxW
+// (height × width, each at least 1): "4x4", "8x2".
+func ParseSize(text string) ([2]int, error) {
+	hs, ws, ok := strings.Cut(strings.ToLower(text), "x")
+	h, herr := strconv.Atoi(hs)
+	w, werr := strconv.Atoi(ws)
+	if !ok || herr != nil || werr != nil || h < 1 || w < 1 || h > maxPixels || w > maxPixels {
+		return [2]int{}, fmt.Errorf("expected a size HxW in pixels, height and width from 1 to %d (like 4x4), got %q", maxPixels, text)
+	}
+	return [2]int{h, w}, nil
 }
 
 // NeedsReference reports whether the settings read a reference set:

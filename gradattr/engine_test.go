@@ -40,13 +40,18 @@ func runs(t *testing.T, batch int, seed uint64) map[string][]float64 {
 	}
 	r, err := ExpectedGradients(ctx, m, x, 0, ExpectedGradientsOptions{Reference: ref, Samples: 150, BatchSize: batch, Seed: seed})
 	keep("expected", r, err)
+	uniform := []Baseline{{}, {Kind: BaselineUniform, Lo: -1, Hi: 1, Seed: seed}}
+	r, err = Surrogate(ctx, m, x, 1, SurrogateOptions{Baselines: uniform, Coalitions: 200, Seed: seed, BatchSize: batch})
+	keep("surrogate", r, err)
+	r, err = Occlusion(ctx, m, x, 2, OcclusionOptions{Baselines: uniform, BatchSize: batch})
+	keep("occlusion", r, err)
 	return out
 }
 
 func TestBatchSizeInvariance(t *testing.T) {
-	// Points are produced and summed in index order whatever the chunking,
-	// so the bits agree exactly (IEEE 754 addition is deterministic for a
-	// fixed operand order).
+	// Points and coalition rows are produced and summed in index order
+	// whatever the chunking, so the bits agree exactly (IEEE 754 addition
+	// is deterministic for a fixed operand order).
 	want := runs(t, 1, 42)
 	for _, bs := range []int{7, 64} {
 		got := runs(t, bs, 42)
@@ -63,7 +68,7 @@ func TestSeedReproducible(t *testing.T) {
 	for name := range a {
 		assert.Equal(t, bits(a[name]), bits(b[name]), name)
 	}
-	for _, name := range []string{"smoothgrad mean", "smoothgrad squared", "smoothgrad variance", "expected", "ig auto midpoint"} {
+	for _, name := range []string{"smoothgrad mean", "smoothgrad squared", "smoothgrad variance", "expected", "ig auto midpoint", "surrogate", "occlusion"} {
 		assert.NotEqual(t, bits(a[name]), bits(c[name]), name)
 	}
 }

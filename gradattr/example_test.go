@@ -113,3 +113,28 @@ func ExampleSummary() {
 	// "large" (2 rows):  x0 mean |a| 5.00, mean a +5.00  x1 mean |a| 1.50, mean a -0.50
 	// "small" (2 rows):  x0 mean |a| 3.00, mean a -1.00  x1 mean |a| 2.50, mean a -2.50
 }
+
+// Shapley values of f(x) = x₀·x₁ at (2, 3) over two reference rows, (0, 0)
+// and (1, 1): by Shapley's two-player formula φ₀ = ½(v({0}) − v(∅)) +
+// ½(v(N) − v({1})) with v({0}) = 2·½, v({1}) = ½·3, v(∅) = ½ and v(N) = 6,
+// φ = (2.5, 3), which sum to f(x) − mean f(r) = 5.5.
+func ExampleShapley() {
+	f := &gradattr.Func{
+		Shape:   []int{2},
+		Outputs: 1,
+		F:       func(out, x []float64) { out[0] = x[0] * x[1] },
+	}
+	r, err := gradattr.Shapley(context.Background(), f, []float64{2, 3}, 0, gradattr.ShapleyOptions{
+		Reference: [][]float64{{0, 0}, {1, 1}},
+	})
+	if err != nil {
+		fmt.Println(err)
+		return
+	}
+	fmt.Printf("%s estimator: φ %.4f\n", r.Settings.Estimator, r.Attributions)
+	fmt.Printf("sum %.4f, f(x) − mean f(r) %.4f, efficient %v\n",
+		r.Completeness.Sum, r.Completeness.Expected, r.Completeness.OK)
+	// Output:
+	// exact estimator: φ [2.5000 3.0000]
+	// sum 5.5000, f(x) − mean f(r) 5.5000, efficient true
+}

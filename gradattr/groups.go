@@ -84,6 +84,12 @@ type GroupedResult struct {
 	// expected value and tolerance); nil when the Result has none or the
 	// groups do not partition the features.
 	Completeness *Completeness `json:"completeness,omitempty"`
+	// StandardErrors holds the standard error of each group's value, when
+	// a sampling method computed the values per group (see Result.Groups).
+	StandardErrors []float64 `json:"standard_errors,omitempty"`
+	// Segments is the superpixel label map the groups came from, when they
+	// did: the segment of each pixel, row-major over height × width.
+	Segments []int `json:"segments,omitempty"`
 }
 
 // Grouped sums r's attributions over groups and reports whether they

@@ -1,15 +1,19 @@
-// Package gradattr apportions one output of a differentiable model among its
-// input features with gradient-based attribution methods, and checks the
-// result: integrated gradients and expected gradients carry a completeness
-// report (attributions must sum to f(x) − f(baseline)).
+// Package gradattr apportions one output of a model among its input
+// features, and checks the result. Gradient methods (gradient, gradient ×
+// input, SmoothGrad, integrated gradients, expected gradients) need the
+// model's gradients; Shapley values, a local surrogate and occlusion need
+// only forward passes, sent to the model in large batches. Features can be
+// grouped, by hand, on a grid or into SLIC superpixels. Integrated
+// gradients, expected gradients and Shapley values carry a completeness
+// report: the attributions must sum to f(x) − f(baseline).
 package gradattr
 
 import "context"
 
-// Model is what the attribution methods need from a differentiable model.
-// The nn package's networks implement it, and so does Func for closed-form
-// functions. All slices are row-major float64; a batch of n samples is n
-// consecutive samples.
+// Model is what the attribution methods need from a model; the methods
+// that only run it forward never call Gradient. The nn package's networks
+// implement it, and so does Func for closed-form functions. All slices are
+// row-major float64; a batch of n samples is n consecutive samples.
 type Model interface {
 	// InputShape is the shape of one sample, without the batch dimension.
 	InputShape() []int

@@ -34,12 +34,31 @@ type Result struct {
 	Outputs []float64 `json:"outputs"`
 	// BaselineOutput is the target output at the reference point: f(x′)
 	// (the mean over baselines when there are several) for integrated
-	// gradients, the mean of f over the reference set for expected
-	// gradients, f(0) for gradient×input; 0 for gradient and SmoothGrad.
+	// gradients, the surrogate and occlusion, the mean of f over the
+	// reference set for expected gradients and over the reference rows for
+	// Shapley values, f(0) for gradient×input; 0 for gradient and
+	// SmoothGrad.
 	BaselineOutput float64 `json:"baseline_output"`
+	// BaselineOutputs holds every output at the reference point, for the
+	// methods that evaluate it as such: the mean over the reference rows
+	// (Shapley values) or over the baselines (surrogate, occlusion); nil
+	// for the others.
+	BaselineOutputs []float64 `json:"baseline_outputs,omitempty"`
 	// Completeness compares Σ Attributions with Output − BaselineOutput;
 	// nil for gradient and SmoothGrad.
 	Completeness *Completeness `json:"completeness,omitempty"`
+	// StandardErrors holds the standard error of each attribution, for
+	// the sampled estimators of Shapley values; nil otherwise. With groups
+	// as players it is spread over their features as the attributions are.
+	StandardErrors []float64 `json:"standard_errors,omitempty"`
+	// Surrogate is the local surrogate model's fit; nil for other methods.
+	Surrogate *SurrogateFit `json:"surrogate,omitempty"`
+	// Groups holds the attributions per feature group when the options
+	// asked for groups (Options.Groups or Options.Superpixels): for the
+	// methods that switch groups on and off (Method.Perturbs) the values
+	// the method computed for each group, for the others the sums of the
+	// feature attributions.
+	Groups *GroupedResult `json:"groups,omitempty"`
 	// Cost counts the model evaluations spent.
 	Cost Cost `json:"cost"`
 	// Settings are the options in effect, defaults filled in.
@@ -141,8 +160,33 @@ type Settings struct {
 	BatchSize int `json:"batch_size,omitempty"`
 	// Baselines describes the baselines of integrated gradients.
 	Baselines []Baseline `json:"baselines,omitempty"`
-	// References is the size of the reference set of expected gradients.
+	// References is the size of the reference set of expected gradients
+	// and Shapley values.
 	References int `json:"references,omitempty"`
+	// ReferenceRows is K, the number of reference rows Shapley values
+	// average over.
+	ReferenceRows int `json:"reference_rows,omitempty"`
+	// Estimator is the estimator of Shapley values: auto (before the
+	// call), exact, regression or permutation.
+	Estimator string `json:"estimator,omitempty"`
+	// Coalitions is the coalition budget of the sampled Shapley
+	// estimators and of the surrogate.
+	Coalitions int `json:"coalitions,omitempty"`
+	// KernelWidth is the width of the surrogate's proximity kernel.
+	KernelWidth float64 `json:"kernel_width,omitempty"`
+	// Ridge is the surrogate's ridge penalty.
+	Ridge float64 `json:"ridge,omitempty"`
+	// Window is the occlusion window, [height, width], and Stride its
+	// step.
+	Window []int `json:"window,omitempty"`
+	Stride int   `json:"stride,omitempty"`
+	// Superpixels is the number of SLIC segments asked for, and
+	// Compactness SLIC's m.
+	Superpixels int     `json:"superpixels,omitempty"`
+	Compactness float64 `json:"compactness,omitempty"`
+	// Groups is the number of feature groups a method that switches
+	// groups on and off played with (Options.Groups).
+	Groups int `json:"groups,omitempty"`
 }
 
 // Top returns the index of the largest output, the first one on ties, and

@@ -6,8 +6,10 @@
 //	POST /v1/predict   {"inputs": [sample, ...]}: the predict document
 //	POST /v1/explain   {"inputs", "method", "target", "steps", "rule",
 //	                   "tolerance", "baseline", "samples", "noise", "seed",
-//	                   "logits", "abs", "variant"}: the explain document;
-//	                   absent fields take explain.Defaults
+//	                   "logits", "abs", "variant", "reference_rows",
+//	                   "estimator", "coalitions", "kernel_width", "window",
+//	                   "stride", "superpixels", "compactness", "patch"}: the
+//	                   explain document; absent fields take explain.Defaults
 //	GET  /metrics      Prometheus text format
 //
 // A sample in "inputs" is an array of numbers in the model's input shape,
@@ -34,6 +36,7 @@ import (
 	"net/http"
 	"runtime"
 	"strconv"
+	"strings"
 	"sync"
 	"time"
 
@@ -590,10 +593,23 @@ type explainRequest struct {
 	Logits    *bool           `json:"logits"`
 	Abs       *bool           `json:"abs"`
 	Variant   *string         `json:"variant"`
+
+	ReferenceRows *int     `json:"reference_rows"`
+	Estimator     *string  `json:"estimator"`
+	Coalitions    *int     `json:"coalitions"`
+	KernelWidth   *float64 `json:"kernel_width"`
+	Window        *string  `json:"window"` // "HxW"
+	Stride        *int     `json:"stride"`
+	Superpixels   *int     `json:"superpixels"`
+	Compactness   *float64 `json:"compactness"`
+	Patch         *string  `json:"patch"` // "HxW"
 }
 
-// fieldName names a setting as a request field: "steps".
-func fieldName(f explain.Field) string { return strconv.Quote(string(f)) }
+// fieldName names a setting as a request field, in the snake case of the
+// JSON documents: "steps", "reference_rows".
+func fieldName(f explain.Field) string {
+	return strconv.Quote(strings.ReplaceAll(string(f), "-", "_"))
+}
 
 // settingsError answers a settings error as a bad request, naming the
 // request's fields.
@@ -637,6 +653,15 @@ func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 		{explain.FieldSeed, req.Seed != nil, func() string { return strconv.FormatUint(*req.Seed, 10) }},
 		{explain.FieldAbs, req.Abs != nil, func() string { return strconv.FormatBool(*req.Abs) }},
 		{explain.FieldVariant, req.Variant != nil, func() string { return *req.Variant }},
+		{explain.FieldReferenceRows, req.ReferenceRows != nil, func() string { return strconv.Itoa(*req.ReferenceRows) }},
+		{explain.FieldEstimator, req.Estimator != nil, func() string { return *req.Estimator }},
+		{explain.FieldCoalitions, req.Coalitions != nil, func() string { return strconv.Itoa(*req.Coalitions) }},
+		{explain.FieldKernelWidth, req.KernelWidth != nil, func() string { return float(*req.KernelWidth) }},
+		{explain.FieldWindow, req.Window != nil, func() string { return *req.Window }},
+		{explain.FieldStride, req.Stride != nil, func() string { return strconv.Itoa(*req.Stride) }},
+		{explain.FieldSuperpixels, req.Superpixels != nil, func() string { return strconv.Itoa(*req.Superpixels) }},
+		{explain.FieldCompactness, req.Compactness != nil, func() string { return float(*req.Compactness) }},
+		{explain.FieldPatch, req.Patch != nil, func() string { return *req.Patch }},
 	}
 	for _, fl := range fields {
 		if !fl.given {

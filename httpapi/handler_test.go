@@ -165,7 +165,7 @@ func TestServeStatuses(t *testing.T) {
 		// 1e999 overflows float64 (IEEE 754 binary64: largest finite ≈ 1.8e308).
 		{"overflow", "/v1/explain", `{"inputs": [[1, 2, 3, 1e999, 5, 6, 7, 8]]}`, http.StatusBadRequest, []string{"1e999 is out of the float64 range"}},
 		{"unknown method", "/v1/explain", `{"inputs": [` + sample + `], "method": "lime"}`, http.StatusBadRequest,
-			[]string{`"method" must be one of gradient (grad), gradient-times-input (grad-input), smoothgrad, integrated-gradients (ig), expected-gradients (expected-grad), got "lime"`}},
+			[]string{`"method" must be one of gradient (grad), gradient-times-input (grad-input), smoothgrad, integrated-gradients (ig), expected-gradients (expected-grad), shapley, surrogate, occlusion, got "lime"`}},
 		{"no inputs", "/v1/explain", `{"method": "grad"}`, http.StatusBadRequest, []string{`"inputs" is required`}},
 		{"target out of range", "/v1/explain", `{"inputs": [` + sample + `], "method": "grad", "target": 3}`, http.StatusBadRequest, []string{`"target" must be top or an index from 0 to 2 (output "condition" has 3 values), got 3`}},
 		{"file baseline", "/v1/explain", `{"inputs": [` + sample + `], "baseline": "/etc/passwd"}`, http.StatusBadRequest, []string{`"baseline" must be zero, constant:V, mean, median, blur, blur:S or uniform:LO:HI (files are the command line's), got "/etc/passwd"`}},

@@ -199,9 +199,9 @@ func Scale(e explain.Explanation) (scale float64, what string) {
 
 // Table prints the explanations for people: per sample the target and its
 // output, its warnings, one row per feature (its label, value and
-// attribution, with a signed bar; see Options for which and in what
-// order), the bars' scale, the group sums, the completeness check and the
-// cost.
+// attribution, with its standard error when the method has one and a signed
+// bar; see Options for which and in what order), the bars' scale, the group
+// sums, the completeness check, the surrogate's fit and the cost.
 func Table(w io.Writer, rep *explain.Report, opt Options) error {
 	labels := rep.Labels()
 	classes := rep.Model.Meta.Classes
@@ -228,7 +228,7 @@ func Table(w io.Writer, rep *explain.Report, opt Options) error {
 
 		order, hidden := opt.selection(r.Attributions)
 		scale, what := Scale(e)
-		rows := [][3]string{{"feature", "value", "attribution"}}
+		rows := [][4]string{{"feature", "value", "attribution", "± s.e."}}
 		for _, i := range order {
 			label := strconv.Itoa(i)
 			if i < len(labels) {
@@ -238,9 +238,13 @@ func Table(w io.Writer, rep *explain.Report, opt Options) error {
 			if i < len(e.Values) {
 				value = Number(e.Values[i])
 			}
-			rows = append(rows, [3]string{label, value, signed(r.Attributions[i])})
+			se := ""
+			if r.StandardErrors != nil {
+				se = Number(r.StandardErrors[i])
+			}
+			rows = append(rows, [4]string{label, value, signed(r.Attributions[i]), se})
 		}
-		var width [3]int
+		var width [4]int
 		for _, row := range rows {
 			for k, cell := range row {
 				width[k] = max(width[k], utf8.RuneCountInString(cell))
@@ -251,6 +255,9 @@ func Table(w io.Writer, rep *explain.Report, opt Options) error {
 			line := row[0] + strings.Repeat(" ", width[0]-utf8.RuneCountInString(row[0])) +
 				"  " + strings.Repeat(" ", width[1]-utf8.RuneCountInString(row[1])) + row[1] +
 				"  " + strings.Repeat(" ", width[2]-utf8.RuneCountInString(row[2])) + row[2]
+			if r.StandardErrors != nil {
+				line += "  " + strings.Repeat(" ", width[3]-utf8.RuneCountInString(row[3])) + row[3]
+			}
 			if n > 0 {
 				line += "  " + opt.bar(r.Attributions[order[n-1]], scale)
 			}
@@ -277,6 +284,9 @@ func Table(w io.Writer, rep *explain.Report, opt Options) error {
 			}
 			fmt.Fprintf(w, "completeness: sum %s  expected %s  gap %s  relative gap %s%s  %s\n",
 				Number(cp.Sum), Number(cp.Expected), signed(cp.Gap), Number(cp.RelativeGap), tol, verdict)
+		}
+		if fit := r.Surrogate; fit != nil {
+			fmt.Fprintf(w, "surrogate: intercept %s  fidelity (weighted R²) %s\n", Number(fit.Intercept), Number(fit.Fidelity))
 		}
 		fmt.Fprintf(w, "cost: %s, %s, %s\n", Count(r.Cost.GradientEvals, "gradient evaluation", "gradient evaluations"),
 			Count(r.Cost.ForwardPasses, "forward pass", "forward passes"), r.Cost.Elapsed.Round(10_000))
@@ -492,6 +502,9 @@ func writeGroupTable(w io.Writer, g *gradattr.GroupedResult, e explain.Explanati
 	vw := utf8.RuneCountInString("attribution")
 	for i, a := range g.Attributions {
 		vals[i] = signed(a)
+		if g.StandardErrors != nil {
+			vals[i] += " ± " + Number(g.StandardErrors[i])
+		}
 		vw = max(vw, utf8.RuneCountInString(vals[i]))
 	}
 	pad := func(s string, n int) string { return strings.Repeat(" ", n-utf8.RuneCountInString(s)) }

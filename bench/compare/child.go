@@ -27,6 +27,11 @@ type request struct {
 	Iters   int    `json:"iters,omitempty"`
 	Samples int    `json:"samples,omitempty"`
 	N       int    `json:"n,omitempty"`
+	// rows and forward (the forward-only table): a model file, a row
+	// count and a batch size.
+	Path  string `json:"path,omitempty"`
+	Rows  int    `json:"rows,omitempty"`
+	Batch int    `json:"batch,omitempty"`
 }
 
 // response is the union of the answers.
@@ -46,6 +51,7 @@ type response struct {
 	Seconds float64 `json:"seconds"`
 	Allocs  float64 `json:"allocs"` // per call
 	Bytes   float64 `json:"bytes"`  // per call
+	Rows    int     `json:"rows"`   // model rows per call (perturb)
 	// peak: the FMA ceiling of GOMAXPROCS cores and nn's matrix-product rate
 	GFLOPS float64 `json:"gflops,omitempty"`
 	GEMM   float64 `json:"gemm,omitempty"`
@@ -54,13 +60,14 @@ type response struct {
 // goSide serves the protocol on the Go side: it runs under the GOMAXPROCS
 // its parent set.
 type goSide struct {
-	dir   string
-	heads map[string]*nn.Head
-	warm  map[string]bool
+	dir      string
+	heads    map[string]*nn.Head
+	warm     map[string]bool
+	perturbs map[string]*perturbRun
 }
 
 func runChild(dir string, in io.Reader, out io.Writer) error {
-	s := &goSide{dir: dir, heads: map[string]*nn.Head{}, warm: map[string]bool{}}
+	s := &goSide{dir: dir, heads: map[string]*nn.Head{}, warm: map[string]bool{}, perturbs: map[string]*perturbRun{}}
 	sc := bufio.NewScanner(in)
 	sc.Buffer(make([]byte, 1<<20), 1<<20)
 	enc := json.NewEncoder(out)
@@ -169,23 +176,32 @@ func (s *goSide) serve(req request) (response, error) {
 			}
 			s.warm[key] = true
 		}
-		iters := max(req.Iters, 1)
-		runtime.GC()
-		var m0, m1 runtime.MemStats
-		runtime.ReadMemStats(&m0)
-		t0 := time.Now()
-		for i := 0; i < iters; i++ {
-			if err := call(); err != nil {
-				return response{}, err
-			}
-		}
-		sec := time.Since(t0).Seconds()
-		runtime.ReadMemStats(&m1)
-		return response{Seconds: sec,
-			Allocs: float64(m1.Mallocs-m0.Mallocs) / float64(iters),
-			Bytes:  float64(m1.TotalAlloc-m0.TotalAlloc) / float64(iters)}, nil
+		return timeCalls(max(req.Iters, 1), call)
+	case "perturb":
+		return s.timePerturb(req.Task, max(req.Iters, 1))
+	case "forward":
+		return s.forwardRows(req.Task, max(req.N, 1))
 	}
 	return response{}, fmt.Errorf("unknown cmd %q", req.Cmd)
+}
+
+// timeCalls times iters calls of call, after a garbage collection, and
+// returns the seconds and the allocations per call.
+func timeCalls(iters int, call func() error) (response, error) {
+	runtime.GC()
+	var m0, m1 runtime.MemStats
+	runtime.ReadMemStats(&m0)
+	t0 := time.Now()
+	for i := 0; i < iters; i++ {
+		if err := call(); err != nil {
+			return response{}, err
+		}
+	}
+	sec := time.Since(t0).Seconds()
+	runtime.ReadMemStats(&m1)
+	return response{Seconds: sec,
+		Allocs: float64(m1.Mallocs-m0.Mallocs) / float64(iters),
+		Bytes:  float64(m1.TotalAlloc-m0.TotalAlloc) / float64(iters)}, nil
 }
 
 // goTask returns one call of task on h: the same work bench/torch_side.py

@@ -59,6 +59,8 @@ func main() {
 	python := flag.String("python", "/usr/bin/python3", "Python interpreter with torch and onnx")
 	script := flag.String("torch-side", filepath.Join("bench", "torch_side.py"), "PyTorch side script")
 	models := flag.String("only", "", "comma-separated zoo models to run (default all)")
+	methods := flag.Bool("forward-only", true, "time the forward-only methods (Shapley values) against PyTorch's forward passes")
+	zoo := flag.Bool("zoo", true, "time the zoo models' tasks")
 	flag.Usage = func() {
 		fmt.Fprintf(os.Stderr, "usage: go run ./bench/compare [-quick] [-reps N] [-out FILE]\n\nexample:\n  go run ./bench/compare -quick\n\n")
 		flag.PrintDefaults()
@@ -75,9 +77,12 @@ func main() {
 		fmt.Fprintln(os.Stderr, "compare: -reps must be at least 1")
 		os.Exit(2)
 	}
-	cfg := config{quick: *quick, reps: *reps, dir: *dir, out: *out, python: *python, script: *script}
+	cfg := config{quick: *quick, reps: *reps, dir: *dir, out: *out, python: *python, script: *script, forwardOnly: *methods}
 	if *models != "" {
 		cfg.only = strings.Split(*models, ",")
+	}
+	if !*zoo {
+		cfg.only = []string{}
 	}
 	if err := run(cfg); err != nil {
 		fmt.Fprintln(os.Stderr, "compare:", err)
@@ -91,6 +96,7 @@ type config struct {
 	dir, out       string
 	python, script string
 	only           []string
+	forwardOnly    bool
 }
 
 // task is one timed row.
@@ -207,7 +213,7 @@ func run(cfg config) error {
 		target = 0.08
 	}
 	specs := bench.Zoo
-	if cfg.only != nil {
+	if cfg.only != nil { // -only, or none for -zoo=false
 		specs = nil
 		for _, n := range cfg.only {
 			s, err := bench.Lookup(n)
@@ -231,6 +237,8 @@ func run(cfg config) error {
 	}
 	var rows []row
 	var checks []string
+	var prows []perturbRow
+	var pchecks []string
 	peaks, gemms := map[int]float64{}, map[int]float64{}
 	goVersion := runtime.Version()
 	for _, threads := range []int{1, 2} {
@@ -276,16 +284,41 @@ func run(cfg config) error {
 				fmt.Fprintln(os.Stderr, formatRow(r))
 			}
 		}
+		for _, c := range perturbCases() {
+			if !cfg.forwardOnly {
+				break
+			}
+			r, check, err := measurePerturb(gp, tp, cfg.dir, c, cfg.reps, target)
+			if err != nil {
+				return fmt.Errorf("%s: %w", c.name, err)
+			}
+			r.threads = threads
+			if check != "" && threads == 1 {
+				pchecks = append(pchecks, check)
+				fmt.Fprintln(os.Stderr, check)
+			}
+			prows = append(prows, r)
+			fmt.Fprintln(os.Stderr, formatPerturbRow(r))
+		}
 		gp.close()
 		if tp != nil {
 			tp.close()
 		}
 	}
 	loadEnd := loadavg()
-	table := renderTable(rows)
+	table := ""
+	if len(rows) > 0 {
+		table = renderTable(rows)
+	}
+	if prows != nil {
+		table += "\n" + renderPerturbTable(prows)
+	}
 	fmt.Print(table)
 	if cfg.out != "" {
 		md := renderMarkdown(cfg, rows, checks, peaks, gemms, goVersion, torchVersion, loadStart, loadEnd, time.Since(started))
+		if prows != nil {
+			md += "\n" + renderPerturbMarkdown(prows, pchecks)
+		}
 		if err := os.WriteFile(cfg.out, []byte(md), 0o644); err != nil {
 			return err
 		}
@@ -296,7 +329,7 @@ func run(cfg config) error {
 
 // ensureModels writes the zoo into dir when a model file is missing.
 func ensureModels(dir string) error {
-	for _, s := range bench.Zoo {
+	for _, s := range bench.All {
 		path := filepath.Join(dir, s.Name+".onnx")
 		if _, err := os.Stat(path); err == nil {
 			continue
@@ -527,6 +560,9 @@ func renderMarkdown(cfg config, rows []row, checks []string, peaks, gemms map[in
 			fmt.Fprintf(&b, "- %s\n", c)
 		}
 		b.WriteString("\n")
+	}
+	if len(rows) == 0 { // -zoo=false
+		return b.String()
 	}
 	b.WriteString("## Results\n\n")
 	b.WriteString("T is the thread count (GOMAXPROCS for apportion, torch.set_num_threads for PyTorch). GFLOP/s counts 2·MACs of Gemm and Conv from the graph, ×2 for a forward and backward pass (both sides compute input gradients only; the input gradient of a Gemm or Conv costs the MACs of its forward); peak is that rate over the FMA peak above at the same thread count (one call runs its pass on one core, so at 2 threads about half at best). Allocations and KiB are per call on the Go side.\n\n")

@@ -30,7 +30,7 @@ func run(dir string) error {
 	if err := os.MkdirAll(dir, 0o755); err != nil {
 		return err
 	}
-	for _, s := range bench.Zoo {
+	for _, s := range bench.All {
 		m, err := bench.Build(s)
 		if err != nil {
 			return err

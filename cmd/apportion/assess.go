@@ -154,7 +154,8 @@ func (c *assessConfig) validate() string {
 		return "-patch and -groups both group the features; give one"
 	}
 	if c.patch != "" {
-		if _, _, ok := parsePatch(c.patch); !ok {
+		var s explain.Settings
+		if s.Set(explain.FieldPatch, c.patch) != nil {
 			return fmt.Sprintf("-patch must be HxW, two whole numbers of pixels such as 4x4, got %q", c.patch)
 		}
 	}
@@ -282,7 +283,10 @@ func (c *assessConfig) load(stderr io.Writer) (string, error) {
 			return "", fmt.Errorf("-groups %s: %w", c.groups, err)
 		}
 	case patch != "":
-		ph, pw, _ := parsePatch(patch)
+		if err := s.Set(explain.FieldPatch, patch); err != nil {
+			return "", err
+		}
+		ph, pw := s.Patch[0], s.Patch[1]
 		if len(shape) < 2 {
 			return "", &usageErr{fmt.Sprintf("-patch %s needs samples with at least two axes (height, width), got shape %s", patch, samples.ShapeString(shape))}
 		}

@@ -11,7 +11,6 @@ import (
 	"os"
 	"path/filepath"
 	"runtime"
-	"strconv"
 	"strings"
 
 	"golang.org/x/term"
@@ -44,7 +43,9 @@ func demoScenario(name string) (*demo.Scenario, error) {
 var methodFlagNames = []explain.Field{
 	explain.FieldMethod, explain.FieldTarget, explain.FieldOutput, explain.FieldLogits, explain.FieldBaseline,
 	explain.FieldReference, explain.FieldSteps, explain.FieldRule, explain.FieldTolerance, explain.FieldSamples,
-	explain.FieldNoise, explain.FieldSeed, explain.FieldAbs, explain.FieldVariant,
+	explain.FieldNoise, explain.FieldSeed, explain.FieldAbs, explain.FieldVariant, explain.FieldReferenceRows,
+	explain.FieldEstimator, explain.FieldCoalitions, explain.FieldKernelWidth, explain.FieldWindow, explain.FieldStride,
+	explain.FieldSuperpixels, explain.FieldCompactness,
 }
 
 // explainConfig holds explain's flags; settings are the method flags read
@@ -93,6 +94,15 @@ func registerMethodFlags(fs *flag.FlagSet, baselineDefault, baselineHelp, refere
 	fs.Float64("noise", sg.Noise, "smoothgrad noise level `R`: σ / (max x − min x)")
 	fs.Bool("abs", false, "grad: the gradient's absolute value |∂f/∂x| (Simonyan et al. 2013), not its sign")
 	fs.String("variant", gradattr.VariantMean.String(), "smoothgrad aggregate of the noisy copies' gradients: mean, squared (mean of squares) or variance")
+	sh, su, oc := gradattr.MethodShapley.Defaults(), gradattr.MethodSurrogate.Defaults(), gradattr.MethodOcclusion.Defaults()
+	fs.Int("reference-rows", sh.ReferenceRows, "shapley: reference rows `K` to average over (a seeded sample when -reference has more; all, in order, otherwise)")
+	fs.String("estimator", string(sh.Estimator), fmt.Sprintf("shapley `estimator`: auto (exact up to %d players, else regression), exact, regression or permutation", gradattr.AutoExactPlayers))
+	fs.Int("coalitions", sh.Coalitions, "coalition budget `N` of shapley's sampled estimators, and the surrogate's coalitions")
+	fs.Float64("kernel-width", su.KernelWidth, "surrogate: width `W` of the proximity kernel on the share of players switched off")
+	fs.String("window", fmt.Sprintf("%dx%d", oc.Window[0], oc.Window[1]), "occlusion window `HxW` in pixels, moved over images without groups")
+	fs.Int("stride", 0, "occlusion window step `S` in pixels (default half the window's shorter side)")
+	fs.Int("superpixels", 0, "make the feature groups about `N` SLIC superpixels of each image, for any method")
+	fs.Float64("compactness", gradattr.DefaultCompactness, "SLIC compactness `M` of -superpixels: higher, more regular segments")
 }
 
 // readSettings sets the library's settings from the method flags given
@@ -122,12 +132,16 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		"apportion explain -model model.onnx -input samples.csv -method ig -target top\n"+
 			"\tapportion explain -demo welds -format png -out welds.png",
 		"Attributes one output of the model, for each sample of -input, to the\n"+
-			"sample's features. Integrated gradients (ig) and expected gradients\n"+
-			"(expected-grad) report completeness: the attributions should sum to the\n"+
-			"output minus the output at the baseline, within -tolerance; when they do\n"+
-			"not, the results are printed and the exit status is 1 (0 with\n"+
-			"-allow-incomplete). A saturated output or one that does not move gets a\n"+
-			"warning, and the bars are drawn on the scale of the output's change.\n\n"+
+			"sample's features. Integrated gradients (ig), expected gradients\n"+
+			"(expected-grad) and Shapley values (shapley) report completeness: the\n"+
+			"attributions should sum to the output minus the output at the baseline\n"+
+			"(for shapley, the mean output over the reference rows), within\n"+
+			"-tolerance; when they do not, the results are printed and the exit\n"+
+			"status is 1 (0 with -allow-incomplete). A saturated output or one that\n"+
+			"does not move gets a warning, and the bars are drawn on the scale of the\n"+
+			"output's change. Shapley values, the local surrogate and occlusion only\n"+
+			"run the model forward; with -groups, -patch or -superpixels they switch\n"+
+			"whole groups on and off.\n\n"+
 			"Without -model, explain runs an embedded, invented demo (-demo pumps or\n"+
 			"welds). -format png draws a heatmap for image-shaped samples ((H,W),\n"+
 			"(1,H,W), or (C,H,W) with C ≤ 3: attributions summed over channels) and a\n"+
@@ -138,8 +152,8 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded demo model chosen by -demo)")
 	fs.StringVar(&c.inputPath, "input", "", "samples to explain: a .csv, .json, .npy or .pb `file` (required with -model; default: the demo's own sample)")
 	registerMethodFlags(fs, explain.DefaultBaselineText,
-		"baseline `kind` for ig: zero, constant:V (every feature V), mean or median (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), uniform:LO:HI (noise from -seed), or the path of a file of baseline samples (results averaged over them)",
-		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
+		"baseline `kind` for ig, surrogate and occlusion: zero, constant:V (every feature V), mean or median (of -reference; else, without -model, of the demo's reference set; else of -input), blur (Gaussian, σ = 2 pixels), blur:S (σ = S pixels), uniform:LO:HI (noise from -seed), or the path of a file of baseline samples (results averaged over them)",
+		"reference samples `file` for expected-grad, shapley and -baseline mean (default without -model: the demo's reference set)")
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the random methods")
 	fs.StringVar(&c.groups, "groups", "", "JSON `file` of feature groups to report summed, in its order: {\"name\": [features], ...}, each feature an index from 0 or a feature name")
 	fs.StringVar(&c.patch, "patch", "", "report image samples by patches of `HxW` pixels (all channels), tiled from the top left, instead of -groups")
@@ -329,7 +343,7 @@ func (c *explainConfig) validate() string {
 		if c.groups != "" {
 			return "-patch and -groups both group the features; give one"
 		}
-		if _, _, ok := parsePatch(c.patch); !ok {
+		if c.settings.Set(explain.FieldPatch, c.patch) != nil {
 			return fmt.Sprintf("-patch must be HxW, two whole numbers of pixels such as 4x4, got %q", c.patch)
 		}
 	}
@@ -497,8 +511,8 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 	if err := l.readDatasets(&c.settings); err != nil {
 		return nil, nil, err
 	}
-	if c.settings.Method == gradattr.MethodExpectedGradients && c.settings.Reference == nil {
-		return nil, nil, &usageErr{fmt.Sprintf("-method %s needs -reference, a file of reference samples", c.settings.Method)}
+	if s := &c.settings; s.NeedsReference() && !s.Method.Reads(gradattr.ParamBaseline) && s.Reference == nil {
+		return nil, nil, &usageErr{fmt.Sprintf("-method %s needs -reference, a file of reference samples", s.Method)}
 	}
 	head, err := m.Head(c.settings.Output, c.settings.Logits)
 	if err != nil {
@@ -520,27 +534,12 @@ func (c *explainConfig) load(parallel int) (*explain.Explainer, *samples.Batch, 
 			return nil, nil, fmt.Errorf("-groups %s: %w", c.groups, err)
 		}
 	}
-	if c.patch != "" {
-		ph, pw, _ := parsePatch(c.patch)
-		shape := head.InputShape()
-		if len(shape) < 2 {
-			return nil, nil, &usageErr{fmt.Sprintf("-patch %s needs samples with at least two axes (height, width), got shape %s", c.patch, samples.ShapeString(shape))}
-		}
-		if c.settings.Groups, err = gradattr.GridGroups(shape, ph, pw); err != nil {
-			return nil, nil, err
-		}
+	if shape := head.InputShape(); c.patch != "" && len(shape) < 2 {
+		return nil, nil, &usageErr{fmt.Sprintf("-patch %s needs samples with at least two axes (height, width), got shape %s", c.patch, samples.ShapeString(shape))}
 	}
 	ex, err := explain.New(m, head, c.settings)
 	c.ignored = l.ignored
 	return ex, batch, err
-}
-
-// parsePatch reads -patch HxW.
-func parsePatch(s string) (h, w int, ok bool) {
-	hs, ws, found := strings.Cut(strings.ToLower(s), "x")
-	h, errH := strconv.Atoi(hs)
-	w, errW := strconv.Atoi(ws)
-	return h, w, found && errH == nil && errW == nil && h >= 1 && w >= 1
 }
 
 // colorTerminal reports whether w is a terminal that shows colour: a

@@ -75,8 +75,8 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded pumps demo)")
 	fs.StringVar(&c.inputPath, "input", "", "rows to explain: a .csv `file` with a header (or .npy, .json, .pb); required with -model")
 	registerMethodFlags(fs, "",
-		"baseline `kind` for ig: zero, constant:V, mean or median (of -reference), uniform:LO:HI, or the path of a file of baseline samples (results averaged over them) (default: mean of the demo's reference set without -model, zero with -model)",
-		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
+		"baseline `kind` for ig, surrogate and occlusion: zero, constant:V, mean or median (of -reference), uniform:LO:HI, or the path of a file of baseline samples (results averaged over them) (default: mean of the demo's reference set without -model, zero with -model)",
+		"reference samples `file` for expected-grad, shapley and -baseline mean (default without -model: the demo's reference set)")
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the bootstrap weights (and of smoothgrad and expected-grad)")
 	fs.StringVar(&sc.by, "by", "", "group rows by this CSV `column`, or by the predicted class with predicted (default for the demo: pump_line)")
 	fs.StringVar(&sc.format, "format", "table", "output format: table, json (mergeable), csv or png (needs -out)")
