@@ -67,6 +67,10 @@ const (
 	DefaultSensitivityDraws = 8
 	DefaultNoise            = 0.1
 	DefaultRadius           = 0.05
+	// DefaultBudget lets Shapley values of the pumps demo's eight
+	// features (25 400 passes) repeat, not those of the welds demo's 64
+	// patches (about 65 000 passes of 1024 values).
+	DefaultBudget = 1 << 24
 )
 
 // Config is what Assess scores: methods on a model and its samples. Zero
@@ -115,6 +119,13 @@ type Config struct {
 	// randomization test is skipped.
 	Layers     []string
 	Randomized Randomized
+	// Budget bounds the cost of the metrics that repeat a method's
+	// attribution (max-sensitivity and randomization, 1 + SensitivityDraws
+	// + len(Layers) attributions per sample): a method whose one
+	// attribution evaluates more than Budget input values (model passes,
+	// by gradattr.Options.Estimate, times the features of a sample) is
+	// scored without them. 0 is DefaultBudget; negative is no bound.
+	Budget int64
 	// Seed seeds every draw: the methods' own (gradattr.Options.Seed),
 	// the random orders, the perturbations.
 	Seed uint64
@@ -179,6 +190,9 @@ type MethodScores struct {
 	Title  string          `json:"title"`
 	// NotScored says why the method was not run at all ("" when it was).
 	NotScored string `json:"not_scored,omitempty"`
+	// Unrepeated says why max-sensitivity and randomization were not
+	// computed for the method ("" when they were or were not asked for).
+	Unrepeated string `json:"unrepeated,omitempty"`
 	// Failed lists the samples the method could not explain.
 	Failed []Skipped `json:"failed,omitempty"`
 
@@ -342,6 +356,15 @@ func Assess(ctx context.Context, c Config) (*Report, error) {
 		if NeedsReference(m) && c.Reference == nil {
 			scores[k].NotScored = "it needs a reference set"
 		}
+		if (has[MetricSensitivity] || has[MetricRandomization]) && c.Budget > 0 {
+			cost, err := c.Options(m).Estimate(shape)
+			if err != nil {
+				return nil, err
+			}
+			if n := int64(cost.ForwardPasses+cost.GradientEvals) * int64(size); n > c.Budget {
+				scores[k].Unrepeated = fmt.Sprintf("one attribution evaluates %d input values, more than the budget of %d", n, c.Budget)
+			}
+		}
 		acc[k].spear = make([][]float64, len(c.Layers))
 		acc[k].ssim = make([][]float64, len(c.Layers))
 	}
@@ -468,7 +491,7 @@ func Assess(ctx context.Context, c Config) (*Report, error) {
 							return err
 						}
 					}
-					if has[MetricSensitivity] {
+					if has[MetricSensitivity] && sc.Unrepeated == "" {
 						var err error
 						vals["sens"], err = MaxSensitivity(ctx, Method(o), c.Model, x, target, attr, SensitivityOptions{
 							Radius: radius, Draws: c.SensitivityDraws, Seed: c.Seed, Stream: stream + streamSensitivity})
@@ -476,7 +499,7 @@ func Assess(ctx context.Context, c Config) (*Report, error) {
 							return err
 						}
 					}
-					if has[MetricRandomization] {
+					if has[MetricRandomization] && sc.Unrepeated == "" {
 						st, err := Randomization(ctx, Method(o), c.Randomized, len(c.Layers), x, shape, target, attr)
 						if err != nil {
 							return err
@@ -563,6 +586,9 @@ func (c Config) Options(m gradattr.Method) gradattr.Options {
 	if c.Baseline != nil && m.Reads(gradattr.ParamBaseline) {
 		o.Baselines = []gradattr.Baseline{{Kind: gradattr.BaselineValues, Values: c.Baseline}}
 	}
+	if m.Perturbs() {
+		o.Groups = c.Groups // the methods that switch features play the groups
+	}
 	return o
 }
 
@@ -605,6 +631,9 @@ func (c Config) withDefaults() Config {
 	}
 	if c.Radius == 0 {
 		c.Radius = DefaultRadius
+	}
+	if c.Budget == 0 {
+		c.Budget = DefaultBudget
 	}
 	return c
 }

@@ -409,3 +409,27 @@ func TestIntervalStudentT(t *testing.T) {
 		t.Error("no finite value: want no interval")
 	}
 }
+
+// Budget bounds the metrics that repeat an attribution: with a budget
+// below the cost of one gradient (one pass of the sample's values, by
+// gradattr.Options.Estimate), max-sensitivity and randomization are left
+// out and the report says why; without a bound they are computed.
+func TestAssessBudget(t *testing.T) {
+	cfg := Config{Model: bumpy(3), Seed: 1, RandomOrders: 3, Draws: 4, SensitivityDraws: 2,
+		Samples: [][]float64{{1, 0.5, -0.5}, {0.3, -0.2, 0.9}},
+		Metrics: []Metric{MetricSensitivity}, Methods: []gradattr.Method{gradattr.MethodGradient}, Budget: 1}
+	rep, err := Assess(context.Background(), cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if s := rep.Methods[0]; s.Unrepeated == "" || s.Sensitivity != nil {
+		t.Errorf("budget 1: %+v, want max-sensitivity left out", s)
+	}
+	cfg.Budget = -1
+	if rep, err = Assess(context.Background(), cfg); err != nil {
+		t.Fatal(err)
+	}
+	if s := rep.Methods[0]; s.Unrepeated != "" || s.Sensitivity == nil || s.Sensitivity.N != 2 {
+		t.Errorf("no bound: %+v, want max-sensitivity of 2 samples", s)
+	}
+}

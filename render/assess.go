@@ -187,6 +187,9 @@ func assessTable(w io.Writer, rep *fidelity.Report, title string) error {
 		if s.NotScored != "" {
 			fmt.Fprintf(w, "%s not scored: %s.\n", s.Title, s.NotScored)
 		}
+		if s.Unrepeated != "" {
+			fmt.Fprintf(w, "%s: no max-sensitivity or randomization: %s (-budget).\n", s.Title, s.Unrepeated)
+		}
 		if n := len(s.Failed); n > 0 {
 			fmt.Fprintf(w, "%s failed on %s: sample %d: %s\n", s.Title, Count(n, "sample", "samples"), s.Failed[0].Index, s.Failed[0].Error)
 		}

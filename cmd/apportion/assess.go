@@ -76,6 +76,7 @@ func runAssess(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs.IntVar(&c.config.SensitivityDraws, "sensitivity-draws", fidelity.DefaultSensitivityDraws, "points `N` per sample of max-sensitivity")
 	fs.Float64Var(&c.config.Noise, "perturb-noise", fidelity.DefaultNoise, "σ of infidelity's Gaussian perturbations, in standard deviations `R` of each feature (of all values for images)")
 	fs.Float64Var(&c.config.Radius, "radius", fidelity.DefaultRadius, "max-sensitivity's radius, in standard deviations `R`")
+	fs.Int64Var(&c.config.Budget, "budget", fidelity.DefaultBudget, "largest cost `N` of one attribution, in input values evaluated, for which max-sensitivity and randomization repeat it (-1: no bound)")
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of every random draw: the methods', the orders', the perturbations', the randomized weights'")
 	if code, done := parseFlags(fs, args, stdout); done {
 		return code
