@@ -80,18 +80,26 @@ func TestPuOrIsColorBrewers(t *testing.T) {
 	// Debian's python3-matplotlib 3.6.3 carries ColorBrewer's schemes
 	// (matplotlib/_cm.py, "_PuOr_data": the 11-class PuOr as RGB
 	// fractions); the 9-class scheme is its classes 2 to 10.
-	py := debpython.Require(t, "matplotlib")
-	out, err := exec.Command(py, "-c", `import json, matplotlib._cm as cm
-print(json.dumps([[round(v*255) for v in c] for c in cm._PuOr_data]))`).Output()
-	require.NoError(t, err)
-	var classes [][3]int
-	require.NoError(t, json.Unmarshal(out, &classes))
+	classes := matplotlibScheme(t, "PuOr")
 	require.Len(t, classes, 11)
 	for i, c := range PuOr {
 		want := classes[i+1]
 		assert.Equal(t, want, [3]int{int(c.R), int(c.G), int(c.B)}, "class %d", i+2)
 		assert.Equal(t, puorWant[i], c)
 	}
+}
+
+// matplotlibScheme returns matplotlib's copy of a ColorBrewer scheme
+// (matplotlib/_cm.py, "_NAME_data", RGB fractions) in 8-bit channels.
+func matplotlibScheme(t *testing.T, name string) [][3]int {
+	t.Helper()
+	py := debpython.Require(t, "matplotlib")
+	out, err := exec.Command(py, "-c", `import json, matplotlib._cm as cm
+print(json.dumps([[round(v*255) for v in c] for c in cm._`+name+`_data]))`).Output()
+	require.NoError(t, err)
+	var classes [][3]int
+	require.NoError(t, json.Unmarshal(out, &classes))
+	return classes
 }
 
 func TestColorMapDefinition(t *testing.T) {

@@ -11,6 +11,7 @@
 //	predict   run a model on input files and print its outputs
 //	inspect   describe a model's inputs, outputs, operators and parameters
 //	summarize summarise the attributions of many rows, overall and per group
+//	assess    score attribution methods on a model and samples
 //	serve     answer predict and explain requests over HTTP
 //	version   print the version, the Go version and the kernels in use
 //	help      show help for a command
@@ -59,6 +60,7 @@ func commands() []command {
 		{"predict", "run a model on input files and print its outputs", runPredict},
 		{"inspect", "describe a model's inputs, outputs, operators and parameters", runInspect},
 		{"summarize", "summarise the attributions of many rows, overall and per group", runSummarize},
+		{"assess", "score attribution methods on a model and samples: faithfulness, stability, sanity", runAssess},
 		{"serve", "answer predict and explain requests over HTTP", runServe},
 		{"version", "print the version, the Go version and the kernels in use", runVersion},
 	}

@@ -17,18 +17,25 @@ import (
 // prints today, the run's duration aside.
 func TestReadmeFirstCommand(t *testing.T) {
 	skipUnlessRecordedKernels(t, "the README's output was")
-	raw, err := os.ReadFile("../../README.md")
-	require.NoError(t, err)
-	const start = "```text\n$ go run ./cmd/apportion explain\n"
-	readme := string(raw)
-	i := strings.Index(readme, start)
-	require.GreaterOrEqual(t, i, 0, "the README shows the first command's output")
-	block := readme[i+len(start):]
-	block = block[:strings.Index(block, "```")]
+	block := readmeBlock(t, "$ go run ./cmd/apportion explain")
 	code, out, errs := cli(t, "explain")
 	require.Equal(t, exitOK, code, errs)
 	elapsed := regexp.MustCompile(`(cost: .*, )[0-9.]+(µs|ms|s)\n`)
 	assert.Equal(t, elapsed.ReplaceAllString(block, "${1}…\n"), elapsed.ReplaceAllString(out, "${1}…\n"))
+}
+
+// readmeBlock returns the text the README shows below the command line
+// cmd, in the code block that starts with it.
+func readmeBlock(t *testing.T, cmd string) string {
+	t.Helper()
+	raw, err := os.ReadFile("../../README.md")
+	require.NoError(t, err)
+	start := "```text\n" + cmd + "\n"
+	readme := string(raw)
+	i := strings.Index(readme, start)
+	require.GreaterOrEqual(t, i, 0, "the README shows what %s prints", cmd)
+	block := readme[i+len(start):]
+	return block[:strings.Index(block, "```")]
 }
 
 // TestReadmeCurl posts the README's curl example to the serve command's
