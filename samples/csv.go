@@ -1,6 +1,8 @@
 package samples
 
 import (
+	"crypto/sha256"
+	"encoding/binary"
 	"encoding/csv"
 	"fmt"
 	"io"
@@ -129,6 +131,10 @@ type Row struct {
 	// Group is the row's value in the group column ("(empty)" for an
 	// empty field); "" without a group column.
 	Group string
+	// Key is the row's key (see RowKey) when the table has a key column
+	// (TableOptions.Key); a row without one (an empty field, a short row)
+	// has the key of its place instead (see PlaceKey).
+	Key uint64
 	// Err says why the row cannot be used: a field that is not a number,
 	// a NaN or infinity (wrapping ErrNonFinite), a wrong field count.
 	Err error
@@ -144,6 +150,9 @@ type TableOptions struct {
 	Size int
 	// Group names the column whose value groups the rows; "" for none.
 	Group string
+	// Key names the column whose value tells each row apart (see
+	// Row.Key); "" for none.
+	Key string
 }
 
 // ColumnError reports a column a table does not have.
@@ -161,17 +170,20 @@ func (e *ColumnError) Error() string {
 // ReadTable reads the rows of the file called name. A CSV file must start
 // with a header row naming its columns. The samples' values are the columns
 // named by opt.Features (when it names Size of them), else the first Size
-// numeric columns other than the group column, or every numeric column when
-// Size is 0. Any other format is read as by Read, one row per sample. A
-// row that cannot be used keeps its error; the others are read.
+// numeric columns other than the group and key columns, or every numeric
+// column when Size is 0. Any other format is read as by Read, one row per
+// sample. A row that cannot be used keeps its error; the others are read.
+// Two rows with the same key are an error: a key column tells rows apart.
 func ReadTable(r io.Reader, name string, spec Spec, opt TableOptions) (*Table, error) {
 	f, err := FormatOf(name)
 	if err != nil {
 		return nil, fmt.Errorf("input %s: %w", name, err)
 	}
 	if f != CSV {
-		if opt.Group != "" {
-			return nil, fmt.Errorf("input %s: group column %q: the file is not CSV, the one format with named columns", name, opt.Group)
+		for _, c := range []struct{ what, name string }{{"group", opt.Group}, {"key", opt.Key}} {
+			if c.name != "" {
+				return nil, fmt.Errorf("input %s: %s column %q: the file is not CSV, the one format with named columns", name, c.what, c.name)
+			}
 		}
 		b, err := Read(r, name, spec, Options{KeepBad: true})
 		if err != nil {
@@ -210,12 +222,23 @@ func readCSVTable(r io.Reader, name string, opt TableOptions) (*Table, error) {
 		return nil, fmt.Errorf("input %s: expected at least one data row after the header, got none", name)
 	}
 	index := columnIndex(header)
-	groupCol := -1
-	if opt.Group != "" {
-		var ok bool
-		if groupCol, ok = index[opt.Group]; !ok {
-			return nil, &ColumnError{Column: opt.Group, File: name, Columns: header}
+	column := func(c string) (int, error) {
+		if c == "" {
+			return -1, nil
 		}
+		j, ok := index[c]
+		if !ok {
+			return -1, &ColumnError{Column: c, File: name, Columns: header}
+		}
+		return j, nil
+	}
+	groupCol, err := column(opt.Group)
+	if err != nil {
+		return nil, err
+	}
+	keyCol, err := column(opt.Key)
+	if err != nil {
+		return nil, err
 	}
 	var cols []int
 	if k := opt.Size; k > 0 && len(opt.Features) == k {
@@ -224,7 +247,7 @@ func readCSVTable(r io.Reader, name string, opt TableOptions) (*Table, error) {
 		}
 	} else {
 		for j := range header {
-			if j != groupCol && numericColumn(records, j) {
+			if j != groupCol && j != keyCol && numericColumn(records, j) {
 				cols = append(cols, j)
 			}
 		}
@@ -236,8 +259,22 @@ func readCSVTable(r io.Reader, name string, opt TableOptions) (*Table, error) {
 		}
 	}
 	t := &Table{Columns: pick(header, cols), Rows: make([]Row, len(records))}
+	keyLines := map[uint64]int{}
 	for i, rec := range records {
 		row := Row{Where: "line " + strconv.Itoa(lines[i])}
+		var keyErr error
+		if keyCol >= 0 {
+			if keyCol < len(rec) && strings.TrimSpace(rec[keyCol]) != "" {
+				row.Key = RowKey(strings.TrimSpace(rec[keyCol]))
+				if line, dup := keyLines[row.Key]; dup {
+					return nil, fmt.Errorf("input %s: key column %s: line %d has the key %q of line %d; a key column needs a different value on every row", name, opt.Key, lines[i], strings.TrimSpace(rec[keyCol]), line)
+				}
+				keyLines[row.Key] = lines[i]
+			} else {
+				row.Key = PlaceKey(name, row.Where)
+				keyErr = fmt.Errorf("key column %s: no key, expected a value that tells the row apart", opt.Key)
+			}
+		}
 		if len(rec) != len(header) {
 			row.Err = fmt.Errorf("expected %d fields, as in the header, got %d", len(header), len(rec))
 			t.Rows[i] = row
@@ -250,9 +287,36 @@ func readCSVTable(r io.Reader, name string, opt TableOptions) (*Table, error) {
 			}
 		}
 		row.Values, row.Err = parseFields(rec, cols, true, func(j int) string { return "column " + header[j] })
+		if row.Err == nil && keyErr != nil {
+			row.Values, row.Err = nil, keyErr
+		}
 		t.Rows[i] = row
 	}
 	return t, nil
+}
+
+// MaxNumberKey is the largest key field that is its own key (see RowKey).
+const MaxNumberKey = 1<<63 - 1
+
+// RowKey returns the key of a row whose key field holds text. A whole
+// number from 0 to MaxNumberKey, in decimal digits without leading zeros,
+// is its own key, so that a summary of rows numbered 0, 1, 2, ... records
+// its keys as one range. Any other text has the key 2^63 + the first 63
+// bits of its SHA-256 (big-endian), apart from the numbers; two texts share
+// a key with probability about n²/2^64 among n rows.
+func RowKey(text string) uint64 {
+	if v, err := strconv.ParseUint(text, 10, 63); err == nil && strconv.FormatUint(v, 10) == text {
+		return v
+	}
+	sum := sha256.Sum256([]byte(text))
+	return 1<<63 | binary.BigEndian.Uint64(sum[:8])>>1
+}
+
+// PlaceKey returns the key of the row at where ("line 7", "sample 3") in
+// the file called name: RowKey of the two joined by a newline. It keys rows
+// that have no key column, and those whose key field is empty.
+func PlaceKey(name, where string) uint64 {
+	return RowKey(name + "\n" + where)
 }
 
 // readRecords reads every record of a CSV file with the line each starts
