@@ -46,7 +46,8 @@ func (n Numbers) MarshalJSON() ([]byte, error) {
 //	              "reference" (the reference set's name)},
 //	 "explanations": [{"index", "target", "outputs", "attributions",
 //	                   "shape", "baseline_outputs", "completeness",
-//	                   "points", "error", "groups"}]}
+//	                   "points", "error", "groups",
+//	                   "warnings": [{"code", "message", "suggest"}]}]}
 //
 // A failed sample has "error" and null results.
 type Document struct {
@@ -79,6 +80,8 @@ type ExplanationDocument struct {
 	// Groups is present with feature groups: the attributions summed per
 	// group.
 	Groups *gradattr.GroupedResult `json:"groups,omitempty"`
+	// Warnings are the result's warnings, [] for none.
+	Warnings []Warning `json:"warnings"`
 }
 
 // Document returns the report's document.
@@ -94,7 +97,7 @@ func (r *Report) Document() *Document {
 		shape = []int{}
 	}
 	for _, e := range r.Explanations {
-		j := ExplanationDocument{Index: e.Index, Shape: shape}
+		j := ExplanationDocument{Index: e.Index, Shape: shape, Warnings: []Warning{}}
 		if e.Err != nil {
 			msg := e.Err.Error()
 			j.Error = &msg
@@ -113,6 +116,9 @@ func (r *Report) Document() *Document {
 			j.Completeness = res.Completeness
 			j.Points = res.Cost.GradientEvals
 			j.Groups = e.Grouped
+			if e.Warnings != nil {
+				j.Warnings = e.Warnings
+			}
 		}
 		doc.Explanations = append(doc.Explanations, j)
 	}

@@ -51,7 +51,7 @@ func Example() {
 	fmt.Printf("%s of %q: Σ attributions %.2f, f(x) − f(x′) %.2f, complete: %v\n",
 		r.Settings.Method, m.Meta.Class(r.Target), r.Completeness.Sum, r.Completeness.Expected, r.Completeness.OK)
 	// Output:
-	// integrated-gradients of "failing": Σ attributions 1.00, f(x) − f(x′) 1.00, complete: true
+	// integrated-gradients of "failing": Σ attributions 0.97, f(x) − f(x′) 0.97, complete: true
 }
 
 // Explaining the embedded pumps demo (an invented classifier of pump
@@ -121,8 +121,8 @@ func ExampleSettings_Set() {
 	fmt.Println("complete:", e.Result.Completeness.OK)
 	// Output:
 	// integrated-gradients: failing of condition
-	// bearing_temp (°C)        +0.26
-	// vibration_rms (mm/s)     +0.48
-	// hours_since_service (h)  +0.25
+	// bearing_temp (°C)        +0.29
+	// vibration_rms (mm/s)     +0.54
+	// hours_since_service (h)  +0.16
 	// complete: true
 }

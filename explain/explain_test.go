@@ -154,3 +154,86 @@ func TestPredictBackendRelu(t *testing.T) {
 	assert.Len(t, m.SHA256, 64)
 	assert.NotContains(t, string(raw), m.SHA256)
 }
+
+// explainSoftmax explains the rows of x with the softmax model and the
+// settings s, with the method given.
+func explainSoftmax(t *testing.T, m *explain.Model, s explain.Settings, x ...[]float64) *explain.Report {
+	t.Helper()
+	head, err := m.Head("", s.Logits)
+	require.NoError(t, err)
+	ex, err := explain.New(m, head, s)
+	require.NoError(t, err)
+	var data []float64
+	for _, row := range x {
+		data = append(data, row...)
+	}
+	rep, err := ex.Explain(context.Background(), &samples.Batch{Name: "rows", Shape: []int{len(x), 3}, Data: data, Samples: len(x)}, nil)
+	require.NoError(t, err)
+	return rep
+}
+
+func TestWarnings(t *testing.T) {
+	// y = softmax(x) (ONNX backend test data 1.12.0, node/test_softmax_example).
+	// At x = (0, 0, 40), y_2 = 1/(1 + 2e^−40) ≈ 1 − 8.5e−18 (closed form):
+	// saturated, so its gradient y_2(δ_2i − y_i) is below 1e−17 and the
+	// gradient methods warn; its logits (x itself) are not saturated. At
+	// x = 0 every y_i is 1/3, as at the zero baseline: integrated gradients
+	// has no change to share out. At the backend's own input neither holds.
+	m, x, _ := softmax(t)
+	saturated := []float64{0, 0, 40}
+	for _, method := range []gradattr.Method{gradattr.MethodGradient, gradattr.MethodGradientTimesInput, gradattr.MethodSmoothGrad} {
+		s := explain.Defaults()
+		s.Method = method
+		rep := explainSoftmax(t, m, s, saturated, x)
+		w := rep.Explanations[0].Warnings
+		require.Len(t, w, 1, method)
+		assert.Equal(t, explain.WarnSaturated, w[0].Code, method)
+		assert.Equal(t, []explain.Field{explain.FieldLogits}, w[0].Suggest)
+		assert.Contains(t, w[0].Message, "output y[2] is 1, within 1e-6 of 1")
+		assert.Empty(t, rep.Explanations[1].Warnings, "%s at the backend's input", method)
+
+		s.Logits = true
+		rep = explainSoftmax(t, m, s, saturated)
+		assert.Empty(t, rep.Explanations[0].Warnings, "%s of the logits", method)
+	}
+	// Integrated gradients of a saturated output still shares out
+	// f(x) − f(0) = 1 − 1/3: no warning.
+	rep := explainSoftmax(t, m, explain.Defaults(), saturated, []float64{0, 0, 0})
+	assert.Empty(t, rep.Explanations[0].Warnings)
+	w := rep.Explanations[1].Warnings
+	require.Len(t, w, 1)
+	assert.Equal(t, explain.WarnNoChange, w[0].Code)
+	assert.Equal(t, []explain.Field{explain.FieldBaseline, explain.FieldLogits}, w[0].Suggest)
+
+	// The document carries them: [] when there are none.
+	var buf bytes.Buffer
+	require.NoError(t, rep.WriteJSON(&buf))
+	var doc struct {
+		Explanations []struct {
+			Warnings []map[string]any `json:"warnings"`
+		} `json:"explanations"`
+	}
+	require.NoError(t, json.Unmarshal(buf.Bytes(), &doc))
+	assert.NotNil(t, doc.Explanations[0].Warnings)
+	assert.Empty(t, doc.Explanations[0].Warnings)
+	require.Len(t, doc.Explanations[1].Warnings, 1)
+	assert.Equal(t, "no-change", doc.Explanations[1].Warnings[0]["code"])
+	assert.Equal(t, []any{"baseline", "logits"}, doc.Explanations[1].Warnings[0]["suggest"])
+}
+
+func TestNegligible(t *testing.T) {
+	// The first-order effect of a gradient g_i at x_i is |g_i|·max(|x_i|, 1):
+	// 1e-9 per °C at 300 °C moves the output by 3e-7, below 1e-6; at
+	// 3000 °C by 3e-6. Attributions that are shares of the output (a
+	// completeness report) are read as they are; SmoothGrad's squared
+	// variant is rooted first.
+	grad := &gradattr.Result{Attributions: []float64{1e-9, -2e-7}}
+	assert.True(t, explain.Negligible(grad, []float64{300, 0.5}))
+	assert.False(t, explain.Negligible(grad, []float64{3000, 0.5}))
+	shares := &gradattr.Result{Attributions: []float64{5e-7, -5e-7}, Completeness: &gradattr.Completeness{}}
+	assert.True(t, explain.Negligible(shares, []float64{3000, 3000}))
+	squared := &gradattr.Result{Attributions: []float64{1e-14}, Settings: gradattr.Settings{Variant: "squared"}}
+	assert.True(t, explain.Negligible(squared, []float64{0.5}), "√1e-14 = 1e-7")
+	squared.Attributions[0] = 4e-12
+	assert.False(t, explain.Negligible(squared, []float64{0.5}), "√4e-12 = 2e-6")
+}

@@ -40,6 +40,9 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 	}
 	e := &Explainer{model: m, head: head, settings: s, input: input, output: output, shape: head.InputShape()}
 	e.size = samples.Product(e.shape)
+	if n := head.OutputSize(); s.Target >= n {
+		return nil, fieldError(FieldTarget, fmt.Sprintf(" must be top or an index from 0 to %d (output %q has %d values), got %d", n-1, output, n, s.Target))
+	}
 	// A method with baselines averages the samples explained when it has
 	// no reference set; the others cannot do without one.
 	if s.NeedsReference() && !s.Method.Reads(gradattr.ParamBaseline) && s.Reference == nil {
@@ -81,7 +84,7 @@ func (e *Explainer) options(batch *samples.Batch, name func(*Dataset) string) (g
 	s := &e.settings
 	o := gradattr.Options{
 		Method: s.Method, Points: s.Steps, Rule: s.Rule, Tolerance: s.Tolerance,
-		Samples: s.Samples, Noise: s.Noise, Seed: s.Seed,
+		Samples: s.Samples, Noise: s.Noise, Seed: s.Seed, Absolute: s.Absolute, Variant: s.Variant,
 	}
 	if s.Reference != nil && s.Reference.Batch != nil {
 		o.Reference = s.Reference.Batch.Rows()
@@ -90,23 +93,27 @@ func (e *Explainer) options(batch *samples.Batch, name func(*Dataset) string) (g
 		return o, nil
 	}
 	switch b := s.Baseline; b.Kind {
-	case gradattr.BaselineMean:
+	case gradattr.BaselineMean, gradattr.BaselineMedian:
 		if o.Reference != nil {
-			o.Baselines = []gradattr.Baseline{{Kind: gradattr.BaselineMean, Reference: o.Reference}}
+			o.Baselines = []gradattr.Baseline{{Kind: b.Kind, Reference: o.Reference}}
 			break
 		}
 		if batch == nil {
-			return o, fieldError(FieldBaseline, " mean needs ", FieldReference, " to explain single rows")
+			return o, fieldError(FieldBaseline, " ", string(b.Kind), " needs ", FieldReference, " to explain single rows")
 		}
 		rows := batch.Rows()
 		for i, row := range rows {
 			if err := samples.CheckFinite(row); err != nil {
-				e := fieldError(FieldBaseline, fmt.Sprintf(" mean: sample %d of %s: ", i, batch.Name), err)
+				e := fieldError(FieldBaseline, fmt.Sprintf(" %s: sample %d of %s: ", b.Kind, i, batch.Name), err)
 				e.Input = true
 				return o, e
 			}
 		}
-		o.Baselines = []gradattr.Baseline{{Kind: gradattr.BaselineMean, Reference: rows, Source: batch.Name}}
+		o.Baselines = []gradattr.Baseline{{Kind: b.Kind, Reference: rows, Source: batch.Name}}
+	case gradattr.BaselineConstant:
+		o.Baselines = []gradattr.Baseline{{Kind: gradattr.BaselineConstant, Value: b.Value}}
+	case gradattr.BaselineUniform:
+		o.Baselines = []gradattr.Baseline{{Kind: gradattr.BaselineUniform, Lo: b.Lo, Hi: b.Hi, Seed: s.Seed}}
 	case gradattr.BaselineBlur:
 		o.Baselines = []gradattr.Baseline{{Kind: gradattr.BaselineBlur, Sigma: b.Sigma}}
 	case gradattr.BaselineValues:
@@ -181,10 +188,14 @@ type Explanation struct {
 	// Result is the attribution; nil when Err is set.
 	Result *gradattr.Result
 	// BaselineOutputs are the model's outputs at the baseline, when there
-	// is one baseline; nil otherwise or when they could not be computed.
+	// is one baseline (for gradient × input, the zero input); nil otherwise
+	// or when they could not be computed.
 	BaselineOutputs []float64
 	// Grouped sums the attributions over Settings.Groups.
 	Grouped *gradattr.GroupedResult
+	// Warnings say what the result's numbers do not: that they are near
+	// zero because the output is saturated or does not change.
+	Warnings []Warning
 	// Err says why the sample could not be explained: it could not be
 	// read, holds a NaN or infinity, or the method failed on it.
 	Err error
@@ -238,9 +249,10 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 			ex.Result, ex.Err = gradattr.Attribute(ctx, e.head, x, e.settings.Target, o)
 		}
 		if ex.Err == nil {
-			if len(o.Baselines) == 1 {
-				ex.BaselineOutputs = e.baselineOutputs(ctx, x, o.Baselines[0])
+			if b, ok := reportedBaseline(o); ok {
+				ex.BaselineOutputs = e.baselineOutputs(ctx, x, b)
 			}
+			ex.Warnings = e.warnings(x, ex.Result)
 			if e.settings.Groups != nil {
 				ex.Grouped, ex.Err = ex.Result.Grouped(e.settings.Groups)
 			}
@@ -251,6 +263,19 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 		}
 	}
 	return rep, nil
+}
+
+// reportedBaseline is the one baseline whose outputs a result reports: the
+// baseline of integrated gradients when there is one, the zero input that
+// gradient × input's completeness is checked against.
+func reportedBaseline(o gradattr.Options) (gradattr.Baseline, bool) {
+	switch {
+	case o.Method == gradattr.MethodGradientTimesInput:
+		return gradattr.Baseline{Kind: gradattr.BaselineZero}, true
+	case o.Method.Reads(gradattr.ParamBaseline) && len(o.Baselines) == 1:
+		return o.Baselines[0], true
+	}
+	return gradattr.Baseline{}, false
 }
 
 // baselineOutputs evaluates the model at the baseline of sample x; nil when

@@ -53,6 +53,9 @@ type DecodeOptions struct {
 
 // Decode reads the model bytes raw, called name in messages and documents.
 func Decode(raw []byte, name string, opt DecodeOptions) (*Model, error) {
+	if len(raw) == 0 {
+		return nil, fmt.Errorf("reading model %s: empty file: expected an ONNX model", name)
+	}
 	var g *onnxlite.Model
 	err := guard(func() (err error) {
 		g, err = onnxlite.Decode(bytes.NewReader(raw), onnxlite.DecodeOptions{BaseDir: opt.BaseDir})
@@ -183,13 +186,42 @@ func (m *Model) network() (*nn.Network, error) {
 	return m.net, nil
 }
 
+// squashing are the operators whose input -logits explains.
+var squashing = map[string]bool{"Softmax": true, "LogSoftmax": true, "Sigmoid": true}
+
+// producer returns the operator of the node that computes the graph output
+// called output, "" when no node does (a graph input or a constant).
+func (m *Model) producer(output string) string {
+	for _, n := range m.Graph.Graph.Nodes {
+		for _, o := range n.Outputs {
+			if o == output {
+				return n.OpType
+			}
+		}
+	}
+	return ""
+}
+
 // Head returns the output called output (the first for "") as a function
 // of the model's runtime input, or with logits the input of its final
-// Softmax, LogSoftmax or Sigmoid.
+// Softmax, LogSoftmax or Sigmoid. An output without one refuses logits
+// with a *FieldError.
 func (m *Model) Head(output string, logits bool) (gradattr.Model, error) {
 	nw, err := m.network()
 	if err != nil {
 		return nil, err
+	}
+	if logits {
+		name, err := m.Output(output)
+		if err != nil {
+			return nil, err
+		}
+		if op := m.producer(name); !squashing[op] {
+			if op == "" {
+				op = "no node (it is a graph input or a constant)"
+			}
+			return nil, fieldError(FieldLogits, fmt.Sprintf(" explains the input of a final Softmax, LogSoftmax or Sigmoid, and output %q comes from %s", name, op))
+		}
 	}
 	var h *nn.Head
 	err = guard(func() (err error) {

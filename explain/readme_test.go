@@ -10,6 +10,8 @@ import (
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+
+	"github.com/apportion/apportion/internal/testfiles"
 )
 
 // TestReadmeShowsExample checks that the README's "Using the library"
@@ -39,13 +41,6 @@ func TestReadmeShowsExample(t *testing.T) {
 	}
 	require.NotEmpty(t, body, "no func Example in example_test.go")
 
-	readme, err := os.ReadFile("../README.md")
-	require.NoError(t, err)
-	_, section, ok := strings.Cut(string(readme), "\n## Using the library\n")
-	require.True(t, ok, "README has no section Using the library")
-	_, code, ok := strings.Cut(section, "```go\n")
-	require.True(t, ok, "the section has no Go code")
-	code, _, ok = strings.Cut(code, "```")
-	require.True(t, ok)
+	code := testfiles.ReadmeCode(t, "../README.md", "Using the library", "go")
 	assert.Equal(t, body, strings.TrimRight(code, "\n"), "README's snippet vs func Example in explain/example_test.go")
 }

@@ -31,11 +31,13 @@ const (
 	FieldSamples   Field = Field(gradattr.ParamSamples)
 	FieldNoise     Field = Field(gradattr.ParamNoise)
 	FieldSeed      Field = Field(gradattr.ParamSeed)
+	FieldAbs       Field = Field(gradattr.ParamAbs)
+	FieldVariant   Field = Field(gradattr.ParamVariant)
 	FieldGroups    Field = "groups"
 )
 
 // methodFields are the method parameters, in the order Check reports them.
-var methodFields = []Field{FieldBaseline, FieldReference, FieldSteps, FieldRule, FieldTolerance, FieldSamples, FieldNoise, FieldSeed}
+var methodFields = []Field{FieldBaseline, FieldReference, FieldSteps, FieldRule, FieldTolerance, FieldSamples, FieldNoise, FieldSeed, FieldAbs, FieldVariant}
 
 // ErrSettings is wrapped by every FieldError.
 var ErrSettings = errors.New("explain: invalid settings")
@@ -97,12 +99,17 @@ func (e *FieldError) Unwrap() error { return e.err }
 const DefaultBlurSigma = 2.0
 
 // Baseline is the baseline of integrated gradients as the surfaces ask for
-// it: zero, the mean of the reference set (or, without one, of the samples
-// explained), the sample blurred, or the samples of a file.
+// it: zero, a constant, the mean or median of the reference set (or,
+// without one, of the samples explained), the sample blurred, uniform noise
+// (seeded by Settings.Seed), or the samples of a file.
 type Baseline struct {
-	// Kind is gradattr.BaselineZero, BaselineMean, BaselineBlur or
-	// BaselineValues.
+	// Kind is gradattr.BaselineZero, BaselineConstant, BaselineMean,
+	// BaselineMedian, BaselineBlur, BaselineUniform or BaselineValues.
 	Kind gradattr.BaselineKind
+	// Value is the constant of BaselineConstant.
+	Value float64
+	// Lo and Hi bound the noise of BaselineUniform.
+	Lo, Hi float64
 	// Sigma is the blur's σ in pixels.
 	Sigma float64
 	// Samples holds the baselines of BaselineValues; the results are
@@ -110,15 +117,41 @@ type Baseline struct {
 	Samples *Dataset
 }
 
-// ParseBaseline reads a baseline as the surfaces write it: zero, mean,
-// blur (σ = DefaultBlurSigma), blur:S (σ = S pixels), or else the name of
-// a file of baseline samples, which the caller reads into Samples.
+// BaselineWords are the baselines ParseBaseline reads that are not files,
+// as a message lists them.
+const BaselineWords = "zero, constant:V, mean, median, blur, blur:S or uniform:LO:HI"
+
+// ParseBaseline reads a baseline as the surfaces write it: zero,
+// constant:V (every feature V), mean or median (of the reference set),
+// blur (σ = DefaultBlurSigma), blur:S (σ = S pixels), uniform:LO:HI (noise
+// drawn uniformly in [LO, HI)), or else the name of a file of baseline
+// samples, which the caller reads into Samples.
 func ParseBaseline(text string) (Baseline, error) {
+	finite := func(s string) (float64, bool) {
+		v, err := strconv.ParseFloat(s, 64)
+		return v, err == nil && !math.IsNaN(v) && !math.IsInf(v, 0)
+	}
 	switch {
 	case text == "zero":
 		return Baseline{Kind: gradattr.BaselineZero}, nil
 	case text == "mean":
 		return Baseline{Kind: gradattr.BaselineMean}, nil
+	case text == "median":
+		return Baseline{Kind: gradattr.BaselineMedian}, nil
+	case strings.HasPrefix(text, "constant:"):
+		v, ok := finite(strings.TrimPrefix(text, "constant:"))
+		if !ok {
+			return Baseline{}, fieldError(FieldBaseline, " constant:V needs a finite number V, got ", strconv.Quote(strings.TrimPrefix(text, "constant:")))
+		}
+		return Baseline{Kind: gradattr.BaselineConstant, Value: v}, nil
+	case strings.HasPrefix(text, "uniform:"):
+		lo, hi, _ := strings.Cut(strings.TrimPrefix(text, "uniform:"), ":")
+		l, okLo := finite(lo)
+		h, okHi := finite(hi)
+		if !okLo || !okHi || !(l < h) {
+			return Baseline{}, fieldError(FieldBaseline, " uniform:LO:HI needs finite bounds LO < HI, got ", strconv.Quote(strings.TrimPrefix(text, "uniform:")))
+		}
+		return Baseline{Kind: gradattr.BaselineUniform, Lo: l, Hi: h}, nil
 	case text == "blur":
 		return Baseline{Kind: gradattr.BaselineBlur, Sigma: DefaultBlurSigma}, nil
 	case strings.HasPrefix(text, "blur:"):
@@ -178,6 +211,10 @@ type Settings struct {
 	Samples   int
 	Noise     float64
 	Seed      uint64
+	// Absolute takes the gradient's absolute value; Variant is
+	// SmoothGrad's aggregate (see gradattr.Options).
+	Absolute bool
+	Variant  gradattr.Variant
 	// Reference is the reference set: expected gradients draw from it,
 	// the mean baseline averages it.
 	Reference *Dataset
@@ -217,7 +254,8 @@ func (s *Settings) Given(f Field) bool { return s.given[f] }
 // given: method (a canonical name or an alias), target (an index or top),
 // output, logits (true or false), baseline (see ParseBaseline), reference
 // (the name of the set, read by the caller into Reference.Batch), steps
-// (a count or auto), rule, tolerance, samples, noise and seed. A value out
+// (a count or auto), rule, tolerance, samples, noise, seed, abs (true or
+// false) and variant (mean, squared or variance). A value out
 // of range is a *FieldError.
 func (s *Settings) Set(f Field, text string) error {
 	if s.given == nil {
@@ -250,12 +288,16 @@ func (s *Settings) set(f Field, text string) error {
 		s.Target = n
 	case FieldOutput:
 		s.Output = text
-	case FieldLogits:
+	case FieldLogits, FieldAbs:
 		v, err := strconv.ParseBool(text)
 		if err != nil {
 			return fieldError(f, " must be true or false, got ", strconv.Quote(text))
 		}
-		s.Logits = v
+		if f == FieldLogits {
+			s.Logits = v
+		} else {
+			s.Absolute = v
+		}
 	case FieldBaseline:
 		b, err := ParseBaseline(text)
 		if err != nil {
@@ -277,7 +319,7 @@ func (s *Settings) set(f Field, text string) error {
 	case FieldRule:
 		r, err := gradattr.ParseRule(text)
 		if err != nil {
-			return fieldError(f, ": ", err)
+			return fieldError(f, " must be trapezoid, left, right, midpoint or gauss-legendre, got ", strconv.Quote(text))
 		}
 		s.Rule = r
 	case FieldTolerance:
@@ -304,6 +346,12 @@ func (s *Settings) set(f Field, text string) error {
 			return fieldError(f, " must be a non-negative integer, got ", strconv.Quote(text))
 		}
 		s.Seed = v
+	case FieldVariant:
+		v, err := gradattr.ParseVariant(text)
+		if err != nil {
+			return fieldError(f, " must be mean, squared or variance, got ", strconv.Quote(text))
+		}
+		s.Variant = v
 	default:
 		return fieldError(f, " is not a setting")
 	}
@@ -311,9 +359,9 @@ func (s *Settings) set(f Field, text string) error {
 }
 
 // Check judges the settings together: a method parameter given (by Set)
-// for a method that does not read it, a reference set given with
-// integrated gradients against a baseline other than the mean. Errors are
-// *FieldError.
+// for a method that does not read it, fewer integration points than the
+// rule needs, a reference set given with integrated gradients against a
+// baseline other than the mean. Errors are *FieldError.
 func (s *Settings) Check() error {
 	if _, err := gradattr.ParseMethod(string(s.Method)); err != nil {
 		return fieldError(FieldMethod, " must be one of ", gradattr.MethodNames(), ", got ", strconv.Quote(string(s.Method)))
@@ -321,6 +369,9 @@ func (s *Settings) Check() error {
 	for _, f := range methodFields {
 		if !s.given[f] || s.Method.Reads(gradattr.Param(f)) {
 			continue
+		}
+		if f == FieldSeed && s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.Kind == gradattr.BaselineUniform {
+			continue // the seed of the uniform baseline's noise
 		}
 		var readers []string
 		for _, m := range gradattr.Methods() {
@@ -330,15 +381,25 @@ func (s *Settings) Check() error {
 		}
 		return fieldError(f, " applies to ", FieldMethod, " ", strings.Join(readers, " and "), " only, not ", s.Method)
 	}
-	if s.Reference != nil && s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.Kind != gradattr.BaselineMean {
-		return fieldError(FieldReference, " with ", FieldMethod, " ", s.Method, " is the set ", FieldBaseline, " mean averages; give ", FieldBaseline, " mean too")
+	if min := s.Rule.MinPoints(); s.Method.Reads(gradattr.ParamSteps) && s.Steps > 0 && s.Steps < min {
+		return fieldError(FieldSteps, fmt.Sprintf(" must be auto or at least %d with the %s rule, got %d", min, s.Rule, s.Steps))
+	}
+	if s.Reference != nil && s.Method.Reads(gradattr.ParamBaseline) && !s.Baseline.fromReference() {
+		return fieldError(FieldReference, " with ", FieldMethod, " ", s.Method, " is the set ", FieldBaseline, " mean or median reads; give ", FieldBaseline, " mean or median too")
 	}
 	return nil
 }
 
 // NeedsReference reports whether the settings read a reference set:
-// expected gradients, and a method with a baseline against the mean.
+// expected gradients, and a method with a baseline against the mean or
+// median.
 func (s *Settings) NeedsReference() bool {
 	return (s.Method.Reads(gradattr.ParamReference) && !s.Method.Reads(gradattr.ParamBaseline)) ||
-		(s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.Kind == gradattr.BaselineMean)
+		(s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.fromReference())
+}
+
+// fromReference reports whether the baseline is computed from a reference
+// set: the mean or the median.
+func (b Baseline) fromReference() bool {
+	return b.Kind == gradattr.BaselineMean || b.Kind == gradattr.BaselineMedian
 }

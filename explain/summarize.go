@@ -2,11 +2,7 @@ package explain
 
 import (
 	"context"
-	"encoding/json"
-	"fmt"
-	"io"
 	"runtime"
-	"sort"
 	"sync"
 
 	"github.com/apportion/apportion/gradattr"
@@ -154,36 +150,4 @@ func (e *Explainer) Summarize(ctx context.Context, rows []samples.Row, s *gradat
 		}
 	}
 	return skipped, nil
-}
-
-// ReadGroups reads feature groups: a JSON array of {"name": "...",
-// "indices": [...]} objects, or an object mapping each group name to its
-// indices (groups then come in name order).
-func ReadGroups(r io.Reader) ([]gradattr.Group, error) {
-	raw, err := io.ReadAll(io.LimitReader(r, samples.MaxBytes))
-	if err != nil {
-		return nil, err
-	}
-	var list []gradattr.Group
-	if err := json.Unmarshal(raw, &list); err == nil {
-		for i, g := range list {
-			if g.Name == "" {
-				return nil, fmt.Errorf("group %d has no name", i)
-			}
-		}
-		return list, nil
-	}
-	var byName map[string][]int
-	if err := json.Unmarshal(raw, &byName); err != nil {
-		return nil, fmt.Errorf("expected a JSON array of {\"name\", \"indices\"} objects or an object of name: [indices], got: %w", err)
-	}
-	names := make([]string, 0, len(byName))
-	for n := range byName {
-		names = append(names, n)
-	}
-	sort.Strings(names)
-	for _, n := range names {
-		list = append(list, gradattr.Group{Name: n, Indices: byName[n]})
-	}
-	return list, nil
 }

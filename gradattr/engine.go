@@ -88,7 +88,7 @@ func newEngine(ctx context.Context, m Model, x []float64, target, batch int) (*e
 	case target == TargetTop:
 		target = Top(out)
 	case target < 0 || target >= e.nout:
-		return nil, fmt.Errorf("%w: target %d, model has outputs 0..%d (or TargetTop)", ErrInput, target, e.nout-1)
+		return nil, fmt.Errorf("%w: target %d, model has outputs 0..%d", ErrInput, target, e.nout-1)
 	}
 	e.target = target
 	return e, nil

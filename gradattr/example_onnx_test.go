@@ -93,9 +93,9 @@ func ExampleIntegratedGradients_pumps() {
 		fmt.Printf("%-20s %+.2f\n", features[i], r.Attributions[i])
 	}
 	// Output:
-	// predicted failing: p = 1.000, 0.000 at the baseline
-	// Σ attributions 1.00 = f(x) − f(x′) 1.00 within 0.1%: true
-	// vibration_rms        +0.48
-	// bearing_temp         +0.26
-	// hours_since_service  +0.25
+	// predicted failing: p = 0.969, 0.000 at the baseline
+	// Σ attributions 0.97 = f(x) − f(x′) 0.97 within 0.1%: true
+	// vibration_rms        +0.54
+	// bearing_temp         +0.29
+	// hours_since_service  +0.16
 }

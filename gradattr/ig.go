@@ -78,15 +78,15 @@ func IntegratedGradients(ctx context.Context, m Model, x []float64, target int, 
 	if !opt.Rule.valid() {
 		return nil, fmt.Errorf("%w: unknown quadrature rule %d", ErrOptions, int(opt.Rule))
 	}
-	if opt.Points < 0 || opt.Points > MaxPointsLimit || (opt.Points > 0 && opt.Points < opt.Rule.minPoints()) {
-		return nil, fmt.Errorf("%w: %v rule with %d points, want 0 (automatic) or %d..%d", ErrOptions, opt.Rule, opt.Points, opt.Rule.minPoints(), MaxPointsLimit)
+	if opt.Points < 0 || opt.Points > MaxPointsLimit || (opt.Points > 0 && opt.Points < opt.Rule.MinPoints()) {
+		return nil, fmt.Errorf("%w: %v rule with %d points, want %d..%d, or 0 to refine the count automatically", ErrOptions, opt.Rule, opt.Points, opt.Rule.MinPoints(), MaxPointsLimit)
 	}
 	maxPoints := opt.MaxPoints
 	switch {
 	case maxPoints == 0:
 		maxPoints = DefaultMaxPoints
-	case maxPoints < opt.Rule.minPoints() || maxPoints > MaxPointsLimit:
-		return nil, fmt.Errorf("%w: max points %d, want 0 (default %d) or %d..%d", ErrOptions, maxPoints, DefaultMaxPoints, opt.Rule.minPoints(), MaxPointsLimit)
+	case maxPoints < opt.Rule.MinPoints() || maxPoints > MaxPointsLimit:
+		return nil, fmt.Errorf("%w: max points %d, want 0 (default %d) or %d..%d", ErrOptions, maxPoints, DefaultMaxPoints, opt.Rule.MinPoints(), MaxPointsLimit)
 	}
 	tol, err := tolerance(opt.Tolerance)
 	if err != nil {
@@ -129,7 +129,7 @@ func IntegratedGradients(ctx context.Context, m Model, x []float64, target int, 
 		if opt.Points > 0 {
 			sched = startSchedule(opt.Rule, opt.Points)
 		} else {
-			sched = startSchedule(opt.Rule, min(maxPoints, max(autoStart+boolInt(opt.Rule == RuleTrapezoid), opt.Rule.minPoints())))
+			sched = startSchedule(opt.Rule, min(maxPoints, max(autoStart+boolInt(opt.Rule == RuleTrapezoid), opt.Rule.MinPoints())))
 		}
 		prev, refined := make([]float64, e.size), false
 		attr, err := ig.run(xb, sched, func(attr []float64) bool {

@@ -35,6 +35,8 @@ const (
 	ParamSamples   Param = "samples"   // Options.Samples
 	ParamNoise     Param = "noise"     // Options.Noise
 	ParamSeed      Param = "seed"      // Options.Seed
+	ParamAbs       Param = "abs"       // Options.Absolute
+	ParamVariant   Param = "variant"   // Options.Variant
 )
 
 // DefaultSeed is the seed Method.Defaults gives the random methods. An
@@ -68,6 +70,10 @@ type Options struct {
 	Noise float64
 	// Seed seeds the random methods.
 	Seed uint64
+	// Absolute takes the gradient's absolute value (GradientOptions).
+	Absolute bool
+	// Variant is SmoothGrad's aggregate; the zero value is the mean.
+	Variant Variant
 	// Baselines are the baselines of integrated gradients.
 	Baselines []Baseline
 	// Reference is the reference set: expected gradients draw their
@@ -94,8 +100,9 @@ type methodSpec struct {
 var methodSpecs = []methodSpec{
 	{
 		method: MethodGradient, alias: "grad", title: "gradient",
-		run: func(ctx context.Context, m Model, x []float64, target int, _ Options) (*Result, error) {
-			return Gradient(ctx, m, x, target, GradientOptions{})
+		params: []Param{ParamAbs},
+		run: func(ctx context.Context, m Model, x []float64, target int, o Options) (*Result, error) {
+			return Gradient(ctx, m, x, target, GradientOptions{Absolute: o.Absolute})
 		},
 	},
 	{
@@ -106,11 +113,11 @@ var methodSpecs = []methodSpec{
 	},
 	{
 		method: MethodSmoothGrad, title: "SmoothGrad",
-		params:   []Param{ParamSamples, ParamNoise, ParamSeed},
+		params:   []Param{ParamSamples, ParamNoise, ParamSeed, ParamVariant},
 		defaults: Options{Samples: DefaultSamples, Noise: DefaultNoise, Seed: DefaultSeed},
 		run: func(ctx context.Context, m Model, x []float64, target int, o Options) (*Result, error) {
 			return SmoothGrad(ctx, m, x, target, SmoothGradOptions{
-				Samples: o.Samples, Noise: o.Noise, Seed: o.Seed, BatchSize: o.BatchSize,
+				Samples: o.Samples, Noise: o.Noise, Seed: o.Seed, Variant: o.Variant, BatchSize: o.BatchSize,
 			})
 		},
 	},
@@ -310,6 +317,10 @@ func (o Options) Settings() Settings {
 			s.Noise = o.Noise
 		case ParamSeed:
 			s.Seed = o.Seed
+		case ParamAbs:
+			s.Absolute = o.Absolute
+		case ParamVariant:
+			s.Variant = o.Variant.String()
 		}
 	}
 	return s

@@ -85,7 +85,7 @@ func TestOptionsSettingsMatchResults(t *testing.T) {
 		r, err := Attribute(context.Background(), f, x, 0, o)
 		require.NoError(t, err, m)
 		got := r.Settings
-		got.BatchSize, got.Variant = 0, ""
+		got.BatchSize = 0
 		want, err := json.Marshal(o.Settings())
 		require.NoError(t, err)
 		have, err := json.Marshal(got)

@@ -59,8 +59,9 @@ func ParseRule(s string) (Rule, error) {
 
 func (r Rule) valid() bool { return r >= 0 && int(r) < len(ruleNames) }
 
-// minPoints is the smallest point count the rule is defined for.
-func (r Rule) minPoints() int {
+// MinPoints is the smallest point count the rule is defined for: 2 for the
+// trapezoid rule (its two end points), 1 for the others.
+func (r Rule) MinPoints() int {
 	if r == RuleTrapezoid {
 		return 2
 	}
@@ -73,8 +74,8 @@ func (r Rule) Nodes(m int) (alpha, weight []float64, err error) {
 	if !r.valid() {
 		return nil, nil, fmt.Errorf("%w: unknown quadrature rule %d", ErrOptions, int(r))
 	}
-	if m < r.minPoints() || m > MaxPointsLimit {
-		return nil, nil, fmt.Errorf("%w: %v rule with %d points, want %d..%d", ErrOptions, r, m, r.minPoints(), MaxPointsLimit)
+	if m < r.MinPoints() || m > MaxPointsLimit {
+		return nil, nil, fmt.Errorf("%w: %v rule with %d points, want %d..%d", ErrOptions, r, m, r.MinPoints(), MaxPointsLimit)
 	}
 	s := startSchedule(r, m)
 	cEnd, cIn := s.coefficients()

@@ -1,6 +1,9 @@
 package gradattr
 
-import "time"
+import (
+	"encoding/json"
+	"time"
+)
 
 // CompletenessFloor is ε in the relative completeness gap
 //
@@ -52,7 +55,8 @@ type Result struct {
 //	ok           = judged && relative_gap ≤ tolerance
 //
 // Gradient×input has no such guarantee: its completeness against the zero
-// baseline is reported with Judged false and OK false.
+// baseline is reported with Judged false and OK false, which JSON writes as
+// "ok": null (see MarshalJSON).
 type Completeness struct {
 	// Sum is Σ_i a_i.
 	Sum float64 `json:"sum"`
@@ -69,6 +73,20 @@ type Completeness struct {
 	Judged bool `json:"judged"`
 	// OK is true when the check is judged and RelativeGap ≤ Tolerance.
 	OK bool `json:"ok"`
+}
+
+// MarshalJSON writes the check with its JSON keys; "ok" is null when the
+// check is not judged, since neither true nor false would be a verdict.
+func (c Completeness) MarshalJSON() ([]byte, error) {
+	type plain Completeness // the same fields, without this method
+	var ok *bool
+	if c.Judged {
+		ok = &c.OK
+	}
+	return json.Marshal(struct {
+		plain
+		OK *bool `json:"ok"`
+	}{plain(c), ok})
 }
 
 // Cost counts model evaluations, per sample: a batch of n points counts n.

@@ -101,7 +101,7 @@ type SmoothGradOptions struct {
 // has no Completeness.
 func SmoothGrad(ctx context.Context, m Model, x []float64, target int, opt SmoothGradOptions) (*Result, error) {
 	if opt.Variant < VariantMean || opt.Variant > VariantVariance {
-		return nil, fmt.Errorf("%w: SmoothGrad variant %d, want VariantMean, VariantSquared or VariantVariance", ErrOptions, int(opt.Variant))
+		return nil, fmt.Errorf("%w: SmoothGrad variant %d, want mean (0), squared (1) or variance (2)", ErrOptions, int(opt.Variant))
 	}
 	if opt.Noise < 0 || math.IsNaN(opt.Noise) || math.IsInf(opt.Noise, 0) {
 		return nil, fmt.Errorf("%w: SmoothGrad noise %v, want a finite level ≥ 0 (0 means %v)", ErrOptions, opt.Noise, DefaultNoise)

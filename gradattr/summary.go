@@ -10,6 +10,7 @@ import (
 	"math/rand/v2"
 	"slices"
 	"sort"
+	"strconv"
 	"strings"
 )
 
@@ -53,6 +54,28 @@ const SummaryConfidence = 0.95
 // models, methods, settings, features, grouping or bootstrap, or sharing a
 // row key. Errors wrapping it wrap ErrInput too.
 var ErrMismatch = errors.New("gradattr: summaries do not match")
+
+// MismatchError says why two summaries cannot be merged. It wraps
+// ErrMismatch and ErrInput.
+type MismatchError struct {
+	// What is what differs: "model", "method", "settings", "features",
+	// "grouped by", "bootstrap replicates", "bootstrap seed", or "row key"
+	// when both summaries hold a row.
+	What string
+	// A and B are the two summaries' values of What; for "row key", A is
+	// the first key both hold.
+	A, B string
+}
+
+func (e *MismatchError) Error() string {
+	if e.What == "row key" {
+		return ErrMismatch.Error() + ": both summaries hold row key " + e.A
+	}
+	return ErrMismatch.Error() + ": " + e.What + " " + e.A + " vs " + e.B
+}
+
+// Is reports ErrMismatch and ErrInput.
+func (e *MismatchError) Is(target error) bool { return target == ErrMismatch || target == ErrInput }
 
 // SummaryOptions describes what a Summary summarises. Two summaries merge
 // only when their options are equal (Settings compared as JSON values).
@@ -373,7 +396,7 @@ func poissonWeights(seed, key uint64, nb int) []float64 {
 // differ or whose row keys overlap.
 func (s *Summary) Merge(o *Summary) error {
 	if o == nil {
-		return fmt.Errorf("%w: %w: nil summary", ErrInput, ErrMismatch)
+		return &MismatchError{What: "summary", A: "a summary", B: "none"}
 	}
 	if err := s.compatible(o); err != nil {
 		return err
@@ -410,7 +433,7 @@ func (s *Summary) Merge(o *Summary) error {
 
 func (s *Summary) compatible(o *Summary) error {
 	mismatch := func(what string, a, b any) error {
-		return fmt.Errorf("%w: %w: %s %v vs %v", ErrInput, ErrMismatch, what, a, b)
+		return &MismatchError{What: what, A: fmt.Sprint(a), B: fmt.Sprint(b)}
 	}
 	switch {
 	case s.opt.Model != o.opt.Model:
@@ -448,7 +471,7 @@ func mergeKeys(a, b []keyRange) ([]keyRange, error) {
 	var out []keyRange
 	for _, r := range all {
 		if n := len(out); n > 0 && r.Lo < out[n-1].Hi {
-			return nil, fmt.Errorf("%w: %w: both summaries hold row key %d", ErrInput, ErrMismatch, r.Lo)
+			return nil, &MismatchError{What: "row key", A: strconv.FormatUint(r.Lo, 10)}
 		}
 		if n := len(out); n > 0 && r.Lo == out[n-1].Hi {
 			out[n-1].Hi = r.Hi
@@ -905,7 +928,7 @@ func DecodeSummary(r io.Reader) (*Summary, error) {
 	if !json.Valid(raw) {
 		var x any
 		err := json.Unmarshal(raw, &x)
-		return nil, fmt.Errorf("%w: summary JSON: %v", ErrInput, err)
+		return nil, fmt.Errorf("%w: not a summary document: %v", ErrInput, err)
 	}
 	s := new(Summary)
 	if err := s.UnmarshalJSON(raw); err != nil {

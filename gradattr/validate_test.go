@@ -100,7 +100,7 @@ func TestValidation(t *testing.T) {
 		}, ErrInput, "+Inf"},
 		{"target", func() error { _, err := Gradient(ctx, f, x, 1, GradientOptions{}); return err }, ErrInput, "target 1, model has outputs 0..0"},
 		{"unknown rule", func() error { _, err := IntegratedGradients(ctx, f, x, 0, IGOptions{Rule: Rule(9)}); return err }, ErrOptions, "unknown quadrature rule 9"},
-		{"trapezoid 1 point", func() error { _, err := IntegratedGradients(ctx, f, x, 0, IGOptions{Points: 1}); return err }, ErrOptions, "want 0 (automatic) or 2.."},
+		{"trapezoid 1 point", func() error { _, err := IntegratedGradients(ctx, f, x, 0, IGOptions{Points: 1}); return err }, ErrOptions, "want 2..65536, or 0 to refine the count automatically"},
 		{"too many points", func() error {
 			_, err := IntegratedGradients(ctx, f, x, 0, IGOptions{Points: MaxPointsLimit + 1})
 			return err
@@ -195,4 +195,26 @@ func TestResultJSON(t *testing.T) {
 	b, err = json.Marshal(g)
 	require.NoError(t, err)
 	assert.NotContains(t, string(b), "completeness")
+}
+
+func TestCompletenessJSON(t *testing.T) {
+	// A judged check writes its verdict; an unjudged one (gradient × input)
+	// has none: "ok" is null (RFC 8259 §3: null is the JSON value for no
+	// value).
+	for _, c := range []struct {
+		cp   Completeness
+		want string
+	}{
+		{Completeness{Sum: 1, Expected: 1, Tolerance: 0.005, Judged: true, OK: true}, `"judged":true,"ok":true`},
+		{Completeness{Sum: 2, Expected: 1, Gap: 1, RelativeGap: 1, Tolerance: 0.005, Judged: true}, `"judged":true,"ok":false`},
+		{Completeness{Sum: 2, Expected: 1, Gap: 1, RelativeGap: 1}, `"judged":false,"ok":null`},
+	} {
+		raw, err := json.Marshal(c.cp)
+		require.NoError(t, err)
+		assert.Contains(t, string(raw), c.want)
+		assert.Contains(t, string(raw), `"sum":`)
+		var back Completeness
+		require.NoError(t, json.Unmarshal(raw, &back))
+		assert.Equal(t, c.cp, back, "reads back")
+	}
 }

@@ -3,7 +3,10 @@ package gradattr_test
 import (
 	"bytes"
 	"context"
+	"fmt"
 	"math"
+	"os"
+	"strings"
 	"sync"
 	"testing"
 	"time"
@@ -224,4 +227,17 @@ func TestWeldsPointingGame(t *testing.T) {
 	assert.Greater(t, mean.posShare(), 3*mean.areaShare(), "positive attribution share in masks vs area share")
 	// Completeness, Sundararajan et al. 2017, Proposition 1: Σ a = f(x) − f(x′).
 	assert.Less(t, mean.meanGap(), 0.05, "mean relative completeness gap")
+
+	// The README's table reports these runs: its hits and completeness
+	// failures are the ones computed here.
+	readme, err := os.ReadFile("../README.md")
+	require.NoError(t, err)
+	for name, row := range map[string]string{"mean clean": "| mean clean patch |", "zero": "| zero (black) |"} {
+		st := stats[name]
+		i := strings.Index(string(readme), row)
+		require.GreaterOrEqual(t, i, 0, "README row %q", row)
+		cells := strings.Split(strings.SplitN(string(readme)[i:], "\n", 2)[0], "|")
+		assert.Equal(t, fmt.Sprintf("%d/%d (%.0f%%)", st.hits, st.patches, 100*st.hitRate()), strings.TrimSpace(cells[2]), name)
+		assert.Equal(t, fmt.Sprintf("%d/%d", st.patches-st.completeOK, st.patches), strings.TrimSpace(cells[7]), name)
+	}
 }

@@ -6,9 +6,14 @@
 //	POST /v1/predict   {"inputs": [sample, ...]}: the predict document
 //	POST /v1/explain   {"inputs", "method", "target", "steps", "rule",
 //	                   "tolerance", "baseline", "samples", "noise", "seed",
-//	                   "logits"}: the explain document; absent fields take
-//	                   explain.Defaults
+//	                   "logits", "abs", "variant"}: the explain document;
+//	                   absent fields take explain.Defaults
 //	GET  /metrics      Prometheus text format
+//
+// A sample in "inputs" is an array of numbers in the model's input shape,
+// or, for a model whose metadata names its features, an object of the
+// features' values by name ({"bearing_temp": 77.2, ...}; every feature
+// given, no other key).
 //
 // Errors are {"error": "..."}: 400 for a bad request, 413 for a body over
 // the limit, 503 with Retry-After when the queue is full, 504 past the time
@@ -450,10 +455,14 @@ func decodeRequest(raw []byte, v any) *httpError {
 }
 
 // samplesOf reads the "inputs" field: one sample or an array of samples of
-// the model's input shape, finite numbers only.
+// the model's input shape, finite numbers only; a sample is an array of
+// numbers, or an object of its features' values by name (see namedInputs).
 func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError) {
 	if len(bytes.TrimSpace(inputs)) == 0 || string(bytes.TrimSpace(inputs)) == "null" {
 		return nil, badRequest(`"inputs" is required: an array of samples of shape %s`, samples.ShapeString(h.sampleShape()))
+	}
+	if b, ok, herr := h.namedInputs(inputs); ok {
+		return b, herr
 	}
 	b, err := samples.ReadJSON(bytes.NewReader(inputs), h.spec)
 	if err == nil {
@@ -579,6 +588,8 @@ type explainRequest struct {
 	Noise     *float64        `json:"noise"`
 	Seed      *uint64         `json:"seed"`
 	Logits    *bool           `json:"logits"`
+	Abs       *bool           `json:"abs"`
+	Variant   *string         `json:"variant"`
 }
 
 // fieldName names a setting as a request field: "steps".
@@ -624,6 +635,8 @@ func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 		{explain.FieldSamples, req.Samples != nil, func() string { return strconv.Itoa(*req.Samples) }},
 		{explain.FieldNoise, req.Noise != nil, func() string { return float(*req.Noise) }},
 		{explain.FieldSeed, req.Seed != nil, func() string { return strconv.FormatUint(*req.Seed, 10) }},
+		{explain.FieldAbs, req.Abs != nil, func() string { return strconv.FormatBool(*req.Abs) }},
+		{explain.FieldVariant, req.Variant != nil, func() string { return *req.Variant }},
 	}
 	for _, fl := range fields {
 		if !fl.given {
@@ -634,7 +647,7 @@ func (h *Handler) settings(req *explainRequest) (explain.Settings, *httpError) {
 		}
 	}
 	if st.Baseline.Kind == gradattr.BaselineValues {
-		return st, badRequest(`"baseline" must be zero, mean, blur or blur:S, got %q`, *req.Baseline)
+		return st, badRequest(`"baseline" must be %s (files are the command line's), got %q`, explain.BaselineWords, *req.Baseline)
 	}
 	if st.NeedsReference() {
 		st.Reference = h.opt.Reference

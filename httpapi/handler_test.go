@@ -11,6 +11,7 @@ import (
 	"net"
 	"net/http"
 	"net/http/httptest"
+	"regexp"
 	"strconv"
 	"strings"
 	"sync"
@@ -166,8 +167,8 @@ func TestServeStatuses(t *testing.T) {
 		{"unknown method", "/v1/explain", `{"inputs": [` + sample + `], "method": "lime"}`, http.StatusBadRequest,
 			[]string{`"method" must be one of gradient (grad), gradient-times-input (grad-input), smoothgrad, integrated-gradients (ig), expected-gradients (expected-grad), got "lime"`}},
 		{"no inputs", "/v1/explain", `{"method": "grad"}`, http.StatusBadRequest, []string{`"inputs" is required`}},
-		{"target out of range", "/v1/explain", `{"inputs": [` + sample + `], "method": "grad", "target": 3}`, http.StatusBadRequest, []string{"target 3", "0..2"}},
-		{"file baseline", "/v1/explain", `{"inputs": [` + sample + `], "baseline": "/etc/passwd"}`, http.StatusBadRequest, []string{`"baseline" must be zero, mean, blur or blur:S`}},
+		{"target out of range", "/v1/explain", `{"inputs": [` + sample + `], "method": "grad", "target": 3}`, http.StatusBadRequest, []string{`"target" must be top or an index from 0 to 2 (output "condition" has 3 values), got 3`}},
+		{"file baseline", "/v1/explain", `{"inputs": [` + sample + `], "baseline": "/etc/passwd"}`, http.StatusBadRequest, []string{`"baseline" must be zero, constant:V, mean, median, blur, blur:S or uniform:LO:HI (files are the command line's), got "/etc/passwd"`}},
 		{"steps too large", "/v1/explain", `{"inputs": [` + sample + `], "steps": 100000}`, http.StatusBadRequest, []string{`"steps" must be auto or a number from 1 to 65536, got "100000"`}},
 		{"flag of another method", "/v1/explain", `{"inputs": [` + sample + `], "noise": 0.2}`, http.StatusBadRequest, []string{`"noise" applies to "method" smoothgrad only, not integrated-gradients`}},
 		{"over the limit", "/v1/explain", `{"inputs": [` + strings.Repeat(sample+",", 200) + sample + `]}`, http.StatusRequestEntityTooLarge, []string{"over the limit of 1024 bytes (1KiB)"}},
@@ -382,8 +383,8 @@ next:
 func TestServeMetricsAndLogs(t *testing.T) {
 	_, ts, logs := testServer(t, nil)
 	sample := strings.TrimSpace(demoSampleJSON(t))
-	// Two points of the trapezoid rule (the end points) on the saturated
-	// demo sample cannot meet a 1e-6 tolerance: a completeness failure.
+	// Two points of the trapezoid rule (the end points) on the demo sample
+	// do not meet a 1e-6 tolerance: a completeness failure.
 	for i := 0; i < 3; i++ {
 		code, _, body := post(t, ts.URL+"/v1/explain", `{"inputs":[`+sample+`],"steps":2,"tolerance":1e-6}`)
 		require.Equal(t, http.StatusOK, code, body)
@@ -629,4 +630,61 @@ func TestBatcherStacksCalls(t *testing.T) {
 	check(results[2], [][]float64{point(4)}, []int{1})
 	check(results[3], [][]float64{point(5)}, []int{0})
 	check(results[4], [][]float64{point(6)}, []int{1})
+}
+
+func TestNamedInputs(t *testing.T) {
+	// Samples as objects keyed by feature name, the request's form of a CSV
+	// file with a header: rows of the demo's held-out file, keyed by its
+	// header (the model's feature_names metadata) in reverse order. The
+	// values are bound by name, so the documents equal those of the same
+	// rows as arrays in the feature order demo/data/README.md documents.
+	_, ts, _ := testServer(t, nil)
+	order := []string{"bearing_temp", "vibration_rms", "discharge_pressure", "suction_pressure", "flow", "motor_current", "hours_since_service", "ambient_temp"}
+	raw, err := demo.File("pumps_test.csv")
+	require.NoError(t, err)
+	lines := strings.Split(string(raw), "\n")
+	header := strings.Split(lines[0], ",")
+	var objects, arrays []string
+	for _, line := range lines[1:4] {
+		cells := strings.Split(line, ",")
+		byName := map[string]string{}
+		for j, h := range header {
+			byName[h] = cells[j]
+		}
+		var kv, vals []string
+		for j := len(order) - 1; j >= 0; j-- {
+			kv = append(kv, strconv.Quote(order[j])+":"+byName[order[j]])
+		}
+		for _, f := range order {
+			vals = append(vals, byName[f])
+		}
+		objects = append(objects, "{"+strings.Join(kv, ",")+"}")
+		arrays = append(arrays, "["+strings.Join(vals, ",")+"]")
+	}
+	for route, rest := range map[string]string{"/v1/predict": "}", "/v1/explain": `,"method":"grad"}`} {
+		code, _, byName := post(t, ts.URL+route, `{"inputs":[`+strings.Join(objects, ",")+`]`+rest)
+		require.Equal(t, http.StatusOK, code, byName)
+		code, _, byPosition := post(t, ts.URL+route, `{"inputs":[`+strings.Join(arrays, ",")+`]`+rest)
+		require.Equal(t, http.StatusOK, code, byPosition)
+		assert.JSONEq(t, byPosition, byName, route)
+	}
+	// One object alone is one sample.
+	code, _, one := post(t, ts.URL+"/v1/predict", `{"inputs":`+objects[0]+`}`)
+	require.Equal(t, http.StatusOK, code, one)
+	code, _, first := post(t, ts.URL+"/v1/predict", `{"inputs":[`+arrays[0]+`]}`)
+	require.Equal(t, http.StatusOK, code)
+	assert.JSONEq(t, first, one)
+
+	// A feature left out, a key that is not a feature and a value that is
+	// not a number are named, with the sample.
+	for body, want := range map[string]string{
+		`{"inputs":[` + objects[0] + `,{"flow":1}]}`:                                                                            `"inputs"[1] (for "sensors"): feature "bearing_temp" is missing`,
+		`{"inputs":[` + objects[0] + "," + strings.Replace(objects[1], `"ambient_temp":`, `"ambient":`, 1) + `]}`:               `"inputs"[1] (for "sensors"): "ambient" is not a feature of the model (features: bearing_temp, vibration_rms,`,
+		`{"inputs":[` + strings.Replace(objects[0], `"flow":`, `"x":1,"flow":`, 1) + `]}`:                                       `"inputs"[0] (for "sensors"): "x" is not a feature`,
+		`{"inputs":[` + regexp.MustCompile(`"bearing_temp":[^,}]+`).ReplaceAllString(objects[0], `"bearing_temp":"hot"`) + `]}`: `"inputs"[0] (for "sensors"): feature "bearing_temp": expected a number, got "hot"`,
+	} {
+		code, _, got := post(t, ts.URL+"/v1/predict", body)
+		assert.Equal(t, http.StatusBadRequest, code, got)
+		assert.Contains(t, errorOf(t, got), want)
+	}
 }

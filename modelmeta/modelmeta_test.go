@@ -13,6 +13,7 @@ import (
 
 	"github.com/apportion/apportion/internal/debpython"
 	"github.com/apportion/apportion/internal/onnxtestdata"
+	"github.com/apportion/apportion/internal/testfiles"
 	"github.com/apportion/apportion/modelmeta"
 	"github.com/apportion/apportion/onnxlite"
 )
@@ -99,4 +100,32 @@ func TestReadConventions(t *testing.T) {
 	// Without one name per value: indices, multi-indices from rank 2.
 	assert.Equal(t, []string{"0", "1"}, meta.Labels([]int{2}))
 	assert.Equal(t, []string{"[0,0]", "[0,1]", "[1,0]", "[1,1]"}, meta.Labels([]int{2, 2}))
+}
+
+func TestReadmePythonSnippet(t *testing.T) {
+	// The README's snippet for naming a model's features where it is
+	// exported, run with the ONNX project's Python package (python3-onnx
+	// 1.12.0) on a copy of node/test_softmax_example (three inputs, three
+	// classes): Read finds what it wrote.
+	python := debpython.Require(t, "onnx")
+	code := testfiles.ReadmeCode(t, "../README.md", "Naming the features of your own model", "python")
+
+	dir := t.TempDir()
+	raw, err := os.ReadFile(filepath.Join(onnxtestdata.Dir(t), "node", "test_softmax_example", "model.onnx"))
+	require.NoError(t, err)
+	require.NoError(t, os.WriteFile(filepath.Join(dir, "model.onnx"), raw, 0o644))
+	cmd := exec.Command(python, "-c", code)
+	cmd.Dir = dir
+	out, err := cmd.CombinedOutput()
+	require.NoError(t, err, "%s", out)
+
+	named, err := os.ReadFile(filepath.Join(dir, "model-named.onnx"))
+	require.NoError(t, err)
+	m, err := onnxlite.Decode(bytes.NewReader(named), onnxlite.DecodeOptions{})
+	require.NoError(t, err)
+	meta := modelmeta.Read(m)
+	assert.Equal(t, []string{"bearing_temp", "vibration_rms", "flow"}, meta.Features)
+	assert.Equal(t, []string{"°C", "mm/s", "m³/h"}, meta.Units)
+	assert.Equal(t, []string{"normal", "degraded", "failing"}, meta.Classes)
+	assert.Equal(t, []string{"bearing_temp (°C)", "vibration_rms (mm/s)", "flow (m³/h)"}, meta.Labels([]int{3}))
 }

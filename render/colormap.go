@@ -7,18 +7,42 @@ import (
 	"sort"
 )
 
-// The colours of the PNG output. Attributions use one diverging colour map,
-// symmetric around zero, in the heatmaps and in the bar charts alike:
-// positive attributions are red, negative ones blue.
+// PuOr is ColorBrewer's diverging PuOr scheme in its 9-class form (Harrower
+// & Brewer 2003, "ColorBrewer.org: an online tool for selecting colour
+// schemes for maps"; colour-blind safe and printable), from the orange end
+// to the purple end:
+//
+//	#B35806 #E08214 #FDB863 #FEE0B6 #F7F7F7 #D8DAEB #B2ABD2 #8073AC #542788
+//
+// Positive attributions are orange, negative ones purple, in every chart,
+// heatmap and terminal table.
+var PuOr = [9]color.RGBA{
+	{0xB3, 0x58, 0x06, 0xFF}, {0xE0, 0x82, 0x14, 0xFF}, {0xFD, 0xB8, 0x63, 0xFF},
+	{0xFE, 0xE0, 0xB6, 0xFF}, {0xF7, 0xF7, 0xF7, 0xFF}, {0xD8, 0xDA, 0xEB, 0xFF},
+	{0xB2, 0xAB, 0xD2, 0xFF}, {0x80, 0x73, 0xAC, 0xFF}, {0x54, 0x27, 0x88, 0xFF},
+}
+
+// The colours of the PNG output.
 var (
-	// colorPositive is the colour of t = +1 (and of positive bars).
-	colorPositive = color.RGBA{R: 0xC0, G: 0x1C, B: 0x28, A: 0xFF}
-	// colorNegative is the colour of t = −1 (and of negative bars).
-	colorNegative = color.RGBA{R: 0x1F, G: 0x5F, B: 0xB4, A: 0xFF}
+	// colorPositive marks a positive attribution: PuOr's orange end.
+	colorPositive = PuOr[0]
+	// colorNegative marks a negative attribution: PuOr's purple end.
+	colorNegative = PuOr[8]
 	colorWhite    = color.RGBA{R: 0xFF, G: 0xFF, B: 0xFF, A: 0xFF}
 	colorInk      = color.RGBA{R: 0x20, G: 0x20, B: 0x20, A: 0xFF}
-	colorAxis     = color.RGBA{R: 0x80, G: 0x80, B: 0x80, A: 0xFF}
+	colorAxis     = color.RGBA{R: 0x60, G: 0x60, B: 0x60, A: 0xFF}
+	colorGuide    = color.RGBA{R: 0xD8, G: 0xD8, B: 0xD8, A: 0xFF}
 	colorFrame    = color.RGBA{R: 0xB0, G: 0xB0, B: 0xB0, A: 0xFF}
+	colorMixed    = color.RGBA{R: 0x80, G: 0x80, B: 0x80, A: 0xFF}
+)
+
+// The terminal's colours for positive and negative bars: the ANSI
+// 256-colour palette's nearest entries to PuOr's #E08214 (172, #D78700) and
+// #8073AC (97, #875FAF), the scheme's second orange and second purple,
+// legible on dark and light backgrounds alike.
+const (
+	termPositive = 172
+	termNegative = 97
 )
 
 // heatScalePercentile is the percentile of |a| that maps to the ends of the
@@ -34,24 +58,49 @@ func divergingT(a, s float64) float64 {
 	return math.Max(-1, math.Min(1, a/s))
 }
 
-// overlay blends the colour map's end for the sign of t over base with
-// opacity |t|, channel by channel:
+// puor is the continuous colour map: t = +1 is PuOr's orange end, t = 0
+// its middle (#F7F7F7), t = −1 its purple end, and between classes it is
+// linear in each sRGB channel: at position p = 4(1 − t) ∈ [0, 8] it mixes
+// classes ⌊p⌋ and ⌈p⌉,
 //
-//	c = round((1 − |t|)·base + |t|·end),  end = colorPositive if t > 0, colorNegative if t < 0
+//	c = round((1 − f)·PuOr[⌊p⌋] + f·PuOr[⌊p⌋+1]),  f = p − ⌊p⌋.
+func puor(t float64) color.RGBA {
+	p := 4 * (1 - math.Max(-1, math.Min(1, t)))
+	i := min(int(p), len(PuOr)-2)
+	f := p - float64(i)
+	a, b := PuOr[i], PuOr[i+1]
+	mix := func(x, y uint8) uint8 { return uint8(math.Round((1-f)*float64(x) + f*float64(y))) }
+	return color.RGBA{R: mix(a.R, b.R), G: mix(a.G, b.G), B: mix(a.B, b.B), A: 0xFF}
+}
+
+// The underlay of a heatmap is the input's grey lightened into
+// [underlayDark, 255], so that the colours over its darkest pixels stay
+// visible (the purple end over the darkest underlay is #321751).
+const underlayDark = 0x99
+
+// underlay is the lightened grey level of value v on an image whose values
+// span [lo, hi]: round(underlayDark + (255 − underlayDark)·(v − lo)/(hi −
+// lo)), the middle of the range when hi = lo.
+func underlay(v, lo, hi float64) uint8 {
+	f := 0.5
+	if hi > lo {
+		f = math.Max(0, math.Min(1, (v-lo)/(hi-lo)))
+	}
+	return uint8(math.Round(underlayDark + (255-underlayDark)*f))
+}
+
+// overlay draws colour map coordinate t over an underlay of grey level l:
+// the colour of t multiplied by the grey, channel by channel,
 //
-// so t = 0 leaves base unchanged (transparent), t = ±1 gives the pure end
-// colour, and the map is symmetric around zero. Over white it is the colour
-// bar; over the grey input it is the heatmap.
-func overlay(base color.RGBA, t float64) color.RGBA {
-	end := colorPositive
-	if t < 0 {
-		end = colorNegative
-	}
-	f := math.Min(math.Abs(t), 1)
-	mix := func(b, e uint8) uint8 {
-		return uint8(math.Round((1-f)*float64(b) + f*float64(e)))
-	}
-	return color.RGBA{R: mix(base.R, end.R), G: mix(base.G, end.G), B: mix(base.B, end.B), A: 0xFF}
+//	c = round(puor(t) · l / 255)
+//
+// so that an attribution of zero shows the underlay as the map's middle
+// (#F7F7F7) shows it, the same on the heatmap and on its colour bar, which
+// is drawn over the same greys.
+func overlay(l uint8, t float64) color.RGBA {
+	c := puor(t)
+	mul := func(x uint8) uint8 { return uint8(math.Round(float64(x) * float64(l) / 255)) }
+	return color.RGBA{R: mul(c.R), G: mul(c.G), B: mul(c.B), A: 0xFF}
 }
 
 // grey returns the grey level of value v on an image whose values span

@@ -36,4 +36,6 @@ func ExampleSummaryTable() {
 	//   feature       mean |a|  95% interval      mean a  95% interval
 	//   bearing_temp      0.45  [  0.375, 0.55]    +0.45  [+0.375,  +0.55]  ████████████
 	//   flow            0.0625  [0.03067,  0.1]  +0.0125  [ -0.05, +0.085]  █▋
+	//
+	// (a full bar is a mean |a| of 0.45, the largest of any group)
 }

@@ -18,12 +18,30 @@ import (
 	"github.com/apportion/apportion/samples"
 )
 
-// maxTableFeatures is the number of features the table shows per sample; a
-// larger sample shows those with the largest |attribution|.
-const maxTableFeatures = 64
-
 // barWidth is the number of character cells of each half of a bar.
 const barWidth = 12
+
+// bar draws v/scale as a signed bar (see the function bar), in the colour
+// scheme's terminal colours with o.Color.
+func (o Options) bar(v, scale float64) string {
+	b := bar(v, scale)
+	if !o.Color {
+		return b
+	}
+	left, right, _ := strings.Cut(b, "│")
+	return paint(left, termNegative) + "│" + paint(right, termPositive)
+}
+
+// paint wraps the non-blank part of s in the ANSI 256-colour escape for
+// colour c.
+func paint(s string, c int) string {
+	t := strings.TrimSpace(s)
+	if t == "" {
+		return s
+	}
+	i := strings.Index(s, t)
+	return s[:i] + "\x1b[38;5;" + strconv.Itoa(c) + "m" + t + "\x1b[0m" + s[i+len(t):]
+}
 
 // bar draws v/scale as a signed bar: a left half that fills leftwards for
 // negative values and a right half that fills rightwards for positive ones,
@@ -53,14 +71,141 @@ func bar(v, scale float64) string {
 	return left + "│" + right
 }
 
+// Sort orders the features of a table or chart.
+type Sort int
+
+// The orders.
+const (
+	// SortModel keeps the model's order of the features.
+	SortModel Sort = iota
+	// SortAbs puts the largest |attribution| first.
+	SortAbs
+	// SortValue puts the largest attribution first, the most negative last.
+	SortValue
+)
+
+// ParseSort reads an order as the command line writes it: model, abs or
+// value.
+func ParseSort(s string) (Sort, error) {
+	for i, name := range sortNames {
+		if s == name {
+			return Sort(i), nil
+		}
+	}
+	return 0, fmt.Errorf("must be model, abs or value, got %q", s)
+}
+
+var sortNames = []string{"model", "abs", "value"}
+
+func (s Sort) String() string {
+	if s >= 0 && int(s) < len(sortNames) {
+		return sortNames[s]
+	}
+	return "Sort(" + strconv.Itoa(int(s)) + ")"
+}
+
+// MaxFeatures is the number of features a table or chart shows at most; a
+// larger sample shows those with the largest |attribution|.
+const MaxFeatures = 64
+
+// Options tune the tables and charts of explanations. The zero value shows
+// every feature (at most MaxFeatures) in the model's order, without colour,
+// and names settings as command-line flags.
+type Options struct {
+	// Sort orders the features shown.
+	Sort Sort
+	// Top shows only the Top features of largest |attribution|; 0 shows
+	// all (at most MaxFeatures).
+	Top int
+	// Color draws the table's bars in the colour scheme (see Palette) with
+	// ANSI escape codes, for a terminal that shows them.
+	Color bool
+	// FieldName names a setting in the warnings' suggestions; nil names
+	// it as a command-line flag: -logits.
+	FieldName func(explain.Field) string
+}
+
+func (o Options) fieldName(f explain.Field) string {
+	if o.FieldName != nil {
+		return o.FieldName(f)
+	}
+	return "-" + string(f)
+}
+
+// selection returns the features of attributions a to show, in the order
+// asked for, and how many are left out.
+func (o Options) selection(a []float64) (order []int, hidden int) {
+	order = make([]int, len(a))
+	for i := range order {
+		order[i] = i
+	}
+	keep := len(a)
+	if o.Top > 0 {
+		keep = min(keep, o.Top)
+	}
+	keep = min(keep, MaxFeatures)
+	if keep < len(a) {
+		sort.SliceStable(order, func(i, j int) bool { return math.Abs(a[order[i]]) > math.Abs(a[order[j]]) })
+		hidden = len(a) - keep
+		order = order[:keep]
+		sort.Ints(order)
+	}
+	switch o.Sort {
+	case SortAbs:
+		sort.SliceStable(order, func(i, j int) bool { return math.Abs(a[order[i]]) > math.Abs(a[order[j]]) })
+	case SortValue:
+		sort.SliceStable(order, func(i, j int) bool { return a[order[i]] > a[order[j]] })
+	}
+	return order, hidden
+}
+
+// hiddenNote says that hidden of n features are not shown.
+func (o Options) hiddenNote(hidden, n int) string {
+	if o.Top > 0 && o.Top < MaxFeatures {
+		return fmt.Sprintf("%d of %s not shown: -top %d keeps those with the largest |attribution|", hidden, Count(n, "feature", "features"), o.Top)
+	}
+	return fmt.Sprintf("%d of %s with the smallest |attribution| not shown; -format json, csv or npy lists all", hidden, Count(n, "feature", "features"))
+}
+
+// Scale is the half-width of the bars or axis an explanation is drawn on,
+// and what it is: the largest |attribution|, and no less than
+// |f(x) − f(x′)| (at least gradattr.CompletenessFloor) when the
+// attributions are shares of that difference (the method reports
+// completeness) or a warning says they are negligible. So attributions of
+// 1e-20 are drawn as what they are, not as full bars. For the gradient and
+// SmoothGrad, which have no baseline, f(x′) is 0.
+func Scale(e explain.Explanation) (scale float64, what string) {
+	r := e.Result
+	for _, a := range r.Attributions {
+		if !math.IsNaN(a) && !math.IsInf(a, 0) {
+			scale = math.Max(scale, math.Abs(a))
+		}
+	}
+	what = "the largest |attribution|"
+	if r.Completeness != nil || len(e.Warnings) > 0 {
+		if d := math.Max(math.Abs(r.Output-r.BaselineOutput), gradattr.CompletenessFloor); d >= scale {
+			what = "|output − baseline output|"
+			if r.Completeness == nil {
+				what = "|output|"
+			}
+			return d, what
+		}
+	}
+	if scale == 0 {
+		return 1, "1: every attribution is 0"
+	}
+	return scale, what
+}
+
 // Table prints the explanations for people: per sample the target and its
-// output, one row per feature (its label, value and attribution, with a
-// signed bar; the 64 largest |attribution| when there are more), the
-// group sums, the completeness check and the cost.
-func Table(w io.Writer, rep *explain.Report) error {
+// output, its warnings, one row per feature (its label, value and
+// attribution, with a signed bar; see Options for which and in what
+// order), the bars' scale, the group sums, the completeness check and the
+// cost.
+func Table(w io.Writer, rep *explain.Report, opt Options) error {
 	labels := rep.Labels()
 	classes := rep.Model.Meta.Classes
-	fmt.Fprintf(w, "model %s  output %s  method %s\n", rep.Model.Name, rep.Output, rep.Settings.Method)
+	fmt.Fprintf(w, "model %s  output %s  method %s\n", rep.Model.Name, outputLabel(rep), rep.Settings.Method)
 	for _, e := range rep.Explanations {
 		fmt.Fprintln(w)
 		if e.Err != nil {
@@ -73,27 +218,16 @@ func Table(w io.Writer, rep *explain.Report) error {
 			target += " (" + classes[r.Target] + ")"
 		}
 		fmt.Fprintf(w, "sample %d: target %s  output %s", e.Index, target, Number(r.Output))
-		if r.Completeness != nil {
+		if e.BaselineOutputs != nil || r.Completeness != nil {
 			fmt.Fprintf(w, "  baseline output %s", Number(r.BaselineOutput))
 		}
 		fmt.Fprintln(w)
+		for _, wn := range e.Warnings {
+			fmt.Fprintln(w, wrap("  warning: "+wn.Message+opt.suggestion(wn), "    ", tableWidth))
+		}
 
-		order := make([]int, len(r.Attributions))
-		for i := range order {
-			order[i] = i
-		}
-		scale := 0.0
-		for _, a := range r.Attributions {
-			scale = math.Max(scale, math.Abs(a))
-		}
-		hidden := 0
-		if len(order) > maxTableFeatures {
-			sort.SliceStable(order, func(a, b int) bool {
-				return math.Abs(r.Attributions[order[a]]) > math.Abs(r.Attributions[order[b]])
-			})
-			hidden = len(order) - maxTableFeatures
-			order = order[:maxTableFeatures]
-		}
+		order, hidden := opt.selection(r.Attributions)
+		scale, what := Scale(e)
 		rows := [][3]string{{"feature", "value", "attribution"}}
 		for _, i := range order {
 			label := strconv.Itoa(i)
@@ -118,15 +252,16 @@ func Table(w io.Writer, rep *explain.Report) error {
 				"  " + strings.Repeat(" ", width[1]-utf8.RuneCountInString(row[1])) + row[1] +
 				"  " + strings.Repeat(" ", width[2]-utf8.RuneCountInString(row[2])) + row[2]
 			if n > 0 {
-				line += "  " + bar(r.Attributions[order[n-1]], scale)
+				line += "  " + opt.bar(r.Attributions[order[n-1]], scale)
 			}
-			fmt.Fprintln(w, "  "+line)
+			fmt.Fprintln(w, strings.TrimRight("  "+line, " "))
 		}
+		fmt.Fprintf(w, "  (a full bar is %s, %s)\n", Number(scale), what)
 		if hidden > 0 {
-			fmt.Fprintf(w, "(%d features with smaller |attribution| not shown; -format json, csv or npy lists all)\n", hidden)
+			fmt.Fprintf(w, "  (%s)\n", opt.hiddenNote(hidden, len(r.Attributions)))
 		}
 		if g := e.Grouped; g != nil {
-			writeGroupTable(w, g)
+			writeGroupTable(w, g, e, opt)
 		}
 		if cp := r.Completeness; cp != nil {
 			verdict := "ok"
@@ -143,10 +278,72 @@ func Table(w io.Writer, rep *explain.Report) error {
 			fmt.Fprintf(w, "completeness: sum %s  expected %s  gap %s  relative gap %s%s  %s\n",
 				Number(cp.Sum), Number(cp.Expected), signed(cp.Gap), Number(cp.RelativeGap), tol, verdict)
 		}
-		fmt.Fprintf(w, "cost: %d gradient evaluations, %d forward passes, %s\n",
-			r.Cost.GradientEvals, r.Cost.ForwardPasses, r.Cost.Elapsed.Round(10_000))
+		fmt.Fprintf(w, "cost: %s, %s, %s\n", Count(r.Cost.GradientEvals, "gradient evaluation", "gradient evaluations"),
+			Count(r.Cost.ForwardPasses, "forward pass", "forward passes"), r.Cost.Elapsed.Round(10_000))
 	}
 	return nil
+}
+
+// tableWidth is the width, in characters, that the table's long lines are
+// wrapped to.
+const tableWidth = 100
+
+// wrap breaks s between words into lines of at most width characters, the
+// lines after the first indented by indent.
+func wrap(s, indent string, width int) string {
+	var b strings.Builder
+	line := 0
+	for i, word := range strings.Split(s, " ") {
+		n := utf8.RuneCountInString(word)
+		switch {
+		case i == 0:
+		case line+1+n > width:
+			b.WriteString("\n" + indent)
+			line = utf8.RuneCountInString(indent)
+		default:
+			b.WriteByte(' ')
+			line++
+		}
+		b.WriteString(word)
+		line += n
+	}
+	return b.String()
+}
+
+// suggestion words a warning's suggested settings: "; try -logits".
+func (o Options) suggestion(w explain.Warning) string {
+	if len(w.Suggest) == 0 {
+		return ""
+	}
+	names := make([]string, len(w.Suggest))
+	for i, f := range w.Suggest {
+		names[i] = o.fieldName(f)
+	}
+	switch w.Suggest[0] {
+	case explain.FieldBaseline:
+		names[0] = "another " + names[0]
+	case explain.FieldNoise:
+		names[0] = "a smaller " + names[0]
+	}
+	return "; try " + strings.Join(names, " or ")
+}
+
+// outputLabel names the output explained: its name, and "(logits)" when
+// the logits before its final Softmax, LogSoftmax or Sigmoid are explained.
+func outputLabel(rep *explain.Report) string {
+	if rep.Settings.Logits {
+		return rep.Output + " (logits)"
+	}
+	return rep.Output
+}
+
+// Count writes n with the singular or the plural noun: "1 forward pass",
+// "2 forward passes".
+func Count(n int, one, many string) string {
+	if n == 1 {
+		return "1 " + one
+	}
+	return strconv.Itoa(n) + " " + many
 }
 
 // Number formats v for people, with five significant digits.
@@ -165,9 +362,13 @@ func signed(v float64) string {
 }
 
 // CSV writes one record per feature of each explained sample: sample,
-// feature, value, attribution (shortest decimals). Failed samples have no
-// records.
+// feature, value, attribution (shortest decimals); with feature groups, one
+// record per group instead: sample, group, attribution, in the groups'
+// order. Failed samples have no records.
 func CSV(w io.Writer, rep *explain.Report) error {
+	if rep.Settings.Groups != nil {
+		return groupsCSV(w, rep)
+	}
 	labels := rep.Labels()
 	cw := csv.NewWriter(w)
 	if err := cw.Write([]string{"sample", "feature", "value", "attribution"}); err != nil {
@@ -194,6 +395,44 @@ func CSV(w io.Writer, rep *explain.Report) error {
 	}
 	cw.Flush()
 	return cw.Error()
+}
+
+// groupsCSV writes one record per group of each explained sample.
+func groupsCSV(w io.Writer, rep *explain.Report) error {
+	cw := csv.NewWriter(w)
+	if err := cw.Write([]string{"sample", "group", "attribution"}); err != nil {
+		return err
+	}
+	for _, e := range rep.Explanations {
+		if e.Err != nil || e.Grouped == nil {
+			continue
+		}
+		for i, a := range e.Grouped.Attributions {
+			if err := cw.Write([]string{strconv.Itoa(e.Index), e.Grouped.Names[i], strconv.FormatFloat(a, 'g', -1, 64)}); err != nil {
+				return err
+			}
+		}
+	}
+	cw.Flush()
+	return cw.Error()
+}
+
+// GroupsNPY writes the attributions summed per group as one float64 .npy
+// array of shape (samples, groups), the groups in their order; a failed
+// sample's row is NaN.
+func GroupsNPY(w io.Writer, rep *explain.Report) error {
+	n := len(rep.Settings.Groups)
+	data := make([]float64, 0, len(rep.Explanations)*n)
+	for _, e := range rep.Explanations {
+		if e.Err != nil || e.Grouped == nil || len(e.Grouped.Attributions) != n {
+			for range n {
+				data = append(data, math.NaN())
+			}
+			continue
+		}
+		data = append(data, e.Grouped.Attributions...)
+	}
+	return npy.Write(w, nested(data, []int{len(rep.Explanations), n}))
 }
 
 // NPY writes the attributions as one float64 .npy array of shape
@@ -238,12 +477,13 @@ func nested(data []float64, shape []int) any {
 	return s.Interface()
 }
 
-// writeGroupTable prints the attributions summed per group.
-func writeGroupTable(w io.Writer, g *gradattr.GroupedResult) {
-	scale := 0.0
-	for _, a := range g.Attributions {
-		scale = math.Max(scale, math.Abs(a))
-	}
+// writeGroupTable prints the attributions summed per group, in the
+// groups' order, on the scale of Scale (of the group sums).
+func writeGroupTable(w io.Writer, g *gradattr.GroupedResult, e explain.Explanation, opt Options) {
+	r := *e.Result
+	r.Attributions = g.Attributions
+	e.Result = &r
+	scale, what := Scale(e)
 	width := utf8.RuneCountInString("group")
 	for _, n := range g.Names {
 		width = max(width, utf8.RuneCountInString(n))
@@ -257,8 +497,9 @@ func writeGroupTable(w io.Writer, g *gradattr.GroupedResult) {
 	pad := func(s string, n int) string { return strings.Repeat(" ", n-utf8.RuneCountInString(s)) }
 	fmt.Fprintf(w, "  %s%s  %s%s\n", "group", pad("group", width), pad("attribution", vw), "attribution")
 	for i, n := range g.Names {
-		fmt.Fprintf(w, "  %s%s  %s%s  %s\n", n, pad(n, width), pad(vals[i], vw), vals[i], bar(g.Attributions[i], scale))
+		fmt.Fprintf(w, "  %s%s  %s%s  %s\n", n, pad(n, width), pad(vals[i], vw), vals[i], strings.TrimRight(opt.bar(g.Attributions[i], scale), " "))
 	}
+	fmt.Fprintf(w, "  (a full bar is %s, %s)\n", Number(scale), what)
 	if !g.Partition {
 		fmt.Fprintf(w, "  (the groups overlap or miss features: %d overlapping, %d missing; their sums need not add up to the total)\n",
 			len(g.Coverage.Overlapping), len(g.Coverage.Missing))

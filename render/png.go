@@ -9,7 +9,6 @@ import (
 	"io"
 	"math"
 	"path/filepath"
-	"sort"
 	"strconv"
 	"strings"
 	"sync"
@@ -24,8 +23,9 @@ import (
 	"github.com/apportion/apportion/gradattr"
 )
 
-// PNG output: heatmaps for image-shaped samples, signed bar charts for the
-// rest. Both use the diverging colour map of colormap.go.
+// PNG output: heatmaps for image-shaped samples, dot plots for the rest and
+// for group sums, forest plots for summaries, all in the PuOr colours of
+// colormap.go.
 
 // Limits on what one PNG may show, so that a wrong shape cannot ask for a
 // gigapixel image.
@@ -37,23 +37,23 @@ const (
 	// minHeatPanel is the smallest side, in PNG pixels, of the longer side
 	// of a heatmap panel: inputs are upscaled by a whole factor to reach it.
 	minHeatPanel = 256
-	// maxBars is the largest number of bars of one chart.
-	maxBars = 256
-	// maxLabelRunes is the longest bar label drawn; longer ones are cut.
+	// maxRows is the largest number of rows of a dot or forest plot.
+	maxRows = 256
+	// maxLabelRunes is the longest row label drawn; longer ones are cut.
 	maxLabelRunes = 48
+	// minTextWidth is the width, in PNG pixels, that titles and notes wrap
+	// to when the chart itself is narrower.
+	minTextWidth = 560
 )
 
 // Layout constants, in PNG pixels.
 const (
-	pngMargin    = 14
-	pngLine      = 18 // height of a line of text
-	heatGap      = 18 // between the two panels
-	colorBarGap  = 12 // between the attribution panel and the colour bar
-	colorBarW    = 18
-	barRowH      = 22
-	barThickness = 14
-	barHalfW     = 200 // length of a bar of |v| = scale
-	whiskerCap   = 10
+	pngMargin   = 14
+	pngLine     = 18 // height of a line of text
+	heatGap     = 18 // between the two panels
+	colorBarGap = 12 // between the attribution panel and the colour bar
+	colorBarW   = 32
+	columnGap   = 14 // between the columns of a chart's label table
 )
 
 var (
@@ -106,8 +106,85 @@ func (c *canvas) frame(r image.Rectangle, col color.Color) {
 	c.fill(image.Rect(r.Max.X-1, r.Min.Y, r.Max.X, r.Max.Y), col)
 }
 
+// blend mixes col over the pixel at (x, y) with opacity a ∈ [0, 1].
+func (c *canvas) blend(x, y int, col color.RGBA, a float64) {
+	if !(image.Point{x, y}).In(c.img.Bounds()) || a <= 0 {
+		return
+	}
+	p := c.img.RGBAAt(x, y)
+	mix := func(b, f uint8) uint8 { return uint8(math.Round((1-a)*float64(b) + a*float64(f))) }
+	c.img.SetRGBA(x, y, color.RGBA{R: mix(p.R, col.R), G: mix(p.G, col.G), B: mix(p.B, col.B), A: 0xFF})
+}
+
+// disc draws a disc of radius r centred on (cx, cy), its edge smoothed by
+// 4×4 supersampling.
+func (c *canvas) disc(cx, cy, r float64, col color.RGBA) {
+	c.shape(cx, cy, r, func(dx, dy float64) bool { return dx*dx+dy*dy <= r*r }, col)
+}
+
+// ring draws the outline, of width w, of a circle of radius r centred on
+// (cx, cy), filled with white inside.
+func (c *canvas) ring(cx, cy, r, w float64, col color.RGBA) {
+	c.disc(cx, cy, r, col)
+	c.disc(cx, cy, r-w, colorWhite)
+}
+
+// diamond draws a square standing on a corner, of half-diagonal r.
+func (c *canvas) diamond(cx, cy, r float64, col color.RGBA) {
+	c.shape(cx, cy, r, func(dx, dy float64) bool { return math.Abs(dx)+math.Abs(dy) <= r }, col)
+}
+
+// shape fills the pixels within r of (cx, cy) where inside holds, each
+// with the share of its 4×4 subsamples that do.
+func (c *canvas) shape(cx, cy, r float64, inside func(dx, dy float64) bool, col color.RGBA) {
+	for y := int(math.Floor(cy - r - 1)); y <= int(math.Ceil(cy+r+1)); y++ {
+		for x := int(math.Floor(cx - r - 1)); x <= int(math.Ceil(cx+r+1)); x++ {
+			n := 0
+			for sy := 0; sy < 4; sy++ {
+				for sx := 0; sx < 4; sx++ {
+					if inside(float64(x)+(float64(sx)+0.5)/4-cx, float64(y)+(float64(sy)+0.5)/4-cy) {
+						n++
+					}
+				}
+			}
+			c.blend(x, y, col, float64(n)/16)
+		}
+	}
+}
+
 func textWidth(face font.Face, s string) int {
 	return font.MeasureString(face, s).Ceil()
+}
+
+// wrapText breaks each line between words into lines no wider than width
+// pixels (a word wider than that stands alone).
+func wrapText(face font.Face, lines []string, width int) []string {
+	var out []string
+	for _, line := range lines {
+		cur := ""
+		for _, word := range strings.Fields(line) {
+			next := word
+			if cur != "" {
+				next = cur + " " + word
+			}
+			if cur != "" && textWidth(face, next) > width {
+				out = append(out, cur)
+				next = "    " + word
+			}
+			cur = next
+		}
+		out = append(out, cur)
+	}
+	return out
+}
+
+// writeLines draws lines of text from the top margin down, and returns the
+// y below them.
+func (c *canvas) writeLines(lines []string) int {
+	for i, line := range lines {
+		c.text(line, pngMargin, pngMargin+(i+1)*pngLine-5, 0, colorInk)
+	}
+	return pngMargin + len(lines)*pngLine
 }
 
 func (c *canvas) encode(w io.Writer) error {
@@ -115,6 +192,15 @@ func (c *canvas) encode(w io.Writer) error {
 		return fmt.Errorf("png: encoding: %w", err)
 	}
 	return nil
+}
+
+// cutLabel cuts a label to maxLabelRunes.
+func cutLabel(s string) string {
+	if utf8.RuneCountInString(s) <= maxLabelRunes {
+		return s
+	}
+	r := []rune(s)
+	return string(r[:maxLabelRunes-1]) + "…"
 }
 
 // heatLayout is where a heatmap's parts lie in the PNG.
@@ -127,18 +213,19 @@ type heatLayout struct {
 	labelW   int             // room for the colour bar's labels
 }
 
-// layoutHeatmap places a heatmap of an height×width input under lines of
-// title text; labelW is the width of the widest colour bar label.
-func layoutHeatmap(height, width, lines, labelW int) heatLayout {
+// layoutHeatmap places a heatmap of an height×width input below top, the
+// y under the lines of title text; labelW is the width of the widest
+// colour bar label.
+func layoutHeatmap(height, width, top, labelW int) heatLayout {
 	k := max(1, (minHeatPanel+max(height, width)-1)/max(height, width))
 	pw, ph := width*k, height*k
-	top := pngMargin + lines*pngLine + pngLine // the title lines, then the panel captions
+	top += pngLine + 6 // a gap, then the panel captions
 	l := heatLayout{scale: k, labelW: labelW}
 	l.input = image.Rect(pngMargin, top, pngMargin+pw, top+ph)
 	l.attr = l.input.Add(image.Pt(pw+heatGap, 0))
 	barH := max(ph, 128)
 	l.colorBar = image.Rect(l.attr.Max.X+colorBarGap, top, l.attr.Max.X+colorBarGap+colorBarW, top+barH)
-	l.size = image.Pt(l.colorBar.Max.X+6+labelW+pngMargin, top+max(ph, barH)+pngLine+pngMargin)
+	l.size = image.Pt(l.colorBar.Max.X+6+labelW+pngMargin, top+max(ph, barH)+2*pngLine+pngMargin)
 	return l
 }
 
@@ -152,15 +239,28 @@ func colorBarT(y, h int) float64 {
 	return 1 - 2*float64(y)/float64(h-1)
 }
 
-// Heatmap writes a PNG of an image-shaped sample and its attributions:
-// on the left the input img (height×width values, row-major) in grey, on the
-// right the attributions attr (same layout) blended over the same grey with
-// the diverging colour map (see overlay, divergingT and heatScale: t =
-// clamp(a/s, −1, 1), s the 99th percentile of |a|), and a colour bar from −s
-// (blue, bottom) through 0 (white) to +s (red, top) labelled with its scale.
-// Both panels are upscaled by the same whole factor, nearest neighbour, so
-// that the longer side is at least 256 pixels. The title and each note are
-// drawn as lines of text above the panels.
+// colorBarUnderlay is the underlay grey of column x (0 at the left) of a
+// colour bar w columns wide: from 255 on the left to underlayDark on the
+// right, the range of the heatmap's underlay.
+func colorBarUnderlay(x, w int) uint8 {
+	if w < 2 {
+		return 255
+	}
+	return uint8(math.Round(255 - float64(255-underlayDark)*float64(x)/float64(w-1)))
+}
+
+// Heatmap writes a PNG of an image-shaped sample and its attributions: on
+// the left the input img (height×width values, row-major) in grey; on the
+// right the attributions attr (same layout) over the input's grey lightened
+// into [0x99, 0xFF] (see underlay), in the PuOr colour map multiplied by
+// that grey (see overlay, puor, divergingT and heatScale: t = clamp(a/s,
+// −1, 1), s the 99th percentile of |a|); and a colour bar from −s (purple,
+// bottom) through 0 to +s (orange, top), drawn over the same greys from the
+// lightest (left) to the darkest (right), so that each colour reads as it
+// does on the image, zero included. Both panels are upscaled by the same
+// whole factor, nearest neighbour, so that the longer side is at least 256
+// pixels. The title and each note are drawn as lines of text above the
+// panels, wrapped to the image's width.
 func Heatmap(w io.Writer, title string, img []float64, height, width int, attr []float64, notes ...string) error {
 	if height < 1 || width < 1 || height > maxHeatSide || width > maxHeatSide || height*width > maxHeatPixels {
 		return fmt.Errorf("png: heatmap of %d×%d pixels: expected 1 to %d pixels a side and at most %d in all", height, width, maxHeatSide, maxHeatPixels)
@@ -183,20 +283,11 @@ func Heatmap(w io.Writer, title string, img []float64, height, width int, attr [
 
 	s := heatScale(attr)
 	top, mid, bottom := "+"+Number(s), "0", "−"+Number(s)
-	labelW := max(textWidth(face, top), textWidth(face, bottom))
-	lines := append([]string{title}, notes...)
-	l := layoutHeatmap(height, width, len(lines), labelW)
-	caption := "scale s = 99th percentile of |attribution|"
-	l.size.X = max(l.size.X, pngMargin+textWidth(face, caption)+pngMargin)
-	for _, line := range lines {
-		l.size.X = max(l.size.X, pngMargin+textWidth(face, line)+pngMargin)
-	}
+	l, lines := planHeatmap(face, title, notes, height, width, s)
 	c := newCanvas(l.size.X, l.size.Y, face)
-	for i, line := range lines {
-		c.text(line, pngMargin, pngMargin+(i+1)*pngLine-5, 0, colorInk)
-	}
+	c.writeLines(lines)
 	c.text("input", l.input.Min.X, l.input.Min.Y-5, 0, colorInk)
-	c.text("attribution (red +, blue −)", l.attr.Min.X, l.attr.Min.Y-5, 0, colorInk)
+	c.text("attribution over the input", l.attr.Min.X, l.attr.Min.Y-5, 0, colorInk)
 
 	lo, hi := math.Inf(1), math.Inf(-1)
 	for _, v := range img {
@@ -205,194 +296,48 @@ func Heatmap(w io.Writer, title string, img []float64, height, width int, attr [
 	k := l.scale
 	for i := 0; i < height; i++ {
 		for j := 0; j < width; j++ {
-			g := grey(img[i*width+j], lo, hi)
+			v := img[i*width+j]
 			cell := image.Rect(j*k, i*k, (j+1)*k, (i+1)*k)
-			c.fill(cell.Add(l.input.Min), g)
-			c.fill(cell.Add(l.attr.Min), overlay(g, divergingT(attr[i*width+j], s)))
+			c.fill(cell.Add(l.input.Min), grey(v, lo, hi))
+			c.fill(cell.Add(l.attr.Min), overlay(underlay(v, lo, hi), divergingT(attr[i*width+j], s)))
 		}
 	}
 	c.frame(l.input, colorFrame)
 	c.frame(l.attr, colorFrame)
 
-	bh := l.colorBar.Dy()
+	bh, bw := l.colorBar.Dy(), l.colorBar.Dx()
 	for y := 0; y < bh; y++ {
-		row := image.Rect(l.colorBar.Min.X, l.colorBar.Min.Y+y, l.colorBar.Max.X, l.colorBar.Min.Y+y+1)
-		c.fill(row, overlay(colorWhite, colorBarT(y, bh)))
+		for x := 0; x < bw; x++ {
+			c.img.SetRGBA(l.colorBar.Min.X+x, l.colorBar.Min.Y+y, overlay(colorBarUnderlay(x, bw), colorBarT(y, bh)))
+		}
 	}
 	c.frame(l.colorBar, colorFrame)
 	lx := l.colorBar.Max.X + 6
 	c.text(top, lx, l.colorBar.Min.Y+10, 0, colorInk)
 	c.text(mid, lx, l.colorBar.Min.Y+bh/2+5, 0, colorInk)
 	c.text(bottom, lx, l.colorBar.Max.Y, 0, colorInk)
-	c.text(caption, pngMargin, l.size.Y-pngMargin, 0, colorInk)
+	c.text(heatCaptions[0], pngMargin, l.size.Y-pngMargin-pngLine, 0, colorInk)
+	c.text(heatCaptions[1], pngMargin, l.size.Y-pngMargin, 0, colorInk)
 	return c.encode(w)
 }
 
-// barLayout is where a bar chart's parts lie in the PNG.
-type barLayout struct {
-	labelW int  // width of the label column
-	left   bool // whether the axis has a negative half
-	zeroX  int  // x of the zero axis
-	top    int  // y of the top of the first row
-	scale  float64
-	size   image.Point
+// heatCaptions are drawn under a heatmap.
+var heatCaptions = []string{
+	"s = the 99th percentile of |attribution|; orange +, purple −",
+	"colour bar: over the lightest grey (left) to the darkest (right)",
 }
 
-// layoutBars places a bar chart under the given lines of text; it returns
-// the labels as drawn and the value texts.
-func layoutBars(face font.Face, lines, labels []string, values, lo, hi []float64) (l barLayout, cut, texts []string) {
-	n := len(values)
-	cut = make([]string, n)
-	texts = make([]string, n)
-	l.scale = barScale(values, lo, hi)
-	valueW := 0
-	for i := range values {
-		cut[i] = cutLabel(labels[i])
-		l.labelW = max(l.labelW, textWidth(face, cut[i]))
-		texts[i] = signed(values[i])
-		if lo != nil && !math.IsNaN(lo[i]) && !math.IsNaN(hi[i]) {
-			texts[i] += "  [" + Number(lo[i]) + ", " + Number(hi[i]) + "]"
-		}
-		valueW = max(valueW, textWidth(face, texts[i]))
-	}
-	// A chart with no negative value or interval end draws the positive
-	// half of the axis only.
-	for _, set := range [][]float64{values, lo} {
-		for _, v := range set {
-			l.left = l.left || v < 0
-		}
-	}
-	l.zeroX = pngMargin + l.labelW + 10
-	if l.left {
-		l.zeroX += barHalfW
-	}
-	l.top = pngMargin + len(lines)*pngLine + 6
-	valueX := l.zeroX + barHalfW + 10
-	l.size = image.Pt(valueX+valueW+pngMargin, l.top+n*barRowH+pngLine+8+pngMargin)
-	for _, line := range lines {
+// planHeatmap lays out a heatmap of an height×width input at scale s
+// under the title and notes, and returns the layout and the text lines.
+func planHeatmap(face font.Face, title string, notes []string, height, width int, s float64) (heatLayout, []string) {
+	labelW := max(textWidth(face, "+"+Number(s)), textWidth(face, "−"+Number(s)))
+	probe := layoutHeatmap(height, width, 0, labelW)
+	lines := wrapText(face, append([]string{title}, notes...), max(probe.size.X, minTextWidth)-2*pngMargin)
+	l := layoutHeatmap(height, width, pngMargin+len(lines)*pngLine, labelW)
+	for _, line := range append(lines, heatCaptions...) {
 		l.size.X = max(l.size.X, pngMargin+textWidth(face, line)+pngMargin)
 	}
-	return l, cut, texts
-}
-
-// rowCenter is the y of the middle of row i.
-func (l barLayout) rowCenter(i int) int { return l.top + i*barRowH + barRowH/2 }
-
-// xOf is the x of value v on the bar axis.
-func (l barLayout) xOf(v float64) int {
-	return l.zeroX + int(math.Round(math.Max(-1, math.Min(1, v/l.scale))*barHalfW))
-}
-
-func cutLabel(s string) string {
-	if utf8.RuneCountInString(s) <= maxLabelRunes {
-		return s
-	}
-	r := []rune(s)
-	return string(r[:maxLabelRunes-1]) + "…"
-}
-
-// barScale is the half-length of the bar axis: the largest |value| or
-// interval end (NaN ends are skipped), 1 when all are zero.
-func barScale(values, lo, hi []float64) float64 {
-	m := 0.0
-	for _, set := range [][]float64{values, lo, hi} {
-		for _, v := range set {
-			if !math.IsNaN(v) && !math.IsInf(v, 0) {
-				m = math.Max(m, math.Abs(v))
-			}
-		}
-	}
-	if m == 0 {
-		return 1
-	}
-	return m
-}
-
-// Bars writes a horizontal signed bar chart: one row per label, a bar
-// from the zero axis to values[i], to the right in red for a positive value
-// and to the left in blue for a negative one (the ends of the heatmap's
-// colour map), the label on the left and the value printed on the right.
-// All bars share one linear scale whose half-width is the largest |value|
-// (or interval end); without negative values or interval ends the axis
-// shows its positive half only. lo and hi, when not nil, hold an interval
-// per bar drawn as a whisker with end caps, and printed after the value; an
-// interval with a NaN end is not drawn. The title and the notes are drawn
-// above the chart.
-func Bars(w io.Writer, title string, notes, labels []string, values, lo, hi []float64) error {
-	n := len(values)
-	if n == 0 || n > maxBars {
-		return fmt.Errorf("png: bar chart of %d values: expected 1 to %d", n, maxBars)
-	}
-	if len(labels) != n {
-		return fmt.Errorf("png: bar chart: expected %d labels, one per value, got %d", n, len(labels))
-	}
-	if (lo == nil) != (hi == nil) || (lo != nil && (len(lo) != n || len(hi) != n)) {
-		return fmt.Errorf("png: bar chart of %d values: expected lo and hi both nil or both of length %d, got lengths %d and %d", n, n, len(lo), len(hi))
-	}
-	if err := checkFiniteValues("png: bar value", values); err != nil {
-		return err
-	}
-	for i := range lo {
-		if math.IsInf(lo[i], 0) || math.IsInf(hi[i], 0) {
-			return fmt.Errorf("png: bar %d: interval [%v, %v] is not finite", i, lo[i], hi[i])
-		}
-		if lo[i] > hi[i] {
-			return fmt.Errorf("png: bar %d: interval [%v, %v] has lo > hi", i, lo[i], hi[i])
-		}
-	}
-	face, err := newFace()
-	if err != nil {
-		return err
-	}
-	defer face.Close()
-
-	lines := append([]string{title}, notes...)
-	l, cut, texts := layoutBars(face, lines, labels, values, lo, hi)
-	valueX := l.zeroX + barHalfW + 10
-	c := newCanvas(l.size.X, l.size.Y, face)
-	for i, line := range lines {
-		c.text(line, pngMargin, pngMargin+(i+1)*pngLine-5, 0, colorInk)
-	}
-	for i, v := range values {
-		y := l.rowCenter(i)
-		c.text(cut[i], pngMargin+l.labelW, y+5, 1, colorInk)
-		x := l.xOf(v)
-		switch {
-		case v > 0:
-			c.fill(image.Rect(l.zeroX+1, y-barThickness/2, max(x, l.zeroX+2), y+barThickness/2), colorPositive)
-		case v < 0:
-			c.fill(image.Rect(min(x, l.zeroX-1), y-barThickness/2, l.zeroX, y+barThickness/2), colorNegative)
-		}
-		c.text(texts[i], valueX, y+5, 0, colorInk)
-	}
-	bottom := l.top + n*barRowH
-	c.fill(image.Rect(l.zeroX, l.top-4, l.zeroX+1, bottom+4), colorAxis)
-	for i := range lo {
-		if math.IsNaN(lo[i]) || math.IsNaN(hi[i]) {
-			continue
-		}
-		y := l.rowCenter(i)
-		x0, x1 := l.xOf(lo[i]), l.xOf(hi[i])
-		c.fill(image.Rect(x0, y, x1+1, y+1), colorInk)
-		c.fill(image.Rect(x0, y-whiskerCap/2, x0+1, y+whiskerCap/2+1), colorInk)
-		c.fill(image.Rect(x1, y-whiskerCap/2, x1+1, y+whiskerCap/2+1), colorInk)
-	}
-	// The axis ticks: −scale (when the axis has a negative half), 0, +scale.
-	ticks := []int{l.zeroX, l.zeroX + barHalfW}
-	if l.left {
-		ticks = append(ticks, l.zeroX-barHalfW)
-	}
-	c.fill(image.Rect(min(ticks[0], ticks[len(ticks)-1]), bottom+4, l.zeroX+barHalfW+1, bottom+5), colorAxis)
-	for _, x := range ticks {
-		c.fill(image.Rect(x, bottom+4, x+1, bottom+9), colorAxis)
-	}
-	ty := bottom + 9 + pngLine - 4
-	if l.left {
-		c.text("−"+Number(l.scale), l.zeroX-barHalfW, ty, 0.5, colorInk)
-	}
-	c.text("0", l.zeroX, ty, 0.5, colorInk)
-	c.text("+"+Number(l.scale), l.zeroX+barHalfW, ty, 0.5, colorInk)
-	return c.encode(w)
+	return l, lines
 }
 
 // imageShape tells whether a sample of the given shape is drawn as an
@@ -419,11 +364,10 @@ func PNGPath(out string, i, n int) string {
 	return strings.TrimSuffix(out, ext) + "_" + strconv.Itoa(i) + ext
 }
 
-// PNG draws one explained sample: a heatmap for an image-shaped sample
-// ((H,W), (1,H,W), or (C,H,W) with C ≤ 3, attributions summed over
-// channels), a bar chart of the 64 largest |attribution| otherwise, and a
-// bar chart of the group sums when the settings have groups.
-func PNG(w io.Writer, rep *explain.Report, e explain.Explanation) error {
+// Title is the title of the PNG of explanation e: the model, the sample,
+// the method with its baseline, and the output explained, its logits when
+// they were.
+func Title(rep *explain.Report, e explain.Explanation) string {
 	r := e.Result
 	target := strconv.Itoa(r.Target)
 	if classes := rep.Model.Meta.Classes; r.Target >= 0 && r.Target < len(classes) {
@@ -434,22 +378,78 @@ func PNG(w io.Writer, rep *explain.Report, e explain.Explanation) error {
 	if m.Reads(gradattr.ParamBaseline) {
 		method += " (baseline " + baselineTitle(rep) + ")"
 	}
-	title := fmt.Sprintf("%s, sample %d: %s of output %s[%s]", rep.Model.Name, e.Index, method, rep.Output, target)
+	of := "output"
+	if rep.Settings.Logits {
+		of = "the logits of output"
+	}
+	return fmt.Sprintf("%s, sample %d: %s of %s %s[%s]", rep.Model.Name, e.Index, method, of, rep.Output, target)
+}
+
+// figure is what PNG draws for one explanation: a dot plot, or a heatmap.
+type figure struct {
+	dots *DotChart
+	heat *heatmapFigure
+}
+
+// heatmapFigure holds Heatmap's arguments.
+type heatmapFigure struct {
+	title         string
+	notes         []string
+	img, attr     []float64
+	height, width int
+}
+
+// PNG draws one explained sample: a heatmap for an image-shaped sample
+// ((H,W), (1,H,W), or (C,H,W) with C ≤ 3, attributions summed over
+// channels), a dot plot of the features otherwise (see Options for which,
+// and in what order), and a dot plot of the group sums when the settings
+// have groups. The header holds the outputs, the completeness check and the
+// warnings.
+func PNG(w io.Writer, rep *explain.Report, e explain.Explanation, opt Options) error {
+	f := explanationFigure(rep, e, opt)
+	if h := f.heat; h != nil {
+		return Heatmap(w, h.title, h.img, h.height, h.width, h.attr, h.notes...)
+	}
+	return Dots(w, *f.dots)
+}
+
+// explanationFigure is the figure of explanation e.
+func explanationFigure(rep *explain.Report, e explain.Explanation, opt Options) figure {
+	r := e.Result
 	notes := []string{"output " + Number(r.Output)}
-	if cp := r.Completeness; cp != nil {
+	if e.BaselineOutputs != nil || r.Completeness != nil {
 		notes[0] += ", baseline output " + Number(r.BaselineOutput)
-		verdict := ""
+	}
+	if cp := r.Completeness; cp != nil {
+		verdict := " (not judged: the method does not promise completeness)"
 		if cp.Judged {
 			verdict = " (ok)"
 			if !cp.OK {
 				verdict = " (NOT ok: above the tolerance " + Number(cp.Tolerance) + ")"
 			}
 		}
-		notes = append(notes, fmt.Sprintf("completeness: sum %s, expected %s, relative gap %s%s",
+		notes = append(notes, fmt.Sprintf("completeness: the attributions sum to %s, f(x) − f(x′) is %s, relative gap %s%s",
 			Number(cp.Sum), Number(cp.Expected), Number(cp.RelativeGap), verdict))
 	}
+	for _, wn := range e.Warnings {
+		notes = append(notes, "warning: "+wn.Message+opt.suggestion(wn))
+	}
+	title := Title(rep, e)
+	axis := "attribution"
+	if r.Completeness != nil {
+		axis = "attribution, a share of f(x) − f(x′)"
+	}
 	if g := e.Grouped; g != nil {
-		return Bars(w, title, notes, g.Names, g.Attributions, nil, nil)
+		rows := make([]DotRow, len(g.Names))
+		for i, name := range g.Names {
+			rows[i] = DotRow{Cells: []string{name}, Value: g.Attributions[i]}
+		}
+		ge, gr := e, *r
+		gr.Attributions = g.Attributions
+		ge.Result = &gr
+		scale, what := Scale(ge)
+		return figure{dots: &DotChart{Title: title, Notes: notes, Columns: []Column{{Header: "group"}}, Rows: rows,
+			Scale: scale, ScaleNote: what, Axis: axis + ", summed per group"}}
 	}
 	if ch, h, wd, ok := imageShape(rep.Batch.SampleShape()); ok && len(r.Attributions) == ch*h*wd {
 		img := make([]float64, h*wd)
@@ -463,52 +463,74 @@ func PNG(w io.Writer, rep *explain.Report, e explain.Explanation) error {
 		if ch > 1 {
 			notes = append(notes, fmt.Sprintf("%d channels: the input's mean in grey, the attributions summed over channels", ch))
 		}
-		return Heatmap(w, title, img, h, wd, attr, notes...)
+		return figure{heat: &heatmapFigure{title: title, notes: notes, img: img, attr: attr, height: h, width: wd}}
 	}
-	labels := rep.Labels()
-	order := make([]int, len(r.Attributions))
-	for i := range order {
-		order[i] = i
+	names, units := featureColumns(rep)
+	order, hidden := opt.selection(r.Attributions)
+	if hidden > 0 {
+		notes = append(notes, opt.hiddenNote(hidden, len(r.Attributions)))
 	}
-	if len(order) > maxTableFeatures {
-		sort.SliceStable(order, func(a, b int) bool {
-			return math.Abs(r.Attributions[order[a]]) > math.Abs(r.Attributions[order[b]])
-		})
-		notes = append(notes, fmt.Sprintf("the %d features with the largest |attribution| of %d", maxTableFeatures, len(order)))
-		order = order[:maxTableFeatures]
+	columns := []Column{{Header: "feature"}}
+	if units != nil {
+		columns = append(columns, Column{Header: "unit"})
 	}
-	names := make([]string, len(order))
-	vals := make([]float64, len(order))
+	columns = append(columns, Column{Header: "value", Right: true})
+	rows := make([]DotRow, len(order))
 	for k, i := range order {
-		names[k] = strconv.Itoa(i)
-		if i < len(labels) {
-			names[k] = labels[i]
+		label, value := strconv.Itoa(i), ""
+		if i < len(names) {
+			label = names[i]
 		}
 		if i < len(e.Values) {
-			names[k] += " = " + Number(e.Values[i])
+			value = Number(e.Values[i])
 		}
-		vals[k] = r.Attributions[i]
+		rows[k] = DotRow{Cells: []string{label}, Value: r.Attributions[i]}
+		if units != nil {
+			rows[k].Cells = append(rows[k].Cells, units[i])
+		}
+		rows[k].Cells = append(rows[k].Cells, value)
 	}
-	return Bars(w, title, notes, names, vals, nil, nil)
+	scale, what := Scale(e)
+	return figure{dots: &DotChart{Title: title, Notes: notes, Columns: columns, Rows: rows,
+		Scale: scale, ScaleNote: what, Axis: axis}}
+}
+
+// featureColumns names the features of the report's samples, and gives
+// their units when the model names them (nil otherwise).
+func featureColumns(rep *explain.Report) (names, units []string) {
+	meta := rep.Model.Meta
+	n := rep.Batch.SampleSize()
+	if len(meta.Features) == n {
+		if len(meta.Units) == n {
+			return meta.Features, meta.Units
+		}
+		return meta.Features, nil
+	}
+	return rep.Labels(), nil
 }
 
 // baselineTitle names the baseline in a figure title: zero, blur (blur:S
 // for another σ), the mean of the reference set or of the input, or the
 // file of baseline samples.
 func baselineTitle(rep *explain.Report) string {
+	g := func(v float64) string { return strconv.FormatFloat(v, 'g', -1, 64) }
 	switch b := rep.Settings.Baseline; b.Kind {
-	case gradattr.BaselineMean:
+	case gradattr.BaselineMean, gradattr.BaselineMedian:
 		if ref := rep.Settings.Reference; ref != nil {
 			name := ref.Name
 			if ref.Batch != nil {
 				name = ref.Batch.Name // the file's own name, without a "demo:" label
 			}
-			return "mean of " + filepath.Base(name)
+			return string(b.Kind) + " of " + filepath.Base(name)
 		}
-		return "mean of the input"
+		return string(b.Kind) + " of the input"
+	case gradattr.BaselineConstant:
+		return "constant " + g(b.Value)
+	case gradattr.BaselineUniform:
+		return "uniform noise in [" + g(b.Lo) + ", " + g(b.Hi) + ")"
 	case gradattr.BaselineBlur:
 		if b.Sigma != explain.DefaultBlurSigma {
-			return "blur:" + strconv.FormatFloat(b.Sigma, 'g', -1, 64)
+			return "blur:" + g(b.Sigma)
 		}
 		return "blur"
 	case gradattr.BaselineValues:

@@ -12,8 +12,23 @@ import (
 	"github.com/apportion/apportion/gradattr"
 )
 
+// ManyGroups is the number of groups above which SummaryWarnings asks
+// whether the grouping column is a feature: a column with more distinct
+// values than that seldom names subgroups.
+const ManyGroups = 50
+
+// SummaryWarnings are what a summary's numbers do not say by themselves:
+// that it has more than ManyGroups groups.
+func SummaryWarnings(s *gradattr.Summary) []string {
+	if n := len(s.Groups()); n > ManyGroups {
+		return []string{fmt.Sprintf("grouping by %s makes %d groups, more than %d: is %s a feature or an identifier rather than a subgroup? Each group's intervals come from few rows", s.Options().GroupBy, n, ManyGroups, s.Options().GroupBy)}
+	}
+	return nil
+}
+
 // SummaryTable prints the overall statistics and then each group's,
-// features ranked by mean |attribution|, with a bar of mean |a|.
+// features ranked by mean |attribution|, with a bar of mean |a| on one
+// scale for every group.
 func SummaryTable(w io.Writer, s *gradattr.Summary, modelName string) {
 	o := s.Options()
 	model := "sha256 " + o.Model
@@ -26,32 +41,37 @@ func SummaryTable(w io.Writer, s *gradattr.Summary, modelName string) {
 	fmt.Fprintf(w, "model %s  method %s\n", model, o.Method)
 	fmt.Fprintf(w, "%d rows summarised, %d skipped; 95%% intervals from %d Poisson bootstrap replicates (seed %d)\n",
 		s.Rows(), s.SkippedRows(), o.Bootstrap, o.Seed)
-	writeGroupStats(w, "all rows", s.Overall())
+	scale := 0.0
+	for _, g := range append([]gradattr.GroupStats{s.Overall()}, s.Groups()...) {
+		for _, f := range g.Features {
+			scale = math.Max(scale, f.MeanAbs)
+		}
+	}
+	writeGroupStats(w, "all rows", s.Overall(), scale)
 	for _, g := range s.Groups() {
-		writeGroupStats(w, o.GroupBy+" = "+g.Name, g)
+		writeGroupStats(w, o.GroupBy+" = "+g.Name, g, scale)
+	}
+	if s.Rows() > 0 {
+		fmt.Fprintf(w, "\n(a full bar is a mean |a| of %s, the largest of any group)\n", Number(scale))
 	}
 }
 
-func writeGroupStats(w io.Writer, title string, g gradattr.GroupStats) {
+func writeGroupStats(w io.Writer, title string, g gradattr.GroupStats, scale float64) {
 	fmt.Fprintf(w, "\n%s (%d rows)\n", title, g.Rows)
 	if g.Rows == 0 {
 		return
 	}
 	ranked := g.Ranked()
 	hidden := 0
-	if len(ranked) > maxTableFeatures {
-		hidden = len(ranked) - maxTableFeatures
-		ranked = ranked[:maxTableFeatures]
+	if len(ranked) > MaxFeatures {
+		hidden = len(ranked) - MaxFeatures
+		ranked = ranked[:MaxFeatures]
 	}
 	defer func() {
 		if hidden > 0 {
 			fmt.Fprintf(w, "  (%d features with smaller mean |a| not shown; -format json or csv lists all)\n", hidden)
 		}
 	}()
-	scale := 0.0
-	for _, f := range ranked {
-		scale = math.Max(scale, f.MeanAbs)
-	}
 	num := func(v float64) string { return strconv.FormatFloat(v, 'g', 4, 64) }
 	signed := func(v float64) string {
 		if v >= 0 {
@@ -117,29 +137,4 @@ func SummaryCSV(w io.Writer, s *gradattr.Summary) error {
 	}
 	cw.Flush()
 	return cw.Error()
-}
-
-// maxSummaryBars is the number of features the PNG chart shows at most.
-const maxSummaryBars = 64
-
-// SummaryPNG draws mean |attribution| over all rows, ranked, with the
-// bootstrap intervals as whiskers.
-func SummaryPNG(w io.Writer, s *gradattr.Summary) error {
-	ranked := s.Overall().Ranked()
-	if len(ranked) == 0 {
-		return fmt.Errorf("no rows were summarised: nothing to draw")
-	}
-	title := fmt.Sprintf("mean |attribution| (%s) over %d rows, 95%% bootstrap intervals", s.Options().Method, s.Rows())
-	if len(ranked) > maxSummaryBars {
-		title += fmt.Sprintf("; the %d largest of %d features", maxSummaryBars, len(ranked))
-		ranked = ranked[:maxSummaryBars]
-	}
-	labels := make([]string, len(ranked))
-	vals := make([]float64, len(ranked))
-	lo := make([]float64, len(ranked))
-	hi := make([]float64, len(ranked))
-	for i, f := range ranked {
-		labels[i], vals[i], lo[i], hi[i] = f.Feature, f.MeanAbs, f.MeanAbsLo, f.MeanAbsHi
-	}
-	return Bars(w, title, nil, labels, vals, lo, hi)
 }

@@ -39,16 +39,17 @@ func ReadCSV(r io.Reader, spec Spec, features []string) (*Batch, error) {
 		if !fixed {
 			sample = []int{len(cols)}
 		}
-		b := &Batch{Shape: append([]int{len(records)}, sample...), Samples: len(records), Features: pick(header, cols)}
+		b := &Batch{Shape: append([]int{len(records)}, sample...), Samples: len(records), Features: pick(header, cols),
+			Ignored: unread(header, cols)}
 		b.Data = make([]float64, 0, len(cols)*len(records))
 		for i, rec := range records {
-			where := fmt.Sprintf("line %d (sample %d)", lines[i], i)
+			where := fmt.Sprintf("line %d", lines[i])
 			if len(rec) != len(header) {
 				b.markBad(i, fmt.Errorf("%s: expected %d fields, as in the header, got %d", where, len(header), len(rec)))
 				b.Data = appendNaN(b.Data, len(cols))
 				continue
 			}
-			x, err := parseFields(rec, cols, false, func(j int) string { return "column " + header[j] })
+			x, err := parseFields(rec, cols, true, func(j int) string { return "column " + header[j] })
 			if err != nil {
 				b.markBad(i, fmt.Errorf("%s, %w", where, err))
 				x = appendNaN(nil, len(cols))
@@ -77,11 +78,15 @@ func ReadCSV(r io.Reader, spec Spec, features []string) (*Batch, error) {
 	}
 	b := &Batch{Samples: len(records), Data: make([]float64, 0, width*len(records))}
 	for i, rec := range records {
-		where := fmt.Sprintf("line %d (sample %d)", lines[i], i)
+		where := fmt.Sprintf("line %d", lines[i])
 		var x []float64
 		err := fmt.Errorf("%s: expected %d values, got %d", where, width, len(rec))
 		if len(rec) == width {
-			if x, err = parseFields(rec, cols, false, func(j int) string { return "field " + strconv.Itoa(j) }); err != nil {
+			name := func(j int) string { return "column " + strconv.Itoa(j+1) }
+			if header != nil {
+				name = func(j int) string { return "column " + header[j] }
+			}
+			if x, err = parseFields(rec, cols, true, name); err != nil {
 				err = fmt.Errorf("%s, %w", where, err)
 			}
 		}
@@ -114,6 +119,9 @@ type Table struct {
 	// Columns names the columns read as the samples' values, in order;
 	// nil for a file that is not CSV.
 	Columns []string
+	// Ignored names the columns of a CSV file that are neither values nor
+	// the group column, in file order.
+	Ignored []string
 	// SampleShape is the shape of one sample of a file that is not CSV;
 	// nil for CSV, whose samples are flat.
 	SampleShape []int
@@ -258,7 +266,7 @@ func readCSVTable(r io.Reader, name string, opt TableOptions) (*Table, error) {
 			cols = cols[:k]
 		}
 	}
-	t := &Table{Columns: pick(header, cols), Rows: make([]Row, len(records))}
+	t := &Table{Columns: pick(header, cols), Ignored: unread(header, cols, groupCol, keyCol), Rows: make([]Row, len(records))}
 	keyLines := map[uint64]int{}
 	for i, rec := range records {
 		row := Row{Where: "line " + strconv.Itoa(lines[i])}
@@ -357,18 +365,46 @@ func parseFields(rec []string, cols []int, finite bool, name func(j int) string)
 	return x, nil
 }
 
-// columnsByName returns the positions of the features in the header.
+// columnsByName returns the positions of the features in the header. A
+// feature the header lacks is an error naming every one missing.
 func columnsByName(header, features []string) ([]int, error) {
 	index := columnIndex(header)
 	cols := make([]int, len(features))
+	var missing []string
 	for i, f := range features {
 		j, ok := index[f]
 		if !ok {
-			return nil, fmt.Errorf("the model's feature %q (metadata feature_names) is not a column (columns: %s)", f, strings.Join(header, ", "))
+			missing = append(missing, strconv.Quote(f))
 		}
 		cols[i] = j
 	}
+	if len(missing) > 0 {
+		what := "feature " + missing[0] + " is not a column"
+		if len(missing) > 1 {
+			what = "features " + strings.Join(missing, ", ") + " are not columns"
+		}
+		return nil, fmt.Errorf("the model's %s of the file (the header is matched to the feature names in the model's metadata; the columns are %s)", what, strings.Join(header, ", "))
+	}
 	return cols, nil
+}
+
+// unread returns the columns of header that are not in cols nor among the
+// columns skip (-1 for none), in file order.
+func unread(header []string, cols []int, skip ...int) []string {
+	used := map[int]bool{}
+	for _, j := range skip {
+		used[j] = true
+	}
+	for _, j := range cols {
+		used[j] = true
+	}
+	var out []string
+	for j, h := range header {
+		if !used[j] {
+			out = append(out, h)
+		}
+	}
+	return out
 }
 
 // columnIndex maps each column name to its first position.

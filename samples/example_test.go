@@ -34,6 +34,6 @@ func ExampleRead() {
 	}
 	// Output:
 	// 0 [77.2 1450 145.5]
-	// 1 line 3 (sample 1), column flow: "n/a" is not a number
+	// 1 line 3, column flow: "n/a" is not a number
 	// 2 [65.3 1475 120]
 }

@@ -87,6 +87,10 @@ type Batch struct {
 	// Features holds the CSV header's names of the columns read, when the
 	// file has a header.
 	Features []string
+	// Ignored names the columns of a CSV file read by the model's feature
+	// names that are not features, in file order: a caller may say they
+	// were left out.
+	Ignored []string
 	// Tensor is the decoded .pb tensor, nil for other formats.
 	Tensor *onnxlite.Tensor
 	// Bad holds, by sample index, the samples that could not be read (a CSV
@@ -251,7 +255,8 @@ func read(r io.Reader, name string, spec Spec, opt Options) (*Batch, error) {
 	case NPY:
 		return ReadNPY(r, spec)
 	case JSON:
-		return ReadJSON(r, spec)
+		b, err := ReadJSON(r, spec)
+		return b, nonFiniteJSON(err)
 	default:
 		return ReadCSV(r, spec, opt.Features)
 	}

@@ -165,6 +165,7 @@ func TestReadCSVByFeatureNames(t *testing.T) {
 	require.NoError(t, err)
 	assert.Equal(t, []int{3, 4, 5}, got.Shape)
 	assert.Equal(t, names, got.Features)
+	assert.Equal(t, []string{"site", "note"}, got.Ignored, "the columns the model does not read, in file order")
 	for i, v := range got.Data {
 		assert.Equal(t, float32(data[i]), float32(v), "value %d", i)
 	}
@@ -173,7 +174,9 @@ func TestReadCSVByFeatureNames(t *testing.T) {
 	// side the same file is read by position, and its text columns make
 	// rows that cannot be read.
 	_, err = samples.Read(strings.NewReader(b.String()), "rows.csv", spec, samples.Options{Features: append(names[:19:19], "f99")})
-	assert.ErrorContains(t, err, `the model's feature "f99" (metadata feature_names) is not a column`)
+	assert.ErrorContains(t, err, `the model's feature "f99" is not a column of the file`)
+	_, err = samples.Read(strings.NewReader(b.String()), "rows.csv", spec, samples.Options{Features: append(names[:18:18], "f98", "f99")})
+	assert.ErrorContains(t, err, `the model's features "f98", "f99" are not columns of the file`)
 	_, err = samples.Read(strings.NewReader(b.String()), "rows.csv", spec, samples.Options{})
 	assert.ErrorContains(t, err, "header has 22 names, expected 20")
 }
@@ -226,6 +229,7 @@ func TestReadTableKeyColumn(t *testing.T) {
 	tbl, err := samples.ReadTable(strings.NewReader(text), "k.csv", samples.Spec{}, samples.TableOptions{Size: 2, Group: "line", Key: "id"})
 	require.NoError(t, err)
 	assert.Equal(t, []string{"a", "b"}, tbl.Columns, "the numeric key column is not read as a feature")
+	assert.Nil(t, tbl.Ignored, "the key and group columns are read")
 	require.Len(t, tbl.Rows, 5)
 	assert.Equal(t, samples.Row{Where: "line 2", Values: []float64{1, 2}, Group: "p", Key: 17}, tbl.Rows[0])
 	assert.Equal(t, uint64(0), tbl.Rows[1].Key)
@@ -252,4 +256,39 @@ func TestReadTableKeyColumn(t *testing.T) {
 	assert.Equal(t, "serial", ce.Column)
 	_, err = samples.ReadTable(strings.NewReader("[[1, 2]]"), "k.json", samples.Spec{}, samples.TableOptions{Key: "id"})
 	assert.EqualError(t, err, `input k.json: key column "id": the file is not CSV, the one format with named columns`)
+}
+
+func TestReadErrorsNameLinesAndColumns(t *testing.T) {
+	// Lines and columns are counted from 1, as editors and spreadsheets
+	// count them (common practice), or a column is named by its header.
+	spec := samples.Spec{Name: "x", Shape: []int{-1, 3}, HasShape: true}
+	b, err := samples.Read(strings.NewReader("1,2,3\n4,x,6\n7,8\n1,nan,3\n"), "a.csv", spec, samples.Options{KeepBad: true})
+	require.NoError(t, err)
+	assert.EqualError(t, b.Bad[1], `line 2, column 2: "x" is not a number`)
+	assert.EqualError(t, b.Bad[2], "line 3: expected 3 values, got 2")
+	assert.EqualError(t, b.Bad[3], "line 4, column 2: nan value is not a finite number")
+	assert.ErrorIs(t, b.Bad[3], samples.ErrNonFinite)
+
+	b, err = samples.Read(strings.NewReader("p,q,r\n1,2,3\n4,Inf,6\n"), "a.csv", spec, samples.Options{KeepBad: true})
+	require.NoError(t, err)
+	assert.EqualError(t, b.Bad[1], "line 3, column q: Inf value is not a finite number")
+	assert.Nil(t, b.Ignored, "read by position: every column is a value")
+
+	// Without KeepBad the first bad row is the error, named by the file.
+	_, err = samples.Read(strings.NewReader("1,2,3\n4,x,6\n"), "a.csv", spec, samples.Options{})
+	assert.EqualError(t, err, `input a.csv (for "x"): line 2, column 2: "x" is not a number`)
+
+	// NaN and Infinity are not JSON (RFC 8259 §6: "Numeric values that
+	// cannot be represented ... (such as Infinity and NaN) are not
+	// permitted"); the message says so, with the position (from 1) of its
+	// first letter, as the HTTP API does.
+	for text, want := range map[string]string{
+		"[1, NaN, 3]":               "NaN at byte 5",
+		"[[1,2,3],[4,-Infinity,6]]": "Infinity at byte 14",
+	} {
+		_, err := samples.Read(strings.NewReader(text), "a.json", spec, samples.Options{})
+		require.Error(t, err, text)
+		assert.ErrorIs(t, err, samples.ErrNonFinite, text)
+		assert.ErrorContains(t, err, want+": expected finite numbers, got a value that is not a finite number (JSON has no NaN or Infinity", text)
+	}
 }

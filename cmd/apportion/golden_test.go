@@ -25,9 +25,7 @@ import (
 // not compared either. The reference is the program's own earlier output:
 // this test guards refactoring, it does not check correctness.
 func TestGoldenResults(t *testing.T) {
-	if goldenPortable || runtime.GOARCH != "amd64" || !cpu.X86.HasAVX2 || !cpu.X86.HasFMA {
-		t.Skip("the golden results were recorded on the AVX2/FMA kernels; the portable kernels round differently")
-	}
+	skipUnlessRecordedKernels(t, "the golden results were")
 	dir, err := filepath.Abs("../../testdata/golden")
 	require.NoError(t, err)
 	f, err := os.Open(filepath.Join(dir, "cases.txt"))
@@ -63,6 +61,16 @@ func TestGoldenResults(t *testing.T) {
 	}
 	require.NoError(t, sc.Err())
 	require.Equal(t, 39, cases, "cases in cases.txt")
+}
+
+// skipUnlessRecordedKernels skips a test whose expected output, what, was
+// recorded on the AVX2/FMA kernels, when they do not run here: the portable
+// kernels round differently.
+func skipUnlessRecordedKernels(t *testing.T, what string) {
+	t.Helper()
+	if goldenPortable || runtime.GOARCH != "amd64" || !cpu.X86.HasAVX2 || !cpu.X86.HasFMA {
+		t.Skip(what + " recorded on the AVX2/FMA kernels; the portable kernels round differently")
+	}
 }
 
 // compareKeys compares the values of the given top-level keys of two JSON

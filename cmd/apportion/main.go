@@ -12,6 +12,7 @@
 //	inspect   describe a model's inputs, outputs, operators and parameters
 //	summarize summarise the attributions of many rows, overall and per group
 //	serve     answer predict and explain requests over HTTP
+//	version   print the version, the Go version and the kernels in use
 //	help      show help for a command
 //
 // Results go to standard output and diagnostics to standard error. The exit
@@ -59,6 +60,7 @@ func commands() []command {
 		{"inspect", "describe a model's inputs, outputs, operators and parameters", runInspect},
 		{"summarize", "summarise the attributions of many rows, overall and per group", runSummarize},
 		{"serve", "answer predict and explain requests over HTTP", runServe},
+		{"version", "print the version, the Go version and the kernels in use", runVersion},
 	}
 }
 

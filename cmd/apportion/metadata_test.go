@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"os"
 	"path/filepath"
+	"strings"
 	"testing"
 
 	"github.com/stretchr/testify/assert"
@@ -79,4 +80,44 @@ func regexpNum(v float64) string {
 		out += string(r)
 	}
 	return out
+}
+
+func TestColumnsBoundByName(t *testing.T) {
+	// The softmax example's input (ONNX backend test data 1.12.0,
+	// node/test_softmax_example) in a CSV whose header names the model's
+	// features (feature_names metadata) out of order, between two columns
+	// the model does not read: explain and predict read the values by name,
+	// so the outputs are the backend's output_0.pb, the attributions those
+	// of the input in the model's order, and the extra columns are listed
+	// once on standard error.
+	_, x, y, xpb := softmaxCase(t)
+	p := withMetadata(t, map[string]string{"feature_names": `["first", "second", "third"]`})
+	swapped := writeTemp(t, "swapped.csv", "id,third,first,second,note\n"+
+		"r1,"+f32(x[2])+","+f32(x[0])+","+f32(x[1])+",checked\n")
+	const note = "swapped.csv: ignored the columns the model does not read: id, note\n"
+
+	code, out, errs := cli(t, "predict", "-model", p, "-input", swapped)
+	require.Equal(t, exitOK, code, errs)
+	got := decodeJSON(t, out)["outputs"].([]any)[0].(map[string]any)["data"].([]any)
+	vals := make([]float64, len(got))
+	for i, v := range got {
+		vals[i] = v.(float64)
+	}
+	assertClose(t, y, vals, "predict on the named columns vs output_0.pb")
+	assert.Equal(t, 1, strings.Count(errs, note), errs)
+
+	ordered, _ := explainJSONRun(t, exitOK, "-model", p, "-input", xpb)
+	doc, errs := explainJSONRun(t, exitOK, "-model", p, "-input", swapped)
+	require.Len(t, doc.Explanations, 1)
+	assertClose(t, y, doc.Explanations[0].Outputs, "explain on the named columns vs output_0.pb")
+	assert.Equal(t, ordered.Explanations[0].Attributions, doc.Explanations[0].Attributions)
+	assert.Equal(t, 1, strings.Count(errs, note), errs)
+
+	// A feature the header lacks is named, whichever command reads it.
+	missing := writeTemp(t, "missing.csv", "first,second,note\n1,2,x\n")
+	for _, cmd := range []string{"explain", "predict"} {
+		code, _, errs := cli(t, cmd, "-model", p, "-input", missing)
+		assert.Equal(t, exitFail, code, cmd)
+		assert.Contains(t, errs, `the model's feature "third" is not a column of the file`, cmd)
+	}
 }

@@ -52,7 +52,7 @@ func TestExplainDemoFlag(t *testing.T) {
 	// -baseline mean without -model averages the demo's reference set; the
 	// attributions then sum to f(x) − f(mean) (completeness, Sundararajan et
 	// al. 2017, Proposition 1), f(mean) being the reported baseline output.
-	doc, _ := explainJSONRun(t, exitOK, "-demo", "welds", "-baseline", "mean", "-steps", "16", "-rule", "gauss-legendre")
+	doc, _ := explainJSONRun(t, exitOK, "-demo", "welds", "-baseline", "mean", "-steps", "16", "-rule", "gauss-legendre", "-allow-incomplete")
 	assert.Equal(t, "demo:welds_reference.npy", doc.Settings["reference"])
 	e := doc.Explanations[0]
 	require.Nil(t, e.Error)

@@ -57,7 +57,7 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		for i, f := range feeds {
 			names[i] = f.Name
 		}
-		return usageError(stderr, "predict", "the model has %d inputs (%s), got %d -input files", len(feeds), strings.Join(names, ", "), len(inputs))
+		return usageError(stderr, "predict", "the model has %s (%s), got %s", render.Count(len(feeds), "input", "inputs"), strings.Join(names, ", "), render.Count(len(inputs), "-input file", "-input files"))
 	}
 	tensors := make([]*onnxlite.Tensor, len(feeds))
 	open := map[string][]int{}
@@ -71,6 +71,9 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 		b, err := samples.ReadFile(inputs[i], spec, opt)
 		if err != nil {
 			return failure(stderr, "predict", err)
+		}
+		if n := ignoredNote(b.Name, b.Ignored); n != "" {
+			notes(stderr, "predict", []string{n})
 		}
 		t, err := b.ToTensor(spec)
 		if err != nil {

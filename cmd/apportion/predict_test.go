@@ -147,13 +147,13 @@ func TestPredictBadInputs(t *testing.T) {
 		}
 		rows[i] = strings.Join(vals, ",")
 	}
-	check("short.csv", strings.Join(rows, "\n")+"\n", "line 2 (sample 1): expected 20 values, got 19")
+	check("short.csv", strings.Join(rows, "\n")+"\n", "line 2: expected 20 values, got 19")
 
 	// NaN and Inf are refused with their position (IEEE 754: not finite).
 	rows[1] = strings.Repeat("1,", 3) + "NaN" + strings.Repeat(",1", 16)
-	check("nan.csv", strings.Join(rows, "\n")+"\n", "sample 1, index 3: NaN")
+	check("nan.csv", strings.Join(rows, "\n")+"\n", "line 2, column 4: NaN value is not a finite number")
 	rows[1] = strings.Repeat("1,", 19) + "-Inf"
-	check("inf.csv", strings.Join(rows, "\n")+"\n", "sample 1, index 19: -Inf")
+	check("inf.csv", strings.Join(rows, "\n")+"\n", "line 2, column 20: -Inf value is not a finite number")
 
 	// A ragged nested array is reported with its path.
 	check("ragged.json", "[[[1,2,3,4,5],[1,2,3,4,5],[1,2,3,4],[1,2,3,4,5]]]", "ragged array at [0][2]: expected 5 elements, got 4")

@@ -38,7 +38,8 @@ func runServe(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			"\tGET  /v1/model     the document of inspect -format json\n"+
 			"\tPOST /v1/predict   {\"inputs\": [sample, ...]}: the document of predict -format json\n"+
 			"\tPOST /v1/explain   {\"inputs\": [...], \"method\", \"target\", \"steps\", \"tolerance\",\n"+
-			"\t                   \"baseline\", \"samples\", \"noise\", \"seed\", \"rule\", \"logits\"}:\n"+
+			"\t                   \"baseline\", \"samples\", \"noise\", \"seed\", \"rule\", \"logits\",\n"+
+			"\t                   \"abs\", \"variant\"}:\n"+
 			"\t                   the document of explain -format json\n"+
 			"\tGET  /metrics      Prometheus text format\n\n"+
 			"Errors are JSON {\"error\": \"...\"}: 400 bad request, 413 body over -max-body,\n"+

@@ -71,6 +71,9 @@ func TestServeExplainIsTheCLIDocument(t *testing.T) {
 		{`{"inputs":[` + sample + `],"method":"smoothgrad","samples":8,"noise":0.1,"seed":7}`, []string{"-method", "smoothgrad", "-samples", "8", "-noise", "0.1", "-seed", "7"}},
 		{`{"inputs":[` + sample + `],"steps":8,"rule":"gauss-legendre","tolerance":0.01}`, []string{"-steps", "8", "-rule", "gauss-legendre", "-tolerance", "0.01"}},
 		{`{"inputs":[` + sample + `],"method":"expected-grad","samples":16}`, []string{"-method", "expected-grad", "-samples", "16"}},
+		{`{"inputs":[` + sample + `],"method":"grad","abs":true}`, []string{"-method", "grad", "-abs"}},
+		{`{"inputs":[` + sample + `],"method":"smoothgrad","variant":"squared","samples":8}`, []string{"-method", "smoothgrad", "-variant", "squared", "-samples", "8"}},
+		{`{"inputs":[` + sample + `],"baseline":"median","steps":16}`, []string{"-baseline", "median", "-steps", "16"}},
 	}
 	for _, tc := range cases {
 		t.Run(strings.Join(tc.args, " "), func(t *testing.T) {

@@ -77,8 +77,8 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 	c := &sc.ex
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded pumps demo)")
 	fs.StringVar(&c.inputPath, "input", "", "rows to explain: a .csv `file` with a header (or .npy, .json, .pb); required with -model")
-	registerMethodFlags(fs,
-		"baseline `kind` for ig: zero, mean (of -reference), or the path of a file of baseline samples (results averaged over them); default without -model: mean of the demo's reference set",
+	registerMethodFlags(fs, "",
+		"baseline `kind` for ig: zero, constant:V, mean or median (of -reference), uniform:LO:HI, or the path of a file of baseline samples (results averaged over them) (default: mean of the demo's reference set without -model, zero with -model)",
 		"reference samples `file` for expected-grad and -baseline mean (default without -model: the demo's reference set)")
 	fs.Uint64Var(&c.seed, "seed", gradattr.DefaultSeed, "seed of the bootstrap weights (and of smoothgrad and expected-grad)")
 	fs.StringVar(&sc.by, "by", "", "group rows by this CSV `column`, or by the predicted class with predicted (default for the demo: pump_line)")
@@ -113,6 +113,10 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 	if err != nil {
 		return fail(stderr, "summarize", err)
 	}
+	notes(stderr, "summarize", c.ignored)
+	for _, w := range render.SummaryWarnings(s) {
+		fmt.Fprintf(stderr, "apportion summarize: warning: %s\n", w)
+	}
 	if err := sc.write(stdout, s, name); err != nil {
 		return failure(stderr, "summarize", err)
 	}
@@ -120,7 +124,7 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 		fmt.Fprintf(stderr, "apportion summarize: %s: %v\n", r.Where, r.Err)
 	}
 	if len(skipped) > 0 {
-		fmt.Fprintf(stderr, "apportion summarize: %d of %d rows skipped\n", len(skipped), s.Rows()+s.SkippedRows())
+		fmt.Fprintf(stderr, "apportion summarize: %d of %s skipped\n", len(skipped), render.Count(s.Rows()+s.SkippedRows(), "row", "rows"))
 		return exitFail
 	}
 	return exitOK
@@ -211,8 +215,8 @@ func (sc *summarizeConfig) validate() string {
 		// answers "why not normal?".
 		s.Baseline = explain.Baseline{Kind: gradattr.BaselineMean}
 	}
-	if s.Method.Reads(gradattr.ParamBaseline) && s.Baseline.Kind == gradattr.BaselineMean && s.Reference == nil && c.modelPath != "" {
-		return "-baseline mean needs -reference here: the mean of the rows themselves would differ between parts of a data set, whose summaries could then not be merged"
+	if s.Method.Reads(gradattr.ParamBaseline) && s.NeedsReference() && s.Reference == nil && c.modelPath != "" {
+		return fmt.Sprintf("-baseline %s needs -reference here: the %s of the rows themselves would differ between parts of a data set, whose summaries could then not be merged", s.Baseline.Kind, s.Baseline.Kind)
 	}
 	if s.NeedsReference() && !s.Method.Reads(gradattr.ParamBaseline) && s.Reference == nil && c.modelPath != "" {
 		return fmt.Sprintf("-method %s needs -reference, a file of reference samples", s.Method)
@@ -240,6 +244,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 	if err != nil {
 		return nil, nil, "", err
 	}
+	l.noteIgnored(sc.inputName(), table.Ignored)
 	rows := table.Rows
 	var first []float64
 	todo := 0
@@ -286,6 +291,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 		FirstKey: sc.firstRow, Keyed: sc.key != "", ByPredicted: sc.by == byPredicted, Progress: tick,
 	})
 	done()
+	c.ignored = l.ignored
 	if err != nil {
 		return nil, nil, "", err
 	}
@@ -354,31 +360,50 @@ func (sc *summarizeConfig) readRows(m *explain.Model, spec samples.Spec) (*sampl
 	return t, err
 }
 
-// runMerge merges the summary files and writes the result.
+// runMerge merges the summary files and writes the result. Every error
+// names the file at fault after -merge.
 func (sc *summarizeConfig) runMerge(stdout, stderr io.Writer) int {
 	var all *gradattr.Summary
-	for _, path := range sc.files {
-		f, err := os.Open(path)
+	for i, path := range sc.files {
+		fail := func(err error) int { return failure(stderr, "summarize", fmt.Errorf("-merge %s: %w", path, err)) }
+		raw, err := samples.ReadLimited(path)
 		if err != nil {
-			return failure(stderr, "summarize", err)
+			var pe *os.PathError
+			if errors.As(err, &pe) {
+				err = pe.Err // the path is named already
+			}
+			return fail(err)
 		}
-		s, err := gradattr.DecodeSummary(io.LimitReader(f, samples.MaxBytes))
-		f.Close()
+		s, err := gradattr.DecodeSummary(bytes.NewReader(raw))
 		if err != nil {
-			return failure(stderr, "summarize", fmt.Errorf("-merge %s: %w", path, err))
+			return fail(err)
 		}
 		if all == nil {
 			all = s
 			continue
 		}
 		if err := all.Merge(s); err != nil {
-			return failure(stderr, "summarize", fmt.Errorf("-merge %s into %s: %w", path, sc.files[0], err))
+			return fail(mergeError(err, sc.files[:i]))
 		}
 	}
 	if err := sc.write(stdout, all, ""); err != nil {
 		return failure(stderr, "summarize", err)
 	}
 	return exitOK
+}
+
+// mergeError words why a summary does not merge with those of the files
+// before it.
+func mergeError(err error, before []string) error {
+	var me *gradattr.MismatchError
+	if !errors.As(err, &me) {
+		return err
+	}
+	with := strings.Join(before, ", ")
+	if me.What == "row key" {
+		return fmt.Errorf("it holds row key %s, as %s does: row keys count from -first-row (0 unless given), so each part of a data set must be summarized with -first-row set to the index of its first row in the whole", me.A, with)
+	}
+	return fmt.Errorf("it differs from %s in its %s (%s there, %s here): only summaries made with the same model and settings merge", with, me.What, me.A, me.B)
 }
 
 // write renders the summary in the chosen format to stdout or -out.

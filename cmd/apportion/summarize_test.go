@@ -56,7 +56,9 @@ func writeTemp(t *testing.T, name, content string) string {
 func TestSummarizeDemoTable(t *testing.T) {
 	code, out, errOut := cli(t, "summarize", "-steps", "32")
 	require.Equal(t, exitOK, code, errOut)
-	assert.Empty(t, errOut, "no progress bar when standard error is not a terminal")
+	// No progress bar when standard error is not a terminal: only the
+	// note on the column the summary does not read.
+	assert.Equal(t, "apportion summarize: demo:pumps_test.csv: ignored the columns the model does not read: label\n", errOut)
 	assert.Contains(t, out, "500 rows summarised, 0 skipped")
 	assert.Contains(t, out, "all rows (500 rows)")
 	for line, n := range pumpLineRows {
@@ -73,7 +75,10 @@ func TestSummarizeDemoTable(t *testing.T) {
 		name := strings.Fields(l)[0]
 		assert.True(t, ruleFeatures[name], "feature %q ranked in the first three: %s", name, l)
 	}
-	assert.Contains(t, lines[i+2], "████████████", "the largest mean |a| has the full bar")
+	// One scale for every group: exactly one row, the largest mean |a| of
+	// any group, has the full bar.
+	assert.Equal(t, 1, strings.Count(out, "████████████"))
+	assert.Contains(t, out, "the largest of any group)")
 }
 
 func TestSummarizeDemoJSON(t *testing.T) {
@@ -217,10 +222,10 @@ func TestSummarizeMergeEqualsWhole(t *testing.T) {
 	require.Equal(t, exitOK, code, errOut)
 	assert.Contains(t, table, "90 rows summarised, 0 skipped")
 
-	// A part merged twice is refused.
+	// A part merged twice is refused, pointing to -first-row.
 	code, _, errOut = cli(t, "summarize", "-merge", outs["a"], outs["a"])
 	assert.Equal(t, exitFail, code)
-	assert.Contains(t, errOut, "both summaries hold row key 0")
+	assert.Equal(t, "apportion summarize: -merge "+outs["a"]+": it holds row key 0, as "+outs["a"]+" does: row keys count from -first-row (0 unless given), so each part of a data set must be summarized with -first-row set to the index of its first row in the whole\n", errOut)
 
 	// Summaries of another method are refused, naming the difference.
 	other := filepath.Join(dir, "other.json")
@@ -228,12 +233,15 @@ func TestSummarizeMergeEqualsWhole(t *testing.T) {
 	require.Equal(t, exitOK, code, errOut)
 	code, _, errOut = cli(t, "summarize", "-merge", outs["a"], other)
 	assert.Equal(t, exitFail, code)
-	assert.Contains(t, errOut, "summaries do not match: method integrated-gradients vs gradient-times-input")
+	assert.Contains(t, errOut, "apportion summarize: -merge "+other+": it differs from "+outs["a"]+" in its method (integrated-gradients there, gradient-times-input here)")
 
-	// A file that is not a summary.
+	// A file that is not a summary, or no file: the same one prefix.
 	code, _, errOut = cli(t, "summarize", "-merge", outs["a"], whole)
 	assert.Equal(t, exitFail, code)
-	assert.Contains(t, errOut, "summary JSON")
+	assert.Contains(t, errOut, "apportion summarize: -merge "+whole+": gradattr: invalid input: not a summary document")
+	code, _, errOut = cli(t, "summarize", "-merge", outs["a"], whole+".gone")
+	assert.Equal(t, exitFail, code)
+	assert.Equal(t, "apportion summarize: -merge "+whole+".gone: no such file or directory\n", errOut)
 }
 
 func TestSummarizePNG(t *testing.T) {
@@ -312,6 +320,7 @@ func TestSummarizeModelFile(t *testing.T) {
 	for _, in := range []string{inOrder, shuffled} {
 		code, out, errOut := cli(t, "summarize", "-model", model, "-input", in, "-reference", ref, "-baseline", "mean", "-steps", "16", "-by", "label", "-bootstrap", "30", "-format", "json")
 		require.Equal(t, exitOK, code, errOut)
+		assert.Equal(t, 1, strings.Count(errOut, filepath.Base(in)+": ignored the columns the model does not read: pump_line\n"), errOut)
 		docs = append(docs, out)
 	}
 	assert.Equal(t, docs[0], docs[1])
@@ -321,22 +330,15 @@ func TestSummarizeModelFile(t *testing.T) {
 	assert.Equal(t, 20.0, doc["rows"])
 }
 
-// TestSummarizeFailedExplanations asks for an output the model does not
-// have (the pumps model has 3, README): every explanation fails, each row
-// is reported and counted as skipped, and the (empty) summary is written.
-func TestSummarizeFailedExplanations(t *testing.T) {
+// TestSummarizeTargetOutOfRange asks for an output the model does not have
+// (the pumps model has 3, demo/data/README.md): a usage error naming the
+// range, before any row is explained.
+func TestSummarizeTargetOutOfRange(t *testing.T) {
 	in := writeTemp(t, "few.csv", pumpsCSV(t, 0, 4))
 	code, out, errOut := cli(t, "summarize", "-input", in, "-target", "7", "-steps", "8", "-format", "json")
-	assert.Equal(t, exitFail, code)
-	for _, line := range []string{"line 2: ", "line 3: ", "line 4: ", "line 5: "} {
-		assert.Contains(t, errOut, line)
-	}
-	assert.Contains(t, errOut, "target 7, model has outputs 0..2")
-	assert.Contains(t, errOut, "4 of 4 rows skipped")
-	doc := decodeJSON(t, out)
-	assert.Equal(t, 0.0, doc["rows"])
-	assert.Equal(t, 4.0, doc["skipped_rows"])
-	assert.Len(t, doc["skipped"], 4)
+	assert.Equal(t, exitUsage, code)
+	assert.Contains(t, errOut, `-target must be top or an index from 0 to 2 (output "condition" has 3 values), got 7`)
+	assert.Empty(t, out)
 }
 
 // TestSummarizeBackendSoftmax summarises gradient×input of the ONNX
@@ -515,6 +517,7 @@ func TestSummarizeKeyColumn(t *testing.T) {
 		t.Helper()
 		code, out, errOut := cli(t, append(append([]string{}, args...), extra...)...)
 		require.Equal(t, exitOK, code, errOut)
+		assert.NotContains(t, errOut, "reading", "the key column is read, not ignored")
 		return out
 	}
 	// Keys 0..59 in file order are the keys rows have without -key (their
@@ -562,4 +565,18 @@ func TestSummarizeKeyColumn(t *testing.T) {
 		assert.Equal(t, exitUsage, code, "%v: %s", tc.args, errOut)
 		assert.Contains(t, errOut, tc.msg, "%v", tc.args)
 	}
+}
+
+func TestSummarizeManyGroupsWarns(t *testing.T) {
+	// Grouping by a feature column (hours_since_service, nearly one value
+	// per row in the demo's held-out file) makes more than 50 groups: the
+	// summary is written, with a warning on standard error.
+	in := writeTemp(t, "rows.csv", pumpsCSV(t, 0, 60))
+	code, out, errOut := cli(t, "summarize", "-input", in, "-by", "hours_since_service", "-method", "grad", "-bootstrap", "10")
+	require.Equal(t, exitOK, code, errOut)
+	assert.Contains(t, out, "60 rows summarised")
+	assert.Regexp(t, `apportion summarize: warning: grouping by hours_since_service makes \d+ groups, more than 50`, errOut)
+	code, _, errOut = cli(t, "summarize", "-input", in, "-by", "pump_line", "-method", "grad", "-bootstrap", "10")
+	require.Equal(t, exitOK, code, errOut)
+	assert.NotContains(t, errOut, "warning")
 }

@@ -162,7 +162,7 @@ func buildPumps(w *writer, seed uint64) error {
 	if err != nil {
 		return err
 	}
-	sample, err := pumpSample(rows)
+	sample, err := pumpSample(rows, m.probabilities)
 	if err != nil {
 		return err
 	}

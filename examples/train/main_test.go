@@ -2,6 +2,7 @@ package main
 
 import (
 	"bytes"
+	"context"
 	"encoding/csv"
 	"math"
 	"strconv"
@@ -13,6 +14,7 @@ import (
 	"gorgonia.org/tensor"
 
 	"github.com/apportion/apportion/demo"
+	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/onnxlite"
 )
 
@@ -41,8 +43,22 @@ func TestPumpsDataReproduces(t *testing.T) {
 	require.NoError(t, err)
 	assert.Equal(t, committed(t, "pumps_reference.csv"), refCSV)
 
-	s, err := pumpSample(rows)
+	// The sample is chosen by the model's probabilities: the committed
+	// model's, run by the engine.
+	m, err := explain.Decode(committed(t, "pumps.onnx"), "pumps.onnx", explain.DecodeOptions{})
 	require.NoError(t, err)
+	require.NoError(t, m.Compile(explain.CompileOptions{}))
+	head, err := m.Head("", false)
+	require.NoError(t, err)
+	prob := func(x []float64) []float64 {
+		p, err := head.Forward(context.Background(), x, 1)
+		require.NoError(t, err)
+		return p
+	}
+	s, err := pumpSample(rows, prob)
+	require.NoError(t, err)
+	p := prob(s.X[:])[2]
+	assert.True(t, p >= sampleMinProb && p <= sampleMaxProb, "failing with probability %v", p)
 	sample, err := jsonLine(s.X[:])
 	require.NoError(t, err)
 	assert.Equal(t, committed(t, "pumps_sample.json"), sample)

@@ -194,6 +194,12 @@ func trainMLP(x []float64, labels []int, n int, cfg trainConfig) (*mlp, error) {
 // predict returns the argmax class of one raw (unstandardised) row, computed
 // in float32 like the exported model.
 func (m *mlp) predict(x []float64) int {
+	return argmax32(m.logits(x))
+}
+
+// logits returns the network's outputs before the softmax for one raw row,
+// in float32 like the exported model.
+func (m *mlp) logits(x []float64) []float32 {
 	h := make([]float32, len(x))
 	for j := range x {
 		h[j] = (float32(x[j]) - float32(m.Mean[j])) / float32(m.Std[j])
@@ -201,7 +207,24 @@ func (m *mlp) predict(x []float64) int {
 	for l, L := range m.Layers {
 		h = L.forward(h, l+1 < len(m.Layers))
 	}
-	return argmax32(h)
+	return h
+}
+
+// probabilities returns the class probabilities of one raw row, softmax(z)_k
+// = exp(z_k − max z) / Σ_j exp(z_j − max z) of the logits z.
+func (m *mlp) probabilities(x []float64) []float64 {
+	z := m.logits(x)
+	top := z[argmax32(z)]
+	p := make([]float64, len(z))
+	sum := 0.0
+	for k, v := range z {
+		p[k] = math.Exp(float64(v - top))
+		sum += p[k]
+	}
+	for k := range p {
+		p[k] /= sum
+	}
+	return p
 }
 
 // argmax32 returns the index of the largest element (the first on ties).

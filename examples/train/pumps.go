@@ -128,15 +128,25 @@ func pumpReference(rows []pumpRow) []pumpRow {
 	return ref
 }
 
-// pumpSample returns the first held-out failing row with clearly high
-// vibration: the demo's one sample to explain.
-func pumpSample(rows []pumpRow) (pumpRow, error) {
+// The demo's sample is classed failing with a probability in
+// [sampleMinProb, sampleMaxProb]: confident, and not saturated, so that the
+// methods that read the gradient at the sample itself (the gradient,
+// gradient × input, SmoothGrad) find one.
+const (
+	sampleMinProb = 0.9
+	sampleMaxProb = 0.99
+)
+
+// pumpSample returns the demo's one sample to explain: the first held-out
+// failing row that the model, whose class probabilities prob gives, classes
+// failing with a probability between sampleMinProb and sampleMaxProb.
+func pumpSample(rows []pumpRow, prob func(x []float64) []float64) (pumpRow, error) {
 	for _, r := range rows[pumpTrainRows:] {
-		if r.Label == 2 && r.X[1] > 6 {
+		if p := prob(r.X[:])[2]; r.Label == 2 && p >= sampleMinProb && p <= sampleMaxProb {
 			return r, nil
 		}
 	}
-	return pumpRow{}, fmt.Errorf("pumps: no failing held-out row with vibration_rms > 6 mm/s")
+	return pumpRow{}, fmt.Errorf("pumps: no failing held-out row classed failing with a probability in [%v, %v]", sampleMinProb, sampleMaxProb)
 }
 
 // formatFloat writes v in the shortest form that reads back exactly.

@@ -1,7 +1,8 @@
 // Package debpython finds, for tests only, Debian's python3 with the
 // reference implementations the project checks against importable: the ONNX
-// project's python package (python3-onnx 1.12.0) and PyTorch (python3-torch
-// 1.13.1).
+// project's python package (python3-onnx 1.12.0), PyTorch (python3-torch
+// 1.13.1) and matplotlib's copy of the ColorBrewer schemes
+// (python3-matplotlib 3.6.3).
 package debpython
 
 import (
@@ -17,10 +18,11 @@ const Path = "/usr/bin/python3"
 
 // packages names the Debian package that installs each module.
 var packages = map[string]string{
-	"onnx":    "python3-onnx",
-	"torch":   "python3-torch",
-	"numpy":   "python3-numpy",
-	"sklearn": "python3-sklearn",
+	"onnx":       "python3-onnx",
+	"torch":      "python3-torch",
+	"numpy":      "python3-numpy",
+	"sklearn":    "python3-sklearn",
+	"matplotlib": "python3-matplotlib",
 }
 
 // Require returns Path when it imports every one of modules. Otherwise the

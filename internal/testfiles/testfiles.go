@@ -101,3 +101,49 @@ func ReadPB(t testing.TB, path string) (shape []int, data []float64) {
 	require.NoError(t, err)
 	return tt.Shape(), data
 }
+
+// SoftmaxGradient is the gradient of output k of y = softmax(x) in closed
+// form, the softmax derivative ∂y_k/∂x_i = y_k(δ_ik − y_i); y holds the
+// outputs at x.
+func SoftmaxGradient(y []float64, k int) []float64 {
+	g := make([]float64, len(y))
+	for i := range g {
+		d := 0.0
+		if i == k {
+			d = 1
+		}
+		g[i] = y[k] * (d - y[i])
+	}
+	return g
+}
+
+// SoftmaxGradientTimesInput is gradient × input of y = softmax(x) for its
+// top class k (the first largest y_k), in closed form: a_i = x_i·y_k(δ_ik
+// − y_i).
+func SoftmaxGradientTimesInput(x, y []float64) (k int, a []float64) {
+	for i := range y {
+		if y[i] > y[k] {
+			k = i
+		}
+	}
+	a = SoftmaxGradient(y, k)
+	for i := range a {
+		a[i] *= x[i]
+	}
+	return k, a
+}
+
+// ReadmeCode returns the first code block fenced as lang (```go) in the
+// section of the README at path headed "## heading".
+func ReadmeCode(t testing.TB, path, heading, lang string) string {
+	t.Helper()
+	readme, err := os.ReadFile(path)
+	require.NoError(t, err)
+	_, section, ok := strings.Cut(string(readme), "\n## "+heading+"\n")
+	require.True(t, ok, "README has no section %q", heading)
+	_, code, ok := strings.Cut(section, "```"+lang+"\n")
+	require.True(t, ok, "the section %q has no %s code", heading, lang)
+	code, _, ok = strings.Cut(code, "```")
+	require.True(t, ok)
+	return code
+}
