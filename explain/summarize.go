@@ -46,6 +46,10 @@ func (e *Explainer) Features(columns []string) []string {
 type SummarizeOptions struct {
 	// FirstKey is the row key of the first row; row i has key FirstKey+i.
 	FirstKey uint64
+	// Keyed keys each row by its Row.Key instead, the key read from a key
+	// column (samples.TableOptions.Key), so that a row's bootstrap weights
+	// do not depend on where it is in the rows given.
+	Keyed bool
 	// ByPredicted groups rows by their predicted class (the model's class
 	// name of the largest output) instead of Row.Group.
 	ByPredicted bool
@@ -74,11 +78,17 @@ func (e *Explainer) Summarize(ctx context.Context, rows []samples.Row, s *gradat
 	if err != nil {
 		return nil, err
 	}
+	key := func(i int) uint64 {
+		if opt.Keyed {
+			return rows[i].Key
+		}
+		return opt.FirstKey + uint64(i)
+	}
 	failed := make([]error, len(rows))
 	fail := func(i int, group string, err error) {
 		failed[i] = err
 		// Each row key is taken once, so Skip cannot fail.
-		_ = s.Skip(opt.FirstKey+uint64(i), group, err)
+		_ = s.Skip(key(i), group, err)
 	}
 	var todo []int
 	for i, r := range rows {
@@ -128,7 +138,7 @@ func (e *Explainer) Summarize(ctx context.Context, rows []samples.Row, s *gradat
 			group = e.model.Meta.Class(gradattr.Top(r.res.Outputs))
 		}
 		if err == nil {
-			err = s.Add(opt.FirstKey+uint64(r.i), group, r.res.Attributions)
+			err = s.Add(key(r.i), group, r.res.Attributions)
 		}
 		if err != nil {
 			fail(r.i, group, err)

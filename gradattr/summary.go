@@ -208,13 +208,8 @@ func (s *Summary) newAccum() *accum {
 // already in the summary, is refused with an error wrapping ErrInput and
 // changes nothing.
 func (s *Summary) Add(key uint64, group string, attr []float64) error {
-	if len(attr) != s.nf {
-		return fmt.Errorf("%w: row %d has %d attributions, summary has %d features", ErrInput, key, len(attr), s.nf)
-	}
-	for i, a := range attr {
-		if math.IsNaN(a) || math.Abs(a) > MaxSummaryValue {
-			return fmt.Errorf("%w: row %d, feature %d (%s): attribution %v, want a finite number of magnitude ≤ %g", ErrInput, key, i, s.opt.Features[i], a, MaxSummaryValue)
-		}
+	if err := s.Check(key, attr); err != nil {
+		return err
 	}
 	g, err := s.reserve(key, group)
 	if err != nil {
@@ -224,6 +219,22 @@ func (s *Summary) Add(key uint64, group string, attr []float64) error {
 	s.all.add(attr, w, s.b)
 	if g != nil {
 		g.add(attr, w, s.b)
+	}
+	return nil
+}
+
+// Check returns the error Add refuses the attributions attr of the row
+// with the given key with, for their length or a value (not for the key
+// or the group), or nil. It lets a caller that adds rows elsewhere (a
+// pipeline's combine) set such a row aside first.
+func (s *Summary) Check(key uint64, attr []float64) error {
+	if len(attr) != s.nf {
+		return fmt.Errorf("%w: row %d has %d attributions, summary has %d features", ErrInput, key, len(attr), s.nf)
+	}
+	for i, a := range attr {
+		if math.IsNaN(a) || math.Abs(a) > MaxSummaryValue {
+			return fmt.Errorf("%w: row %d, feature %d (%s): attribution %v, want a finite number of magnitude ≤ %g", ErrInput, key, i, s.opt.Features[i], a, MaxSummaryValue)
+		}
 	}
 	return nil
 }

@@ -274,6 +274,14 @@ func TestSummaryRefusals(t *testing.T) {
 	assert.ErrorIs(t, s.Add(6, "a", []float64{1, math.Inf(1), 3, 4}), ErrInput)
 	assert.ErrorIs(t, s.Skip(3, "a", errors.New("x")), ErrInput)
 	assert.Equal(t, 1, s.Rows(), "refused rows change nothing")
+	// Check refuses what Add refuses for the values, with the same error,
+	// and takes no key: row 5 can still be added once fixed.
+	bad := []float64{1, math.NaN(), 3, 4}
+	assert.Equal(t, s.Add(5, "a", bad).Error(), s.Check(5, bad).Error())
+	assert.ErrorContains(t, s.Check(5, []float64{1, 2, 3, -2 * MaxSummaryValue}), "attribution -2e+100")
+	assert.NoError(t, s.Check(3, []float64{1, 2, 3, 4}), "the key is Add's to judge")
+	require.NoError(t, s.Add(5, "a", []float64{1, 2, 3, 4}))
+	assert.Equal(t, 2, s.Rows())
 
 	for _, opt := range []SummaryOptions{
 		{},

@@ -1,6 +1,8 @@
 package samples
 
 import (
+	"crypto/sha256"
+	"encoding/binary"
 	"encoding/csv"
 	"errors"
 	"fmt"
@@ -204,6 +206,10 @@ type Row struct {
 	// Group is the row's value in the group column ("(empty)" for an
 	// empty field); "" without a group column.
 	Group string
+	// Key is the row's key (see RowKey) when the table has a key column
+	// (TableOptions.Key); a row without one (an empty field, a short row)
+	// has the key of its place instead (see PlaceKey).
+	Key uint64
 	// Err says why the row cannot be used: a field that is not a number,
 	// a NaN or infinity (wrapping ErrNonFinite), a wrong field count.
 	Err error
@@ -219,6 +225,9 @@ type TableOptions struct {
 	Size int
 	// Group names the column whose value groups the rows; "" for none.
 	Group string
+	// Key names the column whose value tells each row apart (see
+	// Row.Key); "" for none.
+	Key string
 }
 
 // ColumnError reports a column a table does not have.
@@ -236,9 +245,10 @@ func (e *ColumnError) Error() string {
 // ReadTable reads the rows of the file called name. A CSV file must start
 // with a header row naming its columns. The samples' values are the columns
 // named by opt.Features (when it names Size of them), else the first Size
-// numeric columns other than the group column, or every numeric column when
-// Size is 0. Any other format is read as by Read, one row per sample. A
-// row that cannot be used keeps its error; the others are read.
+// numeric columns other than the group and key columns, or every numeric
+// column when Size is 0. Any other format is read as by Read, one row per
+// sample. A row that cannot be used keeps its error; the others are read.
+// Two rows with the same key are an error: a key column tells rows apart.
 func ReadTable(r io.Reader, name string, spec Spec, opt TableOptions) (*Table, error) {
 	tr, err := NewTableReader(r, name, spec, opt)
 	if err != nil {
@@ -283,8 +293,10 @@ func NewTableReader(r io.Reader, name string, spec Spec, opt TableOptions) (*Tab
 	if f == CSV {
 		return newCSVTable(r, name, opt)
 	}
-	if opt.Group != "" {
-		return nil, fmt.Errorf("input %s: group column %q: the file is not CSV, the one format with named columns", name, opt.Group)
+	for _, c := range []struct{ what, name string }{{"group", opt.Group}, {"key", opt.Key}} {
+		if c.name != "" {
+			return nil, fmt.Errorf("input %s: %s column %q: the file is not CSV, the one format with named columns", name, c.what, c.name)
+		}
 	}
 	s, err := NewStream(r, name, spec, Options{KeepBad: true})
 	if err != nil {
@@ -361,12 +373,23 @@ func newCSVTable(r io.Reader, name string, opt TableOptions) (*TableReader, erro
 		return nil, fmt.Errorf("input %s: expected at least one data row after the header, got none", name)
 	}
 	index := columnIndex(header)
-	groupCol := -1
-	if opt.Group != "" {
-		var ok bool
-		if groupCol, ok = index[opt.Group]; !ok {
-			return nil, &ColumnError{Column: opt.Group, File: name, Columns: header}
+	column := func(c string) (int, error) {
+		if c == "" {
+			return -1, nil
 		}
+		j, ok := index[c]
+		if !ok {
+			return -1, &ColumnError{Column: c, File: name, Columns: header}
+		}
+		return j, nil
+	}
+	groupCol, err := column(opt.Group)
+	if err != nil {
+		return nil, err
+	}
+	keyCol, err := column(opt.Key)
+	if err != nil {
+		return nil, err
 	}
 	var cols []int
 	if k := opt.Size; k > 0 && len(opt.Features) == k {
@@ -375,7 +398,7 @@ func newCSVTable(r io.Reader, name string, opt TableOptions) (*TableReader, erro
 		}
 	} else {
 		for j := range header {
-			if j != groupCol && numericColumn(ahead, j) {
+			if j != groupCol && j != keyCol && numericColumn(ahead, j) {
 				cols = append(cols, j)
 			}
 		}
@@ -386,11 +409,25 @@ func newCSVTable(r io.Reader, name string, opt TableOptions) (*TableReader, erro
 			cols = cols[:k]
 		}
 	}
-	row := func(rec []string, line int) Row {
+	keyLines := map[uint64]int{}
+	row := func(rec []string, line int) (Row, error) {
 		row := Row{Where: "line " + strconv.Itoa(line)}
+		var keyErr error
+		if keyCol >= 0 {
+			if keyCol < len(rec) && strings.TrimSpace(rec[keyCol]) != "" {
+				row.Key = RowKey(strings.TrimSpace(rec[keyCol]))
+				if first, dup := keyLines[row.Key]; dup {
+					return row, fmt.Errorf("input %s: key column %s: line %d has the key %q of line %d; a key column needs a different value on every row", name, opt.Key, line, strings.TrimSpace(rec[keyCol]), first)
+				}
+				keyLines[row.Key] = line
+			} else {
+				row.Key = PlaceKey(name, row.Where)
+				keyErr = fmt.Errorf("key column %s: no key, expected a value that tells the row apart", opt.Key)
+			}
+		}
 		if len(rec) != len(header) {
 			row.Err = fmt.Errorf("expected %d fields, as in the header, got %d", len(header), len(rec))
-			return row
+			return row, nil
 		}
 		if groupCol >= 0 {
 			row.Group = strings.TrimSpace(rec[groupCol])
@@ -399,25 +436,35 @@ func newCSVTable(r io.Reader, name string, opt TableOptions) (*TableReader, erro
 			}
 		}
 		row.Values, row.Err = parseFields(rec, cols, true, func(j int) string { return "column " + header[j] })
-		return row
+		if row.Err == nil && keyErr != nil {
+			row.Values, row.Err = nil, keyErr
+		}
+		return row, nil
 	}
-	t := &TableReader{Columns: pick(header, cols), Ignored: unread(header, cols, groupCol)}
+	t := &TableReader{Columns: pick(header, cols), Ignored: unread(header, cols, groupCol, keyCol)}
 	t.next = func(n int) ([]Row, error) {
 		var rows []Row
 		for len(rows) < n {
+			var rec []string
+			var line int
 			if len(ahead) > 0 {
-				rows = append(rows, row(ahead[0], lines[0]))
+				rec, line = ahead[0], lines[0]
 				ahead, lines = ahead[1:], lines[1:]
-				continue
+			} else {
+				var err error
+				rec, line, err = nextRecord(cr)
+				if err == io.EOF {
+					break
+				}
+				if err != nil {
+					return nil, fmt.Errorf("input %s: %w", name, err)
+				}
 			}
-			rec, line, err := nextRecord(cr)
-			if err == io.EOF {
-				break
-			}
+			r, err := row(rec, line)
 			if err != nil {
-				return nil, fmt.Errorf("input %s: %w", name, err)
+				return nil, err
 			}
-			rows = append(rows, row(rec, line))
+			rows = append(rows, r)
 		}
 		if len(rows) == 0 {
 			return nil, io.EOF
@@ -425,6 +472,30 @@ func newCSVTable(r io.Reader, name string, opt TableOptions) (*TableReader, erro
 		return rows, nil
 	}
 	return t, nil
+}
+
+// MaxNumberKey is the largest key field that is its own key (see RowKey).
+const MaxNumberKey = 1<<63 - 1
+
+// RowKey returns the key of a row whose key field holds text. A whole
+// number from 0 to MaxNumberKey, in decimal digits without leading zeros,
+// is its own key, so that a summary of rows numbered 0, 1, 2, ... records
+// its keys as one range. Any other text has the key 2^63 + the first 63
+// bits of its SHA-256 (big-endian), apart from the numbers; two texts share
+// a key with probability about n²/2^64 among n rows.
+func RowKey(text string) uint64 {
+	if v, err := strconv.ParseUint(text, 10, 63); err == nil && strconv.FormatUint(v, 10) == text {
+		return v
+	}
+	sum := sha256.Sum256([]byte(text))
+	return 1<<63 | binary.BigEndian.Uint64(sum[:8])>>1
+}
+
+// PlaceKey returns the key of the row at where ("line 7", "sample 3") in
+// the file called name: RowKey of the two joined by a newline. It keys rows
+// that have no key column, and those whose key field is empty.
+func PlaceKey(name, where string) uint64 {
+	return RowKey(name + "\n" + where)
 }
 
 // newCSVReader reads records of any length whose fields lose their
@@ -480,10 +551,13 @@ func columnsByName(header, features []string) ([]int, error) {
 	return cols, nil
 }
 
-// unread returns the columns of header that are not in cols and are not
-// column skip (-1 for none), in file order.
-func unread(header []string, cols []int, skip int) []string {
-	used := map[int]bool{skip: true}
+// unread returns the columns of header that are not in cols nor among the
+// columns skip (-1 for none), in file order.
+func unread(header []string, cols []int, skip ...int) []string {
+	used := map[int]bool{}
+	for _, j := range skip {
+		used[j] = true
+	}
 	for _, j := range cols {
 		used[j] = true
 	}

@@ -217,6 +217,47 @@ func TestReadTable(t *testing.T) {
 	assert.ErrorContains(t, err, "expected a header row naming the columns")
 }
 
+func TestReadTableKeyColumn(t *testing.T) {
+	// A key column of numbers and text, one row short of fields but with
+	// its key, one without a key; the key column is not a feature.
+	text := "id,a,b,line\n" +
+		"17,1,2,p\n" +
+		"0,3,4,q\n" +
+		"abc,5,6,p\n" +
+		"007,7\n" +
+		",9,10,q\n"
+	tbl, err := samples.ReadTable(strings.NewReader(text), "k.csv", samples.Spec{}, samples.TableOptions{Size: 2, Group: "line", Key: "id"})
+	require.NoError(t, err)
+	assert.Equal(t, []string{"a", "b"}, tbl.Columns, "the numeric key column is not read as a feature")
+	assert.Nil(t, tbl.Ignored, "the key and group columns are read")
+	require.Len(t, tbl.Rows, 5)
+	assert.Equal(t, samples.Row{Where: "line 2", Values: []float64{1, 2}, Group: "p", Key: 17}, tbl.Rows[0])
+	assert.Equal(t, uint64(0), tbl.Rows[1].Key)
+	// SHA-256("abc") = ba7816bf 8f01cfea ... (FIPS 180-2, appendix B.1):
+	// 2^63 + its first 64 bits shifted right by one.
+	assert.Equal(t, uint64(1<<63|0xba7816bf8f01cfea>>1), tbl.Rows[2].Key)
+	assert.Equal(t, tbl.Rows[2].Key, samples.RowKey("abc"))
+	// "007" is text, not the number 7: keys map texts one to one.
+	assert.EqualError(t, tbl.Rows[3].Err, "expected 4 fields, as in the header, got 2")
+	assert.Equal(t, samples.RowKey("007"), tbl.Rows[3].Key)
+	assert.NotEqual(t, uint64(7), tbl.Rows[3].Key)
+	assert.EqualError(t, tbl.Rows[4].Err, "key column id: no key, expected a value that tells the row apart")
+	assert.Nil(t, tbl.Rows[4].Values)
+	assert.Equal(t, samples.PlaceKey("k.csv", "line 6"), tbl.Rows[4].Key)
+	assert.Equal(t, samples.RowKey("k.csv\nline 6"), tbl.Rows[4].Key)
+	assert.Equal(t, uint64(samples.MaxNumberKey), samples.RowKey("9223372036854775807"))
+	assert.GreaterOrEqual(t, samples.RowKey("9223372036854775808"), uint64(1<<63), "beyond MaxNumberKey a number is text")
+
+	_, err = samples.ReadTable(strings.NewReader(text+"0,1,1,q\n"), "k.csv", samples.Spec{}, samples.TableOptions{Size: 2, Key: "id"})
+	assert.EqualError(t, err, `input k.csv: key column id: line 7 has the key "0" of line 3; a key column needs a different value on every row`)
+	_, err = samples.ReadTable(strings.NewReader(text), "k.csv", samples.Spec{}, samples.TableOptions{Size: 2, Key: "serial"})
+	var ce *samples.ColumnError
+	require.ErrorAs(t, err, &ce)
+	assert.Equal(t, "serial", ce.Column)
+	_, err = samples.ReadTable(strings.NewReader("[[1, 2]]"), "k.json", samples.Spec{}, samples.TableOptions{Key: "id"})
+	assert.EqualError(t, err, `input k.json: key column "id": the file is not CSV, the one format with named columns`)
+}
+
 func TestReadErrorsNameLinesAndColumns(t *testing.T) {
 	// Lines and columns are counted from 1, as editors and spreadsheets
 	// count them (common practice), or a column is named by its header.

@@ -44,6 +44,7 @@ type summarizeConfig struct {
 	out       string
 	bootstrap int
 	firstRow  uint64
+	key       string
 	merge     bool
 	files     []string // the summaries to merge
 }
@@ -67,7 +68,9 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 			"not a number) is reported with its line and skipped; the status is then 1,\n"+
 			"but the summary is written. Rows are keyed -first-row, -first-row+1, ...:\n"+
 			"summaries of parts of one data set (-format json) merge exactly with\n"+
-			"-merge, into the summary of the whole. Without -model and -input,\n"+
+			"-merge, into the summary of the whole. With -key, rows are keyed by their\n"+
+			"value in that column (whole numbers as they are, other text by its\n"+
+			"SHA-256), whichever part they are in. Without -model and -input,\n"+
 			"summarize runs the embedded, invented pumps demo on its held-out set, by\n"+
 			"pump_line, against the mean of its reference set.\n\n"+caution, stderr)
 	var sc summarizeConfig
@@ -84,6 +87,7 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 	fs.StringVar(&sc.out, "out", "", "write the summary to `file` instead of standard output")
 	fs.IntVar(&sc.bootstrap, "bootstrap", gradattr.DefaultBootstrap, "number `B` of bootstrap replicates")
 	fs.Uint64Var(&sc.firstRow, "first-row", 0, "row key `K` of the first data row, for a part of a larger data set")
+	fs.StringVar(&sc.key, "key", "", "key each row by its value in this CSV `column`, which tells rows apart (instead of -first-row and the row's place)")
 	fs.BoolVar(&sc.merge, "merge", false, "merge the summary JSON files given as arguments instead of explaining rows")
 
 	flagArgs, files := splitFileArgs(fs, args)
@@ -195,6 +199,9 @@ func (sc *summarizeConfig) validate() string {
 	}
 	if sc.firstRow > maxFirstRow {
 		return fmt.Sprintf("-first-row must be at most %d, got %d", uint64(maxFirstRow), sc.firstRow)
+	}
+	if sc.key != "" && sc.firstRow != 0 {
+		return "-key keys rows by a column, -first-row by their place; give one of them"
 	}
 	if c.modelPath != "" && c.inputPath == "" {
 		return "-input is required with -model"
@@ -331,7 +338,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 			return nil, nil, "", err
 		}
 		part, err := ex.Summarize(ctx, rows, s, explain.SummarizeOptions{
-			FirstKey: sc.firstRow + uint64(offset), ByPredicted: sc.by == byPredicted, Progress: tick,
+			FirstKey: sc.firstRow + uint64(offset), Keyed: sc.key != "", ByPredicted: sc.by == byPredicted, Progress: tick,
 		})
 		if err != nil {
 			return nil, nil, "", err
@@ -399,14 +406,23 @@ func (sc *summarizeConfig) openRows(m *explain.Model, spec samples.Spec) (*sampl
 	if sc.by != byPredicted {
 		opt.Group = sc.by
 	}
+	opt.Key = sc.key
 	if f, _ := samples.FormatOf(name); f != samples.CSV && opt.Group != "" {
 		closer.Close()
 		return nil, nil, &usageErr{fmt.Sprintf("-by %s names a column, and %s is not a CSV file; use -by predicted", sc.by, name)}
 	}
+	if f, _ := samples.FormatOf(name); f != samples.CSV && opt.Key != "" {
+		closer.Close()
+		return nil, nil, &usageErr{fmt.Sprintf("-key %s names a column, and %s is not a CSV file", sc.key, name)}
+	}
 	t, err := samples.NewTableReader(r, name, spec, opt)
 	var ce *samples.ColumnError
-	if errors.As(err, &ce) && ce.Column == sc.by {
-		err = &usageErr{fmt.Sprintf("-by %s: no such column in %s (columns: %s)", sc.by, name, strings.Join(ce.Columns, ", "))}
+	if errors.As(err, &ce) && (ce.Column == sc.by || ce.Column == sc.key) {
+		flag := "-by"
+		if ce.Column == sc.key {
+			flag = "-key"
+		}
+		err = &usageErr{fmt.Sprintf("%s %s: no such column in %s (columns: %s)", flag, ce.Column, name, strings.Join(ce.Columns, ", "))}
 	}
 	if err != nil {
 		closer.Close()

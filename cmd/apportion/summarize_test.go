@@ -499,6 +499,74 @@ func TestSummarizeMergesWithLibrary(t *testing.T) {
 	assert.Equal(t, strings.TrimSpace(string(want)), string(got))
 }
 
+// keyedPumps returns the first n rows of the demo's held-out set with a
+// key column in front: key(i) for data row i.
+func keyedPumps(t *testing.T, n int, key func(i int) string) []string {
+	t.Helper()
+	lines := strings.Split(strings.TrimRight(pumpsCSV(t, 0, n), "\n"), "\n")
+	lines[0] = "reading," + lines[0]
+	for i := 1; i < len(lines); i++ {
+		lines[i] = key(i-1) + "," + lines[i]
+	}
+	return lines
+}
+
+func TestSummarizeKeyColumn(t *testing.T) {
+	args := []string{"summarize", "-steps", "16", "-by", "pump_line", "-bootstrap", "64", "-format", "json"}
+	summarize := func(extra ...string) string {
+		t.Helper()
+		code, out, errOut := cli(t, append(append([]string{}, args...), extra...)...)
+		require.Equal(t, exitOK, code, errOut)
+		assert.NotContains(t, errOut, "reading", "the key column is read, not ignored")
+		return out
+	}
+	// Keys 0..59 in file order are the keys rows have without -key (their
+	// places), so the summaries are the same, bit for bit.
+	numbered := keyedPumps(t, 60, strconv.Itoa)
+	plain := summarize("-input", writeTemp(t, "plain.csv", pumpsCSV(t, 0, 60)))
+	assert.Equal(t, plain, summarize("-input", writeTemp(t, "numbered.csv", strings.Join(numbered, "\n")+"\n"), "-key", "reading"))
+
+	// Text keys: the rows reversed and split in two parts give, merged,
+	// the summary of the whole in file order, bit for bit: each row's
+	// bootstrap weights follow its key, not its place.
+	text := keyedPumps(t, 60, func(i int) string { return fmt.Sprintf("R-%03d", 7*i) })
+	whole := summarize("-input", writeTemp(t, "whole.csv", strings.Join(text, "\n")+"\n"), "-key", "reading")
+	var reversed []string
+	for i := len(text) - 1; i >= 1; i-- {
+		reversed = append(reversed, text[i])
+	}
+	dir := t.TempDir()
+	var parts []string
+	for k, rows := range [][]string{reversed[:23], reversed[23:]} {
+		in := writeTemp(t, fmt.Sprintf("part%d.csv", k), text[0]+"\n"+strings.Join(rows, "\n")+"\n")
+		p := filepath.Join(dir, fmt.Sprintf("part%d.json", k))
+		summarize("-input", in, "-key", "reading", "-out", p)
+		parts = append(parts, p)
+	}
+	code, merged, errOut := cli(t, append([]string{"summarize", "-merge", "-format", "json"}, parts...)...)
+	require.Equal(t, exitOK, code, errOut)
+	assert.Equal(t, whole, merged)
+	assert.NotEqual(t, plain, whole, "other keys, other bootstrap weights")
+
+	// A key that repeats stops the summary, naming both lines.
+	text[9] = strings.Replace(text[9], "R-056", "R-014", 1)
+	code, _, errOut = cli(t, append(args, "-input", writeTemp(t, "twice.csv", strings.Join(text, "\n")+"\n"), "-key", "reading")...)
+	assert.Equal(t, exitFail, code)
+	assert.Contains(t, errOut, `key column reading: line 10 has the key "R-014" of line 4`)
+
+	for _, tc := range []struct {
+		args []string
+		msg  string
+	}{
+		{[]string{"-key", "reading", "-first-row", "5"}, "give one of them"},
+		{[]string{"-key", "serial"}, "-key serial: no such column"},
+	} {
+		code, _, errOut := cli(t, append([]string{"summarize"}, tc.args...)...)
+		assert.Equal(t, exitUsage, code, "%v: %s", tc.args, errOut)
+		assert.Contains(t, errOut, tc.msg, "%v", tc.args)
+	}
+}
+
 func TestSummarizeManyGroupsWarns(t *testing.T) {
 	// Grouping by a feature column (hours_since_service, nearly one value
 	// per row in the demo's held-out file) makes more than 50 groups: the
