@@ -45,7 +45,7 @@ func runAssess(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			"Without -model, assess runs an embedded, invented demo (-demo pumps or welds)\n"+
 			"on the first -limit samples of its held-out test set, with its reference set;\n"+
 			"welds is scored by 4x4 patches. The scores describe the methods on this\n"+
-			"model and these samples, not in general.", stderr)
+			"model and these samples, not in general.\n\n"+caution, stderr)
 	var c assessConfig
 	var names []string
 	for _, m := range fidelity.Scorable() {

@@ -150,8 +150,11 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			"output's change. Shapley values, the local surrogate and occlusion only\n"+
 			"run the model forward; with -groups, -patch or -superpixels they switch\n"+
 			"whole groups on and off.\n\n"+
-			"Without -model, explain runs an embedded, invented demo (-demo pumps or\n"+
-			"welds). -format png draws a heatmap for image-shaped samples ((H,W),\n"+
+			"Without -model, explain runs an embedded, invented demo (-demo pumps,\n"+
+			"welds or tickets, the last a text model explained per token). A model of\n"+
+			"token ids is explained at its embedding, one attribution per token; -layer\n"+
+			"NAME attributes to any value inside the model (inspect -values lists them).\n"+
+			"-format png draws a heatmap for image-shaped samples ((H,W),\n"+
 			"(1,H,W), or (C,H,W) with C ≤ 3: attributions summed over channels) and a\n"+
 			"dot plot otherwise; it needs -out, and with several samples\n"+
 			"writes one file per sample, the index before the extension\n"+
