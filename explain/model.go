@@ -294,6 +294,17 @@ func (m *Model) Head(output string, logits bool) (gradattr.Model, error) {
 // {"outputs": [{"name", "shape", "data"}]}.
 type Prediction struct {
 	Outputs []Output `json:"outputs"`
+	// Rows and Errors are present when some samples of the input could
+	// not be read: Rows are the indices (from 0) of the samples the
+	// outputs are of, in order; Errors the others, each with why.
+	Rows   []int      `json:"rows,omitempty"`
+	Errors []RowError `json:"errors,omitempty"`
+}
+
+// RowError is a sample that could not be read or run.
+type RowError struct {
+	Index int    `json:"index"`
+	Error string `json:"error"`
 }
 
 // Output is one output tensor of a Prediction.

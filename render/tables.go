@@ -16,8 +16,9 @@ import (
 // PredictionTable prints, sample by sample (count of them, the first axis
 // of the batched outputs), each output's values; an output with one value
 // per class name is printed as a class table with the largest value
-// marked.
-func PredictionTable(w io.Writer, outs []explain.Output, count int, classes []string) {
+// marked. rows, when given, are the samples' indices in the input (some
+// were left out); otherwise they are numbered from 0.
+func PredictionTable(w io.Writer, outs []explain.Output, count int, rows []int, classes []string) {
 	if count < 1 {
 		count = 1
 	}
@@ -25,7 +26,11 @@ func PredictionTable(w io.Writer, outs []explain.Output, count int, classes []st
 		if s > 0 {
 			fmt.Fprintln(w)
 		}
-		fmt.Fprintf(w, "sample %d\n", s)
+		label := s
+		if s < len(rows) {
+			label = rows[s]
+		}
+		fmt.Fprintf(w, "sample %d\n", label)
 		for _, o := range outs {
 			vals := o.Data.Values
 			per := len(vals)

@@ -3,6 +3,7 @@ package main
 import (
 	"context"
 	"encoding/json"
+	"fmt"
 	"io"
 	"runtime"
 	"strings"
@@ -112,12 +113,19 @@ func runPredict(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 
 // writePrediction writes the outputs of count samples in format.
 func writePrediction(stdout, stderr io.Writer, format string, m *explain.Model, res *explain.Prediction, count int) int {
+	for _, e := range res.Errors {
+		fmt.Fprintf(stderr, "apportion predict: sample %d left out: %s\n", e.Index, e.Error)
+	}
+	status := exitOK
+	if len(res.Errors) > 0 {
+		status = exitFail
+	}
 	if format == "json" {
 		if err := json.NewEncoder(stdout).Encode(res); err != nil {
 			return failure(stderr, "predict", err)
 		}
-		return exitOK
+		return status
 	}
-	render.PredictionTable(stdout, res.Outputs, count, m.Meta.Classes)
-	return exitOK
+	render.PredictionTable(stdout, res.Outputs, count, res.Rows, m.Meta.Classes)
+	return status
 }

@@ -222,3 +222,50 @@ func TestPredictFlatJSON(t *testing.T) {
 	assert.Equal(t, []int{3, 4, 5}, doc.Outputs[0].Shape)
 	assertClose(t, want, values(doc.Outputs[0].Data), "relu via flat JSON rows")
 }
+
+func TestPredictKeepsGoodRows(t *testing.T) {
+	// A CSV with one unreadable row among four: predict writes the outputs
+	// of the three good rows, lists the bad one with its line and column,
+	// and exits 1. The kept rows' outputs equal predict on the good rows
+	// alone (common practice: a sample's output does not depend on the
+	// samples batched beside it).
+	model := filepath.Join("..", "..", "demo", "data", "pumps.onnx")
+	raw, err := os.ReadFile(filepath.Join("..", "..", "demo", "data", "pumps_test.csv"))
+	require.NoError(t, err)
+	lines := strings.Split(string(raw), "\n")
+	dir := t.TempDir()
+	badRow := "x" + lines[3][strings.Index(lines[3], ","):]
+	mixed := filepath.Join(dir, "mixed.csv")
+	good := filepath.Join(dir, "good.csv")
+	require.NoError(t, os.WriteFile(mixed, []byte(strings.Join([]string{lines[0], lines[1], lines[2], badRow, lines[4]}, "\n")+"\n"), 0o644))
+	require.NoError(t, os.WriteFile(good, []byte(strings.Join([]string{lines[0], lines[1], lines[2], lines[4]}, "\n")+"\n"), 0o644))
+
+	code, out, errs := cli(t, "predict", "-model", model, "-input", mixed)
+	require.Equal(t, exitFail, code, errs)
+	assert.Contains(t, errs, `sample 2 left out: line 4, column bearing_temp: "x" is not a number`)
+	var doc struct {
+		Outputs []struct {
+			Shape []int      `json:"shape"`
+			Data  []*float64 `json:"data"`
+		} `json:"outputs"`
+		Rows   []int `json:"rows"`
+		Errors []struct {
+			Index int    `json:"index"`
+			Error string `json:"error"`
+		} `json:"errors"`
+	}
+	require.NoError(t, json.Unmarshal([]byte(out), &doc), out)
+	assert.Equal(t, []int{0, 1, 3}, doc.Rows)
+	require.Len(t, doc.Errors, 1)
+	assert.Equal(t, 2, doc.Errors[0].Index)
+	want := predictJSON(t, "-model", model, "-input", good)
+	require.Len(t, doc.Outputs, 1)
+	assert.Equal(t, want.Outputs[0].Shape, doc.Outputs[0].Shape)
+	assert.Equal(t, values(want.Outputs[0].Data), values(doc.Outputs[0].Data))
+
+	// The table labels each block with the sample's place in the file.
+	code, out, _ = cli(t, "predict", "-format", "table", "-model", model, "-input", mixed)
+	assert.Equal(t, exitFail, code)
+	assert.Contains(t, out, "sample 3\n")
+	assert.NotContains(t, out, "sample 2\n")
+}

@@ -4,6 +4,7 @@ import (
 	"bufio"
 	"bytes"
 	"context"
+	"errors"
 	"fmt"
 	"io"
 	"os"
@@ -116,9 +117,28 @@ func (in *inputBatches) close() {
 // its one runtime input, a batch at a time: the outputs are kept, the
 // inputs are not. It returns the outputs of all the samples, as one run
 // on them all gives them (a sample's outputs do not depend on its batch),
-// and their number. The columns of a CSV file the model does not read are
-// noted on stderr.
+// and their number. A sample that cannot be read is left out and listed
+// in the prediction's Errors, its good neighbours kept (Rows). The
+// columns of a CSV file the model does not read are noted on stderr.
 func predictStream(m *explain.Model, path string, spec samples.Spec, opt samples.Options, dtype nn.DType, stderr io.Writer) (*explain.Prediction, int, error) {
+	// A model that fixes its batch (other than to one, which the engine
+	// relaxes) takes the samples as the file gives them, or none.
+	fixed := spec.HasShape && len(spec.Shape) > 0 && spec.Shape[0] > 1
+	if !fixed {
+		keep := opt
+		keep.KeepBad = true
+		if res, n, err := predictRows(m, path, spec, keep, dtype, stderr); err == nil {
+			return res, n, nil
+		}
+		// No sample could be run: the file's first bad sample says why,
+		// as a strict read words it.
+	}
+	return predictRows(m, path, spec, opt, dtype, io.Discard)
+}
+
+// predictRows is predictStream with the read options opt: with
+// opt.KeepBad, samples that cannot be read are left out and listed.
+func predictRows(m *explain.Model, path string, spec samples.Spec, opt samples.Options, dtype nn.DType, stderr io.Writer) (*explain.Prediction, int, error) {
 	in, err := openInput(nil, path, spec, opt)
 	if err != nil {
 		return nil, 0, err
@@ -131,16 +151,26 @@ func predictStream(m *explain.Model, path string, spec samples.Spec, opt samples
 		return nil, 0, err
 	}
 	var all *explain.Prediction
+	var rows []int
+	var bad []explain.RowError
 	count := 0
 	for {
 		b, err := in.next(chunkSamples(spec))
 		if err == io.EOF {
-			return all, count, nil
+			break
 		}
 		if err != nil {
 			return nil, 0, err
 		}
-		t, err := b.ToTensor(spec)
+		good, errs := goodSamples(b)
+		bad = append(bad, errs...)
+		for _, i := range good.rows {
+			rows = append(rows, b.First+i)
+		}
+		if good.batch.Samples == 0 {
+			continue
+		}
+		t, err := good.batch.ToTensor(spec)
 		if err != nil {
 			return nil, 0, err
 		}
@@ -150,14 +180,56 @@ func predictStream(m *explain.Model, path string, spec samples.Spec, opt samples
 		}
 		if all == nil {
 			all = res
-		} else if err := appendOutputs(all, res, b.Samples); err != nil {
+		} else if err := appendOutputs(all, res, good.batch.Samples); err != nil {
 			return nil, 0, err
 		}
-		count += b.Samples
+		count += good.batch.Samples
 		if chunkDone != nil {
 			chunkDone()
 		}
 	}
+	if all == nil {
+		return nil, 0, errors.New("no sample could be read")
+	}
+	if len(bad) > 0 {
+		all.Rows, all.Errors = rows, bad
+	}
+	return all, count, nil
+}
+
+// goodBatch is the samples of a batch that can be run, and their indices
+// in it.
+type goodBatch struct {
+	batch *samples.Batch
+	rows  []int
+}
+
+// goodSamples splits b into the samples that can be run and the errors of
+// the others (by index in the whole input). A batch without bad samples
+// is returned as it is (a .pb tensor keeps its tensor).
+func goodSamples(b *samples.Batch) (goodBatch, []explain.RowError) {
+	var errs []explain.RowError
+	var rows []int
+	for i := 0; i < b.Samples; i++ {
+		err := b.Bad[i]
+		if err == nil && b.Tensor == nil {
+			err = samples.CheckFinite(b.Sample(i))
+		}
+		if err != nil {
+			errs = append(errs, explain.RowError{Index: b.First + i, Error: err.Error()})
+			continue
+		}
+		rows = append(rows, i)
+	}
+	if len(errs) == 0 {
+		return goodBatch{batch: b, rows: rows}, nil
+	}
+	shape := b.SampleShape()
+	g := &samples.Batch{Shape: append([]int{len(rows)}, shape...), Samples: len(rows), Name: b.Name, First: b.First}
+	for _, i := range rows {
+		g.Data = append(g.Data, b.Sample(i)...)
+	}
+	return goodBatch{batch: g, rows: rows}, errs
 }
 
 // appendOutputs appends the outputs of a batch of n samples to those of
