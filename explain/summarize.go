@@ -2,6 +2,7 @@ package explain
 
 import (
 	"context"
+	"fmt"
 	"runtime"
 	"sync"
 
@@ -74,6 +75,52 @@ type Skipped struct {
 // rows in row order. The error is one that stops every row: settings that
 // cannot explain single rows.
 func (e *Explainer) Summarize(ctx context.Context, rows []samples.Row, s *gradattr.Summary, opt SummarizeOptions) ([]Skipped, error) {
+	add := func(key uint64, group string, _ []float64, r *gradattr.Result) error {
+		return s.Add(key, group, r.Attributions)
+	}
+	return e.summarizeRows(ctx, rows, add, s.Skip, opt)
+}
+
+// TokenSummaryOptions returns the options of a token summary of rows
+// explained by e, as SummaryOptions does, with the vocabulary's padding
+// token named. It fails when e's attributions are not one per token.
+func (e *Explainer) TokenSummaryOptions(groupBy string) (gradattr.TokenSummaryOptions, error) {
+	if !e.tokens {
+		return gradattr.TokenSummaryOptions{}, fmt.Errorf("a summary per token string needs a model of token ids explained at its embedding")
+	}
+	o, err := e.options(nil, byDigest)
+	if err != nil {
+		return gradattr.TokenSummaryOptions{}, err
+	}
+	padding := ""
+	if v := e.model.Vocabulary(); v != nil {
+		padding = v.Token(v.Padding)
+	}
+	return gradattr.TokenSummaryOptions{
+		Model: e.model.SHA256, Method: e.settings.Method, Settings: e.record(o, byDigest),
+		GroupBy: groupBy, Padding: padding,
+	}, nil
+}
+
+// SummarizeTokens is Summarize for a model of token ids explained at its
+// embedding (Model.Tokens): each row's per-token attributions are added
+// to s under the row's token strings (Model.TokenNames).
+func (e *Explainer) SummarizeTokens(ctx context.Context, rows []samples.Row, s *gradattr.TokenSummary, opt SummarizeOptions) ([]Skipped, error) {
+	if !e.tokens {
+		return nil, fmt.Errorf("a summary per token string needs a model of token ids explained at its embedding")
+	}
+	add := func(key uint64, group string, x []float64, r *gradattr.Result) error {
+		return s.Add(key, group, e.model.TokenNames(x), r.Attributions)
+	}
+	return e.summarizeRows(ctx, rows, add, s.Skip, opt)
+}
+
+// summarizeRows explains the rows concurrently and hands each explained
+// row to add, each row that was not read or whose explanation (or add)
+// failed to skip, under the row's key.
+func (e *Explainer) summarizeRows(ctx context.Context, rows []samples.Row,
+	add func(key uint64, group string, x []float64, r *gradattr.Result) error,
+	skip func(key uint64, group string, err error) error, opt SummarizeOptions) ([]Skipped, error) {
 	o, err := e.options(nil, byName)
 	if err != nil {
 		return nil, err
@@ -87,8 +134,8 @@ func (e *Explainer) Summarize(ctx context.Context, rows []samples.Row, s *gradat
 	failed := make([]error, len(rows))
 	fail := func(i int, group string, err error) {
 		failed[i] = err
-		// Each row key is taken once, so Skip cannot fail.
-		_ = s.Skip(key(i), group, err)
+		// Each row key is taken once, so skip cannot fail.
+		_ = skip(key(i), group, err)
 	}
 	var todo []int
 	for i, r := range rows {
@@ -138,7 +185,7 @@ func (e *Explainer) Summarize(ctx context.Context, rows []samples.Row, s *gradat
 			group = e.model.Meta.Class(gradattr.Top(r.res.Outputs))
 		}
 		if err == nil {
-			err = s.Add(key(r.i), group, r.res.Attributions)
+			err = add(key(r.i), group, rows[r.i].Values, r.res)
 		}
 		if err != nil {
 			fail(r.i, group, err)

@@ -138,11 +138,76 @@ type Summary struct {
 	nf       int
 	b        int
 
+	rowLedger
+	all    *accum
+	groups map[string]*accum
+}
+
+// rowLedger records the row keys a summary holds and the rows it skipped.
+type rowLedger struct {
 	keys    []keyRange
-	all     *accum
-	groups  map[string]*accum
 	skipped []SkippedRow
 	nskip   int
+}
+
+// skip takes key for a row that failed with reason: counted (its message
+// kept, up to MaxSkippedKept), not summed.
+func (l *rowLedger) skip(key uint64, group string, reason error) error {
+	if !l.takeKey(key) {
+		return fmt.Errorf("%w: row key %d is already in the summary", ErrInput, key)
+	}
+	msg := "unknown error"
+	if reason != nil {
+		msg = reason.Error()
+	}
+	l.nskip++
+	l.skipped = appendSkipped(l.skipped, SkippedRow{Key: key, Group: group, Error: msg})
+	return nil
+}
+
+// absorb adds o's skipped rows and takes keys, o's merged with l's (see
+// mergeKeys).
+func (l *rowLedger) absorb(o *rowLedger, keys []keyRange) {
+	l.keys = keys
+	l.nskip += o.nskip
+	for _, r := range o.skipped {
+		l.skipped = appendSkipped(l.skipped, r)
+	}
+}
+
+// keysJSON lists the key ranges as [lo, hi) pairs.
+func (l *rowLedger) keysJSON() [][2]uint64 {
+	out := make([][2]uint64, len(l.keys))
+	for i, k := range l.keys {
+		out[i] = [2]uint64{k.Lo, k.Hi}
+	}
+	return out
+}
+
+// readLedger checks and reads the keys and skipped rows of a summary
+// document of rows rows.
+func readLedger(keys [][2]uint64, skipped []SkippedRow, nskip int, rows int64) (rowLedger, error) {
+	var l rowLedger
+	var prev, n uint64
+	for i, k := range keys {
+		if k[0] >= k[1] || (i > 0 && k[0] <= prev) {
+			return l, fmt.Errorf("%w: summary JSON: keys: range %d [%d, %d) is empty or not after the previous one", ErrInput, i, k[0], k[1])
+		}
+		prev = k[1]
+		n += k[1] - k[0]
+		l.keys = append(l.keys, keyRange{k[0], k[1]})
+	}
+	if nskip < len(skipped) || nskip < 0 {
+		return l, fmt.Errorf("%w: summary JSON: inconsistent counts: skipped %d with %d listed", ErrInput, nskip, len(skipped))
+	}
+	if n != uint64(rows)+uint64(nskip) {
+		return l, fmt.Errorf("%w: summary JSON: keys cover %d rows, expected rows + skipped = %d", ErrInput, n, rows+int64(nskip))
+	}
+	l.nskip = nskip
+	for _, r := range skipped {
+		l.skipped = appendSkipped(l.skipped, r)
+	}
+	return l, nil
 }
 
 // SkippedRow is a row whose explanation failed; it is counted, not summed.
@@ -242,16 +307,7 @@ func (s *Summary) Check(key uint64, attr []float64) error {
 // Skip records that the row with the given key failed with reason. It is
 // counted (and its message kept, up to MaxSkippedKept) but not summed.
 func (s *Summary) Skip(key uint64, group string, reason error) error {
-	if !s.takeKey(key) {
-		return fmt.Errorf("%w: row key %d is already in the summary", ErrInput, key)
-	}
-	msg := "unknown error"
-	if reason != nil {
-		msg = reason.Error()
-	}
-	s.nskip++
-	s.skipped = appendSkipped(s.skipped, SkippedRow{Key: key, Group: group, Error: msg})
-	return nil
+	return s.skip(key, group, reason)
 }
 
 // reserve checks the group limit and takes the key; it returns the group's
@@ -301,7 +357,7 @@ func appendSkipped(list []SkippedRow, r SkippedRow) []SkippedRow {
 }
 
 // takeKey adds key to the key set; false when it is there already.
-func (s *Summary) takeKey(key uint64) bool {
+func (s *rowLedger) takeKey(key uint64) bool {
 	i := sort.Search(len(s.keys), func(i int) bool { return s.keys[i].Hi > key })
 	if i < len(s.keys) && s.keys[i].Lo <= key {
 		return false
@@ -414,7 +470,7 @@ func (s *Summary) Merge(o *Summary) error {
 	if err != nil {
 		return err
 	}
-	s.keys = keys
+	s.absorb(&o.rowLedger, keys)
 	s.all.merge(o.all)
 	for name, g := range o.groups {
 		mine := s.groups[name]
@@ -423,10 +479,6 @@ func (s *Summary) Merge(o *Summary) error {
 			s.groups[name] = mine
 		}
 		mine.merge(g)
-	}
-	s.nskip += o.nskip
-	for _, r := range o.skipped {
-		s.skipped = appendSkipped(s.skipped, r)
 	}
 	return nil
 }
@@ -808,15 +860,12 @@ func (s *Summary) MarshalJSON() ([]byte, error) {
 		Features: s.opt.Features, GroupBy: s.opt.GroupBy,
 		Bootstrap: s.b, Seed: s.opt.Seed, Confidence: SummaryConfidence,
 		Rows: s.all.rows, SkippedRows: s.nskip, Skipped: s.skipped,
-		Keys:    make([][2]uint64, len(s.keys)),
+		Keys:    s.keysJSON(),
 		Overall: s.groupJSON("", s.all),
 		Groups:  []groupJSON{},
 	}
 	if doc.Skipped == nil {
 		doc.Skipped = []SkippedRow{}
-	}
-	for i, k := range s.keys {
-		doc.Keys[i] = [2]uint64{k.Lo, k.Hi}
 	}
 	for _, name := range s.groupNames() {
 		doc.Groups = append(doc.Groups, s.groupJSON(name, s.groups[name]))
@@ -878,14 +927,6 @@ func (s *Summary) UnmarshalJSON(raw []byte) error {
 	if err != nil {
 		return fmt.Errorf("%w: summary JSON: %v", ErrInput, err)
 	}
-	var prev uint64
-	for i, k := range doc.Keys {
-		if k[0] >= k[1] || (i > 0 && k[0] <= prev) {
-			return fmt.Errorf("%w: summary JSON: keys: range %d [%d, %d) is empty or not after the previous one", ErrInput, i, k[0], k[1])
-		}
-		prev = k[1]
-		n.keys = append(n.keys, keyRange{k[0], k[1]})
-	}
 	if n.all, err = n.readGroup(doc.Overall, "overall"); err != nil {
 		return err
 	}
@@ -907,16 +948,8 @@ func (s *Summary) UnmarshalJSON(raw []byte) error {
 	if doc.Rows != n.all.rows || total > n.all.rows || doc.SkippedRows < len(doc.Skipped) || doc.SkippedRows < 0 {
 		return fmt.Errorf("%w: summary JSON: inconsistent counts: rows %d, overall rows %d, rows in groups %d, skipped %d with %d listed", ErrInput, doc.Rows, n.all.rows, total, doc.SkippedRows, len(doc.Skipped))
 	}
-	var nkeys uint64
-	for _, k := range n.keys {
-		nkeys += k.Hi - k.Lo
-	}
-	if nkeys != uint64(n.all.rows)+uint64(doc.SkippedRows) {
-		return fmt.Errorf("%w: summary JSON: keys cover %d rows, expected rows + skipped = %d", ErrInput, nkeys, n.all.rows+int64(doc.SkippedRows))
-	}
-	n.nskip = doc.SkippedRows
-	for _, r := range doc.Skipped {
-		n.skipped = appendSkipped(n.skipped, r)
+	if n.rowLedger, err = readLedger(doc.Keys, doc.Skipped, doc.SkippedRows, n.all.rows); err != nil {
+		return err
 	}
 	*s = *n
 	return nil

@@ -31,14 +31,7 @@ func SummaryWarnings(s *gradattr.Summary) []string {
 // scale for every group.
 func SummaryTable(w io.Writer, s *gradattr.Summary, modelName string) {
 	o := s.Options()
-	model := "sha256 " + o.Model
-	if len(o.Model) > 12 {
-		model = "sha256 " + o.Model[:12] + "…"
-	}
-	if modelName != "" {
-		model = modelName + " (" + model + ")"
-	}
-	fmt.Fprintf(w, "model %s  method %s\n", model, o.Method)
+	fmt.Fprintf(w, "model %s  method %s\n", summaryModel(o.Model, modelName), o.Method)
 	fmt.Fprintf(w, "%d rows summarised, %d skipped; 95%% intervals from %d Poisson bootstrap replicates (seed %d)\n",
 		s.Rows(), s.SkippedRows(), o.Bootstrap, o.Seed)
 	scale := 0.0
@@ -54,6 +47,19 @@ func SummaryTable(w io.Writer, s *gradattr.Summary, modelName string) {
 	if s.Rows() > 0 {
 		fmt.Fprintf(w, "\n(a full bar is a mean |a| of %s, the largest of any group)\n", Number(scale))
 	}
+}
+
+// summaryModel names a summarised model by its name, when known, and the
+// start of its SHA-256.
+func summaryModel(sha256, name string) string {
+	model := "sha256 " + sha256
+	if len(sha256) > 12 {
+		model = "sha256 " + sha256[:12] + "…"
+	}
+	if name != "" {
+		model = name + " (" + model + ")"
+	}
+	return model
 }
 
 func writeGroupStats(w io.Writer, title string, g gradattr.GroupStats, scale float64) {

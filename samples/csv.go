@@ -228,6 +228,9 @@ type TableOptions struct {
 	// Key names the column whose value tells each row apart (see
 	// Row.Key); "" for none.
 	Key string
+	// Vocabulary reads a text file (one text per line) as token ids; nil
+	// when the model has none.
+	Vocabulary *Vocabulary
 }
 
 // ColumnError reports a column a table does not have.
@@ -298,7 +301,7 @@ func NewTableReader(r io.Reader, name string, spec Spec, opt TableOptions) (*Tab
 			return nil, fmt.Errorf("input %s: %s column %q: the file is not CSV, the one format with named columns", name, c.what, c.name)
 		}
 	}
-	s, err := NewStream(r, name, spec, Options{KeepBad: true})
+	s, err := NewStream(r, name, spec, Options{KeepBad: true, Vocabulary: opt.Vocabulary})
 	if err != nil {
 		return nil, err
 	}

@@ -62,7 +62,10 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 			"from a Poisson bootstrap (every row gets -bootstrap weights drawn from\n"+
 			"-seed and its row key), over all rows and per subgroup of -by: a column of\n"+
 			"the CSV the model does not see, or predicted for the predicted class.\n"+
-			"Features are ranked by mean |attribution|.\n\n"+
+			"Features are ranked by mean |attribution|. For a model of token ids (its\n"+
+			"texts read as for explain), the summary is per token string instead:\n"+
+			"occurrences, mean a and mean |a| with 95% Student t intervals, as a table\n"+
+			"or as json that merges only with summaries per token string.\n\n"+
 			"The model's features are the CSV columns named in its feature_names\n"+
 			"metadata, else the first numeric columns. A bad row (wrong length, NaN,\n"+
 			"not a number) is reported with its line and skipped; the status is then 1,\n"+
@@ -115,8 +118,10 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 		return fail(stderr, "summarize", err)
 	}
 	notes(stderr, "summarize", c.ignored)
-	for _, w := range render.SummaryWarnings(s) {
-		fmt.Fprintf(stderr, "apportion summarize: warning: %s\n", w)
+	if fs, ok := s.(*gradattr.Summary); ok {
+		for _, w := range render.SummaryWarnings(fs) {
+			fmt.Fprintf(stderr, "apportion summarize: warning: %s\n", w)
+		}
 	}
 	if err := sc.write(stdout, s, name); err != nil {
 		return failure(stderr, "summarize", err)
@@ -225,17 +230,30 @@ func (sc *summarizeConfig) validate() string {
 	return ""
 }
 
+// rowSummary is a summary per feature (*gradattr.Summary) or per token
+// string (*gradattr.TokenSummary).
+type rowSummary interface {
+	Rows() int
+	SkippedRows() int
+	MarshalJSON() ([]byte, error)
+}
+
 // summarize explains every row and returns the summary, the skipped rows
 // in row order, and the model's name.
-func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gradattr.Summary, []explain.Skipped, string, error) {
+func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (rowSummary, []explain.Skipped, string, error) {
 	c := &sc.ex
 	l, err := loadModel(c.modelPath, demo.Default)
 	if err != nil {
 		return nil, nil, "", err
 	}
 	m := l.model
-	if _, ok := m.Tokens(); ok && c.settings.Layer == "" && c.settings.Method != gradattr.MethodGradCAM {
-		return nil, nil, "", errors.New("a summary of a model of token ids, per token string, is not available: explain its texts with apportion explain, or summarise a -layer of it")
+	_, tokens := m.Tokens()
+	tokens = tokens && c.settings.Layer == "" && c.settings.Method != gradattr.MethodGradCAM
+	if tokens && sc.format != "table" && sc.format != "json" {
+		return nil, nil, "", &usageErr{fmt.Sprintf("-format %s: a summary of a model of token ids is per token string, written as a table or as json, not %s", sc.format, sc.format)}
+	}
+	if tokens && c.set["bootstrap"] {
+		c.ignored = append(c.ignored, "-bootstrap is not used: a summary per token string has Student t intervals over each token's occurrences")
 	}
 	spec, err := m.Input()
 	if err != nil {
@@ -299,11 +317,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 	if err != nil {
 		return nil, nil, "", err
 	}
-	opt, err := ex.SummaryOptions(ex.Features(tr.Columns), sc.by, sc.bootstrap, c.seed)
-	if err != nil {
-		return nil, nil, "", err
-	}
-	s, err := gradattr.NewSummary(opt)
+	s, summarizeRows, err := sc.newSummary(ex, tr.Columns, tokens)
 	if err != nil {
 		return nil, nil, "", err
 	}
@@ -337,7 +351,7 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 		} else if err != nil {
 			return nil, nil, "", err
 		}
-		part, err := ex.Summarize(ctx, rows, s, explain.SummarizeOptions{
+		part, err := summarizeRows(ctx, rows, explain.SummarizeOptions{
 			FirstKey: sc.firstRow + uint64(offset), Keyed: sc.key != "", ByPredicted: sc.by == byPredicted, Progress: tick,
 		})
 		if err != nil {
@@ -352,8 +366,38 @@ func (sc *summarizeConfig) summarize(ctx context.Context, stderr io.Writer) (*gr
 			chunkDone()
 		}
 	}
-	c.ignored = l.ignored
+	c.ignored = append(c.ignored, l.ignored...)
 	return s, skipped, m.Name, nil
+}
+
+// newSummary returns an empty summary of the rows ex explains, per token
+// string for a model of token ids explained at its embedding, else per
+// feature, and the function that adds rows to it.
+func (sc *summarizeConfig) newSummary(ex *explain.Explainer, columns []string, tokens bool) (rowSummary, func(context.Context, []samples.Row, explain.SummarizeOptions) ([]explain.Skipped, error), error) {
+	if tokens {
+		opt, err := ex.TokenSummaryOptions(sc.by)
+		if err != nil {
+			return nil, nil, err
+		}
+		s, err := gradattr.NewTokenSummary(opt)
+		if err != nil {
+			return nil, nil, err
+		}
+		return s, func(ctx context.Context, rows []samples.Row, o explain.SummarizeOptions) ([]explain.Skipped, error) {
+			return ex.SummarizeTokens(ctx, rows, s, o)
+		}, nil
+	}
+	opt, err := ex.SummaryOptions(ex.Features(columns), sc.by, sc.bootstrap, sc.ex.seed)
+	if err != nil {
+		return nil, nil, err
+	}
+	s, err := gradattr.NewSummary(opt)
+	if err != nil {
+		return nil, nil, err
+	}
+	return s, func(ctx context.Context, rows []samples.Row, o explain.SummarizeOptions) ([]explain.Skipped, error) {
+		return ex.Summarize(ctx, rows, s, o)
+	}, nil
 }
 
 // summaryProgress shows a progress bar on stderr when it is a terminal:
@@ -399,7 +443,7 @@ func (sc *summarizeConfig) openRows(m *explain.Model, spec samples.Spec) (*sampl
 		}
 		r, closer = f, f
 	}
-	opt := samples.TableOptions{Features: m.Meta.Features}
+	opt := samples.TableOptions{Features: m.Meta.Features, Vocabulary: m.Vocabulary()}
 	if ps, ok := spec.FixedSample(); ok {
 		opt.Size = samples.Product(ps)
 	}
@@ -432,9 +476,11 @@ func (sc *summarizeConfig) openRows(m *explain.Model, spec samples.Spec) (*sampl
 }
 
 // runMerge merges the summary files and writes the result. Every error
-// names the file at fault after -merge.
+// names the file at fault after -merge. Summaries per feature merge with
+// each other, summaries per token string with each other.
 func (sc *summarizeConfig) runMerge(stdout, stderr io.Writer) int {
-	var all *gradattr.Summary
+	var all rowSummary
+	kind := ""
 	for i, path := range sc.files {
 		fail := func(err error) int { return failure(stderr, "summarize", fmt.Errorf("-merge %s: %w", path, err)) }
 		raw, err := samples.ReadLimited(path)
@@ -445,7 +491,18 @@ func (sc *summarizeConfig) runMerge(stdout, stderr io.Writer) int {
 			}
 			return fail(err)
 		}
-		s, err := gradattr.DecodeSummary(bytes.NewReader(raw))
+		// A document that is not JSON is left to DecodeSummary to word.
+		format, _ := gradattr.SummaryDocumentFormat(raw)
+		if i > 0 && format != kind && (format == gradattr.TokenSummaryFormat || kind == gradattr.TokenSummaryFormat) {
+			return fail(fmt.Errorf("it is %s, and %s is %s: a summary per token string and one per feature do not merge", summaryKind(format), sc.files[0], summaryKind(kind)))
+		}
+		kind = format
+		var s rowSummary
+		if format == gradattr.TokenSummaryFormat {
+			s, err = gradattr.DecodeTokenSummary(bytes.NewReader(raw))
+		} else {
+			s, err = gradattr.DecodeSummary(bytes.NewReader(raw))
+		}
 		if err != nil {
 			return fail(err)
 		}
@@ -453,7 +510,13 @@ func (sc *summarizeConfig) runMerge(stdout, stderr io.Writer) int {
 			all = s
 			continue
 		}
-		if err := all.Merge(s); err != nil {
+		switch a := all.(type) {
+		case *gradattr.Summary:
+			err = a.Merge(s.(*gradattr.Summary))
+		case *gradattr.TokenSummary:
+			err = a.Merge(s.(*gradattr.TokenSummary))
+		}
+		if err != nil {
 			return fail(mergeError(err, sc.files[:i]))
 		}
 	}
@@ -461,6 +524,14 @@ func (sc *summarizeConfig) runMerge(stdout, stderr io.Writer) int {
 		return failure(stderr, "summarize", err)
 	}
 	return exitOK
+}
+
+// summaryKind words what a summary document of the given format holds.
+func summaryKind(format string) string {
+	if format == gradattr.TokenSummaryFormat {
+		return "a summary per token string (of a model of token ids)"
+	}
+	return "a summary per feature"
 }
 
 // mergeError words why a summary does not merge with those of the files
@@ -478,19 +549,24 @@ func mergeError(err error, before []string) error {
 }
 
 // write renders the summary in the chosen format to stdout or -out.
-func (sc *summarizeConfig) write(stdout io.Writer, s *gradattr.Summary, modelName string) error {
+func (sc *summarizeConfig) write(stdout io.Writer, rs rowSummary, modelName string) error {
 	var buf bytes.Buffer
 	var err error
-	switch sc.format {
-	case "json":
+	s, perFeature := rs.(*gradattr.Summary)
+	switch {
+	case sc.format == "json":
 		var raw []byte
-		if raw, err = s.MarshalJSON(); err == nil {
+		if raw, err = rs.MarshalJSON(); err == nil {
 			buf.Write(raw)
 			buf.WriteByte('\n')
 		}
-	case "csv":
+	case !perFeature && sc.format == "table":
+		render.TokenSummaryTable(&buf, rs.(*gradattr.TokenSummary), modelName)
+	case !perFeature:
+		err = fmt.Errorf("-format %s: a summary per token string is written as a table or as json", sc.format)
+	case sc.format == "csv":
 		err = render.SummaryCSV(&buf, s)
-	case "png":
+	case sc.format == "png":
 		err = render.SummaryPNG(&buf, s)
 	default:
 		render.SummaryTable(&buf, s, modelName)

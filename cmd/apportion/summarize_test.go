@@ -580,3 +580,67 @@ func TestSummarizeManyGroupsWarns(t *testing.T) {
 	require.Equal(t, exitOK, code, errOut)
 	assert.NotContains(t, errOut, "warning")
 }
+
+// TestSummarizeTokens summarises the tickets demo's held-out notes per
+// token string: the table ranks the planted deciding words first
+// (demo/data/README.md: one deciding word decides each note), the JSON of
+// the whole equals the merge of its halves, and a summary per token string
+// does not merge with one per feature.
+func TestSummarizeTokens(t *testing.T) {
+	dir := t.TempDir()
+	model := filepath.Join(dir, "tickets.onnx")
+	raw, err := demo.File("tickets.onnx")
+	require.NoError(t, err)
+	require.NoError(t, os.WriteFile(model, raw, 0o644))
+	text, err := demo.File("tickets_test.txt")
+	require.NoError(t, err)
+	lines := strings.SplitAfter(strings.TrimSuffix(string(text), "\n"), "\n")
+	require.Len(t, lines, 600, "demo/data/README.md: 600 held-out notes")
+	whole := writeTemp(t, "whole.txt", strings.Join(lines, ""))
+	a := writeTemp(t, "a.txt", strings.Join(lines[:250], ""))
+	b := writeTemp(t, "b.txt", strings.Join(lines[250:], ""))
+
+	code, table, errOut := cli(t, "summarize", "-model", model, "-input", whole, "-by", "predicted")
+	require.Equal(t, exitOK, code, errOut)
+	assert.Contains(t, table, "600 rows summarised, 0 skipped; 95% Student t intervals")
+	assert.Contains(t, table, "predicted = urgent (")
+	assert.Contains(t, table, "tokens with smaller mean |a| not shown")
+	assert.Contains(t, table, "[pad] is the padding token")
+	// The first row of all rows is a deciding word of some class.
+	deciding := strings.Fields("leaking smoking seized sparking flooding overheating cracked burst tripped screeching " +
+		"greased lubricated tightened replaced scheduled calibrated flushed cleaned adjusted serviced " +
+		"noted logged fyi observed recorded photographed reported mentioned documented forwarded")
+	_, rest, ok := strings.Cut(table, "all rows (600 rows")
+	require.True(t, ok)
+	first := strings.Fields(strings.Split(rest, "\n")[2])[0]
+	assert.Contains(t, deciding, first)
+
+	outs := map[string]string{}
+	for name, args := range map[string][]string{
+		"whole": {"-input", whole},
+		"a":     {"-input", a},
+		"b":     {"-input", b, "-first-row", "250"},
+	} {
+		p := filepath.Join(dir, name+".json")
+		args = append([]string{"summarize", "-model", model, "-by", "predicted", "-format", "json", "-out", p}, args...)
+		code, _, errOut := cli(t, args...)
+		require.Equal(t, exitOK, code, errOut)
+		outs[name] = p
+	}
+	code, merged, errOut := cli(t, "summarize", "-merge", "-format", "json", outs["b"], outs["a"])
+	require.Equal(t, exitOK, code, errOut)
+	want, err := os.ReadFile(outs["whole"])
+	require.NoError(t, err)
+	assert.Equal(t, string(want), merged)
+
+	pumps := filepath.Join(dir, "pumps.json")
+	code, _, errOut = cli(t, "summarize", "-steps", "16", "-bootstrap", "8", "-format", "json", "-out", pumps)
+	require.Equal(t, exitOK, code, errOut)
+	code, _, errOut = cli(t, "summarize", "-merge", outs["a"], pumps)
+	assert.Equal(t, exitFail, code)
+	assert.Contains(t, errOut, "-merge "+pumps+": it is a summary per feature, and "+outs["a"]+" is a summary per token string (of a model of token ids): a summary per token string and one per feature do not merge")
+
+	code, _, errOut = cli(t, "summarize", "-model", model, "-input", a, "-format", "csv")
+	assert.Equal(t, exitUsage, code)
+	assert.Contains(t, errOut, "written as a table or as json, not csv")
+}
