@@ -127,14 +127,20 @@ func predictStream(m *explain.Model, path string, spec samples.Spec, opt samples
 	if !fixed {
 		keep := opt
 		keep.KeepBad = true
-		if res, n, err := predictRows(m, path, spec, keep, dtype, stderr); err == nil {
-			return res, n, nil
+		res, n, err := predictRows(m, path, spec, keep, dtype, stderr)
+		if !errors.Is(err, errNoGoodSample) {
+			return res, n, err
 		}
-		// No sample could be run: the file's first bad sample says why,
-		// as a strict read words it.
+		// No sample could be run: a strict read words why, at the file's
+		// first bad sample, before any model pass.
+		stderr = io.Discard
 	}
-	return predictRows(m, path, spec, opt, dtype, io.Discard)
+	return predictRows(m, path, spec, opt, dtype, stderr)
 }
+
+// errNoGoodSample is predictRows's error for an input none of whose
+// samples could be read.
+var errNoGoodSample = errors.New("no sample could be read")
 
 // predictRows is predictStream with the read options opt: with
 // opt.KeepBad, samples that cannot be read are left out and listed.
@@ -189,7 +195,7 @@ func predictRows(m *explain.Model, path string, spec samples.Spec, opt samples.O
 		}
 	}
 	if all == nil {
-		return nil, 0, errors.New("no sample could be read")
+		return nil, 0, errNoGoodSample
 	}
 	if len(bad) > 0 {
 		all.Rows, all.Errors = rows, bad
