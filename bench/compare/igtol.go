@@ -11,6 +11,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"strings"
 
 	"github.com/apportion/apportion/bench"
 	"github.com/apportion/apportion/demo"
@@ -37,13 +38,19 @@ import (
 //     reference (bench/torch_side.py, "igsweep"), then is timed at it.
 const igTolerance = 1e-3
 
-// igModels are the models of the IG rows: the zoo and both demos.
+// igModels are the models of the IG rows: the zoo and the demos whose
+// sample is a list of numbers (pumps and welds; the tickets model reads
+// token ids, which have no path to integrate along).
 func igModels(dir string, only []string) []string {
 	names := []string{}
 	for _, s := range bench.Zoo {
 		names = append(names, s.Name)
 	}
-	names = append(names, demo.Names()...)
+	for _, n := range demo.Names() {
+		if s, err := demo.Get(n); err == nil && strings.HasSuffix(s.SampleFile, ".json") {
+			names = append(names, n)
+		}
+	}
 	if only == nil {
 		return names
 	}
