@@ -48,7 +48,8 @@ func (n Numbers) MarshalJSON() ([]byte, error) {
 //	              "reference" (the reference set's name)},
 //	 "explanations": [{"index", "target", "outputs", "attributions",
 //	                   "shape", "baseline_outputs", "completeness",
-//	                   "points", "exact", "pieces", "exact_skipped",
+//	                   "points", "error_estimate", "exact", "pieces",
+//	                   "exact_skipped",
 //	                   "error", "groups", "standard_errors",
 //	                   "estimator", "fidelity", "intercept",
 //	                   "warnings": [{"code", "message", "suggest"}]}]}
@@ -82,6 +83,9 @@ type ExplanationDocument struct {
 	Completeness    *gradattr.Completeness `json:"completeness"`
 	// Points is the number of gradient evaluations spent.
 	Points int `json:"points"`
+	// ErrorEstimate is the estimated relative L1 error of integrated
+	// gradients refined adaptively (gradattr.Settings.ErrorEstimate).
+	ErrorEstimate float64 `json:"error_estimate,omitempty"`
 	// Exact is present, true, when integrated gradients integrated
 	// exactly, over Pieces pieces of the path (the most of any baseline).
 	Exact  bool `json:"exact,omitempty"`
@@ -150,6 +154,7 @@ func (r *Report) explanationDocument(e Explanation) ExplanationDocument {
 	}
 	j.Completeness = res.Completeness
 	j.Points = res.Cost.GradientEvals
+	j.ErrorEstimate = res.Settings.ErrorEstimate
 	j.Exact, j.Pieces, j.ExactSkipped = res.Settings.Exact, res.Settings.Pieces, res.Settings.ExactSkipped
 	j.Groups = e.Grouped
 	if res.StandardErrors != nil {

@@ -36,6 +36,10 @@ const (
 	WarnNoChange = "no-change"
 	// WarnNegligible: every attribution is negligible (see Negligible).
 	WarnNegligible = "negligible"
+	// WarnImprecise: integrated gradients reached the most points
+	// automatic refinement may spend with the estimated error still above
+	// the tolerance.
+	WarnImprecise = "imprecise"
 )
 
 // SaturationMargin is how close to 0 or 1 a probability is saturated: the
@@ -84,6 +88,17 @@ func Negligible(r *gradattr.Result, x []float64) bool {
 
 // warnings returns the warnings of result r at sample x.
 func (e *Explainer) warnings(x []float64, r *gradattr.Result) []Warning {
+	w := e.valueWarnings(x, r)
+	if st := r.Settings; st.Auto && st.ErrorEstimate > st.Tolerance {
+		w = append(w, Warning{Code: WarnImprecise, Suggest: []Field{FieldTolerance, FieldSteps}, Message: fmt.Sprintf(
+			"the integral's estimated error is %s of the attributions' size, above the tolerance %s, after %d points, the most automatic refinement spends: the attributions may be off by that much",
+			num(st.ErrorEstimate), num(st.Tolerance), r.Cost.GradientEvals)})
+	}
+	return w
+}
+
+// valueWarnings returns the warnings about what result r's values mean.
+func (e *Explainer) valueWarnings(x []float64, r *gradattr.Result) []Warning {
 	s := &e.settings
 	probability := !s.Logits && e.model.producer(e.output) != "" && (e.model.producer(e.output) == "Softmax" || e.model.producer(e.output) == "Sigmoid")
 	var logits []Field

@@ -23,10 +23,9 @@ const autoStart = 4
 
 // IGOptions configures IntegratedGradients. The zero value means: one zero
 // baseline; the exact integral when the model provides it (ExactAuto),
-// otherwise the trapezoid rule with an automatic point count refined until
-// the relative completeness gap and the relative change of the
-// attributions are at most 0.005, or DefaultMaxPoints points; batches of
-// 64.
+// otherwise the trapezoid rule refined adaptively until the relative
+// completeness gap and the estimated relative error of the attributions
+// are at most 0.005, or DefaultMaxPoints points; batches of 64.
 type IGOptions struct {
 	// Rule is the quadrature rule; the zero value is RuleTrapezoid.
 	Rule Rule
@@ -63,23 +62,30 @@ type IGOptions struct {
 // sum to F(x) − F(x′) (completeness, §3), so the quadrature error shows in
 // Result.Completeness.
 //
-// With Points = 0 the point count is chosen per baseline: starting from 4
-// points (5 for the trapezoid rule) the rule is refined (see Rule for how
-// and what is reused) until
+// With Points = 0 the point count is chosen per baseline. The trapezoid
+// rule (the default) refines adaptively (see adaptive.go): from 17 evenly
+// spaced nodes it bisects, pass after pass, the intervals whose gradient
+// changes most, until
 //
 //	|Σ_i IG_i − (F(x) − F(x′))| ≤ tolerance · max(|F(x) − F(x′)|, ε)
 //
-// (ε = CompletenessFloor) and the last refinement moved the attributions by
-// at most tolerance in relative L1 norm, ‖IG − IG_prev‖₁ ≤ tolerance·‖IG‖₁,
-// or until the next refinement would exceed MaxPoints. The second condition
-// is there because the gap checks only the sum: per-feature quadrature
-// errors of opposite sign cancel in it, and on ReLU networks a coarse rule
-// can meet the gap while single attributions are off by several percent.
-// Every pass sends its points to the model in batches of BatchSize, in node
-// order; a model that is a GradientSummer gets them instead as weighted
-// sums, one for the end nodes and one for the others (at most 4096 points
-// a call), and adds them up as it forms them. Completeness.OK reports
-// whether the tolerance was met.
+// (ε = CompletenessFloor) and the estimated relative L1 error of the
+// attributions, Settings.ErrorEstimate, is at most tolerance too, or until
+// MaxPoints points; its end nodes are evaluated at α = 2⁻¹⁶ and 1 − 2⁻¹⁶,
+// and it takes every point's gradient, not sums. The other rules start
+// from 4 points and refine uniformly (see Rule for how and what is reused)
+// until the gap above is met and the last refinement moved the
+// attributions by at most tolerance in relative L1 norm,
+// ‖IG − IG_prev‖₁ ≤ tolerance·‖IG‖₁, or until the next refinement would
+// exceed MaxPoints. The second condition is there because the gap checks
+// only the sum: per-feature quadrature errors of opposite sign cancel in
+// it, and on ReLU networks a coarse rule can meet the gap while single
+// attributions are off by several percent. Every pass of a uniform rule
+// sends its points to the model in batches of BatchSize, in node order; a
+// model that is a GradientSummer gets them instead as weighted sums, one
+// for the end nodes and one for the others (at most 4096 points a call),
+// and adds them up as it forms them. Completeness.OK reports whether the
+// gap was met.
 //
 // With several baselines the attributions are the mean of those against
 // each baseline, and completeness is checked against the mean baseline
@@ -161,6 +167,17 @@ func IntegratedGradients(ctx context.Context, m Model, x []float64, target int, 
 		}
 		fb := out[e.target]
 		meanBase += fb
+		if opt.Points == 0 && opt.Rule == RuleTrapezoid {
+			attr, points, est, err := newAdaptivePath(e, xb).integrate(fb, tol, 0, maxPoints)
+			if err != nil {
+				return nil, fmt.Errorf("baseline %d: %w", b, err)
+			}
+			s.Points, s.ErrorEstimate = max(s.Points, points), max(s.ErrorEstimate, est)
+			for i, a := range attr {
+				total[i] += a
+			}
+			continue
+		}
 		var sched *schedule
 		if opt.Points > 0 {
 			sched = startSchedule(opt.Rule, opt.Points)

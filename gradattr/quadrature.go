@@ -14,8 +14,9 @@ type Rule int
 // The rules. The zero value is the trapezoid rule.
 const (
 	// RuleTrapezoid: nodes j/(m−1), j = 0..m−1, end weights halved; exact
-	// for polynomials of degree 1. Refinement doubles the intervals and
-	// reuses every earlier gradient.
+	// for polynomials of degree 1. Automatic refinement is adaptive: it
+	// bisects the intervals whose estimated error is largest and reuses
+	// every earlier gradient (see IntegratedGradients).
 	RuleTrapezoid Rule = iota
 	// RuleLeft: left Riemann sum, nodes j/m, j = 0..m−1, weights 1/m;
 	// exact for constants. Refinement doubles m and reuses every earlier

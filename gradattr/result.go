@@ -136,6 +136,10 @@ type Settings struct {
 	Auto bool `json:"auto,omitempty"`
 	// MaxPoints is the refinement cap of automatic integrated gradients.
 	MaxPoints int `json:"max_points,omitempty"`
+	// ErrorEstimate is the estimated relative L1 error of automatic
+	// integrated gradients with the trapezoid rule, which refine until it
+	// is at most the tolerance (the largest over the baselines).
+	ErrorEstimate float64 `json:"error_estimate,omitempty"`
 	// Exact is set when integrated gradients integrate exactly (asked for
 	// with ExactAlways, or done).
 	Exact bool `json:"exact,omitempty"`

@@ -5,9 +5,11 @@ import "context"
 // GradientSummer is a Model that returns weighted sums of input gradients
 // without the gradients themselves, which lets it form them more cheaply:
 // nn's Head pulls the sum back through the affine layers the input meets
-// first once, instead of once per point. Integrated gradients by
-// quadrature and SmoothGrad's mean use it when the model offers it; the
-// sums then round as the model forms them, not point by point.
+// first once, instead of once per point. Integrated gradients by a fixed
+// or uniformly refined quadrature rule and SmoothGrad's mean use it when
+// the model offers it; the sums then round as the model forms them, not
+// point by point. (The adaptive trapezoid rule needs each point's
+// gradient to choose where to refine.)
 type GradientSummer interface {
 	// GradientSum returns the outputs of the n samples in x (n·OutputSize
 	// values) and Σ_i weight[i]·∂out[i, target]/∂x[i].

@@ -143,7 +143,7 @@ func TestValidation(t *testing.T) {
 		{"NaN gradient", func() error {
 			_, err := IntegratedGradients(ctx, &badModel{*f, "nan"}, x, 0, IGOptions{})
 			return err
-		}, ErrModel, "returned NaN at sample 4, value 2"},
+		}, ErrModel, "returned NaN at sample 16, value 2"}, // the last of the first pass's 17 points
 		{"short gradient", func() error {
 			_, err := Gradient(ctx, &badModel{*f, "short-grad"}, x, 0, GradientOptions{})
 			return err

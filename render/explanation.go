@@ -299,8 +299,11 @@ func Table(w io.Writer, rep *explain.Report, opt Options) error {
 			fmt.Fprintf(w, "surrogate: intercept %s  fidelity (weighted R²) %s\n", Number(fit.Intercept), Number(fit.Fidelity))
 		}
 		evals := Count(r.Cost.GradientEvals, "gradient evaluation", "gradient evaluations")
-		if r.Settings.Exact {
+		switch {
+		case r.Settings.Exact:
 			evals = "exact integral over " + Count(r.Settings.Pieces, "piece", "pieces") + " of the path"
+		case r.Settings.ErrorEstimate > 0:
+			evals += " (estimated error " + Number(r.Settings.ErrorEstimate) + ")"
 		}
 		fmt.Fprintf(w, "cost: %s, %s, %s\n", evals,
 			Count(r.Cost.ForwardPasses, "forward pass", "forward passes"), r.Cost.Elapsed.Round(10_000))

@@ -47,7 +47,7 @@ func measureIG(gp, tp *peer, name string, reps int, target float64) (igRow, erro
 }
 
 func formatIGRow(r igRow) string {
-	return fmt.Sprintf("%-6s IG to 0.1%% %-22s err %.1e  %12s | torch %5d points err %.1e %12s  ratio %.2f",
+	return fmt.Sprintf("%-6s IG to 0.1%% %-30s err %.1e  %12s | torch %5d points err %.1e %12s  ratio %.2f",
 		r.model, r.how, r.goErr, human(r.goSec), r.torchPoints, r.torchErr, human(r.torchSec), r.ratio())
 }
 
@@ -65,7 +65,7 @@ func igMarkdown(rows []igRow) string {
 	}
 	var b strings.Builder
 	b.WriteString("\n## Integrated gradients to 0.1%\n\n")
-	b.WriteString("One sample (bench.Input's first for the zoo, the demo's sample), the zero baseline, the top output, one thread. The reference is the exact integral in float64 (nn's float64 engine, gradattr.ExactAlways; Sotoudeh & Thakur 2019), kept in igref.json beside the models. apportion runs integrated gradients with its defaults and `Tolerance: 0.001`: exact where the path has at most 1024 pieces, otherwise the trapezoid rule refined until the completeness gap and the last refinement are within 0.1%. PyTorch runs the trapezoid rule in batched passes of 256 points at the smallest of 2, 4, 8, …, 65536 points whose attributions are within 0.1% relative L1 of the reference. Errors are relative L1 against the reference.\n\n")
+	b.WriteString("One sample (bench.Input's first for the zoo, the demo's sample), the zero baseline, the top output, one thread. The reference is the exact integral in float64 (nn's float64 engine, gradattr.ExactAlways; Sotoudeh & Thakur 2019), kept in igref.json beside the models. apportion runs integrated gradients with its defaults and `Tolerance: 0.001`: exact where the path has at most 1024 pieces (it gives up when the first 1/32 of the path has more than 64), otherwise the trapezoid rule refined adaptively (bisecting the intervals where the gradient changes most) until the completeness gap and its estimate of the relative L1 error are within 0.1%; the estimate is shown beside the points. PyTorch runs the trapezoid rule in batched passes of 256 points at the smallest of 2, 4, 8, …, 65536 points whose attributions are within 0.1% relative L1 of the reference. Errors are relative L1 against the reference.\n\n")
 	b.WriteString("| model | pieces (float64) | apportion | error | time | PyTorch points | error | time | ratio |\n|---|---|---|---|---|---|---|---|---|\n")
 	worst := 0.0
 	for _, r := range rows {

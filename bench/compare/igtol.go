@@ -29,10 +29,10 @@ import (
 //     in igref.json beside the models, keyed by the model's SHA-256 and the
 //     sample, since it takes minutes on the CNNs;
 //   - apportion runs integrated gradients with its defaults and a tolerance
-//     of 0.1% (exact where the network has at most 1024 pieces, a
-//     quadrature rule refined until completeness and the last refinement
-//     are within 0.1% otherwise); its error against the reference is
-//     reported beside its time;
+//     of 0.1% (exact where the network has at most 1024 pieces, the
+//     trapezoid rule refined adaptively until completeness and its error
+//     estimate are within 0.1% otherwise); its error against the reference
+//     is reported beside its time and its own estimate;
 //   - PyTorch runs the trapezoid rule at the smallest doubling of its point
 //     count (2, 4, 8, …, 65536) whose attributions are within 0.1% of the
 //     reference (bench/torch_side.py, "igsweep"), then is timed at it.
@@ -212,7 +212,7 @@ func (s *goSide) igRef(ctx context.Context, name string) (response, error) {
 	if err != nil {
 		return response{}, err
 	}
-	how := fmt.Sprintf("%d points", res.Settings.Points)
+	how := fmt.Sprintf("%d points, est. %.1e", res.Settings.Points, res.Settings.ErrorEstimate)
 	if res.Settings.Exact {
 		how = fmt.Sprintf("exact, %d pieces", res.Settings.Pieces)
 	}
