@@ -501,6 +501,7 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 		default:
 			var at []float64
 			ex.Result, at, ex.BaselineOutputs, ex.Err = e.attribute(ctx, head, x, o)
+			ex.Err = UserError(ex.Err)
 			if ex.Err == nil {
 				ex.Warnings = e.warnings(at, ex.Result)
 			}

@@ -17,6 +17,7 @@ import (
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
+	"errors"
 	"fmt"
 	"os"
 	"path/filepath"
@@ -330,6 +331,9 @@ func (m *Model) Predict(ctx context.Context, inputs []*onnxlite.Tensor) (*Predic
 		return err
 	})
 	if err != nil {
+		if err := UserError(err); errors.Is(err, nn.ErrBadRequest) {
+			return nil, err
+		}
 		return nil, fmt.Errorf("running model: %w", err)
 	}
 	p := &Prediction{Outputs: make([]Output, len(outs))}

@@ -51,7 +51,6 @@ import (
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
 	"github.com/apportion/apportion/nn"
-	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
 
@@ -623,7 +622,10 @@ func (h *Handler) tooManySamples() *httpError {
 // the model's input shape, finite numbers only, at most Options.MaxSamples
 // of them (the reading stops at the sample past the limit); a sample is an
 // array of numbers, or an object of its features' values by name (see
-// namedInputs). The first sample that cannot be read is the error.
+// namedInputs). In an array of samples of a fully known shape a sample
+// that cannot be read is marked bad in the batch (Batch.Bad) and the
+// others are kept; otherwise the first sample that cannot be read is the
+// error.
 func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError) {
 	if len(bytes.TrimSpace(inputs)) == 0 || string(bytes.TrimSpace(inputs)) == "null" {
 		return nil, badRequest(`"inputs" is required: an array of samples of shape %s`, samples.ShapeString(h.sampleShape()))
@@ -631,10 +633,18 @@ func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError)
 	if b, ok, herr := h.namedInputs(inputs); ok {
 		return b, herr
 	}
-	var b *samples.Batch
-	s, err := samples.NewStream(bytes.NewReader(inputs), "inputs.json", h.spec, samples.Options{MaxSamples: h.opt.MaxSamples})
-	if err == nil {
-		b, err = s.All()
+	read := func(keepBad bool) (*samples.Batch, error) {
+		s, err := samples.NewStream(bytes.NewReader(inputs), "inputs.json", h.spec, samples.Options{MaxSamples: h.opt.MaxSamples, KeepBad: keepBad})
+		if err != nil {
+			return nil, err
+		}
+		return s.All()
+	}
+	b, err := read(true)
+	if err != nil && !errors.Is(err, samples.ErrTooMany) {
+		// No sample could be read: a strict read words why, naming the
+		// first bad sample.
+		_, err = read(false)
 	}
 	if errors.Is(err, samples.ErrTooMany) {
 		return nil, h.tooManySamples()
@@ -741,11 +751,6 @@ func (h *Handler) predict(w http.ResponseWriter, r *http.Request, rl *requestLog
 		h.finish(w, herr)
 		return
 	}
-	t, err := b.ToTensor(h.spec)
-	if err != nil {
-		h.finish(w, badRequest("%v", err))
-		return
-	}
 	if herr := h.budget(b.Samples, b.Samples); herr != nil {
 		h.finish(w, herr)
 		return
@@ -753,12 +758,18 @@ func (h *Handler) predict(w http.ResponseWriter, r *http.Request, rl *requestLog
 	var body []byte
 	herr, _ = h.run(r, b.Samples, func(ctx context.Context) *httpError {
 		h.metrics.countPass("forward", b.Samples)
-		res, err := h.model.Predict(ctx, []*onnxlite.Tensor{t})
+		res, err := h.model.PredictSamples(ctx, b, h.spec)
 		if err != nil {
 			if ctx.Err() != nil {
 				return h.ctxError(ctx)
 			}
 			return &httpError{http.StatusInternalServerError, err.Error()}
+		}
+		if res.Outputs == nil { // no sample could be run: the first says why
+			return badRequest("sample %d: %s", res.Errors[0].Index, res.Errors[0].Error)
+		}
+		if len(res.Errors) == 0 {
+			res.Rows = nil
 		}
 		var buf bytes.Buffer
 		if err := json.NewEncoder(&buf).Encode(res); err != nil {
@@ -991,7 +1002,8 @@ func (h *Handler) judge(ctx context.Context, rep *explain.Report, rl *requestLog
 			if ctx.Err() != nil {
 				return h.ctxError(ctx)
 			}
-			if errors.Is(e.Err, gradattr.ErrInput) || errors.Is(e.Err, gradattr.ErrOptions) || errors.Is(e.Err, samples.ErrNonFinite) {
+			unread := rep.Batch != nil && rep.Batch.Bad[e.Index-rep.Batch.First] != nil
+			if unread || errors.Is(e.Err, gradattr.ErrInput) || errors.Is(e.Err, gradattr.ErrOptions) || errors.Is(e.Err, samples.ErrNonFinite) || errors.Is(e.Err, nn.ErrBadRequest) {
 				failedBad++
 				if bad == nil {
 					bad = fmt.Errorf("sample %d: %w", e.Index, e.Err)

@@ -12,22 +12,54 @@ import (
 	"testing"
 	"time"
 
+	"github.com/apportion/apportion/explain"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 )
 
 func TestServeShortSecondSample(t *testing.T) {
 	// A second sample of 3 values among samples of 8 (the pumps demo's
-	// eight sensors) is reported by its length, as the command line does,
-	// not by the NaN that marks it unread.
+	// eight sensors): the first is answered, the second is reported by its
+	// length, as the command line does, not by the NaN that marks it
+	// unread. A request of that sample alone is a bad request.
 	_, ts, _ := testServer(t, nil)
 	sample := demoSampleJSON(t)
+	want := "expected 8 values (shape [8]), got 3 (shape [3])"
+
+	code, _, body := post(t, ts.URL+"/v1/explain", `{"inputs": [`+sample+`, [1, 2, 3]], "steps": 8}`)
+	require.Equal(t, http.StatusOK, code, body)
+	var doc struct {
+		Explanations []struct {
+			Attributions []float64 `json:"attributions"`
+			Error        *string   `json:"error"`
+		} `json:"explanations"`
+	}
+	require.NoError(t, json.Unmarshal([]byte(body), &doc), body)
+	require.Len(t, doc.Explanations, 2)
+	assert.Nil(t, doc.Explanations[0].Error)
+	assert.Len(t, doc.Explanations[0].Attributions, 8)
+	require.NotNil(t, doc.Explanations[1].Error)
+	assert.Contains(t, *doc.Explanations[1].Error, want)
+	assert.NotContains(t, *doc.Explanations[1].Error, "NaN")
+
+	code, _, body = post(t, ts.URL+"/v1/predict", `{"inputs": [`+sample+`, [1, 2, 3]]}`)
+	require.Equal(t, http.StatusOK, code, body)
+	var pred struct {
+		Outputs []struct{ Shape []int }
+		Rows    []int
+		Errors  []explain.RowError
+	}
+	require.NoError(t, json.Unmarshal([]byte(body), &pred), body)
+	assert.Equal(t, []int{1, 3}, pred.Outputs[0].Shape)
+	assert.Equal(t, []int{0}, pred.Rows)
+	require.Len(t, pred.Errors, 1)
+	assert.Equal(t, 1, pred.Errors[0].Index)
+	assert.Contains(t, pred.Errors[0].Error, want)
+
 	for route, extra := range map[string]string{"/v1/explain": `, "steps": 8`, "/v1/predict": ""} {
-		code, _, body := post(t, ts.URL+route, `{"inputs": [`+sample+`, [1, 2, 3]]`+extra+`}`)
+		code, _, body := post(t, ts.URL+route, `{"inputs": [[1, 2, 3]]`+extra+`}`)
 		assert.Equal(t, http.StatusBadRequest, code, route)
-		msg := errorOf(t, body)
-		assert.Equal(t, `"inputs" (for "sensors"): sample 1: expected 8 values (shape [8]), got 3 (shape [3])`, msg, route)
-		assert.NotContains(t, msg, "NaN")
+		assert.Equal(t, `"inputs" (for "sensors"): sample 0: `+want, errorOf(t, body), route)
 	}
 }
 

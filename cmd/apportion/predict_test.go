@@ -269,3 +269,41 @@ func TestPredictKeepsGoodRows(t *testing.T) {
 	assert.Contains(t, out, "sample 3\n")
 	assert.NotContains(t, out, "sample 2\n")
 }
+
+func TestPredictKeepsRowsTheModelRefuses(t *testing.T) {
+	// A row the model itself refuses (a token id outside the embedding
+	// table: ONNX Gather requires indices within [−s, s − 1] of the axis
+	// gathered, operator specification) among good rows: the good rows
+	// keep their outputs, equal to predict on them alone, and the bad one
+	// is named in the user's words, without the engine's context.
+	model := filepath.Join("..", "..", "demo", "data", "tickets.onnx")
+	dir := t.TempDir()
+	row := func(first string) string {
+		return first + strings.Repeat(",1", 15)
+	}
+	mixed := filepath.Join(dir, "mixed.csv")
+	good := filepath.Join(dir, "good.csv")
+	require.NoError(t, os.WriteFile(mixed, []byte(strings.Join([]string{row("5"), row("9999"), row("7")}, "\n")+"\n"), 0o644))
+	require.NoError(t, os.WriteFile(good, []byte(strings.Join([]string{row("5"), row("7")}, "\n")+"\n"), 0o644))
+	code, out, errs := cli(t, "predict", "-model", model, "-input", mixed)
+	require.Equal(t, exitFail, code, errs)
+	assert.Contains(t, errs, "sample 1 left out: the model cannot run this input: Gather index 9999 at position 0 of its indices is out of range: expected a whole number from -262 to 261")
+	assert.NotContains(t, errs, "nn:")
+	assert.NotContains(t, errs, "bad request")
+	var doc struct {
+		Outputs []struct {
+			Data []*float64 `json:"data"`
+		} `json:"outputs"`
+		Rows []int `json:"rows"`
+	}
+	require.NoError(t, json.Unmarshal([]byte(out), &doc), out)
+	assert.Equal(t, []int{0, 2}, doc.Rows)
+	want := predictJSON(t, "-model", model, "-input", good)
+	assert.Equal(t, values(want.Outputs[0].Data), values(doc.Outputs[0].Data))
+
+	// explain names the same row in the same words and explains the others.
+	code, out, _ = cli(t, "explain", "-model", model, "-input", mixed)
+	assert.Equal(t, exitFail, code)
+	assert.Contains(t, out, "sample 1: error: the model cannot run this input: Gather index 9999")
+	assert.Contains(t, out, "sample 2: target")
+}

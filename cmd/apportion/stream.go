@@ -13,7 +13,6 @@ import (
 
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/nn"
-	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/render"
 	"github.com/apportion/apportion/samples"
 )
@@ -168,28 +167,28 @@ func predictRows(m *explain.Model, path string, spec samples.Spec, opt samples.O
 		if err != nil {
 			return nil, 0, err
 		}
-		good, errs := goodSamples(b)
-		bad = append(bad, errs...)
-		for _, i := range good.rows {
-			rows = append(rows, b.First+i)
+		var res *explain.Prediction
+		if opt.KeepBad {
+			res, err = m.PredictSamples(context.Background(), b, spec)
+		} else {
+			res, err = m.PredictBatch(context.Background(), b, spec)
 		}
-		if good.batch.Samples == 0 {
+		if err != nil {
+			return nil, 0, err
+		}
+		bad = append(bad, res.Errors...)
+		rows = append(rows, res.Rows...)
+		n := len(res.Rows)
+		if res.Outputs == nil {
 			continue
 		}
-		t, err := good.batch.ToTensor(spec)
-		if err != nil {
-			return nil, 0, err
-		}
-		res, err := m.Predict(context.Background(), []*onnxlite.Tensor{t})
-		if err != nil {
-			return nil, 0, err
-		}
+		res.Rows, res.Errors = nil, nil
 		if all == nil {
 			all = res
-		} else if err := appendOutputs(all, res, good.batch.Samples); err != nil {
+		} else if err := appendOutputs(all, res, n); err != nil {
 			return nil, 0, err
 		}
-		count += good.batch.Samples
+		count += n
 		if chunkDone != nil {
 			chunkDone()
 		}
@@ -201,41 +200,6 @@ func predictRows(m *explain.Model, path string, spec samples.Spec, opt samples.O
 		all.Rows, all.Errors = rows, bad
 	}
 	return all, count, nil
-}
-
-// goodBatch is the samples of a batch that can be run, and their indices
-// in it.
-type goodBatch struct {
-	batch *samples.Batch
-	rows  []int
-}
-
-// goodSamples splits b into the samples that can be run and the errors of
-// the others (by index in the whole input). A batch without bad samples
-// is returned as it is (a .pb tensor keeps its tensor).
-func goodSamples(b *samples.Batch) (goodBatch, []explain.RowError) {
-	var errs []explain.RowError
-	var rows []int
-	for i := 0; i < b.Samples; i++ {
-		err := b.Bad[i]
-		if err == nil && b.Tensor == nil {
-			err = samples.CheckFinite(b.Sample(i))
-		}
-		if err != nil {
-			errs = append(errs, explain.RowError{Index: b.First + i, Error: err.Error()})
-			continue
-		}
-		rows = append(rows, i)
-	}
-	if len(errs) == 0 {
-		return goodBatch{batch: b, rows: rows}, nil
-	}
-	shape := b.SampleShape()
-	g := &samples.Batch{Shape: append([]int{len(rows)}, shape...), Samples: len(rows), Name: b.Name, First: b.First}
-	for _, i := range rows {
-		g.Data = append(g.Data, b.Sample(i)...)
-	}
-	return goodBatch{batch: g, rows: rows}, errs
 }
 
 // appendOutputs appends the outputs of a batch of n samples to those of
