@@ -69,13 +69,23 @@ type Skipped struct {
 	Err   error
 }
 
+// Incomplete reports whether r's completeness check was judged and
+// failed: a row a summary counts in its incomplete rows.
+func Incomplete(r *gradattr.Result) bool {
+	return r.Completeness != nil && r.Completeness.Judged && !r.Completeness.OK
+}
+
 // Summarize explains every row that was read (Row.Err nil), concurrently,
-// and adds its attributions to s under its key; a row that was not read
-// or whose explanation fails is skipped in s. It returns the skipped
+// and adds its attributions to s under its key (with AddIncomplete when
+// its completeness check failed); a row that was not read or whose
+// explanation fails is skipped in s. It returns the skipped
 // rows in row order. The error is one that stops every row: settings that
 // cannot explain single rows.
 func (e *Explainer) Summarize(ctx context.Context, rows []samples.Row, s *gradattr.Summary, opt SummarizeOptions) ([]Skipped, error) {
 	add := func(key uint64, group string, _ []float64, r *gradattr.Result) error {
+		if Incomplete(r) {
+			return s.AddIncomplete(key, group, r.Attributions)
+		}
 		return s.Add(key, group, r.Attributions)
 	}
 	return e.summarizeRows(ctx, rows, add, s.Skip, opt)
@@ -110,6 +120,9 @@ func (e *Explainer) SummarizeTokens(ctx context.Context, rows []samples.Row, s *
 		return nil, fmt.Errorf("a summary per token string needs a model of token ids explained at its embedding")
 	}
 	add := func(key uint64, group string, x []float64, r *gradattr.Result) error {
+		if Incomplete(r) {
+			return s.AddIncomplete(key, group, e.model.TokenNames(x), r.Attributions)
+		}
 		return s.Add(key, group, e.model.TokenNames(x), r.Attributions)
 	}
 	return e.summarizeRows(ctx, rows, add, s.Skip, opt)

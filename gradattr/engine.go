@@ -269,6 +269,22 @@ func completeness(attr []float64, out, base, tol float64, judged bool) *Complete
 	rel := math.Abs(gap) / math.Max(math.Abs(want), CompletenessFloor)
 	return &Completeness{
 		Sum: sum, Expected: want, Gap: gap, RelativeGap: rel,
-		Tolerance: tol, Judged: judged, OK: judged && rel <= tol,
+		Tolerance: tol, Judged: judged, OK: judged && (rel <= tol || math.Abs(gap) <= outputResolution(out, base)),
 	}
+}
+
+// outputResolution is the smallest gap completeness can tell from rounding
+// when the outputs f(x) and f(x′) are float32 values (a float32 model's):
+// two units in the last place, in float32, of the larger of |f(x)|,
+// |f(x′)| (half a unit of rounding in each, and some in the attributions'
+// float32 arithmetic; common practice: compare within a few ulps). It is
+// 0 for other outputs. It matters only where the change of the output is
+// small against the output itself: a probability near 1 that moves by
+// 10⁻⁷, a score of 10⁴ that moves by 0.1.
+func outputResolution(out, base float64) float64 {
+	if float64(float32(out)) != out || float64(float32(base)) != base {
+		return 0
+	}
+	m := float32(max(math.Abs(out), math.Abs(base)))
+	return 2 * float64(math.Nextafter32(m, float32(math.Inf(1)))-m)
 }

@@ -821,8 +821,12 @@ func TestONNXFloat32RoundingFloor(t *testing.T) {
 	// 754: 23 fraction bits): F(0.1) = 10000.099609375 (= 10000 + 102/1024,
 	// round to nearest), F(0) = 10000, so F(x) − F(x′) = 0.099609375 and the
 	// relative gap is (0.1 − 0.099609375)/0.099609375 = 1/255 ≈ 0.0039,
-	// above 0.001 at any number of points. The float64 engine's spacing at
-	// 10⁴ is 2⁻³⁹ ≈ 1.8e-12 (52 fraction bits), a relative gap ≤ 1e-11.
+	// above 0.001 at any number of points. The gap, 0.1 − 0.099609375 =
+	// 2⁻¹⁰·0.4, is within the two units in the last place (2·2⁻¹⁰) that
+	// completeness allows for float32 outputs, so the check passes: it
+	// cannot see finer than the outputs' rounding. The float64 engine's
+	// spacing at 10⁴ is 2⁻³⁹ ≈ 1.8e-12 (52 fraction bits), a relative gap
+	// ≤ 1e-11.
 	b := newIR(t, "offset", onnxlite.Float, "x", []int64{1}, "y", []int64{1})
 	b.node("Add", "y", []string{"x", b.init("c", []int64{1}, []float64{10000})})
 	x := []float64{0.1}
@@ -833,8 +837,10 @@ func TestONNXFloat32RoundingFloor(t *testing.T) {
 	assert.Equal(t, 10000.099609375, r32.Output, "binary32 rounding of 10000.1")
 	assert.Equal(t, 10000.0, r32.BaselineOutput)
 	assert.InDelta(t, 1.0/255, r32.Completeness.RelativeGap, 1e-12, "relative gap 1/255 from binary32 rounding")
-	assert.False(t, r32.Completeness.OK, "float32 cannot meet 0.001 here")
-	assert.Equal(t, 65, r32.Settings.Points, "refinement runs to MaxPoints: more points cannot help")
+	assert.True(t, r32.Completeness.OK, "the gap is float32 rounding of the outputs")
+	assert.Less(t, math.Abs(r32.Completeness.Gap), 2*math.Pow(2, -10))
+	assert.Greater(t, math.Abs(r32.Completeness.Gap), 0.001*math.Abs(r32.Completeness.Expected), "the relative gap alone would fail")
+	assert.Equal(t, 17, r32.Settings.Points, "the gradient is the same at every node: the first pass is exact")
 	assert.InDelta(t, 0.1, r32.Attributions[0], 1e-15, "the attribution itself is exact")
 
 	r64, err := gradattr.IntegratedGradients(context.Background(), b.head(nn.Float64), x, 0, opt)

@@ -90,7 +90,9 @@ type Completeness struct {
 	// Judged is true when the method promises completeness, so that OK
 	// means something.
 	Judged bool `json:"judged"`
-	// OK is true when the check is judged and RelativeGap ≤ Tolerance.
+	// OK is true when the check is judged and RelativeGap ≤ Tolerance,
+	// or |Gap| is within the rounding of float32 outputs (two units in
+	// the last place in float32 of the larger of |f(x)|, |f(x′)|).
 	OK bool `json:"ok"`
 }
 

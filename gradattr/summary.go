@@ -143,11 +143,13 @@ type Summary struct {
 	groups map[string]*accum
 }
 
-// rowLedger records the row keys a summary holds and the rows it skipped.
+// rowLedger records the row keys a summary holds, the rows it skipped and
+// how many of the rows summed failed their completeness check.
 type rowLedger struct {
-	keys    []keyRange
-	skipped []SkippedRow
-	nskip   int
+	keys       []keyRange
+	skipped    []SkippedRow
+	nskip      int
+	incomplete int64
 }
 
 // skip takes key for a row that failed with reason: counted (its message
@@ -170,6 +172,7 @@ func (l *rowLedger) skip(key uint64, group string, reason error) error {
 func (l *rowLedger) absorb(o *rowLedger, keys []keyRange) {
 	l.keys = keys
 	l.nskip += o.nskip
+	l.incomplete += o.incomplete
 	for _, r := range o.skipped {
 		l.skipped = appendSkipped(l.skipped, r)
 	}
@@ -184,10 +187,14 @@ func (l *rowLedger) keysJSON() [][2]uint64 {
 	return out
 }
 
-// readLedger checks and reads the keys and skipped rows of a summary
-// document of rows rows.
-func readLedger(keys [][2]uint64, skipped []SkippedRow, nskip int, rows int64) (rowLedger, error) {
+// readLedger checks and reads the keys, the skipped rows and the count of
+// incomplete rows of a summary document of rows rows.
+func readLedger(keys [][2]uint64, skipped []SkippedRow, nskip int, rows, incomplete int64) (rowLedger, error) {
 	var l rowLedger
+	if incomplete < 0 || incomplete > rows {
+		return l, fmt.Errorf("%w: summary JSON: %d incomplete rows, expected 0 to the %d rows summed", ErrInput, incomplete, rows)
+	}
+	l.incomplete = incomplete
 	var prev, n uint64
 	for i, k := range keys {
 		if k[0] >= k[1] || (i > 0 && k[0] <= prev) {
@@ -285,6 +292,18 @@ func (s *Summary) Add(key uint64, group string, attr []float64) error {
 	if g != nil {
 		g.add(attr, w, s.b)
 	}
+	return nil
+}
+
+// AddIncomplete is Add for a row whose completeness check was judged and
+// failed (Completeness.OK false): its attributions are summed like any
+// other row's, and it is counted in IncompleteRows, so that a summary says
+// how many of its rows do not add up to their output's change.
+func (s *Summary) AddIncomplete(key uint64, group string, attr []float64) error {
+	if err := s.Add(key, group, attr); err != nil {
+		return err
+	}
+	s.incomplete++
 	return nil
 }
 
@@ -539,6 +558,10 @@ func (s *Summary) Rows() int { return int(s.all.rows) }
 
 // SkippedRows returns the number of skipped rows.
 func (s *Summary) SkippedRows() int { return s.nskip }
+
+// IncompleteRows returns the number of rows summed whose completeness
+// check failed (see AddIncomplete).
+func (s *Summary) IncompleteRows() int { return int(s.incomplete) }
 
 // Skipped returns the skipped rows kept, in key order (at most
 // MaxSkippedKept; SkippedRows counts them all).
@@ -811,6 +834,7 @@ type summaryJSON struct {
 	Confidence  float64         `json:"confidence"`
 	Rows        int64           `json:"rows"`
 	SkippedRows int             `json:"skipped_rows"`
+	Incomplete  int64           `json:"incomplete_rows"`
 	Skipped     []SkippedRow    `json:"skipped"`
 	Keys        [][2]uint64     `json:"keys"`
 	Overall     groupJSON       `json:"overall"`
@@ -842,6 +866,7 @@ type groupState struct {
 //	                    the SummaryOptions; merging compares them
 //	confidence          0.95, the level of the intervals
 //	rows, skipped_rows  rows summed and rows skipped
+//	incomplete_rows     rows summed whose completeness check failed
 //	skipped             [{key, group, error}], by key, at most 1000
 //	keys                [[lo, hi), ...] the row keys in the summary
 //	overall, groups[]   {name, rows, replicates, features: [FeatureStats],
@@ -859,7 +884,7 @@ func (s *Summary) MarshalJSON() ([]byte, error) {
 		Model: s.opt.Model, Method: s.opt.Method, Settings: s.settings,
 		Features: s.opt.Features, GroupBy: s.opt.GroupBy,
 		Bootstrap: s.b, Seed: s.opt.Seed, Confidence: SummaryConfidence,
-		Rows: s.all.rows, SkippedRows: s.nskip, Skipped: s.skipped,
+		Rows: s.all.rows, SkippedRows: s.nskip, Incomplete: s.incomplete, Skipped: s.skipped,
 		Keys:    s.keysJSON(),
 		Overall: s.groupJSON("", s.all),
 		Groups:  []groupJSON{},
@@ -948,7 +973,7 @@ func (s *Summary) UnmarshalJSON(raw []byte) error {
 	if doc.Rows != n.all.rows || total > n.all.rows || doc.SkippedRows < len(doc.Skipped) || doc.SkippedRows < 0 {
 		return fmt.Errorf("%w: summary JSON: inconsistent counts: rows %d, overall rows %d, rows in groups %d, skipped %d with %d listed", ErrInput, doc.Rows, n.all.rows, total, doc.SkippedRows, len(doc.Skipped))
 	}
-	if n.rowLedger, err = readLedger(doc.Keys, doc.Skipped, doc.SkippedRows, n.all.rows); err != nil {
+	if n.rowLedger, err = readLedger(doc.Keys, doc.Skipped, doc.SkippedRows, n.all.rows, doc.Incomplete); err != nil {
 		return err
 	}
 	*s = *n

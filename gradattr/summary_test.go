@@ -527,3 +527,46 @@ func BenchmarkSummaryAdd(b *testing.B) {
 		}
 	}
 }
+
+func TestSummaryCountsIncompleteRows(t *testing.T) {
+	// Rows whose completeness check failed are summed like the others and
+	// counted; the counts of parts add up under Merge and survive the JSON
+	// round trip (common practice: a merge of disjoint parts sums their
+	// counts). A document whose count exceeds its rows is refused.
+	whole, a, b := newTestSummary(t, 8), newTestSummary(t, 8), newTestSummary(t, 8)
+	plain := newTestSummary(t, 8)
+	for k := uint64(0); k < 10; k++ {
+		attr := []float64{float64(k), 1, -2, 0.5}
+		part := a
+		if k >= 4 {
+			part = b
+		}
+		add, addPart := whole.Add, part.Add
+		if k%3 == 0 {
+			add, addPart = whole.AddIncomplete, part.AddIncomplete
+		}
+		require.NoError(t, add(k, "g1", attr))
+		require.NoError(t, addPart(k, "g1", attr))
+		require.NoError(t, plain.Add(k, "g1", attr))
+	}
+	assert.Equal(t, 4, whole.IncompleteRows()) // keys 0, 3, 6, 9
+	require.NoError(t, a.Merge(b))
+	assert.Equal(t, 4, a.IncompleteRows())
+	assert.Equal(t, marshal(t, whole), marshal(t, a))
+	// The statistics are those of the same rows added plainly.
+	assert.Equal(t, plain.Overall(), whole.Overall())
+	back, err := DecodeSummary(strings.NewReader(marshal(t, whole)))
+	require.NoError(t, err)
+	assert.Equal(t, 4, back.IncompleteRows())
+	assert.Contains(t, marshal(t, whole), `"incomplete_rows":4,`)
+
+	bad := strings.Replace(marshal(t, whole), `"incomplete_rows":4,`, `"incomplete_rows":11,`, 1)
+	_, err = DecodeSummary(strings.NewReader(bad))
+	assert.ErrorIs(t, err, ErrInput)
+	assert.ErrorContains(t, err, "11 incomplete rows, expected 0 to the 10 rows summed")
+	// A document from before the count had none: read as 0.
+	old := strings.Replace(marshal(t, plain), `"incomplete_rows":0,`, ``, 1)
+	back, err = DecodeSummary(strings.NewReader(old))
+	require.NoError(t, err)
+	assert.Zero(t, back.IncompleteRows())
+}

@@ -238,6 +238,20 @@ func (s *TokenSummary) Rows() int { return int(s.all.rows) }
 // SkippedRows returns the number of skipped rows.
 func (s *TokenSummary) SkippedRows() int { return s.nskip }
 
+// IncompleteRows returns the number of rows summed whose completeness
+// check failed (see AddIncomplete).
+func (s *TokenSummary) IncompleteRows() int { return int(s.incomplete) }
+
+// AddIncomplete is Add for a row whose completeness check was judged and
+// failed: summed like any other row, and counted in IncompleteRows.
+func (s *TokenSummary) AddIncomplete(key uint64, group string, tokens []string, attr []float64) error {
+	if err := s.Add(key, group, tokens, attr); err != nil {
+		return err
+	}
+	s.incomplete++
+	return nil
+}
+
 // Skipped returns the skipped rows kept, in key order.
 func (s *TokenSummary) Skipped() []SkippedRow { return slices.Clone(s.skipped) }
 
@@ -343,6 +357,7 @@ type tokenSummaryJSON struct {
 	Confidence  float64          `json:"confidence"`
 	Rows        int64            `json:"rows"`
 	SkippedRows int              `json:"skipped_rows"`
+	Incomplete  int64            `json:"incomplete_rows"`
 	Skipped     []SkippedRow     `json:"skipped"`
 	Keys        [][2]uint64      `json:"keys"`
 	Overall     tokenGroupJSON   `json:"overall"`
@@ -372,6 +387,7 @@ type tokenStateJSON struct {
 //	                    the TokenSummaryOptions; merging compares them
 //	confidence          0.95, the level of the Student t intervals
 //	rows, skipped_rows  rows summed and rows skipped
+//	incomplete_rows     rows summed whose completeness check failed
 //	skipped             [{key, group, error}], by key, at most 1000
 //	keys                [[lo, hi), ...] the row keys in the summary
 //	overall, groups[]   {name, rows, tokens: [TokenStats], state}
@@ -385,7 +401,7 @@ func (s *TokenSummary) MarshalJSON() ([]byte, error) {
 		Format: TokenSummaryFormat, Version: TokenSummaryVersion,
 		Model: s.opt.Model, Method: s.opt.Method, Settings: s.settings,
 		GroupBy: s.opt.GroupBy, Padding: s.opt.Padding, Confidence: SummaryConfidence,
-		Rows: s.all.rows, SkippedRows: s.nskip, Skipped: s.skipped,
+		Rows: s.all.rows, SkippedRows: s.nskip, Incomplete: s.incomplete, Skipped: s.skipped,
 		Keys:    s.keysJSON(),
 		Overall: s.all.json(""), Groups: []tokenGroupJSON{},
 	}
@@ -464,7 +480,7 @@ func (s *TokenSummary) UnmarshalJSON(raw []byte) error {
 	if doc.Overall.Rows != doc.Rows || doc.Rows < 0 {
 		return fmt.Errorf("%w: token summary JSON: rows %d, overall rows %d, skipped rows %d do not agree", ErrInput, doc.Rows, doc.Overall.Rows, doc.SkippedRows)
 	}
-	if n.rowLedger, err = readLedger(doc.Keys, doc.Skipped, doc.SkippedRows, doc.Rows); err != nil {
+	if n.rowLedger, err = readLedger(doc.Keys, doc.Skipped, doc.SkippedRows, doc.Rows, doc.Incomplete); err != nil {
 		return err
 	}
 	*s = *n

@@ -32,8 +32,8 @@ func SummaryWarnings(s *gradattr.Summary) []string {
 func SummaryTable(w io.Writer, s *gradattr.Summary, modelName string) {
 	o := s.Options()
 	fmt.Fprintf(w, "model %s  method %s\n", summaryModel(o.Model, modelName), o.Method)
-	fmt.Fprintf(w, "%d rows summarised, %d skipped; 95%% intervals from %d Poisson bootstrap replicates (seed %d)\n",
-		s.Rows(), s.SkippedRows(), o.Bootstrap, o.Seed)
+	fmt.Fprintf(w, "%d rows summarised%s, %d skipped; 95%% intervals from %d Poisson bootstrap replicates (seed %d)\n",
+		s.Rows(), incompleteNote(s.IncompleteRows()), s.SkippedRows(), o.Bootstrap, o.Seed)
 	scale := 0.0
 	for _, g := range append([]gradattr.GroupStats{s.Overall()}, s.Groups()...) {
 		for _, f := range g.Features {
@@ -143,4 +143,13 @@ func SummaryCSV(w io.Writer, s *gradattr.Summary) error {
 	}
 	cw.Flush()
 	return cw.Error()
+}
+
+// incompleteNote says how many rows summed failed their completeness
+// check: "" for none.
+func incompleteNote(n int) string {
+	if n == 0 {
+		return ""
+	}
+	return fmt.Sprintf(" (%d failed their completeness check)", n)
 }

@@ -22,7 +22,7 @@ const MaxTokenRows = 20
 func TokenSummaryTable(w io.Writer, s *gradattr.TokenSummary, modelName string) {
 	o := s.Options()
 	fmt.Fprintf(w, "model %s  method %s, per token string\n", summaryModel(o.Model, modelName), o.Method)
-	fmt.Fprintf(w, "%d rows summarised, %d skipped; 95%% Student t intervals over each token's occurrences\n", s.Rows(), s.SkippedRows())
+	fmt.Fprintf(w, "%d rows summarised%s, %d skipped; 95%% Student t intervals over each token's occurrences\n", s.Rows(), incompleteNote(s.IncompleteRows()), s.SkippedRows())
 	groups := append([]gradattr.TokenGroupStats{s.Overall()}, s.Groups()...)
 	scale := 0.0
 	for _, g := range groups {

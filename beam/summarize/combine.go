@@ -63,6 +63,8 @@ func (f *groupFn) AddInput(a state, e explained) (state, error) {
 	var err error
 	if e.Error != "" {
 		err = a.s.Skip(e.Key, e.Group, errRow(e.Error))
+	} else if e.Incomplete {
+		err = a.s.AddIncomplete(e.Key, e.Group, e.Attributions)
 	} else {
 		err = a.s.Add(e.Key, e.Group, e.Attributions)
 	}

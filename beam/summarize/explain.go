@@ -8,6 +8,7 @@ import (
 	"github.com/apache/beam/sdks/v2/go/pkg/beam"
 	"github.com/apache/beam/sdks/v2/go/pkg/beam/register"
 
+	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
 )
 
@@ -33,8 +34,10 @@ type explained struct {
 	Key          uint64
 	Group        string
 	Attributions []float64
-	File, Where  string
-	Error        string
+	// Incomplete is set when the row's completeness check failed.
+	Incomplete  bool
+	File, Where string
+	Error       string
 }
 
 // explainFn explains rows in batches of Plan.Config.Batch, each batch on
@@ -143,5 +146,6 @@ func (w *worker) explain(ctx context.Context, r Row, byPredicted bool) explained
 		return e
 	}
 	e.Attributions = res.Attributions
+	e.Incomplete = explain.Incomplete(res)
 	return e
 }

@@ -56,7 +56,7 @@ func TestMessagesSpeakTheUsersLanguage(t *testing.T) {
 	notJSON := write("groups2.json", `{"a": `)
 	pumps := write("pumps.csv", pumpsCSV(t, 0, 6))
 	part := filepath.Join(dir, "part.json")
-	code, _, errs := cli(t, "summarize", "-input", pumps, "-steps", "8", "-bootstrap", "10", "-format", "json", "-out", part)
+	code, _, errs := cli(t, "summarize", "-allow-incomplete", "-input", pumps, "-steps", "8", "-bootstrap", "10", "-format", "json", "-out", part)
 	require.Equal(t, exitOK, code, errs)
 	other := filepath.Join(dir, "other.json")
 	code, _, errs = cli(t, "summarize", "-input", pumps, "-first-row", "6", "-method", "grad", "-bootstrap", "10", "-format", "json", "-out", other)

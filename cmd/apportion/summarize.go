@@ -69,7 +69,9 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 			"The model's features are the CSV columns named in its feature_names\n"+
 			"metadata, else the first numeric columns. A bad row (wrong length, NaN,\n"+
 			"not a number) is reported with its line and skipped; the status is then 1,\n"+
-			"but the summary is written. Rows are keyed -first-row, -first-row+1, ...:\n"+
+			"but the summary is written. Rows whose completeness check fails are\n"+
+			"summarised and counted (incomplete_rows); the status is then 1 as well\n"+
+			"(0 with -allow-incomplete). Rows are keyed -first-row, -first-row+1, ...:\n"+
 			"summaries of parts of one data set (-format json) merge exactly with\n"+
 			"-merge, into the summary of the whole. With -key, rows are keyed by their\n"+
 			"value in that column (whole numbers as they are, other text by its\n"+
@@ -92,6 +94,7 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 	fs.Uint64Var(&sc.firstRow, "first-row", 0, "row key `K` of the first data row, for a part of a larger data set")
 	fs.StringVar(&sc.key, "key", "", "key each row by its value in this CSV `column`, which tells rows apart (instead of -first-row and the row's place)")
 	fs.BoolVar(&sc.merge, "merge", false, "merge the summary JSON files given as arguments instead of explaining rows")
+	fs.BoolVar(&c.allowIncomplete, "allow-incomplete", false, "exit 0 even when rows fail their completeness check (they are summarised and counted either way)")
 
 	flagArgs, files := splitFileArgs(fs, args)
 	if code, done := parseFlags(fs, flagArgs, stdout); done {
@@ -129,11 +132,19 @@ func runSummarize(args []string, stdin io.Reader, stdout, stderr io.Writer) int 
 	for _, r := range skipped {
 		fmt.Fprintf(stderr, "apportion summarize: %s: %v\n", r.Where, r.Err)
 	}
+	code := exitOK
+	if n := s.IncompleteRows(); n > 0 {
+		fmt.Fprintf(stderr, "apportion summarize: %d of the %s summarised failed their completeness check (attributions that do not add up to the output's change, by more than -tolerance)\n",
+			n, render.Count(s.Rows(), "row", "rows"))
+		if !c.allowIncomplete {
+			code = exitFail
+		}
+	}
 	if len(skipped) > 0 {
 		fmt.Fprintf(stderr, "apportion summarize: %d of %s skipped\n", len(skipped), render.Count(s.Rows()+s.SkippedRows(), "row", "rows"))
 		return exitFail
 	}
-	return exitOK
+	return code
 }
 
 // splitFileArgs separates positional arguments (the files of -merge) from
@@ -235,6 +246,7 @@ func (sc *summarizeConfig) validate() string {
 type rowSummary interface {
 	Rows() int
 	SkippedRows() int
+	IncompleteRows() int
 	MarshalJSON() ([]byte, error)
 }
 

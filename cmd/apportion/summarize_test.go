@@ -54,12 +54,15 @@ func writeTemp(t *testing.T, name, content string) string {
 }
 
 func TestSummarizeDemoTable(t *testing.T) {
-	code, out, errOut := cli(t, "summarize", "-steps", "32")
+	code, out, errOut := cli(t, "summarize", "-allow-incomplete", "-steps", "32")
 	require.Equal(t, exitOK, code, errOut)
 	// No progress bar when standard error is not a terminal: only the
-	// note on the column the summary does not read.
-	assert.Equal(t, "apportion summarize: demo:pumps_test.csv: ignored the columns the model does not read: label\n", errOut)
-	assert.Contains(t, out, "500 rows summarised, 0 skipped")
+	// note on the column the summary does not read, and the count of rows
+	// whose completeness check failed (32 trapezoid points are too few
+	// for many of these rows: see TestSummarizeCountsIncompleteRows).
+	assert.Equal(t, "apportion summarize: demo:pumps_test.csv: ignored the columns the model does not read: label\n"+
+		"apportion summarize: 218 of the 500 rows summarised failed their completeness check (attributions that do not add up to the output's change, by more than -tolerance)\n", errOut)
+	assert.Contains(t, out, "500 rows summarised (218 failed their completeness check), 0 skipped")
 	assert.Contains(t, out, "all rows (500 rows)")
 	for line, n := range pumpLineRows {
 		assert.Contains(t, out, "pump_line = "+line+" ("+strconv.Itoa(int(n))+" rows)")
@@ -82,7 +85,7 @@ func TestSummarizeDemoTable(t *testing.T) {
 }
 
 func TestSummarizeDemoJSON(t *testing.T) {
-	code, out, errOut := cli(t, "summarize", "-steps", "32", "-format", "json", "-bootstrap", "50")
+	code, out, errOut := cli(t, "summarize", "-allow-incomplete", "-steps", "32", "-format", "json", "-bootstrap", "50")
 	require.Equal(t, exitOK, code, errOut)
 	doc := decodeJSON(t, out)
 	assert.Equal(t, "apportion-summary", doc["format"])
@@ -113,7 +116,7 @@ func TestSummarizeDemoJSON(t *testing.T) {
 }
 
 func TestSummarizeCSVAndByPredicted(t *testing.T) {
-	code, out, errOut := cli(t, "summarize", "-steps", "32", "-by", "predicted", "-format", "csv")
+	code, out, errOut := cli(t, "summarize", "-allow-incomplete", "-steps", "32", "-by", "predicted", "-format", "csv")
 	require.Equal(t, exitOK, code, errOut)
 	recs, err := csv.NewReader(strings.NewReader(out)).ReadAll()
 	require.NoError(t, err)
@@ -157,7 +160,7 @@ func TestSummarizeBadRows(t *testing.T) {
 	lines[9] = strings.Replace(lines[9], strings.Split(lines[9], ",")[0], "warm", 1)
 	bad := writeTemp(t, "bad.csv", strings.Join(lines, "\n")+"\n")
 
-	code, out, errOut := cli(t, "summarize", "-input", bad, "-steps", "32", "-format", "json")
+	code, out, errOut := cli(t, "summarize", "-allow-incomplete", "-input", bad, "-steps", "32", "-format", "json")
 	assert.Equal(t, exitFail, code, "a bad row makes the status 1")
 	assert.Contains(t, errOut, "line 4: expected 10 fields, as in the header, got 3")
 	assert.Contains(t, errOut, "line 7: column vibration_rms: NaN value is not a finite number")
@@ -179,7 +182,7 @@ func TestSummarizeBadRows(t *testing.T) {
 		}
 	}
 	clean := writeTemp(t, "clean.csv", strings.Join(keep, "\n")+"\n")
-	code, out2, errOut := cli(t, "summarize", "-input", clean, "-steps", "32", "-format", "json")
+	code, out2, errOut := cli(t, "summarize", "-allow-incomplete", "-input", clean, "-steps", "32", "-format", "json")
 	require.Equal(t, exitOK, code, errOut)
 	mean := func(d map[string]any) []any {
 		var out []any
@@ -204,7 +207,7 @@ func TestSummarizeMergeEqualsWhole(t *testing.T) {
 		"b":     {"-input", b, "-first-row", "37"},
 	} {
 		p := filepath.Join(dir, name+".json")
-		args = append([]string{"summarize", "-steps", "16", "-by", "pump_line", "-bootstrap", "64", "-format", "json", "-out", p}, args...)
+		args = append([]string{"summarize", "-allow-incomplete", "-steps", "16", "-by", "pump_line", "-bootstrap", "64", "-format", "json", "-out", p}, args...)
 		code, _, errOut := cli(t, args...)
 		require.Equal(t, exitOK, code, errOut)
 		outs[name] = p
@@ -220,7 +223,7 @@ func TestSummarizeMergeEqualsWhole(t *testing.T) {
 	// Flags may follow the files; the merged table names all 90 rows.
 	code, table, errOut := cli(t, "summarize", "-merge", outs["b"], outs["a"], "-format", "table")
 	require.Equal(t, exitOK, code, errOut)
-	assert.Contains(t, table, "90 rows summarised, 0 skipped")
+	assert.Contains(t, table, "90 rows summarised (41 failed their completeness check), 0 skipped") // the parts' counts added
 
 	// A part merged twice is refused, pointing to -first-row.
 	code, _, errOut = cli(t, "summarize", "-merge", outs["a"], outs["a"])
@@ -229,7 +232,7 @@ func TestSummarizeMergeEqualsWhole(t *testing.T) {
 
 	// Summaries of another method are refused, naming the difference.
 	other := filepath.Join(dir, "other.json")
-	code, _, errOut = cli(t, "summarize", "-input", b, "-first-row", "37", "-method", "grad-input", "-by", "pump_line", "-bootstrap", "64", "-format", "json", "-out", other)
+	code, _, errOut = cli(t, "summarize", "-allow-incomplete", "-input", b, "-first-row", "37", "-method", "grad-input", "-by", "pump_line", "-bootstrap", "64", "-format", "json", "-out", other)
 	require.Equal(t, exitOK, code, errOut)
 	code, _, errOut = cli(t, "summarize", "-merge", outs["a"], other)
 	assert.Equal(t, exitFail, code)
@@ -246,7 +249,7 @@ func TestSummarizeMergeEqualsWhole(t *testing.T) {
 
 func TestSummarizePNG(t *testing.T) {
 	p := filepath.Join(t.TempDir(), "s.png")
-	code, _, errOut := cli(t, "summarize", "-steps", "16", "-bootstrap", "20", "-format", "png", "-out", p)
+	code, _, errOut := cli(t, "summarize", "-allow-incomplete", "-steps", "16", "-bootstrap", "20", "-format", "png", "-out", p)
 	require.Equal(t, exitOK, code, errOut)
 	raw, err := os.ReadFile(p)
 	require.NoError(t, err)
@@ -283,7 +286,7 @@ func TestSummarizeUsageErrors(t *testing.T) {
 		assert.Equal(t, exitUsage, code, "%v: %s", tc.args, errOut)
 		assert.Contains(t, errOut, tc.msg, "%v", tc.args)
 	}
-	code, out, _ := cli(t, "summarize", "-h")
+	code, out, _ := cli(t, "summarize", "-allow-incomplete", "-h")
 	assert.Equal(t, exitOK, code)
 	assert.Contains(t, out, "apportion summarize -merge")
 	code, out, _ = cli(t, "help")
@@ -318,7 +321,7 @@ func TestSummarizeModelFile(t *testing.T) {
 	inOrder := writeTemp(t, "ordered.csv", text)
 	var docs []string
 	for _, in := range []string{inOrder, shuffled} {
-		code, out, errOut := cli(t, "summarize", "-model", model, "-input", in, "-reference", ref, "-baseline", "mean", "-steps", "16", "-by", "label", "-bootstrap", "30", "-format", "json")
+		code, out, errOut := cli(t, "summarize", "-allow-incomplete", "-model", model, "-input", in, "-reference", ref, "-baseline", "mean", "-steps", "16", "-by", "label", "-bootstrap", "30", "-format", "json")
 		require.Equal(t, exitOK, code, errOut)
 		assert.Equal(t, 1, strings.Count(errOut, filepath.Base(in)+": ignored the columns the model does not read: pump_line\n"), errOut)
 		docs = append(docs, out)
@@ -335,7 +338,7 @@ func TestSummarizeModelFile(t *testing.T) {
 // range, before any row is explained.
 func TestSummarizeTargetOutOfRange(t *testing.T) {
 	in := writeTemp(t, "few.csv", pumpsCSV(t, 0, 4))
-	code, out, errOut := cli(t, "summarize", "-input", in, "-target", "7", "-steps", "8", "-format", "json")
+	code, out, errOut := cli(t, "summarize", "-allow-incomplete", "-input", in, "-target", "7", "-steps", "8", "-format", "json")
 	assert.Equal(t, exitUsage, code)
 	assert.Contains(t, errOut, `-target must be top or an index from 0 to 2 (output "condition" has 3 values), got 7`)
 	assert.Empty(t, out)
@@ -350,7 +353,7 @@ func TestSummarizeTargetOutOfRange(t *testing.T) {
 // output_0.pb.
 func TestSummarizeBackendSoftmax(t *testing.T) {
 	model, x, y, xpb := softmaxCase(t)
-	code, out, errOut := cli(t, "summarize", "-model", model, "-input", xpb,
+	code, out, errOut := cli(t, "summarize", "-allow-incomplete", "-model", model, "-input", xpb,
 		"-method", "grad-input", "-bootstrap", "20", "-format", "json")
 	require.Equal(t, exitOK, code, errOut)
 	doc := decodeJSON(t, out)
@@ -406,7 +409,7 @@ func TestSummarizeCSVWithoutFeatureNames(t *testing.T) {
 		fmt.Fprintf(&b, "s%d,%v,%v,%v,99,%s\n", i, r[0], r[1], r[2], []string{"p", "q", "p"}[i])
 	}
 	in := writeTemp(t, "nonames.csv", b.String())
-	code, out, errOut := cli(t, "summarize", "-model", model, "-input", in, "-method", "grad-input", "-by", "batch", "-bootstrap", "10", "-format", "json")
+	code, out, errOut := cli(t, "summarize", "-allow-incomplete", "-model", model, "-input", in, "-method", "grad-input", "-by", "batch", "-bootstrap", "10", "-format", "json")
 	require.Equal(t, exitOK, code, errOut)
 	doc := decodeJSON(t, out)
 	assert.Equal(t, []any{"u", "v", "w"}, doc["features"])
@@ -448,7 +451,7 @@ func TestSummarizeCSVWithoutFeatureNames(t *testing.T) {
 // the command line's summary of all 90 rows.
 func TestSummarizeMergesWithLibrary(t *testing.T) {
 	dir := t.TempDir()
-	args := []string{"summarize", "-steps", "16", "-by", "pump_line", "-bootstrap", "64", "-format", "json"}
+	args := []string{"summarize", "-allow-incomplete", "-steps", "16", "-by", "pump_line", "-bootstrap", "64", "-format", "json"}
 	outs := map[string]string{}
 	for name, rows := range map[string][2]int{"whole": {0, 90}, "a": {0, 37}} {
 		in := writeTemp(t, name+".csv", pumpsCSV(t, rows[0], rows[1]))
@@ -512,7 +515,7 @@ func keyedPumps(t *testing.T, n int, key func(i int) string) []string {
 }
 
 func TestSummarizeKeyColumn(t *testing.T) {
-	args := []string{"summarize", "-steps", "16", "-by", "pump_line", "-bootstrap", "64", "-format", "json"}
+	args := []string{"summarize", "-allow-incomplete", "-steps", "16", "-by", "pump_line", "-bootstrap", "64", "-format", "json"}
 	summarize := func(extra ...string) string {
 		t.Helper()
 		code, out, errOut := cli(t, append(append([]string{}, args...), extra...)...)
@@ -572,11 +575,11 @@ func TestSummarizeManyGroupsWarns(t *testing.T) {
 	// per row in the demo's held-out file) makes more than 50 groups: the
 	// summary is written, with a warning on standard error.
 	in := writeTemp(t, "rows.csv", pumpsCSV(t, 0, 60))
-	code, out, errOut := cli(t, "summarize", "-input", in, "-by", "hours_since_service", "-method", "grad", "-bootstrap", "10")
+	code, out, errOut := cli(t, "summarize", "-allow-incomplete", "-input", in, "-by", "hours_since_service", "-method", "grad", "-bootstrap", "10")
 	require.Equal(t, exitOK, code, errOut)
 	assert.Contains(t, out, "60 rows summarised")
 	assert.Regexp(t, `apportion summarize: warning: grouping by hours_since_service makes \d+ groups, more than 50`, errOut)
-	code, _, errOut = cli(t, "summarize", "-input", in, "-by", "pump_line", "-method", "grad", "-bootstrap", "10")
+	code, _, errOut = cli(t, "summarize", "-allow-incomplete", "-input", in, "-by", "pump_line", "-method", "grad", "-bootstrap", "10")
 	require.Equal(t, exitOK, code, errOut)
 	assert.NotContains(t, errOut, "warning")
 }
@@ -600,7 +603,7 @@ func TestSummarizeTokens(t *testing.T) {
 	a := writeTemp(t, "a.txt", strings.Join(lines[:250], ""))
 	b := writeTemp(t, "b.txt", strings.Join(lines[250:], ""))
 
-	code, table, errOut := cli(t, "summarize", "-model", model, "-input", whole, "-by", "predicted")
+	code, table, errOut := cli(t, "summarize", "-allow-incomplete", "-model", model, "-input", whole, "-by", "predicted")
 	require.Equal(t, exitOK, code, errOut)
 	assert.Contains(t, table, "600 rows summarised, 0 skipped; 95% Student t intervals")
 	assert.Contains(t, table, "predicted = urgent (")
@@ -622,7 +625,7 @@ func TestSummarizeTokens(t *testing.T) {
 		"b":     {"-input", b, "-first-row", "250"},
 	} {
 		p := filepath.Join(dir, name+".json")
-		args = append([]string{"summarize", "-model", model, "-by", "predicted", "-format", "json", "-out", p}, args...)
+		args = append([]string{"summarize", "-allow-incomplete", "-model", model, "-by", "predicted", "-format", "json", "-out", p}, args...)
 		code, _, errOut := cli(t, args...)
 		require.Equal(t, exitOK, code, errOut)
 		outs[name] = p
@@ -634,13 +637,53 @@ func TestSummarizeTokens(t *testing.T) {
 	assert.Equal(t, string(want), merged)
 
 	pumps := filepath.Join(dir, "pumps.json")
-	code, _, errOut = cli(t, "summarize", "-steps", "16", "-bootstrap", "8", "-format", "json", "-out", pumps)
+	code, _, errOut = cli(t, "summarize", "-allow-incomplete", "-steps", "16", "-bootstrap", "8", "-format", "json", "-out", pumps)
 	require.Equal(t, exitOK, code, errOut)
 	code, _, errOut = cli(t, "summarize", "-merge", outs["a"], pumps)
 	assert.Equal(t, exitFail, code)
 	assert.Contains(t, errOut, "-merge "+pumps+": it is a summary per feature, and "+outs["a"]+" is a summary per token string (of a model of token ids): a summary per token string and one per feature do not merge")
 
-	code, _, errOut = cli(t, "summarize", "-model", model, "-input", a, "-format", "csv")
+	code, _, errOut = cli(t, "summarize", "-allow-incomplete", "-model", model, "-input", a, "-format", "csv")
 	assert.Equal(t, exitUsage, code)
 	assert.Contains(t, errOut, "written as a table or as json, not csv")
+}
+
+func TestSummarizeCountsIncompleteRows(t *testing.T) {
+	// The rows a summary counts as incomplete are those whose explanation,
+	// with the same settings, fails its completeness check (Sundararajan
+	// et al. 2017, §3: integrated gradients sum to f(x) − f(x′); the
+	// trapezoid rule with 32 points misses it by more than 0.5% on many of
+	// these rows). Without -allow-incomplete the status is 1.
+	ref := filepath.Join("..", "..", "demo", "data", "pumps_reference.csv")
+	model := filepath.Join("..", "..", "demo", "data", "pumps.onnx")
+	input := filepath.Join("..", "..", "demo", "data", "pumps_test.csv")
+	code, out, _ := cli(t, "explain", "-model", model, "-input", input, "-baseline", "mean", "-reference", ref,
+		"-steps", "32", "-format", "json", "-allow-incomplete")
+	require.Equal(t, exitOK, code)
+	var doc struct {
+		Explanations []struct {
+			Completeness struct{ OK bool }
+		}
+	}
+	require.NoError(t, json.Unmarshal([]byte(out), &doc))
+	failed := 0
+	for _, e := range doc.Explanations {
+		if !e.Completeness.OK {
+			failed++
+		}
+	}
+	require.Len(t, doc.Explanations, 500)
+
+	code, out, errOut := cli(t, "summarize", "-model", model, "-input", input, "-baseline", "mean", "-reference", ref,
+		"-steps", "32", "-bootstrap", "8", "-format", "json")
+	assert.Equal(t, exitFail, code)
+	assert.Contains(t, errOut, fmt.Sprintf("%d of the 500 rows summarised failed their completeness check", failed))
+	var sum struct {
+		Rows       int `json:"rows"`
+		Incomplete int `json:"incomplete_rows"`
+	}
+	require.NoError(t, json.Unmarshal([]byte(out), &sum))
+	assert.Equal(t, 500, sum.Rows)
+	assert.Equal(t, failed, sum.Incomplete)
+	assert.Positive(t, failed)
 }
