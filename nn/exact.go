@@ -86,7 +86,10 @@ func (h *Head) PiecewiseLinear() error {
 // 1e-12 per unit of α, without a network pass. The pieces are found and
 // the gradients pulled back in the Network's element type. When the path
 // has more than maxPieces pieces (maxPieces > 0) it stops and returns a nil
-// integral and a count above maxPieces. It fails with ErrNotPiecewiseLinear
+// integral and a count above maxPieces (a lower bound on the path's): as
+// soon as the pieces integrated and the crossings of one piecewise-linear
+// operation on the rest of the run show more, so a CNN's path stops at its
+// first ReLU. It fails with ErrNotPiecewiseLinear
 // when PiecewiseLinear does.
 func (h *Head) IntegratePath(ctx context.Context, from, to []float64, target, maxPieces int) (integral []float64, pieces int, err error) {
 	integral, pieces, _, err = h.integratePath(ctx, from, to, target, maxPieces, false)

@@ -1,6 +1,7 @@
 package nn
 
 import (
+	"bytes"
 	"context"
 	"encoding/json"
 	"errors"
@@ -358,6 +359,45 @@ func TestExactPathPieceLimit(t *testing.T) {
 	cancel()
 	_, _, err = h.IntegratePath(ctx, x0, x, 1, 0)
 	assert.True(t, errors.Is(err, context.Canceled), "%v", err)
+
+	// Over the limit the count is a lower bound on the path's pieces, found
+	// at the first layer whose crossings show it: for every limit below
+	// the path's count, a count above the limit and at most the path's.
+	for limit := 1; limit < pieces; limit++ {
+		got, over, err := h.IntegratePath(context.Background(), x0, x, 1, limit)
+		require.NoError(t, err)
+		assert.Nil(t, got)
+		assert.Greater(t, over, limit)
+		assert.LessOrEqual(t, over, pieces)
+	}
+}
+
+func TestExactPathStopsAtFirstLayer(t *testing.T) {
+	// The benchmark's CNN-S (conv 8, ReLU, pool, conv 16, ReLU, pool, fc):
+	// along the path from 0 to its first benchmark input, thousands of its
+	// first ReLU's 6272 units cross zero (their inputs are affine in α,
+	// Sotoudeh & Thakur 2019), so a limit of 1024 is over at the first
+	// level; the count reported is a lower bound on the pieces the whole
+	// integration finds.
+	b, err := os.ReadFile(filepath.Join("..", "bench", "models", "cnn-s.onnx"))
+	require.NoError(t, err)
+	m, err := onnxlite.Decode(bytes.NewReader(b), onnxlite.DecodeOptions{})
+	require.NoError(t, err)
+	h, err := mustHead(m, Float32)
+	require.NoError(t, err)
+	x := make([]float64, 784)
+	for i := range x {
+		x[i] = 0.5 * math.Sin(0.37*float64(i)+0.1)
+	}
+	zero := make([]float64, 784)
+	got, bound, err := h.IntegratePath(context.Background(), zero, x, 3, 1024)
+	require.NoError(t, err)
+	assert.Nil(t, got)
+	assert.Greater(t, bound, 1024)
+	_, pieces, err := h.IntegratePath(context.Background(), zero, x, 3, 0)
+	require.NoError(t, err)
+	assert.LessOrEqual(t, bound, pieces)
+	t.Logf("first-level bound %d, pieces %d", bound, pieces)
 }
 
 func mustHead(m *onnxlite.Model, dt DType) (*Head, error) {

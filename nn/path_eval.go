@@ -151,6 +151,14 @@ func (r *pathRun[T]) descend(k int, pts []float64, vals, grads [][]T) error {
 			lv.cuts[s] = tidyBreaks(kink.breaks(at, bt, pts[s], pts[s+1], lv.cuts[s][:0]), pts[s], pts[s+1])
 			total += len(lv.cuts[s])
 		}
+		// The pieces already integrated, and at least one per segment of
+		// this level between pts[0] and pts[end]: a bound that lets a path
+		// with too many pieces stop at the first level that shows it (on
+		// a CNN, the first ReLU's crossings alone), before any deeper pass.
+		if bound := r.pieces + len(pts) - 1 + total; r.maxPieces > 0 && bound > r.maxPieces {
+			r.pieces = bound
+			return errTooManyPieces
+		}
 	}
 	if total == 0 && len(pts) <= r.runLen {
 		return r.through(k, pts, vals, grads, isKink)

@@ -92,7 +92,7 @@ func registerMethodFlags(fs *flag.FlagSet, baselineDefault, baselineHelp, refere
 	fs.Bool("logits", false, "explain the input of the Softmax, LogSoftmax or Sigmoid that produces the output (the logits)")
 	fs.String("baseline", baselineDefault, baselineHelp)
 	fs.String("reference", "", referenceHelp)
-	fs.String("steps", explain.DefaultStepsText, "integration points for ig: a number `N` (at least 2 with the trapezoid rule, 1 with the others); exact for the exact integral of a piecewise-linear network; refine to refine a quadrature rule until -tolerance; auto for exact where the network allows it and refine elsewhere")
+	fs.String("steps", explain.DefaultStepsText, "integration points for ig: a number `N` (at least 2 with the trapezoid rule, 1 with the others); exact for the exact integral of a piecewise-linear network; refine to refine a quadrature rule until its error estimate and completeness gap are within -tolerance (the trapezoid rule adds points where the gradient changes most); auto for exact where the network allows it and refine elsewhere")
 	fs.String("rule", "", "quadrature `rule` for ig: trapezoid, left, right, midpoint or gauss-legendre (default trapezoid)")
 	fs.Float64("tolerance", ig.Tolerance, fmt.Sprintf("relative completeness gap `R` to meet; expected-grad, complete only in expectation, uses %v unless given", eg.Tolerance))
 	fs.Int("samples", sg.Samples, "noisy copies (smoothgrad) or baseline draws (expected-grad) `N`")
