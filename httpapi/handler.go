@@ -633,6 +633,9 @@ func (h *Handler) samplesOf(inputs json.RawMessage) (*samples.Batch, *httpError)
 	if b, ok, herr := h.namedInputs(inputs); ok {
 		return b, herr
 	}
+	if b, ok, herr := h.textInputs(inputs); ok {
+		return b, herr
+	}
 	read := func(keepBad bool) (*samples.Batch, error) {
 		s, err := samples.NewStream(bytes.NewReader(inputs), "inputs.json", h.spec, samples.Options{MaxSamples: h.opt.MaxSamples, KeepBad: keepBad})
 		if err != nil {

@@ -720,7 +720,9 @@ func TestNamedInputs(t *testing.T) {
 	assert.JSONEq(t, first, one)
 
 	// A feature left out, a key that is not a feature, a value that is not
-	// a number and one the input cannot take are named, with the sample.
+	// a number and one the input cannot take are named, with the sample:
+	// beside a good sample, in the answer's "errors" (the good one
+	// answered); alone, as a bad request.
 	for body, want := range map[string]string{
 		`{"inputs":[` + objects[0] + `,{"flow":1}]}`:                                                                            `"inputs"[1] (for "sensors"): feature "bearing_temp" is missing`,
 		`{"inputs":[` + objects[0] + "," + strings.Replace(objects[1], `"ambient_temp":`, `"ambient":`, 1) + `]}`:               `"inputs"[1] (for "sensors"): "ambient" is not a feature of the model (features: bearing_temp, vibration_rms,`,
@@ -731,6 +733,18 @@ func TestNamedInputs(t *testing.T) {
 		`{"inputs":[` + regexp.MustCompile(`"flow":[^,}]+`).ReplaceAllString(objects[0], `"flow":1e300`) + `]}`: `"inputs"[0] (for "sensors"): feature "flow": 1e+300 is out of the float32 range of the input`,
 	} {
 		code, _, got := post(t, ts.URL+"/v1/predict", body)
+		if strings.HasPrefix(want, `"inputs"[1]`) {
+			require.Equal(t, http.StatusOK, code, got)
+			var res struct {
+				Rows   []int
+				Errors []explain.RowError
+			}
+			require.NoError(t, json.Unmarshal([]byte(got), &res))
+			assert.Equal(t, []int{0}, res.Rows)
+			require.Len(t, res.Errors, 1, got)
+			assert.Contains(t, res.Errors[0].Error, want)
+			continue
+		}
 		assert.Equal(t, http.StatusBadRequest, code, got)
 		assert.Contains(t, errorOf(t, got), want)
 	}

@@ -2,6 +2,7 @@ package httpapi
 
 import (
 	"bytes"
+	"cmp"
 	"encoding/json"
 	"fmt"
 	"math"
@@ -19,7 +20,8 @@ import (
 // taken by name, in the model's order. ok is false when inputs are not
 // objects (arrays of numbers are read by samplesOf). Every feature must be
 // given, and every key must name a feature, so that a misspelt name cannot
-// pass unnoticed.
+// pass unnoticed: an object that breaks this is a bad sample, left out of
+// the answer (the request fails only when every sample does).
 func (h *Handler) namedInputs(inputs json.RawMessage) (b *samples.Batch, ok bool, herr *httpError) {
 	raw := bytes.TrimSpace(inputs)
 	var objects []json.RawMessage
@@ -52,6 +54,7 @@ func (h *Handler) namedInputs(inputs json.RawMessage) (b *samples.Batch, ok bool
 	}
 	b = &samples.Batch{Name: "request", Shape: append([]int{len(objects)}, h.sampleShape()...), Samples: len(objects),
 		Data: make([]float64, 0, size*len(objects)), Features: features}
+	var first error
 	for n, o := range objects {
 		x, err := namedSample(o, features, index)
 		if err == nil && h.spec.Elem == onnxlite.Float {
@@ -60,11 +63,26 @@ func (h *Handler) namedInputs(inputs json.RawMessage) (b *samples.Batch, ok bool
 			}
 		}
 		if err != nil {
-			return nil, true, badRequest(`"inputs"[%d] (for %q): %v`, n, h.spec.Name, err)
+			// Left out of the answer, its neighbours kept.
+			err = fmt.Errorf(`"inputs"[%d] (for %q): %w`, n, h.spec.Name, err)
+			first = cmp.Or(first, err)
+			markBad(b, n, err)
+			x = make([]float64, size)
 		}
 		b.Data = append(b.Data, x...)
 	}
+	if len(b.Bad) == b.Samples {
+		return nil, true, badRequest("%v", first)
+	}
 	return b, true, nil
+}
+
+// markBad records that sample n of b could not be read.
+func markBad(b *samples.Batch, n int, err error) {
+	if b.Bad == nil {
+		b.Bad = map[int]error{}
+	}
+	b.Bad[n] = err
 }
 
 // namedSample reads one object of feature values.

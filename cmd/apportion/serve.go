@@ -32,6 +32,7 @@ type serveConfig struct {
 	coalesce   bool
 	drain      time.Duration
 	precision  string
+	vocab      string
 }
 
 func runServe(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
@@ -41,6 +42,8 @@ func runServe(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			"\tGET  /healthz      liveness\n"+
 			"\tGET  /v1/model     the document of inspect -format json\n"+
 			"\tPOST /v1/predict   {\"inputs\": [sample, ...]}: the document of predict -format json\n"+
+			"\t                   (a sample: an array of numbers, an object of feature values\n"+
+			"\t                   by name, or for a model of token ids a text)\n"+
 			"\tPOST /v1/explain   {\"inputs\": [...], \"method\", \"target\", \"steps\", \"tolerance\",\n"+
 			"\t                   \"baseline\", \"samples\", \"noise\", \"seed\", \"rule\", \"logits\",\n"+
 			"\t                   \"abs\", \"variant\"}:\n"+
@@ -60,6 +63,7 @@ func runServe(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 	fs.StringVar(&c.addr, "addr", defaultServeAddr, "`address` to listen on")
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default the embedded pumps demo)")
 	fs.StringVar(&c.reference, "reference", "", "reference samples `file` for expected-grad and baseline mean (default the demo's reference set with the demo model)")
+	fs.StringVar(&c.vocab, "vocab", "", "vocabulary `file` of a model of token ids, one token per line (id = line number from 0), for texts in \"inputs\" and token names (default: the model's own, from its metadata)")
 	fs.Var(&maxBody, "max-body", "largest request body, in `bytes` (suffixes KiB, MiB, GiB, kB, MB, GB)")
 	fs.IntVar(&c.maxSamples, "max-samples", httpapi.DefaultMaxSamples, "most samples `N` in one request")
 	fs.IntVar(&c.maxWork, "max-work", httpapi.DefaultMaxWork, "most work `N` of one request: samples sent through the model, forward and gradient passes alike")
@@ -136,6 +140,9 @@ func newHandler(c serveConfig, log *slog.Logger) (*httpapi.Handler, string, erro
 		return nil, "", err
 	}
 	m := l.model
+	if err := readVocabulary(m, c.vocab); err != nil {
+		return nil, "", err
+	}
 	dtype, err := explain.ParsePrecision(c.precision)
 	if err != nil {
 		return nil, "", err

@@ -19,6 +19,8 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"github.com/apportion/apportion/demo"
+	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/httpapi"
 	"github.com/apportion/apportion/internal/testhttp"
 )
@@ -252,4 +254,48 @@ func TestServeFlags(t *testing.T) {
 	}
 	assert.Equal(t, "8MiB", httpapi.FormatBytes(8<<20))
 	assert.Equal(t, "1000", httpapi.FormatBytes(1000))
+}
+
+func TestServeVocab(t *testing.T) {
+	// serve -vocab reads texts in "inputs" with the file's vocabulary
+	// instead of the model's: here the tickets demo's tokens with a prefix,
+	// so that the file's words map to the model's ids and name the tokens.
+	s, err := demo.Get("tickets")
+	require.NoError(t, err)
+	m, err := explain.Decode(s.Model, s.ModelFile, explain.DecodeOptions{})
+	require.NoError(t, err)
+	var lines []string
+	for _, tok := range m.Meta.Vocabulary {
+		if !strings.HasPrefix(tok, "[") {
+			tok = "w_" + tok
+		}
+		lines = append(lines, tok)
+	}
+	dir := t.TempDir()
+	model, vocab := filepath.Join(dir, "tickets.onnx"), filepath.Join(dir, "vocab.txt")
+	require.NoError(t, os.WriteFile(model, s.Model, 0o644))
+	require.NoError(t, os.WriteFile(vocab, []byte(strings.Join(lines, "\n")+"\n"), 0o644))
+	ts := testServer(t, func(c *serveConfig) { c.modelPath, c.vocab = model, vocab })
+
+	words := strings.Fields(strings.TrimSpace(string(s.Sample)))
+	ids, err := m.Vocabulary().IDs(strings.Join(words, " "), 16)
+	require.NoError(t, err)
+	for i := range words {
+		words[i] = "w_" + words[i]
+	}
+	quoted, _ := json.Marshal(strings.Join(words, " "))
+	code, _, byText := post(t, ts.URL+"/v1/explain", `{"inputs": [`+string(quoted)+`]}`)
+	require.Equal(t, 200, code, byText)
+	var doc struct {
+		Explanations []struct {
+			Attributions []float64 `json:"attributions"`
+			Tokens       []string  `json:"tokens"`
+		} `json:"explanations"`
+	}
+	require.NoError(t, json.Unmarshal([]byte(byText), &doc))
+	assert.Equal(t, words, doc.Explanations[0].Tokens[:len(words)])
+	raw, _ := json.Marshal(ids)
+	code, _, byIDs := post(t, ts.URL+"/v1/explain", `{"inputs": [`+string(raw)+`]}`)
+	require.Equal(t, 200, code, byIDs)
+	assert.JSONEq(t, byIDs, byText)
 }
