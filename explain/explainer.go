@@ -59,7 +59,9 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 	if err := e.atLayer(); err != nil {
 		return nil, err
 	}
-	if n := head.OutputSize(); s.Target >= n {
+	// A model whose output size follows from inputs held per sample (a
+	// target shape) has its target checked per sample, by the method.
+	if n := head.OutputSize(); n > 0 && s.Target >= n {
 		return nil, fieldError(FieldTarget, fmt.Sprintf(" must be top or an index from 0 to %d (output %q has %d values), got %d", n-1, output, n, s.Target))
 	}
 	// A method with baselines averages the samples explained when it has
@@ -241,7 +243,8 @@ func (e *Explainer) record(o gradattr.Options, name func(*Dataset) string) map[s
 // to. Each batch holds as many samples as the batch Explain gets, or one
 // sample, which every sample then shares: sample i is explained with the
 // other inputs at their sample i, held fixed while the method varies the
-// attributed input.
+// attributed input. A compile-time input (a parameter such as a target
+// shape, Model.CompileTimeInput) is its batch whole, as a file gives it.
 func (e *Explainer) Hold(inputs []*samples.Batch) error {
 	feeds := e.model.Inputs()
 	if len(inputs) != len(feeds) {
@@ -283,6 +286,16 @@ func (e *Explainer) headFor(i int) (gradattr.Model, error) {
 	ts := make([]*onnxlite.Tensor, len(feeds))
 	for k, b := range e.held {
 		if b == nil || feeds[k].Name == e.input.Name {
+			continue
+		}
+		if e.model.CompileTimeInput(feeds[k].Name) {
+			// A parameter of the graph (a target shape): the whole file,
+			// the same for every sample.
+			t, err := b.ToTensor(samples.SpecOf(feeds[k]))
+			if err != nil {
+				return nil, fmt.Errorf("input %q: %w", feeds[k].Name, err)
+			}
+			ts[k] = t
 			continue
 		}
 		j := i
@@ -477,7 +490,7 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 		return nil, err
 	}
 	for k, h := range e.held {
-		if h != nil && h.Samples != 1 && h.Samples != b.Samples {
+		if h != nil && h.Samples != 1 && h.Samples != b.Samples && !e.model.CompileTimeInput(e.model.Inputs()[k].Name) {
 			return nil, fmt.Errorf("input %q: %d samples, expected one or as many as the %d of %s", e.model.Inputs()[k].Name, h.Samples, b.Samples, b.Name)
 		}
 	}
@@ -498,6 +511,10 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 			ex.Err = samples.CheckFinite(x)
 		case err != nil:
 			ex.Err = err
+		case e.settings.Target >= head.OutputSize() && head.OutputSize() > 0:
+			// Known only now that the sample's other inputs are held.
+			n := head.OutputSize()
+			ex.Err = fieldError(FieldTarget, fmt.Sprintf(" must be top or an index from 0 to %d (output %q has %d values with this sample's inputs), got %d", n-1, e.output, n, e.settings.Target))
 		default:
 			var at []float64
 			ex.Result, at, ex.BaselineOutputs, ex.Err = e.attribute(ctx, head, x, o)

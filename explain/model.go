@@ -110,6 +110,14 @@ func (m *Model) Inputs() []*onnxlite.ValueInfo {
 	return out
 }
 
+// CompileTimeInput reports whether the graph input called name is a
+// parameter of the graph (a target shape, axes, sizes) rather than data:
+// its value is fixed when a program is compiled, the same for every
+// sample.
+func (m *Model) CompileTimeInput(name string) bool {
+	return onnxlite.InputUses(m.Graph)[name].CompileTime()
+}
+
 // Input returns the spec of the runtime input an explanation attributes
 // to: the one InputName names, or the first floating-point input the model
 // computes with (not one it reads only as a parameter, such as Resize's

@@ -9,6 +9,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/internal/heldshape"
 	"github.com/apportion/apportion/nn"
 	"github.com/apportion/apportion/onnxlite"
 )
@@ -20,44 +21,8 @@ import (
 // form y = softmax(relu(x·W + b)); SmoothGrad's gradient sums fall back
 // to point-by-point gradients there and agree with averaging Gradient.
 func TestIntegratedGradientsHeldInputs(t *testing.T) {
-	w := []float64{0.5, -1, 2, 0.25, 1.5, 0.75, -0.5, 1, -2, 0.125, 1, -0.25}
-	bias := []float64{0.1, -0.2, 0.3, -0.4}
-	in := func(name string, dt onnxlite.DataType, dims ...onnxlite.Dim) *onnxlite.ValueInfo {
-		return &onnxlite.ValueInfo{Name: name, Type: &onnxlite.Type{Kind: onnxlite.KindTensor, Elem: dt, HasShape: true, Shape: dims}}
-	}
-	fixed := func(d int64) onnxlite.Dim { return onnxlite.Dim{Value: d, HasValue: true} }
-	m := &onnxlite.Model{IRVersion: 8, Opsets: []onnxlite.OpsetImport{{Version: 13}}, ProducerName: "apportion-test",
-		Graph: &onnxlite.Graph{
-			Name:    "held_shape",
-			Inputs:  []*onnxlite.ValueInfo{in("x", onnxlite.Double, onnxlite.Dim{Param: "N"}, fixed(3)), in("shape", onnxlite.Int64, fixed(2))},
-			Outputs: []*onnxlite.ValueInfo{{Name: "y", Type: &onnxlite.Type{Kind: onnxlite.KindTensor, Elem: onnxlite.Double}}},
-			Initializers: []*onnxlite.Tensor{
-				{Name: "W", DType: onnxlite.Double, Dims: []int64{3, 4}, Data: w},
-				{Name: "b", DType: onnxlite.Double, Dims: []int64{4}, Data: bias},
-			},
-			Nodes: []*onnxlite.Node{
-				{Name: "dense", OpType: "Gemm", Inputs: []string{"x", "W", "b"}, Outputs: []string{"h"}},
-				{Name: "act", OpType: "Relu", Inputs: []string{"h"}, Outputs: []string{"r"}},
-				{Name: "reshape", OpType: "Reshape", Inputs: []string{"r", "shape"}, Outputs: []string{"l"}},
-				{Name: "prob", OpType: "Softmax", Inputs: []string{"l"}, Outputs: []string{"y"}},
-			},
-		}}
-	f := func(x []float64) []float64 {
-		z := make([]float64, 4)
-		total := 0.0
-		for j := range z {
-			h := bias[j]
-			for i := range 3 {
-				h += x[i] * w[i*4+j]
-			}
-			z[j] = math.Exp(max(h, 0))
-			total += z[j]
-		}
-		for j := range z {
-			z[j] /= total
-		}
-		return z
-	}
+	m := heldshape.Model(onnxlite.Double)
+	f := heldshape.F
 	nw, err := nn.Compile(m, nn.Options{DType: nn.Float64})
 	require.NoError(t, err)
 	head, err := nw.Head(nn.Selection{})

@@ -161,7 +161,7 @@ func runExplain(args []string, stdin io.Reader, stdout, stderr io.Writer) int {
 			"(-out a.png: a_0.png, a_1.png, ...).\n\n"+caution, stderr)
 	var c explainConfig
 	fs.StringVar(&c.modelPath, "model", "", "ONNX model `file` (default: the embedded demo model chosen by -demo)")
-	fs.Var(&c.inputs, "input", "samples to explain: a .csv, .json, .npy or .pb `file` (required with -model; default: the demo's own sample); for a model of several inputs, one -input per input, in the model's order")
+	fs.Var(&c.inputs, "input", "samples to explain: a .csv, .json, .npy or .pb `file` (required with -model; default: the demo's own sample); for a model of several inputs, one -input per input, in the model's order (a parameter of the graph, such as a target shape, read whole and shared by every sample)")
 	fs.StringVar(&c.inputName, "input-name", "", "`name` of the model input to attribute to (default the first floating-point input); the other inputs are held at each sample's values")
 	registerPrecisionFlag(fs, &c.precision)
 	registerMethodFlags(fs, explain.DefaultBaselineText,
