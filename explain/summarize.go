@@ -176,6 +176,7 @@ func (e *Explainer) summarizeRows(ctx context.Context, rows []samples.Row,
 			defer wg.Done()
 			for i := range jobs {
 				res, _, _, err := e.attribute(ctx, e.head, rows[i].Values, o)
+				err = UserError(err)
 				results <- outcome{i, res, err}
 			}
 		}()

@@ -142,7 +142,7 @@ func (w *worker) explain(ctx context.Context, r Row, byPredicted bool) explained
 		err = w.empty.Check(r.Key, res.Attributions)
 	}
 	if err != nil {
-		e.Error = err.Error()
+		e.Error = explain.UserError(err).Error()
 		return e
 	}
 	e.Attributions = res.Attributions

@@ -2,6 +2,7 @@ package main
 
 import (
 	"encoding/json"
+	"fmt"
 	"os"
 	"path/filepath"
 	"strconv"
@@ -301,9 +302,20 @@ func TestPredictKeepsRowsTheModelRefuses(t *testing.T) {
 	want := predictJSON(t, "-model", model, "-input", good)
 	assert.Equal(t, values(want.Outputs[0].Data), values(doc.Outputs[0].Data))
 
-	// explain names the same row in the same words and explains the others.
+	// explain names the same row in the same words and explains the others;
+	// summarize skips it, in the same words.
 	code, out, _ = cli(t, "explain", "-model", model, "-input", mixed)
 	assert.Equal(t, exitFail, code)
 	assert.Contains(t, out, "sample 1: error: the model cannot run this input: Gather index 9999")
 	assert.Contains(t, out, "sample 2: target")
+	header := make([]string, 16)
+	for i := range header {
+		header[i] = fmt.Sprintf("t%d", i)
+	}
+	withHeader := filepath.Join(dir, "header.csv")
+	require.NoError(t, os.WriteFile(withHeader, []byte(strings.Join(header, ",")+"\n"+strings.Join([]string{row("5"), row("9999"), row("7")}, "\n")+"\n"), 0o644))
+	code, _, errs = cli(t, "summarize", "-model", model, "-input", withHeader)
+	assert.Equal(t, exitFail, code)
+	assert.Contains(t, errs, "line 3: the model cannot run this input: Gather index 9999")
+	assert.Contains(t, errs, "1 of 3 rows skipped")
 }
