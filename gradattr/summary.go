@@ -822,6 +822,15 @@ func canonicalRaw(raw []byte) ([]byte, error) {
 
 // summaryJSON is the JSON document of a Summary.
 type summaryJSON struct {
+	summaryHead
+	Overall groupJSON   `json:"overall"`
+	Groups  []groupJSON `json:"groups"`
+}
+
+// summaryHead is what a summary's document says before its sums: the
+// options and the ledger (the JSON document's first keys, and the binary
+// form's header).
+type summaryHead struct {
 	Format      string          `json:"format"`
 	Version     int             `json:"version"`
 	Model       string          `json:"model_sha256"`
@@ -837,8 +846,22 @@ type summaryJSON struct {
 	Incomplete  int64           `json:"incomplete_rows"`
 	Skipped     []SkippedRow    `json:"skipped"`
 	Keys        [][2]uint64     `json:"keys"`
-	Overall     groupJSON       `json:"overall"`
-	Groups      []groupJSON     `json:"groups"`
+}
+
+// head returns the summary's head.
+func (s *Summary) head() summaryHead {
+	h := summaryHead{
+		Format: SummaryFormat, Version: SummaryVersion,
+		Model: s.opt.Model, Method: s.opt.Method, Settings: s.settings,
+		Features: s.opt.Features, GroupBy: s.opt.GroupBy,
+		Bootstrap: s.b, Seed: s.opt.Seed, Confidence: SummaryConfidence,
+		Rows: s.all.rows, SkippedRows: s.nskip, Incomplete: s.incomplete, Skipped: s.skipped,
+		Keys: s.keysJSON(),
+	}
+	if h.Skipped == nil {
+		h.Skipped = []SkippedRow{}
+	}
+	return h
 }
 
 // groupJSON is one group: derived statistics, then the exact state.
@@ -879,19 +902,7 @@ type groupState struct {
 // bootstrap_sum per feature and replicate. Equal summaries encode to equal
 // bytes.
 func (s *Summary) MarshalJSON() ([]byte, error) {
-	doc := summaryJSON{
-		Format: SummaryFormat, Version: SummaryVersion,
-		Model: s.opt.Model, Method: s.opt.Method, Settings: s.settings,
-		Features: s.opt.Features, GroupBy: s.opt.GroupBy,
-		Bootstrap: s.b, Seed: s.opt.Seed, Confidence: SummaryConfidence,
-		Rows: s.all.rows, SkippedRows: s.nskip, Incomplete: s.incomplete, Skipped: s.skipped,
-		Keys:    s.keysJSON(),
-		Overall: s.groupJSON("", s.all),
-		Groups:  []groupJSON{},
-	}
-	if doc.Skipped == nil {
-		doc.Skipped = []SkippedRow{}
-	}
+	doc := summaryJSON{summaryHead: s.head(), Overall: s.groupJSON("", s.all), Groups: []groupJSON{}}
 	for _, name := range s.groupNames() {
 		doc.Groups = append(doc.Groups, s.groupJSON(name, s.groups[name]))
 	}

@@ -20,15 +20,17 @@ func init() {
 
 // state is a combine's accumulator: a summary's exact sums, counts and
 // keys, which merge exactly (gradattr.Summary.Merge). Between workers it
-// travels as its JSON document, which keeps every bit of them.
+// travels in the summary's binary form, which keeps every bit of them
+// without the statistics its JSON document derives from them.
 type state struct {
 	s *gradattr.Summary
 }
 
-func encodeState(st state) ([]byte, error) { return st.s.MarshalJSON() }
+func encodeState(st state) ([]byte, error) { return st.s.MarshalBinary() }
 
 func decodeState(raw []byte) (state, error) {
-	s, err := gradattr.DecodeSummary(bytes.NewReader(raw))
+	s := new(gradattr.Summary)
+	err := s.UnmarshalBinary(raw)
 	return state{s}, err
 }
 
