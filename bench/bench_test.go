@@ -117,3 +117,43 @@ func BenchmarkZooParallel(b *testing.B) {
 		}
 	}
 }
+
+// BenchmarkZooGradient times nn.Head.Gradient at batches of 64 and 256 (the
+// passes integrated gradients and SmoothGrad make) on each zoo model, and
+// reports GFLOP/s: 2·MACs of Gemm and Conv from the graph, ×2 for the
+// forward and the input-gradient pass, as bench/compare counts them:
+// go test ./bench -run '^$' -bench ZooGradient -cpu 1
+func BenchmarkZooGradient(b *testing.B) {
+	ctx := context.Background()
+	for _, s := range Zoo {
+		m, err := Build(s)
+		if err != nil {
+			b.Fatal(err)
+		}
+		flops, err := FLOPs(m, s.Input)
+		if err != nil {
+			b.Fatal(err)
+		}
+		h := zooHead(b, s)
+		for _, n := range []int{64, 256} {
+			x := Input(s, n)
+			target := make([]int, n)
+			for i := range target {
+				target[i] = i % s.Outputs
+			}
+			b.Run(fmt.Sprintf("%s/batch%d", s.Name, n), func(b *testing.B) {
+				if _, _, err := h.Gradient(ctx, x, n, target); err != nil {
+					b.Fatal(err)
+				}
+				b.ReportAllocs()
+				b.ResetTimer()
+				for i := 0; i < b.N; i++ {
+					if _, _, err := h.Gradient(ctx, x, n, target); err != nil {
+						b.Fatal(err)
+					}
+				}
+				b.ReportMetric(2*float64(flops)*float64(n)*float64(b.N)/b.Elapsed().Seconds()/1e9, "GFLOP/s")
+			})
+		}
+	}
+}
