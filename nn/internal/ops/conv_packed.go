@@ -38,7 +38,7 @@ type convScratch struct {
 	pad, strip, cs []float32
 	bias           []float32  // bias of every group, each padded to a multiple of sgemmMR
 	padKey         convPadKey // what the zero borders of pad were laid out for
-	tile           [sgemmMR * sgemmNR]float32
+	tile           sconvTile
 }
 
 // scratch takes the op's scratch out of its slot (or makes a new one when

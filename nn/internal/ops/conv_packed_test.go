@@ -612,3 +612,63 @@ func convFastNaN(t *testing.T, rng *rand.Rand, W int) {
 		require.Equal(t, near, math.IsNaN(float64(v)), "input gradient %d", i)
 	}
 }
+
+func TestConvDriverMatchesStripTiles(t *testing.T) {
+	// sconvSample stores, at every output element, the bits f32.Conv6x16
+	// stores for it on its own 16-position strip and 6-row block of weights
+	// (one chain of fused multiply-adds in the order of p, then the bias
+	// with one rounding: the kernels' contract, which the f32 tests check
+	// against math/big), whether the driver runs the strip alone, paired
+	// with its neighbour in a 6×32 tile, or through the edge tile: strip
+	// counts even and odd, output rows whole and not, in both in-place modes.
+	rng := rand.New(rand.NewSource(49))
+	for _, tc := range []struct {
+		g    sconvGeom
+		m    int
+		mode int
+	}{
+		{sconvGeom{c: 3, hp: 34, wp: 34, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 32, ow: 32}, 16, sconvRows},
+		{sconvGeom{c: 2, hp: 7, wp: 18, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 5, ow: 16}, 3, sconvRows},
+		{sconvGeom{c: 4, hp: 11, wp: 50, kh: 3, kw: 3, dh: 1, dw: 2, sh: 2, sw: 1, oh: 3, ow: 48}, 12, sconvRows},
+		{sconvGeom{c: 2, hp: 16, wp: 16, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 14, ow: 14}, 16, sconvGrid},
+		{sconvGeom{c: 3, hp: 9, wp: 13, kh: 3, kw: 2, dh: 1, dw: 1, sh: 1, sw: 1, oh: 7, ow: 12}, 7, sconvGrid},
+	} {
+		t.Run(fmt.Sprintf("%+v_m%d", tc.g, tc.m), func(t *testing.T) {
+			var pl sconvPlan
+			pl.init(tc.g)
+			require.Equal(t, tc.mode, pl.mode)
+			k, m := pl.g.k(), tc.m
+			m6 := (m + sgemmMR - 1) / sgemmMR * sgemmMR
+			xp := convTo32(randomInput(rng, pl.padLen()))
+			wp := make([]float32, sconvPackedLen(m, k))
+			sconvPackWeights(convTo32(randomInput(rng, m*k)), m, k, wp)
+			b := convTo32(randomInput(rng, m6))
+			p := tc.g.oh * tc.g.ow
+			y := make([]float32, m*p)
+			var tile sconvTile
+			sconvSample(&pl, xp, wp, m, b, y, make([]float32, k*sgemmNR), make([]float32, pl.scratchLen(m)), &tile)
+			var want [sgemmMR * sgemmNR]float32
+			for oy := 0; oy < tc.g.oh; oy++ {
+				for ox := 0; ox < tc.g.ow; ox++ {
+					q := oy*tc.g.ow + ox // position in y
+					g := oy*tc.g.wp + ox // position on the padded grid
+					s0, xb := q&^(sgemmNR-1), sconvRowsStart(&pl.g, q&^(sgemmNR-1))
+					if pl.mode == sconvGrid {
+						s0, xb = g&^(sgemmNR-1), g&^(sgemmNR-1)
+					}
+					col := q - s0
+					if pl.mode == sconvGrid {
+						col = g - s0
+					}
+					for ir := 0; ir < m; ir += sgemmMR {
+						f32.Conv6x16(k, &wp[ir*k], &xp[xb], &pl.off[0], &want[0], sgemmNR, &b[ir])
+						for r := 0; r < min(sgemmMR, m-ir); r++ {
+							require.Equal(t, math.Float32bits(want[r*sgemmNR+col]), math.Float32bits(y[(ir+r)*p+q]),
+								"channel %d, output (%d, %d)", ir+r, oy, ox)
+						}
+					}
+				}
+			}
+		})
+	}
+}

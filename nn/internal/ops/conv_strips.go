@@ -8,8 +8,10 @@ import "github.com/apportion/apportion/nn/internal/asm/f32"
 // K = input channels × kernel) strip by strip, sgemmNR output positions at
 // a time. With a unit column stride, row p = (ci, i, j) of a strip is 16
 // contiguous values of the padded image at a fixed offset, so
-// f32.Conv6x16 reads the strip in place through a table of offsets;
-// other strides pack it (sconvPackStrip, the sgemmPackPanelB layout). Every
+// f32.Conv6x16 reads the strip in place through a table of offsets, and
+// f32.Conv6x32 two strips side by side (twice the independent chains of
+// fused multiply-adds, each weight loaded once for both); other strides
+// pack it (sconvPackStrip, the sgemmPackPanelB layout). Every
 // sgemmMR-row strip of the packed weights runs against a strip while it is
 // in L1. The weights are packed once per op instance (they are model
 // constants) in the sgemmPackBlockA layout over the whole K, so each output
@@ -19,7 +21,7 @@ import "github.com/apportion/apportion/nn/internal/asm/f32"
 //
 // Orientation: output channels are the M side. That wastes 2 of 18 kernel
 // rows for 16 channels, but the kernel writes straight into NCHW rows and
-// one strip of 16 positions serves every channel tile while it is in L1.
+// one strip of positions serves every channel tile while it is in L1.
 // The transposed orientation (M = positions, N = channels, a transposed
 // write-back) measured slower on every cnn shape (BenchmarkConvOrientation;
 // the figures are in DEVELOPERS.md).
@@ -143,6 +145,14 @@ const (
 	sconvStrided
 )
 
+// sconvNW is the width of the widest convolution tile, f32.Conv6x32: two
+// strips of sgemmNR output positions.
+const sconvNW = 2 * sgemmNR
+
+// sconvTile is the scratch of one edge tile of the driver, for tiles of
+// sgemmMR rows up to sconvNW wide.
+type sconvTile [sgemmMR * sconvNW]float32
+
 // sconvPlan is the per-geometry state of the driver: the strip mode and the
 // offset of each im2col row p = (ci·kh + i)·kw + j in the padded image,
 // off[p] = ci·hp·wp + i·dh·wp + j·dw.
@@ -221,7 +231,7 @@ func (pl *sconvPlan) scratchLen(m int) int {
 // sconvGrid and the padded image otherwise; strip is scratch of k·sgemmNR
 // elements (used by sconvStrided), cs of pl.scratchLen(m), and tile one
 // edge tile, kept by the caller from call to call.
-func sconvSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip, cs []float32, tile *[sgemmMR * sgemmNR]float32) {
+func sconvSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip, cs []float32, tile *sconvTile) {
 	g := &pl.g
 	k := g.k()
 	strip = strip[:k*sgemmNR]
@@ -239,37 +249,56 @@ func sconvSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip, cs []float
 }
 
 // sconvRowsSample is sconvSample for sconvRows: the kernel reads each strip
-// in place and stores whole tiles straight into y, edge tiles (the last
-// rows when m is not a multiple of sgemmMR) through tile.
-func sconvRowsSample(pl *sconvPlan, xp, wp []float32, m int, b, y []float32, tile *[sgemmMR * sgemmNR]float32) {
+// in place and stores whole tiles straight into y, two strips at a time
+// (f32.Conv6x32; the last one alone when the count is odd), edge tiles (the
+// last rows when m is not a multiple of sgemmMR) through tile.
+func sconvRowsSample(pl *sconvPlan, xp, wp []float32, m int, b, y []float32, tile *sconvTile) {
 	g := &pl.g
 	k := g.k()
 	p := g.oh * g.ow
-	for q0 := 0; q0 < p; q0 += sgemmNR {
-		oy, ox := q0/g.ow, q0%g.ow
-		xb := &xp[oy*g.sh*g.wp+ox]
+	for q0 := 0; q0 < p; q0 += sconvNW {
+		nw := min(sconvNW, p-q0)
+		xb0 := &xp[sconvRowsStart(g, q0)]
+		xb1 := xb0
+		if nw == sconvNW {
+			xb1 = &xp[sconvRowsStart(g, q0+sgemmNR)]
+		}
 		for ir := 0; ir < m; ir += sgemmMR {
 			var bp *float32
 			if b != nil {
 				bp = &b[ir]
 			}
-			if ir+sgemmMR <= m {
-				f32.Conv6x16(k, &wp[ir*k], xb, &pl.off[0], &y[ir*p+q0], p, bp)
-				continue
+			c, ldc := &y[ir*p+q0], p
+			if ir+sgemmMR > m {
+				c, ldc = &tile[0], nw
 			}
-			f32.Conv6x16(k, &wp[ir*k], xb, &pl.off[0], &tile[0], sgemmNR, bp)
-			for r := 0; r < m-ir; r++ {
-				copy(y[(ir+r)*p+q0:(ir+r)*p+q0+sgemmNR], tile[r*sgemmNR:(r+1)*sgemmNR])
+			if nw == sconvNW {
+				f32.Conv6x32(k, &wp[ir*k], xb0, xb1, &pl.off[0], c, ldc, bp)
+			} else {
+				f32.Conv6x16(k, &wp[ir*k], xb0, &pl.off[0], c, ldc, bp)
+			}
+			if ir+sgemmMR > m {
+				for r := 0; r < m-ir; r++ {
+					copy(y[(ir+r)*p+q0:(ir+r)*p+q0+nw], tile[r*nw:(r+1)*nw])
+				}
 			}
 		}
 	}
+}
+
+// sconvRowsStart returns where, in the padded image, the strip of output
+// positions q0..q0+sgemmNR−1 (one output row, sconvRows) reads its first
+// im2col row.
+func sconvRowsStart(g *sconvGeom, q0 int) int {
+	oy, ox := q0/g.ow, q0%g.ow
+	return oy*g.sh*g.wp + ox
 }
 
 // sconvStridedSample is sconvSample for sconvStrided: each strip is packed
 // by sconvPackStrip and multiplied by f32.Gemm6x16, with the bias loaded into
 // the tile and added by the beta = 1 store (the rounding of
 // f32.Conv6x16's bias).
-func sconvStridedSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip []float32, tile *[sgemmMR * sgemmNR]float32) {
+func sconvStridedSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip []float32, tile *sconvTile) {
 	g := &pl.g
 	k := g.k()
 	p := g.oh * g.ow
@@ -300,20 +329,25 @@ func sconvStridedSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip []fl
 }
 
 // sconvGridSample is sconvSample for sconvGrid: the kernel writes whole
-// tiles, bias included, of the scratch matrix cs (rows rounded up to
-// sgemmMR, pq grid positions), and the valid positions are copied to y.
+// tiles, bias included, two strips at a time as in sconvRowsSample, of the
+// scratch matrix cs (rows rounded up to sgemmMR, pq grid positions), and
+// the valid positions are copied to y.
 func sconvGridSample(pl *sconvPlan, xp, wp []float32, m int, b, y, cs []float32) {
 	g := &pl.g
 	k := g.k()
 	pq := pl.pq
 	cs = cs[:pl.scratchLen(m)]
-	for q0 := 0; q0 < pq; q0 += sgemmNR {
+	for q0 := 0; q0 < pq; q0 += sconvNW {
 		for ir := 0; ir < m; ir += sgemmMR {
 			var bp *float32
 			if b != nil {
 				bp = &b[ir]
 			}
-			f32.Conv6x16(k, &wp[ir*k], &xp[q0], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+			if q0+sconvNW <= pq {
+				f32.Conv6x32(k, &wp[ir*k], &xp[q0], &xp[q0+sgemmNR], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+			} else {
+				f32.Conv6x16(k, &wp[ir*k], &xp[q0], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+			}
 		}
 	}
 	p := g.oh * g.ow

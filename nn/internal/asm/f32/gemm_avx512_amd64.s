@@ -8,6 +8,15 @@
 // of fused multiply-adds of gemm6x16Asm, in the same order, so the two
 // store the same bits.
 
+// ZEROZ6 clears the 6×16 tile, Z0..Z5; ZEROZ12 the 6×32 tile, Z0..Z11.
+#define ZEROZ6 \
+	VPXORD Z0, Z0, Z0; VPXORD Z1, Z1, Z1; VPXORD Z2, Z2, Z2; \
+	VPXORD Z3, Z3, Z3; VPXORD Z4, Z4, Z4; VPXORD Z5, Z5, Z5
+#define ZEROZ12 \
+	ZEROZ6; \
+	VPXORD Z6, Z6, Z6; VPXORD Z7, Z7, Z7; VPXORD Z8, Z8, Z8; \
+	VPXORD Z9, Z9, Z9; VPXORD Z10, Z10, Z10; VPXORD Z11, Z11, Z11
+
 // FMAZ6x16 adds the outer product of one 16-float row of B and one 6-float
 // column of A (a0..a5) to the tile, one fused multiply-add per element.
 #define FMAZ6x16(b, a0, a1, a2, a3, a4, a5) \
@@ -56,12 +65,7 @@ TEXT ·gemm6x16Avx512(SB), NOSPLIT, $0-48
 	MOVQ c+24(FP), DX
 	MOVQ ldc+32(FP), R8
 	SHLQ $2, R8
-	VPXORD Z0, Z0, Z0
-	VPXORD Z1, Z1, Z1
-	VPXORD Z2, Z2, Z2
-	VPXORD Z3, Z3, Z3
-	VPXORD Z4, Z4, Z4
-	VPXORD Z5, Z5, Z5
+	ZEROZ6
 	MOVQ CX, BX
 	ANDQ $3, BX
 	SHRQ $2, CX
@@ -108,12 +112,7 @@ TEXT ·gemm6x16StridedAvx512(SB), NOSPLIT, $0-64
 	MOVQ c+40(FP), DX
 	MOVQ ldc+48(FP), R8
 	SHLQ $2, R8
-	VPXORD Z0, Z0, Z0
-	VPXORD Z1, Z1, Z1
-	VPXORD Z2, Z2, Z2
-	VPXORD Z3, Z3, Z3
-	VPXORD Z4, Z4, Z4
-	VPXORD Z5, Z5, Z5
+	ZEROZ6
 	MOVQ CX, BX
 	ANDQ $3, BX
 	SHRQ $2, CX
@@ -159,12 +158,7 @@ TEXT ·conv6x16Avx512(SB), NOSPLIT, $0-56
 	MOVQ c+32(FP), DX
 	MOVQ ldc+40(FP), R8
 	SHLQ $2, R8
-	VPXORD Z0, Z0, Z0
-	VPXORD Z1, Z1, Z1
-	VPXORD Z2, Z2, Z2
-	VPXORD Z3, Z3, Z3
-	VPXORD Z4, Z4, Z4
-	VPXORD Z5, Z5, Z5
+	ZEROZ6
 	MOVQ CX, BX
 	ANDQ $3, BX
 	SHRQ $2, CX
@@ -219,5 +213,113 @@ knobias:
 	VMOVUPS Z4, (DX)
 	ADDQ R8, DX
 	VMOVUPS Z5, (DX)
+	VZEROUPPER
+	RET
+
+// The 6×32 convolution tile: row r of the tile lives in Z(2r) (columns
+// 0..15, from b0) and Z(2r+1) (columns 16..31, from b1), twelve independent
+// chains; the two halves of a row of B in Z12, Z13; each element of A is
+// broadcast once into Z14 or Z15 and used by two fused multiply-adds. Each
+// element is the chain of conv6x16Avx512, in the same order.
+
+// FMAZ6x32 adds the outer product of one row of B (halves at bl and bh)
+// and one 6-float column of A (a0..a5) to the 6×32 tile.
+#define FMAZ6x32(bl, bh, a0, a1, a2, a3, a4, a5) \
+	VMOVUPS bl, Z12; VMOVUPS bh, Z13; \
+	VBROADCASTSS a0, Z14; VFMADD231PS Z12, Z14, Z0; VFMADD231PS Z13, Z14, Z1; \
+	VBROADCASTSS a1, Z15; VFMADD231PS Z12, Z15, Z2; VFMADD231PS Z13, Z15, Z3; \
+	VBROADCASTSS a2, Z14; VFMADD231PS Z12, Z14, Z4; VFMADD231PS Z13, Z14, Z5; \
+	VBROADCASTSS a3, Z15; VFMADD231PS Z12, Z15, Z6; VFMADD231PS Z13, Z15, Z7; \
+	VBROADCASTSS a4, Z14; VFMADD231PS Z12, Z14, Z8; VFMADD231PS Z13, Z14, Z9; \
+	VBROADCASTSS a5, Z15; VFMADD231PS Z12, Z15, Z10; VFMADD231PS Z13, Z15, Z11
+
+// func conv6x32Avx512(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32)
+//
+// Row p of B is read in place: its left half at b0[off[p]], its right half
+// at b1[off[p]]. It stores c[r·ldc+j], j < 32, = T[r][j] + bias[r] (one
+// rounding) or T[r][j] when bias is nil, as conv6x16Avx512 does; c is
+// never read.
+TEXT ·conv6x32Avx512(SB), NOSPLIT, $0-64
+	MOVQ kc+0(FP), CX
+	MOVQ a+8(FP), SI
+	MOVQ b0+16(FP), DI
+	MOVQ b1+24(FP), R10
+	MOVQ off+32(FP), R9
+	MOVQ c+40(FP), DX
+	MOVQ ldc+48(FP), R8
+	SHLQ $2, R8
+	ZEROZ12
+	MOVQ CX, BX
+	ANDQ $3, BX
+	SHRQ $2, CX
+	JZ wtail
+
+wloop4:
+	MOVLQSX 0(R9), AX
+	FMAZ6x32((DI)(AX*4), (R10)(AX*4), 0(SI), 4(SI), 8(SI), 12(SI), 16(SI), 20(SI))
+	MOVLQSX 4(R9), AX
+	FMAZ6x32((DI)(AX*4), (R10)(AX*4), 24(SI), 28(SI), 32(SI), 36(SI), 40(SI), 44(SI))
+	MOVLQSX 8(R9), AX
+	FMAZ6x32((DI)(AX*4), (R10)(AX*4), 48(SI), 52(SI), 56(SI), 60(SI), 64(SI), 68(SI))
+	MOVLQSX 12(R9), AX
+	FMAZ6x32((DI)(AX*4), (R10)(AX*4), 72(SI), 76(SI), 80(SI), 84(SI), 88(SI), 92(SI))
+	ADDQ $96, SI
+	ADDQ $16, R9
+	DECQ CX
+	JNZ wloop4
+
+wtail:
+	TESTQ BX, BX
+	JZ wstore
+
+wloop1:
+	MOVLQSX 0(R9), AX
+	FMAZ6x32((DI)(AX*4), (R10)(AX*4), 0(SI), 4(SI), 8(SI), 12(SI), 16(SI), 20(SI))
+	ADDQ $24, SI
+	ADDQ $4, R9
+	DECQ BX
+	JNZ wloop1
+
+wstore:
+	MOVQ bias+56(FP), BX
+	TESTQ BX, BX
+	JEQ wnobias
+	VBROADCASTSS 0(BX), Z14
+	VADDPS Z14, Z0, Z0
+	VADDPS Z14, Z1, Z1
+	VBROADCASTSS 4(BX), Z15
+	VADDPS Z15, Z2, Z2
+	VADDPS Z15, Z3, Z3
+	VBROADCASTSS 8(BX), Z14
+	VADDPS Z14, Z4, Z4
+	VADDPS Z14, Z5, Z5
+	VBROADCASTSS 12(BX), Z15
+	VADDPS Z15, Z6, Z6
+	VADDPS Z15, Z7, Z7
+	VBROADCASTSS 16(BX), Z14
+	VADDPS Z14, Z8, Z8
+	VADDPS Z14, Z9, Z9
+	VBROADCASTSS 20(BX), Z15
+	VADDPS Z15, Z10, Z10
+	VADDPS Z15, Z11, Z11
+
+wnobias:
+	VMOVUPS Z0, (DX)
+	VMOVUPS Z1, 64(DX)
+	ADDQ R8, DX
+	VMOVUPS Z2, (DX)
+	VMOVUPS Z3, 64(DX)
+	ADDQ R8, DX
+	VMOVUPS Z4, (DX)
+	VMOVUPS Z5, 64(DX)
+	ADDQ R8, DX
+	VMOVUPS Z6, (DX)
+	VMOVUPS Z7, 64(DX)
+	ADDQ R8, DX
+	VMOVUPS Z8, (DX)
+	VMOVUPS Z9, 64(DX)
+	ADDQ R8, DX
+	VMOVUPS Z10, (DX)
+	VMOVUPS Z11, 64(DX)
 	VZEROUPPER
 	RET

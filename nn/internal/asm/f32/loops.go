@@ -157,6 +157,11 @@ func conv6x16(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *floa
 	store6x16(&t, 6, c, ldc, 1, 0)
 }
 
+func conv6x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	conv6x16(kc, a, b0, off, c, ldc, bias)
+	conv6x16(kc, a, b1, off, (*float32)(unsafe.Add(unsafe.Pointer(c), 16*4)), ldc, bias)
+}
+
 func transpose8x8(src *float32, lds int, dst *float32, ldd int) {
 	s := unsafe.Slice(src, 7*lds+8)
 	d := unsafe.Slice(dst, 7*ldd+8)

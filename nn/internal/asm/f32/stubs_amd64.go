@@ -2,7 +2,11 @@
 
 package f32
 
-import "golang.org/x/sys/cpu"
+import (
+	"unsafe"
+
+	"golang.org/x/sys/cpu"
+)
 
 // useAsm reports whether the CPU runs the assembly kernels, which need AVX2
 // and FMA. It is the only place the package reads CPU features.
@@ -83,6 +87,23 @@ func Conv6x16(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *floa
 		return
 	}
 	conv6x16(kc, a, b, off, c, ldc, bias)
+}
+
+// Conv6x32 is Conv6x16 on two strips of B side by side: it stores the 6×32
+// tile whose columns j < 16 are Conv6x16 with B at b0 and whose columns
+// j ≥ 16 are Conv6x16 with B at b1 (the same offsets), each element the
+// same chain and store, so the bits of two Conv6x16 calls.
+func Conv6x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	if useAVX512 {
+		conv6x32Avx512(kc, a, b0, b1, off, c, ldc, bias)
+		return
+	}
+	if useAsm {
+		conv6x16Asm(kc, a, b0, off, c, ldc, bias)
+		conv6x16Asm(kc, a, b1, off, (*float32)(unsafe.Add(unsafe.Pointer(c), 16*4)), ldc, bias)
+		return
+	}
+	conv6x32(kc, a, b0, b1, off, c, ldc, bias)
 }
 
 // Transpose8x8 stores the transpose of the 8×8 block src[r·lds+c] at
@@ -342,3 +363,26 @@ func gemm6x16StridedAvx512(kc int, a *float32, rs, ps int, b, c *float32, ldc in
 //
 //go:noescape
 func conv6x16Avx512(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *float32)
+
+// conv6x32Avx512 is, on AVX-512 (the tile in twelve ZMM registers, two
+// per row, so twelve independent chains keep both FMA units busy),
+//
+//	for r := 0; r < 6; r++ {
+//		for j := 0; j < 32; j++ {
+//			b, jb := b0, j
+//			if j >= 16 {
+//				b, jb = b1, j-16
+//			}
+//			var t float32
+//			for p := 0; p < kc; p++ {
+//				t = fma(a[6*p+r], b[off[p]+jb], t)
+//			}
+//			if bias != nil {
+//				t += bias[r]
+//			}
+//			c[r*ldc+j] = t
+//		}
+//	}
+//
+//go:noescape
+func conv6x32Avx512(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32)

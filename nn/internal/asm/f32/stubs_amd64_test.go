@@ -154,3 +154,55 @@ func convForms() []convForm {
 	}
 	return forms
 }
+
+// wideConvForm is one implementation of the 6×32 convolution tile.
+type wideConvForm struct {
+	name string
+	fn   func(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32)
+}
+
+// wideConvForms are the 6×32 tile's dispatch and its AVX-512 form, called
+// directly whichever one Conv6x32 picks.
+func wideConvForms() []wideConvForm {
+	forms := []wideConvForm{{"Conv6x32", Conv6x32}}
+	if useAVX512 {
+		forms = append(forms, wideConvForm{"AVX-512", conv6x32Avx512})
+	}
+	return forms
+}
+
+// BenchmarkConvTileForms times 32 output positions of the convolution tile
+// on AVX-512, as two 6×16 tiles and as one 6×32 tile, B read through the
+// offsets of a 3×3 kernel over a 34-wide padded image that stays in L1, at
+// the k depths of the cnn models (3, 16 and 32 input channels).
+func BenchmarkConvTileForms(b *testing.B) {
+	if !useAVX512 {
+		b.Skip("no AVX-512 on this CPU")
+	}
+	rng := rand.New(rand.NewPCG(13, 14))
+	const wp, hp = 34, 3
+	for _, c := range []int{3, 16, 32} {
+		kc := 9 * c
+		a := randFloats(rng, 6*kc)
+		x := randFloats(rng, c*hp*wp+wp)
+		off := make([]int32, 0, kc)
+		for ci := 0; ci < c; ci++ {
+			for i := 0; i < 3; i++ {
+				for j := 0; j < 3; j++ {
+					off = append(off, int32(ci*hp*wp+i*wp+j))
+				}
+			}
+		}
+		var t [6 * 32]float32
+		flops := 2 * float64(6*32*kc)
+		b.Run(fmt.Sprintf("kc=%d/6x16", kc), func(b *testing.B) {
+			cpupeak.Bench(b, flops, func() {
+				conv6x16Avx512(kc, &a[0], &x[0], &off[0], &t[0], 32, nil)
+				conv6x16Avx512(kc, &a[0], &x[16], &off[0], &t[16], 32, nil)
+			})
+		})
+		b.Run(fmt.Sprintf("kc=%d/6x32", kc), func(b *testing.B) {
+			cpupeak.Bench(b, flops, func() { conv6x32Avx512(kc, &a[0], &x[0], &x[16], &off[0], &t[0], 32, nil) })
+		})
+	}
+}

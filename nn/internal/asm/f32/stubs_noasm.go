@@ -45,6 +45,14 @@ func Conv6x16(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *floa
 	conv6x16(kc, a, b, off, c, ldc, bias)
 }
 
+// Conv6x32 is Conv6x16 on two strips of B side by side: it stores the 6×32
+// tile whose columns j < 16 are Conv6x16 with B at b0 and whose columns
+// j ≥ 16 are Conv6x16 with B at b1 (the same offsets), each element the
+// same chain and store, so the bits of two Conv6x16 calls.
+func Conv6x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	conv6x32(kc, a, b0, b1, off, c, ldc, bias)
+}
+
 // Transpose8x8 stores the transpose of the 8×8 block src[r·lds+c] at
 // dst[c·ldd+r].
 func Transpose8x8(src *float32, lds int, dst *float32, ldd int) { transpose8x8(src, lds, dst, ldd) }

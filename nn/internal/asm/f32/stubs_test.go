@@ -24,6 +24,17 @@ func randFloats(rng *rand.Rand, n int) []float32 {
 	return s
 }
 
+// nanFloats returns n quiet NaNs: a kernel that reads them as old
+// contents, or a check that finds one where a kernel should have stored,
+// sees it (IEEE 754 propagates NaN).
+func nanFloats(n int) []float32 {
+	s := make([]float32, n)
+	for i := range s {
+		s[i] = float32(math.NaN())
+	}
+	return s
+}
+
 func requireBits(t *testing.T, want, got []float32, format string, args ...any) {
 	t.Helper()
 	for i := range want {
@@ -259,18 +270,41 @@ func TestConv6x16MatchesLoop(t *testing.T) {
 		bias := randFloats(rng, 6)
 		for _, bp := range []*float32{nil, &bias[0]} {
 			const ldc = 20
-			want := make([]float32, 6*ldc)
-			for i := range want {
-				want[i] = float32(math.NaN())
-			}
+			want := nanFloats(6 * ldc)
 			conv6x16(kc, &a[0], &b[0], &off[0], &want[0], ldc, bp)
 			for _, f := range convForms() {
-				got := make([]float32, 6*ldc)
-				for i := range got {
-					got[i] = float32(math.NaN())
-				}
+				got := nanFloats(6 * ldc)
 				f.fn(kc, &a[0], &b[0], &off[0], &got[0], ldc, bp)
 				requireBits(t, want, got, "%s kc=%d bias=%t", f.name, kc, bp != nil)
+			}
+		}
+	}
+}
+
+func TestConv6x32MatchesLoop(t *testing.T) {
+	// Conv6x32 and its AVX-512 form against two calls of the 6×16 loop
+	// (conv6x32), B's halves at two bases that overlap or lie apart, with
+	// and without the bias, at k depths with every remainder of the
+	// four-deep unrolling; c past the 32 columns is never written.
+	rng := rand.New(rand.NewPCG(9, 10))
+	for _, kc := range []int{1, 2, 3, 4, 5, 6, 7, 27, 144, 288} {
+		a := randFloats(rng, 6*kc)
+		b := randFloats(rng, 600)
+		off := make([]int32, kc)
+		for p := range off {
+			off[p] = int32(rng.IntN(400 - 16))
+		}
+		bias := randFloats(rng, 6)
+		for _, b1 := range []int{16, 5, 183} {
+			for _, bp := range []*float32{nil, &bias[0]} {
+				const ldc = 37
+				want := nanFloats(6 * ldc)
+				conv6x32(kc, &a[0], &b[0], &b[b1], &off[0], &want[0], ldc, bp)
+				for _, f := range wideConvForms() {
+					got := nanFloats(6 * ldc)
+					f.fn(kc, &a[0], &b[0], &b[b1], &off[0], &got[0], ldc, bp)
+					requireBits(t, want, got, "%s kc=%d b1=%d bias=%t", f.name, kc, b1, bp != nil)
+				}
 			}
 		}
 	}
