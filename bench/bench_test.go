@@ -6,6 +6,7 @@ import (
 	"testing"
 
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/internal/cpupeak"
 	"github.com/apportion/apportion/nn"
 )
 
@@ -120,8 +121,10 @@ func BenchmarkZooParallel(b *testing.B) {
 
 // BenchmarkZooGradient times nn.Head.Gradient at batches of 64 and 256 (the
 // passes integrated gradients and SmoothGrad make) on each zoo model, and
-// reports GFLOP/s: 2·MACs of Gemm and Conv from the graph, ×2 for the
-// forward and the input-gradient pass, as bench/compare counts them:
+// reports GFLOP/s of wall-clock and of thread CPU time (cpupeak.Bench; the
+// call runs on the benchmark's goroutine): 2·MACs of Gemm and Conv from the
+// graph, ×2 for the forward and the input-gradient pass, as bench/compare
+// counts them:
 // go test ./bench -run '^$' -bench ZooGradient -cpu 1
 func BenchmarkZooGradient(b *testing.B) {
 	ctx := context.Background()
@@ -146,13 +149,11 @@ func BenchmarkZooGradient(b *testing.B) {
 					b.Fatal(err)
 				}
 				b.ReportAllocs()
-				b.ResetTimer()
-				for i := 0; i < b.N; i++ {
+				cpupeak.Bench(b, 2*float64(flops)*float64(n), func() {
 					if _, _, err := h.Gradient(ctx, x, n, target); err != nil {
 						b.Fatal(err)
 					}
-				}
-				b.ReportMetric(2*float64(flops)*float64(n)*float64(b.N)/b.Elapsed().Seconds()/1e9, "GFLOP/s")
+				})
 			})
 		}
 	}

@@ -250,8 +250,9 @@ func sconvSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip, cs []float
 
 // sconvRowsSample is sconvSample for sconvRows: the kernel reads each strip
 // in place and stores whole tiles straight into y, two strips at a time
-// (f32.Conv6x32; the last one alone when the count is odd), edge tiles (the
-// last rows when m is not a multiple of sgemmMR) through tile.
+// (f32.Conv6x32; the last one alone when the count is odd), the last rows
+// of a pair by f32.Conv4x32 when at most four are left, and edge tiles
+// (fewer rows left than the kernel stores) through tile.
 func sconvRowsSample(pl *sconvPlan, xp, wp []float32, m int, b, y []float32, tile *sconvTile) {
 	g := &pl.g
 	k := g.k()
@@ -268,22 +269,37 @@ func sconvRowsSample(pl *sconvPlan, xp, wp []float32, m int, b, y []float32, til
 			if b != nil {
 				bp = &b[ir]
 			}
+			mr, rows := min(sgemmMR, m-ir), sconvTileRows(nw, m-ir)
 			c, ldc := &y[ir*p+q0], p
-			if ir+sgemmMR > m {
+			if mr < rows {
 				c, ldc = &tile[0], nw
 			}
-			if nw == sconvNW {
-				f32.Conv6x32(k, &wp[ir*k], xb0, xb1, &pl.off[0], c, ldc, bp)
-			} else {
+			switch {
+			case nw < sconvNW:
 				f32.Conv6x16(k, &wp[ir*k], xb0, &pl.off[0], c, ldc, bp)
+			case rows < sgemmMR:
+				f32.Conv4x32(k, &wp[ir*k], xb0, xb1, &pl.off[0], c, ldc, bp)
+			default:
+				f32.Conv6x32(k, &wp[ir*k], xb0, xb1, &pl.off[0], c, ldc, bp)
 			}
-			if ir+sgemmMR > m {
-				for r := 0; r < m-ir; r++ {
+			if mr < rows {
+				for r := 0; r < mr; r++ {
 					copy(y[(ir+r)*p+q0:(ir+r)*p+q0+nw], tile[r*nw:(r+1)*nw])
 				}
 			}
 		}
 	}
+}
+
+// sconvTileRows returns how many rows the tile kernel for a block of nw
+// output positions and left ≥ 1 output rows stores: 4 (f32.Conv4x32) for
+// the last rows of a 32-wide block when at most 4 are left, otherwise
+// sgemmMR.
+func sconvTileRows(nw, left int) int {
+	if nw == sconvNW && left <= 4 {
+		return 4
+	}
+	return sgemmMR
 }
 
 // sconvRowsStart returns where, in the padded image, the strip of output
@@ -343,10 +359,14 @@ func sconvGridSample(pl *sconvPlan, xp, wp []float32, m int, b, y, cs []float32)
 			if b != nil {
 				bp = &b[ir]
 			}
-			if q0+sconvNW <= pq {
-				f32.Conv6x32(k, &wp[ir*k], &xp[q0], &xp[q0+sgemmNR], &pl.off[0], &cs[ir*pq+q0], pq, bp)
-			} else {
+			nw := min(sconvNW, pq-q0)
+			switch {
+			case nw < sconvNW:
 				f32.Conv6x16(k, &wp[ir*k], &xp[q0], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+			case sconvTileRows(nw, m-ir) < sgemmMR:
+				f32.Conv4x32(k, &wp[ir*k], &xp[q0], &xp[q0+sgemmNR], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+			default:
+				f32.Conv6x32(k, &wp[ir*k], &xp[q0], &xp[q0+sgemmNR], &pl.off[0], &cs[ir*pq+q0], pq, bp)
 			}
 		}
 	}

@@ -222,6 +222,13 @@ knobias:
 // broadcast once into Z14 or Z15 and used by two fused multiply-adds. Each
 // element is the chain of conv6x16Avx512, in the same order.
 
+// BIASZ32 adds bias[off/4] (BX points at the bias), broadcast in tmp, to
+// the tile row r0, r1; STOREZ32 stores the row at DX.
+#define BIASZ32(off, tmp, r0, r1) \
+	VBROADCASTSS off(BX), tmp; VADDPS tmp, r0, r0; VADDPS tmp, r1, r1
+#define STOREZ32(r0, r1) \
+	VMOVUPS r0, (DX); VMOVUPS r1, 64(DX)
+
 // FMAZ6x32 adds the outer product of one row of B (halves at bl and bh)
 // and one 6-float column of A (a0..a5) to the 6×32 tile.
 #define FMAZ6x32(bl, bh, a0, a1, a2, a3, a4, a5) \
@@ -284,42 +291,99 @@ wstore:
 	MOVQ bias+56(FP), BX
 	TESTQ BX, BX
 	JEQ wnobias
-	VBROADCASTSS 0(BX), Z14
-	VADDPS Z14, Z0, Z0
-	VADDPS Z14, Z1, Z1
-	VBROADCASTSS 4(BX), Z15
-	VADDPS Z15, Z2, Z2
-	VADDPS Z15, Z3, Z3
-	VBROADCASTSS 8(BX), Z14
-	VADDPS Z14, Z4, Z4
-	VADDPS Z14, Z5, Z5
-	VBROADCASTSS 12(BX), Z15
-	VADDPS Z15, Z6, Z6
-	VADDPS Z15, Z7, Z7
-	VBROADCASTSS 16(BX), Z14
-	VADDPS Z14, Z8, Z8
-	VADDPS Z14, Z9, Z9
-	VBROADCASTSS 20(BX), Z15
-	VADDPS Z15, Z10, Z10
-	VADDPS Z15, Z11, Z11
+	BIASZ32(0, Z14, Z0, Z1)
+	BIASZ32(4, Z15, Z2, Z3)
+	BIASZ32(8, Z14, Z4, Z5)
+	BIASZ32(12, Z15, Z6, Z7)
+	BIASZ32(16, Z14, Z8, Z9)
+	BIASZ32(20, Z15, Z10, Z11)
 
 wnobias:
-	VMOVUPS Z0, (DX)
-	VMOVUPS Z1, 64(DX)
+	STOREZ32(Z0, Z1)
 	ADDQ R8, DX
-	VMOVUPS Z2, (DX)
-	VMOVUPS Z3, 64(DX)
+	STOREZ32(Z2, Z3)
 	ADDQ R8, DX
-	VMOVUPS Z4, (DX)
-	VMOVUPS Z5, 64(DX)
+	STOREZ32(Z4, Z5)
 	ADDQ R8, DX
-	VMOVUPS Z6, (DX)
-	VMOVUPS Z7, 64(DX)
+	STOREZ32(Z6, Z7)
 	ADDQ R8, DX
-	VMOVUPS Z8, (DX)
-	VMOVUPS Z9, 64(DX)
+	STOREZ32(Z8, Z9)
 	ADDQ R8, DX
-	VMOVUPS Z10, (DX)
-	VMOVUPS Z11, 64(DX)
+	STOREZ32(Z10, Z11)
+	VZEROUPPER
+	RET
+
+// FMAZ4x32 is FMAZ6x32 for rows 0..3 of the tile (a0..a3).
+#define FMAZ4x32(bl, bh, a0, a1, a2, a3) \
+	VMOVUPS bl, Z12; VMOVUPS bh, Z13; \
+	VBROADCASTSS a0, Z14; VFMADD231PS Z12, Z14, Z0; VFMADD231PS Z13, Z14, Z1; \
+	VBROADCASTSS a1, Z15; VFMADD231PS Z12, Z15, Z2; VFMADD231PS Z13, Z15, Z3; \
+	VBROADCASTSS a2, Z14; VFMADD231PS Z12, Z14, Z4; VFMADD231PS Z13, Z14, Z5; \
+	VBROADCASTSS a3, Z15; VFMADD231PS Z12, Z15, Z6; VFMADD231PS Z13, Z15, Z7
+
+// func conv4x32Avx512(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32)
+//
+// conv6x32Avx512 for rows 0..3: the same reads of B, A's columns still six
+// floats apart, the same chains and store.
+TEXT ·conv4x32Avx512(SB), NOSPLIT, $0-64
+	MOVQ kc+0(FP), CX
+	MOVQ a+8(FP), SI
+	MOVQ b0+16(FP), DI
+	MOVQ b1+24(FP), R10
+	MOVQ off+32(FP), R9
+	MOVQ c+40(FP), DX
+	MOVQ ldc+48(FP), R8
+	SHLQ $2, R8
+	ZEROZ6
+	VPXORD Z6, Z6, Z6
+	VPXORD Z7, Z7, Z7
+	MOVQ CX, BX
+	ANDQ $3, BX
+	SHRQ $2, CX
+	JZ qtail
+
+qloop4:
+	MOVLQSX 0(R9), AX
+	FMAZ4x32((DI)(AX*4), (R10)(AX*4), 0(SI), 4(SI), 8(SI), 12(SI))
+	MOVLQSX 4(R9), AX
+	FMAZ4x32((DI)(AX*4), (R10)(AX*4), 24(SI), 28(SI), 32(SI), 36(SI))
+	MOVLQSX 8(R9), AX
+	FMAZ4x32((DI)(AX*4), (R10)(AX*4), 48(SI), 52(SI), 56(SI), 60(SI))
+	MOVLQSX 12(R9), AX
+	FMAZ4x32((DI)(AX*4), (R10)(AX*4), 72(SI), 76(SI), 80(SI), 84(SI))
+	ADDQ $96, SI
+	ADDQ $16, R9
+	DECQ CX
+	JNZ qloop4
+
+qtail:
+	TESTQ BX, BX
+	JZ qstore
+
+qloop1:
+	MOVLQSX 0(R9), AX
+	FMAZ4x32((DI)(AX*4), (R10)(AX*4), 0(SI), 4(SI), 8(SI), 12(SI))
+	ADDQ $24, SI
+	ADDQ $4, R9
+	DECQ BX
+	JNZ qloop1
+
+qstore:
+	MOVQ bias+56(FP), BX
+	TESTQ BX, BX
+	JEQ qnobias
+	BIASZ32(0, Z14, Z0, Z1)
+	BIASZ32(4, Z15, Z2, Z3)
+	BIASZ32(8, Z14, Z4, Z5)
+	BIASZ32(12, Z15, Z6, Z7)
+
+qnobias:
+	STOREZ32(Z0, Z1)
+	ADDQ R8, DX
+	STOREZ32(Z2, Z3)
+	ADDQ R8, DX
+	STOREZ32(Z4, Z5)
+	ADDQ R8, DX
+	STOREZ32(Z6, Z7)
 	VZEROUPPER
 	RET

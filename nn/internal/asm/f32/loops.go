@@ -162,6 +162,35 @@ func conv6x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias 
 	conv6x16(kc, a, b1, off, (*float32)(unsafe.Add(unsafe.Pointer(c), 16*4)), ldc, bias)
 }
 
+func conv4x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	var t tile6x32
+	var b6 [6]float32
+	conv6x32(kc, a, b0, b1, off, &t[0], 32, bias6(bias, &b6))
+	store4x32(&t, c, ldc)
+}
+
+// tile6x32 is the scratch of a 6×32 tile where a 4-row tile has no kernel
+// of its own.
+type tile6x32 [6 * 32]float32
+
+// bias6 returns a 6-row bias for a 6-row kernel computing a 4-row tile:
+// nil, or b6 holding bias[0..3] and two zeros.
+func bias6(bias *float32, b6 *[6]float32) *float32 {
+	if bias == nil {
+		return nil
+	}
+	copy(b6[:], unsafe.Slice(bias, 4))
+	return &b6[0]
+}
+
+// store4x32 copies the first four rows of t to c, rows ldc apart.
+func store4x32(t *tile6x32, c *float32, ldc int) {
+	cs := unsafe.Slice(c, 3*ldc+32)
+	for r := 0; r < 4; r++ {
+		copy(cs[r*ldc:r*ldc+32], t[32*r:32*r+32])
+	}
+}
+
 func transpose8x8(src *float32, lds int, dst *float32, ldd int) {
 	s := unsafe.Slice(src, 7*lds+8)
 	d := unsafe.Slice(dst, 7*ldd+8)

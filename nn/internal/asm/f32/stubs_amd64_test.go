@@ -155,18 +155,20 @@ func convForms() []convForm {
 	return forms
 }
 
-// wideConvForm is one implementation of the 6×32 convolution tile.
+// wideConvForm is one implementation of a 32-wide convolution tile that
+// stores the first rows rows of the 6×32 tile.
 type wideConvForm struct {
 	name string
+	rows int
 	fn   func(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32)
 }
 
-// wideConvForms are the 6×32 tile's dispatch and its AVX-512 form, called
-// directly whichever one Conv6x32 picks.
+// wideConvForms are the 32-wide tiles' dispatches and their AVX-512
+// forms, called directly whichever one Conv6x32 and Conv4x32 pick.
 func wideConvForms() []wideConvForm {
-	forms := []wideConvForm{{"Conv6x32", Conv6x32}}
+	forms := []wideConvForm{{"Conv6x32", 6, Conv6x32}, {"Conv4x32", 4, Conv4x32}}
 	if useAVX512 {
-		forms = append(forms, wideConvForm{"AVX-512", conv6x32Avx512})
+		forms = append(forms, wideConvForm{"AVX-512 6x32", 6, conv6x32Avx512}, wideConvForm{"AVX-512 4x32", 4, conv4x32Avx512})
 	}
 	return forms
 }

@@ -53,6 +53,13 @@ func Conv6x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias 
 	conv6x32(kc, a, b0, b1, off, c, ldc, bias)
 }
 
+// Conv4x32 is Conv6x32 for the last rows of a product: it stores rows
+// r < 4 of the tile alone, with the bits Conv6x32 stores there. A keeps its
+// 6-float columns; bias[4], bias[5] and rows 4 and 5 of c are not touched.
+func Conv4x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	conv4x32(kc, a, b0, b1, off, c, ldc, bias)
+}
+
 // Transpose8x8 stores the transpose of the 8×8 block src[r·lds+c] at
 // dst[c·ldd+r].
 func Transpose8x8(src *float32, lds int, dst *float32, ldd int) { transpose8x8(src, lds, dst, ldd) }

@@ -11,11 +11,15 @@ type convForm struct {
 // convForms is the dispatch alone: this build has no assembly.
 func convForms() []convForm { return []convForm{{"Conv6x16", Conv6x16}} }
 
-// wideConvForm is one implementation of the 6×32 convolution tile.
+// wideConvForm is one implementation of a 32-wide convolution tile that
+// stores the first rows rows of the 6×32 tile.
 type wideConvForm struct {
 	name string
+	rows int
 	fn   func(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32)
 }
 
-// wideConvForms is the dispatch alone: this build has no assembly.
-func wideConvForms() []wideConvForm { return []wideConvForm{{"Conv6x32", Conv6x32}} }
+// wideConvForms are the dispatches alone: this build has no assembly.
+func wideConvForms() []wideConvForm {
+	return []wideConvForm{{"Conv6x32", 6, Conv6x32}, {"Conv4x32", 4, Conv4x32}}
+}

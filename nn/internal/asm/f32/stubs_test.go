@@ -282,10 +282,11 @@ func TestConv6x16MatchesLoop(t *testing.T) {
 }
 
 func TestConv6x32MatchesLoop(t *testing.T) {
-	// Conv6x32 and its AVX-512 form against two calls of the 6×16 loop
-	// (conv6x32), B's halves at two bases that overlap or lie apart, with
-	// and without the bias, at k depths with every remainder of the
-	// four-deep unrolling; c past the 32 columns is never written.
+	// Conv6x32, Conv4x32 and their AVX-512 forms against two calls of the
+	// 6×16 loop (conv6x32), B's halves at two bases that overlap or lie
+	// apart, with and without the bias, at k depths with every remainder of
+	// the four-deep unrolling; c past the 32 columns, and past row 4 for
+	// Conv4x32, is never written.
 	rng := rand.New(rand.NewPCG(9, 10))
 	for _, kc := range []int{1, 2, 3, 4, 5, 6, 7, 27, 144, 288} {
 		a := randFloats(rng, 6*kc)
@@ -301,6 +302,7 @@ func TestConv6x32MatchesLoop(t *testing.T) {
 				want := nanFloats(6 * ldc)
 				conv6x32(kc, &a[0], &b[0], &b[b1], &off[0], &want[0], ldc, bp)
 				for _, f := range wideConvForms() {
+					want := append(want[:f.rows*ldc:f.rows*ldc], nanFloats((6-f.rows)*ldc)...)
 					got := nanFloats(6 * ldc)
 					f.fn(kc, &a[0], &b[0], &b[b1], &off[0], &got[0], ldc, bp)
 					requireBits(t, want, got, "%s kc=%d b1=%d bias=%t", f.name, kc, b1, bp != nil)
