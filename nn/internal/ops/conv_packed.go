@@ -36,6 +36,7 @@ type convScratch struct {
 
 	plan           sconvPlan
 	pad, strip, cs []float32
+	mask           []float32  // one sample's masked dy (convBackOp.masked)
 	bias           []float32  // bias of every group, each padded to a multiple of sgemmMR
 	padKey         convPadKey // what the zero borders of pad were laid out for
 	tile           sconvTile
@@ -106,7 +107,8 @@ func (op *convOp) weightsFresh(s *convScratch, w []float32, flip bool) bool {
 
 // forward32 computes y = Conv(x, w) + b for float32 on the packed driver,
 // sample by sample and group by group (so a sample's result does not depend
-// on the rest of the batch).
+// on the rest of the batch), and the fused Relu of each while it is in
+// cache.
 func (op *convOp) forward32(s *convScratch, g *convGeom, n, c, m int, x, w, b, y []float32) {
 	group := op.group
 	cg, mg := c/group, m/group
@@ -142,7 +144,11 @@ func (op *convOp) forward32(s *convScratch, g *convGeom, n, c, m int, x, w, b, y
 			if b != nil {
 				bg = s.bias[gi*m6 : (gi+1)*m6]
 			}
-			sconvSample(&s.plan, src, s.packed[gi*plen:(gi+1)*plen], mg, bg, y[(ni*m+gi*mg)*p:(ni*m+(gi+1)*mg)*p], s.strip, s.cs, &s.tile)
+			yg := y[(ni*m+gi*mg)*p : (ni*m+(gi+1)*mg)*p]
+			sconvSample(&s.plan, src, s.packed[gi*plen:(gi+1)*plen], mg, bg, yg, s.strip, s.cs, &s.tile)
+			if op.relu {
+				f32.Relu(yg, yg)
+			}
 		}
 	}
 }
@@ -215,7 +221,9 @@ func convBackwardDirect(g *convGeom) bool { return g.sh == 1 && g.sw == 1 }
 
 // inputGrad32 writes dx, the gradient of Σ dy·Conv(x, w) with respect to x,
 // for unit strides as the correlation of dy with the flipped,
-// channel-transposed weights (the adjoint of a stride-1 convolution):
+// channel-transposed weights (the adjoint of a stride-1 convolution), with
+// dy masked by the Relu of the output ym (dy where ym > 0, +0 elsewhere)
+// when ym is not nil:
 //
 //	dx[n, g·Cg + c, y, x] = Σ_{m, i, j} w[g·Mg + m, c, kh−1−i, kw−1−j] · dy'[n, g·Mg + m, y + i·dh, x + j·dw]
 //
@@ -223,7 +231,7 @@ func convBackwardDirect(g *convGeom) bool { return g.sh == 1 && g.sw == 1 }
 // after each axis (cropped where that is negative): the transposed
 // convolution of Dumoulin & Visin (2016), "A guide to convolution arithmetic
 // for deep learning", §4.1 (relationship 8 for stride 1).
-func (op *convBackOp) inputGrad32(s *convScratch, g *convGeom, n, c, m int, w, dy, dx []float32) {
+func (op *convBackOp) inputGrad32(s *convScratch, g *convGeom, n, c, m int, w, dy, ym, dx []float32) {
 	group := op.group
 	cg, mg := c/group, m/group
 	k := mg * g.kh * g.kw
@@ -247,6 +255,12 @@ func (op *convBackOp) inputGrad32(s *convScratch, g *convGeom, n, c, m int, w, d
 	for ni := 0; ni < n; ni++ {
 		for gi := 0; gi < group; gi++ {
 			src := dy[(ni*m+gi*mg)*p : (ni*m+(gi+1)*mg)*p]
+			if ym != nil {
+				// The fused Relu's mask, on one sample's dy while it is in cache.
+				s.mask = convGrow(s.mask, len(src))
+				f32.ReluGrad(s.mask, ym[(ni*m+gi*mg)*p:(ni*m+(gi+1)*mg)*p], src)
+				src = s.mask
+			}
 			if padded {
 				src = s.padInput(src, mg, g.oh, g.ow, pt, pb, pl, pr)
 			}

@@ -672,3 +672,53 @@ func TestConvDriverMatchesStripTiles(t *testing.T) {
 		})
 	}
 }
+
+func TestConvMaskedInputGrad(t *testing.T) {
+	// The masked input gradient (the fused Relu's mask applied by the
+	// Conv gradient itself) equals the plain input gradient of the masked
+	// dy that reluDiff stores (dy where y > 0, +0 elsewhere; Relu's
+	// derivative, common practice) bit for bit, on the packed driver
+	// (pads positive and negative) and on the other routes (a stride of 2,
+	// float64), with −0, +0 and NaN among the outputs y.
+	rng := rand.New(rand.NewSource(50))
+	for _, rc := range []convRouteCase{
+		{n: 3, c: 3, h: 12, w: 16, m: 5, kh: 3, kw: 3, pads: [4]int{1, 1, 1, 1}, sh: 1, sw: 1, dh: 1, dw: 1, group: 1},
+		{n: 3, c: 4, h: 9, w: 11, m: 6, kh: 3, kw: 3, pads: [4]int{0, 2, 1, 0}, sh: 1, sw: 1, dh: 1, dw: 1, group: 2},
+		{n: 2, c: 3, h: 11, w: 9, m: 4, kh: 3, kw: 3, pads: [4]int{1, 1, 1, 1}, sh: 2, sw: 2, dh: 1, dw: 1, group: 1},
+	} {
+		t.Run(rc.String(), func(t *testing.T) {
+			oh, ow := rc.out()
+			x := randomInput(rng, rc.n*rc.c*rc.h*rc.w)
+			w := randomInput(rng, rc.m*rc.c/rc.group*rc.kh*rc.kw)
+			dy := randomInput(rng, rc.n*rc.m*oh*ow)
+			y := randomInput(rng, len(dy))
+			for i := range y {
+				switch i % 9 {
+				case 0:
+					y[i] = math.Copysign(0, -1)
+				case 1:
+					y[i] = 0
+				case 2:
+					y[i] = math.NaN()
+				}
+			}
+			xs, ws, ys := []int{rc.n, rc.c, rc.h, rc.w}, []int{rc.m, rc.c / rc.group, rc.kh, rc.kw}, []int{rc.n, rc.m, oh, ow}
+			masked := &convBackOp{convOp: *rc.op(), wrt: 0, masked: true}
+			plain := &convBackOp{convOp: *rc.op(), wrt: 0}
+			got32, err := masked.Do(convDense32(xs, convTo32(x)), convDense32(ws, convTo32(w)), convDense32(ys, convTo32(dy)), convDense32(ys, convTo32(y)))
+			require.NoError(t, err)
+			d32 := make([]float32, len(dy))
+			reluDiff(d32, convTo32(y), convTo32(dy))
+			want32, err := plain.Do(convDense32(xs, convTo32(x)), convDense32(ws, convTo32(w)), convDense32(ys, d32))
+			require.NoError(t, err)
+			require.Equal(t, poolBits(t, want32), poolBits(t, got32), "float32")
+			got64, err := masked.Do(convDense64(xs, x), convDense64(ws, w), convDense64(ys, dy), convDense64(ys, y))
+			require.NoError(t, err)
+			d64 := make([]float64, len(dy))
+			reluDiff(d64, y, dy)
+			want64, err := plain.Do(convDense64(xs, x), convDense64(ws, w), convDense64(ys, d64))
+			require.NoError(t, err)
+			require.Equal(t, poolBits(t, want64), poolBits(t, got64), "float64")
+		})
+	}
+}
