@@ -677,13 +677,15 @@ func TestConvMaskedInputGrad(t *testing.T) {
 	// The masked input gradient (the fused Relu's mask applied by the
 	// Conv gradient itself) equals the plain input gradient of the masked
 	// dy that reluDiff stores (dy where y > 0, +0 elsewhere; Relu's
-	// derivative, common practice) bit for bit, on the packed driver
-	// (pads positive and negative) and on the other routes (a stride of 2,
-	// float64), with −0, +0 and NaN among the outputs y.
+	// derivative, common practice) bit for bit, on the packed driver (the
+	// mask applied while padding, while cropping, and with no padding) and
+	// on the other routes (a stride of 2, float64), with −0, +0 and NaN
+	// among the outputs y.
 	rng := rand.New(rand.NewSource(50))
 	for _, rc := range []convRouteCase{
 		{n: 3, c: 3, h: 12, w: 16, m: 5, kh: 3, kw: 3, pads: [4]int{1, 1, 1, 1}, sh: 1, sw: 1, dh: 1, dw: 1, group: 1},
-		{n: 3, c: 4, h: 9, w: 11, m: 6, kh: 3, kw: 3, pads: [4]int{0, 2, 1, 0}, sh: 1, sw: 1, dh: 1, dw: 1, group: 2},
+		{n: 3, c: 4, h: 9, w: 11, m: 6, kh: 3, kw: 3, pads: [4]int{3, 2, 0, 1}, sh: 1, sw: 1, dh: 1, dw: 1, group: 2},
+		{n: 2, c: 3, h: 5, w: 16, m: 4, kh: 3, kw: 3, pads: [4]int{2, 2, 2, 2}, sh: 1, sw: 1, dh: 1, dw: 1, group: 1},
 		{n: 2, c: 3, h: 11, w: 9, m: 4, kh: 3, kw: 3, pads: [4]int{1, 1, 1, 1}, sh: 2, sw: 2, dh: 1, dw: 1, group: 1},
 	} {
 		t.Run(rc.String(), func(t *testing.T) {

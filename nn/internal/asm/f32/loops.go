@@ -238,6 +238,18 @@ func reluGrad(d, x, dy []float32) {
 	}
 }
 
+func reluGradRows(dst *float32, ldd int, x, dy *float32, lds int, rows, w int) {
+	if rows == 0 || w == 0 {
+		return
+	}
+	d := unsafe.Slice(dst, (rows-1)*ldd+w)
+	xs := unsafe.Slice(x, (rows-1)*lds+w)
+	dys := unsafe.Slice(dy, (rows-1)*lds+w)
+	for r := 0; r < rows; r++ {
+		reluGrad(d[r*ldd:r*ldd+w], xs[r*lds:r*lds+w], dys[r*lds:r*lds+w])
+	}
+}
+
 // firstMax4 returns which element of the 2×2 window a b / c d holds its
 // maximum (0 to 3, row-major): the first NaN if there is one, else the first
 // maximal element (strict >, so of +0 and −0 the first one seen).

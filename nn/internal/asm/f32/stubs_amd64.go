@@ -179,6 +179,17 @@ func ReluGrad(d, x, dy []float32) {
 	reluGrad(d[n:], x[n:], dy[n:])
 }
 
+// ReluGradRows is ReluGrad on rows runs of w floats: it stores
+// dst[r·ldd+j] = dy[r·lds+j] where x[r·lds+j] > 0 and +0 elsewhere, x and
+// dy laid out alike, as CopyRows copies them.
+func ReluGradRows(dst *float32, ldd int, x, dy *float32, lds int, rows, w int) {
+	if useAsm {
+		reluGradRowsAsm(dst, ldd, x, dy, lds, rows, w)
+		return
+	}
+	reluGradRows(dst, ldd, x, dy, lds, rows, w)
+}
+
 // MaxPool2x2 stores, for each of planes planes of h×w in x, the 2×2
 // stride-2 max pool of its top-left 2·oh×2·ow corner in the plane of oh×ow
 // in y: the first NaN of each window if it has one, else its first maximal
@@ -323,6 +334,21 @@ func reluAsm(y, x *float32, n int)
 //
 //go:noescape
 func reluGradAsm(d, x, dy *float32, n int)
+
+// reluGradRowsAsm is
+//
+//	for r := 0; r < rows; r++ {
+//		for j := 0; j < w; j++ {
+//			if x[r*lds+j] > 0 {
+//				dst[r*ldd+j] = dy[r*lds+j]
+//			} else {
+//				dst[r*ldd+j] = 0
+//			}
+//		}
+//	}
+//
+//go:noescape
+func reluGradRowsAsm(dst *float32, ldd int, x, dy *float32, lds int, rows, w int)
 
 // maxPool2x2Asm is, when x holds no NaN and maxPoolFits holds,
 //

@@ -81,6 +81,13 @@ func Relu(y, x []float32) { relu(y, x) }
 // included) for i < len(x); d and dy must be at least as long as x.
 func ReluGrad(d, x, dy []float32) { reluGrad(d, x, dy) }
 
+// ReluGradRows is ReluGrad on rows runs of w floats: it stores
+// dst[r·ldd+j] = dy[r·lds+j] where x[r·lds+j] > 0 and +0 elsewhere, x and
+// dy laid out alike, as CopyRows copies them.
+func ReluGradRows(dst *float32, ldd int, x, dy *float32, lds int, rows, w int) {
+	reluGradRows(dst, ldd, x, dy, lds, rows, w)
+}
+
 // MaxPool2x2 stores, for each of planes planes of h×w in x, the 2×2
 // stride-2 max pool of its top-left 2·oh×2·ow corner in the plane of oh×ow
 // in y: the first NaN of each window if it has one, else its first maximal

@@ -419,6 +419,45 @@ func TestReluMatchesGoMax(t *testing.T) {
 	}
 }
 
+func TestReluGradRowsMatchesGo(t *testing.T) {
+	// ReluGradRows, its loop and (on amd64) its assembly store dy where
+	// x > 0 and +0 elsewhere (Go's > on IEEE 754 values: false for NaN and
+	// ±0), row by row between strided rows, widths with and without a
+	// remainder of eight; dst between its rows is never written.
+	rng := rand.New(rand.NewPCG(15, 16))
+	forms := []struct {
+		name string
+		fn   func(dst *float32, ldd int, x, dy *float32, lds int, rows, w int)
+	}{{"ReluGradRows", ReluGradRows}, {"loop", reluGradRows}}
+	for _, w := range []int{1, 7, 8, 14, 16, 28, 32, 35} {
+		const rows = 5
+		lds, ldd := w+3, w+5
+		x, dy := make([]float32, rows*lds), randFloats(rng, rows*lds)
+		for i := range x {
+			if rng.IntN(3) == 0 {
+				x[i] = math.Float32frombits(specials32[rng.IntN(len(specials32))])
+			} else {
+				x[i] = float32(rng.NormFloat64())
+			}
+		}
+		want := nanFloats(rows * ldd)
+		for r := 0; r < rows; r++ {
+			for j := 0; j < w; j++ {
+				if x[r*lds+j] > 0 { // Go spec semantics
+					want[r*ldd+j] = dy[r*lds+j]
+				} else {
+					want[r*ldd+j] = 0
+				}
+			}
+		}
+		for _, f := range forms {
+			got := nanFloats(rows * ldd)
+			f.fn(&got[0], ldd, &x[0], &dy[0], lds, rows, w)
+			requireBits(t, want, got, "%s w=%d", f.name, w)
+		}
+	}
+}
+
 func TestMaxPool2x2MatchesLoop(t *testing.T) {
 	// MaxPool2x2 and its gradient against their loops on inputs full of
 	// ties and signed zeros, with and without NaNs (the assembly hands a
