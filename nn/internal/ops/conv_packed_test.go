@@ -619,8 +619,9 @@ func TestConvDriverMatchesStripTiles(t *testing.T) {
 	// (one chain of fused multiply-adds in the order of p, then the bias
 	// with one rounding: the kernels' contract, which the f32 tests check
 	// against math/big), whether the driver runs the strip alone, paired
-	// with its neighbour in a 6×32 tile, or through the edge tile: strip
-	// counts even and odd, output rows whole and not, in both in-place modes.
+	// with its neighbour in a 6×32 or 4×32 tile, or through the edge tile:
+	// strip counts even and odd, output rows whole and not, row counts with
+	// every remainder of 6 that chooses blocks of 4, in both in-place modes.
 	rng := rand.New(rand.NewSource(49))
 	for _, tc := range []struct {
 		g    sconvGeom
@@ -630,6 +631,10 @@ func TestConvDriverMatchesStripTiles(t *testing.T) {
 		{sconvGeom{c: 3, hp: 34, wp: 34, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 32, ow: 32}, 16, sconvRows},
 		{sconvGeom{c: 2, hp: 7, wp: 18, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 5, ow: 16}, 3, sconvRows},
 		{sconvGeom{c: 4, hp: 11, wp: 50, kh: 3, kw: 3, dh: 1, dw: 2, sh: 2, sw: 1, oh: 3, ow: 48}, 12, sconvRows},
+		{sconvGeom{c: 2, hp: 7, wp: 34, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 5, ow: 32}, 32, sconvRows},
+		{sconvGeom{c: 2, hp: 7, wp: 34, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 5, ow: 32}, 13, sconvRows},
+		{sconvGeom{c: 1, hp: 30, wp: 30, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 28, ow: 28}, 8, sconvGrid},
+		{sconvGeom{c: 8, hp: 30, wp: 30, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 28, ow: 28}, 1, sconvGrid},
 		{sconvGeom{c: 2, hp: 16, wp: 16, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 14, ow: 14}, 16, sconvGrid},
 		{sconvGeom{c: 3, hp: 9, wp: 13, kh: 3, kw: 2, dh: 1, dw: 1, sh: 1, sw: 1, oh: 7, ow: 12}, 7, sconvGrid},
 	} {
@@ -660,12 +665,14 @@ func TestConvDriverMatchesStripTiles(t *testing.T) {
 					if pl.mode == sconvGrid {
 						col = g - s0
 					}
-					for ir := 0; ir < m; ir += sgemmMR {
-						f32.Conv6x16(k, &wp[ir*k], &xp[xb], &pl.off[0], &want[0], sgemmNR, &b[ir])
-						for r := 0; r < min(sgemmMR, m-ir); r++ {
+					for ir, s := 0, 0; ir < m; s++ {
+						blk := sconvBlock(m - ir)
+						f32.Conv6x16(k, &wp[s*sgemmMR*k], &xp[xb], &pl.off[0], &want[0], sgemmNR, &b[ir])
+						for r := 0; r < min(blk, m-ir); r++ {
 							require.Equal(t, math.Float32bits(want[r*sgemmNR+col]), math.Float32bits(y[(ir+r)*p+q]),
 								"channel %d, output (%d, %d)", ir+r, oy, ox)
 						}
+						ir += blk
 					}
 				}
 			}

@@ -46,10 +46,30 @@ func (g *sconvGeom) k() int { return g.c * g.kh * g.kw }
 func sconvPackedLen(m, k int) int { return (m + sgemmMR - 1) / sgemmMR * sgemmMR * k }
 
 // sconvPackWeights packs the m×k row-major matrix w into dst
-// (sconvPackedLen(m, k) elements) as strips of sgemmMR rows over the whole
-// k: the layout of sgemmPackBlockA with kc = k.
+// (sconvPackedLen(m, k) elements) as one strip per block of rows
+// (sconvBlock), each over the whole k in the layout of sgemmPackBlockA with
+// kc = k: strip s, at s·sgemmMR·k, holds the sgemmMR values of column p at
+// p·sgemmMR, zeros past the block's last valid row.
 func sconvPackWeights(w []float32, m, k int, dst []float32) {
-	sgemmPackBlockA(false, w, k, 0, m, 0, k, dst)
+	for ir, s := 0, 0; ir < m; s++ {
+		blk := sconvBlock(m - ir)
+		sgemmPackBlockA(false, w, k, ir, min(blk, m-ir), 0, k, dst[s*sgemmMR*k:])
+		ir += blk
+	}
+}
+
+// sconvBlock returns the rows of the next block of the product's rows
+// (output channels) when left ≥ 1 are left: sgemmMR for the 6-row kernels,
+// or 4 for f32.Conv4x32 where that wastes fewer rows: the last 4 or fewer,
+// and the last 7 or 8 as two blocks of 4. The blocks of m rows are as many
+// as the strips of 6, ⌈m/6⌉, and the last ends at most at that rounded up
+// m, so a 6-row kernel on any block reads and writes inside buffers
+// rounded up to a multiple of sgemmMR.
+func sconvBlock(left int) int {
+	if left <= 4 || left == 7 || left == 8 {
+		return 4
+	}
+	return sgemmMR
 }
 
 // sconvPad copies the c channels of x (h×w each) into dst (c channels of
@@ -250,9 +270,9 @@ func sconvSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip, cs []float
 
 // sconvRowsSample is sconvSample for sconvRows: the kernel reads each strip
 // in place and stores whole tiles straight into y, two strips at a time
-// (f32.Conv6x32; the last one alone when the count is odd), the last rows
-// of a pair by f32.Conv4x32 when at most four are left, and edge tiles
-// (fewer rows left than the kernel stores) through tile.
+// (f32.Conv6x32; the last one alone when the count is odd), each block of
+// rows (sconvBlock) by its kernel, f32.Conv4x32 for blocks of 4, and edge
+// tiles (fewer valid rows than the kernel stores) through tile.
 func sconvRowsSample(pl *sconvPlan, xp, wp []float32, m int, b, y []float32, tile *sconvTile) {
 	g := &pl.g
 	k := g.k()
@@ -264,42 +284,39 @@ func sconvRowsSample(pl *sconvPlan, xp, wp []float32, m int, b, y []float32, til
 		if nw == sconvNW {
 			xb1 = &xp[sconvRowsStart(g, q0+sgemmNR)]
 		}
-		for ir := 0; ir < m; ir += sgemmMR {
+		for ir, s := 0, 0; ir < m; s++ {
+			blk := sconvBlock(m - ir)
+			a := &wp[s*sgemmMR*k]
 			var bp *float32
 			if b != nil {
 				bp = &b[ir]
 			}
-			mr, rows := min(sgemmMR, m-ir), sconvTileRows(nw, m-ir)
+			// rows is how many rows the kernel stores: fewer valid ones
+			// go through tile.
+			mr, rows := min(blk, m-ir), sgemmMR
+			if nw == sconvNW && blk < sgemmMR {
+				rows = blk
+			}
 			c, ldc := &y[ir*p+q0], p
 			if mr < rows {
 				c, ldc = &tile[0], nw
 			}
 			switch {
 			case nw < sconvNW:
-				f32.Conv6x16(k, &wp[ir*k], xb0, &pl.off[0], c, ldc, bp)
+				f32.Conv6x16(k, a, xb0, &pl.off[0], c, ldc, bp)
 			case rows < sgemmMR:
-				f32.Conv4x32(k, &wp[ir*k], xb0, xb1, &pl.off[0], c, ldc, bp)
+				f32.Conv4x32(k, a, xb0, xb1, &pl.off[0], c, ldc, bp)
 			default:
-				f32.Conv6x32(k, &wp[ir*k], xb0, xb1, &pl.off[0], c, ldc, bp)
+				f32.Conv6x32(k, a, xb0, xb1, &pl.off[0], c, ldc, bp)
 			}
 			if mr < rows {
 				for r := 0; r < mr; r++ {
 					copy(y[(ir+r)*p+q0:(ir+r)*p+q0+nw], tile[r*nw:(r+1)*nw])
 				}
 			}
+			ir += blk
 		}
 	}
-}
-
-// sconvTileRows returns how many rows the tile kernel for a block of nw
-// output positions and left ≥ 1 output rows stores: 4 (f32.Conv4x32) for
-// the last rows of a 32-wide block when at most 4 are left, otherwise
-// sgemmMR.
-func sconvTileRows(nw, left int) int {
-	if nw == sconvNW && left <= 4 {
-		return 4
-	}
-	return sgemmMR
 }
 
 // sconvRowsStart returns where, in the padded image, the strip of output
@@ -325,8 +342,9 @@ func sconvStridedSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip []fl
 	for q0 := 0; q0 < p; q0 += sgemmNR {
 		nr := min(sgemmNR, p-q0)
 		sconvPackStrip(g, xp, q0, nr, strip)
-		for ir := 0; ir < m; ir += sgemmMR {
-			mr := min(sgemmMR, m-ir)
+		for ir, s := 0, 0; ir < m; s++ {
+			blk := sconvBlock(m - ir)
+			mr := min(blk, m-ir)
 			if b != nil {
 				for r := 0; r < sgemmMR; r++ {
 					bv := b[ir+r]
@@ -336,10 +354,11 @@ func sconvStridedSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip []fl
 					}
 				}
 			}
-			f32.Gemm6x16(k, &wp[ir*k], &strip[0], &tile[0], sgemmNR, 1, beta)
+			f32.Gemm6x16(k, &wp[s*sgemmMR*k], &strip[0], &tile[0], sgemmNR, 1, beta)
 			for r := 0; r < mr; r++ {
 				copy(y[(ir+r)*p+q0:(ir+r)*p+q0+nr], tile[r*sgemmNR:r*sgemmNR+nr])
 			}
+			ir += blk
 		}
 	}
 }
@@ -354,7 +373,9 @@ func sconvGridSample(pl *sconvPlan, xp, wp []float32, m int, b, y, cs []float32)
 	pq := pl.pq
 	cs = cs[:pl.scratchLen(m)]
 	for q0 := 0; q0 < pq; q0 += sconvNW {
-		for ir := 0; ir < m; ir += sgemmMR {
+		for ir, s := 0, 0; ir < m; s++ {
+			blk := sconvBlock(m - ir)
+			a := &wp[s*sgemmMR*k]
 			var bp *float32
 			if b != nil {
 				bp = &b[ir]
@@ -362,20 +383,23 @@ func sconvGridSample(pl *sconvPlan, xp, wp []float32, m int, b, y, cs []float32)
 			nw := min(sconvNW, pq-q0)
 			switch {
 			case nw < sconvNW:
-				f32.Conv6x16(k, &wp[ir*k], &xp[q0], &pl.off[0], &cs[ir*pq+q0], pq, bp)
-			case sconvTileRows(nw, m-ir) < sgemmMR:
-				f32.Conv4x32(k, &wp[ir*k], &xp[q0], &xp[q0+sgemmNR], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+				f32.Conv6x16(k, a, &xp[q0], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+			case blk < sgemmMR:
+				f32.Conv4x32(k, a, &xp[q0], &xp[q0+sgemmNR], &pl.off[0], &cs[ir*pq+q0], pq, bp)
 			default:
-				f32.Conv6x32(k, &wp[ir*k], &xp[q0], &xp[q0+sgemmNR], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+				f32.Conv6x32(k, a, &xp[q0], &xp[q0+sgemmNR], &pl.off[0], &cs[ir*pq+q0], pq, bp)
 			}
+			ir += blk
 		}
 	}
 	p := g.oh * g.ow
+	if p == 0 {
+		return
+	}
 	for mi := 0; mi < m; mi++ {
-		src := cs[mi*pq : mi*pq+g.oh*g.wp]
+		// The slicing checks the bounds f32.CopyRows relies on.
+		src := cs[mi*pq : mi*pq+(g.oh-1)*g.wp+g.ow]
 		dst := y[mi*p : (mi+1)*p]
-		for oy := 0; oy < g.oh; oy++ {
-			copy(dst[oy*g.ow:(oy+1)*g.ow], src[oy*g.wp:oy*g.wp+g.ow])
-		}
+		f32.CopyRows(&dst[0], g.ow, &src[0], g.wp, g.oh, g.ow)
 	}
 }
