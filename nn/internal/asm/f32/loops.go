@@ -253,6 +253,20 @@ func reluGradRows(dst *float32, ldd int, x, dy *float32, lds int, rows, w int) {
 // firstMax4 returns which element of the 2×2 window a b / c d holds its
 // maximum (0 to 3, row-major): the first NaN if there is one, else the first
 // maximal element (strict >, so of +0 and −0 the first one seen).
+func widen(dst []float64, src []float32) {
+	dst = dst[:len(src)]
+	for i, v := range src {
+		dst[i] = float64(v)
+	}
+}
+
+func narrow(dst []float32, src []float64) {
+	dst = dst[:len(src)]
+	for i, v := range src {
+		dst[i] = float32(v)
+	}
+}
+
 func firstMax4(a, b, c, d float32) int {
 	if a != a {
 		return 0

@@ -190,6 +190,33 @@ func ReluGradRows(dst *float32, ldd int, x, dy *float32, lds int, rows, w int) {
 	reluGradRows(dst, ldd, x, dy, lds, rows, w)
 }
 
+// Widen stores dst[i] = float64(src[i]) (exact) for i < len(src); dst
+// must be at least as long as src.
+func Widen(dst []float64, src []float32) {
+	dst = dst[:len(src)]
+	n := 0
+	if useAsm {
+		if n = len(src) &^ 7; n > 0 {
+			widenAsm(&dst[0], &src[0], n)
+		}
+	}
+	widen(dst[n:], src[n:])
+}
+
+// Narrow stores dst[i] = float32(src[i]), rounded to nearest, ties to
+// even, as Go converts, for i < len(src); dst must be at least as long as
+// src.
+func Narrow(dst []float32, src []float64) {
+	dst = dst[:len(src)]
+	n := 0
+	if useAsm {
+		if n = len(src) &^ 7; n > 0 {
+			narrowAsm(&dst[0], &src[0], n)
+		}
+	}
+	narrow(dst[n:], src[n:])
+}
+
 // MaxPool2x2 stores, for each of planes planes of h×w in x, the 2×2
 // stride-2 max pool of its top-left 2·oh×2·ow corner in the plane of oh×ow
 // in y: the first NaN of each window if it has one, else its first maximal
@@ -349,6 +376,24 @@ func reluGradAsm(d, x, dy *float32, n int)
 //
 //go:noescape
 func reluGradRowsAsm(dst *float32, ldd int, x, dy *float32, lds int, rows, w int)
+
+// widenAsm is, for n a multiple of 8,
+//
+//	for i := 0; i < n; i++ {
+//		dst[i] = float64(src[i])
+//	}
+//
+//go:noescape
+func widenAsm(dst *float64, src *float32, n int)
+
+// narrowAsm is, for n a multiple of 8,
+//
+//	for i := 0; i < n; i++ {
+//		dst[i] = float32(src[i])
+//	}
+//
+//go:noescape
+func narrowAsm(dst *float32, src *float64, n int)
 
 // maxPool2x2Asm is, when x holds no NaN and maxPoolFits holds,
 //

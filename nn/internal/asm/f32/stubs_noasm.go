@@ -88,6 +88,15 @@ func ReluGradRows(dst *float32, ldd int, x, dy *float32, lds int, rows, w int) {
 	reluGradRows(dst, ldd, x, dy, lds, rows, w)
 }
 
+// Widen stores dst[i] = float64(src[i]) (exact) for i < len(src); dst
+// must be at least as long as src.
+func Widen(dst []float64, src []float32) { widen(dst, src) }
+
+// Narrow stores dst[i] = float32(src[i]), rounded to nearest, ties to
+// even, as Go converts, for i < len(src); dst must be at least as long as
+// src.
+func Narrow(dst []float32, src []float64) { narrow(dst, src) }
+
 // MaxPool2x2 stores, for each of planes planes of h×w in x, the 2×2
 // stride-2 max pool of its top-left 2·oh×2·ow corner in the plane of oh×ow
 // in y: the first NaN of each window if it has one, else its first maximal

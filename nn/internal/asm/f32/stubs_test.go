@@ -458,6 +458,40 @@ func TestReluGradRowsMatchesGo(t *testing.T) {
 	}
 }
 
+func TestWidenNarrowMatchGoConversions(t *testing.T) {
+	// Widen and Narrow store the bits of Go's conversions (float64(x)
+	// exact; float32(x) rounded to nearest, ties to even: the Go spec and
+	// IEEE 754 §5.4.2) at every length through the vector steps and the
+	// tail, on values that round up, down and to even, subnormals, values
+	// past the float32 range, ±0, ±Inf and NaN.
+	rng := rand.New(rand.NewPCG(17, 18))
+	for n := 0; n <= 40; n++ {
+		x32 := make([]float32, n)
+		x64 := make([]float64, n)
+		for i := range x32 {
+			switch rng.IntN(4) {
+			case 0:
+				x32[i] = math.Float32frombits(specials32[rng.IntN(len(specials32))])
+				x64[i] = []float64{0x1p-149 * 0.75, 0x1p-149 * 1.5, 0x1p-126 * (1 - 0x1p-30), 3.5e38, -1e300,
+					math.Inf(1), math.NaN(), math.Copysign(0, -1), 1 + 0x1p-24, 1 + 3*0x1p-24}[rng.IntN(10)]
+			default:
+				x32[i] = float32(rng.NormFloat64())
+				x64[i] = rng.NormFloat64() * math.Pow(2, float64(rng.IntN(60)-30))
+			}
+		}
+		w := make([]float64, n+1)
+		Widen(w, x32)
+		nr := make([]float32, n+1)
+		Narrow(nr, x64)
+		for i := range x32 {
+			require.Equal(t, math.Float64bits(float64(x32[i])), math.Float64bits(w[i]), "n=%d widen %#x", n, math.Float32bits(x32[i]))
+			require.Equal(t, math.Float32bits(float32(x64[i])), math.Float32bits(nr[i]), "n=%d narrow %#x", n, math.Float64bits(x64[i]))
+		}
+		require.Zero(t, w[n], "past the end")
+		require.Zero(t, nr[n], "past the end")
+	}
+}
+
 func TestMaxPool2x2MatchesLoop(t *testing.T) {
 	// MaxPool2x2 and its gradient against their loops on inputs full of
 	// ties and signed zeros, with and without NaNs (the assembly hands a
