@@ -666,7 +666,7 @@ func TestConvDriverMatchesStripTiles(t *testing.T) {
 						col = g - s0
 					}
 					for ir, s := 0, 0; ir < m; s++ {
-						blk := sconvBlock(m - ir)
+						blk := sconvBlock(m, ir)
 						f32.Conv6x16(k, &wp[s*sgemmMR*k], &xp[xb], &pl.off[0], &want[0], sgemmNR, &b[ir])
 						for r := 0; r < min(blk, m-ir); r++ {
 							require.Equal(t, math.Float32bits(want[r*sgemmNR+col]), math.Float32bits(y[(ir+r)*p+q]),

@@ -42,8 +42,14 @@ type sconvGeom struct {
 func (g *sconvGeom) k() int { return g.c * g.kh * g.kw }
 
 // sconvPackedLen returns the length of the packed weights of m rows and k
-// columns: m rounded up to sgemmMR rows of k values.
-func sconvPackedLen(m, k int) int { return (m + sgemmMR - 1) / sgemmMR * sgemmMR * k }
+// columns: one strip of sgemmMR rows of k values per block (sconvBlock).
+func sconvPackedLen(m, k int) int {
+	strips := 0
+	for ir := 0; ir < m; ir += sconvBlock(m, ir) {
+		strips++
+	}
+	return strips * sgemmMR * k
+}
 
 // sconvPackWeights packs the m×k row-major matrix w into dst
 // (sconvPackedLen(m, k) elements) as one strip per block of rows
@@ -52,21 +58,25 @@ func sconvPackedLen(m, k int) int { return (m + sgemmMR - 1) / sgemmMR * sgemmMR
 // p·sgemmMR, zeros past the block's last valid row.
 func sconvPackWeights(w []float32, m, k int, dst []float32) {
 	for ir, s := 0, 0; ir < m; s++ {
-		blk := sconvBlock(m - ir)
+		blk := sconvBlock(m, ir)
 		sgemmPackBlockA(false, w, k, ir, min(blk, m-ir), 0, k, dst[s*sgemmMR*k:])
 		ir += blk
 	}
 }
 
-// sconvBlock returns the rows of the next block of the product's rows
-// (output channels) when left ≥ 1 are left: sgemmMR for the 6-row kernels,
-// or 4 for f32.Conv4x32 where that wastes fewer rows: the last 4 or fewer,
-// and the last 7 or 8 as two blocks of 4. The blocks of m rows are as many
-// as the strips of 6, ⌈m/6⌉, and the last ends at most at that rounded up
-// m, so a 6-row kernel on any block reads and writes inside buffers
-// rounded up to a multiple of sgemmMR.
-func sconvBlock(left int) int {
-	if left <= 4 || left == 7 || left == 8 {
+// sconvBlock returns the rows of the block of the product's m rows (output
+// channels) that starts at row ir: sgemmMR for the 6-row kernels, or 4
+// where the CPU has 4-row kernels (f32.RowTiles4) and that wastes fewer
+// rows: every block when m is a multiple of 8 but not of 6 (pairs of them
+// run as f32.Conv8x32), else the last 4 or fewer and the last 7 or 8 as two
+// blocks of 4. A block starts at most 4 rows before m, so a 6-row kernel on
+// any block reads and writes inside buffers of m rounded up to a multiple
+// of sgemmMR (m mod 6 is 2 or 4 wherever blocks of 4 start inside).
+func sconvBlock(m, ir int) int {
+	if !f32.RowTiles4() {
+		return sgemmMR
+	}
+	if left := m - ir; m%8 == 0 && m%sgemmMR != 0 || left <= 4 || left == 7 || left == 8 {
 		return 4
 	}
 	return sgemmMR
@@ -285,7 +295,7 @@ func sconvRowsSample(pl *sconvPlan, xp, wp []float32, m int, b, y []float32, til
 			xb1 = &xp[sconvRowsStart(g, q0+sgemmNR)]
 		}
 		for ir, s := 0, 0; ir < m; s++ {
-			blk := sconvBlock(m - ir)
+			blk := sconvBlock(m, ir)
 			a := &wp[s*sgemmMR*k]
 			var bp *float32
 			if b != nil {
@@ -302,6 +312,9 @@ func sconvRowsSample(pl *sconvPlan, xp, wp []float32, m int, b, y []float32, til
 				c, ldc = &tile[0], nw
 			}
 			switch {
+			case sconvPair(m, ir, nw):
+				f32.Conv8x32(k, a, &wp[(s+1)*sgemmMR*k], xb0, xb1, &pl.off[0], c, ldc, bp)
+				ir, s = ir+blk, s+1
 			case nw < sconvNW:
 				f32.Conv6x16(k, a, xb0, &pl.off[0], c, ldc, bp)
 			case rows < sgemmMR:
@@ -317,6 +330,13 @@ func sconvRowsSample(pl *sconvPlan, xp, wp []float32, m int, b, y []float32, til
 			ir += blk
 		}
 	}
+}
+
+// sconvPair reports whether the block at row ir and the next one run
+// together as f32.Conv8x32 on a block of nw positions: two blocks of 4
+// valid rows each, 32 positions wide.
+func sconvPair(m, ir, nw int) bool {
+	return nw == sconvNW && m-ir >= 8 && sconvBlock(m, ir) == 4 && sconvBlock(m, ir+4) == 4
 }
 
 // sconvRowsStart returns where, in the padded image, the strip of output
@@ -343,7 +363,7 @@ func sconvStridedSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip []fl
 		nr := min(sgemmNR, p-q0)
 		sconvPackStrip(g, xp, q0, nr, strip)
 		for ir, s := 0, 0; ir < m; s++ {
-			blk := sconvBlock(m - ir)
+			blk := sconvBlock(m, ir)
 			mr := min(blk, m-ir)
 			if b != nil {
 				for r := 0; r < sgemmMR; r++ {
@@ -374,7 +394,7 @@ func sconvGridSample(pl *sconvPlan, xp, wp []float32, m int, b, y, cs []float32)
 	cs = cs[:pl.scratchLen(m)]
 	for q0 := 0; q0 < pq; q0 += sconvNW {
 		for ir, s := 0, 0; ir < m; s++ {
-			blk := sconvBlock(m - ir)
+			blk := sconvBlock(m, ir)
 			a := &wp[s*sgemmMR*k]
 			var bp *float32
 			if b != nil {
@@ -382,6 +402,9 @@ func sconvGridSample(pl *sconvPlan, xp, wp []float32, m int, b, y, cs []float32)
 			}
 			nw := min(sconvNW, pq-q0)
 			switch {
+			case sconvPair(m, ir, nw):
+				f32.Conv8x32(k, a, &wp[(s+1)*sgemmMR*k], &xp[q0], &xp[q0+sgemmNR], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+				ir, s = ir+blk, s+1
 			case nw < sconvNW:
 				f32.Conv6x16(k, a, &xp[q0], &pl.off[0], &cs[ir*pq+q0], pq, bp)
 			case blk < sgemmMR:

@@ -229,6 +229,15 @@ knobias:
 #define STOREZ32(r0, r1) \
 	VMOVUPS r0, (DX); VMOVUPS r1, 64(DX)
 
+// BIAS4Z32 adds the bias to rows 0..3 of a 32-wide tile (Z0..Z7), through
+// the temporaries t0, t1; STORE4Z32 stores those rows from DX on, leaving
+// DX at row 3.
+#define BIAS4Z32(t0, t1) \
+	BIASZ32(0, t0, Z0, Z1); BIASZ32(4, t1, Z2, Z3); BIASZ32(8, t0, Z4, Z5); BIASZ32(12, t1, Z6, Z7)
+#define STORE4Z32 \
+	STOREZ32(Z0, Z1); ADDQ R8, DX; STOREZ32(Z2, Z3); ADDQ R8, DX; \
+	STOREZ32(Z4, Z5); ADDQ R8, DX; STOREZ32(Z6, Z7)
+
 // FMAZ6x32 adds the outer product of one row of B (halves at bl and bh)
 // and one 6-float column of A (a0..a5) to the 6×32 tile.
 #define FMAZ6x32(bl, bh, a0, a1, a2, a3, a4, a5) \
@@ -291,21 +300,12 @@ wstore:
 	MOVQ bias+56(FP), BX
 	TESTQ BX, BX
 	JEQ wnobias
-	BIASZ32(0, Z14, Z0, Z1)
-	BIASZ32(4, Z15, Z2, Z3)
-	BIASZ32(8, Z14, Z4, Z5)
-	BIASZ32(12, Z15, Z6, Z7)
+	BIAS4Z32(Z14, Z15)
 	BIASZ32(16, Z14, Z8, Z9)
 	BIASZ32(20, Z15, Z10, Z11)
 
 wnobias:
-	STOREZ32(Z0, Z1)
-	ADDQ R8, DX
-	STOREZ32(Z2, Z3)
-	ADDQ R8, DX
-	STOREZ32(Z4, Z5)
-	ADDQ R8, DX
-	STOREZ32(Z6, Z7)
+	STORE4Z32
 	ADDQ R8, DX
 	STOREZ32(Z8, Z9)
 	ADDQ R8, DX
@@ -372,18 +372,98 @@ qstore:
 	MOVQ bias+56(FP), BX
 	TESTQ BX, BX
 	JEQ qnobias
-	BIASZ32(0, Z14, Z0, Z1)
-	BIASZ32(4, Z15, Z2, Z3)
-	BIASZ32(8, Z14, Z4, Z5)
-	BIASZ32(12, Z15, Z6, Z7)
+	BIAS4Z32(Z14, Z15)
 
 qnobias:
-	STOREZ32(Z0, Z1)
+	STORE4Z32
+	VZEROUPPER
+	RET
+
+// FMAZ8x32 adds the outer product of one row of B (halves at bl and bh)
+// and two 4-float columns of A (a0..a3 and e0..e3) to the 8×32 tile in
+// Z0..Z15, B in Z16, Z17 and A broadcast into Z18, Z19.
+#define FMAZ8x32(bl, bh, a0, a1, a2, a3, e0, e1, e2, e3) \
+	VMOVUPS bl, Z16; VMOVUPS bh, Z17; \
+	VBROADCASTSS a0, Z18; VFMADD231PS Z16, Z18, Z0; VFMADD231PS Z17, Z18, Z1; \
+	VBROADCASTSS a1, Z19; VFMADD231PS Z16, Z19, Z2; VFMADD231PS Z17, Z19, Z3; \
+	VBROADCASTSS a2, Z18; VFMADD231PS Z16, Z18, Z4; VFMADD231PS Z17, Z18, Z5; \
+	VBROADCASTSS a3, Z19; VFMADD231PS Z16, Z19, Z6; VFMADD231PS Z17, Z19, Z7; \
+	VBROADCASTSS e0, Z18; VFMADD231PS Z16, Z18, Z8; VFMADD231PS Z17, Z18, Z9; \
+	VBROADCASTSS e1, Z19; VFMADD231PS Z16, Z19, Z10; VFMADD231PS Z17, Z19, Z11; \
+	VBROADCASTSS e2, Z18; VFMADD231PS Z16, Z18, Z12; VFMADD231PS Z17, Z18, Z13; \
+	VBROADCASTSS e3, Z19; VFMADD231PS Z16, Z19, Z14; VFMADD231PS Z17, Z19, Z15
+
+// func conv8x32Avx512(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32)
+//
+// conv4x32Avx512 for A at a0 (rows 0..3) and at a1 (rows 4..7) together:
+// the same reads of B, the same chains and store, bias[0..7].
+TEXT ·conv8x32Avx512(SB), NOSPLIT, $0-72
+	MOVQ kc+0(FP), CX
+	MOVQ a0+8(FP), SI
+	MOVQ a1+16(FP), R11
+	MOVQ b0+24(FP), DI
+	MOVQ b1+32(FP), R10
+	MOVQ off+40(FP), R9
+	MOVQ c+48(FP), DX
+	MOVQ ldc+56(FP), R8
+	SHLQ $2, R8
+	ZEROZ12
+	VPXORD Z12, Z12, Z12
+	VPXORD Z13, Z13, Z13
+	VPXORD Z14, Z14, Z14
+	VPXORD Z15, Z15, Z15
+	MOVQ CX, BX
+	ANDQ $3, BX
+	SHRQ $2, CX
+	JZ etail
+
+eloop4:
+	MOVLQSX 0(R9), AX
+	FMAZ8x32((DI)(AX*4), (R10)(AX*4), 0(SI), 4(SI), 8(SI), 12(SI), 0(R11), 4(R11), 8(R11), 12(R11))
+	MOVLQSX 4(R9), AX
+	FMAZ8x32((DI)(AX*4), (R10)(AX*4), 24(SI), 28(SI), 32(SI), 36(SI), 24(R11), 28(R11), 32(R11), 36(R11))
+	MOVLQSX 8(R9), AX
+	FMAZ8x32((DI)(AX*4), (R10)(AX*4), 48(SI), 52(SI), 56(SI), 60(SI), 48(R11), 52(R11), 56(R11), 60(R11))
+	MOVLQSX 12(R9), AX
+	FMAZ8x32((DI)(AX*4), (R10)(AX*4), 72(SI), 76(SI), 80(SI), 84(SI), 72(R11), 76(R11), 80(R11), 84(R11))
+	ADDQ $96, SI
+	ADDQ $96, R11
+	ADDQ $16, R9
+	DECQ CX
+	JNZ eloop4
+
+etail:
+	TESTQ BX, BX
+	JZ estore
+
+eloop1:
+	MOVLQSX 0(R9), AX
+	FMAZ8x32((DI)(AX*4), (R10)(AX*4), 0(SI), 4(SI), 8(SI), 12(SI), 0(R11), 4(R11), 8(R11), 12(R11))
+	ADDQ $24, SI
+	ADDQ $24, R11
+	ADDQ $4, R9
+	DECQ BX
+	JNZ eloop1
+
+estore:
+	MOVQ bias+64(FP), BX
+	TESTQ BX, BX
+	JEQ enobias
+	BIAS4Z32(Z18, Z19)
+	BIASZ32(16, Z18, Z8, Z9)
+	BIASZ32(20, Z19, Z10, Z11)
+	BIASZ32(24, Z18, Z12, Z13)
+	BIASZ32(28, Z19, Z14, Z15)
+
+enobias:
+	STORE4Z32
 	ADDQ R8, DX
-	STOREZ32(Z2, Z3)
+	STOREZ32(Z8, Z9)
 	ADDQ R8, DX
-	STOREZ32(Z4, Z5)
+	STOREZ32(Z10, Z11)
 	ADDQ R8, DX
-	STOREZ32(Z6, Z7)
+	STOREZ32(Z12, Z13)
+	ADDQ R8, DX
+	STOREZ32(Z14, Z15)
 	VZEROUPPER
 	RET

@@ -169,6 +169,19 @@ func conv4x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias 
 	store4x32(&t, c, ldc)
 }
 
+func conv8x32(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	conv4x32(kc, a0, b0, b1, off, c, ldc, bias)
+	conv4x32(kc, a1, b0, b1, off, (*float32)(unsafe.Add(unsafe.Pointer(c), 4*ldc*4)), ldc, biasAdd(bias, 4))
+}
+
+// biasAdd returns bias advanced by r rows, or nil.
+func biasAdd(bias *float32, r int) *float32 {
+	if bias == nil {
+		return nil
+	}
+	return (*float32)(unsafe.Add(unsafe.Pointer(bias), r*4))
+}
+
 // tile6x32 is the scratch of a 6×32 tile where a 4-row tile has no kernel
 // of its own.
 type tile6x32 [6 * 32]float32

@@ -174,7 +174,8 @@ func wideConvForms() []wideConvForm {
 }
 
 // BenchmarkConvTileForms times 32 output positions of the convolution tile
-// on AVX-512, as two 6×16 tiles and as one 6×32 tile, B read through the
+// on AVX-512, as two 6×16 tiles and as one 6×32 tile, and 16 output
+// channels as 6×32, 6×32 and 4×32 tiles or as two 8×32 tiles, B read through the
 // offsets of a 3×3 kernel over a 34-wide padded image that stays in L1, at
 // the k depths of the cnn models (3, 16 and 32 input channels).
 func BenchmarkConvTileForms(b *testing.B) {
@@ -206,5 +207,29 @@ func BenchmarkConvTileForms(b *testing.B) {
 		b.Run(fmt.Sprintf("kc=%d/6x32", kc), func(b *testing.B) {
 			cpupeak.Bench(b, flops, func() { conv6x32Avx512(kc, &a[0], &x[0], &x[16], &off[0], &t[0], 32, nil) })
 		})
+		// 16 output channels over 32 positions: 6 + 6 + 4 rows, or 8 + 8.
+		var t16 [16 * 32]float32
+		b.Run(fmt.Sprintf("kc=%d/16rows-6x32+6x32+4x32", kc), func(b *testing.B) {
+			cpupeak.Bench(b, 2*float64(16*32*kc), func() {
+				conv6x32Avx512(kc, &a[0], &x[0], &x[16], &off[0], &t16[0], 32, nil)
+				conv6x32Avx512(kc, &a[0], &x[0], &x[16], &off[0], &t16[6*32], 32, nil)
+				conv4x32Avx512(kc, &a[0], &x[0], &x[16], &off[0], &t16[12*32], 32, nil)
+			})
+		})
+		b.Run(fmt.Sprintf("kc=%d/16rows-8x32+8x32", kc), func(b *testing.B) {
+			cpupeak.Bench(b, 2*float64(16*32*kc), func() {
+				conv8x32Avx512(kc, &a[0], &a[0], &x[0], &x[16], &off[0], &t16[0], 32, nil)
+				conv8x32Avx512(kc, &a[0], &a[0], &x[0], &x[16], &off[0], &t16[8*32], 32, nil)
+			})
+		})
 	}
+}
+
+// eightConvForms are the 8×32 tile's dispatch and its AVX-512 form.
+func eightConvForms() map[string]func(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	forms := map[string]func(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32){"Conv8x32": Conv8x32}
+	if useAVX512 {
+		forms["AVX-512"] = conv8x32Avx512
+	}
+	return forms
 }

@@ -60,6 +60,19 @@ func Conv4x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias 
 	conv4x32(kc, a, b0, b1, off, c, ldc, bias)
 }
 
+// RowTiles4 reports whether Conv4x32 and Conv8x32 run kernels of their own
+// (the AVX-512 forms), so that blocks of 4 rows cost 4 rows; elsewhere
+// they compute 6 rows and keep 4.
+func RowTiles4() bool { return false }
+
+// Conv8x32 is Conv4x32 on two strips of A: it stores the 8×32 tile whose
+// rows r < 4 are Conv4x32 with A at a0 and rows r ≥ 4 Conv4x32 with A at
+// a1 (each strip in 6-float columns, its first four rows used) and bias
+// from bias[4], with the bits of those two calls.
+func Conv8x32(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	conv8x32(kc, a0, a1, b0, b1, off, c, ldc, bias)
+}
+
 // Transpose8x8 stores the transpose of the 8×8 block src[r·lds+c] at
 // dst[c·ldd+r].
 func Transpose8x8(src *float32, lds int, dst *float32, ldd int) { transpose8x8(src, lds, dst, ldd) }

@@ -23,3 +23,8 @@ type wideConvForm struct {
 func wideConvForms() []wideConvForm {
 	return []wideConvForm{{"Conv6x32", 6, Conv6x32}, {"Conv4x32", 4, Conv4x32}}
 }
+
+// eightConvForms are the 8×32 tile's implementations: the dispatch alone.
+func eightConvForms() map[string]func(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	return map[string]func(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32){"Conv8x32": Conv8x32}
+}

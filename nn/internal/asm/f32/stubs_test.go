@@ -312,6 +312,33 @@ func TestConv6x32MatchesLoop(t *testing.T) {
 	}
 }
 
+func TestConv8x32MatchesLoop(t *testing.T) {
+	// Conv8x32 and its AVX-512 form against two calls of the 4×32 loop
+	// (conv8x32), A in two strips, with and without the bias, at k depths
+	// with every remainder of the four-deep unrolling; c past the 32
+	// columns and the 8 rows is never written.
+	rng := rand.New(rand.NewPCG(19, 20))
+	for _, kc := range []int{1, 2, 3, 4, 5, 7, 72, 144} {
+		a0, a1 := randFloats(rng, 6*kc), randFloats(rng, 6*kc)
+		b := randFloats(rng, 600)
+		off := make([]int32, kc)
+		for p := range off {
+			off[p] = int32(rng.IntN(400 - 16))
+		}
+		bias := randFloats(rng, 8)
+		for _, bp := range []*float32{nil, &bias[0]} {
+			const ldc = 37
+			want := nanFloats(9 * ldc)
+			conv8x32(kc, &a0[0], &a1[0], &b[0], &b[183], &off[0], &want[0], ldc, bp)
+			for name, fn := range eightConvForms() {
+				got := nanFloats(9 * ldc)
+				fn(kc, &a0[0], &a1[0], &b[0], &b[183], &off[0], &got[0], ldc, bp)
+				requireBits(t, want, got, "%s kc=%d bias=%t", name, kc, bp != nil)
+			}
+		}
+	}
+}
+
 func TestCopyKernels(t *testing.T) {
 	// The copies equal the Go builtin copy row by row (common practice),
 	// and write nothing outside the rows.
