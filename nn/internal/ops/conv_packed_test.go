@@ -619,7 +619,8 @@ func TestConvDriverMatchesStripTiles(t *testing.T) {
 	// (one chain of fused multiply-adds in the order of p, then the bias
 	// with one rounding: the kernels' contract, which the f32 tests check
 	// against math/big), whether the driver runs the strip alone, paired
-	// with its neighbour in a 6×32 or 4×32 tile, or through the edge tile:
+	// with its neighbour in a 6×32, 4×32 or 8×32 tile, in a row of 128
+	// (one output channel), or through the edge tile:
 	// strip counts even and odd, output rows whole and not, row counts with
 	// every remainder of 6 that chooses blocks of 4, in both in-place modes.
 	rng := rand.New(rand.NewSource(49))

@@ -9,19 +9,21 @@ import "github.com/apportion/apportion/nn/internal/asm/f32"
 // a time. With a unit column stride, row p = (ci, i, j) of a strip is 16
 // contiguous values of the padded image at a fixed offset, so
 // f32.Conv6x16 reads the strip in place through a table of offsets, and
-// f32.Conv6x32 two strips side by side (twice the independent chains of
-// fused multiply-adds, each weight loaded once for both); other strides
-// pack it (sconvPackStrip, the sgemmPackPanelB layout). Every
-// sgemmMR-row strip of the packed weights runs against a strip while it is
-// in L1. The weights are packed once per op instance (they are model
-// constants) in the sgemmPackBlockA layout over the whole K, so each output
+// f32.Conv6x32 (f32.Conv4x32, f32.Conv8x32 for blocks of 4 rows) two
+// strips side by side (twice the independent chains of fused
+// multiply-adds, each weight loaded once for both); other strides pack it
+// (sconvPackStrip, the sgemmPackPanelB layout). Every block of rows of the
+// packed weights (sconvBlock) runs against a strip while it is in L1. The
+// weights are packed once per op instance (they are model constants), one
+// strip per block in the sgemmPackBlockA layout over the whole K, so each output
 // element is one chain of fused multiply-adds over p = 0..K−1 plus the bias
 // added with one rounding when the tile is stored, whatever else is in the
 // batch.
 //
-// Orientation: output channels are the M side. That wastes 2 of 18 kernel
-// rows for 16 channels, but the kernel writes straight into NCHW rows and
-// one strip of positions serves every channel tile while it is in L1.
+// Orientation: output channels are the M side. Without the 4-row kernels
+// that wastes 2 of 18 kernel rows for 16 channels, but the kernel writes
+// straight into NCHW rows and one strip of positions serves every channel
+// tile while it is in L1.
 // The transposed orientation (M = positions, N = channels, a transposed
 // write-back) measured slower on every cnn shape (BenchmarkConvOrientation;
 // the figures are in DEVELOPERS.md).
@@ -178,6 +180,9 @@ const (
 // sconvNW is the width of the widest convolution tile, f32.Conv6x32: two
 // strips of sgemmNR output positions.
 const sconvNW = 2 * sgemmNR
+
+// sconvRowNW is the width of the one-row convolution tile, f32.Conv1x128.
+const sconvRowNW = 128
 
 // sconvTile is the scratch of one edge tile of the driver, for tiles of
 // sgemmMR rows up to sconvNW wide.
@@ -384,7 +389,8 @@ func sconvStridedSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip []fl
 }
 
 // sconvGridSample is sconvSample for sconvGrid: the kernel writes whole
-// tiles, bias included, two strips at a time as in sconvRowsSample, of the
+// tiles, bias included, two strips at a time as in sconvRowsSample (a row
+// of 128 positions at a time for one output channel), of the
 // scratch matrix cs (rows rounded up to sgemmMR, pq grid positions), and
 // the valid positions are copied to y.
 func sconvGridSample(pl *sconvPlan, xp, wp []float32, m int, b, y, cs []float32) {
@@ -392,7 +398,20 @@ func sconvGridSample(pl *sconvPlan, xp, wp []float32, m int, b, y, cs []float32)
 	k := g.k()
 	pq := pl.pq
 	cs = cs[:pl.scratchLen(m)]
-	for q0 := 0; q0 < pq; q0 += sconvNW {
+	q1 := 0 // where the tiles of 32 or 16 positions start
+	if m == 1 && f32.RowTiles4() {
+		// One output channel (the input gradient of a one-channel image):
+		// a row of 128 positions per call, eight chains, instead of a
+		// block of 4 rows with one valid.
+		var bp *float32
+		if b != nil {
+			bp = &b[0]
+		}
+		for ; q1+sconvRowNW <= pq; q1 += sconvRowNW {
+			f32.Conv1x128(k, &wp[0], &xp[q1], &pl.off[0], &cs[q1], bp)
+		}
+	}
+	for q0 := q1; q0 < pq; q0 += sconvNW {
 		for ir, s := 0, 0; ir < m; s++ {
 			blk := sconvBlock(m, ir)
 			a := &wp[s*sgemmMR*k]

@@ -467,3 +467,58 @@ enobias:
 	STOREZ32(Z14, Z15)
 	VZEROUPPER
 	RET
+
+// FMAZ1x128 adds a (broadcast into Z16) times 128 floats of B at b to the
+// row in Z0..Z7, B read by the fused multiply-adds.
+#define FMAZ1x128(b0, b1, b2, b3, b4, b5, b6, b7, a) \
+	VBROADCASTSS a, Z16; \
+	VFMADD231PS b0, Z16, Z0; VFMADD231PS b1, Z16, Z1; VFMADD231PS b2, Z16, Z2; VFMADD231PS b3, Z16, Z3; \
+	VFMADD231PS b4, Z16, Z4; VFMADD231PS b5, Z16, Z5; VFMADD231PS b6, Z16, Z6; VFMADD231PS b7, Z16, Z7
+
+// func conv1x128Avx512(kc int, a, b *float32, off *int32, c *float32, bias *float32)
+//
+// Row 0 of conv6x16Avx512 on eight strips of 16 at once: c[j], j < 128,
+// the same chains and store.
+TEXT ·conv1x128Avx512(SB), NOSPLIT, $0-48
+	MOVQ kc+0(FP), CX
+	MOVQ a+8(FP), SI
+	MOVQ b+16(FP), DI
+	MOVQ off+24(FP), R9
+	MOVQ c+32(FP), DX
+	ZEROZ6
+	VPXORD Z6, Z6, Z6
+	VPXORD Z7, Z7, Z7
+
+oloop:
+	MOVLQSX 0(R9), AX
+	LEAQ (DI)(AX*4), R10
+	FMAZ1x128(0(R10), 64(R10), 128(R10), 192(R10), 256(R10), 320(R10), 384(R10), 448(R10), 0(SI))
+	ADDQ $24, SI
+	ADDQ $4, R9
+	DECQ CX
+	JNZ oloop
+
+	MOVQ bias+40(FP), BX
+	TESTQ BX, BX
+	JEQ onobias
+	VBROADCASTSS 0(BX), Z16
+	VADDPS Z16, Z0, Z0
+	VADDPS Z16, Z1, Z1
+	VADDPS Z16, Z2, Z2
+	VADDPS Z16, Z3, Z3
+	VADDPS Z16, Z4, Z4
+	VADDPS Z16, Z5, Z5
+	VADDPS Z16, Z6, Z6
+	VADDPS Z16, Z7, Z7
+
+onobias:
+	VMOVUPS Z0, (DX)
+	VMOVUPS Z1, 64(DX)
+	VMOVUPS Z2, 128(DX)
+	VMOVUPS Z3, 192(DX)
+	VMOVUPS Z4, 256(DX)
+	VMOVUPS Z5, 320(DX)
+	VMOVUPS Z6, 384(DX)
+	VMOVUPS Z7, 448(DX)
+	VZEROUPPER
+	RET

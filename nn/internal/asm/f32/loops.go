@@ -182,6 +182,28 @@ func biasAdd(bias *float32, r int) *float32 {
 	return (*float32)(unsafe.Add(unsafe.Pointer(bias), r*4))
 }
 
+func conv1x128(kc int, a, b *float32, off *int32, c *float32, bias *float32) {
+	var t tile6x16
+	var b6 [6]float32
+	if bias != nil {
+		b6[0] = *bias
+	}
+	cs := unsafe.Slice(c, 128)
+	for j := 0; j < 128; j += 16 {
+		conv6x16(kc, a, (*float32)(unsafe.Add(unsafe.Pointer(b), j*4)), off, &t[0], 16, bias1(bias, &b6))
+		copy(cs[j:j+16], t[:16])
+	}
+}
+
+// bias1 returns a 6-row bias for a 6-row kernel computing one row: nil, or
+// b6 (holding bias[0] and zeros).
+func bias1(bias *float32, b6 *[6]float32) *float32 {
+	if bias == nil {
+		return nil
+	}
+	return &b6[0]
+}
+
 // tile6x32 is the scratch of a 6×32 tile where a 4-row tile has no kernel
 // of its own.
 type tile6x32 [6 * 32]float32

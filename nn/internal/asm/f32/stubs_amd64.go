@@ -142,6 +142,19 @@ func Conv8x32(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, 
 	Conv4x32(kc, a1, b0, b1, off, (*float32)(unsafe.Add(unsafe.Pointer(c), 4*ldc*4)), ldc, biasAdd(bias, 4))
 }
 
+// Conv1x128 is Conv6x16 for one row over 128 positions: it stores
+// c[j] = Σ_p a[6p]·b[off[p]+j] (+ bias[0]), j < 128, the chains and store
+// of row 0 of Conv6x16 on the eight strips of 16 at b, b+16, …; A keeps its
+// 6-float columns, of which it reads the first; kc ≥ 1. Only its AVX-512
+// form is fast: callers check f32.RowTiles4 first.
+func Conv1x128(kc int, a, b *float32, off *int32, c *float32, bias *float32) {
+	if useAVX512 {
+		conv1x128Avx512(kc, a, b, off, c, bias)
+		return
+	}
+	conv1x128(kc, a, b, off, c, bias)
+}
+
 // Transpose8x8 stores the transpose of the 8×8 block src[r·lds+c] at
 // dst[c·ldd+r].
 func Transpose8x8(src *float32, lds int, dst *float32, ldd int) {
@@ -505,3 +518,20 @@ func conv4x32Avx512(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int,
 //
 //go:noescape
 func conv8x32Avx512(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32)
+
+// conv1x128Avx512 is, on AVX-512 (eight ZMM chains, B read by the fused
+// multiply-adds, each element of A broadcast once),
+//
+//	for j := 0; j < 128; j++ {
+//		var t float32
+//		for p := 0; p < kc; p++ {
+//			t = fma(a[6*p], b[off[p]+j], t)
+//		}
+//		if bias != nil {
+//			t += bias[0]
+//		}
+//		c[j] = t
+//	}
+//
+//go:noescape
+func conv1x128Avx512(kc int, a, b *float32, off *int32, c *float32, bias *float32)

@@ -233,3 +233,12 @@ func eightConvForms() map[string]func(kc int, a0, a1, b0, b1 *float32, off *int3
 	}
 	return forms
 }
+
+// rowConvForms are the 1×128 tile's dispatch and its AVX-512 form.
+func rowConvForms() map[string]func(kc int, a, b *float32, off *int32, c *float32, bias *float32) {
+	forms := map[string]func(kc int, a, b *float32, off *int32, c *float32, bias *float32){"Conv1x128": Conv1x128}
+	if useAVX512 {
+		forms["AVX-512"] = conv1x128Avx512
+	}
+	return forms
+}

@@ -73,6 +73,14 @@ func Conv8x32(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, 
 	conv8x32(kc, a0, a1, b0, b1, off, c, ldc, bias)
 }
 
+// Conv1x128 is Conv6x16 for one row over 128 positions: it stores
+// c[j] = Σ_p a[6p]·b[off[p]+j] (+ bias[0]), j < 128, the chains and store
+// of row 0 of Conv6x16 on the eight strips of 16 at b, b+16, …; A keeps its
+// 6-float columns, of which it reads the first; kc ≥ 1.
+func Conv1x128(kc int, a, b *float32, off *int32, c *float32, bias *float32) {
+	conv1x128(kc, a, b, off, c, bias)
+}
+
 // Transpose8x8 stores the transpose of the 8×8 block src[r·lds+c] at
 // dst[c·ldd+r].
 func Transpose8x8(src *float32, lds int, dst *float32, ldd int) { transpose8x8(src, lds, dst, ldd) }

@@ -28,3 +28,8 @@ func wideConvForms() []wideConvForm {
 func eightConvForms() map[string]func(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
 	return map[string]func(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32){"Conv8x32": Conv8x32}
 }
+
+// rowConvForms are the 1×128 tile's implementations: the dispatch alone.
+func rowConvForms() map[string]func(kc int, a, b *float32, off *int32, c *float32, bias *float32) {
+	return map[string]func(kc int, a, b *float32, off *int32, c *float32, bias *float32){"Conv1x128": Conv1x128}
+}

@@ -339,6 +339,31 @@ func TestConv8x32MatchesLoop(t *testing.T) {
 	}
 }
 
+func TestConv1x128MatchesLoop(t *testing.T) {
+	// Conv1x128 and its AVX-512 form against the loop (row 0 of the 6×16
+	// loop on eight strips), with and without the bias; c past the 128
+	// positions is never written.
+	rng := rand.New(rand.NewPCG(21, 22))
+	for _, kc := range []int{1, 2, 5, 9, 72} {
+		a := randFloats(rng, 6*kc)
+		b := randFloats(rng, 800)
+		off := make([]int32, kc)
+		for p := range off {
+			off[p] = int32(rng.IntN(800 - 128))
+		}
+		bias := randFloats(rng, 1)
+		for _, bp := range []*float32{nil, &bias[0]} {
+			want := nanFloats(130)
+			conv1x128(kc, &a[0], &b[0], &off[0], &want[0], bp)
+			for name, fn := range rowConvForms() {
+				got := nanFloats(130)
+				fn(kc, &a[0], &b[0], &off[0], &got[0], bp)
+				requireBits(t, want, got, "%s kc=%d bias=%t", name, kc, bp != nil)
+			}
+		}
+	}
+}
+
 func TestCopyKernels(t *testing.T) {
 	// The copies equal the Go builtin copy row by row (common practice),
 	// and write nothing outside the rows.
