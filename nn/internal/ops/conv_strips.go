@@ -68,14 +68,14 @@ func sconvPackWeights(w []float32, m, k int, dst []float32) {
 
 // sconvBlock returns the rows of the block of the product's m rows (output
 // channels) that starts at row ir: sgemmMR for the 6-row kernels, or 4
-// where the CPU has 4-row kernels (f32.RowTiles4) and that wastes fewer
+// where the CPU has 4-row kernels (f32.WideTiles) and that wastes fewer
 // rows: every block when m is a multiple of 8 but not of 6 (pairs of them
 // run as f32.Conv8x32), else the last 4 or fewer and the last 7 or 8 as two
 // blocks of 4. A block starts at most 4 rows before m, so a 6-row kernel on
 // any block reads and writes inside buffers of m rounded up to a multiple
 // of sgemmMR (m mod 6 is 2 or 4 wherever blocks of 4 start inside).
 func sconvBlock(m, ir int) int {
-	if !f32.RowTiles4() {
+	if !f32.WideTiles() {
 		return sgemmMR
 	}
 	if left := m - ir; m%8 == 0 && m%sgemmMR != 0 || left <= 4 || left == 7 || left == 8 {
@@ -399,7 +399,7 @@ func sconvGridSample(pl *sconvPlan, xp, wp []float32, m int, b, y, cs []float32)
 	pq := pl.pq
 	cs = cs[:pl.scratchLen(m)]
 	q1 := 0 // where the tiles of 32 or 16 positions start
-	if m == 1 && f32.RowTiles4() {
+	if m == 1 && f32.WideTiles() {
 		// One output channel (the input gradient of a one-channel image):
 		// a row of 128 positions per call, eight chains, instead of a
 		// block of 4 rows with one valid.

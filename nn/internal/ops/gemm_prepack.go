@@ -228,6 +228,14 @@ func sgemmBlock(tA bool, a []float32, lda, ic, mc, pc, kc, nc, jr0 int, alpha, b
 	for jr := jr0; jr < nc; jr += sgemmNR {
 		nr := min(sgemmNR, nc-jr)
 		bp := &bufB[jr*kc]
+		if f32.WideTiles() && jr+2*sgemmNR <= nc {
+			// Two whole strips of B side by side: the 6×32 tile.
+			for ir := 0; ir < full; ir += sgemmMR {
+				f32.Gemm6x32Strided(kc, &a[(ic+ir)*lda+pc], lda, 1, bp, &bufB[(jr+sgemmNR)*kc], &c[ir*ldc+jr], ldc, alpha, bet)
+			}
+			jr += sgemmNR
+			continue
+		}
 		for ir := 0; ir < full; ir += sgemmMR {
 			ap := &a[(ic+ir)*lda+pc]
 			ci := ir*ldc + jr

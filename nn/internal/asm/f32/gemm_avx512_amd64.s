@@ -1,6 +1,7 @@
 //go:build amd64 && !purego
 
 #include "textflag.h"
+#include "gemm_amd64.h"
 
 // The AVX-512 form of the 6×16 tile: row r of the tile lives in one ZMM
 // register, Z(r), a row of B in Z12, and each element of A is broadcast
@@ -100,14 +101,7 @@ done:
 // gemm6x16StridedAsm on AVX-512: element (r, p) of A broadcast from
 // a[r·rs + p·ps]; the same chains and epilogue as gemm6x16Avx512.
 TEXT ·gemm6x16StridedAvx512(SB), NOSPLIT, $0-64
-	MOVQ kc+0(FP), CX
-	MOVQ a+8(FP), SI
-	MOVQ rs+16(FP), R9
-	SHLQ $2, R9
-	LEAQ (R9)(R9*2), R10
-	LEAQ (R9)(R9*4), R11
-	MOVQ ps+24(FP), R12
-	SHLQ $2, R12
+	STRIDEDA
 	MOVQ b+32(FP), DI
 	MOVQ c+40(FP), DX
 	MOVQ ldc+48(FP), R8
@@ -238,6 +232,10 @@ knobias:
 	STOREZ32(Z0, Z1); ADDQ R8, DX; STOREZ32(Z2, Z3); ADDQ R8, DX; \
 	STOREZ32(Z4, Z5); ADDQ R8, DX; STOREZ32(Z6, Z7)
 
+// STORE6Z32 stores the six rows of the 6×32 tile, Z0..Z11.
+#define STORE6Z32 \
+	STORE4Z32; ADDQ R8, DX; STOREZ32(Z8, Z9); ADDQ R8, DX; STOREZ32(Z10, Z11)
+
 // FMAZ6x32 adds the outer product of one row of B (halves at bl and bh)
 // and one 6-float column of A (a0..a5) to the 6×32 tile.
 #define FMAZ6x32(bl, bh, a0, a1, a2, a3, a4, a5) \
@@ -305,11 +303,7 @@ wstore:
 	BIASZ32(20, Z15, Z10, Z11)
 
 wnobias:
-	STORE4Z32
-	ADDQ R8, DX
-	STOREZ32(Z8, Z9)
-	ADDQ R8, DX
-	STOREZ32(Z10, Z11)
+	STORE6Z32
 	VZEROUPPER
 	RET
 
@@ -520,5 +514,77 @@ onobias:
 	VMOVUPS Z5, 320(DX)
 	VMOVUPS Z6, 384(DX)
 	VMOVUPS Z7, 448(DX)
+	VZEROUPPER
+	RET
+
+// ACCZ32 stores one 32-wide tile row plus beta (broadcast in Z15) times the
+// row at DX: DX[j] = fma(beta, DX[j], r[j]), as EPILOGUEZ does.
+#define ACCZ32(r0, r1) \
+	VMOVUPS (DX), Z12; VMOVUPS 64(DX), Z13; \
+	VFMADD231PS Z15, Z12, r0; VFMADD231PS Z15, Z13, r1; \
+	STOREZ32(r0, r1)
+
+// func gemm6x32StridedAvx512(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, alpha, beta float32)
+//
+// gemm6x16StridedAvx512 on the 6×32 tile of Z0..Z11 (FMAZ6x32), row p of
+// B's halves at b0[16p] and b1[16p]; the epilogue of EPILOGUEZ on both
+// halves of each row.
+TEXT ·gemm6x32StridedAvx512(SB), NOSPLIT, $0-72
+	STRIDEDA
+	MOVQ b0+32(FP), DI
+	MOVQ b1+40(FP), R13
+	MOVQ c+48(FP), DX
+	MOVQ ldc+56(FP), R8
+	SHLQ $2, R8
+	ZEROZ12
+
+xloop:
+	FMAZ6x32(0(DI), 0(R13), (SI), (SI)(R9*1), (SI)(R9*2), (SI)(R10*1), (SI)(R9*4), (SI)(R11*1))
+	ADDQ R12, SI
+	ADDQ $64, DI
+	ADDQ $64, R13
+	DECQ CX
+	JNZ xloop
+
+	MOVL alpha+64(FP), AX
+	CMPL AX, $0x3f800000
+	JEQ xscaled
+	VBROADCASTSS alpha+64(FP), Z14
+	VMULPS Z14, Z0, Z0
+	VMULPS Z14, Z1, Z1
+	VMULPS Z14, Z2, Z2
+	VMULPS Z14, Z3, Z3
+	VMULPS Z14, Z4, Z4
+	VMULPS Z14, Z5, Z5
+	VMULPS Z14, Z6, Z6
+	VMULPS Z14, Z7, Z7
+	VMULPS Z14, Z8, Z8
+	VMULPS Z14, Z9, Z9
+	VMULPS Z14, Z10, Z10
+	VMULPS Z14, Z11, Z11
+
+xscaled:
+	VXORPS X13, X13, X13
+	MOVSS beta+68(FP), X15
+	UCOMISS X13, X15
+	JNE xaccumulate
+	JP xaccumulate
+	STORE6Z32
+	VZEROUPPER
+	RET
+
+xaccumulate:
+	VBROADCASTSS beta+68(FP), Z15
+	ACCZ32(Z0, Z1)
+	ADDQ R8, DX
+	ACCZ32(Z2, Z3)
+	ADDQ R8, DX
+	ACCZ32(Z4, Z5)
+	ADDQ R8, DX
+	ACCZ32(Z6, Z7)
+	ADDQ R8, DX
+	ACCZ32(Z8, Z9)
+	ADDQ R8, DX
+	ACCZ32(Z10, Z11)
 	VZEROUPPER
 	RET

@@ -107,6 +107,11 @@ func gemm6x16Edge(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha,
 	store6x16(&t, mr, c, ldc, alpha, beta)
 }
 
+func gemm6x32Strided(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, alpha, beta float32) {
+	gemm6x16Strided(kc, a, rs, ps, b0, c, ldc, alpha, beta)
+	gemm6x16Strided(kc, a, rs, ps, b1, (*float32)(unsafe.Add(unsafe.Pointer(c), 16*4)), ldc, alpha, beta)
+}
+
 func gemm1x32(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alpha, beta float32) {
 	as := unsafe.Slice(a, (kc-1)*inca+1)
 	bs := unsafe.Slice(b, (kc-1)*ldb+32)

@@ -51,6 +51,19 @@ func Gemm6x16Strided(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alp
 	gemm6x16Strided(kc, a, rs, ps, b, c, ldc, alpha, beta)
 }
 
+// Gemm6x32Strided is Gemm6x16Strided on two packed strips of B side by
+// side: it stores the 6×32 tile whose columns j < 16 are Gemm6x16Strided
+// with B at b0 and whose columns j ≥ 16 are Gemm6x16Strided with B at b1,
+// with the bits of those two calls.
+func Gemm6x32Strided(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, alpha, beta float32) {
+	if useAVX512 {
+		gemm6x32StridedAvx512(kc, a, rs, ps, b0, b1, c, ldc, alpha, beta)
+		return
+	}
+	Gemm6x16Strided(kc, a, rs, ps, b0, c, ldc, alpha, beta)
+	Gemm6x16Strided(kc, a, rs, ps, b1, (*float32)(unsafe.Add(unsafe.Pointer(c), 16*4)), ldc, alpha, beta)
+}
+
 // Gemm6x16Edge is Gemm6x16Strided for the bottom edge of C: it reads and
 // stores only rows r < mr (1 ≤ mr ≤ 6) of c, with the bits of a full tile,
 // and reads all six rows of A.
@@ -124,10 +137,11 @@ func Conv4x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias 
 	conv4x32(kc, a, b0, b1, off, c, ldc, bias)
 }
 
-// RowTiles4 reports whether Conv4x32 and Conv8x32 run kernels of their own
-// (the AVX-512 forms), so that blocks of 4 rows cost 4 rows; elsewhere
-// they compute 6 rows and keep 4.
-func RowTiles4() bool { return useAVX512 }
+// WideTiles reports whether the 32-wide tiles (Conv6x32, Conv4x32,
+// Conv8x32, Gemm6x32Strided) and Conv1x128 run kernels of their own (the
+// AVX-512 forms), so that blocks of 4 rows cost 4 rows and a wide tile
+// beats two narrow ones; elsewhere they run the 6×16 kernels.
+func WideTiles() bool { return useAVX512 }
 
 // Conv8x32 is Conv4x32 on two strips of A: it stores the 8×32 tile whose
 // rows r < 4 are Conv4x32 with A at a0 and rows r ≥ 4 Conv4x32 with A at
@@ -146,7 +160,7 @@ func Conv8x32(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, 
 // c[j] = Σ_p a[6p]·b[off[p]+j] (+ bias[0]), j < 128, the chains and store
 // of row 0 of Conv6x16 on the eight strips of 16 at b, b+16, …; A keeps its
 // 6-float columns, of which it reads the first; kc ≥ 1. Only its AVX-512
-// form is fast: callers check f32.RowTiles4 first.
+// form is fast: callers check f32.WideTiles first.
 func Conv1x128(kc int, a, b *float32, off *int32, c *float32, bias *float32) {
 	if useAVX512 {
 		conv1x128Avx512(kc, a, b, off, c, bias)
@@ -535,3 +549,9 @@ func conv8x32Avx512(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc
 //
 //go:noescape
 func conv1x128Avx512(kc int, a, b *float32, off *int32, c *float32, bias *float32)
+
+// gemm6x32StridedAvx512 is gemm6x16StridedAvx512 on two strips of B at
+// once (twelve chains): the same loop for each, the same bits.
+//
+//go:noescape
+func gemm6x32StridedAvx512(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, alpha, beta float32)

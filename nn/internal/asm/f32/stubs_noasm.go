@@ -23,6 +23,14 @@ func Gemm6x16Strided(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alp
 	gemm6x16Strided(kc, a, rs, ps, b, c, ldc, alpha, beta)
 }
 
+// Gemm6x32Strided is Gemm6x16Strided on two packed strips of B side by
+// side: it stores the 6×32 tile whose columns j < 16 are Gemm6x16Strided
+// with B at b0 and whose columns j ≥ 16 are Gemm6x16Strided with B at b1,
+// with the bits of those two calls.
+func Gemm6x32Strided(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, alpha, beta float32) {
+	gemm6x32Strided(kc, a, rs, ps, b0, b1, c, ldc, alpha, beta)
+}
+
 // Gemm6x16Edge is Gemm6x16Strided for the bottom edge of C: it reads and
 // stores only rows r < mr (1 ≤ mr ≤ 6) of c, with the bits of a full tile,
 // and reads all six rows of A.
@@ -60,10 +68,11 @@ func Conv4x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias 
 	conv4x32(kc, a, b0, b1, off, c, ldc, bias)
 }
 
-// RowTiles4 reports whether Conv4x32 and Conv8x32 run kernels of their own
-// (the AVX-512 forms), so that blocks of 4 rows cost 4 rows; elsewhere
-// they compute 6 rows and keep 4.
-func RowTiles4() bool { return false }
+// WideTiles reports whether the 32-wide tiles (Conv6x32, Conv4x32,
+// Conv8x32, Gemm6x32Strided) and Conv1x128 run kernels of their own (the
+// AVX-512 forms), so that blocks of 4 rows cost 4 rows and a wide tile
+// beats two narrow ones; elsewhere they run the 6×16 kernels.
+func WideTiles() bool { return false }
 
 // Conv8x32 is Conv4x32 on two strips of A: it stores the 8×32 tile whose
 // rows r < 4 are Conv4x32 with A at a0 and rows r ≥ 4 Conv4x32 with A at

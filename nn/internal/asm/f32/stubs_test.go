@@ -218,6 +218,29 @@ func TestGemm6x16StridedBits(t *testing.T) {
 	}
 }
 
+func TestGemm6x32StridedMatchesLoop(t *testing.T) {
+	// Gemm6x32Strided (its AVX-512 form on a CPU that has it, two
+	// Gemm6x16Strided calls elsewhere) stores the bits of its loop, two
+	// calls of the strided 6×16 loop, A read in place by rows and by
+	// columns, with every alpha and beta of tileCases; c past the 32
+	// columns is never written.
+	rng := rand.New(rand.NewPCG(23, 24))
+	for _, tc := range tileCases() {
+		kc := tc.kc
+		b := randFloats(rng, 32*kc+16)
+		const ldc = 35
+		c0 := randFloats(rng, 6*ldc)
+		for _, layout := range []struct{ rs, ps, n int }{{kc + 3, 1, 6 * (kc + 3)}, {1, 9, 9 * kc}} {
+			a := randFloats(rng, layout.n)
+			want := append([]float32(nil), c0...)
+			gemm6x32Strided(kc, &a[0], layout.rs, layout.ps, &b[0], &b[16*kc+7], &want[0], ldc, tc.alpha, tc.beta)
+			got := append([]float32(nil), c0...)
+			Gemm6x32Strided(kc, &a[0], layout.rs, layout.ps, &b[0], &b[16*kc+7], &got[0], ldc, tc.alpha, tc.beta)
+			requireBits(t, want, got, "kc=%d rs=%d alpha=%v beta=%v", kc, layout.rs, tc.alpha, tc.beta)
+		}
+	}
+}
+
 func TestGemm6x16EdgeBitsAndBounds(t *testing.T) {
 	// Gemm6x16Edge must store, for the top mr rows of a tile, the bits
 	// Gemm6x16 gives those elements in a full tile (the same fused
