@@ -6,6 +6,7 @@ import (
 	"testing"
 
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/internal/cpupeak"
 	"github.com/apportion/apportion/nn"
 )
 
@@ -114,6 +115,46 @@ func BenchmarkZooParallel(b *testing.B) {
 				batched[i].name = fmt.Sprintf("%s/parallel%d", batched[i].name, par)
 			}
 			runZooCalls(b, name, batched)
+		}
+	}
+}
+
+// BenchmarkZooGradient times nn.Head.Gradient at batches of 64 and 256 (the
+// passes integrated gradients and SmoothGrad make) on each zoo model, and
+// reports GFLOP/s of wall-clock and of thread CPU time (cpupeak.Bench; the
+// call runs on the benchmark's goroutine): 2·MACs of Gemm and Conv from the
+// graph, ×2 for the forward and the input-gradient pass, as bench/compare
+// counts them:
+// go test ./bench -run '^$' -bench ZooGradient -cpu 1
+func BenchmarkZooGradient(b *testing.B) {
+	ctx := context.Background()
+	for _, s := range Zoo {
+		m, err := Build(s)
+		if err != nil {
+			b.Fatal(err)
+		}
+		flops, err := FLOPs(m, s.Input)
+		if err != nil {
+			b.Fatal(err)
+		}
+		h := zooHead(b, s)
+		for _, n := range []int{64, 256} {
+			x := Input(s, n)
+			target := make([]int, n)
+			for i := range target {
+				target[i] = i % s.Outputs
+			}
+			b.Run(fmt.Sprintf("%s/batch%d", s.Name, n), func(b *testing.B) {
+				if _, _, err := h.Gradient(ctx, x, n, target); err != nil {
+					b.Fatal(err)
+				}
+				b.ReportAllocs()
+				cpupeak.Bench(b, 2*float64(flops)*float64(n), func() {
+					if _, _, err := h.Gradient(ctx, x, n, target); err != nil {
+						b.Fatal(err)
+					}
+				})
+			})
 		}
 	}
 }

@@ -5,6 +5,7 @@ import (
 
 	"fmt"
 	"hash"
+	"slices"
 	"strings"
 
 	"github.com/chewxy/hm"
@@ -404,9 +405,9 @@ func (op *convOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value,
 	x, w, y := ts[0].Float32s(), ts[1].Float32s(), out.Float32s()
 	if convFast(c / op.group * g.kh * g.kw) {
 		op.forward32(s, &g, n, c, m, x, w, b, y)
-	} else {
-		convForward(&g, n, c, m, op.group, x, w, b, y)
+		return out, nil
 	}
+	convForward(&g, n, c, m, op.group, x, w, b, y)
 	if op.relu {
 		f32.Relu(y, y)
 	}
@@ -479,6 +480,19 @@ func (op *convOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error)
 	}
 	diff := op.DiffWRT(len(inputs))
 	ret := make(G.Nodes, len(inputs))
+	if op.relu && op.masksInputGrad(inputs[0], diff) {
+		// The input gradient alone: it masks ∂L/∂y itself, sample by
+		// sample, instead of reading a masked copy of the whole batch.
+		back := &convBackOp{convOp: *op, wrt: 0, masked: true}
+		back.relu = false
+		back.slot = new(convSlot)
+		n, err := G.ApplyOp(back, inputs[0], inputs[1], grad, output)
+		if err != nil {
+			return nil, fmt.Errorf("nn: Conv gradient: %w", err)
+		}
+		ret[0] = n
+		return ret, nil
+	}
 	if op.relu {
 		// ∂L/∂v = ∂L/∂y where y > 0: the mask of the Relu this op applies.
 		g, err := reluGrad(output, grad)
@@ -503,14 +517,43 @@ func (op *convOp) SymDiff(inputs G.Nodes, output, grad *G.Node) (G.Nodes, error)
 	return ret, nil
 }
 
-// convBackOp computes one gradient of Conv from (x, w, dy): with respect to
-// x (wrt 0), w (wrt 1) or b (wrt 2).
-type convBackOp struct {
-	convOp
-	wrt int
+// masksInputGrad reports whether the gradient of a Conv with a fused Relu
+// runs as one masked input-gradient op (convBackOp.masked): when the input
+// gradient is the only one taken and it runs on the packed float32 driver
+// (unit strides, the kernels in assembly), where the mask is applied to
+// each sample's ∂L/∂y as it is copied into the padded buffer.
+func (op *convOp) masksInputGrad(x *G.Node, diff []bool) bool {
+	if !diff[0] || slices.Contains(diff[1:], true) || !f32.Asm() {
+		return false
+	}
+	if dt, ok := ElemType(x); !ok || dt != tensor.Float32 {
+		return false
+	}
+	for _, s := range op.strides {
+		if s != 1 {
+			return false
+		}
+	}
+	return true
 }
 
-func (op *convBackOp) Arity() int { return 3 }
+// convBackOp computes one gradient of Conv from (x, w, dy): with respect to
+// x (wrt 0), w (wrt 1) or b (wrt 2). A masked op (wrt 0 only) takes the
+// Conv's output y as a fourth operand and differentiates the fused Relu
+// too: it uses ∂L/∂y where y > 0 and +0 elsewhere in place of dy, the
+// bits reluDiffOp stores.
+type convBackOp struct {
+	convOp
+	wrt    int
+	masked bool
+}
+
+func (op *convBackOp) Arity() int {
+	if op.masked {
+		return 4
+	}
+	return 3
+}
 
 func (op *convBackOp) Type() hm.Type {
 	a := hm.TypeVariable('a')
@@ -518,11 +561,14 @@ func (op *convBackOp) Type() hm.Type {
 	if op.wrt == 2 {
 		return hm.NewFnType(t, t, t, &G.TensorType{Dims: 1, Of: a})
 	}
+	if op.masked {
+		return hm.NewFnType(t, t, t, t, t)
+	}
 	return hm.NewFnType(t, t, t, t)
 }
 
 func (op *convBackOp) InferShape(ds ...G.DimSizer) (tensor.Shape, error) {
-	shapes, err := convShapes(3, ds)
+	shapes, err := convShapes(op.Arity(), ds)
 	if err != nil {
 		return nil, err
 	}
@@ -544,17 +590,17 @@ func (op *convBackOp) Do(vals ...G.Value) (G.Value, error) { return op.UsePreall
 // gradient with unit strides runs as a forward correlation on the packed
 // driver (inputGrad32); the other cases use im2col/col2im and GEMM.
 func (op *convBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Value, err error) {
-	if len(vals) != 3 {
-		return nil, fmt.Errorf("nn: Conv gradient: expected 3 inputs, got %d", len(vals))
+	if len(vals) != op.Arity() {
+		return nil, fmt.Errorf("nn: Conv gradient: expected %d inputs, got %d", op.Arity(), len(vals))
 	}
-	var ts [3]*tensor.Dense
+	var ts [4]*tensor.Dense
 	for i, v := range vals {
 		if ts[i], err = convDense(v, "Conv gradient"); err != nil {
 			return nil, err
 		}
 	}
 	dt := ts[0].Dtype()
-	for _, t := range ts[1:] {
+	for _, t := range ts[1:len(vals)] {
 		if t.Dtype() != dt {
 			return nil, fmt.Errorf("nn: Conv gradient: %w: mixed dtypes %v and %v", ErrShape, dt, t.Dtype())
 		}
@@ -568,6 +614,9 @@ func (op *convBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Va
 	if !ts[2].Shape().Eq(oshp) {
 		return nil, fmt.Errorf("nn: Conv gradient: %w: expected output gradient of shape %v, got %v", ErrShape, oshp, ts[2].Shape())
 	}
+	if op.masked && !ts[3].Shape().Eq(oshp) {
+		return nil, fmt.Errorf("nn: Conv gradient: %w: expected output of shape %v, got %v", ErrShape, oshp, ts[3].Shape())
+	}
 	var rshp tensor.Shape
 	switch op.wrt {
 	case 0:
@@ -577,24 +626,40 @@ func (op *convBackOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (ret G.Va
 	default:
 		rshp = oshp[1:2]
 	}
-	out, err := denseOutput(prealloc, dt, rshp, ts[:]...)
+	out, err := denseOutput(prealloc, dt, rshp, ts[:len(vals)]...)
 	if err != nil {
 		return nil, fmt.Errorf("nn: Conv gradient: %w", err)
 	}
 	n, c, m := oshp[0], ts[0].Shape()[1], oshp[1]
 	if dt == tensor.Float32 && op.wrt == 0 && convBackwardDirect(&g) && convFast(m/op.group*g.kh*g.kw) {
-		op.inputGrad32(s, &g, n, c, m, ts[1].Float32s(), ts[2].Float32s(), out.Float32s())
+		var ym []float32
+		if op.masked {
+			ym = ts[3].Float32s()
+		}
+		op.inputGrad32(s, &g, n, c, m, ts[1].Float32s(), ts[2].Float32s(), ym, out.Float32s())
 		return out, nil
 	}
 	if dt == tensor.Float64 {
+		dy := ts[2].Float64s()
+		if op.masked {
+			d := make([]float64, len(dy))
+			reluDiff(d, ts[3].Float64s(), dy)
+			dy = d
+		}
 		r := out.Float64s()
 		clear(r)
-		convBackward(&g, op.wrt, n, c, m, op.group, ts[0].Float64s(), ts[1].Float64s(), ts[2].Float64s(), r)
+		convBackward(&g, op.wrt, n, c, m, op.group, ts[0].Float64s(), ts[1].Float64s(), dy, r)
 		return out, nil
+	}
+	dy := ts[2].Float32s()
+	if op.masked {
+		d := make([]float32, len(dy))
+		f32.ReluGrad(d, ts[3].Float32s(), dy)
+		dy = d
 	}
 	r := out.Float32s()
 	clear(r)
-	convBackward(&g, op.wrt, n, c, m, op.group, ts[0].Float32s(), ts[1].Float32s(), ts[2].Float32s(), r)
+	convBackward(&g, op.wrt, n, c, m, op.group, ts[0].Float32s(), ts[1].Float32s(), dy, r)
 	return out, nil
 }
 
@@ -652,6 +717,9 @@ func convBackward[T float](g *convGeom, wrt, n, c, m, group int, x, w, dy, r []T
 func (op *convBackOp) WriteHash(h hash.Hash) { fmt.Fprint(h, op.String()) }
 func (op *convBackOp) Hashcode() uint32      { return hashOp(op) }
 func (op *convBackOp) String() string {
+	if op.masked {
+		return fmt.Sprintf("%sGrad%d masked", op.convOp.String(), op.wrt)
+	}
 	return fmt.Sprintf("%sGrad%d", op.convOp.String(), op.wrt)
 }
 

@@ -101,7 +101,7 @@ func BenchmarkConvPad(b *testing.B) {
 	b.Run("copy", func(b *testing.B) {
 		b.SetBytes(4 * 16 * 34 * 34)
 		for i := 0; i < b.N; i++ {
-			s.padInput(x, 16, 32, 32, 1, 1, 1, 1)
+			s.padInput(x, nil, 16, 32, 32, 1, 1, 1, 1)
 		}
 	})
 	b.Run("full", func(b *testing.B) {

@@ -60,7 +60,7 @@ type convOrientSetup struct {
 	strip, cs, a, cs2 []float32
 	y1, y2            []float32
 	m                 int
-	tile              [sgemmMR * sgemmNR]float32
+	tile              sconvTile
 	x, w              []float64
 	rc                convRouteCase
 }

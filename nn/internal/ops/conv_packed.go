@@ -36,9 +36,10 @@ type convScratch struct {
 
 	plan           sconvPlan
 	pad, strip, cs []float32
+	mask           []float32  // one sample's masked dy (convBackOp.masked)
 	bias           []float32  // bias of every group, each padded to a multiple of sgemmMR
 	padKey         convPadKey // what the zero borders of pad were laid out for
-	tile           [sgemmMR * sgemmNR]float32
+	tile           sconvTile
 }
 
 // scratch takes the op's scratch out of its slot (or makes a new one when
@@ -106,7 +107,8 @@ func (op *convOp) weightsFresh(s *convScratch, w []float32, flip bool) bool {
 
 // forward32 computes y = Conv(x, w) + b for float32 on the packed driver,
 // sample by sample and group by group (so a sample's result does not depend
-// on the rest of the batch).
+// on the rest of the batch), and the fused Relu of each while it is in
+// cache.
 func (op *convOp) forward32(s *convScratch, g *convGeom, n, c, m int, x, w, b, y []float32) {
 	group := op.group
 	cg, mg := c/group, m/group
@@ -136,13 +138,17 @@ func (op *convOp) forward32(s *convScratch, g *convGeom, n, c, m int, x, w, b, y
 		for gi := 0; gi < group; gi++ {
 			src := x[(ni*c+gi*cg)*hw : (ni*c+(gi+1)*cg)*hw]
 			if padded {
-				src = s.padInput(src, cg, g.h, g.w, g.pt, g.pb, g.pl, g.pr)
+				src = s.padInput(src, nil, cg, g.h, g.w, g.pt, g.pb, g.pl, g.pr)
 			}
 			var bg []float32
 			if b != nil {
 				bg = s.bias[gi*m6 : (gi+1)*m6]
 			}
-			sconvSample(&s.plan, src, s.packed[gi*plen:(gi+1)*plen], mg, bg, y[(ni*m+gi*mg)*p:(ni*m+(gi+1)*mg)*p], s.strip, s.cs, &s.tile)
+			yg := y[(ni*m+gi*mg)*p : (ni*m+(gi+1)*mg)*p]
+			sconvSample(&s.plan, src, s.packed[gi*plen:(gi+1)*plen], mg, bg, yg, s.strip, s.cs, &s.tile)
+			if op.relu {
+				f32.Relu(yg, yg)
+			}
 		}
 	}
 }
@@ -163,10 +169,11 @@ type convPadKey struct{ c, h, w, pt, pb, pl, pr int }
 
 // padInput returns the c channels of src (h×w) padded by pt, pb, pl, pr
 // (negative pads crop) in s.pad, laid out for s.plan (padLen elements,
-// including the sconvGrid slack). The padding and slack are zeroed only
-// when the layout changes: copies of the input never write there, so from
-// sample to sample only the interior is copied.
-func (s *convScratch) padInput(src []float32, c, h, w, pt, pb, pl, pr int) []float32 {
+// including the sconvGrid slack), masked by the Relu of ym (src where ym >
+// 0, +0 elsewhere; laid out like src) when ym is not nil. The padding and
+// slack are zeroed only when the layout changes: copies of the input never
+// write there, so from sample to sample only the interior is copied.
+func (s *convScratch) padInput(src, ym []float32, c, h, w, pt, pb, pl, pr int) []float32 {
 	key := convPadKey{c, h, w, pt, pb, pl, pr}
 	n := s.plan.padLen()
 	if cap(s.pad) < n {
@@ -180,17 +187,34 @@ func (s *convScratch) padInput(src []float32, c, h, w, pt, pb, pl, pr int) []flo
 		}
 	}
 	if pt < 0 || pb < 0 || pl < 0 || pr < 0 {
+		if ym != nil {
+			src = s.maskSample(src, ym)
+		}
 		sconvPad(src, c, h, w, pt, pb, pl, pr, s.pad)
 		return s.pad
 	}
 	hp, wp := h+pt+pb, w+pl+pr
 	for ci := 0; ci < c; ci++ {
-		// The slicing checks the bounds f32.CopyRows relies on.
+		// The slicing checks the bounds f32.CopyRows and f32.ReluGradRows
+		// rely on.
 		d := s.pad[ci*hp*wp+pt*wp+pl : ci*hp*wp+pt*wp+pl+(h-1)*wp+w]
 		sc := src[ci*h*w : (ci+1)*h*w]
+		if ym != nil {
+			yc := ym[ci*h*w : (ci+1)*h*w]
+			f32.ReluGradRows(&d[0], wp, &yc[0], &sc[0], w, h, w)
+			continue
+		}
 		f32.CopyRows(&d[0], wp, &sc[0], w, h, w)
 	}
 	return s.pad
+}
+
+// maskSample returns dy masked by the Relu of ym (dy where ym > 0, +0
+// elsewhere) in s.mask.
+func (s *convScratch) maskSample(dy, ym []float32) []float32 {
+	s.mask = convGrow(s.mask, len(dy))
+	f32.ReluGrad(s.mask, ym, dy)
+	return s.mask
 }
 
 // convFlipWeights writes the weights of the input-gradient correlation of
@@ -215,7 +239,9 @@ func convBackwardDirect(g *convGeom) bool { return g.sh == 1 && g.sw == 1 }
 
 // inputGrad32 writes dx, the gradient of Σ dy·Conv(x, w) with respect to x,
 // for unit strides as the correlation of dy with the flipped,
-// channel-transposed weights (the adjoint of a stride-1 convolution):
+// channel-transposed weights (the adjoint of a stride-1 convolution), with
+// dy masked by the Relu of the output ym (dy where ym > 0, +0 elsewhere)
+// when ym is not nil:
 //
 //	dx[n, g·Cg + c, y, x] = Σ_{m, i, j} w[g·Mg + m, c, kh−1−i, kw−1−j] · dy'[n, g·Mg + m, y + i·dh, x + j·dw]
 //
@@ -223,7 +249,7 @@ func convBackwardDirect(g *convGeom) bool { return g.sh == 1 && g.sw == 1 }
 // after each axis (cropped where that is negative): the transposed
 // convolution of Dumoulin & Visin (2016), "A guide to convolution arithmetic
 // for deep learning", §4.1 (relationship 8 for stride 1).
-func (op *convBackOp) inputGrad32(s *convScratch, g *convGeom, n, c, m int, w, dy, dx []float32) {
+func (op *convBackOp) inputGrad32(s *convScratch, g *convGeom, n, c, m int, w, dy, ym, dx []float32) {
 	group := op.group
 	cg, mg := c/group, m/group
 	k := mg * g.kh * g.kw
@@ -247,8 +273,16 @@ func (op *convBackOp) inputGrad32(s *convScratch, g *convGeom, n, c, m int, w, d
 	for ni := 0; ni < n; ni++ {
 		for gi := 0; gi < group; gi++ {
 			src := dy[(ni*m+gi*mg)*p : (ni*m+(gi+1)*mg)*p]
-			if padded {
-				src = s.padInput(src, mg, g.oh, g.ow, pt, pb, pl, pr)
+			var ys []float32
+			if ym != nil {
+				ys = ym[(ni*m+gi*mg)*p : (ni*m+(gi+1)*mg)*p]
+			}
+			switch {
+			case padded:
+				// The fused Relu's mask, if any, applied as the sample is copied.
+				src = s.padInput(src, ys, mg, g.oh, g.ow, pt, pb, pl, pr)
+			case ys != nil:
+				src = s.maskSample(src, ys)
 			}
 			sconvSample(&s.plan, src, s.packed[gi*plen:(gi+1)*plen], cg, nil, dx[(ni*c+gi*cg)*hw:(ni*c+(gi+1)*cg)*hw], s.strip, s.cs, &s.tile)
 		}

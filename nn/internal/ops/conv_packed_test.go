@@ -612,3 +612,123 @@ func convFastNaN(t *testing.T, rng *rand.Rand, W int) {
 		require.Equal(t, near, math.IsNaN(float64(v)), "input gradient %d", i)
 	}
 }
+
+func TestConvDriverMatchesStripTiles(t *testing.T) {
+	// sconvSample stores, at every output element, the bits f32.Conv6x16
+	// stores for it on its own 16-position strip and 6-row block of weights
+	// (one chain of fused multiply-adds in the order of p, then the bias
+	// with one rounding: the kernels' contract, which the f32 tests check
+	// against math/big), whether the driver runs the strip alone, paired
+	// with its neighbour in a 6×32, 4×32 or 8×32 tile, in a row of 128
+	// (one output channel), or through the edge tile:
+	// strip counts even and odd, output rows whole and not, row counts with
+	// every remainder of 6 that chooses blocks of 4, in both in-place modes.
+	rng := rand.New(rand.NewSource(49))
+	for _, tc := range []struct {
+		g    sconvGeom
+		m    int
+		mode int
+	}{
+		{sconvGeom{c: 3, hp: 34, wp: 34, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 32, ow: 32}, 16, sconvRows},
+		{sconvGeom{c: 2, hp: 7, wp: 18, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 5, ow: 16}, 3, sconvRows},
+		{sconvGeom{c: 4, hp: 11, wp: 50, kh: 3, kw: 3, dh: 1, dw: 2, sh: 2, sw: 1, oh: 3, ow: 48}, 12, sconvRows},
+		{sconvGeom{c: 2, hp: 7, wp: 34, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 5, ow: 32}, 32, sconvRows},
+		{sconvGeom{c: 2, hp: 7, wp: 34, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 5, ow: 32}, 13, sconvRows},
+		{sconvGeom{c: 1, hp: 30, wp: 30, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 28, ow: 28}, 8, sconvGrid},
+		{sconvGeom{c: 8, hp: 30, wp: 30, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 28, ow: 28}, 1, sconvGrid},
+		{sconvGeom{c: 2, hp: 16, wp: 16, kh: 3, kw: 3, dh: 1, dw: 1, sh: 1, sw: 1, oh: 14, ow: 14}, 16, sconvGrid},
+		{sconvGeom{c: 3, hp: 9, wp: 13, kh: 3, kw: 2, dh: 1, dw: 1, sh: 1, sw: 1, oh: 7, ow: 12}, 7, sconvGrid},
+	} {
+		t.Run(fmt.Sprintf("%+v_m%d", tc.g, tc.m), func(t *testing.T) {
+			var pl sconvPlan
+			pl.init(tc.g)
+			require.Equal(t, tc.mode, pl.mode)
+			k, m := pl.g.k(), tc.m
+			m6 := (m + sgemmMR - 1) / sgemmMR * sgemmMR
+			xp := convTo32(randomInput(rng, pl.padLen()))
+			wp := make([]float32, sconvPackedLen(m, k))
+			sconvPackWeights(convTo32(randomInput(rng, m*k)), m, k, wp)
+			b := convTo32(randomInput(rng, m6))
+			p := tc.g.oh * tc.g.ow
+			y := make([]float32, m*p)
+			var tile sconvTile
+			sconvSample(&pl, xp, wp, m, b, y, make([]float32, k*sgemmNR), make([]float32, pl.scratchLen(m)), &tile)
+			var want [sgemmMR * sgemmNR]float32
+			for oy := 0; oy < tc.g.oh; oy++ {
+				for ox := 0; ox < tc.g.ow; ox++ {
+					q := oy*tc.g.ow + ox // position in y
+					g := oy*tc.g.wp + ox // position on the padded grid
+					s0, xb := q&^(sgemmNR-1), sconvRowsStart(&pl.g, q&^(sgemmNR-1))
+					if pl.mode == sconvGrid {
+						s0, xb = g&^(sgemmNR-1), g&^(sgemmNR-1)
+					}
+					col := q - s0
+					if pl.mode == sconvGrid {
+						col = g - s0
+					}
+					for ir, s := 0, 0; ir < m; s++ {
+						blk := sconvBlock(m, ir)
+						f32.Conv6x16(k, &wp[s*sgemmMR*k], &xp[xb], &pl.off[0], &want[0], sgemmNR, &b[ir])
+						for r := 0; r < min(blk, m-ir); r++ {
+							require.Equal(t, math.Float32bits(want[r*sgemmNR+col]), math.Float32bits(y[(ir+r)*p+q]),
+								"channel %d, output (%d, %d)", ir+r, oy, ox)
+						}
+						ir += blk
+					}
+				}
+			}
+		})
+	}
+}
+
+func TestConvMaskedInputGrad(t *testing.T) {
+	// The masked input gradient (the fused Relu's mask applied by the
+	// Conv gradient itself) equals the plain input gradient of the masked
+	// dy that reluDiff stores (dy where y > 0, +0 elsewhere; Relu's
+	// derivative, common practice) bit for bit, on the packed driver (the
+	// mask applied while padding, while cropping, and with no padding) and
+	// on the other routes (a stride of 2, float64), with −0, +0 and NaN
+	// among the outputs y.
+	rng := rand.New(rand.NewSource(50))
+	for _, rc := range []convRouteCase{
+		{n: 3, c: 3, h: 12, w: 16, m: 5, kh: 3, kw: 3, pads: [4]int{1, 1, 1, 1}, sh: 1, sw: 1, dh: 1, dw: 1, group: 1},
+		{n: 3, c: 4, h: 9, w: 11, m: 6, kh: 3, kw: 3, pads: [4]int{3, 2, 0, 1}, sh: 1, sw: 1, dh: 1, dw: 1, group: 2},
+		{n: 2, c: 3, h: 5, w: 16, m: 4, kh: 3, kw: 3, pads: [4]int{2, 2, 2, 2}, sh: 1, sw: 1, dh: 1, dw: 1, group: 1},
+		{n: 2, c: 3, h: 11, w: 9, m: 4, kh: 3, kw: 3, pads: [4]int{1, 1, 1, 1}, sh: 2, sw: 2, dh: 1, dw: 1, group: 1},
+	} {
+		t.Run(rc.String(), func(t *testing.T) {
+			oh, ow := rc.out()
+			x := randomInput(rng, rc.n*rc.c*rc.h*rc.w)
+			w := randomInput(rng, rc.m*rc.c/rc.group*rc.kh*rc.kw)
+			dy := randomInput(rng, rc.n*rc.m*oh*ow)
+			y := randomInput(rng, len(dy))
+			for i := range y {
+				switch i % 9 {
+				case 0:
+					y[i] = math.Copysign(0, -1)
+				case 1:
+					y[i] = 0
+				case 2:
+					y[i] = math.NaN()
+				}
+			}
+			xs, ws, ys := []int{rc.n, rc.c, rc.h, rc.w}, []int{rc.m, rc.c / rc.group, rc.kh, rc.kw}, []int{rc.n, rc.m, oh, ow}
+			masked := &convBackOp{convOp: *rc.op(), wrt: 0, masked: true}
+			plain := &convBackOp{convOp: *rc.op(), wrt: 0}
+			got32, err := masked.Do(convDense32(xs, convTo32(x)), convDense32(ws, convTo32(w)), convDense32(ys, convTo32(dy)), convDense32(ys, convTo32(y)))
+			require.NoError(t, err)
+			d32 := make([]float32, len(dy))
+			reluDiff(d32, convTo32(y), convTo32(dy))
+			want32, err := plain.Do(convDense32(xs, convTo32(x)), convDense32(ws, convTo32(w)), convDense32(ys, d32))
+			require.NoError(t, err)
+			require.Equal(t, poolBits(t, want32), poolBits(t, got32), "float32")
+			got64, err := masked.Do(convDense64(xs, x), convDense64(ws, w), convDense64(ys, dy), convDense64(ys, y))
+			require.NoError(t, err)
+			d64 := make([]float64, len(dy))
+			reluDiff(d64, y, dy)
+			want64, err := plain.Do(convDense64(xs, x), convDense64(ws, w), convDense64(ys, d64))
+			require.NoError(t, err)
+			require.Equal(t, poolBits(t, want64), poolBits(t, got64), "float64")
+		})
+	}
+}

@@ -8,18 +8,22 @@ import "github.com/apportion/apportion/nn/internal/asm/f32"
 // K = input channels × kernel) strip by strip, sgemmNR output positions at
 // a time. With a unit column stride, row p = (ci, i, j) of a strip is 16
 // contiguous values of the padded image at a fixed offset, so
-// f32.Conv6x16 reads the strip in place through a table of offsets;
-// other strides pack it (sconvPackStrip, the sgemmPackPanelB layout). Every
-// sgemmMR-row strip of the packed weights runs against a strip while it is
-// in L1. The weights are packed once per op instance (they are model
-// constants) in the sgemmPackBlockA layout over the whole K, so each output
+// f32.Conv6x16 reads the strip in place through a table of offsets, and
+// f32.Conv6x32 (f32.Conv4x32, f32.Conv8x32 for blocks of 4 rows) two
+// strips side by side (twice the independent chains of fused
+// multiply-adds, each weight loaded once for both); other strides pack it
+// (sconvPackStrip, the sgemmPackPanelB layout). Every block of rows of the
+// packed weights (sconvBlock) runs against a strip while it is in L1. The
+// weights are packed once per op instance (they are model constants), one
+// strip per block in the sgemmPackBlockA layout over the whole K, so each output
 // element is one chain of fused multiply-adds over p = 0..K−1 plus the bias
 // added with one rounding when the tile is stored, whatever else is in the
 // batch.
 //
-// Orientation: output channels are the M side. That wastes 2 of 18 kernel
-// rows for 16 channels, but the kernel writes straight into NCHW rows and
-// one strip of 16 positions serves every channel tile while it is in L1.
+// Orientation: output channels are the M side. Without the 4-row kernels
+// that wastes 2 of 18 kernel rows for 16 channels, but the kernel writes
+// straight into NCHW rows and one strip of positions serves every channel
+// tile while it is in L1.
 // The transposed orientation (M = positions, N = channels, a transposed
 // write-back) measured slower on every cnn shape (BenchmarkConvOrientation;
 // the figures are in DEVELOPERS.md).
@@ -40,14 +44,44 @@ type sconvGeom struct {
 func (g *sconvGeom) k() int { return g.c * g.kh * g.kw }
 
 // sconvPackedLen returns the length of the packed weights of m rows and k
-// columns: m rounded up to sgemmMR rows of k values.
-func sconvPackedLen(m, k int) int { return (m + sgemmMR - 1) / sgemmMR * sgemmMR * k }
+// columns: one strip of sgemmMR rows of k values per block (sconvBlock).
+func sconvPackedLen(m, k int) int {
+	strips := 0
+	for ir := 0; ir < m; ir += sconvBlock(m, ir) {
+		strips++
+	}
+	return strips * sgemmMR * k
+}
 
 // sconvPackWeights packs the m×k row-major matrix w into dst
-// (sconvPackedLen(m, k) elements) as strips of sgemmMR rows over the whole
-// k: the layout of sgemmPackBlockA with kc = k.
+// (sconvPackedLen(m, k) elements) as one strip per block of rows
+// (sconvBlock), each over the whole k in the layout of sgemmPackBlockA with
+// kc = k: strip s, at s·sgemmMR·k, holds the sgemmMR values of column p at
+// p·sgemmMR, zeros past the block's last valid row.
 func sconvPackWeights(w []float32, m, k int, dst []float32) {
-	sgemmPackBlockA(false, w, k, 0, m, 0, k, dst)
+	for ir, s := 0, 0; ir < m; s++ {
+		blk := sconvBlock(m, ir)
+		sgemmPackBlockA(false, w, k, ir, min(blk, m-ir), 0, k, dst[s*sgemmMR*k:])
+		ir += blk
+	}
+}
+
+// sconvBlock returns the rows of the block of the product's m rows (output
+// channels) that starts at row ir: sgemmMR for the 6-row kernels, or 4
+// where the CPU has 4-row kernels (f32.WideTiles) and that wastes fewer
+// rows: every block when m is a multiple of 8 but not of 6 (pairs of them
+// run as f32.Conv8x32), else the last 4 or fewer and the last 7 or 8 as two
+// blocks of 4. A block starts at most 4 rows before m, so a 6-row kernel on
+// any block reads and writes inside buffers of m rounded up to a multiple
+// of sgemmMR (m mod 6 is 2 or 4 wherever blocks of 4 start inside).
+func sconvBlock(m, ir int) int {
+	if !f32.WideTiles() {
+		return sgemmMR
+	}
+	if left := m - ir; m%8 == 0 && m%sgemmMR != 0 || left <= 4 || left == 7 || left == 8 {
+		return 4
+	}
+	return sgemmMR
 }
 
 // sconvPad copies the c channels of x (h×w each) into dst (c channels of
@@ -143,6 +177,17 @@ const (
 	sconvStrided
 )
 
+// sconvNW is the width of the widest convolution tile, f32.Conv6x32: two
+// strips of sgemmNR output positions.
+const sconvNW = 2 * sgemmNR
+
+// sconvRowNW is the width of the one-row convolution tile, f32.Conv1x128.
+const sconvRowNW = 128
+
+// sconvTile is the scratch of one edge tile of the driver, for tiles of
+// sgemmMR rows up to sconvNW wide.
+type sconvTile [sgemmMR * sconvNW]float32
+
 // sconvPlan is the per-geometry state of the driver: the strip mode and the
 // offset of each im2col row p = (ci·kh + i)·kw + j in the padded image,
 // off[p] = ci·hp·wp + i·dh·wp + j·dw.
@@ -221,7 +266,7 @@ func (pl *sconvPlan) scratchLen(m int) int {
 // sconvGrid and the padded image otherwise; strip is scratch of k·sgemmNR
 // elements (used by sconvStrided), cs of pl.scratchLen(m), and tile one
 // edge tile, kept by the caller from call to call.
-func sconvSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip, cs []float32, tile *[sgemmMR * sgemmNR]float32) {
+func sconvSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip, cs []float32, tile *sconvTile) {
 	g := &pl.g
 	k := g.k()
 	strip = strip[:k*sgemmNR]
@@ -239,37 +284,79 @@ func sconvSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip, cs []float
 }
 
 // sconvRowsSample is sconvSample for sconvRows: the kernel reads each strip
-// in place and stores whole tiles straight into y, edge tiles (the last
-// rows when m is not a multiple of sgemmMR) through tile.
-func sconvRowsSample(pl *sconvPlan, xp, wp []float32, m int, b, y []float32, tile *[sgemmMR * sgemmNR]float32) {
+// in place and stores whole tiles straight into y, two strips at a time
+// (f32.Conv6x32; the last one alone when the count is odd), each block of
+// rows (sconvBlock) by its kernel, f32.Conv4x32 for blocks of 4, and edge
+// tiles (fewer valid rows than the kernel stores) through tile.
+func sconvRowsSample(pl *sconvPlan, xp, wp []float32, m int, b, y []float32, tile *sconvTile) {
 	g := &pl.g
 	k := g.k()
 	p := g.oh * g.ow
-	for q0 := 0; q0 < p; q0 += sgemmNR {
-		oy, ox := q0/g.ow, q0%g.ow
-		xb := &xp[oy*g.sh*g.wp+ox]
-		for ir := 0; ir < m; ir += sgemmMR {
+	for q0 := 0; q0 < p; q0 += sconvNW {
+		nw := min(sconvNW, p-q0)
+		xb0 := &xp[sconvRowsStart(g, q0)]
+		xb1 := xb0
+		if nw == sconvNW {
+			xb1 = &xp[sconvRowsStart(g, q0+sgemmNR)]
+		}
+		for ir, s := 0, 0; ir < m; s++ {
+			blk := sconvBlock(m, ir)
+			a := &wp[s*sgemmMR*k]
 			var bp *float32
 			if b != nil {
 				bp = &b[ir]
 			}
-			if ir+sgemmMR <= m {
-				f32.Conv6x16(k, &wp[ir*k], xb, &pl.off[0], &y[ir*p+q0], p, bp)
-				continue
+			// rows is how many rows the kernel stores: fewer valid ones
+			// go through tile.
+			mr, rows := min(blk, m-ir), sgemmMR
+			if nw == sconvNW && blk < sgemmMR {
+				rows = blk
 			}
-			f32.Conv6x16(k, &wp[ir*k], xb, &pl.off[0], &tile[0], sgemmNR, bp)
-			for r := 0; r < m-ir; r++ {
-				copy(y[(ir+r)*p+q0:(ir+r)*p+q0+sgemmNR], tile[r*sgemmNR:(r+1)*sgemmNR])
+			c, ldc := &y[ir*p+q0], p
+			if mr < rows {
+				c, ldc = &tile[0], nw
 			}
+			switch {
+			case sconvPair(m, ir, nw):
+				f32.Conv8x32(k, a, &wp[(s+1)*sgemmMR*k], xb0, xb1, &pl.off[0], c, ldc, bp)
+				ir, s = ir+blk, s+1
+			case nw < sconvNW:
+				f32.Conv6x16(k, a, xb0, &pl.off[0], c, ldc, bp)
+			case rows < sgemmMR:
+				f32.Conv4x32(k, a, xb0, xb1, &pl.off[0], c, ldc, bp)
+			default:
+				f32.Conv6x32(k, a, xb0, xb1, &pl.off[0], c, ldc, bp)
+			}
+			if mr < rows {
+				for r := 0; r < mr; r++ {
+					copy(y[(ir+r)*p+q0:(ir+r)*p+q0+nw], tile[r*nw:(r+1)*nw])
+				}
+			}
+			ir += blk
 		}
 	}
+}
+
+// sconvPair reports whether the block at row ir and the next one run
+// together as f32.Conv8x32 on a block of nw positions: two blocks of 4
+// valid rows each, 32 positions wide.
+func sconvPair(m, ir, nw int) bool {
+	return nw == sconvNW && m-ir >= 8 && sconvBlock(m, ir) == 4 && sconvBlock(m, ir+4) == 4
+}
+
+// sconvRowsStart returns where, in the padded image, the strip of output
+// positions q0..q0+sgemmNR−1 (one output row, sconvRows) reads its first
+// im2col row.
+func sconvRowsStart(g *sconvGeom, q0 int) int {
+	oy, ox := q0/g.ow, q0%g.ow
+	return oy*g.sh*g.wp + ox
 }
 
 // sconvStridedSample is sconvSample for sconvStrided: each strip is packed
 // by sconvPackStrip and multiplied by f32.Gemm6x16, with the bias loaded into
 // the tile and added by the beta = 1 store (the rounding of
 // f32.Conv6x16's bias).
-func sconvStridedSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip []float32, tile *[sgemmMR * sgemmNR]float32) {
+func sconvStridedSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip []float32, tile *sconvTile) {
 	g := &pl.g
 	k := g.k()
 	p := g.oh * g.ow
@@ -280,8 +367,9 @@ func sconvStridedSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip []fl
 	for q0 := 0; q0 < p; q0 += sgemmNR {
 		nr := min(sgemmNR, p-q0)
 		sconvPackStrip(g, xp, q0, nr, strip)
-		for ir := 0; ir < m; ir += sgemmMR {
-			mr := min(sgemmMR, m-ir)
+		for ir, s := 0, 0; ir < m; s++ {
+			blk := sconvBlock(m, ir)
+			mr := min(blk, m-ir)
 			if b != nil {
 				for r := 0; r < sgemmMR; r++ {
 					bv := b[ir+r]
@@ -291,37 +379,69 @@ func sconvStridedSample(pl *sconvPlan, xp, wp []float32, m int, b, y, strip []fl
 					}
 				}
 			}
-			f32.Gemm6x16(k, &wp[ir*k], &strip[0], &tile[0], sgemmNR, 1, beta)
+			f32.Gemm6x16(k, &wp[s*sgemmMR*k], &strip[0], &tile[0], sgemmNR, 1, beta)
 			for r := 0; r < mr; r++ {
 				copy(y[(ir+r)*p+q0:(ir+r)*p+q0+nr], tile[r*sgemmNR:r*sgemmNR+nr])
 			}
+			ir += blk
 		}
 	}
 }
 
 // sconvGridSample is sconvSample for sconvGrid: the kernel writes whole
-// tiles, bias included, of the scratch matrix cs (rows rounded up to
-// sgemmMR, pq grid positions), and the valid positions are copied to y.
+// tiles, bias included, two strips at a time as in sconvRowsSample (a row
+// of 128 positions at a time for one output channel), of the
+// scratch matrix cs (rows rounded up to sgemmMR, pq grid positions), and
+// the valid positions are copied to y.
 func sconvGridSample(pl *sconvPlan, xp, wp []float32, m int, b, y, cs []float32) {
 	g := &pl.g
 	k := g.k()
 	pq := pl.pq
 	cs = cs[:pl.scratchLen(m)]
-	for q0 := 0; q0 < pq; q0 += sgemmNR {
-		for ir := 0; ir < m; ir += sgemmMR {
+	q1 := 0 // where the tiles of 32 or 16 positions start
+	if m == 1 && f32.WideTiles() {
+		// One output channel (the input gradient of a one-channel image):
+		// a row of 128 positions per call, eight chains, instead of a
+		// block of 4 rows with one valid.
+		var bp *float32
+		if b != nil {
+			bp = &b[0]
+		}
+		for ; q1+sconvRowNW <= pq; q1 += sconvRowNW {
+			f32.Conv1x128(k, &wp[0], &xp[q1], &pl.off[0], &cs[q1], bp)
+		}
+	}
+	for q0 := q1; q0 < pq; q0 += sconvNW {
+		for ir, s := 0, 0; ir < m; s++ {
+			blk := sconvBlock(m, ir)
+			a := &wp[s*sgemmMR*k]
 			var bp *float32
 			if b != nil {
 				bp = &b[ir]
 			}
-			f32.Conv6x16(k, &wp[ir*k], &xp[q0], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+			nw := min(sconvNW, pq-q0)
+			switch {
+			case sconvPair(m, ir, nw):
+				f32.Conv8x32(k, a, &wp[(s+1)*sgemmMR*k], &xp[q0], &xp[q0+sgemmNR], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+				ir, s = ir+blk, s+1
+			case nw < sconvNW:
+				f32.Conv6x16(k, a, &xp[q0], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+			case blk < sgemmMR:
+				f32.Conv4x32(k, a, &xp[q0], &xp[q0+sgemmNR], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+			default:
+				f32.Conv6x32(k, a, &xp[q0], &xp[q0+sgemmNR], &pl.off[0], &cs[ir*pq+q0], pq, bp)
+			}
+			ir += blk
 		}
 	}
 	p := g.oh * g.ow
+	if p == 0 {
+		return
+	}
 	for mi := 0; mi < m; mi++ {
-		src := cs[mi*pq : mi*pq+g.oh*g.wp]
+		// The slicing checks the bounds f32.CopyRows relies on.
+		src := cs[mi*pq : mi*pq+(g.oh-1)*g.wp+g.ow]
 		dst := y[mi*p : (mi+1)*p]
-		for oy := 0; oy < g.oh; oy++ {
-			copy(dst[oy*g.ow:(oy+1)*g.ow], src[oy*g.wp:oy*g.wp+g.ow])
-		}
+		f32.CopyRows(&dst[0], g.ow, &src[0], g.wp, g.oh, g.ow)
 	}
 }

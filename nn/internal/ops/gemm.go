@@ -43,8 +43,12 @@ var sgemmBufs = sync.Pool{New: func() any {
 // sgemmScratch is one call's packing buffers and edge tile.
 type sgemmScratch struct {
 	a, b []float32
-	tile [sgemmMR * sgemmNR]float32
+	tile sgemmTile
 }
+
+// sgemmTile is the scratch of one edge tile of sgemmMR rows, up to two
+// strips (2·sgemmNR columns) wide.
+type sgemmTile [sgemmMR * 2 * sgemmNR]float32
 
 // sgemm computes C = alpha·op(A)·op(B) + beta·C for row-major matrices with
 // the semantics of gonum's blas32 Sgemm: op(X) is X or Xᵀ as tA, tB say,

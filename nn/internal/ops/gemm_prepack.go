@@ -149,10 +149,17 @@ func sgemmPrePanels(tA bool, m, j0 int, alpha float32, a []float32, lda int, pan
 // sgemmMacro multiplies a packed mc×kc block of A by the columns jr0..nc of
 // a packed kc×nc panel of B into C (c[0] is the block's top-left element),
 // as C = alpha·A·B + bet·C per register tile.
-func sgemmMacro(mc, nc, kc, jr0 int, alpha, bet float32, bufA, bufB []float32, tile *[sgemmMR * sgemmNR]float32, c []float32, ldc int) {
+func sgemmMacro(mc, nc, kc, jr0 int, alpha, bet float32, bufA, bufB []float32, tile *sgemmTile, c []float32, ldc int) {
 	for jr := jr0; jr < nc; jr += sgemmNR {
 		nr := min(sgemmNR, nc-jr)
 		bp := &bufB[jr*kc]
+		if f32.WideTiles() && jr+2*sgemmNR <= nc {
+			// Two whole strips of B: the 6×32 tile (the strided form reads
+			// the packed strips of A), bottom edges through tile.
+			sgemmMacroWide(mc, kc, alpha, bet, bufA, bp, &bufB[(jr+sgemmNR)*kc], tile, c[jr:], ldc)
+			jr += sgemmNR
+			continue
+		}
 		for ir := 0; ir < mc; ir += sgemmMR {
 			mr := min(sgemmMR, mc-ir)
 			ap := &bufA[ir*kc]
@@ -179,6 +186,33 @@ func sgemmMacro(mc, nc, kc, jr0 int, alpha, bet float32, bufA, bufB []float32, t
 			for i := 0; i < mr; i++ {
 				copy(c[ci+i*ldc:ci+i*ldc+nr], tile[i*sgemmNR:i*sgemmNR+nr])
 			}
+		}
+	}
+}
+
+// sgemmMacroWide is sgemmMacro for the two whole strips of B at b0 and b1
+// (columns 0..31 of c) on the 6×32 tile, each element's chain that of
+// f32.Gemm6x16 on the packed strips.
+func sgemmMacroWide(mc, kc int, alpha, bet float32, bufA []float32, b0, b1 *float32, tile *sgemmTile, c []float32, ldc int) {
+	const w = 2 * sgemmNR
+	for ir := 0; ir < mc; ir += sgemmMR {
+		mr := min(sgemmMR, mc-ir)
+		ap := &bufA[ir*kc]
+		if mr == sgemmMR {
+			f32.Gemm6x32Strided(kc, ap, 1, sgemmMR, b0, b1, &c[ir*ldc], ldc, alpha, bet)
+			continue
+		}
+		// The kernel updates a full tile loaded with the rows of C inside
+		// it, so edge elements round exactly like interior ones.
+		clear(tile[:])
+		if bet != 0 {
+			for i := 0; i < mr; i++ {
+				copy(tile[i*w:(i+1)*w], c[(ir+i)*ldc:(ir+i)*ldc+w])
+			}
+		}
+		f32.Gemm6x32Strided(kc, ap, 1, sgemmMR, b0, b1, &tile[0], w, alpha, bet)
+		for i := 0; i < mr; i++ {
+			copy(c[(ir+i)*ldc:(ir+i)*ldc+w], tile[i*w:(i+1)*w])
 		}
 	}
 }
@@ -213,7 +247,7 @@ func sgemmRowsLoop(tA bool, m, n, k int, alpha float32, a []float32, lda int, b 
 // fewer than sgemmMR rows is packed; otherwise the block is packed into
 // bufA. Either way every element gets the same chain of fused
 // multiply-adds.
-func sgemmBlock(tA bool, a []float32, lda, ic, mc, pc, kc, nc, jr0 int, alpha, bet float32, bufA, bufB []float32, tile *[sgemmMR * sgemmNR]float32, c []float32, ldc int) {
+func sgemmBlock(tA bool, a []float32, lda, ic, mc, pc, kc, nc, jr0 int, alpha, bet float32, bufA, bufB []float32, tile *sgemmTile, c []float32, ldc int) {
 	if tA {
 		sgemmPackBlockA(tA, a, lda, ic, mc, pc, kc, bufA)
 		sgemmMacro(mc, nc, kc, jr0, alpha, bet, bufA, bufB, tile, c, ldc)
@@ -228,6 +262,14 @@ func sgemmBlock(tA bool, a []float32, lda, ic, mc, pc, kc, nc, jr0 int, alpha, b
 	for jr := jr0; jr < nc; jr += sgemmNR {
 		nr := min(sgemmNR, nc-jr)
 		bp := &bufB[jr*kc]
+		if f32.WideTiles() && jr+2*sgemmNR <= nc {
+			// Two whole strips of B side by side: the 6×32 tile.
+			for ir := 0; ir < full; ir += sgemmMR {
+				f32.Gemm6x32Strided(kc, &a[(ic+ir)*lda+pc], lda, 1, bp, &bufB[(jr+sgemmNR)*kc], &c[ir*ldc+jr], ldc, alpha, bet)
+			}
+			jr += sgemmNR
+			continue
+		}
 		for ir := 0; ir < full; ir += sgemmMR {
 			ap := &a[(ic+ir)*lda+pc]
 			ci := ir*ldc + jr

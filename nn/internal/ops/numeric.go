@@ -68,7 +68,7 @@ func ConvForward[T float](p *ConvPlan, n int, x, w, b, y []T) {
 func ConvInputGrad[T float](p *ConvPlan, n int, w, dy, dx []T) {
 	if dy32, ok := any(dy).([]float32); ok && convBackwardDirect(&p.g) && convFast(p.m/p.group*p.g.kh*p.g.kw) {
 		s := p.back.scratch()
-		p.back.inputGrad32(s, &p.g, n, p.c, p.m, any(w).([]float32), dy32, any(dx).([]float32))
+		p.back.inputGrad32(s, &p.g, n, p.c, p.m, any(w).([]float32), dy32, nil, any(dx).([]float32))
 		p.back.release(s)
 		return
 	}

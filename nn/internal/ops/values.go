@@ -1,6 +1,8 @@
 package ops
 
 import (
+	"github.com/apportion/apportion/nn/internal/asm/f32"
+
 	"fmt"
 
 	G "gorgonia.org/gorgonia"
@@ -13,9 +15,7 @@ func Dense(dt tensor.Dtype, shape tensor.Shape, vals []float64) *tensor.Dense {
 		return tensor.New(tensor.WithShape(shape.Clone()...), tensor.WithBacking(append([]float64(nil), vals...)))
 	}
 	f := make([]float32, len(vals))
-	for i, v := range vals {
-		f[i] = float32(v)
-	}
+	f32.Narrow(f, vals)
 	return tensor.New(tensor.WithShape(shape.Clone()...), tensor.WithBacking(f))
 }
 
@@ -34,9 +34,7 @@ func Fill(t *tensor.Dense, vals []float64) error {
 		if len(d) != len(vals) {
 			return fmt.Errorf("expected %d values, got %d", len(d), len(vals))
 		}
-		for i, v := range vals {
-			d[i] = float32(v)
-		}
+		f32.Narrow(d, vals)
 	default:
 		return fmt.Errorf("unexpected element type %v", t.Dtype())
 	}
@@ -58,9 +56,7 @@ func Floats(v G.Value) ([]float64, error) {
 		case tensor.Float32:
 			d := t.Float32s()
 			out := make([]float64, len(d))
-			for i, x := range d {
-				out[i] = float64(x)
-			}
+			f32.Widen(out, d)
 			return out, nil
 		}
 		return nil, fmt.Errorf("unexpected data %T", t.Data())

@@ -1,6 +1,6 @@
 // Package f32 holds the float32 kernels that nn's matrix products,
 // convolutions, pooling and Relu run on: the 6×16 and 1×32 register tiles
-// of a packed GEMM, the 6×16 tile of a direct convolution, the 2×2 max pool
+// of a packed GEMM, the 6×16 and 6×32 tiles of a direct convolution, the 2×2 max pool
 // and its gradient, Relu and its gradient, and the copies that pack their
 // operands.
 //
@@ -13,7 +13,9 @@
 // the package is loaded (useAsm, reported by Asm), and the loop runs
 // otherwise (stubs_noasm.go on other builds). The packed, strided and
 // convolution tiles also have an AVX-512 form (suffix Avx512), which runs
-// instead on a CPU with AVX-512F (useAVX512) and stores the AVX2 form's bits. Both compute the same IEEE 754
+// instead on a CPU with AVX-512F (useAVX512) and stores the AVX2 form's bits;
+// the 6×32 convolution tile has only that form, and is two 6×16 tiles
+// elsewhere. Both compute the same IEEE 754
 // bits: a product accumulates as one chain of fused multiply-adds per
 // element, which fma emulates exactly, so the loops are the portable kernels
 // and, in the tests, the oracle the assembly is checked against bit for bit.

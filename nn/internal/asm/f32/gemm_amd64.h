@@ -36,3 +36,11 @@
 	VMOVUPS (DX), Y12; VMOVUPS 32(DX), Y13; \
 	VFMADD231PS Y15, Y12, r0; VFMADD231PS Y15, Y13, r1; \
 	VMOVUPS r0, (DX); VMOVUPS r1, 32(DX)
+
+// STRIDEDA loads the arguments kc (CX) and a (SI) of a strided tile kernel
+// and its strides in bytes: rs in R9 (3·rs in R10, 5·rs in R11), ps in R12,
+// so that element (r, p) of A is at SI + r·R9 (R10, R11 for r = 3, 5).
+#define STRIDEDA \
+	MOVQ kc+0(FP), CX; MOVQ a+8(FP), SI; \
+	MOVQ rs+16(FP), R9; SHLQ $2, R9; LEAQ (R9)(R9*2), R10; LEAQ (R9)(R9*4), R11; \
+	MOVQ ps+24(FP), R12; SHLQ $2, R12

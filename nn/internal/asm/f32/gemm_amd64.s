@@ -96,14 +96,7 @@ accumulate:
 // multiply-adds per element and the epilogue are those of gemm6x16Asm, so both
 // store the same bits.
 TEXT ·gemm6x16StridedAsm(SB), NOSPLIT, $0-64
-	MOVQ kc+0(FP), CX
-	MOVQ a+8(FP), SI
-	MOVQ rs+16(FP), R9
-	SHLQ $2, R9
-	LEAQ (R9)(R9*2), R10
-	LEAQ (R9)(R9*4), R11
-	MOVQ ps+24(FP), R12
-	SHLQ $2, R12
+	STRIDEDA
 	MOVQ b+32(FP), DI
 	MOVQ c+40(FP), DX
 	MOVQ ldc+48(FP), R8
@@ -190,14 +183,7 @@ saccumulate:
 // slower than the copy through a tile, so columns stay
 // whole.)
 TEXT ·gemm6x16EdgeAsm(SB), NOSPLIT, $0-72
-	MOVQ kc+0(FP), CX
-	MOVQ a+8(FP), SI
-	MOVQ rs+16(FP), R9
-	SHLQ $2, R9
-	LEAQ (R9)(R9*2), R10
-	LEAQ (R9)(R9*4), R11
-	MOVQ ps+24(FP), R12
-	SHLQ $2, R12
+	STRIDEDA
 	MOVQ b+32(FP), DI
 	MOVQ c+40(FP), DX
 	MOVQ ldc+48(FP), R8

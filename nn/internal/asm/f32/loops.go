@@ -107,6 +107,11 @@ func gemm6x16Edge(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha,
 	store6x16(&t, mr, c, ldc, alpha, beta)
 }
 
+func gemm6x32Strided(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, alpha, beta float32) {
+	gemm6x16Strided(kc, a, rs, ps, b0, c, ldc, alpha, beta)
+	gemm6x16Strided(kc, a, rs, ps, b1, (*float32)(unsafe.Add(unsafe.Pointer(c), 16*4)), ldc, alpha, beta)
+}
+
 func gemm1x32(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alpha, beta float32) {
 	as := unsafe.Slice(a, (kc-1)*inca+1)
 	bs := unsafe.Slice(b, (kc-1)*ldb+32)
@@ -157,6 +162,75 @@ func conv6x16(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *floa
 	store6x16(&t, 6, c, ldc, 1, 0)
 }
 
+func conv6x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	conv6x16(kc, a, b0, off, c, ldc, bias)
+	conv6x16(kc, a, b1, off, (*float32)(unsafe.Add(unsafe.Pointer(c), 16*4)), ldc, bias)
+}
+
+func conv4x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	var t tile6x32
+	var b6 [6]float32
+	conv6x32(kc, a, b0, b1, off, &t[0], 32, bias6(bias, &b6))
+	store4x32(&t, c, ldc)
+}
+
+func conv8x32(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	conv4x32(kc, a0, b0, b1, off, c, ldc, bias)
+	conv4x32(kc, a1, b0, b1, off, (*float32)(unsafe.Add(unsafe.Pointer(c), 4*ldc*4)), ldc, biasAdd(bias, 4))
+}
+
+// biasAdd returns bias advanced by r rows, or nil.
+func biasAdd(bias *float32, r int) *float32 {
+	if bias == nil {
+		return nil
+	}
+	return (*float32)(unsafe.Add(unsafe.Pointer(bias), r*4))
+}
+
+func conv1x128(kc int, a, b *float32, off *int32, c *float32, bias *float32) {
+	var t tile6x16
+	var b6 [6]float32
+	if bias != nil {
+		b6[0] = *bias
+	}
+	cs := unsafe.Slice(c, 128)
+	for j := 0; j < 128; j += 16 {
+		conv6x16(kc, a, (*float32)(unsafe.Add(unsafe.Pointer(b), j*4)), off, &t[0], 16, bias1(bias, &b6))
+		copy(cs[j:j+16], t[:16])
+	}
+}
+
+// bias1 returns a 6-row bias for a 6-row kernel computing one row: nil, or
+// b6 (holding bias[0] and zeros).
+func bias1(bias *float32, b6 *[6]float32) *float32 {
+	if bias == nil {
+		return nil
+	}
+	return &b6[0]
+}
+
+// tile6x32 is the scratch of a 6×32 tile where a 4-row tile has no kernel
+// of its own.
+type tile6x32 [6 * 32]float32
+
+// bias6 returns a 6-row bias for a 6-row kernel computing a 4-row tile:
+// nil, or b6 holding bias[0..3] and two zeros.
+func bias6(bias *float32, b6 *[6]float32) *float32 {
+	if bias == nil {
+		return nil
+	}
+	copy(b6[:], unsafe.Slice(bias, 4))
+	return &b6[0]
+}
+
+// store4x32 copies the first four rows of t to c, rows ldc apart.
+func store4x32(t *tile6x32, c *float32, ldc int) {
+	cs := unsafe.Slice(c, 3*ldc+32)
+	for r := 0; r < 4; r++ {
+		copy(cs[r*ldc:r*ldc+32], t[32*r:32*r+32])
+	}
+}
+
 func transpose8x8(src *float32, lds int, dst *float32, ldd int) {
 	s := unsafe.Slice(src, 7*lds+8)
 	d := unsafe.Slice(dst, 7*ldd+8)
@@ -204,9 +278,35 @@ func reluGrad(d, x, dy []float32) {
 	}
 }
 
+func reluGradRows(dst *float32, ldd int, x, dy *float32, lds int, rows, w int) {
+	if rows == 0 || w == 0 {
+		return
+	}
+	d := unsafe.Slice(dst, (rows-1)*ldd+w)
+	xs := unsafe.Slice(x, (rows-1)*lds+w)
+	dys := unsafe.Slice(dy, (rows-1)*lds+w)
+	for r := 0; r < rows; r++ {
+		reluGrad(d[r*ldd:r*ldd+w], xs[r*lds:r*lds+w], dys[r*lds:r*lds+w])
+	}
+}
+
 // firstMax4 returns which element of the 2×2 window a b / c d holds its
 // maximum (0 to 3, row-major): the first NaN if there is one, else the first
 // maximal element (strict >, so of +0 and −0 the first one seen).
+func widen(dst []float64, src []float32) {
+	dst = dst[:len(src)]
+	for i, v := range src {
+		dst[i] = float64(v)
+	}
+}
+
+func narrow(dst []float32, src []float64) {
+	dst = dst[:len(src)]
+	for i, v := range src {
+		dst[i] = float32(v)
+	}
+}
+
 func firstMax4(a, b, c, d float32) int {
 	if a != a {
 		return 0

@@ -101,3 +101,61 @@ diff8:
 diffdone:
 	VZEROUPPER
 	RET
+
+// func reluGradRowsAsm(dst *float32, ldd int, x, dy *float32, lds int, rows, w int)
+//
+// reluGradAsm on rows runs of w floats (x and dy rows lds apart, dst rows
+// ldd apart), eight at a time and the rest of each row one by one, with
+// the same ordered compare.
+TEXT ·reluGradRowsAsm(SB), NOSPLIT, $0-56
+	MOVQ dst+0(FP), DI
+	MOVQ ldd+8(FP), R8
+	SHLQ $2, R8
+	MOVQ x+16(FP), SI
+	MOVQ dy+24(FP), DX
+	MOVQ lds+32(FP), R9
+	SHLQ $2, R9
+	MOVQ rows+40(FP), CX
+	MOVQ w+48(FP), R11
+	TESTQ CX, CX
+	JEQ gdone
+	VXORPS Y0, Y0, Y0
+
+grow:
+	MOVQ R11, BX
+	XORQ AX, AX
+	CMPQ BX, $8
+	JLT gtail
+
+gvec:
+	VCMPPS $0x11, (SI)(AX*1), Y0, Y1
+	VANDPS (DX)(AX*1), Y1, Y1
+	VMOVUPS Y1, (DI)(AX*1)
+	ADDQ $32, AX
+	SUBQ $8, BX
+	CMPQ BX, $8
+	JGE gvec
+
+gtail:
+	TESTQ BX, BX
+	JEQ gnext
+
+gscal:
+	VCMPSS $0x11, (SI)(AX*1), X0, X1
+	VMOVSS (DX)(AX*1), X2
+	VANDPS X2, X1, X1
+	VMOVSS X1, (DI)(AX*1)
+	ADDQ $4, AX
+	DECQ BX
+	JNZ gscal
+
+gnext:
+	ADDQ R8, DI
+	ADDQ R9, SI
+	ADDQ R9, DX
+	DECQ CX
+	JNZ grow
+	VZEROUPPER
+
+gdone:
+	RET

@@ -2,7 +2,11 @@
 
 package f32
 
-import "golang.org/x/sys/cpu"
+import (
+	"unsafe"
+
+	"golang.org/x/sys/cpu"
+)
 
 // useAsm reports whether the CPU runs the assembly kernels, which need AVX2
 // and FMA. It is the only place the package reads CPU features.
@@ -47,6 +51,19 @@ func Gemm6x16Strided(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alp
 	gemm6x16Strided(kc, a, rs, ps, b, c, ldc, alpha, beta)
 }
 
+// Gemm6x32Strided is Gemm6x16Strided on two packed strips of B side by
+// side: it stores the 6×32 tile whose columns j < 16 are Gemm6x16Strided
+// with B at b0 and whose columns j ≥ 16 are Gemm6x16Strided with B at b1,
+// with the bits of those two calls.
+func Gemm6x32Strided(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, alpha, beta float32) {
+	if useAVX512 {
+		gemm6x32StridedAvx512(kc, a, rs, ps, b0, b1, c, ldc, alpha, beta)
+		return
+	}
+	Gemm6x16Strided(kc, a, rs, ps, b0, c, ldc, alpha, beta)
+	Gemm6x16Strided(kc, a, rs, ps, b1, (*float32)(unsafe.Add(unsafe.Pointer(c), 16*4)), ldc, alpha, beta)
+}
+
 // Gemm6x16Edge is Gemm6x16Strided for the bottom edge of C: it reads and
 // stores only rows r < mr (1 ≤ mr ≤ 6) of c, with the bits of a full tile,
 // and reads all six rows of A.
@@ -83,6 +100,73 @@ func Conv6x16(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *floa
 		return
 	}
 	conv6x16(kc, a, b, off, c, ldc, bias)
+}
+
+// Conv6x32 is Conv6x16 on two strips of B side by side: it stores the 6×32
+// tile whose columns j < 16 are Conv6x16 with B at b0 and whose columns
+// j ≥ 16 are Conv6x16 with B at b1 (the same offsets), each element the
+// same chain and store, so the bits of two Conv6x16 calls.
+func Conv6x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	if useAVX512 {
+		conv6x32Avx512(kc, a, b0, b1, off, c, ldc, bias)
+		return
+	}
+	if useAsm {
+		conv6x16Asm(kc, a, b0, off, c, ldc, bias)
+		conv6x16Asm(kc, a, b1, off, (*float32)(unsafe.Add(unsafe.Pointer(c), 16*4)), ldc, bias)
+		return
+	}
+	conv6x32(kc, a, b0, b1, off, c, ldc, bias)
+}
+
+// Conv4x32 is Conv6x32 for the last rows of a product: it stores rows
+// r < 4 of the tile alone, with the bits Conv6x32 stores there. A keeps its
+// 6-float columns; bias[4], bias[5] and rows 4 and 5 of c are not touched.
+func Conv4x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	if useAVX512 {
+		conv4x32Avx512(kc, a, b0, b1, off, c, ldc, bias)
+		return
+	}
+	if useAsm {
+		var t tile6x32
+		var b6 [6]float32
+		Conv6x32(kc, a, b0, b1, off, &t[0], 32, bias6(bias, &b6))
+		store4x32(&t, c, ldc)
+		return
+	}
+	conv4x32(kc, a, b0, b1, off, c, ldc, bias)
+}
+
+// WideTiles reports whether the 32-wide tiles (Conv6x32, Conv4x32,
+// Conv8x32, Gemm6x32Strided) and Conv1x128 run kernels of their own (the
+// AVX-512 forms), so that blocks of 4 rows cost 4 rows and a wide tile
+// beats two narrow ones; elsewhere they run the 6×16 kernels.
+func WideTiles() bool { return useAVX512 }
+
+// Conv8x32 is Conv4x32 on two strips of A: it stores the 8×32 tile whose
+// rows r < 4 are Conv4x32 with A at a0 and rows r ≥ 4 Conv4x32 with A at
+// a1 (each strip in 6-float columns, its first four rows used) and bias
+// from bias[4], with the bits of those two calls.
+func Conv8x32(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	if useAVX512 {
+		conv8x32Avx512(kc, a0, a1, b0, b1, off, c, ldc, bias)
+		return
+	}
+	Conv4x32(kc, a0, b0, b1, off, c, ldc, bias)
+	Conv4x32(kc, a1, b0, b1, off, (*float32)(unsafe.Add(unsafe.Pointer(c), 4*ldc*4)), ldc, biasAdd(bias, 4))
+}
+
+// Conv1x128 is Conv6x16 for one row over 128 positions: it stores
+// c[j] = Σ_p a[6p]·b[off[p]+j] (+ bias[0]), j < 128, the chains and store
+// of row 0 of Conv6x16 on the eight strips of 16 at b, b+16, …; A keeps its
+// 6-float columns, of which it reads the first; kc ≥ 1. Only its AVX-512
+// form is fast: callers check f32.WideTiles first.
+func Conv1x128(kc int, a, b *float32, off *int32, c *float32, bias *float32) {
+	if useAVX512 {
+		conv1x128Avx512(kc, a, b, off, c, bias)
+		return
+	}
+	conv1x128(kc, a, b, off, c, bias)
 }
 
 // Transpose8x8 stores the transpose of the 8×8 block src[r·lds+c] at
@@ -138,6 +222,44 @@ func ReluGrad(d, x, dy []float32) {
 		}
 	}
 	reluGrad(d[n:], x[n:], dy[n:])
+}
+
+// ReluGradRows is ReluGrad on rows runs of w floats: it stores
+// dst[r·ldd+j] = dy[r·lds+j] where x[r·lds+j] > 0 and +0 elsewhere, x and
+// dy laid out alike, as CopyRows copies them.
+func ReluGradRows(dst *float32, ldd int, x, dy *float32, lds int, rows, w int) {
+	if useAsm {
+		reluGradRowsAsm(dst, ldd, x, dy, lds, rows, w)
+		return
+	}
+	reluGradRows(dst, ldd, x, dy, lds, rows, w)
+}
+
+// Widen stores dst[i] = float64(src[i]) (exact) for i < len(src); dst
+// must be at least as long as src.
+func Widen(dst []float64, src []float32) {
+	dst = dst[:len(src)]
+	n := 0
+	if useAsm {
+		if n = len(src) &^ 7; n > 0 {
+			widenAsm(&dst[0], &src[0], n)
+		}
+	}
+	widen(dst[n:], src[n:])
+}
+
+// Narrow stores dst[i] = float32(src[i]), rounded to nearest, ties to
+// even, as Go converts, for i < len(src); dst must be at least as long as
+// src.
+func Narrow(dst []float32, src []float64) {
+	dst = dst[:len(src)]
+	n := 0
+	if useAsm {
+		if n = len(src) &^ 7; n > 0 {
+			narrowAsm(&dst[0], &src[0], n)
+		}
+	}
+	narrow(dst[n:], src[n:])
 }
 
 // MaxPool2x2 stores, for each of planes planes of h×w in x, the 2×2
@@ -285,6 +407,39 @@ func reluAsm(y, x *float32, n int)
 //go:noescape
 func reluGradAsm(d, x, dy *float32, n int)
 
+// reluGradRowsAsm is
+//
+//	for r := 0; r < rows; r++ {
+//		for j := 0; j < w; j++ {
+//			if x[r*lds+j] > 0 {
+//				dst[r*ldd+j] = dy[r*lds+j]
+//			} else {
+//				dst[r*ldd+j] = 0
+//			}
+//		}
+//	}
+//
+//go:noescape
+func reluGradRowsAsm(dst *float32, ldd int, x, dy *float32, lds int, rows, w int)
+
+// widenAsm is, for n a multiple of 8,
+//
+//	for i := 0; i < n; i++ {
+//		dst[i] = float64(src[i])
+//	}
+//
+//go:noescape
+func widenAsm(dst *float64, src *float32, n int)
+
+// narrowAsm is, for n a multiple of 8,
+//
+//	for i := 0; i < n; i++ {
+//		dst[i] = float32(src[i])
+//	}
+//
+//go:noescape
+func narrowAsm(dst *float32, src *float64, n int)
+
 // maxPool2x2Asm is, when x holds no NaN and maxPoolFits holds,
 //
 //	for pl := 0; pl < planes; pl++ {
@@ -342,3 +497,61 @@ func gemm6x16StridedAvx512(kc int, a *float32, rs, ps int, b, c *float32, ldc in
 //
 //go:noescape
 func conv6x16Avx512(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *float32)
+
+// conv6x32Avx512 is, on AVX-512 (the tile in twelve ZMM registers, two
+// per row, so twelve independent chains keep both FMA units busy),
+//
+//	for r := 0; r < 6; r++ {
+//		for j := 0; j < 32; j++ {
+//			b, jb := b0, j
+//			if j >= 16 {
+//				b, jb = b1, j-16
+//			}
+//			var t float32
+//			for p := 0; p < kc; p++ {
+//				t = fma(a[6*p+r], b[off[p]+jb], t)
+//			}
+//			if bias != nil {
+//				t += bias[r]
+//			}
+//			c[r*ldc+j] = t
+//		}
+//	}
+//
+//go:noescape
+func conv6x32Avx512(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32)
+
+// conv4x32Avx512 is conv6x32Avx512 with r < 4 in place of r < 6: eight
+// chains, still enough to keep both FMA units busy.
+//
+//go:noescape
+func conv4x32Avx512(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32)
+
+// conv8x32Avx512 is conv4x32Avx512 on two strips of A at once, rows 0..3
+// from a0 and 4..7 from a1: sixteen chains.
+//
+//go:noescape
+func conv8x32Avx512(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32)
+
+// conv1x128Avx512 is, on AVX-512 (eight ZMM chains, B read by the fused
+// multiply-adds, each element of A broadcast once),
+//
+//	for j := 0; j < 128; j++ {
+//		var t float32
+//		for p := 0; p < kc; p++ {
+//			t = fma(a[6*p], b[off[p]+j], t)
+//		}
+//		if bias != nil {
+//			t += bias[0]
+//		}
+//		c[j] = t
+//	}
+//
+//go:noescape
+func conv1x128Avx512(kc int, a, b *float32, off *int32, c *float32, bias *float32)
+
+// gemm6x32StridedAvx512 is gemm6x16StridedAvx512 on two strips of B at
+// once (twelve chains): the same loop for each, the same bits.
+//
+//go:noescape
+func gemm6x32StridedAvx512(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, alpha, beta float32)

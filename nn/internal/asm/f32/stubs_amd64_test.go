@@ -154,3 +154,91 @@ func convForms() []convForm {
 	}
 	return forms
 }
+
+// wideConvForm is one implementation of a 32-wide convolution tile that
+// stores the first rows rows of the 6×32 tile.
+type wideConvForm struct {
+	name string
+	rows int
+	fn   func(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32)
+}
+
+// wideConvForms are the 32-wide tiles' dispatches and their AVX-512
+// forms, called directly whichever one Conv6x32 and Conv4x32 pick.
+func wideConvForms() []wideConvForm {
+	forms := []wideConvForm{{"Conv6x32", 6, Conv6x32}, {"Conv4x32", 4, Conv4x32}}
+	if useAVX512 {
+		forms = append(forms, wideConvForm{"AVX-512 6x32", 6, conv6x32Avx512}, wideConvForm{"AVX-512 4x32", 4, conv4x32Avx512})
+	}
+	return forms
+}
+
+// BenchmarkConvTileForms times 32 output positions of the convolution tile
+// on AVX-512, as two 6×16 tiles and as one 6×32 tile, and 16 output
+// channels as 6×32, 6×32 and 4×32 tiles or as two 8×32 tiles, B read through the
+// offsets of a 3×3 kernel over a 34-wide padded image that stays in L1, at
+// the k depths of the cnn models (3, 16 and 32 input channels).
+func BenchmarkConvTileForms(b *testing.B) {
+	if !useAVX512 {
+		b.Skip("no AVX-512 on this CPU")
+	}
+	rng := rand.New(rand.NewPCG(13, 14))
+	const wp, hp = 34, 3
+	for _, c := range []int{3, 16, 32} {
+		kc := 9 * c
+		a := randFloats(rng, 6*kc)
+		x := randFloats(rng, c*hp*wp+wp)
+		off := make([]int32, 0, kc)
+		for ci := 0; ci < c; ci++ {
+			for i := 0; i < 3; i++ {
+				for j := 0; j < 3; j++ {
+					off = append(off, int32(ci*hp*wp+i*wp+j))
+				}
+			}
+		}
+		var t [6 * 32]float32
+		flops := 2 * float64(6*32*kc)
+		b.Run(fmt.Sprintf("kc=%d/6x16", kc), func(b *testing.B) {
+			cpupeak.Bench(b, flops, func() {
+				conv6x16Avx512(kc, &a[0], &x[0], &off[0], &t[0], 32, nil)
+				conv6x16Avx512(kc, &a[0], &x[16], &off[0], &t[16], 32, nil)
+			})
+		})
+		b.Run(fmt.Sprintf("kc=%d/6x32", kc), func(b *testing.B) {
+			cpupeak.Bench(b, flops, func() { conv6x32Avx512(kc, &a[0], &x[0], &x[16], &off[0], &t[0], 32, nil) })
+		})
+		// 16 output channels over 32 positions: 6 + 6 + 4 rows, or 8 + 8.
+		var t16 [16 * 32]float32
+		b.Run(fmt.Sprintf("kc=%d/16rows-6x32+6x32+4x32", kc), func(b *testing.B) {
+			cpupeak.Bench(b, 2*float64(16*32*kc), func() {
+				conv6x32Avx512(kc, &a[0], &x[0], &x[16], &off[0], &t16[0], 32, nil)
+				conv6x32Avx512(kc, &a[0], &x[0], &x[16], &off[0], &t16[6*32], 32, nil)
+				conv4x32Avx512(kc, &a[0], &x[0], &x[16], &off[0], &t16[12*32], 32, nil)
+			})
+		})
+		b.Run(fmt.Sprintf("kc=%d/16rows-8x32+8x32", kc), func(b *testing.B) {
+			cpupeak.Bench(b, 2*float64(16*32*kc), func() {
+				conv8x32Avx512(kc, &a[0], &a[0], &x[0], &x[16], &off[0], &t16[0], 32, nil)
+				conv8x32Avx512(kc, &a[0], &a[0], &x[0], &x[16], &off[0], &t16[8*32], 32, nil)
+			})
+		})
+	}
+}
+
+// eightConvForms are the 8×32 tile's dispatch and its AVX-512 form.
+func eightConvForms() map[string]func(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	forms := map[string]func(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32){"Conv8x32": Conv8x32}
+	if useAVX512 {
+		forms["AVX-512"] = conv8x32Avx512
+	}
+	return forms
+}
+
+// rowConvForms are the 1×128 tile's dispatch and its AVX-512 form.
+func rowConvForms() map[string]func(kc int, a, b *float32, off *int32, c *float32, bias *float32) {
+	forms := map[string]func(kc int, a, b *float32, off *int32, c *float32, bias *float32){"Conv1x128": Conv1x128}
+	if useAVX512 {
+		forms["AVX-512"] = conv1x128Avx512
+	}
+	return forms
+}

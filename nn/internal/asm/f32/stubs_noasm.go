@@ -23,6 +23,14 @@ func Gemm6x16Strided(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alp
 	gemm6x16Strided(kc, a, rs, ps, b, c, ldc, alpha, beta)
 }
 
+// Gemm6x32Strided is Gemm6x16Strided on two packed strips of B side by
+// side: it stores the 6×32 tile whose columns j < 16 are Gemm6x16Strided
+// with B at b0 and whose columns j ≥ 16 are Gemm6x16Strided with B at b1,
+// with the bits of those two calls.
+func Gemm6x32Strided(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, alpha, beta float32) {
+	gemm6x32Strided(kc, a, rs, ps, b0, b1, c, ldc, alpha, beta)
+}
+
 // Gemm6x16Edge is Gemm6x16Strided for the bottom edge of C: it reads and
 // stores only rows r < mr (1 ≤ mr ≤ 6) of c, with the bits of a full tile,
 // and reads all six rows of A.
@@ -45,6 +53,43 @@ func Conv6x16(kc int, a, b *float32, off *int32, c *float32, ldc int, bias *floa
 	conv6x16(kc, a, b, off, c, ldc, bias)
 }
 
+// Conv6x32 is Conv6x16 on two strips of B side by side: it stores the 6×32
+// tile whose columns j < 16 are Conv6x16 with B at b0 and whose columns
+// j ≥ 16 are Conv6x16 with B at b1 (the same offsets), each element the
+// same chain and store, so the bits of two Conv6x16 calls.
+func Conv6x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	conv6x32(kc, a, b0, b1, off, c, ldc, bias)
+}
+
+// Conv4x32 is Conv6x32 for the last rows of a product: it stores rows
+// r < 4 of the tile alone, with the bits Conv6x32 stores there. A keeps its
+// 6-float columns; bias[4], bias[5] and rows 4 and 5 of c are not touched.
+func Conv4x32(kc int, a, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	conv4x32(kc, a, b0, b1, off, c, ldc, bias)
+}
+
+// WideTiles reports whether the 32-wide tiles (Conv6x32, Conv4x32,
+// Conv8x32, Gemm6x32Strided) and Conv1x128 run kernels of their own (the
+// AVX-512 forms), so that blocks of 4 rows cost 4 rows and a wide tile
+// beats two narrow ones; elsewhere they run the 6×16 kernels.
+func WideTiles() bool { return false }
+
+// Conv8x32 is Conv4x32 on two strips of A: it stores the 8×32 tile whose
+// rows r < 4 are Conv4x32 with A at a0 and rows r ≥ 4 Conv4x32 with A at
+// a1 (each strip in 6-float columns, its first four rows used) and bias
+// from bias[4], with the bits of those two calls.
+func Conv8x32(kc int, a0, a1, b0, b1 *float32, off *int32, c *float32, ldc int, bias *float32) {
+	conv8x32(kc, a0, a1, b0, b1, off, c, ldc, bias)
+}
+
+// Conv1x128 is Conv6x16 for one row over 128 positions: it stores
+// c[j] = Σ_p a[6p]·b[off[p]+j] (+ bias[0]), j < 128, the chains and store
+// of row 0 of Conv6x16 on the eight strips of 16 at b, b+16, …; A keeps its
+// 6-float columns, of which it reads the first; kc ≥ 1.
+func Conv1x128(kc int, a, b *float32, off *int32, c *float32, bias *float32) {
+	conv1x128(kc, a, b, off, c, bias)
+}
+
 // Transpose8x8 stores the transpose of the 8×8 block src[r·lds+c] at
 // dst[c·ldd+r].
 func Transpose8x8(src *float32, lds int, dst *float32, ldd int) { transpose8x8(src, lds, dst, ldd) }
@@ -65,6 +110,22 @@ func Relu(y, x []float32) { relu(y, x) }
 // ReluGrad stores d[i] = dy[i] where x[i] > 0 and +0 elsewhere (NaN
 // included) for i < len(x); d and dy must be at least as long as x.
 func ReluGrad(d, x, dy []float32) { reluGrad(d, x, dy) }
+
+// ReluGradRows is ReluGrad on rows runs of w floats: it stores
+// dst[r·ldd+j] = dy[r·lds+j] where x[r·lds+j] > 0 and +0 elsewhere, x and
+// dy laid out alike, as CopyRows copies them.
+func ReluGradRows(dst *float32, ldd int, x, dy *float32, lds int, rows, w int) {
+	reluGradRows(dst, ldd, x, dy, lds, rows, w)
+}
+
+// Widen stores dst[i] = float64(src[i]) (exact) for i < len(src); dst
+// must be at least as long as src.
+func Widen(dst []float64, src []float32) { widen(dst, src) }
+
+// Narrow stores dst[i] = float32(src[i]), rounded to nearest, ties to
+// even, as Go converts, for i < len(src); dst must be at least as long as
+// src.
+func Narrow(dst []float32, src []float64) { narrow(dst, src) }
 
 // MaxPool2x2 stores, for each of planes planes of h×w in x, the 2×2
 // stride-2 max pool of its top-left 2·oh×2·ow corner in the plane of oh×ow

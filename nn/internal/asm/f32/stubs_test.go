@@ -24,6 +24,17 @@ func randFloats(rng *rand.Rand, n int) []float32 {
 	return s
 }
 
+// nanFloats returns n quiet NaNs: a kernel that reads them as old
+// contents, or a check that finds one where a kernel should have stored,
+// sees it (IEEE 754 propagates NaN).
+func nanFloats(n int) []float32 {
+	s := make([]float32, n)
+	for i := range s {
+		s[i] = float32(math.NaN())
+	}
+	return s
+}
+
 func requireBits(t *testing.T, want, got []float32, format string, args ...any) {
 	t.Helper()
 	for i := range want {
@@ -207,6 +218,29 @@ func TestGemm6x16StridedBits(t *testing.T) {
 	}
 }
 
+func TestGemm6x32StridedMatchesLoop(t *testing.T) {
+	// Gemm6x32Strided (its AVX-512 form on a CPU that has it, two
+	// Gemm6x16Strided calls elsewhere) stores the bits of its loop, two
+	// calls of the strided 6×16 loop, A read in place by rows and by
+	// columns, with every alpha and beta of tileCases; c past the 32
+	// columns is never written.
+	rng := rand.New(rand.NewPCG(23, 24))
+	for _, tc := range tileCases() {
+		kc := tc.kc
+		b := randFloats(rng, 32*kc+16)
+		const ldc = 35
+		c0 := randFloats(rng, 6*ldc)
+		for _, layout := range []struct{ rs, ps, n int }{{kc + 3, 1, 6 * (kc + 3)}, {1, 9, 9 * kc}} {
+			a := randFloats(rng, layout.n)
+			want := append([]float32(nil), c0...)
+			gemm6x32Strided(kc, &a[0], layout.rs, layout.ps, &b[0], &b[16*kc+7], &want[0], ldc, tc.alpha, tc.beta)
+			got := append([]float32(nil), c0...)
+			Gemm6x32Strided(kc, &a[0], layout.rs, layout.ps, &b[0], &b[16*kc+7], &got[0], ldc, tc.alpha, tc.beta)
+			requireBits(t, want, got, "kc=%d rs=%d alpha=%v beta=%v", kc, layout.rs, tc.alpha, tc.beta)
+		}
+	}
+}
+
 func TestGemm6x16EdgeBitsAndBounds(t *testing.T) {
 	// Gemm6x16Edge must store, for the top mr rows of a tile, the bits
 	// Gemm6x16 gives those elements in a full tile (the same fused
@@ -259,18 +293,95 @@ func TestConv6x16MatchesLoop(t *testing.T) {
 		bias := randFloats(rng, 6)
 		for _, bp := range []*float32{nil, &bias[0]} {
 			const ldc = 20
-			want := make([]float32, 6*ldc)
-			for i := range want {
-				want[i] = float32(math.NaN())
-			}
+			want := nanFloats(6 * ldc)
 			conv6x16(kc, &a[0], &b[0], &off[0], &want[0], ldc, bp)
 			for _, f := range convForms() {
-				got := make([]float32, 6*ldc)
-				for i := range got {
-					got[i] = float32(math.NaN())
-				}
+				got := nanFloats(6 * ldc)
 				f.fn(kc, &a[0], &b[0], &off[0], &got[0], ldc, bp)
 				requireBits(t, want, got, "%s kc=%d bias=%t", f.name, kc, bp != nil)
+			}
+		}
+	}
+}
+
+func TestConv6x32MatchesLoop(t *testing.T) {
+	// Conv6x32, Conv4x32 and their AVX-512 forms against two calls of the
+	// 6×16 loop (conv6x32), B's halves at two bases that overlap or lie
+	// apart, with and without the bias, at k depths with every remainder of
+	// the four-deep unrolling; c past the 32 columns, and past row 4 for
+	// Conv4x32, is never written.
+	rng := rand.New(rand.NewPCG(9, 10))
+	for _, kc := range []int{1, 2, 3, 4, 5, 6, 7, 27, 144, 288} {
+		a := randFloats(rng, 6*kc)
+		b := randFloats(rng, 600)
+		off := make([]int32, kc)
+		for p := range off {
+			off[p] = int32(rng.IntN(400 - 16))
+		}
+		bias := randFloats(rng, 6)
+		for _, b1 := range []int{16, 5, 183} {
+			for _, bp := range []*float32{nil, &bias[0]} {
+				const ldc = 37
+				want := nanFloats(6 * ldc)
+				conv6x32(kc, &a[0], &b[0], &b[b1], &off[0], &want[0], ldc, bp)
+				for _, f := range wideConvForms() {
+					want := append(want[:f.rows*ldc:f.rows*ldc], nanFloats((6-f.rows)*ldc)...)
+					got := nanFloats(6 * ldc)
+					f.fn(kc, &a[0], &b[0], &b[b1], &off[0], &got[0], ldc, bp)
+					requireBits(t, want, got, "%s kc=%d b1=%d bias=%t", f.name, kc, b1, bp != nil)
+				}
+			}
+		}
+	}
+}
+
+func TestConv8x32MatchesLoop(t *testing.T) {
+	// Conv8x32 and its AVX-512 form against two calls of the 4×32 loop
+	// (conv8x32), A in two strips, with and without the bias, at k depths
+	// with every remainder of the four-deep unrolling; c past the 32
+	// columns and the 8 rows is never written.
+	rng := rand.New(rand.NewPCG(19, 20))
+	for _, kc := range []int{1, 2, 3, 4, 5, 7, 72, 144} {
+		a0, a1 := randFloats(rng, 6*kc), randFloats(rng, 6*kc)
+		b := randFloats(rng, 600)
+		off := make([]int32, kc)
+		for p := range off {
+			off[p] = int32(rng.IntN(400 - 16))
+		}
+		bias := randFloats(rng, 8)
+		for _, bp := range []*float32{nil, &bias[0]} {
+			const ldc = 37
+			want := nanFloats(9 * ldc)
+			conv8x32(kc, &a0[0], &a1[0], &b[0], &b[183], &off[0], &want[0], ldc, bp)
+			for name, fn := range eightConvForms() {
+				got := nanFloats(9 * ldc)
+				fn(kc, &a0[0], &a1[0], &b[0], &b[183], &off[0], &got[0], ldc, bp)
+				requireBits(t, want, got, "%s kc=%d bias=%t", name, kc, bp != nil)
+			}
+		}
+	}
+}
+
+func TestConv1x128MatchesLoop(t *testing.T) {
+	// Conv1x128 and its AVX-512 form against the loop (row 0 of the 6×16
+	// loop on eight strips), with and without the bias; c past the 128
+	// positions is never written.
+	rng := rand.New(rand.NewPCG(21, 22))
+	for _, kc := range []int{1, 2, 5, 9, 72} {
+		a := randFloats(rng, 6*kc)
+		b := randFloats(rng, 800)
+		off := make([]int32, kc)
+		for p := range off {
+			off[p] = int32(rng.IntN(800 - 128))
+		}
+		bias := randFloats(rng, 1)
+		for _, bp := range []*float32{nil, &bias[0]} {
+			want := nanFloats(130)
+			conv1x128(kc, &a[0], &b[0], &off[0], &want[0], bp)
+			for name, fn := range rowConvForms() {
+				got := nanFloats(130)
+				fn(kc, &a[0], &b[0], &off[0], &got[0], bp)
+				requireBits(t, want, got, "%s kc=%d bias=%t", name, kc, bp != nil)
 			}
 		}
 	}
@@ -380,6 +491,79 @@ func TestReluMatchesGoMax(t *testing.T) {
 	Relu(x, x)
 	for i := range x {
 		require.Equal(t, math.Float32bits(want[i]), math.Float32bits(x[i]))
+	}
+}
+
+func TestReluGradRowsMatchesGo(t *testing.T) {
+	// ReluGradRows, its loop and (on amd64) its assembly store dy where
+	// x > 0 and +0 elsewhere (Go's > on IEEE 754 values: false for NaN and
+	// ±0), row by row between strided rows, widths with and without a
+	// remainder of eight; dst between its rows is never written.
+	rng := rand.New(rand.NewPCG(15, 16))
+	forms := []struct {
+		name string
+		fn   func(dst *float32, ldd int, x, dy *float32, lds int, rows, w int)
+	}{{"ReluGradRows", ReluGradRows}, {"loop", reluGradRows}}
+	for _, w := range []int{1, 7, 8, 14, 16, 28, 32, 35} {
+		const rows = 5
+		lds, ldd := w+3, w+5
+		x, dy := make([]float32, rows*lds), randFloats(rng, rows*lds)
+		for i := range x {
+			if rng.IntN(3) == 0 {
+				x[i] = math.Float32frombits(specials32[rng.IntN(len(specials32))])
+			} else {
+				x[i] = float32(rng.NormFloat64())
+			}
+		}
+		want := nanFloats(rows * ldd)
+		for r := 0; r < rows; r++ {
+			for j := 0; j < w; j++ {
+				if x[r*lds+j] > 0 { // Go spec semantics
+					want[r*ldd+j] = dy[r*lds+j]
+				} else {
+					want[r*ldd+j] = 0
+				}
+			}
+		}
+		for _, f := range forms {
+			got := nanFloats(rows * ldd)
+			f.fn(&got[0], ldd, &x[0], &dy[0], lds, rows, w)
+			requireBits(t, want, got, "%s w=%d", f.name, w)
+		}
+	}
+}
+
+func TestWidenNarrowMatchGoConversions(t *testing.T) {
+	// Widen and Narrow store the bits of Go's conversions (float64(x)
+	// exact; float32(x) rounded to nearest, ties to even: the Go spec and
+	// IEEE 754 §5.4.2) at every length through the vector steps and the
+	// tail, on values that round up, down and to even, subnormals, values
+	// past the float32 range, ±0, ±Inf and NaN.
+	rng := rand.New(rand.NewPCG(17, 18))
+	for n := 0; n <= 40; n++ {
+		x32 := make([]float32, n)
+		x64 := make([]float64, n)
+		for i := range x32 {
+			switch rng.IntN(4) {
+			case 0:
+				x32[i] = math.Float32frombits(specials32[rng.IntN(len(specials32))])
+				x64[i] = []float64{0x1p-149 * 0.75, 0x1p-149 * 1.5, 0x1p-126 * (1 - 0x1p-30), 3.5e38, -1e300,
+					math.Inf(1), math.NaN(), math.Copysign(0, -1), 1 + 0x1p-24, 1 + 3*0x1p-24}[rng.IntN(10)]
+			default:
+				x32[i] = float32(rng.NormFloat64())
+				x64[i] = rng.NormFloat64() * math.Pow(2, float64(rng.IntN(60)-30))
+			}
+		}
+		w := make([]float64, n+1)
+		Widen(w, x32)
+		nr := make([]float32, n+1)
+		Narrow(nr, x64)
+		for i := range x32 {
+			require.Equal(t, math.Float64bits(float64(x32[i])), math.Float64bits(w[i]), "n=%d widen %#x", n, math.Float32bits(x32[i]))
+			require.Equal(t, math.Float32bits(float32(x64[i])), math.Float32bits(nr[i]), "n=%d narrow %#x", n, math.Float64bits(x64[i]))
+		}
+		require.Zero(t, w[n], "past the end")
+		require.Zero(t, nr[n], "past the end")
 	}
 }
 
