@@ -26,7 +26,8 @@ func perPointSum(t *testing.T, h *Head, x []float64, n int, w []float64, target 
 	return out, sum
 }
 
-// TestGradientSumMatchesPerPoint checks the summed-gradient path against
+// TestGradientSumMatchesPerPoint checks the summed-gradient path (prefixes
+// that narrow the data; those that widen it sum point by point) against
 // the per-point computation on random dense and convolutional models, with
 // their affine prefixes (a standardisation before a Gemm, a Conv with a
 // BatchNorm), in float64 to 1e-12 and float32 to 1e-5 relative to the
@@ -35,14 +36,18 @@ func perPointSum(t *testing.T, h *Head, x []float64, n int, w []float64, target 
 // P(a + α(b − a)) = P(a) + α(P(b) − P(a)) for affine P.
 func TestGradientSumMatchesPerPoint(t *testing.T) {
 	ctx := context.Background()
+	// hidden and channels set whether the prefix narrows the data (8 of
+	// 12 values, 1 channel of 2), so that the sums go through it, or
+	// widens it (20, 4), so that they are formed point by point.
+	var hidden, channels int64
 	dense := func() *irGraph {
 		g := newIR(13, 11)
 		g.input("x", -1, 12)
 		a := g.node("Sub", []string{"x", g.random("mu", 1, 12)}, "c")
 		a = g.node("Div", []string{a, g.floats("sd", []int64{12}, []float32{1, 2, 0.5, 1, 3, 1, 1, 2, 1, 4, 1, 1})}, "s")
-		a = g.node("Gemm", []string{a, g.random("w1", 0.5, 20, 12), g.random("b1", 0.1, 20)}, "h1", aInt("transB", 1))
+		a = g.node("Gemm", []string{a, g.random("w1", 0.5, hidden, 12), g.random("b1", 0.1, hidden)}, "h1", aInt("transB", 1))
 		a = g.node("Relu", []string{a}, "r1")
-		a = g.node("Gemm", []string{a, g.random("w2", 0.5, 5, 20), g.random("b2", 0.1, 5)}, "y0", aInt("transB", 1))
+		a = g.node("Gemm", []string{a, g.random("w2", 0.5, 5, hidden), g.random("b2", 0.1, 5)}, "y0", aInt("transB", 1))
 		g.node("Softmax", []string{a}, "y", aInt("axis", 1))
 		g.output("y")
 		return g
@@ -50,24 +55,29 @@ func TestGradientSumMatchesPerPoint(t *testing.T) {
 	conv := func() *irGraph {
 		g := newIR(13, 12)
 		g.input("x", -1, 2, 8, 8)
-		a := g.node("Conv", []string{"x", g.random("cw", 0.5, 4, 2, 3, 3), g.random("cb", 0.1, 4)}, "c1", aInts("pads", 1, 1, 1, 1))
-		a = g.node("BatchNormalization", []string{a, g.random("s", 1, 4), g.random("t", 0.2, 4), g.random("m", 0.2, 4), g.floats("v", []int64{4}, []float32{1, 2, 0.5, 1})}, "bn")
+		a := g.node("Conv", []string{"x", g.random("cw", 0.5, channels, 2, 3, 3), g.random("cb", 0.1, channels)}, "c1", aInts("pads", 1, 1, 1, 1))
+		a = g.node("BatchNormalization", []string{a, g.random("s", 1, channels), g.random("t", 0.2, channels), g.random("m", 0.2, channels), g.floats("v", []int64{channels}, []float32{1, 2, 0.5, 1}[:channels])}, "bn")
 		a = g.node("Relu", []string{a}, "r1")
 		a = g.node("MaxPool", []string{a}, "p1", aInts("kernel_shape", 2, 2), aInts("strides", 2, 2))
 		a = g.node("Flatten", []string{a}, "f")
-		g.node("Gemm", []string{a, g.random("fw", 0.3, 3, 64), g.random("fb", 0.1, 3)}, "y", aInt("transB", 1))
+		g.node("Gemm", []string{a, g.random("fw", 0.3, 3, 16*channels), g.random("fb", 0.1, 3)}, "y", aInt("transB", 1))
 		g.output("y")
 		return g
 	}
 	for _, c := range []struct {
-		name  string
-		build func() *irGraph
-		size  int
-	}{{"dense", dense, 12}, {"conv", conv, 128}} {
+		name             string
+		build            func() *irGraph
+		size             int
+		hidden, channels int64
+		through          bool
+	}{{"dense narrowing", dense, 12, 8, 0, true}, {"conv narrowing", conv, 128, 0, 1, true},
+		{"dense widening", dense, 12, 20, 0, false}, {"conv widening", conv, 128, 0, 4, false}} {
+		hidden, channels = c.hidden, c.channels
 		for _, dt := range []DType{Float64, Float32} {
 			h, err := mustHead(c.build().m, dt)
 			require.NoError(t, err)
 			require.NotNil(t, h.prefix(), "%s: the affine prefix is found", c.name)
+			assert.Equal(t, c.through, h.summingPrefix() != nil, "%s: the sums go through the prefix", c.name)
 			rng := rand.New(rand.NewSource(4))
 			const n = 70 // more than one batch of 64
 			x := randomInput(rng, n*c.size)
