@@ -24,7 +24,8 @@
 // gradients), and the input gradient of a linear layer costs one matrix
 // product the size of its forward one. The peak is the float32 FMA ceiling
 // of the cores the Go side may use (a register-only FMA loop on GOMAXPROCS
-// goroutines, internal/cpupeak), measured in the same run at the same
+// goroutines, on 512-bit vectors where the CPU has AVX-512, as nn's tiles
+// then run; internal/cpupeak), measured in the same run at the same
 // thread count; the rate of nn's own matrix product on a one-MatMul model
 // (256×256×256 and 64×1024×256 through Head.Forward) is reported beside it.
 //
@@ -56,6 +57,7 @@ import (
 	"time"
 
 	"github.com/apportion/apportion/bench"
+	"github.com/apportion/apportion/internal/cpupeak"
 	"github.com/apportion/apportion/onnxlite"
 )
 
@@ -654,7 +656,7 @@ func renderMarkdown(cfg config, rows []row, checks []string, peaks, gemms map[in
 	}
 	fmt.Fprintf(&b, "- PyTorch: %s (Debian python3-torch, %s)\n", torchVersion, cfg.python)
 	fmt.Fprintf(&b, "- Load average (1, 5, 15 min): %s at the start, %s at the end; the machine is shared, so timings are noisy\n", loadStart, loadEnd)
-	fmt.Fprintf(&b, "- Peak (float32 FMA ceiling: a register-only FMA loop on GOMAXPROCS goroutines, best of ten trials, measured in this run): %.2f GFLOP/s at 1 thread, %.2f at 2\n", peaks[1], peaks[2])
+	fmt.Fprintf(&b, "- Peak (float32 FMA ceiling: a register-only FMA loop on %s vectors on GOMAXPROCS goroutines, best of ten trials, measured in this run): %.2f GFLOP/s at 1 thread, %.2f at 2\n", cpupeak.Vector(), peaks[1], peaks[2])
 	fmt.Fprintf(&b, "- nn's float32 matrix product (a one-MatMul model through Head.Forward, best of ten trials on 256×256×256 and 64×1024×256): %.2f GFLOP/s at 1 thread, %.2f at 2\n", gemms[1], gemms[2])
 	fmt.Fprintf(&b, "- Run: %d repetitions per row, alternating sides, median; took %s; finished %s\n\n", cfg.reps, took.Round(time.Second), time.Now().UTC().Format("2006-01-02 15:04 MST"))
 	if len(checks) > 0 {

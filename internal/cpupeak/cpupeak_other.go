@@ -2,6 +2,9 @@
 
 package cpupeak
 
-const available = false
+const (
+	available = false
+	lanes     = 8
+)
 
 func fmaLoop(int) {}

@@ -2,12 +2,12 @@
 
 #include "textflag.h"
 
-// func fmaLoop(n int)
+// func fmaLoop256(n int)
 //
 // Runs n iterations of 12 independent 8-wide fused multiply-adds on
 // registers only (no loads or stores): 192 floating-point operations per
-// iteration, the core's float32 FMA ceiling.
-TEXT ·fmaLoop(SB), NOSPLIT, $0-8
+// iteration, the core's float32 FMA ceiling on 256-bit vectors.
+TEXT ·fmaLoop256(SB), NOSPLIT, $0-8
 	MOVQ n+0(FP), CX
 	VXORPS Y0, Y0, Y0
 	VXORPS Y1, Y1, Y1
@@ -43,5 +43,48 @@ peakloop:
 	JNZ peakloop
 
 peakdone:
+	VZEROUPPER
+	RET
+
+// func fmaLoop512(n int)
+//
+// fmaLoop256 on 512-bit vectors: 12 independent 16-wide fused
+// multiply-adds, 384 floating-point operations per iteration.
+TEXT ·fmaLoop512(SB), NOSPLIT, $0-8
+	MOVQ n+0(FP), CX
+	VPXORD Z0, Z0, Z0
+	VPXORD Z1, Z1, Z1
+	VPXORD Z2, Z2, Z2
+	VPXORD Z3, Z3, Z3
+	VPXORD Z4, Z4, Z4
+	VPXORD Z5, Z5, Z5
+	VPXORD Z6, Z6, Z6
+	VPXORD Z7, Z7, Z7
+	VPXORD Z8, Z8, Z8
+	VPXORD Z9, Z9, Z9
+	VPXORD Z10, Z10, Z10
+	VPXORD Z11, Z11, Z11
+	VPXORD Z12, Z12, Z12
+	VPXORD Z13, Z13, Z13
+	TESTQ CX, CX
+	JLE peak512done
+
+peak512loop:
+	VFMADD231PS Z12, Z13, Z0
+	VFMADD231PS Z12, Z13, Z1
+	VFMADD231PS Z12, Z13, Z2
+	VFMADD231PS Z12, Z13, Z3
+	VFMADD231PS Z12, Z13, Z4
+	VFMADD231PS Z12, Z13, Z5
+	VFMADD231PS Z12, Z13, Z6
+	VFMADD231PS Z12, Z13, Z7
+	VFMADD231PS Z12, Z13, Z8
+	VFMADD231PS Z12, Z13, Z9
+	VFMADD231PS Z12, Z13, Z10
+	VFMADD231PS Z12, Z13, Z11
+	DECQ CX
+	JNZ peak512loop
+
+peak512done:
 	VZEROUPPER
 	RET

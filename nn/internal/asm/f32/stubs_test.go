@@ -604,7 +604,7 @@ func BenchmarkFMAPeak(b *testing.B) {
 		b.Skip("no AVX2/FMA on this CPU")
 	}
 	const iters = 1 << 16
-	cpupeak.Bench(b, cpupeak.FlopsPerIteration*iters, func() { cpupeak.Loop(iters) })
+	cpupeak.Bench(b, cpupeak.FlopsPerIteration()*iters, func() { cpupeak.Loop(iters) })
 }
 
 // BenchmarkGemm6x16 times the tile kernel alone on packed panels that stay
