@@ -71,7 +71,7 @@ func (m *Model) PredictSamples(ctx context.Context, b *samples.Batch, spec sampl
 		}
 		if all == nil {
 			all = res
-		} else if err := all.append(res); err != nil {
+		} else if err := all.Append(res, 1); err != nil {
 			return nil, err
 		}
 		rows = append(rows, b.First+i)
@@ -83,17 +83,20 @@ func (m *Model) PredictSamples(ctx context.Context, b *samples.Batch, spec sampl
 	return all, nil
 }
 
-// append appends the outputs of p along their first axis.
-func (all *Prediction) append(p *Prediction) error {
-	if len(p.Outputs) != len(all.Outputs) {
-		return fmt.Errorf("internal error: a batch has %d outputs, the first had %d", len(p.Outputs), len(all.Outputs))
+// Append appends the outputs of q, a prediction of the n samples that
+// follow p's, along the outputs' first axis: for a prediction made in
+// parts. An output without a batch axis of n is an error that says to give
+// the input whole.
+func (p *Prediction) Append(q *Prediction, n int) error {
+	if len(q.Outputs) != len(p.Outputs) {
+		return fmt.Errorf("internal error: a batch has %d outputs, the first had %d", len(q.Outputs), len(p.Outputs))
 	}
-	for i := range all.Outputs {
-		a, o := &all.Outputs[i], p.Outputs[i]
-		if len(a.Shape) == 0 || len(o.Shape) == 0 {
-			return fmt.Errorf("output %q of shape %v has no batch axis to run the samples one by one", o.Name, o.Shape)
+	for i := range p.Outputs {
+		a, o := &p.Outputs[i], q.Outputs[i]
+		if len(a.Shape) == 0 || len(o.Shape) == 0 || o.Shape[0] != n {
+			return fmt.Errorf("output %q of shape %v has no batch axis to run the input in batches; give it whole (for example as a .pb tensor)", o.Name, o.Shape)
 		}
-		a.Shape[0] += o.Shape[0]
+		a.Shape[0] += n
 		a.Data.Values = append(a.Data.Values, o.Data.Values...)
 	}
 	return nil

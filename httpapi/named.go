@@ -66,8 +66,8 @@ func (h *Handler) namedInputs(inputs json.RawMessage) (b *samples.Batch, ok bool
 			// Left out of the answer, its neighbours kept.
 			err = fmt.Errorf(`"inputs"[%d] (for %q): %w`, n, h.spec.Name, err)
 			first = cmp.Or(first, err)
-			markBad(b, n, err)
-			x = make([]float64, size)
+			b.MarkBad(n, err)
+			x = nanSample(size)
 		}
 		b.Data = append(b.Data, x...)
 	}
@@ -77,12 +77,14 @@ func (h *Handler) namedInputs(inputs json.RawMessage) (b *samples.Batch, ok bool
 	return b, true, nil
 }
 
-// markBad records that sample n of b could not be read.
-func markBad(b *samples.Batch, n int, err error) {
-	if b.Bad == nil {
-		b.Bad = map[int]error{}
+// nanSample is the values of a sample that could not be read: n NaNs, as
+// the samples readers leave them.
+func nanSample(n int) []float64 {
+	x := make([]float64, n)
+	for i := range x {
+		x[i] = math.NaN()
 	}
-	b.Bad[n] = err
+	return x
 }
 
 // namedSample reads one object of feature values.

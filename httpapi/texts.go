@@ -55,8 +55,8 @@ func (h *Handler) textInputs(inputs json.RawMessage) (b *samples.Batch, ok bool,
 		if err != nil {
 			err = fmt.Errorf(`"inputs"[%d] (for %q): %w`, n, h.spec.Name, err)
 			first = cmp.Or(first, err)
-			markBad(b, n, err)
-			ids = make([]float64, shape[0])
+			b.MarkBad(n, err)
+			ids = nanSample(shape[0])
 		}
 		b.Data = append(b.Data, ids...)
 	}

@@ -140,7 +140,7 @@ func (s *csvSource) next(n, first int) (*Batch, error) {
 		where := fmt.Sprintf("line %d", line)
 		x, err := s.row(rec)
 		if err != nil {
-			b.markBad(b.Samples, fmt.Errorf("%s%w", where, err))
+			b.MarkBad(b.Samples, fmt.Errorf("%s%w", where, err))
 			x = appendNaN(nil, len(s.cols))
 		}
 		b.Data = append(b.Data, x...)

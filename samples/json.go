@@ -180,7 +180,7 @@ func (s *jsonSource) next(n, first int) (*Batch, error) {
 			if !s.fixed {
 				return nil, err
 			}
-			b.markBad(b.Samples, err)
+			b.MarkBad(b.Samples, err)
 			b.Data = appendNaN(b.Data[:start], per)
 		} else {
 			b.Data = v.data

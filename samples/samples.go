@@ -106,8 +106,9 @@ type Batch struct {
 	Bad map[int]error
 }
 
-// markBad records that sample i could not be read.
-func (b *Batch) markBad(i int, err error) {
+// MarkBad records that sample i could not be read (its values are to be
+// NaN, as the readers leave them).
+func (b *Batch) MarkBad(i int, err error) {
 	if b.Bad == nil {
 		b.Bad = map[int]error{}
 	}

@@ -239,7 +239,7 @@ func (b *Batch) checkFloat32() {
 			continue
 		}
 		if j, err := CheckFloat32(b.Sample(i)); err != nil {
-			b.markBad(i, fmt.Errorf("sample %d, index %d: %w", b.First+i, j, err))
+			b.MarkBad(i, fmt.Errorf("sample %d, index %d: %w", b.First+i, j, err))
 		}
 	}
 }
@@ -273,7 +273,7 @@ func concat(parts []*Batch) *Batch {
 		Shape: append([]int{n}, first.SampleShape()...), Data: make([]float64, 0, size)}
 	for _, p := range parts {
 		for i, err := range p.Bad {
-			all.markBad(p.First-first.First+i, err)
+			all.MarkBad(p.First-first.First+i, err)
 		}
 		all.Data = append(all.Data, p.Data...)
 	}

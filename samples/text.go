@@ -130,7 +130,7 @@ func ReadText(r io.Reader, spec Spec, vocab *Vocabulary) (*Batch, error) {
 		ids, err := vocab.IDs(text, length)
 		if err != nil {
 			ids = slices.Repeat([]float64{math.NaN()}, length)
-			b.markBad(b.Samples, fmt.Errorf("line %d: %w", line, err))
+			b.MarkBad(b.Samples, fmt.Errorf("line %d: %w", line, err))
 		}
 		b.Data = append(b.Data, ids...)
 		b.Samples++

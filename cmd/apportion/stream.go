@@ -185,7 +185,7 @@ func predictRows(m *explain.Model, path string, spec samples.Spec, opt samples.O
 		res.Rows, res.Errors = nil, nil
 		if all == nil {
 			all = res
-		} else if err := appendOutputs(all, res, n); err != nil {
+		} else if err := all.Append(res, n); err != nil {
 			return nil, 0, err
 		}
 		count += n
@@ -200,23 +200,6 @@ func predictRows(m *explain.Model, path string, spec samples.Spec, opt samples.O
 		all.Rows, all.Errors = rows, bad
 	}
 	return all, count, nil
-}
-
-// appendOutputs appends the outputs of a batch of n samples to those of
-// the batches before it, along their first axis.
-func appendOutputs(all, part *explain.Prediction, n int) error {
-	if len(part.Outputs) != len(all.Outputs) {
-		return fmt.Errorf("internal error: a batch has %d outputs, the first had %d", len(part.Outputs), len(all.Outputs))
-	}
-	for i := range all.Outputs {
-		a, p := &all.Outputs[i], part.Outputs[i]
-		if len(a.Shape) == 0 || len(p.Shape) == 0 || p.Shape[0] != n {
-			return fmt.Errorf("output %q of shape %v has no batch axis to run the input in batches; give it whole (for example as a .pb tensor)", p.Name, p.Shape)
-		}
-		a.Shape[0] += n
-		a.Data.Values = append(a.Data.Values, p.Data.Values...)
-	}
-	return nil
 }
 
 // chunkDone, when set (by tests), is called after each batch of a stream
