@@ -174,13 +174,24 @@ func (e *Explainer) options(batch *samples.Batch, name func(*Dataset) string) (g
 		if batch == nil {
 			return o, fieldError(FieldBaseline, " ", string(b.Kind), " needs ", FieldReference, " to explain single rows")
 		}
-		rows := batch.Rows()
-		for i, row := range rows {
+		// The samples that could not be read are no part of the mean: each
+		// gets its own error, the others are explained.
+		var rows [][]float64
+		for i, row := range batch.Rows() {
+			if batch.Bad[i] != nil {
+				continue
+			}
+			rows = append(rows, row)
 			if err := samples.CheckFinite(row); err != nil {
 				e := fieldError(FieldBaseline, fmt.Sprintf(" %s: sample %d of %s: ", b.Kind, i, batch.Name), err)
 				e.Input = true
 				return o, e
 			}
+		}
+		if len(rows) == 0 {
+			e := fieldError(FieldBaseline, fmt.Sprintf(" %s: no sample of %s could be read: ", b.Kind, batch.Name), batch.FirstBad())
+			e.Input = true
+			return o, e
 		}
 		o.Baselines = []gradattr.Baseline{{Kind: b.Kind, Reference: rows, Source: batch.Name}}
 	case gradattr.BaselineConstant:

@@ -269,6 +269,32 @@ func TestPredictKeepsGoodRows(t *testing.T) {
 	assert.Equal(t, exitFail, code)
 	assert.Contains(t, out, "sample 3\n")
 	assert.NotContains(t, out, "sample 2\n")
+
+	// explain with the mean of the samples as the baseline: the mean is
+	// that of the samples read (common practice: an unreadable row is no
+	// sample), so the good rows' explanations are those of the good file,
+	// bit for bit, and the bad one carries its own error.
+	explainDoc := func(in string) []struct {
+		Attributions []float64 `json:"attributions"`
+		Error        *string   `json:"error"`
+	} {
+		_, out, _ := cli(t, "explain", "-model", model, "-input", in, "-baseline", "mean", "-method", "ig", "-steps", "16", "-format", "json")
+		var doc struct {
+			Explanations []struct {
+				Attributions []float64 `json:"attributions"`
+				Error        *string   `json:"error"`
+			} `json:"explanations"`
+		}
+		require.NoError(t, json.Unmarshal([]byte(out), &doc), out)
+		return doc.Explanations
+	}
+	got, want2 := explainDoc(mixed), explainDoc(good)
+	require.Len(t, got, 4)
+	require.NotNil(t, got[2].Error)
+	assert.Contains(t, *got[2].Error, `"x" is not a number`)
+	for i, j := range []int{0, 1, 3} {
+		assert.Equal(t, want2[i].Attributions, got[j].Attributions, "sample %d", j)
+	}
 }
 
 func TestPredictKeepsRowsTheModelRefuses(t *testing.T) {
