@@ -62,7 +62,7 @@ func New(m *Model, head gradattr.Model, s Settings) (*Explainer, error) {
 	// A model whose output size follows from inputs held per sample (a
 	// target shape) has its target checked per sample, by the method.
 	if n := head.OutputSize(); n > 0 && s.Target >= n {
-		return nil, fieldError(FieldTarget, fmt.Sprintf(" must be top or an index from 0 to %d (output %q has %d values), got %d", n-1, output, n, s.Target))
+		return nil, targetError(s.Target, output, n, "")
 	}
 	// A method with baselines averages the samples explained when it has
 	// no reference set; the others cannot do without one.
@@ -333,6 +333,12 @@ func (e *Explainer) headFor(i int) (gradattr.Model, error) {
 	return h, err
 }
 
+// targetError is the error of a target beyond output's n values (where,
+// when not "", says under which inputs it has them).
+func targetError(target int, output string, n int, where string) *FieldError {
+	return fieldError(FieldTarget, fmt.Sprintf(" must be top or an index from 0 to %d (output %q has %d values%s), got %d", n-1, output, n, where, target))
+}
+
 // Attribute explains one row x. A mean baseline needs a reference set
 // here.
 func (e *Explainer) Attribute(ctx context.Context, x []float64) (*gradattr.Result, error) {
@@ -525,7 +531,7 @@ func (e *Explainer) Explain(ctx context.Context, b *samples.Batch, progress func
 		case e.settings.Target >= head.OutputSize() && head.OutputSize() > 0:
 			// Known only now that the sample's other inputs are held.
 			n := head.OutputSize()
-			ex.Err = fieldError(FieldTarget, fmt.Sprintf(" must be top or an index from 0 to %d (output %q has %d values with this sample's inputs), got %d", n-1, e.output, n, e.settings.Target))
+			ex.Err = targetError(e.settings.Target, e.output, n, " with this sample's inputs")
 		default:
 			var at []float64
 			ex.Result, at, ex.BaselineOutputs, ex.Err = e.attribute(ctx, head, x, o)

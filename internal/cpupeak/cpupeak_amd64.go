@@ -7,8 +7,14 @@ import "golang.org/x/sys/cpu"
 var (
 	available = cpu.X86.HasAVX2 && cpu.X86.HasFMA
 	wide      = available && cpu.X86.HasAVX512F
-	lanes     = map[bool]int{false: 8, true: 16}[wide]
+	lanes     = 8 // float32 lanes of the loop's vectors
 )
+
+func init() {
+	if wide {
+		lanes = 16
+	}
+}
 
 // fmaLoop runs the loop of fma_amd64.s on the widest vectors the CPU has.
 func fmaLoop(n int) {
