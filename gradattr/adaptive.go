@@ -94,16 +94,11 @@ func newAdaptivePath(e *engine, xb []float64) *adaptivePath {
 
 // integrate returns the attributions from xb to e.x, refined until the
 // estimated relative L1 error is at most tol and the completeness gap
-// (against fb = F(xb)) is too, or until maxPoints points; fixed > 0
-// instead spends exactly that many points. It returns the attributions,
-// the point count and the final error estimate.
-func (p *adaptivePath) integrate(fb, tol float64, fixed, maxPoints int) ([]float64, int, float64, error) {
+// (against fb = F(xb)) is too, or until maxPoints points. It returns the
+// attributions, the point count and the final error estimate.
+func (p *adaptivePath) integrate(fb, tol float64, maxPoints int) ([]float64, int, float64, error) {
 	e := p.e
-	budget := maxPoints
-	if fixed > 0 {
-		budget = fixed
-	}
-	start := min(adaptiveStart, budget-1)
+	start := min(adaptiveStart, maxPoints-1)
 	alpha := make([]float64, start+1)
 	for j := range alpha {
 		alpha[j] = float64(j) / float64(start)
@@ -120,8 +115,8 @@ func (p *adaptivePath) integrate(fb, tol float64, fixed, maxPoints int) ([]float
 		est := p.estimate(attr)
 		gap := completeness(attr, e.outputs[e.target], fb, tol, true)
 		n := len(p.nodes)
-		room := budget - n
-		if room <= 0 || (fixed == 0 && est <= tol && gap.OK) {
+		room := maxPoints - n
+		if room <= 0 || (est <= tol && gap.OK) {
 			return attr, n, est, nil
 		}
 		// Split half the intervals; once two passes show how fast the
@@ -129,7 +124,7 @@ func (p *adaptivePath) integrate(fb, tol float64, fixed, maxPoints int) ([]float
 		// reach the tolerance (at least an eighth), so that the last pass
 		// does not overshoot by half.
 		k := len(p.intervals) / 2
-		if fixed == 0 && prevN > 0 && prevEst > est && est > tol {
+		if prevN > 0 && prevEst > est && est > tol {
 			rate := min(max(math.Log(prevEst/est)/math.Log(float64(n)/float64(prevN)), 0.5), 2)
 			need := float64(n) * math.Pow(est/tol, 1/rate)
 			k = min(k, max(int(math.Ceil(need))-n, len(p.intervals)/8))

@@ -168,7 +168,7 @@ func IntegratedGradients(ctx context.Context, m Model, x []float64, target int, 
 		fb := out[e.target]
 		meanBase += fb
 		if opt.Points == 0 && opt.Rule == RuleTrapezoid {
-			attr, points, est, err := newAdaptivePath(e, xb).integrate(fb, tol, 0, maxPoints)
+			attr, points, est, err := newAdaptivePath(e, xb).integrate(fb, tol, maxPoints)
 			if err != nil {
 				return nil, fmt.Errorf("baseline %d: %w", b, err)
 			}
