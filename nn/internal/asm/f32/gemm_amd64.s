@@ -53,11 +53,7 @@ done:
 	MUL12(Y14)
 
 scaled:
-	VXORPS X13, X13, X13
-	MOVSS beta+44(FP), X15
-	UCOMISS X13, X15
-	JNE accumulate
-	JP accumulate
+	JBETANZ(beta+44(FP), AX, accumulate)
 	STORE2(Y0, Y1)
 	ADDQ R8, DX
 	STORE2(Y2, Y3)
@@ -139,11 +135,7 @@ sdone:
 	MUL12(Y14)
 
 sscaled:
-	VXORPS X13, X13, X13
-	MOVSS beta+60(FP), X15
-	UCOMISS X13, X15
-	JNE saccumulate
-	JP saccumulate
+	JBETANZ(beta+60(FP), AX, saccumulate)
 	STORE2(Y0, Y1)
 	ADDQ R8, DX
 	STORE2(Y2, Y3)
@@ -227,11 +219,7 @@ mfma:
 
 mscaled:
 	MOVQ mr+64(FP), AX
-	VXORPS X14, X14, X14
-	MOVSS beta+60(FP), X15
-	UCOMISS X14, X15
-	JNE maccumulate
-	JP maccumulate
+	JBETANZ(beta+60(FP), BX, maccumulate)
 	STORE2(Y0, Y1)
 	CMPQ AX, $1
 	JEQ mret
@@ -324,11 +312,7 @@ rowloop:
 	VMULPS Y14, Y1, Y1
 	VMULPS Y14, Y2, Y2
 	VMULPS Y14, Y3, Y3
-	VXORPS X13, X13, X13
-	MOVSS beta+52(FP), X15
-	UCOMISS X13, X15
-	JNE rowaccumulate
-	JP rowaccumulate
+	JBETANZ(beta+52(FP), AX, rowaccumulate)
 	VMOVUPS Y0, 0(DX)
 	VMOVUPS Y1, 32(DX)
 	VMOVUPS Y2, 64(DX)

@@ -36,11 +36,7 @@
 	VMULPS Z14, Z0, Z0; VMULPS Z14, Z1, Z1; VMULPS Z14, Z2, Z2; \
 	VMULPS Z14, Z3, Z3; VMULPS Z14, Z4, Z4; VMULPS Z14, Z5, Z5; \
 zscaled: \
-	VXORPS X13, X13, X13; \
-	MOVSS betaOff(FP), X15; \
-	UCOMISS X13, X15; \
-	JNE zaccumulate; \
-	JP zaccumulate; \
+	JBETANZ(betaOff(FP), AX, zaccumulate); \
 	VMOVUPS Z0, (DX); ADDQ R8, DX; VMOVUPS Z1, (DX); ADDQ R8, DX; VMOVUPS Z2, (DX); ADDQ R8, DX; \
 	VMOVUPS Z3, (DX); ADDQ R8, DX; VMOVUPS Z4, (DX); ADDQ R8, DX; VMOVUPS Z5, (DX); \
 	VZEROUPPER; \
@@ -564,11 +560,7 @@ xloop:
 	VMULPS Z14, Z11, Z11
 
 xscaled:
-	VXORPS X13, X13, X13
-	MOVSS beta+68(FP), X15
-	UCOMISS X13, X15
-	JNE xaccumulate
-	JP xaccumulate
+	JBETANZ(beta+68(FP), AX, xaccumulate)
 	STORE6Z32
 	VZEROUPPER
 	RET

@@ -242,3 +242,33 @@ func rowConvForms() map[string]func(kc int, a, b *float32, off *int32, c *float3
 	}
 	return forms
 }
+
+// BenchmarkGemm6x32Strided times the AVX-512 6×32 tile at the k depths of
+// the dense zoo models, on A packed in strips and on A read in place, with
+// B's strips in L1, and sixteen calls down 96 rows of A accumulating into
+// C (beta = 1) as the packed GEMM's inner loop makes them.
+func BenchmarkGemm6x32Strided(b *testing.B) {
+	if !useAVX512 {
+		b.Skip("no AVX-512 on this CPU")
+	}
+	rng := rand.New(rand.NewPCG(15, 16))
+	for _, kc := range []int{30, 64, 100, 256} {
+		a := randFloats(rng, 96*kc)
+		p := randFloats(rng, 32*kc)
+		c := make([]float32, 96*256)
+		flops := 2 * float64(6*32*kc)
+		b.Run(fmt.Sprintf("kc=%d/packed", kc), func(b *testing.B) {
+			cpupeak.Bench(b, flops, func() { gemm6x32StridedAvx512(kc, &a[0], 1, 6, &p[0], &p[16*kc], &c[0], 32, 1, 0) })
+		})
+		b.Run(fmt.Sprintf("kc=%d/in-place", kc), func(b *testing.B) {
+			cpupeak.Bench(b, flops, func() { gemm6x32StridedAvx512(kc, &a[0], kc, 1, &p[0], &p[16*kc], &c[0], 32, 1, 0) })
+		})
+		b.Run(fmt.Sprintf("kc=%d/in-place-96rows-beta1", kc), func(b *testing.B) {
+			cpupeak.Bench(b, 16*flops, func() {
+				for ir := 0; ir < 96; ir += 6 {
+					gemm6x32StridedAvx512(kc, &a[ir*kc], kc, 1, &p[0], &p[16*kc], &c[ir*256], 256, 1, 1)
+				}
+			})
+		})
+	}
+}
