@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"math"
 	"math/rand"
+	"slices"
 	"sync"
 	"testing"
 	"time"
@@ -588,4 +589,31 @@ func TestInPlaceKernelsKeepConstants(t *testing.T) {
 		}
 	}
 	assert.Equal(t, []float64{1, 2, 3, 4}, x)
+}
+
+func TestCheckFiniteNamesFirstNonFinite(t *testing.T) {
+	// Against the plain definition (math.IsNaN, math.IsInf): every length
+	// up to three blocks of eight and a tail, each position, each kind of
+	// non-finite value, a second one planted later, and huge finite values
+	// (whose differences with themselves are still 0) around them.
+	for n := 1; n <= 27; n++ {
+		x := make([]float64, n)
+		for i := range x {
+			x[i] = math.MaxFloat64 * float64(1-2*(i%2))
+		}
+		require.NoError(t, checkFinite(x, 3), "n=%d", n)
+		for at := 0; at < n; at++ {
+			for _, bad := range []float64{math.NaN(), math.Inf(1), math.Inf(-1)} {
+				y := append([]float64(nil), x...)
+				y[at] = bad
+				if at+5 < n {
+					y[at+5] = math.NaN()
+				}
+				first := slices.IndexFunc(y, func(v float64) bool { return math.IsNaN(v) || math.IsInf(v, 0) })
+				err := checkFinite(y, 3)
+				require.ErrorIs(t, err, ErrNonFinite, "n=%d at=%d", n, at)
+				assert.Contains(t, err.Error(), fmt.Sprintf("x[%d] (sample %d, element %d)", first, first/3, first%3))
+			}
+		}
+	}
 }
