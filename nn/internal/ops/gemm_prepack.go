@@ -291,3 +291,84 @@ func sgemmBlock(tA bool, a []float32, lda, ic, mc, pc, kc, nc, jr0 int, alpha, b
 		}
 	}
 }
+
+// sgemmEpilogueFits reports whether sgemmPreEpilogue runs an m×n×k product:
+// on the wide tiles, with one k block (so the bias and the Relu apply as
+// each element's single chain ends), at least one pair of whole strips of
+// B, and enough rows that sgemmPre would take its packed driver.
+func sgemmEpilogueFits(m, n, k int) bool {
+	return f32.WideTiles() && k <= sgemmKC && n >= 2*sgemmNR && m >= sgemmPreRowsBelow
+}
+
+// sgemmPreEpilogue computes C = op(A)·op(B) + bias, then max(·, 0) when
+// relu, for op(A) = A and a prepacked op(B), where sgemmEpilogueFits: the
+// dense layer of a model, bias nil for none. Every element gets the bits of
+// sgemmPre with beta = 1 on C holding the bias rows, then f32.Relu, and the
+// same chain as in any other product; but the columns in pairs of whole
+// strips take f32.Gemm6x32Bias, which adds the bias and applies the Relu
+// as it stores the tile, so C is neither filled first nor read back. The
+// columns past the last pair go through sgemmPrePanels on C filled with
+// the bias there. Warm, it allocates nothing.
+func sgemmPreEpilogue(m, n, k int, a []float32, lda int, pb *sgemmPrepacked, b []float32, ldb int, bias []float32, relu bool, c []float32, ldc int) {
+	if pb.n != n || pb.k != k || !sgemmEpilogueFits(m, n, k) {
+		panic(fmt.Sprintf("nn: sgemm: epilogue product %d×%d×%d with prepacked B %d×%d", m, n, k, pb.k, pb.n))
+	}
+	sgemmCheck(false, pb.tB, m, n, k, a, lda, b, ldb, c, ldc)
+	if bias != nil && len(bias) != n {
+		panic(fmt.Sprintf("nn: sgemm: bias of %d values for %d columns", len(bias), n))
+	}
+	panels := pb.panelsOf(b, ldb)
+	n32 := n &^ (2*sgemmNR - 1)
+	if n32 < n {
+		var beta float32
+		if bias != nil {
+			for i := 0; i < m; i++ {
+				copy(c[i*ldc+n32:i*ldc+n], bias[n32:])
+			}
+			beta = 1
+		}
+		sgemmPrePanels(false, m, n32, 1, a, lda, panels, pb, beta, c, ldc)
+		if relu {
+			for i := 0; i < m; i++ {
+				f32.Relu(c[i*ldc+n32:i*ldc+n], c[i*ldc+n32:i*ldc+n])
+			}
+		}
+	}
+	scratch := sgemmBufs.Get().(*sgemmScratch)
+	defer sgemmBufs.Put(scratch)
+	biasAt := func(j int) *float32 {
+		if bias == nil {
+			return nil
+		}
+		return &bias[j]
+	}
+	const w = 2 * sgemmNR
+	for ic := 0; ic < m; ic += sgemmMC {
+		mc := min(sgemmMC, m-ic)
+		full := mc / sgemmMR * sgemmMR
+		for jr := 0; jr < n32; jr += w {
+			// One k block: the strip of column j starts at panels[j·k].
+			b0, b1 := &panels[jr*k], &panels[(jr+sgemmNR)*k]
+			for ir := 0; ir < full; ir += sgemmMR {
+				i := ic + ir
+				f32.Gemm6x32Bias(k, &a[i*lda], lda, 1, b0, b1, &c[i*ldc+jr], ldc, biasAt(jr), relu)
+			}
+			if full == mc {
+				continue
+			}
+			// The last rows: A's rows copied into a zero-padded strip, the
+			// tile stored aside and its rows copied out.
+			mr := mc - full
+			i0 := ic + full
+			strip := scratch.a[:sgemmMR*k]
+			clear(strip[mr*k:])
+			for r := 0; r < mr; r++ {
+				copy(strip[r*k:(r+1)*k], a[(i0+r)*lda:(i0+r)*lda+k])
+			}
+			f32.Gemm6x32Bias(k, &strip[0], k, 1, b0, b1, &scratch.tile[0], w, biasAt(jr), relu)
+			for r := 0; r < mr; r++ {
+				copy(c[(i0+r)*ldc+jr:(i0+r)*ldc+jr+w], scratch.tile[r*w:(r+1)*w])
+			}
+		}
+	}
+}

@@ -178,6 +178,66 @@ func TestSgemmPrepackedNoAllocs(t *testing.T) {
 // BenchmarkSgemmPrepacked times products whose B is a prepacked weight,
 // against sgemm packing it on every call: mlp-m's layers forward (Wᵀ,
 // transB) and backward (W) at batch 1, 8 and 64.
+func TestSgemmPreEpilogueMatchesFilledBiasAndRelu(t *testing.T) {
+	if !f32.WideTiles() {
+		t.Skip("no wide tiles on this CPU; the epilogue path does not run")
+	}
+	// sgemmPreEpilogue against what it replaces, bit for bit: sgemmPre with
+	// beta = 1 on C holding the bias rows (none: beta = 0), then f32.Relu;
+	// and against the float64 triple loop (Dongarra et al. 1990, §2) plus
+	// the bias, within rounding. Rows around the tile (6) and the row block
+	// (96), columns around the pair of strips (32), k up to one k block.
+	rng := rand.New(rand.NewPCG(41, 42))
+	cases := 0
+	for _, m := range []int{3, 5, 6, 7, 95, 96, 97, 203} {
+		for _, n := range []int{32, 33, 48, 64, 100, 256, 530} {
+			for _, k := range []int{1, 30, 64, 256} {
+				tB := rng.IntN(2) == 1
+				pad := rng.IntN(3) * 3
+				a, lda, b, ldb, c, ldc := sgemmOperands(rng, false, tB, m, n, k, pad, float32(math.NaN()))
+				bias := make([]float32, n)
+				for j := range bias {
+					bias[j] = float32(rng.NormFloat64())
+				}
+				for _, withBias := range []bool{true, false} {
+					for _, relu := range []bool{true, false} {
+						name := fmt.Sprintf("m=%d n=%d k=%d tB=%v bias=%v relu=%v", m, n, k, tB, withBias, relu)
+						var bs []float32
+						want := append([]float32(nil), c...)
+						var beta float32
+						if withBias {
+							bs, beta = bias, 1
+							for i := 0; i < m; i++ {
+								copy(want[i*ldc:i*ldc+n], bias)
+							}
+						}
+						naive := sgemmNaive(false, tB, m, n, k, 1, a, lda, b, ldb, float64(beta), want, ldc)
+						sgemmPre(false, m, n, k, 1, a, lda, newSgemmPrepacked(tB, n, k), b, ldb, beta, want, ldc)
+						got := append([]float32(nil), c...)
+						sgemmPreEpilogue(m, n, k, a, lda, newSgemmPrepacked(tB, n, k), b, ldb, bs, relu, got, ldc)
+						if relu {
+							for i := 0; i < m; i++ {
+								f32.Relu(want[i*ldc:i*ldc+n], want[i*ldc:i*ldc+n])
+								for j := 0; j < n; j++ {
+									naive[i*n+j] = max(naive[i*n+j], 0)
+								}
+							}
+						}
+						sgemmClose(t, name+" vs float64", naive, got, m, n, ldc, k+1)
+						for i := range want {
+							if math.Float32bits(want[i]) != math.Float32bits(got[i]) {
+								require.Equal(t, math.Float32bits(want[i]), math.Float32bits(got[i]), "%s: element %d: epilogue %v, filled bias %v", name, i, got[i], want[i])
+							}
+						}
+						cases++
+					}
+				}
+			}
+		}
+	}
+	t.Logf("%d cases: the epilogue stores the bits of the filled bias and Relu", cases)
+}
+
 func BenchmarkSgemmPrepacked(b *testing.B) {
 	if !f32.Asm() {
 		b.Skip("no AVX2/FMA kernel on this CPU")

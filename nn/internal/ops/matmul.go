@@ -237,7 +237,7 @@ func (op matMulOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (G.Value, er
 				blas64.Gemm(ta, tb, op.scale(), am, bm, beta, cm)
 			}
 		}
-		return matMulResult(op, reuse, batch, m, n, out), nil
+		return matMulResult(op, op.relu, reuse, batch, m, n, out), nil
 	case tensor.Float32:
 		ad, bd := contiguous32(a), contiguous32(b)
 		var out []float32
@@ -245,6 +245,16 @@ func (op matMulOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (G.Value, er
 			out = reuse.Float32s()
 		} else {
 			out = make([]float32, batch*m*n)
+		}
+		alpha := float32(op.scale())
+		pb := op.packed(bd, n, k)
+		if pb != nil && alpha == 1 && !op.transA && (op.bias != nil || op.relu) && sgemmEpilogueFits(m, n, k) {
+			var bias []float32
+			if op.bias != nil {
+				bias = op.bias.f32
+			}
+			sgemmPreEpilogue(m, n, k, ad, colsA, pb, bd, colsB, bias, op.relu, out, n)
+			return matMulResult(op, false, reuse, batch, m, n, out), nil
 		}
 		var beta float32
 		if op.bias != nil {
@@ -255,18 +265,17 @@ func (op matMulOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (G.Value, er
 		} else if k == 0 {
 			clear(out)
 		}
-		alpha := float32(op.scale())
 		if m == 0 || n == 0 || k == 0 {
-			return matMulResult(op, reuse, batch, m, n, out), nil
+			return matMulResult(op, op.relu, reuse, batch, m, n, out), nil
 		}
-		if pb := op.packed(bd, n, k); pb != nil {
+		if pb != nil {
 			sgemmPre(op.transA, m, n, k, alpha, ad, colsA, pb, bd, colsB, beta, out, n)
-			return matMulResult(op, reuse, batch, m, n, out), nil
+			return matMulResult(op, op.relu, reuse, batch, m, n, out), nil
 		}
 		for i := 0; i < batch; i++ {
 			sgemm(op.transA, op.transB, m, n, k, alpha, ad[i*m*k:(i+1)*m*k], colsA, bd[i*k*n:(i+1)*k*n], colsB, beta, out[i*m*n:(i+1)*m*n], n)
 		}
-		return matMulResult(op, reuse, batch, m, n, out), nil
+		return matMulResult(op, op.relu, reuse, batch, m, n, out), nil
 	}
 	return nil, fmt.Errorf("matmul: unsupported element type %v", a.Dtype())
 }
@@ -295,11 +304,12 @@ func (op matMulOp) packed(bd []float32, n, k int) *sgemmPrepacked {
 	return c.pb
 }
 
-// matMulResult applies the fused Relu, when the op has one, to data, and
-// returns reuse, or a new tensor backed by data when reuse is nil: the
-// conversion of data to an interface, which allocates, happens only then.
-func matMulResult[T float32 | float64](op matMulOp, reuse *tensor.Dense, batch, m, n int, data []T) *tensor.Dense {
-	if op.relu {
+// matMulResult applies the fused Relu to data when applyRelu (the op has
+// one that the product has not applied yet), and returns reuse, or a new tensor
+// backed by data when reuse is nil: the conversion of data to an
+// interface, which allocates, happens only then.
+func matMulResult[T float32 | float64](op matMulOp, applyRelu bool, reuse *tensor.Dense, batch, m, n int, data []T) *tensor.Dense {
+	if applyRelu {
 		switch d := any(data).(type) {
 		case []float32:
 			f32.Relu(d, d)

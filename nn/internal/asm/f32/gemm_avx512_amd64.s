@@ -52,6 +52,20 @@ zaccumulate: \
 	VZEROUPPER; \
 	RET
 
+// CHAINS6X32 loads the arguments kc, a, rs, ps, b0, b1, c and ldc of a
+// strided 6×32 tile kernel (A as STRIDEDA leaves it, B's halves in DI and
+// R13, c in DX, ldc in bytes in R8) and runs the tile's chains into
+// Z0..Z11: row p of B's halves at b0[16p] and b1[16p].
+#define CHAINS6X32 \
+	STRIDEDA; \
+	MOVQ b0+32(FP), DI; MOVQ b1+40(FP), R13; \
+	MOVQ c+48(FP), DX; MOVQ ldc+56(FP), R8; SHLQ $2, R8; \
+	ZEROZ12; \
+chains: \
+	FMAZ6x32(0(DI), 0(R13), (SI), (SI)(R9*1), (SI)(R9*2), (SI)(R10*1), (SI)(R9*4), (SI)(R11*1)); \
+	ADDQ R12, SI; ADDQ $64, DI; ADDQ $64, R13; \
+	DECQ CX; JNZ chains
+
 // func gemm6x16Avx512(kc int, a, b, c *float32, ldc int, alpha, beta float32)
 //
 // gemm6x16Asm on AVX-512: the same arguments, chains and epilogue.
@@ -526,21 +540,7 @@ onobias:
 // B's halves at b0[16p] and b1[16p]; the epilogue of EPILOGUEZ on both
 // halves of each row.
 TEXT ·gemm6x32StridedAvx512(SB), NOSPLIT, $0-72
-	STRIDEDA
-	MOVQ b0+32(FP), DI
-	MOVQ b1+40(FP), R13
-	MOVQ c+48(FP), DX
-	MOVQ ldc+56(FP), R8
-	SHLQ $2, R8
-	ZEROZ12
-
-xloop:
-	FMAZ6x32(0(DI), 0(R13), (SI), (SI)(R9*1), (SI)(R9*2), (SI)(R10*1), (SI)(R9*4), (SI)(R11*1))
-	ADDQ R12, SI
-	ADDQ $64, DI
-	ADDQ $64, R13
-	DECQ CX
-	JNZ xloop
+	CHAINS6X32
 
 	MOVL alpha+64(FP), AX
 	CMPL AX, $0x3f800000
@@ -578,5 +578,50 @@ xaccumulate:
 	ACCZ32(Z8, Z9)
 	ADDQ R8, DX
 	ACCZ32(Z10, Z11)
+	VZEROUPPER
+	RET
+
+// BIASROWZ32 adds the bias row (Z12, Z13) to the tile row r0, r1;
+// RELUZ32 applies max(·, 0) to it as reluAsm does (Z14 = +0).
+#define BIASROWZ32(r0, r1) \
+	VADDPS Z12, r0, r0; VADDPS Z13, r1, r1
+#define RELUZ32(r0, r1) \
+	VMAXPS r0, Z14, r0; VADDPS Z14, r0, r0; VMAXPS r1, Z14, r1; VADDPS Z14, r1, r1
+
+// func gemm6x32BiasAvx512(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, bias *float32, relu bool)
+//
+// The chains of gemm6x32StridedAvx512; it stores c[r·ldc+j] = T[r][j] +
+// bias[j] (one rounding, the bits of the fused multiply-add 1·bias[j] +
+// T[r][j] that beta = 1 on a C holding the bias rounds to), T[r][j] when
+// bias is nil, then max(·, 0) as reluAsm when relu; c is never read.
+TEXT ·gemm6x32BiasAvx512(SB), NOSPLIT, $0-73
+	CHAINS6X32
+
+	MOVQ bias+64(FP), BX
+	TESTQ BX, BX
+	JZ bnobias
+	VMOVUPS (BX), Z12
+	VMOVUPS 64(BX), Z13
+	BIASROWZ32(Z0, Z1)
+	BIASROWZ32(Z2, Z3)
+	BIASROWZ32(Z4, Z5)
+	BIASROWZ32(Z6, Z7)
+	BIASROWZ32(Z8, Z9)
+	BIASROWZ32(Z10, Z11)
+
+bnobias:
+	MOVBQZX relu+72(FP), AX
+	TESTQ AX, AX
+	JZ bstore
+	VPXORD Z14, Z14, Z14
+	RELUZ32(Z0, Z1)
+	RELUZ32(Z2, Z3)
+	RELUZ32(Z4, Z5)
+	RELUZ32(Z6, Z7)
+	RELUZ32(Z8, Z9)
+	RELUZ32(Z10, Z11)
+
+bstore:
+	STORE6Z32
 	VZEROUPPER
 	RET

@@ -374,3 +374,26 @@ func maxPool2x2Grad(x, dy, dx []float32, planes, h, w, oh, ow int) {
 		}
 	}
 }
+
+func gemm6x32Bias(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, bias *float32, relu bool) {
+	var t [2]tile6x16
+	gemm6x16Chains(&t[0], kc, a, rs, ps, b0)
+	gemm6x16Chains(&t[1], kc, a, rs, ps, b1)
+	cs := unsafe.Slice(c, 5*ldc+32)
+	var bs []float32
+	if bias != nil {
+		bs = unsafe.Slice(bias, 32)
+	}
+	for r := 0; r < 6; r++ {
+		for j := 0; j < 32; j++ {
+			v := t[j/16][r*16+j%16]
+			if bs != nil {
+				v += bs[j]
+			}
+			if relu {
+				v = max(v, 0)
+			}
+			cs[r*ldc+j] = v
+		}
+	}
+}

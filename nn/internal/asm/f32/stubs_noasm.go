@@ -31,6 +31,16 @@ func Gemm6x32Strided(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int
 	gemm6x32Strided(kc, a, rs, ps, b0, b1, c, ldc, alpha, beta)
 }
 
+// Gemm6x32Bias stores the 6×32 tile of Gemm6x32Strided (alpha = 1, beta
+// = 0) plus a bias row and an optional Relu, the epilogue of a dense layer:
+// c[r·ldc+j] = T[r][j] + bias[j], rounded once (T[r][j] when bias is nil),
+// then max(·, 0) with Go's max when relu. These are the bits of
+// Gemm6x32Strided with beta = 1 on a C holding the bias rows, followed by
+// Relu, without reading C.
+func Gemm6x32Bias(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, bias *float32, relu bool) {
+	gemm6x32Bias(kc, a, rs, ps, b0, b1, c, ldc, bias, relu)
+}
+
 // Gemm6x16Edge is Gemm6x16Strided for the bottom edge of C: it reads and
 // stores only rows r < mr (1 ≤ mr ≤ 6) of c, with the bits of a full tile,
 // and reads all six rows of A.

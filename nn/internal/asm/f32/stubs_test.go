@@ -241,6 +241,60 @@ func TestGemm6x32StridedMatchesLoop(t *testing.T) {
 	}
 }
 
+func TestGemm6x32BiasMatchesLoopAndComposition(t *testing.T) {
+	// Gemm6x32Bias (its AVX-512 form on a CPU that has it) stores the bits
+	// of its loop, and those are the bits of the composition it replaces:
+	// Gemm6x32Strided with beta = 1 on C holding the bias rows (one fused
+	// multiply-add 1·bias + T, IEEE 754-2008 §5.4.1: the rounding of
+	// bias + T), then Relu. The bias holds NaN, ±Inf and −0 beside random
+	// values and row 2 of A is zero, so the Relu meets NaN, infinities and
+	// zeros (never −0: a chain from +0 is never −0, nor is its sum with a
+	// bias unless both are); c past the 32 columns is never written.
+	rng := rand.New(rand.NewPCG(25, 26))
+	for _, kc := range []int{1, 2, 5, 30, 64, 100, 256} {
+		bp := randFloats(rng, 32*kc+16)
+		bias := randFloats(rng, 32)
+		bias[3], bias[7], bias[20], bias[31] = float32(math.NaN()), float32(math.Inf(1)), float32(math.Inf(-1)), float32(math.Copysign(0, -1))
+		const ldc = 37
+		for _, layout := range []struct{ rs, ps, n int }{{kc + 3, 1, 6 * (kc + 3)}, {1, 9, 9 * kc}} {
+			a := randFloats(rng, layout.n)
+			for p := 0; p < kc; p++ {
+				a[2*layout.rs+p*layout.ps] = 0
+			}
+			for _, withBias := range []bool{true, false} {
+				for _, relu := range []bool{true, false} {
+					var bptr *float32
+					if withBias {
+						bptr = &bias[0]
+					}
+					name := fmt.Sprintf("kc=%d rs=%d bias=%t relu=%t", kc, layout.rs, withBias, relu)
+					got := nanFloats(6 * ldc)
+					Gemm6x32Bias(kc, &a[0], layout.rs, layout.ps, &bp[0], &bp[16*kc+5], &got[0], ldc, bptr, relu)
+					want := nanFloats(6 * ldc)
+					gemm6x32Bias(kc, &a[0], layout.rs, layout.ps, &bp[0], &bp[16*kc+5], &want[0], ldc, bptr, relu)
+					requireBits(t, want, got, "%s: against the loop", name)
+
+					comp := nanFloats(6 * ldc)
+					beta := float32(0)
+					if withBias {
+						beta = 1
+						for r := 0; r < 6; r++ {
+							copy(comp[r*ldc:r*ldc+32], bias)
+						}
+					}
+					Gemm6x32Strided(kc, &a[0], layout.rs, layout.ps, &bp[0], &bp[16*kc+5], &comp[0], ldc, 1, beta)
+					if relu {
+						for r := 0; r < 6; r++ {
+							Relu(comp[r*ldc:r*ldc+32], comp[r*ldc:r*ldc+32])
+						}
+					}
+					requireBits(t, comp, got, "%s: against bias rows, beta = 1 and Relu", name)
+				}
+			}
+		}
+	}
+}
+
 func TestGemm6x16EdgeBitsAndBounds(t *testing.T) {
 	// Gemm6x16Edge must store, for the top mr rows of a tile, the bits
 	// Gemm6x16 gives those elements in a full tile (the same fused
