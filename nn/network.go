@@ -61,8 +61,13 @@ type Options struct {
 	// InputShapes gives per-sample shapes (without the batch dimension) for
 	// inputs whose non-batch dimensions are symbolic or unknown in the model.
 	InputShapes map[string][]int
-	// MaxBatch is the largest batch run as one program (default 64); larger
-	// requests are split into chunks of at most MaxBatch samples.
+	// MaxBatch is the largest batch run as one program; larger requests
+	// are split into chunks of at most MaxBatch samples. Left at zero, it
+	// is DefaultMaxBatch, and a request of more than twice that runs in
+	// larger chunks (up to 1024 samples) where the values of a chunk stay
+	// small, 4 MiB: the small dense models, whose runs of 64 samples
+	// spend much of their time outside the products. A sample's results
+	// are the same bits whatever its chunk.
 	MaxBatch int
 	// Machines is the number of compiled machines per program, that is the
 	// number of concurrent runs of one program (default the larger of
@@ -149,6 +154,11 @@ type Network struct {
 	// splitMinFLOPs is the least forward work per part of a split call
 	// (splitMinPartFLOPs; tests lower it to split every batch).
 	splitMinFLOPs float64
+	// growChunks says Options.MaxBatch was left at zero, so that larger
+	// batches may run in grown chunks (grownChunk) whose varying values
+	// take at most grownBytes (grownBatchBytes; tests lower it).
+	growChunks bool
+	grownBytes int64
 
 	mu    sync.Mutex
 	progs map[string]*program
@@ -179,7 +189,8 @@ func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
 	if opts.MaxValueBytes == 0 {
 		opts.MaxValueBytes = DefaultMaxValueBytes
 	}
-	if opts.MaxBatch == 0 {
+	grow := opts.MaxBatch == 0
+	if grow {
 		opts.MaxBatch = DefaultMaxBatch
 	}
 	if opts.Parallel == 0 {
@@ -198,7 +209,7 @@ func Compile(m *onnxlite.Model, opts Options) (nw *Network, err error) {
 		return nil, &onnxlite.UnsupportedError{Ops: u}
 	}
 	nw = &Network{model: m, opts: opts, progs: map[string]*program{},
-		splitMinFLOPs: splitMinPartFLOPs}
+		splitMinFLOPs: splitMinPartFLOPs, growChunks: grow, grownBytes: grownBatchBytes}
 	nw.relaxed = relaxModel(m)
 	if err := nw.describe(); err != nil {
 		return nil, modelError("nn: compile", err)

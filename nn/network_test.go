@@ -319,6 +319,78 @@ func TestChunkingDoesNotChangeResults(t *testing.T) {
 	assert.InDeltaSlice(t, ow, fw[0].Data.([]float64), 1e-12)
 }
 
+func TestGrownChunks(t *testing.T) {
+	// With MaxBatch left at zero, 1000 samples of a small dense model run
+	// in chunks of 512, 256, 128, 64 and 40; with MaxBatch 64, in chunks of
+	// 64 and 40. Common practice: samples are independent, and the kernels'
+	// chains do not depend on the batch, so outputs and gradients agree bit
+	// for bit. With the byte budget lowered to three times what a
+	// gradient chunk of 64 holds, chunks stop growing sooner.
+	ctx := context.Background()
+	sizes := func(nw *Network, grad bool) []int {
+		nw.mu.Lock()
+		defer nw.mu.Unlock()
+		var out []int
+		for _, p := range nw.progs {
+			if p.req.grad == grad {
+				out = append(out, p.inShapes[0][0])
+			}
+		}
+		slices.Sort(out)
+		return out
+	}
+	for _, tc := range []struct {
+		budget         int64 // 0: grownBatchBytes
+		forward, grads []int
+	}{
+		{0, []int{40, 64, 128, 256, 512}, []int{40, 64, 128, 256, 512}},
+		// A gradient program holds each value and its adjoint: about twice
+		// a forward program's bytes per sample, so its chunks stop sooner.
+		{-1, []int{40, 64, 128, 256}, []int{40, 64, 128}},
+	} {
+		m := mlpModel(30, 64, 2, 13)
+		grown, err := Compile(m, Options{})
+		require.NoError(t, err)
+		if tc.budget < 0 {
+			// 192 samples' worth of the largest program for 64 samples.
+			h, err := grown.Head(Selection{})
+			require.NoError(t, err)
+			_, _, err = h.Gradient(ctx, make([]float64, DefaultMaxBatch*30), DefaultMaxBatch, make([]int, DefaultMaxBatch))
+			require.NoError(t, err)
+			grown.grownBytes = 0
+			for _, p := range grown.progs {
+				grown.grownBytes = max(grown.grownBytes, 3*p.varyingBytes)
+			}
+		}
+		fixed, err := Compile(m, Options{MaxBatch: DefaultMaxBatch})
+		require.NoError(t, err)
+		const n = 1000
+		x := randomInput(rand.New(rand.NewSource(14)), n*30)
+		target := make([]int, n)
+		for i := range target {
+			target[i] = i % 2
+		}
+		var outs, grads [2][]float64
+		for i, nw := range []*Network{grown, fixed} {
+			h, err := nw.Head(Selection{})
+			require.NoError(t, err)
+			outs[i], err = h.Forward(ctx, x, n)
+			require.NoError(t, err)
+			_, grads[i], err = h.Gradient(ctx, x, n, target)
+			require.NoError(t, err)
+		}
+		assert.Equal(t, tc.forward, sizes(grown, false), "budget %d: forward chunk sizes with MaxBatch left at zero", tc.budget)
+		assert.Equal(t, tc.grads, sizes(grown, true), "budget %d: gradient chunk sizes with MaxBatch left at zero", tc.budget)
+		assert.Equal(t, []int{40, 64}, sizes(fixed, false), "budget %d: chunk sizes with MaxBatch 64", tc.budget)
+		for i := range outs[0] {
+			require.Equal(t, math.Float64bits(outs[1][i]), math.Float64bits(outs[0][i]), "budget %d: output %d", tc.budget, i)
+		}
+		for i := range grads[0] {
+			require.Equal(t, math.Float64bits(grads[1][i]), math.Float64bits(grads[0][i]), "budget %d: gradient %d", tc.budget, i)
+		}
+	}
+}
+
 func TestConcurrentForward(t *testing.T) {
 	nw, err := Compile(mlpModel(30, 64, 2, 11), Options{Machines: 3})
 	require.NoError(t, err)
