@@ -233,7 +233,15 @@ func sgemmRowsLoop(tA bool, m, n, k int, alpha float32, a []float32, lda int, b 
 			if pc > 0 {
 				bet = 1
 			}
-			for j := 0; j < n; j += 32 {
+			j := 0
+			if f32.WideTiles() {
+				// Four blocks of 32 at once: the same chains, more of them
+				// in flight.
+				for ; j+128 <= n; j += 128 {
+					f32.Gemm1x128(kc, &a[off+pc*inc], inc, &b[pc*ldb+j], ldb, &c[i*ldc+j], alpha, bet)
+				}
+			}
+			for ; j < n; j += 32 {
 				f32.Gemm1x32(kc, &a[off+pc*inc], inc, &b[pc*ldb+j], ldb, &c[i*ldc+j], alpha, bet)
 			}
 		}

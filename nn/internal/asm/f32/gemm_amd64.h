@@ -55,3 +55,10 @@
 // GFLOP/s, the AVX2 6×16 tile at kc = 256 from 53 to 68.
 #define JBETANZ(off, reg, label) \
 	MOVL off, reg; ANDL $0x7fffffff, reg; JNZ label
+
+// ROWARGS loads the arguments of a row kernel (kc, a, inca, b, ldb, c):
+// kc in CX, a in SI, inca in bytes in R9, b in DI, ldb in bytes in R8, c
+// in DX.
+#define ROWARGS \
+	MOVQ kc+0(FP), CX; MOVQ a+8(FP), SI; MOVQ inca+16(FP), R9; SHLQ $2, R9; \
+	MOVQ b+24(FP), DI; MOVQ ldb+32(FP), R8; SHLQ $2, R8; MOVQ c+40(FP), DX

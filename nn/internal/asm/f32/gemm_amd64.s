@@ -279,14 +279,7 @@ mretacc:
 // element as gemm6x16Asm, then stores c[j] = alpha·T[j] + beta·c[j]; when
 // beta == 0 the old contents of c are not read.
 TEXT ·gemm1x32Asm(SB), NOSPLIT, $0-56
-	MOVQ kc+0(FP), CX
-	MOVQ a+8(FP), SI
-	MOVQ inca+16(FP), R9
-	SHLQ $2, R9
-	MOVQ b+24(FP), DI
-	MOVQ ldb+32(FP), R8
-	SHLQ $2, R8
-	MOVQ c+40(FP), DX
+	ROWARGS
 	VXORPS Y0, Y0, Y0
 	VXORPS Y1, Y1, Y1
 	VXORPS Y2, Y2, Y2

@@ -472,6 +472,16 @@ enobias:
 	VZEROUPPER
 	RET
 
+// MULZ8 scales Z0..Z7 by the broadcast scalar in z.
+#define MULZ8(z) \
+	VMULPS z, Z0, Z0; VMULPS z, Z1, Z1; VMULPS z, Z2, Z2; VMULPS z, Z3, Z3; \
+	VMULPS z, Z4, Z4; VMULPS z, Z5, Z5; VMULPS z, Z6, Z6; VMULPS z, Z7, Z7
+
+// STOREZ128 stores the 128-float row Z0..Z7 at DX.
+#define STOREZ128 \
+	VMOVUPS Z0, 0(DX); VMOVUPS Z1, 64(DX); VMOVUPS Z2, 128(DX); VMOVUPS Z3, 192(DX); \
+	VMOVUPS Z4, 256(DX); VMOVUPS Z5, 320(DX); VMOVUPS Z6, 384(DX); VMOVUPS Z7, 448(DX)
+
 // FMAZ1x128 adds a (broadcast into Z16) times 128 floats of B at b to the
 // row in Z0..Z7, B read by the fused multiply-adds.
 #define FMAZ1x128(b0, b1, b2, b3, b4, b5, b6, b7, a) \
@@ -516,14 +526,7 @@ oloop:
 	VADDPS Z16, Z7, Z7
 
 onobias:
-	VMOVUPS Z0, (DX)
-	VMOVUPS Z1, 64(DX)
-	VMOVUPS Z2, 128(DX)
-	VMOVUPS Z3, 192(DX)
-	VMOVUPS Z4, 256(DX)
-	VMOVUPS Z5, 320(DX)
-	VMOVUPS Z6, 384(DX)
-	VMOVUPS Z7, 448(DX)
+	STOREZ128
 	VZEROUPPER
 	RET
 
@@ -546,14 +549,7 @@ TEXT ·gemm6x32StridedAvx512(SB), NOSPLIT, $0-72
 	CMPL AX, $0x3f800000
 	JEQ xscaled
 	VBROADCASTSS alpha+64(FP), Z14
-	VMULPS Z14, Z0, Z0
-	VMULPS Z14, Z1, Z1
-	VMULPS Z14, Z2, Z2
-	VMULPS Z14, Z3, Z3
-	VMULPS Z14, Z4, Z4
-	VMULPS Z14, Z5, Z5
-	VMULPS Z14, Z6, Z6
-	VMULPS Z14, Z7, Z7
+	MULZ8(Z14)
 	VMULPS Z14, Z8, Z8
 	VMULPS Z14, Z9, Z9
 	VMULPS Z14, Z10, Z10
@@ -623,5 +619,48 @@ bnobias:
 
 bstore:
 	STORE6Z32
+	VZEROUPPER
+	RET
+
+// ROWACCZ adds beta (Z15) times the 16 floats at off(DX) to r and stores it
+// there, one fused multiply-add per element, as gemm1x32Asm's epilogue.
+#define ROWACCZ(off, r) \
+	VMOVUPS off(DX), Z12; VFMADD231PS Z15, Z12, r; VMOVUPS r, off(DX)
+
+// func gemm1x128Avx512(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alpha, beta float32)
+//
+// gemm1x32Asm on four blocks of 32 columns at once: c[j], j < 128, the same
+// chains (eight independent ones, where gemm1x32Asm's four wait on the
+// fused multiply-add's latency) and the same epilogue.
+TEXT ·gemm1x128Avx512(SB), NOSPLIT, $0-56
+	ROWARGS
+	ZEROZ6
+	VPXORD Z6, Z6, Z6
+	VPXORD Z7, Z7, Z7
+
+r128loop:
+	FMAZ1x128(0(DI), 64(DI), 128(DI), 192(DI), 256(DI), 320(DI), 384(DI), 448(DI), (SI))
+	ADDQ R9, SI
+	ADDQ R8, DI
+	DECQ CX
+	JNZ r128loop
+
+	VBROADCASTSS alpha+48(FP), Z14
+	MULZ8(Z14)
+	JBETANZ(beta+52(FP), AX, r128accumulate)
+	STOREZ128
+	VZEROUPPER
+	RET
+
+r128accumulate:
+	VBROADCASTSS beta+52(FP), Z15
+	ROWACCZ(0, Z0)
+	ROWACCZ(64, Z1)
+	ROWACCZ(128, Z2)
+	ROWACCZ(192, Z3)
+	ROWACCZ(256, Z4)
+	ROWACCZ(320, Z5)
+	ROWACCZ(384, Z6)
+	ROWACCZ(448, Z7)
 	VZEROUPPER
 	RET

@@ -100,6 +100,19 @@ func Gemm1x32(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alp
 	gemm1x32(kc, a, inca, b, ldb, c, alpha, beta)
 }
 
+// Gemm1x128 is Gemm1x32 on 128 columns: c[j], j < 128, each the chain and
+// the bits Gemm1x32 gives it, the four blocks of 32 computed together on
+// AVX-512.
+func Gemm1x128(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alpha, beta float32) {
+	if useAVX512 {
+		gemm1x128Avx512(kc, a, inca, b, ldb, c, alpha, beta)
+		return
+	}
+	for j := 0; j < 128; j += 32 {
+		Gemm1x32(kc, a, inca, (*float32)(unsafe.Add(unsafe.Pointer(b), 4*j)), ldb, (*float32)(unsafe.Add(unsafe.Pointer(c), 4*j)), alpha, beta)
+	}
+}
+
 // Conv6x16 is Gemm6x16 with row p of B read in place at b[off[p]] and an
 // epilogue for a convolution: it stores c[r·ldc+j] = T[r][j] + bias[r] with
 // one rounding (the bits of Gemm6x16 with beta 1 on a tile filled with the
@@ -576,3 +589,9 @@ func gemm6x32StridedAvx512(kc int, a *float32, rs, ps int, b0, b1, c *float32, l
 //
 //go:noescape
 func gemm6x32BiasAvx512(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, bias *float32, relu bool)
+
+// gemm1x128Avx512 is gemm1x32Asm on four blocks of 32 columns at once, on
+// AVX-512.
+//
+//go:noescape
+func gemm1x128Avx512(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alpha, beta float32)

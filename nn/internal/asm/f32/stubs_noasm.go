@@ -2,6 +2,8 @@
 
 package f32
 
+import "unsafe"
+
 // useAsm is false: this build has no assembly, and every kernel runs its
 // loop (loops.go).
 const useAsm = false
@@ -53,6 +55,15 @@ func Gemm6x16Edge(kc int, a *float32, rs, ps int, b, c *float32, ldc int, alpha,
 // multiply-adds Gemm6x16 forms; c is not read when beta is 0.
 func Gemm1x32(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alpha, beta float32) {
 	gemm1x32(kc, a, inca, b, ldb, c, alpha, beta)
+}
+
+// Gemm1x128 is Gemm1x32 on 128 columns: c[j], j < 128, each the chain and
+// the bits Gemm1x32 gives it, the four blocks of 32 computed together on
+// AVX-512.
+func Gemm1x128(kc int, a *float32, inca int, b *float32, ldb int, c *float32, alpha, beta float32) {
+	for j := 0; j < 128; j += 32 {
+		Gemm1x32(kc, a, inca, (*float32)(unsafe.Add(unsafe.Pointer(b), 4*j)), ldb, (*float32)(unsafe.Add(unsafe.Pointer(c), 4*j)), alpha, beta)
+	}
 }
 
 // Conv6x16 is Gemm6x16 with row p of B read in place at b[off[p]] and an

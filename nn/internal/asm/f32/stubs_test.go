@@ -147,6 +147,17 @@ func TestGemmKernelsMatchLoops(t *testing.T) {
 		Gemm1x32(kc, &ar[0], 2, &br[0], ldb, &got[0], tc.alpha, tc.beta)
 		gemm1x32(kc, &ar[0], 2, &br[0], ldb, &want[0], tc.alpha, tc.beta)
 		requireBits(t, want, got, "Gemm1x32 %s", name)
+
+		// 128 columns: four blocks of the 1×32 loop.
+		ldb = 128 + 5
+		br = randFloats(rng, kc*ldb)
+		c2 := randFloats(rng, 128+3)
+		got, want = append([]float32(nil), c2...), append([]float32(nil), c2...)
+		Gemm1x128(kc, &ar[0], 2, &br[0], ldb, &got[0], tc.alpha, tc.beta)
+		for j := 0; j < 128; j += 32 {
+			gemm1x32(kc, &ar[0], 2, &br[j], ldb, &want[j], tc.alpha, tc.beta)
+		}
+		requireBits(t, want, got, "Gemm1x128 %s", name)
 	}
 }
 
