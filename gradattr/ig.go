@@ -284,6 +284,19 @@ func (g *integrator) evaluate() error {
 	if s == nil {
 		return g.e.gradients(len(g.nodes), g.fill, g.use)
 	}
+	if gs, ok := s.(PathGroupSummer); ok && len(g.nodes) <= sumChunk {
+		// The end nodes (group 0) and the others (group 1) in one call,
+		// each group's points in their order: the sums of the two calls
+		// below, bit for bit.
+		alpha := make([]float64, 0, len(g.nodes))
+		weight := make([]float64, 0, len(g.nodes))
+		group := make([]int, 0, len(g.nodes))
+		for _, n := range g.nodes {
+			alpha, weight = append(alpha, n.alpha), append(weight, n.weight)
+			group = append(group, boolInt(!n.end))
+		}
+		return g.e.pathSums(gs, g.xb, alpha, weight, group, [][]float64{g.sumEnd, g.sumIn})
+	}
 	for _, end := range []bool{true, false} {
 		var alpha, weight []float64
 		for _, n := range g.nodes {

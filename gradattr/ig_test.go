@@ -522,3 +522,68 @@ func TestIGAndSmoothGradTakeSums(t *testing.T) {
 	assert.Equal(t, 1, s.calls, "the squared variant needs the gradients themselves")
 	assert.Positive(t, squared.Attributions[0])
 }
+
+// groupingFunc is a summingFunc that also forms grouped path sums, each
+// group by PathGradientSum on its points alone (the definition), counting
+// its grouped calls.
+type groupingFunc struct {
+	*summingFunc
+	grouped int
+}
+
+func (s *groupingFunc) PathGradientSums(ctx context.Context, from, to, alpha, weight []float64, group []int, groups, target int) ([]float64, [][]float64, error) {
+	s.grouped++
+	sums := make([][]float64, groups)
+	for g := range sums {
+		var a, w []float64
+		for i, gi := range group {
+			if gi == g {
+				a, w = append(a, alpha[i]), append(w, weight[i])
+			}
+		}
+		sums[g] = make([]float64, len(from))
+		if len(a) == 0 {
+			continue
+		}
+		_, sum, err := s.PathGradientSum(ctx, from, to, a, w, target)
+		if err != nil {
+			return nil, nil, err
+		}
+		sums[g] = sum
+	}
+	out, _, err := s.PathGradientSum(ctx, from, to, alpha, weight, target)
+	return out, sums, err
+}
+
+func TestIGTakesGroupedSumsInOneCall(t *testing.T) {
+	// A model that forms grouped path sums gets the trapezoid's end nodes
+	// and its other nodes in one call, and the attributions are those of
+	// the two separate sums bit for bit; refining rules still refine. On
+	// f = x₁x₂ from the zero baseline IG is (x₁x₂/2, x₁x₂/2) (Sundararajan
+	// et al. 2017, eq. 1), exact for the trapezoid rule.
+	ctx := context.Background()
+	x := []float64{1.5, -0.7}
+	for _, rule := range []Rule{RuleTrapezoid, RuleMidpoint, RuleGaussLegendre} {
+		for _, points := range []int{17, 0} {
+			if rule == RuleTrapezoid && points == 0 {
+				continue // adaptive: point by point
+			}
+			opts := IGOptions{Rule: rule, Points: points}
+			two, err := IntegratedGradients(ctx, &summingFunc{Func: product()}, x, 0, opts)
+			require.NoError(t, err)
+			g := &groupingFunc{summingFunc: &summingFunc{Func: product()}}
+			one, err := IntegratedGradients(ctx, g, x, 0, opts)
+			require.NoError(t, err)
+			assert.Equal(t, two.Attributions, one.Attributions, "%v points %d: bit for bit", rule, points)
+			assert.Equal(t, two.Cost.GradientEvals, one.Cost.GradientEvals, "%v points %d", rule, points)
+			assert.Equal(t, two.Settings.Points, one.Settings.Points, "%v points %d", rule, points)
+			assert.Positive(t, g.grouped, "%v points %d: grouped calls", rule, points)
+			if points > 0 {
+				assert.Equal(t, 1, g.grouped, "%v: one call for a fixed rule", rule)
+			}
+			if rule == RuleTrapezoid {
+				assert.InDeltaSlice(t, []float64{x[0] * x[1] / 2, x[0] * x[1] / 2}, one.Attributions, 1e-12, "closed form")
+			}
+		}
+	}
+}

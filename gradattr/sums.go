@@ -1,6 +1,9 @@
 package gradattr
 
-import "context"
+import (
+	"context"
+	"fmt"
+)
 
 // GradientSummer is a Model that returns weighted sums of input gradients
 // without the gradients themselves, which lets it form them more cheaply:
@@ -17,6 +20,18 @@ type GradientSummer interface {
 	// PathGradientSum is GradientSum at the points
 	// from + alpha[i]·(to − from), i < len(alpha).
 	PathGradientSum(ctx context.Context, from, to, alpha, weight []float64, target int) (out, sum []float64, err error)
+}
+
+// PathGroupSummer is a GradientSummer that also forms several weighted
+// sums along one path in one call: the trapezoid rule keeps its end nodes'
+// gradients apart from the others', and one pass of the model serves both.
+type PathGroupSummer interface {
+	GradientSummer
+	// PathGradientSums is PathGradientSum with point i in group[i]: it
+	// returns the outputs of every point and, for each g < groups, the
+	// weighted sum of group g's input gradients, with the bits
+	// PathGradientSum gives for that group's points alone.
+	PathGradientSums(ctx context.Context, from, to, alpha, weight []float64, group []int, groups, target int) (out []float64, sums [][]float64, err error)
 }
 
 // sumChunk is the most points a method sends to a GradientSummer in one
@@ -36,6 +51,42 @@ func (e *engine) pathSum(s GradientSummer, from, alpha, weight, dst []float64) e
 	return e.sumChunks("PathGradientSum", len(alpha), dst, func(lo, hi int) ([]float64, []float64, error) {
 		return s.PathGradientSum(e.ctx, from, e.x, alpha[lo:hi], weight[lo:hi], e.target)
 	})
+}
+
+// pathSums adds to dst[g] the weighted sum of the target's input
+// gradients at the points from + alpha[i]·(x − from) of group g (group[i]),
+// in one call of PathGradientSums: at most sumChunk points, so that each
+// sum has the bits of pathSum on its group.
+func (e *engine) pathSums(s PathGroupSummer, from, alpha, weight []float64, group []int, dst [][]float64) error {
+	n := len(alpha)
+	if n > sumChunk {
+		return fmt.Errorf("pathSums: %d points, more than one call's %d", n, sumChunk)
+	}
+	var out []float64
+	var sums [][]float64
+	err := e.call("PathGradientSums", func() (err error) {
+		out, sums, err = s.PathGradientSums(e.ctx, from, e.x, alpha, weight, group, len(dst), e.target)
+		return err
+	})
+	if err != nil {
+		return err
+	}
+	e.cost.GradientEvals += n
+	if err := checkReturned("PathGradientSums outputs", out, e.nout, n); err != nil {
+		return err
+	}
+	if len(sums) != len(dst) {
+		return fmt.Errorf("PathGradientSums returned %d sums, expected %d", len(sums), len(dst))
+	}
+	for g, sum := range sums {
+		if err := checkReturned("PathGradientSums", sum, e.size, 1); err != nil {
+			return err
+		}
+		for i, v := range sum {
+			dst[g][i] += v
+		}
+	}
+	return nil
 }
 
 // pointSum adds to dst the weighted sum of the target's input gradients at

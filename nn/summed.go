@@ -255,7 +255,8 @@ func (h *Head) GradientSum(ctx context.Context, x []float64, n int, weight []flo
 	}
 	p := h.summingPrefix()
 	if p == nil {
-		return h.sumPointwise(ctx, n, weight, target, func(i int, dst []float64) { copy(dst, x[i*h.inSize:(i+1)*h.inSize]) })
+		out, sums, err := h.sumPointwise(ctx, n, weight, nil, 1, target, func(i int, dst []float64) { copy(dst, x[i*h.inSize:(i+1)*h.inSize]) })
+		return out, first(sums), err
 	}
 	var z []float64
 	if p.p32 != nil {
@@ -267,7 +268,8 @@ func (h *Head) GradientSum(ctx context.Context, x []float64, n int, weight []flo
 	} else {
 		z = p.p64.apply(n, x)
 	}
-	return h.sumThrough(ctx, p, z, n, weight, target)
+	out, sums, err := h.sumThrough(ctx, p, z, n, weight, nil, 1, target)
+	return out, first(sums), err
 }
 
 // PathGradientSum is GradientSum at the n = len(alpha) points of the
@@ -276,6 +278,19 @@ func (h *Head) GradientSum(ctx context.Context, x []float64, n int, weight []flo
 // z_i = P(from) + alpha[i]·(P(to) − P(from)), exact up to rounding since
 // P is affine.
 func (h *Head) PathGradientSum(ctx context.Context, from, to, alpha, weight []float64, target int) (out, sum []float64, err error) {
+	out, sums, err := h.PathGradientSums(ctx, from, to, alpha, weight, nil, 1, target)
+	return out, first(sums), err
+}
+
+// PathGradientSums is PathGradientSum with the points in groups: point i
+// belongs to group[i] (every point to group 0 when group is nil), and
+// sums[g] is the weighted sum of the input gradients of group g's points,
+// g < groups. Each sum has the bits PathGradientSum gives for its group's
+// points alone, in their order: a sample's gradient does not depend on its
+// batch, and each sum is formed in point order. One call serves rules
+// whose nodes keep separate sums (the ends of the trapezoid rule) with one
+// pass of the network instead of one per group.
+func (h *Head) PathGradientSums(ctx context.Context, from, to, alpha, weight []float64, group []int, groups, target int) (out []float64, sums [][]float64, err error) {
 	defer recoverEngine("nn: path gradient sum", &err)
 	for _, v := range [][]float64{from, to} {
 		if err := h.check(v, 1); err != nil {
@@ -286,9 +301,12 @@ func (h *Head) PathGradientSum(ctx context.Context, from, to, alpha, weight []fl
 	if err := h.checkSum(n, weight, target); err != nil {
 		return nil, nil, fmt.Errorf("nn: path gradient sum: %w", err)
 	}
+	if err := checkGroups(n, group, groups); err != nil {
+		return nil, nil, fmt.Errorf("nn: path gradient sum: %w", err)
+	}
 	p := h.summingPrefix()
 	if p == nil {
-		return h.sumPointwise(ctx, n, weight, target, func(i int, dst []float64) {
+		return h.sumPointwise(ctx, n, weight, group, groups, target, func(i int, dst []float64) {
 			for j := range dst {
 				dst[j] = from[j] + alpha[i]*(to[j]-from[j])
 			}
@@ -304,7 +322,42 @@ func (h *Head) PathGradientSum(ctx context.Context, from, to, alpha, weight []fl
 			zi[j] = u[j] + a*(v[j]-u[j])
 		}
 	}
-	return h.sumThrough(ctx, p, z, n, weight, target)
+	return h.sumThrough(ctx, p, z, n, weight, group, groups, target)
+}
+
+// checkGroups checks a grouping of n points into groups groups.
+func checkGroups(n int, group []int, groups int) error {
+	if groups < 1 {
+		return fmt.Errorf("%w: %d groups, expected at least 1", ErrBadRequest, groups)
+	}
+	if group == nil {
+		return nil
+	}
+	if len(group) != n {
+		return fmt.Errorf("%w: %d group numbers for %d points", ErrBadRequest, len(group), n)
+	}
+	for i, g := range group {
+		if g < 0 || g >= groups {
+			return fmt.Errorf("%w: point %d in group %d, expected 0 ≤ group < %d", ErrBadRequest, i, g, groups)
+		}
+	}
+	return nil
+}
+
+// groupOf is point i's group: group[i], or 0 when group is nil.
+func groupOf(group []int, i int) int {
+	if group == nil {
+		return 0
+	}
+	return group[i]
+}
+
+// first is sums[0], or nil when there is none.
+func first(sums [][]float64) []float64 {
+	if len(sums) == 0 {
+		return nil
+	}
+	return sums[0]
 }
 
 func (h *Head) checkSum(n int, weight []float64, target int) error {
@@ -320,7 +373,7 @@ func (h *Head) checkSum(n int, weight []float64, target int) error {
 // sumThrough runs the rest of the network on the chain outputs z of n
 // samples, sums their gradients with respect to z with the weights, and
 // pulls the sum back through the chain.
-func (h *Head) sumThrough(ctx context.Context, p *affinePrefix, z []float64, n int, weight []float64, target int) (out, sum []float64, err error) {
+func (h *Head) sumThrough(ctx context.Context, p *affinePrefix, z []float64, n int, weight []float64, group []int, groups, target int) (out []float64, sums [][]float64, err error) {
 	size := len(z) / n
 	shape := append([]int{n}, p.shape...)
 	mask := make([]float64, n*h.outSize)
@@ -331,19 +384,31 @@ func (h *Head) sumThrough(ctx context.Context, p *affinePrefix, z []float64, n i
 	if err != nil {
 		return nil, nil, fmt.Errorf("nn: gradient sum: %w", err)
 	}
-	s := make([]float64, size)
+	s := make([][]float64, groups)
+	for k := range s {
+		s[k] = make([]float64, size)
+	}
 	for i, w := range weight {
+		sk := s[groupOf(group, i)]
 		for j, v := range g[i*size : (i+1)*size] {
-			s[j] += w * v
+			sk[j] += w * v
 		}
 	}
-	return outs[0], p.p64.pullback(s), nil
+	sums = make([][]float64, groups)
+	for k := range s {
+		sums[k] = p.p64.pullback(s[k])
+	}
+	return outs[0], sums, nil
 }
 
-// sumPointwise sums the input gradients of n points, point(i, dst) writing
-// point i, in chunks of at most Options.MaxBatch.
-func (h *Head) sumPointwise(ctx context.Context, n int, weight []float64, target int, point func(i int, dst []float64)) (out, sum []float64, err error) {
-	sum = make([]float64, h.inSize)
+// sumPointwise sums the input gradients of n points by group (as
+// PathGradientSums), point(i, dst) writing point i, in chunks of at most
+// Options.MaxBatch.
+func (h *Head) sumPointwise(ctx context.Context, n int, weight []float64, group []int, groups, target int, point func(i int, dst []float64)) (out []float64, sums [][]float64, err error) {
+	sums = make([][]float64, groups)
+	for k := range sums {
+		sums[k] = make([]float64, h.inSize)
+	}
 	chunk := min(n, h.nw.opts.MaxBatch)
 	x := make([]float64, chunk*h.inSize)
 	tgt := make([]int, chunk)
@@ -361,11 +426,11 @@ func (h *Head) sumPointwise(ctx context.Context, n int, weight []float64, target
 		}
 		out = append(out, o...)
 		for i := range k {
-			w := weight[lo+i]
+			w, sum := weight[lo+i], sums[groupOf(group, lo+i)]
 			for j, v := range g[i*h.inSize : (i+1)*h.inSize] {
 				sum[j] += w * v
 			}
 		}
 	}
-	return out, sum, nil
+	return out, sums, nil
 }

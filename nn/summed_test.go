@@ -106,6 +106,37 @@ func TestGradientSumMatchesPerPoint(t *testing.T) {
 			require.NoError(t, err)
 			assertRelClose(t, want, got, tol, "%s %v: PathGradientSum", c.name, dt)
 			assertRelClose(t, wantOut, out, tol, "%s %v: path outputs", c.name, dt)
+
+			// Grouped: each group's sum has the bits of PathGradientSum on
+			// that group's points alone (common practice: a sample's
+			// gradient does not depend on its batch), the outputs those of
+			// the ungrouped call.
+			group := make([]int, n)
+			for i := range group {
+				group[i] = (i * 7 / 3) % 3
+			}
+			gout, sums, err := h.PathGradientSums(ctx, from, to, alpha, w, group, 3, 2)
+			require.NoError(t, err)
+			require.Len(t, sums, 3)
+			assert.Equal(t, out, gout, "%s %v: grouped path outputs", c.name, dt)
+			for k := range 3 {
+				var ak, wk []float64
+				for i, g := range group {
+					if g == k {
+						ak, wk = append(ak, alpha[i]), append(wk, w[i])
+					}
+				}
+				_, alone, err := h.PathGradientSum(ctx, from, to, ak, wk, 2)
+				require.NoError(t, err)
+				assert.Equal(t, alone, sums[k], "%s %v: group %d bit for bit", c.name, dt, k)
+			}
+			for _, bad := range []struct {
+				group  []int
+				groups int
+			}{{group, 2}, {group[:5], 3}, {group, 0}} {
+				_, _, err := h.PathGradientSums(ctx, from, to, alpha, w, bad.group, bad.groups, 2)
+				assert.ErrorIs(t, err, ErrBadRequest, "%s: %d group numbers, %d groups", c.name, len(bad.group), bad.groups)
+			}
 		}
 	}
 }
