@@ -17,6 +17,7 @@ import (
 	"github.com/apportion/apportion/demo"
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/internal/settingflags"
 	"github.com/apportion/apportion/render"
 	"github.com/apportion/apportion/samples"
 )
@@ -75,42 +76,22 @@ type explainConfig struct {
 }
 
 // registerMethodFlags defines the flags that choose and tune the
-// attribution method, with the library's defaults; baselineDefault,
+// attribution method (settingflags, shared with the Beam pipeline), with
+// the library's defaults; baselineDefault,
 // baselineHelp and referenceHelp describe -baseline and -reference, whose
 // defaults differ between commands (a baselineDefault of "" shows none, for
 // a help text that says it). The values are read back through the flag set
 // (see readSettings).
 func registerMethodFlags(fs *flag.FlagSet, baselineDefault, baselineHelp, referenceHelp string) {
-	var aliases []string
-	for _, m := range gradattr.Methods() {
-		aliases = append(aliases, m.Alias())
+	var shared []explain.Field
+	for _, f := range methodFlagNames {
+		if f != explain.FieldSeed && f != explain.FieldBaseline && f != explain.FieldReference {
+			shared = append(shared, f)
+		}
 	}
-	ig, eg, sg := gradattr.MethodIntegratedGradients.Defaults(), gradattr.MethodExpectedGradients.Defaults(), gradattr.MethodSmoothGrad.Defaults()
-	fs.String("output", "", "`name` of the model output to explain (default the first)")
-	fs.String("method", explain.DefaultMethod.Alias(), "attribution method: "+strings.Join(aliases, ", ")+" (or the canonical names "+gradattr.MethodNames()+")")
-	fs.String("target", explain.DefaultTargetText, "output element to explain: an index `N`, or top for the largest")
-	fs.Bool("logits", false, "explain the input of the Softmax, LogSoftmax or Sigmoid that produces the output (the logits)")
+	settingflags.Define(fs, nil, shared...)
 	fs.String("baseline", baselineDefault, baselineHelp)
 	fs.String("reference", "", referenceHelp)
-	fs.String("steps", explain.DefaultStepsText, "integration points for ig: a number `N` (at least 2 with the trapezoid rule, 1 with the others); exact for the exact integral of a piecewise-linear network; refine to refine a quadrature rule until its error estimate and completeness gap are within -tolerance (the trapezoid rule adds points where the gradient changes most); auto for exact where the network allows it and refine elsewhere")
-	fs.String("rule", "", "quadrature `rule` for ig: trapezoid, left, right, midpoint or gauss-legendre (default trapezoid)")
-	fs.Float64("tolerance", ig.Tolerance, fmt.Sprintf("relative completeness gap `R` to meet; expected-grad, complete only in expectation, uses %v unless given", eg.Tolerance))
-	fs.Int("samples", sg.Samples, "noisy copies (smoothgrad) or baseline draws (expected-grad) `N`")
-	fs.Float64("noise", sg.Noise, "smoothgrad noise level `R`: σ / (max x − min x)")
-	fs.Bool("abs", false, "grad: the gradient's absolute value |∂f/∂x| (Simonyan et al. 2013), not its sign")
-	fs.String("variant", gradattr.VariantMean.String(), "smoothgrad aggregate of the noisy copies' gradients: mean, squared (mean of squares) or variance")
-	sh, su, oc := gradattr.MethodShapley.Defaults(), gradattr.MethodSurrogate.Defaults(), gradattr.MethodOcclusion.Defaults()
-	fs.Int("reference-rows", sh.ReferenceRows, "shapley: reference rows `K` to average over (a seeded sample when -reference has more; all, in order, otherwise)")
-	fs.String("estimator", string(sh.Estimator), fmt.Sprintf("shapley `estimator`: auto (exact up to %d players, else regression), exact, regression or permutation", gradattr.AutoExactPlayers))
-	fs.Int("coalitions", sh.Coalitions, "coalition budget `N` of shapley's sampled estimators, and the surrogate's coalitions")
-	fs.Float64("kernel-width", su.KernelWidth, "surrogate: width `W` of the proximity kernel on the share of players switched off")
-	fs.String("window", fmt.Sprintf("%dx%d", oc.Window[0], oc.Window[1]), "occlusion window `HxW` in pixels, moved over images without groups")
-	fs.Int("stride", 0, "occlusion window step `S` in pixels (default half the window's shorter side)")
-	fs.Int("superpixels", 0, "make the feature groups about `N` SLIC superpixels of each image, for any method")
-	fs.Float64("compactness", gradattr.DefaultCompactness, "SLIC compactness `M` of -superpixels: higher, more regular segments")
-	fs.String("layer", "", "attribute to the value called `NAME` inside the model instead of its input (inspect -values lists them); grad-cam's default is the last value with spatial axes")
-	fs.String("layer-baseline", explain.LayerBaselineInput, "the baseline at -layer: `input` (the value computed from the input's -baseline) or zero")
-	fs.String("baseline-token", "", "a model of token ids: the baseline is the embedding of token `ID` at every position (a padding token), instead of zero embeddings")
 }
 
 // readSettings sets the library's settings from the method flags given

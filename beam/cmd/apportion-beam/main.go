@@ -35,6 +35,7 @@ import (
 	"github.com/apportion/apportion/beam/summarize"
 	"github.com/apportion/apportion/explain"
 	"github.com/apportion/apportion/gradattr"
+	"github.com/apportion/apportion/internal/settingflags"
 	"github.com/apportion/apportion/onnxlite"
 	"github.com/apportion/apportion/samples"
 )
@@ -71,22 +72,11 @@ var (
 )
 
 func init() {
-	var aliases []string
-	for _, m := range gradattr.Methods() {
-		aliases = append(aliases, m.Alias())
+	fields := make([]explain.Field, len(methodFlags))
+	for i, m := range methodFlags {
+		fields[i] = m.field
 	}
-	ig, eg, sg := gradattr.MethodIntegratedGradients.Defaults(), gradattr.MethodExpectedGradients.Defaults(), gradattr.MethodSmoothGrad.Defaults()
-	flag.String("model-output", "", "`name` of the model output to explain (default the first)")
-	flag.String("method", explain.DefaultMethod.Alias(), "attribution method: "+strings.Join(aliases, ", ")+" (or the canonical names "+gradattr.MethodNames()+")")
-	flag.String("target", explain.DefaultTargetText, "output element to explain: an index `N`, or top for the largest")
-	flag.Bool("logits", false, "explain the input of the Softmax, LogSoftmax or Sigmoid that produces the output (the logits)")
-	flag.String("baseline", explain.DefaultBaselineText, "baseline `kind` for ig: zero, mean (of -reference), blur, blur:S, or the path of a file of baseline samples")
-	flag.String("reference", "", "reference samples `file` for expected-grad and -baseline mean")
-	flag.String("steps", explain.DefaultStepsText, "integration points for ig: a number `N`, or auto to refine until -tolerance")
-	flag.String("rule", "", "quadrature `rule` for ig: trapezoid, left, right, midpoint or gauss-legendre (default trapezoid)")
-	flag.Float64("tolerance", ig.Tolerance, fmt.Sprintf("relative completeness gap `R` to meet; expected-grad uses %v unless given", eg.Tolerance))
-	flag.Int("samples", sg.Samples, "noisy copies (smoothgrad) or baseline draws (expected-grad) `N`")
-	flag.Float64("noise", sg.Noise, "smoothgrad noise level `R`: σ / (max x − min x)")
+	settingflags.Define(flag.CommandLine, func(f explain.Field) string { return flagName(f)[1:] }, fields...)
 	flag.Usage = func() {
 		w := flag.CommandLine.Output()
 		fmt.Fprintln(w, "Usage: apportion-beam -model M -input 'GLOB' [-by COLUMN|predicted] [-key COLUMN] -output summary.json [flags] [Beam flags]")
