@@ -48,68 +48,46 @@ func (e *engine) summer() GradientSummer {
 // pathSum adds to dst the weighted sum of the target's input gradients at
 // the points from + alpha[i]·(x − from).
 func (e *engine) pathSum(s GradientSummer, from, alpha, weight, dst []float64) error {
-	return e.sumChunks("PathGradientSum", len(alpha), dst, func(lo, hi int) ([]float64, []float64, error) {
-		return s.PathGradientSum(e.ctx, from, e.x, alpha[lo:hi], weight[lo:hi], e.target)
+	return e.sumChunks("PathGradientSum", len(alpha), [][]float64{dst}, func(lo, hi int) ([]float64, [][]float64, error) {
+		out, sum, err := s.PathGradientSum(e.ctx, from, e.x, alpha[lo:hi], weight[lo:hi], e.target)
+		return out, [][]float64{sum}, err
 	})
 }
 
 // pathSums adds to dst[g] the weighted sum of the target's input
-// gradients at the points from + alpha[i]·(x − from) of group g (group[i]),
-// in one call of PathGradientSums: at most sumChunk points, so that each
-// sum has the bits of pathSum on its group.
+// gradients at the points from + alpha[i]·(x − from) of group g (group[i]).
+// Its callers keep to one call (at most sumChunk points), so that each sum
+// has the bits of pathSum on its group.
 func (e *engine) pathSums(s PathGroupSummer, from, alpha, weight []float64, group []int, dst [][]float64) error {
-	n := len(alpha)
-	if n > sumChunk {
-		return fmt.Errorf("pathSums: %d points, more than one call's %d", n, sumChunk)
-	}
-	var out []float64
-	var sums [][]float64
-	err := e.call("PathGradientSums", func() (err error) {
-		out, sums, err = s.PathGradientSums(e.ctx, from, e.x, alpha, weight, group, len(dst), e.target)
-		return err
+	return e.sumChunks("PathGradientSums", len(alpha), dst, func(lo, hi int) ([]float64, [][]float64, error) {
+		return s.PathGradientSums(e.ctx, from, e.x, alpha[lo:hi], weight[lo:hi], group[lo:hi], len(dst), e.target)
 	})
-	if err != nil {
-		return err
-	}
-	e.cost.GradientEvals += n
-	if err := checkReturned("PathGradientSums outputs", out, e.nout, n); err != nil {
-		return err
-	}
-	if len(sums) != len(dst) {
-		return fmt.Errorf("PathGradientSums returned %d sums, expected %d", len(sums), len(dst))
-	}
-	for g, sum := range sums {
-		if err := checkReturned("PathGradientSums", sum, e.size, 1); err != nil {
-			return err
-		}
-		for i, v := range sum {
-			dst[g][i] += v
-		}
-	}
-	return nil
 }
 
 // pointSum adds to dst the weighted sum of the target's input gradients at
 // n points, fill(i, p) writing point i.
 func (e *engine) pointSum(s GradientSummer, n int, fill func(i int, dst []float64), weight, dst []float64) error {
 	buf := make([]float64, min(n, sumChunk)*e.size)
-	return e.sumChunks("GradientSum", n, dst, func(lo, hi int) ([]float64, []float64, error) {
+	return e.sumChunks("GradientSum", n, [][]float64{dst}, func(lo, hi int) ([]float64, [][]float64, error) {
 		x := buf[:(hi-lo)*e.size]
 		for i := lo; i < hi; i++ {
 			fill(i, x[(i-lo)*e.size:(i-lo+1)*e.size])
 		}
-		return s.GradientSum(e.ctx, x, hi-lo, weight[lo:hi], e.target)
+		out, sum, err := s.GradientSum(e.ctx, x, hi-lo, weight[lo:hi], e.target)
+		return out, [][]float64{sum}, err
 	})
 }
 
 // sumChunks makes the sum calls of n points, at most sumChunk a call,
-// adds their sums to dst and counts n gradient evaluations.
-func (e *engine) sumChunks(what string, n int, dst []float64, sum func(lo, hi int) (out, sum []float64, err error)) error {
+// adds each call's sums to dst (one per group) and counts n gradient
+// evaluations.
+func (e *engine) sumChunks(what string, n int, dst [][]float64, sum func(lo, hi int) (out []float64, sums [][]float64, err error)) error {
 	for lo := 0; lo < n; lo += sumChunk {
 		hi := min(lo+sumChunk, n)
-		var out, s []float64
+		var out []float64
+		var sums [][]float64
 		err := e.call(what, func() (err error) {
-			out, s, err = sum(lo, hi)
+			out, sums, err = sum(lo, hi)
 			return err
 		})
 		if err != nil {
@@ -119,11 +97,16 @@ func (e *engine) sumChunks(what string, n int, dst []float64, sum func(lo, hi in
 		if err := checkReturned(what+" outputs", out, e.nout, hi-lo); err != nil {
 			return err
 		}
-		if err := checkReturned(what, s, e.size, 1); err != nil {
-			return err
+		if len(sums) != len(dst) {
+			return fmt.Errorf("%s returned %d sums, expected %d", what, len(sums), len(dst))
 		}
-		for i, v := range s {
-			dst[i] += v
+		for g, s := range sums {
+			if err := checkReturned(what, s, e.size, 1); err != nil {
+				return err
+			}
+			for i, v := range s {
+				dst[g][i] += v
+			}
 		}
 	}
 	return nil
