@@ -248,34 +248,14 @@ func (op matMulOp) UsePreallocDo(prealloc G.Value, vals ...G.Value) (G.Value, er
 		}
 		alpha := float32(op.scale())
 		pb := op.packed(bd, n, k)
-		if pb != nil && alpha == 1 && !op.transA && (op.bias != nil || op.relu) && sgemmEpilogueFits(m, n, k) {
-			var bias []float32
-			if op.bias != nil {
-				bias = op.bias.f32
-			}
-			sgemmPreEpilogue(m, n, k, ad, colsA, pb, bd, colsB, bias, op.relu, out, n)
-			return matMulResult(op, false, reuse, batch, m, n, out), nil
-		}
-		var beta float32
+		var bias []float32
 		if op.bias != nil {
-			for i := 0; i < m; i++ {
-				copy(out[i*n:(i+1)*n], op.bias.f32)
-			}
-			beta = 1
-		} else if k == 0 {
-			clear(out)
-		}
-		if m == 0 || n == 0 || k == 0 {
-			return matMulResult(op, op.relu, reuse, batch, m, n, out), nil
-		}
-		if pb != nil {
-			sgemmPre(op.transA, m, n, k, alpha, ad, colsA, pb, bd, colsB, beta, out, n)
-			return matMulResult(op, op.relu, reuse, batch, m, n, out), nil
+			bias = op.bias.f32
 		}
 		for i := 0; i < batch; i++ {
-			sgemm(op.transA, op.transB, m, n, k, alpha, ad[i*m*k:(i+1)*m*k], colsA, bd[i*k*n:(i+1)*k*n], colsB, beta, out[i*m*n:(i+1)*m*n], n)
+			denseProduct32(op.transA, m, n, k, alpha, ad[i*m*k:(i+1)*m*k], colsA, pb, op.transB, bd[i*k*n:(i+1)*k*n], colsB, bias, op.relu, out[i*m*n:(i+1)*m*n])
 		}
-		return matMulResult(op, op.relu, reuse, batch, m, n, out), nil
+		return matMulResult(op, false, reuse, batch, m, n, out), nil
 	}
 	return nil, fmt.Errorf("matmul: unsupported element type %v", a.Dtype())
 }

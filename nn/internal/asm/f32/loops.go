@@ -307,6 +307,24 @@ func narrow(dst []float32, src []float64) {
 	}
 }
 
+// lerpNarrow and addScaledWiden convert each product to float64
+// explicitly, which keeps the compiler from fusing it with the sum (the
+// Go specification allows fusing x*y + z otherwise, and does it where the
+// target has FMA), so that they round as the assembly does.
+func lerpNarrow(dst []float32, u, d []float64, a float64) {
+	dst, d = dst[:len(u)], d[:len(u)]
+	for i, v := range u {
+		dst[i] = float32(v + float64(a*d[i]))
+	}
+}
+
+func addScaledWiden(dst []float64, w float64, x []float32) {
+	dst = dst[:len(x)]
+	for i, v := range x {
+		dst[i] += float64(w * float64(v))
+	}
+}
+
 func firstMax4(a, b, c, d float32) int {
 	if a != a {
 		return 0

@@ -289,6 +289,35 @@ func Narrow(dst []float32, src []float64) {
 	narrow(dst[n:], src[n:])
 }
 
+// LerpNarrow stores dst[i] = float32(u[i] + a·d[i]) for i < len(u), the
+// product and the sum each rounded to float64 (never fused), then rounded
+// to float32: a point u + a·d of a straight path in float64, given to a
+// float32 network. d and dst must be at least as long as u.
+func LerpNarrow(dst []float32, u, d []float64, a float64) {
+	dst, d = dst[:len(u)], d[:len(u)]
+	n := 0
+	if useAsm {
+		if n = len(u) &^ 7; n > 0 {
+			lerpNarrowAsm(&dst[0], &u[0], &d[0], a, n)
+		}
+	}
+	lerpNarrow(dst[n:], u[n:], d[n:], a)
+}
+
+// AddScaledWiden adds w·float64(x[i]) to dst[i] for i < len(x), the
+// product and the sum each rounded to float64 (never fused): a weighted
+// sum of float32 rows kept in float64. dst must be at least as long as x.
+func AddScaledWiden(dst []float64, w float64, x []float32) {
+	dst = dst[:len(x)]
+	n := 0
+	if useAsm {
+		if n = len(x) &^ 7; n > 0 {
+			addScaledWidenAsm(&dst[0], w, &x[0], n)
+		}
+	}
+	addScaledWiden(dst[n:], w, x[n:])
+}
+
 // MaxPool2x2 stores, for each of planes planes of h×w in x, the 2×2
 // stride-2 max pool of its top-left 2·oh×2·ow corner in the plane of oh×ow
 // in y: the first NaN of each window if it has one, else its first maximal
@@ -466,6 +495,24 @@ func widenAsm(dst *float64, src *float32, n int)
 //
 //go:noescape
 func narrowAsm(dst *float32, src *float64, n int)
+
+// lerpNarrowAsm is, for n a multiple of 8,
+//
+//	for i := 0; i < n; i++ {
+//		dst[i] = float32(u[i] + float64(a*d[i]))
+//	}
+//
+//go:noescape
+func lerpNarrowAsm(dst *float32, u, d *float64, a float64, n int)
+
+// addScaledWidenAsm is, for n a multiple of 8,
+//
+//	for i := 0; i < n; i++ {
+//		dst[i] += float64(w * float64(x[i]))
+//	}
+//
+//go:noescape
+func addScaledWidenAsm(dst *float64, w float64, x *float32, n int)
 
 // maxPool2x2Asm is, when x holds no NaN and maxPoolFits holds,
 //

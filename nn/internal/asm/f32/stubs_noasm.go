@@ -148,6 +148,17 @@ func Widen(dst []float64, src []float32) { widen(dst, src) }
 // src.
 func Narrow(dst []float32, src []float64) { narrow(dst, src) }
 
+// LerpNarrow stores dst[i] = float32(u[i] + a·d[i]) for i < len(u), the
+// product and the sum each rounded to float64 (never fused), then rounded
+// to float32: a point u + a·d of a straight path in float64, given to a
+// float32 network. d and dst must be at least as long as u.
+func LerpNarrow(dst []float32, u, d []float64, a float64) { lerpNarrow(dst, u, d, a) }
+
+// AddScaledWiden adds w·float64(x[i]) to dst[i] for i < len(x), the
+// product and the sum each rounded to float64 (never fused): a weighted
+// sum of float32 rows kept in float64. dst must be at least as long as x.
+func AddScaledWiden(dst []float64, w float64, x []float32) { addScaledWiden(dst, w, x) }
+
 // MaxPool2x2 stores, for each of planes planes of h×w in x, the 2×2
 // stride-2 max pool of its top-left 2·oh×2·ow corner in the plane of oh×ow
 // in y: the first NaN of each window if it has one, else its first maximal

@@ -632,6 +632,55 @@ func TestWidenNarrowMatchGoConversions(t *testing.T) {
 	}
 }
 
+func TestLerpNarrowAddScaledWidenRoundEachStep(t *testing.T) {
+	// LerpNarrow and AddScaledWiden round the product, then the sum, to
+	// float64 (IEEE 754 §5.4.1: each operation rounded on its own; Go's
+	// explicit conversion keeps them apart), and LerpNarrow then to
+	// float32 (§5.4.2), at every length through the vector steps and the
+	// tail. The values are drawn so that a fused multiply-add would differ
+	// on some of them (checked below), with ±0, ±Inf and NaN among them.
+	rng := rand.New(rand.NewPCG(23, 24))
+	specials := []float64{0, math.Copysign(0, -1), math.Inf(1), math.Inf(-1), math.NaN(), 1e300, -3.5e38}
+	draw := func() float64 {
+		if rng.IntN(8) == 0 {
+			return specials[rng.IntN(len(specials))]
+		}
+		return rng.NormFloat64() * math.Pow(2, float64(rng.IntN(20)-10))
+	}
+	fusedDiffers := 0
+	for n := 0; n <= 40; n++ {
+		u, d := make([]float64, n), make([]float64, n+1)
+		x := make([]float32, n)
+		for i := range u {
+			u[i], d[i], x[i] = draw(), draw(), float32(draw())
+		}
+		a, w := rng.Float64(), rng.NormFloat64()
+		got := make([]float32, n+1)
+		LerpNarrow(got, u, d, a)
+		acc := make([]float64, n+1)
+		want := make([]float64, n)
+		for i := range acc[:n] {
+			acc[i] = draw()
+			want[i] = acc[i]
+		}
+		AddScaledWiden(acc, w, x)
+		for i := range u {
+			p := float64(a * d[i]) // the conversion keeps the compiler from fusing
+			lerp := float32(u[i] + p)
+			require.Equal(t, math.Float32bits(lerp), math.Float32bits(got[i]), "n=%d lerp u=%v d=%v a=%v", n, u[i], d[i], a)
+			q := float64(w * float64(x[i]))
+			sum := want[i] + q
+			require.Equal(t, math.Float64bits(sum), math.Float64bits(acc[i]), "n=%d axpy x=%v w=%v", n, x[i], w)
+			if f := math.FMA(w, float64(x[i]), want[i]); f == f && f != sum {
+				fusedDiffers++
+			}
+		}
+		require.Zero(t, got[n], "past the end")
+		require.Zero(t, acc[n], "past the end")
+	}
+	require.Positive(t, fusedDiffers, "no value tells a fused multiply-add apart")
+}
+
 func TestMaxPool2x2MatchesLoop(t *testing.T) {
 	// MaxPool2x2 and its gradient against their loops on inputs full of
 	// ties and signed zeros, with and without NaNs (the assembly hands a
