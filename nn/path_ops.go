@@ -4,6 +4,7 @@ import (
 	"math"
 	"sync"
 
+	"github.com/apportion/apportion/nn/internal/asm/f64"
 	"github.com/apportion/apportion/nn/internal/ops"
 )
 
@@ -40,6 +41,27 @@ type pathDense[T pathFloat] struct {
 	transA  bool
 	b       []T
 	bias    []T
+	bT      []float64 // float64 plans: op(B)ᵀ, n×k, for the input gradient by rows
+}
+
+// rowsF64 reports whether d's products run row by row on f64.AccumRows
+// (float64 plans, A not transposed): a row's result then does not depend
+// on the rows around it, and a few rows (the ends of a path, one sum
+// pulled back) cost no GEMM's blocking.
+func (d *pathDense[T]) rowsF64() bool { return d.bT != nil && !d.transA }
+
+// setRows builds op(B)ᵀ for rowsF64 in float64 plans.
+func (d *pathDense[T]) setRows() {
+	b, ok := any(d.b).([]float64)
+	if !ok {
+		return
+	}
+	d.bT = make([]float64, len(b))
+	for l := 0; l < d.k; l++ {
+		for j := 0; j < d.n; j++ {
+			d.bT[j*d.k+l] = b[l*d.n+j]
+		}
+	}
 }
 
 func (d *pathDense[T]) inputs() []int { return []int{d.in} }
@@ -47,7 +69,14 @@ func (d *pathDense[T]) output() int   { return d.out }
 
 func (d *pathDense[T]) forward(n int, in [][]T, y []T) {
 	a, mk, mn := in[0], d.m*d.k, d.m*d.n
-	if !d.transA {
+	if d.rowsF64() {
+		a64, y64, b64 := any(a).([]float64), any(y).([]float64), any(d.b).([]float64)
+		for r := 0; r < n*d.m; r++ {
+			yr := y64[r*d.n : (r+1)*d.n]
+			clear(yr)
+			f64.AccumRows(yr, a64[r*d.k:(r+1)*d.k], b64, d.n)
+		}
+	} else if !d.transA {
 		ops.Product(false, false, n*d.m, d.n, d.k, a, d.k, d.b, d.n, 0, y, d.n)
 	} else {
 		for p := 0; p < n; p++ {
@@ -67,6 +96,13 @@ func (d *pathDense[T]) forward(n int, in [][]T, y []T) {
 
 func (d *pathDense[T]) backward(n int, _ [][]T, dy []T, dx [][]T) {
 	mk, mn := d.m*d.k, d.m*d.n
+	if d.rowsF64() {
+		dy64, dx64 := any(dy).([]float64), any(dx[0]).([]float64)
+		for r := 0; r < n*d.m; r++ {
+			f64.AccumRows(dx64[r*d.k:(r+1)*d.k], dy64[r*d.n:(r+1)*d.n], d.bT, d.k)
+		}
+		return
+	}
 	if !d.transA {
 		ops.Product(false, true, n*d.m, d.k, d.n, dy, d.n, d.b, d.n, 1, dx[0], d.k)
 		return

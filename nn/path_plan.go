@@ -288,6 +288,7 @@ func (pb *planBuilder[T]) dense(n *onnxlite.Node, i int) error {
 	if len(b) != d.k*d.n {
 		return fmt.Errorf("%s: weights of %d values for a %d×%d product", n.OpType, len(b), d.k, d.n)
 	}
+	d.setRows()
 	d.out = pb.newSlot(n.Outputs[0])
 	pb.add(d)
 	return nil

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"sync"
 
+	"github.com/apportion/apportion/nn/internal/asm/f32"
 	"github.com/apportion/apportion/onnxlite"
 )
 
@@ -28,6 +29,7 @@ type affinePrefix struct {
 	shape []int              // its per-sample shape
 	p64   *pathPlan[float64] // the chain, for the pullback and paths
 	p32   *pathPlan[float32] // the chain in float32, for float32 networks
+	rest  *denseRest         // the network after the chain, when it is dense; nil otherwise
 }
 
 // prefixPlans holds a Head's affine prefix, found on first use.
@@ -37,20 +39,22 @@ type prefixPlans struct {
 }
 
 // summingPrefix is the affine prefix GradientSum and PathGradientSum pull
-// their sums back through, or nil for point-by-point sums: the prefix
-// pays only where it narrows the data. Pulling the sum back once saves
-// the prefix's input gradient per point, but the sum is formed on the
-// prefix's output in float64, one row per point; where that output is
-// wider than the input (every model of the benchmark zoo: 30 → 64,
-// 100 → 256, a first convolution with more channels out than in), moving
-// those rows costs more than the products saved. Measured with the
-// AVX-512 tiles (one thread, Intel Xeon, medians of alternating runs):
-// point by point, IG-64 took 0.53–0.59 ms instead of 0.75–0.92 on the
-// 100-256-256-10 MLP, 2.9–3.1 instead of 5.1–7.5 on CNN-S and 20–25
-// instead of 30–33 on CNN-M, SmoothGrad-50 likewise.
+// their sums back through, or nil for point-by-point sums. Pulling the sum
+// back once saves the prefix's input gradient per point, but the sum is
+// formed on the prefix's output in float64, one row per point. Where that
+// output is wider than the input (every model of the benchmark zoo:
+// 30 → 64, 100 → 256, a first convolution with more channels out than in)
+// and the rest runs on the graph engine, moving those rows costs more than
+// the products saved: point by point, IG-64 took 0.53–0.59 ms instead of
+// 0.75–0.92 on the 100-256-256-10 MLP, 2.9–3.1 instead of 5.1–7.5 on
+// CNN-S and 20–25 instead of 30–33 on CNN-M, SmoothGrad-50 likewise (one
+// thread, Intel Xeon with AVX-512, medians of alternating runs). When the
+// rest is a dense chain (denseRest), which costs no graph, the sums go
+// through the prefix whatever its width: on the MLP, IG-64 took 0.28–0.30
+// ms instead of 0.32–0.33 (three alternating runs on a loaded machine).
 func (h *Head) summingPrefix() *affinePrefix {
 	p := h.prefix()
-	if p == nil || prod(p.shape) > h.inSize {
+	if p == nil || (prod(p.shape) > h.inSize && p.rest == nil) {
 		return nil
 	}
 	return p
@@ -73,6 +77,9 @@ func (h *Head) prefix() *affinePrefix {
 			return
 		}
 		pp.p = findPrefix(st, h.nw.model, h.value, h.nw.opts.DType)
+		if pp.p != nil {
+			pp.p.rest = findDenseRest(st, h.nw.model, pp.p.value, h.value, h.nw.opts.DType)
+		}
 	})
 	return pp.p
 }
@@ -261,6 +268,12 @@ func (h *Head) GradientSum(ctx context.Context, x []float64, n int, weight []flo
 	var z []float64
 	if p.p32 != nil {
 		z32 := p.p32.apply(n, convertSlice[float32](x))
+		if p.rest != nil {
+			out, sums, err := h.sumDense(ctx, p, p.rest, n, func(lo, hi int, dst []float32) {
+				copy(dst, z32[lo*len(z32)/n:hi*len(z32)/n])
+			}, weight, nil, 1, target)
+			return out, first(sums), err
+		}
 		z = make([]float64, len(z32))
 		for i, v := range z32 {
 			z[i] = float64(v)
@@ -315,11 +328,23 @@ func (h *Head) PathGradientSums(ctx context.Context, from, to, alpha, weight []f
 	ends := p.p64.apply(2, append(append([]float64(nil), from...), to...))
 	size := len(ends) / 2
 	u, v := ends[:size], ends[size:]
+	d := make([]float64, size)
+	for j := range d {
+		d[j] = v[j] - u[j]
+	}
+	if p.rest != nil {
+		// The values the graph below is given, z rounded to float32.
+		return h.sumDense(ctx, p, p.rest, n, func(lo, hi int, dst []float32) {
+			for i := lo; i < hi; i++ {
+				f32.LerpNarrow(dst[(i-lo)*size:(i-lo+1)*size], u, d, alpha[i])
+			}
+		}, weight, group, groups, target)
+	}
 	z := make([]float64, n*size)
 	for i, a := range alpha {
 		zi := z[i*size : (i+1)*size]
 		for j := range zi {
-			zi[j] = u[j] + a*(v[j]-u[j])
+			zi[j] = u[j] + float64(a*d[j])
 		}
 	}
 	return h.sumThrough(ctx, p, z, n, weight, group, groups, target)
@@ -391,7 +416,7 @@ func (h *Head) sumThrough(ctx context.Context, p *affinePrefix, z []float64, n i
 	for i, w := range weight {
 		sk := s[groupOf(group, i)]
 		for j, v := range g[i*size : (i+1)*size] {
-			sk[j] += w * v
+			sk[j] += float64(w * v)
 		}
 	}
 	sums = make([][]float64, groups)

@@ -27,7 +27,8 @@ func perPointSum(t *testing.T, h *Head, x []float64, n int, w []float64, target 
 }
 
 // TestGradientSumMatchesPerPoint checks the summed-gradient path (prefixes
-// that narrow the data; those that widen it sum point by point) against
+// that narrow the data, or are followed by a dense rest in float32; other
+// prefixes that widen it sum point by point) against
 // the per-point computation on random dense and convolutional models, with
 // their affine prefixes (a standardisation before a Gemm, a Conv with a
 // BatchNorm), in float64 to 1e-12 and float32 to 1e-5 relative to the
@@ -40,6 +41,7 @@ func TestGradientSumMatchesPerPoint(t *testing.T) {
 	// 12 values, 1 channel of 2), so that the sums go through it, or
 	// widens it (20, 4), so that they are formed point by point.
 	var hidden, channels int64
+	softmax := true
 	dense := func() *irGraph {
 		g := newIR(13, 11)
 		g.input("x", -1, 12)
@@ -47,6 +49,11 @@ func TestGradientSumMatchesPerPoint(t *testing.T) {
 		a = g.node("Div", []string{a, g.floats("sd", []int64{12}, []float32{1, 2, 0.5, 1, 3, 1, 1, 2, 1, 4, 1, 1})}, "s")
 		a = g.node("Gemm", []string{a, g.random("w1", 0.5, hidden, 12), g.random("b1", 0.1, hidden)}, "h1", aInt("transB", 1))
 		a = g.node("Relu", []string{a}, "r1")
+		if !softmax {
+			g.node("Gemm", []string{a, g.random("w2", 0.5, 5, hidden), g.random("b2", 0.1, 5)}, "y", aInt("transB", 1))
+			g.output("y")
+			return g
+		}
 		a = g.node("Gemm", []string{a, g.random("w2", 0.5, 5, hidden), g.random("b2", 0.1, 5)}, "y0", aInt("transB", 1))
 		g.node("Softmax", []string{a}, "y", aInt("axis", 1))
 		g.output("y")
@@ -70,14 +77,18 @@ func TestGradientSumMatchesPerPoint(t *testing.T) {
 		size             int
 		hidden, channels int64
 		through          bool
-	}{{"dense narrowing", dense, 12, 8, 0, true}, {"conv narrowing", conv, 128, 0, 1, true},
-		{"dense widening", dense, 12, 20, 0, false}, {"conv widening", conv, 128, 0, 4, false}} {
-		hidden, channels = c.hidden, c.channels
+		dense            bool // the rest is a dense chain: float32 sums go through the prefix
+	}{{"dense narrowing", dense, 12, 8, 0, true, false}, {"conv narrowing", conv, 128, 0, 1, true, false},
+		{"dense widening", dense, 12, 20, 0, false, false}, {"conv widening", conv, 128, 0, 4, false, false},
+		{"dense widening, dense rest", dense, 12, 20, 0, false, true}} {
+		hidden, channels, softmax = c.hidden, c.channels, !c.dense
 		for _, dt := range []DType{Float64, Float32} {
 			h, err := mustHead(c.build().m, dt)
 			require.NoError(t, err)
 			require.NotNil(t, h.prefix(), "%s: the affine prefix is found", c.name)
-			assert.Equal(t, c.through, h.summingPrefix() != nil, "%s: the sums go through the prefix", c.name)
+			through := c.through || (c.dense && dt == Float32)
+			assert.Equal(t, through, h.summingPrefix() != nil, "%s %v: the sums go through the prefix", c.name, dt)
+			assert.Equal(t, c.dense && dt == Float32, h.prefix().rest != nil, "%s %v: the rest runs as a dense chain", c.name, dt)
 			rng := rand.New(rand.NewSource(4))
 			const n = 70 // more than one batch of 64
 			x := randomInput(rng, n*c.size)
