@@ -7,6 +7,7 @@ import (
 	"slices"
 
 	"github.com/apportion/apportion/internal/gausslegendre"
+	"github.com/apportion/apportion/nn/internal/asm/f32"
 )
 
 // errTooManyPieces stops a path integral that passes its piece limit.
@@ -231,9 +232,16 @@ func (r *pathRun[T]) split(k int, pts []float64, vals, grads [][]T, isKink bool)
 				lv.rows[s] = append(lv.rows[s], lo...)
 				continue
 			}
-			hi := row(vals[s], size, j+1)
+			hi := row(vals[s], size, j+1)[:size]
+			m := len(lv.rows[s])
+			lv.rows[s] = slices.Grow(lv.rows[s], size)[:m+size]
+			dst := lv.rows[s][m:]
+			if d32, ok := any(dst).([]float32); ok {
+				f32.Lerp(d32, any(lo).([]float32), any(hi).([]float32), float32(f))
+				continue
+			}
 			for i, v := range lo {
-				lv.rows[s] = append(lv.rows[s], v+f*(hi[i]-v))
+				dst[i] = v + f*(hi[i]-v)
 			}
 		}
 	}
@@ -379,6 +387,10 @@ func rows[T pathFloat](vals [][]T, slots []int) [][]T {
 }
 
 func addRow[T pathFloat](dst, src []T) {
+	if d32, ok := any(dst).([]float32); ok {
+		f32.AddTo(d32, any(src).([]float32))
+		return
+	}
 	for i, v := range src {
 		dst[i] += v
 	}

@@ -4,6 +4,7 @@ import (
 	"math"
 	"sync"
 
+	"github.com/apportion/apportion/nn/internal/asm/f32"
 	"github.com/apportion/apportion/nn/internal/asm/f64"
 	"github.com/apportion/apportion/nn/internal/ops"
 )
@@ -41,7 +42,8 @@ type pathDense[T pathFloat] struct {
 	transA  bool
 	b       []T
 	bias    []T
-	bT      []float64 // float64 plans: op(B)ᵀ, n×k, for the input gradient by rows
+	bT      []float64    // float64 plans: op(B)ᵀ, n×k, for the input gradient by rows
+	w32     *ops.Weights // float32 plans, A not transposed: B laid out once
 }
 
 // rowsF64 reports whether d's products run row by row on f64.AccumRows
@@ -50,10 +52,14 @@ type pathDense[T pathFloat] struct {
 // pulled back) cost no GEMM's blocking.
 func (d *pathDense[T]) rowsF64() bool { return d.bT != nil && !d.transA }
 
-// setRows builds op(B)ᵀ for rowsF64 in float64 plans.
+// setRows builds op(B)ᵀ for rowsF64 in float64 plans, and B's layout for
+// the forward products of float32 plans.
 func (d *pathDense[T]) setRows() {
 	b, ok := any(d.b).([]float64)
 	if !ok {
+		if b32, ok := any(d.b).([]float32); ok && !d.transA {
+			d.w32 = ops.NewWeights(false, d.n, d.k, b32)
+		}
 		return
 	}
 	d.bT = make([]float64, len(b))
@@ -75,6 +81,17 @@ func (d *pathDense[T]) forward(n int, in [][]T, y []T) {
 			yr := y64[r*d.n : (r+1)*d.n]
 			clear(yr)
 			f64.AccumRows(yr, a64[r*d.k:(r+1)*d.k], b64, d.n)
+		}
+	} else if d.w32 != nil {
+		// One bias row for every row of the batch: added as the tiles are
+		// stored, with the bits of the network's Gemm op.
+		var bias []float32
+		if d.m == 1 && d.bias != nil {
+			bias = any(d.bias).([]float32)
+		}
+		d.w32.Product(n*d.m, 1, any(a).([]float32), d.k, bias, false, any(y).([]float32))
+		if bias != nil {
+			return
 		}
 	} else if !d.transA {
 		ops.Product(false, false, n*d.m, d.n, d.k, a, d.k, d.b, d.n, 0, y, d.n)
@@ -233,20 +250,31 @@ func (k *pathKinkOp[T]) slopeAt(j int) T {
 }
 
 func (k *pathKinkOp[T]) forward(n int, in [][]T, y []T) {
-	x := in[0]
-	lo, hi := T(k.lo), T(k.hi)
-	for i, v := range x[:n*k.size] {
-		switch k.kind {
-		case kinkRelu:
+	x := in[0][:n*k.size]
+	y = y[:len(x)]
+	switch k.kind {
+	case kinkRelu:
+		if x32, ok := any(x).([]float32); ok {
+			f32.Relu(any(y).([]float32), x32) // max(v, 0), as below
+			return
+		}
+		for i, v := range x {
 			y[i] = max(v, 0)
-		case kinkLeaky:
+		}
+	case kinkLeaky:
+		for i, v := range x {
 			if v <= 0 {
 				v *= k.slopeAt(i % k.size)
 			}
 			y[i] = v
-		case kinkClip:
+		}
+	case kinkClip:
+		lo, hi := T(k.lo), T(k.hi)
+		for i, v := range x {
 			y[i] = min(max(v, lo), hi)
-		case kinkAbs:
+		}
+	case kinkAbs:
+		for i, v := range x {
 			if v < 0 {
 				v = -v
 			}
@@ -265,6 +293,10 @@ func (k *pathKinkOp[T]) backward(n int, ends [][]T, dy []T, dx [][]T) {
 		g, out := dy[j*size:(j+1)*size], d[j*size:(j+1)*size]
 		switch k.kind {
 		case kinkRelu:
+			if out32, ok := any(out).([]float32); ok {
+				f32.ReluGradMidAdd(out32, any(a).([]float32), any(b).([]float32), any(g).([]float32))
+				continue
+			}
 			for i, v := range g {
 				if a[i]+b[i] > 0 {
 					out[i] += v
@@ -305,6 +337,20 @@ func (k *pathKinkOp[T]) breaks(at, bt [][]T, a, b float64, dst []float64) []floa
 	xa, xb := at[0][:k.size], bt[0][:k.size]
 	for _, th := range thresholds {
 		if math.IsNaN(th) || math.IsInf(th, 0) {
+			continue
+		}
+		if x32, ok := any(xa).([]float32); ok && th == 0 {
+			// Strictly on both sides of 0 exactly when the product is
+			// negative: two float32 values multiply exactly in float64
+			// (48 significant bits, exponents within its range), and a
+			// NaN compares false. One well-predicted branch per element.
+			y32 := any(xb).([]float32)[:len(x32)]
+			for j, va := range x32 {
+				if vb := y32[j]; float64(va)*float64(vb) < 0 {
+					ua, ub := float64(va), float64(vb)
+					dst = append(dst, a+(b-a)*(ua/(ua-ub)))
+				}
+			}
 			continue
 		}
 		t := T(th)

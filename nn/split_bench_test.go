@@ -76,3 +76,28 @@ func BenchmarkSplitGradient(b *testing.B) {
 		}
 	}
 }
+
+// BenchmarkSplitForward times one Head.Forward call of 1024 samples on the
+// bench models with Parallel 1 and 2 (run at GOMAXPROCS=2):
+// go test ./nn -run '^$' -bench SplitForward -cpu 2
+func BenchmarkSplitForward(b *testing.B) {
+	ctx := context.Background()
+	for _, name := range splitModels {
+		for _, par := range []int{1, 2} {
+			h := splitHead(b, name, Options{Parallel: par})
+			const n = 1024
+			x := splitInput(h, n)
+			b.Run(fmt.Sprintf("%s/n%d/p%d", name, n, par), func(b *testing.B) {
+				if _, err := h.Forward(ctx, x, n); err != nil {
+					b.Fatal(err)
+				}
+				b.ResetTimer()
+				for i := 0; i < b.N; i++ {
+					if _, err := h.Forward(ctx, x, n); err != nil {
+						b.Fatal(err)
+					}
+				}
+			})
+		}
+	}
+}

@@ -471,6 +471,15 @@ func measure(gp, tp *peer, model string, tk task, reps int, target float64) (row
 	return row{model: model, task: tk.label, goSec: t.goSec, torchSec: t.otherSec, allocs: t.allocs, bytes: t.bytes}, nil
 }
 
+// settle is the pause before each measurement of two alternating sides:
+// a thread pool that has just finished its side's calls keeps its threads
+// spinning for a while before they sleep (ONNX Runtime's, PyTorch's OpenMP
+// threads), and those threads take the cores from the other side's next
+// measurement. Without it the Go side's mlp-m forward at batch 1024 on two
+// threads measured 3.21 ms right after ONNX Runtime's calls and 2.14 ms
+// after a 200 ms pause (AMD EPYC, 2 cores).
+const settle = 100 * time.Millisecond
+
 // timing is the median time per call of both sides, and the Go side's
 // allocations per call.
 type timing struct {
@@ -481,7 +490,7 @@ type timing struct {
 // timeSides times the "time" requests greq on gp and oreq on op (none when
 // op is nil): a calibration call sets each side's iteration count so that
 // one measurement lasts about target seconds, then reps measurements
-// alternate between the sides.
+// alternate between the sides, each after a pause of settle.
 func timeSides(gp *peer, greq *request, op *peer, oreq *request, reps int, target float64) (timing, error) {
 	iters := func(p *peer, req request) (int, error) {
 		req.Iters = 1
@@ -505,6 +514,9 @@ func timeSides(gp *peer, greq *request, op *peer, oreq *request, reps int, targe
 	for i := 0; i < reps; i++ {
 		req := *greq
 		req.Iters = gi
+		if op != nil {
+			time.Sleep(settle)
+		}
 		r, err := gp.call(req)
 		if err != nil {
 			return timing{}, fmt.Errorf("go side: %w", err)
@@ -515,6 +527,7 @@ func timeSides(gp *peer, greq *request, op *peer, oreq *request, reps int, targe
 		if op != nil {
 			req := *oreq
 			req.Iters = oi
+			time.Sleep(settle)
 			r, err := op.call(req)
 			if err != nil {
 				return timing{}, fmt.Errorf("%s side: %w", filepath.Base(op.cmd.Path), err)
@@ -658,7 +671,7 @@ func renderMarkdown(cfg config, rows []row, checks []string, peaks, gemms map[in
 	fmt.Fprintf(&b, "- Load average (1, 5, 15 min): %s at the start, %s at the end; the machine is shared, so timings are noisy\n", loadStart, loadEnd)
 	fmt.Fprintf(&b, "- Peak (float32 FMA ceiling: a register-only FMA loop on %s vectors on GOMAXPROCS goroutines, best of ten trials, measured in this run): %.2f GFLOP/s at 1 thread, %.2f at 2\n", cpupeak.Vector(), peaks[1], peaks[2])
 	fmt.Fprintf(&b, "- nn's float32 matrix product (a one-MatMul model through Head.Forward, best of ten trials on 256×256×256 and 64×1024×256): %.2f GFLOP/s at 1 thread, %.2f at 2\n", gemms[1], gemms[2])
-	fmt.Fprintf(&b, "- Run: %d repetitions per row, alternating sides, median; took %s; finished %s\n\n", cfg.reps, took.Round(time.Second), time.Now().UTC().Format("2006-01-02 15:04 MST"))
+	fmt.Fprintf(&b, "- Run: %d repetitions per row, alternating sides with a %s pause before each (an idle thread pool of the side just timed spins for a while), median; took %s; finished %s\n\n", cfg.reps, settle, took.Round(time.Second), time.Now().UTC().Format("2006-01-02 15:04 MST"))
 	if len(checks) > 0 {
 		b.WriteString("## Agreement before timing\n\n")
 		for _, c := range checks {

@@ -7,6 +7,7 @@ import (
 	"path/filepath"
 	"runtime"
 	"strings"
+	"time"
 
 	"github.com/apportion/apportion/bench"
 	"github.com/apportion/apportion/demo"
@@ -232,12 +233,16 @@ func measurePerturb(gp, tp *peer, dir string, c perturbCase, reps int, target fl
 	}
 	var gs, ts, allocs, byts []float64
 	for i := 0; i < reps; i++ {
+		if tp != nil {
+			time.Sleep(settle)
+		}
 		g, err := gp.call(request{Cmd: "perturb", Task: c.name, Iters: gi})
 		if err != nil {
 			return perturbRow{}, "", fmt.Errorf("go side: %w", err)
 		}
 		gs, allocs, byts = append(gs, g.Seconds/float64(gi)), append(allocs, g.Allocs), append(byts, g.Bytes)
 		if tp != nil {
+			time.Sleep(settle)
 			t, err := tp.call(request{Cmd: "rows", Path: c.modelPath(dir), Rows: row.rows, Batch: gradattr.DefaultForwardBatch, Iters: ti})
 			if err != nil {
 				return perturbRow{}, "", fmt.Errorf("torch side: %w", err)

@@ -415,3 +415,26 @@ func gemm6x32Bias(kc int, a *float32, rs, ps int, b0, b1, c *float32, ldc int, b
 		}
 	}
 }
+
+func addTo(dst, src []float32) {
+	dst = dst[:len(src)]
+	for i, v := range src {
+		dst[i] += v
+	}
+}
+
+func lerp(dst, lo, hi []float32, f float32) {
+	dst, hi = dst[:len(lo)], hi[:len(lo)]
+	for i, v := range lo {
+		dst[i] = v + float32(f*(hi[i]-v)) // the conversion keeps the compiler from fusing
+	}
+}
+
+func reluGradMidAdd(dst, a, b, dy []float32) {
+	dst, b, dy = dst[:len(a)], b[:len(a)], dy[:len(a)]
+	for i, v := range a {
+		if v+b[i] > 0 {
+			dst[i] += dy[i]
+		}
+	}
+}

@@ -318,6 +318,49 @@ func AddScaledWiden(dst []float64, w float64, x []float32) {
 	addScaledWiden(dst[n:], w, x[n:])
 }
 
+// AddTo adds src[i] to dst[i] for i < len(src); dst must be at least as
+// long as src.
+func AddTo(dst, src []float32) {
+	dst = dst[:len(src)]
+	n := 0
+	if useAsm {
+		if n = len(src) &^ 7; n > 0 {
+			addToAsm(&dst[0], &src[0], n)
+		}
+	}
+	addTo(dst[n:], src[n:])
+}
+
+// Lerp stores dst[i] = lo[i] + f·(hi[i] − lo[i]) for i < len(lo), the
+// difference, the product and the sum each rounded to float32 (never
+// fused): the value at f of a quantity affine between two points. hi and
+// dst must be at least as long as lo.
+func Lerp(dst, lo, hi []float32, f float32) {
+	dst, hi = dst[:len(lo)], hi[:len(lo)]
+	n := 0
+	if useAsm {
+		if n = len(lo) &^ 7; n > 0 {
+			lerpAsm(&dst[0], &lo[0], &hi[0], f, n)
+		}
+	}
+	lerp(dst[n:], lo[n:], hi[n:], f)
+}
+
+// ReluGradMidAdd adds dy[i] to dst[i] where a[i] + b[i] > 0 (NaN not)
+// for i < len(a): a Relu's input gradient on a segment whose ends' inputs
+// are a and b, read at its midpoint. b, dy and dst must be at least as
+// long as a.
+func ReluGradMidAdd(dst, a, b, dy []float32) {
+	dst, b, dy = dst[:len(a)], b[:len(a)], dy[:len(a)]
+	n := 0
+	if useAsm {
+		if n = len(a) &^ 7; n > 0 {
+			reluGradMidAddAsm(&dst[0], &a[0], &b[0], &dy[0], n)
+		}
+	}
+	reluGradMidAdd(dst[n:], a[n:], b[n:], dy[n:])
+}
+
 // MaxPool2x2 stores, for each of planes planes of h×w in x, the 2×2
 // stride-2 max pool of its top-left 2·oh×2·ow corner in the plane of oh×ow
 // in y: the first NaN of each window if it has one, else its first maximal
@@ -513,6 +556,35 @@ func lerpNarrowAsm(dst *float32, u, d *float64, a float64, n int)
 //
 //go:noescape
 func addScaledWidenAsm(dst *float64, w float64, x *float32, n int)
+
+// addToAsm is, for n a multiple of 8,
+//
+//	for i := 0; i < n; i++ {
+//		dst[i] += src[i]
+//	}
+//
+//go:noescape
+func addToAsm(dst, src *float32, n int)
+
+// lerpAsm is, for n a multiple of 8,
+//
+//	for i := 0; i < n; i++ {
+//		dst[i] = lo[i] + float32(f*(hi[i]-lo[i]))
+//	}
+//
+//go:noescape
+func lerpAsm(dst, lo, hi *float32, f float32, n int)
+
+// reluGradMidAddAsm is, for n a multiple of 8,
+//
+//	for i := 0; i < n; i++ {
+//		if a[i]+b[i] > 0 {
+//			dst[i] += dy[i]
+//		}
+//	}
+//
+//go:noescape
+func reluGradMidAddAsm(dst, a, b, dy *float32, n int)
 
 // maxPool2x2Asm is, when x holds no NaN and maxPoolFits holds,
 //

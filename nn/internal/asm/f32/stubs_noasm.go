@@ -159,6 +159,22 @@ func LerpNarrow(dst []float32, u, d []float64, a float64) { lerpNarrow(dst, u, d
 // sum of float32 rows kept in float64. dst must be at least as long as x.
 func AddScaledWiden(dst []float64, w float64, x []float32) { addScaledWiden(dst, w, x) }
 
+// AddTo adds src[i] to dst[i] for i < len(src); dst must be at least as
+// long as src.
+func AddTo(dst, src []float32) { addTo(dst, src) }
+
+// Lerp stores dst[i] = lo[i] + f·(hi[i] − lo[i]) for i < len(lo), the
+// difference, the product and the sum each rounded to float32 (never
+// fused): the value at f of a quantity affine between two points. hi and
+// dst must be at least as long as lo.
+func Lerp(dst, lo, hi []float32, f float32) { lerp(dst, lo, hi, f) }
+
+// ReluGradMidAdd adds dy[i] to dst[i] where a[i] + b[i] > 0 (NaN not)
+// for i < len(a): a Relu's input gradient on a segment whose ends' inputs
+// are a and b, read at its midpoint. b, dy and dst must be at least as
+// long as a.
+func ReluGradMidAdd(dst, a, b, dy []float32) { reluGradMidAdd(dst, a, b, dy) }
+
 // MaxPool2x2 stores, for each of planes planes of h×w in x, the 2×2
 // stride-2 max pool of its top-left 2·oh×2·ow corner in the plane of oh×ow
 // in y: the first NaN of each window if it has one, else its first maximal

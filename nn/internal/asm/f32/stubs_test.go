@@ -5,6 +5,7 @@ import (
 	"math"
 	"math/big"
 	"math/rand/v2"
+	"slices"
 	"testing"
 
 	"github.com/stretchr/testify/require"
@@ -785,4 +786,68 @@ func BenchmarkReluGrad(b *testing.B) {
 			reluGrad(d, x, g)
 		}
 	})
+}
+
+func TestAddToLerpReluGradMidAddRoundEachStep(t *testing.T) {
+	// AddTo, Lerp and ReluGradMidAdd against their definitions written
+	// out, each operation rounded to float32 on its own (IEEE 754 §5.4.1;
+	// Go's explicit conversion keeps a product from being fused), at every
+	// length through the vector steps and the tail. The values include ±0,
+	// ±Inf, NaN and the edges of specials32 (a NaN result is compared as
+	// NaN: which operand's NaN an operation returns, and so its sign, is
+	// left open by IEEE 754 §6.2.3 and by Go); where ReluGradMidAdd's
+	// condition fails dst keeps its bits (−0 stays −0), and a NaN sum of
+	// the ends fails it, as does a sum of exactly 0.
+	rng := rand.New(rand.NewPCG(25, 26))
+	draw := func() float32 {
+		if rng.IntN(6) == 0 {
+			return math.Float32frombits(specials32[rng.IntN(len(specials32))])
+		}
+		return float32(rng.NormFloat64() * math.Pow(2, float64(rng.IntN(20)-10)))
+	}
+	same := func(want, got float32) bool {
+		return math.Float32bits(want) == math.Float32bits(got) || (want != want && got != got)
+	}
+	fusedDiffers, kept, added := 0, 0, 0
+	for n := 0; n <= 40; n++ {
+		lo, hi, dy := make([]float32, n+1), make([]float32, n+1), make([]float32, n+1)
+		acc := make([]float32, n+1)
+		for i := range n {
+			lo[i], hi[i], dy[i], acc[i] = draw(), draw(), draw(), draw()
+			if rng.IntN(6) == 0 {
+				hi[i] = -lo[i] // the ends' sum exactly 0: the kink itself
+			}
+		}
+		f := float32(rng.Float64())
+		got := make([]float32, n+1)
+		Lerp(got, lo[:n], hi, f)
+		sum := slices.Clone(acc)
+		AddTo(sum, dy[:n])
+		mid := slices.Clone(acc)
+		ReluGradMidAdd(mid, lo[:n], hi, dy)
+		for i := range n {
+			p := float32(f * (hi[i] - lo[i]))
+			want := lo[i] + p
+			require.True(t, same(want, got[i]), "n=%d lerp lo=%v hi=%v f=%v", n, lo[i], hi[i], f)
+			fused := float32(math.FMA(float64(f), float64(hi[i]-lo[i]), float64(lo[i])))
+			if fused == fused && fused != want {
+				fusedDiffers++
+			}
+			require.True(t, same(acc[i]+dy[i], sum[i]), "n=%d add %v + %v", n, acc[i], dy[i])
+			w := acc[i]
+			if lo[i]+hi[i] > 0 {
+				w += dy[i]
+				added++
+			} else {
+				kept++
+			}
+			require.True(t, same(w, mid[i]), "n=%d relu grad a=%v b=%v dy=%v dst=%v", n, lo[i], hi[i], dy[i], acc[i])
+		}
+		require.Zero(t, got[n], "past the end")
+		require.Equal(t, math.Float32bits(acc[n]), math.Float32bits(sum[n]), "past the end")
+		require.Equal(t, math.Float32bits(acc[n]), math.Float32bits(mid[n]), "past the end")
+	}
+	require.Positive(t, fusedDiffers, "no value tells a fused multiply-add apart")
+	require.Positive(t, kept)
+	require.Positive(t, added)
 }
